@@ -1,0 +1,49 @@
+"""Helpers shared by the sub-commands: consoles, the caution line, error display."""
+
+from __future__ import annotations
+
+import sys
+from collections.abc import Iterator
+from contextlib import contextmanager
+
+import typer
+from rich.console import Console
+
+from caredecide.cautions import CAUTION_SHORT
+from caredecide.errors import CaredecideError
+
+stdout = Console(soft_wrap=True, highlight=False)
+stderr = Console(stderr=True, soft_wrap=True, highlight=False)
+
+
+def print_caution(quiet: bool = False) -> None:
+    """Print the research-use caution on stderr (always, unless ``quiet``)."""
+    if not quiet:
+        stderr.print(f"[bold yellow]{CAUTION_SHORT}[/]")
+
+
+@contextmanager
+def user_errors() -> Iterator[None]:
+    """Turn caredecide's own errors into a clear message on stderr and exit code 2."""
+    try:
+        yield
+    except CaredecideError as error:
+        stderr.print(f"[bold red]error:[/] {error}", markup=True)
+        raise typer.Exit(code=2) from None
+    except FileNotFoundError as error:
+        stderr.print(f"[bold red]error:[/] file not found: {error.filename}")
+        raise typer.Exit(code=2) from None
+
+
+def progress(description: str, total: int, quiet: bool = False):
+    """A rich progress bar on stderr, hidden when ``quiet`` or stderr is not a terminal."""
+    from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+
+    return Progress(
+        TextColumn(description),
+        BarColumn(),
+        TextColumn("{task.completed}/{task.total}"),
+        TimeRemainingColumn(),
+        console=stderr,
+        disable=quiet or not sys.stderr.isatty(),
+    )

@@ -1,0 +1,90 @@
+"""Errors and warnings raised for bad model input.
+
+Every message names *where* the problem is (file, table path such as
+``actions.treat.transitions.mild.dead`` or ``parameters.p_progress``), the
+offending value and what was expected, so a user can fix it without reading code.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+
+class CaredecideError(Exception):
+    """Base class for every error caredecide raises on purpose."""
+
+
+@dataclass
+class Problem:
+    """One validation finding.
+
+    Parameters
+    ----------
+    where : str
+        Dotted table path inside the model, e.g. ``"states.mild.qaly_weight"``.
+    message : str
+        What is wrong and what was expected, naming the offending value.
+    file : str or None
+        The file the finding concerns, when known.
+    line : int or None
+        1-based line number, when known (TOML syntax errors).
+    """
+
+    where: str
+    message: str
+    file: str | None = None
+    line: int | None = None
+
+    def __str__(self) -> str:
+        place = self.file or "<model>"
+        if self.line is not None:
+            place += f", line {self.line}"
+        if self.where:
+            return f"{place}: {self.where}: {self.message}"
+        return f"{place}: {self.message}"
+
+
+class ModelError(CaredecideError, ValueError):
+    """A model file or model object is invalid.
+
+    Holds every :class:`Problem` found, so a user sees all errors at once.
+    """
+
+    def __init__(self, problems: list[Problem] | Problem | str, *, file: str | None = None):
+        if isinstance(problems, str):
+            problems = [Problem(where="", message=problems, file=file)]
+        elif isinstance(problems, Problem):
+            problems = [problems]
+        for problem in problems:
+            if problem.file is None:
+                problem.file = file
+        self.problems: list[Problem] = list(problems)
+        super().__init__("\n".join(str(p) for p in self.problems))
+
+
+class ExpressionError(CaredecideError, ValueError):
+    """An expression in a model file cannot be parsed or evaluated."""
+
+
+class DistributionError(CaredecideError, ValueError):
+    """A parameter distribution is impossible (e.g. a beta with that mean and standard error)."""
+
+
+class ModelTooLargeError(CaredecideError, MemoryError):
+    """The compiled arrays would not fit the memory budget; the message gives the estimate."""
+
+
+@dataclass
+class ModelWarningRecord:
+    """A suspicious but allowed value (e.g. a QALY weight above 1)."""
+
+    where: str
+    message: str
+    extra: dict = field(default_factory=dict)
+
+    def __str__(self) -> str:
+        return f"{self.where}: {self.message}"
+
+
+class ModelWarning(UserWarning):
+    """Warning category for suspicious model values."""
