@@ -1,0 +1,95 @@
+"""``caredecide app``: start the Streamlit app on this machine (127.0.0.1 only)."""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+from caredecide.cli.common import print_caution, stderr
+
+MODEL_ENV = "CAREDECIDE_MODEL"
+"""Environment variable through which the app receives the model file to open."""
+MAX_MODEL_BYTES = 1_000_000
+"""Largest model file the app opens (the same limit as an upload)."""
+
+
+def app_script() -> Path:
+    """Path of the app's entry file, ``ui/app.py``, wherever the package is installed."""
+    import ui
+
+    return Path(ui.__file__).resolve().parent / "app.py"
+
+
+def streamlit_command(model: Path, port: int, headless: bool) -> tuple[list[str], dict[str, str]]:
+    """The command line and environment that start the app on ``127.0.0.1:port``.
+
+    The model path travels in :data:`MODEL_ENV`; usage statistics are off and the
+    server binds to the loopback address only.
+    """
+    command = [
+        sys.executable, "-m", "streamlit", "run", str(app_script()),
+        "--server.address=127.0.0.1",
+        f"--server.port={port}",
+        f"--server.headless={'true' if headless else 'false'}",
+        "--server.maxUploadSize=1",
+        "--browser.gatherUsageStats=false",
+        "--server.fileWatcherType=none",
+    ]
+    env = dict(os.environ)
+    env[MODEL_ENV] = str(model.resolve())
+    return command, env
+
+
+def _default_model() -> Path:
+    from synthetic_cohort import demo_model_path
+
+    return Path(demo_model_path())
+
+
+def run_app(
+    model: Annotated[
+        Path | None,
+        typer.Argument(
+            help="Model file to open (TOML). Default: the bundled synthetic demo model.",
+            exists=True, dir_okay=False, readable=True,
+        ),
+    ] = None,
+    port: Annotated[
+        int, typer.Option("--port", min=1024, max=65535, help="Port on 127.0.0.1.")
+    ] = 8501,
+    headless: Annotated[
+        bool, typer.Option("--headless/--open-browser", help="Do not open a browser window.")
+    ] = False,
+    quiet: Annotated[bool, typer.Option("--quiet", help="No caution line on stderr.")] = False,
+) -> None:
+    """Start the app in a local browser (research use only).
+
+    The working model is autosaved to $CAREDECIDE_HOME/drafts (default ~/.caredecide/drafts).
+    """
+    print_caution(quiet)
+    path = model if model is not None else _default_model()
+    size = path.stat().st_size
+    if size > MAX_MODEL_BYTES:
+        stderr.print(
+            f"[bold red]error:[/] {path}: the model file is {size} bytes; expected at most "
+            f"{MAX_MODEL_BYTES} bytes"
+        )
+        raise typer.Exit(code=2)
+    command, env = streamlit_command(path, port, headless)
+    if not quiet:
+        stderr.print(f"Starting the app on http://127.0.0.1:{port} with {path} (Ctrl+C stops it)")
+    try:
+        status = subprocess.call(command, env=env)
+    except KeyboardInterrupt:
+        status = 0
+    raise typer.Exit(code=status)
+
+
+def register(app: typer.Typer) -> None:
+    """Add the ``app`` command to the root CLI."""
+    app.command("app", no_args_is_help=False)(run_app)
