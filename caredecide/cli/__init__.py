@@ -17,6 +17,7 @@ from caredecide.cautions import CAUTION_SHORT
 
 # Add a sub-command: write caredecide/cli/<name>.py with register(app), then list it here.
 COMMAND_MODULES: tuple[str, ...] = (
+    "app",
 )
 
 app = typer.Typer(
@@ -49,8 +50,12 @@ def _root(
     """When to start a treatment (research use only)."""
 
 
+_root_app = app
 for _name in COMMAND_MODULES:
-    importlib.import_module(f"caredecide.cli.{_name}").register(app)
+    importlib.import_module(f"caredecide.cli.{_name}").register(_root_app)
+# Importing the sub-command module caredecide.cli.app rebinds the package attribute ``app``
+# to that module; put the Typer application back.
+app = _root_app
 
 
 def main() -> None:
