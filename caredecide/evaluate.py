@@ -1,0 +1,313 @@
+"""Policy evaluation: cohort trace and totals for any policy (optimal or fixed).
+
+The same arithmetic as the solvers (rewards from :mod:`caredecide.solvers.common`):
+for a policy ``pi`` the cohort ``m_t`` (row vector over states) moves as
+``m_{t+1} = m_t P_t[pi_t]`` and the totals are
+
+    QALYs = sum_t w_t d_o^t m_t . q_t + sum_{t<T} d_o^t m_t . dq_t[pi_t]
+    costs = sum_t w_t d_c^t m_t . c_t + sum_{t<T} d_c^t m_t . dc_t[pi_t]
+
+so for the optimal policy ``outcome.value`` equals ``result.value[:, 0] @ start``.
+Infinite horizon: totals by a batched linear solve ``(I - d P_pi) x = r_pi`` per quantity
+(outcomes at ``d_o``, costs at ``d_c``); undiscounted totals by the same solve restricted
+to the non-absorbing states (infinite when an absorbing state keeps earning). The trace
+is shown over a display horizon until 99.9% of the cohort is absorbed, or a cap.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from caredecide.compiled import CompiledModel, occupancy_weights
+from caredecide.objective import Objective
+from caredecide.solvers.common import (
+    SolverError,
+    check_compiled,
+    combine,
+    decision_parts,
+    occupancy_parts,
+    transition_at,
+)
+from caredecide.solvers.finite import terminal_present_value
+from caredecide.solvers.stationary import START_WEIGHT
+
+DISPLAY_ABSORBED = 0.999
+"""Infinite horizon: the trace is shown until this share of the cohort is absorbed..."""
+DISPLAY_CAP = 1000
+"""...or for this many cycles at most."""
+
+_QUANTITIES = ("life_years", "qalys", "costs")
+
+
+@dataclass
+class PolicyOutcome:
+    """Cohort trace and totals of a policy for ``D`` draws.
+
+    Attributes
+    ----------
+    trace : (D, T + 1, S) float
+        Cohort proportions at boundaries 0..T (display horizon for an infinite horizon).
+    life_years, qalys, costs : (D,) float
+        Totals per person, discounted to the model start (life-years at the outcome rate).
+    life_years_undiscounted, qalys_undiscounted, costs_undiscounted : (D,) float
+    net_monetary_benefit : (D,) float
+        ``willingness_to_pay * qalys - costs`` (discounted), at the objective's WTP.
+    value : (D,) float
+        The objective (net benefit or QALYs) including any terminal value.
+    flows : dict of str to (D, T + 1) float
+        Discounted QALYs, costs and life-years accrued at each boundary (with the
+        within-cycle weights; decision charges at the boundary where they fall).
+    objective : Objective
+    state_ids : tuple of str
+    ages : (T + 1,) float
+        Age at each boundary of the trace.
+    finite_horizon : bool
+    """
+
+    trace: np.ndarray
+    life_years: np.ndarray
+    qalys: np.ndarray
+    costs: np.ndarray
+    life_years_undiscounted: np.ndarray
+    qalys_undiscounted: np.ndarray
+    costs_undiscounted: np.ndarray
+    net_monetary_benefit: np.ndarray
+    value: np.ndarray
+    flows: dict[str, np.ndarray]
+    objective: Objective
+    state_ids: tuple[str, ...]
+    ages: np.ndarray
+    finite_horizon: bool
+
+    def trace_frame(self, draw: int = 0) -> pd.DataFrame:
+        """Long cohort trace of one draw: columns cycle, age, state, proportion."""
+        n_t, n_s = self.trace.shape[1:]
+        return pd.DataFrame(
+            {
+                "cycle": np.repeat(np.arange(n_t), n_s),
+                "age": np.repeat(self.ages, n_s),
+                "state": np.tile(np.asarray(self.state_ids, dtype=object), n_t),
+                "proportion": self.trace[draw].ravel(),
+            }
+        )
+
+    def flow_frame(self, draw: int = 0) -> pd.DataFrame:
+        """Per-boundary discounted flows of one draw: cycle, age, life_years, qalys, costs."""
+        frame = pd.DataFrame({"cycle": np.arange(self.trace.shape[1]), "age": self.ages})
+        for name in _QUANTITIES:
+            frame[name] = self.flows[name][draw]
+        return frame
+
+    def totals_frame(self) -> pd.DataFrame:
+        """One row per draw: discounted and undiscounted totals, net benefit and value."""
+        columns = {"draw": np.arange(self.value.shape[0])}
+        for name in _QUANTITIES:
+            columns[name] = getattr(self, name)
+            columns[f"{name}_undiscounted"] = getattr(self, f"{name}_undiscounted")
+        columns["net_monetary_benefit"] = self.net_monetary_benefit
+        columns["value"] = self.value
+        return pd.DataFrame(columns)
+
+    def totals(self, draw: int = 0) -> dict[str, float]:
+        """Totals of one draw as plain floats (for JSON)."""
+        row = self.totals_frame().iloc[draw].to_dict()
+        row.pop("draw")
+        return {key: float(value) for key, value in row.items()}
+
+
+def check_policy(compiled: CompiledModel, policy: np.ndarray | int) -> np.ndarray:
+    """Broadcast a policy to (D, Tpi, S) int and check every action is allowed.
+
+    Raises
+    ------
+    SolverError
+        Naming the first state and action that is out of range or not allowed.
+    """
+    D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
+    n_t = compiled.n_cycles if compiled.n_cycles is not None else 1
+    array = np.asarray(policy)
+    if not np.issubdtype(array.dtype, np.integer):
+        raise SolverError(f"policy must hold integer action indices; got dtype {array.dtype}")
+    try:
+        array = np.broadcast_to(array, (D, n_t, S))
+    except ValueError:
+        raise SolverError(
+            f"policy has shape {array.shape}; expected a shape broadcastable to (draws, cycles, "
+            f"states) = ({D}, {n_t}, {S})"
+        ) from None
+    bad_range = (array < 0) | (array >= A)
+    if bad_range.any():
+        d, t, s = np.argwhere(bad_range)[0]
+        raise SolverError(
+            f"policy chooses action index {array[d, t, s]} in state {compiled.state_ids[s]!r} "
+            f"(cycle {t}); expected 0..{A - 1} for actions {compiled.action_ids}"
+        )
+    not_allowed = ~compiled.allowed[np.arange(S), array]
+    if not_allowed.any():
+        d, t, s = np.argwhere(not_allowed)[0]
+        raise SolverError(
+            f"policy chooses action {compiled.action_ids[array[d, t, s]]!r} in state "
+            f"{compiled.state_ids[s]!r} (cycle {t}), where it is not allowed"
+        )
+    return array
+
+
+def _policy_transition(P: np.ndarray, policy: np.ndarray) -> np.ndarray:
+    """(D, S, S) rows of ``P`` (D, A, S, S) for the actions of ``policy`` (D, S)."""
+    return np.take_along_axis(P, policy[:, None, :, None], axis=1)[:, 0]
+
+
+def _chosen(decision: np.ndarray, policy: np.ndarray) -> np.ndarray:
+    """(D, S) entries of ``decision`` (D, S, A) for the actions of ``policy`` (D, S)."""
+    return np.take_along_axis(decision, policy[..., None], axis=-1)[..., 0]
+
+
+def evaluate_policy(
+    compiled: CompiledModel,
+    policy: np.ndarray | int,
+    objective: Objective,
+    *,
+    terminal_value: np.ndarray | float | None = None,
+) -> PolicyOutcome:
+    """Cohort trace and totals of a policy.
+
+    Parameters
+    ----------
+    compiled : CompiledModel
+    policy : int array broadcastable to (D, Tpi, S)
+        Action index per draw, cycle and state (``Tpi`` = T, or 1 for an infinite
+        horizon); e.g. ``result.policy``, ``0`` ("always the first action"), or a table.
+    objective : Objective
+    terminal_value : float or array broadcastable to (D, S), optional
+        Finite horizon: value of each state at the end of the horizon (as in
+        :func:`caredecide.solvers.solve`); added to ``value`` only.
+
+    Returns
+    -------
+    PolicyOutcome
+    """
+    check_compiled(compiled)
+    policy = check_policy(compiled, policy)
+    if compiled.n_cycles is None:
+        return _evaluate_infinite(compiled, policy[:, 0], objective)
+    return _evaluate_finite(compiled, policy, objective, terminal_value)
+
+
+def _evaluate_finite(compiled, policy, objective, terminal_value) -> PolicyOutcome:
+    D, S, T = compiled.n_draws, compiled.n_states, compiled.n_cycles
+    weights = occupancy_weights(compiled.within_cycle, T)
+    d_o = compiled.per_cycle_discount()[0]
+    trace = np.empty((D, T + 1, S))
+    trace[:, 0] = compiled.start_distribution
+    flows = {f"{name}{suffix}": np.zeros((D, T + 1)) for name in _QUANTITIES
+             for suffix in ("", "_undiscounted")}
+    for t in range(T + 1):
+        m = trace[:, t]
+        for discount, suffix in ((True, ""), (False, "_undiscounted")):
+            q, c = occupancy_parts(compiled, t, weights[t], discount)
+            ly = weights[t] * (d_o**t if discount else 1.0) * compiled.life_years
+            flows["life_years" + suffix][:, t] = m @ ly
+            flows["qalys" + suffix][:, t] = np.einsum("ds,ds->d", m, q)
+            flows["costs" + suffix][:, t] = np.einsum("ds,ds->d", m, c)
+            if t < T:
+                dq, dc = decision_parts(compiled, t, discount)
+                flows["qalys" + suffix][:, t] += np.einsum("ds,ds->d", m, _chosen(dq, policy[:, t]))
+                flows["costs" + suffix][:, t] += np.einsum("ds,ds->d", m, _chosen(dc, policy[:, t]))
+        if t < T:
+            P_pi = _policy_transition(transition_at(compiled, t), policy[:, t])
+            trace[:, t + 1] = (m[:, None, :] @ P_pi)[:, 0]
+    totals = {name: flow.sum(axis=1) for name, flow in flows.items()}
+    terminal = np.einsum(
+        "ds,ds->d", trace[:, T], terminal_present_value(compiled, objective, terminal_value)
+    )
+    return _outcome(compiled, objective, trace, totals, flows, terminal, compiled.ages(), True)
+
+
+def _evaluate_infinite(compiled, policy, objective) -> PolicyOutcome:
+    if not compiled.is_stationary:
+        raise SolverError("an infinite horizon needs stationary arrays (time axis of length 1)")
+    if compiled.within_cycle not in START_WEIGHT:
+        raise SolverError(
+            f"within-cycle method {compiled.within_cycle!r} needs a finite horizon; expected "
+            f"one of {tuple(START_WEIGHT)} for an infinite horizon"
+        )
+    D, S = compiled.n_draws, compiled.n_states
+    start_weight = START_WEIGHT[compiled.within_cycle]
+    P_pi = _policy_transition(compiled.transition[:, 0], policy)
+    start = np.broadcast_to(compiled.start_distribution, (D, S))
+    absorbing = np.asarray(compiled.absorbing, bool)
+    if absorbing.shape != (S,):
+        absorbing = np.zeros(S, bool)
+
+    q, c = occupancy_parts(compiled, 0, 1.0, discount=False)
+    dq, dc = decision_parts(compiled, 0, discount=False)
+    ly = np.broadcast_to(compiled.life_years, (D, S))
+    per_cycle = {
+        "life_years": ly, "qalys": q + _chosen(dq, policy), "costs": c + _chosen(dc, policy)
+    }
+    occupancy_only = {"life_years": ly, "qalys": q, "costs": c}
+    d_o, d_c = compiled.per_cycle_discount()
+    factor = {"life_years": d_o, "qalys": d_o, "costs": d_c}
+
+    # Display trace: one matmul per cycle until the cohort is absorbed (or the cap).
+    rows = [start]
+    m = start
+    while len(rows) <= DISPLAY_CAP and (m[:, ~absorbing].sum(axis=1) > 1 - DISPLAY_ABSORBED).any():
+        m = (m[:, None, :] @ P_pi)[:, 0]
+        rows.append(m)
+    trace = np.stack(rows, axis=1)
+
+    totals, flows = {}, {}
+    t = np.arange(trace.shape[1])
+    for name in _QUANTITIES:
+        correction = (1.0 - start_weight) * np.einsum("ds,ds->d", start, occupancy_only[name])
+        for discount, suffix in ((True, ""), (False, "_undiscounted")):
+            d = factor[name] if discount else 1.0
+            totals[name + suffix] = _stationary_total(P_pi, per_cycle[name], d, absorbing, start,
+                                                      trace[:, -1]) - correction
+        flow = np.einsum("dts,ds->dt", trace, per_cycle[name]) * (factor[name] ** t)
+        flow[:, 0] -= correction
+        flows[name] = flow
+    ages = compiled.start_age + compiled.cycle_length * t
+    return _outcome(compiled, objective, trace, totals, flows, np.zeros(D), ages, False)
+
+
+def _stationary_total(P_pi, reward, discount, absorbing, start, last_trace) -> np.ndarray:
+    """(D,) expected total ``sum_t d^t m_t . r`` over an infinite horizon by a linear solve."""
+    S = P_pi.shape[-1]
+    if discount < 1.0:
+        values = np.linalg.solve(np.eye(S) - discount * P_pi, reward[..., None])[..., 0]
+        return np.einsum("ds,ds->d", start, values)
+    # Undiscounted: finite only through the transient (non-absorbing) states.
+    keep = ~absorbing
+    system = np.eye(keep.sum()) - P_pi[:, keep][:, :, keep]
+    try:
+        values = np.linalg.solve(system, reward[:, keep, None])[..., 0]
+    except np.linalg.LinAlgError:
+        return np.full(P_pi.shape[0], np.inf)
+    total = np.einsum("ds,ds->d", start[:, keep], values)
+    earning = (np.abs(reward[:, absorbing]) > 0) & (last_trace[:, absorbing] > 0)
+    return np.where(earning.any(axis=1), np.inf, total)
+
+
+def _outcome(compiled, objective, trace, totals, flows, terminal, ages, finite) -> PolicyOutcome:
+    wtp = float(objective.willingness_to_pay)
+    return PolicyOutcome(
+        trace=trace,
+        life_years=totals["life_years"],
+        qalys=totals["qalys"],
+        costs=totals["costs"],
+        life_years_undiscounted=totals["life_years_undiscounted"],
+        qalys_undiscounted=totals["qalys_undiscounted"],
+        costs_undiscounted=totals["costs_undiscounted"],
+        net_monetary_benefit=wtp * totals["qalys"] - totals["costs"],
+        value=combine(objective, totals["qalys"], totals["costs"]) + terminal,
+        flows={name: flows[name] for name in _QUANTITIES},
+        objective=objective,
+        state_ids=compiled.state_ids,
+        ages=np.asarray(ages, dtype=float),
+        finite_horizon=finite,
+    )

@@ -1,0 +1,144 @@
+"""Solvers: one entry point, :func:`solve`, for every horizon and method.
+
+* ``backward_induction``: finite horizon, exact (:mod:`caredecide.solvers.finite`);
+* ``value_iteration``, ``policy_iteration``, ``modified_policy_iteration``: infinite
+  horizon with stationary arrays (:mod:`caredecide.solvers.stationary`).
+
+Every method is vectorized over the draws of the compiled model: one call solves one or
+100,000 parameter sets. Ties: an action whose value is within the tie tolerance of the
+best is a tie; the lowest action index among tied actions is chosen and the state is
+flagged ``indifferent``. Actions not allowed in a state are never chosen.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from caredecide.compiled import CompiledModel
+from caredecide.objective import Objective
+from caredecide.solvers.common import (
+    DEFAULT_TIE_ABSOLUTE,
+    DEFAULT_TIE_RELATIVE,
+    SolverError,
+    check_compiled,
+)
+from caredecide.solvers.finite import backward_induction
+from caredecide.solvers.result import PolicyResult, SweepRecord
+from caredecide.solvers.stationary import solve_stationary
+
+METHODS = (
+    "auto",
+    "backward_induction",
+    "value_iteration",
+    "policy_iteration",
+    "modified_policy_iteration",
+)
+
+__all__ = ["METHODS", "PolicyResult", "SolverError", "SweepRecord", "solve"]
+
+
+def _check_positive(name: str, value: float, *, allow_zero: bool = False) -> None:
+    ok = isinstance(value, int | float) and math.isfinite(value) and (
+        value >= 0 if allow_zero else value > 0
+    )
+    if not ok:
+        expected = ">= 0" if allow_zero else "> 0"
+        raise SolverError(f"{name} = {value!r} is not allowed; expected a finite number {expected}")
+
+
+def solve(
+    compiled: CompiledModel,
+    objective: Objective,
+    *,
+    method: str = "auto",
+    tolerance: float = 1e-10,
+    relative: bool = True,
+    max_iterations: int = 100_000,
+    evaluation_sweeps: int = 20,
+    terminal_value: np.ndarray | float | None = None,
+    tie_tolerance: float = DEFAULT_TIE_ABSOLUTE,
+    tie_relative: float = DEFAULT_TIE_RELATIVE,
+    record_history: bool = False,
+) -> PolicyResult:
+    """Find the policy that maximises the objective, for every draw of the model.
+
+    Parameters
+    ----------
+    compiled : CompiledModel
+        Arrays for ``D`` draws (see :mod:`caredecide.compiled`).
+    objective : Objective
+        QALYs, or net monetary benefit at a willingness to pay.
+    method : str
+        ``"auto"`` (backward induction for a finite horizon, policy iteration for an
+        infinite one), ``"backward_induction"``, ``"value_iteration"``,
+        ``"policy_iteration"`` or ``"modified_policy_iteration"``.
+    tolerance : float
+        ``eps`` of the stopping rule of value iteration and modified policy iteration: the
+        returned values are within ``eps / 2`` of optimal (sup norm).
+    relative : bool
+        Measure ``eps`` relative to the largest |value| of each draw (default), since
+        values in money are large.
+    max_iterations : int
+        Cap on sweeps of the iterative methods; hitting it gives ``success = False``.
+    evaluation_sweeps : int
+        ``m``, partial evaluation sweeps of modified policy iteration (>= 0).
+    terminal_value : float or array broadcastable to (D, S), optional
+        Finite horizon only: value of each state at the end of the horizon (default 0).
+    tie_tolerance, tie_relative : float
+        Action gaps ``<= tie_tolerance + tie_relative * |value|`` are reported as ties
+        (``indifferent``); iterative methods add twice their error bound.
+    record_history : bool
+        Keep per-sweep values, policy, residual and error bound in ``result.history``
+        (memory grows with sweeps x draws x states).
+
+    Returns
+    -------
+    PolicyResult
+
+    Raises
+    ------
+    SolverError
+        Unknown method, a method that does not fit the horizon, impossible options,
+        unequal discount rates or a zero rate for an infinite horizon.
+    """
+    if method not in METHODS:
+        raise SolverError(f"solver method {method!r} is unknown; expected one of {METHODS}")
+    if not isinstance(objective, Objective):
+        raise SolverError(f"objective must be an Objective; got {type(objective).__name__}")
+    _check_positive("tolerance", tolerance)
+    _check_positive("tie_tolerance", tie_tolerance, allow_zero=True)
+    _check_positive("tie_relative", tie_relative, allow_zero=True)
+    if not isinstance(max_iterations, int) or max_iterations < 1:
+        raise SolverError(f"max_iterations = {max_iterations!r} is not allowed; expected an "
+                          "integer >= 1")
+    if not isinstance(evaluation_sweeps, int) or evaluation_sweeps < 0:
+        raise SolverError(f"evaluation_sweeps = {evaluation_sweeps!r} is not allowed; expected "
+                          "an integer >= 0")
+    check_compiled(compiled)
+    finite = compiled.n_cycles is not None
+    if method == "auto":
+        method = "backward_induction" if finite else "policy_iteration"
+    if finite and method != "backward_induction":
+        raise SolverError(
+            f"method {method!r} is for an infinite horizon; the model has n_cycles = "
+            f"{compiled.n_cycles} (use 'backward_induction' or 'auto')"
+        )
+    if finite:
+        return backward_induction(
+            compiled, objective, terminal_value=terminal_value, tie_absolute=tie_tolerance,
+            tie_relative=tie_relative, record_history=record_history,
+        )
+    if method == "backward_induction":
+        raise SolverError(
+            "backward induction needs a finite number of cycles; the model has an infinite "
+            "horizon (use 'policy_iteration', 'value_iteration' or 'modified_policy_iteration')"
+        )
+    if terminal_value is not None:
+        raise SolverError("terminal_value applies to a finite horizon only; the model has none")
+    return solve_stationary(
+        compiled, objective, method=method, tolerance=tolerance, relative=relative,
+        max_iterations=max_iterations, evaluation_sweeps=evaluation_sweeps,
+        tie_absolute=tie_tolerance, tie_relative=tie_relative, record_history=record_history,
+    )

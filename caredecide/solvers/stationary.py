@@ -1,0 +1,280 @@
+"""Infinite horizon, stationary arrays: value, policy and modified policy iteration.
+
+With one per-cycle discount factor ``gamma`` (the QALY objective, or equal rates for
+outcomes and costs) the Bellman operator is (Puterman 1994, chapter 6)::
+
+    (T v)(s) = max over allowed a of r(s, a) + gamma sum_s' P(s'|s, a) v(s')
+    r(s, a)  = lambda q(s) - c(s) + lambda dq(s, a) - dc(s, a)
+
+* value iteration stops when ``||v_{n+1} - v_n|| < eps (1 - gamma) / (2 gamma)``; then the
+  greedy policy is eps-optimal and ``||v_{n+1} - v*|| <= gamma ||v_{n+1} - v_n|| / (1 - gamma)
+  < eps / 2`` (Theorem 6.3.1, from memory);
+* policy iteration evaluates each policy exactly by a batched linear solve of
+  ``(I - gamma P_pi) v = r_pi`` (``numpy.linalg.solve`` on (D, S, S)) and stops when the
+  policy no longer changes (Theorem 6.4.2);
+* modified policy iteration replaces the exact evaluation by ``m`` sweeps of
+  ``v <- r_pi + gamma P_pi v`` (section 6.5; ``m = 0`` is value iteration), starting from
+  ``v_0 = min r / (1 - gamma)`` so that ``T v_0 >= v_0``, with the same stopping rule.
+
+``eps`` is ``tolerance`` times the largest |value| of each draw when ``relative`` (values
+in money are large), else ``tolerance``. Iteration continues until every draw meets it.
+
+Within-cycle method: the recursion counts each state's reward at the start of every cycle
+("start"); "end" and "trapezoid" give boundary 0 the weight ``w_0`` = 0 or 1/2, so
+``(1 - w_0) u(s)`` is subtracted from the values at t = 0. The correction depends on the
+state only, so the policy is unchanged. Simpson's rule needs a finite horizon.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from caredecide.compiled import CompiledModel
+from caredecide.objective import Objective
+from caredecide.solvers.common import (
+    SolverError,
+    decision_reward,
+    decision_state_mask,
+    greedy_choice,
+    occupancy_reward,
+    stationary_discount,
+)
+from caredecide.solvers.result import PolicyResult, SweepRecord, build_result
+
+START_WEIGHT = {"start": 1.0, "end": 0.0, "trapezoid": 0.5}
+
+
+class StationaryProblem:
+    """Arrays of an infinite-horizon problem laid out for fast Bellman sweeps.
+
+    Attributes
+    ----------
+    gamma : float
+        Per-cycle discount factor.
+    P : (D, A * S, S) float
+        Transition rows stacked by (action, state).
+    R : (D, A, S) float
+        Reward per cycle of taking ``a`` in ``s`` (start-of-cycle convention); ``-inf``
+        where not allowed.
+    occupancy : (D, S) float
+        State-only part ``u(s)`` of the reward, for the within-cycle correction.
+    start_weight : float
+        ``w_0`` of the within-cycle method.
+    """
+
+    def __init__(self, compiled: CompiledModel, objective: Objective):
+        if compiled.n_cycles is not None:
+            raise SolverError(
+                f"this solver is for an infinite horizon; the model has n_cycles = "
+                f"{compiled.n_cycles} (use backward induction)"
+            )
+        if not compiled.is_stationary:
+            raise SolverError(
+                "an infinite horizon needs stationary arrays (time axis of length 1); "
+                "the compiled arrays vary with the cycle"
+            )
+        if compiled.within_cycle not in START_WEIGHT:
+            raise SolverError(
+                f"within-cycle method {compiled.within_cycle!r} needs a finite horizon; "
+                f"expected one of {tuple(START_WEIGHT)} for an infinite horizon"
+            )
+        self.gamma = stationary_discount(compiled, objective)
+        D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
+        self.shape = (D, A, S)
+        # Undiscounted rewards: with one factor, stationary present values are d^t times these.
+        self.occupancy = occupancy_reward(compiled, objective, 0, 1.0)
+        R = decision_reward(compiled, objective, 0).transpose(0, 2, 1) + self.occupancy[:, None]
+        R[:, ~compiled.allowed.T] = -np.inf
+        self.R = np.ascontiguousarray(R)
+        self.P = np.ascontiguousarray(compiled.transition[:, 0]).reshape(D, A * S, S)
+        self.start_weight = START_WEIGHT[compiled.within_cycle]
+        self._buffer = np.empty((D, A * S, 1))
+
+    def action_values(self, v: np.ndarray) -> np.ndarray:
+        """(D, A, S) ``r + gamma P v`` for values ``v`` (D, S). Reuses an internal buffer."""
+        np.matmul(self.P, v[..., None], out=self._buffer)
+        Q = self._buffer.reshape(self.shape)
+        Q *= self.gamma
+        Q += self.R
+        return Q
+
+    def policy_arrays(self, policy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(D, S, S) transition matrix and (D, S) reward of a policy (D, S)."""
+        D, A, S = self.shape
+        rows = policy * S + np.arange(S)  # row index of (action, state) in P
+        P_pi = np.take_along_axis(self.P, rows[..., None], axis=1)
+        r_pi = np.take_along_axis(self.R.reshape(D, A * S), rows, axis=1)
+        return P_pi, r_pi
+
+    def evaluate(self, policy: np.ndarray) -> np.ndarray:
+        """(D, S) exact value of a policy by a batched linear solve."""
+        P_pi, r_pi = self.policy_arrays(policy)
+        system = np.eye(P_pi.shape[-1]) - self.gamma * P_pi
+        return np.linalg.solve(system, r_pi[..., None])[..., 0]
+
+    def bound(self, residual: np.ndarray) -> np.ndarray:
+        """(D,) bound ``gamma * residual / (1 - gamma)`` on the distance from ``v*``."""
+        return self.gamma * residual / (1.0 - self.gamma)
+
+    def threshold(self, v: np.ndarray, tolerance: float, relative: bool) -> np.ndarray:
+        """(D,) stopping threshold on ``||v_{n+1} - v_n||``: ``eps (1 - gamma) / (2 gamma)``."""
+        eps = tolerance * np.abs(v).max(axis=-1) if relative else np.full(v.shape[0], tolerance)
+        return eps * (1.0 - self.gamma) / (2.0 * self.gamma)
+
+
+def _converged(residual: np.ndarray, threshold: np.ndarray) -> bool:
+    # residual == 0 stops too (a zero threshold when every value is 0 with a relative tolerance)
+    return bool(np.all((residual < threshold) | (residual == 0.0)))
+
+
+def _record(history, sweep, v, Q, residual, bound) -> None:
+    if history is not None:
+        history.append(
+            SweepRecord(sweep=sweep, cycle=None, value=v.copy(), policy=Q.argmax(axis=1),
+                        residual=residual.copy(), error_bound=bound.copy())
+        )
+
+
+def value_iteration(
+    problem: StationaryProblem, *, tolerance: float, relative: bool, max_iterations: int,
+    history: list | None,
+) -> tuple[np.ndarray, int, np.ndarray, bool]:
+    """Value iteration from ``v_0 = 0``; returns (v, iterations, residual (D,), converged)."""
+    D, _, S = problem.shape
+    return _improve_and_evaluate(
+        problem, np.zeros((D, S)), tolerance=tolerance, relative=relative,
+        max_iterations=max_iterations, evaluation_sweeps=0, history=history,
+    )
+
+
+def modified_policy_iteration(
+    problem: StationaryProblem, *, tolerance: float, relative: bool, max_iterations: int,
+    evaluation_sweeps: int, history: list | None,
+) -> tuple[np.ndarray, int, np.ndarray, bool]:
+    """Modified policy iteration from ``v_0 = min r / (1 - gamma)`` (so ``T v_0 >= v_0``)."""
+    D, _, S = problem.shape
+    finite_R = np.where(np.isfinite(problem.R), problem.R, np.inf)
+    v0 = np.broadcast_to(finite_R.min(axis=(1, 2))[:, None] / (1.0 - problem.gamma), (D, S))
+    return _improve_and_evaluate(
+        problem, v0.copy(), tolerance=tolerance, relative=relative,
+        max_iterations=max_iterations, evaluation_sweeps=evaluation_sweeps, history=history,
+    )
+
+
+def _improve_and_evaluate(
+    problem: StationaryProblem, v: np.ndarray, *, tolerance: float, relative: bool,
+    max_iterations: int, evaluation_sweeps: int, history: list | None,
+) -> tuple[np.ndarray, int, np.ndarray, bool]:
+    """Bellman update then ``evaluation_sweeps`` partial evaluation sweeps, until the stop rule.
+
+    ``evaluation_sweeps = 0`` is value iteration (Puterman 1994, section 6.5).
+    Returns (v, iterations, residual (D,), converged).
+    """
+    residual = np.full(v.shape[0], np.inf)
+    for n in range(1, max_iterations + 1):
+        Q = problem.action_values(v)
+        v_new = Q.max(axis=1)
+        residual = np.abs(v_new - v).max(axis=-1)
+        v = v_new
+        _record(history, n, v, Q, residual, problem.bound(residual))
+        if _converged(residual, problem.threshold(v, tolerance, relative)):
+            return v, n, residual, True
+        if evaluation_sweeps:
+            P_pi, r_pi = problem.policy_arrays(Q.argmax(axis=1))
+            for _ in range(evaluation_sweeps):  # partial evaluation: v <- r_pi + gamma P_pi v
+                v = r_pi + problem.gamma * (P_pi @ v[..., None])[..., 0]
+    return v, max_iterations, residual, False
+
+
+def policy_iteration(
+    problem: StationaryProblem, *, max_iterations: int, history: list | None,
+) -> tuple[np.ndarray, int, np.ndarray, bool]:
+    """Policy iteration with exact evaluation; returns (v, iterations, residual, converged).
+
+    The residual is the Bellman residual ``||T v - v||`` of the last policy's value.
+    """
+    policy = problem.R.argmax(axis=1)  # greedy for v = 0
+    for n in range(1, max_iterations + 1):
+        v = problem.evaluate(policy)
+        Q = problem.action_values(v)
+        best = Q.max(axis=1)
+        residual = np.abs(best - v).max(axis=-1)
+        _record(history, n, v, Q, residual, residual / (1.0 - problem.gamma))
+        # Keep the current action unless another is better beyond rounding: prevents
+        # cycling between tied actions (Puterman 1994, section 6.4.1).
+        current = np.take_along_axis(Q, policy[:, None], axis=1)[:, 0]
+        slack = 1e-12 * np.maximum(np.abs(best), 1.0)
+        improved = np.where(current >= best - slack, policy, Q.argmax(axis=1))
+        if np.array_equal(improved, policy):
+            return v, n, residual, True
+        policy = improved
+    v = problem.evaluate(policy)
+    residual = np.abs(problem.action_values(v).max(axis=1) - v).max(axis=-1)
+    return v, max_iterations, residual, False
+
+
+def solve_stationary(
+    compiled: CompiledModel,
+    objective: Objective,
+    *,
+    method: str,
+    tolerance: float,
+    relative: bool,
+    max_iterations: int,
+    evaluation_sweeps: int,
+    tie_absolute: float,
+    tie_relative: float,
+    record_history: bool = False,
+) -> PolicyResult:
+    """Solve an infinite-horizon model with one of the iterative methods.
+
+    Returns
+    -------
+    PolicyResult
+        ``policy`` (D, 1, S); ``value`` (D, 1, S) after the within-cycle correction;
+        ``error_bound`` (D,) bounds ``||value - v*||`` in the sup norm.
+    """
+    problem = StationaryProblem(compiled, objective)
+    history: list[SweepRecord] | None = [] if record_history else None
+    if method == "value_iteration":
+        v, iterations, residual, converged = value_iteration(
+            problem, tolerance=tolerance, relative=relative, max_iterations=max_iterations,
+            history=history,
+        )
+        bound = problem.bound(residual)
+    elif method == "modified_policy_iteration":
+        v, iterations, residual, converged = modified_policy_iteration(
+            problem, tolerance=tolerance, relative=relative, max_iterations=max_iterations,
+            evaluation_sweeps=evaluation_sweeps, history=history,
+        )
+        bound = problem.bound(residual)
+    elif method == "policy_iteration":
+        v, iterations, residual, converged = policy_iteration(
+            problem, max_iterations=max_iterations, history=history
+        )
+        bound = residual / (1.0 - problem.gamma)
+    else:  # pragma: no cover - solve() checks the method
+        raise SolverError(f"unknown stationary method {method!r}")
+
+    # Greedy step on the final values: Q errors are at most gamma * bound, so gaps below
+    # twice the bound are reported as ties rather than resolved by rounding.
+    Q = problem.action_values(v).transpose(0, 2, 1).copy()  # (D, S, A)
+    Q -= ((1.0 - problem.start_weight) * problem.occupancy)[..., None]
+    decision_states = decision_state_mask(compiled)
+    policy, value, gap, next_best, indifferent = greedy_choice(
+        Q, decision_states, tie_absolute, tie_relative, uncertainty=2.0 * bound
+    )
+    if converged:
+        message = f"{method.replace('_', ' ')} converged in {iterations} iterations"
+    else:
+        message = (
+            f"{method.replace('_', ' ')} stopped at max_iterations = {max_iterations} before "
+            f"reaching the tolerance (largest error bound {bound.max():.3g})"
+        )
+    return build_result(
+        compiled, objective,
+        (policy[:, None], gap[:, None], next_best[:, None], indifferent[:, None]),
+        value=value[:, None], q_values=Q[:, None], decision_states=decision_states, ages=None,
+        history=history, method=method, iterations=iterations, tolerance=tolerance,
+        relative=relative, error_bound=bound, success=converged, message=message,
+    )
