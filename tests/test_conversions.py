@@ -1,0 +1,378 @@
+"""Conversions of published estimates, checked against published values and formulas."""
+
+from __future__ import annotations
+
+import re
+
+import numpy as np
+import pytest
+import scipy.linalg
+from hypothesis import assume, given, settings
+from hypothesis import strategies as st
+from hypothesis.extra.numpy import arrays
+
+from caredecide.conversions import (
+    apply_hazard_ratio,
+    apply_odds_ratio,
+    apply_relative_risk,
+    generator_to_transition,
+    median_survival_to_rate,
+    probability_to_rate,
+    rate_to_probability,
+    rates_to_generator,
+    rescale_probability,
+    survival_to_rate,
+)
+from caredecide.errors import ModelError
+
+# Published values are given to 7 significant decimals: compare to half a unit of the last one.
+PUBLISHED_7 = 5e-8
+PUBLISHED_6 = 5e-7
+
+probabilities = st.floats(0.0, 0.999, allow_nan=False)
+rates = st.floats(0.0, 20.0, allow_nan=False)
+periods = st.floats(0.01, 50.0, allow_nan=False)
+ratios = st.floats(0.0, 10.0, allow_nan=False)
+
+
+# ------------------------------------------------------------------ rates and probabilities
+def test_rate_to_probability_published_value():
+    # Source: Fleurence & Hollenbeak 2007, PharmacoEconomics 25(1):3-6: r = 0.1/yr -> p = 0.0951626.
+    assert rate_to_probability(0.1) == pytest.approx(0.0951626, abs=PUBLISHED_7)
+    # The same over a 2-year period at half the rate.
+    assert rate_to_probability(0.05, years=2.0) == pytest.approx(0.0951626, abs=PUBLISHED_7)
+
+
+def test_probability_to_rate_published_value():
+    # Source: Fleurence & Hollenbeak 2007: annual p = 0.2 -> r = 0.2231436 per year.
+    assert probability_to_rate(0.2) == pytest.approx(0.2231436, abs=PUBLISHED_7)
+    # A 6-month probability of 0.2 is twice the rate per year.
+    assert probability_to_rate(0.2, years=0.5) == pytest.approx(2 * 0.2231436, abs=2 * PUBLISHED_7)
+
+
+def test_rescale_probability_published_values():
+    # Source: Fleurence & Hollenbeak 2007; Miller & Homan 1994, Med Decis Making 14:52-58:
+    # annual p = 0.2 -> monthly p = 0.0184235; 5-year p = 0.5 -> annual p = 0.1294494.
+    assert rescale_probability(0.2, 1.0, 1.0 / 12.0) == pytest.approx(0.0184235, abs=PUBLISHED_7)
+    assert rescale_probability(0.5, 5.0, 1.0) == pytest.approx(0.1294494, abs=PUBLISHED_7)
+
+
+def test_conversions_broadcast_over_arrays():
+    # Source: Fleurence & Hollenbeak 2007 (values above), evaluated as one array of draws.
+    draws = np.array([[0.1], [0.2231436]])
+    result = rate_to_probability(draws, years=np.array([1.0, 2.0]))
+    assert result.shape == (2, 2)
+    np.testing.assert_allclose(result[:, 0], [0.0951626, 0.2], atol=PUBLISHED_7)
+
+
+@given(rate=rates, years=periods)
+def test_rate_probability_round_trip(rate, years):
+    # Inverse functions by construction (common practice). Beyond r t = 15 the probability
+    # is within 3e-7 of 1 and -ln(1 - p) is ill-conditioned in floating point.
+    assume(rate * years <= 15.0)
+    p = rate_to_probability(rate, years)
+    assert probability_to_rate(p, years) == pytest.approx(rate, rel=1e-7, abs=1e-12)
+
+
+@given(p=probabilities, a=periods, b=periods, c=periods)
+def test_rescale_composes(p, a, b, c):
+    # A constant rate makes rescaling transitive: a -> b -> c equals a -> c (common practice).
+    # Skip intermediates that round to 1 (they lose p in floating point).
+    assume(1.0 - rescale_probability(p, a, b) > 1e-6)
+    direct = rescale_probability(p, a, c)
+    via = rescale_probability(rescale_probability(p, a, b), b, c)
+    assert via == pytest.approx(direct, rel=1e-9, abs=1e-12)
+
+
+# ------------------------------------------------------------------------ relative effects
+def test_relative_risk_acts_on_the_rate():
+    # Source: Fleurence & Hollenbeak 2007: p = 0.3, RR = 0.5 -> 0.1633400, not 0.3 x 0.5 = 0.15.
+    assert apply_relative_risk(0.3, 0.5) == pytest.approx(0.1633400, abs=PUBLISHED_7)
+    assert apply_relative_risk(0.3, 0.5) != pytest.approx(0.15, abs=1e-3)
+    # Same for a hazard ratio (constant hazards).
+    assert apply_hazard_ratio(0.3, 0.5) == pytest.approx(0.1633400, abs=PUBLISHED_7)
+
+
+def test_relative_risk_above_one_stays_a_probability():
+    # Multiplying p = 0.6 by RR = 2 would give 1.2; on the rate scale 1 - 0.4^2 = 0.84
+    # (hand arithmetic; Fleurence & Hollenbeak 2007 rule).
+    assert apply_relative_risk(0.6, 2.0) == pytest.approx(0.84, abs=1e-15)
+
+
+@given(p=probabilities, ratio=ratios, years=periods)
+def test_hazard_ratio_is_relative_risk_and_period_free(p, ratio, years):
+    # One rule for both; the period cancels (rate r = -ln(1-p)/t scaled then converted back).
+    expected = apply_relative_risk(p, ratio)
+    assert apply_hazard_ratio(p, ratio, years) == expected
+    assert apply_relative_risk(p, ratio, years) == expected
+    # Equals going through the rate explicitly.
+    if p < 0.999:
+        via_rate = rate_to_probability(ratio * probability_to_rate(p, years), years)
+        assert expected == pytest.approx(via_rate, rel=1e-9, abs=1e-12)
+
+
+def test_odds_ratio_published_formula():
+    # Source: Zhang & Yu 1998, JAMA 280(19):1690-1691 (from memory): RR = OR / (1 - p0 + p0 OR).
+    # p0 = 0.2, OR = 2: odds 0.25 x 2 = 0.5 -> p = 0.5 / 1.5 = 1/3 (hand arithmetic).
+    assert apply_odds_ratio(0.2, 2.0) == pytest.approx(1.0 / 3.0, abs=1e-15)
+    p0, odds_ratio = 0.35, 0.7
+    rr = odds_ratio / (1.0 - p0 + p0 * odds_ratio)
+    assert apply_odds_ratio(p0, odds_ratio) == pytest.approx(rr * p0, rel=1e-14)
+
+
+@given(p=st.floats(0.001, 0.999), odds_ratio=st.floats(0.01, 100.0))
+def test_odds_ratio_multiplies_the_odds(p, odds_ratio):
+    # Definition of the odds ratio (common practice).
+    q = apply_odds_ratio(p, odds_ratio)
+    assert 0.0 <= q <= 1.0
+    assert q / (1.0 - q) == pytest.approx(odds_ratio * p / (1.0 - p), rel=1e-9)
+
+
+# --------------------------------------------------------------------------------- survival
+def test_survival_and_median_to_rate_deale():
+    # Source: Beck, Kassirer & Pauker 1982, Am J Med 73(6):883-888 (DEALE): 5-year survival
+    # 0.5 -> mu = 0.138629/yr -> life expectancy 1/mu = 7.213475 y.
+    mu = survival_to_rate(0.5, 5.0)
+    assert mu == pytest.approx(0.138629, abs=PUBLISHED_6)
+    assert 1.0 / mu == pytest.approx(7.213475, abs=PUBLISHED_6)
+    # A median survival of 5 years is the same statement: ln 2 / 5.
+    assert median_survival_to_rate(5.0) == pytest.approx(mu, rel=1e-15)
+
+
+def test_deale_rates_add_through_the_generator():
+    # Source: Beck, Kassirer & Pauker 1982: population LE 17 y plus an excess rate 0.1/yr
+    # -> LE = 1 / (1/17 + 0.1) = 6.296296 y. Built as one alive state with two exits; the
+    # expected time in the alive state is the first entry of (-G_alive,alive)^-1 1.
+    rates = np.zeros((3, 3))
+    rates[0, 1] = 1.0 / 17.0
+    rates[0, 2] = 0.1
+    G = rates_to_generator(rates)
+    life_expectancy = np.linalg.solve(-G[:1, :1], np.ones(1))[0]
+    assert life_expectancy == pytest.approx(6.296296, abs=PUBLISHED_6)
+
+
+# -------------------------------------------------------------------------- competing risks
+def two_exit_generator(a: float, b: float) -> np.ndarray:
+    rates = np.zeros((3, 3))
+    rates[0, 1], rates[0, 2] = a, b
+    return rates_to_generator(rates)
+
+
+def test_two_exits_published_values():
+    # Source: Welton & Ades 2005, Med Decis Making 25(6):633-645; Jones, Epstein &
+    # Garcia-Mochon 2017, Med Decis Making 37(7):779-789: a = 0.1, b = 0.05, t = 1 ->
+    # stay 0.860708, exit-a 0.092861, exit-b 0.046431.
+    P = generator_to_transition(two_exit_generator(0.1, 0.05), 1.0)
+    np.testing.assert_allclose(P[0], [0.860708, 0.092861, 0.046431], atol=PUBLISHED_6)
+    np.testing.assert_allclose(P[1:], np.eye(3)[1:], atol=1e-15)
+
+
+@given(a=st.floats(0.0, 5.0), b=st.floats(0.0, 5.0), years=st.floats(0.05, 10.0))
+@settings(max_examples=50)
+def test_two_exits_closed_form(a, b, years):
+    # Source: Welton & Ades 2005 closed form: P_j = r_j / (a + b) (1 - exp(-(a + b) t)).
+    P = generator_to_transition(two_exit_generator(a, b), years)
+    total = a + b
+    leave = -np.expm1(-total * years)
+    expected = [1.0 - leave] + ([a / total * leave, b / total * leave] if total else [0.0, 0.0])
+    np.testing.assert_allclose(P[0], expected, atol=1e-12)
+
+
+def test_progressive_three_states_published_values():
+    # Source: Welton & Ades 2005; Jones et al. 2017: 1->2->3 with l12 = 0.1, l13 = 0.05,
+    # l23 = 0.2: row 1 = 0.860708 / 0.083954 / 0.055338; row 2 = 0.818731 / 0.181269.
+    rates = np.array([[0.0, 0.1, 0.05], [0.0, 0.0, 0.2], [0.0, 0.0, 0.0]])
+    P = generator_to_transition(rates_to_generator(rates), 1.0)
+    np.testing.assert_allclose(P[0], [0.860708, 0.083954, 0.055338], atol=PUBLISHED_6)
+    np.testing.assert_allclose(P[1], [0.0, 0.818731, 0.181269], atol=PUBLISHED_6)
+    np.testing.assert_allclose(P[2], [0.0, 0.0, 1.0], atol=1e-15)
+
+
+def test_converting_each_exit_separately_is_wrong():
+    # Source: Gidwani & Russell 2020, PharmacoEconomics (doi 10.1007/s40273-020-00937-z):
+    # with two exits, converting each rate on its own gives exits 0.0951626 and 0.0487706
+    # and a stay of 0.8560668, against 0.860708 with the generator (Welton & Ades 2005).
+    separately = rate_to_probability(np.array([0.1, 0.05]))
+    stay_separately = 1.0 - separately.sum()
+    P = generator_to_transition(two_exit_generator(0.1, 0.05), 1.0)
+    assert stay_separately == pytest.approx(0.8560668, abs=PUBLISHED_7)
+    assert P[0, 0] - stay_separately == pytest.approx(0.860708 - 0.8560668, abs=PUBLISHED_6)
+    assert abs(P[0, 1] - separately[0]) > 2e-3
+    assert abs(P[0, 2] - separately[1]) > 2e-3
+
+
+def test_one_exit_matches_rate_to_probability():
+    # A single exit has no competition: expm reduces to p = 1 - exp(-r t) (Fleurence &
+    # Hollenbeak 2007).
+    G = rates_to_generator(np.array([[0.0, 0.3], [0.0, 0.0]]))
+    P = generator_to_transition(G, 2.5)
+    assert P[0, 1] == pytest.approx(rate_to_probability(0.3, 2.5), abs=1e-15)
+
+
+def random_generators(draw_rates: np.ndarray) -> np.ndarray:
+    s = draw_rates.shape[-1]
+    return rates_to_generator(draw_rates * ~np.eye(s, dtype=bool))
+
+
+@given(
+    arrays(np.float64, (3, 4, 4), elements=st.floats(0.0, 3.0)),
+    st.floats(0.05, 3.0),
+    st.floats(0.05, 3.0),
+)
+@settings(max_examples=40)
+def test_generator_transition_is_stochastic_and_semigroup(raw, s, t):
+    G = random_generators(raw)
+    P_s = generator_to_transition(G, s)
+    P_t = generator_to_transition(G, t)
+    P_st = generator_to_transition(G, s + t)
+    # Rows of a transition matrix are probability distributions (common practice).
+    assert (P_s >= 0).all() and (P_s <= 1).all()
+    np.testing.assert_allclose(P_s.sum(axis=-1), 1.0, atol=1e-12)
+    # Chapman-Kolmogorov: P(s + t) = P(s) P(t) for a time-homogeneous chain (common practice).
+    np.testing.assert_allclose(P_s @ P_t, P_st, atol=1e-10)
+
+
+def test_batched_generators_match_one_at_a_time():
+    # scipy.linalg.expm per matrix is the reference for the stacked call.
+    rng = np.random.default_rng(20261202)
+    G = random_generators(rng.uniform(0.0, 1.0, size=(2, 3, 5, 5)))
+    P = generator_to_transition(G, np.array([[0.5], [2.0]]))
+    for index in np.ndindex(2, 3):
+        years = 0.5 if index[0] == 0 else 2.0
+        np.testing.assert_allclose(P[index], scipy.linalg.expm(G[index] * years), atol=1e-14)
+
+
+def test_rates_to_generator_rows_sum_to_zero():
+    rates = np.array([[[0.0, 0.2, 0.1], [0.4, 0.0, 0.0], [0.0, 0.0, 0.0]]])
+    G = rates_to_generator(rates)
+    assert G.shape == (1, 3, 3)
+    np.testing.assert_allclose(np.diagonal(G, axis1=-2, axis2=-1), [[-0.3, -0.4, 0.0]])
+    np.testing.assert_allclose(G.sum(axis=-1), 0.0, atol=1e-15)
+    assert rates[0, 0, 0] == 0.0  # the input is not modified
+
+
+# ---------------------------------------------------------------------------------- errors
+def raises(*words: str):
+    return pytest.raises(ModelError, match=".*".join(re.escape(w) for w in words))
+
+
+def test_error_negative_rate():
+    with raises("rate_to_probability(rate)", "[0, inf)", "got -0.1 at index (1,)"):
+        rate_to_probability([0.2, -0.1])
+
+
+def test_error_rate_not_finite():
+    with raises("rate_to_probability(rate)", "got nan"):
+        rate_to_probability(float("nan"))
+
+
+def test_error_rate_not_a_number():
+    with raises("rate_to_probability(rate)", "expected a number", "'fast'"):
+        rate_to_probability("fast")
+
+
+def test_error_years_not_positive():
+    with raises("rate_to_probability(years)", "(0, inf)", "got 0.0"):
+        rate_to_probability(0.1, years=0.0)
+
+
+def test_error_probability_of_one_has_no_rate():
+    with raises("probability_to_rate(p)", "[0, 1)", "got 1.0"):
+        probability_to_rate(1.0)
+
+
+def test_error_probability_out_of_range():
+    with raises("probability_to_rate(p)", "got 1.5"):
+        probability_to_rate(1.5)
+    with raises("rescale_probability(p)", "[0, 1]", "got -0.2"):
+        rescale_probability(-0.2, 1.0, 2.0)
+
+
+def test_error_rescale_periods():
+    with raises("rescale_probability(from_years)", "got 0.0"):
+        rescale_probability(0.2, 0.0, 1.0)
+    with raises("rescale_probability(to_years)", "got -1.0"):
+        rescale_probability(0.2, 1.0, -1.0)
+
+
+def test_error_relative_risk_negative():
+    with raises("apply_relative_risk(rr)", "ratio", "got -0.5"):
+        apply_relative_risk(0.3, -0.5)
+
+
+def test_error_relative_risk_probability_and_years():
+    with raises("apply_relative_risk(p)", "got 2.0"):
+        apply_relative_risk(2.0, 0.5)
+    with raises("apply_relative_risk(years)", "got -1.0"):
+        apply_relative_risk(0.3, 0.5, years=-1.0)
+
+
+def test_error_hazard_ratio_named():
+    with raises("apply_hazard_ratio(hazard_ratio)", "got -2.0"):
+        apply_hazard_ratio(0.3, -2.0)
+
+
+def test_error_odds_ratio_not_positive():
+    with raises("apply_odds_ratio(odds_ratio)", "(0, inf)", "got 0.0"):
+        apply_odds_ratio(0.3, 0.0)
+    with raises("apply_odds_ratio(p)", "got 1.2"):
+        apply_odds_ratio(1.2, 2.0)
+
+
+def test_error_survival_zero():
+    with raises("survival_to_rate(survival)", "(0, 1]", "got 0.0"):
+        survival_to_rate(0.0, 5.0)
+    with raises("survival_to_rate(survival)", "got 1.1"):
+        survival_to_rate(1.1, 5.0)
+    with raises("survival_to_rate(years)", "got 0.0"):
+        survival_to_rate(0.5, 0.0)
+
+
+def test_error_median_survival_not_positive():
+    with raises("median_survival_to_rate(median_years)", "got -3.0"):
+        median_survival_to_rate(-3.0)
+
+
+def test_error_generator_not_square():
+    with raises("generator_to_transition(G)", "(..., S, S)", "(2, 3)"):
+        generator_to_transition(np.zeros((2, 3)))
+    with raises("rates_to_generator(rates)", "(..., S, S)", "(3,)"):
+        rates_to_generator(np.zeros(3))
+
+
+def test_error_generator_negative_off_diagonal_names_row():
+    G = np.zeros((2, 3, 3))
+    G[1, 2, 0], G[1, 2, 2] = -0.1, 0.1
+    with raises("generator_to_transition(G)", "row 2 of matrix (1,)", "state 0", "-0.1"):
+        generator_to_transition(G)
+
+
+def test_error_generator_row_sum_names_row():
+    G = np.array([[-0.5, 0.5, 0.0], [0.0, -0.25, 0.5], [0.0, 0.0, 0.0]])
+    with raises("generator_to_transition(G)", "row 1 sums to 0.25", "sum to 0"):
+        generator_to_transition(G)
+
+
+def test_error_generator_not_finite():
+    G = np.array([[-np.inf, np.inf], [0.0, 0.0]])
+    with raises("generator_to_transition(G)", "finite", "got -inf at index (0, 0)"):
+        generator_to_transition(G)
+
+
+def test_error_generator_years():
+    with raises("generator_to_transition(years)", "got 0.0"):
+        generator_to_transition(np.zeros((2, 2)), 0.0)
+
+
+def test_error_rates_negative_names_row():
+    rates = np.zeros((3, 3))
+    rates[1, 0] = -0.2
+    with raises("rates_to_generator(rates)", "row 1", "state 0", "-0.2"):
+        rates_to_generator(rates)
+
+
+def test_error_rates_diagonal_not_zero():
+    rates = np.zeros((2, 3, 3))
+    rates[0, 2, 2] = 0.4
+    with raises("rates_to_generator(rates)", "row 2 of matrix (0,)", "diagonal", "0.4"):
+        rates_to_generator(rates)
