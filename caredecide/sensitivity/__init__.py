@@ -1,0 +1,40 @@
+"""Deterministic sensitivity of the decision to each estimate.
+
+* :func:`one_way` - each parameter at its low and high value, ranked for a tornado
+  diagram, with the states and ages whose optimal action changes;
+* :func:`parameter_thresholds` / :func:`setting_thresholds` - the value of an estimate,
+  the willingness to pay or a discount rate at which the optimal action switches;
+* :func:`two_way` - the decision over a grid of two estimates.
+
+Every analysis is a batch of parameter sets solved in one call of the common
+compile -> solve path (see docs/methods-sensitivity.md).
+"""
+
+from caredecide.sensitivity.oneway import OneWayResult, one_way
+from caredecide.sensitivity.thresholds import (
+    NO_SWITCH,
+    parameter_thresholds,
+    setting_thresholds,
+)
+from caredecide.sensitivity.twoway import two_way
+from caredecide.sensitivity.variation import (
+    compiled_over_discount_rate,
+    compiled_over_willingness_to_pay,
+    consistency_rule,
+    parameter_ranges,
+    parameter_sets,
+)
+
+__all__ = [
+    "NO_SWITCH",
+    "OneWayResult",
+    "compiled_over_discount_rate",
+    "compiled_over_willingness_to_pay",
+    "consistency_rule",
+    "one_way",
+    "parameter_ranges",
+    "parameter_sets",
+    "parameter_thresholds",
+    "setting_thresholds",
+    "two_way",
+]

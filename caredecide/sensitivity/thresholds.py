@@ -1,0 +1,370 @@
+"""Decision thresholds: the value of an estimate (or setting) at which the action switches.
+
+Method (for each varied quantity ``x`` with plausible range [low, high]):
+
+1. **Bracket.** Solve the model on a grid of ``G`` values of ``x`` for every quantity at
+   once (ONE batch of ``P * G`` parameter sets). Wherever the optimal action in a
+   decision cell (cycle ``t``, state ``s``) differs between neighbouring grid values
+   ``x_i < x_{i+1}`` (``a`` at ``x_i``, ``b`` at ``x_{i+1}``), the action gap
+   ``f(x) = Q_t(s, a; x) - Q_t(s, b; x)`` has ``f(x_i) >= 0 >= f(x_{i+1})``: a bracket.
+   ``f`` is continuous in ``x`` when the model's arrays are (``V`` is a maximum of
+   continuous functions).
+2. **Root.** Chandrupatla's method (a bracketing method in the family of Brent's,
+   Chandrupatla 1997, Adv Eng Softw 28(3):145-149) as implemented, vectorised over
+   brackets, by :func:`scipy.optimize.elementwise.find_root`. Every iteration evaluates
+   ``f`` at all unfinished brackets in ONE batch compiled and solved by the common core.
+3. **Report** per bracket the threshold, the action below and above it, the gap at the
+   threshold, and whether some third action is better there (then the switch passes
+   through that action). A quantity with no bracket reports "no switch within the
+   plausible range".
+
+The grid can miss two switches that fall between the same neighbouring grid values (a
+switch and a switch back); a finer ``grid`` finds them.
+
+Settings that are not parameters (willingness to pay, discount rates) are varied by
+building draws that differ in that setting only (:mod:`.variation`) and solving them
+through the same solver.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import replace
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from scipy.optimize.elementwise import find_root
+
+from caredecide.errors import ModelError, Problem
+from caredecide.objective import Objective
+from caredecide.sensitivity.variation import (
+    compiled_over_discount_rate,
+    compiled_over_willingness_to_pay,
+    default_objective,
+    parameter_ranges,
+    parameter_sets,
+    policy_ages,
+    solve_parameter_sets,
+    source_file,
+)
+
+NO_SWITCH = "no switch within the plausible range"
+NO_RANGE = "no range (low = high)"
+SWITCH = "switch"
+
+DEFAULT_GRID = 11
+SolveAt = Callable[[np.ndarray, np.ndarray], tuple[Any, Any]]
+"""``solve_at(x (n,), which (n,) int) -> (compiled, PolicyResult)``: quantity ``which[k]``
+set to ``x[k]`` in draw ``k``, everything else at base."""
+
+
+def _locate_thresholds(
+    solve_at: SolveAt,
+    labels: Sequence[str],
+    lows: np.ndarray,
+    highs: np.ndarray,
+    *,
+    grid: int = DEFAULT_GRID,
+    xtol: float = 1e-12,
+    maxiter: int = 200,
+) -> pd.DataFrame:
+    """The engine shared by parameters and settings (see the module docstring)."""
+    if grid < 2:
+        raise ValueError(f"grid must be >= 2 points, got {grid}")
+    labels = list(labels)
+    lows = np.asarray(lows, dtype=float)
+    highs = np.asarray(highs, dtype=float)
+    P = len(labels)
+    varies = highs > lows
+    rows: list[pd.DataFrame] = []
+    if not varies.any():
+        return _finish(rows, labels, lows, highs, varies)
+    fraction = np.linspace(0.0, 1.0, grid)
+    values = lows[:, None] + (highs - lows)[:, None] * fraction[None, :]  # (P, G)
+    values[:, -1] = highs  # exact ends
+    which = np.repeat(np.arange(P), grid)
+    compiled, result = solve_at(values.reshape(-1), which)
+    policy = np.asarray(result.policy).reshape(P, grid, *np.shape(result.policy)[1:])
+    q = np.asarray(result.q_values).reshape(P, grid, *np.shape(result.q_values)[1:])
+    cells = (
+        np.asarray(result.decision_states, dtype=bool)[None, None, None, :]
+        & varies[:, None, None, None]
+    )
+    change = (policy[:, 1:] != policy[:, :-1]) & cells  # (P, G-1, Tpi, S)
+    p, i, t, s = np.nonzero(change)
+    if p.size:
+        a_below = policy[p, i, t, s]
+        a_above = policy[p, i + 1, t, s]
+        x_lo, x_hi = values[p, i], values[p, i + 1]
+        f_lo = q[p, i, t, s, a_below] - q[p, i, t, s, a_above]
+        f_hi = q[p, i + 1, t, s, a_below] - q[p, i + 1, t, s, a_above]
+        x, f_x, converged, nit = _roots(
+            solve_at, p, t, s, a_below, a_above, x_lo, x_hi, f_lo, f_hi, xtol, maxiter
+        )
+        # Is some third action better at the threshold? One more batch, at the roots.
+        _, at_root = solve_at(x, p)
+        q_root = np.asarray(at_root.q_values)[np.arange(p.size), t, s]  # (n, A)
+        best = q_root.max(axis=1)
+        third = best - np.maximum(
+            q_root[np.arange(p.size), a_below], q_root[np.arange(p.size), a_above]
+        )
+        scale = np.maximum(1.0, np.abs(best))
+        action_ids = np.asarray(compiled.action_ids, dtype=object)
+        ages = policy_ages(compiled, policy.shape[2])
+        rows.append(
+            pd.DataFrame(
+                {
+                    "quantity": np.asarray(labels, dtype=object)[p],
+                    "status": SWITCH,
+                    "state": np.asarray(compiled.state_ids, dtype=object)[s],
+                    "cycle": t,
+                    "age": ages[t],
+                    "action_below": action_ids[a_below],
+                    "action_above": action_ids[a_above],
+                    "threshold": x,
+                    "gap_at_threshold": f_x,
+                    "bracket_low": x_lo,
+                    "bracket_high": x_hi,
+                    "converged": converged,
+                    "iterations": nit,
+                    "third_action_better": third > 1e-9 * scale,
+                }
+            )
+        )
+    return _finish(rows, labels, lows, highs, varies)
+
+
+def _roots(
+    solve_at: SolveAt,
+    p: np.ndarray,
+    t: np.ndarray,
+    s: np.ndarray,
+    a_below: np.ndarray,
+    a_above: np.ndarray,
+    x_lo: np.ndarray,
+    x_hi: np.ndarray,
+    f_lo: np.ndarray,
+    f_hi: np.ndarray,
+    xtol: float,
+    maxiter: int,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Vectorised bracketing root search of the action gap over all brackets at once."""
+    x = np.where(f_lo == 0.0, x_lo, x_hi)  # an exact tie at a grid value is the threshold
+    f_x = np.where(f_lo == 0.0, f_lo, f_hi)
+    converged = (f_lo == 0.0) | (f_hi == 0.0)
+    nit = np.zeros(p.size, dtype=int)
+    open_ = np.flatnonzero(~converged)
+    if open_.size:
+
+        def gap(xv: np.ndarray, k: np.ndarray) -> np.ndarray:
+            k = np.asarray(k).astype(int).reshape(-1)
+            xv = np.asarray(xv, dtype=float).reshape(-1)
+            _, res = solve_at(xv, p[k])
+            qv = np.asarray(res.q_values)
+            n = np.arange(k.size)
+            return qv[n, t[k], s[k], a_below[k]] - qv[n, t[k], s[k], a_above[k]]
+
+        found = find_root(
+            gap,
+            (x_lo[open_], x_hi[open_]),
+            args=(open_.astype(float),),
+            tolerances={"xatol": xtol, "xrtol": 4 * np.finfo(float).eps, "fatol": 0.0},
+            maxiter=maxiter,
+        )
+        x[open_] = found.x
+        f_x[open_] = found.f_x
+        converged[open_] = found.success
+        nit[open_] = found.nit
+    return x, f_x, converged, nit
+
+
+def _finish(
+    rows: list[pd.DataFrame],
+    labels: list[str],
+    lows: np.ndarray,
+    highs: np.ndarray,
+    varies: np.ndarray,
+) -> pd.DataFrame:
+    found = pd.concat(rows, ignore_index=True) if rows else pd.DataFrame(columns=_COLUMNS)
+    with_switch = set(found["quantity"])
+    missing = pd.DataFrame(
+        {
+            "quantity": [q for q in labels if q not in with_switch],
+            "status": [
+                NO_SWITCH if v else NO_RANGE
+                for q, v in zip(labels, varies, strict=True)
+                if q not in with_switch
+            ],
+        }
+    )
+    frame = pd.concat([df for df in (found, missing) if len(df)], ignore_index=True)
+    frame = frame.reindex(columns=_COLUMNS)
+    # Integer columns stay integers (missing where there is no switch).
+    frame = frame.astype({"cycle": "Int64", "iterations": "Int64"})
+    ends = dict(zip(labels, zip(lows, highs, strict=True), strict=True))
+    frame["low"] = frame["quantity"].map(lambda q: ends[q][0])
+    frame["high"] = frame["quantity"].map(lambda q: ends[q][1])
+    order = {q: i for i, q in enumerate(labels)}
+    frame["_order"] = frame["quantity"].map(order)
+    frame = frame.sort_values(["_order", "state", "cycle"], kind="stable", na_position="first")
+    return frame.drop(columns="_order").reset_index(drop=True)
+
+
+_COLUMNS = [
+    "quantity", "status", "state", "cycle", "age", "action_below", "action_above", "threshold",
+    "gap_at_threshold", "bracket_low", "bracket_high", "converged", "iterations",
+    "third_action_better",
+]  # fmt: skip
+
+
+def parameter_thresholds(
+    model: Any,
+    parameters: Sequence[str] | None = None,
+    *,
+    objective: Objective | None = None,
+    grid: int = DEFAULT_GRID,
+    xtol: float = 1e-12,
+) -> pd.DataFrame:
+    """Parameter values at which the optimal action switches, per decision cell.
+
+    Parameters
+    ----------
+    model : caredecide.model.Model
+    parameters : sequence of str, optional
+        Default: every parameter.
+    objective : Objective, optional
+        Default: the model file's objective.
+    grid : int
+        Grid values per parameter used to bracket switches (>= 2).
+    xtol : float
+        Absolute tolerance on the threshold (parameter units).
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per switch: ``parameter, status ("switch"), state, cycle, age,
+        action_below, action_above, threshold, gap_at_threshold, bracket_low,
+        bracket_high, converged, iterations, third_action_better, low, high, base``;
+        a parameter without any switch has one row with status
+        ``"no switch within the plausible range"`` (or ``"no range (low = high)"``).
+    """
+    objective = default_objective(model) if objective is None else objective
+    ranges = parameter_ranges(model, parameters)
+    names = list(ranges["parameter"])
+
+    def solve_at(x: np.ndarray, which: np.ndarray) -> tuple[Any, Any]:
+        frame = _sets_moving_one_each(model, names, x, which)
+        return solve_parameter_sets(model, frame, objective)
+
+    table = _locate_thresholds(
+        solve_at, names, ranges["low"].to_numpy(), ranges["high"].to_numpy(), grid=grid, xtol=xtol
+    )
+    table["base"] = table["quantity"].map(dict(zip(names, ranges["base"], strict=True)))
+    return table.rename(columns={"quantity": "parameter"})
+
+
+def _sets_moving_one_each(
+    model: Any, names: Sequence[str], x: np.ndarray, which: np.ndarray
+) -> pd.DataFrame:
+    """(n rows) row ``k`` moves parameter ``names[which[k]]`` to ``x[k]``, in input order."""
+    x = np.asarray(x, dtype=float)
+    which = np.asarray(which, dtype=int)
+    pieces = []
+    for j in np.unique(which):  # one vectorised batch per distinct parameter
+        rows = np.flatnonzero(which == j)
+        pieces.append(parameter_sets(model, {names[j]: x[rows]}).set_index(pd.Index(rows)))
+    return pd.concat(pieces).sort_index().reset_index(drop=True)
+
+
+def setting_thresholds(
+    model: Any,
+    setting: str,
+    low: float,
+    high: float,
+    *,
+    objective: Objective | None = None,
+    grid: int = 21,
+    xtol: float = 1e-10,
+) -> pd.DataFrame:
+    """Values of a setting at which the optimal action switches.
+
+    Parameters
+    ----------
+    model : caredecide.model.Model
+    setting : {"willingness_to_pay", "discount_outcomes", "discount_costs", "discount_rate"}
+        ``discount_rate`` moves the outcome and cost rates together. Willingness to pay
+        needs the net-benefit objective; discount rates need a finite horizon.
+    low, high : float
+        Range searched (money per QALY, or annual rate in [0, 1)).
+    objective : Objective, optional
+        Default: the model file's objective.
+    grid, xtol
+        As in :func:`parameter_thresholds`.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Same columns as :func:`parameter_thresholds`, with ``setting`` instead of
+        ``parameter`` and ``base`` the model's setting.
+    """
+    from caredecide.compile import compile_model
+    from caredecide.solvers import solve
+
+    objective = default_objective(model) if objective is None else objective
+    compiled = compile_model(model)
+    settings = model.settings
+    if setting == "willingness_to_pay":
+        if objective.kind != "net_benefit":
+            raise ModelError(
+                Problem(
+                    where="settings.objective",
+                    message=(
+                        f"a willingness-to-pay threshold needs objective = 'net_benefit', "
+                        f"got {objective.kind!r}"
+                    ),
+                ),
+                file=source_file(model),
+            )
+        base = objective.willingness_to_pay
+        unit_objective = replace(objective, willingness_to_pay=1.0)
+
+        def solve_at(x: np.ndarray, which: np.ndarray) -> tuple[Any, Any]:
+            batch = compiled_over_willingness_to_pay(compiled, x)
+            return batch, solve(batch, unit_objective)
+
+    elif setting in ("discount_outcomes", "discount_costs", "discount_rate"):
+        base = (
+            settings.discount_costs if setting == "discount_costs" else settings.discount_outcomes
+        )
+
+        def solve_at(x: np.ndarray, which: np.ndarray) -> tuple[Any, Any]:
+            batch = compiled_over_discount_rate(
+                compiled,
+                discount_outcomes=None if setting == "discount_costs" else x,
+                discount_costs=None if setting == "discount_outcomes" else x,
+            )
+            return batch, solve(batch, objective)
+
+    else:
+        raise ModelError(
+            Problem(
+                where="sensitivity.setting",
+                message=f"setting {setting!r} is unknown; expected one of "
+                "('willingness_to_pay', 'discount_outcomes', 'discount_costs', 'discount_rate')",
+            ),
+            file=source_file(model),
+        )
+    if not (np.isfinite(low) and np.isfinite(high) and low <= high):
+        raise ModelError(
+            Problem(
+                where=f"sensitivity.{setting}",
+                message=f"range [{low!r}, {high!r}] is not allowed; expected finite low <= high",
+            ),
+            file=source_file(model),
+        )
+    table = _locate_thresholds(
+        solve_at, [setting], np.array([low]), np.array([high]), grid=grid, xtol=xtol
+    )
+    table["base"] = float(base)
+    return table.rename(columns={"quantity": "setting"})
