@@ -1,0 +1,601 @@
+"""Compile a model plus a batch of parameter sets into a :class:`CompiledModel`.
+
+Every expression of the model is parsed once and evaluated once over all ``D`` draws
+and all cycles (numpy broadcasting: parameters are (D, 1), time variables (1, T)); the
+results are scattered into the arrays of :mod:`caredecide.compiled` with index arrays.
+A time axis has length 1 unless an expression of that array uses ``age``, ``cycle``,
+``years`` or ``background``.
+
+Rows given by ``[rates]`` form one generator per action (rates per year, diagonal =
+minus the total exit rate) and are converted per cycle with the matrix exponential,
+so competing exits are handled exactly (Welton & Ades 2005; Gidwani & Russell 2020).
+
+Numerical checks (probabilities in [0, 1], rows summing to 1, no NaN, costs >= 0) are
+made here, on every draw and cycle, so a bad draw is reported by its index.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from caredecide.compiled import CompiledModel
+from caredecide.errors import ModelError, ModelTooLargeError, Problem
+from caredecide.model import Model
+
+TIME_NAMES = frozenset({"age", "cycle", "years", "background"})
+"""Expression variables that change from cycle to cycle."""
+ROW_TOLERANCE = 1e-9
+"""A transition row must sum to 1 within this (absolute) tolerance."""
+DEFAULT_MEMORY_FRACTION = 0.5
+"""Without an explicit limit, refuse arrays larger than this share of available memory."""
+FALLBACK_MEMORY_LIMIT = 4 * 1024**3
+MAX_PROBLEMS_PER_RULE = 20
+
+
+@dataclass
+class Entry:
+    """One expression of the model and where it sits."""
+
+    where: str
+    expression: object  # caredecide.expressions.Expression
+    action: int = -1
+    state: int = -1
+    target: int = -1
+
+    @property
+    def uses_time(self) -> bool:
+        return bool(self.expression.names & TIME_NAMES)
+
+
+@dataclass
+class ParsedModel:
+    """Every expression of a model, parsed, grouped by the array it fills."""
+
+    state_qaly: list[Entry] = field(default_factory=list)
+    state_cost: list[Entry] = field(default_factory=list)
+    oneoff_cost: list[Entry] = field(default_factory=list)
+    oneoff_qaly_loss: list[Entry] = field(default_factory=list)
+    cost_per_cycle: list[Entry] = field(default_factory=list)
+    transitions: list[Entry] = field(default_factory=list)
+    """Probability entries (remainder entries excluded)."""
+    rests: list[Entry] = field(default_factory=list)
+    """Remainder entries ("rest"): one per row at most."""
+    rates: list[Entry] = field(default_factory=list)
+    problems: list[Problem] = field(default_factory=list)
+
+    def all_entries(self) -> list[Entry]:
+        return [
+            *self.state_qaly,
+            *self.state_cost,
+            *self.oneoff_cost,
+            *self.oneoff_qaly_loss,
+            *self.cost_per_cycle,
+            *self.transitions,
+            *self.rests,
+            *self.rates,
+        ]
+
+    @property
+    def transitions_use_time(self) -> bool:
+        return any(e.uses_time for e in (*self.transitions, *self.rates))
+
+    @property
+    def states_use_time(self) -> bool:
+        return any(e.uses_time for e in (*self.state_qaly, *self.state_cost))
+
+    @property
+    def decisions_use_time(self) -> bool:
+        return any(
+            e.uses_time for e in (*self.oneoff_cost, *self.oneoff_qaly_loss, *self.cost_per_cycle)
+        )
+
+
+def parse_model_expressions(model: Model) -> ParsedModel:
+    """Parse every expression of ``model``; unknown names become problems.
+
+    Unknown state or action ids in transition tables are skipped here (validation in
+    :mod:`caredecide.modelfile` reports them).
+    """
+    from caredecide.errors import ExpressionError
+    from caredecide.expressions import REST_KEYWORD, parse_expression
+
+    parsed = ParsedModel()
+    parameter_names = model.parameter_names()
+    state_index = {s: i for i, s in enumerate(model.state_ids)}
+    action_index = {a: i for i, a in enumerate(model.action_ids)}
+    absorbing = {s.id for s in model.states if s.absorbing}
+    defined = {
+        (action.id, s)
+        for action in model.actions
+        for s in model.allowed_states(action)
+        if s in state_index and s not in absorbing
+    }
+
+    def parse(value: object, where: str, allow_rest: bool = False, **index: int) -> Entry | None:
+        try:
+            expression = parse_expression(value, where=where, allow_rest=allow_rest)
+            expression.check_names(parameter_names, where=where)
+        except ExpressionError as error:
+            message = str(error)
+            if message.startswith(f"{where}: "):  # Problem shows `where` itself
+                message = message[len(where) + 2 :]
+            parsed.problems.append(Problem(where, message))
+            return None
+        return Entry(where, expression, **index)
+
+    for i, state in enumerate(model.states):
+        for attr, bucket in (("qaly_weight", parsed.state_qaly), ("cost", parsed.state_cost)):
+            entry = parse(getattr(state, attr), f"states.{state.id}.{attr}", state=i)
+            if entry is not None:
+                bucket.append(entry)
+    for a, action in enumerate(model.actions):
+        for attr in ("oneoff_cost", "oneoff_qaly_loss", "cost_per_cycle"):
+            entry = parse(getattr(action, attr), f"actions.{action.id}.{attr}", action=a)
+            if entry is not None:
+                getattr(parsed, attr).append(entry)
+    for table_name, table in (("transitions", model.transitions), ("rates", model.rates)):
+        for action_id, rows in table.items():
+            for from_id, row in rows.items():
+                for to_id, value in row.items():
+                    if (action_id, from_id) not in defined or to_id not in state_index:
+                        continue  # reported by validation; never filled into the arrays
+                    if table_name == "rates" and to_id == from_id:
+                        continue  # a rate has no self-loop (reported by validation)
+                    where = f"{table_name}.{action_id}.{from_id}.{to_id}"
+                    entry = parse(
+                        value,
+                        where,
+                        allow_rest=True,
+                        action=action_index[action_id],
+                        state=state_index[from_id],
+                        target=state_index[to_id],
+                    )
+                    if entry is None:
+                        continue
+                    if entry.expression.is_rest:
+                        if table_name == "rates":
+                            parsed.problems.append(
+                                Problem(
+                                    where,
+                                    f"{REST_KEYWORD!r} is only allowed in [transitions] rows; "
+                                    "a rate row's stay probability follows from its exit rates",
+                                )
+                            )
+                        else:
+                            parsed.rests.append(entry)
+                    elif table_name == "rates":
+                        parsed.rates.append(entry)
+                    else:
+                        parsed.transitions.append(entry)
+    return parsed
+
+
+# -- parameter batches ------------------------------------------------------------------
+def parameter_batch(
+    model: Model, parameter_sets: object = None
+) -> tuple[dict[str, np.ndarray], int]:
+    """Parameter values for a batch: ``{name: (D, 1) array}`` and ``D``.
+
+    Parameters
+    ----------
+    parameter_sets : None, mapping of name -> (D,) array, or pandas.DataFrame
+        None gives the base case (D = 1). Names left out take their base value.
+    """
+    base = model.base_parameter_values()
+    where_file = model.file_label
+    if parameter_sets is None:
+        columns: dict[str, np.ndarray] = {}
+    elif hasattr(parameter_sets, "columns") and hasattr(parameter_sets, "to_numpy"):
+        columns = {
+            str(c): np.asarray(parameter_sets[c].to_numpy(), dtype=float)
+            for c in parameter_sets.columns
+        }
+    elif isinstance(parameter_sets, Mapping):
+        columns = {
+            str(k): np.atleast_1d(np.asarray(v, dtype=float)) for k, v in parameter_sets.items()
+        }
+    else:
+        raise TypeError(
+            f"parameter_sets must be None, a mapping or a DataFrame, got {type(parameter_sets)}"
+        )
+    problems = [
+        Problem(
+            f"parameters.{name}",
+            f"parameter set names unknown parameter {name!r}; expected one of {sorted(base)}",
+        )
+        for name in columns
+        if name not in base
+    ]
+    lengths = {name: values.shape for name, values in columns.items()}
+    sizes = {shape[0] for shape in lengths.values() if len(shape) == 1}
+    if any(len(shape) != 1 for shape in lengths.values()) or len(sizes) > 1:
+        problems.append(
+            Problem("parameters", f"parameter sets must be 1-D arrays of one length; got {lengths}")
+        )
+    for name, values in columns.items():
+        bad = ~np.isfinite(values)
+        if bad.any():
+            d = int(np.flatnonzero(bad)[0])
+            problems.append(
+                Problem(
+                    f"parameters.{name}", f"draw {d} is {values[d]!r}; expected a finite number"
+                )
+            )
+    if problems:
+        raise ModelError(problems, file=where_file)
+    n_draws = sizes.pop() if sizes else 1
+    values = {name: np.full((n_draws, 1), value) for name, value in base.items()}
+    values.update({name: v.reshape(n_draws, 1) for name, v in columns.items()})
+    return values, n_draws
+
+
+# -- sizes ---------------------------------------------------------------------------
+def _time_lengths(model: Model, parsed: ParsedModel) -> tuple[int, int, int]:
+    """(Tp, Tq, Td): lengths of the transition, occupancy and decision time axes."""
+    n = model.n_cycles()
+    if n is None:
+        return 1, 1, 1
+    return (
+        n if parsed.transitions_use_time else 1,
+        n + 1 if parsed.states_use_time else 1,
+        n if parsed.decisions_use_time else 1,
+    )
+
+
+def _array_bytes(n_draws: int, lengths: tuple[int, int, int], n_states: int, n_actions: int) -> int:
+    tp, tq, td = lengths
+    floats = n_draws * (
+        tp * n_actions * n_states * n_states + 2 * tq * n_states + 2 * td * n_states * n_actions
+    )
+    return 8 * floats
+
+
+def estimate_compiled_bytes(model: Model, n_draws: int) -> int:
+    """Bytes the compiled arrays of ``n_draws`` parameter sets will take (float64)."""
+    parsed = parse_model_expressions(model)
+    return _array_bytes(
+        n_draws, _time_lengths(model, parsed), len(model.states), len(model.actions)
+    )
+
+
+def default_memory_limit() -> int:
+    """Half of the currently available physical memory (4 GiB when unknown)."""
+    try:
+        available = os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+    except (ValueError, OSError, AttributeError):
+        return FALLBACK_MEMORY_LIMIT
+    return int(available * DEFAULT_MEMORY_FRACTION)
+
+
+# -- compile ---------------------------------------------------------------------------
+def compile_model(
+    model: Model,
+    parameter_sets: object = None,
+    *,
+    memory_limit_bytes: int | None = None,
+) -> CompiledModel:
+    """Arrays of ``model`` for a batch of parameter sets (see :mod:`caredecide.compiled`).
+
+    Parameters
+    ----------
+    model : Model
+        A structurally valid model (:func:`caredecide.modelfile.validate_model`).
+    parameter_sets : None, mapping name -> (D,) array, or pandas.DataFrame
+        None = base case (D = 1); missing names take base values; unknown names raise.
+    memory_limit_bytes : int, optional
+        Refuse (``ModelTooLargeError``) when the arrays would be larger; default: half of
+        the available memory.
+
+    Returns
+    -------
+    CompiledModel
+        Transitions (D, Tp, A, S, S), occupancy rewards (D, Tq, S), decision rewards
+        (D, Td, S, A); discounting is left to the solver.
+
+    Raises
+    ------
+    ModelError
+        Listing every problem: unparsable expressions, probabilities outside [0, 1],
+        rows not summing to 1, NaN/inf, negative costs (naming draw and cycle/age).
+    """
+    parsed = parse_model_expressions(model)
+    if parsed.problems:
+        raise ModelError(parsed.problems, file=model.file_label)
+    values, n_draws = parameter_batch(model, parameter_sets)
+    settings = model.settings
+    n_states, n_actions = len(model.states), len(model.actions)
+    lengths = _time_lengths(model, parsed)
+    needed = _array_bytes(n_draws, lengths, n_states, n_actions)
+    limit = default_memory_limit() if memory_limit_bytes is None else int(memory_limit_bytes)
+    if needed > limit:
+        raise ModelTooLargeError(
+            f"{model.file_label}: compiling {n_draws} parameter set(s) of {n_states} states, "
+            f"{n_actions} actions and time axes {lengths} needs {needed:,} bytes "
+            f"({needed / 1024**2:,.1f} MiB); the limit is {limit:,} bytes. "
+            "Use fewer draws per batch."
+        )
+    tp, tq, td = lengths
+    evaluator = _Evaluator(model, values, n_draws)
+    problems: list[Problem] = []
+
+    absorbing = np.array([s.absorbing for s in model.states], dtype=bool)
+    allowed = _allowed_matrix(model, absorbing)
+    defined_rows = (allowed & ~absorbing[:, None]).T  # (A, S): rows the model must give
+
+    # Occupancy rewards at boundaries 0..T.
+    qaly_weight = evaluator.stack(parsed.state_qaly, tq, boundaries=True)  # (S, D, Tq)
+    state_cost = evaluator.stack(parsed.state_cost, tq, boundaries=True)
+    problems += evaluator.check_finite(parsed.state_qaly, qaly_weight, boundaries=True)
+    problems += evaluator.check_finite(parsed.state_cost, state_cost, boundaries=True)
+    may_be_negative = np.array([s.negative_cost_allowed for s in model.states], dtype=bool)
+    problems += evaluator.check_range(
+        [e for e in parsed.state_cost if not may_be_negative[e.state]],
+        state_cost[~may_be_negative],
+        low=0.0,
+        high=np.inf,
+        what="cost",
+        expected="a cost >= 0 (set negative_cost_allowed = true for a saving)",
+        boundaries=True,
+    )
+
+    # Decision rewards at cycle starts 0..T-1.
+    oneoff_cost = evaluator.stack(parsed.oneoff_cost, td)  # (A, D, Td)
+    qaly_loss = evaluator.stack(parsed.oneoff_qaly_loss, td)
+    per_cycle = evaluator.stack(parsed.cost_per_cycle, td)
+    for entries, array in (
+        (parsed.oneoff_cost, oneoff_cost),
+        (parsed.oneoff_qaly_loss, qaly_loss),
+        (parsed.cost_per_cycle, per_cycle),
+    ):
+        problems += evaluator.check_finite(entries, array)
+    for entries, array in ((parsed.oneoff_cost, oneoff_cost), (parsed.cost_per_cycle, per_cycle)):
+        problems += evaluator.check_range(
+            entries, array, low=0.0, high=np.inf, what="cost", expected="a cost >= 0"
+        )
+
+    transition = _transitions(model, parsed, evaluator, defined_rows, tp, problems)
+    if problems:
+        raise ModelError(problems[: MAX_PROBLEMS_PER_RULE * 4], file=model.file_label)
+
+    # (X, D, T) -> (D, T, X): the stacks hold one row per state / action.
+    decision_mask = (allowed & ~absorbing[:, None]).astype(float)  # (S, A)
+    decision_cost = np.moveaxis(oneoff_cost + per_cycle, 0, -1)[:, :, None, :] * decision_mask
+    decision_qaly = -np.moveaxis(qaly_loss, 0, -1)[:, :, None, :] * decision_mask
+    start = model.start_distribution()
+    start_distribution = np.array([start.get(s, 0.0) for s in model.state_ids], dtype=float)
+    return CompiledModel(
+        state_ids=model.state_ids,
+        action_ids=model.action_ids,
+        transition=transition,
+        allowed=allowed,
+        state_qaly=np.moveaxis(qaly_weight, 0, -1) * settings.cycle_years,
+        state_cost=np.moveaxis(state_cost, 0, -1),
+        decision_qaly=decision_qaly + 0.0,  # + 0.0 turns -0.0 into 0.0
+        decision_cost=decision_cost,
+        life_years=np.array([settings.cycle_years if s.alive else 0.0 for s in model.states]),
+        start_distribution=start_distribution,
+        n_cycles=model.n_cycles(),
+        cycle_length=float(settings.cycle_years),
+        start_age=float(settings.start_age),
+        discount_outcomes=float(settings.discount_outcomes),
+        discount_costs=float(settings.discount_costs),
+        within_cycle=settings.within_cycle,
+        state_labels=tuple(s.label or s.id for s in model.states),
+        action_labels=tuple(a.label or a.id for a in model.actions),
+        absorbing=absorbing,
+        ordered_states=tuple(settings.severity_order),
+    )
+
+
+def _allowed_matrix(model: Model, absorbing: np.ndarray) -> np.ndarray:
+    """(S, A) bool: allowed actions; absorbing states allow every action."""
+    state_index = {s: i for i, s in enumerate(model.state_ids)}
+    allowed = np.zeros((len(model.states), len(model.actions)), dtype=bool)
+    for a, action in enumerate(model.actions):
+        rows = [state_index[s] for s in model.allowed_states(action) if s in state_index]
+        allowed[rows, a] = True
+    allowed[absorbing, :] = True
+    return allowed
+
+
+def _transitions(
+    model: Model,
+    parsed: ParsedModel,
+    evaluator: _Evaluator,
+    defined_rows: np.ndarray,
+    tp: int,
+    problems: list[Problem],
+) -> np.ndarray:
+    """(D, Tp, A, S, S) transition probabilities per cycle; appends problems found."""
+    n_states, n_actions = len(model.states), len(model.actions)
+    n_draws = evaluator.n_draws
+    P = np.zeros((n_draws, tp, n_actions, n_states, n_states))
+    # Rows the model does not give (absorbing, or action not allowed): a self-loop.
+    self_a, self_s = np.nonzero(~defined_rows)
+    P[:, :, self_a, self_s, self_s] = 1.0
+
+    if parsed.transitions:
+        probabilities = evaluator.stack(parsed.transitions, tp)  # (n, D, Tp)
+        problems += evaluator.check_finite(parsed.transitions, probabilities)
+        problems += evaluator.check_range(
+            parsed.transitions,
+            probabilities,
+            low=0.0,
+            high=1.0,
+            what="probability",
+            expected="a probability in [0, 1]",
+        )
+        a, s, to = _indices(parsed.transitions)
+        P[:, :, a, s, to] = np.moveaxis(probabilities, 0, -1)
+
+    if parsed.rates:
+        rates = evaluator.stack(parsed.rates, tp)
+        problems += evaluator.check_finite(parsed.rates, rates)
+        problems += evaluator.check_range(
+            parsed.rates, rates, low=0.0, high=np.inf, what="rate", expected="a rate >= 0 per year"
+        )
+        if not problems:
+            _fill_rate_rows(P, parsed.rates, rates, model.settings.cycle_years)
+
+    if parsed.rests:
+        a, s, to = _indices(parsed.rests)
+        remainder = 1.0 - P[:, :, a, s, :].sum(axis=-1)  # (D, Tp, n): rest cells still hold 0
+        problems += evaluator.check_range(
+            parsed.rests,
+            np.moveaxis(remainder, -1, 0),
+            low=-ROW_TOLERANCE,
+            high=np.inf,
+            what="remainder",
+            expected="the other entries of the row to sum to at most 1 (remainder >= 0)",
+        )
+        P[:, :, a, s, to] = np.clip(remainder, 0.0, 1.0)
+
+    row_sums = P.sum(axis=-1)  # (D, Tp, A, S)
+    off = np.abs(row_sums - 1.0) > ROW_TOLERANCE
+    if off.any() and not problems:
+        bad_rows = np.argwhere(off.any(axis=(0, 1)))
+        for a, s in bad_rows[:MAX_PROBLEMS_PER_RULE]:
+            d, t = np.argwhere(off[:, :, a, s])[0]
+            table = "rates" if _is_rate_row(parsed, a, s) else "transitions"
+            problems.append(
+                Problem(
+                    f"{table}.{model.action_ids[a]}.{model.state_ids[s]}",
+                    f"row sums to {row_sums[d, t, a, s]!r} {evaluator.place(d, t)}; expected 1 "
+                    f'(within {ROW_TOLERANCE:g}; use "rest" for the remainder)',
+                )
+            )
+    return P
+
+
+def _is_rate_row(parsed: ParsedModel, action: int, state: int) -> bool:
+    return any(e.action == action and e.state == state for e in parsed.rates)
+
+
+def _indices(entries: list[Entry]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    return (
+        np.array([e.action for e in entries], dtype=int),
+        np.array([e.state for e in entries], dtype=int),
+        np.array([e.target for e in entries], dtype=int),
+    )
+
+
+def _fill_rate_rows(
+    P: np.ndarray, entries: list[Entry], rates: np.ndarray, cycle_years: float
+) -> None:
+    """Replace rows given by rates with ``expm(cycle_years G)`` of their action's generator.
+
+    All rate rows of one action share one generator, so a path through two rate rows
+    within one cycle is counted; states without a rate row are absorbing inside it.
+    """
+    from caredecide.conversions import generator_to_transition
+
+    a, s, to = _indices(entries)
+    actions = np.unique(a)
+    local = np.searchsorted(actions, a)  # position of each entry's action in `actions`
+    n_draws, tp, _, n_states, _ = P.shape
+    G = np.zeros((n_draws, tp, actions.size, n_states, n_states))
+    G[:, :, local, s, to] = np.moveaxis(rates, 0, -1)
+    diagonal = np.arange(n_states)
+    G[:, :, :, diagonal, diagonal] = -G.sum(axis=-1)
+    transition = generator_to_transition(G, cycle_years)
+    rows = np.unique(np.stack([local, s]), axis=1)
+    P[:, :, actions[rows[0]], rows[1], :] = transition[:, :, rows[0], rows[1], :]
+
+
+class _Evaluator:
+    """Evaluates expressions over (D, T) and reports failures by draw and cycle/age."""
+
+    def __init__(self, model: Model, values: dict[str, np.ndarray], n_draws: int):
+        from caredecide.mortality import background_probability
+
+        self.model = model
+        self.n_draws = n_draws
+        settings = model.settings
+        n = model.n_cycles()
+        self.n_cycles = 1 if n is None else n
+        self._variables: dict[bool, dict[str, np.ndarray | float]] = {}
+        for boundaries in (False, True):
+            cycle = np.arange(self.n_cycles + (1 if boundaries else 0), dtype=float)[None, :]
+            years = cycle * settings.cycle_years
+            age = settings.start_age + years
+            variables: dict[str, np.ndarray | float] = dict(values)
+            variables.update(age=age, cycle=cycle, years=years, cycle_years=settings.cycle_years)
+            if model.mortality is not None:
+                variables["background"] = background_probability(
+                    model.mortality, age, settings.cycle_years
+                )
+            else:
+                variables["background"] = np.zeros_like(age)
+            self._variables[boundaries] = variables
+
+    def stack(self, entries: list[Entry], length: int, *, boundaries: bool = False) -> np.ndarray:
+        """(n_entries, D, length) values of the entries' expressions."""
+        out = np.empty((len(entries), self.n_draws, length))
+        variables = self._variables[boundaries]
+        if length == 1:  # no entry uses time: evaluate once, at the first cycle
+            variables = {
+                k: (v[:, :1] if isinstance(v, np.ndarray) and v.shape[0] == 1 else v)
+                for k, v in variables.items()
+            }
+        with np.errstate(all="ignore"):  # NaN/inf are reported by check_finite
+            for i, entry in enumerate(entries):
+                value = np.asarray(entry.expression.evaluate(variables), dtype=float)
+                out[i] = np.broadcast_to(value, (self.n_draws, length))
+        return out
+
+    def place(self, draw: int, t: int, *, boundaries: bool = False, length: int = 2) -> str:
+        """Words for draw ``draw`` at time index ``t``."""
+        settings = self.model.settings
+        if length == 1 or self.model.n_cycles() is None:
+            when = "in every cycle"
+        else:
+            age = settings.start_age + t * settings.cycle_years
+            when = f"{'at boundary' if boundaries else 'in cycle'} {t} (age {age:g})"
+        return f"for draw {draw} {when}"
+
+    def check_finite(
+        self, entries: list[Entry], values: np.ndarray, *, boundaries: bool = False
+    ) -> list[Problem]:
+        bad = ~np.isfinite(values)
+        return self._report(entries, values, bad, "is not a finite number", boundaries)
+
+    def check_range(
+        self,
+        entries: list[Entry],
+        values: np.ndarray,
+        *,
+        low: float,
+        high: float,
+        what: str,
+        expected: str,
+        boundaries: bool = False,
+    ) -> list[Problem]:
+        bad = np.isfinite(values) & ((values < low) | (values > high))
+        return self._report(entries, values, bad, f"{what}; expected {expected}", boundaries)
+
+    def _report(
+        self,
+        entries: list[Entry],
+        values: np.ndarray,
+        bad: np.ndarray,
+        message: str,
+        boundaries: bool,
+    ) -> list[Problem]:
+        problems: list[Problem] = []
+        if not bad.any():
+            return problems
+        for i in np.flatnonzero(bad.any(axis=(1, 2)))[:MAX_PROBLEMS_PER_RULE]:
+            d, t = np.argwhere(bad[i])[0]
+            value = float(values[i, d, t])
+            place = self.place(int(d), int(t), boundaries=boundaries, length=values.shape[2])
+            problems.append(
+                Problem(
+                    entries[i].where,
+                    f"{entries[i].expression.source!r} gives {value!r} {place}: {message}",
+                )
+            )
+        return problems

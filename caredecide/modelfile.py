@@ -1,0 +1,1021 @@
+"""Model files (TOML): load, validate and save, with every problem reported at once.
+
+The format is ours and documented field by field in ``docs/model-file.md``. Reading is
+done with :mod:`tomllib`, never with ``eval``: expressions stay text until
+:mod:`caredecide.expressions` parses them into a restricted tree. Files are data with a
+size limit (:data:`MAX_MODEL_BYTES`).
+
+Validation has two layers: :func:`structural_problems` (references, ranges, required
+fields; no arithmetic) and the numerical checks of :func:`caredecide.compile.compile_model`
+on the base case (probabilities in [0, 1], rows summing to 1, NaN, negative costs).
+:func:`validate_model` runs both and returns the warnings.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+import tomllib
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from caredecide.compiled import WITHIN_CYCLE_METHODS
+from caredecide.errors import (
+    DistributionError,
+    ModelError,
+    ModelWarningRecord,
+    Problem,
+)
+from caredecide.model import (
+    ALL_STATES,
+    FORMAT_VERSION,
+    OBJECTIVES,
+    PARAMETER_KINDS,
+    Action,
+    DirichletGroup,
+    Model,
+    MortalitySpec,
+    Parameter,
+    Settings,
+    State,
+)
+
+MAX_MODEL_BYTES = 2_000_000
+"""Largest model file accepted (a hand-written model is a few kilobytes)."""
+ROW_TOLERANCE = 1e-9
+IDENTIFIER = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
+_MISSING = object()
+
+TOP_KEYS = (
+    "format",
+    "title",
+    "description",
+    "settings",
+    "states",
+    "actions",
+    "transitions",
+    "rates",
+    "parameters",
+    "groups",
+    "mortality",
+)
+SETTINGS_KEYS = (
+    "cycle_years",
+    "horizon_cycles",
+    "until_age",
+    "horizon",
+    "start_age",
+    "start",
+    "discount_outcomes",
+    "discount_costs",
+    "objective",
+    "willingness_to_pay",
+    "within_cycle",
+    "currency",
+    "severity_order",
+)
+STATE_KEYS = ("id", "label", "qaly_weight", "cost", "absorbing", "alive", "negative_cost_allowed")
+ACTION_KEYS = ("id", "label", "allowed_in", "oneoff_cost", "oneoff_qaly_loss", "cost_per_cycle")
+PARAMETER_KEYS = (
+    "value",
+    "kind",
+    "per_years",
+    "low",
+    "high",
+    "distribution",
+    "source",
+    "label",
+    "note",
+)
+GROUP_KEYS = ("members", "counts", "prior", "source", "note")
+MORTALITY_KEYS = ("table", "gompertz_makeham", "source")
+
+
+# =====================================================================================
+# Reading
+# =====================================================================================
+class _Reader:
+    """Typed access to TOML tables that records a Problem instead of failing early."""
+
+    def __init__(self) -> None:
+        self.problems: list[Problem] = []
+
+    def problem(self, where: str, message: str) -> None:
+        self.problems.append(Problem(where, message))
+
+    def table(self, value: object, where: str, keys: tuple[str, ...] | None) -> dict[str, Any]:
+        if not isinstance(value, Mapping):
+            self.problem(where, f"expected a table, got {value!r}")
+            return {}
+        if keys is not None:
+            for key in value:
+                if key not in keys:
+                    self.problem(
+                        f"{where}.{key}" if where else key,
+                        f"unknown field {key!r}; expected one of {list(keys)}",
+                    )
+        return dict(value)
+
+    def get(self, table: Mapping, key: str, where: str, default: Any = _MISSING) -> Any:
+        if key in table:
+            return table[key]
+        if default is _MISSING:
+            self.problem(_join(where, key), "is required but missing")
+            return None
+        return default
+
+    def number(self, table: Mapping, key: str, where: str, default: Any = _MISSING) -> Any:
+        value = self.get(table, key, where, default)
+        if value is None or value is default:
+            return value
+        if isinstance(value, bool) or not isinstance(value, int | float):
+            self.problem(_join(where, key), f"{value!r} is not a number")
+            return None if default is _MISSING else default
+        return float(value)
+
+    def integer(self, table: Mapping, key: str, where: str, default: Any = _MISSING) -> Any:
+        value = self.get(table, key, where, default)
+        if value is None or value is default:
+            return value
+        if isinstance(value, bool) or not isinstance(value, int):
+            self.problem(_join(where, key), f"{value!r} is not a whole number")
+            return None
+        return value
+
+    def text(self, table: Mapping, key: str, where: str, default: Any = _MISSING) -> Any:
+        value = self.get(table, key, where, default)
+        if value is None or value is default:
+            return value
+        if not isinstance(value, str):
+            self.problem(_join(where, key), f"{value!r} is not text; expected a quoted string")
+            return "" if default is _MISSING else default
+        return value
+
+    def boolean(self, table: Mapping, key: str, where: str, default: Any = _MISSING) -> Any:
+        value = self.get(table, key, where, default)
+        if value is not None and not isinstance(value, bool):
+            self.problem(_join(where, key), f"{value!r} is not true or false")
+            return default if default is not _MISSING else False
+        return value
+
+    def expression(self, table: Mapping, key: str, where: str, default: float = 0.0) -> Any:
+        value = table.get(key, default)
+        if isinstance(value, bool) or not isinstance(value, int | float | str):
+            self.problem(_join(where, key), f"{value!r} is not a number or expression text")
+            return default
+        return float(value) if not isinstance(value, str) else value
+
+    def text_list(self, table: Mapping, key: str, where: str) -> tuple[str, ...]:
+        value = table.get(key, [])
+        if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+            self.problem(_join(where, key), f"{value!r} is not a list of ids")
+            return ()
+        return tuple(value)
+
+
+def _join(where: str, key: str) -> str:
+    return f"{where}.{key}" if where else key
+
+
+def _syntax_problem(error: tomllib.TOMLDecodeError) -> Problem:
+    message = str(error)
+    match = re.search(r"\(at line (\d+), column (\d+)\)", message)
+    line = int(match.group(1)) if match else None
+    return Problem("", f"TOML syntax error: {message}", line=line)
+
+
+def loads_model(
+    text: str,
+    *,
+    file: str = "<text>",
+    base_dir: Path | str | None = None,
+    validate: bool = True,
+) -> Model:
+    """Read a model from TOML text.
+
+    Parameters
+    ----------
+    text : str
+        The model file's content.
+    file : str
+        Name used in messages (and ``Model.source_path``).
+    base_dir : path, optional
+        Folder that relative paths (the life table) are resolved against; default:
+        the folder of ``file`` when it exists, else the working directory.
+    validate : bool
+        Run :func:`validate_model` (raise on any problem). ``False`` only checks that
+        the file can be read into a :class:`Model` (useful for an editor).
+
+    Raises
+    ------
+    ModelError
+        Listing every problem found, each naming the file and table path.
+    """
+    if len(text.encode("utf-8", errors="replace")) > MAX_MODEL_BYTES:
+        raise ModelError(
+            f"the model file is larger than {MAX_MODEL_BYTES} bytes; is it the right file?",
+            file=file,
+        )
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as error:
+        raise ModelError(_syntax_problem(error), file=file) from None
+    if base_dir is None:
+        parent = Path(file).parent
+        base_dir = parent if file != "<text>" and parent.is_dir() else Path.cwd()
+    model, problems = _build_model(data, Path(base_dir))
+    source_path = Path(file) if file != "<text>" else None
+    if problems:
+        raise ModelError(problems, file=file)
+    model = _with_source(model, source_path)
+    if validate:
+        validate_model(model)
+    return model
+
+
+def load_model(path: Path | str, *, validate: bool = True) -> Model:
+    """Read and validate a model file (relative paths inside resolve against its folder)."""
+    path = Path(path)
+    size = path.stat().st_size
+    if size > MAX_MODEL_BYTES:
+        raise ModelError(
+            f"the model file is {size} bytes, larger than {MAX_MODEL_BYTES}", file=str(path)
+        )
+    text = path.read_text(encoding="utf-8")
+    return loads_model(text, file=str(path), base_dir=path.parent, validate=validate)
+
+
+def _with_source(model: Model, source_path: Path | None) -> Model:
+    from dataclasses import replace
+
+    return replace(model, source_path=source_path)
+
+
+def _build_model(data: Mapping[str, Any], base_dir: Path) -> tuple[Model, list[Problem]]:
+    r = _Reader()
+    r.table(data, "", TOP_KEYS)
+    format_version = r.get(data, "format", "", None)
+    if format_version is None:
+        r.problem("format", f"is required; expected format = {FORMAT_VERSION}")
+    elif format_version != FORMAT_VERSION or isinstance(format_version, bool):
+        r.problem(
+            "format",
+            f"unknown format version {format_version!r}; this caredecide reads "
+            f"format = {FORMAT_VERSION}",
+        )
+    title = r.text(data, "title", "")
+    description = r.text(data, "description", "", "")
+    settings = _read_settings(r, r.table(data.get("settings", {}), "settings", SETTINGS_KEYS))
+
+    states: list[State] = []
+    raw_states = data.get("states", [])
+    if not isinstance(raw_states, list):
+        r.problem("states", "expected [[states]] entries (an array of tables)")
+        raw_states = []
+    for i, raw in enumerate(raw_states):
+        states.append(_read_state(r, r.table(raw, f"states[{i}]", STATE_KEYS), i))
+
+    actions: list[Action] = []
+    raw_actions = data.get("actions", [])
+    if not isinstance(raw_actions, list):
+        r.problem("actions", "expected [[actions]] entries (an array of tables)")
+        raw_actions = []
+    for i, raw in enumerate(raw_actions):
+        actions.append(_read_action(r, r.table(raw, f"actions[{i}]", ACTION_KEYS), i))
+
+    transitions = _read_rows(r, data.get("transitions", {}), "transitions")
+    rates = _read_rows(r, data.get("rates", {}), "rates")
+
+    parameters: dict[str, Parameter] = {}
+    for name, raw in r.table(data.get("parameters", {}), "parameters", None).items():
+        parameters[name] = _read_parameter(
+            r, name, r.table(raw, f"parameters.{name}", PARAMETER_KEYS)
+        )
+    groups: dict[str, DirichletGroup] = {}
+    for name, raw in r.table(data.get("groups", {}), "groups", None).items():
+        groups[name] = _read_group(r, name, r.table(raw, f"groups.{name}", GROUP_KEYS))
+    mortality = None
+    if "mortality" in data:
+        mortality = _read_mortality(
+            r, r.table(data["mortality"], "mortality", MORTALITY_KEYS), base_dir
+        )
+    model = Model(
+        format_version=format_version if isinstance(format_version, int) else FORMAT_VERSION,
+        title=title or "",
+        description=description or "",
+        settings=settings,
+        states=tuple(states),
+        actions=tuple(actions),
+        transitions=transitions,
+        rates=rates,
+        parameters=parameters,
+        groups=groups,
+        mortality=mortality,
+    )
+    return model, r.problems
+
+
+def _read_settings(r: _Reader, t: dict[str, Any]) -> Settings:
+    w = "settings"
+    horizon = r.text(t, "horizon", w, None)
+    if horizon is not None and horizon != "infinite":
+        r.problem("settings.horizon", f'{horizon!r}; expected "infinite" (or use horizon_cycles)')
+    start = t.get("start", _MISSING)
+    if start is _MISSING:
+        r.problem("settings.start", "is required: a state id or a table {state = share}")
+        start = ""
+    elif isinstance(start, Mapping):
+        shares: dict[str, float] = {}
+        for key, value in start.items():
+            if isinstance(value, bool) or not isinstance(value, int | float):
+                r.problem(f"settings.start.{key}", f"{value!r} is not a share (a number)")
+            else:
+                shares[key] = float(value)
+        start = shares
+    elif not isinstance(start, str):
+        r.problem("settings.start", f"{start!r}; expected a state id or a table {{state = share}}")
+        start = ""
+    severity = r.text_list(t, "severity_order", w)
+    return Settings(
+        cycle_years=r.number(t, "cycle_years", w),
+        horizon_cycles=r.integer(t, "horizon_cycles", w, None),
+        until_age=r.number(t, "until_age", w, None),
+        infinite_horizon=horizon == "infinite",
+        start_age=r.number(t, "start_age", w, 0.0),
+        start=start,
+        discount_outcomes=r.number(t, "discount_outcomes", w, 0.0),
+        discount_costs=r.number(t, "discount_costs", w, 0.0),
+        objective=r.text(t, "objective", w, "net_benefit"),
+        willingness_to_pay=r.number(t, "willingness_to_pay", w, 0.0),
+        within_cycle=r.text(t, "within_cycle", w, "trapezoid"),
+        currency=r.text(t, "currency", w, ""),
+        severity_order=severity,
+    )
+
+
+def _read_state(r: _Reader, t: dict[str, Any], i: int) -> State:
+    w = f"states[{i}]"
+    state_id = r.text(t, "id", w) or ""
+    if state_id:
+        w = f"states.{state_id}"
+    absorbing = r.boolean(t, "absorbing", w, False)
+    return State(
+        id=state_id,
+        label=r.text(t, "label", w, ""),
+        qaly_weight=r.expression(t, "qaly_weight", w),
+        cost=r.expression(t, "cost", w),
+        absorbing=absorbing,
+        alive=r.boolean(t, "alive", w, not absorbing),
+        negative_cost_allowed=r.boolean(t, "negative_cost_allowed", w, False),
+    )
+
+
+def _read_action(r: _Reader, t: dict[str, Any], i: int) -> Action:
+    w = f"actions[{i}]"
+    action_id = r.text(t, "id", w) or ""
+    if action_id:
+        w = f"actions.{action_id}"
+    allowed: tuple[str, ...] | str = ALL_STATES
+    raw = t.get("allowed_in", ALL_STATES)
+    if isinstance(raw, str):
+        allowed = raw if raw == ALL_STATES else (raw,)
+    else:
+        allowed = r.text_list(t, "allowed_in", w)
+    return Action(
+        id=action_id,
+        label=r.text(t, "label", w, ""),
+        allowed_in=allowed,
+        oneoff_cost=r.expression(t, "oneoff_cost", w),
+        oneoff_qaly_loss=r.expression(t, "oneoff_qaly_loss", w),
+        cost_per_cycle=r.expression(t, "cost_per_cycle", w),
+    )
+
+
+def _read_rows(r: _Reader, raw: object, name: str) -> dict[str, dict[str, dict[str, Any]]]:
+    out: dict[str, dict[str, dict[str, Any]]] = {}
+    for action_id, rows in r.table(raw, name, None).items():
+        out[action_id] = {}
+        for from_id, row in r.table(rows, f"{name}.{action_id}", None).items():
+            where = f"{name}.{action_id}.{from_id}"
+            table = r.table(row, where, None)
+            out[action_id][from_id] = {to_id: r.expression(table, to_id, where) for to_id in table}
+    return out
+
+
+def _read_parameter(r: _Reader, name: str, t: dict[str, Any]) -> Parameter:
+    w = f"parameters.{name}"
+    distribution = t.get("distribution")
+    if distribution is not None and not isinstance(distribution, Mapping):
+        r.problem(
+            f"{w}.distribution",
+            f'{distribution!r}; expected a table such as {{type = "beta", mean = 0.1, se = 0.02}}',
+        )
+        distribution = None
+    return Parameter(
+        name=name,
+        value=r.number(t, "value", w),
+        source=r.text(t, "source", w, ""),
+        kind=r.text(t, "kind", w, "other"),
+        per_years=r.number(t, "per_years", w, None),
+        low=r.number(t, "low", w, None),
+        high=r.number(t, "high", w, None),
+        distribution=dict(distribution) if distribution is not None else None,
+        label=r.text(t, "label", w, ""),
+        note=r.text(t, "note", w, ""),
+    )
+
+
+def _read_group(r: _Reader, name: str, t: dict[str, Any]) -> DirichletGroup:
+    w = f"groups.{name}"
+    counts = t.get("counts", [])
+    if not isinstance(counts, list) or not all(
+        isinstance(c, int | float) and not isinstance(c, bool) for c in counts
+    ):
+        r.problem(f"{w}.counts", f"{counts!r} is not a list of numbers")
+        counts = []
+    return DirichletGroup(
+        name=name,
+        members=r.text_list(t, "members", w),
+        counts=tuple(float(c) for c in counts),
+        source=r.text(t, "source", w, ""),
+        prior=r.number(t, "prior", w, 0.0),
+        note=r.text(t, "note", w, ""),
+    )
+
+
+def _read_mortality(r: _Reader, t: dict[str, Any], base_dir: Path) -> MortalitySpec:
+    from caredecide.mortality import read_life_table
+
+    w = "mortality"
+    table = r.text(t, "table", w, None)
+    law = t.get("gompertz_makeham")
+    source = r.text(t, "source", w, "")
+    if (table is None) == (law is None):
+        r.problem(w, 'give exactly one of table = "file.csv" or gompertz_makeham = {a, b, c}')
+        return MortalitySpec(source=source)
+    if law is not None:
+        law_table = r.table(law, "mortality.gompertz_makeham", ("a", "b", "c"))
+        a, b, c = (r.number(law_table, k, "mortality.gompertz_makeham") for k in "abc")
+        if None in (a, b, c):
+            return MortalitySpec(source=source)
+        return MortalitySpec(gompertz_makeham=(a, b, c), source=source)
+    path = base_dir / table
+    try:
+        ages, q = read_life_table(path)
+    except FileNotFoundError:
+        r.problem("mortality.table", f"life table {str(path)!r} not found (relative to the model)")
+        return MortalitySpec(table=table, source=source)
+    except ModelError as error:
+        r.problems.extend(error.problems)
+        return MortalitySpec(table=table, source=source)
+    return MortalitySpec(
+        table=table,
+        table_ages=tuple(float(x) for x in ages),
+        table_probabilities=tuple(float(x) for x in q),
+        source=source,
+    )
+
+
+# =====================================================================================
+# Validation
+# =====================================================================================
+def structural_problems(model: Model) -> list[Problem]:
+    """Every problem that needs no arithmetic: fields, ranges, references, rows.
+
+    Returns
+    -------
+    list of Problem
+        Empty when the model is structurally sound.
+    """
+    problems: list[Problem] = []
+
+    def add(where: str, message: str) -> None:
+        problems.append(Problem(where, message))
+
+    if model.format_version != FORMAT_VERSION:
+        add("format", f"unknown format version {model.format_version!r}; expected {FORMAT_VERSION}")
+    if not model.title.strip():
+        add("title", "is empty; give the model a title")
+    _check_settings(model, add)
+    _check_states_and_actions(model, add)
+    _check_rows(model, add)
+    _check_parameters(model, add)
+    _check_mortality(model, add)
+    return problems
+
+
+def _finite(value: object) -> bool:
+    return isinstance(value, int | float) and not isinstance(value, bool) and math.isfinite(value)
+
+
+def _check_settings(model: Model, add) -> None:
+    s = model.settings
+    state_ids = set(model.state_ids)
+    if not (_finite(s.cycle_years) and s.cycle_years > 0):
+        add("settings.cycle_years", f"{s.cycle_years!r}; expected a cycle length in years > 0")
+    given = [
+        name
+        for name, present in (
+            ("horizon_cycles", s.horizon_cycles is not None),
+            ("until_age", s.until_age is not None),
+            ('horizon = "infinite"', s.infinite_horizon),
+        )
+        if present
+    ]
+    if len(given) != 1:
+        add(
+            "settings",
+            f"the horizon is given by {given or 'nothing'}; expected exactly one of "
+            'horizon_cycles, until_age or horizon = "infinite"',
+        )
+    if s.horizon_cycles is not None and s.horizon_cycles < 1:
+        add("settings.horizon_cycles", f"{s.horizon_cycles!r}; expected a whole number >= 1")
+    if not _finite(s.start_age) or s.start_age < 0:
+        add("settings.start_age", f"{s.start_age!r}; expected an age in years >= 0")
+    if s.until_age is not None and _finite(s.start_age):
+        if not _finite(s.until_age) or s.until_age <= s.start_age:
+            add(
+                "settings.until_age",
+                f"{s.until_age!r}; expected an age greater than start_age = {s.start_age!r}",
+            )
+    for key in ("discount_outcomes", "discount_costs"):
+        value = getattr(s, key)
+        if not (_finite(value) and 0.0 <= value < 1.0):
+            add(f"settings.{key}", f"{value!r}; expected an annual rate in [0, 1) (e.g. 0.035)")
+    if s.objective not in OBJECTIVES:
+        add("settings.objective", f"{s.objective!r}; expected one of {list(OBJECTIVES)}")
+    if not (_finite(s.willingness_to_pay) and s.willingness_to_pay >= 0):
+        add("settings.willingness_to_pay", f"{s.willingness_to_pay!r}; expected a number >= 0")
+    if s.within_cycle not in WITHIN_CYCLE_METHODS:
+        add("settings.within_cycle", f"{s.within_cycle!r}; expected one of {WITHIN_CYCLE_METHODS}")
+    for state_id in s.severity_order:
+        if state_id not in state_ids:
+            add(
+                "settings.severity_order",
+                f"unknown state {state_id!r}; states are {sorted(state_ids)}",
+            )
+    if isinstance(s.start, str):
+        if s.start not in state_ids:
+            add("settings.start", f"unknown state {s.start!r}; states are {sorted(state_ids)}")
+    else:
+        for state_id, share in s.start.items():
+            if state_id not in state_ids:
+                add(f"settings.start.{state_id}", f"unknown state; states are {sorted(state_ids)}")
+            if not (_finite(share) and 0.0 <= share <= 1.0):
+                add(f"settings.start.{state_id}", f"share {share!r}; expected a number in [0, 1]")
+        total = math.fsum(s.start.values())
+        if abs(total - 1.0) > ROW_TOLERANCE:
+            add("settings.start", f"shares sum to {total!r}; expected 1")
+
+
+def _check_ids(kind: str, ids: list[str], add) -> None:
+    seen: set[str] = set()
+    for i, item in enumerate(ids):
+        if not IDENTIFIER.match(item):
+            add(
+                f"{kind}[{i}].id",
+                f"{item!r}; expected letters, digits and _ (not starting with a digit)",
+            )
+        if item in seen:
+            add(f"{kind}.{item}", f"id {item!r} is used twice; ids must be unique")
+        seen.add(item)
+
+
+def _check_states_and_actions(model: Model, add) -> None:
+    state_ids = list(model.state_ids)
+    if not state_ids:
+        add("states", "the model has no [[states]]")
+    if not model.actions:
+        add("actions", "the model has no [[actions]]")
+    _check_ids("states", state_ids, add)
+    _check_ids("actions", list(model.action_ids), add)
+    absorbing = {s.id for s in model.states if s.absorbing}
+    for action in model.actions:
+        if isinstance(action.allowed_in, str) and action.allowed_in != ALL_STATES:
+            add(
+                f"actions.{action.id}.allowed_in",
+                f'{action.allowed_in!r}; expected a list or "all"',
+            )
+            continue
+        if isinstance(action.allowed_in, str):
+            continue
+        for state_id in action.allowed_in:
+            if state_id not in state_ids:
+                add(
+                    f"actions.{action.id}.allowed_in",
+                    f"unknown state {state_id!r}; states are {state_ids}",
+                )
+            elif state_id in absorbing:
+                add(
+                    f"actions.{action.id}.allowed_in",
+                    f"state {state_id!r} is absorbing: no decision is made there; remove it",
+                )
+    allowed_somewhere = {s for a in model.actions for s in model.allowed_states(a)}
+    for state in model.states:
+        if not state.absorbing and state.id not in allowed_somewhere:
+            add(
+                f"states.{state.id}",
+                "no action is allowed in this state; expected at least one action whose "
+                'allowed_in lists it (or allowed_in = "all")',
+            )
+
+
+def _check_rows(model: Model, add) -> None:
+    from caredecide.expressions import REST_KEYWORD
+
+    state_ids = set(model.state_ids)
+    action_ids = set(model.action_ids)
+    absorbing = {s.id for s in model.states if s.absorbing}
+    allowed = {a.id: set(model.allowed_states(a)) for a in model.actions}
+    for table_name, table in (("transitions", model.transitions), ("rates", model.rates)):
+        for action_id, rows in table.items():
+            if action_id not in action_ids:
+                add(
+                    f"{table_name}.{action_id}", f"unknown action; actions are {sorted(action_ids)}"
+                )
+                continue
+            for from_id, row in rows.items():
+                where = f"{table_name}.{action_id}.{from_id}"
+                if from_id not in state_ids:
+                    add(where, f"unknown state {from_id!r}; states are {sorted(state_ids)}")
+                    continue
+                for to_id in row:
+                    if to_id not in state_ids:
+                        add(
+                            f"{where}.{to_id}",
+                            f"unknown state {to_id!r}; states are {sorted(state_ids)}",
+                        )
+                if from_id in absorbing:
+                    exits = [k for k in row if k != from_id]
+                    if exits:
+                        add(
+                            where,
+                            f"state {from_id!r} is absorbing but has exits {exits}; an absorbing "
+                            "state keeps the whole cohort (remove the row or absorbing = true)",
+                        )
+                    continue
+                if from_id not in allowed[action_id]:
+                    add(
+                        where,
+                        f"action {action_id!r} is not allowed in {from_id!r}; add the state to "
+                        "its allowed_in or remove this row",
+                    )
+                rests = [
+                    k for k, v in row.items() if isinstance(v, str) and v.strip() == REST_KEYWORD
+                ]
+                if len(rests) > 1:
+                    add(
+                        where,
+                        f"{len(rests)} entries use {REST_KEYWORD!r} ({rests}); at most one may",
+                    )
+                if table_name == "rates":
+                    if from_id in row:
+                        add(
+                            f"{where}.{from_id}",
+                            "a rate row lists its own state; give exit rates only",
+                        )
+                    if from_id in model.transitions.get(action_id, {}):
+                        add(
+                            where,
+                            "the row is given both by [rates] and by [transitions]; keep one",
+                        )
+    for action in model.actions:
+        for state_id in model.allowed_states(action):
+            if state_id in absorbing or state_id not in state_ids:
+                continue
+            given = state_id in model.transitions.get(action.id, {}) or state_id in model.rates.get(
+                action.id, {}
+            )
+            if not given:
+                add(
+                    f"transitions.{action.id}.{state_id}",
+                    f"missing row: action {action.id!r} is allowed in {state_id!r}; expected "
+                    f"[transitions.{action.id}.{state_id}] (or [rates.{action.id}.{state_id}])",
+                )
+
+
+def _check_parameters(model: Model, add) -> None:
+    from caredecide.distributions import distribution_from_spec
+    from caredecide.expressions import RESERVED_NAMES
+
+    members_seen: dict[str, str] = {}
+    for group in model.groups.values():
+        w = f"groups.{group.name}"
+        if not group.source.strip():
+            add(f"{w}.source", "missing source; every estimate must say where it comes from")
+        if len(group.members) != len(group.counts) or len(group.members) < 2:
+            add(
+                w,
+                f"{len(group.members)} members and {len(group.counts)} counts; expected the same "
+                "number, at least 2",
+            )
+        if (
+            any(not _finite(c) or c < 0 for c in group.counts)
+            or not sum(group.counts) + group.prior > 0
+        ):
+            add(f"{w}.counts", f"{list(group.counts)}; expected counts >= 0 with a positive total")
+        if not _finite(group.prior) or group.prior < 0:
+            add(f"{w}.prior", f"{group.prior!r}; expected a number >= 0")
+        for member in group.members:
+            if member in model.parameters:
+                add(
+                    f"{w}.members",
+                    f"{member!r} is also declared in [parameters]; a group member takes its "
+                    "value from the counts, so remove the [parameters] entry",
+                )
+            if member in members_seen:
+                add(
+                    f"{w}.members",
+                    f"{member!r} is already a member of group {members_seen[member]!r}",
+                )
+            members_seen[member] = group.name
+            _check_name(member, f"{w}.members", add, RESERVED_NAMES)
+    for name, p in model.parameters.items():
+        w = f"parameters.{name}"
+        _check_name(name, w, add, RESERVED_NAMES)
+        if not p.source or not p.source.strip():
+            add(f"{w}.source", "missing source; every parameter must say where it comes from")
+        if p.kind not in PARAMETER_KINDS:
+            add(f"{w}.kind", f"{p.kind!r}; expected one of {list(PARAMETER_KINDS)}")
+        if not _finite(p.value):
+            add(f"{w}.value", f"{p.value!r}; expected a finite number")
+            continue
+        if p.kind == "probability" and not 0.0 <= p.value <= 1.0:
+            add(f"{w}.value", f"{p.value!r}; a probability must be in [0, 1]")
+        if (
+            p.kind in ("rate", "relative_risk", "hazard_ratio", "odds_ratio", "count")
+            and p.value < 0
+        ):
+            add(f"{w}.value", f"{p.value!r}; a {p.kind} must be >= 0")
+        if p.per_years is not None and not (_finite(p.per_years) and p.per_years > 0):
+            add(f"{w}.per_years", f"{p.per_years!r}; expected a period in years > 0")
+        for key in ("low", "high"):
+            bound = getattr(p, key)
+            if bound is not None and not _finite(bound):
+                add(f"{w}.{key}", f"{bound!r}; expected a finite number")
+        if _finite(p.low) and _finite(p.high) and not p.low <= p.value <= p.high:
+            add(w, f"value {p.value!r} lies outside [low, high] = [{p.low!r}, {p.high!r}]")
+        if p.distribution is not None:
+            try:
+                distribution_from_spec(p.distribution, where=f"{w}.distribution")
+            except DistributionError as error:
+                add(f"{w}.distribution", _strip_where(str(error), f"{w}.distribution"))
+
+
+def _check_name(name: str, where: str, add, reserved) -> None:
+    if not IDENTIFIER.match(name):
+        add(where, f"name {name!r}; expected letters, digits and _ (not starting with a digit)")
+    if name in reserved:
+        add(where, f"name {name!r} is reserved (the model supplies it); choose another name")
+
+
+def _strip_where(message: str, where: str) -> str:
+    return message[len(where) + 2 :] if message.startswith(f"{where}: ") else message
+
+
+def _check_mortality(model: Model, add) -> None:
+    spec = model.mortality
+    if spec is None:
+        return
+    if spec.gompertz_makeham is not None:
+        a, b, c = spec.gompertz_makeham
+        w = "mortality.gompertz_makeham"
+        if not (_finite(a) and a >= 0):
+            add(f"{w}.a", f"{a!r}; expected an age-independent hazard >= 0 per year")
+        if not (_finite(b) and b > 0):
+            add(f"{w}.b", f"{b!r}; expected a number > 0")
+        if not (_finite(c) and c > 1):
+            add(f"{w}.c", f"{c!r}; expected a number > 1 (hazard rising with age)")
+    elif spec.table_ages:
+        first = spec.table_ages[0]
+        if model.settings.start_age < first:
+            add(
+                "mortality.table",
+                f"the life table starts at age {first:g}, after start_age = "
+                f"{model.settings.start_age:g}; expected it to cover the start age",
+            )
+    elif not spec.table:
+        add("mortality", "give a life table or gompertz_makeham constants")
+
+
+def _check_time_use(model: Model, parsed, add) -> None:
+    """Infinite horizons need stationary arrays; background needs [mortality]."""
+    from caredecide.compile import TIME_NAMES
+
+    for entry in parsed.all_entries():
+        used = entry.expression.names
+        if model.settings.infinite_horizon and used & TIME_NAMES:
+            add(
+                entry.where,
+                f"{entry.expression.source!r} uses {sorted(used & TIME_NAMES)}, but "
+                'horizon = "infinite" needs a stationary model; use horizon_cycles or until_age',
+            )
+        if "background" in used and model.mortality is None:
+            add(
+                entry.where,
+                f"{entry.expression.source!r} uses 'background' but the model has no [mortality] "
+                "section; expected [mortality] with a table or gompertz_makeham",
+            )
+
+
+def validate_model(model: Model) -> list[ModelWarningRecord]:
+    """Check a model completely; return warnings or raise listing every problem.
+
+    Runs the structural checks, parses every expression, then compiles the base case
+    (which checks probabilities, rows, NaN and costs at every cycle).
+
+    Returns
+    -------
+    list of ModelWarningRecord
+        Suspicious but allowed values: QALY weights above 1, death probabilities below
+        background mortality.
+
+    Raises
+    ------
+    ModelError
+        With one :class:`Problem` per finding, each naming the file and table path.
+    """
+    from caredecide.compile import compile_model, parse_model_expressions
+
+    file = model.file_label
+    problems = structural_problems(model)
+    parsed = parse_model_expressions(model)
+    problems += parsed.problems
+    _check_time_use(model, parsed, lambda w, m: problems.append(Problem(w, m)))
+    if problems:
+        raise ModelError(problems, file=file)
+    compiled = compile_model(model)
+    return _warnings(model, compiled)
+
+
+def _warnings(model: Model, compiled) -> list[ModelWarningRecord]:
+    from caredecide.mortality import background_probability
+
+    records: list[ModelWarningRecord] = []
+    weights = compiled.state_qaly[0] / compiled.cycle_length  # (Tq, S)
+    for s in np.flatnonzero((weights > 1.0 + 1e-12).any(axis=0)):
+        records.append(
+            ModelWarningRecord(
+                f"states.{model.state_ids[s]}.qaly_weight",
+                f"QALY weight {weights[:, s].max():g} is above 1 (better than full health)",
+                {"value": float(weights[:, s].max())},
+            )
+        )
+    # Death = absorbing states where no life-years accrue.
+    dead = compiled.absorbing & ~np.array([s.alive for s in model.states])
+    if model.mortality is None or not dead.any():
+        return records
+    n = compiled.n_cycles or 1
+    ages = compiled.start_age + compiled.cycle_length * np.arange(n)
+    background = background_probability(model.mortality, ages, compiled.cycle_length)  # (T,)
+    death = compiled.transition[0][:, :, :, dead].sum(axis=-1)  # (Tp, A, S)
+    shortfall = death < background[:, None, None] - 1e-12  # (T, A, S)
+    rows = compiled.allowed.T & ~compiled.absorbing[None, :]  # (A, S)
+    # Rows given by rates are skipped: a competing exit lowers the in-cycle death
+    # probability below 1 - exp(-background rate) without anything being wrong.
+    for action_id, rate_rows in model.rates.items():
+        for from_id in rate_rows:
+            if action_id in model.action_ids and from_id in model.state_ids:
+                rows[model.action_ids.index(action_id), model.state_ids.index(from_id)] = False
+    for a, s in np.argwhere(shortfall.any(axis=0) & rows):
+        t = int(np.flatnonzero(shortfall[:, a, s])[0])
+        records.append(
+            ModelWarningRecord(
+                f"transitions.{model.action_ids[a]}.{model.state_ids[s]}",
+                f"death probability {death[min(t, death.shape[0] - 1), a, s]:.6g} at age "
+                f"{ages[t]:g} is below background mortality {background[t]:.6g}",
+                {"age": float(ages[t])},
+            )
+        )
+    return records
+
+
+# =====================================================================================
+# Writing
+# =====================================================================================
+def dumps_model(model: Model) -> str:
+    """The model as TOML text that :func:`loads_model` reads back to an equal model."""
+    s = model.settings
+    out: list[str] = [
+        f"format = {model.format_version}",
+        f"title = {_value(model.title)}",
+    ]
+    if model.description:
+        out.append(f"description = {_value(model.description)}")
+    settings: dict[str, Any] = {"cycle_years": s.cycle_years}
+    if s.horizon_cycles is not None:
+        settings["horizon_cycles"] = s.horizon_cycles
+    if s.until_age is not None:
+        settings["until_age"] = s.until_age
+    if s.infinite_horizon:
+        settings["horizon"] = "infinite"
+    settings.update(
+        start_age=s.start_age,
+        start=s.start if isinstance(s.start, str) else dict(s.start),
+        discount_outcomes=s.discount_outcomes,
+        discount_costs=s.discount_costs,
+        objective=s.objective,
+        willingness_to_pay=s.willingness_to_pay,
+        within_cycle=s.within_cycle,
+    )
+    if s.currency:
+        settings["currency"] = s.currency
+    if s.severity_order:
+        settings["severity_order"] = list(s.severity_order)
+    _section(out, "[settings]", settings)
+    for state in model.states:
+        fields: dict[str, Any] = {"id": state.id}
+        if state.label:
+            fields["label"] = state.label
+        fields.update(qaly_weight=state.qaly_weight, cost=state.cost)
+        if state.absorbing:
+            fields["absorbing"] = True
+        if state.alive != (not state.absorbing):
+            fields["alive"] = state.alive
+        if state.negative_cost_allowed:
+            fields["negative_cost_allowed"] = True
+        _section(out, "[[states]]", fields)
+    for action in model.actions:
+        fields = {"id": action.id}
+        if action.label:
+            fields["label"] = action.label
+        allowed = action.allowed_in
+        fields["allowed_in"] = allowed if isinstance(allowed, str) else list(allowed)
+        fields.update(
+            oneoff_cost=action.oneoff_cost,
+            oneoff_qaly_loss=action.oneoff_qaly_loss,
+            cost_per_cycle=action.cost_per_cycle,
+        )
+        _section(out, "[[actions]]", fields)
+    for table_name, table in (("transitions", model.transitions), ("rates", model.rates)):
+        for action_id, rows in table.items():
+            for from_id, row in rows.items():
+                _section(out, f"[{table_name}.{_key(action_id)}.{_key(from_id)}]", dict(row))
+    for name, p in model.parameters.items():
+        fields = {"value": p.value}
+        if p.label:
+            fields["label"] = p.label
+        if p.kind != "other":
+            fields["kind"] = p.kind
+        for key in ("per_years", "low", "high"):
+            if getattr(p, key) is not None:
+                fields[key] = getattr(p, key)
+        if p.distribution is not None:
+            fields["distribution"] = dict(p.distribution)
+        fields["source"] = p.source
+        if p.note:
+            fields["note"] = p.note
+        _section(out, f"[parameters.{_key(name)}]", fields)
+    for name, g in model.groups.items():
+        fields = {"members": list(g.members), "counts": list(g.counts)}
+        if g.prior:
+            fields["prior"] = g.prior
+        fields["source"] = g.source
+        if g.note:
+            fields["note"] = g.note
+        _section(out, f"[groups.{_key(name)}]", fields)
+    if model.mortality is not None:
+        m = model.mortality
+        fields = {}
+        if m.table is not None:
+            fields["table"] = m.table
+        if m.gompertz_makeham is not None:
+            fields["gompertz_makeham"] = dict(zip("abc", m.gompertz_makeham, strict=True))
+        if m.source:
+            fields["source"] = m.source
+        _section(out, "[mortality]", fields)
+    return "\n".join(out) + "\n"
+
+
+def save_model(model: Model, path: Path | str) -> None:
+    """Write ``model`` to ``path`` as TOML (UTF-8)."""
+    Path(path).write_text(dumps_model(model), encoding="utf-8")
+
+
+def _section(out: list[str], header: str, fields: Mapping[str, Any]) -> None:
+    out.append("")
+    out.append(header)
+    out.extend(f"{_key(k)} = {_value(v)}" for k, v in fields.items())
+
+
+_BARE_KEY = re.compile(r"^[A-Za-z0-9_-]+$")
+
+
+def _key(key: str) -> str:
+    return key if _BARE_KEY.match(key) else _value(key)
+
+
+def _value(value: Any) -> str:
+    """One TOML value; tables are written inline so each entry stays on one line."""
+    import tomli_w
+
+    if isinstance(value, Mapping):
+        inner = ", ".join(f"{_key(k)} = {_value(v)}" for k, v in value.items())
+        return "{ " + inner + " }" if inner else "{}"
+    if isinstance(value, list | tuple):
+        return "[" + ", ".join(_value(v) for v in value) + "]"
+    # tomli_w formats scalars exactly (floats by repr, strings escaped).
+    return tomli_w.dumps({"x": value})[len("x = ") :].rstrip("\n")
