@@ -1,0 +1,29 @@
+"""Entry file of the caredecide app: ``streamlit run ui/app.py`` (or ``caredecide app``).
+
+Adding a view: write ``ui/views/<name>.py`` (a plain Streamlit script that reads the
+working model through :mod:`ui.common`) and add one ``st.Page`` line to :data:`VIEWS`.
+The cautions and the working model are set up here, so every view gets them.
+"""
+
+from __future__ import annotations
+
+import streamlit as st
+
+from ui import common
+
+st.set_page_config(page_title="caredecide - research use only", layout="wide")
+
+VIEWS = [
+    st.Page("views/model.py", title="Model", icon=":material/edit_note:", url_path="model",
+            default=True),
+    st.Page("views/policy.py", title="Policy", icon=":material/grid_on:", url_path="policy"),
+    st.Page("views/convergence.py", title="Convergence", icon=":material/trending_down:",
+            url_path="convergence"),
+]
+
+page = st.navigation(VIEWS)
+common.ensure_working_model()
+common.show_cautions()
+with st.sidebar:
+    st.caption(f"Working model: **{common.source_label(common.working_source())}**")
+page.run()

@@ -1,0 +1,280 @@
+"""Thin glue between a :class:`caredecide.model.Model` and the editable tables of the model view.
+
+``model_to_tables`` gives one DataFrame per table (settings, states, actions, parameters,
+and ``transitions.<action>`` / ``rates.<action>`` matrices with from-states as rows and
+to-states as columns); ``model_with_table`` puts one edited table back. Cells that hold
+a number or an expression are text in the table: a number-like cell becomes a float,
+anything else stays expression text for :mod:`caredecide.expressions` to check. No
+arithmetic happens here; validation is :func:`caredecide.modelfile.loads_model`'s job.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import tomllib
+from dataclasses import replace
+from typing import Any
+
+import pandas as pd
+
+from caredecide.errors import ModelError, Problem
+from caredecide.model import ALL_STATES, Action, Model, Parameter, Settings, State
+
+SETTINGS_COLUMNS = (
+    "cycle_years", "horizon_cycles", "until_age", "infinite_horizon", "start_age", "start",
+    "discount_outcomes", "discount_costs", "objective", "willingness_to_pay", "within_cycle",
+    "currency", "severity_order",
+)
+STATE_COLUMNS = ("id", "label", "qaly_weight", "cost", "absorbing", "alive",
+                 "negative_cost_allowed")
+ACTION_COLUMNS = ("id", "label", "allowed_in", "oneoff_cost", "oneoff_qaly_loss",
+                  "cost_per_cycle")
+PARAMETER_COLUMNS = ("name", "value", "kind", "per_years", "low", "high", "distribution",
+                     "source", "label", "note")
+
+
+# -- cells ------------------------------------------------------------------------------
+def expression_cell(value: Any) -> str:
+    """A number or expression as table text (``repr`` keeps every digit of a float)."""
+    if isinstance(value, bool):
+        return str(value).lower()
+    if isinstance(value, int | float):
+        return repr(float(value)) if isinstance(value, float) else str(value)
+    return str(value)
+
+
+def cell_expression(text: Any) -> float | str | None:
+    """Table text back to a number or expression; empty means "no entry" (None)."""
+    if text is None or (isinstance(text, float) and math.isnan(text)):
+        return None
+    if isinstance(text, int | float) and not isinstance(text, bool):
+        return float(text)
+    text = str(text).strip()
+    if not text:
+        return None
+    try:
+        return float(text)
+    except ValueError:
+        return text
+
+
+def _optional_number(value: Any) -> float | None:
+    if value is None or (isinstance(value, float) and math.isnan(value)) or value is pd.NA:
+        return None
+    return float(value)
+
+
+def _text(value: Any) -> str:
+    if value is None or value is pd.NA or (isinstance(value, float) and math.isnan(value)):
+        return ""
+    return str(value).strip()
+
+
+def _names(text: str) -> tuple[str, ...]:
+    return tuple(part.strip() for part in text.split(",") if part.strip())
+
+
+def distribution_cell(spec: dict | None) -> str:
+    """A distribution as an inline table, ``{ type = "beta", mean = 0.1, se = 0.02 }``."""
+    if not spec:
+        return ""
+    return "{ " + ", ".join(f"{k} = {json.dumps(v)}" for k, v in spec.items()) + " }"
+
+
+def cell_distribution(text: str, where: str) -> dict | None:
+    """Inline-table text back to a distribution spec (parsed as TOML data, never run)."""
+    text = _text(text)
+    if not text:
+        return None
+    try:
+        value = tomllib.loads(f"d = {text}")["d"]
+    except tomllib.TOMLDecodeError as error:
+        raise ModelError(Problem(where, f"{text!r} is not an inline table ({error}); expected "
+                                 'e.g. { type = "beta", mean = 0.1, se = 0.02 }')) from None
+    if not isinstance(value, dict):
+        raise ModelError(Problem(where, f"{text!r} is not an inline table; expected e.g. "
+                                 '{ type = "beta", mean = 0.1, se = 0.02 }'))
+    return value
+
+
+def start_cell(start: str | dict) -> str:
+    """Cohort start as text: a state id, or ``a = 0.6, b = 0.4``."""
+    if isinstance(start, str):
+        return start
+    return ", ".join(f"{k} = {expression_cell(v)}" for k, v in start.items())
+
+
+def cell_start(text: str) -> str | dict[str, float]:
+    text = _text(text)
+    if "=" not in text:
+        return text
+    shares: dict[str, float] = {}
+    for part in text.split(","):
+        key, _, value = part.partition("=")
+        try:
+            shares[key.strip()] = float(value)
+        except ValueError:
+            raise ModelError(Problem(
+                f"settings.start.{key.strip()}",
+                f"{value.strip()!r} is not a share; expected a number such as 0.4",
+            )) from None
+    return shares
+
+
+# -- model -> tables --------------------------------------------------------------------
+def _matrix(model: Model, rows: dict[str, dict[str, Any]]) -> pd.DataFrame:
+    ids = list(model.state_ids)
+    ids += [s for s in rows if s not in ids]
+    ids += [t for row in rows.values() for t in row if t not in ids]
+    ids = list(dict.fromkeys(ids))
+    data = {to: [expression_cell(rows.get(frm, {}).get(to, "")) for frm in ids] for to in ids}
+    return pd.DataFrame(data, index=pd.Index(ids, name="from"), dtype="string")
+
+
+def model_to_tables(model: Model) -> dict[str, pd.DataFrame]:
+    """One editable DataFrame per table of the model (see the module docstring)."""
+    s = model.settings
+    tables: dict[str, pd.DataFrame] = {
+        "settings": pd.DataFrame([{
+            "cycle_years": s.cycle_years,
+            "horizon_cycles": s.horizon_cycles,
+            "until_age": s.until_age,
+            "infinite_horizon": s.infinite_horizon,
+            "start_age": s.start_age,
+            "start": start_cell(s.start),
+            "discount_outcomes": s.discount_outcomes,
+            "discount_costs": s.discount_costs,
+            "objective": s.objective,
+            "willingness_to_pay": s.willingness_to_pay,
+            "within_cycle": s.within_cycle,
+            "currency": s.currency,
+            "severity_order": ", ".join(s.severity_order),
+        }]).astype({"horizon_cycles": "Float64", "until_age": "Float64"}),
+        "states": pd.DataFrame(
+            [{"id": st.id, "label": st.label, "qaly_weight": expression_cell(st.qaly_weight),
+              "cost": expression_cell(st.cost), "absorbing": st.absorbing, "alive": st.alive,
+              "negative_cost_allowed": st.negative_cost_allowed} for st in model.states],
+            columns=list(STATE_COLUMNS),
+        ),
+        "actions": pd.DataFrame(
+            [{"id": a.id, "label": a.label,
+              "allowed_in": a.allowed_in if isinstance(a.allowed_in, str)
+              else ", ".join(a.allowed_in),
+              "oneoff_cost": expression_cell(a.oneoff_cost),
+              "oneoff_qaly_loss": expression_cell(a.oneoff_qaly_loss),
+              "cost_per_cycle": expression_cell(a.cost_per_cycle)} for a in model.actions],
+            columns=list(ACTION_COLUMNS),
+        ),
+        "parameters": pd.DataFrame(
+            [{"name": name, "value": p.value, "kind": p.kind, "per_years": p.per_years,
+              "low": p.low, "high": p.high, "distribution": distribution_cell(p.distribution),
+              "source": p.source, "label": p.label, "note": p.note}
+             for name, p in model.parameters.items()],
+            columns=list(PARAMETER_COLUMNS),
+        ).astype({"value": "float64", "per_years": "Float64", "low": "Float64",
+                  "high": "Float64"}),
+    }
+    for kind, table in (("transitions", model.transitions), ("rates", model.rates)):
+        for action_id, rows in table.items():
+            tables[f"{kind}.{action_id}"] = _matrix(model, rows)
+    return tables
+
+
+# -- one table -> model -----------------------------------------------------------------
+def _records(frame: pd.DataFrame) -> list[dict[str, Any]]:
+    return [dict(zip(frame.columns, row, strict=True))
+            for row in frame.itertuples(index=False, name=None)]
+
+
+def _settings(row: dict[str, Any]) -> Settings:
+    cycles = _optional_number(row["horizon_cycles"])
+    return Settings(
+        cycle_years=float(row["cycle_years"]),
+        horizon_cycles=int(cycles) if cycles is not None and cycles.is_integer() else cycles,
+        until_age=_optional_number(row["until_age"]),
+        infinite_horizon=bool(row["infinite_horizon"]),
+        start_age=float(row["start_age"]),
+        start=cell_start(row["start"]),
+        discount_outcomes=float(row["discount_outcomes"]),
+        discount_costs=float(row["discount_costs"]),
+        objective=_text(row["objective"]),
+        willingness_to_pay=float(row["willingness_to_pay"]),
+        within_cycle=_text(row["within_cycle"]),
+        currency=_text(row["currency"]),
+        severity_order=_names(_text(row["severity_order"])),
+    )
+
+
+def _number_or_zero(value: Any) -> float | str:
+    cell = cell_expression(value)
+    return 0.0 if cell is None else cell
+
+
+def _state(row: dict[str, Any]) -> State:
+    return State(
+        id=_text(row["id"]), label=_text(row["label"]),
+        qaly_weight=_number_or_zero(row["qaly_weight"]), cost=_number_or_zero(row["cost"]),
+        absorbing=bool(row["absorbing"]), alive=bool(row["alive"]),
+        negative_cost_allowed=bool(row["negative_cost_allowed"]),
+    )
+
+
+def _action(row: dict[str, Any]) -> Action:
+    allowed = _text(row["allowed_in"]) or ALL_STATES
+    return Action(
+        id=_text(row["id"]), label=_text(row["label"]),
+        allowed_in=allowed if allowed == ALL_STATES else _names(allowed),
+        oneoff_cost=_number_or_zero(row["oneoff_cost"]),
+        oneoff_qaly_loss=_number_or_zero(row["oneoff_qaly_loss"]),
+        cost_per_cycle=_number_or_zero(row["cost_per_cycle"]),
+    )
+
+
+def _parameter(row: dict[str, Any]) -> Parameter:
+    name = _text(row["name"])
+    value = _optional_number(row["value"])
+    return Parameter(
+        name=name, value=math.nan if value is None else value, source=_text(row["source"]),
+        kind=_text(row["kind"]) or "other", per_years=_optional_number(row["per_years"]),
+        low=_optional_number(row["low"]), high=_optional_number(row["high"]),
+        distribution=cell_distribution(row["distribution"], f"parameters.{name}.distribution"),
+        label=_text(row["label"]), note=_text(row["note"]),
+    )
+
+
+def _rows_from_matrix(frame: pd.DataFrame) -> dict[str, dict[str, Any]]:
+    rows: dict[str, dict[str, Any]] = {}
+    for from_id, series in frame.iterrows():
+        row = {str(to): cell for to, value in series.items()
+               if (cell := cell_expression(value)) is not None}
+        if row:
+            rows[str(from_id)] = row
+    return rows
+
+
+def model_with_table(model: Model, name: str, frame: pd.DataFrame) -> Model:
+    """A copy of ``model`` with table ``name`` (a key of :func:`model_to_tables`) replaced.
+
+    Raises
+    ------
+    ModelError
+        When a cell cannot be written to the model file at all (e.g. a start share that is
+        not a number); values that are merely invalid are kept for validation to report.
+    """
+    if name == "settings":
+        return replace(model, settings=_settings(_records(frame)[0]))
+    if name == "states":
+        return replace(model, states=tuple(_state(r) for r in _records(frame)))
+    if name == "actions":
+        return replace(model, actions=tuple(_action(r) for r in _records(frame)))
+    if name == "parameters":
+        params = [_parameter(r) for r in _records(frame)]
+        return replace(model, parameters={p.name: p for p in params})
+    kind, _, action_id = name.partition(".")
+    if kind in ("transitions", "rates") and action_id:
+        table = {k: dict(v) for k, v in getattr(model, kind).items()}
+        table[action_id] = _rows_from_matrix(frame)
+        return replace(model, **{kind: table})
+    raise KeyError(f"unknown model table {name!r}; expected one of settings, states, actions, "
+                   "parameters, transitions.<action>, rates.<action>")

@@ -1,0 +1,210 @@
+"""Model view: open, upload or start a model, edit its tables, see problems, download.
+
+Every edit replaces the working model text and is autosaved, valid or not; problems are
+shown beside the table they concern (by the table path of each problem).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import streamlit as st
+
+from caredecide.compiled import WITHIN_CYCLE_METHODS
+from caredecide.errors import ModelError
+from caredecide.model import OBJECTIVES, PARAMETER_KINDS
+from caredecide.modelfile import dumps_model
+from ui import common, drafts
+from ui.tables import model_to_tables, model_with_table
+from ui.templates import TEMPLATES
+
+BUNDLED = Path(__file__).resolve().parents[2] / "synthetic_cohort" / "models"
+
+
+def _bundled_models() -> dict[str, Path]:
+    return {p.name: p for p in sorted(BUNDLED.glob("*.toml"))}
+
+
+# -- callbacks (state changes happen here) -----------------------------------------------
+def _open_bundled() -> None:
+    path = _bundled_models()[st.session_state["open_bundled_choice"]]
+    common.open_model(str(path.resolve()), common.read_model_file(path))
+
+
+def _open_template() -> None:
+    name = st.session_state["open_template_choice"]
+    common.open_model(f"template:{name}", TEMPLATES[name])
+
+
+def _open_upload() -> None:
+    upload = st.session_state.get("open_upload_file")
+    if upload is None:
+        return
+    try:
+        text = common.decode_upload(upload.name, upload.getvalue())
+    except ModelError as error:
+        st.session_state["cd_upload_error"] = str(error)
+        return
+    st.session_state.pop("cd_upload_error", None)
+    common.open_model(f"upload:{upload.name}", text)
+
+
+def _open_draft() -> None:
+    source = st.session_state["open_draft_choice"]
+    draft = drafts.load_draft(source)
+    if draft is not None:
+        common.open_model(source, draft.text)
+
+
+def _discard_draft() -> None:
+    source = common.working_source()
+    drafts.discard_draft(source)
+    kind = source.partition(":")[0]
+    if kind == "template":
+        text = TEMPLATES.get(source.partition(":")[2], "")
+    elif kind == "upload":
+        text = common.working_text()  # the uploaded bytes are gone; keep what is shown
+    else:
+        text = common.read_model_file(Path(source))
+    common.open_model(source, text)
+
+
+# -- opening -----------------------------------------------------------------------------
+def _open_panel() -> None:
+    with st.expander("Open another model", expanded=False):
+        bundled, upload, template, recovered = st.columns(4)
+        with bundled:
+            st.selectbox("Bundled synthetic model", list(_bundled_models()),
+                         key="open_bundled_choice")
+            st.button("Open", key="open_bundled_button", on_click=_open_bundled)
+        with upload:
+            st.file_uploader(
+                "Upload a model file (TOML, at most 1 MB)", type=["toml"],
+                key="open_upload_file", on_change=_open_upload, max_upload_size=1,
+            )
+            if error := st.session_state.get("cd_upload_error"):
+                st.error(error)
+        with template:
+            st.selectbox("Start from a template", list(TEMPLATES), key="open_template_choice")
+            st.button("Start", key="open_template_button", on_click=_open_template)
+        with recovered:
+            others = [d for d in drafts.list_drafts() if d.source != common.working_source()]
+            labels = {d.source: f"{common.source_label(d.source)} ({d.saved_at})" for d in others}
+            if labels:
+                st.selectbox("Recovered drafts", list(labels), format_func=labels.get,
+                             key="open_draft_choice")
+                st.button("Open draft", key="open_draft_button", on_click=_open_draft)
+            else:
+                st.caption("No other autosaved drafts.")
+
+
+# -- editing -----------------------------------------------------------------------------
+COLUMN_CONFIG = {
+    "settings": {
+        "objective": st.column_config.SelectboxColumn(options=list(OBJECTIVES)),
+        "within_cycle": st.column_config.SelectboxColumn(options=list(WITHIN_CYCLE_METHODS)),
+        "horizon_cycles": st.column_config.NumberColumn(step=1),
+        "start": st.column_config.TextColumn(help="A state id, or shares: a = 0.6, b = 0.4"),
+        "severity_order": st.column_config.TextColumn(help="State ids, mildest first"),
+    },
+    "parameters": {
+        "kind": st.column_config.SelectboxColumn(options=list(PARAMETER_KINDS)),
+        "distribution": st.column_config.TextColumn(
+            help='An inline table, e.g. { type = "beta", mean = 0.1, se = 0.02 }'),
+        "source": st.column_config.TextColumn(help="Where the estimate comes from (required)"),
+    },
+}
+
+
+def _edited(key: str) -> bool:
+    state = st.session_state.get(key)
+    return isinstance(state, dict) and any(
+        state.get(part) for part in ("edited_rows", "added_rows", "deleted_rows")
+    )
+
+
+def _table_editor(model, name: str, frame, problems) -> None:
+    """One keyed data editor; an edit is written to the working text at once."""
+    key = common.widget_key(f"table_{name}")
+    dynamic = name in ("states", "actions", "parameters")
+    edited = st.data_editor(
+        frame, key=key, num_rows="dynamic" if dynamic else "fixed",
+        hide_index=not name.startswith(("transitions.", "rates.")),
+        column_config=COLUMN_CONFIG.get(name), width="stretch",
+    )
+    common.show_problems(common.problems_under(problems, name))
+    if _edited(key):
+        try:
+            new_model = model_with_table(model, name, edited)
+        except ModelError as error:  # cannot be written at all: keep it in the editor
+            common.show_problems(error.problems)
+            return
+        common.edit_model_text(dumps_model(new_model))
+        st.rerun()
+
+
+def _text_editor(problems) -> None:
+    key = common.widget_key("model_text")
+    text = st.text_area("Model file (TOML)", value=common.working_text(), key=key, height=500)
+    common.show_problems([p for p in problems if p.line is not None])  # TOML syntax
+    if text != common.working_text():
+        common.edit_model_text(text)
+        st.rerun()
+
+
+# -- the page -----------------------------------------------------------------------------
+st.title("Model")
+if error := st.session_state.pop("cd_startup_error", None):
+    st.error(f"Could not open the startup model: {error}")
+if notice := st.session_state.get(common.NOTICE_KEY):
+    left, right = st.columns([4, 1])
+    left.info(notice, icon=":material/history:")
+    right.button("Discard draft, reopen the original", key="discard_draft_button",
+                 on_click=_discard_draft)
+if error := st.session_state.get("cd_autosave_error"):
+    st.error(f"Autosave failed: {error}")
+
+_open_panel()
+text = common.working_text()
+st.download_button(
+    "Download the model file", data=text.encode("utf-8"), key="download_model",
+    file_name=Path(common.source_label(common.working_source()).split(" ")[0]).stem + ".toml",
+    mime="application/toml",
+)
+checked = common.current_check()
+problems = checked.problems
+if problems:
+    st.error(f"{len(problems)} problem(s) in {common.file_label()}; each is shown beside its "
+             "table. Your edits are kept and autosaved.", icon=":material/error:")
+else:
+    st.success(f"{common.file_label()} is valid (autosaved).", icon=":material/check_circle:")
+TABLE_PREFIXES = ("settings", "states", "actions", "parameters", "transitions", "rates")
+common.show_problems([p for p in problems if not p.where.startswith(TABLE_PREFIXES)])
+
+readable = common.read_model(text, common.file_label(), common.base_folder())
+tables = model_to_tables(readable.model) if readable.model is not None else {}
+matrices = [n for n in tables if n.startswith(("transitions.", "rates."))]
+tabs = st.tabs(["Settings", "States", "Actions", "Parameters", "Transitions", "Model file"])
+if readable.model is None:
+    for tab in tabs[:5]:
+        with tab:
+            st.warning("The model file text cannot be read into tables; fix the problems in "
+                       "the Model file tab.")
+            common.show_problems(list(readable.problems))
+else:
+    model = readable.model
+    for tab, name in zip(tabs[:4], ("settings", "states", "actions", "parameters"), strict=True):
+        with tab:
+            _table_editor(model, name, tables[name], problems)
+    with tabs[4]:
+        st.caption("Rows: from-state; columns: to-state. A cell holds a probability per cycle "
+                   "(transitions) or a rate per year (rates): a number, an expression, or "
+                   "'rest' for the remainder. Empty = no transition.")
+        for name in matrices:
+            st.subheader(name)
+            _table_editor(model, name, tables[name], problems)
+        others = [p for p in problems if p.where.startswith(("transitions", "rates"))
+                  and not any(p.where.startswith(n) for n in matrices)]
+        common.show_problems(others)
+with tabs[5]:
+    _text_editor(problems)

@@ -1,0 +1,113 @@
+"""Policy view: the best action per state and age, how close each choice is, values,
+the cohort trace and totals under that policy (all computed by caredecide)."""
+
+from __future__ import annotations
+
+import streamlit as st
+
+from caredecide.errors import CaredecideError
+from caredecide.model import OBJECTIVES
+from ui import charts, common
+
+OBJECTIVE_NAMES = {"net_benefit": "Net monetary benefit", "qalys": "QALYs"}
+
+model = common.valid_model_or_stop()
+settings = model.settings
+st.title("Policy")
+
+left, right, _ = st.columns([1, 1, 2])
+kind = left.selectbox(
+    "Objective", list(OBJECTIVES), index=list(OBJECTIVES).index(settings.objective),
+    format_func=OBJECTIVE_NAMES.get, key="policy_objective",
+)
+willingness_to_pay = float(settings.willingness_to_pay)
+if kind == "net_benefit":
+    willingness_to_pay = right.number_input(
+        f"Willingness to pay ({settings.currency or 'money'} per QALY)", min_value=0.0,
+        value=willingness_to_pay, step=1000.0, key="policy_wtp",
+    )
+
+try:
+    with st.spinner("Solving the model..."):
+        solved = common.solve_model(common.working_text(), common.file_label(),
+                                    common.base_folder(), kind, float(willingness_to_pay))
+except CaredecideError as error:
+    st.error(str(error), icon=":material/error:")
+    st.stop()
+result = solved.result
+unit = "QALYs" if kind == "qalys" else (settings.currency or "money")
+if not result.success:
+    st.warning(result.message)
+
+# -- totals -------------------------------------------------------------------------------
+totals = solved.totals.iloc[0]
+st.subheader("Totals per person under the best policy (discounted)")
+cols = st.columns(4)
+cols[0].metric("Life-years", f"{totals['life_years']:,.4f}")
+cols[1].metric("QALYs", f"{totals['qalys']:,.4f}")
+cols[2].metric(f"Costs ({settings.currency or 'money'})", f"{totals['costs']:,.2f}")
+cols[3].metric(f"Net monetary benefit at {willingness_to_pay:,.0f}",
+               f"{totals['net_monetary_benefit']:,.2f}")
+
+# -- structure ---------------------------------------------------------------------------
+st.subheader("What the policy says")
+try:
+    st.markdown(str(result.structure()))
+except ModuleNotFoundError:  # caredecide.structure not installed in this tree yet
+    st.caption("The plain-language summary needs caredecide.structure.")
+
+# -- heat maps ---------------------------------------------------------------------------
+labels = {a.id: a.label or a.id for a in model.actions}
+state_labels = {s.id: s.label or s.id for s in model.states}
+frame = result.to_frame()
+decision_ids = [s for s, d in zip(result.state_ids, result.decision_states, strict=True) if d]
+if result.finite_horizon:
+    frame["age"] = frame["age"].round(2)
+else:
+    frame["age"] = "any age"
+choices = frame[frame["state"].isin(decision_ids)].assign(
+    label=lambda f: f["action"], action=lambda f: f["action"].map(labels)
+)
+st.altair_chart(
+    charts.make_policy_chart(choices, action_order=[labels[a] for a in result.action_ids],
+                             state_order=decision_ids),
+    key="policy_chart",
+)
+st.caption("Each cell names the action (" + "; ".join(f"{a} = {labels[a]}"
+           for a in result.action_ids) + ").")
+
+st.subheader("Where the choice is close")
+threshold = st.number_input(
+    f"Call a choice close when the action gap is below ({unit})", min_value=0.0,
+    value=0.01 if kind == "qalys" else 100.0, key="policy_close_threshold",
+)
+gaps = choices.assign(close=choices["indifferent"] | (choices["action_gap"] <= threshold))
+st.altair_chart(charts.make_action_gap_chart(gaps, state_order=decision_ids, unit=unit),
+                key="gap_chart")
+closest = gaps.nsmallest(10, "action_gap")[
+    ["age", "state", "action", "next_best_action", "action_gap", "indifferent"]
+]
+st.dataframe(closest, hide_index=True, key="closest_table")
+
+# -- values and trace --------------------------------------------------------------------
+st.subheader("Value per state")
+values = frame[["state", "age", "value"]]
+if result.finite_horizon:
+    values = values.assign(age=frame["age"].astype(float))
+else:
+    values = values.assign(age=0.0)
+alive = [s.id for s in model.states if s.alive]
+st.altair_chart(
+    charts.make_value_chart(values[values["state"].isin(alive)], state_order=alive, unit=unit),
+    key="value_chart",
+)
+st.caption("Values are expected discounted outcomes from that state and age on, in present "
+           "value at the model start.")
+
+st.subheader("Cohort trace")
+st.altair_chart(charts.make_trace_chart(solved.trace, state_order=list(result.state_ids)),
+                key="trace_chart")
+with st.expander("Tables"):
+    st.dataframe(frame.assign(state_label=frame["state"].map(state_labels)), hide_index=True,
+                 key="policy_table")
+    st.dataframe(solved.totals, hide_index=True, key="totals_table")
