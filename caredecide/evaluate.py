@@ -303,7 +303,8 @@ def _outcome(compiled, objective, trace, totals, flows, terminal, ages, finite) 
         life_years_undiscounted=totals["life_years_undiscounted"],
         qalys_undiscounted=totals["qalys_undiscounted"],
         costs_undiscounted=totals["costs_undiscounted"],
-        net_monetary_benefit=wtp * totals["qalys"] - totals["costs"],
+        # WTP 0 must not turn an infinite QALY total into NaN (0 * inf).
+        net_monetary_benefit=(wtp * totals["qalys"] if wtp else 0.0) - totals["costs"],
         value=combine(objective, totals["qalys"], totals["costs"]) + terminal,
         flows={name: flows[name] for name in _QUANTITIES},
         objective=objective,

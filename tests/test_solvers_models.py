@@ -37,11 +37,14 @@ def make_compiled(
     action_ids: tuple[str, ...] | None = None,
     cycle_length: float = 1.0,
     start_age: float = 0.0,
+    life_years=None,
 ) -> CompiledModel:
     """A CompiledModel from core arrays; missing axes (draw, time) are added with length 1.
 
     transition: (A, S, S), (Tp, A, S, S) or (D, Tp, A, S, S); state_qaly/cost: (S,),
     (Tq, S) or (D, Tq, S); decision_qaly/cost: (S, A), (Td, S, A) or (D, Td, S, A).
+    Absorbing states default to those that keep the whole cohort under every action;
+    life-years default to the cycle length in every other state.
     """
     P = _with_draw_and_time(transition, 3)
     D = P.shape[0]
@@ -67,7 +70,10 @@ def make_compiled(
         state_cost=occ(state_cost),
         decision_qaly=dec(decision_qaly),
         decision_cost=dec(decision_cost),
-        life_years=np.ones(S) * cycle_length,
+        life_years=(
+            cycle_length * ~np.asarray(absorbing, bool) if life_years is None
+            else np.asarray(life_years, float)
+        ),
         start_distribution=(
             np.eye(S)[0] if start_distribution is None else np.asarray(start_distribution, float)
         ),

@@ -82,9 +82,10 @@ def decision_parts(
 
 def combine(objective: Objective, qalys: np.ndarray, costs: np.ndarray) -> np.ndarray:
     """Objective value of QALYs and costs: ``lambda * qalys - costs`` (or ``qalys``)."""
+    outcome_part = objective.outcome_weight * qalys if objective.outcome_weight else 0.0 * costs
     if objective.cost_weight:
-        return objective.outcome_weight * qalys - objective.cost_weight * costs
-    return objective.outcome_weight * qalys
+        return outcome_part - objective.cost_weight * costs
+    return outcome_part
 
 
 def occupancy_reward(
