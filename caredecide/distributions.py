@@ -124,6 +124,19 @@ def _ordered(low: float, high: float, where: str) -> None:
 
 
 # ------------------------------------------------------------------ method of moments
+def _representable(
+    kind: str, parameters: tuple[float, float], mean: float, se: float, where: str
+) -> tuple[float, float]:
+    """``parameters`` unless the fit overflowed or underflowed in floating point."""
+    if not all(math.isfinite(p) and p > 0 for p in parameters):
+        raise _error(
+            where,
+            f"a {kind} with mean = {mean!r} and se = {se!r} has parameters {parameters} "
+            "that floating point cannot hold; use a fixed value or a wider se",
+        )
+    return parameters
+
+
 def beta_from_mean_se(mean: float, se: float, *, where: str = "") -> tuple[float, float]:
     """Beta ``(alpha, beta)`` with the given mean and standard error (method of moments).
 
@@ -141,8 +154,8 @@ def beta_from_mean_se(mean: float, se: float, *, where: str = "") -> tuple[float
             f"a beta with mean = {m!r} and se = {s!r} is impossible: needs "
             f"se^2 < mean (1 - mean) = {m * (1.0 - m):.6g}, i.e. se < {math.sqrt(m * (1 - m)):.6g}",
         )
-    alpha = m * (m * (1.0 - m) / (s * s) - 1.0)
-    return alpha, alpha * (1.0 - m) / m
+    alpha = m * (m * (1.0 - m) / s / s - 1.0)
+    return _representable("beta", (alpha, alpha * (1.0 - m) / m), m, s, where)
 
 
 def gamma_from_mean_se(mean: float, se: float, *, where: str = "") -> tuple[float, float]:
@@ -155,7 +168,7 @@ def gamma_from_mean_se(mean: float, se: float, *, where: str = "") -> tuple[floa
     s = _number(se, where, "se")
     _positive(m, where, "mean", "a gamma is for positive quantities such as costs")
     _positive(s, where, "se", "a standard error")
-    return m * m / (s * s), s * s / m
+    return _representable("gamma", ((m / s) ** 2, s / m * s), m, s, where)
 
 
 def lognormal_from_mean_se(mean: float, se: float, *, where: str = "") -> tuple[float, float]:
@@ -216,11 +229,18 @@ def _match_interval(
         a, b = np.exp(log_params)
         return scipy.stats.beta(a, b) if kind == "beta" else scipy.stats.gamma(a, scale=b)
 
-    def residual(log_params: np.ndarray) -> np.ndarray:
-        return frozen(log_params).cdf(target) - q
+    z_target = scipy.stats.norm.ppf(q)
 
-    solution = scipy.optimize.root(residual, np.log(start), method="hybr")
-    found = frozen(solution.x).ppf(q)
+    def residual(log_params: np.ndarray) -> np.ndarray:
+        # Normal scores keep the far tails (level near 1) as well conditioned as the middle.
+        # The upper tail goes through the survival function so it does not round to 1.
+        dist = frozen(log_params)
+        scores = [scipy.stats.norm.ppf(dist.cdf(low)), scipy.stats.norm.isf(dist.sf(high))]
+        return np.array(scores) - z_target
+
+    with np.errstate(all="ignore"):
+        solution = scipy.optimize.root(residual, np.log(start), method="hybr")
+        found = frozen(solution.x).ppf(q)
     if not np.all(np.isfinite(found)) or np.abs(found - target).max() > _INTERVAL_TOLERANCE * (
         high - low
     ):
@@ -249,7 +269,10 @@ def beta_from_interval(
     if not (0.0 < lo and hi < 1.0):
         raise _error(where, f"a beta interval needs 0 < low < high < 1; got [{lo!r}, {hi!r}]")
     m, s = (lo + hi) / 2.0, (hi - lo) / (2.0 * z)
-    start = beta_from_mean_se(m, s) if s * s < m * (1.0 - m) else (1.0, 1.0)
+    try:
+        start = beta_from_mean_se(m, s)
+    except DistributionError:  # the interval is wider than any beta's moments allow
+        start = (1.0, 1.0)
     return _match_interval("beta", lo, hi, lev, start, where)
 
 
@@ -339,6 +362,8 @@ class Distribution:
                 "Distribution",
                 f"{self.kind} parameters are {_NATURAL[self.kind]}; got {names}",
             )
+        for name, value in self.parameters:
+            _number(value, "Distribution", name)
         _check_natural(self.kind, self.params, "Distribution")
 
     @property
@@ -587,11 +612,11 @@ def dirichlet_from_counts(
         ``alpha_i = n_i + prior``; mean ``n_i / N`` and variance
         ``n_i (N - n_i) / (N^2 (N + 1))`` when ``prior`` is 0.
     """
-    spec = {"type": "dirichlet", "counts": dict(counts), "prior": prior}
-    return _dirichlet(counts, prior, spec, where)
+    return _dirichlet(counts, prior, None, where)
 
 
-def _dirichlet(counts: object, prior: object, spec: dict, where: str) -> DirichletGroup:
+def _dirichlet(counts: object, prior: object, spec: dict | None, where: str) -> DirichletGroup:
+    """Validate and build; ``spec`` None means the counts-and-prior table."""
     if not isinstance(counts, Mapping) or len(counts) < 2:
         raise _error(where, f"counts must be a table of at least two destinations; got {counts!r}")
     add = _number(prior, where, "prior")
@@ -602,7 +627,7 @@ def _dirichlet(counts: object, prior: object, spec: dict, where: str) -> Dirichl
     negative = values < 0
     if negative.any():
         i = int(np.argmax(negative))
-        raise _error(where, f"counts.{members[i]} = {values[i]!r} must be >= 0")
+        raise _error(where, f"counts.{members[i]} = {float(values[i])!r} must be >= 0")
     alpha = values + add
     empty = alpha <= 0
     if empty.any():
@@ -613,6 +638,8 @@ def _dirichlet(counts: object, prior: object, spec: dict, where: str) -> Dirichl
             "be > 0; give a prior (e.g. prior = 1) or drop the destination",
         )
     alpha.setflags(write=False)
+    if spec is None:
+        spec = {"type": "dirichlet", "counts": dict(counts), "prior": prior}
     return DirichletGroup(members=members, alpha=alpha, spec=copy.deepcopy(spec))
 
 
