@@ -563,7 +563,8 @@ class DirichletGroup:
     members : tuple of str, length k
         Destination names, in the order of every array below.
     alpha : numpy.ndarray, shape (k,)
-        Concentration parameters (counts plus prior), all > 0; read-only.
+        Concentration parameters (counts plus prior), >= 0 with a positive sum; read-only.
+        A member with alpha 0 (never observed, no prior) is always 0.
     spec : dict
         The table it was built from (see :meth:`to_spec`).
     """
@@ -599,7 +600,8 @@ def dirichlet_from_counts(
     Parameters
     ----------
     counts : Mapping[str, float]
-        Observed moves from one state to each destination, >= 0; at least two members.
+        Observed moves from one state to each destination, >= 0; at least two members
+        and a positive total (counts plus prior).
     prior : float
         Added to every count (>= 0); e.g. 1 for a uniform prior, so unobserved moves
         stay possible.
@@ -629,13 +631,11 @@ def _dirichlet(counts: object, prior: object, spec: dict | None, where: str) -> 
         i = int(np.argmax(negative))
         raise _error(where, f"counts.{members[i]} = {float(values[i])!r} must be >= 0")
     alpha = values + add
-    empty = alpha <= 0
-    if empty.any():
-        i = int(np.argmax(empty))
+    if not alpha.sum() > 0:
         raise _error(
             where,
-            f"counts.{members[i]} is 0 and prior is {add!r}: every count plus prior must "
-            "be > 0; give a prior (e.g. prior = 1) or drop the destination",
+            f"counts sum to 0 and prior is {add!r}: a Dirichlet needs a positive total; "
+            "give the observed counts or a prior (e.g. prior = 1)",
         )
     alpha.setflags(write=False)
     if spec is None:

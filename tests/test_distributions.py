@@ -119,18 +119,13 @@ def test_fitted_beta_reproduces_mean_and_se(mean, fraction):
     assert math.sqrt(dist.variance()) == pytest.approx(se, rel=1e-9)
 
 
+@pytest.mark.parametrize("kind", ["gamma", "lognormal"])
 @given(mean=st.floats(1e-3, 1e6), ratio=st.floats(1e-3, 10.0))
-def test_fitted_gamma_reproduces_mean_and_se(mean, ratio):
+def test_fitted_gamma_and_lognormal_reproduce_mean_and_se(kind, mean, ratio):
+    # Method of moments for the gamma (Briggs, Claxton & Sculpher 2006, from memory) and
+    # lognormal moments (common practice): the fit has exactly the requested mean and se.
     se = ratio * mean
-    dist = distribution_from_spec({"type": "gamma", "mean": mean, "se": se})
-    assert dist.mean() == pytest.approx(mean, rel=1e-9)
-    assert math.sqrt(dist.variance()) == pytest.approx(se, rel=1e-9)
-
-
-@given(mean=st.floats(1e-3, 1e6), ratio=st.floats(1e-3, 10.0))
-def test_fitted_lognormal_reproduces_mean_and_se(mean, ratio):
-    se = ratio * mean
-    dist = distribution_from_spec({"type": "lognormal", "mean": mean, "se": se})
+    dist = distribution_from_spec({"type": kind, "mean": mean, "se": se})
     assert dist.mean() == pytest.approx(mean, rel=1e-9)
     assert math.sqrt(dist.variance()) == pytest.approx(se, rel=1e-9)
 
@@ -250,6 +245,17 @@ def test_dirichlet_prior_added_to_counts():
     group = dirichlet_from_counts({"stable": 8, "dead": 0}, prior=1.0)
     np.testing.assert_array_equal(group.alpha, [9.0, 1.0])
     np.testing.assert_allclose(group.mean(), [0.9, 0.1])
+
+
+def test_dirichlet_unobserved_destination_without_prior():
+    # Briggs, Ades & Price 2003: mean n_i / N = 0 and variance 0 for n_i = 0; numpy's
+    # Generator.dirichlet gives that member 0 in every draw.
+    group = dirichlet_from_counts({"stable": 6, "worse": 0, "dead": 2})
+    np.testing.assert_allclose(group.mean(), [0.75, 0.0, 0.25])
+    np.testing.assert_allclose(group.variance(), [6 * 2 / (64 * 9), 0.0, 2 * 6 / (64 * 9)])
+    draws = group.sample(np.random.default_rng(5), 1000)
+    assert (draws[:, 1] == 0).all()
+    np.testing.assert_allclose(draws.sum(axis=1), 1.0, atol=1e-12)
 
 
 def test_dirichlet_samples():
@@ -434,7 +440,7 @@ def test_error_scipy_of_fixed():
         ({"stable": 3}, 0.0, ("at least two destinations",)),
         ([3, 4], 0.0, ("at least two destinations", "[3, 4]")),
         ({"stable": 3, "dead": -1}, 0.0, ("counts.dead = -1.0 must be >= 0",)),
-        ({"stable": 3, "dead": 0}, 0.0, ("counts.dead is 0 and prior is 0.0", "prior = 1")),
+        ({"stable": 0, "dead": 0}, 0.0, ("counts sum to 0 and prior is 0.0", "prior = 1")),
         ({"stable": 3, "dead": 1}, -0.5, ("prior = -0.5 must be >= 0",)),
         ({"stable": 3, "dead": "two"}, 0.0, ("counts.dead = 'two' is not a number",)),
     ],
