@@ -70,5 +70,17 @@ class Objective:
             return "discounted QALYs"
         return f"net monetary benefit at {self.willingness_to_pay:g} per QALY"
 
+    @classmethod
+    def from_settings(cls, settings: object, willingness_to_pay: float | None = None) -> Objective:
+        """The objective a model's ``[settings]`` asks for (``objective``, WTP).
+
+        ``willingness_to_pay`` overrides the model's value when given.
+        """
+        wtp = getattr(settings, "willingness_to_pay", 0.0)
+        return cls(
+            kind=getattr(settings, "objective", "net_benefit"),
+            willingness_to_pay=float(wtp if willingness_to_pay is None else willingness_to_pay),
+        )
+
     def to_dict(self) -> dict:
         return {"kind": self.kind, "willingness_to_pay": float(self.willingness_to_pay)}
