@@ -243,11 +243,16 @@ def _parameter(row: dict[str, Any]) -> Parameter:
     )
 
 
-def _rows_from_matrix(frame: pd.DataFrame) -> dict[str, dict[str, Any]]:
+def _rows_from_matrix(
+    frame: pd.DataFrame, before: dict[str, dict[str, Any]]
+) -> dict[str, dict[str, Any]]:
+    """Matrix back to rows; entries keep their order in the file (new ones go last)."""
     rows: dict[str, dict[str, Any]] = {}
     for from_id, series in frame.iterrows():
-        row = {str(to): cell for to, value in series.items()
-               if (cell := cell_expression(value)) is not None}
+        cells = {str(to): cell for to, value in series.items()
+                 if (cell := cell_expression(value)) is not None}
+        order = [to for to in before.get(str(from_id), {}) if to in cells]
+        row = {to: cells[to] for to in [*order, *(t for t in cells if t not in order)]}
         if row:
             rows[str(from_id)] = row
     return rows
@@ -274,7 +279,7 @@ def model_with_table(model: Model, name: str, frame: pd.DataFrame) -> Model:
     kind, _, action_id = name.partition(".")
     if kind in ("transitions", "rates") and action_id:
         table = {k: dict(v) for k, v in getattr(model, kind).items()}
-        table[action_id] = _rows_from_matrix(frame)
+        table[action_id] = _rows_from_matrix(frame, table.get(action_id, {}))
         return replace(model, **{kind: table})
     raise KeyError(f"unknown model table {name!r}; expected one of settings, states, actions, "
                    "parameters, transitions.<action>, rates.<action>")

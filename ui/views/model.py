@@ -14,15 +14,14 @@ from caredecide.compiled import WITHIN_CYCLE_METHODS
 from caredecide.errors import ModelError
 from caredecide.model import OBJECTIVES, PARAMETER_KINDS
 from caredecide.modelfile import dumps_model
+from synthetic_cohort import MODELS_DIR
 from ui import common, drafts
 from ui.tables import model_to_tables, model_with_table
 from ui.templates import TEMPLATES
 
-BUNDLED = Path(__file__).resolve().parents[2] / "synthetic_cohort" / "models"
-
 
 def _bundled_models() -> dict[str, Path]:
-    return {p.name: p for p in sorted(BUNDLED.glob("*.toml"))}
+    return {p.name: p for p in sorted(MODELS_DIR.glob("*.toml"))}
 
 
 # -- callbacks (state changes happen here) -----------------------------------------------

@@ -1,0 +1,175 @@
+"""The app in Streamlit's AppTest: every view runs, shows the caution and the library's figures.
+
+Edits are simulated the way Streamlit's frontend sends them (a data editor's state dict,
+set before ``run()``). Expected figures are recomputed here through caredecide itself
+(load -> compile -> solve -> evaluate), so the app must show exactly what the library says.
+"""
+
+from __future__ import annotations
+
+import pandas as pd
+import pytest
+from streamlit.dataframe_util import convert_arrow_bytes_to_pandas_df
+from streamlit.testing.v1 import AppTest
+
+from caredecide.cautions import CAUTION_SHORT
+from caredecide.compile import compile_model
+from caredecide.evaluate import evaluate_policy
+from caredecide.modelfile import loads_model
+from caredecide.objective import Objective
+from caredecide.solvers import solve
+from synthetic_cohort import demo_model_path
+from tests.ui.conftest import APP
+from ui import common, drafts
+from ui.templates import TEMPLATES
+
+VIEWS = ("views/model.py", "views/policy.py", "views/convergence.py")
+
+
+def _library(text: str, kind: str, wtp: float, base_dir: str, **solve_options):
+    model = loads_model(text, file="t.toml", base_dir=base_dir)
+    compiled = compile_model(model)
+    objective = Objective(kind, wtp)
+    result = solve(compiled, objective, **solve_options)
+    return result, evaluate_policy(compiled, result.policy, objective).totals()
+
+
+def _demo_dir() -> str:
+    return str(demo_model_path().parent)
+
+
+def _edit(at: AppTest, table: str, edited_rows: dict) -> AppTest:
+    key = f"table_{table}_{at.session_state[common.REVISION_KEY]}"
+    at.session_state[key] = {"edited_rows": edited_rows, "added_rows": [], "deleted_rows": []}
+    return at.run()
+
+
+def _chart_data(at: AppTest, index: int) -> pd.DataFrame:
+    proto = at.get("vega_lite_chart")[index].proto
+    return convert_arrow_bytes_to_pandas_df(proto.datasets[0].data.data)
+
+
+@pytest.mark.parametrize("view", VIEWS)
+def test_every_view_runs_and_shows_the_caution(app, view):
+    app.switch_page(view).run()
+    assert not app.exception, app.exception
+    assert any(CAUTION_SHORT in w.value for w in app.warning)
+
+
+def test_policy_view_shows_the_library_totals_and_policy(app):
+    app.switch_page("views/policy.py").run()
+    text = demo_model_path().read_text(encoding="utf-8")
+    result, totals = _library(text, "net_benefit", 30000.0, _demo_dir())
+    shown = [m.value for m in app.metric]
+    assert shown == [
+        f"{totals['life_years']:,.4f}", f"{totals['qalys']:,.4f}", f"{totals['costs']:,.2f}",
+        f"{totals['net_monetary_benefit']:,.2f}",
+    ]
+    heat_map = _chart_data(app, 0)
+    expected = result.to_frame()
+    expected = expected[expected["state"].isin(heat_map["state"].unique())]
+    assert list(heat_map["label"]) == list(expected["action"])  # the cell text: action ids
+    assert set(heat_map["state"]) == {"stage_1", "stage_2", "stage_3"}  # decision states only
+
+
+def test_wtp_control_changes_the_result_to_the_library_value(app):
+    app.switch_page("views/policy.py").run()
+    app.number_input(key="policy_wtp").set_value(5000.0).run()
+    assert not app.exception
+    text = demo_model_path().read_text(encoding="utf-8")
+    _, totals = _library(text, "net_benefit", 5000.0, _demo_dir())
+    assert app.metric[3].value == f"{totals['net_monetary_benefit']:,.2f}"
+    assert app.metric[3].label == "Net monetary benefit at 5,000"
+
+
+def test_a_table_edit_changes_the_working_model_and_the_result(app):
+    before = app.session_state[common.TEXT_KEY]
+    _edit(app, "parameters", {})  # no-op edit state: nothing changes
+    assert app.session_state[common.TEXT_KEY] == before
+    names = list(loads_model(before, file="t", base_dir=_demo_dir()).parameters)
+    row = names.index("c_drug_year")
+    _edit(app, "parameters", {row: {"value": 5000.0}})
+    assert not app.exception, app.exception
+    after = app.session_state[common.TEXT_KEY]
+    edited = loads_model(after, file="t", base_dir=_demo_dir())
+    assert edited.parameters["c_drug_year"].value == 5000.0
+    app.switch_page("views/policy.py").run()
+    _, totals = _library(after, "net_benefit", 30000.0, _demo_dir())
+    _, totals_before = _library(before, "net_benefit", 30000.0, _demo_dir())
+    assert totals["costs"] != totals_before["costs"]
+    assert app.metric[2].value == f"{totals['costs']:,.2f}"
+
+
+def test_an_invalid_edit_shows_its_error_beside_the_table_and_is_kept(app, private_app_state):
+    _edit(app, "transitions.treat", {0: {"stage_2_tx": "1.5"}})  # row 0 = from stage_1
+    assert not app.exception, app.exception
+    text = app.session_state[common.TEXT_KEY]
+    assert "stage_2_tx = 1.5" in text  # kept in the working model...
+    source = app.session_state[common.SOURCE_KEY]
+    assert drafts.load_draft(source).text == text  # ...and autosaved
+    errors = [e.value for e in app.error]
+    assert any("transitions.treat.stage_1.stage_2_tx" in e and "[0, 1]" in e for e in errors)
+    # The other views refuse to solve and point back to the model view.
+    app.switch_page("views/policy.py").run()
+    assert not app.exception
+    assert any("fix them in the Model view" in e.value for e in app.error)
+
+
+def test_the_autosaved_draft_is_restored_in_a_fresh_session(app):
+    _edit(app, "settings", {0: {"willingness_to_pay": 45000.0}})
+    edited = app.session_state[common.TEXT_KEY]
+    assert "willingness_to_pay = 45000.0" in edited
+    fresh = AppTest.from_file(APP, default_timeout=120).run()
+    assert not fresh.exception
+    assert fresh.session_state[common.TEXT_KEY] == edited
+    assert any("Restored your autosaved draft" in i.value for i in fresh.info)
+    # Discarding the draft reopens the file as saved.
+    fresh.button(key="discard_draft_button").click().run()
+    assert fresh.session_state[common.TEXT_KEY] == demo_model_path().read_text(encoding="utf-8")
+    assert drafts.load_draft(fresh.session_state[common.SOURCE_KEY]) is None
+
+
+def test_broken_model_text_is_kept_and_its_syntax_error_shown_with_the_line(app):
+    key = f"model_text_{app.session_state[common.REVISION_KEY]}"
+    broken = app.session_state[common.TEXT_KEY].replace("[settings]", "[settings", 1)
+    app.text_area(key=key).set_value(broken).run()
+    assert not app.exception, app.exception
+    assert app.session_state[common.TEXT_KEY] == broken
+    assert any("TOML syntax error" in e.value and "line" in e.value for e in app.error)
+
+
+def test_starting_from_a_template_opens_it(app):
+    app.selectbox(key="open_template_choice").set_value("infinite-horizon")
+    app.button(key="open_template_button").click().run()
+    assert not app.exception
+    assert app.session_state[common.SOURCE_KEY] == "template:infinite-horizon"
+    assert app.session_state[common.TEXT_KEY] == TEMPLATES["infinite-horizon"]
+    assert any("is valid" in s.value for s in app.success)
+
+
+def test_convergence_view_steps_through_value_iteration_sweeps(app):
+    app.selectbox(key="open_template_choice").set_value("infinite-horizon")
+    app.button(key="open_template_button").click().run()
+    app.switch_page("views/convergence.py").run()
+    app.radio(key="convergence_method").set_value("value_iteration").run()
+    assert not app.exception, app.exception
+    result, _ = _library(TEMPLATES["infinite-horizon"], "qalys", 0.0, ".",
+                         method="value_iteration", record_history=True, max_iterations=5000)
+    assert app.metric[0].value == str(len(result.history))
+    app.slider(key="convergence_sweep").set_value(3).run()
+    third = result.history[2]
+    assert app.metric[1].value == f"{third.residual[0]:.4g}"
+    assert app.metric[2].value == f"{third.error_bound[0]:.4g}"
+    # The residual chart holds the library's residual for every sweep.
+    residuals = _chart_data(app, 0)
+    shown = residuals[residuals["quantity"] == "residual"]["amount"].to_numpy()
+    assert shown.tolist() == [r.residual[0] for r in result.history if r.residual[0] > 0]
+
+
+def test_convergence_view_on_a_finite_model_uses_backward_induction(app):
+    app.switch_page("views/convergence.py").run()
+    assert not app.exception
+    result, _ = _library(demo_model_path().read_text(encoding="utf-8"), "net_benefit", 30000.0,
+                         _demo_dir(), record_history=True)
+    assert app.metric[0].value == str(result.iterations)
+    assert any("backward induction" in m.value for m in app.markdown)

@@ -1,0 +1,111 @@
+"""Table glue of the model view: lossless round trip, cell conversions, one error per rule."""
+
+from __future__ import annotations
+
+import pandas as pd
+import pytest
+from hypothesis import given
+from hypothesis import strategies as st
+
+from caredecide.errors import ModelError
+from caredecide.modelfile import dumps_model, load_model, loads_model
+from synthetic_cohort import demo_model_path
+from ui import common, tables
+from ui.templates import TEMPLATES
+
+
+def _models():
+    yield load_model(demo_model_path())
+    for name, text in TEMPLATES.items():
+        yield loads_model(text, file=name)
+
+
+@pytest.mark.parametrize("model", list(_models()), ids=["demo", *TEMPLATES])
+def test_every_table_written_back_unchanged_gives_the_same_model_and_text(model):
+    for name, frame in tables.model_to_tables(model).items():
+        rebuilt = tables.model_with_table(model, name, frame)
+        assert rebuilt == model, name
+        assert dumps_model(rebuilt) == dumps_model(model), name
+
+
+def test_transition_matrix_has_from_rows_and_to_columns():
+    model = loads_model(TEMPLATES["treat-or-wait"], file="t")
+    matrix = tables.model_to_tables(model)["transitions.wait"]
+    assert list(matrix.index) == ["early", "late", "treated", "dead"]
+    assert matrix.loc["early", "late"] == "p_progress"
+    assert matrix.loc["early", "dead"] == "0.01"
+    assert matrix.loc["early", "early"] == "rest"
+    assert pd.isna(matrix.loc["dead", "dead"]) or matrix.loc["dead", "dead"] == ""
+
+
+def test_clearing_a_matrix_cell_removes_that_transition():
+    model = loads_model(TEMPLATES["treat-or-wait"], file="t")
+    matrix = tables.model_to_tables(model)["transitions.wait"].copy()
+    matrix.loc["early", "late"] = ""
+    edited = tables.model_with_table(model, "transitions.wait", matrix)
+    assert "late" not in edited.transitions["wait"]["early"]
+    assert edited.transitions["treat"] == model.transitions["treat"]
+
+
+@pytest.mark.parametrize(
+    ("text", "expected"),
+    [("0.25", 0.25), (" 1e-3 ", 0.001), ("p_progress * 2", "p_progress * 2"), ("rest", "rest"),
+     ("", None), ("   ", None), (None, None), (float("nan"), None), (3, 3.0)],
+)
+def test_cell_expression(text, expected):
+    assert tables.cell_expression(text) == expected
+
+
+@given(st.floats(allow_nan=False, allow_infinity=False))
+def test_number_cells_round_trip_exactly(value):
+    assert tables.cell_expression(tables.expression_cell(value)) == value
+
+
+def test_start_shares_round_trip():
+    assert tables.cell_start(tables.start_cell({"a": 0.6, "b": 0.4})) == {"a": 0.6, "b": 0.4}
+    assert tables.cell_start("stage_1") == "stage_1"
+
+
+def test_start_share_that_is_not_a_number_names_the_state():
+    with pytest.raises(ModelError, match=r"settings\.start\.b: 'lots' is not a share"):
+        tables.cell_start("a = 0.6, b = lots")
+
+
+def test_distribution_round_trips_as_an_inline_table():
+    spec = {"type": "beta", "mean": 0.15, "se": 0.04}
+    assert tables.cell_distribution(tables.distribution_cell(spec), "w") == spec
+    assert tables.cell_distribution("", "w") is None
+
+
+def test_distribution_that_is_not_toml_names_the_parameter():
+    with pytest.raises(ModelError, match=r"parameters\.p\.distribution: .* is not an inline"):
+        tables.cell_distribution("{ type = beta }", "parameters.p.distribution")
+
+
+def test_distribution_that_is_not_a_table_names_the_parameter():
+    with pytest.raises(ModelError, match=r"parameters\.p\.distribution: '0\.3' is not an inline"):
+        tables.cell_distribution("0.3", "parameters.p.distribution")
+
+
+def test_unknown_table_name_is_refused():
+    model = loads_model(TEMPLATES["treat-or-wait"], file="t")
+    with pytest.raises(KeyError, match="unknown model table 'groups'"):
+        tables.model_with_table(model, "groups", pd.DataFrame())
+
+
+def test_upload_over_the_size_limit_is_refused_with_its_size():
+    data = b"x" * (common.MAX_MODEL_BYTES + 1)
+    with pytest.raises(ModelError, match=rf"big\.toml: .*{common.MAX_MODEL_BYTES + 1} bytes"):
+        common.decode_upload("big.toml", data)
+
+
+def test_upload_that_is_not_utf8_is_refused_naming_the_byte():
+    with pytest.raises(ModelError, match=r"bin\.toml: .*not UTF-8 text \(byte 2\)"):
+        common.decode_upload("bin.toml", b"ab\xff\xfe")
+
+
+def test_model_file_over_the_size_limit_is_refused(tmp_path):
+    path = tmp_path / "huge.toml"
+    path.write_bytes(b"#" * (common.MAX_MODEL_BYTES + 1))
+    with pytest.raises(ModelError, match=r"huge\.toml: the model file is \d+ bytes"):
+        common.read_model_file(path)
