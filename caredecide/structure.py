@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
 import numpy as np
+import pandas as pd
 
 if TYPE_CHECKING:
     from caredecide.solvers.result import PolicyResult
@@ -194,3 +195,31 @@ def _no_structure(bands) -> PolicyStructure:
     ]
     return PolicyStructure(NO_STRUCTURE, "no simple threshold structure: " + "; ".join(rules),
                            rules, bands)
+
+
+def band_table(result: PolicyResult, draw: int = 0) -> pd.DataFrame:
+    """The policy of one draw as decision states x age bands.
+
+    Consecutive cycles where no decision state changes action are merged into one band,
+    so every column is an age band (``"55-83"``; ``"all ages"`` when nothing changes or
+    the horizon is infinite) and every cell an action id.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Index: decision state ids; columns: age bands.
+    """
+    policy = result.policy[draw][:, result.decision_states]  # (Tpi, decision states)
+    states = [s for s, d in zip(result.state_ids, result.decision_states, strict=True) if d]
+    changes = np.flatnonzero(np.any(np.diff(policy, axis=0) != 0, axis=1)) + 1
+    starts = np.concatenate([[0], changes]).astype(int)
+    ends = np.concatenate([changes, [policy.shape[0]]]).astype(int) - 1
+    ages = result.ages
+    if ages is None or len(starts) == 1:
+        labels = ["all ages"]
+    else:
+        labels = [f"{ages[a]:g}" if a == b else f"{ages[a]:g}-{ages[b]:g}"
+                  for a, b in zip(starts, ends, strict=True)]
+    names = np.asarray(result.action_ids, dtype=object)
+    return pd.DataFrame(names[policy[starts].T], index=pd.Index(states, name="state"),
+                        columns=labels)

@@ -9,7 +9,14 @@ import pytest
 
 from caredecide.objective import Objective
 from caredecide.solvers import solve
-from caredecide.structure import NO_STRUCTURE, PER_STATE, THRESHOLD, UNIFORM, age_bands
+from caredecide.structure import (
+    NO_STRUCTURE,
+    PER_STATE,
+    THRESHOLD,
+    UNIFORM,
+    age_bands,
+    band_table,
+)
 from tests.test_solvers_models import make_compiled
 
 STATES = ("stage_1", "stage_2", "stage_3", "dead")
@@ -116,3 +123,16 @@ def test_infinite_horizon_threshold():
 )
 def test_age_bands_merge_consecutive_cycles(actions, expected):
     assert age_bands(np.array(actions), np.arange(60.0, 64.0)) == expected
+
+
+def test_band_table_merges_cycles_where_no_state_changes():
+    result = _with_policy({"stage_1": [0, 0, 0, 1, 1], "stage_2": [1, 1, 0, 0, 0],
+                           "stage_3": [1] * 5})
+    table = band_table(result)
+    # Changes at the start of cycles 2 (age 62) and 3 (age 63): bands 60-61, 62, 63-64.
+    assert list(table.columns) == ["60-61", "62", "63-64"]
+    assert list(table.index) == ["stage_1", "stage_2", "stage_3"]  # dead is no decision state
+    assert table.loc["stage_1"].tolist() == ["wait", "wait", "treat"]
+    assert table.loc["stage_2"].tolist() == ["treat", "wait", "wait"]
+    infinite = band_table(solve(_staged_model(n_cycles=None), Objective("net_benefit", 1.0)))
+    assert list(infinite.columns) == ["all ages"]
