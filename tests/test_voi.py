@@ -245,7 +245,7 @@ def test_error_net_benefit_not_2d():
 
 
 def test_error_net_benefit_not_numeric():
-    with pytest.raises(ModelError, match="net_benefit: expected a .* array of numbers"):
+    with pytest.raises(ModelError, match=r"net_benefit: expected a .* array of numbers"):
         evpi([["a", "b"]])
 
 
@@ -290,7 +290,7 @@ def test_error_tensor_with_four_parameters():
 
 def test_error_too_few_draws():
     # 5 basis functions need 10 draws each: 40 draws are too few.
-    with pytest.raises(ModelError, match="40 draws are too few .* expected at least 50 draws"):
+    with pytest.raises(ModelError, match=r"40 draws are too few .* expected at least 50 draws"):
         evppi_regression(np.ones((40, 2)), np.linspace(0, 1, 40))
 
 
@@ -300,7 +300,7 @@ def test_error_basis_size_too_small():
 
 
 def test_error_basis_size_too_large_for_draws():
-    with pytest.raises(ModelError, match="100 draws are too few .* with 12 basis functions"):
+    with pytest.raises(ModelError, match=r"100 draws are too few .* with 12 basis functions"):
         evppi_regression(np.ones((100, 2)), np.linspace(0, 1, 100), basis_size=12)
 
 
