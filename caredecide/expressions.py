@@ -246,7 +246,7 @@ def _suggest(name: str, candidates: Collection[str]) -> str:
 
 # --- tokenizer -------------------------------------------------------------------------
 
-_NUMBER = re.compile(r"(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?")
+_NUMBER = re.compile(r"(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?")  # ASCII digits only
 _NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
 _OPERATORS = ("**", "<=", ">=", "==", "!=", "+", "-", "*", "/", "<", ">", "(", ")", ",")
 _WORD_OPERATORS = frozenset({"and", "or", "not"})

@@ -332,6 +332,7 @@ def test_nan_is_never_hidden_by_comparisons_or_logic(text: str) -> None:
         ("a; b", 2, "one expression per value"),
         ("1e999", 1, "too large"),
         ("p € 2", 3, "character '€' is not allowed"),
+        ("\u0663 + 1", 1, "character '\u0663' is not allowed"),  # digits are ASCII only
     ],
 )
 def test_rejected_constructs_name_place_text_and_position(
@@ -547,3 +548,49 @@ def test_random_trees_round_trip_and_hash_by_source(tree: tuple) -> None:
     assert hash(again) == hash(expression)
     assert isinstance(expression, Expression)
     assert expression.is_constant
+
+
+# --- property: one batched evaluation equals element-by-element evaluation ---------------
+_OPERATORS_ON_VARIABLES = ["+", "-", "*", "/", "**", "<", ">=", "==", "and", "or"]
+_variable_trees = st.recursive(
+    st.one_of(
+        st.sampled_from(["x", "y", "0.5", "2", "0"]),
+    ),
+    lambda kids: st.one_of(
+        kids.map(lambda t: f"-({t})"),
+        kids.map(lambda t: f"not ({t})"),
+        st.tuples(st.sampled_from(_OPERATORS_ON_VARIABLES), kids, kids).map(
+            lambda p: f"({p[1]}) {p[0]} ({p[2]})"
+        ),
+        st.tuples(st.sampled_from(["min", "max"]), kids, kids).map(
+            lambda p: f"{p[0]}({p[1]}, {p[2]})"
+        ),
+        st.tuples(kids, kids, kids).map(lambda p: f"when({p[0]}, {p[1]}, {p[2]})"),
+        st.tuples(kids, kids, kids).map(lambda p: f"clip({p[0]}, {p[1]}, {p[2]})"),
+        kids.map(lambda t: f"log({t})"),
+        kids.map(lambda t: f"exp({t})"),
+    ),
+    max_leaves=10,
+)
+_column = st.lists(st.floats(min_value=-5, max_value=5, allow_nan=False), min_size=1, max_size=4)
+
+
+@settings(max_examples=200, deadline=None)
+@given(text=_variable_trees, xs=_column, ys=_column)
+def test_batch_evaluation_equals_elementwise_evaluation(
+    text: str, xs: list[float], ys: list[float]
+) -> None:
+    # Invariant (common practice for vectorized code): evaluating a (D, 1) x (1, T) batch
+    # at once gives, cell by cell, what evaluating each pair of scalars gives.
+    expression = parse_expression(text)
+    x = np.array(xs)[:, None]
+    y = np.array(ys)[None, :]
+    batch = expression.evaluate({"x": x, "y": y})
+    assert batch.shape == np.broadcast_shapes(
+        *[shape for name, shape in (("x", x.shape), ("y", y.shape)) if name in expression.names]
+    )
+    full = np.broadcast_to(batch, (len(xs), len(ys)))
+    for d, x_value in enumerate(xs):
+        for t, y_value in enumerate(ys):
+            single = float(expression.evaluate({"x": x_value, "y": y_value}))
+            np.testing.assert_equal(full[d, t], single, err_msg=text)
