@@ -347,7 +347,8 @@ _EXPECTED_OPERAND = "a number, a parameter name, a function call, '(' or a sign"
 _EXPECTED_OPERATOR = "an operator (+ - * / ** < <= > >= == != and or), ')' or the end"
 
 # Program instructions: ("const", float) ("load", name) ("unary", op) ("binary", op)
-# ("call", name, n_arguments); run in order on a value stack.
+# ("call", name, n_inputs) with n_inputs = written arguments + context variables;
+# run in order on a value stack.
 _Instruction = tuple
 
 
