@@ -25,8 +25,9 @@ first offending value and the expected range. Times are in years unless stated.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
-import scipy.linalg
 
 from caredecide.errors import ModelError, Problem
 
@@ -42,6 +43,10 @@ __all__ = [
     "rescale_probability",
     "survival_to_rate",
 ]
+
+# Uniformization: scale each step so that q t / 2^s <= 1/2, and sum the series to k = 18.
+_UNIFORMIZATION_STEP = 0.5
+_UNIFORMIZATION_TERMS = 18
 
 # Row sums of a generator must be 0; allow round-off relative to the row's largest rate.
 _GENERATOR_ROW_TOLERANCE = 1e-9
@@ -287,11 +292,12 @@ def median_survival_to_rate(median_years: object) -> np.ndarray:
 # ---------------------------------------------------------------------- competing risks
 def _square_stack(value: object, function: str, argument: str) -> np.ndarray:
     matrix = _checked(value, function, argument)
-    if matrix.ndim < 2 or matrix.shape[-1] != matrix.shape[-2]:
+    if matrix.ndim < 2 or matrix.shape[-1] != matrix.shape[-2] or matrix.shape[-1] == 0:
         raise _fail(
             function,
             argument,
-            f"expected an array of square matrices, shape (..., S, S); got shape {matrix.shape}",
+            f"expected an array of square matrices, shape (..., S, S) with S >= 1; "
+            f"got shape {matrix.shape}",
         )
     return matrix
 
@@ -383,7 +389,38 @@ def generator_to_transition(G: object, years: object = 1.0) -> np.ndarray:
     generator = _square_stack(G, function, "G")
     _check_generator(generator, function)
     t = _years(years, function)
-    scaled = generator * t[..., None, None]
-    transition = scipy.linalg.expm(scaled)
-    # expm of a generator is stochastic; clip the last-bit round-off below 0.
-    return np.clip(transition, 0.0, 1.0)
+    return _uniformized_exponential(generator * t[..., None, None])
+
+
+def _uniformized_exponential(Q: np.ndarray) -> np.ndarray:
+    """``expm(Q)`` for a stack of generators ``Q`` (..., S, S), all matrices at once.
+
+    Uniformization (Jensen 1953, Skand Aktuarietidskr 36:87-91; from memory) with
+    scaling and squaring (Moler & Van Loan 2003, SIAM Rev 45(1):3-49): with ``q`` the
+    largest exit rate of a matrix and ``M = I + Q / q`` (a stochastic matrix),
+    ``expm(Q / 2^s) = sum_k Poisson(k; q / 2^s) M^k``, then squared ``s`` times. Every
+    term is non-negative, so there is no cancellation and the result stays stochastic.
+    ``s`` makes ``q / 2^s <= 1/2``; the Poisson tail beyond ``k = 18`` is then below
+    1e-22. A Python loop runs over series terms and squarings only, never over matrices
+    (``scipy.linalg.expm`` loops over a stack one matrix at a time).
+    """
+    n_states = Q.shape[-1]
+    identity = np.eye(n_states)
+    exit_rate = np.maximum(-np.diagonal(Q, axis1=-2, axis2=-1).min(axis=-1), 0.0)
+    largest = float(exit_rate.max(initial=0.0))
+    squarings = max(0, math.ceil(math.log2(largest / _UNIFORMIZATION_STEP))) if largest else 0
+    step_rate = exit_rate / 2.0**squarings  # <= 1/2 for every matrix
+    # A matrix with no exits is its own identity: any q works for M, the weights give I.
+    M = identity + Q / np.where(exit_rate > 0, exit_rate, 1.0)[..., None, None]
+    # Poisson(k; lambda) weights by the recurrence w_k = w_{k-1} lambda / k.
+    k = np.arange(_UNIFORMIZATION_TERMS + 1)
+    ratios = step_rate[..., None] / np.maximum(k, 1)
+    ratios[..., 0] = 1.0
+    weights = np.exp(-step_rate)[..., None] * np.cumprod(ratios, axis=-1)
+    # Horner's rule: P = w_0 I + M (w_1 I + M (w_2 I + ...)).
+    P = weights[..., -1, None, None] * identity
+    for term in range(_UNIFORMIZATION_TERMS - 1, -1, -1):
+        P = weights[..., term, None, None] * identity + M @ P
+    for _ in range(squarings):
+        P = P @ P
+    return np.clip(P, 0.0, 1.0)  # round-off only: every term above is non-negative

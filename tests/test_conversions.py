@@ -242,6 +242,34 @@ def test_batched_generators_match_one_at_a_time():
         np.testing.assert_allclose(P[index], scipy.linalg.expm(G[index] * years), atol=1e-14)
 
 
+@pytest.mark.parametrize("largest_rate", [1e-9, 0.5, 5.0, 1e3])
+def test_matches_scipy_expm_from_slow_to_stiff(largest_rate):
+    # Reference library: scipy.linalg.expm (Pade scaling and squaring). Our uniformized
+    # series loses about 2^s eps in the squarings, s = log2(2 x largest rate x years).
+    rng = np.random.default_rng(int(largest_rate * 1e9) % 2**32)
+    raw = rng.uniform(0.0, largest_rate, size=(50, 6, 6)) * (rng.uniform(size=(50, 6, 6)) < 0.6)
+    G = random_generators(raw)
+    P = generator_to_transition(G, 1.0)
+    tolerance = 1e-15 * max(1.0, 4.0 * largest_rate)
+    np.testing.assert_allclose(P, scipy.linalg.expm(G), rtol=0.0, atol=tolerance)
+
+
+def test_mild_matrix_unaffected_by_a_stiff_neighbour():
+    # The batch shares one number of squarings; a mild matrix next to a stiff one still
+    # matches scipy.linalg.expm.
+    mild = two_exit_generator(0.1, 0.05)
+    stiff = two_exit_generator(500.0, 300.0)
+    P = generator_to_transition(np.stack([mild, stiff]), 1.0)
+    np.testing.assert_allclose(P[0], scipy.linalg.expm(mild), atol=1e-13)
+    np.testing.assert_allclose(P[1], scipy.linalg.expm(stiff), atol=1e-13)
+
+
+def test_no_exits_gives_identity():
+    np.testing.assert_array_equal(
+        generator_to_transition(np.zeros((2, 3, 3)), 5.0), [np.eye(3)] * 2
+    )
+
+
 def test_rates_to_generator_rows_sum_to_zero():
     rates = np.array([[[0.0, 0.2, 0.1], [0.4, 0.0, 0.0], [0.0, 0.0, 0.0]]])
     G = rates_to_generator(rates)
@@ -338,6 +366,8 @@ def test_error_generator_not_square():
         generator_to_transition(np.zeros((2, 3)))
     with raises("rates_to_generator(rates)", "(..., S, S)", "(3,)"):
         rates_to_generator(np.zeros(3))
+    with raises("generator_to_transition(G)", "S >= 1", "(4, 0, 0)"):
+        generator_to_transition(np.zeros((4, 0, 0)))
 
 
 def test_error_generator_negative_off_diagonal_names_row():
