@@ -98,7 +98,7 @@ def make_policy_chart(
         ),
         tooltip=["state:N", "age:O", "action:N"],
     )
-    text = base.mark_text(fontSize=9).encode(
+    text = base.mark_text(fontSize=10, align="left", dx=-5).encode(
         text="label:N",
         color=alt.condition(
             alt.FieldOneOfPredicate(field="action", oneOf=dark or ["\u0000"]),
@@ -106,7 +106,9 @@ def make_policy_chart(
             alt.value("black"),
         ),
     )
-    return alt.layer(cells, text).properties(title="Best action by state and age")
+    return alt.layer(cells, text).properties(
+        title="Best action by state and age", height=alt.Step(28)
+    )
 
 
 def make_action_gap_chart(
