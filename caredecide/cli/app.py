@@ -39,6 +39,7 @@ def streamlit_command(model: Path, port: int, headless: bool) -> tuple[list[str]
         "--server.maxUploadSize=1",
         "--browser.gatherUsageStats=false",
         "--server.fileWatcherType=none",
+        "--client.toolbarMode=minimal",
     ]
     env = dict(os.environ)
     env[MODEL_ENV] = str(model.resolve())

@@ -68,7 +68,11 @@ def test_policy_view_shows_the_library_totals_and_policy(app):
     heat_map = _chart_data(app, 0)
     expected = result.to_frame()
     expected = expected[expected["state"].isin(heat_map["state"].unique())]
-    assert list(heat_map["label"]) == list(expected["action"])  # the cell text: action ids
+    labels = {a.id: a.label for a in loads_model(text, file="t", base_dir=_demo_dir()).actions}
+    assert list(heat_map["action"]) == [labels[a] for a in expected["action"]]
+    # Text labels (not colour alone): the action id where a run of equal choices starts.
+    runs = expected["action"] != expected.groupby("state")["action"].shift()
+    assert list(heat_map["label"]) == list(expected["action"].where(runs, ""))
     assert set(heat_map["state"]) == {"stage_1", "stage_2", "stage_3"}  # decision states only
 
 

@@ -19,8 +19,7 @@ INFINITE_METHODS = {
     "policy_iteration": "Policy iteration",
     "modified_policy_iteration": "Modified policy iteration",
 }
-MAX_SWEEPS = 5_000
-"""Cap on recorded sweeps in this view (the history holds values for every sweep)."""
+MAX_SWEEPS = 5_000  # cap on recorded sweeps: the history holds values for every sweep
 
 model = common.valid_model_or_stop()
 settings = model.settings

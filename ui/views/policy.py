@@ -65,16 +65,18 @@ if result.finite_horizon:
     frame["age"] = frame["age"].round(2)
 else:
     frame["age"] = "any age"
-choices = frame[frame["state"].isin(decision_ids)].assign(
-    label=lambda f: f["action"], action=lambda f: f["action"].map(labels)
-)
+choices = frame[frame["state"].isin(decision_ids)]
+# Write the action where a run of equal choices starts in a row (cells are narrow).
+starts = choices["action"] != choices.groupby("state")["action"].shift()
+choices = choices.assign(label=choices["action"].where(starts, ""),
+                         action=choices["action"].map(labels))
 st.altair_chart(
     charts.make_policy_chart(choices, action_order=[labels[a] for a in result.action_ids],
                              state_order=decision_ids),
     key="policy_chart",
 )
-st.caption("Each cell names the action (" + "; ".join(f"{a} = {labels[a]}"
-           for a in result.action_ids) + ").")
+legend = "; ".join(f"{a} = {labels[a]}" for a in result.action_ids)
+st.caption(f"The action is written where a run of equal choices starts ({legend}).")
 
 st.subheader("Where the choice is close")
 threshold = st.number_input(

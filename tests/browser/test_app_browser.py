@@ -1,0 +1,52 @@
+"""End to end: ``caredecide app`` in a real headless Chromium, every view, no exception.
+
+Screenshots of each view go to ``test-artifacts/``.
+"""
+
+from __future__ import annotations
+
+import pytest
+
+from caredecide.cautions import CAUTION_SHORT
+
+pytestmark = pytest.mark.browser
+
+# The model view is the default page, served at the app's root.
+VIEWS = [("", "Model"), ("policy", "Policy"), ("convergence", "Convergence")]
+DONE = "[data-testid='stApp'][data-test-script-state='notRunning']"
+TIMEOUT_MS = 90_000
+
+
+def _wait_until_done(page, title: str) -> None:
+    """Wait for the view's title, then for the script to finish with nothing left loading."""
+    page.get_by_role("heading", name=title, exact=True).first.wait_for(timeout=TIMEOUT_MS)
+    page.wait_for_selector(DONE, timeout=TIMEOUT_MS)
+    page.wait_for_function(
+        "() => document.querySelectorAll(\"[data-testid='stSkeleton']\").length === 0",
+        timeout=TIMEOUT_MS,
+    )
+    page.wait_for_selector(DONE, timeout=TIMEOUT_MS)
+
+
+@pytest.mark.parametrize(("url_path", "title"), VIEWS)
+def test_each_view_renders_without_exception(app_url, page, artifacts, url_path, title):
+    page.goto(f"{app_url}/{url_path}", timeout=TIMEOUT_MS)
+    _wait_until_done(page, title)
+    if url_path:  # charts are drawn after the script: wait for the first canvas
+        page.locator("[data-testid='stVegaLiteChart'] canvas, "
+                     "[data-testid='stVegaLiteChart'] svg").first.wait_for(timeout=TIMEOUT_MS)
+    page.screenshot(path=str(artifacts / f"app-{url_path or 'model'}.png"), full_page=True)
+    assert page.locator("[data-testid='stException']").count() == 0
+    assert page.get_by_text("Page not found").count() == 0
+    assert page.get_by_text(CAUTION_SHORT, exact=False).first.is_visible()
+
+
+def test_sidebar_navigation_reaches_every_view(app_url, page):
+    page.goto(app_url, timeout=TIMEOUT_MS)
+    _wait_until_done(page, "Model")
+    for url_path, title in VIEWS[1:]:
+        page.locator(f"[data-testid='stSidebarNav'] a[href$='/{url_path}']").click()
+        _wait_until_done(page, title)
+        assert page.url.rstrip("/").endswith(url_path)
+        assert page.locator("[data-testid='stException']").count() == 0
+        assert page.get_by_text("Page not found").count() == 0
