@@ -26,6 +26,7 @@ class SweepRecord:
         Cycle whose values the sweep computed (backward induction), else None.
     value : (D, S) float
         Values after the sweep (objective units; present value at the model start).
+        Infinite horizon: start-of-cycle convention, before the within-cycle correction.
     policy : (D, S) int
         Greedy policy at that sweep (lowest action index among exact ties).
     residual : (D,) float
