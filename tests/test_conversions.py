@@ -65,6 +65,7 @@ def test_conversions_broadcast_over_arrays():
     np.testing.assert_allclose(result[:, 0], [0.0951626, 0.2], atol=PUBLISHED_7)
 
 
+@settings(deadline=None)
 @given(rate=rates, years=periods)
 def test_rate_probability_round_trip(rate, years):
     # Inverse functions by construction (common practice). Beyond r t = 15 the probability
@@ -74,6 +75,7 @@ def test_rate_probability_round_trip(rate, years):
     assert probability_to_rate(p, years) == pytest.approx(rate, rel=1e-7, abs=1e-12)
 
 
+@settings(deadline=None)
 @given(p=probabilities, a=periods, b=periods, c=periods)
 def test_rescale_composes(p, a, b, c):
     # A constant rate makes rescaling transitive: a -> b -> c equals a -> c (common practice).
@@ -99,6 +101,7 @@ def test_relative_risk_above_one_stays_a_probability():
     assert apply_relative_risk(0.6, 2.0) == pytest.approx(0.84, abs=1e-15)
 
 
+@settings(deadline=None)
 @given(p=probabilities, ratio=ratios, years=periods)
 def test_hazard_ratio_is_relative_risk_and_period_free(p, ratio, years):
     # One rule for both; the period cancels (rate r = -ln(1-p)/t scaled then converted back).
@@ -120,6 +123,7 @@ def test_odds_ratio_published_formula():
     assert apply_odds_ratio(p0, odds_ratio) == pytest.approx(rr * p0, rel=1e-14)
 
 
+@settings(deadline=None)
 @given(p=st.floats(0.001, 0.999), odds_ratio=st.floats(0.01, 100.0))
 def test_odds_ratio_multiplies_the_odds(p, odds_ratio):
     # Definition of the odds ratio (common practice).
@@ -168,7 +172,7 @@ def test_two_exits_published_values():
 
 
 @given(a=st.floats(0.0, 5.0), b=st.floats(0.0, 5.0), years=st.floats(0.05, 10.0))
-@settings(max_examples=50)
+@settings(max_examples=50, deadline=None)
 def test_two_exits_closed_form(a, b, years):
     # Source: Welton & Ades 2005 closed form: P_j = r_j / (a + b) (1 - exp(-(a + b) t)).
     P = generator_to_transition(two_exit_generator(a, b), years)
@@ -219,7 +223,7 @@ def random_generators(draw_rates: np.ndarray) -> np.ndarray:
     st.floats(0.05, 3.0),
     st.floats(0.05, 3.0),
 )
-@settings(max_examples=40)
+@settings(max_examples=40, deadline=None)
 def test_generator_transition_is_stochastic_and_semigroup(raw, s, t):
     G = random_generators(raw)
     P_s = generator_to_transition(G, s)

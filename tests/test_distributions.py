@@ -8,7 +8,7 @@ import re
 import numpy as np
 import pytest
 import scipy.stats
-from hypothesis import given
+from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from caredecide.distributions import (
@@ -109,6 +109,7 @@ means = st.floats(0.01, 0.99)
 fractions = st.floats(0.01, 0.99)
 
 
+@settings(deadline=None)
 @given(mean=means, fraction=fractions)
 def test_fitted_beta_reproduces_mean_and_se(mean, fraction):
     # Any feasible se (s^2 < m(1 - m)) is matched exactly (method of moments).
@@ -120,6 +121,7 @@ def test_fitted_beta_reproduces_mean_and_se(mean, fraction):
 
 
 @pytest.mark.parametrize("kind", ["gamma", "lognormal"])
+@settings(deadline=None)
 @given(mean=st.floats(1e-3, 1e6), ratio=st.floats(1e-3, 10.0))
 def test_fitted_gamma_and_lognormal_reproduce_mean_and_se(kind, mean, ratio):
     # Method of moments for the gamma (Briggs, Claxton & Sculpher 2006, from memory) and
