@@ -21,8 +21,10 @@ from caredecide.uncertainty.acceptability import (
     acceptability_curve,
     acceptability_frontier,
     action_shares,
+    evpi_curve,
     running_mean,
 )
+from caredecide.uncertainty.voi import evpi
 
 # Four synthetic draws of two strategies.
 COSTS = np.array([[100.0, 300.0], [200.0, 250.0], [150.0, 500.0], [120.0, 180.0]])
@@ -115,6 +117,26 @@ def test_frontier_has_highest_expected_nmb(draws, wtp):
     frontier = acceptability_frontier(costs, qalys, [wtp])
     expected = wtp * qalys.mean(axis=0) - costs.mean(axis=0)
     assert frontier["expected_net_benefit"].iloc[0] == pytest.approx(expected.max(), abs=1e-6)
+
+
+def test_evpi_curve_by_hand():
+    # Claxton 1999 (from memory) at lambda = 20000 on the hand example: NMB b - a per draw
+    # 0, 350, 250, -260; expected NMB b > a, so the loss is max(0, a - b): 0, 0, 0, 260
+    # -> EVPI = 260 / 4 = 65.
+    curve = evpi_curve(COSTS, QALYS, [0.0, 20_000.0])
+    assert curve["evpi"].tolist() == pytest.approx([0.0, 65.0])
+    assert curve["mc_se"].iloc[1] == pytest.approx(np.std([0, 0, 0, 260], ddof=1) / 2)
+
+
+@settings(max_examples=50, deadline=None)
+@given(_draws, st.floats(0.0, 1e5))
+def test_evpi_curve_matches_evpi(draws, wtp):
+    # One estimator: the curve at lambda equals evpi() of the NMB at lambda.
+    costs, qalys = draws
+    curve = evpi_curve(costs, qalys, [wtp])
+    direct = evpi(wtp * qalys - costs)
+    scale = 1.0 + np.abs(wtp * qalys - costs).max()
+    assert curve["evpi"].iloc[0] == pytest.approx(float(direct), abs=1e-9 * scale)
 
 
 # --- action shares ------------------------------------------------------------------

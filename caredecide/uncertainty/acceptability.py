@@ -24,6 +24,7 @@ import pandas as pd
 
 from caredecide.errors import ModelError, Problem
 from caredecide.incremental import best_at_wtp, net_monetary_benefit
+from caredecide.uncertainty.voi import check_finite, opportunity_loss
 
 _CHUNK_ELEMENTS = 4_000_000
 """Largest (wtp, draw, strategy) block held at once (32 MB of float64)."""
@@ -33,6 +34,7 @@ __all__ = [
     "acceptability_curve",
     "acceptability_frontier",
     "action_shares",
+    "evpi_curve",
     "running_mean",
 ]
 
@@ -132,6 +134,38 @@ def acceptability_frontier(
     )
 
 
+def evpi_curve(
+    costs: np.ndarray,
+    qalys: np.ndarray,
+    wtp_grid: Sequence[float] | np.ndarray,
+) -> pd.DataFrame:
+    """EVPI per person at each willingness to pay, with its Monte Carlo error.
+
+    The same estimator as :func:`caredecide.uncertainty.voi.evpi` applied to the net
+    monetary benefit ``lambda * E - C`` at each lambda.
+
+    Parameters
+    ----------
+    costs, qalys, wtp_grid
+        As for :func:`acceptability_curve`.
+
+    Returns
+    -------
+    pandas.DataFrame
+        W rows with columns ``wtp``, ``evpi`` (currency per person) and ``mc_se``.
+    """
+    cost, qaly, wtp, _ = _check_inputs(costs, qalys, wtp_grid, None)
+    n_draws, n_strategies = cost.shape
+    value = np.empty(wtp.size)
+    se = np.empty(wtp.size)
+    chunk = max(1, _CHUNK_ELEMENTS // (n_draws * n_strategies))
+    for start in range(0, wtp.size, chunk):  # blocks of WTP values bound the memory
+        block = slice(start, start + chunk)
+        nmb = net_monetary_benefit(cost[None], qaly[None], wtp[block, None, None])
+        value[block], se[block], _, _ = opportunity_loss(nmb)
+    return pd.DataFrame({"wtp": wtp, "evpi": value, "mc_se": se})
+
+
 def action_shares(policies: np.ndarray, n_actions: int) -> ActionShares:
     """Share of draws whose policy takes each action, by cycle and state.
 
@@ -202,14 +236,7 @@ def running_mean(values: np.ndarray) -> pd.DataFrame:
         raise ModelError(
             Problem("values", f"expected a 1-D array with at least one draw, got shape {x.shape}")
         )
-    bad = np.flatnonzero(~np.isfinite(x))
-    if bad.size:
-        raise ModelError(
-            Problem(
-                f"values[draw {bad[0]}]",
-                f"value {float(x[bad[0]])!r} is not finite; expected finite numbers",
-            )
-        )
+    check_finite("values", x, ("draw",))
     n = np.arange(1, x.size + 1)
     # Shift by the overall mean so the running sums of squares do not cancel.
     centred = x - x.mean()
@@ -256,15 +283,7 @@ def _check_inputs(
                 Problem(name, f"expected a non-empty (draws, strategies) array, got shape "
                               f"{array.shape}")
             )
-        bad = np.argwhere(~np.isfinite(array))
-        if bad.size:
-            d, k = bad[0]
-            raise ModelError(
-                Problem(
-                    f"{name}[draw {d}, strategy {k}]",
-                    f"value {float(array[d, k])!r} is not finite; expected finite numbers",
-                )
-            )
+        check_finite(name, array, ("draw", "strategy"))
         arrays.append(array)
     cost, qaly = arrays
     if cost.shape != qaly.shape:

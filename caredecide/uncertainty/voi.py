@@ -236,25 +236,33 @@ def opportunity_loss(values: np.ndarray) -> tuple[float, float, np.ndarray, int]
     Parameters
     ----------
     values : numpy.ndarray
-        (D, K) net benefit (or fitted conditional net benefit) per draw and strategy.
+        (D, K) net benefit (or fitted conditional net benefit) per draw and strategy,
+        or a stack (..., D, K) of such tables (e.g. one per willingness to pay).
 
     Returns
     -------
-    mean_loss : float
-        ``mean_d [max_k values[d, k] - values[d, k*]]`` (>= 0).
-    standard_error : float
+    mean_loss : float or numpy.ndarray
+        ``mean_d [max_k values[d, k] - values[d, k*]]`` (>= 0); shape (...) for a stack.
+    standard_error : float or numpy.ndarray
         Sample standard deviation of the loss over ``sqrt(D)`` (NaN when D == 1).
     expected : numpy.ndarray
-        (K,) column means.
-    best : int
+        (..., K) column means.
+    best : int or numpy.ndarray
         ``k*``, the column with the highest mean (the first on ties).
     """
-    expected = values.mean(axis=0)
-    best = int(np.argmax(expected))
-    loss = values.max(axis=1) - values[:, best]
-    n = loss.shape[0]
-    se = float(loss.std(ddof=1) / np.sqrt(n)) if n > 1 else float("nan")
-    return float(loss.mean()), se, expected, best
+    expected = values.mean(axis=-2)
+    best = np.argmax(expected, axis=-1)
+    chosen = np.take_along_axis(values, best[..., None, None], axis=-1)[..., 0]
+    loss = values.max(axis=-1) - chosen  # (..., D)
+    n = loss.shape[-1]
+    if n > 1:
+        se = loss.std(axis=-1, ddof=1) / np.sqrt(n)
+    else:
+        se = np.full(loss.shape[:-1], np.nan)
+    mean_loss = loss.mean(axis=-1)
+    if values.ndim == 2:
+        return float(mean_loss), float(se), expected, int(best)
+    return mean_loss, se, expected, best
 
 
 def evpi(net_benefit: np.ndarray) -> EVPIResult:
@@ -573,7 +581,7 @@ def _check_net_benefit(net_benefit: np.ndarray, *, min_strategies: int) -> np.nd
                 f"got shape {values.shape}",
             )
         )
-    _check_finite("net_benefit", values)
+    check_finite("net_benefit", values)
     return values
 
 
@@ -594,18 +602,25 @@ def _check_covariates(covariates: np.ndarray, n_draws: int) -> np.ndarray:
                 f"{n_draws} draws, got {np.shape(covariates)}",
             )
         )
-    _check_finite("covariates", phi)
+    check_finite("covariates", phi)
     return phi
 
 
-def _check_finite(name: str, values: np.ndarray) -> None:
+def check_finite(
+    name: str, values: np.ndarray, labels: tuple[str, ...] = ("draw", "column")
+) -> None:
+    """Raise a ModelError naming the first non-finite entry of ``values``.
+
+    ``labels`` names each axis in the message, e.g. ``costs[draw 3, strategy 1]``.
+    """
     bad = np.argwhere(~np.isfinite(values))
     if bad.size:
-        draw, column = bad[0]
+        first = tuple(int(i) for i in bad[0])
+        place = ", ".join(f"{label} {i}" for label, i in zip(labels, first, strict=True))
         raise ModelError(
             Problem(
-                f"{name}[draw {draw}, column {column}]",
-                f"value {float(values[draw, column])!r} is not finite ({len(bad)} such value(s)); "
+                f"{name}[{place}]",
+                f"value {float(values[first])!r} is not finite ({len(bad)} such value(s)); "
                 "expected finite numbers",
             )
         )
