@@ -464,7 +464,8 @@ def _transitions(
             problems.append(
                 Problem(
                     f"{table}.{model.action_ids[a]}.{model.state_ids[s]}",
-                    f"row sums to {row_sums[d, t, a, s]!r} {evaluator.place(d, t)}; expected 1 "
+                    f"row sums to {float(row_sums[d, t, a, s]):.12g} "
+                    f"{evaluator.place(int(d), int(t), length=tp)}; expected 1 "
                     f'(within {ROW_TOLERANCE:g}; use "rest" for the remainder)',
                 )
             )

@@ -1,0 +1,189 @@
+"""Model files: reading, writing and round trips."""
+
+from __future__ import annotations
+
+import shutil
+import string
+
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from caredecide.errors import ModelError
+from caredecide.model import DirichletGroup, Model, MortalitySpec, Parameter, Settings
+from caredecide.modelfile import (
+    MAX_MODEL_BYTES,
+    dumps_model,
+    load_model,
+    loads_model,
+    save_model,
+)
+from synthetic_cohort import MODELS_DIR
+from tests.conftest import load_dict, small_model_dict
+
+
+def test_demo_loads_with_its_declared_structure(demo_model_path):
+    model = load_model(demo_model_path)
+    assert model.state_ids == (
+        "stage_1", "stage_2", "stage_3", "stage_1_tx", "stage_2_tx", "stage_3_tx", "dead",
+    )
+    assert model.action_ids == ("wait", "treat")
+    assert model.n_cycles() == 45  # ages 55 to 100 in annual cycles
+    assert model.settings.severity_order == ("stage_1", "stage_2", "stage_3")
+    assert "Synthetic" in model.title
+    assert all(p.source.startswith("Synthetic") for p in model.parameters.values())
+    assert model.source_path == demo_model_path
+
+
+def test_demo_load_save_load_is_identical(demo_model_path, tmp_path):
+    first = load_model(demo_model_path)
+    path = tmp_path / "copy.toml"
+    save_model(first, path)
+    second = load_model(path)
+    assert second == first
+    # Writing again gives the very same text: the writer is deterministic.
+    assert dumps_model(second) == path.read_text()
+
+
+def test_life_table_path_is_relative_to_the_model_file(tmp_path):
+    shutil.copy(MODELS_DIR / "demo_life_table.csv", tmp_path / "life.csv")
+    data = small_model_dict()
+    data["mortality"] = {"table": "life.csv", "source": "Synthetic life table"}
+    data["transitions"]["wait"]["well"]["dead"] = "background"
+    import tomli_w
+
+    (tmp_path / "m.toml").write_text(tomli_w.dumps(data))
+    model = load_model(tmp_path / "m.toml")
+    assert model.mortality.table == "life.csv"
+    assert model.mortality.table_ages[0] == 40.0
+    save_model(model, tmp_path / "again.toml")
+    assert load_model(tmp_path / "again.toml") == model
+
+
+def test_missing_life_table_is_named(tmp_path):
+    data = small_model_dict()
+    data["mortality"] = {"table": "nowhere.csv"}
+    with pytest.raises(ModelError, match=r"mortality.table: life table .*nowhere\.csv.* not found"):
+        load_dict(data, base_dir=tmp_path)
+
+
+def test_oversized_text_is_refused():
+    with pytest.raises(ModelError, match=f"larger than {MAX_MODEL_BYTES}"):
+        loads_model("#" * (MAX_MODEL_BYTES + 1))
+
+
+def test_wrong_type_is_named():
+    data = small_model_dict()
+    data["settings"]["cycle_years"] = "one"
+    with pytest.raises(ModelError, match=r"settings\.cycle_years: 'one' is not a number"):
+        load_dict(data)
+
+
+def test_written_file_is_readable_by_hand(small_model):
+    text = dumps_model(small_model)
+    assert "[transitions.wait.well]" in text
+    assert 'well = "rest"' in text
+    assert "[parameters.p_sick]" in text
+
+
+# -- property: random valid models survive dumps -> loads ----------------------------------
+_ids = st.text(string.ascii_lowercase, min_size=1, max_size=6).map(lambda s: "s_" + s)
+_label = st.text(
+    st.characters(codec="utf-8", exclude_categories=("Cs", "Cc")), max_size=20
+)
+_number = st.floats(0.0, 1e6, allow_nan=False, allow_infinity=False)
+
+
+@st.composite
+def random_models(draw) -> Model:
+    from caredecide.model import Action, State
+
+    names = draw(st.lists(_ids, min_size=2, max_size=5, unique=True))
+    alive, dead = names[:-1], names[-1]
+    n_params = draw(st.integers(1, 4))
+    parameters = {
+        f"p{i}": Parameter(
+            name=f"p{i}",
+            value=draw(st.floats(0.0, 0.4)),
+            kind="probability",
+            per_years=draw(st.none() | st.floats(0.1, 10.0)),
+            source=draw(_label.filter(lambda s: s.strip())),
+            label=draw(_label),
+            note=draw(_label),
+            distribution=draw(
+                st.none() | st.just({"type": "beta", "alpha": 2.0, "beta": 8.0})
+            ),
+        )
+        for i in range(n_params)
+    }
+    states = (
+        *(
+            State(
+                id=s,
+                label=draw(_label),
+                qaly_weight=draw(st.floats(0.0, 1.0) | st.just("0.5 + 0 * age")),
+                cost=draw(_number),
+            )
+            for s in alive
+        ),
+        State(id=dead, absorbing=True, alive=False),
+    )
+    actions = (
+        Action(id="wait", label=draw(_label), allowed_in="all"),
+        Action(
+            id="act",
+            allowed_in=tuple(draw(st.lists(st.sampled_from(alive), min_size=1, unique=True))),
+            oneoff_cost=draw(_number),
+            oneoff_qaly_loss=draw(st.floats(0.0, 0.1)),
+        ),
+    )
+    transitions = {
+        action.id: {
+            s: {dead: f"p{draw(st.integers(0, n_params - 1))} / 2", s: "rest"}
+            for s in (alive if action.id == "wait" else action.allowed_in)
+        }
+        for action in actions
+    }
+    horizon = draw(st.sampled_from(["cycles", "age"]))
+    settings_ = Settings(
+        cycle_years=draw(st.sampled_from([0.25, 0.5, 1.0])),
+        horizon_cycles=draw(st.integers(1, 20)) if horizon == "cycles" else None,
+        until_age=90.0 if horizon == "age" else None,
+        start_age=draw(st.floats(20.0, 80.0)),
+        start=alive[0],
+        discount_outcomes=draw(st.floats(0.0, 0.1)),
+        discount_costs=draw(st.floats(0.0, 0.1)),
+        objective=draw(st.sampled_from(["qalys", "net_benefit"])),
+        willingness_to_pay=draw(_number),
+        within_cycle=draw(st.sampled_from(["start", "end", "trapezoid", "simpson"])),
+        currency=draw(st.sampled_from(["", "EUR", "units"])),
+        severity_order=tuple(alive),
+    )
+    groups = {}
+    if draw(st.booleans()):
+        groups["g"] = DirichletGroup(
+            name="g", members=("g_a", "g_b"), counts=(3.0, 7.0), source="Synthetic counts"
+        )
+    mortality = draw(
+        st.none() | st.just(MortalitySpec(gompertz_makeham=(0.0007, 5e-5, 10**0.04), source="x"))
+    )
+    return Model(
+        title=draw(_label.filter(lambda s: s.strip())),
+        description=draw(_label),
+        settings=settings_,
+        states=states,
+        actions=actions,
+        transitions=transitions,
+        parameters=parameters,
+        groups=groups,
+        mortality=mortality,
+    )
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(random_models())
+def test_random_valid_models_survive_dumps_then_loads(model):
+    text = dumps_model(model)
+    again = loads_model(text)
+    assert again == model
+    assert dumps_model(again) == text
