@@ -30,10 +30,13 @@ class SweepRecord:
     policy : (D, S) int
         Greedy policy at that sweep (lowest action index among exact ties).
     residual : (D,) float
-        Sup-norm change of the values in this sweep, ``||v_{n+1} - v_n||``.
+        Sup-norm change of the values in this sweep, ``||v_{n+1} - v_n||`` (policy
+        iteration: the Bellman residual ``||T v - v||``).
     error_bound : (D,) float
         Bound on the sup-norm distance of ``value`` from the optimal value
-        (``gamma * residual / (1 - gamma)``, Puterman 1994 Theorem 6.3.1); 0 for backward
+        (value and modified policy iteration: ``gamma * residual / (1 - gamma)``, Puterman
+        1994 Theorem 6.3.1; policy iteration, where ``residual`` is the Bellman residual
+        ``||T v - v||`` of the evaluated policy: ``residual / (1 - gamma)``); 0 for backward
         induction, which is exact.
     """
 
