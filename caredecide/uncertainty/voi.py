@@ -23,24 +23,29 @@ regression method of Strong, Oakley & Brennan 2014 (Med Decis Making 34(3):311-3
 smoothers (all chose their smoothing by generalised cross-validation, GCV):
 
 ``"spline"`` (one parameter)
-    Cubic B-splines on equally spaced knots over the parameter's empirical CDF
-    (conditioning on a monotone transform of ``phi`` gives the same conditional
-    expectation, and the transform puts the knots at quantiles), with a second-order
-    difference penalty: a P-spline (Eilers & Marx 1996, Statistical Science
-    11(2):89-121). Up to 20 basis functions.
+    A penalised regression spline: cubic B-splines with knots at equally spaced
+    quantiles of the parameter (mapped linearly onto [0, 1]), penalised by the
+    integrated squared second derivative (O'Sullivan penalised splines; Wand & Ormerod
+    2008, Aust N Z J Stat 50(2):179-201, from memory). Straight lines are not
+    penalised, so a linear effect costs two degrees of freedom. Up to 20 basis
+    functions, at least 10 draws per basis function.
 ``"additive"`` (any number of parameters)
     Sum of one such spline per parameter, one shared smoothing parameter. Misses
     interactions between parameters, so it *underestimates* the EVPPI of a group whose
     effect on net benefit is not additive.
 ``"tensor"`` (2 or 3 parameters)
-    Tensor product of marginal cubic B-spline bases (up to 8 per margin for two
-    parameters, 5 for three) with the isotropic penalty
-    ``sum_j I x .. x P_j x .. x I`` and one shared smoothing parameter (the margins are
-    all on the CDF scale, so one parameter is a fair compromise). The basis grows as
-    ``m ** p``: three parameters need at least 640 draws, more than three are refused.
+    Tensor product of the marginal bases (up to 8 per margin for two parameters, 5 for
+    three) with the isotropic penalty ``sum_j I x .. x Omega_j x .. x I`` and one shared
+    smoothing parameter (every margin is on [0, 1], so one parameter is a fair
+    compromise, but a parameter with a much rougher effect than the others forces the
+    same smoothness on all). The basis grows as ``m ** p``: two parameters need at
+    least 160 draws, three at least 640; more than three are refused.
 ``"smoothing_spline"`` (one parameter, reference)
     :func:`scipy.interpolate.make_smoothing_spline` (a full natural cubic smoothing
-    spline with GCV) on the raw parameter; it reports no degrees of freedom.
+    spline with GCV) on the raw parameter, tied values averaged with their counts as
+    weights; it reports no degrees of freedom. Slow for large D, and scipy 1.17's GCV
+    search was seen to fail (oversmooth, or raise) on random designs with near-tied
+    values, so it serves as a cross-check, not the default.
 ``"auto"``
     ``"spline"`` for one parameter, ``"tensor"`` for two or three when the draws
     allow it, else ``"additive"``.
@@ -52,6 +57,10 @@ diagonalises every fit at once: ``fitted = Q diag(1 / (1 + lambda s)) Q' y`` wit
 a matrix product for all strategies together (``delta`` is a ridge of 1e-9 of the mean
 Gram diagonal that keeps bases with no draws, e.g. for discrete parameters, solvable).
 The effective degrees of freedom are ``edf = trace(H)``.
+
+The lambda grid runs in steps of 0.05 decades from ``1e-3 / max(s)`` (no smoothing)
+to ``1e3 / min(s > 0)`` (a fit in the penalty's null space). A choice at the low end
+is reported in ``message``: the basis may be too small for the effect.
 
 Limits: a regression EVPPI is biased upward by the noise the smoother keeps (of the
 order of ``edf / D`` times the residual variance, divided by the spread of the fitted
