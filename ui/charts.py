@@ -127,7 +127,7 @@ def make_action_gap_chart(
     """
     _require(frame, ["state", "age", "action_gap", "close"], "action gap chart")
     states = _ordered(frame, "state", state_order)
-    data = frame.assign(mark=frame["close"].map({True: "close", False: ""}))
+    data = frame.assign(mark=frame["close"].map({True: "\u25cf", False: ""}))  # a dot
     base = _state_age_grid(data, states)
     cells = base.mark_rect(stroke="white", strokeWidth=0.5).encode(
         color=alt.Color(
@@ -137,9 +137,9 @@ def make_action_gap_chart(
         ),
         tooltip=["state:N", "age:O", alt.Tooltip("action_gap:Q", format=".4g")],
     )
-    text = base.mark_text(fontSize=8, color="white", fontWeight="bold").encode(text="mark:N")
+    text = base.mark_text(fontSize=9, color="#EBA83A").encode(text="mark:N")
     return alt.layer(cells, text).properties(
-        title="Action gap (dark = close call, 'close' = within the indifference tolerance)"
+        title="Action gap (dark = small gap; a dot marks a close call)", height=alt.Step(22)
     )
 
 
