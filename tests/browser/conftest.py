@@ -122,7 +122,7 @@ def browser(chromium_path):
 
 @pytest.fixture
 def page(browser):
-    context = browser.new_context(viewport={"width": 1400, "height": 1000})
+    context = browser.new_context(viewport={"width": 1400, "height": 2600})
     page = context.new_page()
     try:
         yield page

@@ -31,7 +31,8 @@ def _library(text: str, kind: str, wtp: float, base_dir: str, **solve_options):
     compiled = compile_model(model)
     objective = Objective(kind, wtp)
     result = solve(compiled, objective, **solve_options)
-    return result, evaluate_policy(compiled, result.policy, objective).totals()
+    outcome = evaluate_policy(compiled, result.policy, objective)
+    return result, outcome.totals(), outcome
 
 
 def _demo_dir() -> str:
@@ -59,7 +60,7 @@ def test_every_view_runs_and_shows_the_caution(app, view):
 def test_policy_view_shows_the_library_totals_and_policy(app):
     app.switch_page("views/policy.py").run()
     text = demo_model_path().read_text(encoding="utf-8")
-    result, totals = _library(text, "net_benefit", 30000.0, _demo_dir())
+    result, totals, outcome = _library(text, "net_benefit", 30000.0, _demo_dir())
     shown = [m.value for m in app.metric]
     assert shown == [
         f"{totals['life_years']:,.4f}", f"{totals['qalys']:,.4f}", f"{totals['costs']:,.2f}",
@@ -74,6 +75,14 @@ def test_policy_view_shows_the_library_totals_and_policy(app):
     runs = expected["action"] != expected.groupby("state")["action"].shift()
     assert list(heat_map["label"]) == list(expected["action"].where(runs, ""))
     assert set(heat_map["state"]) == {"stage_1", "stage_2", "stage_3"}  # decision states only
+    # Value chart: the library's values "from this age on", alive states only.
+    n_cycles = result.policy.shape[1]
+    values = result.to_frame().assign(value=result.value_at_cycle_start()[0, :n_cycles].ravel())
+    values = values[values["state"] != "dead"]
+    assert _chart_data(app, 2)["value"].tolist() == values["value"].tolist()
+    # Cohort trace: the library's trace under the optimal policy.
+    shown_trace = _chart_data(app, 3)
+    assert shown_trace["proportion"].tolist() == outcome.trace_frame()["proportion"].tolist()
 
 
 def test_wtp_control_changes_the_result_to_the_library_value(app):
@@ -81,7 +90,7 @@ def test_wtp_control_changes_the_result_to_the_library_value(app):
     app.number_input(key="policy_wtp").set_value(5000.0).run()
     assert not app.exception
     text = demo_model_path().read_text(encoding="utf-8")
-    _, totals = _library(text, "net_benefit", 5000.0, _demo_dir())
+    _, totals, _ = _library(text, "net_benefit", 5000.0, _demo_dir())
     assert app.metric[3].value == f"{totals['net_monetary_benefit']:,.2f}"
     assert app.metric[3].label == "Net monetary benefit at 5,000"
 
@@ -98,8 +107,8 @@ def test_a_table_edit_changes_the_working_model_and_the_result(app):
     edited = loads_model(after, file="t", base_dir=_demo_dir())
     assert edited.parameters["c_drug_year"].value == 5000.0
     app.switch_page("views/policy.py").run()
-    _, totals = _library(after, "net_benefit", 30000.0, _demo_dir())
-    _, totals_before = _library(before, "net_benefit", 30000.0, _demo_dir())
+    _, totals, _ = _library(after, "net_benefit", 30000.0, _demo_dir())
+    _, totals_before, _ = _library(before, "net_benefit", 30000.0, _demo_dir())
     assert totals["costs"] != totals_before["costs"]
     assert app.metric[2].value == f"{totals['costs']:,.2f}"
 
@@ -157,7 +166,7 @@ def test_convergence_view_steps_through_value_iteration_sweeps(app):
     app.switch_page("views/convergence.py").run()
     app.radio(key="convergence_method").set_value("value_iteration").run()
     assert not app.exception, app.exception
-    result, _ = _library(TEMPLATES["infinite-horizon"], "qalys", 0.0, ".",
+    result, _, _ = _library(TEMPLATES["infinite-horizon"], "qalys", 0.0, ".",
                          method="value_iteration", record_history=True, max_iterations=5000)
     assert app.metric[0].value == str(len(result.history))
     app.slider(key="convergence_sweep").set_value(3).run()
@@ -173,7 +182,7 @@ def test_convergence_view_steps_through_value_iteration_sweeps(app):
 def test_convergence_view_on_a_finite_model_uses_backward_induction(app):
     app.switch_page("views/convergence.py").run()
     assert not app.exception
-    result, _ = _library(demo_model_path().read_text(encoding="utf-8"), "net_benefit", 30000.0,
+    result, _, _ = _library(demo_model_path().read_text(encoding="utf-8"), "net_benefit", 30000.0,
                          _demo_dir(), record_history=True)
     assert app.metric[0].value == str(result.iterations)
     assert any("backward induction" in m.value for m in app.markdown)

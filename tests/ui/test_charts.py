@@ -64,7 +64,7 @@ def test_action_gap_chart_marks_close_calls_in_text():
     assert cells["encoding"]["color"]["field"] == "action_gap"
     assert cells["encoding"]["color"]["title"] == "Action gap QALYs"
     assert text["encoding"]["text"]["field"] == "mark"
-    assert [r["mark"] for r in _rows(spec)] == ["close", ""]
+    assert [r["mark"] for r in _rows(spec)] == ["\u25cf", ""]
 
 
 def test_value_chart_draws_lines_over_age_and_bars_for_a_single_age():

@@ -93,7 +93,13 @@ st.dataframe(closest, hide_index=True, key="closest_table")
 
 # -- values and trace --------------------------------------------------------------------
 st.subheader("Value per state")
-values = frame[["state", "age", "value"]]
+try:  # "from this age on, valued at that age": needs one discount rate for the objective
+    at_start = result.value_at_cycle_start()[0, : result.policy.shape[1]]  # (Tpi, S)
+    values = frame[["state", "age"]].assign(value=at_start.ravel())
+    value_note = "valued at that age (discounted to the start of that cycle)"
+except ValueError:
+    values = frame[["state", "age", "value"]]
+    value_note = "in present value at the model start (outcomes and costs use different rates)"
 if result.finite_horizon:
     values = values.assign(age=frame["age"].astype(float))
 else:
@@ -103,8 +109,8 @@ st.altair_chart(
     charts.make_value_chart(values[values["state"].isin(alive)], state_order=alive, unit=unit),
     key="value_chart",
 )
-st.caption("Values are expected discounted outcomes from that state and age on, in present "
-           "value at the model start.")
+st.caption(f"Expected discounted {OBJECTIVE_NAMES[kind].lower()} from that state and age on, "
+           f"{value_note}.")
 
 st.subheader("Cohort trace")
 st.altair_chart(charts.make_trace_chart(solved.trace, state_order=list(result.state_ids)),
