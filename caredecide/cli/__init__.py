@@ -17,7 +17,9 @@ from caredecide.cautions import CAUTION_SHORT
 
 # Add a sub-command: write caredecide/cli/<name>.py with register(app), then list it here.
 COMMAND_MODULES: tuple[str, ...] = (
+    "check",
     "solve",
+    "sensitivity",
     "app",
 )
 

@@ -1,0 +1,124 @@
+"""``caredecide check MODEL``: validate a model file and summarise what it says."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Annotated
+
+import typer
+from rich.table import Table
+
+from caredecide.cli.common import print_caution, stderr, stdout, user_errors
+
+
+def _horizon_text(model) -> str:
+    s = model.settings
+    if s.infinite_horizon:
+        return "infinite (stationary model)"
+    n = model.n_cycles()
+    if s.until_age is not None:
+        return f"{n} cycles of {s.cycle_years:g} years, ages {s.start_age:g} to {s.until_age:g}"
+    return f"{n} cycles of {s.cycle_years:g} years from age {s.start_age:g}"
+
+
+def _value_text(value: object) -> str:
+    return f"{value:g}" if isinstance(value, float) else str(value)
+
+
+def print_summary(model) -> None:
+    """Print states, actions, allowed actions, parameters with sources and the horizon."""
+    s = model.settings
+    stdout.print(f"[bold]{model.title}[/]  ({model.file_label})")
+    stdout.print(f"horizon: {_horizon_text(model)}")
+    objective = (
+        f"net monetary benefit at {s.willingness_to_pay:g} {s.currency} per QALY".replace("  ", " ")
+        if s.objective == "net_benefit"
+        else "QALYs"
+    )
+    stdout.print(
+        f"objective: {objective}; discount: outcomes {s.discount_outcomes:g}, "
+        f"costs {s.discount_costs:g} per year; within-cycle method: {s.within_cycle}"
+    )
+    start = ", ".join(f"{k} {v:g}" for k, v in model.start_distribution().items())
+    stdout.print(f"start: {start}")
+
+    states = Table(title="States")
+    for column in ("id", "label", "QALY weight / year", "cost / cycle", "kind", "allowed actions"):
+        states.add_column(column)
+    for state in model.states:
+        allowed = [a.id for a in model.actions if state.id in model.allowed_states(a)]
+        kind = "absorbing" if state.absorbing else "transient"
+        if not state.alive:
+            kind += ", dead"
+        states.add_row(
+            state.id,
+            state.label,
+            _value_text(state.qaly_weight),
+            _value_text(state.cost),
+            kind,
+            ", ".join(allowed) if allowed else "(no decision)",
+        )
+    stdout.print(states)
+
+    actions = Table(title="Actions")
+    columns = ("id", "label", "allowed in", "one-off cost", "one-off QALY loss", "cost / cycle")
+    for column in columns:
+        actions.add_column(column)
+    for action in model.actions:
+        actions.add_row(
+            action.id,
+            action.label,
+            ", ".join(model.allowed_states(action)),
+            _value_text(action.oneoff_cost),
+            _value_text(action.oneoff_qaly_loss),
+            _value_text(action.cost_per_cycle),
+        )
+    stdout.print(actions)
+
+    parameters = Table(title="Parameters")
+    for column in ("name", "value", "kind", "range (low-high)", "source"):
+        parameters.add_column(column)
+    for name, value in model.base_parameter_values().items():
+        low, high = model.parameter_range(name)
+        if name in model.parameters:
+            p = model.parameters[name]
+            kind, source = p.kind, p.source
+        else:
+            group = next(g for g in model.groups.values() if name in g.members)
+            kind, source = f"Dirichlet group {group.name}", group.source
+        parameters.add_row(name, f"{value:g}", kind, f"{low:.4g} - {high:.4g}", source)
+    stdout.print(parameters)
+    if model.mortality is not None:
+        m = model.mortality
+        law = (
+            "Gompertz-Makeham a={:g}, b={:g}, c={:g}".format(*m.gompertz_makeham)
+            if m.gompertz_makeham is not None
+            else f"life table {m.table}"
+        )
+        stdout.print(f"background mortality: {law}" + (f" ({m.source})" if m.source else ""))
+
+
+def register(app: typer.Typer) -> None:
+    """Add the ``check`` sub-command to ``app``."""
+
+    @app.command("check")
+    def check(
+        model_path: Annotated[
+            Path, typer.Argument(metavar="MODEL", help="Model file (TOML) to validate.")
+        ],
+        quiet: Annotated[
+            bool, typer.Option("--quiet", "-q", help="Print only errors (no summary).")
+        ] = False,
+    ) -> None:
+        """Validate a model file: print a summary, or every problem found (exit code 2)."""
+        from caredecide.modelfile import load_model, validate_model
+
+        print_caution(quiet)
+        with user_errors():
+            model = load_model(model_path)
+            warnings = validate_model(model)
+        for warning in warnings:
+            stderr.print(f"[yellow]warning:[/] {model.file_label}: {warning}")
+        if not quiet:
+            print_summary(model)
+            stdout.print(f"[green]OK[/]: {model.file_label} is valid ({len(warnings)} warning(s))")
