@@ -252,3 +252,140 @@ def make_convergence_chart(frame: pd.DataFrame) -> alt.Chart | alt.LayerChart:
         ).encode(x="sweep:Q", y=alt.value(0), text="note:N")
         return alt.layer(lines, rule, label).properties(title="Convergence per sweep")
     return lines.properties(title="Convergence per sweep")
+
+
+def make_tornado_chart(frame: pd.DataFrame, *, unit: str = "") -> alt.LayerChart:
+    """Tornado diagram of a one-way analysis, widest swing at the top.
+
+    Parameters
+    ----------
+    frame : DataFrame
+        The ranked table of :func:`caredecide.sensitivity.one_way`: ``parameter``,
+        ``low``, ``high`` (parameter values), ``value_low``, ``value_base``,
+        ``value_high`` (objective at the model start) and ``switches_low``,
+        ``switches_high`` (number of cells whose best action changes; > 0 marks the
+        parameter as policy-changing, written beside its bar).
+    unit : str
+        Unit of the objective for the axis title (e.g. "QALYs", "net monetary benefit").
+    """
+    needed = ["parameter", "low", "high", "value_low", "value_base", "value_high"]
+    _require(frame, [*needed, "switches_low", "switches_high"], "tornado chart")
+    order = list(frame["parameter"].astype(str))
+    changes = (frame["switches_low"] + frame["switches_high"]) > 0
+    bars = pd.concat(
+        [
+            pd.DataFrame(
+                {
+                    "parameter": frame["parameter"].astype(str),
+                    "end": f"parameter at its {end} value",
+                    "parameter_value": frame[end],
+                    "value": frame[f"value_{end}"],
+                    "base": frame["value_base"],
+                }
+            )
+            for end in ("low", "high")
+        ],
+        ignore_index=True,
+    )
+    marks = frame.assign(
+        parameter=frame["parameter"].astype(str),
+        mark=changes.map({True: "changes the policy", False: ""}),
+        edge=frame[["value_low", "value_high"]].max(axis=1),
+    )
+    y = alt.Y("parameter:N", sort=order, title="Parameter (widest swing first)")
+    bar = (
+        alt.Chart(bars)
+        .mark_bar(opacity=0.9)
+        .encode(
+            y=y,
+            x=alt.X(
+                "base:Q",
+                title=f"Objective at the model start {unit}".strip(),
+                scale=alt.Scale(zero=False),
+            ),
+            x2="value:Q",
+            color=alt.Color(
+                "end:N",
+                title="Bar",
+                legend=alt.Legend(orient="bottom"),
+                scale=alt.Scale(
+                    domain=["parameter at its low value", "parameter at its high value"],
+                    range=list(ACTION_PALETTE[:2]),
+                ),
+            ),
+            tooltip=[
+                "parameter:N",
+                "end:N",
+                alt.Tooltip("parameter_value:Q", format=".4g"),
+                alt.Tooltip("value:Q", format=",.4g"),
+            ],
+        )
+    )
+    base_rule = (
+        alt.Chart(frame.head(1))
+        .mark_rule(color="black", strokeDash=[4, 3])
+        .encode(x="value_base:Q")
+    )
+    text = (
+        alt.Chart(marks)
+        .mark_text(align="left", dx=4, fontSize=10, fontWeight="bold")
+        .encode(y=y, x="edge:Q", text="mark:N")
+    )
+    return alt.layer(bar, base_rule, text).properties(
+        title="One-way sensitivity (dashed line: base case)", width=420
+    )
+
+
+def make_two_way_chart(
+    frame: pd.DataFrame, *, action_order: Sequence[str] | None = None
+) -> alt.LayerChart:
+    """Map of the best action at the start over a grid of two parameters.
+
+    Parameters
+    ----------
+    frame : DataFrame
+        The grid of :func:`caredecide.sensitivity.two_way`: ``x_parameter``,
+        ``x_value``, ``y_parameter``, ``y_value``, ``action_at_start`` (words, also
+        written in each cell) and ``same_as_base`` (False cells, where the whole policy
+        differs from the base case, are outlined and marked "*").
+    action_order : sequence of str, optional
+        Legend order (default: order of first appearance).
+    """
+    _require(
+        frame,
+        ["x_parameter", "x_value", "y_parameter", "y_value", "action_at_start", "same_as_base"],
+        "two-way chart",
+    )
+    actions = _ordered(frame, "action_at_start", action_order)
+    colours = _cycle(ACTION_PALETTE, len(actions))
+    dark = [a for a, c in zip(actions, colours, strict=True) if c in _DARK_FILLS]
+    data = frame.assign(
+        x=frame["x_value"].map(lambda v: f"{v:.4g}"),
+        y=frame["y_value"].map(lambda v: f"{v:.4g}"),
+        label=frame["action_at_start"].astype(str)
+        + frame["same_as_base"].map({True: "", False: "*"}),
+    )
+    x_name, y_name = str(frame["x_parameter"].iloc[0]), str(frame["y_parameter"].iloc[0])
+    base = alt.Chart(data).encode(
+        x=alt.X("x:O", title=x_name, sort=None),
+        y=alt.Y("y:O", title=y_name, sort="descending"),
+    )
+    cells = base.mark_rect(stroke="white", strokeWidth=0.5).encode(
+        color=alt.Color(
+            "action_at_start:N",
+            title="Best action at the start",
+            scale=alt.Scale(domain=actions, range=colours),
+        ),
+        tooltip=["x:O", "y:O", "action_at_start:N", "same_as_base:N"],
+    )
+    text = base.mark_text(fontSize=8).encode(
+        text="label:N",
+        color=alt.condition(
+            alt.FieldOneOfPredicate(field="action_at_start", oneOf=dark or ["\u0000"]),
+            alt.value("white"),
+            alt.value("black"),
+        ),
+    )
+    return alt.layer(cells, text).properties(
+        title=f"Best action at the start over {x_name} and {y_name} (* policy differs from base)"
+    )

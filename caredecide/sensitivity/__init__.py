@@ -15,6 +15,7 @@ from caredecide.sensitivity.thresholds import (
     NO_SWITCH,
     parameter_thresholds,
     setting_thresholds,
+    summarise_thresholds,
 )
 from caredecide.sensitivity.twoway import two_way
 from caredecide.sensitivity.variation import (
@@ -36,5 +37,6 @@ __all__ = [
     "parameter_sets",
     "parameter_thresholds",
     "setting_thresholds",
+    "summarise_thresholds",
     "two_way",
 ]

@@ -368,3 +368,68 @@ def setting_thresholds(
     )
     table["base"] = float(base)
     return table.rename(columns={"quantity": "setting"})
+
+
+def summarise_thresholds(table: pd.DataFrame) -> pd.DataFrame:
+    """Merge consecutive cycles with the same switch into age bands.
+
+    Parameters
+    ----------
+    table : pandas.DataFrame
+        Output of :func:`parameter_thresholds` (or :func:`setting_thresholds`).
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per (quantity, state, action_below, action_above, band of consecutive
+        cycles): ``quantity, state, ages`` (e.g. "84-89"; cycles for an infinite
+        horizon), ``action_below, action_above, threshold_min, threshold_max``; rows
+        without a switch keep their status text in ``ages``.
+    """
+    key = "parameter" if "parameter" in table.columns else "setting"
+    switches = table[table["status"] == SWITCH].copy()
+    rest = table[table["status"] != SWITCH]
+    group_keys = [key, "state", "action_below", "action_above"]
+    if len(switches):
+        switches = switches.sort_values([*group_keys, "cycle"], kind="stable")
+        cycle = switches["cycle"].astype(int).to_numpy()
+        same_group = (switches[group_keys].shift() == switches[group_keys]).all(axis=1).to_numpy()
+        new_band = ~same_group | (np.diff(cycle, prepend=cycle[0] - 2) != 1)
+        switches["band"] = np.cumsum(new_band)
+        bands = switches.groupby("band", sort=False).agg(
+            **{k: (k, "first") for k in group_keys},
+            first_age=("age", "first"),
+            last_age=("age", "last"),
+            first_cycle=("cycle", "first"),
+            last_cycle=("cycle", "last"),
+            threshold_min=("threshold", "min"),
+            threshold_max=("threshold", "max"),
+        )
+        finite = bands["first_age"].notna()
+        lo = bands["first_age"].where(finite, bands["first_cycle"].astype(float))
+        hi = bands["last_age"].where(finite, bands["last_cycle"].astype(float))
+        prefix = np.where(finite, "", "cycles ")
+        bands["ages"] = [
+            f"{p}{a:g}" if a == b else f"{p}{a:g}-{b:g}"
+            for p, a, b in zip(prefix, lo, hi, strict=True)
+        ]
+        bands = bands.reset_index(drop=True)
+    else:
+        bands = pd.DataFrame(columns=[*group_keys, "ages", "threshold_min", "threshold_max"])
+    others = pd.DataFrame({key: rest[key], "ages": rest["status"]})
+    columns = [
+        key,
+        "state",
+        "ages",
+        "action_below",
+        "action_above",
+        "threshold_min",
+        "threshold_max",
+    ]
+    frames = [f for f in (bands, others) if len(f)]
+    if not frames:
+        return pd.DataFrame(columns=columns)
+    merged = pd.concat(frames, ignore_index=True).reindex(columns=columns)
+    order = {q: i for i, q in enumerate(dict.fromkeys(table[key]))}
+    merged = merged.sort_values(key, key=lambda c: c.map(order), kind="stable")
+    return merged.reset_index(drop=True)

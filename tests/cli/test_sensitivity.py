@@ -1,0 +1,115 @@
+"""``caredecide sensitivity`` on a small hand-checkable synthetic model file."""
+
+from __future__ import annotations
+
+import pandas as pd
+import pytest
+from typer.testing import CliRunner
+
+from caredecide.cli import app
+
+runner = CliRunner()
+
+# Synthetic: invented for this test. Two cycles, one decision that matters (cycle 0):
+# gap = Q(wait) - Q(treat) = loss - p (1 - hr) (QALYs, no discounting, start-of-cycle
+# counting), so treating is best when p (1 - hr) > loss; threshold p* = loss / (1 - hr).
+HAND_MODEL = """
+format = 1
+title = "Synthetic: hand-checkable threshold model"
+description = "Synthetic: invented for a test."
+
+[settings]
+cycle_years = 1.0
+horizon_cycles = 2
+start = "sick"
+discount_outcomes = 0.0
+discount_costs = 0.0
+objective = "net_benefit"
+willingness_to_pay = 1000.0
+within_cycle = "start"
+
+[[states]]
+id = "sick"
+qaly_weight = 1.0
+
+[[states]]
+id = "dead"
+absorbing = true
+
+[[actions]]
+id = "wait"
+allowed_in = "all"
+
+[[actions]]
+id = "treat"
+allowed_in = ["sick"]
+oneoff_qaly_loss = "loss"
+
+[transitions.wait.sick]
+dead = "p"
+sick = "rest"
+
+[transitions.treat.sick]
+dead = "p * hr"
+sick = "rest"
+
+[parameters.p]
+value = 0.1
+low = 0.01
+high = 0.2
+source = "Synthetic: invented for a test"
+
+[parameters.hr]
+value = 0.4
+low = 0.2
+high = 0.9
+source = "Synthetic: invented for a test"
+
+[parameters.loss]
+value = 0.05
+low = 0.0
+high = 0.1
+source = "Synthetic: invented for a test"
+"""
+
+
+@pytest.fixture
+def model_file(tmp_path):
+    path = tmp_path / "hand.toml"
+    path.write_text(HAND_MODEL)
+    return path
+
+
+def test_sensitivity_prints_ranking_and_thresholds_and_writes_files(model_file, tmp_path):
+    out = tmp_path / "out"
+    result = runner.invoke(
+        app, ["sensitivity", str(model_file), "--two-way", "p", "hr", "--grid", "5",
+              "--out", str(out)],
+    )  # fmt: skip
+    assert result.exit_code == 0, result.output
+    assert "RESEARCH USE ONLY" in result.stderr
+    assert "One-way sensitivity" in result.stdout
+    assert "Decision thresholds" in result.stdout
+    thresholds = pd.read_csv(out / "thresholds.csv").set_index("parameter")
+    # p* = loss / (1 - hr) = 0.05 / 0.6
+    assert thresholds.at["p", "threshold"] == pytest.approx(0.05 / 0.6, abs=1e-8)
+    oneway = pd.read_csv(out / "oneway.csv")
+    assert list(oneway["rank"]) == [1, 2, 3]
+    for name in ("tornado.svg", "tornado.png", "twoway.svg", "twoway.png", "twoway.csv",
+                 "policy_switches.csv", "threshold_willingness_to_pay.csv",
+                 "threshold_discount_rate.csv"):  # fmt: skip
+        assert (out / name).stat().st_size > 0, name
+    assert (out / "tornado.svg").read_text().lstrip().startswith("<svg")
+
+
+def test_sensitivity_on_a_subset_with_commas(model_file):
+    result = runner.invoke(app, ["sensitivity", str(model_file), "-p", "p,loss", "--quiet"])
+    assert result.exit_code == 0, result.output
+    assert "RESEARCH USE ONLY" not in result.stderr
+    assert " hr " not in result.stdout.split("Decision thresholds")[0]
+
+
+def test_sensitivity_unknown_parameter_is_a_clear_error(model_file):
+    result = runner.invoke(app, ["sensitivity", str(model_file), "-p", "nope"])
+    assert result.exit_code == 2
+    assert "parameters.nope" in result.stderr and "unknown parameter 'nope'" in result.stderr

@@ -1,0 +1,69 @@
+"""Chart builders for the tornado diagram and the two-way map (checked via to_dict)."""
+
+from __future__ import annotations
+
+import pandas as pd
+import pytest
+
+from ui.charts import make_tornado_chart, make_two_way_chart
+
+
+def _one_way_table() -> pd.DataFrame:
+    # Synthetic numbers shaped like caredecide.sensitivity.one_way(...).table
+    return pd.DataFrame(
+        {
+            "rank": [1, 2],
+            "parameter": ["p", "cost"],
+            "low": [0.01, 100.0],
+            "high": [0.2, 300.0],
+            "value_low": [1990.0, 1920.0],
+            "value_base": [1910.0, 1910.0],
+            "value_high": [1870.0, 1900.0],
+            "switches_low": [1, 0],
+            "switches_high": [0, 0],
+        }
+    )
+
+
+def _layers(spec: dict) -> list[dict]:
+    return spec["layer"]
+
+
+def test_tornado_orders_by_rank_and_marks_policy_changing_parameters():
+    spec = make_tornado_chart(_one_way_table(), unit="(money)").to_dict()
+    bar, rule, text = _layers(spec)
+    assert bar["encoding"]["y"]["sort"] == ["p", "cost"]
+    datasets = spec["datasets"]
+    text_rows = datasets[text["data"]["name"]]
+    marks = {row["parameter"]: row["mark"] for row in text_rows}
+    assert marks == {"p": "changes the policy", "cost": ""}
+    bar_rows = datasets[bar["data"]["name"]]
+    assert len(bar_rows) == 4  # two ends per parameter
+    assert {row["value"] for row in bar_rows} == {1990.0, 1870.0, 1920.0, 1900.0}
+    assert rule["mark"]["type"] == "rule"
+
+
+def test_two_way_writes_actions_in_cells_and_stars_changed_policies():
+    frame = pd.DataFrame(
+        {
+            "x_parameter": "p",
+            "x_value": [0.1, 0.2, 0.1, 0.2],
+            "y_parameter": "hr",
+            "y_value": [0.2, 0.2, 0.9, 0.9],
+            "action_at_start": ["treat", "treat", "wait", "treat"],
+            "same_as_base": [True, True, False, True],
+        }
+    )
+    spec = make_two_way_chart(frame).to_dict()
+    cells, text = _layers(spec)
+    assert text["mark"]["type"] == "text"
+    rows = spec["datasets"][spec["data"]["name"]]  # shared data of the layers
+    assert [r["label"] for r in rows] == ["treat", "treat", "wait*", "treat"]
+    assert cells["encoding"]["x"]["title"] == "p" and cells["encoding"]["y"]["title"] == "hr"
+    assert cells["encoding"]["color"]["scale"]["domain"] == ["treat", "wait"]
+
+
+@pytest.mark.parametrize("builder", [make_tornado_chart, make_two_way_chart])
+def test_chart_builders_name_missing_columns(builder):
+    with pytest.raises(ValueError, match="lacks column"):
+        builder(pd.DataFrame({"parameter": ["p"]}))
