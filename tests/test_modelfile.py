@@ -187,3 +187,30 @@ def test_random_valid_models_survive_dumps_then_loads(model):
     again = loads_model(text)
     assert again == model
     assert dumps_model(again) == text
+
+
+def test_every_distribution_example_in_the_docs_is_accepted():
+    import re
+    import tomllib
+    from pathlib import Path
+
+    from caredecide.distributions import distribution_from_spec
+
+    docs = Path(__file__).resolve().parents[1] / "docs" / "model-file.md"
+    lines = re.findall(r"^distribution = \{.*\}", docs.read_text(), flags=re.MULTILINE)
+    assert len(lines) >= 8
+    for line in lines:
+        spec = tomllib.loads(line.split("#")[0])["distribution"]
+        distribution_from_spec(spec, where=line)
+
+
+def test_the_docs_example_expressions_parse():
+    import re
+    from pathlib import Path
+
+    from caredecide.expressions import parse_expression
+
+    docs = Path(__file__).resolve().parents[1] / "docs" / "model-file.md"
+    block = docs.read_text().split("Examples:")[1].split("```")[1]
+    for text in re.findall(r'= "(.*?)"', block):
+        parse_expression(text, where="docs")
