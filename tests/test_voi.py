@@ -168,6 +168,27 @@ def test_evppi_matches_scipy_smoothing_spline():
     np.testing.assert_allclose(ours.fitted, ref.fitted, atol=0.05 * inb.std())
 
 
+def test_evppi_regression_error_by_posterior_draws():
+    # Strong et al. 2014: resample the spline coefficients from their posterior. The
+    # error is positive, reproducible from the seed and of the order of the Monte Carlo
+    # error for this design (the fit has ~2 degrees of freedom of noise to carry).
+    nb, phi1, _, _ = _linear_gaussian(5000, seed=14)
+    plain = evppi_regression(nb, phi1)
+    assert np.isnan(plain.regression_standard_error)
+    first = evppi_regression(nb, phi1, posterior_samples=200, seed=3)
+    again = evppi_regression(nb, phi1, posterior_samples=200, seed=3)
+    assert first.regression_standard_error == again.regression_standard_error
+    assert 0.1 * first.standard_error < first.regression_standard_error < 10 * first.standard_error
+    assert first.value == plain.value  # sampling never changes the estimate
+
+
+def test_evppi_regression_error_not_for_scipy_reference():
+    nb, phi1, _, _ = _linear_gaussian(500, seed=15)
+    result = evppi_regression(nb, phi1, method="smoothing_spline", posterior_samples=10)
+    assert np.isnan(result.regression_standard_error)
+    assert "no posterior draws" in result.message
+
+
 def test_evppi_of_independent_parameter_is_small():
     # Two strategies: EVPPI = mean(max(0, f)) - max(0, mean f) <= mean|f - mean f| <= sd(f),
     # and a linear smoother of pure noise has sd(f) ~ sigma sqrt(edf / D) (common practice).
@@ -308,6 +329,12 @@ def test_error_smoothing_spline_needs_distinct_values():
     phi = np.repeat([0.0, 1.0, 2.0], 40)
     with pytest.raises(ModelError, match="at least 5 distinct parameter values, got 3"):
         evppi_regression(np.ones((120, 2)), phi, method="smoothing_spline")
+
+
+@pytest.mark.parametrize("samples", [1, -3, 2.5])
+def test_error_posterior_samples(samples):
+    with pytest.raises(ModelError, match=r"posterior_samples: expected 0 .* or an integer >= 2"):
+        evppi_regression(np.ones((100, 2)), np.linspace(0, 1, 100), posterior_samples=samples)
 
 
 def test_error_scaled_negative_population():

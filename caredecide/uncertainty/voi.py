@@ -65,8 +65,9 @@ is reported in ``message``: the basis may be too small for the effect.
 Limits: a regression EVPPI is biased upward by the noise the smoother keeps (of the
 order of ``edf / D`` times the residual variance, divided by the spread of the fitted
 values) and downward where the smoother is too stiff. The standard error reported is
-the Monte Carlo error of the mean fitted opportunity loss; it does not include the
-regression's own error.
+the Monte Carlo error of the mean fitted opportunity loss; the regression's own error
+is estimated on request by sampling the spline coefficients from their Bayesian
+posterior (``posterior_samples``; Strong et al. 2014).
 """
 
 from __future__ import annotations
@@ -87,6 +88,7 @@ _MIN_MARGIN = 5
 _MIN_TENSOR_MARGIN = 4
 _RIDGE = 1e-9
 _LAMBDA_STEP_DECADES = 0.05
+_CHUNK_ELEMENTS = 4_000_000
 
 __all__ = [
     "METHODS",
@@ -237,6 +239,9 @@ class EVPPIResult:
     fitted: np.ndarray
     message: str = ""
     per_person: bool = True
+    regression_standard_error: float = float("nan")
+    """Standard deviation of the EVPPI over posterior draws of the spline (NaN unless
+    ``posterior_samples`` was given)."""
 
 
 def opportunity_loss(values: np.ndarray) -> tuple[float, float, np.ndarray, int]:
@@ -312,6 +317,8 @@ def evppi_regression(
     *,
     method: str = "auto",
     basis_size: int | None = None,
+    posterior_samples: int = 0,
+    seed: int | None = None,
 ) -> EVPPIResult:
     """EVPPI of a parameter or group of parameters by regression (Strong et al. 2014).
 
@@ -328,6 +335,12 @@ def evppi_regression(
         B-spline basis functions per parameter (default: the largest allowed by the
         draws, at most 20 for one parameter, 8 per margin for a two-parameter tensor
         product, 5 for three).
+    posterior_samples : int
+        When > 1, the EVPPI is recomputed for this many draws of the spline
+        coefficients from their Bayesian posterior and their standard deviation is
+        reported as ``regression_standard_error`` (Strong et al. 2014); 0 skips it.
+    seed : int, optional
+        Seed for the posterior draws (``numpy.random.SeedSequence``).
 
     Returns
     -------
@@ -342,6 +355,15 @@ def evppi_regression(
     values = _check_net_benefit(net_benefit, min_strategies=2)
     n_draws = values.shape[0]
     phi = _check_covariates(covariates, n_draws)
+    if isinstance(posterior_samples, bool) or not isinstance(
+        posterior_samples, int | np.integer
+    ) or posterior_samples == 1 or posterior_samples < 0:
+        raise ModelError(
+            Problem(
+                "posterior_samples",
+                f"expected 0 (skip) or an integer >= 2, got {posterior_samples!r}",
+            )
+        )
     p = phi.shape[1]
     method = _resolve_method(method, p, n_draws)
     incremental = values[:, 1:] - values[:, :1]
@@ -356,13 +378,14 @@ def evppi_regression(
     else:
         margin = _margin_size(method, p, n_draws, basis_size)
         design, penalty = _design(method, _unit_scale(phi), margin)
-        fitted_inc, edf, lam, rss, at_limit = _fit_penalised(design, penalty, incremental)
+        fit = _fit_penalised(design, penalty, incremental)
+        fitted_inc, edf, lam, rss = fit.fitted, fit.edf, fit.smoothing, fit.rss
         size = design.shape[1]
         dof = n_draws - edf
         message = (
             "the smoothing chose the least penalty on the grid for strategy column(s) "
-            f"{(np.flatnonzero(at_limit) + 1).tolist()}: the basis may be too small"
-            if at_limit.any()
+            f"{(np.flatnonzero(fit.at_limit) + 1).tolist()}: the basis may be too small"
+            if fit.at_limit.any()
             else ""
         )
     tss = ((incremental - incremental.mean(axis=0)) ** 2).sum(axis=0)
@@ -371,6 +394,11 @@ def evppi_regression(
         residual_se = np.sqrt(rss / np.maximum(dof, 1.0))
     fitted = np.concatenate([np.zeros((n_draws, 1)), fitted_inc], axis=1)
     value, se, _, _ = opportunity_loss(fitted)
+    regression_se = float("nan")
+    if posterior_samples > 1 and method != "smoothing_spline":
+        regression_se = _regression_error(fit, residual_se, posterior_samples, seed)
+    elif posterior_samples > 1:
+        message = "no posterior draws for 'smoothing_spline'; regression error not estimated"
     return EVPPIResult(
         value=value,
         standard_error=se,
@@ -385,6 +413,7 @@ def evppi_regression(
         r_squared=r_squared,
         fitted=fitted,
         message=message,
+        regression_standard_error=regression_se,
     )
 
 
@@ -456,14 +485,22 @@ def _design(method: str, u: np.ndarray, margin: int) -> tuple[np.ndarray, np.nda
     return design, penalty
 
 
-def _fit_penalised(
-    design: np.ndarray, penalty: np.ndarray, y: np.ndarray
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Penalised least squares for every column of ``y`` with GCV-chosen smoothing.
+@dataclass(frozen=True)
+class _PenalisedFit:
+    """A penalised fit of K' columns in the eigenbasis ``Q`` (D, M) of the smoother."""
 
-    Returns fitted (D, K'), edf (K',), lambda (K',), RSS (K',) and a (K',) flag for a
-    choice at the low end of the lambda grid.
-    """
+    fitted: np.ndarray  # (D, K')
+    edf: np.ndarray  # (K',)
+    smoothing: np.ndarray  # (K',) lambda
+    rss: np.ndarray  # (K',)
+    at_limit: np.ndarray  # (K',) bool: lambda at the low end of the grid
+    q: np.ndarray  # (D, M)
+    shrink: np.ndarray  # (K', M) 1 / (1 + lambda s)
+    b: np.ndarray  # (M, K') Q'y
+
+
+def _fit_penalised(design: np.ndarray, penalty: np.ndarray, y: np.ndarray) -> _PenalisedFit:
+    """Penalised least squares for every column of ``y`` with GCV-chosen smoothing."""
     n_draws, size = design.shape
     gram = design.T @ design
     ridge = _RIDGE * np.trace(gram) / size
@@ -485,7 +522,41 @@ def _fit_penalised(
     chosen_shrink = shrink[choice]  # (K', M)
     fitted = q @ (chosen_shrink.T * b)
     rss_chosen = ((y - fitted) ** 2).sum(axis=0)
-    return fitted, edf[choice], grid[choice], rss_chosen, choice == 0
+    return _PenalisedFit(
+        fitted=fitted,
+        edf=edf[choice],
+        smoothing=grid[choice],
+        rss=rss_chosen,
+        at_limit=choice == 0,
+        q=q,
+        shrink=chosen_shrink,
+        b=b,
+    )
+
+
+def _regression_error(
+    fit: _PenalisedFit, residual_se: np.ndarray, samples: int, seed: int | None
+) -> float:
+    """Standard deviation of the EVPPI over draws from the fit's Bayesian posterior.
+
+    In the eigenbasis the posterior of the coefficients is independent normal with mean
+    ``shrink * b`` and variance ``sigma^2 * shrink`` (the Bayesian covariance
+    ``sigma^2 (X'X + lambda Omega)^-1`` of a penalised spline); Strong et al. 2014
+    sample it to give the EVPPI's regression error.
+    """
+    rng = np.random.default_rng(np.random.SeedSequence(seed))
+    mean = (fit.shrink * fit.b.T).T  # (M, K')
+    sd = residual_se[None, :] * np.sqrt(fit.shrink.T)  # (M, K')
+    coefficients = mean[None] + sd[None] * rng.standard_normal((samples, *mean.shape))
+    n_draws, n_inc = fit.fitted.shape
+    chunk = max(1, _CHUNK_ELEMENTS // (n_draws * (n_inc + 1)))
+    values = np.empty(samples)
+    for start in range(0, samples, chunk):  # blocks of posterior samples bound the memory
+        block = coefficients[start : start + chunk]
+        fitted = np.einsum("dm,smk->sdk", fit.q, block)
+        table = np.concatenate([np.zeros((*fitted.shape[:2], 1)), fitted], axis=2)
+        values[start : start + chunk] = opportunity_loss(table)[0]
+    return float(values.std(ddof=1))
 
 
 def _fit_scipy_smoothing_spline(x: np.ndarray, y: np.ndarray) -> np.ndarray:
