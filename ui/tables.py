@@ -283,3 +283,17 @@ def model_with_table(model: Model, name: str, frame: pd.DataFrame) -> Model:
         return replace(model, **{kind: table})
     raise KeyError(f"unknown model table {name!r}; expected one of settings, states, actions, "
                    "parameters, transitions.<action>, rates.<action>")
+
+
+def with_header_comments(old_text: str, new_text: str) -> str:
+    """``new_text`` preceded by the leading comment block of ``old_text``.
+
+    Writing a model from tables drops comments; the header (e.g. the SYNTHETIC marking of a
+    demo model) is kept so it survives table edits.
+    """
+    header = []
+    for line in old_text.splitlines(keepends=True):
+        if not line.lstrip().startswith("#"):
+            break
+        header.append(line if line.endswith("\n") else line + "\n")
+    return "".join(header) + new_text

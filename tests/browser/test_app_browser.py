@@ -50,3 +50,30 @@ def test_sidebar_navigation_reaches_every_view(app_url, page):
         assert page.url.rstrip("/").endswith(url_path)
         assert page.locator("[data-testid='stException']").count() == 0
         assert page.get_by_text("Page not found").count() == 0
+
+
+def test_an_edit_survives_a_page_reload(app_url, page, artifacts):
+    """Edit the model text, reload the page (a new session): the autosaved draft comes back.
+
+    Runs last: it leaves a draft (only the title differs) in this session's drafts folder.
+    """
+    page.goto(app_url, timeout=TIMEOUT_MS)
+    _wait_until_done(page, "Model")
+    page.get_by_role("tab", name="Model file").click()
+    editor = page.locator("[data-testid='stTextArea'] textarea").first
+    text = editor.input_value()
+    edited = text.replace('title = "', 'title = "Edited in the browser: ', 1)
+    assert edited != text
+    editor.fill(edited)
+    editor.press("Control+Enter")  # commit the text area
+    page.get_by_text("is valid (autosaved)").first.wait_for(timeout=TIMEOUT_MS)
+    page.wait_for_selector(DONE, timeout=TIMEOUT_MS)
+
+    page.reload(timeout=TIMEOUT_MS)
+    _wait_until_done(page, "Model")
+    page.get_by_text("Restored your autosaved draft").first.wait_for(timeout=TIMEOUT_MS)
+    page.get_by_role("tab", name="Model file").click()
+    restored = page.locator("[data-testid='stTextArea'] textarea").first.input_value()
+    assert "Edited in the browser: " in restored
+    page.screenshot(path=str(artifacts / "app-model-restored.png"), full_page=True)
+    assert page.locator("[data-testid='stException']").count() == 0

@@ -106,6 +106,7 @@ def test_a_table_edit_changes_the_working_model_and_the_result(app):
     after = app.session_state[common.TEXT_KEY]
     edited = loads_model(after, file="t", base_dir=_demo_dir())
     assert edited.parameters["c_drug_year"].value == 5000.0
+    assert after.startswith("# SYNTHETIC DEMO MODEL")  # the header marking survives
     app.switch_page("views/policy.py").run()
     _, totals, _ = _library(after, "net_benefit", 30000.0, _demo_dir())
     _, totals_before, _ = _library(before, "net_benefit", 30000.0, _demo_dir())

@@ -109,3 +109,10 @@ def test_model_file_over_the_size_limit_is_refused(tmp_path):
     path.write_bytes(b"#" * (common.MAX_MODEL_BYTES + 1))
     with pytest.raises(ModelError, match=r"huge\.toml: the model file is \d+ bytes"):
         common.read_model_file(path)
+
+
+def test_header_comments_survive_a_rewrite_from_tables():
+    old = "# SYNTHETIC\n#  invented\nformat = 1\n# inner comment\n"
+    expected = "# SYNTHETIC\n#  invented\nformat = 1\n"
+    assert tables.with_header_comments(old, "format = 1\n") == expected
+    assert tables.with_header_comments("format = 1\n", "x\n") == "x\n"

@@ -16,7 +16,7 @@ from caredecide.model import OBJECTIVES, PARAMETER_KINDS
 from caredecide.modelfile import dumps_model
 from synthetic_cohort import MODELS_DIR
 from ui import common, drafts
-from ui.tables import model_to_tables, model_with_table
+from ui.tables import model_to_tables, model_with_table, with_header_comments
 from ui.templates import TEMPLATES
 
 
@@ -138,7 +138,7 @@ def _table_editor(model, name: str, frame, problems) -> None:
         except ModelError as error:  # cannot be written at all: keep it in the editor
             common.show_problems(error.problems)
             return
-        common.edit_model_text(dumps_model(new_model))
+        common.edit_model_text(with_header_comments(common.working_text(), dumps_model(new_model)))
         st.rerun()
 
 
