@@ -225,6 +225,16 @@ def test_tensor_captures_interaction_additive_does_not():
     assert additive.value < 0.8 * float(additive.evpi)
 
 
+def test_evppi_with_a_strategy_identical_to_the_reference():
+    # A column equal to the reference has zero incremental NB: fitted 0, no warning.
+    nb, phi1, _, _ = _linear_gaussian(2000, seed=16)
+    three = np.column_stack([nb, nb[:, 0]])
+    result = evppi_regression(three, phi1)
+    assert np.all(result.fitted[:, 2] == 0.0)
+    assert result.message == ""
+    assert result.value == pytest.approx(evppi_regression(nb, phi1).value)
+
+
 def test_evppi_discrete_parameter():
     # A parameter with 3 values: E[INB | phi] is the group mean; the spline (ridge-held
     # bases with no draws) reproduces the group means.

@@ -3,10 +3,15 @@
 RESEARCH USE ONLY: not a substitute for clinical judgment, local guidelines or
 licensed practice.
 
-Modules
--------
+Modules (import them directly; this package imports nothing on its own so that other
+modules can join it without import cycles):
+
 voi
-    EVPI with its Monte Carlo error; EVPPI by regression (Strong et al. 2014).
+    ``evpi`` (a float with its Monte Carlo error), ``evppi_regression`` (Strong, Oakley
+    & Brennan 2014 regression EVPPI with penalised splines), ``opportunity_loss``.
 acceptability
-    Acceptability curves and frontier, shares of actions across draws, running means.
+    ``acceptability_curve``, ``acceptability_frontier``, ``evpi_curve``,
+    ``action_shares`` (shares of actions across draws) and ``running_mean``.
+
+The rules and formulas are in ``docs/methods-economics.md``.
 """

@@ -518,7 +518,8 @@ def _fit_penalised(design: np.ndarray, penalty: np.ndarray, y: np.ndarray) -> _P
     edf = shrink @ weight  # (L,)
     rss = rss_unpenalised[None, :] + ((1.0 - shrink) ** 2) @ (b**2)  # (L, K')
     gcv = n_draws * rss / (n_draws - edf[:, None]) ** 2
-    choice = np.argmin(gcv, axis=0)  # (K',)
+    # On ties (e.g. a strategy identical to the reference) take the smoothest fit.
+    choice = grid.size - 1 - np.argmin(gcv[::-1], axis=0)  # (K',)
     chosen_shrink = shrink[choice]  # (K', M)
     fitted = q @ (chosen_shrink.T * b)
     rss_chosen = ((y - fitted) ** 2).sum(axis=0)
@@ -527,7 +528,7 @@ def _fit_penalised(design: np.ndarray, penalty: np.ndarray, y: np.ndarray) -> _P
         edf=edf[choice],
         smoothing=grid[choice],
         rss=rss_chosen,
-        at_limit=choice == 0,
+        at_limit=(choice == 0) & (gcv[0] < gcv[-1]),
         q=q,
         shrink=chosen_shrink,
         b=b,
