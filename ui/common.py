@@ -17,7 +17,14 @@ import streamlit as st
 
 from caredecide.cautions import CAUTION_LONG, CAUTION_SHORT
 from caredecide.cli.app import MAX_MODEL_BYTES, MODEL_ENV
+from caredecide.compile import compile_model
 from caredecide.errors import CaredecideError, ModelError, Problem
+from caredecide.evaluate import evaluate_policy
+from caredecide.model import Model
+from caredecide.modelfile import loads_model
+from caredecide.objective import Objective
+from caredecide.solvers import PolicyResult, solve
+from synthetic_cohort import demo_model_path
 from ui import drafts
 
 TEXT_KEY = "cd_model_text"
@@ -43,8 +50,6 @@ def startup_path() -> Path:
     given = os.environ.get(MODEL_ENV)
     if given:
         return Path(given)
-    from synthetic_cohort import demo_model_path
-
     return Path(demo_model_path())
 
 
@@ -172,15 +177,13 @@ def base_folder() -> str:
 class Checked:
     """A parsed and validated model, or the problems found (model is None then)."""
 
-    model: object | None
+    model: Model | None
     problems: tuple[Problem, ...]
 
 
 @st.cache_data(max_entries=64, show_spinner=False)
 def check_model(text: str, file: str, base_dir: str) -> Checked:
     """Parse and validate model text (cached on the text): the model or every problem."""
-    from caredecide.modelfile import loads_model
-
     try:
         model = loads_model(text, file=file, base_dir=base_dir)
     except ModelError as error:
@@ -206,8 +209,6 @@ def show_problems(problems: list[Problem], *, title: str = "") -> None:
 @st.cache_data(max_entries=64, show_spinner=False)
 def read_model(text: str, file: str, base_dir: str) -> Checked:
     """Read model text into a Model *without* validating it (for the table editors)."""
-    from caredecide.modelfile import loads_model
-
     try:
         model = loads_model(text, file=file, base_dir=base_dir, validate=False)
     except ModelError as error:
@@ -219,7 +220,7 @@ def read_model(text: str, file: str, base_dir: str) -> Checked:
 class Solved:
     """A solved model: the policy result and its evaluation under the same objective."""
 
-    result: object
+    result: PolicyResult
     trace: pd.DataFrame
     totals: pd.DataFrame
 
@@ -236,12 +237,6 @@ def solve_model(
     CaredecideError
         When the model is invalid or cannot be solved as asked.
     """
-    from caredecide.compile import compile_model
-    from caredecide.evaluate import evaluate_policy
-    from caredecide.modelfile import loads_model
-    from caredecide.objective import Objective
-    from caredecide.solvers import solve
-
     model = loads_model(text, file=file, base_dir=base_dir)
     compiled = compile_model(model)
     objective = Objective(kind, float(willingness_to_pay))
@@ -256,7 +251,7 @@ def current_check() -> Checked:
     return check_model(working_text(), file_label(), base_folder())
 
 
-def valid_model_or_stop():
+def valid_model_or_stop() -> Model:
     """The validated working model; otherwise say where to fix it and stop the view."""
     checked = current_check()
     if checked.model is None:

@@ -66,6 +66,7 @@ def test_policy_view_shows_the_library_totals_and_policy(app):
         f"{totals['life_years']:,.4f}", f"{totals['qalys']:,.4f}", f"{totals['costs']:,.2f}",
         f"{totals['net_monetary_benefit']:,.2f}",
     ]
+    assert any(m.value == result.structure().text for m in app.markdown)
     heat_map = _chart_data(app, 0)
     expected = result.to_frame()
     expected = expected[expected["state"].isin(heat_map["state"].unique())]

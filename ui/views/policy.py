@@ -51,13 +51,15 @@ cols[3].metric(f"Net monetary benefit at {willingness_to_pay:,.0f}",
 
 # -- structure ---------------------------------------------------------------------------
 st.subheader("What the policy says")
-try:
-    st.markdown(str(result.structure()))
-except ModuleNotFoundError:  # caredecide.structure not installed in this tree yet
-    st.caption("The plain-language summary needs caredecide.structure.")
+structure = result.structure()
+st.markdown(structure.text)
+labels = {a.id: a.label or a.id for a in model.actions}
+st.markdown("\n".join(
+    f"- **{labels.get(action, action)}**: " + "; ".join(f"{state} ({age})" for state, age in bands)
+    for action, bands in structure.bands.items() if bands
+))
 
 # -- heat maps ---------------------------------------------------------------------------
-labels = {a.id: a.label or a.id for a in model.actions}
 state_labels = {s.id: s.label or s.id for s in model.states}
 frame = result.to_frame()
 decision_ids = [s for s, d in zip(result.state_ids, result.decision_states, strict=True) if d]
