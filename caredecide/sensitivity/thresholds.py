@@ -102,14 +102,14 @@ def _locate_thresholds(
         x, f_x, converged, nit = _roots(
             solve_at, p, t, s, a_below, a_above, x_lo, x_hi, f_lo, f_hi, xtol, maxiter
         )
-        # Is some third action better at the threshold? One more batch, at the roots.
-        _, at_root = solve_at(x, p)
-        q_root = np.asarray(at_root.q_values)[np.arange(p.size), t, s]  # (n, A)
-        best = q_root.max(axis=1)
-        third = best - np.maximum(
-            q_root[np.arange(p.size), a_below], q_root[np.arange(p.size), a_above]
-        )
-        scale = np.maximum(1.0, np.abs(best))
+        third_better = np.zeros(p.size, dtype=bool)
+        if q.shape[-1] > 2:  # is a third action better at the threshold? One more batch.
+            _, at_root = solve_at(x, p)
+            q_root = np.asarray(at_root.q_values)[np.arange(p.size), t, s]  # (n, A)
+            best = q_root.max(axis=1)
+            n = np.arange(p.size)
+            third = best - np.maximum(q_root[n, a_below], q_root[n, a_above])
+            third_better = third > 1e-9 * np.maximum(1.0, np.abs(best))
         action_ids = np.asarray(compiled.action_ids, dtype=object)
         ages = policy_ages(compiled, policy.shape[2])
         rows.append(
@@ -128,7 +128,7 @@ def _locate_thresholds(
                     "bracket_high": x_hi,
                     "converged": converged,
                     "iterations": nit,
-                    "third_action_better": third > 1e-9 * scale,
+                    "third_action_better": third_better,
                 }
             )
         )
@@ -160,6 +160,10 @@ def _roots(
         def gap(xv: np.ndarray, k: np.ndarray) -> np.ndarray:
             k = np.asarray(k).astype(int).reshape(-1)
             xv = np.asarray(xv, dtype=float).reshape(-1)
+            # The bracket ends were solved on the grid already: reuse those gaps.
+            for known_x, known_f in ((x_lo, f_lo), (x_hi, f_hi)):
+                if np.array_equal(xv, known_x[k]):
+                    return known_f[k]
             _, res = solve_at(xv, p[k])
             qv = np.asarray(res.q_values)
             n = np.arange(k.size)

@@ -371,8 +371,7 @@ def compiled_over_discount_rate(
 
 def default_objective(model: Any) -> Objective:
     """The objective the model file asks for (``[settings] objective``, willingness to pay)."""
-    settings = model.settings
-    return Objective(kind=settings.objective, willingness_to_pay=float(settings.willingness_to_pay))
+    return Objective.from_settings(model.settings)
 
 
 def solve_parameter_sets(
