@@ -200,3 +200,12 @@ def test_mapping_and_dataframe_give_the_same_batch(demo):
     b = compile_model(demo, pd.DataFrame(values))
     np.testing.assert_array_equal(a.state_qaly, b.state_qaly)
     assert a.state_qaly.shape == (2, 1, 7)
+
+
+def test_infinite_horizon_compiles_stationary_arrays():
+    data = small_model_dict()
+    del data["settings"]["horizon_cycles"]
+    data["settings"]["horizon"] = "infinite"
+    c = compile_model(load_dict(data))
+    assert c.n_cycles is None and c.is_stationary
+    assert c.transition.shape == (1, 1, 2, 3, 3)
