@@ -244,7 +244,13 @@ def load_model(path: Path | str, *, validate: bool = True) -> Model:
         raise ModelError(
             f"the model file is {size} bytes, larger than {MAX_MODEL_BYTES}", file=str(path)
         )
-    text = path.read_text(encoding="utf-8")
+    try:
+        text = path.read_text(encoding="utf-8")
+    except UnicodeDecodeError as error:
+        raise ModelError(
+            f"byte {error.start} is not UTF-8 text; expected a TOML file saved as UTF-8",
+            file=str(path),
+        ) from None
     return loads_model(text, file=str(path), base_dir=path.parent, validate=validate)
 
 

@@ -214,3 +214,10 @@ def test_the_docs_example_expressions_parse():
     block = docs.read_text().split("Examples:")[1].split("```")[1]
     for text in re.findall(r'= "(.*?)"', block):
         parse_expression(text, where="docs")
+
+
+def test_binary_file_is_refused_with_a_clear_error(tmp_path):
+    path = tmp_path / "model.toml"
+    path.write_bytes(b"format = 1\n\xff\xfe")
+    with pytest.raises(ModelError, match="byte 11 is not UTF-8"):
+        load_model(path)
