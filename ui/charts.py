@@ -176,7 +176,8 @@ def make_value_chart(
             x=alt.X("age:Q", title="Age (years)"),
             y=y,
             color=colour,
-            strokeDash=alt.StrokeDash("state:N", sort=states, legend=None),
+            strokeDash=alt.StrokeDash("state:N", scale=alt.Scale(domain=states),
+                                      title="Health state"),
             tooltip=["state:N", "age:Q", alt.Tooltip("value:Q", format=".4g")],
         )
         .properties(title="Value of the best policy per state and age")
@@ -233,11 +234,12 @@ def make_convergence_chart(frame: pd.DataFrame) -> alt.Chart | alt.LayerChart:
         alt.Chart(data)
         .mark_line(point=True)
         .encode(
-            x=alt.X("sweep:Q", title="Sweep"),
+            x=alt.X("sweep:Q", title="Sweep", axis=alt.Axis(tickMinStep=1)),
             y=alt.Y("amount:Q", title="Size (sup norm)", scale=alt.Scale(type="log")),
-            color=alt.Color("quantity:N", title="",
+            # Colour and dash carry the same field: one legend, lines told apart without colour.
+            color=alt.Color("quantity:N", title="Quantity",
                             scale=alt.Scale(range=list(ACTION_PALETTE[:4]))),
-            strokeDash=alt.StrokeDash("quantity:N", legend=None),
+            strokeDash=alt.StrokeDash("quantity:N", title="Quantity"),
             tooltip=["sweep:Q", "quantity:N", alt.Tooltip("amount:Q", format=".3e")],
         )
     )
@@ -245,7 +247,7 @@ def make_convergence_chart(frame: pd.DataFrame) -> alt.Chart | alt.LayerChart:
         stable = int(frame["policy_stable_from"].dropna().iloc[0])
         rule_data = pd.DataFrame({"sweep": [stable], "note": ["policy stops changing"]})
         rule = alt.Chart(rule_data).mark_rule(color="#7A3B63", strokeDash=[4, 3]).encode(
-            x="sweep:Q", tooltip=["note:N", "sweep:Q"]
+            x=alt.X("sweep:Q", axis=alt.Axis(tickMinStep=1)), tooltip=["note:N", "sweep:Q"]
         )
         label = alt.Chart(rule_data).mark_text(
             align="left", dx=4, dy=-6, color="#7A3B63", baseline="top"
