@@ -52,6 +52,25 @@ def test_sidebar_navigation_reaches_every_view(app_url, page):
         assert page.get_by_text("Page not found").count() == 0
 
 
+def test_upload_a_model_and_watch_value_iteration_converge(app_url, page, artifacts, tmp_path):
+    from ui.templates import TEMPLATES
+
+    model = tmp_path / "stationary_upload.toml"
+    model.write_text(TEMPLATES["infinite-horizon"], encoding="utf-8")
+    page.goto(app_url, timeout=TIMEOUT_MS)
+    _wait_until_done(page, "Model")
+    page.get_by_text("Open another model").click()
+    page.locator("[data-testid='stFileUploaderDropzoneInput']").set_input_files(str(model))
+    page.get_by_text("stationary_upload.toml (upload)").first.wait_for(timeout=TIMEOUT_MS)
+    page.wait_for_selector(DONE, timeout=TIMEOUT_MS)
+    page.locator("[data-testid='stSidebarNav'] a[href$='/convergence']").click()
+    _wait_until_done(page, "Convergence")
+    page.get_by_text("Value iteration").first.wait_for(timeout=TIMEOUT_MS)
+    page.locator("[data-testid='stVegaLiteChart']").first.wait_for(timeout=TIMEOUT_MS)
+    page.screenshot(path=str(artifacts / "app-convergence-value-iteration.png"), full_page=True)
+    assert page.locator("[data-testid='stException']").count() == 0
+
+
 def test_an_edit_survives_a_page_reload(app_url, page, artifacts):
     """Edit the model text, reload the page (a new session): the autosaved draft comes back.
 
