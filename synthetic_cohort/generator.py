@@ -140,6 +140,33 @@ class CohortDesign:
         return len(self.stage_ids)
 
 
+def fully_observed_design(
+    rates: np.ndarray,
+    start_shares: tuple[float, ...],
+    *,
+    follow_up_years: float,
+    visit_every_years: float = 1.0,
+) -> CohortDesign:
+    """A design observed at exactly regular visits, without drop-out or treatment.
+
+    Everyone enters together, so no follow-up ends inside a visit interval when
+    ``follow_up_years`` is a multiple of ``visit_every_years``; stages are named
+    ``stage_1 .. stage_K`` after the shape of ``rates`` ((K + 1, K + 1)).
+    """
+    n_stages = np.asarray(rates).shape[0] - 1
+    return CohortDesign(
+        rates=rates,
+        stage_ids=tuple(f"stage_{k + 1}" for k in range(n_stages)),
+        start_shares=start_shares,
+        visit_gap_mean=visit_every_years,
+        visit_gap_shape=None,
+        follow_up_years=follow_up_years,
+        staggered_entry_years=0.0,
+        dropout_rate=0.0,
+        treat_from_stage=None,
+    )
+
+
 @dataclass
 class _Chunk:
     """Per-patient simulation state of one chunk (arrays of shape (n,))."""

@@ -18,6 +18,7 @@ from synthetic_cohort.generator import (
     PATIENT_COLUMNS,
     VISIT_COLUMNS,
     CohortDesign,
+    fully_observed_design,
     generate_cohort,
     progressive_rates,
 )
@@ -89,16 +90,8 @@ def test_simulated_process_matches_the_matrix_exponential():
     # Source: Welton & Ades 2005, Med Decis Making 25(6):633-645; Jones, Epstein &
     # Garcia-Mochon 2017 (REFERENCES.md): progressive 1 -> 2 -> 3 with l12 = 0.1,
     # l13 = 0.05, l23 = 0.2 gives row 1 of expm(Q) = 0.860708 / 0.083954 / 0.055338.
-    design = CohortDesign(
-        rates=progressive_rates([0.1], [0.05, 0.2]),
-        stage_ids=("stage_1", "stage_2"),
-        start_shares=(1.0, 0.0),
-        visit_gap_mean=1.0,
-        visit_gap_shape=None,
-        follow_up_years=2.0,
-        staggered_entry_years=0.0,
-        dropout_rate=0.0,
-        treat_from_stage=None,
+    design = fully_observed_design(
+        progressive_rates([0.1], [0.05, 0.2]), (1.0, 0.0), follow_up_years=2.0
     )
     n = 20_000
     shares = _state_after_one_year(design, n, seed=7)

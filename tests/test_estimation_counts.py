@@ -1,0 +1,137 @@
+"""Count-based estimates from regular-interval observations."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+import scipy.stats
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from hypothesis.extra.numpy import arrays
+
+from caredecide.errors import ModelError
+from caredecide.estimation import estimate_counts, records_from_frames
+
+STAGES = ("stage_1", "stage_2", "dead")
+
+
+def visits_from_pairs(pairs: list[tuple[str, str]], *, treated: bool = False) -> pd.DataFrame:
+    """One patient per (from, to) pair, seen at 0 and 1 year."""
+    rows = []
+    for index, (start, end) in enumerate(pairs):
+        pid = f"SYN-{index:05d}"
+        rows.append((pid, 0.0, start, int(treated)))
+        rows.append((pid, 1.0, end, int(treated)))
+    return pd.DataFrame(rows, columns=["patient_id", "years_since_entry", "stage", "treated"])
+
+
+def test_probabilities_are_the_closed_form_mle():
+    # Multinomial MLE p_ij = n_ij / n_i (Briggs, Ades & Price 2003; common practice):
+    # stage_1: 6 stay, 3 progress, 1 dies -> 0.6 / 0.3 / 0.1; stage_2: 1 stays, 3 die.
+    pairs = (
+        [("stage_1", "stage_1")] * 6
+        + [("stage_1", "stage_2")] * 3
+        + [("stage_1", "dead")]
+        + [("stage_2", "stage_2")]
+        + [("stage_2", "dead")] * 3
+    )
+    (estimate,) = estimate_counts(records_from_frames(visits_from_pairs(pairs)))
+    assert estimate.group == "untreated"
+    np.testing.assert_array_equal(estimate.counts, [[6, 3, 1], [0, 1, 3], [0, 0, 0]])
+    np.testing.assert_allclose(
+        estimate.probabilities(),
+        [[0.6, 0.3, 0.1], [0.0, 0.25, 0.75], [0.0, 0.0, 1.0]],
+        rtol=0,
+        atol=1e-15,
+    )
+    assert estimate.n_transitions == 14
+    assert estimate.n_patients == 14
+    assert estimate.n_skipped == 0
+
+
+def test_dirichlet_parameters_are_counts_plus_prior():
+    pairs = [("stage_1", "stage_1")] * 8 + [("stage_1", "stage_2")] * 2 + [("stage_2", "dead")]
+    (estimate,) = estimate_counts(records_from_frames(visits_from_pairs(pairs)), prior=0.5)
+    np.testing.assert_array_equal(estimate.dirichlet_alpha(), [[8.5, 2.5, 0.5], [0.5, 0.5, 1.5]])
+    # Dirichlet moments (Briggs, Ades & Price 2003): mean a/A, variance a (A - a)/(A^2 (A + 1));
+    # row 1: A = 11.5, a = 8.5 -> mean 0.739130, sd 0.125971. Cross-checked with scipy.stats.
+    alpha = estimate.dirichlet_alpha()[0]
+    np.testing.assert_allclose(estimate.dirichlet_mean()[0], scipy.stats.dirichlet.mean(alpha))
+    np.testing.assert_allclose(
+        estimate.standard_errors()[0], np.sqrt(scipy.stats.dirichlet.var(alpha))
+    )
+    assert estimate.dirichlet_mean()[0, 0] == pytest.approx(8.5 / 11.5)
+    assert estimate.standard_errors()[0, 0] == pytest.approx(np.sqrt(8.5 * 3.0 / (11.5**2 * 12.5)))
+
+
+@settings(max_examples=30, deadline=None)
+@given(arrays(np.int64, (2, 3), elements=st.integers(0, 6)))
+def test_counts_recover_any_table_of_transitions(table):
+    # Stage_2 never goes back to stage_1 in a progressive record; keep the table so.
+    table[1, 0] = 0
+    pairs = [(STAGES[i], STAGES[j]) for i in range(2) for j in range(3) for _ in range(table[i, j])]
+    if not pairs:
+        return
+    records = records_from_frames(visits_from_pairs(pairs), states=STAGES[:2])
+    (estimate,) = estimate_counts(records)
+    np.testing.assert_array_equal(estimate.counts[:2], table)
+    totals = table.sum(axis=1)
+    for i in np.flatnonzero(totals):
+        np.testing.assert_allclose(estimate.probabilities()[i], table[i] / totals[i])
+        assert estimate.probabilities()[i].sum() == pytest.approx(1.0)
+
+
+def test_treated_intervals_are_a_separate_group():
+    untreated = visits_from_pairs([("stage_1", "stage_2")] * 2)
+    treated = visits_from_pairs([("stage_1", "stage_1")] * 3, treated=True)
+    treated["patient_id"] = treated["patient_id"].str.replace("SYN", "SYT")
+    estimates = estimate_counts(records_from_frames(pd.concat([untreated, treated])))
+    assert [e.group for e in estimates] == ["untreated", "treated"]
+    assert estimates[0].counts[0, 1] == 2 and estimates[0].counts.sum() == 2
+    assert estimates[1].counts[0, 0] == 3 and estimates[1].counts.sum() == 3
+
+
+def test_irregular_intervals_are_skipped_and_exact_deaths_within_a_cycle_count():
+    visits = pd.DataFrame(
+        {
+            "patient_id": ["SYN-1", "SYN-1", "SYN-1", "SYN-2"],
+            "years_since_entry": [0.0, 1.05, 3.0, 0.0],
+            "stage": ["stage_1", "stage_2", "stage_2", "stage_1"],
+        }
+    )
+    patients = pd.DataFrame(
+        {
+            "patient_id": ["SYN-1", "SYN-2"],
+            "death_years": [np.nan, 0.7],
+            "censor_years": [3.5, np.nan],
+        }
+    )
+    (estimate,) = estimate_counts(records_from_frames(visits, patients))
+    # 0 -> 1.05 counted (within 10%), 1.05 -> 3 skipped, censored 3 -> 3.5 skipped,
+    # SYN-2 dies 0.7 years after a visit in stage_1: a one-cycle transition to death.
+    np.testing.assert_array_equal(estimate.counts, [[0, 1, 1], [0, 0, 0], [0, 0, 0]])
+    assert estimate.n_skipped == 2
+
+
+def test_no_interval_of_one_cycle_is_an_error():
+    visits = visits_from_pairs([("stage_1", "stage_2")])
+    with pytest.raises(ModelError, match=r"none of the 1 observation intervals is one cycle \(2"):
+        estimate_counts(records_from_frames(visits), cycle_years=2.0)
+
+
+def test_negative_prior_is_an_error():
+    with pytest.raises(ModelError, match="prior is -1; expected a pseudo-count >= 0"):
+        estimate_counts(records_from_frames(visits_from_pairs([("stage_1", "dead")])), prior=-1)
+
+
+def test_cycle_length_must_be_positive():
+    with pytest.raises(ModelError, match=r"cycle_years is 0\.0; expected a number of years > 0"):
+        estimate_counts(records_from_frames(visits_from_pairs([("stage_1", "dead")])), 0.0)
+
+
+def test_tolerance_must_be_a_fraction():
+    with pytest.raises(ModelError, match=r"tolerance is 1\.5; expected a fraction"):
+        estimate_counts(
+            records_from_frames(visits_from_pairs([("stage_1", "dead")])), tolerance=1.5
+        )
