@@ -19,6 +19,8 @@ VIEWS = [
     st.Page("views/policy.py", title="Policy", icon=":material/grid_on:", url_path="policy"),
     st.Page("views/convergence.py", title="Convergence", icon=":material/trending_down:",
             url_path="convergence"),
+    st.Page("views/sensitivity.py", title="Sensitivity", icon=":material/tune:",
+            url_path="sensitivity"),
 ]
 
 page = st.navigation(VIEWS)

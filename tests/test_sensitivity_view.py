@@ -1,0 +1,54 @@
+"""The Sensitivity view in Streamlit's AppTest: runs on the synthetic demo, shows the
+caution, and its tables equal what caredecide.sensitivity computes."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+import streamlit as st
+from streamlit.testing.v1 import AppTest
+
+from caredecide.cautions import CAUTION_SHORT
+from caredecide.modelfile import load_model
+from caredecide.sensitivity import one_way, parameter_thresholds, summarise_thresholds
+from synthetic_cohort import demo_model_path
+
+APP = str(Path(__file__).resolve().parents[1] / "ui" / "app.py")
+
+
+@pytest.fixture(autouse=True)
+def private_app_state(tmp_path, monkeypatch):
+    monkeypatch.setenv("CAREDECIDE_HOME", str(tmp_path / "home"))
+    monkeypatch.setenv("CAREDECIDE_MODEL", str(demo_model_path()))
+    st.cache_data.clear()
+    yield
+    st.cache_data.clear()
+
+
+# Tables in page order: one-way, switches, thresholds (bands), thresholds per cycle, ...
+ORDER = ("sensitivity_oneway_table", "sensitivity_switches", "sensitivity_thresholds")
+
+
+def _frame(at: AppTest, key: str):
+    return at.dataframe[ORDER.index(key)].value
+
+
+def test_sensitivity_view_shows_the_library_results():
+    at = AppTest.from_file(APP, default_timeout=300)
+    at.run()
+    at.switch_page("views/sensitivity.py").run()
+    assert not at.exception, at.exception
+    assert any(CAUTION_SHORT in w.value for w in at.warning)
+    model = load_model(demo_model_path())
+    expected = one_way(model).table
+    shown = _frame(at, "sensitivity_oneway_table")
+    assert list(shown["parameter"]) == list(expected["parameter"])
+    assert shown["swing"].to_numpy() == pytest.approx(expected["swing"].to_numpy(), rel=1e-12)
+    expected_thresholds = summarise_thresholds(parameter_thresholds(model, grid=11))
+    thresholds = _frame(at, "sensitivity_thresholds")
+    assert len(thresholds) == len(expected_thresholds)
+    # choosing a subset reruns the analysis on it
+    at.multiselect(key="sensitivity_parameters").set_value(["hr_treatment"]).run()
+    assert not at.exception, at.exception
+    assert list(_frame(at, "sensitivity_oneway_table")["parameter"]) == ["hr_treatment"]

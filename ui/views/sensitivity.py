@@ -1,0 +1,129 @@
+"""Sensitivity view: which estimates move the decision, by how much, and at which values
+the best action switches (all computed by caredecide.sensitivity)."""
+
+from __future__ import annotations
+
+import pandas as pd
+import streamlit as st
+
+from caredecide.errors import CaredecideError
+from caredecide.modelfile import loads_model
+from caredecide.sensitivity import (
+    one_way,
+    parameter_thresholds,
+    setting_thresholds,
+    summarise_thresholds,
+    two_way,
+)
+from ui import charts, common
+
+
+@st.cache_data(max_entries=16, show_spinner=False)
+def run_one_way(text: str, file: str, base_dir: str, names: tuple[str, ...]):
+    model = loads_model(text, file=file, base_dir=base_dir)
+    result = one_way(model, list(names) or None)
+    return result.table, result.switches
+
+
+@st.cache_data(max_entries=16, show_spinner=False)
+def run_thresholds(text: str, file: str, base_dir: str, names: tuple[str, ...], grid: int):
+    model = loads_model(text, file=file, base_dir=base_dir)
+    return parameter_thresholds(model, list(names) or None, grid=grid)
+
+
+@st.cache_data(max_entries=16, show_spinner=False)
+def run_setting(text: str, file: str, base_dir: str, setting: str, low: float, high: float):
+    model = loads_model(text, file=file, base_dir=base_dir)
+    return setting_thresholds(model, setting, low, high)
+
+
+@st.cache_data(max_entries=16, show_spinner=False)
+def run_two_way(text: str, file: str, base_dir: str, x: str, y: str, grid: int):
+    model = loads_model(text, file=file, base_dir=base_dir)
+    return two_way(model, x, y, grid=grid)
+
+
+model = common.valid_model_or_stop()
+settings = model.settings
+key = (common.working_text(), common.file_label(), common.base_folder())
+names = list(model.parameter_names())
+unit = "QALYs" if settings.objective == "qalys" else (settings.currency or "money")
+st.title("Sensitivity")
+st.caption(
+    "Each estimate moves between its low and high value (from the model file, or the 2.5% and "
+    "97.5% quantiles of its distribution). Dirichlet group members move with the other members "
+    "rescaled proportionally; rows with a 'rest' entry absorb the change."
+)
+
+chosen = st.multiselect(
+    "Parameters (none chosen = all)", names, default=[], key="sensitivity_parameters"
+)
+grid = st.slider("Grid values per parameter", 3, 41, 11, key="sensitivity_grid")
+selected = tuple(chosen)
+
+try:
+    with st.spinner("One-way analysis (one batch through the solver)..."):
+        table, switches = run_one_way(*key, selected)
+    with st.spinner("Searching decision thresholds..."):
+        thresholds = run_thresholds(*key, selected, int(grid))
+except CaredecideError as error:
+    st.error(str(error), icon=":material/error:")
+    st.stop()
+
+st.subheader("Tornado diagram")
+st.altair_chart(charts.make_tornado_chart(table, unit=f"({unit})"), key="sensitivity_tornado")
+shown = table[["rank", "parameter", "low", "high", "value_low", "value_base", "value_high",
+               "swing", "policy_changes", "rule"]]  # fmt: skip
+st.dataframe(shown, hide_index=True, key="sensitivity_oneway_table")
+with st.expander("Every state and age whose best action changes"):
+    st.dataframe(switches, hide_index=True, key="sensitivity_switches")
+
+st.subheader("Decision thresholds")
+st.dataframe(summarise_thresholds(thresholds), hide_index=True, key="sensitivity_thresholds")
+with st.expander("Thresholds per cycle"):
+    st.dataframe(thresholds, hide_index=True, key="sensitivity_thresholds_all")
+
+st.subheader("Thresholds of the settings")
+left, right = st.columns(2)
+frames: list[pd.DataFrame] = []
+try:
+    if settings.objective == "net_benefit":
+        wtp_max = left.number_input(
+            f"Search willingness to pay from 0 to ({settings.currency or 'money'} per QALY)",
+            min_value=1.0, value=max(2.0 * float(settings.willingness_to_pay), 1.0),
+            step=1000.0, key="sensitivity_wtp_max",
+        )  # fmt: skip
+        with st.spinner("Willingness-to-pay threshold..."):
+            frames.append(run_setting(*key, "willingness_to_pay", 0.0, float(wtp_max)))
+    if model.n_cycles() is not None:
+        rate_max = right.number_input(
+            "Search the discount rate (outcomes and costs) from 0 to", min_value=0.001,
+            max_value=0.99, value=0.10, step=0.01, key="sensitivity_rate_max",
+        )  # fmt: skip
+        with st.spinner("Discount-rate threshold..."):
+            frames.append(run_setting(*key, "discount_rate", 0.0, float(rate_max)))
+except CaredecideError as error:
+    st.error(str(error), icon=":material/error:")
+if frames:
+    st.dataframe(
+        pd.concat([summarise_thresholds(f) for f in frames], ignore_index=True),
+        hide_index=True, key="sensitivity_setting_thresholds",
+    )  # fmt: skip
+
+st.subheader("Two-way analysis")
+a, b, c = st.columns(3)
+x_name = a.selectbox("Horizontal parameter", names, index=0, key="sensitivity_x")
+y_name = b.selectbox("Vertical parameter", names, index=min(1, len(names) - 1), key="sensitivity_y")
+two_grid = c.slider("Grid values per axis", 3, 21, 7, key="sensitivity_two_way_grid")
+if x_name == y_name:
+    st.info("Choose two different parameters for the two-way map.")
+else:
+    try:
+        with st.spinner("Two-way grid (one batch through the solver)..."):
+            grid_frame = run_two_way(*key, x_name, y_name, int(two_grid))
+    except CaredecideError as error:
+        st.error(str(error), icon=":material/error:")
+    else:
+        st.altair_chart(charts.make_two_way_chart(grid_frame), key="sensitivity_two_way")
+        with st.expander("Policy structure at each grid point"):
+            st.dataframe(grid_frame, hide_index=True, key="sensitivity_two_way_table")
