@@ -1,0 +1,143 @@
+"""Run the chunks of a probabilistic analysis on a Dask distributed cluster.
+
+RESEARCH USE ONLY: not a substitute for clinical judgment, local guidelines or
+licensed practice.
+
+Needs the ``cluster`` extra (``pip install "caredecide[cluster]"``: dask.distributed).
+Each chunk is one task ``solve_chunk(context, start, stop)``; the context (model,
+objective, sampler, candidate policies) is scattered to the workers once. Tasks carry
+their draw range and the draws depend only on the seed and the draw number, so the
+results equal a serial run's exactly. Results are taken back in draw order, with at
+most ``max_in_flight`` chunks submitted and not yet collected, so neither the client nor
+the workers hold more than a few chunks at once.
+
+Typical use::
+
+    with dask_client(workers=2) as client:            # a local cluster of 2 processes
+        result = run_psa(model, 100_000, seed=1, map_chunks=dask_map(client))
+
+    with dask_client(scheduler="tcp://10.0.0.5:8786") as client:   # an existing cluster
+        ...
+
+On a real cluster every worker needs the same versions of caredecide, numpy and scipy
+installed (``pip install "caredecide[cluster]"``); the model travels with the task, so
+workers need no access to the model file. See docs/methods-uncertainty.md.
+"""
+
+from __future__ import annotations
+
+from collections import deque
+from collections.abc import Iterable, Iterator, Sequence
+from contextlib import contextmanager
+
+from caredecide.errors import CaredecideError
+from caredecide.uncertainty.psa import ChunkMap, ChunkResult, PSAContext, solve_chunk
+
+__all__ = ["ClusterError", "dask_client", "dask_map"]
+
+
+class ClusterError(CaredecideError, RuntimeError):
+    """Dask is missing, or the cluster could not be reached or started."""
+
+
+def _distributed():
+    try:
+        import distributed
+    except ImportError as error:  # the optional extra is not installed
+        raise ClusterError(
+            "running on a cluster needs dask.distributed: pip install \"caredecide[cluster]\""
+        ) from error
+    return distributed
+
+
+@contextmanager
+def dask_client(
+    scheduler: str | None = None,
+    workers: int | None = None,
+    *,
+    processes: bool = True,
+    threads_per_worker: int = 1,
+) -> Iterator[object]:
+    """A ``distributed.Client`` for an existing scheduler, or for a new local cluster.
+
+    Parameters
+    ----------
+    scheduler : str, optional
+        Address of a running scheduler, e.g. ``"tcp://127.0.0.1:8786"``.
+    workers : int, optional
+        Start a local cluster with this many workers (>= 1) when no scheduler is given.
+    processes : bool
+        Local cluster: workers in separate processes (true parallelism) or threads.
+    threads_per_worker : int
+        Local cluster: threads per worker.
+
+    Raises
+    ------
+    ClusterError
+        Neither or both of ``scheduler`` and ``workers``; a bad count; an unreachable
+        scheduler; dask.distributed not installed.
+    """
+    if (scheduler is None) == (workers is None):
+        raise ClusterError("give exactly one of a scheduler address or a number of workers; "
+                           f"got scheduler={scheduler!r}, workers={workers!r}")
+    distributed = _distributed()
+    if scheduler is not None:
+        try:
+            client = distributed.Client(scheduler, timeout="20s")
+        except (OSError, TimeoutError) as error:
+            raise ClusterError(f"could not reach the Dask scheduler at {scheduler!r}: {error}. "
+                               "Expected an address such as tcp://HOST:8786 of a running "
+                               "scheduler") from None
+        with client:
+            yield client
+        return
+    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
+        raise ClusterError(f"workers = {workers!r}; expected a whole number >= 1")
+    if isinstance(threads_per_worker, bool) or not isinstance(threads_per_worker, int) or \
+            threads_per_worker < 1:
+        raise ClusterError(f"threads_per_worker = {threads_per_worker!r}; expected >= 1")
+    with distributed.LocalCluster(
+        n_workers=workers,
+        threads_per_worker=threads_per_worker,
+        processes=processes,
+        dashboard_address=None,
+        host="127.0.0.1",
+    ) as cluster, distributed.Client(cluster) as client:
+        yield client
+
+
+def dask_map(client, *, max_in_flight: int | None = None) -> ChunkMap:
+    """A chunk runner for :func:`caredecide.uncertainty.psa.run_psa` on ``client``.
+
+    Parameters
+    ----------
+    client : distributed.Client
+    max_in_flight : int, optional
+        Chunks submitted but not yet collected (default: twice the worker threads).
+
+    Returns
+    -------
+    callable(context, ranges) -> iterator of ChunkResult, in draw order
+    """
+
+    def run(context: PSAContext, ranges: Sequence[tuple[int, int]]) -> Iterable[ChunkResult]:
+        threads = sum(client.nthreads().values()) or 1
+        window = max_in_flight or 2 * threads
+        shared = client.scatter(context, broadcast=True)
+        pending: deque = deque()
+        todo = iter(ranges)
+        for start, stop in todo:
+            # Distinct keys per chunk: pure=False, so equal arguments never merge.
+            pending.append(client.submit(solve_chunk, shared, start, stop, pure=False))
+            if len(pending) >= window:
+                break
+        while pending:
+            future = pending.popleft()
+            result = future.result()
+            future.release()
+            for start, stop in todo:
+                pending.append(client.submit(solve_chunk, shared, start, stop, pure=False))
+                break
+            yield result
+
+    return run

@@ -1,0 +1,778 @@
+"""Probabilistic sensitivity analysis of the timing decision.
+
+RESEARCH USE ONLY: not a substitute for clinical judgment, local guidelines or
+licensed practice.
+
+``D`` parameter sets are drawn (:mod:`caredecide.uncertainty.sampling`), compiled and
+solved chunk by chunk through the one core path (``compile_model -> solve ->
+evaluate_policy``). For every draw ``d`` this keeps:
+
+* ``V*_d``: the value of the policy that is optimal *for that draw* (and its costs and
+  QALYs);
+* ``V_k,d``: the value of each *candidate* policy ``k`` evaluated on that draw's arrays.
+  Candidates are policies a decision maker could adopt today: the base-case optimal
+  policy, the policy optimal at the mean parameters, the model's fixed strategies
+  (:func:`caredecide.strategies.default_strategies`, plus any given) and the policies
+  most often optimal in a pilot of the first :data:`~caredecide.uncertainty.sampling.BLOCK_SIZE`
+  draws;
+* the sampled parameters (for EVPPI) and, per chunk, counts of the optimal action per
+  (cycle, state) and of each distinct optimal policy (so the per-draw policies need not
+  be kept: 1,000,000 draws fit in bounded memory).
+
+Outputs
+-------
+Acceptability of the policy by state and age: share ``p`` of draws whose optimal
+policy takes each action, with binomial Monte Carlo error ``sqrt(p (1 - p) / D)``
+(common practice). Over an age band the share is the mean over its cycles and the
+error shown is the mean of the per-cycle errors, an upper bound on the error of the
+mean (Minkowski's inequality).
+
+Expected loss (regret) of candidate ``k``: ``E[V* - V_k]``, with the standard error of
+the mean.
+
+EVPI of the timing decision::
+
+    EVPI = E[V*] - max_k E[V_k] = min_k E[V* - V_k]
+
+(Claxton 1999, J Health Econ 18:341-364; from memory). The maximum runs over the
+candidate set only. The policy with the highest expected value over the parameter
+distribution is itself hard to find (a policy must be chosen before theta is known, and
+``E[V_pi]`` is not the value at the mean parameters), and it is at least as good as the
+best candidate, so **this EVPI is an upper bound on the true EVPI**. It is also at least
+the EVPI of the choice among the candidates alone (``voi.evpi`` on ``V_k``), reported
+beside it.
+
+Acceptability curves and frontier over a willingness-to-pay range, EVPPI by regression
+(Strong, Oakley & Brennan 2014) per parameter and per Dirichlet group, and running
+means come from :mod:`caredecide.uncertainty.acceptability` and
+:mod:`caredecide.uncertainty.voi`.
+
+Chunks carry their draw range, and draws depend only on the seed and the draw number,
+so results are identical whatever the chunk size and whether chunks run serially or on
+a Dask cluster (:mod:`caredecide.uncertainty.cluster`).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Iterable, Mapping, Sequence
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+import pandas as pd
+
+from caredecide.batch import chunk_size_for
+from caredecide.compile import compile_model, default_memory_limit
+from caredecide.errors import ModelError, Problem
+from caredecide.evaluate import evaluate_policy
+from caredecide.objective import Objective
+from caredecide.solvers import solve
+from caredecide.uncertainty.acceptability import (
+    acceptability_curve,
+    acceptability_frontier,
+    action_shares,
+    running_mean,
+)
+from caredecide.uncertainty.sampling import (
+    BLOCK_SIZE,
+    ParameterSampler,
+    check_draw_count,
+    check_seed,
+)
+from caredecide.uncertainty.voi import evpi, evppi_regression
+
+DEFAULT_MEMORY_LIMIT = 1024**3
+"""Working-memory budget of one chunk when none is given: 1 GiB, or half the available
+memory if that is less. Larger chunks barely run faster (the solver is vectorized over
+draws already) and would leave less room for the kept per-draw results."""
+DEFAULT_FREQUENT = 3
+"""Most frequent per-draw optimal policies (from the pilot) added as candidates."""
+DEFAULT_WTP_POINTS = 41
+CONVERGENCE_POINTS = 200
+"""Rows of the thinned running-mean table (geometrically spaced draw counts)."""
+MIN_EVPPI_DRAWS = 200
+"""Fewer draws than this give no EVPPI (the regression smoother needs ~10 per coefficient)."""
+
+ORIGIN_BASE = "base-case optimal"
+ORIGIN_MEAN = "optimal at mean parameters"
+ORIGIN_STRATEGY = "fixed strategy"
+ORIGIN_FREQUENT = "frequent per-draw optimum"
+
+__all__ = [
+    "Candidate",
+    "ChunkResult",
+    "PSAContext",
+    "PSAResult",
+    "run_psa",
+    "serial_map",
+    "solve_chunk",
+]
+
+
+@dataclass(frozen=True)
+class Candidate:
+    """A policy that could be adopted before the uncertainty is resolved.
+
+    Attributes
+    ----------
+    name : str
+    origin : str
+        Why it is a candidate (:data:`ORIGIN_BASE`, ...).
+    policy : (Tpi, S) int8
+        Action index per cycle and state.
+    also : tuple of str
+        Other candidates with the same policy (merged into this one).
+    """
+
+    name: str
+    origin: str
+    policy: np.ndarray = field(repr=False)
+    also: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
+class PSAContext:
+    """What every chunk needs (picklable: sent once to each Dask worker).
+
+    Attributes
+    ----------
+    model : caredecide.model.Model
+    objective : Objective
+    sampler : ParameterSampler
+    seed : int
+    candidate_policies : (K, Tpi, S) int8
+    keep_policies : bool
+        Return the per-draw optimal policies (large for big runs).
+    memory_limit_bytes : int
+    solve_options : tuple of (name, value)
+        Passed to :func:`caredecide.solvers.solve`.
+    """
+
+    model: object
+    objective: Objective
+    sampler: ParameterSampler
+    seed: int
+    candidate_policies: np.ndarray
+    keep_policies: bool = False
+    memory_limit_bytes: int = DEFAULT_MEMORY_LIMIT
+    solve_options: tuple[tuple[str, object], ...] = ()
+
+
+@dataclass
+class ChunkResult:
+    """Results of draws ``start:stop`` (see :func:`solve_chunk`).
+
+    Attributes
+    ----------
+    start, stop : int
+    parameters : (n, P) float
+        Sampled parameters (columns ``sampler.names``).
+    optimal : (n, 3) float
+        Cost, QALYs and value of each draw's own optimal policy (discounted).
+    candidates : (3, n, K) float
+        Cost, QALYs and value of each candidate on each draw.
+    action_counts : (Tpi, S, A) int
+        Draws whose optimal policy takes action ``a`` in ``s`` at cycle ``t``.
+    distinct_policies : (U, Tpi, S) int8
+    distinct_counts : (U,) int
+    policies : (n, Tpi, S) int8 or None
+    iterations : int
+    success : bool
+    message : str
+    """
+
+    start: int
+    stop: int
+    parameters: np.ndarray
+    optimal: np.ndarray
+    candidates: np.ndarray
+    action_counts: np.ndarray
+    distinct_policies: np.ndarray
+    distinct_counts: np.ndarray
+    policies: np.ndarray | None
+    iterations: int
+    success: bool
+    message: str
+
+
+def _totals(outcome) -> np.ndarray:
+    """(n, 3) cost, QALYs, value of a :class:`~caredecide.evaluate.PolicyOutcome`."""
+    return np.column_stack([outcome.costs, outcome.qalys, outcome.value])
+
+
+def solve_chunk(context: PSAContext, start: int, stop: int) -> ChunkResult:
+    """Draw, compile, solve and evaluate draws ``start:stop`` (one core path).
+
+    Pure function of its arguments: the same range gives the same result anywhere.
+    """
+    sampler = context.sampler
+    values = sampler.draw(context.seed, start, stop)
+    parameter_sets = {name: values[:, j] for j, name in enumerate(sampler.names)}
+    compiled = compile_model(context.model, parameter_sets or None,
+                             memory_limit_bytes=context.memory_limit_bytes)
+    if not parameter_sets:  # nothing uncertain: the base case, repeated
+        compiled = compiled.take_draws(np.zeros(stop - start, dtype=int))
+    result = solve(compiled, context.objective, **dict(context.solve_options))
+    optimal = _totals(evaluate_policy(compiled, result.policy, context.objective))
+    # A loop over candidate policies (a handful), each evaluated on every draw at once.
+    candidates = np.stack(
+        [_totals(evaluate_policy(compiled, policy[None], context.objective)).T
+         for policy in context.candidate_policies],
+        axis=-1,
+    ) if len(context.candidate_policies) else np.empty((3, stop - start, 0))
+    policy = result.policy.astype(np.int8)
+    shares = action_shares(policy, compiled.n_actions).share
+    distinct, counts = np.unique(policy.reshape(len(policy), -1), axis=0, return_counts=True)
+    return ChunkResult(
+        start=start,
+        stop=stop,
+        parameters=values,
+        optimal=optimal,
+        candidates=candidates,
+        action_counts=np.rint(shares * len(policy)).astype(np.int64),
+        distinct_policies=distinct.reshape(len(distinct), *policy.shape[1:]),
+        distinct_counts=counts,
+        policies=policy if context.keep_policies else None,
+        iterations=int(result.iterations),
+        success=bool(result.success),
+        message=str(result.message),
+    )
+
+
+def serial_map(
+    context: PSAContext, ranges: Sequence[tuple[int, int]]
+) -> Iterable[ChunkResult]:
+    """Run chunks one after another in this process, yielding results in order."""
+    for start, stop in ranges:
+        yield solve_chunk(context, start, stop)
+
+
+ChunkMap = Callable[[PSAContext, Sequence[tuple[int, int]]], Iterable[ChunkResult]]
+
+
+def chunk_ranges(n_draws: int, chunk_size: int) -> list[tuple[int, int]]:
+    """``[(start, stop), ...]`` covering ``0:n_draws`` in chunks of ``chunk_size``."""
+    return [(s, min(s + chunk_size, n_draws)) for s in range(0, n_draws, chunk_size)]
+
+
+def default_chunk_size(model, n_draws: int, memory_limit_bytes: int | None) -> int:
+    """Draws per chunk from the memory budget, a multiple of BLOCK_SIZE when possible."""
+    budget = _memory_limit(memory_limit_bytes)
+    size = chunk_size_for(model, n_draws, budget)
+    return max(size // BLOCK_SIZE, 1) * BLOCK_SIZE if size >= BLOCK_SIZE else size
+
+
+def _memory_limit(memory_limit_bytes: int | None) -> int:
+    if memory_limit_bytes is None:
+        return min(DEFAULT_MEMORY_LIMIT, default_memory_limit())
+    if isinstance(memory_limit_bytes, bool) or not isinstance(memory_limit_bytes, int) or \
+            memory_limit_bytes < 1:
+        raise ModelError(Problem("memory_limit_bytes", f"{memory_limit_bytes!r}; expected a "
+                                 "whole number of bytes >= 1"))
+    return memory_limit_bytes
+
+
+# --------------------------------------------------------------------------- the result
+@dataclass
+class PSAResult:
+    """Everything a probabilistic analysis produced; outputs are computed on request.
+
+    Attributes
+    ----------
+    n_draws, seed : int
+    objective : Objective
+    state_ids, action_ids : tuple of str
+    decision_states : (S,) bool
+        States where a choice is made (not absorbing, two or more allowed actions).
+    allowed : (S, A) bool
+        Actions allowed in each state.
+    ages : (Tpi,) float or None
+        Age at the start of each policy cycle (None: infinite horizon, Tpi = 1).
+    candidates : list of Candidate
+    parameter_names : tuple of str
+    group_members : dict of str to tuple of str
+    parameters : (D, P) float
+    optimal : (D, 3) float
+        Cost, QALYs, value of each draw's own optimal policy.
+    candidate_totals : (3, D, K) float
+        Cost, QALYs, value of each candidate in each draw.
+    action_counts : (Tpi, S, A) int
+    distinct_policies : (U, Tpi, S) int8, distinct_counts : (U,) int
+        Every distinct per-draw optimal policy and how many draws chose it (most first).
+    policies : (D, Tpi, S) int8 or None
+    chunk_size : int
+    iterations : list of int
+    success : bool
+    messages : list of str
+    wtp_grid : (W,) float
+    """
+
+    n_draws: int
+    seed: int
+    objective: Objective
+    state_ids: tuple[str, ...]
+    action_ids: tuple[str, ...]
+    decision_states: np.ndarray
+    allowed: np.ndarray
+    ages: np.ndarray | None
+    candidates: list[Candidate]
+    parameter_names: tuple[str, ...]
+    group_members: dict[str, tuple[str, ...]]
+    parameters: np.ndarray
+    optimal: np.ndarray
+    candidate_totals: np.ndarray
+    action_counts: np.ndarray
+    distinct_policies: np.ndarray
+    distinct_counts: np.ndarray
+    policies: np.ndarray | None
+    chunk_size: int
+    iterations: list[int]
+    success: bool
+    messages: list[str]
+    wtp_grid: np.ndarray
+
+    # -- basic arrays -------------------------------------------------------------------
+    @property
+    def candidate_names(self) -> list[str]:
+        return [c.name for c in self.candidates]
+
+    @property
+    def candidate_values(self) -> np.ndarray:
+        """(D, K) value (objective units) of each candidate in each draw."""
+        return self.candidate_totals[2]
+
+    @property
+    def regret(self) -> np.ndarray:
+        """(D, K) loss ``V*_d - V_k,d`` (>= 0 up to solver tolerance)."""
+        return self.optimal[:, 2:3] - self.candidate_values
+
+    # -- acceptability of the policy ------------------------------------------------------
+    def acceptability(self) -> pd.DataFrame:
+        """Share of draws whose optimal policy takes each action, per cycle and state.
+
+        Returns
+        -------
+        pandas.DataFrame
+            Columns cycle, age (years at the cycle start; NaN for an infinite horizon),
+            state, action, share, mc_se; decision states and their allowed actions
+            only. Shares sum to 1 over actions for each (cycle, state).
+        """
+        share = self.action_counts / self.n_draws
+        n_t, n_s, n_a = share.shape
+        ages = self.ages if self.ages is not None else np.full(n_t, np.nan)
+        frame = pd.DataFrame({
+            "cycle": np.repeat(np.arange(n_t), n_s * n_a),
+            "age": np.repeat(ages, n_s * n_a),
+            "state": np.tile(np.repeat(np.asarray(self.state_ids, dtype=object), n_a), n_t),
+            "action": np.tile(np.asarray(self.action_ids, dtype=object), n_t * n_s),
+            "share": share.ravel(),
+            "mc_se": np.sqrt(share * (1.0 - share) / self.n_draws).ravel(),
+        })
+        shown = (self.decision_states[:, None] & self.allowed)[None].repeat(n_t, axis=0)
+        return frame[shown.ravel()].reset_index(drop=True)
+
+    def acceptability_by_age_band(self, band_years: float = 5.0) -> pd.DataFrame:
+        """Acceptability averaged over age bands of ``band_years`` (from the start age).
+
+        Returns
+        -------
+        pandas.DataFrame
+            Columns state, age_from, age_to (years; the band holds cycles starting in
+            [age_from, age_to)), action, share (mean over the band's cycles) and mc_se
+            (mean of the per-cycle errors: an upper bound). Infinite horizon: one band
+            with NaN ages.
+        """
+        if not (isinstance(band_years, int | float) and math.isfinite(band_years)
+                and band_years > 0):
+            raise ModelError(Problem("band_years", f"{band_years!r}; expected a number > 0"))
+        frame = self.acceptability()
+        if self.ages is None:
+            frame["age_from"] = frame["age_to"] = np.nan
+        else:
+            start = float(self.ages[0])
+            band = np.floor((frame["age"] - start) / band_years + 1e-9)
+            frame["age_from"] = start + band * band_years
+            frame["age_to"] = frame["age_from"] + band_years
+        grouped = frame.groupby(["state", "age_from", "age_to", "action"], sort=False,
+                                dropna=False)
+        out = grouped.agg(share=("share", "mean"), mc_se=("mc_se", "mean")).reset_index()
+        return out[["state", "age_from", "age_to", "action", "share", "mc_se"]]
+
+    def policy_frequencies(self, top: int = 10) -> pd.DataFrame:
+        """The ``top`` most frequent per-draw optimal policies: rank, draws, share, candidate."""
+        n = min(top, len(self.distinct_counts))
+        names = []
+        for policy in self.distinct_policies[:n]:
+            match = [c.name for c in self.candidates if np.array_equal(c.policy, policy)]
+            names.append(match[0] if match else "")
+        share = self.distinct_counts[:n] / self.n_draws
+        return pd.DataFrame({
+            "rank": np.arange(1, n + 1),
+            "draws": self.distinct_counts[:n],
+            "share": share,
+            "mc_se": np.sqrt(share * (1 - share) / self.n_draws),
+            "candidate": names,
+        })
+
+    # -- losses and EVPI ---------------------------------------------------------------
+    def expected_loss(self) -> pd.DataFrame:
+        """Expected value and expected loss (regret) of every candidate.
+
+        Returns
+        -------
+        pandas.DataFrame
+            Columns candidate, origin, expected_cost, expected_qalys, expected_value,
+            expected_loss (``E[V* - V_k]``, objective units), mc_se; one row per
+            candidate in candidate order.
+        """
+        regret = self.regret
+        n = self.n_draws
+        se = regret.std(axis=0, ddof=1) / np.sqrt(n) if n > 1 else np.full(regret.shape[1],
+                                                                            np.nan)
+        return pd.DataFrame({
+            "candidate": self.candidate_names,
+            "origin": [c.origin for c in self.candidates],
+            "expected_cost": self.candidate_totals[0].mean(axis=0),
+            "expected_qalys": self.candidate_totals[1].mean(axis=0),
+            "expected_value": self.candidate_values.mean(axis=0),
+            "expected_loss": regret.mean(axis=0),
+            "mc_se": se,
+        })
+
+    def evpi(self) -> dict[str, float | str]:
+        """EVPI of the timing decision (an upper bound; see the module docstring).
+
+        Returns
+        -------
+        dict
+            ``evpi`` and ``mc_se`` (objective units per person), ``best_candidate`` (the
+            candidate with the highest expected value), ``expected_optimal_value``
+            (``E[V*]``) and ``evpi_among_candidates`` with its ``mc_se_among_candidates``
+            (``voi.evpi`` on the candidates' values: a lower figure).
+        """
+        loss = self.expected_loss()
+        best = int(np.argmax(loss["expected_value"].to_numpy()))
+        among = evpi(self.candidate_values)
+        return {
+            "evpi": float(loss["expected_loss"].iloc[best]),
+            "mc_se": float(loss["mc_se"].iloc[best]),
+            "best_candidate": self.candidate_names[best],
+            "expected_optimal_value": float(self.optimal[:, 2].mean()),
+            "evpi_among_candidates": float(among),
+            "mc_se_among_candidates": float(among.standard_error),
+        }
+
+    # -- cost-effectiveness acceptability --------------------------------------------------
+    def acceptability_curves(self, wtp_grid: Sequence[float] | None = None) -> pd.DataFrame:
+        """Probability each candidate has the highest net monetary benefit, per WTP.
+
+        Columns wtp, strategy, probability_cost_effective, mc_se
+        (:func:`caredecide.uncertainty.acceptability.acceptability_curve`).
+        """
+        grid = self.wtp_grid if wtp_grid is None else np.asarray(wtp_grid, dtype=float)
+        return acceptability_curve(self.candidate_totals[0], self.candidate_totals[1], grid,
+                                   strategies=self.candidate_names)
+
+    def acceptability_frontier(self, wtp_grid: Sequence[float] | None = None) -> pd.DataFrame:
+        """The candidate with the highest expected NMB at each WTP, and its probability."""
+        grid = self.wtp_grid if wtp_grid is None else np.asarray(wtp_grid, dtype=float)
+        return acceptability_frontier(self.candidate_totals[0], self.candidate_totals[1], grid,
+                                      strategies=self.candidate_names)
+
+    # -- EVPPI ---------------------------------------------------------------------------
+    def evppi(self, *, method: str = "auto") -> pd.DataFrame:
+        """EVPPI of each sampled parameter and each Dirichlet group, ranked.
+
+        Regression method of Strong, Oakley & Brennan 2014 (:func:`~caredecide.
+        uncertainty.voi.evppi_regression`) on the candidates' values; a Dirichlet group
+        of ``k`` members is regressed on its first ``k - 1`` members (the last is
+        determined by them).
+
+        Returns
+        -------
+        pandas.DataFrame
+            Columns parameter, members, evppi, mc_se, share_of_evpi (EVPPI / EVPI among
+            candidates), method, edf (largest effective degrees of freedom), message;
+            sorted by EVPPI, largest first. Empty with a note when the draws or
+            candidates are too few.
+        """
+        columns = ["parameter", "members", "evppi", "mc_se", "share_of_evpi", "method", "edf",
+                   "message"]
+        values = self.candidate_values
+        if values.shape[1] < 2 or self.n_draws < MIN_EVPPI_DRAWS or not self.parameter_names:
+            return pd.DataFrame(columns=columns)
+        total = float(evpi(values))
+        grouped = {m for members in self.group_members.values() for m in members}
+        targets = [(n, (n,)) for n in self.parameter_names if n not in grouped]
+        targets += [(g, members[:-1]) for g, members in self.group_members.items()]
+        rows = []
+        for name, members in targets:  # a loop over parameters, each fit vectorized
+            index = [self.parameter_names.index(m) for m in members]
+            try:
+                fit = evppi_regression(values, self.parameters[:, index], method=method)
+            except ModelError as error:
+                rows.append((name, ",".join(members), np.nan, np.nan, np.nan, "", np.nan,
+                             str(error)))
+                continue
+            rows.append((name, ",".join(members), fit.value, fit.standard_error,
+                         fit.value / total if total > 0 else np.nan, fit.method,
+                         float(np.nanmax(fit.effective_degrees_of_freedom)), fit.message))
+        frame = pd.DataFrame(rows, columns=columns)
+        return frame.sort_values("evppi", ascending=False, na_position="last",
+                                 kind="stable").reset_index(drop=True)
+
+    # -- convergence -----------------------------------------------------------------------
+    def convergence(self, points: int = CONVERGENCE_POINTS) -> pd.DataFrame:
+        """Running means and errors against the number of draws (thinned for plots).
+
+        Quantities: ``expected optimal value`` (``V*``) and ``EVPI`` (the regret of the
+        candidate best over all draws, i.e. the running EVPI estimator with the final
+        choice of candidate).
+
+        Returns
+        -------
+        pandas.DataFrame
+            Columns quantity, n, mean, se; at most ``points`` draw counts per quantity,
+            geometrically spaced, always including the last.
+        """
+        best = int(np.argmax(self.candidate_values.mean(axis=0)))
+        rows = np.unique(np.geomspace(1, self.n_draws, num=min(points, self.n_draws))
+                         .astype(int)) - 1
+        frames = []
+        for quantity, values in (("expected optimal value", self.optimal[:, 2]),
+                                 ("EVPI", self.regret[:, best])):
+            running = running_mean(values).iloc[rows]
+            frames.append(running.assign(quantity=quantity))
+        return pd.concat(frames, ignore_index=True)[["quantity", "n", "mean", "se"]]
+
+    # -- tables for export -------------------------------------------------------------------
+    def draws_frame(self) -> pd.DataFrame:
+        """One row per draw: parameters, the optimal policy's totals and each candidate's value."""
+        frame = pd.DataFrame(self.parameters, columns=list(self.parameter_names))
+        frame.insert(0, "draw", np.arange(self.n_draws))
+        for j, column in enumerate(("optimal_cost", "optimal_qalys", "optimal_value")):
+            frame[column] = self.optimal[:, j]
+        for k, name in enumerate(self.candidate_names):
+            frame[f"value: {name}"] = self.candidate_values[:, k]
+        return frame
+
+    def candidates_frame(self) -> pd.DataFrame:
+        """Candidates as a long table: candidate, origin, also, cycle, age, state, action."""
+        rows = []
+        n_t = self.action_counts.shape[0]
+        ages = self.ages if self.ages is not None else np.full(n_t, np.nan)
+        for c in self.candidates:
+            frame = pd.DataFrame({
+                "candidate": c.name,
+                "origin": c.origin,
+                "also": "; ".join(c.also),
+                "cycle": np.repeat(np.arange(n_t), len(self.state_ids)),
+                "age": np.repeat(ages, len(self.state_ids)),
+                "state": np.tile(np.asarray(self.state_ids, dtype=object), n_t),
+                "action": np.asarray(self.action_ids, dtype=object)[c.policy.ravel()],
+            })
+            rows.append(frame)
+        return pd.concat(rows, ignore_index=True)
+
+    def summary(self) -> dict:
+        """Headline figures (plain Python values, for JSON)."""
+        info = self.evpi()
+        return {
+            "draws": self.n_draws,
+            "seed": self.seed,
+            "objective": self.objective.to_dict(),
+            "chunk_size": self.chunk_size,
+            "solver_success": self.success,
+            **info,
+            "candidates": self.candidate_names,
+            "distinct_optimal_policies": len(self.distinct_counts),
+            "share_most_frequent_policy": float(self.distinct_counts[0] / self.n_draws),
+        }
+
+
+# --------------------------------------------------------------------------- the driver
+def run_psa(
+    model,
+    n_draws: int,
+    seed: int,
+    *,
+    objective: Objective | None = None,
+    wtp_range: tuple[float, float] | None = None,
+    wtp_points: int = DEFAULT_WTP_POINTS,
+    chunk_size: int | None = None,
+    memory_limit_bytes: int | None = None,
+    rank_correlation: Mapping[tuple[str, str], float] | None = None,
+    strategies: Sequence | None = None,
+    n_frequent: int = DEFAULT_FREQUENT,
+    keep_policies: bool = False,
+    map_chunks: ChunkMap | None = None,
+    progress: Callable[[int, int], None] | None = None,
+    **solve_options,
+) -> PSAResult:
+    """Probabilistic sensitivity analysis of the optimal timing policy.
+
+    Parameters
+    ----------
+    model : caredecide.model.Model
+        A validated model.
+    n_draws : int
+        Number of parameter draws ``D`` (>= 1).
+    seed : int
+        >= 0; fixes every draw (independent of chunking and of where chunks run).
+    objective : Objective, optional
+        Default: the model's own objective and willingness to pay.
+    wtp_range : (low, high), optional
+        Willingness to pay per QALY for the acceptability curves (default: 0 to twice
+        the objective's WTP, or 0 to 100,000 when that is 0).
+    wtp_points : int
+        Points of the WTP grid (>= 2).
+    chunk_size : int, optional
+        Draws per chunk (default from ``memory_limit_bytes``, a multiple of
+        ``BLOCK_SIZE``). Results do not depend on it.
+    memory_limit_bytes : int, optional
+        Working-memory budget of one chunk (default :data:`DEFAULT_MEMORY_LIMIT`).
+    rank_correlation : mapping, optional
+        Rank correlations between parameters (Iman-Conover; see sampling).
+    strategies : sequence of caredecide.strategies.Strategy, optional
+        Extra fixed strategies to add as candidates (e.g. from a strategy table); the
+        model's default strategies are always included.
+    n_frequent : int
+        Most frequent per-draw optimal policies in the pilot added as candidates.
+    keep_policies : bool
+        Keep every draw's optimal policy ((D, Tpi, S) int8).
+    map_chunks : callable(context, ranges) -> iterable of ChunkResult, optional
+        How chunks run: :func:`serial_map` (default) or
+        :func:`caredecide.uncertainty.cluster.dask_map`. Must yield results in order.
+    progress : callable(done, total), optional
+        Called after each chunk with draws done and ``n_draws``.
+    **solve_options
+        Passed to :func:`caredecide.solvers.solve`.
+
+    Returns
+    -------
+    PSAResult
+    """
+    from caredecide.strategies import default_strategies, resolve_strategy
+
+    n_draws = check_draw_count(n_draws)
+    seed = check_seed(seed)
+    if objective is None:
+        objective = Objective.from_settings(model.settings)
+    wtp_grid = _wtp_grid(objective, wtp_range, wtp_points)
+    if isinstance(n_frequent, bool) or not isinstance(n_frequent, int) or n_frequent < 0:
+        raise ModelError(Problem("n_frequent", f"{n_frequent!r}; expected a whole number >= 0"))
+    limit = _memory_limit(memory_limit_bytes)
+    if chunk_size is None:
+        chunk_size = default_chunk_size(model, n_draws, limit)
+    elif isinstance(chunk_size, bool) or not isinstance(chunk_size, int) or chunk_size < 1:
+        raise ModelError(Problem("chunk_size", f"{chunk_size!r}; expected a whole number >= 1"))
+    sampler = ParameterSampler.from_model(model, rank_correlation=rank_correlation)
+    context = PSAContext(model=model, objective=objective, sampler=sampler, seed=seed,
+                         candidate_policies=np.empty((0, 0, 0), dtype=np.int8),
+                         keep_policies=keep_policies, memory_limit_bytes=limit,
+                         solve_options=tuple(sorted(solve_options.items())))
+
+    # Candidates: base case, mean parameters, fixed strategies, pilot favourites.
+    base = compile_model(model, memory_limit_bytes=limit)
+    named: list[tuple[str, str, np.ndarray]] = [
+        ("base-case optimal policy", ORIGIN_BASE, solve(base, objective, **solve_options).policy[0])
+    ]
+    at_mean = compile_model(model, {k: np.array([v]) for k, v in sampler.means().items()}
+                            or None, memory_limit_bytes=limit)
+    named.append(("optimal at mean parameters", ORIGIN_MEAN,
+                  solve(at_mean, objective, **solve_options).policy[0]))
+    for strategy in [*default_strategies(base), *(strategies or ())]:
+        named.append((strategy.name, ORIGIN_STRATEGY, resolve_strategy(base, strategy).policy))
+    if n_frequent:
+        pilot = solve_chunk(context, 0, min(n_draws, BLOCK_SIZE))
+        order = np.argsort(-pilot.distinct_counts, kind="stable")[:n_frequent]
+        pilot_n = pilot.stop - pilot.start
+        for rank, u in enumerate(order, start=1):
+            share = pilot.distinct_counts[u] / pilot_n
+            named.append((f"frequent optimum {rank} ({share:.0%} of pilot draws)",
+                          ORIGIN_FREQUENT, pilot.distinct_policies[u]))
+    candidates = _merge_candidates(named)
+    context = replace(context, candidate_policies=np.stack([c.policy for c in candidates]))
+
+    chunks: list[ChunkResult] = []
+    runner = serial_map if map_chunks is None else map_chunks
+    for chunk in runner(context, chunk_ranges(n_draws, chunk_size)):
+        chunks.append(chunk)
+        if progress is not None:
+            progress(chunk.stop, n_draws)
+    return _combine(chunks, context, candidates, base, wtp_grid, chunk_size)
+
+
+def _merge_candidates(named: list[tuple[str, str, np.ndarray]]) -> list[Candidate]:
+    """Candidates with distinct policies; later duplicates become ``also`` names."""
+    kept: list[Candidate] = []
+    for name, origin, policy in named:
+        policy = np.asarray(policy, dtype=np.int8)
+        for i, c in enumerate(kept):
+            if np.array_equal(c.policy, policy):
+                kept[i] = replace(c, also=(*c.also, name))
+                break
+        else:
+            kept.append(Candidate(name=name, origin=origin, policy=policy))
+    return kept
+
+
+def _wtp_grid(objective: Objective, wtp_range, points: int) -> np.ndarray:
+    if isinstance(points, bool) or not isinstance(points, int) or points < 2:
+        raise ModelError(Problem("wtp_points", f"{points!r}; expected a whole number >= 2"))
+    if wtp_range is None:
+        high = 2 * objective.willingness_to_pay or 100_000.0
+        return np.linspace(0.0, high, points)
+    try:
+        low, high = (float(x) for x in wtp_range)
+    except (TypeError, ValueError):
+        raise ModelError(
+            Problem("wtp_range", f"{wtp_range!r}; expected two numbers LOW HIGH")
+        ) from None
+    if not (math.isfinite(low) and math.isfinite(high) and 0 <= low < high):
+        raise ModelError(Problem("wtp_range", f"({low!r}, {high!r}); expected 0 <= LOW < HIGH "
+                                 "(currency per QALY)"))
+    return np.linspace(low, high, points)
+
+
+def _combine(chunks: list[ChunkResult], context: PSAContext, candidates: list[Candidate],
+             base, wtp_grid: np.ndarray, chunk_size: int) -> PSAResult:
+    """Reduce the chunk results (in draw order) into one :class:`PSAResult`."""
+    starts = [c.start for c in chunks]
+    if starts != sorted(starts) or chunks[0].start != 0:
+        raise RuntimeError("chunk results arrived out of order; the runner must keep order")
+    n_draws = chunks[-1].stop
+    distinct = np.concatenate([c.distinct_policies for c in chunks])
+    counts = np.concatenate([c.distinct_counts for c in chunks])
+    flat = distinct.reshape(len(distinct), -1)
+    unique, inverse = np.unique(flat, axis=0, return_inverse=True)
+    totals = np.bincount(np.ravel(inverse), weights=counts, minlength=len(unique)).astype(np.int64)
+    order = np.lexsort((np.arange(len(unique)), -totals))  # most frequent first, then by policy
+    n_t = base.n_cycles if base.n_cycles is not None else 1
+    ages = base.ages()[:n_t] if base.n_cycles is not None else None
+    return PSAResult(
+        n_draws=n_draws,
+        seed=context.seed,
+        objective=context.objective,
+        state_ids=base.state_ids,
+        action_ids=base.action_ids,
+        decision_states=~base.absorbing & (base.allowed.sum(axis=1) >= 2),
+        allowed=base.allowed.copy(),
+        ages=ages,
+        candidates=candidates,
+        parameter_names=context.sampler.names,
+        group_members=context.sampler.group_members,
+        parameters=np.concatenate([c.parameters for c in chunks]),
+        optimal=np.concatenate([c.optimal for c in chunks]),
+        candidate_totals=np.concatenate([c.candidates for c in chunks], axis=1),
+        action_counts=np.sum([c.action_counts for c in chunks], axis=0),
+        distinct_policies=unique[order].reshape(len(unique), *distinct.shape[1:]),
+        distinct_counts=totals[order],
+        policies=(np.concatenate([c.policies for c in chunks])
+                  if context.keep_policies else None),
+        chunk_size=chunk_size,
+        iterations=[c.iterations for c in chunks],
+        success=all(c.success for c in chunks),
+        messages=[c.message for c in chunks if c.message],
+        wtp_grid=wtp_grid,
+    )
