@@ -3,28 +3,14 @@ caution, and its tables equal what caredecide.sensitivity computes."""
 
 from __future__ import annotations
 
-from pathlib import Path
-
 import pytest
-import streamlit as st
 from streamlit.testing.v1 import AppTest
 
 from caredecide.cautions import CAUTION_SHORT
 from caredecide.modelfile import load_model
 from caredecide.sensitivity import one_way, parameter_thresholds, summarise_thresholds
 from synthetic_cohort import demo_model_path
-
-APP = str(Path(__file__).resolve().parents[1] / "ui" / "app.py")
-
-
-@pytest.fixture(autouse=True)
-def private_app_state(tmp_path, monkeypatch):
-    monkeypatch.setenv("CAREDECIDE_HOME", str(tmp_path / "home"))
-    monkeypatch.setenv("CAREDECIDE_MODEL", str(demo_model_path()))
-    st.cache_data.clear()
-    yield
-    st.cache_data.clear()
-
+from tests.ui.conftest import APP, private_app_state  # noqa: F401  (autouse fixture)
 
 # Tables in page order: one-way, switches, thresholds (bands), thresholds per cycle, ...
 ORDER = ("sensitivity_oneway_table", "sensitivity_switches", "sensitivity_thresholds")
