@@ -11,15 +11,17 @@ from caredecide.cautions import CAUTION_SHORT
 
 pytestmark = pytest.mark.browser
 
-# The model view is the default page, served at the app's root.
-VIEWS = [("", "Model"), ("policy", "Policy"), ("convergence", "Convergence")]
 DONE = "[data-testid='stApp'][data-test-script-state='notRunning']"
 TIMEOUT_MS = 90_000
 
 
-def _wait_until_done(page, title: str) -> None:
-    """Wait for the view's title, then for the script to finish with nothing left loading."""
-    page.get_by_role("heading", name=title, exact=True).first.wait_for(timeout=TIMEOUT_MS)
+def _wait_until_done(page, title: str | None = None) -> None:
+    """Wait until the view has started (its title, or the caution every view shows), then
+    for the script to finish with nothing left loading."""
+    if title is not None:
+        page.get_by_role("heading", name=title, exact=True).first.wait_for(timeout=TIMEOUT_MS)
+    else:
+        page.get_by_text(CAUTION_SHORT).first.wait_for(timeout=TIMEOUT_MS)
     page.wait_for_selector(DONE, timeout=TIMEOUT_MS)
     page.wait_for_function(
         "() => document.querySelectorAll(\"[data-testid='stSkeleton']\").length === 0",
@@ -28,28 +30,39 @@ def _wait_until_done(page, title: str) -> None:
     page.wait_for_selector(DONE, timeout=TIMEOUT_MS)
 
 
-@pytest.mark.parametrize(("url_path", "title"), VIEWS)
-def test_each_view_renders_without_exception(app_url, page, artifacts, url_path, title):
-    page.goto(f"{app_url}/{url_path}", timeout=TIMEOUT_MS)
-    _wait_until_done(page, title)
-    if url_path:  # charts are drawn after the script: wait for the first canvas
-        page.locator("[data-testid='stVegaLiteChart'] canvas, "
-                     "[data-testid='stVegaLiteChart'] svg").first.wait_for(timeout=TIMEOUT_MS)
-    page.screenshot(path=str(artifacts / f"app-{url_path or 'model'}.png"), full_page=True)
+def _check_view(page) -> None:
     assert page.locator("[data-testid='stException']").count() == 0
     assert page.get_by_text("Page not found").count() == 0
     assert page.get_by_text(CAUTION_SHORT, exact=False).first.is_visible()
 
 
-def test_sidebar_navigation_reaches_every_view(app_url, page):
+def test_every_view_renders_without_exception(app_url, page, artifacts):
+    """Visit every view listed in the sidebar (views added later are covered too)."""
     page.goto(app_url, timeout=TIMEOUT_MS)
     _wait_until_done(page, "Model")
-    for url_path, title in VIEWS[1:]:
+    links = page.locator("[data-testid='stSidebarNav'] a")
+    hrefs = [links.nth(i).get_attribute("href") for i in range(links.count())]
+    assert len(hrefs) >= 3, hrefs
+    for href in hrefs:
+        name = href.rstrip("/").rsplit("/", 1)[-1] if href.rstrip("/") != app_url else ""
+        page.goto(href if href.startswith("http") else f"{app_url}/{href.lstrip('/')}",
+                  timeout=TIMEOUT_MS)
+        _wait_until_done(page)
+        charts = page.locator("[data-testid='stVegaLiteChart']")
+        if charts.count():  # charts are drawn after the script: wait for the first one
+            charts.first.locator("canvas, svg").first.wait_for(timeout=TIMEOUT_MS)
+        page.screenshot(path=str(artifacts / f"app-{name or 'model'}.png"), full_page=True)
+        _check_view(page)
+
+
+def test_sidebar_navigation_reaches_each_view_in_one_session(app_url, page):
+    page.goto(app_url, timeout=TIMEOUT_MS)
+    _wait_until_done(page, "Model")
+    for url_path, title in (("policy", "Policy"), ("convergence", "Convergence")):
         page.locator(f"[data-testid='stSidebarNav'] a[href$='/{url_path}']").click()
         _wait_until_done(page, title)
         assert page.url.rstrip("/").endswith(url_path)
-        assert page.locator("[data-testid='stException']").count() == 0
-        assert page.get_by_text("Page not found").count() == 0
+        _check_view(page)
 
 
 def test_upload_a_model_and_watch_value_iteration_converge(app_url, page, artifacts, tmp_path):

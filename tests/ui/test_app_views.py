@@ -7,6 +7,9 @@ set before ``run()``). Expected figures are recomputed here through caredecide i
 
 from __future__ import annotations
 
+import re
+from pathlib import Path
+
 import pandas as pd
 import pytest
 from streamlit.dataframe_util import convert_arrow_bytes_to_pandas_df
@@ -23,7 +26,8 @@ from tests.ui.conftest import APP
 from ui import common, drafts
 from ui.templates import TEMPLATES
 
-VIEWS = ("views/model.py", "views/policy.py", "views/convergence.py")
+# Every page listed in ui/app.py (views added later are covered too).
+VIEWS = tuple(re.findall(r'st\.Page\(\s*"(views/\w+\.py)"', Path(APP).read_text("utf-8")))
 
 
 def _library(text: str, kind: str, wtp: float, base_dir: str, **solve_options):
@@ -48,6 +52,10 @@ def _edit(at: AppTest, table: str, edited_rows: dict) -> AppTest:
 def _chart_data(at: AppTest, index: int) -> pd.DataFrame:
     proto = at.get("vega_lite_chart")[index].proto
     return convert_arrow_bytes_to_pandas_df(proto.datasets[0].data.data)
+
+
+def test_the_views_are_found():
+    assert {"views/model.py", "views/policy.py", "views/convergence.py"} <= set(VIEWS)
 
 
 @pytest.mark.parametrize("view", VIEWS)
