@@ -195,7 +195,7 @@ class ParameterSampler:
                                       self.correlation, rng)
             for j, i in enumerate(index):
                 columns[i] = reordered[:, j]
-        columns += [g.sample(rng, BLOCK_SIZE).T for _, g in self.groups]
+        columns += [g.sample(rng, BLOCK_SIZE) for _, g in self.groups]  # (n, k) each
         if not columns:
             return np.empty((BLOCK_SIZE, 0))
         return np.column_stack(columns)

@@ -1,0 +1,201 @@
+"""Probabilistic sensitivity analysis: invariants, chunking, EVPI and EVPPI."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from caredecide.compile import compile_model
+from caredecide.errors import ModelError
+from caredecide.objective import Objective
+from caredecide.solvers import solve
+from caredecide.uncertainty.psa import Candidate, PSAResult, run_psa
+from caredecide.uncertainty.voi import evpi
+from tests.conftest import load_dict, small_model_dict
+
+DRAWS = 400
+
+
+def uncertain_model_dict() -> dict:
+    """The small test model with distributions, a Dirichlet row and an unused parameter."""
+    data = small_model_dict()
+    specs = {
+        "p_die_sick": {"type": "beta", "mean": 0.2, "se": 0.05},
+        "rr_treat": {"type": "lognormal", "low": 0.3, "high": 1.1},
+        "u_sick": {"type": "beta", "mean": 0.6, "se": 0.05},
+        "c_drug": {"type": "gamma", "mean": 1000.0, "se": 300.0},
+    }
+    for name, spec in specs.items():
+        data["parameters"][name]["distribution"] = spec
+    # A parameter that enters no expression: its EVPPI must be ~0.
+    data["parameters"]["unused"] = {"value": 1.0, "kind": "other", "source": "Synthetic: test",
+                                    "distribution": {"type": "normal", "mean": 1.0, "sd": 1.0}}
+    data["groups"] = {"from_well": {"members": ["g_sick", "g_dead", "g_well"],
+                                    "counts": [10.0, 1.0, 89.0], "source": "Synthetic: test"}}
+    data["transitions"]["wait"]["well"] = {"sick": "g_sick", "dead": "g_dead", "well": "g_well"}
+    return data
+
+
+@pytest.fixture(scope="module")
+def model():
+    return load_dict(uncertain_model_dict())
+
+
+@pytest.fixture(scope="module")
+def result(model):
+    return run_psa(model, DRAWS, seed=2024, chunk_size=DRAWS, keep_policies=True)
+
+
+def test_acceptability_shares_sum_to_one_per_state_and_age(result):
+    by_cycle = result.acceptability().groupby(["cycle", "state"])["share"].sum()
+    np.testing.assert_allclose(by_cycle.to_numpy(), 1.0, atol=1e-12)
+    by_band = result.acceptability_by_age_band(3.0).groupby(["state", "age_from"])["share"].sum()
+    np.testing.assert_allclose(by_band.to_numpy(), 1.0, atol=1e-12)
+    # Only the one decision state ("sick": wait or treat) is shown.
+    assert set(result.acceptability()["state"]) == {"sick"}
+
+
+def test_acceptability_equals_shares_of_kept_policies(result):
+    policies = result.policies
+    treat = result.action_ids.index("treat")
+    sick = result.state_ids.index("sick")
+    frame = result.acceptability()
+    shown = frame[frame["action"] == "treat"]["share"].to_numpy()
+    np.testing.assert_array_equal(shown, (policies[:, :, sick] == treat).mean(axis=0))
+    # Binomial Monte Carlo error sqrt(p (1 - p) / D) (common practice).
+    np.testing.assert_allclose(frame["mc_se"], np.sqrt(frame["share"] * (1 - frame["share"])
+                                                       / DRAWS))
+
+
+def test_chunk_size_does_not_change_any_result(model, result):
+    other = run_psa(model, DRAWS, seed=2024, chunk_size=37, keep_policies=True)
+    for name in ("parameters", "optimal", "candidate_totals", "action_counts",
+                 "distinct_policies", "distinct_counts", "policies"):
+        np.testing.assert_array_equal(getattr(other, name), getattr(result, name), err_msg=name)
+    pd.testing.assert_frame_equal(other.evppi(), result.evppi())
+    assert other.evpi() == result.evpi()
+
+
+def test_every_draw_is_the_optimum_of_its_own_parameters(model, result):
+    # The one core path: draw 123 solved alone gives the value kept for it.
+    row = {name: result.parameters[123:124, j] for j, name in enumerate(result.parameter_names)}
+    alone = solve(compile_model(model, row), Objective.from_settings(model.settings))
+    start = compile_model(model).start_distribution
+    assert result.optimal[123, 2] == pytest.approx(alone.value[0, 0] @ start, rel=1e-12)
+
+
+def test_per_draw_optimum_beats_every_candidate(result):
+    # Optimality (Bellman): no fixed policy beats the draw's own optimal policy.
+    assert result.regret.min() >= -1e-9 * np.abs(result.optimal[:, 2]).max()
+
+
+def test_evpi_is_nonnegative_and_at_least_evpi_among_candidates(result):
+    info = result.evpi()
+    assert info["evpi"] >= 0.0
+    assert info["evpi"] >= info["evpi_among_candidates"] - 1e-9
+    assert info["evpi_among_candidates"] == pytest.approx(float(evpi(result.candidate_values)))
+    # EVPI = min over candidates of the expected loss (the best candidate's).
+    assert info["evpi"] == pytest.approx(result.expected_loss()["expected_loss"].min())
+
+
+def test_evpi_is_zero_when_every_parameter_is_fixed():
+    data = small_model_dict()  # no distributions at all
+    fixed = run_psa(load_dict(data), 50, seed=1)
+    assert fixed.evpi()["evpi"] == 0.0
+    assert fixed.evpi()["evpi_among_candidates"] == 0.0
+    assert fixed.parameters.shape == (50, 0)
+
+
+def test_evppi_of_unused_parameter_is_about_zero_and_evppi_below_evpi(result):
+    table = result.evppi().set_index("parameter")
+    total = result.evpi()["evpi_among_candidates"]
+    assert total > 0
+    # Regression EVPPI of an irrelevant input is biased up only by the noise the smoother
+    # keeps (Strong et al. 2014): allow 5% of the EVPI plus 3 standard errors.
+    unused = table.loc["unused"]
+    assert unused["evppi"] <= 0.05 * total + 3 * unused["mc_se"]
+    # EVPPI <= EVPI (Strong et al. 2014), with the same tolerance for smoothing noise.
+    assert (table["evppi"] <= total * 1.05 + 3 * table["mc_se"]).all()
+    # The Dirichlet row is one entry, regressed on its first k - 1 members.
+    assert table.loc["from_well", "members"] == "g_sick,g_dead"
+
+
+def test_evpi_arithmetic_by_hand():
+    # Claxton 1999 (from memory): EVPI = E[max] - max E. Two draws, two candidates:
+    # V* = (10, 12); V_1 = (10, 9), V_2 = (8, 12). E[V*] = 11, E[V_1] = 9.5, E[V_2] = 10,
+    # so EVPI = 11 - 10 = 1; expected losses are 1.5 and 1.
+    totals = np.zeros((3, 2, 2))
+    totals[2] = [[10.0, 8.0], [9.0, 12.0]]
+    result = PSAResult(
+        n_draws=2, seed=0, objective=Objective("net_benefit", 1.0), state_ids=("s",),
+        action_ids=("a",), decision_states=np.array([False]), allowed=np.ones((1, 1), bool),
+        ages=None,
+        candidates=[Candidate("one", "test", np.zeros((1, 1), np.int8)),
+                    Candidate("two", "test", np.zeros((1, 1), np.int8))],
+        parameter_names=(), group_members={}, parameters=np.empty((2, 0)),
+        optimal=np.array([[0.0, 0.0, 10.0], [0.0, 0.0, 12.0]]), candidate_totals=totals,
+        action_counts=np.zeros((1, 1, 1), int), distinct_policies=np.zeros((1, 1, 1), np.int8),
+        distinct_counts=np.array([2]), policies=None, chunk_size=2, iterations=[1],
+        success=True, messages=[], wtp_grid=np.array([0.0, 1.0]),
+    )
+    np.testing.assert_allclose(result.expected_loss()["expected_loss"], [1.5, 1.0])
+    assert result.evpi()["evpi"] == pytest.approx(1.0)
+    assert result.evpi()["best_candidate"] == "two"
+
+
+def test_candidates_include_base_mean_strategies_and_are_distinct(result):
+    origins = {c.origin for c in result.candidates}
+    assert {"base-case optimal", "fixed strategy"} <= origins
+    names = [n for c in result.candidates for n in (c.name, *c.also)]
+    assert "base-case optimal policy" in names and "optimal at mean parameters" in names
+    assert "never treat" in names and "treat at once" in names
+    policies = np.stack([c.policy for c in result.candidates])
+    assert len(np.unique(policies.reshape(len(policies), -1), axis=0)) == len(policies)
+
+
+def test_acceptability_curves_sum_to_one_and_frontier_per_wtp(result):
+    curves = result.acceptability_curves()
+    totals = curves.groupby("wtp")["probability_cost_effective"].sum()
+    np.testing.assert_allclose(totals.to_numpy(), 1.0)
+    assert len(result.acceptability_frontier()) == len(result.wtp_grid)
+    np.testing.assert_allclose(result.wtp_grid[[0, -1]], [0.0, 40_000.0])  # 0 to 2 x WTP
+
+
+def test_convergence_ends_at_the_full_estimates(result):
+    frame = result.convergence(points=50)
+    last = frame.groupby("quantity").last()
+    assert last.loc["EVPI", "n"] == DRAWS
+    assert last.loc["EVPI", "mean"] == pytest.approx(result.evpi()["evpi"])
+    assert last.loc["expected optimal value", "mean"] == pytest.approx(
+        result.evpi()["expected_optimal_value"])
+
+
+def test_rank_correlation_reaches_the_draws(model):
+    linked = run_psa(model, 200, seed=3, n_frequent=0,
+                     rank_correlation={("u_sick", "c_drug"): 0.8})
+    columns = [linked.parameter_names.index(n) for n in ("u_sick", "c_drug")]
+    ranks = pd.DataFrame(linked.parameters[:, columns]).rank()
+    assert ranks.corr().iloc[0, 1] > 0.6
+
+
+# ---------------------------------------------------------------- one test per refusal
+@pytest.mark.parametrize(
+    ("options", "message"),
+    [
+        ({"chunk_size": 0}, r"chunk_size: 0; expected a whole number >= 1"),
+        ({"wtp_range": (5.0, 1.0)}, r"wtp_range: \(5\.0, 1\.0\); expected 0 <= LOW < HIGH"),
+        ({"wtp_range": ("a", 1)}, r"wtp_range: \('a', 1\); expected two numbers"),
+        ({"wtp_points": 1}, r"wtp_points: 1; expected a whole number >= 2"),
+        ({"n_frequent": -1}, r"n_frequent: -1; expected a whole number >= 0"),
+        ({"memory_limit_bytes": 0}, r"memory_limit_bytes: 0; expected a whole number"),
+    ],
+)
+def test_refusals(model, options, message):
+    with pytest.raises(ModelError, match=message):
+        run_psa(model, 10, seed=1, **options)
+
+
+def test_refuses_zero_draws(model):
+    with pytest.raises(ModelError, match=r"draws = 0"):
+        run_psa(model, 0, seed=1)
