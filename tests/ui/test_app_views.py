@@ -196,3 +196,30 @@ def test_convergence_view_on_a_finite_model_uses_backward_induction(app):
                          _demo_dir(), record_history=True)
     assert app.metric[0].value == str(result.iterations)
     assert any("backward induction" in m.value for m in app.markdown)
+
+
+def test_policy_view_on_an_infinite_horizon_model(app):
+    app.selectbox(key="open_template_choice").set_value("infinite-horizon")
+    app.button(key="open_template_button").click().run()
+    app.switch_page("views/policy.py").run()
+    assert not app.exception, app.exception
+    _, totals, _ = _library(TEMPLATES["infinite-horizon"], "qalys", 0.0, ".")
+    assert set(_chart_data(app, 0)["age"]) == {"any age"}
+    assert app.metric[1].value == f"{totals['qalys']:,.4f}"
+    assert [n.label for n in app.number_input] == [
+        "Call a choice close when the action gap is below (QALYs)"
+    ]  # no willingness-to-pay control for the QALY objective
+
+
+def test_switching_the_objective_to_qalys_shows_the_library_result(app):
+    app.switch_page("views/policy.py").run()
+    app.selectbox(key="policy_objective").set_value("qalys").run()
+    assert not app.exception, app.exception
+    text = demo_model_path().read_text(encoding="utf-8")
+    result, totals, _ = _library(text, "qalys", 30000.0, _demo_dir())
+    assert app.metric[1].value == f"{totals['qalys']:,.4f}"
+    heat_map = _chart_data(app, 0)
+    labels = {a.id: a.label for a in loads_model(text, file="t", base_dir=_demo_dir()).actions}
+    expected = result.to_frame()
+    expected = expected[expected["state"].isin(["stage_1", "stage_2", "stage_3"])]
+    assert list(heat_map["action"]) == [labels[a] for a in expected["action"]]

@@ -116,3 +116,20 @@ def test_header_comments_survive_a_rewrite_from_tables():
     expected = "# SYNTHETIC\n#  invented\nformat = 1\n"
     assert tables.with_header_comments(old, "format = 1\n") == expected
     assert tables.with_header_comments("format = 1\n", "x\n") == "x\n"
+
+
+@given(value=st.floats(min_value=-1e12, max_value=1e12, allow_nan=False),
+       cost=st.one_of(st.floats(min_value=0, max_value=1e9), st.sampled_from(["c_x * 2", "rest"])))
+def test_a_table_edit_is_written_to_the_file_and_read_back(value, cost):
+    # Invariant: whatever a table holds reaches the model file unchanged (valid or not).
+    model = loads_model(TEMPLATES["treat-or-wait"], file="t")
+    frames = tables.model_to_tables(model)
+    params = frames["parameters"].copy()
+    params.loc[0, "value"] = value
+    states = frames["states"].copy()
+    states.loc[1, "cost"] = tables.expression_cell(cost)
+    edited = tables.model_with_table(tables.model_with_table(model, "parameters", params),
+                                     "states", states)
+    back = loads_model(dumps_model(edited), file="t", validate=False)
+    assert back.parameters["p_progress"].value == value
+    assert back.states[1].cost == cost
