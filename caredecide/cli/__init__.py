@@ -20,6 +20,8 @@ COMMAND_MODULES: tuple[str, ...] = (
     "check",
     "solve",
     "sensitivity",
+    "compare",
+    "estimate",
     "app",
 )
 

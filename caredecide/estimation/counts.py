@@ -17,6 +17,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+import pandas as pd
 
 from caredecide.errors import ModelError
 from caredecide.estimation.records import CENSORED, DEATH, OBSERVED, CohortRecords
@@ -84,6 +85,24 @@ class CountEstimate:
         total = alpha.sum(axis=1, keepdims=True)
         with np.errstate(invalid="ignore", divide="ignore"):
             return np.sqrt(alpha * (total - alpha) / (total**2 * (total + 1.0)))
+
+    def table(self) -> pd.DataFrame:
+        """One row per (from, to) pair of the alive rows with data: count, ``n_ij / n_i``
+        and the Dirichlet standard error."""
+        size = len(self.state_ids)
+        start, end = np.divmod(np.arange((size - 1) * size), size)
+        has_data = self.dirichlet_alpha().sum(axis=1)[start] > 0
+        start, end = start[has_data], end[has_data]
+        return pd.DataFrame(
+            {
+                "group": self.group,
+                "from": np.asarray(self.state_ids)[start],
+                "to": np.asarray(self.state_ids)[end],
+                "count": self.counts[start, end],
+                "probability": self.probabilities()[start, end],
+                "se": self.standard_errors()[start, end],
+            }
+        )
 
 
 def transition_counts(
