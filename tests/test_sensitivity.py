@@ -27,6 +27,7 @@ from caredecide.sensitivity import (
     parameter_sets,
     parameter_thresholds,
     setting_thresholds,
+    summarise_thresholds,
     two_way,
 )
 from caredecide.solvers import solve
@@ -164,22 +165,34 @@ def test_willingness_to_pay_threshold_matches_the_hand_algebra():
     assert table.at[0, "base"] == 30000.0
 
 
-def _assert_switch_at(model: Model, table: pd.DataFrame) -> None:
-    """At each threshold the gap is ~0 and the action differs just below and above."""
-    switches = table[table["status"] == "switch"]
+def _assert_switch_at(model: Model, table: pd.DataFrame, step: float = 1e-6) -> None:
+    """At each threshold the gap is ~0 and the action differs just below and above.
+
+    All points (threshold -/+ step x range, per switch) are solved in one batch.
+    """
+    switches = table[table["status"] == "switch"].reset_index(drop=True)
     assert len(switches) > 0
-    for _, row in switches.iterrows():
-        h = 1e-6 * (row["high"] - row["low"])
-        compiled, result = _solve_sets(
-            model, {row["parameter"]: np.array([row["threshold"] - h, row["threshold"] + h])}
-        )
-        s = compiled.state_ids.index(row["state"])
-        below, above = result.policy[:, int(row["cycle"]), s]
-        assert compiled.action_ids[below] == row["action_below"]
-        assert compiled.action_ids[above] == row["action_above"]
-        scale = max(1.0, np.abs(result.value).max())
-        assert abs(row["gap_at_threshold"]) <= 1e-9 * scale
-        assert row["converged"]
+    h = step * (switches["high"] - switches["low"]).to_numpy()
+    x = switches["threshold"].to_numpy()
+    frame = pd.concat(
+        [
+            parameter_sets(model, {row.parameter: np.array([x[k] - h[k], x[k] + h[k]])})
+            for k, row in enumerate(switches.itertuples())
+        ],
+        ignore_index=True,
+    )
+    compiled = compile_model(model, frame)
+    result = solve(compiled, Objective.from_settings(model.settings))
+    cycle = switches["cycle"].astype(int).to_numpy()
+    state = switches["state"].map(list(compiled.state_ids).index).to_numpy()
+    actions = np.asarray(compiled.action_ids)
+    below = actions[result.policy[0::2][np.arange(len(switches)), cycle, state]]
+    above = actions[result.policy[1::2][np.arange(len(switches)), cycle, state]]
+    np.testing.assert_array_equal(below, switches["action_below"].to_numpy())
+    np.testing.assert_array_equal(above, switches["action_above"].to_numpy())
+    scale = max(1.0, float(np.abs(result.value).max()))
+    assert (np.abs(switches["gap_at_threshold"].to_numpy(dtype=float)) <= 1e-9 * scale).all()
+    assert switches["converged"].all()
 
 
 def test_every_reported_threshold_is_a_switch_hand_model():
@@ -191,6 +204,71 @@ def test_every_reported_threshold_is_a_switch_group_model():
     model = group_model()
     table = parameter_thresholds(model, grid=9)
     _assert_switch_at(model, table)
+
+
+def test_every_reported_threshold_is_a_switch_demo_model():
+    from caredecide.modelfile import load_model
+    from synthetic_cohort import demo_model_path
+
+    model = load_model(demo_model_path())
+    table = parameter_thresholds(model, grid=11)
+    assert (table["status"] == "switch").sum() > 10  # the demo's decision is sensitive
+    _assert_switch_at(model, table, step=1e-5)
+
+
+def three_action_model() -> Model:
+    """One decision among a, b, c with one-off QALY losses x, 1 - x and 0.45 (x in [0, 1]).
+
+    Q_a = 1 - x, Q_b = x, Q_c = 0.55 (QALY weight 1, one cycle, start-of-cycle counting):
+    a is best for x < 0.45, c for 0.45 < x < 0.55, b for x > 0.55.
+    """
+    return Model(
+        title="Synthetic: three actions",
+        description=SYNTHETIC,
+        settings=Settings(horizon_cycles=1, start="sick", objective="qalys", within_cycle="start"),
+        states=(State(id="sick", qaly_weight=1.0), State(id="dead", absorbing=True, alive=False)),
+        actions=(
+            Action(id="a", oneoff_qaly_loss="x"),
+            Action(id="b", oneoff_qaly_loss="1 - x"),
+            Action(id="c", oneoff_qaly_loss=0.45),
+        ),
+        transitions={k: {"sick": {"dead": 0.0, "sick": "rest"}} for k in ("a", "b", "c")},
+        parameters={"x": Parameter("x", 0.5, SYNTHETIC, low=0.0, high=1.0)},
+    )
+
+
+def test_switch_through_a_third_action_is_flagged():
+    # grid 2 (x = 0, 1) sees only a -> b; Q_a = Q_b at x = 0.5 where c (0.55) is better.
+    coarse = parameter_thresholds(three_action_model(), grid=2)
+    assert coarse.at[0, "threshold"] == pytest.approx(0.5, abs=1e-10)
+    assert bool(coarse.at[0, "third_action_better"])
+    # grid 3 (x = 0, 0.5, 1) brackets both switches: a -> c at 0.45, c -> b at 0.55.
+    fine = parameter_thresholds(three_action_model(), grid=3)
+    assert list(fine["threshold"]) == pytest.approx([0.45, 0.55], abs=1e-10)
+    assert list(zip(fine["action_below"], fine["action_above"], strict=True)) == [
+        ("a", "c"),
+        ("c", "b"),
+    ]
+    assert not fine["third_action_better"].any()
+
+
+def test_infinite_horizon_thresholds_are_reported_by_cycle_not_age():
+    # Stationary, discount 3% (needed for an infinite horizon): same structure as hand_model.
+    model = hand_model(discount=0.03)
+    # Treating pays for ever after here, so widen the toxicity loss range to see a switch.
+    parameters = dict(model.parameters)
+    parameters["loss"] = replace(parameters["loss"], high=1.0)
+    model = replace(
+        model,
+        settings=replace(model.settings, horizon_cycles=None, infinite_horizon=True),
+        parameters=parameters,
+    )
+    table = parameter_thresholds(model, ["loss"], grid=9)
+    _assert_switch_at(model, table)
+    bands = summarise_thresholds(table)
+    assert bands.at[0, "ages"] == "cycles 0"
+    with pytest.raises(ModelError, match="finite horizon"):
+        setting_thresholds(model, "discount_rate", 0.01, 0.2)
 
 
 # ----------------------------------------------------------------------------- one-way
@@ -349,5 +427,14 @@ def test_two_way_grid_follows_the_hand_threshold():
 
 
 def test_two_way_needs_two_parameters():
-    with pytest.raises(ValueError, match="two different parameters"):
+    with pytest.raises(
+        ModelError, match=r"sensitivity\.two_way.*two different parameters, got 'p'"
+    ):
         two_way(hand_model(), "p", "p")
+
+
+def test_grid_of_fewer_than_two_values_is_refused():
+    with pytest.raises(ModelError, match=r"sensitivity\.grid.*grid = 1 is not allowed"):
+        parameter_thresholds(hand_model(), grid=1)
+    with pytest.raises(ModelError, match=r"sensitivity\.two_way\.grid.*grid = 0"):
+        two_way(hand_model(), "p", "hr", grid=0)

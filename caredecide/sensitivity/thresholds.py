@@ -39,6 +39,7 @@ from scipy.optimize.elementwise import find_root
 from caredecide.errors import ModelError, Problem
 from caredecide.objective import Objective
 from caredecide.sensitivity.variation import (
+    check_grid,
     compiled_over_discount_rate,
     compiled_over_willingness_to_pay,
     default_objective,
@@ -70,8 +71,7 @@ def _locate_thresholds(
     maxiter: int = 200,
 ) -> pd.DataFrame:
     """The engine shared by parameters and settings (see the module docstring)."""
-    if grid < 2:
-        raise ValueError(f"grid must be >= 2 points, got {grid}")
+    check_grid(grid, "sensitivity.grid")
     labels = list(labels)
     lows = np.asarray(lows, dtype=float)
     highs = np.asarray(highs, dtype=float)

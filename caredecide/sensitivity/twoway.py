@@ -14,12 +14,15 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from caredecide.errors import ModelError, Problem
 from caredecide.objective import Objective
 from caredecide.sensitivity.variation import (
+    check_grid,
     default_objective,
     parameter_ranges,
     parameter_sets,
     solve_parameter_sets,
+    source_file,
     start_values,
 )
 
@@ -58,11 +61,15 @@ def two_way(
         equality flag ``same_as_base``.
     """
     if x_parameter == y_parameter:
-        raise ValueError(
-            f"two-way analysis needs two different parameters, got {x_parameter!r} twice"
+        raise ModelError(
+            Problem(
+                where="sensitivity.two_way",
+                message=f"two-way analysis needs two different parameters, got {x_parameter!r} "
+                "twice",
+            ),
+            file=source_file(model),
         )
-    if grid < 2:
-        raise ValueError(f"grid must be >= 2 points, got {grid}")
+    check_grid(grid, "sensitivity.two_way.grid")
     objective = default_objective(model) if objective is None else objective
     ranges = parameter_ranges(model, [x_parameter, y_parameter]).set_index("parameter")
     axes = []

@@ -408,3 +408,13 @@ def policy_ages(compiled: CompiledModel, n_policy_cycles: int) -> np.ndarray:
     if compiled.n_cycles is None:
         return np.full(n_policy_cycles, np.nan)
     return compiled.ages()[:n_policy_cycles]
+
+
+def check_grid(grid: int, where: str) -> None:
+    """Refuse a grid of fewer than two values (a ModelError naming ``where``)."""
+    if not isinstance(grid, int | np.integer) or grid < 2:
+        raise ModelError(
+            Problem(
+                where=where, message=f"grid = {grid!r} is not allowed; expected an integer >= 2"
+            )
+        )
