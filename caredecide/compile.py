@@ -591,7 +591,8 @@ class _Evaluator:
             return problems
         for i in np.flatnonzero(bad.any(axis=(1, 2)))[:MAX_PROBLEMS_PER_RULE]:
             d, t = np.argwhere(bad[i])[0]
-            value = float(values[i, d, t])
+            # 12 significant digits: -0.2 rather than -0.19999999999999998.
+            value = float(f"{float(values[i, d, t]):.12g}")
             place = self.place(int(d), int(t), boundaries=boundaries, length=values.shape[2])
             problems.append(
                 Problem(

@@ -287,3 +287,68 @@ def test_warning_for_death_below_background():
 
 def test_the_small_model_itself_is_valid(small_model):
     assert validate_model(small_model) == []
+
+
+def test_unknown_state_in_allowed_in():
+    data = small_model_dict()
+    data["actions"][1]["allowed_in"] = ["sick", "sikc"]
+    assert "actions.treat.allowed_in: unknown state 'sikc'" in problems_of(data)
+
+
+def test_absorbing_state_in_allowed_in():
+    data = small_model_dict()
+    data["actions"][1]["allowed_in"] = ["sick", "dead"]
+    assert "actions.treat.allowed_in: state 'dead' is absorbing" in problems_of(data)
+
+
+def test_unknown_state_in_severity_order():
+    data = small_model_dict()
+    data["settings"]["severity_order"] = ["well", "ill"]
+    assert "settings.severity_order: unknown state 'ill'" in problems_of(data)
+
+
+def test_negative_rate_is_named():
+    data = small_model_dict()
+    del data["transitions"]["wait"]["sick"]
+    data["rates"] = {"wait": {"sick": {"dead": "p_sick - 0.3"}}}
+    message = problems_of(data)
+    assert "rates.wait.sick.dead" in message and "-0.2" in message and "rate >= 0" in message
+
+
+def test_rest_in_a_rate_row():
+    data = small_model_dict()
+    del data["transitions"]["wait"]["sick"]
+    data["rates"] = {"wait": {"sick": {"dead": 0.1, "well": "rest"}}}
+    assert "rates.wait.sick.well: 'rest' is only allowed in [transitions] rows" in problems_of(data)
+
+
+def test_rest_in_a_cost_is_refused():
+    data = small_model_dict()
+    data["states"][0]["cost"] = "rest"
+    assert "states.well.cost" in problems_of(data)
+
+
+def test_probability_parameter_outside_unit_interval():
+    data = small_model_dict()
+    data["parameters"]["p_sick"]["value"] = 1.4
+    assert "parameters.p_sick.value: 1.4; a probability must be in [0, 1]" in problems_of(data)
+
+
+def test_value_outside_its_own_range():
+    data = small_model_dict()
+    data["parameters"]["c_drug"].update(low=1500.0, high=2000.0)
+    assert "parameters.c_drug: value 1000.0 lies outside [low, high]" in problems_of(data)
+
+
+def test_gompertz_makeham_constants_out_of_range():
+    data = small_model_dict()
+    data["mortality"] = {"gompertz_makeham": {"a": 0.0007, "b": 5e-5, "c": 0.9}}
+    assert "mortality.gompertz_makeham.c: 0.9; expected a number > 1" in problems_of(data)
+
+
+def test_life_table_starting_after_start_age(tmp_path):
+    (tmp_path / "life.csv").write_text("age,annual_probability\n70,0.02\n71,0.03\n")
+    data = small_model_dict()
+    data["mortality"] = {"table": "life.csv"}
+    with pytest.raises(ModelError, match="starts at age 70, after start_age = 60"):
+        load_dict(data, base_dir=tmp_path)
