@@ -96,12 +96,14 @@ def dask_client(
     if isinstance(threads_per_worker, bool) or not isinstance(threads_per_worker, int) or \
             threads_per_worker < 1:
         raise ClusterError(f"threads_per_worker = {threads_per_worker!r}; expected >= 1")
+    # Worker processes listen on loopback only; threads talk in-process.
+    where = {"host": "127.0.0.1"} if processes else {}
     with distributed.LocalCluster(
         n_workers=workers,
         threads_per_worker=threads_per_worker,
         processes=processes,
         dashboard_address=None,
-        host="127.0.0.1",
+        **where,
     ) as cluster, distributed.Client(cluster) as client:
         yield client
 

@@ -1,0 +1,52 @@
+"""PSA on a Dask cluster gives exactly the serial results for the same seed."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from caredecide.uncertainty.cluster import ClusterError, dask_client, dask_map
+from caredecide.uncertainty.psa import run_psa
+from tests.conftest import load_dict
+from tests.test_psa import uncertain_model_dict
+
+distributed = pytest.importorskip("distributed")
+
+
+@pytest.fixture(scope="module")
+def client():
+    with distributed.LocalCluster(processes=False, n_workers=1, threads_per_worker=2,
+                                  dashboard_address=None) as cluster, \
+            distributed.Client(cluster) as dask:
+        yield dask
+
+
+def test_dask_run_equals_serial_run(client):
+    model = load_dict(uncertain_model_dict())
+    serial = run_psa(model, 300, seed=77, chunk_size=300)
+    done = []
+    on_dask = run_psa(model, 300, seed=77, chunk_size=45,
+                      map_chunks=dask_map(client, max_in_flight=3),
+                      progress=lambda d, n: done.append(d))
+    for name in ("parameters", "optimal", "candidate_totals", "action_counts",
+                 "distinct_policies", "distinct_counts"):
+        np.testing.assert_array_equal(getattr(on_dask, name), getattr(serial, name),
+                                      err_msg=name)
+    pd.testing.assert_frame_equal(on_dask.evppi(), serial.evppi())
+    assert done == [45, 90, 135, 180, 225, 270, 300]  # in draw order
+
+
+def test_dask_client_needs_exactly_one_of_scheduler_or_workers():
+    with pytest.raises(ClusterError, match=r"exactly one of a scheduler address or a number"):
+        with dask_client():
+            pass
+    with pytest.raises(ClusterError, match=r"exactly one of"):
+        with dask_client("tcp://127.0.0.1:1", 2):
+            pass
+
+
+def test_dask_client_refuses_zero_workers():
+    with pytest.raises(ClusterError, match=r"workers = 0; expected a whole number >= 1"):
+        with dask_client(workers=0):
+            pass
