@@ -120,10 +120,10 @@ def summarize_policy(result: PolicyResult, draw: int = 0) -> PolicyStructure:
         rule = f"{names[used[0]]} in every state"
         return PolicyStructure(UNIFORM, rule, [rule], bands)
     if not ordered:
-        return _per_state(result, policy, decision, bands)
+        return _per_state(result, policy, decision, bands, draw)
     rules = _threshold_rules(result, policy, ordered, decision)
     if rules is None:
-        return _no_structure(bands)
+        return _no_structure(bands, result, draw)
     return PolicyStructure(THRESHOLD, "; ".join(rules), rules, bands)
 
 
@@ -170,10 +170,10 @@ def _threshold_clauses(result, policy, ordered, unordered, a, b, is_b) -> list[s
     return rules
 
 
-def _per_state(result, policy, decision, bands) -> PolicyStructure:
+def _per_state(result, policy, decision, bands, draw: int = 0) -> PolicyStructure:
     names, states, ages = result.action_ids, result.state_ids, result.ages
     if any(_switches(policy[:, s]) > 1 for s in decision):
-        return _no_structure(bands)
+        return _no_structure(bands, result, draw)
     rules = []
     for s in decision:
         column = policy[:, s]
@@ -187,14 +187,44 @@ def _per_state(result, policy, decision, bands) -> PolicyStructure:
     return PolicyStructure(PER_STATE, text, rules, bands)
 
 
-def _no_structure(bands) -> PolicyStructure:
+def _no_structure(bands, result=None, draw: int = 0) -> PolicyStructure:
     rules = [
         f"{action} in " + ", ".join(f"{state} (ages {band})" if band != "all ages" else state
                                     for state, band in rows)
         for action, rows in bands.items()
     ]
-    return PolicyStructure(NO_STRUCTURE, "no simple threshold structure: " + "; ".join(rules),
-                           rules, bands)
+    text = "no simple threshold structure: " + "; ".join(rules)
+    by_band = _band_descriptions(result, draw) if result is not None else []
+    if len(by_band) > 1:
+        text += ". By age band: " + "; ".join(by_band)
+    return PolicyStructure(NO_STRUCTURE, text, rules, bands)
+
+
+def _band_descriptions(result: PolicyResult, draw: int) -> list[str]:
+    """One clause per age band of :func:`band_table`, e.g. ``"ages 55-83: treat from stage_2
+    onward"``; states are listed in clinical order when one is given."""
+    table = band_table(result, draw)
+    order = [s for s in result.ordered_states if s in table.index]
+    order += [s for s in table.index if s not in order]
+    ranked = set(result.ordered_states)
+    clauses = []
+    for band in table.columns:
+        column = table.loc[order, band]
+        actions = list(dict.fromkeys(column))
+        if len(actions) == 1:
+            clauses.append(f"ages {band}: {actions[0]} in every state")
+            continue
+        first, later = column.iloc[0], [a for a in actions if a != column.iloc[0]]
+        switch = int(np.argmax(column.to_numpy() != first))
+        monotone = (len(later) == 1 and (column.iloc[switch:] == later[0]).all()
+                    and all(s in ranked for s in order))
+        if monotone:
+            clauses.append(f"ages {band}: {later[0]} from {order[switch]} onward, "
+                           f"{first} before")
+        else:
+            parts = [f"{a} in " + ", ".join(column.index[column == a]) for a in actions]
+            clauses.append(f"ages {band}: " + "; ".join(parts))
+    return clauses
 
 
 def band_table(result: PolicyResult, draw: int = 0) -> pd.DataFrame:

@@ -136,3 +136,16 @@ def test_band_table_merges_cycles_where_no_state_changes():
     assert table.loc["stage_2"].tolist() == ["treat", "wait", "wait"]
     infinite = band_table(solve(_staged_model(n_cycles=None), Objective("net_benefit", 1.0)))
     assert list(infinite.columns) == ["all ages"]
+
+
+def test_no_structure_is_described_band_by_band():
+    # Ages 60..64 at the cycle starts. Treat stage_2 until 63 and stage_3 until 61: within
+    # each age band the rule is readable even though no single threshold rule exists.
+    summary = _with_policy({"stage_1": [0] * 5, "stage_2": [1, 1, 1, 1, 0],
+                            "stage_3": [1, 1, 0, 0, 0]}).structure()
+    assert summary.kind == NO_STRUCTURE
+    assert summary.text.endswith(
+        "By age band: ages 60-61: treat from stage_2 onward, wait before; "
+        "ages 62-63: wait in stage_1, stage_3; treat in stage_2; "
+        "ages 64: wait in every state"
+    )
