@@ -103,7 +103,7 @@ def register(app: typer.Typer) -> None:
             Path | None,
             typer.Option(
                 help="Write the estimates: into a model file (existing, or --model) or as "
-                "[parameters]/[groups] tables."
+                "parameter and group tables to paste into one."
             ),
         ] = None,
         csv: Annotated[bool, typer.Option("--csv", help="Print the table as CSV.")] = False,
