@@ -438,3 +438,12 @@ def test_grid_of_fewer_than_two_values_is_refused():
         parameter_thresholds(hand_model(), grid=1)
     with pytest.raises(ModelError, match=r"sensitivity\.two_way\.grid.*grid = 0"):
         two_way(hand_model(), "p", "hr", grid=0)
+
+
+def test_threshold_progress_counts_brackets_up_to_the_total():
+    calls: list[tuple[int, int]] = []
+    table = parameter_thresholds(group_model(), grid=9, progress=lambda d, n: calls.append((d, n)))
+    n_switches = int((table["status"] == "switch").sum())
+    assert calls[0] == (0, n_switches) and calls[-1] == (n_switches, n_switches)
+    done = [d for d, _ in calls]
+    assert done == sorted(done)

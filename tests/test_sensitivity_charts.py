@@ -67,3 +67,24 @@ def test_two_way_writes_actions_in_cells_and_stars_changed_policies():
 def test_chart_builders_name_missing_columns(builder):
     with pytest.raises(ValueError, match="lacks column"):
         builder(pd.DataFrame({"parameter": ["p"]}))
+
+
+def test_two_way_uses_letters_for_long_labels():
+    frame = pd.DataFrame(
+        {
+            "x_parameter": "p",
+            "x_value": [0.1, 0.2],
+            "y_parameter": "hr",
+            "y_value": [0.2, 0.2],
+            "action_at_start": ["s1: wait; s2: treat", "s1: treat; s2: treat"],
+            "same_as_base": [True, False],
+        }
+    )
+    spec = make_two_way_chart(frame).to_dict()
+    rows = spec["datasets"][spec["data"]["name"]]
+    assert [r["label"] for r in rows] == ["A", "B*"]
+    cells = spec["layer"][0]
+    assert cells["encoding"]["color"]["scale"]["domain"] == [
+        "A = s1: wait; s2: treat",
+        "B = s1: treat; s2: treat",
+    ]

@@ -361,10 +361,21 @@ def make_two_way_chart(
     actions = _ordered(frame, "action_at_start", action_order)
     colours = _cycle(ACTION_PALETTE, len(actions))
     dark = [a for a, c in zip(actions, colours, strict=True) if c in _DARK_FILLS]
+    # Long labels (several start states) become letters, explained in the legend.
+    if max(len(a) for a in actions) <= 8:
+        short = {a: a for a in actions}
+    else:
+        short = {a: chr(ord("A") + i) for i, a in enumerate(actions)}
+        frame = frame.assign(
+            action_at_start=frame["action_at_start"].map(lambda a: f"{short[a]} = {a}")
+        )
+        dark = [f"{short[a]} = {a}" for a in dark]
+        actions = [f"{short[a]} = {a}" for a in actions]
+        short = {a: a.split(" = ", 1)[0] for a in actions}
     data = frame.assign(
         x=frame["x_value"].map(lambda v: f"{v:.4g}"),
         y=frame["y_value"].map(lambda v: f"{v:.4g}"),
-        label=frame["action_at_start"].astype(str)
+        label=frame["action_at_start"].astype(str).map(short)
         + frame["same_as_base"].map({True: "", False: "*"}),
     )
     x_name, y_name = str(frame["x_parameter"].iloc[0]), str(frame["y_parameter"].iloc[0])
@@ -390,4 +401,228 @@ def make_two_way_chart(
     )
     return alt.layer(cells, text).properties(
         title=f"Best action at the start over {x_name} and {y_name} (* policy differs from base)"
+    )
+
+
+def make_ce_plane_chart(frame: pd.DataFrame, *, currency: str = "") -> alt.LayerChart:
+    """Cost-effectiveness plane: strategies by QALYs (x) and cost (y), frontier joined.
+
+    Parameters
+    ----------
+    frame : DataFrame
+        The incremental table of :func:`caredecide.compare.compare_strategies`:
+        ``strategy``, ``cost``, ``qalys`` (discounted, per person), ``status`` and
+        ``on_frontier``; an optional ``label`` column is written beside each point
+        (default: the strategy name). Status is shown by shape *and* colour, and named
+        in the legend.
+    currency : str
+        Currency label for the cost axis.
+    """
+    _require(frame, ["strategy", "cost", "qalys", "status", "on_frontier"], "CE plane chart")
+    data = frame.assign(
+        label=frame["label"] if "label" in frame.columns else frame["strategy"],
+        group=frame["status"].astype(str).str.extract(
+            r"^(on frontier|dominated|extendedly dominated|identical)", expand=False
+        ).fillna("other"),
+    )
+    groups = ["on frontier", "dominated", "extendedly dominated", "identical"]
+    base = alt.Chart(data).encode(
+        x=alt.X("qalys:Q", title="QALYs per person (discounted)", scale=alt.Scale(zero=False)),
+        y=alt.Y("cost:Q", title=f"Cost per person (discounted) {currency}".strip(),
+                scale=alt.Scale(zero=False)),
+    )
+    line = (
+        alt.Chart(data[data["on_frontier"]].sort_values("cost"))
+        .mark_line(color="#3F3F3F", strokeDash=[5, 3])
+        .encode(x="qalys:Q", y="cost:Q", order="cost:Q")
+    )
+    points = base.mark_point(size=70, filled=True, opacity=0.9).encode(
+        shape=alt.Shape("group:N", title="Status", legend=alt.Legend(orient="bottom"),
+                        scale=alt.Scale(domain=groups,
+                                        range=["circle", "cross", "triangle-up", "square"])),
+        color=alt.Color("group:N", title="Status", legend=alt.Legend(orient="bottom"),
+                        scale=alt.Scale(domain=groups, range=[ACTION_PALETTE[i] for i in
+                                                              (0, 1, 3, 4)])),
+        tooltip=["strategy:N", "status:N", alt.Tooltip("cost:Q", format=",.2f"),
+                 alt.Tooltip("qalys:Q", format=".4f")],
+    )
+    text = base.mark_text(align="left", dx=6, dy=-4, fontSize=9).encode(text="label:N")
+    return alt.layer(line, points, text).properties(
+        title="Cost-effectiveness plane (dashed: the efficient frontier)", width=520, height=360
+    )
+
+
+def make_frontier_chart(frame: pd.DataFrame, *, currency: str = "") -> alt.Chart:
+    """Which policy is optimal over which willingness-to-pay interval (one bar per policy).
+
+    Parameters
+    ----------
+    frame : DataFrame
+        The frontier table of :func:`caredecide.frontier.policy_frontier`: ``policy``
+        (label, one row per interval, in increasing WTP), ``wtp_from``, ``wtp_to``
+        (money per QALY) and optionally ``structure`` (the policy in words, in the
+        tooltip).
+    currency : str
+        Currency label for the axis.
+    """
+    _require(frame, ["policy", "wtp_from", "wtp_to"], "frontier chart")
+    tooltip = ["policy:N", alt.Tooltip("wtp_from:Q", format=",.2f"),
+               alt.Tooltip("wtp_to:Q", format=",.2f")]
+    if "structure" in frame.columns:
+        tooltip.append("structure:N")
+    return (
+        alt.Chart(frame)
+        .mark_bar(color=ACTION_PALETTE[0], height={"band": 0.8})
+        .encode(
+            x=alt.X("wtp_from:Q",
+                    title=f"Willingness to pay per QALY {currency}".strip()),
+            x2="wtp_to:Q",
+            y=alt.Y("policy:N", sort=list(dict.fromkeys(frame["policy"].astype(str))),
+                    title="Optimal policy"),
+            tooltip=tooltip,
+        )
+        .properties(title="Optimal policy by willingness to pay", width=520)
+    )
+
+
+# --- probabilistic analysis (PSA) charts ---------------------------------------------------
+
+
+def make_policy_acceptability_chart(frame: pd.DataFrame, *, action: str,
+                                    state_order: Sequence[str] | None = None) -> alt.LayerChart:
+    """Heat map: share of draws whose optimal policy takes ``action``, by state and age band.
+
+    Parameters
+    ----------
+    frame : DataFrame
+        :meth:`caredecide.uncertainty.psa.PSAResult.acceptability_by_age_band`: ``state``,
+        ``age_from``, ``age_to`` (years; NaN for an infinite horizon), ``action``,
+        ``share`` (0..1) and ``mc_se``.
+    action : str
+        The action whose share is shown (e.g. the treatment).
+    state_order : sequence of str, optional
+        Row order (default: order of first appearance).
+    """
+    _require(frame, ["state", "age_from", "age_to", "action", "share", "mc_se"],
+             "policy acceptability chart")
+    data = frame[frame["action"] == action].copy()
+    data["band"] = [
+        "any age" if pd.isna(a) else f"{a:g}-{b:g}"
+        for a, b in zip(data["age_from"], data["age_to"], strict=True)
+    ]
+    data["label"] = [f"{s:.0%}" for s in data["share"]]
+    states = _ordered(data, "state", state_order)
+    base = alt.Chart(data).encode(
+        x=alt.X("band:O", title="Age band (years at the start of the cycle)", sort=None,
+                axis=alt.Axis(labelAngle=0)),
+        y=alt.Y("state:N", title="Health state", sort=states),
+    )
+    cells = base.mark_rect(stroke="white", strokeWidth=0.5).encode(
+        color=alt.Color("share:Q", title=f"Share of draws: {action}",
+                        scale=alt.Scale(domain=[0, 1], scheme="blues")),
+        tooltip=["state:N", "band:O", alt.Tooltip("share:Q", format=".1%"),
+                 alt.Tooltip("mc_se:Q", title="Monte Carlo error", format=".1%")],
+    )
+    text = base.mark_text(fontSize=10).encode(
+        text="label:N",
+        color=alt.condition(alt.datum.share > 0.6, alt.value("white"), alt.value("black")),
+    )
+    return alt.layer(cells, text).properties(
+        title=f"How often '{action}' is optimal across the parameter draws",
+        height=alt.Step(28), width=alt.Step(52),
+    )
+
+
+def make_acceptability_curves_chart(curves: pd.DataFrame,
+                                    frontier: pd.DataFrame | None = None, *,
+                                    currency: str = "") -> alt.LayerChart:
+    """Acceptability curves of candidate policies, optionally with the frontier marked.
+
+    Parameters
+    ----------
+    curves : DataFrame
+        ``wtp``, ``strategy``, ``probability_cost_effective`` (one row per WTP and
+        candidate; :func:`caredecide.uncertainty.acceptability.acceptability_curve`).
+    frontier : DataFrame, optional
+        ``wtp``, ``strategy``, ``probability_cost_effective`` of the candidate with the
+        highest expected net benefit at each WTP (drawn as black dots).
+    currency : str
+        Currency label for the axis.
+    """
+    _require(curves, ["wtp", "strategy", "probability_cost_effective"],
+             "acceptability curves chart")
+    names = _ordered(curves, "strategy", None)
+    dashes = [[1, 0], [6, 3], [2, 2], [8, 3, 2, 3]]
+    x = alt.X("wtp:Q", title=f"Willingness to pay per QALY {currency}".strip())
+    y = alt.Y("probability_cost_effective:Q", title="Probability cost effective",
+              scale=alt.Scale(domain=[0, 1]))
+    lines = alt.Chart(curves).mark_line(strokeWidth=2).encode(
+        x=x, y=y,
+        color=alt.Color("strategy:N", title="Candidate policy", sort=names,
+                        scale=alt.Scale(domain=names, range=_cycle(ACTION_PALETTE, len(names))),
+                        legend=alt.Legend(orient="bottom", columns=1, labelLimit=400)),
+        strokeDash=alt.StrokeDash("strategy:N", sort=names, legend=None,
+                                  scale=alt.Scale(domain=names, range=_cycle(dashes, len(names)))),
+        tooltip=["strategy:N", alt.Tooltip("wtp:Q", format=",.0f"),
+                 alt.Tooltip("probability_cost_effective:Q", format=".1%")],
+    )
+    layers = [lines]
+    if frontier is not None:
+        _require(frontier, ["wtp", "strategy", "probability_cost_effective"],
+                 "acceptability frontier")
+        layers.append(alt.Chart(frontier).mark_point(filled=True, color="black", size=25).encode(
+            x=x, y=y, tooltip=["strategy:N", alt.Tooltip("wtp:Q", format=",.0f")]))
+    return alt.layer(*layers).properties(
+        title="Acceptability curves (dots: highest expected net benefit)", width=520, height=300
+    )
+
+
+def make_evppi_chart(frame: pd.DataFrame, *, unit: str = "") -> alt.LayerChart:
+    """EVPPI per parameter (or Dirichlet group), largest first, with +-1.96 s.e. whiskers.
+
+    Parameters
+    ----------
+    frame : DataFrame
+        :meth:`caredecide.uncertainty.psa.PSAResult.evppi`: ``parameter``, ``evppi`` and
+        ``mc_se`` (objective units per person).
+    unit : str
+        Unit label for the axis, e.g. ``"(money per person)"``.
+    """
+    _require(frame, ["parameter", "evppi", "mc_se"], "EVPPI chart")
+    data = frame.dropna(subset=["evppi"]).assign(
+        low=lambda f: f["evppi"] - 1.96 * f["mc_se"], high=lambda f: f["evppi"] + 1.96 * f["mc_se"]
+    )
+    order = list(data.sort_values("evppi", ascending=False)["parameter"])
+    y = alt.Y("parameter:N", sort=order, title="Parameter or group")
+    bars = alt.Chart(data).mark_bar(color=ACTION_PALETTE[0]).encode(
+        x=alt.X("evppi:Q", title=f"EVPPI per person {unit}".strip()), y=y,
+        tooltip=["parameter:N", alt.Tooltip("evppi:Q", format=",.2f"),
+                 alt.Tooltip("mc_se:Q", format=",.2f")],
+    )
+    whiskers = alt.Chart(data).mark_rule(color="#3F3F3F").encode(x="low:Q", x2="high:Q", y=y)
+    return alt.layer(bars, whiskers).properties(
+        title="Expected value of partial perfect information", width=480, height=alt.Step(22)
+    )
+
+
+def make_psa_convergence_chart(frame: pd.DataFrame) -> alt.FacetChart:
+    """Running mean with a 95% band against the number of draws, one panel per quantity.
+
+    Parameters
+    ----------
+    frame : DataFrame
+        :meth:`caredecide.uncertainty.psa.PSAResult.convergence`: ``quantity``, ``n``,
+        ``mean``, ``se``.
+    """
+    _require(frame, ["quantity", "n", "mean", "se"], "PSA convergence chart")
+    data = frame.assign(low=frame["mean"] - 1.96 * frame["se"],
+                        high=frame["mean"] + 1.96 * frame["se"])
+    x = alt.X("n:Q", title="Draws", scale=alt.Scale(type="log"))
+    band = alt.Chart().mark_area(opacity=0.3, color=ACTION_PALETTE[2]).encode(
+        x=x, y=alt.Y("low:Q", title="Running mean", scale=alt.Scale(zero=False)), y2="high:Q")
+    line = alt.Chart().mark_line(color=ACTION_PALETTE[0]).encode(x=x, y="mean:Q")
+    return alt.layer(band, line, data=data).properties(width=480, height=160).facet(
+        row=alt.Row("quantity:N", title=None)
+    ).resolve_scale(y="independent").properties(
+        title="Convergence of the running means (band: 95% Monte Carlo interval)"
     )

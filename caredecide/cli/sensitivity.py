@@ -136,33 +136,40 @@ def run_sensitivity(
         if two_way_pair:
             steps.append("two-way map")
         results: dict[str, pd.DataFrame] = {}
-        with progress("sensitivity", total=len(steps), quiet=quiet) as bar:
-            task = bar.add_task("sensitivity", total=len(steps))
+        with progress("{task.description}", total=len(steps), quiet=quiet) as bar:
+            tasks = {step: bar.add_task(step, total=None) for step in steps}
+
+            def report(step: str):
+                return lambda done, total: bar.update(tasks[step], completed=done, total=total)
+
             for step in steps:
-                bar.update(task, description=step)
                 if step == "one-way":
                     one = one_way(loaded, names, objective=objective)
                     results["oneway"] = one.table
                     results["policy_switches"] = one.switches
                 elif step == "parameter thresholds":
                     results["thresholds"] = parameter_thresholds(
-                        loaded, names, objective=objective, grid=grid
+                        loaded, names, objective=objective, grid=grid, progress=report(step)
                     )
                 elif step.startswith("willingness"):
                     high = wtp_max if wtp_max is not None else 2 * objective.willingness_to_pay
                     results["threshold_willingness_to_pay"] = setting_thresholds(
                         loaded, "willingness_to_pay", 0.0, high, objective=objective,
-                        grid=max(grid, 21),
+                        grid=max(grid, 21), progress=report(step),
                     )  # fmt: skip
                 elif step.startswith("discount"):
                     results["threshold_discount_rate"] = setting_thresholds(
                         loaded, "discount_rate", 0.0, discount_max, objective=objective,
-                        grid=max(grid, 21),
+                        grid=max(grid, 21), progress=report(step),
                     )  # fmt: skip
                 else:
                     x, y = two_way_pair
-                    results["twoway"] = two_way(loaded, x, y, grid=grid, objective=objective)
-                bar.advance(task)
+                    results["twoway"] = two_way(
+                        loaded, x, y, grid=grid, objective=objective, progress=report(step)
+                    )
+                finished = next(t for t in bar.tasks if t.id == tasks[step])
+                total = finished.total or 1
+                bar.update(tasks[step], completed=total, total=total)
 
     stdout.print(f"Objective: {objective.describe()}; model: {loaded.title}")
     stdout.print(_one_way_table(results["oneway"], objective.unit))

@@ -55,6 +55,8 @@ NO_RANGE = "no range (low = high)"
 SWITCH = "switch"
 
 DEFAULT_GRID = 11
+Progress = Callable[[int, int], None]
+"""``progress(done, total)``: brackets whose threshold is found, out of all brackets."""
 SolveAt = Callable[[np.ndarray, np.ndarray], tuple[Any, Any]]
 """``solve_at(x (n,), which (n,) int) -> (compiled, PolicyResult)``: quantity ``which[k]``
 set to ``x[k]`` in draw ``k``, everything else at base."""
@@ -69,6 +71,7 @@ def _locate_thresholds(
     grid: int = DEFAULT_GRID,
     xtol: float = 1e-12,
     maxiter: int = 200,
+    progress: Progress | None = None,
 ) -> pd.DataFrame:
     """The engine shared by parameters and settings (see the module docstring)."""
     check_grid(grid, "sensitivity.grid")
@@ -99,9 +102,13 @@ def _locate_thresholds(
         x_lo, x_hi = values[p, i], values[p, i + 1]
         f_lo = q[p, i, t, s, a_below] - q[p, i, t, s, a_above]
         f_hi = q[p, i + 1, t, s, a_below] - q[p, i + 1, t, s, a_above]
+        if progress is not None:
+            progress(0, p.size)
         x, f_x, converged, nit = _roots(
-            solve_at, p, t, s, a_below, a_above, x_lo, x_hi, f_lo, f_hi, xtol, maxiter
+            solve_at, p, t, s, a_below, a_above, x_lo, x_hi, f_lo, f_hi, xtol, maxiter, progress
         )
+        if progress is not None:
+            progress(p.size, p.size)
         third_better = np.zeros(p.size, dtype=bool)
         if q.shape[-1] > 2:  # is a third action better at the threshold? One more batch.
             _, at_root = solve_at(x, p)
@@ -148,6 +155,7 @@ def _roots(
     f_hi: np.ndarray,
     xtol: float,
     maxiter: int,
+    progress: Progress | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Vectorised bracketing root search of the action gap over all brackets at once."""
     x = np.where(f_lo == 0.0, x_lo, x_hi)  # an exact tie at a grid value is the threshold
@@ -169,12 +177,17 @@ def _roots(
             n = np.arange(k.size)
             return qv[n, t[k], s[k], a_below[k]] - qv[n, t[k], s[k], a_above[k]]
 
+        def report(state: Any) -> None:
+            done = int(converged.sum()) + int((np.asarray(state.status) != 1).sum())
+            progress(done, p.size)
+
         found = find_root(
             gap,
             (x_lo[open_], x_hi[open_]),
             args=(open_.astype(float),),
             tolerances={"xatol": xtol, "xrtol": 4 * np.finfo(float).eps, "fatol": 0.0},
             maxiter=maxiter,
+            callback=None if progress is None else report,
         )
         x[open_] = found.x
         f_x[open_] = found.f_x
@@ -229,6 +242,7 @@ def parameter_thresholds(
     objective: Objective | None = None,
     grid: int = DEFAULT_GRID,
     xtol: float = 1e-12,
+    progress: Progress | None = None,
 ) -> pd.DataFrame:
     """Parameter values at which the optimal action switches, per decision cell.
 
@@ -243,6 +257,8 @@ def parameter_thresholds(
         Grid values per parameter used to bracket switches (>= 2).
     xtol : float
         Absolute tolerance on the threshold (parameter units).
+    progress : callable(done, total), optional
+        Called as brackets converge (thresholds found out of brackets).
 
     Returns
     -------
@@ -262,7 +278,13 @@ def parameter_thresholds(
         return solve_parameter_sets(model, frame, objective)
 
     table = _locate_thresholds(
-        solve_at, names, ranges["low"].to_numpy(), ranges["high"].to_numpy(), grid=grid, xtol=xtol
+        solve_at,
+        names,
+        ranges["low"].to_numpy(),
+        ranges["high"].to_numpy(),
+        grid=grid,
+        xtol=xtol,
+        progress=progress,
     )
     table["base"] = table["quantity"].map(dict(zip(names, ranges["base"], strict=True)))
     return table.rename(columns={"quantity": "parameter"})
@@ -290,6 +312,7 @@ def setting_thresholds(
     objective: Objective | None = None,
     grid: int = 21,
     xtol: float = 1e-10,
+    progress: Progress | None = None,
 ) -> pd.DataFrame:
     """Values of a setting at which the optimal action switches.
 
@@ -303,7 +326,7 @@ def setting_thresholds(
         Range searched (money per QALY, or annual rate in [0, 1)).
     objective : Objective, optional
         Default: the model file's objective.
-    grid, xtol
+    grid, xtol, progress
         As in :func:`parameter_thresholds`.
 
     Returns
@@ -368,7 +391,13 @@ def setting_thresholds(
             file=source_file(model),
         )
     table = _locate_thresholds(
-        solve_at, [setting], np.array([low]), np.array([high]), grid=grid, xtol=xtol
+        solve_at,
+        [setting],
+        np.array([low]),
+        np.array([high]),
+        grid=grid,
+        xtol=xtol,
+        progress=progress,
     )
     table["base"] = float(base)
     return table.rename(columns={"quantity": "setting"})

@@ -2,18 +2,21 @@
 
 The ``N x N`` grid of (x, y) values, every other estimate at base (Dirichlet group
 mates rescaled, ``rest`` rows recomputed, see :mod:`.variation`), is ONE batch through
-the common compile -> solve path. At each grid point: the optimal action at the
+the common batch driver (:func:`caredecide.batch.solve_batch`: compile -> solve, chunked
+within a memory budget). At each grid point: the optimal action at the
 starting state(s) (cycle 0), the objective at the model start, and the policy's
 structure summary (:mod:`caredecide.structure`).
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
+from caredecide.batch import solve_batch
 from caredecide.errors import ModelError, Problem
 from caredecide.objective import Objective
 from caredecide.sensitivity.variation import (
@@ -23,7 +26,6 @@ from caredecide.sensitivity.variation import (
     parameter_sets,
     solve_parameter_sets,
     source_file,
-    start_values,
 )
 
 
@@ -36,6 +38,7 @@ def two_way(
     objective: Objective | None = None,
     x_range: tuple[float, float] | None = None,
     y_range: tuple[float, float] | None = None,
+    progress: Callable[[int, int], None] | None = None,
 ) -> pd.DataFrame:
     """The optimal decision at the start over a grid of two parameters.
 
@@ -50,6 +53,8 @@ def two_way(
         Default: the model file's objective.
     x_range, y_range : (float, float), optional
         Override the plausible ranges.
+    progress : callable(done, total), optional
+        Called after each chunk of grid points is solved.
 
     Returns
     -------
@@ -57,8 +62,8 @@ def two_way(
         (grid * grid rows): ``x_parameter, x_value, y_parameter, y_value,
         action_at_start`` (the action at cycle 0 in the start state; with several
         start states ``"state: action; ..."``), ``start_value`` (objective at the model
-        start), ``structure`` (plain-language policy summary) and ``base_structure``
-        equality flag ``same_as_base``.
+        start), ``structure`` (plain-language policy summary) and ``same_as_base``
+        (the whole policy equals the base-case policy).
     """
     if x_parameter == y_parameter:
         raise ModelError(
@@ -79,27 +84,39 @@ def two_way(
         )
         axes.append(np.linspace(float(low), float(high), grid))
     X, Y = np.meshgrid(axes[0], axes[1], indexing="xy")  # (grid, grid): rows y, columns x
-    frame = pd.concat(
-        [
-            parameter_sets(model, {}),
-            parameter_sets(model, {x_parameter: X.ravel(), y_parameter: Y.ravel()}),
-        ],
-        ignore_index=True,
+    base_compiled, base = solve_parameter_sets(model, parameter_sets(model, {}), objective)
+    start = np.asarray(base_compiled.start_distribution)
+    starts = np.flatnonzero(start > 0)
+
+    def per_chunk(chunk_start: int, stop: int, result: Any, outcome: Any) -> dict[str, Any]:
+        policy = np.asarray(result.policy)  # (chunk, Tpi, S)
+        return {
+            "first": policy[:, 0, starts],
+            "value": result.expected_value(start),
+            "same": (policy == base.policy[:1]).all(axis=(1, 2)),
+            # Text summaries are per grid point by nature (the maths is one batch).
+            "structure": [str(result.structure(draw=k)) for k in range(policy.shape[0])],
+        }
+
+    # The batch driver compiles and solves the grid chunk by chunk within a memory budget.
+    batch = solve_batch(
+        model,
+        parameter_sets(model, {x_parameter: X.ravel(), y_parameter: Y.ravel()}),
+        objective,
+        keep=(),
+        reduce=per_chunk,
+        progress=progress,
     )
-    compiled, result = solve_parameter_sets(model, frame, objective)
-    policy = np.asarray(result.policy)  # (1 + N^2, Tpi, S)
-    starts = np.flatnonzero(np.asarray(compiled.start_distribution) > 0)
-    state_ids = np.asarray(compiled.state_ids, dtype=object)
-    action_ids = np.asarray(compiled.action_ids, dtype=object)
-    first = action_ids[policy[1:, 0, starts]]  # (N^2, n_start)
+    chunks = batch.reductions
+    first = np.concatenate([c["first"] for c in chunks])  # (N^2, n_start)
+    state_ids = np.asarray(base_compiled.state_ids, dtype=object)
+    action_ids = np.asarray(base_compiled.action_ids, dtype=object)
+    names = action_ids[first]
     if starts.size == 1:
-        action_at_start = first[:, 0]
+        action_at_start = names[:, 0]
     else:
-        labelled = np.char.add(np.char.add(state_ids[starts].astype(str), ": "), first.astype(str))
+        labelled = np.char.add(np.char.add(state_ids[starts].astype(str), ": "), names.astype(str))
         action_at_start = np.array(["; ".join(row) for row in labelled], dtype=object)
-    same = (policy[1:] == policy[:1]).all(axis=(1, 2))
-    # Text summaries are per grid point by nature (the maths above is one batch).
-    structure = [str(result.structure(draw=k)) for k in range(1, policy.shape[0])]
     return pd.DataFrame(
         {
             "x_parameter": x_parameter,
@@ -107,8 +124,8 @@ def two_way(
             "y_parameter": y_parameter,
             "y_value": Y.ravel(),
             "action_at_start": action_at_start,
-            "start_value": start_values(compiled, result)[1:],
-            "structure": structure,
-            "same_as_base": same,
+            "start_value": np.concatenate([c["value"] for c in chunks]),
+            "structure": [text for c in chunks for text in c["structure"]],
+            "same_as_base": np.concatenate([c["same"] for c in chunks]),
         }
     )
