@@ -1,0 +1,216 @@
+"""``caredecide uncertainty MODEL``: probabilistic sensitivity analysis and value of information."""
+
+from __future__ import annotations
+
+import json
+import math
+from pathlib import Path
+from typing import Annotated
+
+import pandas as pd
+import typer
+from rich.table import Table
+
+from caredecide.cli.common import print_caution, progress, stderr, stdout, user_errors
+
+
+def _number(value: float, digits: str = ",.2f") -> str:
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return ""
+    return format(value, digits)
+
+
+def _loss_table(frame: pd.DataFrame, unit: str) -> Table:
+    out = Table(title=f"Candidate policies: expected value and expected loss ({unit} per person)")
+    for column in ("candidate", "origin", "expected value", "expected loss", "MC s.e."):
+        out.add_column(column, justify="left" if column in ("candidate", "origin") else "right")
+    for row in frame.itertuples():
+        out.add_row(row.candidate, row.origin, _number(row.expected_value),
+                    _number(row.expected_loss), _number(row.mc_se))
+    return out
+
+
+def _evppi_table(frame: pd.DataFrame, unit: str) -> Table:
+    out = Table(title=f"EVPPI by parameter, regression method ({unit} per person)")
+    for column in ("parameter", "EVPPI", "MC s.e.", "share of EVPI", "note"):
+        out.add_column(column, justify="left" if column in ("parameter", "note") else "right")
+    for row in frame.itertuples():
+        out.add_row(row.parameter, _number(row.evppi), _number(row.mc_se),
+                    _number(row.share_of_evpi, ".1%"), str(row.message or ""))
+    return out
+
+
+def _acceptability_table(frame: pd.DataFrame, action: str) -> Table:
+    data = frame[frame["action"] == action]
+    bands = list(dict.fromkeys(zip(data["age_from"], data["age_to"], strict=True)))
+    out = Table(title=f"Share of draws in which '{action}' is optimal, by state and age band")
+    out.add_column("state", no_wrap=True)
+    for low, high in bands:
+        out.add_column("any age" if pd.isna(low) else f"{low:g}-{high:g}", justify="right")
+    for state, rows in data.groupby("state", sort=False):
+        out.add_row(state, *(f"{s:.0%}" for s in rows["share"]))
+    return out
+
+
+def run_uncertainty(
+    model: Annotated[
+        Path,
+        typer.Argument(help="Model file (TOML).", exists=True, dir_okay=False, readable=True),
+    ],
+    draws: Annotated[int, typer.Option("--draws", min=1, help="Parameter draws.")] = 1000,
+    seed: Annotated[int, typer.Option("--seed", min=0, help="Seed: same seed, same draws.")] = 1,
+    workers: Annotated[
+        int | None,
+        typer.Option("--workers", min=1, help="Run on a local Dask cluster of K processes."),
+    ] = None,
+    scheduler: Annotated[
+        str | None,
+        typer.Option("--scheduler", help="Run on the Dask scheduler at ADDRESS (tcp://HOST:PORT)."),
+    ] = None,
+    chunk_size: Annotated[
+        int | None,
+        typer.Option("--chunk-size", min=1, help="Draws per chunk (default: from memory)."),
+    ] = None,
+    wtp_range: Annotated[
+        tuple[float, float] | None,
+        typer.Option("--wtp-range", help="Willingness-to-pay range LO HI for the curves."),
+    ] = None,
+    band_years: Annotated[
+        float, typer.Option("--band-years", min=0.01, help="Width of the age bands (years).")
+    ] = 5.0,
+    out: Annotated[
+        Path | None,
+        typer.Option("--out", help="Folder for CSV (and Parquet) tables and charts (SVG, PNG)."),
+    ] = None,
+    quiet: Annotated[
+        bool, typer.Option("--quiet", help="No caution or progress on stderr.")
+    ] = False,
+) -> None:
+    """Probabilistic sensitivity analysis of the timing policy: acceptability by state and
+    age, expected loss of each candidate policy, acceptability curves, EVPI and EVPPI.
+
+    Draws depend only on the seed, so the results are the same whatever the chunk size
+    and whether the run is local or on a Dask cluster.
+    """
+    print_caution(quiet)
+    if workers is not None and scheduler is not None:
+        stderr.print("[bold red]error:[/] give --workers or --scheduler, not both")
+        raise typer.Exit(code=2)
+    with user_errors():
+        from caredecide.modelfile import load_model
+        from caredecide.uncertainty.psa import run_psa
+
+        loaded = load_model(model)
+        with progress("solving draws", total=draws, quiet=quiet) as bar:
+            task = bar.add_task("solving draws", total=draws)
+
+            def advance(done: int, total: int) -> None:
+                bar.update(task, completed=done)
+
+            options = dict(chunk_size=chunk_size, wtp_range=wtp_range, progress=advance)
+            if workers is None and scheduler is None:
+                result = run_psa(loaded, draws, seed, **options)
+            else:
+                from caredecide.uncertainty.cluster import dask_client, dask_map
+
+                with dask_client(scheduler, workers) as client:
+                    result = run_psa(loaded, draws, seed, map_chunks=dask_map(client), **options)
+        tables = _tables(result, band_years)
+
+    unit = result.objective.unit
+    info = result.evpi()
+    stdout.print(f"Model: {loaded.title}; objective: {result.objective.describe()}; "
+                 f"{result.n_draws:,} draws, seed {result.seed}")
+    treat = _shown_action(result)
+    stdout.print(_acceptability_table(tables["acceptability_by_age_band"], treat))
+    stdout.print(_loss_table(tables["expected_loss"], unit))
+    stdout.print(
+        f"EVPI of the timing decision: {info['evpi']:,.2f} (MC s.e. {info['mc_se']:,.2f}) "
+        f"{unit} per person - an upper bound, as the best policy is sought among the "
+        f"candidates only (best: {info['best_candidate']}). Among the candidates alone: "
+        f"{info['evpi_among_candidates']:,.2f} (s.e. {info['mc_se_among_candidates']:,.2f})."
+    )
+    share = result.distinct_counts[0] / result.n_draws
+    stdout.print(f"{len(result.distinct_counts):,} distinct optimal policies across the draws; "
+                 f"the most frequent is optimal in {share:.1%} of them.")
+    if len(tables["evppi"]):
+        stdout.print(_evppi_table(tables["evppi"], unit))
+    else:
+        stdout.print("EVPPI not computed: it needs at least 200 draws and two candidates.")
+    if not result.success:
+        stderr.print("[bold yellow]warning:[/] the solver reported a problem: "
+                     + "; ".join(result.messages))
+    if out is not None:
+        with user_errors():
+            _write_outputs(out, result, tables, treat, quiet)
+
+
+def _shown_action(result) -> str:
+    """The action whose acceptability is shown: the first one other than the model's first."""
+    return result.action_ids[1] if len(result.action_ids) > 1 else result.action_ids[0]
+
+
+def _tables(result, band_years: float) -> dict[str, pd.DataFrame]:
+    return {
+        "acceptability_by_cycle": result.acceptability(),
+        "acceptability_by_age_band": result.acceptability_by_age_band(band_years),
+        "expected_loss": result.expected_loss(),
+        "acceptability_curves": result.acceptability_curves(),
+        "acceptability_frontier": result.acceptability_frontier(),
+        "evppi": result.evppi(),
+        "convergence": result.convergence(),
+        "policy_frequencies": result.policy_frequencies(),
+        "candidates": result.candidates_frame(),
+        "draws": result.draws_frame(),
+    }
+
+
+def _write_outputs(out: Path, result, tables: dict[str, pd.DataFrame], action: str,
+                   quiet: bool) -> None:
+    from ui.charts import (
+        make_acceptability_curves_chart,
+        make_evppi_chart,
+        make_policy_acceptability_chart,
+        make_psa_convergence_chart,
+    )
+
+    out.mkdir(parents=True, exist_ok=True)
+    written = []
+    try:
+        import pyarrow  # noqa: F401
+
+        parquet = True
+    except ImportError:
+        parquet = False
+    for name, frame in tables.items():
+        path = out / f"{name}.csv"
+        frame.to_csv(path, index=False)
+        written.append(path)
+        if parquet:
+            frame.to_parquet(out / f"{name}.parquet", index=False)
+            written.append(out / f"{name}.parquet")
+    summary = out / "summary.json"
+    summary.write_text(json.dumps(result.summary(), indent=2, default=float) + "\n")
+    written.append(summary)
+    unit = f"({result.objective.unit})"
+    charts = {
+        "acceptability_by_state": make_policy_acceptability_chart(
+            tables["acceptability_by_age_band"], action=action),
+        "acceptability_curves": make_acceptability_curves_chart(
+            tables["acceptability_curves"], tables["acceptability_frontier"]),
+        "convergence": make_psa_convergence_chart(tables["convergence"]),
+    }
+    if len(tables["evppi"]):
+        charts["evppi"] = make_evppi_chart(tables["evppi"], unit=unit)
+    for stem, chart in charts.items():
+        for suffix, options in ((".svg", {}), (".png", {"scale_factor": 2})):
+            path = out / f"{stem}{suffix}"
+            chart.save(str(path), **options)
+            written.append(path)
+    if not quiet:
+        stderr.print(f"Wrote {len(written)} files to {out}")
+
+
+def register(app: typer.Typer) -> None:
+    """Add the ``uncertainty`` command to the root CLI."""
+    app.command("uncertainty", no_args_is_help=True)(run_uncertainty)
