@@ -53,7 +53,8 @@ class ComparisonResult:
         strategy, kind, description, cost, qalys, life_years (discounted to the model
         start, per person), their ``*_undiscounted`` twins, notes (fallbacks made),
         status, reference, incremental_cost, incremental_qalys, icer, on_frontier,
-        net_monetary_benefit, best_at_wtp.
+        net_monetary_benefit, best_at_wtp, label (for charts: blank for the policies of
+        a WTP range).
     frontier : pandas.DataFrame or None
         The policy frontier over the WTP range (:class:`caredecide.frontier.PolicyFrontier`
         ``.table`` plus ``strategy``, the row name in ``table``); None without a range.
@@ -202,8 +203,7 @@ def compare_strategies(
             if np.array_equal(policy, resolved[0].policy):
                 names.append(optimal_name)
                 continue
-            name = (f"optimal {row['policy']} (WTP {row['wtp_from']:,.0f}-"
-                    f"{row['wtp_to']:,.0f})")
+            name = f"optimal {row['policy']}"  # its WTP interval is in the frontier table
             names.append(name)
             resolved.append(StrategyPolicy(
                 Strategy(name, "computed", policy=policy, description=(
@@ -217,6 +217,9 @@ def compare_strategies(
     totals.loc[0, "kind"] = KIND_OPTIMAL
     totals.loc[totals["description"].str.startswith(KIND_FRONTIER), "kind"] = KIND_FRONTIER
     table = incremental_analysis(totals, willingness_to_pay=wtp)
+    # Chart label: fixed strategies and the optimal policy by name; the many policies of a
+    # WTP range stay unlabelled on a plane (they are listed in the frontier table).
+    table["label"] = table["strategy"].where(table["kind"] != KIND_FRONTIER, "")
     traces = _traces(outcome, index, [r.strategy.name for r in resolved])
     return ComparisonResult(
         table=table, frontier=frontier, switches=switches, traces=traces,

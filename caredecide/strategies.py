@@ -373,7 +373,8 @@ def _resolve_table(compiled: CompiledModel, strategy: Strategy) -> StrategyPolic
         notes.append(f"'{compiled.action_ids[a]}' is not allowed in "
                      f"{', '.join(_describe_cells(compiled, cells))}: the first allowed action "
                      "is taken there")
-    uncovered = ~covered & live[None, :]
+    # Only states with a choice: where one action is allowed there is nothing to cover.
+    uncovered = ~covered & (live & (compiled.allowed.sum(axis=1) > 1))[None, :]
     if uncovered.any():
         notes.append(f"no row covers {', '.join(_describe_cells(compiled, uncovered))}: the "
                      "first allowed action is taken there")

@@ -1,0 +1,163 @@
+"""``caredecide compare MODEL``: the optimal policy against fixed strategies (Cantor table)."""
+
+from __future__ import annotations
+
+import re
+from contextlib import nullcontext
+from pathlib import Path
+from typing import Annotated
+
+import typer
+from rich.table import Table
+
+from caredecide.cli.common import print_caution, stderr, stdout, user_errors
+
+TABLE_FILE = "strategies.csv"
+FRONTIER_FILE = "frontier.csv"
+SWITCHES_FILE = "switch_points.csv"
+TRACES_FOLDER = "traces"
+
+
+def trace_file_name(index: int, strategy: str) -> str:
+    """File name of a strategy's trace: ``01_never-treat.csv`` (row order, safe characters)."""
+    slug = re.sub(r"[^A-Za-z0-9]+", "-", strategy).strip("-").lower()[:60] or "strategy"
+    return f"{index + 1:02d}_{slug}.csv"
+
+
+def _money(value: float) -> str:
+    return "" if value != value else f"{value:,.0f}"  # NaN -> blank
+
+
+def _print_table(result, currency: str) -> None:
+    table = Table(title=f"Strategies at {result.willingness_to_pay:,.0f} {currency} per QALY "
+                        "(discounted, per person; sorted by cost)".replace("  ", " "))
+    for column, justify in (("strategy", "left"), ("cost", "right"), ("QALYs", "right"),
+                            ("incr. cost", "right"), ("incr. QALYs", "right"),
+                            ("ICER", "right"), ("NMB", "right"), ("status", "left")):
+        table.add_column(column, justify=justify)
+    for _, row in result.table.iterrows():  # display rows
+        best = " (best)" if row["best_at_wtp"] else ""
+        table.add_row(
+            f"{row['strategy']}{best}", f"{row['cost']:,.0f}", f"{row['qalys']:.4f}",
+            _money(row["incremental_cost"]),
+            "" if row["incremental_qalys"] != row["incremental_qalys"]
+            else f"{row['incremental_qalys']:.4f}",
+            _money(row["icer"]), f"{row['net_monetary_benefit']:,.0f}", str(row["status"]),
+        )
+    stdout.print(table)
+    stdout.print(f"Best at {result.willingness_to_pay:,.0f} per QALY: {result.best_strategy}")
+
+
+def _print_frontier(result) -> None:
+    table = Table(title="Optimal policy over the willingness-to-pay range")
+    for column in ("policy", "WTP from", "WTP to", "cost", "QALYs", "found by"):
+        table.add_column(column)
+    for _, row in result.frontier.iterrows():  # display rows
+        table.add_row(row["policy"], f"{row['wtp_from']:,.2f}", f"{row['wtp_to']:,.2f}",
+                      f"{row['cost']:,.0f}", f"{row['qalys']:.4f}", row["found_by"])
+    stdout.print(table)
+    frontier = result.frontier_result
+    stdout.print(f"{len(result.frontier)} optimal policies, {len(result.switches)} switch "
+                 f"point(s); {frontier.n_solves} WTP values solved ({len(frontier.grid)} on the "
+                 f"grid, the rest at crossings, {frontier.rounds} round(s)). Each policy in "
+                 f"words: column 'structure' of {FRONTIER_FILE} (--out).")
+
+
+def _save_chart(chart, out: Path, stem: str) -> list[Path]:
+    paths = [out / f"{stem}.svg", out / f"{stem}.png"]
+    chart.save(str(paths[0]))
+    chart.save(str(paths[1]), scale_factor=2)
+    return paths
+
+
+def write_outputs(out: Path, result, currency: str = "") -> list[Path]:
+    """CSV files (table, frontier, switch points, one trace per strategy) and charts."""
+    from ui.charts import make_ce_plane_chart, make_frontier_chart
+
+    out.mkdir(parents=True, exist_ok=True)
+    written = [out / TABLE_FILE]
+    result.table.to_csv(written[0], index=False)
+    if result.frontier is not None:
+        result.frontier.to_csv(out / FRONTIER_FILE, index=False)
+        result.switches.to_csv(out / SWITCHES_FILE, index=False)
+        written += [out / FRONTIER_FILE, out / SWITCHES_FILE]
+    folder = out / TRACES_FOLDER
+    folder.mkdir(exist_ok=True)
+    for index, (name, trace) in enumerate(result.traces.groupby("strategy", sort=False)):
+        path = folder / trace_file_name(index, str(name))
+        trace.drop(columns="strategy").to_csv(path, index=False)
+        written.append(path)
+    written += _save_chart(make_ce_plane_chart(result.table, currency=currency), out, "ce_plane")
+    if result.frontier is not None:
+        written += _save_chart(make_frontier_chart(result.frontier, currency=currency), out,
+                               "frontier")
+    return written
+
+
+def compare_command(
+    model: Annotated[Path, typer.Argument(help="Model file (TOML).", dir_okay=False)],
+    strategies: Annotated[
+        Path | None,
+        typer.Option("--strategies", dir_okay=False,
+                     help="Strategy table (CSV: strategy, state, age_from, age_to, action); "
+                          "default: <model>.strategies.csv beside the model, if any."),
+    ] = None,
+    wtp: Annotated[
+        float | None,
+        typer.Option("--wtp", min=0.0, help="Willingness to pay per QALY (default: the "
+                                            "model's)."),
+    ] = None,
+    wtp_range: Annotated[
+        tuple[float, float] | None,
+        typer.Option("--wtp-range", help="Also find the optimal policy for every WTP in "
+                                         "[LO, HI], with exact switch points."),
+    ] = None,
+    grid: Annotated[
+        int, typer.Option("--grid", min=2, max=1001, help="WTP grid values solved first.")
+    ] = 21,
+    out: Annotated[
+        Path | None,
+        typer.Option("--out", file_okay=False,
+                     help="Folder for CSV files (table, frontier, traces) and CE-plane charts."),
+    ] = None,
+    quiet: Annotated[bool, typer.Option("--quiet", help="No progress or notes on stderr.")] = False,
+) -> None:
+    """Compare the optimal policy with fixed strategies (research use only)."""
+    from caredecide.compare import compare_strategies
+    from caredecide.modelfile import load_model
+
+    print_caution(False)  # the caution is always shown, whatever --quiet says
+    with user_errors():
+        with stderr.status("Solving and evaluating...", spinner="dots") if not quiet \
+                else nullcontext() as status:
+            loaded = load_model(model)
+
+            def progress(round_number: int, brackets: int) -> None:
+                if status is not None:
+                    status.update(f"Refining switch points: round {round_number}, "
+                                  f"{brackets} interval(s) left")
+
+            result = compare_strategies(
+                loaded, strategies, wtp,
+                tuple(wtp_range) if wtp_range is not None else None, grid=grid,
+                progress=progress,
+            )
+        currency = loaded.settings.currency
+        _print_table(result, currency)
+        if result.frontier is not None:
+            _print_frontier(result)
+        if not quiet:
+            for note in result.notes:
+                stderr.print(f"note: {note}")
+            for item in result.resolved:
+                for note in item.notes:
+                    stderr.print(f"note ({item.strategy.name}): {note}")
+        if out is not None:
+            written = write_outputs(out, result, currency)
+            if not quiet:
+                stderr.print(f"Wrote {len(written)} files to {out}")
+
+
+def register(app: typer.Typer) -> None:
+    """Add the ``compare`` command to the root CLI."""
+    app.command("compare", no_args_is_help=True)(compare_command)
