@@ -21,6 +21,8 @@ VIEWS = [
             url_path="convergence"),
     st.Page("views/sensitivity.py", title="Sensitivity", icon=":material/tune:",
             url_path="sensitivity"),
+    st.Page("views/uncertainty.py", title="Uncertainty", icon=":material/casino:",
+            url_path="uncertainty"),
 ]
 
 page = st.navigation(VIEWS)

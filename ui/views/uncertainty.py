@@ -1,0 +1,86 @@
+"""Uncertainty view: how often each action is optimal across parameter draws, the expected
+loss of candidate policies, acceptability curves, EVPI and EVPPI (all computed by
+caredecide.uncertainty.psa)."""
+
+from __future__ import annotations
+
+import streamlit as st
+
+from caredecide.errors import CaredecideError
+from caredecide.modelfile import loads_model
+from caredecide.uncertainty.psa import run_psa
+from ui import charts, common
+
+MAX_APP_DRAWS = 20_000
+
+
+@st.cache_data(max_entries=8, show_spinner=False)
+def run_analysis(text: str, file: str, base_dir: str, draws: int, seed: int):
+    model = loads_model(text, file=file, base_dir=base_dir)
+    return run_psa(model, draws, seed)
+
+
+model = common.valid_model_or_stop()
+settings = model.settings
+key = (common.working_text(), common.file_label(), common.base_folder())
+unit = "QALYs" if settings.objective == "qalys" else (settings.currency or "money")
+st.title("Uncertainty")
+st.caption(
+    "Every parameter with a distribution is drawn at random (Dirichlet groups jointly); each "
+    "draw is solved for its own optimal policy, and the candidate policies one could adopt "
+    "today are valued on every draw. The same seed gives the same draws."
+)
+left, right = st.columns(2)
+draws = left.number_input("Draws", min_value=10, max_value=MAX_APP_DRAWS, value=300, step=100,
+                          key="uncertainty_draws")
+seed = right.number_input("Seed", min_value=0, value=1, step=1, key="uncertainty_seed")
+
+try:
+    with st.spinner(f"Solving {int(draws):,} draws (compile -> solve -> evaluate, in chunks)..."):
+        result = run_analysis(*key, int(draws), int(seed))
+except CaredecideError as error:
+    st.error(str(error), icon=":material/error:")
+    st.stop()
+
+info = result.evpi()
+first, second, third = st.columns(3)
+first.metric(f"EVPI of the timing decision ({unit} per person)", f"{info['evpi']:,.2f}",
+             help="An upper bound: the best policy is sought among the candidates only.")
+second.metric("Monte Carlo standard error", f"{info['mc_se']:,.2f}")
+third.metric("Best candidate policy", info["best_candidate"])
+if not result.success:
+    st.warning("The solver reported a problem: " + "; ".join(result.messages))
+
+st.subheader("How often each action is optimal")
+actions = list(result.action_ids)
+shown = st.selectbox("Action", actions, index=min(1, len(actions) - 1),
+                     key="uncertainty_action")
+band = st.slider("Age band (years)", 1, 20, 5, key="uncertainty_band")
+bands = result.acceptability_by_age_band(float(band))
+st.altair_chart(charts.make_policy_acceptability_chart(bands, action=shown),
+                key="uncertainty_acceptability_chart")
+with st.expander("Shares per cycle with Monte Carlo errors"):
+    st.dataframe(result.acceptability(), hide_index=True, key="uncertainty_acceptability_table")
+
+st.subheader("Candidate policies: expected loss")
+st.dataframe(result.expected_loss(), hide_index=True, key="uncertainty_loss_table")
+
+st.subheader("Acceptability curves")
+st.altair_chart(
+    charts.make_acceptability_curves_chart(result.acceptability_curves(),
+                                           result.acceptability_frontier(),
+                                           currency=settings.currency or ""),
+    key="uncertainty_curves_chart",
+)
+
+st.subheader("Expected value of partial perfect information")
+evppi = result.evppi()
+if len(evppi):
+    st.altair_chart(charts.make_evppi_chart(evppi, unit=f"({unit})"), key="uncertainty_evppi")
+    st.dataframe(evppi, hide_index=True, key="uncertainty_evppi_table")
+else:
+    st.info("EVPPI needs at least 200 draws and two distinct candidate policies.")
+
+st.subheader("Convergence")
+st.altair_chart(charts.make_psa_convergence_chart(result.convergence()),
+                key="uncertainty_convergence")
