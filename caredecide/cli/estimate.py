@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from contextlib import nullcontext
 from enum import StrEnum
 from pathlib import Path
 from typing import Annotated
@@ -137,7 +138,12 @@ def register(app: typer.Typer) -> None:
                         "were left out; use --method panel for irregular visits"
                     )
             else:
-                with stderr.status("fitting rates by maximum likelihood", spinner="dots"):
+                status = (
+                    nullcontext()
+                    if quiet
+                    else stderr.status("fitting rates by maximum likelihood", spinner="dots")
+                )
+                with status:
                     results = [
                         estimate_panel(
                             records,

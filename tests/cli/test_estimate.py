@@ -150,3 +150,10 @@ def test_missing_file_exits_with_its_name():
     result = runner.invoke(app, ["estimate", "no_such_visits.csv"])
     assert result.exit_code == 2
     assert "no_such_visits.csv" in result.stderr
+
+
+def test_quiet_prints_only_the_results():
+    result = runner.invoke(app, ["estimate", VISITS, "--patients", PATIENTS, "--csv", "-q"])
+    assert result.exit_code == 0
+    assert result.stderr == ""
+    assert result.stdout.startswith("parameter,estimate,se_log,low,high")
