@@ -34,8 +34,9 @@ def citations(text: str) -> set[str]:
 
 
 def libraries(text: str) -> set[str]:
-    """Reference libraries named in ``text``."""
-    return {name for name in LIBRARIES if re.search(rf"\b{name}\b", text)}
+    """Reference libraries imported or called in ``text`` (``import x``, ``x.attr``)."""
+    return {name for name in LIBRARIES
+            if re.search(rf"\b(?:import|from)\s+{name}\b|\b{name}\.\w", text)}
 
 
 def sections(markdown: str) -> dict[str, str]:
@@ -62,7 +63,9 @@ def test_the_citation_pattern_reads_the_usual_forms():
                                "Homan 1994", "Garcia-Mochon 2017", "Büyükkaramikli 2019"}
     assert libraries("from quantecon.markov import DiscreteDP; import scipy.linalg") == {
         "quantecon", "scipy"}
-    assert libraries("scipyish quantecons") == set()
+    assert libraries("checked with `scipy.stats.beta`") == {"scipy"}
+    # A package name in a list of versions is not a reference computation.
+    assert libraries('versions = {"numpy", "scipy"}; scipyish quantecons') == set()
 
 
 def test_sections_split_validation_md_by_test_file():
