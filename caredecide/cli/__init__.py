@@ -23,6 +23,9 @@ COMMAND_MODULES: tuple[str, ...] = (
     "uncertainty",
     "compare",
     "estimate",
+    "report",
+    "verify",
+    "rerun",
     "app",
 )
 

@@ -1,0 +1,64 @@
+"""``caredecide report MODEL --out report.html``: one self-contained HTML report, every
+result table as CSV plus an XLSX workbook, and a run record for ``caredecide rerun``."""
+
+from __future__ import annotations
+
+import shlex
+import sys
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+from caredecide.cli.common import print_caution, progress, stderr, stdout, user_errors
+
+
+@contextmanager
+def step_progress(name: str, total: int, quiet: bool) -> Iterator[Callable[[int, int, str], None]]:
+    """A rich progress bar on stderr and its ``(done, total, step)`` callback."""
+    with progress(name, total=total, quiet=quiet) as bar:
+        task = bar.add_task(name, total=total)
+        yield lambda done, total, step: bar.update(task, completed=done, total=total,
+                                                   description=step)
+
+
+def report_command(
+    model: Annotated[Path, typer.Argument(help="Model file (TOML).", dir_okay=False)],
+    out: Annotated[
+        Path, typer.Option("--out", help="HTML report to write; tables and the run record "
+                           "go beside it.", dir_okay=False)
+    ] = Path("report.html"),
+    draws: Annotated[
+        int | None,
+        typer.Option("--draws", min=1, help="Parameter draws for the probabilistic analysis "
+                     "(left out when not given)."),
+    ] = None,
+    seed: Annotated[
+        int, typer.Option("--seed", min=0, help="Seed of the probabilistic analysis.")
+    ] = 1,
+    quiet: Annotated[bool, typer.Option("--quiet", help="No progress on stderr.")] = False,
+) -> None:
+    """Write a report of every analysis of a model (research use only)."""
+    from caredecide.report import build_report, record_path_for, tables_dir_for
+
+    # The caution is always shown (stderr), whatever --quiet says.
+    print_caution(False)
+    with user_errors():
+        with step_progress("report", 5, quiet) as step:
+            record = build_report(
+                model, out, draws=draws, seed=seed if draws else None,
+                command_line=shlex.join(["caredecide", *sys.argv[1:]]), progress=step,
+            )
+    stdout.print(f"Report: {out}")
+    stdout.print(f"Tables: {tables_dir_for(out)} ({len(record.outputs)} files)")
+    stdout.print(f"Run record: {record_path_for(out)} (re-run with: caredecide rerun "
+                 f"{record_path_for(out)})")
+    if not quiet:
+        stderr.print("Open the report in any browser; it needs no network.")
+
+
+def register(app: typer.Typer) -> None:
+    """Add ``report`` to the root command."""
+    app.command("report", no_args_is_help=True)(report_command)

@@ -1,0 +1,197 @@
+"""The HTML report, its result tables and its run record, built in one call.
+
+:func:`build_report` runs every analysis (:mod:`caredecide.report.analyses`), writes the
+result tables as CSV plus one XLSX workbook (:mod:`caredecide.exports`), hashes them into
+a run record (:mod:`caredecide.runrecord`) and writes the self-contained HTML report
+(:mod:`caredecide.report.html`). :func:`rerun` repeats a recorded run and compares the
+hashes. Layout of ``--out report.html``::
+
+    report.html             the report (cautions first)
+    report_tables/*.csv     every result table, byte-reproducible
+    report_tables/results.xlsx
+    report.run.json         the run record
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from collections.abc import Callable
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+
+from caredecide.report.analyses import ReportData, result_tables, run_analyses
+
+WORKBOOK_NAME = "results.xlsx"
+
+__all__ = ["ReportData", "RerunOutcome", "build_report", "record_path_for", "rerun",
+           "run_analyses", "tables_dir_for", "write_outputs"]
+
+
+def tables_dir_for(report_path: Path) -> Path:
+    """``report.html`` -> ``report_tables/`` beside it."""
+    return report_path.with_name(f"{report_path.stem}_tables")
+
+
+def record_path_for(report_path: Path) -> Path:
+    """``report.html`` -> ``report.run.json`` beside it."""
+    return report_path.with_name(f"{report_path.stem}.run.json")
+
+
+def _about(data: ReportData) -> dict[str, str]:
+    return {"model": data.model.title, "model file sha256": data.model_sha256,
+            "draws": str(data.draws or 0), "seed": str(data.seed)}
+
+
+def write_outputs(data: ReportData, tables_dir: Path) -> dict[str, str]:
+    """Write every table (CSV) and the workbook to ``tables_dir``; return their SHA-256."""
+    from caredecide.exports import export_tables, export_workbook
+    from caredecide.runrecord import hash_outputs
+
+    written = export_tables(result_tables(data), tables_dir)
+    export_workbook(data.inputs, data.results, tables_dir / WORKBOOK_NAME, about=_about(data))
+    return hash_outputs(tables_dir, [p.name for p in written.values()] + [WORKBOOK_NAME])
+
+
+def _relative(path: Path, start: Path) -> str:
+    try:
+        return os.path.relpath(path.resolve(), start.resolve())
+    except ValueError:  # another drive (Windows): keep it absolute
+        return str(path.resolve())
+
+
+def build_report(
+    model_path: Path | str,
+    out: Path | str,
+    *,
+    draws: int | None = None,
+    seed: int | None = None,
+    command_line: str = "",
+    progress: Callable[[int, int, str], None] | None = None,
+):
+    """Run every analysis, write the report, the tables and the run record.
+
+    Parameters
+    ----------
+    model_path : path
+        Model file (TOML).
+    out : path
+        The HTML report to write; tables and the record go beside it (module docstring).
+    draws, seed : int, optional
+        Probabilistic analysis (left out without ``draws``).
+    command_line : str
+        The command as typed, for the record.
+    progress : callable(done, total, step), optional
+
+    Returns
+    -------
+    caredecide.runrecord.RunRecord
+        The record written to :func:`record_path_for` ``(out)``.
+    """
+    from caredecide.report.html import write_report
+    from caredecide.runrecord import RunRecord, package_versions, utc_now, write_record
+
+    model_path, out = Path(model_path), Path(out)
+    data = run_analyses(model_path, draws=draws, seed=seed, progress=progress)
+    record_path = record_path_for(out)
+    tables_dir = tables_dir_for(out)
+    record = RunRecord(
+        command="report",
+        arguments={"draws": draws, "seed": seed, "report": out.name,
+                   "command_line": command_line},
+        model_path=_relative(model_path, record_path.parent),
+        model_sha256=data.model_sha256,
+        seed=seed,
+        versions=package_versions(),
+        date=utc_now(),
+        outputs=write_outputs(data, tables_dir),
+        output_dir=_relative(tables_dir, record_path.parent),
+    )
+    write_report(data, {**asdict(record), "command_line": command_line}, out)
+    write_record(record, record_path)
+    return record
+
+
+@dataclass
+class RerunOutcome:
+    """What :func:`rerun` found.
+
+    Attributes
+    ----------
+    differences : list of Difference
+        Model file and output differences (empty: reproduced exactly).
+    version_differences : list of Difference
+        Package versions that differ from the record (a likely reason for differences).
+    output_dir : Path
+        Where the re-run wrote its tables.
+    model_changed : bool
+    """
+
+    differences: list = field(default_factory=list)
+    version_differences: list = field(default_factory=list)
+    output_dir: Path | None = None
+    model_changed: bool = False
+
+    @property
+    def reproduced(self) -> bool:
+        return not self.differences
+
+
+def rerun(
+    record_path: Path | str,
+    *,
+    out_dir: Path | str | None = None,
+    progress: Callable[[int, int, str], None] | None = None,
+) -> RerunOutcome:
+    """Repeat a recorded run and compare the hashes of its outputs with the record.
+
+    Parameters
+    ----------
+    record_path : path
+        A run record written by :func:`build_report`.
+    out_dir : path, optional
+        Where to write the re-run's tables (default: a new temporary folder).
+    progress : callable(done, total, step), optional
+
+    Returns
+    -------
+    RerunOutcome
+
+    Raises
+    ------
+    caredecide.runrecord.RunRecordError
+        When the record cannot be read or names a command we cannot repeat.
+    """
+    from caredecide.runrecord import (
+        Difference,
+        RunRecordError,
+        compare_hashes,
+        compare_versions,
+        package_versions,
+        read_record,
+        resolve,
+        sha256_file,
+    )
+
+    record_path = Path(record_path)
+    record = read_record(record_path)
+    if record.command != "report":
+        raise RunRecordError(f"{record_path}: command {record.command!r} cannot be re-run; "
+                             "expected 'report'")
+    model_path = resolve(record_path, record.model_path)
+    if not model_path.is_file():
+        raise RunRecordError(f"{record_path}: model file {model_path} (model_path = "
+                             f"{record.model_path!r}) does not exist")
+    outcome = RerunOutcome(version_differences=compare_versions(record.versions,
+                                                                package_versions()))
+    now = sha256_file(model_path)
+    if now != record.model_sha256:
+        outcome.model_changed = True
+        outcome.differences.append(Difference(f"model file {model_path}", record.model_sha256,
+                                              now))
+    draws = record.arguments.get("draws")
+    data = run_analyses(model_path, draws=draws, seed=record.seed, progress=progress)
+    target = Path(out_dir) if out_dir is not None else Path(tempfile.mkdtemp(prefix="rerun-"))
+    outcome.output_dir = target
+    outcome.differences += compare_hashes(record.outputs, write_outputs(data, target))
+    return outcome

@@ -1,0 +1,291 @@
+"""Run every analysis of a model once and keep its tables: the content of a report.
+
+Each analysis goes through its own module (compile -> solve -> evaluate underneath);
+this module only calls them and collects DataFrames. Modules are imported lazily: when
+one is missing, or an analysis refuses the model, its section is left out with a note
+saying why, and the rest of the report is still produced.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from caredecide.errors import CaredecideError
+from caredecide.model import Model
+from caredecide.objective import Objective
+
+STEPS = ("policy", "strategies", "sensitivity", "uncertainty", "verification")
+"""Analyses in report order (``uncertainty`` runs only when draws are asked for)."""
+
+
+@dataclass
+class ReportData:
+    """Tables and facts of one run over one model.
+
+    Attributes
+    ----------
+    model : Model
+    model_path : Path
+    model_sha256 : str
+    objective : Objective
+    inputs : dict of str to DataFrame
+        Model inputs: settings, states, actions, evidence (every parameter).
+    results : dict of str to DataFrame
+        Result tables by name (file names of the CSV export).
+    facts : dict
+        Single figures and sentences (structure summary, EVPI, best strategy...).
+    notes : dict of str to str
+        Per analysis step, why it is missing or what it could not do.
+    draws, seed : int or None
+        Probabilistic analysis size and seed (None: not run).
+    """
+
+    model: Model
+    model_path: Path
+    model_sha256: str
+    objective: Objective
+    inputs: dict[str, pd.DataFrame] = field(default_factory=dict)
+    results: dict[str, pd.DataFrame] = field(default_factory=dict)
+    facts: dict = field(default_factory=dict)
+    notes: dict[str, str] = field(default_factory=dict)
+    draws: int | None = None
+    seed: int | None = None
+
+
+# ----------------------------------------------------------------------------- inputs
+def _text(value: object) -> str:
+    return "" if value is None else str(value)
+
+
+def _distribution_text(spec) -> str:
+    if not spec:
+        return "fixed"
+    spec = dict(spec)
+    kind = spec.pop("type", "?")
+    return f"{kind}(" + ", ".join(f"{k}={v:g}" if isinstance(v, int | float) else f"{k}={v}"
+                                  for k, v in sorted(spec.items())) + ")"
+
+
+def input_tables(model: Model) -> dict[str, pd.DataFrame]:
+    """The model's inputs as tables: settings, states, actions and the evidence table.
+
+    The evidence table has one row per parameter (Dirichlet members included): name,
+    label, value (base case), kind, per_years, low, high (the range one-way analysis
+    uses), range_from, distribution, source, note.
+    """
+    from caredecide.sensitivity.variation import parameter_ranges
+
+    s = model.settings
+    horizon = ("infinite" if s.infinite_horizon else
+               f"{s.horizon_cycles} cycles" if s.horizon_cycles is not None else
+               f"until age {s.until_age:g}")
+    settings = pd.DataFrame(
+        [("cycle_years", s.cycle_years), ("horizon", horizon), ("start_age", s.start_age),
+         ("start", "; ".join(f"{k}: {v:g}" for k, v in model.start_distribution().items())),
+         ("discount_outcomes", s.discount_outcomes), ("discount_costs", s.discount_costs),
+         ("objective", s.objective), ("willingness_to_pay", s.willingness_to_pay),
+         ("within_cycle", s.within_cycle), ("currency", s.currency),
+         ("severity_order", ", ".join(s.severity_order))],
+        columns=["setting", "value"],
+    ).astype({"value": str})
+    states = pd.DataFrame({
+        "state": [x.id for x in model.states],
+        "label": [x.label for x in model.states],
+        "qaly_weight": [_text(x.qaly_weight) for x in model.states],
+        "cost": [_text(x.cost) for x in model.states],
+        "absorbing": [x.absorbing for x in model.states],
+        "alive": [x.alive for x in model.states],
+    })
+    actions = pd.DataFrame({
+        "action": [a.id for a in model.actions],
+        "label": [a.label for a in model.actions],
+        "allowed_in": [", ".join(model.allowed_states(a)) for a in model.actions],
+        "oneoff_cost": [_text(a.oneoff_cost) for a in model.actions],
+        "oneoff_qaly_loss": [_text(a.oneoff_qaly_loss) for a in model.actions],
+        "cost_per_cycle": [_text(a.cost_per_cycle) for a in model.actions],
+    })
+    ranges = parameter_ranges(model).set_index("parameter")
+    rows = []
+    for name in model.parameter_names():
+        p = model.parameters.get(name)
+        group = next((g for g in model.groups.values() if name in g.members), None)
+        if p is not None:
+            described = (p.label, p.kind, p.per_years, _distribution_text(p.distribution),
+                         p.source, p.note)
+        else:
+            counts = ", ".join(f"{c:g}" for c in group.counts)
+            described = ("", f"probability (Dirichlet group {group.name})", None,
+                         f"dirichlet(counts={counts}, prior={group.prior:g})", group.source,
+                         group.note)
+        label, kind, per_years, distribution, source, note = described
+        r = ranges.loc[name]
+        rows.append((name, label, float(r["base"]), kind, per_years, float(r["low"]),
+                     float(r["high"]), r["range_from"], distribution, source, note))
+    evidence = pd.DataFrame(rows, columns=["parameter", "label", "value", "kind", "per_years",
+                                           "low", "high", "range_from", "distribution",
+                                           "source", "note"])
+    return {"settings": settings, "states": states, "actions": actions, "evidence": evidence}
+
+
+# ----------------------------------------------------------------------------- analyses
+def _policy(data: ReportData) -> None:
+    from caredecide.compile import compile_model
+    from caredecide.evaluate import evaluate_policy
+    from caredecide.solvers import solve
+    from caredecide.structure import band_table
+
+    compiled = compile_model(data.model)
+    result = solve(compiled, data.objective)
+    outcome = evaluate_policy(compiled, result.policy, data.objective)
+    data.results["policy"] = result.to_frame()
+    bands = band_table(result)
+    data.results["policy_bands"] = bands.reset_index()
+    data.results["trace"] = outcome.trace_frame()
+    data.results["totals"] = outcome.totals_frame().drop(columns="draw")
+    data.facts["structure"] = result.structure().text
+    data.facts["solver"] = result.message
+    data.facts["value_at_start"] = float(outcome.value[0])
+    data.facts["finite_horizon"] = result.finite_horizon
+    data.facts["decision_states"] = [s for s, d in zip(result.state_ids, result.decision_states,
+                                                       strict=True) if d]
+
+
+def _strategies(data: ReportData) -> None:
+    from caredecide.compare import compare_strategies
+
+    wtp = data.objective.willingness_to_pay
+    wtp_range = (0.0, 2.0 * wtp) if data.objective.kind == "net_benefit" and wtp > 0 else None
+    comparison = compare_strategies(data.model, wtp=wtp if wtp_range else None,
+                                    wtp_range=wtp_range)
+    data.results["strategies"] = comparison.table
+    if comparison.frontier is not None:
+        data.results["wtp_frontier"] = comparison.frontier
+    data.facts["best_strategy"] = comparison.best_strategy
+    data.facts["strategy_wtp"] = comparison.willingness_to_pay
+    if comparison.notes:
+        data.notes["strategies"] = "; ".join(comparison.notes)
+
+
+def _sensitivity(data: ReportData) -> None:
+    from caredecide.sensitivity import (
+        one_way,
+        parameter_thresholds,
+        setting_thresholds,
+        summarise_thresholds,
+    )
+
+    one = one_way(data.model, objective=data.objective)
+    data.results["oneway"] = one.table
+    data.results["policy_switches"] = one.switches
+    thresholds = parameter_thresholds(data.model, objective=data.objective)
+    data.results["thresholds"] = thresholds
+    data.results["thresholds_summary"] = summarise_thresholds(thresholds)
+    wtp = data.objective.willingness_to_pay
+    if data.objective.kind == "net_benefit" and wtp > 0:
+        wtp_table = setting_thresholds(data.model, "willingness_to_pay", 0.0, 2.0 * wtp,
+                                       objective=data.objective)
+        data.results["threshold_willingness_to_pay"] = summarise_thresholds(wtp_table)
+
+
+def _uncertainty(data: ReportData) -> None:
+    from caredecide.uncertainty.psa import run_psa
+
+    psa = run_psa(data.model, data.draws, data.seed, objective=data.objective)
+    data.results["psa_acceptability"] = psa.acceptability_by_age_band()
+    data.results["psa_expected_loss"] = psa.expected_loss()
+    data.results["psa_policy_frequencies"] = psa.policy_frequencies()
+    data.results["psa_acceptability_curves"] = psa.acceptability_curves()
+    evpi = psa.evpi()
+    data.results["psa_evpi"] = pd.DataFrame([evpi])
+
+
+def _verification(data: ReportData) -> None:
+    from caredecide.verify import verify_model
+
+    report = verify_model(data.model, objective=data.objective)
+    data.results["verification"] = report.to_frame()
+    data.facts["verification_passed"] = report.passed
+
+
+_RUNNERS: dict[str, Callable[[ReportData], None]] = {
+    "policy": _policy,
+    "strategies": _strategies,
+    "sensitivity": _sensitivity,
+    "uncertainty": _uncertainty,
+    "verification": _verification,
+}
+
+
+def run_analyses(
+    model_path: Path | str,
+    *,
+    draws: int | None = None,
+    seed: int | None = None,
+    model: Model | None = None,
+    progress: Callable[[int, int, str], None] | None = None,
+) -> ReportData:
+    """Run every analysis of a model file and collect the tables.
+
+    Parameters
+    ----------
+    model_path : path
+        The model file (its SHA-256 identifies the run).
+    draws, seed : int, optional
+        Probabilistic analysis: number of parameter draws and the seed (both needed;
+        without ``draws`` the section is left out with a note).
+    model : Model, optional
+        The already loaded model of ``model_path`` (default: load it).
+    progress : callable(done, total, step), optional
+
+    Returns
+    -------
+    ReportData
+
+    Raises
+    ------
+    CaredecideError
+        When the model itself cannot be read or solved (the policy step); later steps
+        record their error as a note instead.
+    """
+    from caredecide.modelfile import load_model
+    from caredecide.runrecord import sha256_file
+
+    model_path = Path(model_path)
+    model = load_model(model_path) if model is None else model
+    data = ReportData(model=model, model_path=model_path, model_sha256=sha256_file(model_path),
+                      objective=Objective.from_settings(model.settings), draws=draws,
+                      seed=seed)
+    data.inputs = input_tables(model)
+    steps = [s for s in STEPS if s != "uncertainty" or draws]
+    if not draws:
+        data.notes["uncertainty"] = ("not run: give --draws N (and --seed S) for the "
+                                     "probabilistic analysis")
+    for done, step in enumerate(steps):
+        try:
+            _RUNNERS[step](data)
+        except ModuleNotFoundError as error:
+            data.notes[step] = f"left out: module {error.name} is not available in this install"
+        except CaredecideError as error:
+            if step == "policy":
+                raise
+            data.notes[step] = f"left out: {str(error).splitlines()[0]}"
+        if progress is not None:
+            progress(done + 1, len(steps), step)
+    return data
+
+
+def result_tables(data: ReportData) -> dict[str, pd.DataFrame]:
+    """Every result table, with ``input_*`` tables first (names are CSV file names)."""
+    tables = {f"input_{k}": v for k, v in data.inputs.items()}
+    tables.update(data.results)
+    return tables
+
+
+def finite_or_none(value: float) -> float | None:
+    """JSON-friendly number: None for NaN or infinity."""
+    return float(value) if np.isfinite(value) else None

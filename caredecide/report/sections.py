@@ -1,0 +1,250 @@
+"""Pieces of the HTML report: escaped tables, inline SVG charts, and one builder per section.
+
+Every piece of model text (titles, labels, sources, notes, expressions) is user content
+and passes through :func:`html.escape`. Charts come from ``ui/charts.py`` builders and
+are rendered to inline SVG by vl-convert, so the report needs no network to be viewed.
+"""
+
+from __future__ import annotations
+
+import html
+import math
+from collections.abc import Callable, Sequence
+
+import pandas as pd
+
+from caredecide.cautions import CAUTION_LONG, CAUTION_SHORT
+from caredecide.report.analyses import ReportData
+
+SECTION_TITLES: dict[str, str] = {
+    "cautions": "Before you read",
+    "job": "The question",
+    "structure": "Model structure",
+    "evidence": "Evidence",
+    "policy": "Best policy",
+    "strategies": "Comparison with fixed strategies",
+    "sensitivity": "Sensitivity and thresholds",
+    "uncertainty": "Probabilistic results",
+    "verification": "Verification checks",
+    "run-record": "Run record",
+}
+"""Section ids (HTML anchors, in order) and their headings."""
+
+MAX_ROWS = 60
+"""Rows shown per table in the page; the CSV export holds every row."""
+
+
+def esc(value: object) -> str:
+    """Escaped text of any value."""
+    return html.escape(str(value), quote=True)
+
+
+def number(value: object) -> str:
+    """A readable number: thousands separators for large values, 6 significant digits."""
+    if isinstance(value, bool) or value is None:
+        return "" if value is None else ("yes" if value else "no")
+    if isinstance(value, int):
+        return f"{value:,}"
+    if isinstance(value, float):
+        if math.isnan(value):
+            return ""
+        if math.isinf(value):
+            return "inf" if value > 0 else "-inf"
+        return f"{value:,.2f}" if abs(value) >= 1000 else f"{value:.6g}"
+    return str(value)
+
+
+def table(frame: pd.DataFrame, columns: Sequence[str] | None = None, *,
+          max_rows: int = MAX_ROWS, index: bool = False, css_class: str = "") -> str:
+    """An escaped HTML table of ``frame`` (first ``max_rows`` rows, a note when cut)."""
+    if index:
+        frame = frame.reset_index()
+    if columns is not None:
+        frame = frame[[c for c in columns if c in frame.columns]]
+    head = "".join(f"<th>{esc(c)}</th>" for c in frame.columns)
+    rows = []
+    for row in frame.head(max_rows).itertuples(index=False, name=None):
+        cells = []
+        for value in row:
+            value = value.item() if hasattr(value, "item") else value
+            numeric = isinstance(value, int | float) and not isinstance(value, bool)
+            cells.append(f'<td class="num">{esc(number(value))}</td>' if numeric
+                         else f"<td>{esc(number(value))}</td>")
+        rows.append("<tr>" + "".join(cells) + "</tr>")
+    cut = (f'<p class="cut">Showing {max_rows} of {len(frame)} rows; the CSV export has all '
+           "of them.</p>" if len(frame) > max_rows else "")
+    klass = f' class="{esc(css_class)}"' if css_class else ""
+    return (f'<div class="scroll"><table{klass}><thead><tr>{head}</tr></thead><tbody>'
+            + "".join(rows) + f"</tbody></table></div>{cut}")
+
+
+def svg(build: Callable[[], object]) -> str:
+    """Inline SVG of the chart ``build()`` returns; a note when it cannot be drawn."""
+    try:
+        import vl_convert
+
+        chart = build()
+        markup = vl_convert.vegalite_to_svg(chart.to_dict())
+    except Exception as error:  # a chart must never stop the report
+        return f'<p class="note">Chart not drawn: {esc(type(error).__name__)}: {esc(error)}</p>'
+    return f'<figure class="chart">{markup}</figure>'
+
+
+def note(text: str) -> str:
+    return f'<p class="note">{esc(text)}</p>'
+
+
+def _para(text: str) -> str:
+    return f"<p>{esc(text)}</p>"
+
+
+# ----------------------------------------------------------------------------- sections
+def cautions_section(data: ReportData) -> str:
+    return (f'<div class="caution"><strong>{esc(CAUTION_SHORT)}</strong>'
+            f"<p>{esc(CAUTION_LONG)}</p></div>")
+
+
+def job_section(data: ReportData) -> str:
+    model = data.model
+    parts = [f"<h3>{esc(model.title)}</h3>"]
+    if model.description:
+        parts.append(f'<p class="description">{esc(model.description.strip())}</p>')
+    horizon = model.n_cycles()
+    parts.append(_para(
+        f"Decision: which action to take in each health state at each age, chosen to "
+        f"maximise {data.objective.describe()}"
+        + (f" over {horizon} cycles of {model.settings.cycle_years:g} year(s)."
+           if horizon is not None else " over an infinite horizon (stationary model).")))
+    return "".join(parts)
+
+
+def structure_section(data: ReportData) -> str:
+    return ("<h3>States</h3>" + table(data.inputs["states"])
+            + "<h3>Actions and where they are allowed</h3>" + table(data.inputs["actions"])
+            + "<h3>Settings</h3>" + table(data.inputs["settings"]))
+
+
+def evidence_section(data: ReportData) -> str:
+    return (_para("Every estimate the model uses, with its plausible range (used by the "
+                  "one-way analysis), its distribution (used by the probabilistic analysis) "
+                  "and where it comes from.")
+            + table(data.inputs["evidence"], max_rows=500))
+
+
+def _policy_chart(data: ReportData):
+    from ui.charts import make_policy_chart
+
+    frame = data.results["policy"]
+    decision = data.facts["decision_states"]
+    labels = {a.id: a.label or a.id for a in data.model.actions}
+    choices = frame[frame["state"].isin(decision)].copy()
+    if data.facts["finite_horizon"]:
+        choices["age"] = choices["age"].round(2)
+    else:
+        choices["age"] = "any age"
+    starts = choices["action"] != choices.groupby("state")["action"].shift()
+    choices = choices.assign(label=choices["action"].where(starts, ""),
+                             action=choices["action"].map(labels))
+    return make_policy_chart(choices, action_order=[labels[a] for a in data.model.action_ids],
+                             state_order=decision)
+
+
+def _trace_chart(data: ReportData):
+    from ui.charts import make_trace_chart
+
+    return make_trace_chart(data.results["trace"], state_order=list(data.model.state_ids))
+
+
+def policy_section(data: ReportData) -> str:
+    return (f'<p class="headline">{esc(data.facts["structure"])}</p>'
+            + _para(f"Solver: {data.facts['solver']}. Objective at the start: "
+                    f"{number(data.facts['value_at_start'])} ({data.objective.unit}).")
+            + "<h3>Best action by state and age band</h3>" + table(data.results["policy_bands"])
+            + svg(lambda: _policy_chart(data))
+            + "<h3>Totals per person under the best policy</h3>"
+            + table(data.results["totals"])
+            + "<h3>Cohort trace</h3>" + svg(lambda: _trace_chart(data)))
+
+
+def strategies_section(data: ReportData) -> str:
+    from ui.charts import make_ce_plane_chart
+
+    frame = data.results["strategies"]
+    columns = ["strategy", "cost", "qalys", "life_years", "status", "incremental_cost",
+               "incremental_qalys", "icer", "net_monetary_benefit"]
+    parts = [_para(f"Incremental analysis (Cantor 1994) at a willingness to pay of "
+                   f"{number(data.facts['strategy_wtp'])} per QALY; best: "
+                   f"{data.facts['best_strategy']}."),
+             table(frame, columns),
+             svg(lambda: make_ce_plane_chart(frame, currency=data.model.settings.currency))]
+    if "wtp_frontier" in data.results:
+        parts += ["<h3>Policies optimal over a range of willingness to pay</h3>",
+                  table(data.results["wtp_frontier"],
+                        ["policy", "wtp_from", "wtp_to", "cost", "qalys", "found_by"])]
+    return "".join(parts)
+
+
+def sensitivity_section(data: ReportData) -> str:
+    from ui.charts import make_tornado_chart
+
+    one = data.results["oneway"]
+    parts = [svg(lambda: make_tornado_chart(one, unit=f"({data.objective.unit})")),
+             "<h3>One-way analysis, ranked by swing</h3>",
+             table(one, ["rank", "parameter", "low", "high", "value_low", "value_base",
+                         "value_high", "swing", "policy_changes", "rule"]),
+             "<h3>Decision thresholds</h3>",
+             _para("The value of an estimate at which the best action switches, by state "
+                   "and age band (root-finding on the action gap)."),
+             table(data.results["thresholds_summary"])]
+    if "threshold_willingness_to_pay" in data.results:
+        parts += ["<h3>Willingness-to-pay thresholds</h3>",
+                  table(data.results["threshold_willingness_to_pay"])]
+    return "".join(parts)
+
+
+def uncertainty_section(data: ReportData) -> str:
+    evpi = data.results["psa_evpi"].iloc[0]
+    return (_para(f"{data.draws} parameter draws, seed {data.seed}. EVPI of the timing "
+                  f"decision: {number(float(evpi['evpi']))} (Monte Carlo s.e. "
+                  f"{number(float(evpi['mc_se']))}), {data.objective.unit} per person.")
+            + "<h3>Expected loss of each candidate policy</h3>"
+            + table(data.results["psa_expected_loss"])
+            + "<h3>Share of draws in which each action is best</h3>"
+            + table(data.results["psa_acceptability"]))
+
+
+def verification_section(data: ReportData) -> str:
+    frame = data.results["verification"]
+    failed = int((frame["status"] == "fail").sum())
+    verdict = ("Every check passed or does not apply." if failed == 0
+               else f"{failed} check(s) FAILED: read the figures before using the results.")
+    rows = []
+    for row in frame.itertuples(index=False):
+        rows.append(f'<tr class="{esc(row.status.replace(" ", "-"))}"><td>{esc(row.title)}</td>'
+                    f"<td><strong>{esc(row.status)}</strong></td><td>{esc(row.figures)}</td>"
+                    f"<td>{esc(row.expected)}</td><td>{esc(row.source)}</td></tr>")
+    return (f'<p class="headline">{esc(verdict)}</p><div class="scroll"><table class="checks">'
+            "<thead><tr><th>check</th><th>result</th><th>figures</th><th>expected</th>"
+            "<th>following</th></tr></thead><tbody>" + "".join(rows) + "</tbody></table></div>")
+
+
+def run_record_section(data: ReportData, record: dict) -> str:
+    rows = [("model file", str(data.model_path)), ("model sha256", data.model_sha256),
+            ("command", record.get("command_line", "")), ("seed", record.get("seed")),
+            ("draws", data.draws), ("date (UTC)", record.get("date", ""))]
+    rows += [(f"version: {k}", v) for k, v in record.get("versions", {}).items()]
+    frame = pd.DataFrame(rows, columns=["item", "value"]).astype({"value": str})
+    return table(frame, max_rows=100)
+
+
+SECTION_BUILDERS: dict[str, Callable[[ReportData], str]] = {
+    "cautions": cautions_section,
+    "job": job_section,
+    "structure": structure_section,
+    "evidence": evidence_section,
+    "policy": policy_section,
+    "strategies": strategies_section,
+    "sensitivity": sensitivity_section,
+    "uncertainty": uncertainty_section,
+    "verification": verification_section,
+}

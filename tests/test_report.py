@@ -1,0 +1,123 @@
+"""The HTML report: every section, cautions first, escaped model text, notes for missing
+analyses, byte-identical result tables, and re-runs that reproduce or detect a change."""
+
+from __future__ import annotations
+
+import re
+import shutil
+import sys
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from caredecide.report import build_report, record_path_for, rerun, tables_dir_for
+from caredecide.report.analyses import run_analyses
+from caredecide.report.sections import SECTION_TITLES
+from caredecide.runrecord import read_record, sha256_file
+
+BASE = Path(__file__).parent / "data" / "broken_models" / "base_small.toml"
+HOSTILE = '<script>alert("x")</script> & <img src=http://example.invalid/x.png>'
+
+
+@pytest.fixture(scope="module")
+def built(tmp_path_factory):
+    """A report of a copy of the base test model whose texts hold HTML."""
+    folder = tmp_path_factory.mktemp("report")
+    model = folder / "model.toml"
+    text = BASE.read_text(encoding="utf-8")
+    text = text.replace('title = "Synthetic verification base model"',
+                        f"title = '{HOSTILE}'")
+    text = text.replace('source = "Synthetic: test"\n\n[parameters.p_die_sick]',
+                        f"source = '{HOSTILE}'\n\n[parameters.p_die_sick]")
+    model.write_text(text, encoding="utf-8")
+    out = folder / "report.html"
+    record = build_report(model, out, draws=40, seed=5, command_line="caredecide report")
+    return model, out, record
+
+
+def test_report_has_every_section_with_the_cautions_first(built):
+    _, out, _ = built
+    page = out.read_text(encoding="utf-8")
+    positions = [page.index(f'<section id="{sid}">') for sid in SECTION_TITLES]
+    assert positions == sorted(positions)
+    assert page.index("RESEARCH USE ONLY") < positions[1]
+    assert "not a substitute for clinical judgment" in page
+    # Probabilistic results were asked for, so their section holds results, not a note.
+    uncertainty = page[positions[7]:positions[8]]
+    assert "40 parameter draws, seed 5" in uncertainty
+
+
+def test_report_escapes_model_text_and_loads_nothing(built):
+    _, out, _ = built
+    page = out.read_text(encoding="utf-8")
+    assert "<script" not in page
+    assert "<img" not in page
+    assert "&lt;script&gt;alert(&quot;x&quot;)&lt;/script&gt; &amp; &lt;img" in page
+    assert "default-src 'none'" in page  # Content-Security-Policy
+    # The only URLs are XML namespaces of the inline SVG charts (and the escaped hostile text).
+    urls = set(re.findall(r"https?://[^\s\"'<>&]+", page))
+    assert urls <= {"http://www.w3.org/2000/svg", "http://www.w3.org/1999/xlink",
+                    "http://example.invalid/x.png"}
+    assert page.count("<svg") >= 3  # policy map, cohort trace, tornado (+ CE plane)
+
+
+def test_run_record_names_model_hash_seed_and_outputs(built):
+    model, out, record = built
+    stored = read_record(record_path_for(out))
+    assert stored == record
+    assert stored.model_sha256 == sha256_file(model)
+    assert stored.seed == 5 and stored.arguments["draws"] == 40
+    tables = tables_dir_for(out)
+    assert {"policy.csv", "trace.csv", "input_evidence.csv", "verification.csv",
+            "results.xlsx"} <= set(stored.outputs)
+    for name, digest in stored.outputs.items():
+        assert sha256_file(tables / name) == digest
+    page = out.read_text(encoding="utf-8")
+    assert stored.model_sha256 in page
+
+
+def test_evidence_table_lists_every_parameter_with_its_source(built):
+    _, out, _ = built
+    evidence = pd.read_csv(tables_dir_for(out) / "input_evidence.csv")
+    assert list(evidence["parameter"]) == ["p_sick", "p_die_sick", "rr_treat", "u_sick",
+                                           "c_drug"]
+    assert evidence.loc[0, "source"] == HOSTILE
+    assert evidence.loc[1, ["value", "low", "high"]].tolist() == [0.2, 0.1, 0.3]
+
+
+def test_rerun_reproduces_the_recorded_tables_byte_for_byte(built, tmp_path):
+    _, out, _ = built
+    outcome = rerun(record_path_for(out), out_dir=tmp_path)
+    assert outcome.reproduced, [str(d) for d in outcome.differences]
+    assert not outcome.model_changed
+
+
+def test_rerun_detects_a_changed_model(built, tmp_path):
+    model, out, _ = built
+    folder = tmp_path / "copy"
+    shutil.copytree(out.parent, folder)
+    changed = folder / model.name
+    changed.write_text(changed.read_text(encoding="utf-8").replace("value = 0.1\n",
+                                                                   "value = 0.12\n", 1),
+                       encoding="utf-8")
+    outcome = rerun(record_path_for(folder / out.name), out_dir=tmp_path / "tables")
+    assert outcome.model_changed
+    assert not outcome.reproduced
+    changed_outputs = {d.what for d in outcome.differences}
+    assert f"model file {changed}" in changed_outputs
+    assert "output policy.csv" in changed_outputs  # p_sick moves every value
+
+
+def test_missing_analysis_module_leaves_a_note(monkeypatch):
+    monkeypatch.setitem(sys.modules, "caredecide.compare", None)
+    data = run_analyses(BASE)
+    assert "strategies" not in data.results
+    assert data.notes["strategies"] == ("left out: module caredecide.compare is not "
+                                        "available in this install")
+    assert data.notes["uncertainty"].startswith("not run: give --draws N")
+    from caredecide.report.html import render_report
+
+    page = render_report(data, {})
+    section = page[page.index('<section id="strategies">'):page.index('<section id="sens')]
+    assert "module caredecide.compare is not available" in section
