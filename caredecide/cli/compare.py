@@ -8,6 +8,7 @@ from pathlib import Path
 from typing import Annotated
 
 import typer
+from rich.console import Console
 from rich.table import Table
 
 from caredecide.cli.common import print_caution, stderr, stdout, user_errors
@@ -16,12 +17,20 @@ TABLE_FILE = "strategies.csv"
 FRONTIER_FILE = "frontier.csv"
 SWITCHES_FILE = "switch_points.csv"
 TRACES_FOLDER = "traces"
+TABLE_WIDTH = 150
+"""Tables are printed at least this wide (characters), so names and statuses stay on one line
+when stdout is a narrow pipe."""
 
 
 def trace_file_name(index: int, strategy: str) -> str:
     """File name of a strategy's trace: ``01_never-treat.csv`` (row order, safe characters)."""
     slug = re.sub(r"[^A-Za-z0-9]+", "-", strategy).strip("-").lower()[:60] or "strategy"
     return f"{index + 1:02d}_{slug}.csv"
+
+
+def _wide() -> Console:
+    """A stdout console at least :data:`TABLE_WIDTH` wide (a pipe defaults to 80)."""
+    return Console(width=max(stdout.width, TABLE_WIDTH), highlight=False)
 
 
 def _money(value: float) -> str:
@@ -44,7 +53,7 @@ def _print_table(result, currency: str) -> None:
             else f"{row['incremental_qalys']:.4f}",
             _money(row["icer"]), f"{row['net_monetary_benefit']:,.0f}", str(row["status"]),
         )
-    stdout.print(table)
+    _wide().print(table)
     stdout.print(f"Best at {result.willingness_to_pay:,.0f} per QALY: {result.best_strategy}")
 
 
@@ -55,7 +64,7 @@ def _print_frontier(result) -> None:
     for _, row in result.frontier.iterrows():  # display rows
         table.add_row(row["policy"], f"{row['wtp_from']:,.2f}", f"{row['wtp_to']:,.2f}",
                       f"{row['cost']:,.0f}", f"{row['qalys']:.4f}", row["found_by"])
-    stdout.print(table)
+    _wide().print(table)
     frontier = result.frontier_result
     stdout.print(f"{len(result.frontier)} optimal policies, {len(result.switches)} switch "
                  f"point(s); {frontier.n_solves} WTP values solved ({len(frontier.grid)} on the "

@@ -1,0 +1,166 @@
+"""compare_strategies: the optimal policy against fixed strategies on the demo model, through
+the same compile -> solve -> evaluate path; chart builders for the CE plane and the frontier."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from caredecide.compare import KIND_FRONTIER, KIND_OPTIMAL, compare_strategies
+from caredecide.compile import compile_model
+from caredecide.errors import ModelError
+from caredecide.evaluate import evaluate_policy
+from caredecide.modelfile import load_model
+from caredecide.objective import Objective
+from caredecide.solvers import solve
+from caredecide.strategies import at_once, never
+from synthetic_cohort import demo_model_path
+from ui.charts import make_ce_plane_chart, make_frontier_chart
+
+
+@pytest.fixture(scope="module")
+def demo():
+    return load_model(demo_model_path())
+
+
+@pytest.fixture(scope="module")
+def with_range(demo):
+    return compare_strategies(demo, wtp=30000.0, wtp_range=(0.0, 60000.0))
+
+
+def test_optimal_row_equals_the_solver_and_is_best(demo, with_range):
+    compiled = compile_model(demo)
+    objective = Objective("net_benefit", 30000.0)
+    result = solve(compiled, objective)
+    outcome = evaluate_policy(compiled, result.policy, objective)
+    row = with_range.table.set_index("strategy").loc[with_range.optimal_strategy]
+    assert row["kind"] == KIND_OPTIMAL
+    assert row["cost"] == outcome.costs[0] and row["qalys"] == outcome.qalys[0]
+    assert row["net_monetary_benefit"] == pytest.approx(result.expected_value(
+        compiled.start_distribution)[0], rel=1e-12)
+    # The optimal policy has the highest NMB of every row (Puterman 1994, Theorem 4.5.1).
+    nmb = with_range.table["net_monetary_benefit"]
+    assert row["net_monetary_benefit"] >= nmb.max() - 1e-9 * abs(nmb.max())
+    assert with_range.best_strategy == with_range.optimal_strategy
+
+
+def test_table_holds_builtins_the_sibling_table_and_frontier_policies(with_range):
+    names = set(with_range.table["strategy"])
+    assert {"never treat", "treat at once", "treat from stage_2", "treat from stage_3",
+            "treat stage 2-3 before 80", "treat stage 3 before 75"} <= names
+    assert any("found beside the model" in n for n in with_range.notes)
+    frontier_rows = with_range.table[with_range.table["kind"] == KIND_FRONTIER]
+    # every frontier interval is a row of the table (the one containing 30,000 is the
+    # optimal policy's own row)
+    assert len(frontier_rows) == len(with_range.frontier) - 1
+    assert set(with_range.frontier["strategy"]) <= names
+    inside = with_range.frontier[(with_range.frontier["wtp_from"] <= 30000)
+                                 & (with_range.frontier["wtp_to"] >= 30000)]
+    assert list(inside["strategy"]) == [with_range.optimal_strategy]
+
+
+def test_fixed_strategies_never_beat_the_frontier_anywhere_in_the_range(with_range):
+    # Each fixed strategy's NMB line lies below the upper envelope of the frontier policies
+    # at every WTP of the range (checked at the switch points and ends, where the envelope
+    # bends: between them both are straight lines).
+    points = np.unique(np.r_[with_range.frontier["wtp_from"], with_range.frontier["wtp_to"]])
+    frontier = with_range.frontier
+    envelope = (points[:, None] * frontier["qalys"].to_numpy() - frontier["cost"].to_numpy()).max(1)
+    fixed = with_range.table[~with_range.table["kind"].isin([KIND_OPTIMAL, KIND_FRONTIER])]
+    lines = points[:, None] * fixed["qalys"].to_numpy() - fixed["cost"].to_numpy()
+    assert (lines <= envelope[:, None] + 1e-6).all()
+
+
+def test_incremental_status_and_best_strategy(with_range):
+    table = with_range.table
+    assert table["status"].str.match(
+        r"^(on frontier|dominated by .+|extendedly dominated by .+ and .+|identical to .+)$"
+    ).all()
+    assert table["best_at_wtp"].sum() == 1
+    # 'treat stage 3 before 75' gives fewer QALYs than the cheaper frontier policy P5 at a
+    # higher cost: strongly dominated.
+    status = table.set_index("strategy")["status"]
+    assert status["treat stage 3 before 75"].startswith("dominated by optimal P")
+
+
+def test_traces_start_from_the_cohort_and_sum_to_one(with_range, demo):
+    traces = with_range.traces
+    assert set(traces["strategy"]) == set(with_range.table["strategy"])
+    sums = traces.groupby(["strategy", "cycle"])["proportion"].sum()
+    np.testing.assert_allclose(sums, 1.0, atol=1e-12)
+    start = traces[(traces["cycle"] == 0) & (traces["strategy"] == "never treat")]
+    assert dict(zip(start["state"], start["proportion"], strict=True))["stage_2"] == 0.3
+
+
+def test_explicit_strategy_list_and_notes(demo):
+    result = compare_strategies(demo, [never("treat"), at_once("treat")], wtp=10000.0)
+    assert list(result.table["strategy"].sort_values()) == sorted(
+        ["never treat", "treat at once", "optimal policy at WTP 10,000"])
+    assert result.frontier is None and result.switches is None
+    at_once_notes = result.table.set_index("strategy").loc["treat at once", "notes"]
+    assert "'treat' is not allowed in stage_1_tx, stage_2_tx, stage_3_tx" in at_once_notes
+
+
+def test_strategy_table_path_adds_to_the_builtins(demo, tmp_path):
+    path = tmp_path / "mine.csv"
+    path.write_text("state,action\nstage_2,treat\nstage_3,treat\n", encoding="utf-8")
+    result = compare_strategies(demo, path)
+    names = list(result.table["strategy"])
+    assert "mine" in names and "never treat" in names
+    # same policy as 'treat from stage_2': identical totals, marked identical
+    rows = result.table.set_index("strategy")
+    assert rows.loc["mine", "cost"] == rows.loc["treat from stage_2", "cost"]
+    assert "identical to" in rows.loc["mine", "status"] + rows.loc["treat from stage_2", "status"]
+
+
+def test_duplicate_strategy_names_are_refused(demo, tmp_path):
+    path = tmp_path / "x.csv"
+    path.write_text("strategy,state,action\nnever treat,stage_1,wait\n", encoding="utf-8")
+    with pytest.raises(ModelError, match=r"strategy name 'never treat' is used twice "
+                                         r"\(built-in; .*x\.csv\)"):
+        compare_strategies(demo, path)
+
+
+@pytest.mark.parametrize("wtp", [-1.0, float("nan")])
+def test_bad_wtp(demo, wtp):
+    with pytest.raises(ModelError, match=r"willingness_to_pay: value .* is not allowed"):
+        compare_strategies(demo, wtp=wtp)
+
+
+def test_model_path_is_loaded():
+    result = compare_strategies(str(demo_model_path()), [never("treat")])
+    assert len(result.table) == 2
+
+
+# --- chart builders ---------------------------------------------------------------------
+
+
+def test_ce_plane_chart_marks_status_by_shape_and_joins_the_frontier(with_range):
+    spec = make_ce_plane_chart(with_range.table, currency="EUR").to_dict()
+    line, points, text = spec["layer"]
+    assert line["mark"]["type"] == "line"
+    assert points["encoding"]["shape"]["field"] == "group"
+    assert points["encoding"]["color"]["field"] == "group"
+    assert points["encoding"]["y"]["title"] == "Cost per person (discounted) EUR"
+    assert text["encoding"]["text"]["field"] == "label"
+    # The dashed line joins the frontier strategies only, in order of cost.
+    line_data = spec["datasets"][line["data"]["name"]]
+    assert len(line_data) == int(with_range.table["on_frontier"].sum())
+    assert [r["cost"] for r in line_data] == sorted(r["cost"] for r in line_data)
+
+
+def test_frontier_chart_has_one_bar_per_interval(with_range):
+    spec = make_frontier_chart(with_range.frontier).to_dict()
+    assert spec["mark"]["type"] == "bar"
+    assert spec["encoding"]["x"]["field"] == "wtp_from" and spec["encoding"]["x2"]["field"] == (
+        "wtp_to")
+    data = next(iter(spec["datasets"].values()))
+    assert len(data) == len(with_range.frontier)
+
+
+def test_chart_builders_name_missing_columns():
+    with pytest.raises(ValueError, match=r"CE plane chart: frame lacks column\(s\) \['status'"):
+        make_ce_plane_chart(pd.DataFrame({"strategy": ["a"], "cost": [1], "qalys": [1]}))
+    with pytest.raises(ValueError, match=r"frontier chart: frame lacks column\(s\) \['wtp_to'\]"):
+        make_frontier_chart(pd.DataFrame({"policy": ["P1"], "wtp_from": [0.0]}))
