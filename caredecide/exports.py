@@ -78,6 +78,22 @@ def export_tables(results: Mapping[str, pd.DataFrame], out_dir: Path | str) -> d
     return written
 
 
+def tables_zip_bytes(results: Mapping[str, pd.DataFrame]) -> bytes:
+    """Every table as ``<name>.csv`` in one zip (fixed time stamps: byte-reproducible)."""
+    out = io.BytesIO()
+    with zipfile.ZipFile(out, "w", zipfile.ZIP_DEFLATED) as archive:
+        for name, frame in results.items():
+            _check_name(name)
+            archive.writestr(_zip_info(f"{name}.csv"), table_to_csv(frame))
+    return out.getvalue()
+
+
+def _zip_info(name: str) -> zipfile.ZipInfo:
+    info = zipfile.ZipInfo(name, date_time=_ZIP_DATE)
+    info.compress_type = zipfile.ZIP_DEFLATED
+    return info
+
+
 def _sheet_title(prefix: str, name: str, used: set[str]) -> str:
     title = f"{prefix}{name}"[:_SHEET_NAME_MAX]
     base, k = title, 2
@@ -158,8 +174,7 @@ def _fixed_zip(data: bytes) -> bytes:
     with zipfile.ZipFile(io.BytesIO(data)) as source, \
             zipfile.ZipFile(out, "w", zipfile.ZIP_DEFLATED) as target:
         for info in source.infolist():
-            fixed = zipfile.ZipInfo(info.filename, date_time=_ZIP_DATE)
-            fixed.compress_type = zipfile.ZIP_DEFLATED
+            fixed = _zip_info(info.filename)
             fixed.external_attr = info.external_attr
             content = source.read(info.filename)
             if info.filename == "docProps/core.xml":

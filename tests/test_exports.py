@@ -81,3 +81,15 @@ def test_workbook_bytes_carry_no_clock(monkeypatch):
     core = archive.read("docProps/core.xml").decode()
     assert core.count("2000-01-01T00:00:00Z") == 2  # created and modified
     assert workbook_bytes(tables, tables) == first
+
+
+def test_tables_zip_holds_the_same_csv_bytes_with_fixed_stamps():
+    from caredecide.exports import tables_zip_bytes
+
+    tables = {"policy": pd.DataFrame({"a": [0.25]}), "trace": pd.DataFrame({"b": ["x"]})}
+    data = tables_zip_bytes(tables)
+    archive = zipfile.ZipFile(io.BytesIO(data))
+    assert archive.namelist() == ["policy.csv", "trace.csv"]
+    assert archive.read("policy.csv") == table_to_csv(tables["policy"])
+    assert {i.date_time for i in archive.infolist()} == {(1980, 1, 1, 0, 0, 0)}
+    assert tables_zip_bytes(tables) == data

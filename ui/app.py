@@ -23,6 +23,9 @@ VIEWS = [
             url_path="sensitivity"),
     st.Page("views/uncertainty.py", title="Uncertainty", icon=":material/casino:",
             url_path="uncertainty"),
+    st.Page("views/strategies.py", title="Strategies", icon=":material/compare_arrows:",
+            url_path="strategies"),
+    st.Page("views/report.py", title="Report", icon=":material/description:", url_path="report"),
 ]
 
 page = st.navigation(VIEWS)

@@ -24,8 +24,8 @@ from caredecide.report.analyses import ReportData, result_tables, run_analyses
 
 WORKBOOK_NAME = "results.xlsx"
 
-__all__ = ["ReportData", "RerunOutcome", "build_report", "record_path_for", "rerun",
-           "run_analyses", "tables_dir_for", "write_outputs"]
+__all__ = ["Downloads", "ReportData", "RerunOutcome", "build_report", "downloads",
+           "record_path_for", "rerun", "run_analyses", "tables_dir_for", "write_outputs"]
 
 
 def tables_dir_for(report_path: Path) -> Path:
@@ -110,6 +110,59 @@ def build_report(
     write_report(data, {**asdict(record), "command_line": command_line}, out)
     write_record(record, record_path)
     return record
+
+
+@dataclass(frozen=True)
+class Downloads:
+    """The report and its tables as bytes (for the app's download buttons)."""
+
+    report_html: bytes
+    workbook: bytes
+    tables_zip: bytes
+    verification: object
+    """The verification table (DataFrame), or None when it could not run."""
+
+
+def downloads(
+    model_text: str,
+    *,
+    file: str,
+    base_dir: str | Path,
+    draws: int | None = None,
+    seed: int | None = None,
+    command_line: str = "",
+) -> Downloads:
+    """Report, workbook and zipped CSV tables of a model given as text (no files written).
+
+    Parameters
+    ----------
+    model_text : str
+        The model file's text; its SHA-256 identifies the model in the report.
+    file : str
+        Name for messages and the report (e.g. the uploaded file's name).
+    base_dir : path
+        Folder that relative paths in the model (life tables) resolve against.
+    draws, seed : int, optional
+        Probabilistic analysis (left out without ``draws``).
+    command_line : str
+        Shown in the report's run record.
+    """
+    from caredecide.exports import tables_zip_bytes, workbook_bytes
+    from caredecide.modelfile import loads_model
+    from caredecide.report.html import render_report
+    from caredecide.runrecord import package_versions, sha256_bytes, utc_now
+
+    model = loads_model(model_text, file=file, base_dir=Path(base_dir))
+    data = run_analyses(Path(file), draws=draws, seed=seed, model=model,
+                        model_sha256=sha256_bytes(model_text.encode("utf-8")))
+    record = {"command_line": command_line, "seed": seed, "date": utc_now(),
+              "versions": package_versions()}
+    return Downloads(
+        report_html=render_report(data, record).encode("utf-8"),
+        workbook=workbook_bytes(data.inputs, data.results, about=_about(data)),
+        tables_zip=tables_zip_bytes(result_tables(data)),
+        verification=data.results.get("verification"),
+    )
 
 
 @dataclass

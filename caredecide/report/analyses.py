@@ -227,6 +227,7 @@ def run_analyses(
     draws: int | None = None,
     seed: int | None = None,
     model: Model | None = None,
+    model_sha256: str | None = None,
     progress: Callable[[int, int, str], None] | None = None,
 ) -> ReportData:
     """Run every analysis of a model file and collect the tables.
@@ -240,6 +241,9 @@ def run_analyses(
         without ``draws`` the section is left out with a note).
     model : Model, optional
         The already loaded model of ``model_path`` (default: load it).
+    model_sha256 : str, optional
+        SHA-256 of the model text (default: of the file ``model_path``); give it with
+        ``model`` when the text is not on disk (the app's working model).
     progress : callable(done, total, step), optional
 
     Returns
@@ -257,7 +261,9 @@ def run_analyses(
 
     model_path = Path(model_path)
     model = load_model(model_path) if model is None else model
-    data = ReportData(model=model, model_path=model_path, model_sha256=sha256_file(model_path),
+    if model_sha256 is None:
+        model_sha256 = sha256_file(model_path)
+    data = ReportData(model=model, model_path=model_path, model_sha256=model_sha256,
                       objective=Objective.from_settings(model.settings), draws=draws,
                       seed=seed)
     data.inputs = input_tables(model)
