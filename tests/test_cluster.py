@@ -24,9 +24,9 @@ def client():
 
 def test_dask_run_equals_serial_run(client):
     model = load_dict(uncertain_model_dict())
-    serial = run_psa(model, 300, seed=77, chunk_size=300)
+    serial = run_psa(model, 300, seed=77, chunk_size=300, n_frequent=0)
     done = []
-    on_dask = run_psa(model, 300, seed=77, chunk_size=45,
+    on_dask = run_psa(model, 300, seed=77, chunk_size=45, n_frequent=0,
                       map_chunks=dask_map(client, max_in_flight=3),
                       progress=lambda d, n: done.append(d))
     for name in ("parameters", "optimal", "candidate_totals", "action_counts",

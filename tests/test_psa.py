@@ -68,13 +68,30 @@ def test_acceptability_equals_shares_of_kept_policies(result):
                                                        / DRAWS))
 
 
-def test_chunk_size_does_not_change_any_result(model, result):
-    other = run_psa(model, DRAWS, seed=2024, chunk_size=37, keep_policies=True)
+def _assert_same(a, b):
     for name in ("parameters", "optimal", "candidate_totals", "action_counts",
                  "distinct_policies", "distinct_counts", "policies"):
-        np.testing.assert_array_equal(getattr(other, name), getattr(result, name), err_msg=name)
-    pd.testing.assert_frame_equal(other.evppi(), result.evppi())
-    assert other.evpi() == result.evpi()
+        np.testing.assert_array_equal(getattr(a, name), getattr(b, name), err_msg=name)
+    pd.testing.assert_frame_equal(a.evppi(), b.evppi())
+    assert a.evpi() == b.evpi()
+
+
+def test_chunk_size_does_not_change_any_result(model):
+    # No pilot (n_frequent=0): every draw goes through the chunked runner.
+    whole = run_psa(model, DRAWS, seed=2024, chunk_size=DRAWS, keep_policies=True, n_frequent=0)
+    split = run_psa(model, DRAWS, seed=2024, chunk_size=37, keep_policies=True, n_frequent=0)
+    assert split.chunk_size == 37
+    _assert_same(split, whole)
+
+
+def test_pilot_block_and_chunks_give_the_same_results(model):
+    # The first 1,000 draws are the pilot; the rest run in chunks of any size.
+    done = []
+    whole = run_psa(model, 1300, seed=8, chunk_size=1300, n_frequent=2, keep_policies=True)
+    split = run_psa(model, 1300, seed=8, chunk_size=120, n_frequent=2, keep_policies=True,
+                    progress=lambda d, n: done.append(d))
+    _assert_same(split, whole)
+    assert done == [1000, 1120, 1240, 1300]
 
 
 def test_every_draw_is_the_optimum_of_its_own_parameters(model, result):

@@ -205,6 +205,11 @@ def solve_chunk(context: PSAContext, start: int, stop: int) -> ChunkResult:
 
     Pure function of its arguments: the same range gives the same result anywhere.
     """
+    return _evaluate_chunk(context, *_solve_draws(context, start, stop), start, stop)
+
+
+def _solve_draws(context: PSAContext, start: int, stop: int):
+    """(values (n, P), compiled, PolicyResult) of draws ``start:stop``."""
     sampler = context.sampler
     values = sampler.draw(context.seed, start, stop)
     parameter_sets = {name: values[:, j] for j, name in enumerate(sampler.names)}
@@ -212,7 +217,12 @@ def solve_chunk(context: PSAContext, start: int, stop: int) -> ChunkResult:
                              memory_limit_bytes=context.memory_limit_bytes)
     if not parameter_sets:  # nothing uncertain: the base case, repeated
         compiled = compiled.take_draws(np.zeros(stop - start, dtype=int))
-    result = solve(compiled, context.objective, **dict(context.solve_options))
+    return values, compiled, solve(compiled, context.objective, **dict(context.solve_options))
+
+
+def _evaluate_chunk(context: PSAContext, values: np.ndarray, compiled, result, start: int,
+                    stop: int) -> ChunkResult:
+    """Evaluate the optimal and candidate policies of solved draws and count the policies."""
     optimal = _totals(evaluate_policy(compiled, result.policy, context.objective))
     # A loop over candidate policies (a handful), each evaluated on every draw at once.
     candidates = np.stack(
@@ -683,20 +693,31 @@ def run_psa(
                   solve(at_mean, objective, **solve_options).policy[0]))
     for strategy in [*default_strategies(base), *(strategies or ())]:
         named.append((strategy.name, ORIGIN_STRATEGY, resolve_strategy(base, strategy).policy))
-    if n_frequent:
-        pilot = solve_chunk(context, 0, min(n_draws, BLOCK_SIZE))
-        order = np.argsort(-pilot.distinct_counts, kind="stable")[:n_frequent]
-        pilot_n = pilot.stop - pilot.start
+    # The pilot (first block) is solved once: its candidates are evaluated after the
+    # candidate set is known, and the remaining draws run in chunks from there.
+    pilot_stop = min(n_draws, BLOCK_SIZE) if n_frequent else 0
+    if pilot_stop:
+        pilot = _solve_draws(context, 0, pilot_stop)
+        policies = pilot[2].policy.reshape(pilot_stop, -1).astype(np.int8)
+        distinct, counts = np.unique(policies, axis=0, return_counts=True)
+        order = np.argsort(-counts, kind="stable")[:n_frequent]
         for rank, u in enumerate(order, start=1):
-            share = pilot.distinct_counts[u] / pilot_n
-            named.append((f"frequent optimum {rank} ({share:.0%} of pilot draws)",
-                          ORIGIN_FREQUENT, pilot.distinct_policies[u]))
+            policy = distinct[u].reshape(pilot[2].policy.shape[1:])
+            named.append((f"frequent optimum {rank} ({counts[u] / pilot_stop:.0%} of pilot "
+                          "draws)", ORIGIN_FREQUENT, policy))
     candidates = _merge_candidates(named)
     context = replace(context, candidate_policies=np.stack([c.policy for c in candidates]))
 
     chunks: list[ChunkResult] = []
+    if pilot_stop:
+        chunks.append(_evaluate_chunk(context, *pilot, 0, pilot_stop))
+        del pilot
+        if progress is not None:
+            progress(pilot_stop, n_draws)
     runner = serial_map if map_chunks is None else map_chunks
-    for chunk in runner(context, chunk_ranges(n_draws, chunk_size)):
+    ranges = [(a + pilot_stop, b + pilot_stop)
+              for a, b in chunk_ranges(n_draws - pilot_stop, chunk_size)]
+    for chunk in runner(context, ranges):
         chunks.append(chunk)
         if progress is not None:
             progress(chunk.stop, n_draws)
