@@ -95,20 +95,20 @@ def _load(model):
     return model
 
 
-def _strategy_list(compiled, model, strategies, notes: list[str]) -> list[Strategy]:
+def _strategy_list(compiled, model, strategies, builtins, notes: list[str]) -> list[Strategy]:
     """Built-ins and/or tables, as described in :func:`compare_strategies`."""
+    single = strategies is None or isinstance(strategies, str | Path)
+    if builtins is None:
+        builtins = single
+    chosen: list[Strategy] = default_strategies(compiled) if builtins else []
     if strategies is None:
-        chosen: list[Strategy] = default_strategies(compiled)
         table = sibling_table(getattr(model, "source_path", None))
         if table is not None:
             notes.append(f"strategy table {table} found beside the model: its strategies "
                          "are included")
             chosen += read_strategy_table(table)
         return chosen
-    if isinstance(strategies, str | Path):
-        return default_strategies(compiled) + read_strategy_table(strategies)
-    chosen = []
-    for item in strategies:
+    for item in [strategies] if single else strategies:
         chosen += read_strategy_table(item) if isinstance(item, str | Path) else [item]
     return chosen
 
@@ -135,6 +135,7 @@ def compare_strategies(
     wtp_range: tuple[float, float] | None = None,
     *,
     grid: int = DEFAULT_GRID,
+    builtins: bool | None = None,
     progress: Callable[[int, int], None] | None = None,
 ) -> ComparisonResult:
     """Compare the optimal policy with fixed strategies at a willingness to pay.
@@ -155,6 +156,8 @@ def compare_strategies(
         joins the table.
     grid : int
         Grid values of the WTP solved first in the frontier search.
+    builtins : bool, optional
+        Include the built-in strategies; default: yes unless ``strategies`` is a sequence.
     progress : callable(round, brackets), optional
         Frontier refinement progress.
 
@@ -188,7 +191,7 @@ def compare_strategies(
     optimal_name = f"optimal policy at WTP {wtp:,.0f}"
     optimal = computed(optimal_name, result.policy[0],
                        description=f"optimal at {wtp:,.0f} per QALY: {result.structure(0).text}")
-    chosen = _strategy_list(compiled, model, strategies, notes)
+    chosen = _strategy_list(compiled, model, strategies, builtins, notes)
     resolved = [resolve_strategy(compiled, s) for s in chosen]
     resolved.insert(0, resolve_strategy(compiled, optimal))
 

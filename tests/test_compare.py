@@ -164,3 +164,50 @@ def test_chart_builders_name_missing_columns():
         make_ce_plane_chart(pd.DataFrame({"strategy": ["a"], "cost": [1], "qalys": [1]}))
     with pytest.raises(ValueError, match=r"frontier chart: frame lacks column\(s\) \['wtp_to'\]"):
         make_frontier_chart(pd.DataFrame({"policy": ["P1"], "wtp_from": [0.0]}))
+
+
+# --- the app's Strategies view (Streamlit AppTest) -----------------------------------------
+
+
+@pytest.fixture
+def app_test(tmp_path, monkeypatch):
+    import streamlit
+    from streamlit.testing.v1 import AppTest
+
+    from tests.ui.conftest import APP
+
+    monkeypatch.setenv("CAREDECIDE_HOME", str(tmp_path / "home"))
+    monkeypatch.setenv("CAREDECIDE_MODEL", str(demo_model_path()))
+    streamlit.cache_data.clear()
+    at = AppTest.from_file(APP, default_timeout=180)
+    at.run()
+    yield at.switch_page("views/strategies.py").run()
+    streamlit.cache_data.clear()
+
+
+def test_strategies_view_shows_the_library_table_and_frontier(app_test, demo):
+    from caredecide.cautions import CAUTION_SHORT
+
+    at = app_test
+    assert not at.exception, at.exception
+    assert any(CAUTION_SHORT in w.value for w in at.warning)
+    expected = compare_strategies(demo, wtp=30000.0, wtp_range=(0.0, 60000.0))
+    # Data frames in page order: the table, the fallbacks (expander), the frontier.
+    shown = at.dataframe[0].value
+    assert list(shown["strategy"]) == list(expected.table["strategy"])
+    np.testing.assert_array_equal(shown["cost"], expected.table["cost"])
+    frontier = at.dataframe[-1].value
+    np.testing.assert_array_equal(frontier["wtp_to"], expected.frontier["wtp_to"])
+    assert f"Best at 30,000 EUR per QALY: {expected.best_strategy}" in [
+        s.value for s in at.subheader]
+
+
+def test_strategies_view_without_a_range_and_with_a_bad_range(app_test):
+    at = app_test
+    at.number_input(key="strategies_high").set_value(0.0).run()
+    assert not at.exception, at.exception
+    assert len(at.dataframe) == 2  # the table and the fallbacks: no frontier
+    assert "Optimal policy over the willingness-to-pay range" not in [
+        s.value for s in at.subheader]
+    at.number_input(key="strategies_low").set_value(5000.0).run()
+    assert any("'to' must be above 'from'" in e.value for e in at.error)
