@@ -25,8 +25,6 @@ VIEWS = [
             url_path="uncertainty"),
     st.Page("views/strategies.py", title="Strategies", icon=":material/compare_arrows:",
             url_path="strategies"),
-    st.Page("views/strategies.py", title="Strategies", icon=":material/compare_arrows:",
-            url_path="strategies"),
     st.Page("views/report.py", title="Report", icon=":material/description:", url_path="report"),
 ]
 
