@@ -8,9 +8,11 @@ Prints, for ``--draws`` draws (default 10,000) of the synthetic demo model:
 * beside it, the reference measured in the same run: the solver alone on the same
   parameter sets (compile + ``solve`` in the same chunks, no evaluation or outputs), and
   ``solve`` alone, so the ratios show what the analysis adds to the core;
-* with ``--million``: one run of 1,000,000 draws, to show that memory stays bounded
-  (takes long: most of the time is spent compiling the age-dependent competing-risk
-  rows); ``--workers K`` runs it on a local Dask cluster of K processes.
+* with ``--million``: one run of 1,000,000 draws, to show that memory stays bounded;
+  ``--workers K`` runs it on a local Dask cluster of K processes. On the demo model this
+  takes hours on 2 cores (compiling its age-dependent competing-risk rows costs a few
+  milliseconds per draw), so ``--million-model light`` runs it on a small synthetic
+  model embedded below (3 states, 20 cycles, no age dependence) instead.
 
 Each measurement runs in its own subprocess so peak memory is that run's alone.
 Not a test: run ``python benchmarks/bench_psa.py``.
@@ -28,17 +30,108 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 
+LIGHT_MODEL = """
+format = 1
+title = "Synthetic: light model for the million-draw memory check"
+description = "Synthetic: invented for a benchmark; not a clinical scenario."
+
+[settings]
+cycle_years = 1.0
+horizon_cycles = 20
+start_age = 60.0
+start = "well"
+discount_outcomes = 0.03
+discount_costs = 0.03
+objective = "net_benefit"
+willingness_to_pay = 20000.0
+within_cycle = "trapezoid"
+
+[[states]]
+id = "well"
+qaly_weight = 0.9
+cost = 100.0
+
+[[states]]
+id = "sick"
+qaly_weight = "u_sick"
+cost = "c_sick"
+
+[[states]]
+id = "dead"
+absorbing = true
+
+[[actions]]
+id = "wait"
+allowed_in = "all"
+
+[[actions]]
+id = "treat"
+allowed_in = ["sick"]
+oneoff_cost = 500.0
+cost_per_cycle = "c_drug"
+
+[transitions.wait.well]
+sick = "p_sick"
+dead = 0.01
+well = "rest"
+
+[transitions.wait.sick]
+dead = "p_die_sick"
+sick = "rest"
+
+[transitions.treat.sick]
+dead = "with_rr(p_die_sick, rr_treat)"
+sick = "rest"
+
+[parameters.p_sick]
+value = 0.1
+source = "Synthetic: invented for a benchmark"
+distribution = { type = "beta", mean = 0.1, se = 0.02 }
+
+[parameters.p_die_sick]
+value = 0.2
+source = "Synthetic: invented for a benchmark"
+distribution = { type = "beta", mean = 0.2, se = 0.04 }
+
+[parameters.rr_treat]
+value = 0.6
+source = "Synthetic: invented for a benchmark"
+distribution = { type = "lognormal", low = 0.4, high = 0.9 }
+
+[parameters.u_sick]
+value = 0.6
+source = "Synthetic: invented for a benchmark"
+distribution = { type = "beta", mean = 0.6, se = 0.05 }
+
+[parameters.c_sick]
+value = 2000.0
+source = "Synthetic: invented for a benchmark"
+distribution = { type = "gamma", mean = 2000.0, se = 400.0 }
+
+[parameters.c_drug]
+value = 1500.0
+source = "Synthetic: invented for a benchmark"
+distribution = { type = "gamma", mean = 1500.0, se = 300.0 }
+"""
+
 
 def _peak_mib() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # Linux: KiB
 
 
-def child_psa(draws: int, seed: int, workers: int | None) -> dict:
-    from caredecide.modelfile import load_model
-    from caredecide.uncertainty.psa import default_chunk_size, run_psa
+def _model(which: str):
+    from caredecide.modelfile import load_model, loads_model
     from synthetic_cohort import demo_model_path
 
-    model = load_model(demo_model_path())
+    if which == "light":
+        return loads_model(LIGHT_MODEL, file="<light benchmark model>")
+    return load_model(demo_model_path())
+
+
+def child_psa(draws: int, seed: int, workers: int | None, which: str = "demo") -> dict:
+    from caredecide.uncertainty.psa import default_chunk_size, run_psa
+
+    model = _model(which)
     start = time.perf_counter()
     if workers:
         from caredecide.uncertainty.cluster import dask_client, dask_map
@@ -102,9 +195,10 @@ def child_solver(draws: int, seed: int) -> dict:
             "peak_rss_mib": _peak_mib()}
 
 
-def _run(kind: str, draws: int, seed: int, workers: int | None = None) -> dict:
+def _run(kind: str, draws: int, seed: int, workers: int | None = None,
+         which: str = "demo") -> dict:
     command = [sys.executable, __file__, "--child", kind, "--draws", str(draws), "--seed",
-               str(seed)]
+               str(seed), "--model", which]
     if workers:
         command += ["--workers", str(workers)]
     output = subprocess.run(command, check=True, capture_output=True, text=True, cwd=ROOT)
@@ -119,10 +213,14 @@ def main() -> None:
                         help="also run 1,000,000 draws and report peak memory (slow)")
     parser.add_argument("--workers", type=int, default=None,
                         help="run the --million case on a local Dask cluster of K processes")
+    parser.add_argument("--million-model", choices=("demo", "light"), default="demo",
+                        help="model of the --million run (light: small synthetic model)")
+    parser.add_argument("--model", choices=("demo", "light"), default="demo",
+                        help=argparse.SUPPRESS)
     parser.add_argument("--child", choices=("psa", "solver"), help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child == "psa":
-        print(json.dumps(child_psa(args.draws, args.seed, args.workers)))
+        print(json.dumps(child_psa(args.draws, args.seed, args.workers, args.model)))
         return
     if args.child == "solver":
         print(json.dumps(child_solver(args.draws, args.seed)))
@@ -144,8 +242,9 @@ def main() -> None:
           f"PSA / solve alone: {psa['total_s'] / reference['solve_s']:.1f}x")
     print(f"  EVPI of the timing decision {psa['evpi']:,.2f} (MC s.e. {psa['evpi_se']:,.2f})")
     if args.million:
-        big = _run("psa", 1_000_000, args.seed, args.workers)
-        print(f"  1,000,000 draws{f' on {args.workers} Dask workers' if args.workers else ''}: "
+        big = _run("psa", 1_000_000, args.seed, args.workers, args.million_model)
+        print(f"  1,000,000 draws of the {args.million_model} model"
+              f"{f' on {args.workers} Dask workers' if args.workers else ''}: "
               f"{big['total_s']:.0f} s (outputs {big['outputs_s']:.0f} s), chunk "
               f"{big['chunk_size']:,}, kept per-draw results {big['kept_bytes'] / 2**20:.0f} MiB, "
               f"peak {big['peak_rss_mib']:.0f} MiB of this process"
