@@ -102,6 +102,12 @@ class PolicyFrontier:
     notes: list[str] = field(default_factory=list)
 
 
+_TOTALS = (("cost", "costs"), ("qalys", "qalys"), ("life_years", "life_years"),
+           ("cost_undiscounted", "costs_undiscounted"),
+           ("qalys_undiscounted", "qalys_undiscounted"),
+           ("life_years_undiscounted", "life_years_undiscounted"))
+
+
 @dataclass
 class _Lines:
     """Distinct policies met so far, as NMB lines ``lambda E - C``."""
@@ -120,37 +126,28 @@ class _Lines:
     def add(self, compiled: CompiledModel, result: PolicyResult, found_by: str) -> np.ndarray:
         """Line index of each draw's policy in ``result`` (new lines appended)."""
         outcome, index = evaluate_policies(compiled, result.policy, Objective("net_benefit", 0.0))
-        ids = np.empty(result.n_draws, dtype=int)
-        known: dict[int, int] = {}
-        for draw, row in enumerate(index):  # one comparison per distinct policy found
-            if row in known:
-                ids[draw] = known[row]
-                continue
-            totals = {
-                name: float(getattr(outcome, attr)[row])
-                for name, attr in (("cost", "costs"), ("qalys", "qalys"),
-                                   ("life_years", "life_years"),
-                                   ("cost_undiscounted", "costs_undiscounted"),
-                                   ("qalys_undiscounted", "qalys_undiscounted"),
-                                   ("life_years_undiscounted", "life_years_undiscounted"))
-            }
+        _, first_draw = np.unique(index, return_index=True)  # first draw of each row 0..U-1
+        line_of = np.empty(outcome.costs.shape[0], dtype=int)
+        for row, draw in enumerate(first_draw):  # one pass per distinct policy, not per draw
+            totals = {name: float(getattr(outcome, attr)[row]) for name, attr in _TOTALS}
             match = self._match(totals)
             if match is None:
                 match = len(self.policies)
                 self.policies.append(result.policy[draw])
                 self.totals.append(totals)
-                self.structures.append(_structure_text(result, draw))
+                self.structures.append(_structure_text(result, int(draw)))
                 self.found_by.append(found_by)
-            known[row] = ids[draw] = match
-        return ids
+            line_of[row] = match
+        return line_of[index]
 
     def _match(self, totals: dict[str, float]) -> int | None:
-        for k, other in enumerate(self.totals):
-            if np.isclose(totals["cost"], other["cost"], rtol=1e-12, atol=1e-9) and np.isclose(
-                totals["qalys"], other["qalys"], rtol=1e-12, atol=1e-12
-            ):
-                return k
-        return None
+        if not self.totals:
+            return None
+        cost = np.array([t["cost"] for t in self.totals])
+        qalys = np.array([t["qalys"] for t in self.totals])
+        same = np.isclose(totals["cost"], cost, rtol=1e-12, atol=1e-9) & np.isclose(
+            totals["qalys"], qalys, rtol=1e-12, atol=1e-12)
+        return int(np.argmax(same)) if same.any() else None
 
 
 def _structure_text(result: PolicyResult, draw: int) -> str:
