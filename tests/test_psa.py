@@ -188,6 +188,25 @@ def test_convergence_ends_at_the_full_estimates(result):
         result.evpi()["expected_optimal_value"])
 
 
+def test_infinite_horizon_has_one_age_band():
+    data = uncertain_model_dict()
+    data["settings"].pop("horizon_cycles")
+    data["settings"]["horizon"] = "infinite"
+    stationary = run_psa(load_dict(data), 60, seed=2)
+    bands = stationary.acceptability_by_age_band()
+    assert len(bands) == 2 and bands["age_from"].isna().all()
+    np.testing.assert_allclose(bands["share"].sum(), 1.0)
+
+
+def test_user_strategies_join_the_candidates(model):
+    from caredecide.strategies import from_age
+
+    extra = from_age("treat", 63.0, name="my own rule")
+    result = run_psa(model, 30, seed=1, strategies=[extra], n_frequent=0)
+    names = [n for c in result.candidates for n in (c.name, *c.also)]
+    assert "my own rule" in names
+
+
 def test_rank_correlation_reaches_the_draws(model):
     linked = run_psa(model, 200, seed=3, n_frequent=0,
                      rank_correlation={("u_sick", "c_drug"): 0.8})

@@ -71,6 +71,12 @@ def run_uncertainty(
         int | None,
         typer.Option("--chunk-size", min=1, help="Draws per chunk (default: from memory)."),
     ] = None,
+    strategies: Annotated[
+        Path | None,
+        typer.Option("--strategies", exists=True, dir_okay=False, readable=True,
+                     help="Strategy table (CSV) whose strategies join the candidates "
+                          "(default: MODEL.strategies.csv beside the model, if any)."),
+    ] = None,
     wtp_range: Annotated[
         tuple[float, float] | None,
         typer.Option("--wtp-range", help="Willingness-to-pay range LO HI for the curves."),
@@ -98,16 +104,22 @@ def run_uncertainty(
         raise typer.Exit(code=2)
     with user_errors():
         from caredecide.modelfile import load_model
+        from caredecide.strategies import read_strategy_table, sibling_table
         from caredecide.uncertainty.psa import run_psa
 
         loaded = load_model(model)
+        table = strategies or sibling_table(model)
+        extra = read_strategy_table(table) if table is not None else []
+        if table is not None and not quiet:
+            stderr.print(f"Candidates include the strategies of {table}")
         with progress("solving draws", total=draws, quiet=quiet) as bar:
             task = bar.add_task("solving draws", total=draws)
 
             def advance(done: int, total: int) -> None:
                 bar.update(task, completed=done)
 
-            options = dict(chunk_size=chunk_size, wtp_range=wtp_range, progress=advance)
+            options = dict(chunk_size=chunk_size, wtp_range=wtp_range, strategies=extra,
+                           progress=advance)
             if workers is None and scheduler is None:
                 result = run_psa(loaded, draws, seed, **options)
             else:

@@ -49,6 +49,21 @@ def test_writes_tables_charts_and_summary(model_file, tmp_path):
     np.testing.assert_allclose(bands.groupby(["state", "age_from"])["share"].sum(), 1.0)
 
 
+def test_a_strategy_table_beside_the_model_joins_the_candidates(model_file, tmp_path):
+    table = model_file.with_name("small.strategies.csv")
+    table.write_text("strategy,state,action\nalways treat when sick,sick,treat\n")
+    try:
+        result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "20",
+                                     "--out", str(tmp_path)])
+    finally:
+        table.unlink()
+    assert result.exit_code == 0, result.output
+    assert "Candidates include the strategies of" in result.stderr
+    candidates = pd.read_csv(tmp_path / "candidates.csv")
+    names = set(candidates["candidate"]) | set(candidates["also"].dropna().str.split("; ").sum())
+    assert "always treat when sick" in names
+
+
 def test_quiet_prints_no_caution(model_file):
     result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "20", "--quiet"])
     assert result.exit_code == 0, result.output
