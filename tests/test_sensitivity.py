@@ -447,3 +447,17 @@ def test_threshold_progress_counts_brackets_up_to_the_total():
     assert calls[0] == (0, n_switches) and calls[-1] == (n_switches, n_switches)
     done = [d for d, _ in calls]
     assert done == sorted(done)
+
+
+def test_fixed_parameter_without_range_reports_no_range():
+    model = hand_model()
+    parameters = dict(model.parameters)
+    parameters["fixed"] = Parameter("fixed", 2.0, SYNTHETIC)  # no low/high, no distribution
+    model = replace(model, parameters=parameters)
+    ranges = parameter_ranges(model, ["fixed"])
+    assert ranges.at[0, "range_from"] == "fixed (no range)" and not ranges.at[0, "varies"]
+    table = parameter_thresholds(model, ["fixed", "p"], grid=5).set_index("parameter")
+    assert table.at["fixed", "status"] == "no range (low = high)"
+    assert table.at["p", "status"] == "switch"
+    row = one_way(model, ["fixed"]).table.iloc[0]
+    assert row["swing"] == 0.0 and row["policy_changes"] == "none"
