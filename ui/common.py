@@ -195,15 +195,23 @@ def check_model(text: str, file: str, base_dir: str) -> Checked:
 
 def problems_under(problems: tuple[Problem, ...], *prefixes: str) -> list[Problem]:
     """Problems whose table path starts with one of ``prefixes`` (``""`` = every problem)."""
-    return [p for p in problems if any(p.where == x or p.where.startswith(x) for x in prefixes)]
+    def under(where: str, prefix: str) -> bool:
+        return not prefix or where == prefix or where.startswith((f"{prefix}.", f"{prefix}["))
+
+    return [p for p in problems if any(under(p.where, x) for x in prefixes)]
 
 
-def show_problems(problems: list[Problem], *, title: str = "") -> None:
-    """Each problem as an error box: where it is, what is wrong, what was expected."""
+def show_problems(problems: list[Problem], *, locate=None) -> None:
+    """Each problem as an error box: where it is, what is wrong, what was expected.
+
+    ``locate(where) -> str`` may name the table row and column the problem points to.
+    """
     for problem in problems:
+        place = locate(problem.where) if locate is not None and problem.where else ""
         where = f"`{problem.where}`: " if problem.where else ""
+        cell = f"**{place}** - " if place else ""
         line = f" (line {problem.line})" if problem.line else ""
-        st.error(f"{title}{where}{problem.message}{line}", icon=":material/error:")
+        st.error(f"{cell}{where}{problem.message}{line}", icon=":material/error:")
 
 
 @st.cache_data(max_entries=64, show_spinner=False)

@@ -297,3 +297,37 @@ def with_header_comments(old_text: str, new_text: str) -> str:
             break
         header.append(line if line.endswith("\n") else line + "\n")
     return "".join(header) + new_text
+
+
+_ID_COLUMN = {"states": "id", "actions": "id", "parameters": "name"}
+
+
+def locate(name: str, frame: pd.DataFrame, where: str) -> str:
+    """Row and column of table ``name`` that a problem's table path points to, in words.
+
+    ``states.stage_1.cost`` -> ``"row 1 (stage_1), column cost"``;
+    ``transitions.treat.stage_1.dead`` -> ``"row stage_1, column dead"``; ``""`` when the
+    path does not point into ``frame``.
+    """
+    rest = where[len(name):].lstrip(".") if where.startswith(name) else ""
+    if not rest:
+        return ""
+    if name == "settings":
+        column = rest.split(".")[0]
+        return f"column {column}" if column in frame.columns else ""
+    head, _, tail = rest.partition(".")
+    if name in _ID_COLUMN:
+        if head.startswith("[") and head.endswith("]") and head[1:-1].isdigit():
+            row, label = int(head[1:-1]), ""
+        else:
+            matches = [i for i, v in enumerate(frame[_ID_COLUMN[name]]) if _text(v) == head]
+            if not matches:
+                return ""
+            row, label = matches[0], f" ({head})"
+        column = tail.split(".")[0]
+        place = f"row {row + 1}{label}"
+        return f"{place}, column {column}" if column in frame.columns else place
+    if head in frame.index:  # a transition or rate matrix: from-state row, to-state column
+        column = tail.split(".")[0]
+        return f"row {head}, column {column}" if column in frame.columns else f"row {head}"
+    return ""

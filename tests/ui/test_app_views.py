@@ -131,7 +131,8 @@ def test_an_invalid_edit_shows_its_error_beside_the_table_and_is_kept(app, priva
     source = app.session_state[common.SOURCE_KEY]
     assert drafts.load_draft(source).text == text  # ...and autosaved
     errors = [e.value for e in app.error]
-    assert any("transitions.treat.stage_1.stage_2_tx" in e and "[0, 1]" in e for e in errors)
+    assert any("transitions.treat.stage_1.stage_2_tx" in e and "[0, 1]" in e
+               and "row stage_1, column stage_2_tx" in e for e in errors)
     # The other views refuse to solve and point back to the model view.
     app.switch_page("views/policy.py").run()
     assert not app.exception

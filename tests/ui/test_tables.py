@@ -133,3 +133,33 @@ def test_a_table_edit_is_written_to_the_file_and_read_back(value, cost):
     back = loads_model(dumps_model(edited), file="t", validate=False)
     assert back.parameters["p_progress"].value == value
     assert back.states[1].cost == cost
+
+
+@pytest.mark.parametrize(
+    ("name", "where", "expected"),
+    [
+        ("states", "states.late.cost", "row 2 (late), column cost"),
+        ("states", "states[3].id", "row 4, column id"),
+        ("states", "states.nowhere.cost", ""),
+        ("actions", "actions.treat.allowed_in", "row 2 (treat), column allowed_in"),
+        ("parameters", "parameters.c_treatment.value", "row 2 (c_treatment), column value"),
+        ("parameters", "parameters.c_treatment", "row 2 (c_treatment)"),
+        ("settings", "settings.start.b", "column start"),
+        ("transitions.wait", "transitions.wait.early.late", "row early, column late"),
+        ("transitions.wait", "transitions.wait.early", "row early"),
+        ("transitions.wait", "transitions.treat.early.dead", ""),
+    ],
+)
+def test_locate_names_the_row_and_column_of_a_problem(name, where, expected):
+    model = loads_model(TEMPLATES["treat-or-wait"], file="t")
+    assert tables.locate(name, tables.model_to_tables(model)[name], where) == expected
+
+
+def test_problems_under_a_table_do_not_leak_to_a_table_with_a_longer_name():
+    from caredecide.errors import Problem
+
+    problems = (Problem("transitions.wait.a.b", "x"), Problem("transitions.waitlist.a.b", "y"),
+                Problem("states[2].id", "z"), Problem("", "general"))
+    assert [p.message for p in common.problems_under(problems, "transitions.wait")] == ["x"]
+    assert [p.message for p in common.problems_under(problems, "states")] == ["z"]
+    assert len(common.problems_under(problems, "")) == 4

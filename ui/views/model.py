@@ -16,7 +16,7 @@ from caredecide.model import OBJECTIVES, PARAMETER_KINDS
 from caredecide.modelfile import dumps_model
 from synthetic_cohort import MODELS_DIR
 from ui import common, drafts
-from ui.tables import model_to_tables, model_with_table, with_header_comments
+from ui.tables import locate, model_to_tables, model_with_table, with_header_comments
 from ui.templates import TEMPLATES
 
 
@@ -131,7 +131,8 @@ def _table_editor(model, name: str, frame, problems) -> None:
         hide_index=not name.startswith(("transitions.", "rates.")),
         column_config=COLUMN_CONFIG.get(name), width="stretch",
     )
-    common.show_problems(common.problems_under(problems, name))
+    common.show_problems(common.problems_under(problems, name),
+                         locate=lambda where: locate(name, frame, where))
     if _edited(key):
         try:
             new_model = model_with_table(model, name, edited)
