@@ -61,8 +61,8 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 import pandas as pd
 
-from caredecide.batch import chunk_size_for
-from caredecide.compile import compile_model, default_memory_limit
+from caredecide.batch import WORKING_MEMORY_FACTOR
+from caredecide.compile import compile_model, default_memory_limit, estimate_compiled_bytes
 from caredecide.errors import ModelError, Problem
 from caredecide.evaluate import evaluate_policy
 from caredecide.objective import Objective
@@ -265,10 +265,31 @@ def chunk_ranges(n_draws: int, chunk_size: int) -> list[tuple[int, int]]:
     return [(s, min(s + chunk_size, n_draws)) for s in range(0, n_draws, chunk_size)]
 
 
+RESULT_ARRAYS_PER_CELL = 14
+"""Float64 values per (cycle, state) that one draw's solver results and policy
+evaluations hold at once (values, Q-values per action, gaps, policy, trace, flows and
+intermediates) beyond the compiled arrays - measured with benchmarks/bench_psa.py."""
+
+
+def draw_working_bytes(model) -> int:
+    """Bytes of working memory one draw needs in a chunk (compile, solve, evaluate).
+
+    The batch driver's rule (``WORKING_MEMORY_FACTOR`` copies of the compiled arrays)
+    covers compiling and solving; the solver's
+    per-cycle results and the cohort traces grow with the horizon even when the
+    compiled arrays do not (a model without age dependence), so they are added here.
+    """
+    n_t = (model.n_cycles() or 1) + 1
+    cells = n_t * len(model.states) * (len(model.actions) + RESULT_ARRAYS_PER_CELL)
+    return 8 * cells
+
+
 def default_chunk_size(model, n_draws: int, memory_limit_bytes: int | None) -> int:
     """Draws per chunk from the memory budget, a multiple of BLOCK_SIZE when possible."""
     budget = _memory_limit(memory_limit_bytes)
-    size = chunk_size_for(model, n_draws, budget)
+    per_draw = WORKING_MEMORY_FACTOR * estimate_compiled_bytes(model, 1) + draw_working_bytes(
+        model)
+    size = int(max(1, min(n_draws, budget // per_draw)))
     return max(size // BLOCK_SIZE, 1) * BLOCK_SIZE if size >= BLOCK_SIZE else size
 
 
