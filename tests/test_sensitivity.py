@@ -461,3 +461,38 @@ def test_fixed_parameter_without_range_reports_no_range():
     assert table.at["p", "status"] == "switch"
     row = one_way(model, ["fixed"]).table.iloc[0]
     assert row["swing"] == 0.0 and row["policy_changes"] == "none"
+
+
+@given(
+    st.floats(0.05, 0.3),  # loss
+    st.floats(0.1, 0.8),  # hr
+)
+@settings(max_examples=15, deadline=None)
+def test_threshold_in_p_follows_the_closed_form(loss, hr):
+    # gap = loss - p (1 - hr) (hand_model's docstring) -> p* = loss / (1 - hr)
+    model = hand_model()
+    parameters = dict(model.parameters)
+    parameters["loss"] = replace(parameters["loss"], value=loss)
+    parameters["hr"] = replace(parameters["hr"], value=hr)
+    parameters["p"] = replace(parameters["p"], low=0.0, high=1.0)
+    model = replace(model, parameters=parameters)
+    table = parameter_thresholds(model, ["p"], grid=4)
+    expected = loss / (1 - hr)
+    if expected < 1.0:
+        assert list(table["status"]) == ["switch"]
+        assert table.at[0, "threshold"] == pytest.approx(expected, abs=1e-8)
+    else:
+        assert list(table["status"]) == [NO_SWITCH]
+
+
+def test_one_way_on_the_demo_equals_solving_each_end_alone():
+    from caredecide.modelfile import load_model
+    from synthetic_cohort import demo_model_path
+
+    model = load_model(demo_model_path())
+    table = one_way(model).table
+    for row in table.itertuples():
+        for end in ("low", "high"):
+            compiled, alone = _solve_sets(model, {row.parameter: np.array([getattr(row, end)])})
+            expected = alone.value[0, 0] @ compiled.start_distribution
+            assert getattr(row, f"value_{end}") == pytest.approx(expected, rel=1e-12)
