@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import signal
 import subprocess
 import sys
 from pathlib import Path
@@ -84,11 +85,21 @@ def run_app(
     command, env = streamlit_command(path, port, headless)
     if not quiet:
         stderr.print(f"Starting the app on http://127.0.0.1:{port} with {path} (Ctrl+C stops it)")
+    raise typer.Exit(code=_run_until_stopped(command, env))
+
+
+def _run_until_stopped(command: list[str], env: dict[str, str]) -> int:
+    """Run the server; a SIGTERM sent to this command is passed on, so no server is orphaned."""
+    process = subprocess.Popen(command, env=env)
+    previous = signal.signal(signal.SIGTERM, lambda signum, _frame: process.send_signal(signum))
     try:
-        status = subprocess.call(command, env=env)
-    except KeyboardInterrupt:
-        status = 0
-    raise typer.Exit(code=status)
+        while True:
+            try:
+                return process.wait()
+            except KeyboardInterrupt:  # Ctrl+C reaches the server too; wait for it to stop
+                continue
+    finally:
+        signal.signal(signal.SIGTERM, previous)
 
 
 def register(app: typer.Typer) -> None:

@@ -34,9 +34,23 @@ def test_command_runs_streamlit_on_loopback_with_the_model_in_the_environment(tm
     assert app_script().name == "app.py" and app_script().exists()
 
 
+class _FakeServer:
+    """Stands in for the streamlit process: records how it was started, exits with a code."""
+
+    def __init__(self, calls: list, code: int = 0):
+        self.calls, self.code = calls, code
+
+    def __call__(self, command, env):
+        self.calls.append((command, env))
+        return self
+
+    def wait(self) -> int:
+        return self.code
+
+
 def test_app_defaults_to_the_demo_model_and_prints_the_caution(monkeypatch):
     calls = []
-    monkeypatch.setattr(subprocess, "call", lambda cmd, env: calls.append((cmd, env)) or 0)
+    monkeypatch.setattr(subprocess, "Popen", _FakeServer(calls))
     result = runner.invoke(root, ["app", "--port", "9123", "--headless"])
     assert result.exit_code == 0, result.output
     (cmd, env), = calls
@@ -46,7 +60,7 @@ def test_app_defaults_to_the_demo_model_and_prints_the_caution(monkeypatch):
 
 
 def test_app_passes_the_exit_code_of_streamlit_through(monkeypatch):
-    monkeypatch.setattr(subprocess, "call", lambda cmd, env: 3)
+    monkeypatch.setattr(subprocess, "Popen", _FakeServer([], code=3))
     assert runner.invoke(root, ["app", "--quiet"]).exit_code == 3
 
 
@@ -57,12 +71,14 @@ def test_missing_model_file_is_refused_naming_it(tmp_path):
 
 
 def test_oversized_model_file_is_refused_with_its_size(tmp_path, monkeypatch):
-    monkeypatch.setattr(subprocess, "call", lambda cmd, env: 0)
+    calls = []
+    monkeypatch.setattr(subprocess, "Popen", _FakeServer(calls))
     big = tmp_path / "big.toml"
     big.write_bytes(b"#" * (MAX_MODEL_BYTES + 1))
     result = runner.invoke(root, ["app", str(big)])
     assert result.exit_code == 2
     assert f"{MAX_MODEL_BYTES + 1} bytes; expected at most {MAX_MODEL_BYTES}" in result.stderr
+    assert calls == []  # the server was never started
 
 
 def test_port_outside_the_allowed_range_is_refused():
