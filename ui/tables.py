@@ -71,6 +71,13 @@ def _text(value: Any) -> str:
     return str(value).strip()
 
 
+def _flag(value: Any, default: bool) -> bool:
+    """A check-box cell; empty (a newly added row) takes ``default``."""
+    if value is None or value is pd.NA or (isinstance(value, float) and math.isnan(value)):
+        return default
+    return bool(value)
+
+
 def _names(text: str) -> tuple[str, ...]:
     return tuple(part.strip() for part in text.split(",") if part.strip())
 
@@ -156,7 +163,7 @@ def model_to_tables(model: Model) -> dict[str, pd.DataFrame]:
               "cost": expression_cell(st.cost), "absorbing": st.absorbing, "alive": st.alive,
               "negative_cost_allowed": st.negative_cost_allowed} for st in model.states],
             columns=list(STATE_COLUMNS),
-        ),
+        ).astype({c: "boolean" for c in ("absorbing", "alive", "negative_cost_allowed")}),
         "actions": pd.DataFrame(
             [{"id": a.id, "label": a.label,
               "allowed_in": a.allowed_in if isinstance(a.allowed_in, str)
@@ -193,7 +200,7 @@ def _settings(row: dict[str, Any]) -> Settings:
         cycle_years=float(row["cycle_years"]),
         horizon_cycles=int(cycles) if cycles is not None and cycles.is_integer() else cycles,
         until_age=_optional_number(row["until_age"]),
-        infinite_horizon=bool(row["infinite_horizon"]),
+        infinite_horizon=_flag(row["infinite_horizon"], False),
         start_age=float(row["start_age"]),
         start=cell_start(row["start"]),
         discount_outcomes=float(row["discount_outcomes"]),
@@ -212,11 +219,12 @@ def _number_or_zero(value: Any) -> float | str:
 
 
 def _state(row: dict[str, Any]) -> State:
+    absorbing = _flag(row["absorbing"], False)
     return State(
         id=_text(row["id"]), label=_text(row["label"]),
         qaly_weight=_number_or_zero(row["qaly_weight"]), cost=_number_or_zero(row["cost"]),
-        absorbing=bool(row["absorbing"]), alive=bool(row["alive"]),
-        negative_cost_allowed=bool(row["negative_cost_allowed"]),
+        absorbing=absorbing, alive=_flag(row["alive"], not absorbing),
+        negative_cost_allowed=_flag(row["negative_cost_allowed"], False),
     )
 
 

@@ -224,3 +224,27 @@ def test_switching_the_objective_to_qalys_shows_the_library_result(app):
     expected = result.to_frame()
     expected = expected[expected["state"].isin(["stage_1", "stage_2", "stage_3"])]
     assert list(heat_map["action"]) == [labels[a] for a in expected["action"]]
+
+
+def test_adding_a_state_row_keeps_it_and_reports_what_it_lacks(app):
+    key = f"table_states_{app.session_state[common.REVISION_KEY]}"
+    app.session_state[key] = {"edited_rows": {}, "added_rows": [{"id": "stage_4"}],
+                              "deleted_rows": []}
+    app.run()
+    assert not app.exception, app.exception
+    model = loads_model(app.session_state[common.TEXT_KEY], file="t", base_dir=_demo_dir(),
+                        validate=False)
+    added = model.state("stage_4")
+    assert (added.alive, added.absorbing, added.cost) == (True, False, 0.0)
+
+
+def test_deleting_a_parameter_row_reports_the_expressions_that_use_it(app):
+    text = app.session_state[common.TEXT_KEY]
+    names = list(loads_model(text, file="t", base_dir=_demo_dir()).parameters)
+    key = f"table_parameters_{app.session_state[common.REVISION_KEY]}"
+    app.session_state[key] = {"edited_rows": {}, "added_rows": [],
+                              "deleted_rows": [names.index("c_drug_year")]}
+    app.run()
+    assert not app.exception, app.exception
+    assert "c_drug_year" not in app.session_state[common.TEXT_KEY].split("[parameters", 1)[1]
+    assert any("c_drug_year" in e.value for e in app.error)  # states still refer to it

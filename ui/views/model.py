@@ -64,7 +64,11 @@ def _discard_draft() -> None:
     elif kind == "upload":
         text = common.working_text()  # the uploaded bytes are gone; keep what is shown
     else:
-        text = common.read_model_file(Path(source))
+        try:
+            text = common.read_model_file(Path(source))
+        except (OSError, ModelError) as error:  # the file is gone: keep what is shown
+            st.session_state["cd_startup_error"] = f"{source}: {error}"
+            text = common.working_text()
     common.open_model(source, text)
 
 
