@@ -185,6 +185,9 @@ def model_to_tables(model: Model) -> dict[str, pd.DataFrame]:
     for kind, table in (("transitions", model.transitions), ("rates", model.rates)):
         for action_id, rows in table.items():
             tables[f"{kind}.{action_id}"] = _matrix(model, rows)
+    for action_id in model.action_ids:  # an action with no rows yet gets an empty matrix
+        if action_id not in model.transitions and action_id not in model.rates:
+            tables[f"transitions.{action_id}"] = _matrix(model, {})
     return tables
 
 
@@ -287,7 +290,9 @@ def model_with_table(model: Model, name: str, frame: pd.DataFrame) -> Model:
     kind, _, action_id = name.partition(".")
     if kind in ("transitions", "rates") and action_id:
         table = {k: dict(v) for k, v in getattr(model, kind).items()}
-        table[action_id] = _rows_from_matrix(frame, table.get(action_id, {}))
+        rows = _rows_from_matrix(frame, table.get(action_id, {}))
+        if rows or action_id in table:  # an untouched empty matrix adds nothing
+            table[action_id] = rows
         return replace(model, **{kind: table})
     raise KeyError(f"unknown model table {name!r}; expected one of settings, states, actions, "
                    "parameters, transitions.<action>, rates.<action>")

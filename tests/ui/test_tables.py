@@ -163,3 +163,19 @@ def test_problems_under_a_table_do_not_leak_to_a_table_with_a_longer_name():
     assert [p.message for p in common.problems_under(problems, "transitions.wait")] == ["x"]
     assert [p.message for p in common.problems_under(problems, "states")] == ["z"]
     assert len(common.problems_under(problems, "")) == 4
+
+
+def test_an_action_without_rows_gets_an_empty_matrix_to_fill():
+    model = loads_model(TEMPLATES["treat-or-wait"], file="t")
+    from dataclasses import replace
+
+    from caredecide.model import Action
+
+    model = replace(model, actions=(*model.actions, Action(id="refer", allowed_in=("early",))))
+    matrix = tables.model_to_tables(model)["transitions.refer"]
+    assert list(matrix.index) == list(model.state_ids)
+    assert tables.model_with_table(model, "transitions.refer", matrix) == model  # untouched
+    filled = matrix.copy()
+    filled.loc["early", "dead"] = "0.5"
+    edited = tables.model_with_table(model, "transitions.refer", filled)
+    assert edited.transitions["refer"] == {"early": {"dead": 0.5}}

@@ -207,8 +207,8 @@ else:
         for name in matrices:
             st.subheader(name)
             _table_editor(model, name, tables[name], problems)
-        others = [p for p in problems if p.where.startswith(("transitions", "rates"))
-                  and not any(p.where.startswith(n) for n in matrices)]
-        common.show_problems(others)
+        # Rows of an action that is not in the model: no matrix shows them.
+        common.show_problems([p for p in common.problems_under(problems, "transitions", "rates")
+                              if not common.problems_under((p,), *matrices)])
 with tabs[5]:
     _text_editor(problems)
