@@ -21,7 +21,7 @@ from caredecide.evaluate import evaluate_policy
 from caredecide.modelfile import loads_model
 from caredecide.objective import Objective
 from caredecide.solvers import solve
-from synthetic_cohort import demo_model_path
+from synthetic_cohort import MODELS_DIR, demo_model_path
 from tests.ui.conftest import APP
 from ui import common, drafts
 from ui.templates import TEMPLATES
@@ -248,3 +248,16 @@ def test_deleting_a_parameter_row_reports_the_expressions_that_use_it(app):
     assert not app.exception, app.exception
     assert "c_drug_year" not in app.session_state[common.TEXT_KEY].split("[parameters", 1)[1]
     assert any("c_drug_year" in e.value for e in app.error)  # states still refer to it
+
+
+@pytest.mark.parametrize("bundled", sorted(p.name for p in MODELS_DIR.glob("*.toml")))
+def test_every_bundled_model_opens_and_solves_in_the_views(app, bundled):
+    app.selectbox(key="open_bundled_choice").set_value(bundled)
+    app.button(key="open_bundled_button").click().run()
+    assert not app.exception, app.exception
+    assert app.session_state[common.SOURCE_KEY] == str((MODELS_DIR / bundled).resolve())
+    assert any("is valid" in s.value for s in app.success), [e.value for e in app.error]
+    for view in ("views/policy.py", "views/convergence.py"):
+        app.switch_page(view).run()
+        assert not app.exception, (view, app.exception)
+        assert not app.error, (view, [e.value for e in app.error])
