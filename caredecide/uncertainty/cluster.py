@@ -11,6 +11,9 @@ results equal a serial run's exactly. Results are taken back in draw order, with
 most ``max_in_flight`` chunks submitted and not yet collected, so neither the client nor
 the workers hold more than a few chunks at once.
 
+The pilot block (the first 1,000 draws, which picks the most frequent optimal policies
+as candidates) runs in the client process; every later chunk runs on the cluster.
+
 Typical use::
 
     with dask_client(workers=2) as client:            # a local cluster of 2 processes
