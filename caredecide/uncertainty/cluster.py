@@ -19,7 +19,7 @@ Typical use::
     with dask_client(workers=2) as client:            # a local cluster of 2 processes
         result = run_psa(model, 100_000, seed=1, map_chunks=dask_map(client))
 
-    with dask_client(scheduler="tcp://10.0.0.5:8786") as client:   # an existing cluster
+    with dask_client(scheduler="tcp://scheduler-host:8786") as client:   # an existing cluster
         ...
 
 On a real cluster every worker needs the same versions of caredecide, numpy and scipy
