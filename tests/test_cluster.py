@@ -50,3 +50,11 @@ def test_dask_client_refuses_zero_workers():
     with pytest.raises(ClusterError, match=r"workers = 0; expected a whole number >= 1"):
         with dask_client(workers=0):
             pass
+
+
+def test_dask_client_names_an_unreachable_scheduler():
+    # Port 1 on loopback: nothing listens there.
+    with pytest.raises(ClusterError, match=r"could not reach the Dask scheduler at "
+                                           r"'tcp://127\.0\.0\.1:1'"):
+        with dask_client("tcp://127.0.0.1:1", connect_timeout="1s"):
+            pass

@@ -60,6 +60,7 @@ def dask_client(
     *,
     processes: bool = True,
     threads_per_worker: int = 1,
+    connect_timeout: str = "20s",
 ) -> Iterator[object]:
     """A ``distributed.Client`` for an existing scheduler, or for a new local cluster.
 
@@ -73,6 +74,8 @@ def dask_client(
         Local cluster: workers in separate processes (true parallelism) or threads.
     threads_per_worker : int
         Local cluster: threads per worker.
+    connect_timeout : str
+        How long to try reaching ``scheduler`` (Dask time string, e.g. ``"20s"``).
 
     Raises
     ------
@@ -86,7 +89,7 @@ def dask_client(
     distributed = _distributed()
     if scheduler is not None:
         try:
-            client = distributed.Client(scheduler, timeout="20s")
+            client = distributed.Client(scheduler, timeout=connect_timeout)
         except (OSError, TimeoutError) as error:
             raise ClusterError(f"could not reach the Dask scheduler at {scheduler!r}: {error}. "
                                "Expected an address such as tcp://HOST:8786 of a running "
