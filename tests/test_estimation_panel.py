@@ -46,13 +46,14 @@ def test_exact_deaths_and_censoring_give_the_exponential_mle():
     # Constant hazard with exact event times: mu = deaths / person-years, and the observed
     # information d / mu^2 gives se(log mu) = 1 / sqrt(d) (exponential survival MLE;
     # Collett 2015, Modelling Survival Data in Medical Research, ch. 5; from memory).
-    years = [0.5, 1.0, 2.0, 3.0, 1.5, 4.0, 2.5]
-    ends = ["death", "death", "censor", "death", "censor", "censor", "death"]
+    # A death at the visit time itself (0 years) contributes the hazard mu and no time.
+    years = [0.5, 1.0, 2.0, 3.0, 1.5, 4.0, 2.5, 0.0]
+    ends = ["death", "death", "censor", "death", "censor", "censor", "death", "death"]
     estimate = estimate_panel(one_stage_records(years, ends))
-    deaths, person_years = 4, sum(years)  # 14.5
+    deaths, person_years = 5, sum(years)  # 14.5
     assert estimate.rates()[0] == pytest.approx(deaths / person_years, rel=1e-6)
     assert estimate.standard_errors()[0] == pytest.approx(1 / np.sqrt(deaths), rel=1e-4)
-    assert estimate.n_exact_deaths == 4 and estimate.n_censored == 3
+    assert estimate.n_exact_deaths == 5 and estimate.n_censored == 3
 
 
 def test_panel_status_only_gives_the_rate_from_the_survival_proportion():

@@ -158,6 +158,28 @@ def test_death_given_twice_is_an_error():
         records_from_frames(visits, patients_frame())
 
 
+def test_censoring_a_patient_recorded_dead_is_an_error():
+    visits = visits_frame(stage=(2, "dead"))
+    patients = patients_frame(death_years=(0, np.nan), censor_years=(0, 4.0))
+    with pytest.raises(
+        ModelError,
+        match=r"my_patients\.csv: patient SYN-1, column censor_years: value 4\.0 says alive at "
+        r"the end of follow-up, but the visits file records 'dead' at 2\.0 years",
+    ):
+        records_from_frames(visits, patients, patients_file="my_patients.csv")
+
+
+def test_death_at_the_last_visit_time_is_kept_and_censoring_there_is_not():
+    # Times are rounded in files: a death at the time of the last visit is still an exact
+    # death (an interval of length 0); a censoring time there adds nothing.
+    patients = patients_frame(death_years=(0, 2.0), censor_years=(1, 1.1))
+    records = records_from_frames(visits_frame(), patients)
+    tail = records.end_kind != OBSERVED
+    np.testing.assert_array_equal(records.end_kind[tail], [DEATH])
+    np.testing.assert_array_equal(records.years[tail], [0.0])
+    np.testing.assert_array_equal(records.start_state[tail], [1])
+
+
 def test_file_size_limit(tmp_path, monkeypatch):
     path = tmp_path / "visits.csv"
     visits_frame().to_csv(path, index=False)

@@ -49,7 +49,8 @@ class CohortRecords:
         Index of the state at the end (``OBSERVED``) or of the death state (``DEATH``);
         -1 when ``CENSORED``.
     years : (N,) float
-        Interval length in years (> 0).
+        Interval length in years (> 0; 0 only for an exact death at the time of the
+        patient's last visit).
     treated : (N,) bool
         On treatment during the interval (the ``treated`` flag of its start visit).
     end_kind : (N,) int
@@ -209,7 +210,8 @@ def records_from_frames(
     ModelError
         Listing every problem: missing columns, bad values, unknown stages, duplicate
         visit times, visits after death, deaths/censoring before the last visit,
-        patients missing from the patient table, conflicting death records.
+        patients missing from the patient table, conflicting death records (a death
+        given twice, or a censoring time for a patient the visits record as dead).
     """
     problems: list[Problem] = []
     missing = [c for c in VISIT_COLUMNS if c not in visits.columns]
@@ -432,16 +434,27 @@ def _follow_up_intervals(
             f"death_years is {death_at[i]}; give the death once",
         ),
     )
+    alive_after_death = np.flatnonzero(recorded_dead & np.isfinite(censor_at))
+    problems += _first_problems(
+        alive_after_death,
+        file,
+        lambda i: (
+            f"patient {patient_ids[i]}, column censor_years",
+            f"value {censor_at[i]} says alive at the end of follow-up, but the visits file "
+            f"records {death_state!r} at {last_time[i]} years; expected censor_years empty "
+            "for a patient who died",
+        ),
+    )
     if problems:
         raise ModelError(problems)
 
+    # A censoring time equal to the last visit adds nothing (known alive then). A death
+    # at the visit time itself (times rounded in the file) is kept: its contribution
+    # sum_k P_rk(0) q_k,dead = q_r,dead is the death rate of the observed state.
     died = np.isfinite(death_at) & ~recorded_dead
     censored = np.isfinite(censor_at) & ~recorded_dead & (censor_at > last_time)
     index = np.flatnonzero(died | censored)
     ends = np.where(died, death_at, censor_at)[index]
-    # A death at the visit time itself (0 years) has no exact-time density: skip it.
-    keep = ends > last_time[index]
-    index, ends = index[keep], ends[keep]
     return {
         "patient": index,
         "start_state": last_stage[index],
