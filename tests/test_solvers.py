@@ -6,11 +6,14 @@ the within-cycle table of Elbasha & Chhatwal 2016 and the DEALE of Beck et al. 1
 
 from __future__ import annotations
 
+import warnings
+from dataclasses import replace
+
 import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from quantecon.markov import DiscreteDP
+from quantecon.markov import DiscreteDP, backward_induction
 
 from caredecide.evaluate import evaluate_policy
 from caredecide.objective import Objective
@@ -150,6 +153,102 @@ def test_optimal_value_beats_every_fixed_policy_in_every_state(seed, n_states, n
         for fixed in candidates:
             outcome = evaluate_policy(compiled, fixed[None, None, :], objective)
             assert optimal.value[0, 0, s] >= outcome.value[0] - 1e-9
+
+
+@settings(max_examples=25, deadline=None)
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    n_states=st.integers(2, 7),
+    n_actions=st.integers(1, 3),
+    n_cycles=st.integers(1, 8),
+    n_absorbing=st.integers(0, 2),
+    rate=st.sampled_from([0.0, 0.035, 0.5]),
+)
+def test_backward_induction_agrees_with_quantecon(seed, n_states, n_actions, n_cycles,
+                                                  n_absorbing, rate):
+    # Reference library: quantecon.markov.backward_induction solves the same stationary
+    # finite-horizon problem; its values are as at the start of each period, ours in present
+    # value at the model start, converted by value_at_cycle_start(). The terminal value is
+    # given as at the end of the horizon in both.
+    rng = np.random.default_rng(seed)
+    n_absorbing = min(n_absorbing, n_states - 1)
+    P, u, g = random_mdp(rng, n_states, n_actions, n_absorbing)
+    allowed = _random_allowed(rng, n_states, n_actions, n_absorbing)
+    terminal = rng.uniform(-2, 2, n_states)
+    compiled = make_compiled(P[:, None], state_qaly=u[:, None], decision_qaly=g[:, None],
+                             allowed=allowed, n_cycles=n_cycles, discount_outcomes=rate,
+                             discount_costs=rate)
+    result = solve(compiled, QALYS, terminal_value=terminal)
+
+    R = np.where(allowed, u[0][:, None] + g[0], -np.inf)
+    with warnings.catch_warnings():  # quantecon warns that beta = 1 has no infinite horizon
+        warnings.simplefilter("ignore", UserWarning)
+        ddp = DiscreteDP(R, P[0].transpose(1, 0, 2), 1 / (1 + rate))
+    values, sigmas = backward_induction(ddp, n_cycles, v_term=terminal)
+    np.testing.assert_allclose(result.value_at_cycle_start()[0], values, rtol=1e-10, atol=1e-10)
+    decided = ~result.indifferent[0] & result.decision_states
+    assert (result.policy[0][decided] == sigmas[decided]).all()
+
+
+def _every_policy(n_cycles: int, n_states: int, n_actions: int) -> np.ndarray:
+    """(A^(T S), T, S) every deterministic Markov policy of a small problem."""
+    grids = np.meshgrid(*[np.arange(n_actions)] * (n_cycles * n_states), indexing="ij")
+    return np.stack([g.ravel() for g in grids], axis=-1).reshape(-1, n_cycles, n_states)
+
+
+def _best_value_from_each_state(compiled, policies, objective) -> np.ndarray:
+    """(S,) the largest evaluated value over ``policies`` (K, Tpi, S) from each start state."""
+    best = []
+    for s in range(compiled.n_states):
+        start = replace(compiled, start_distribution=np.eye(compiled.n_states)[s])
+        tiled = start.take_draws(np.zeros(len(policies), dtype=int))
+        best.append(evaluate_policy(tiled, policies, objective).value.max())
+    return np.array(best)
+
+
+@settings(max_examples=15, deadline=None)
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    n_cycles=st.integers(1, 3),
+    within=st.sampled_from(["start", "end", "trapezoid", "simpson"]),
+    rates=st.sampled_from([(0.0, 0.0), (0.03, 0.03), (0.015, 0.06)]),
+)
+def test_backward_induction_equals_the_best_of_every_policy(seed, n_cycles, within, rates):
+    # Optimality of backward induction (Puterman 1994, section 4.5): with time-varying
+    # transitions and rewards, one-off charges, a within-cycle method and differential
+    # discounting, the solver's value from each start state equals the largest value over
+    # all A^(T S) deterministic Markov policies, enumerated and evaluated one by one.
+    rng = np.random.default_rng(seed)
+    S, A, T = 3, 2, n_cycles
+    P = rng.random((T, A, S, S)) ** 2
+    P /= P.sum(-1, keepdims=True)
+    base = make_compiled(
+        P, state_qaly=rng.uniform(0, 1, (T + 1, S)), state_cost=rng.uniform(0, 500, (T + 1, S)),
+        decision_qaly=rng.uniform(-0.2, 0.2, (T, S, A)),
+        decision_cost=rng.uniform(0, 300, (T, S, A)), n_cycles=T, within_cycle=within,
+        discount_outcomes=rates[0], discount_costs=rates[1], absorbing=[False] * S,
+    )
+    objective = Objective("net_benefit", 1000.0)
+    optimal = solve(base, objective)
+    best = _best_value_from_each_state(base, _every_policy(T, S, A), objective)
+    np.testing.assert_allclose(optimal.value[0, 0], best, rtol=1e-12, atol=1e-9)
+
+
+@settings(max_examples=20, deadline=None)
+@given(seed=st.integers(0, 2**32 - 1), n_states=st.integers(2, 5),
+       rate=st.sampled_from([0.03, 0.2]))
+def test_stationary_optimum_is_the_best_stationary_policy(seed, n_states, rate):
+    # Infinite horizon: a deterministic stationary policy is optimal (Puterman 1994,
+    # chapter 6), so policy iteration's value in every state is the largest over all A^S
+    # such policies (each evaluated exactly), within its error bound.
+    rng = np.random.default_rng(seed)
+    A = 2
+    P, u, g = random_mdp(rng, n_states, A, 1)
+    compiled = _stationary_model(P, u, g, np.ones((n_states, A), bool), rate)
+    optimal = solve(compiled, QALYS, method="policy_iteration")
+    best = _best_value_from_each_state(compiled, _every_policy(1, n_states, A), QALYS)
+    np.testing.assert_allclose(optimal.value[0, 0], best, rtol=1e-10,
+                               atol=optimal.error_bound[0] + 1e-9)
 
 
 # --- within-cycle methods and life expectancy -----------------------------------------
@@ -442,8 +541,6 @@ def test_state_without_allowed_action_error():
 
 
 def test_inconsistent_shapes_error():
-    from dataclasses import replace
-
     compiled = replace(puterman_two_state(2), state_qaly=np.zeros((1, 1, 3)))
     with pytest.raises(SolverError, match=r"state_qaly has shape \(1, 1, 3\)"):
         solve(compiled, QALYS)
