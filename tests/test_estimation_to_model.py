@@ -163,3 +163,25 @@ def test_group_member_named_like_a_model_parameter_is_an_error(records):
     estimated = estimates_to_parameters(estimate_counts(records, tolerance=0.5))
     with pytest.raises(ModelError, match="declares parameter 'p_stage_1_dead' and the estimates"):
         merge_into_model(model, estimated)
+
+
+@pytest.mark.parametrize("prefix", ["my-pre", "1x_", "a b", "é_"])
+def test_prefix_that_makes_invalid_names_is_an_error(panel, prefix):
+    with pytest.raises(
+        ModelError, match=rf"prefix: value {prefix!r}; expected letters, digits and _"
+    ):
+        estimates_to_parameters(panel, prefix=prefix)
+
+
+def test_state_ids_become_ascii_names():
+    visits = pd.DataFrame(
+        {
+            "patient_id": ["SYN-1", "SYN-1", "SYN-2", "SYN-2"],
+            "years_since_entry": [0.0, 1.0, 0.0, 1.0],
+            "stage": ["stade-é 1", "stade-é 1", "stade-é 1", "dead"],
+        }
+    )
+    from caredecide.estimation import records_from_frames
+
+    estimated = estimates_to_parameters(estimate_panel(records_from_frames(visits)))
+    assert list(estimated.parameters) == ["rate_stade___1_dead"]

@@ -12,7 +12,7 @@ import pandas as pd
 import typer
 from rich.table import Table
 
-from caredecide.cli.common import print_caution, stderr, stdout, user_errors
+from caredecide.cli.common import plain, print_caution, stderr, stdout, user_errors
 
 
 class Method(StrEnum):
@@ -118,14 +118,25 @@ def register(app: typer.Typer) -> None:
             estimate_panel,
             load_records,
         )
-        from caredecide.estimation.to_model import estimates_to_parameters, write_estimates
+        from caredecide.estimation.to_model import (
+            check_prefix,
+            estimates_to_parameters,
+            write_estimates,
+        )
 
         print_caution(quiet)
         if model is not None and out is None:
             stderr.print("[bold red]error:[/] --model needs --out (where to save the result)")
             raise typer.Exit(code=2)
+        if out is not None and not out.parent.is_dir():
+            stderr.print(
+                f"[bold red]error:[/] --out {plain(str(out))}: folder {plain(str(out.parent))} "
+                "does not exist; expected a file in an existing folder"
+            )
+            raise typer.Exit(code=2)
         state_list = [s.strip() for s in states.split(",")] if states else None
         with user_errors():
+            check_prefix(prefix)  # before the fit, which can take a while
             records = load_records(visits, patients, states=state_list, death_state=death_state)
             if method is Method.counts:
                 results = estimate_counts(records, cycle_years, prior=prior, tolerance=tolerance)

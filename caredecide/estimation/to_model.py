@@ -18,6 +18,7 @@ Treated-group count estimates and names get the suffix ``_treated``.
 
 from __future__ import annotations
 
+import re
 from collections.abc import Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -28,6 +29,7 @@ from caredecide.errors import ModelError, Problem
 from caredecide.estimation.counts import CountEstimate
 from caredecide.estimation.panel import PanelEstimate
 from caredecide.model import DirichletGroup, Model, Parameter
+from caredecide.modelfile import IDENTIFIER
 
 COUNT_METHOD = (
     "transition counts over one cycle, maximum likelihood n_ij / n_i, Dirichlet(counts + "
@@ -52,8 +54,20 @@ class EstimatedParameters:
 
 
 def _name(text: str) -> str:
-    """A state id made safe for a parameter name (letters, digits, underscores)."""
-    return "".join(ch if ch.isalnum() or ch == "_" else "_" for ch in text)
+    """A state id made safe for a parameter name (ASCII letters, digits, underscores)."""
+    return re.sub(r"[^A-Za-z0-9_]", "_", text)
+
+
+def check_prefix(prefix: str) -> None:
+    """The prefix starts every name, so it must itself be a valid name (or empty)."""
+    if prefix and not IDENTIFIER.match(prefix):
+        raise ModelError(
+            Problem(
+                where="prefix",
+                message=f"value {prefix!r}; expected letters, digits and _ (not starting "
+                "with a digit), or empty",
+            )
+        )
 
 
 def _count_entries(estimate: CountEstimate, prefix: str) -> EstimatedParameters:
@@ -148,7 +162,13 @@ def estimates_to_parameters(
     Returns
     -------
     EstimatedParameters
+
+    Raises
+    ------
+    ModelError
+        When ``prefix`` is not a valid start of a parameter name.
     """
+    check_prefix(prefix)
     if isinstance(estimates, PanelEstimate | CountEstimate):
         estimates = [estimates]
     parameters, groups, notes = {}, {}, []

@@ -157,3 +157,20 @@ def test_quiet_prints_only_the_results():
     assert result.exit_code == 0
     assert result.stderr == ""
     assert result.stdout.startswith("parameter,estimate,se_log,low,high")
+
+
+def test_bad_prefix_is_refused_before_fitting(tmp_path):
+    out = tmp_path / "estimates.toml"
+    result = runner.invoke(
+        app, ["estimate", VISITS, "--patients", PATIENTS, "--prefix", "my-", "--out", str(out)]
+    )
+    assert result.exit_code == 2
+    assert "prefix: value 'my-'; expected letters, digits and _" in result.stderr
+    assert "fitting" not in result.stderr and not out.exists()
+
+
+def test_out_in_a_missing_folder_is_an_error(tmp_path):
+    out = tmp_path / "no_such_folder" / "estimates.toml"
+    result = runner.invoke(app, ["estimate", VISITS, "--out", str(out)])
+    assert result.exit_code == 2
+    assert f"folder {out.parent} does not exist" in " ".join(result.stderr.split())
