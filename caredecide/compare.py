@@ -201,6 +201,7 @@ def compare_strategies(
         frontier_result = policy_frontier(compiled, wtp_range, grid=grid, progress=progress)
         notes += frontier_result.notes
         names = []
+        added: set[str] = set()
         for _, row in frontier_result.table.iterrows():  # one row per frontier interval
             policy = frontier_result.policies[row["policy"]]
             if np.array_equal(policy, resolved[0].policy):
@@ -208,6 +209,11 @@ def compare_strategies(
                 continue
             name = f"optimal {row['policy']}"  # its WTP interval is in the frontier table
             names.append(name)
+            # A policy optimal on two intervals (possible only within the solver's tie
+            # tolerance) is one strategy: one row in the table, not a duplicate name.
+            if name in added:
+                continue
+            added.add(name)
             resolved.append(StrategyPolicy(
                 Strategy(name, "computed", policy=policy, description=(
                     f"{KIND_FRONTIER}: optimal for WTP {row['wtp_from']:,.2f} to "

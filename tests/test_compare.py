@@ -133,6 +133,115 @@ def test_model_path_is_loaded():
     assert len(result.table) == 2
 
 
+# --- a model with one action: the optimal policy *is* the fixed strategy ------------------
+
+ONE_ACTION_MODEL = """# SYNTHETIC test model: every number is invented.
+format = 1
+title = "Synthetic one-action model"
+description = "Synthetic: a single action, so there is nothing to decide."
+
+[settings]
+cycle_years = 1.0
+{horizon}
+start = "well"
+discount_outcomes = 0.035
+discount_costs = 0.035
+objective = "net_benefit"
+willingness_to_pay = 20000.0
+within_cycle = "start"
+currency = "EUR"
+
+[[states]]
+id = "well"
+qaly_weight = 0.9
+cost = 500.0
+
+[[states]]
+id = "sick"
+qaly_weight = 0.6
+cost = 3000.0
+
+[[states]]
+id = "dead"
+qaly_weight = 0.0
+cost = 0.0
+absorbing = true
+
+[[actions]]
+id = "monitor"
+allowed_in = "all"
+cost_per_cycle = 100.0
+
+[transitions.monitor.well]
+sick = 0.1
+dead = 0.02
+well = "rest"
+
+[transitions.monitor.sick]
+well = 0.05
+dead = 0.15
+sick = "rest"
+"""
+ONE_ACTION_P = np.array([[0.88, 0.1, 0.02], [0.05, 0.8, 0.15], [0.0, 0.0, 1.0]])
+
+
+@pytest.mark.parametrize("horizon", ['horizon = "infinite"', "horizon_cycles = 3"])
+def test_one_action_model_reproduces_the_fixed_strategy_totals_exactly(tmp_path, horizon):
+    path = tmp_path / "one.toml"
+    path.write_text(ONE_ACTION_MODEL.format(horizon=horizon), encoding="utf-8")
+    result = compare_strategies(path)
+    table = result.table.set_index("strategy")
+    assert len(table) == 2
+    optimal, fixed = table.loc[result.optimal_strategy], table.loc["monitor at once"]
+    # Same policy, same evaluation code: the totals agree to the last bit.
+    for column in ("cost", "qalys", "life_years", "cost_undiscounted", "qalys_undiscounted",
+                   "net_monetary_benefit"):
+        assert optimal[column] == fixed[column], column
+    assert {optimal["status"], fixed["status"]} == {"on frontier", "identical to monitor at once"}
+    # Reference totals, start-of-cycle weights (Elbasha & Chhatwal 2016: left Riemann sum),
+    # per-cycle discount d = 1/1.035; the action's 100 per cycle is charged in the live
+    # states only. Infinite horizon: sum_t d^t m0 P^t = m0 (I - d P)^-1, by a scipy linear
+    # solve (policy evaluation, Puterman 1994, section 6.1, from memory). Three cycles: the
+    # sum over t = 0, 1, 2 of d^t m0 P^t, written out.
+    import scipy.linalg
+
+    d, start = 1.0 / 1.035, np.array([1.0, 0.0, 0.0])
+    if "infinite" in horizon:
+        occupancy = scipy.linalg.solve(np.eye(3) - d * ONE_ACTION_P.T, start)
+    else:
+        occupancy = sum(d**t * start @ np.linalg.matrix_power(ONE_ACTION_P, t)
+                        for t in range(3))
+    assert fixed["qalys"] == pytest.approx(occupancy @ [0.9, 0.6, 0.0], rel=1e-12)
+    assert fixed["cost"] == pytest.approx(occupancy @ [600.0, 3100.0, 0.0], rel=1e-12)
+    assert fixed["life_years"] == pytest.approx(occupancy @ [1.0, 1.0, 0.0], rel=1e-12)
+    if "infinite" not in horizon:
+        # Three cycles by hand: m0 = (1, 0, 0), m1 = (0.88, 0.1, 0.02),
+        # m2 = (0.88 x 0.88 + 0.1 x 0.05, 0.88 x 0.1 + 0.1 x 0.8, ...) = (0.7794, 0.168, ...).
+        # QALYs = 0.9 + d (0.792 + 0.06) + d^2 (0.70146 + 0.1008).
+        expected = 0.9 + d * (0.88 * 0.9 + 0.1 * 0.6) + d**2 * (0.7794 * 0.9 + 0.168 * 0.6)
+        assert fixed["qalys"] == pytest.approx(expected, rel=1e-12)
+
+
+def test_a_policy_optimal_on_two_intervals_is_one_row(demo, monkeypatch):
+    # Within the solver's tie tolerance a line could come back after another one; the
+    # frontier then lists its label twice, and the comparison must hold one row for it
+    # (not stop on a "name used twice" error).
+    import caredecide.compare as compare_module
+    from caredecide.frontier import policy_frontier as real_frontier
+
+    def repeated(compiled, wtp_range, **options):
+        frontier = real_frontier(compiled, wtp_range, **options)
+        again = frontier.table.iloc[[0]].assign(wtp_from=wtp_range[1], wtp_to=wtp_range[1])
+        frontier.table = pd.concat([frontier.table, again], ignore_index=True)
+        return frontier
+
+    monkeypatch.setattr(compare_module, "policy_frontier", repeated)
+    result = compare_strategies(demo, wtp=30000.0, wtp_range=(0.0, 20000.0))
+    assert result.table["strategy"].is_unique
+    assert result.frontier["strategy"].iloc[0] == result.frontier["strategy"].iloc[-1]
+    assert set(result.frontier["strategy"]) <= set(result.table["strategy"])
+
+
 # --- chart builders ---------------------------------------------------------------------
 
 
@@ -144,6 +253,10 @@ def test_ce_plane_chart_marks_status_by_shape_and_joins_the_frontier(with_range)
     assert points["encoding"]["color"]["field"] == "group"
     assert points["encoding"]["y"]["title"] == "Cost per person (discounted) EUR"
     assert text["encoding"]["text"]["field"] == "label"
+    # Frontier points are drawn last (order 1), so an identical strategy never hides one.
+    assert points["encoding"]["order"]["field"] == "draw_order"
+    drawn = spec["datasets"][points["data"]["name"]]
+    assert [r["draw_order"] for r in drawn] == [int(v) for v in with_range.table["on_frontier"]]
     # The dashed line joins the frontier strategies only, in order of cost.
     line_data = spec["datasets"][line["data"]["name"]]
     assert len(line_data) == int(with_range.table["on_frontier"].sum())

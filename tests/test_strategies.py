@@ -242,12 +242,22 @@ def test_optimal_nmb_is_at_least_every_fixed_strategy(seed, n_states, n_cycles, 
         ordered_states=tuple(f"s{i}" for i in range(n_states - 1)),
         absorbing=np.arange(n_states) == n_states - 1,
     )
+    fixed = [*default_strategies(compiled), from_age("a1", 50 + n_cycles // 2)]
+    _assert_optimal_beats(compiled, fixed, rng.integers(0, A, (4, n_cycles, n_states)), wtp)
+
+
+def _assert_optimal_beats(compiled, fixed, random_actions: np.ndarray, wtp: float) -> None:
+    """The solver's policy has the highest NMB among itself, ``fixed`` and random policies.
+
+    ``random_actions`` (K, Tpi, S): an action not allowed in a state becomes the first
+    allowed one.
+    """
     objective = Objective("net_benefit", wtp)
     optimal = solve(compiled, objective)
-    fixed = [*default_strategies(compiled), from_age("a1", 50 + n_cycles // 2)]
+    allowed, S = compiled.allowed, compiled.n_states
     resolved = [resolve_strategy(compiled, s) for s in fixed]
-    random_policies = [np.where(allowed[np.arange(n_states)[None, :], p], p, allowed.argmax(1))
-                       for p in rng.integers(0, A, (4, n_cycles, n_states))]
+    random_policies = [np.where(allowed[np.arange(S)[None, :], p], p, allowed.argmax(1))
+                       for p in random_actions]
     resolved += [resolve_strategy(compiled, computed(f"random {i}", p))
                  for i, p in enumerate(random_policies)]
     resolved.append(resolve_strategy(compiled, computed("optimal", optimal.policy[0])))
@@ -378,3 +388,33 @@ def test_table_reports_every_problem_at_once(tmp_path):
     path = write(tmp_path, "state,action\nsevre,treat\nmild,operate\n")
     message = _error(path)
     assert "row 1.state" in message and "row 2.action" in message
+
+
+@settings(max_examples=30, deadline=None)
+@given(seed=st.integers(0, 2**32 - 1), n_states=st.integers(3, 6),
+       wtp=st.floats(0.0, 1e5), rate=st.floats(0.01, 0.2))
+def test_optimal_nmb_is_at_least_every_fixed_strategy_infinite_horizon(seed, n_states, wtp,
+                                                                        rate):
+    # Policy iteration gives a policy optimal in every state of a discounted infinite-horizon
+    # MDP (Puterman 1994, section 6.4, from memory), so no stationary fixed strategy has a
+    # higher expected NMB from the cohort's start distribution.
+    rng = np.random.default_rng(seed)
+    A = 3
+    P = rng.random((A, n_states, n_states)) ** 2
+    P[:, -1] = np.eye(n_states)[-1]  # last state absorbing
+    P /= P.sum(-1, keepdims=True)
+    allowed = rng.random((n_states, A)) < 0.7
+    allowed[:, 0] |= ~allowed.any(axis=1)
+    allowed[-1] = True
+    compiled = make_compiled(
+        P, state_qaly=rng.uniform(0, 1, n_states) * (np.arange(n_states) < n_states - 1),
+        state_cost=rng.uniform(0, 1000, n_states) * (np.arange(n_states) < n_states - 1),
+        decision_cost=rng.uniform(0, 500, (n_states, A)),
+        decision_qaly=rng.uniform(-0.05, 0.05, (n_states, A)), allowed=allowed,
+        n_cycles=None, start_distribution=np.append(rng.dirichlet(np.ones(n_states - 1)), 0.0),
+        discount_outcomes=rate, discount_costs=rate,
+        ordered_states=tuple(f"s{i}" for i in range(n_states - 1)),
+        absorbing=np.arange(n_states) == n_states - 1,
+    )
+    _assert_optimal_beats(compiled, default_strategies(compiled),
+                          rng.integers(0, A, (6, 1, n_states)), wtp)
