@@ -424,6 +424,9 @@ def make_ce_plane_chart(frame: pd.DataFrame, *, currency: str = "") -> alt.Layer
         group=frame["status"].astype(str).str.extract(
             r"^(on frontier|dominated|extendedly dominated|identical)", expand=False
         ).fillna("other"),
+        # Frontier points are drawn last, so a strategy identical to one on the frontier
+        # never hides it.
+        draw_order=frame["on_frontier"].astype(int),
     )
     groups = ["on frontier", "dominated", "extendedly dominated", "identical"]
     base = alt.Chart(data).encode(
@@ -443,6 +446,7 @@ def make_ce_plane_chart(frame: pd.DataFrame, *, currency: str = "") -> alt.Layer
         color=alt.Color("group:N", title="Status", legend=alt.Legend(orient="bottom"),
                         scale=alt.Scale(domain=groups, range=[ACTION_PALETTE[i] for i in
                                                               (0, 1, 3, 4)])),
+        order=alt.Order("draw_order:Q"),
         tooltip=["strategy:N", "status:N", alt.Tooltip("cost:Q", format=",.2f"),
                  alt.Tooltip("qalys:Q", format=".4f")],
     )

@@ -34,7 +34,17 @@ def _wide() -> Console:
 
 
 def _money(value: float) -> str:
-    return "" if value != value else f"{value:,.0f}"  # NaN -> blank
+    """Whole currency units; a small nonzero increment keeps two decimals (never a bare 0)."""
+    if value != value:  # NaN -> blank
+        return ""
+    return f"{value:,.2f}" if 0 < abs(value) < 10 else f"{value:,.0f}"
+
+
+def _qalys(value: float) -> str:
+    """Four decimals; a nonzero increment below 0.0001 in scientific notation (never 0.0000)."""
+    if value != value:  # NaN -> blank
+        return ""
+    return f"{value:.2e}" if 0 < abs(value) < 5e-5 else f"{value:.4f}"
 
 
 def _print_table(result, currency: str) -> None:
@@ -48,13 +58,12 @@ def _print_table(result, currency: str) -> None:
         best = " (best)" if row["best_at_wtp"] else ""
         table.add_row(
             f"{row['strategy']}{best}", f"{row['cost']:,.0f}", f"{row['qalys']:.4f}",
-            _money(row["incremental_cost"]),
-            "" if row["incremental_qalys"] != row["incremental_qalys"]
-            else f"{row['incremental_qalys']:.4f}",
+            _money(row["incremental_cost"]), _qalys(row["incremental_qalys"]),
             _money(row["icer"]), f"{row['net_monetary_benefit']:,.0f}", str(row["status"]),
         )
     _wide().print(table)
-    stdout.print(f"Best at {result.willingness_to_pay:,.0f} per QALY: {result.best_strategy}")
+    per = f"{currency} per QALY".strip()
+    stdout.print(f"Best at {result.willingness_to_pay:,.0f} {per}: {result.best_strategy}")
 
 
 def _print_frontier(result) -> None:

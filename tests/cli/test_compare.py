@@ -13,6 +13,8 @@ from caredecide.cli.compare import (
     SWITCHES_FILE,
     TABLE_FILE,
     TRACES_FOLDER,
+    _money,
+    _qalys,
     trace_file_name,
 )
 from caredecide.compare import compare_strategies
@@ -31,7 +33,7 @@ def test_prints_the_table_and_the_caution():
     run = runner.invoke(app, ["compare", DEMO, "--quiet"])
     assert run.exit_code == 0, run.output
     assert CAUTION_SHORT in run.stderr  # always, even with --quiet
-    assert "never treat" in run.stdout and "Best at 30,000 per QALY:" in run.stdout
+    assert "never treat" in run.stdout and "Best at 30,000 EUR per QALY:" in run.stdout
     assert "note:" not in run.stderr  # --quiet: no notes
 
 
@@ -90,3 +92,12 @@ def test_trace_file_names_are_safe():
     assert trace_file_name(0, "optimal policy at WTP 30,000") == (
         "01_optimal-policy-at-wtp-30-000.csv")
     assert trace_file_name(11, "!!!") == "12_strategy.csv"
+
+
+def test_small_increments_are_never_printed_as_zero():
+    # Two policies a few currency units and a few millionths of a QALY apart have a real
+    # ICER: the printed increments must not read 0 and 0.0000 beside it.
+    assert _money(0.12) == "0.12" and _money(-3.5) == "-3.50"
+    assert _money(0.0) == "0" and _money(27116.4) == "27,116" and _money(float("nan")) == ""
+    assert _qalys(2.09e-6) == "2.09e-06" and _qalys(-4e-5) == "-4.00e-05"
+    assert _qalys(0.0) == "0.0000" and _qalys(0.5356) == "0.5356" and _qalys(float("nan")) == ""
