@@ -34,6 +34,9 @@ DEFAULT_MEMORY_FRACTION = 0.5
 """Without an explicit limit, refuse arrays larger than this share of available memory."""
 FALLBACK_MEMORY_LIMIT = 4 * 1024**3
 MAX_PROBLEMS_PER_RULE = 20
+_RATE_ROWS = {"deduplicate": True, "method": "pade"}
+"""How rate rows are exponentiated (see :func:`_fill_rate_rows`); the benchmarks switch to
+``{"deduplicate": False, "method": "uniformization"}``, the former path, for comparison."""
 
 
 @dataclass
@@ -439,7 +442,7 @@ def _transitions(
             parsed.rates, rates, low=0.0, high=np.inf, what="rate", expected="a rate >= 0 per year"
         )
         if not problems:
-            _fill_rate_rows(P, parsed.rates, rates, model.settings.cycle_years)
+            _fill_rate_rows(P, parsed.rates, rates, model.settings.cycle_years, **_RATE_ROWS)
 
     if parsed.rests:
         a, s, to = _indices(parsed.rests)
@@ -485,26 +488,60 @@ def _indices(entries: list[Entry]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
 
 def _fill_rate_rows(
-    P: np.ndarray, entries: list[Entry], rates: np.ndarray, cycle_years: float
+    P: np.ndarray,
+    entries: list[Entry],
+    rates: np.ndarray,
+    cycle_years: float,
+    *,
+    deduplicate: bool = True,
+    method: str = "pade",
 ) -> None:
     """Replace rows given by rates with ``expm(cycle_years G)`` of their action's generator.
 
     All rate rows of one action share one generator, so a path through two rate rows
     within one cycle is counted; states without a rate row are absorbing inside it.
+
+    ``rates`` is (n_entries, D, Tp). The generators of a (draw, cycle) follow from its
+    column of rates alone, and batches often repeat a column (one-way and threshold sets
+    change one parameter at a time; parameters outside rate rows leave it unchanged), so
+    each distinct column is exponentiated once (``deduplicate``; the result is the same
+    to the last bit, since each matrix's exponential does not depend on its neighbours).
+    ``method`` is passed to :func:`caredecide.conversions._generator_exponential`.
     """
-    from caredecide.conversions import generator_to_transition
+    # The rates were checked (finite, >= 0) and the diagonal is built here, so the
+    # generator needs none of generator_to_transition's input checks.
+    from caredecide.conversions import (
+        _distinct_rows,
+        _generator_exponential,
+        _states_in_play,
+    )
 
     a, s, to = _indices(entries)
     actions = np.unique(a)
     local = np.searchsorted(actions, a)  # position of each entry's action in `actions`
     n_draws, tp, _, n_states, _ = P.shape
-    G = np.zeros((n_draws, tp, actions.size, n_states, n_states))
-    G[:, :, local, s, to] = np.moveaxis(rates, 0, -1)
-    diagonal = np.arange(n_states)
-    G[:, :, :, diagonal, diagonal] = -G.sum(axis=-1)
-    transition = generator_to_transition(G, cycle_years)
-    rows = np.unique(np.stack([local, s]), axis=1)
-    P[:, :, actions[rows[0]], rows[1], :] = transition[:, :, rows[0], rows[1], :]
+    # Only states with rate rows and their targets enter the exponential (the others have
+    # identity rows and columns); the former path kept whole matrices.
+    pattern = np.zeros((n_states, n_states), dtype=bool)
+    pattern[s, to] = True
+    kept = np.flatnonzero(_states_in_play(pattern) | (method != "pade"))
+    position = np.searchsorted(kept, np.arange(n_states))  # block index of a kept state
+    columns = np.moveaxis(rates, 0, -1).reshape(n_draws * tp, len(entries))  # (D Tp, n)
+    if deduplicate:
+        columns, inverse = _distinct_rows(columns)
+    G = np.zeros((columns.shape[0], actions.size, kept.size, kept.size))
+    G[:, local, position[s], position[to]] = columns
+    diagonal = np.arange(kept.size)
+    G[:, :, diagonal, diagonal] = -G.sum(axis=-1)
+    rows = np.unique(np.stack([local, s]), axis=1)  # (action position, state) of rate rows
+    block = _generator_exponential(G * cycle_years, method)[:, rows[0], position[rows[1]], :]
+    if deduplicate:
+        block = block[inverse]
+    target_actions, target_states = actions[rows[0]], rows[1]
+    P[:, :, target_actions, target_states, :] = 0.0
+    P[:, :, target_actions[:, None], target_states[:, None], kept] = block.reshape(
+        n_draws, tp, *block.shape[1:]
+    )
 
 
 class _Evaluator:

@@ -48,6 +48,24 @@ __all__ = [
 _UNIFORMIZATION_STEP = 0.5
 _UNIFORMIZATION_TERMS = 18
 
+# Pade approximants of degree m and the 1-norm up to which each is accurate to unit
+# round-off (Higham 2005, SIAM J Matrix Anal Appl 26(4):1179-1193, Table 2.3; the same
+# bounds appear in scipy.sparse.linalg's expm). Above the last one the matrix is scaled.
+_PADE_DEGREES = (3, 5, 7, 9, 13)
+_PADE_THETA = np.array(
+    [
+        1.495585217958292e-2,
+        2.539398330063230e-1,
+        9.504178996162932e-1,
+        2.097847961257068,
+        5.371920351148152,
+    ]
+)
+# Round-off allowed in a Pade result before clipping: a negative entry or a row-sum error
+# beyond it sends the matrix to uniformization instead.
+_PADE_ROUND_OFF = 1e-12
+_EXPONENTIAL_METHODS = ("pade", "uniformization")
+
 # Row sums of a generator must be 0; allow round-off relative to the row's largest rate.
 _GENERATOR_ROW_TOLERANCE = 1e-9
 
@@ -383,13 +401,220 @@ def generator_to_transition(G: object, years: object = 1.0) -> np.ndarray:
     -------
     numpy.ndarray, shape (..., S, S)
         Row-stochastic matrices: ``P[..., i, j]`` is the probability of being in ``j``
-        after ``years`` when starting in ``i``, all exits competing.
+        after ``years`` when starting in ``i``, all exits competing. Entries are in
+        [0, 1]; a state that cannot be reached from ``i`` gets exactly 0, and a state
+        with no exits keeps its row of the identity exactly.
     """
     function = "generator_to_transition"
     generator = _square_stack(G, function, "G")
     _check_generator(generator, function)
     t = _years(years, function)
-    return _uniformized_exponential(generator * t[..., None, None])
+    return _generator_exponential(generator * t[..., None, None])
+
+
+def _generator_exponential(Q: np.ndarray, method: str = "pade") -> np.ndarray:
+    """``expm(Q)`` for a stack of generators ``Q`` (..., S, S) (rates x years), unchecked.
+
+    States that no matrix of the stack leaves are absorbing: their rows of ``expm(Q)`` are
+    rows of the identity, and a state that is neither left nor entered from a state that
+    is left keeps its identity row and column. Only the block of the other states is
+    exponentiated (exact: ``Q`` is block upper triangular with a zero diagonal block).
+
+    ``method`` is "pade" (:func:`_stack_exponential`, the default) or "uniformization":
+    the former path, :func:`_uniformized_exponential` on the whole matrices, kept as the
+    reference the benchmarks compare with. Callers validate ``Q``
+    (:func:`generator_to_transition` does).
+    """
+    if method not in _EXPONENTIAL_METHODS:
+        raise ValueError(f"method {method!r} is unknown; expected one of {_EXPONENTIAL_METHODS}")
+    if method == "uniformization":
+        return _uniformized_exponential(Q)
+    n_states = Q.shape[-1]
+    kept = _states_in_play((Q != 0).reshape(-1, n_states, n_states).any(axis=0))
+    if kept.all():
+        return _stack_exponential(Q)
+    P = np.zeros(Q.shape)
+    P[..., ~kept, ~kept] = 1.0
+    if kept.any():
+        block = np.ix_(kept, kept)
+        P[(..., *block)] = _stack_exponential(np.ascontiguousarray(Q[(..., *block)]))
+    return P
+
+
+def _states_in_play(pattern: np.ndarray) -> np.ndarray:
+    """(S,) bool: states some rate leaves, and the states those rates enter.
+
+    ``pattern`` is (S, S) bool, True where a generator of the stack may have a rate
+    (the diagonal is ignored). The other states have no exits and no entries from a state
+    with exits: their rows and columns of ``expm`` are those of the identity.
+    """
+    pattern = pattern & ~np.eye(pattern.shape[-1], dtype=bool)
+    leaves = pattern.any(axis=1)
+    return leaves | pattern[leaves].any(axis=0)
+
+
+def _stack_exponential(Q: np.ndarray) -> np.ndarray:
+    """``expm(Q)`` of a stack of generators (..., S, S), each by the cheapest exact route.
+
+    A generator whose every exit leads to a state without exits (in that matrix) has the
+    closed form of :func:`_one_step_exponential`; the others go to
+    :func:`_pade_exponential`. The route and the set of unreachable entries depend only
+    on a matrix's own pattern of non-zero rates, so a matrix's result never depends on the
+    rest of the stack. Both are decided once per distinct pattern (a stack holds few).
+    """
+    n_states = Q.shape[-1]
+    A = Q.reshape(-1, n_states, n_states)
+    flat_pattern = (A != 0).reshape(A.shape[0], n_states * n_states)
+    distinct, inverse = _distinct_rows(np.packbits(flat_pattern, axis=1))
+    pattern = np.unpackbits(distinct, axis=1, count=n_states * n_states).astype(bool)
+    pattern = pattern.reshape(-1, n_states, n_states) & ~np.eye(n_states, dtype=bool)
+    leaves = pattern.any(axis=-1)  # (K, S)
+    entered_from_leaving = (pattern & leaves[:, :, None]).any(axis=-2)
+    one_step = ~(leaves & entered_from_leaving).any(axis=-1)[inverse]  # (N,)
+    if one_step.all():
+        return _one_step_exponential(A).reshape(Q.shape)
+    unreachable = ~_closure(pattern)[inverse]
+    if not one_step.any():
+        return _pade_exponential(A, unreachable).reshape(Q.shape)
+    P = np.empty_like(A)
+    P[one_step] = _one_step_exponential(A[one_step])
+    P[~one_step] = _pade_exponential(A[~one_step], unreachable[~one_step])
+    return P.reshape(Q.shape)
+
+
+def _one_step_exponential(A: np.ndarray) -> np.ndarray:
+    """``expm(A)`` of generators (N, S, S) whose exits all lead to states without exits.
+
+    Then ``A^2 = -diag(q) A`` (``q`` the exit rates), so ``expm(A) = I + diag(phi) A``
+    with ``phi = (1 - exp(-q)) / q``: the competing-exits closed form, row by row, stay
+    ``exp(-q)`` and exit ``j`` ``r_j / q (1 - exp(-q))`` (Welton & Ades 2005, Med Decis
+    Making 25(6):633-645). Elementwise, non-negative and exact to round-off.
+    """
+    exit_rate = -np.diagonal(A, axis1=-2, axis2=-1)  # (N, S)
+    leave = -np.expm1(-exit_rate)
+    share = np.divide(leave, exit_rate, out=np.ones_like(leave), where=exit_rate > 0)
+    P = A * share[..., None]
+    diagonal = np.diag_indices(A.shape[-1])
+    P[(..., *diagonal)] = np.exp(-exit_rate)
+    return P
+
+
+def _pade_exponential(A: np.ndarray, unreachable: np.ndarray) -> np.ndarray:
+    """``expm(A)`` of a stack of generators by scaling and squaring with Pade approximants.
+
+    Parameters
+    ----------
+    A : numpy.ndarray, shape (N, S, S)
+        Generators times the period (dimensionless).
+    unreachable : numpy.ndarray, shape (N, S, S), bool
+        Entries with no path from ``i`` to ``j`` (:func:`_closure`): exactly 0 in the
+        result, while round-off in the solve may leave a trace there.
+
+    Notes
+    -----
+    Higham 2005, SIAM J Matrix Anal Appl 26(4):1179-1193, Algorithm 2.3 (the method
+    behind ``scipy.linalg.expm``), batched: each matrix gets its own degree ``m`` (3, 5,
+    7, 9 or 13, the smallest whose bound covers its norm) and its own number of
+    squarings, so its result does not depend on the other matrices of the stack. One
+    stacked ``matmul``/``solve`` per step runs for all matrices of one degree at once.
+    The bounds hold in any subordinate norm (Higham 2005, section 2); the infinity norm
+    of a generator is twice its largest exit rate, read off the diagonal.
+
+    A generator's exponential is stochastic; Pade with LU keeps that only to round-off.
+    Negatives down to ``-_PADE_ROUND_OFF`` are clipped to 0. A matrix whose result misses
+    that tolerance (a negative entry or a row sum off by more) is recomputed by
+    uniformization, which keeps every term non-negative.
+    """
+    norm = -2.0 * np.diagonal(A, axis1=-2, axis2=-1).min(axis=-1, initial=0.0)
+    degree = np.searchsorted(_PADE_THETA[:-1], norm)  # index into _PADE_DEGREES
+    squarings = np.zeros(A.shape[0], dtype=int)
+    largest = degree == len(_PADE_DEGREES) - 1
+    squarings[largest] = np.maximum(np.ceil(np.log2(norm[largest] / _PADE_THETA[-1])), 0)
+    degrees = np.unique(degree)
+    if degrees.size == 1 and not squarings.any():  # no regrouping needed
+        P = _pade_approximant(A, _PADE_DEGREES[degrees[0]])
+    else:
+        P = np.empty_like(A)
+        for position in degrees:  # a loop over at most five degrees
+            members = np.flatnonzero(degree == position)
+            scaled = np.ldexp(A[members], -squarings[members, None, None])  # exact: 2^-s
+            P[members] = _pade_approximant(scaled, _PADE_DEGREES[position])
+        for step in range(int(squarings.max(initial=0))):
+            members = np.flatnonzero(squarings > step)
+            P[members] = P[members] @ P[members]
+
+    P[unreachable] = 0.0
+    lost = P.min(axis=(-2, -1)) < -_PADE_ROUND_OFF
+    lost |= np.abs(P.sum(axis=-1) - 1.0).max(axis=-1) > _PADE_ROUND_OFF
+    if lost.any():
+        P[lost] = _uniformized_exponential(A[lost])
+    np.clip(P, 0.0, 1.0, out=P)
+    return P
+
+
+def _pade_coefficients(m: int) -> np.ndarray:
+    """Coefficients ``b_0..b_m`` of the [m/m] Pade approximant to ``exp`` (``b_m = 1``).
+
+    ``p_m(x) = sum_k b_k x^k`` and ``q_m(x) = p_m(-x)`` with ``b_k = (2m - k)! / (k! (m -
+    k)!)`` up to a common factor (Higham 2005, eq. 2.2).
+    """
+    f = math.factorial
+    return np.array([f(2 * m - k) / (f(k) * f(m - k)) for k in range(m + 1)])
+
+
+def _pade_approximant(A: np.ndarray, m: int) -> np.ndarray:
+    """``r_m(A) = q_m(A)^-1 p_m(A)`` for a stack (N, S, S), evaluated as in Higham 2005.
+
+    ``p_m(A) = U + V`` with ``U`` the odd and ``V`` the even part; degree 13 uses the
+    nested form with ``A^2, A^4, A^6`` only (six multiplications).
+    """
+    b = _pade_coefficients(m)
+    diagonal = np.diag_indices(A.shape[-1])
+    powers = {2: A @ A}
+    if m == 13:
+        powers[4] = powers[2] @ powers[2]
+        powers[6] = powers[4] @ powers[2]
+        A2, A4, A6 = powers[2], powers[4], powers[6]
+        odd = A6 @ (b[13] * A6 + b[11] * A4 + b[9] * A2) + b[7] * A6 + b[5] * A4 + b[3] * A2
+        even = A6 @ (b[12] * A6 + b[10] * A4 + b[8] * A2) + b[6] * A6 + b[4] * A4 + b[2] * A2
+    else:
+        for k in range(4, m, 2):
+            powers[k] = powers[k - 2] @ powers[2]
+        odd = sum(b[k + 1] * powers[k] for k in range(2, m, 2))
+        even = sum(b[k] * powers[k] for k in range(2, m, 2))
+    odd[(..., *diagonal)] += b[1]
+    even[(..., *diagonal)] += b[0]
+    U = A @ odd
+    return np.linalg.solve(even - U, even + U)
+
+
+def _distinct_rows(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Distinct rows of a 2-D array and the inverse index: ``values == rows[inverse]``.
+
+    Rows are compared bit for bit, each viewed as one opaque item (cheaper than
+    ``np.unique(axis=0)``); for floats, -0.0 and 0.0 count as different, which only
+    costs a repeated computation.
+    """
+    values = np.ascontiguousarray(values)
+    width = values.dtype.itemsize * values.shape[1]
+    # Rows of 1, 2, 4 or 8 bytes read as one unsigned integer sort much faster.
+    item = np.dtype(f"u{width}") if width in (1, 2, 4, 8) else np.dtype((np.void, width))
+    items = values.view(item).ravel()
+    _, first, inverse = np.unique(items, return_index=True, return_inverse=True)
+    return values[first], inverse.reshape(-1)
+
+
+def _closure(pattern: np.ndarray) -> np.ndarray:
+    """(K, S, S) bool: ``j`` reachable from ``i`` (or ``i == j``) in the (K, S, S) ``pattern``.
+
+    Transitive closure by repeated squaring of ``I + pattern``: ``expm(A)[i, j] > 0``
+    exactly where it is True.
+    """
+    n_states = pattern.shape[-1]
+    closure = (pattern | np.eye(n_states, dtype=bool)).astype(float)
+    for _ in range(max(0, math.ceil(math.log2(n_states)))):  # paths of length <= 2^k
+        closure = ((closure @ closure) > 0).astype(float)
+    return closure > 0
 
 
 def _uniformized_exponential(Q: np.ndarray) -> np.ndarray:
