@@ -1,7 +1,8 @@
 """Run records: what a reviewer needs to re-run an analysis exactly.
 
 A run record is a small JSON file: the command and its arguments, the model file path
-and its SHA-256, the seed, the package and dependency versions, the date, and the
+and its SHA-256, the SHA-256 of the other input files the model reads (a life table, a
+strategy table beside the model), the seed, the package and dependency versions, the date, and the
 SHA-256 of every result table written. ``caredecide rerun RECORD`` re-executes the
 command and compares the new hashes with the recorded ones (see
 :mod:`caredecide.cli.rerun`). Result tables are written byte for byte reproducibly by
@@ -53,6 +54,9 @@ class RunRecord:
         Output file (relative to ``output_dir``) -> SHA-256 of its bytes.
     output_dir : str
         Folder of the hashed outputs (relative to the record's folder when relative).
+    input_files : dict of str to str
+        Input files other than the model file (life table, strategy table), by path
+        (relative to the record's folder when relative) -> SHA-256 of their bytes.
     """
 
     command: str
@@ -64,6 +68,7 @@ class RunRecord:
     date: str
     outputs: dict[str, str] = field(default_factory=dict)
     output_dir: str = ""
+    input_files: dict[str, str] = field(default_factory=dict)
     caution: str = CAUTION_SHORT
     format: int = RECORD_FORMAT
 
@@ -146,6 +151,21 @@ def read_record(path: Path | str) -> RunRecord:
     seed = data.get("seed")
     if seed is not None and (not isinstance(seed, int) or isinstance(seed, bool) or seed < 0):
         raise RunRecordError(f"{path}: field 'seed' = {seed!r}; expected null or an integer >= 0")
+    draws = data["arguments"].get("draws")
+    if draws is not None and (not isinstance(draws, int) or isinstance(draws, bool) or draws < 1):
+        raise RunRecordError(f"{path}: field 'arguments.draws' = {draws!r}; expected null or "
+                             "an integer >= 1")
+    for key in ("outputs", "versions"):
+        bad = {k: v for k, v in data[key].items() if not isinstance(v, str)}
+        if bad:
+            name, value = next(iter(bad.items()))
+            raise RunRecordError(f"{path}: field '{key}.{name}' = {value!r}; expected text")
+    inputs = data.get("input_files", {})
+    if not isinstance(inputs, dict) or not all(
+        isinstance(k, str) and isinstance(v, str) for k, v in inputs.items()
+    ):
+        raise RunRecordError(f"{path}: field 'input_files' = {inputs!r}; expected an object "
+                             "of file path -> SHA-256 text")
     known = set(RunRecord.__dataclass_fields__)
     return RunRecord(**{k: v for k, v in data.items() if k in known})
 
@@ -168,13 +188,17 @@ class Difference:
         return f"{self.what}: recorded {self.recorded}, now {self.now}"
 
 
-def compare_hashes(recorded: dict[str, str], now: dict[str, str]) -> list[Difference]:
-    """Differences between two ``{output: sha256}`` maps (missing, extra, changed)."""
+def compare_hashes(recorded: dict[str, str], now: dict[str, str], *,
+                   kind: str = "output") -> list[Difference]:
+    """Differences between two ``{file: sha256}`` maps (missing, extra, changed).
+
+    ``kind`` names the files in the messages (``"output"``, ``"input file"``).
+    """
     differences = []
     for name in sorted(set(recorded) | set(now)):
         before, after = recorded.get(name, "absent"), now.get(name, "absent")
         if before != after:
-            differences.append(Difference(f"output {name}", before, after))
+            differences.append(Difference(f"{kind} {name}", before, after))
     return differences
 
 

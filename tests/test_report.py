@@ -121,3 +121,59 @@ def test_missing_analysis_module_leaves_a_note(monkeypatch):
     page = render_report(data, {})
     section = page[page.index('<section id="strategies">'):page.index('<section id="sens')]
     assert "module caredecide.compare is not available" in section
+
+
+def test_probabilistic_section_has_its_charts_and_tables(built):
+    _, out, record = built
+    page = out.read_text(encoding="utf-8")
+    section = page[page.index('<section id="uncertainty">'):
+                   page.index('<section id="verification">')]
+    # Heat map of the treatment's share and the acceptability curves, drawn inline.
+    assert section.count("<svg") == 2
+    assert "How often 'treat' is optimal across the parameter draws" in section
+    assert "Acceptability curves" in section
+    # 40 draws are too few for EVPPI (MIN_EVPPI_DRAWS = 200): the section says so.
+    assert "EVPPI not computed: it needs at least 200 draws" in section
+    assert {"psa_acceptability_curves.csv", "psa_acceptability_frontier.csv",
+            "psa_evppi.csv", "psa_convergence.csv", "psa_evpi.csv"} <= set(record.outputs)
+
+
+STRATEGY_TABLE = ("strategy,state,age_from,age_to,action,note\n"
+                  "treat sick before 65,sick,,65,treat,Synthetic test strategy (invented)\n")
+
+
+def test_strategy_table_beside_the_model_is_hashed_and_a_change_is_detected(tmp_path):
+    model = tmp_path / "model.toml"
+    shutil.copy(BASE, model)
+    table = tmp_path / "model.strategies.csv"
+    table.write_text(STRATEGY_TABLE, encoding="utf-8")
+    out = tmp_path / "report.html"
+    record = build_report(model, out, draws=20, seed=4)
+    assert record.input_files == {"model.strategies.csv": sha256_file(table)}
+    # The table's strategy joins the comparison and the probabilistic candidates.
+    tables = tables_dir_for(out)
+    assert "treat sick before 65" in set(pd.read_csv(tables / "strategies.csv")["strategy"])
+    assert "treat sick before 65" in set(
+        pd.read_csv(tables / "psa_expected_loss.csv")["candidate"])
+    assert "input file: model.strategies.csv" in out.read_text(encoding="utf-8")
+
+    assert rerun(record_path_for(out), out_dir=tmp_path / "same").reproduced
+    table.write_text(STRATEGY_TABLE.replace(",65,", ",70,"), encoding="utf-8")
+    outcome = rerun(record_path_for(out), out_dir=tmp_path / "changed")
+    assert outcome.inputs_changed and not outcome.model_changed
+    what = {d.what for d in outcome.differences}
+    assert {"input file model.strategies.csv", "output strategies.csv"} <= what
+    table.unlink()
+    outcome = rerun(record_path_for(out), out_dir=tmp_path / "gone")
+    gone = next(d for d in outcome.differences if d.what == "input file model.strategies.csv")
+    assert gone.now == "absent"
+
+
+def test_life_table_is_among_the_input_files(tmp_path):
+    from caredecide.modelfile import load_model
+    from caredecide.report import input_files
+    from synthetic_cohort import MODELS_DIR
+
+    model_path = MODELS_DIR / "demo_counts_table.toml"
+    found = input_files(load_model(model_path), model_path)
+    assert found == [MODELS_DIR / "demo_life_table.csv"]

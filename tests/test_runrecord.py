@@ -103,3 +103,32 @@ def test_negative_seed_is_refused(tmp_path):
     data = json.loads(_record().to_json()) | {"seed": -3}
     with pytest.raises(RunRecordError, match=r"field 'seed' = -3; expected null or an integer"):
         read_record(_write(tmp_path, json.dumps(data)))
+
+
+def test_bad_draws_argument_is_refused(tmp_path):
+    data = json.loads(_record().to_json())
+    data["arguments"]["draws"] = "many"
+    with pytest.raises(RunRecordError,
+                       match=r"field 'arguments.draws' = 'many'; expected null or an integer"):
+        read_record(_write(tmp_path, json.dumps(data)))
+
+
+def test_output_hash_that_is_not_text_is_refused(tmp_path):
+    data = json.loads(_record().to_json())
+    data["outputs"]["a.csv"] = 12
+    with pytest.raises(RunRecordError, match=r"field 'outputs.a.csv' = 12; expected text"):
+        read_record(_write(tmp_path, json.dumps(data)))
+
+
+def test_input_files_that_are_not_a_path_to_hash_map_are_refused(tmp_path):
+    data = json.loads(_record().to_json()) | {"input_files": ["life.csv"]}
+    with pytest.raises(RunRecordError, match=r"field 'input_files' = \['life.csv'\]; expected an "
+                       "object of file path -> SHA-256 text"):
+        read_record(_write(tmp_path, json.dumps(data)))
+
+
+def test_input_files_round_trip_and_differences_name_them():
+    record = _record(input_files={"life.csv": "2" * 64})
+    assert RunRecord(**json.loads(record.to_json())) == record
+    found = compare_hashes(record.input_files, {"life.csv": "3" * 64}, kind="input file")
+    assert [str(d) for d in found] == [f"input file life.csv: recorded {'2' * 64}, now {'3' * 64}"]

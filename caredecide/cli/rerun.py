@@ -31,10 +31,14 @@ def rerun_command(
         stderr.print(f"[yellow]note:[/] {difference}")
     stdout.print(f"Re-run tables: {outcome.output_dir}")
     if outcome.reproduced:
-        stdout.print("Reproduced: the model file and every output match the record.")
+        stdout.print("Reproduced: the model file, its input files and every output match the "
+                     "record.")
         return
     if outcome.model_changed:
         stdout.print("The model file has changed since the run was recorded.")
+    if outcome.inputs_changed:
+        stdout.print("An input file the model reads (life table or strategy table) has "
+                     "changed, vanished or appeared since the run was recorded.")
     for difference in outcome.differences:
         stdout.print(f"DIFFERS - {difference}")
     raise typer.Exit(code=1)

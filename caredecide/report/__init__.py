@@ -25,7 +25,8 @@ from caredecide.report.analyses import ReportData, result_tables, run_analyses
 WORKBOOK_NAME = "results.xlsx"
 
 __all__ = ["Downloads", "ReportData", "RerunOutcome", "build_report", "downloads",
-           "record_path_for", "rerun", "run_analyses", "tables_dir_for", "write_outputs"]
+           "input_files", "record_path_for", "rerun", "run_analyses", "tables_dir_for",
+           "write_outputs"]
 
 
 def tables_dir_for(report_path: Path) -> Path:
@@ -36,6 +37,34 @@ def tables_dir_for(report_path: Path) -> Path:
 def record_path_for(report_path: Path) -> Path:
     """``report.html`` -> ``report.run.json`` beside it."""
     return report_path.with_name(f"{report_path.stem}.run.json")
+
+
+def input_files(model, model_path: Path) -> list[Path]:
+    """Files other than the model file that the analyses read, when they exist.
+
+    The model's life table (``[mortality] table``, relative to the model file) and the
+    strategy table ``<model>.strategies.csv`` beside it (read by the strategy comparison
+    and the probabilistic analysis).
+    """
+    from caredecide.strategies import sibling_table
+
+    found = []
+    mortality = getattr(model, "mortality", None)
+    if mortality is not None and mortality.table:
+        table = Path(mortality.table)
+        found.append(table if table.is_absolute() else Path(model_path).parent / table)
+    strategies = sibling_table(model_path)
+    if strategies is not None:
+        found.append(strategies)
+    return [p for p in found if p.is_file()]
+
+
+def _hash_inputs(model, model_path: Path, record_dir: Path) -> dict[str, str]:
+    """``{path relative to the record's folder: SHA-256}`` of :func:`input_files`."""
+    from caredecide.runrecord import sha256_file
+
+    return {_relative(p, record_dir): sha256_file(p)
+            for p in sorted(input_files(model, model_path))}
 
 
 def _about(data: ReportData) -> dict[str, str]:
@@ -106,6 +135,7 @@ def build_report(
         date=utc_now(),
         outputs=write_outputs(data, tables_dir),
         output_dir=_relative(tables_dir, record_path.parent),
+        input_files=_hash_inputs(data.model, model_path, record_path.parent),
     )
     write_report(data, {**asdict(record), "command_line": command_line}, out)
     write_record(record, record_path)
@@ -172,18 +202,22 @@ class RerunOutcome:
     Attributes
     ----------
     differences : list of Difference
-        Model file and output differences (empty: reproduced exactly).
+        Model file, other input file and output differences (empty: reproduced exactly).
     version_differences : list of Difference
         Package versions that differ from the record (a likely reason for differences).
     output_dir : Path
         Where the re-run wrote its tables.
     model_changed : bool
+    inputs_changed : bool
+        An input file other than the model (life table, strategy table) differs, is
+        missing or is new.
     """
 
     differences: list = field(default_factory=list)
     version_differences: list = field(default_factory=list)
     output_dir: Path | None = None
     model_changed: bool = False
+    inputs_changed: bool = False
 
     @property
     def reproduced(self) -> bool:
@@ -244,6 +278,11 @@ def rerun(
                                               now))
     draws = record.arguments.get("draws")
     data = run_analyses(model_path, draws=draws, seed=record.seed, progress=progress)
+    changed_inputs = compare_hashes(
+        record.input_files, _hash_inputs(data.model, model_path, record_path.parent),
+        kind="input file")
+    outcome.inputs_changed = bool(changed_inputs)
+    outcome.differences += changed_inputs
     target = Path(out_dir) if out_dir is not None else Path(tempfile.mkdtemp(prefix="rerun-"))
     outcome.output_dir = target
     outcome.differences += compare_hashes(record.outputs, write_outputs(data, target))

@@ -193,15 +193,27 @@ def _sensitivity(data: ReportData) -> None:
 
 
 def _uncertainty(data: ReportData) -> None:
+    from caredecide.strategies import read_strategy_table, sibling_table
     from caredecide.uncertainty.psa import run_psa
 
-    psa = run_psa(data.model, data.draws, data.seed, objective=data.objective)
+    # The same candidates as 'caredecide uncertainty': the model's strategy table joins
+    # the built-in strategies when one lies beside the model file.
+    table = sibling_table(data.model_path)
+    extra = read_strategy_table(table) if table is not None else []
+    psa = run_psa(data.model, data.draws, data.seed, objective=data.objective,
+                  strategies=extra)
     data.results["psa_acceptability"] = psa.acceptability_by_age_band()
     data.results["psa_expected_loss"] = psa.expected_loss()
     data.results["psa_policy_frequencies"] = psa.policy_frequencies()
     data.results["psa_acceptability_curves"] = psa.acceptability_curves()
+    data.results["psa_acceptability_frontier"] = psa.acceptability_frontier()
+    data.results["psa_evppi"] = psa.evppi()
+    data.results["psa_convergence"] = psa.convergence()
     evpi = psa.evpi()
     data.results["psa_evpi"] = pd.DataFrame([evpi])
+    data.facts["psa_distinct_policies"] = len(psa.distinct_counts)
+    if not psa.success:
+        data.notes["uncertainty"] = "the solver reported a problem: " + "; ".join(psa.messages)
 
 
 def _verification(data: ReportData) -> None:

@@ -94,6 +94,13 @@ def note(text: str) -> str:
     return f'<p class="note">{esc(text)}</p>'
 
 
+def unit_text(data: ReportData) -> str:
+    """Unit of the objective: QALYs, or the model's currency (``money`` when none is set)."""
+    if data.objective.unit == "money" and data.model.settings.currency:
+        return data.model.settings.currency
+    return data.objective.unit
+
+
 def _para(text: str) -> str:
     return f"<p>{esc(text)}</p>"
 
@@ -158,7 +165,7 @@ def _trace_chart(data: ReportData):
 def policy_section(data: ReportData) -> str:
     return (f'<p class="headline">{esc(data.facts["structure"])}</p>'
             + _para(f"Solver: {data.facts['solver']}. Objective at the start: "
-                    f"{number(data.facts['value_at_start'])} ({data.objective.unit}).")
+                    f"{number(data.facts['value_at_start'])} ({unit_text(data)}).")
             + "<h3>Best action by state and age band</h3>" + table(data.results["policy_bands"])
             + svg(lambda: _policy_chart(data))
             + "<h3>Totals per person under the best policy</h3>"
@@ -188,7 +195,7 @@ def sensitivity_section(data: ReportData) -> str:
     from ui.charts import make_tornado_chart
 
     one = data.results["oneway"]
-    parts = [svg(lambda: make_tornado_chart(one, unit=f"({data.objective.unit})")),
+    parts = [svg(lambda: make_tornado_chart(one, unit=f"({unit_text(data)})")),
              "<h3>One-way analysis, ranked by swing</h3>",
              table(one, ["rank", "parameter", "low", "high", "value_low", "value_base",
                          "value_high", "swing", "policy_changes", "rule"]),
@@ -202,15 +209,59 @@ def sensitivity_section(data: ReportData) -> str:
     return "".join(parts)
 
 
+def _action_shown(data: ReportData) -> str:
+    """The action whose acceptability is drawn: the first one after the model's first."""
+    ids = data.model.action_ids
+    return ids[1] if len(ids) > 1 else ids[0]
+
+
 def uncertainty_section(data: ReportData) -> str:
+    from ui.charts import (
+        make_acceptability_curves_chart,
+        make_evppi_chart,
+        make_policy_acceptability_chart,
+    )
+
     evpi = data.results["psa_evpi"].iloc[0]
-    return (_para(f"{data.draws} parameter draws, seed {data.seed}. EVPI of the timing "
-                  f"decision: {number(float(evpi['evpi']))} (Monte Carlo s.e. "
-                  f"{number(float(evpi['mc_se']))}), {data.objective.unit} per person.")
-            + "<h3>Expected loss of each candidate policy</h3>"
-            + table(data.results["psa_expected_loss"])
-            + "<h3>Share of draws in which each action is best</h3>"
-            + table(data.results["psa_acceptability"]))
+    unit = unit_text(data)
+    action = _action_shown(data)
+    parts = [
+        _para(f"{data.draws} parameter draws, seed {data.seed}. EVPI of the timing "
+              f"decision: {number(float(evpi['evpi']))} (Monte Carlo s.e. "
+              f"{number(float(evpi['mc_se']))}) {unit} per person, an upper bound as the "
+              f"best policy is sought among the candidates below (best: "
+              f"{evpi['best_candidate']}); among the candidates alone "
+              f"{number(float(evpi['evpi_among_candidates']))} (s.e. "
+              f"{number(float(evpi['mc_se_among_candidates']))})."),
+        "<h3>Expected loss of each candidate policy</h3>",
+        table(data.results["psa_expected_loss"]),
+        "<h3>Share of draws in which each action is best</h3>",
+        svg(lambda: make_policy_acceptability_chart(
+            data.results["psa_acceptability"], action=action,
+            state_order=list(data.model.state_ids))),
+        table(data.results["psa_acceptability"]),
+        "<h3>Acceptability curves</h3>",
+        svg(lambda: make_acceptability_curves_chart(
+            data.results["psa_acceptability_curves"],
+            data.results.get("psa_acceptability_frontier"),
+            currency=data.model.settings.currency)),
+    ]
+    if "psa_policy_frequencies" in data.results:
+        distinct = data.facts.get("psa_distinct_policies", "?")
+        parts += [f"<h3>Most frequent optimal policies ({esc(distinct)} distinct across the "
+                  "draws)</h3>", table(data.results["psa_policy_frequencies"])]
+    evppi = data.results.get("psa_evppi")
+    parts.append("<h3>Expected value of partial perfect information</h3>")
+    if evppi is not None and len(evppi) and evppi["evppi"].notna().any():
+        parts += [svg(lambda: make_evppi_chart(evppi, unit=f"({unit})")),
+                  table(evppi, ["parameter", "members", "evppi", "mc_se", "share_of_evpi",
+                                "method", "message"])]
+    else:
+        from caredecide.uncertainty.psa import MIN_EVPPI_DRAWS
+
+        parts.append(note(f"EVPPI not computed: it needs at least {MIN_EVPPI_DRAWS} draws and "
+                          "two candidate policies."))
+    return "".join(parts)
 
 
 def verification_section(data: ReportData) -> str:
@@ -232,6 +283,8 @@ def run_record_section(data: ReportData, record: dict) -> str:
     rows = [("model file", str(data.model_path)), ("model sha256", data.model_sha256),
             ("command", record.get("command_line", "")), ("seed", record.get("seed")),
             ("draws", data.draws), ("date (UTC)", record.get("date", ""))]
+    rows += [(f"input file: {k}", f"sha256 {v}")
+             for k, v in record.get("input_files", {}).items()]
     rows += [(f"version: {k}", v) for k, v in record.get("versions", {}).items()]
     frame = pd.DataFrame(rows, columns=["item", "value"]).astype({"value": str})
     return table(frame, max_rows=100)

@@ -28,7 +28,8 @@ def test_rerun_reproduces_and_exits_zero(recorded, tmp_path):
     _, record = recorded
     run = runner.invoke(app, ["rerun", str(record), "--out", str(tmp_path / "again"), "--quiet"])
     assert run.exit_code == 0, run.output
-    assert "Reproduced: the model file and every output match the record." in run.stdout
+    assert ("Reproduced: the model file, its input files and every output match the "
+            "record.") in run.stdout
     assert "RESEARCH USE ONLY" in run.stderr
     again = sorted(p.name for p in (tmp_path / "again").iterdir())
     assert again == sorted(p.name for p in (tmp_path / "r_tables").iterdir())
