@@ -30,6 +30,7 @@ from caredecide.strategies import (
     StrategyPolicy,
     computed,
     default_strategies,
+    from_age,
     read_strategy_table,
     resolve_strategy,
     sibling_table,
@@ -136,6 +137,7 @@ def compare_strategies(
     *,
     grid: int = DEFAULT_GRID,
     builtins: bool | None = None,
+    from_ages: Sequence[float] = (),
     progress: Callable[[int, int], None] | None = None,
 ) -> ComparisonResult:
     """Compare the optimal policy with fixed strategies at a willingness to pay.
@@ -158,6 +160,10 @@ def compare_strategies(
         Grid values of the WTP solved first in the frontier search.
     builtins : bool, optional
         Include the built-in strategies; default: yes unless ``strategies`` is a sequence.
+    from_ages : sequence of float
+        Ages (years, start of a cycle): for each, add "X from age a"
+        (:func:`caredecide.strategies.from_age`) for every action X after the first
+        (model order). Finite horizons only.
     progress : callable(round, brackets), optional
         Frontier refinement progress.
 
@@ -192,6 +198,7 @@ def compare_strategies(
     optimal = computed(optimal_name, result.policy[0],
                        description=f"optimal at {wtp:,.0f} per QALY: {result.structure(0).text}")
     chosen = _strategy_list(compiled, model, strategies, builtins, notes)
+    chosen += [from_age(action, age) for age in from_ages for action in compiled.action_ids[1:]]
     resolved = [resolve_strategy(compiled, s) for s in chosen]
     resolved.insert(0, resolve_strategy(compiled, optimal))
 

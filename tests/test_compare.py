@@ -324,3 +324,25 @@ def test_strategies_view_without_a_range_and_with_a_bad_range(app_test):
         s.value for s in at.subheader]
     at.number_input(key="strategies_low").set_value(5000.0).run()
     assert any("'to' must be above 'from'" in e.value for e in at.error)
+
+
+def test_from_ages_add_the_age_family(demo):
+    # "treat from age 65": treat wherever allowed in cycles starting at 65 or later (the
+    # demo starts at 55 with one-year cycles), the alternative (wait) before.
+    compiled = compile_model(demo)
+    result = compare_strategies(demo, [never("treat")], wtp=30000.0, from_ages=(65.0,))
+    row = result.resolved[-1]
+    assert row.strategy.name == "treat from age 65"
+    treat = compiled.action_ids.index("treat")
+    untreated = [compiled.state_ids.index(s) for s in ("stage_1", "stage_2", "stage_3")]
+    np.testing.assert_array_equal(compiled.ages()[[9, 10]], [64.0, 65.0])
+    assert (row.policy[:10, untreated] != treat).all()  # ages 55-64
+    assert (row.policy[10:, untreated] == treat).all()  # ages 65 on
+    assert "treat from age 65" in set(result.table["strategy"])
+
+
+def test_from_ages_need_a_finite_horizon():
+    stationary = demo_model_path().with_name("teaching_stationary.toml")
+    with pytest.raises(ModelError, match=r"strategies\.intensive from age 65\.age: age 65 "
+                                         r"given, but the model has an infinite horizon"):
+        compare_strategies(stationary, from_ages=(65.0,))

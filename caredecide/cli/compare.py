@@ -130,6 +130,12 @@ def compare_command(
         typer.Option("--wtp-range", help="Also find the optimal policy for every WTP in "
                                          "[LO, HI], with exact switch points."),
     ] = None,
+    from_age: Annotated[
+        list[float] | None,
+        typer.Option("--from-age", min=0.0,
+                     help="Also compare 'X from age AGE' for every action X after the "
+                          "first (repeat for several ages; finite horizons only)."),
+    ] = None,
     grid: Annotated[
         int, typer.Option("--grid", min=2, max=1001, help="WTP grid values solved first.")
     ] = 21,
@@ -158,7 +164,7 @@ def compare_command(
             result = compare_strategies(
                 loaded, strategies, wtp,
                 tuple(wtp_range) if wtp_range is not None else None, grid=grid,
-                progress=progress,
+                from_ages=tuple(from_age or ()), progress=progress,
             )
         currency = loaded.settings.currency
         _print_table(result, currency)

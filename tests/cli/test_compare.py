@@ -101,3 +101,18 @@ def test_small_increments_are_never_printed_as_zero():
     assert _money(0.0) == "0" and _money(27116.4) == "27,116" and _money(float("nan")) == ""
     assert _qalys(2.09e-6) == "2.09e-06" and _qalys(-4e-5) == "-4.00e-05"
     assert _qalys(0.0) == "0.0000" and _qalys(0.5356) == "0.5356" and _qalys(float("nan")) == ""
+
+
+def test_from_age_option_adds_the_age_strategy():
+    run = runner.invoke(app, ["compare", DEMO, "--from-age", "70", "--from-age", "80",
+                              "--quiet"])
+    assert run.exit_code == 0, run.output
+    assert "treat from age 70" in run.stdout and "treat from age 80" in run.stdout
+
+
+def test_from_age_on_an_infinite_horizon_is_a_clear_error():
+    stationary = str(demo_model_path().with_name("teaching_stationary.toml"))
+    run = runner.invoke(app, ["compare", stationary, "--from-age", "65"])
+    assert run.exit_code == 2
+    assert "age 65 given, but the model has an infinite horizon" in " ".join(
+        run.stderr.split())

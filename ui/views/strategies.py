@@ -66,7 +66,12 @@ if upload is not None:
         st.error(f"{upload.name}: {len(data)} bytes; expected at most {MAX_TABLE_BYTES} bytes "
                  "for a strategy table", icon=":material/error:")
         st.stop()
-    tables.append((upload.name, data.decode("utf-8-sig", errors="replace")))
+    try:
+        tables.append((upload.name, data.decode("utf-8-sig")))
+    except UnicodeDecodeError as error:  # the same words as a file read from disk
+        st.error(f"{upload.name}: not UTF-8 text ({error.reason} at byte {error.start}); "
+                 "expected a CSV file", icon=":material/error:")
+        st.stop()
 
 if high < low:
     st.error(f"Frontier range ({low:,.0f}, {high:,.0f}): 'to' must be above 'from'",
