@@ -366,12 +366,29 @@ DATA_DICTIONARY = {
 }
 
 
-def write_cohort(patients: pd.DataFrame, visits: pd.DataFrame, out: Path) -> tuple[Path, Path]:
-    """Write ``patients.csv`` and ``visits.csv`` (times rounded to 4 decimals) into ``out``."""
+DICTIONARY_FILE = "data_dictionary.csv"
+
+
+def dictionary_frame() -> pd.DataFrame:
+    """The data dictionary as a table: one row per column of each file (file, column, meaning)."""
+    rows = [
+        (name, column, meaning)
+        for name, columns in DATA_DICTIONARY.items()
+        for column, meaning in columns.items()
+    ]
+    return pd.DataFrame(rows, columns=["file", "column", "meaning"])
+
+
+def write_cohort(
+    patients: pd.DataFrame, visits: pd.DataFrame, out: Path
+) -> tuple[Path, Path, Path]:
+    """Write ``patients.csv``, ``visits.csv`` (times rounded to 4 decimals) and the data
+    dictionary ``data_dictionary.csv`` (file, column, meaning) into ``out``."""
     out.mkdir(parents=True, exist_ok=True)
-    paths = (out / "patients.csv", out / "visits.csv")
+    paths = (out / "patients.csv", out / "visits.csv", out / DICTIONARY_FILE)
     patients.to_csv(paths[0], index=False, float_format="%.4f")
     visits.to_csv(paths[1], index=False, float_format="%.4f")
+    dictionary_frame().to_csv(paths[2], index=False)
     return paths
 
 

@@ -4,6 +4,7 @@ the committed sample and its data dictionary."""
 from __future__ import annotations
 
 import re
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -142,22 +143,44 @@ def test_dropout_censors_at_the_exponential_rate():
     assert abs(early - expected) <= 4 * np.sqrt(expected * (1 - expected) / n)
 
 
+def test_treatment_scales_progression_but_not_death():
+    # Everyone starts treatment at the entry visit (stage_1 eligible, probability 1): the
+    # stage_1 exit rates are then 0.5 x 0.6 = 0.3 (progression) and 0.1 (death, unchanged),
+    # so after one year stage_1 holds exp(-0.4) = 0.670320 and the deaths straight from
+    # stage_1 are 0.1 / 0.4 x (1 - exp(-0.4)) = 0.082420 (competing exponential risks;
+    # Fleurence & Hollenbeak 2007, p = 1 - exp(-r t)). Stage_2 has no death, so these are
+    # all deaths within the year.
+    design = fully_observed_design(
+        progressive_rates([0.5], [0.1, 0.0]), (1.0, 0.0), follow_up_years=1.0
+    )
+    design = replace(design, treatment_hazard_ratio=0.6, treat_from_stage=0, treat_probability=1)
+    n = 20_000
+    patients, visits = generate_cohort(design, n_patients=n, seed=13)
+    assert (patients["treatment_start_years"] == 0.0).all()
+    assert (visits["treated"] == 1).all()
+    shares = _state_after_one_year(design, n, seed=13)
+    expected = np.array([np.exp(-0.4), 0.0, 0.25 * -np.expm1(-0.4)])
+    expected[1] = 1 - expected[0] - expected[2]
+    tolerance = 4 * np.sqrt(expected * (1 - expected) / n)  # binomial, 4 standard errors
+    assert np.all(np.abs(shares - expected) <= tolerance), (shares, expected, tolerance)
+
+
 def test_command_line_writes_the_committed_sample(tmp_path):
     generator.main(["--seed", "2026", "--patients", "300", "--out", str(tmp_path)])
-    for name in ("patients.csv", "visits.csv"):
+    for name in ("patients.csv", "visits.csv", "data_dictionary.csv"):
         assert (tmp_path / name).read_bytes() == (DATA_DIR / name).read_bytes(), name
 
 
-def _dictionary_tables(text: str) -> dict[str, list[str]]:
-    """Column names listed under each ``## `file.csv` `` heading of the data dictionary."""
-    tables: dict[str, list[str]] = {}
+def _dictionary_tables(text: str) -> dict[str, dict[str, str]]:
+    """Column -> meaning listed under each ``## `file.csv` `` heading of the data dictionary."""
+    tables: dict[str, dict[str, str]] = {}
     current = None
     for line in text.splitlines():
         heading = re.fullmatch(r"## `(\w+\.csv)`", line.strip())
         if heading:
-            current = tables.setdefault(heading.group(1), [])
-        elif current is not None and (cell := re.match(r"\| `(\w+)` \|", line)):
-            current.append(cell.group(1))
+            current = tables.setdefault(heading.group(1), {})
+        elif current is not None and (cell := re.match(r"\| `(\w+)` \| (.*) \|$", line)):
+            current[cell.group(1)] = cell.group(2)
     return tables
 
 
@@ -165,10 +188,14 @@ def test_data_dictionary_columns_match_the_files():
     readme = (DATA_DIR / "README.md").read_text()
     tables = _dictionary_tables(readme)
     assert set(tables) == {"patients.csv", "visits.csv"}
+    written = pd.read_csv(DATA_DIR / "data_dictionary.csv")
     for name, columns in tables.items():
         header = (DATA_DIR / name).read_text().splitlines()[0].split(",")
-        assert columns == header, name
-        assert columns == list(DATA_DICTIONARY[name]), name
+        assert list(columns) == header, name
+        # The README, the generator and the written dictionary say the same thing.
+        assert columns == DATA_DICTIONARY[name], name
+        rows = written[written["file"] == name]
+        assert dict(zip(rows["column"], rows["meaning"], strict=True)) == columns, name
     assert "SYNTHETIC DATA" in readme
 
 
