@@ -32,6 +32,7 @@ from caredecide.solvers.common import (
     transition_at,
 )
 from caredecide.solvers.finite import terminal_present_value
+from caredecide.solvers.result import summary_repr
 from caredecide.solvers.stationary import START_WEIGHT
 
 DISPLAY_ABSORBED = 0.999
@@ -42,7 +43,7 @@ DISPLAY_CAP = 1000
 _QUANTITIES = ("life_years", "qalys", "costs")
 
 
-@dataclass
+@dataclass(repr=False)
 class PolicyOutcome:
     """Cohort trace and totals of a policy for ``D`` draws.
 
@@ -81,6 +82,17 @@ class PolicyOutcome:
     state_ids: tuple[str, ...]
     ages: np.ndarray
     finite_horizon: bool
+
+    def __repr__(self) -> str:
+        arrays = {name: getattr(self, name) for name in (
+            "trace", "life_years", "qalys", "costs", "life_years_undiscounted",
+            "qalys_undiscounted", "costs_undiscounted", "net_monetary_benefit", "value")}
+        return summary_repr(
+            "PolicyOutcome",
+            {"draws": int(self.value.shape[0]), "finite_horizon": self.finite_horizon},
+            {"objective": self.objective.describe(), "states": ", ".join(self.state_ids),
+             **arrays, "flows": ", ".join(self.flows)},
+        )
 
     def trace_frame(self, draw: int = 0) -> pd.DataFrame:
         """Long cohort trace of one draw: columns cycle, age, state, proportion."""

@@ -14,6 +14,25 @@ if TYPE_CHECKING:
     from caredecide.structure import PolicyStructure
 
 
+def summary_repr(name: str, scalars: dict[str, object], arrays: dict[str, object]) -> str:
+    """A short repr: scalar fields in the header, then one line per array with its shape.
+
+    Used by result objects that hold arrays over many draws, so typing the object's name in
+    a notebook shows what it holds instead of printing every array; an array of one element
+    (a total of one draw) is shown as its number.
+    """
+    header = ", ".join(f"{key}={value!r}" for key, value in scalars.items())
+    lines = [f"{name}({header})"]
+    for key, value in arrays.items():
+        if isinstance(value, np.ndarray) and value.size == 1:  # one draw: show the number
+            lines.append(f"  {key}: {value.ravel()[0]:.10g}")
+        elif isinstance(value, np.ndarray):
+            lines.append(f"  {key}: {value.shape} {value.dtype}")
+        elif value is not None:
+            lines.append(f"  {key}: {value}")
+    return "\n".join(lines)
+
+
 @dataclass
 class SweepRecord:
     """State of a solver after one sweep (recorded with ``record_history=True``).
@@ -48,7 +67,7 @@ class SweepRecord:
     error_bound: np.ndarray
 
 
-@dataclass
+@dataclass(repr=False)
 class PolicyResult:
     """An optimal policy with its values, action gaps and ties, for ``D`` draws.
 
@@ -119,6 +138,25 @@ class PolicyResult:
     @property
     def n_draws(self) -> int:
         return int(self.policy.shape[0])
+
+    def __repr__(self) -> str:
+        return summary_repr(
+            "PolicyResult",
+            {"method": self.method, "success": self.success, "draws": self.n_draws},
+            {
+                "message": self.message,
+                "objective": f"{self.objective.describe()} (values in {self.objective.unit})",
+                "iterations": self.iterations,
+                "tolerance": f"{self.tolerance:g} ({'relative' if self.relative else 'absolute'})",
+                "error_bound (largest)": f"{float(np.max(self.error_bound)):.3g}",
+                "states": ", ".join(self.state_ids),
+                "actions": ", ".join(self.action_ids),
+                "policy": self.policy, "value": self.value, "q_values": self.q_values,
+                "action_gap": self.action_gap, "next_best_action": self.next_best_action,
+                "indifferent": self.indifferent,
+                "history": None if self.history is None else f"{len(self.history)} sweeps",
+            },
+        )
 
     @property
     def finite_horizon(self) -> bool:
