@@ -81,6 +81,10 @@ def test_unknown_check_is_refused(base_small):
         ("probabilities_in_range.toml", "probabilities_in_range", "p_die_sick * 4"),
         # 90% of a non-alive state returns to 'well': the dead share falls.
         ("closed_cohort.toml", "closed_cohort", "largest fall of the dead share = 0.4"),
+        # A typed-out row summing to 1 + 9e-10 (inside the loader's 1e-9) adds 9e-10 x the
+        # 'sick' share every cycle: under 'wait' the trace ends 9e-10 x (sum over the 40
+        # cycles of the sick share, 4.45) = 4.01e-9 above 1 (arithmetic; common practice).
+        ("trace_sums_to_one.toml", "trace_sums_to_one", "largest |sum - 1| = 4.01e-09"),
     ],
 )
 def test_check_fails_on_its_broken_model(file, check, figure):
