@@ -105,9 +105,10 @@ def write_outputs(out: Path, result, currency: str = "") -> list[Path]:
         path = folder / trace_file_name(index, str(name))
         trace.drop(columns="strategy").to_csv(path, index=False)
         written.append(path)
-    written += _save_chart(make_ce_plane_chart(result.table, currency=currency), out, "ce_plane")
+    unit = f"({currency})" if currency else ""  # axis titles as in the app: "... (EUR)"
+    written += _save_chart(make_ce_plane_chart(result.table, currency=unit), out, "ce_plane")
     if result.frontier is not None:
-        written += _save_chart(make_frontier_chart(result.frontier, currency=currency), out,
+        written += _save_chart(make_frontier_chart(result.frontier, currency=unit), out,
                                "frontier")
     return written
 

@@ -63,6 +63,11 @@ def test_out_writes_table_frontier_traces_and_charts(tmp_path, library):
         assert (tmp_path / f"{stem}.svg").read_text(encoding="utf-8").lstrip().startswith("<svg")
         assert (tmp_path / f"{stem}.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert "Optimal policy over the willingness-to-pay range" in run.stdout
+    # Axis titles carry the model's currency in brackets, as in the app.
+    assert "Cost per person (discounted) (EUR)" in (tmp_path / "ce_plane.svg").read_text(
+        encoding="utf-8")
+    assert "Willingness to pay per QALY (EUR)" in (tmp_path / "frontier.svg").read_text(
+        encoding="utf-8")
 
 
 def test_strategies_option_reads_the_table(tmp_path):
