@@ -188,16 +188,32 @@ def _per_state(result, policy, decision, bands, draw: int = 0) -> PolicyStructur
 
 
 def _no_structure(bands, result=None, draw: int = 0) -> PolicyStructure:
-    rules = [
-        f"{action} in " + ", ".join(f"{state} (ages {band})" if band != "all ages" else state
-                                    for state, band in rows)
-        for action, rows in bands.items()
-    ]
+    rules = [f"{action} in " + ", ".join(_state_bands(rows)) for action, rows in bands.items()]
     text = "no simple threshold structure: " + "; ".join(rules)
     by_band = _band_descriptions(result, draw) if result is not None else []
     if len(by_band) > 1:
         text += ". By age band: " + "; ".join(by_band)
     return PolicyStructure(NO_STRUCTURE, text, rules, bands)
+
+
+def _age_words(band: str) -> str:
+    """``"ages 55-61"`` for a band of several ages, ``"age 62"`` for one."""
+    return f"ages {band}" if "-" in band else f"age {band}"
+
+
+def _state_bands(rows: list[tuple[str, str]]) -> list[str]:
+    """One entry per state with its age bands together: ``"early (ages 60-62, 94-99)"``."""
+    grouped: dict[str, list[str]] = {}
+    for state, band in rows:
+        grouped.setdefault(state, []).append(band)
+    out = []
+    for state, state_bands in grouped.items():
+        if state_bands == ["all ages"]:
+            out.append(state)
+        else:
+            word = "ages" if len(state_bands) > 1 or "-" in state_bands[0] else "age"
+            out.append(f"{state} ({word} {', '.join(state_bands)})")
+    return out
 
 
 def _band_descriptions(result: PolicyResult, draw: int) -> list[str]:
@@ -212,18 +228,18 @@ def _band_descriptions(result: PolicyResult, draw: int) -> list[str]:
         column = table.loc[order, band]
         actions = list(dict.fromkeys(column))
         if len(actions) == 1:
-            clauses.append(f"ages {band}: {actions[0]} in every state")
+            clauses.append(f"{_age_words(band)}: {actions[0]} in every state")
             continue
         first, later = column.iloc[0], [a for a in actions if a != column.iloc[0]]
         switch = int(np.argmax(column.to_numpy() != first))
         monotone = (len(later) == 1 and (column.iloc[switch:] == later[0]).all()
                     and all(s in ranked for s in order))
         if monotone:
-            clauses.append(f"ages {band}: {later[0]} from {order[switch]} onward, "
+            clauses.append(f"{_age_words(band)}: {later[0]} from {order[switch]} onward, "
                            f"{first} before")
         else:
             parts = [f"{a} in " + ", ".join(column.index[column == a]) for a in actions]
-            clauses.append(f"ages {band}: " + "; ".join(parts))
+            clauses.append(f"{_age_words(band)}: " + "; ".join(parts))
     return clauses
 
 

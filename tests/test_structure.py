@@ -147,5 +147,14 @@ def test_no_structure_is_described_band_by_band():
     assert summary.text.endswith(
         "By age band: ages 60-61: treat from stage_2 onward, wait before; "
         "ages 62-63: wait in stage_1, stage_3; treat in stage_2; "
-        "ages 64: wait in every state"
+        "age 64: wait in every state"
     )
+
+
+def test_no_structure_lists_each_state_once_with_its_age_bands():
+    # One decision state that waits, treats, then waits again: two switches over age.
+    summary = _with_policy({"stage_1": [0, 1, 1, 0, 0], "stage_2": [1] * 5,
+                            "stage_3": [1] * 5}).structure()
+    assert summary.kind == NO_STRUCTURE
+    assert summary.rules == ["wait in stage_1 (ages 60, 63-64)",
+                             "treat in stage_1 (ages 61-62), stage_2, stage_3"]
