@@ -122,8 +122,11 @@ def test_background_mortality_enters_by_age():
 def test_dirichlet_group_members_take_count_shares():
     data = small_model_dict()
     data["groups"] = {
-        "from_well": {"members": ["g_sick", "g_dead", "g_stay"], "counts": [10, 2, 88],
-                      "source": "Synthetic: test counts"}
+        "from_well": {
+            "members": ["g_sick", "g_dead", "g_stay"],
+            "counts": [10, 2, 88],
+            "source": "Synthetic: test counts",
+        }
     }
     data["transitions"]["wait"]["well"] = {"sick": "g_sick", "dead": "g_dead", "well": "g_stay"}
     model = load_dict(data)
@@ -209,3 +212,80 @@ def test_infinite_horizon_compiles_stationary_arrays():
     c = compile_model(load_dict(data))
     assert c.n_cycles is None and c.is_stationary
     assert c.transition.shape == (1, 1, 2, 3, 3)
+
+
+def _one_way_like_sets(demo) -> pd.DataFrame:
+    """Each parameter moved over three values, one at a time: many repeated rate columns."""
+    from caredecide.sensitivity import parameter_ranges, parameter_sets
+
+    ranges = parameter_ranges(demo)
+    frames = [
+        parameter_sets(demo, {row.parameter: np.linspace(row.low, row.high, 3)})
+        for row in ranges.itertuples()
+    ]
+    return pd.concat(frames, ignore_index=True)
+
+
+def test_deduplicated_rate_rows_equal_the_plain_result_exactly(demo, monkeypatch):
+    # Each distinct (draw, cycle) column of rates is exponentiated once; the result must
+    # be bit for bit the one without de-duplication.
+    import caredecide.compile as compile_module
+
+    sets = _one_way_like_sets(demo)
+    deduplicated = compile_model(demo, sets)
+    monkeypatch.setitem(compile_module._RATE_ROWS, "deduplicate", False)
+    plain = compile_model(demo, sets)
+    np.testing.assert_array_equal(deduplicated.transition, plain.transition)
+
+
+def test_rate_rows_agree_with_the_former_uniformization_path(demo, monkeypatch):
+    # The former path (uniformization of whole matrices, every draw and cycle) is the
+    # reference: same arrays within round-off, probability rows untouched.
+    import caredecide.compile as compile_module
+
+    sets = _one_way_like_sets(demo).iloc[::3]
+    current = compile_model(demo, sets)
+    monkeypatch.setitem(compile_module._RATE_ROWS, "deduplicate", False)
+    monkeypatch.setitem(compile_module._RATE_ROWS, "method", "uniformization")
+    former = compile_model(demo, sets)
+    np.testing.assert_allclose(current.transition, former.transition, rtol=0.0, atol=1e-12)
+    stage_1 = demo.state_ids.index("stage_1")  # a [transitions] row: no exponential at all
+    np.testing.assert_array_equal(
+        current.transition[:, :, :, stage_1], former.transition[:, :, :, stage_1]
+    )
+
+
+def test_rate_rows_match_scipy_expm_of_the_whole_generator(demo):
+    # Reference library: scipy.linalg.expm of each action's full 7 x 7 generator (every
+    # state present), for one draw at three ages; only the rate rows are compared.
+    import scipy.linalg
+
+    from caredecide.compile import _indices, parse_model_expressions
+    from caredecide.mortality import background_probability
+
+    c = compile_model(demo)
+    parsed = parse_model_expressions(demo)
+    a, s, _ = _indices(parsed.rates)
+    rates = {(e.action, e.state, e.target): e.expression for e in parsed.rates}
+    assert len(rates) == len(a)
+    for t in (0, 20, 44):
+        age = demo.settings.start_age + t
+        values = dict(demo.base_parameter_values())
+        values.update(
+            background=float(background_probability(demo.mortality, np.array([age]), 1.0)[0]),
+            age=age,
+            cycle=float(t),
+            years=float(t),
+            cycle_years=1.0,
+        )
+        G = np.zeros((len(demo.action_ids), 7, 7))
+        for (action, state, target), expression in rates.items():
+            G[action, state, target] = float(np.asarray(expression.evaluate(values)))
+        G[:, np.arange(7), np.arange(7)] = -G.sum(axis=-1)
+        for action, state in set(zip(a.tolist(), s.tolist(), strict=True)):
+            np.testing.assert_allclose(
+                c.transition[0, t, action, state],
+                scipy.linalg.expm(G[action])[state],
+                rtol=0.0,
+                atol=1e-15,
+            )

@@ -410,3 +410,131 @@ def test_error_rates_diagonal_not_zero():
     rates[0, 2, 2] = 0.4
     with raises("rates_to_generator(rates)", "row 2 of matrix (0,)", "diagonal", "0.4"):
         rates_to_generator(rates)
+
+
+# ------------------------------------------------------- batched exponential: routes and guarantees
+def stiff_and_gentle_stack(seed: int, n: int = 300, s: int = 6, density: float = 0.5) -> np.ndarray:
+    """Random generators with largest rates from 1e-9 to 1e3 per year in one stack."""
+    rng = np.random.default_rng(seed)
+    scale = 10.0 ** rng.uniform(-9.0, 3.0, size=n)
+    raw = rng.uniform(size=(n, s, s)) * (rng.uniform(size=(n, s, s)) < density)
+    return random_generators(raw * scale[:, None, None])
+
+
+@pytest.mark.parametrize("density", [0.2, 0.5, 0.9])
+def test_stiff_and_gentle_stack_matches_scipy_expm(density):
+    # Reference library: scipy.linalg.expm, matrix by matrix (Higham 2005 / Al-Mohy &
+    # Higham 2009 scaling and squaring). Round-off grows with the squarings, about
+    # eps x (largest rate x years) for the stiffest matrices.
+    G = stiff_and_gentle_stack(int(density * 100), density=density)
+    P = generator_to_transition(G, 1.0)
+    reference = np.stack([scipy.linalg.expm(g) for g in G])
+    scale = np.maximum(1.0, np.abs(G).max(axis=(-2, -1)))
+    error = np.abs(P - reference).max(axis=(-2, -1))
+    assert (error <= 1e-15 * 4.0 * scale).all(), error.max()
+    # Rows are probability distributions (common practice).
+    assert (P >= 0).all() and (P <= 1).all()
+    np.testing.assert_allclose(P.sum(axis=-1), 1.0, rtol=0.0, atol=1e-12)
+
+
+def test_each_matrix_is_independent_of_its_neighbours():
+    # Route, degree and squarings are chosen per matrix, so on the same block of states a
+    # matrix alone gives the same bits as inside a stack; de-duplication relies on it.
+    from caredecide.conversions import _stack_exponential
+
+    G = np.concatenate([stiff_and_gentle_stack(7, n=60), stiff_and_gentle_stack(8, density=0.1)])
+    together = _stack_exponential(G)
+    alone = np.stack([_stack_exponential(g[None])[0] for g in G])
+    np.testing.assert_array_equal(together, alone)
+
+
+def test_unreachable_states_get_exactly_zero():
+    # A state that no chain of rates reaches has probability 0 exactly (common practice:
+    # expm(G)[i, j] > 0 iff j is reachable from i). Cyclic 0 <-> 1 with exits to 2, and
+    # 3 -> 4 separate: from 0, 1 and 2 the states 3 and 4 are unreachable.
+    rates = np.zeros((5, 5))
+    rates[0, 1], rates[1, 0], rates[1, 2], rates[3, 4] = 0.7, 0.4, 0.3, 0.2
+    P = generator_to_transition(rates_to_generator(rates), 1.0)
+    np.testing.assert_array_equal(P[:3, 3:], 0.0)
+    np.testing.assert_array_equal(P[2], [0.0, 0.0, 1.0, 0.0, 0.0])
+    np.testing.assert_array_equal(P[3:, :3], 0.0)
+    np.testing.assert_allclose(P, scipy.linalg.expm(rates_to_generator(rates)), atol=1e-15)
+
+
+def test_state_without_exits_or_entries_keeps_identity_row_and_column():
+    # States outside the rates keep their identity rows exactly (common practice).
+    G = two_exit_generator(0.1, 0.05)
+    padded = np.zeros((5, 5))
+    padded[1:4, 1:4] = G
+    P = generator_to_transition(padded, 1.0)
+    np.testing.assert_array_equal(P[0], [1.0, 0.0, 0.0, 0.0, 0.0])
+    np.testing.assert_array_equal(P[4], [0.0, 0.0, 0.0, 0.0, 1.0])
+    np.testing.assert_allclose(P[1:4, 1:4], scipy.linalg.expm(G), atol=1e-16)
+
+
+@given(
+    arrays(np.float64, (4, 5, 5), elements=st.floats(0.0, 50.0)),
+    arrays(np.bool_, (4, 5, 5)),
+    st.floats(0.05, 5.0),
+)
+@settings(max_examples=60, deadline=None)
+def test_any_generator_gives_a_stochastic_matrix_close_to_scipy(raw, keep, years):
+    # Invariants (common practice): entries in [0, 1], rows summing to 1; value against
+    # scipy.linalg.expm (reference library), for random sparsity patterns.
+    G = random_generators(raw * keep)
+    P = generator_to_transition(G, years)
+    assert (P >= 0).all() and (P <= 1).all()
+    np.testing.assert_allclose(P.sum(axis=-1), 1.0, rtol=0.0, atol=1e-12)
+    reference = np.stack([scipy.linalg.expm(g * years) for g in G])
+    np.testing.assert_allclose(P, reference, rtol=0.0, atol=1e-13 * max(1.0, 250.0 * years))
+
+
+def test_one_step_closed_form_matches_scipy_and_published_value():
+    # Exits that all end in states without exits take the closed form; Welton & Ades 2005
+    # published values (a = 0.1, b = 0.05) and scipy.linalg.expm for a stiff row.
+    from caredecide.conversions import _one_step_exponential
+
+    G = np.stack([two_exit_generator(0.1, 0.05), two_exit_generator(600.0, 400.0)])
+    P = _one_step_exponential(G)
+    np.testing.assert_allclose(P[0, 0], [0.860708, 0.092861, 0.046431], atol=PUBLISHED_6)
+    np.testing.assert_allclose(P, np.stack([scipy.linalg.expm(g) for g in G]), atol=1e-15)
+    assert P[1, 0, 0] == 0.0 and P[1, 0, 1] == pytest.approx(0.6, rel=1e-15)
+
+
+def test_pade_matches_the_former_uniformization():
+    # The former method (uniformization) stays callable as the benchmark reference;
+    # the two agree within round-off on gentle and stiff generators.
+    from caredecide.conversions import _generator_exponential
+
+    G = stiff_and_gentle_stack(11)
+    np.testing.assert_allclose(
+        _generator_exponential(G), _generator_exponential(G, "uniformization"), atol=1e-11
+    )
+
+
+def test_unknown_exponential_method_is_refused():
+    from caredecide.conversions import _generator_exponential
+
+    with pytest.raises(ValueError, match=r"'taylor' is unknown.*'pade', 'uniformization'"):
+        _generator_exponential(np.zeros((2, 2)), "taylor")
+
+
+def test_pade_coefficients_follow_the_closed_form():
+    # Source: Higham 2005, SIAM J Matrix Anal Appl 26(4):1179-1193 (eq. 2.2); the degree-3
+    # and degree-13 coefficients as printed in scipy.sparse.linalg's expm.
+    from caredecide.conversions import _pade_coefficients
+
+    np.testing.assert_array_equal(_pade_coefficients(3), [120.0, 60.0, 12.0, 1.0])
+    assert _pade_coefficients(13)[0] == 64764752532480000.0
+    assert _pade_coefficients(13)[12] == 182.0
+
+
+def test_a_result_outside_round_off_falls_back_to_uniformization(monkeypatch):
+    # With a tolerance no result can meet, every matrix takes the uniformization route,
+    # which keeps every term non-negative (common practice: the fallback is exercised).
+    from caredecide import conversions
+
+    G = stiff_and_gentle_stack(13, n=40)
+    monkeypatch.setattr(conversions, "_PADE_ROUND_OFF", -1.0)
+    fallen_back = conversions._pade_exponential(G, np.zeros(G.shape, dtype=bool))
+    np.testing.assert_array_equal(fallen_back, conversions._uniformized_exponential(G))
