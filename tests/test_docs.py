@@ -122,3 +122,20 @@ def test_index_puts_the_cautions_first_and_links_every_document():
     unlinked = sorted(p.name for p in DOCS.glob("*.md") if p.name != "index.md"
                       and p.name not in linked)
     assert unlinked == [], f"docs/index.md does not link {unlinked}"
+
+
+def test_every_source_cited_in_the_documents_is_in_the_reference_list():
+    # validation.md says "Full references are at the end of methods.md": hold it to that.
+    # A citation "Surname YEAR" is listed when one reference entry names both.
+    methods = (DOCS / "methods.md").read_text(encoding="utf-8")
+    body, references = methods.split("\n## References\n")
+    entries = re.split(r"\n- ", references)
+    cited = citations(body)
+    for doc in ("validation.md", "estimation.md", "limitations.md"):
+        cited |= citations((DOCS / doc).read_text(encoding="utf-8"))
+    missing = sorted(
+        key for key in cited
+        if not any(re.search(rf"\b{re.escape(key.rsplit(' ', 1)[0])}\b", entry)
+                   and key.rsplit(" ", 1)[1] in entry for entry in entries)
+    )
+    assert missing == [], f"cited but not in the references of docs/methods.md: {missing}"
