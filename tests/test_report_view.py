@@ -51,3 +51,20 @@ def test_downloads_are_the_report_workbook_and_tables():
     names = zipfile.ZipFile(io.BytesIO(ready.tables_zip)).namelist()
     assert {"policy.csv", "input_evidence.csv", "verification.csv"} <= set(names)
     assert ready.workbook[:2] == b"PK"  # an XLSX (zip) file
+
+
+def test_app_tables_are_the_command_line_tables_byte_for_byte(tmp_path):
+    # The app's zip and the files 'caredecide report' writes come from the same analyses:
+    # the strategy table beside the demo model joins both, whatever the working directory.
+    from caredecide.report import build_report, downloads, tables_dir_for
+
+    path = demo_model_path()
+    ready = downloads(path.read_text(encoding="utf-8"), file=path.name, base_dir=path.parent)
+    out = tmp_path / "report.html"
+    build_report(path, out)
+    archive = zipfile.ZipFile(io.BytesIO(ready.tables_zip))
+    written = sorted(p.name for p in tables_dir_for(out).glob("*.csv"))
+    assert sorted(archive.namelist()) == written
+    for name in written:
+        assert archive.read(name) == (tables_dir_for(out) / name).read_bytes(), name
+    assert b"treat stage 2-3 before 80" in archive.read("strategies.csv")

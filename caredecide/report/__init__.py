@@ -17,7 +17,7 @@ from __future__ import annotations
 import os
 import tempfile
 from collections.abc import Callable
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 
 from caredecide.report.analyses import ReportData, result_tables, run_analyses
@@ -183,7 +183,12 @@ def downloads(
     from caredecide.runrecord import package_versions, sha256_bytes, utc_now
 
     model = loads_model(model_text, file=file, base_dir=Path(base_dir))
-    data = run_analyses(Path(file), draws=draws, seed=seed, model=model,
+    # The file beside its folder, so a strategy table next to it is found (as on the
+    # command line) whatever the app's working directory.
+    located = Path(base_dir) / Path(file).name
+    if located.is_file():
+        model = replace(model, source_path=located)
+    data = run_analyses(model.source_path or Path(file), draws=draws, seed=seed, model=model,
                         model_sha256=sha256_bytes(model_text.encode("utf-8")))
     record = {"command_line": command_line, "seed": seed, "date": utc_now(),
               "versions": package_versions()}

@@ -198,7 +198,7 @@ def _uncertainty(data: ReportData) -> None:
 
     # The same candidates as 'caredecide uncertainty': the model's strategy table joins
     # the built-in strategies when one lies beside the model file.
-    table = sibling_table(data.model_path)
+    table = sibling_table(data.model.source_path or data.model_path)
     extra = read_strategy_table(table) if table is not None else []
     psa = run_psa(data.model, data.draws, data.seed, objective=data.objective,
                   strategies=extra)
