@@ -177,10 +177,25 @@ def compare_strategies(
         Bad strategy tables (file, row, value), unknown actions or states, duplicate
         strategy names, a bad WTP or range.
     """
+    model = _load(model)
+    try:
+        return _compare_loaded(model, strategies, wtp, wtp_range, grid=grid, builtins=builtins,
+                               from_ages=from_ages, progress=progress)
+    except ModelError as error:
+        # A problem with no file of its own (an option, a built-in strategy) concerns this
+        # model: name its file rather than a placeholder.
+        source = getattr(model, "source_path", None)
+        if source is None or all(p.file is not None for p in error.problems):
+            raise
+        raise ModelError(error.problems, file=str(source)) from None
+
+
+def _compare_loaded(model, strategies, wtp, wtp_range, *, grid, builtins, from_ages,
+                    progress) -> ComparisonResult:
+    """:func:`compare_strategies` for a loaded model."""
     from caredecide.compile import compile_model
     from caredecide.solvers import solve
 
-    model = _load(model)
     notes: list[str] = []
     if wtp is None:
         wtp = float(model.settings.willingness_to_pay)
