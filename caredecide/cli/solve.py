@@ -16,6 +16,12 @@ from rich.table import Table
 from caredecide import __version__
 from caredecide.cautions import CAUTION_SHORT
 from caredecide.cli.common import print_caution, stderr, stdout, user_errors
+from caredecide.errors import CaredecideError
+
+
+class OutputError(CaredecideError):
+    """The results cannot be written where the user asked."""
+
 
 POLICY_COLUMNS = ["cycle", "age", "state", "action", "value", "next_best_action", "action_gap"]
 
@@ -124,7 +130,7 @@ def solve_command(
     from caredecide.compile import compile_model
     from caredecide.evaluate import evaluate_policy
     from caredecide.modelfile import load_model
-    from caredecide.objective import Objective
+    from caredecide.objective import Objective, ObjectiveError
     from caredecide.solvers import SolverError, solve
 
     # The caution is always shown (stderr), whatever --quiet says.
@@ -132,7 +138,10 @@ def solve_command(
     with user_errors():
         with stderr.status("Solving...", spinner="dots") if not quiet else nullcontext():
             loaded = load_model(model)
-            objective = Objective.from_settings(loaded.settings, wtp)
+            try:
+                objective = Objective.from_settings(loaded.settings, wtp)
+            except ObjectiveError as error:  # name the option, not only the value
+                raise ObjectiveError(f"--wtp: {error}" if wtp is not None else error) from None
             compiled = compile_model(loaded)
             try:
                 result = solve(compiled, objective, method=method.value)
@@ -142,12 +151,21 @@ def solve_command(
         summary = build_summary(model, compiled, result, outcome)
         if not result.success:
             stderr.print(f"[bold yellow]warning:[/] {result.message}")
+        if wtp is not None and objective.kind == "qalys" and not quiet:
+            stderr.print(f"note: {model} maximises QALYs; --wtp {wtp:g} sets only the reported "
+                         "net monetary benefit, not the policy")
         if out is not None:
-            out.mkdir(parents=True, exist_ok=True)
-            _policy_frame(result).to_csv(out / "policy.csv", index=False)
-            outcome.trace_frame().to_csv(out / "trace.csv", index=False)
-            (out / "summary.json").write_text(json.dumps(summary, indent=2) + "\n",
-                                              encoding="utf-8")
+            try:
+                out.mkdir(parents=True, exist_ok=True)
+                _policy_frame(result).to_csv(out / "policy.csv", index=False)
+                outcome.trace_frame().to_csv(out / "trace.csv", index=False)
+                (out / "summary.json").write_text(json.dumps(summary, indent=2) + "\n",
+                                                  encoding="utf-8")
+            except OSError as error:
+                raise OutputError(
+                    f"--out {out}: cannot write the results ({error.strerror or error}); "
+                    "expected a folder that can be created and written"
+                ) from None
             if not quiet:
                 stderr.print(f"Wrote policy.csv, trace.csv and summary.json to {out}")
         if output_format is OutputFormat.csv:

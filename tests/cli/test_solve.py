@@ -108,3 +108,37 @@ def test_broken_model_file_error(tmp_path):
 def test_negative_wtp_rejected():
     run = runner.invoke(app, ["solve", DEMO, "--wtp", "-1"])
     assert run.exit_code != 0
+
+
+def test_infinite_wtp_error_names_the_option():
+    run = runner.invoke(app, ["solve", DEMO, "--wtp", "inf"])
+    assert run.exit_code == 2
+    assert "--wtp: willingness_to_pay = inf is not allowed; expected a finite number >= 0" in (
+        run.stderr)
+
+
+def test_unwritable_out_folder_error(tmp_path):
+    blocked = tmp_path / "a_file"
+    blocked.write_text("not a folder", encoding="utf-8")
+    run = runner.invoke(app, ["solve", DEMO, "--out", str(blocked / "results")])
+    assert run.exit_code == 2
+    assert f"--out {blocked / 'results'}: cannot write the results" in run.stderr
+
+
+def test_wtp_with_a_qaly_objective_is_noted(tmp_path):
+    # A QALY objective ignores costs: --wtp changes the reported net benefit, not the policy.
+    text = demo_model_path().read_text(encoding="utf-8")
+    assert 'objective = "net_benefit"' in text
+    qaly_model = tmp_path / "qaly.toml"
+    qaly_model.write_text(text.replace('objective = "net_benefit"', 'objective = "qalys"'),
+                          encoding="utf-8")
+    low = runner.invoke(app, ["solve", str(qaly_model), "--wtp", "0", "--format", "json"])
+    high = runner.invoke(app, ["solve", str(qaly_model), "--wtp", "90000", "--format", "json"])
+    assert low.exit_code == high.exit_code == 0, low.output
+    assert "maximises QALYs; --wtp 90000 sets only the reported net monetary benefit" in (
+        high.stderr)
+    low_summary, high_summary = json.loads(low.stdout), json.loads(high.stdout)
+    assert low_summary["structure"] == high_summary["structure"]
+    totals = high_summary["totals"]
+    assert totals["net_monetary_benefit"] == pytest.approx(
+        90000 * totals["qalys"] - totals["costs"], rel=1e-12)
