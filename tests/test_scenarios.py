@@ -45,6 +45,21 @@ def test_the_bundled_scenarios_are_all_found():
             "teaching_stationary.toml"} <= names
 
 
+@pytest.mark.parametrize(
+    "name", ["demo_progressive", "lesion_surveillance", "teaching_stationary"]
+)
+def test_each_required_scenario_has_a_short_readme(name):
+    readme = MODELS_DIR / f"{name}.README.md"
+    text = readme.read_text(encoding="utf-8")
+    assert text.startswith("# Synthetic"), readme.name
+    assert f"`{name}.toml`" in text
+    assert f"caredecide solve synthetic_cohort/models/{name}.toml" in text
+    # The caution of caredecide/cautions.py, in the README's own sentence.
+    assert "research use only: not a substitute for clinical judgment, local guidelines or " \
+        "licensed practice" in " ".join(text.split()).lower()
+    assert f"`{name}.README.md`" in (MODELS_DIR / "README.md").read_text(encoding="utf-8")
+
+
 @pytest.mark.parametrize("path", SCENARIOS, ids=lambda p: p.name)
 def test_scenario_passes_caredecide_check(path):
     run = runner.invoke(app, ["check", str(path)])
