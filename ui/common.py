@@ -24,6 +24,7 @@ from caredecide.model import Model
 from caredecide.modelfile import loads_model
 from caredecide.objective import Objective
 from caredecide.solvers import PolicyResult, solve
+from caredecide.structure import PolicyStructure
 from synthetic_cohort import demo_model_path
 from ui import drafts
 
@@ -236,22 +237,34 @@ class Solved:
 @st.cache_data(max_entries=16, show_spinner=False)
 def solve_model(
     text: str, file: str, base_dir: str, kind: str, willingness_to_pay: float, method: str = "auto",
-    record_history: bool = False, max_iterations: int = 100_000,
+    record_history: bool = False, max_iterations: int = 100_000, _model: Model | None = None,
 ) -> Solved:
     """Compile the base case, solve it and evaluate the policy (cached on text and settings).
+
+    ``_model`` may pass the validated model of exactly this ``text``, ``file`` and
+    ``base_dir`` (from :func:`check_model`) so the text is not parsed a second time; the
+    leading underscore keeps it out of the cache key, which the text already determines.
 
     Raises
     ------
     CaredecideError
         When the model is invalid or cannot be solved as asked.
     """
-    model = loads_model(text, file=file, base_dir=base_dir)
+    model = _model if _model is not None else loads_model(text, file=file, base_dir=base_dir)
     compiled = compile_model(model)
     objective = Objective(kind, float(willingness_to_pay))
     result = solve(compiled, objective, method=method, record_history=record_history,
                    max_iterations=max_iterations)
     evaluation = evaluate_policy(compiled, result.policy, objective)
     return Solved(result, evaluation.trace_frame(), evaluation.totals_frame())
+
+
+@st.cache_data(max_entries=16, show_spinner=False)
+def policy_structure(
+    text: str, file: str, base_dir: str, kind: str, willingness_to_pay: float,
+) -> PolicyStructure:
+    """Plain-language structure of the solved policy (cached: widgets rerun the view often)."""
+    return solve_model(text, file, base_dir, kind, willingness_to_pay).result.structure()
 
 
 def current_check() -> Checked:

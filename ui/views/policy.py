@@ -30,7 +30,8 @@ if kind == "net_benefit":
 try:
     with st.spinner("Solving the model..."):
         solved = common.solve_model(common.working_text(), common.file_label(),
-                                    common.base_folder(), kind, float(willingness_to_pay))
+                                    common.base_folder(), kind, float(willingness_to_pay),
+                                    _model=model)
 except CaredecideError as error:
     st.error(str(error), icon=":material/error:")
     st.stop()
@@ -51,7 +52,8 @@ cols[3].metric(f"Net monetary benefit at {willingness_to_pay:,.0f}",
 
 # -- structure ---------------------------------------------------------------------------
 st.subheader("What the policy says")
-structure = result.structure()
+structure = common.policy_structure(common.working_text(), common.file_label(),
+                                    common.base_folder(), kind, float(willingness_to_pay))
 st.markdown(structure.text)
 labels = {a.id: a.label or a.id for a in model.actions}
 st.markdown("\n".join(
