@@ -209,6 +209,26 @@ def test_sampled_transition_matrices_are_stochastic(seed, cycle):
     )
 
 
+def test_draws_for_probabilistic_analysis_follow_the_asymptotic_normal():
+    # The draws of the log parameters are N(theta^, inverse observed information) (Wald
+    # asymptotics, common practice): sample means within 4 standard errors of theta^,
+    # sample covariance within 4 standard errors of each entry (the variance of a sample
+    # covariance is (s_ij^2 + s_ii s_jj) / n for normal data; common practice).
+    patients, visits = generate_cohort(n_patients=300, seed=21)
+    estimate = estimate_panel(records_from_frames(visits, patients))
+    cov = estimate.covariance
+    assert np.all(np.isfinite(cov))
+    n = 20_000
+    draws = estimate.sample_log_parameters(np.random.default_rng(3), n)
+    sd = np.sqrt(np.diag(cov))
+    assert np.all(np.abs(draws.mean(axis=0) - estimate.log_parameters) <= 4 * sd / np.sqrt(n))
+    sample = np.cov(draws, rowvar=False)
+    bound = 4 * np.sqrt((cov**2 + np.outer(np.diag(cov), np.diag(cov))) / n)
+    assert np.all(np.abs(sample - cov) <= bound)
+    # Correlations are kept: the fitted rates are not independent.
+    assert np.abs(cov[~np.eye(cov.shape[0], dtype=bool)]).max() > 0.01 * sd.max() ** 2
+
+
 def test_treated_generator_scales_only_stage_to_stage_rates():
     patients, visits = generate_cohort(n_patients=200, seed=5)
     estimate = estimate_panel(records_from_frames(visits, patients))
