@@ -395,12 +395,16 @@ def write_cohort(
 def main(argv: list[str] | None = None) -> None:
     """Entry point: ``python -m synthetic_cohort.generator --seed S --patients N --out DIR``."""
     parser = argparse.ArgumentParser(description=f"Generate a synthetic cohort ({SYNTHETIC_NOTE}).")
-    parser.add_argument("--seed", type=int, default=2026)
-    parser.add_argument("--patients", type=int, default=300)
-    parser.add_argument("--out", type=Path, required=True)
+    parser.add_argument("--seed", type=int, default=2026, help="random seed (>= 0)")
+    parser.add_argument("--patients", type=int, default=300, help="number of patients (>= 1)")
+    parser.add_argument(
+        "--out", type=Path, required=True, help="folder for the CSV files and data dictionary"
+    )
     args = parser.parse_args(argv)
     if args.patients < 1:
         parser.error(f"--patients must be >= 1, got {args.patients}")
+    if args.seed < 0:
+        parser.error(f"--seed must be a whole number >= 0, got {args.seed}")
     patients, visits = generate_cohort(n_patients=args.patients, seed=args.seed)
     for path in write_cohort(patients, visits, args.out):
         print(f"wrote {path} ({SYNTHETIC_NOTE})")

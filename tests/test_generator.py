@@ -223,3 +223,18 @@ def test_progressive_rates_checks_lengths():
 def test_cohort_needs_a_patient():
     with pytest.raises(ValueError, match="n_patients must be >= 1"):
         generate_cohort(n_patients=0)
+
+
+@pytest.mark.parametrize(
+    ("argv", "message"),
+    [
+        (["--patients", "0"], "--patients must be >= 1, got 0"),
+        (["--seed", "-1"], "--seed must be a whole number >= 0, got -1"),
+    ],
+)
+def test_command_line_rejects_bad_values(tmp_path, capsys, argv, message):
+    with pytest.raises(SystemExit) as exit_info:
+        generator.main([*argv, "--out", str(tmp_path)])
+    assert exit_info.value.code == 2
+    assert message in capsys.readouterr().err
+    assert not (tmp_path / "patients.csv").exists()
