@@ -8,7 +8,7 @@ from typing import Annotated
 import typer
 from rich.table import Table
 
-from caredecide.cli.common import print_caution, stderr, stdout, user_errors
+from caredecide.cli.common import plain, print_caution, stderr, stdout, user_errors
 
 
 def _horizon_text(model) -> str:
@@ -16,22 +16,27 @@ def _horizon_text(model) -> str:
     if s.infinite_horizon:
         return "infinite (stationary model)"
     n = model.n_cycles()
+    cycles = f"{n} cycle{'s' if n != 1 else ''} of {s.cycle_years:g} year"
+    cycles += "" if s.cycle_years == 1 else "s"
     if s.until_age is not None:
-        return f"{n} cycles of {s.cycle_years:g} years, ages {s.start_age:g} to {s.until_age:g}"
-    return f"{n} cycles of {s.cycle_years:g} years from age {s.start_age:g}"
+        return f"{cycles}, ages {s.start_age:g} to {s.until_age:g}"
+    return f"{cycles} from age {s.start_age:g}"
 
 
 def _value_text(value: object) -> str:
-    return f"{value:g}" if isinstance(value, float) else str(value)
+    # Expressions and labels are the user's text: shown literally, never as rich markup.
+    return f"{value:g}" if isinstance(value, float) else plain(value)
 
 
 def print_summary(model) -> None:
     """Print states, actions, allowed actions, parameters with sources and the horizon."""
     s = model.settings
-    stdout.print(f"[bold]{model.title}[/]  ({model.file_label})")
+    stdout.print(f"[bold]{plain(model.title)}[/]  ({plain(model.file_label)})")
     stdout.print(f"horizon: {_horizon_text(model)}")
     objective = (
-        f"net monetary benefit at {s.willingness_to_pay:g} {s.currency} per QALY".replace("  ", " ")
+        f"net monetary benefit at {s.willingness_to_pay:g} {plain(s.currency)} per QALY".replace(
+            "  ", " "
+        )
         if s.objective == "net_benefit"
         else "QALYs"
     )
@@ -52,7 +57,7 @@ def print_summary(model) -> None:
             kind += ", dead"
         states.add_row(
             state.id,
-            state.label,
+            plain(state.label),
             _value_text(state.qaly_weight),
             _value_text(state.cost),
             kind,
@@ -67,7 +72,7 @@ def print_summary(model) -> None:
     for action in model.actions:
         actions.add_row(
             action.id,
-            action.label,
+            plain(action.label),
             ", ".join(model.allowed_states(action)),
             _value_text(action.oneoff_cost),
             _value_text(action.oneoff_qaly_loss),
@@ -86,16 +91,17 @@ def print_summary(model) -> None:
         else:
             group = next(g for g in model.groups.values() if name in g.members)
             kind, source = f"Dirichlet group {group.name}", group.source
-        parameters.add_row(name, f"{value:g}", kind, f"{low:.4g} - {high:.4g}", source)
+        parameters.add_row(name, f"{value:g}", kind, f"{low:.4g} - {high:.4g}", plain(source))
     stdout.print(parameters)
     if model.mortality is not None:
         m = model.mortality
         law = (
             "Gompertz-Makeham a={:g}, b={:g}, c={:g}".format(*m.gompertz_makeham)
             if m.gompertz_makeham is not None
-            else f"life table {m.table}"
+            else f"life table {plain(m.table)}"
         )
-        stdout.print(f"background mortality: {law}" + (f" ({m.source})" if m.source else ""))
+        source = f" ({plain(m.source)})" if m.source else ""
+        stdout.print(f"background mortality: {law}{source}")
 
 
 def register(app: typer.Typer) -> None:
@@ -118,7 +124,9 @@ def register(app: typer.Typer) -> None:
             model = load_model(model_path)
             warnings = validate_model(model)
         for warning in warnings:
-            stderr.print(f"[yellow]warning:[/] {model.file_label}: {warning}")
+            stderr.print(f"[yellow]warning:[/] {plain(model.file_label)}: {plain(warning)}")
         if not quiet:
             print_summary(model)
-            stdout.print(f"[green]OK[/]: {model.file_label} is valid ({len(warnings)} warning(s))")
+            stdout.print(
+                f"[green]OK[/]: {plain(model.file_label)} is valid ({len(warnings)} warning(s))"
+            )

@@ -8,12 +8,19 @@ from contextlib import contextmanager
 
 import typer
 from rich.console import Console
+from rich.markup import escape
 
 from caredecide.cautions import CAUTION_SHORT
 from caredecide.errors import CaredecideError
 
 stdout = Console(soft_wrap=True, highlight=False)
 stderr = Console(stderr=True, soft_wrap=True, highlight=False)
+
+
+def plain(text: object) -> str:
+    """``text`` escaped so rich prints it literally (labels, sources and messages may
+    contain square brackets)."""
+    return escape(str(text))
 
 
 def print_caution(quiet: bool = False) -> None:
@@ -28,10 +35,20 @@ def user_errors() -> Iterator[None]:
     try:
         yield
     except CaredecideError as error:
-        stderr.print(f"[bold red]error:[/] {error}", markup=True)
+        # Messages quote table paths such as [transitions.wait.stage_1]: print them as
+        # text, never as rich markup (which would swallow the brackets).
+        stderr.print(f"[bold red]error:[/] {plain(error)}")
         raise typer.Exit(code=2) from None
     except FileNotFoundError as error:
-        stderr.print(f"[bold red]error:[/] file not found: {error.filename}")
+        stderr.print(f"[bold red]error:[/] file not found: {plain(error.filename)}")
+        raise typer.Exit(code=2) from None
+    except IsADirectoryError as error:
+        stderr.print(f"[bold red]error:[/] {plain(error.filename)} is a folder; expected a file")
+        raise typer.Exit(code=2) from None
+    except PermissionError as error:
+        stderr.print(
+            f"[bold red]error:[/] {plain(error.filename)} cannot be read: permission denied"
+        )
         raise typer.Exit(code=2) from None
 
 

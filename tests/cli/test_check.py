@@ -51,3 +51,41 @@ def test_missing_file_is_a_clear_error(tmp_path):
     result = runner.invoke(app, ["check", str(tmp_path / "nothing.toml")])
     assert result.exit_code == 2
     assert "nothing.toml" in result.stderr
+
+
+def test_bracketed_table_paths_and_labels_are_printed_literally(tmp_path):
+    # A missing row names the TOML table to add, "[transitions.wait.sick]": rich must not
+    # read it as markup and swallow it.
+    data = small_model_dict()
+    del data["transitions"]["wait"]["sick"]
+    path = tmp_path / "row.toml"
+    path.write_text(tomli_w.dumps(data))
+    result = runner.invoke(app, ["check", str(path)])
+    assert result.exit_code == 2
+    assert "expected [transitions.wait.sick] (or [rates.wait.sick])" in result.stderr
+
+    data = small_model_dict()
+    data["states"][0]["label"] = "Well [stable]"
+    data["parameters"]["p_sick"]["source"] = "Synthetic [table 2]"
+    path = tmp_path / "labels.toml"
+    path.write_text(tomli_w.dumps(data))
+    result = runner.invoke(app, ["check", str(path)], env={"COLUMNS": "200"})
+    assert result.exit_code == 0, result.output
+    assert "Well [stable]" in result.stdout and "Synthetic [table 2]" in result.stdout
+
+
+def test_a_folder_is_a_clear_error(tmp_path):
+    result = runner.invoke(app, ["check", str(tmp_path)])
+    assert result.exit_code == 2
+    assert f"{tmp_path}: is a folder; expected a model file" in result.stderr
+    assert "Traceback" not in result.output
+
+
+def test_horizon_reads_in_whole_words(tmp_path):
+    data = small_model_dict()
+    data["settings"]["horizon_cycles"] = 1
+    data["settings"]["cycle_years"] = 0.5
+    path = tmp_path / "one.toml"
+    path.write_text(tomli_w.dumps(data))
+    result = runner.invoke(app, ["check", str(path)])
+    assert "horizon: 1 cycle of 0.5 years from age 60" in result.stdout
