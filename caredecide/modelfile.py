@@ -239,6 +239,8 @@ def loads_model(
 def load_model(path: Path | str, *, validate: bool = True) -> Model:
     """Read and validate a model file (relative paths inside resolve against its folder)."""
     path = Path(path)
+    if path.is_dir():
+        raise ModelError("is a folder; expected a model file (.toml)", file=str(path))
     size = path.stat().st_size
     if size > MAX_MODEL_BYTES:
         raise ModelError(
@@ -910,7 +912,7 @@ def dumps_model(model: Model) -> str:
         f"title = {_value(model.title)}",
     ]
     if model.description:
-        out.append(f"description = {_value(model.description)}")
+        out.append(f"description = {_value(model.description, multiline=True)}")
     settings: dict[str, Any] = {"cycle_years": s.cycle_years}
     if s.horizon_cycles is not None:
         settings["horizon_cycles"] = s.horizon_cycles
@@ -958,6 +960,8 @@ def dumps_model(model: Model) -> str:
         _section(out, "[[actions]]", fields)
     for table_name, table in (("transitions", model.transitions), ("rates", model.rates)):
         for action_id, rows in table.items():
+            if not rows:  # an action with no rows yet (e.g. being edited) stays in the file
+                _section(out, f"[{table_name}.{_key(action_id)}]", {})
             for from_id, row in rows.items():
                 _section(out, f"[{table_name}.{_key(action_id)}.{_key(from_id)}]", dict(row))
     for name, p in model.parameters.items():
@@ -1004,7 +1008,7 @@ def save_model(model: Model, path: Path | str) -> None:
 def _section(out: list[str], header: str, fields: Mapping[str, Any]) -> None:
     out.append("")
     out.append(header)
-    out.extend(f"{_key(k)} = {_value(v)}" for k, v in fields.items())
+    out.extend(f"{_key(k)} = {_value(v, multiline=True)}" for k, v in fields.items())
 
 
 _BARE_KEY = re.compile(r"^[A-Za-z0-9_-]+$")
@@ -1014,10 +1018,18 @@ def _key(key: str) -> str:
     return key if _BARE_KEY.match(key) else _value(key)
 
 
-def _value(value: Any) -> str:
-    """One TOML value; tables are written inline so each entry stays on one line."""
+def _value(value: Any, *, multiline: bool = False) -> str:
+    """One TOML value; tables are written inline so each entry stays on one line.
+
+    With ``multiline``, text spanning several lines (a description, a note) is written
+    as a TOML multi-line string (in triple quotes), as a person would type it. Text
+    holding a carriage return stays escaped on one line: TOML reads CR LF inside a
+    multi-line string as LF.
+    """
     import tomli_w
 
+    if multiline and isinstance(value, str) and "\n" in value and "\r" not in value:
+        return tomli_w.dumps({"x": value}, multiline_strings=True)[len("x = ") :].rstrip("\n")
     if isinstance(value, Mapping):
         inner = ", ".join(f"{_key(k)} = {_value(v)}" for k, v in value.items())
         return "{ " + inner + " }" if inner else "{}"

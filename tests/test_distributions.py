@@ -41,6 +41,17 @@ ONE_OF_EACH = [
     {"type": "uniform", "low": 0.1, "high": 0.4},
     {"type": "triangular", "low": 0.0, "mode": 0.2, "high": 1.0},
 ]
+# Every way of writing a spec: natural parameters, mean and se, an interval, fixed.
+EVERY_FORM = [
+    *ONE_OF_EACH,
+    {"type": "beta", "mean": 0.8, "se": 0.1},
+    {"type": "gamma", "mean": 1000, "se": 200},
+    {"type": "lognormal", "low": 0.6, "high": 0.9},
+    {"type": "lognormal", "mean": 2, "se": 0.5},
+    {"type": "normal", "mean": 1, "se": 0.2},
+    {"type": "beta", "low": 0.6, "high": 0.9, "level": 0.9},
+    {"type": "fixed", "value": 7},
+]
 
 
 # ------------------------------------------------------------------ method of moments
@@ -203,19 +214,7 @@ def test_sampling_is_reproducible_and_uses_the_generator():
     assert not np.array_equal(first, dist.sample(np.random.default_rng(8), 1000))
 
 
-@pytest.mark.parametrize(
-    "spec",
-    [
-        *ONE_OF_EACH,
-        {"type": "beta", "mean": 0.8, "se": 0.1},
-        {"type": "gamma", "mean": 1000, "se": 200},
-        {"type": "lognormal", "low": 0.6, "high": 0.9},
-        {"type": "lognormal", "mean": 2, "se": 0.5},
-        {"type": "normal", "mean": 1, "se": 0.2},
-        {"type": "beta", "low": 0.6, "high": 0.9, "level": 0.9},
-        {"type": "fixed", "value": 7},
-    ],
-)
+@pytest.mark.parametrize("spec", EVERY_FORM)
 def test_spec_round_trips_unchanged(spec):
     dist = distribution_from_spec(dict(spec))
     assert dist.to_spec() == spec

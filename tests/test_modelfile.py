@@ -20,12 +20,19 @@ from caredecide.modelfile import (
 )
 from synthetic_cohort import MODELS_DIR
 from tests.conftest import load_dict, small_model_dict
+from tests.test_distributions import EVERY_FORM
 
 
 def test_demo_loads_with_its_declared_structure(demo_model_path):
     model = load_model(demo_model_path)
     assert model.state_ids == (
-        "stage_1", "stage_2", "stage_3", "stage_1_tx", "stage_2_tx", "stage_3_tx", "dead",
+        "stage_1",
+        "stage_2",
+        "stage_3",
+        "stage_1_tx",
+        "stage_2_tx",
+        "stage_3_tx",
+        "dead",
     )
     assert model.action_ids == ("wait", "treat")
     assert model.n_cycles() == 45  # ages 55 to 100 in annual cycles
@@ -90,8 +97,22 @@ def test_written_file_is_readable_by_hand(small_model):
 _ids = st.text(string.ascii_lowercase, min_size=1, max_size=6).map(lambda s: "s_" + s)
 _label = st.text(
     st.characters(codec="utf-8", exclude_categories=("Cs", "Cc")), max_size=20
+) | st.sampled_from(
+    # Text a person may write: several lines, tabs, quotes, backslashes, brackets, CR LF.
+    [
+        "two\nlines",
+        "\nleading newline",
+        "trailing newline\n",
+        'say """ three',
+        "a\tb \\ c",
+        "Smith [2019], p. 3",
+        "windows\r\nline",
+        "'single' and \"double\"",
+    ]
 )
 _number = st.floats(0.0, 1e6, allow_nan=False, allow_infinity=False)
+# Every way of writing a distribution spec (model files do not check it against the value).
+_distributions = st.none() | st.sampled_from(EVERY_FORM)
 
 
 @st.composite
@@ -100,33 +121,40 @@ def random_models(draw) -> Model:
 
     names = draw(st.lists(_ids, min_size=2, max_size=5, unique=True))
     alive, dead = names[:-1], names[-1]
+    horizon = draw(st.sampled_from(["cycles", "age", "infinite"]))
     n_params = draw(st.integers(1, 4))
-    parameters = {
-        f"p{i}": Parameter(
+    parameters = {}
+    for i in range(n_params):
+        value = draw(st.floats(0.0, 0.4))
+        ranged = draw(st.booleans())
+        parameters[f"p{i}"] = Parameter(
             name=f"p{i}",
-            value=draw(st.floats(0.0, 0.4)),
+            value=value,
             kind="probability",
             per_years=draw(st.none() | st.floats(0.1, 10.0)),
+            low=value / 2 if ranged else None,
+            high=min(1.0, value * 2) if ranged else None,
             source=draw(_label.filter(lambda s: s.strip())),
             label=draw(_label),
             note=draw(_label),
-            distribution=draw(
-                st.none() | st.just({"type": "beta", "alpha": 2.0, "beta": 8.0})
-            ),
+            distribution=draw(_distributions),
         )
-        for i in range(n_params)
-    }
+    weights = st.floats(0.0, 1.0)
+    if horizon != "infinite":  # an infinite horizon needs values that do not change with age
+        weights = weights | st.just("0.5 + 0 * age")
     states = (
         *(
             State(
                 id=s,
                 label=draw(_label),
-                qaly_weight=draw(st.floats(0.0, 1.0) | st.just("0.5 + 0 * age")),
-                cost=draw(_number),
+                qaly_weight=draw(weights),
+                cost=draw(_number | st.just(-draw(_number))),
+                negative_cost_allowed=True,
             )
             for s in alive
         ),
-        State(id=dead, absorbing=True, alive=False),
+        # A dead state, or an absorbing state where life-years still accrue (e.g. cured).
+        State(id=dead, absorbing=True, alive=draw(st.booleans())),
     )
     actions = (
         Action(id="wait", label=draw(_label), allowed_in="all"),
@@ -137,20 +165,39 @@ def random_models(draw) -> Model:
             oneoff_qaly_loss=draw(st.floats(0.0, 0.1)),
         ),
     )
+    # Each row is given either by probabilities ("rest" completes it) or by exit rates.
+    by_rates = {
+        (action.id, s): draw(st.booleans())
+        for action in actions
+        for s in (alive if action.id == "wait" else action.allowed_in)
+    }
     transitions = {
         action.id: {
             s: {dead: f"p{draw(st.integers(0, n_params - 1))} / 2", s: "rest"}
-            for s in (alive if action.id == "wait" else action.allowed_in)
+            for (a, s), rated in by_rates.items()
+            if a == action.id and not rated
         }
         for action in actions
     }
-    horizon = draw(st.sampled_from(["cycles", "age"]))
+    rates = {
+        action.id: {
+            s: {dead: f"prob_to_rate(p{draw(st.integers(0, n_params - 1))}, 1)"}
+            for (a, s), rated in by_rates.items()
+            if a == action.id and rated
+        }
+        for action in actions
+    }
+    if len(alive) > 1 and draw(st.booleans()):
+        start = {alive[0]: 0.25, alive[1]: 0.75}  # shares summing to exactly 1
+    else:
+        start = alive[0]
     settings_ = Settings(
         cycle_years=draw(st.sampled_from([0.25, 0.5, 1.0])),
         horizon_cycles=draw(st.integers(1, 20)) if horizon == "cycles" else None,
         until_age=90.0 if horizon == "age" else None,
+        infinite_horizon=horizon == "infinite",
         start_age=draw(st.floats(20.0, 80.0)),
-        start=alive[0],
+        start=start,
         discount_outcomes=draw(st.floats(0.0, 0.1)),
         discount_costs=draw(st.floats(0.0, 0.1)),
         objective=draw(st.sampled_from(["qalys", "net_benefit"])),
@@ -162,10 +209,20 @@ def random_models(draw) -> Model:
     groups = {}
     if draw(st.booleans()):
         groups["g"] = DirichletGroup(
-            name="g", members=("g_a", "g_b"), counts=(3.0, 7.0), source="Synthetic counts"
+            name="g",
+            members=("g_a", "g_b"),
+            counts=(3.0, 7.0),
+            source="Synthetic counts",
+            prior=draw(st.sampled_from([0.0, 0.5, 1.0])),
+            note=draw(_label),
         )
     mortality = draw(
-        st.none() | st.just(MortalitySpec(gompertz_makeham=(0.0007, 5e-5, 10**0.04), source="x"))
+        st.none()
+        | st.builds(
+            MortalitySpec,
+            gompertz_makeham=st.just((0.0007, 5e-5, 10**0.04)),
+            source=_label,
+        )
     )
     return Model(
         title=draw(_label.filter(lambda s: s.strip())),
@@ -174,6 +231,7 @@ def random_models(draw) -> Model:
         states=states,
         actions=actions,
         transitions=transitions,
+        rates=rates,
         parameters=parameters,
         groups=groups,
         mortality=mortality,
@@ -221,3 +279,26 @@ def test_binary_file_is_refused_with_a_clear_error(tmp_path):
     path.write_bytes(b"format = 1\n\xff\xfe")
     with pytest.raises(ModelError, match="byte 11 is not UTF-8"):
         load_model(path)
+
+
+def test_text_on_several_lines_is_written_as_a_multiline_string(small_model):
+    import dataclasses
+
+    model = dataclasses.replace(small_model, description="First line.\nSecond line.")
+    text = dumps_model(model)
+    assert 'description = """\nFirst line.\nSecond line."""' in text
+    assert loads_model(text) == model
+
+
+def test_an_action_without_rows_survives_a_round_trip(small_model):
+    import dataclasses
+
+    model = dataclasses.replace(small_model, rates={"treat": {}})
+    text = dumps_model(model)
+    assert "[rates.treat]\n" in text
+    assert loads_model(text).rates == {"treat": {}}
+
+
+def test_a_folder_is_refused_with_a_clear_error(tmp_path):
+    with pytest.raises(ModelError, match="is a folder; expected a model file"):
+        load_model(tmp_path)
