@@ -95,7 +95,13 @@ def register(app: typer.Typer) -> None:
             float,
             typer.Option(min=0.0, max=0.99, help="Counts: accepted gap deviation (fraction)."),
         ] = 0.1,
-        prefix: Annotated[str, typer.Option(help="Prefix for parameter names.")] = "",
+        prefix: Annotated[
+            str,
+            typer.Option(
+                help="Prefix for parameter and group names (letters, digits and _, not "
+                "starting with a digit)."
+            ),
+        ] = "",
         model: Annotated[
             Path | None,
             typer.Option(help="Model file to merge the estimates into (saved at --out)."),
