@@ -56,7 +56,7 @@ class RunRecord:
         Folder of the hashed outputs (relative to the record's folder when relative).
     input_files : dict of str to str
         Input files other than the model file (life table, strategy table), by path
-        (relative to the record's folder when relative) -> SHA-256 of their bytes.
+        (relative to the model file's folder when relative) -> SHA-256 of their bytes.
     """
 
     command: str

@@ -14,6 +14,11 @@ from caredecide.cli.report import step_progress
 def rerun_command(
     record: Annotated[Path, typer.Argument(help="Run record (JSON) written by 'caredecide "
                                            "report'.", dir_okay=False)],
+    model: Annotated[
+        Path | None, typer.Option("--model", help="Model file to use instead of the path in the "
+                                  "record (e.g. a record and model sent together); its hash is "
+                                  "still compared.", dir_okay=False)
+    ] = None,
     out: Annotated[
         Path | None, typer.Option("--out", help="Folder for the re-run's tables (default: a "
                                   "temporary folder).", file_okay=False)
@@ -26,7 +31,7 @@ def rerun_command(
     print_caution(False)
     with user_errors():
         with step_progress("rerun", 5, quiet) as step:
-            outcome = rerun(record, out_dir=out, progress=step)
+            outcome = rerun(record, model=model, out_dir=out, progress=step)
     for difference in outcome.version_differences:
         stderr.print(f"[yellow]note:[/] {difference}")
     stdout.print(f"Re-run tables: {outcome.output_dir}")

@@ -59,11 +59,15 @@ def input_files(model, model_path: Path) -> list[Path]:
     return [p for p in found if p.is_file()]
 
 
-def _hash_inputs(model, model_path: Path, record_dir: Path) -> dict[str, str]:
-    """``{path relative to the record's folder: SHA-256}`` of :func:`input_files`."""
+def _hash_inputs(model, model_path: Path) -> dict[str, str]:
+    """``{path relative to the model file's folder: SHA-256}`` of :func:`input_files`.
+
+    Relative to the model (as the model file itself names its life table), so the record
+    still matches when the model and its files are moved together.
+    """
     from caredecide.runrecord import sha256_file
 
-    return {_relative(p, record_dir): sha256_file(p)
+    return {Path(_relative(p, Path(model_path).parent)).as_posix(): sha256_file(p)
             for p in sorted(input_files(model, model_path))}
 
 
@@ -135,7 +139,7 @@ def build_report(
         date=utc_now(),
         outputs=write_outputs(data, tables_dir),
         output_dir=_relative(tables_dir, record_path.parent),
-        input_files=_hash_inputs(data.model, model_path, record_path.parent),
+        input_files=_hash_inputs(data.model, model_path),
     )
     write_report(data, {**asdict(record), "command_line": command_line}, out)
     write_record(record, record_path)
@@ -232,6 +236,7 @@ class RerunOutcome:
 def rerun(
     record_path: Path | str,
     *,
+    model: Path | str | None = None,
     out_dir: Path | str | None = None,
     progress: Callable[[int, int, str], None] | None = None,
 ) -> RerunOutcome:
@@ -241,6 +246,9 @@ def rerun(
     ----------
     record_path : path
         A run record written by :func:`build_report`.
+    model : path, optional
+        The model file to use instead of the recorded path (e.g. a record and model sent
+        together); its hash is still compared with the record's.
     out_dir : path, optional
         Where to write the re-run's tables (default: a new temporary folder).
     progress : callable(done, total, step), optional
@@ -270,10 +278,11 @@ def rerun(
     if record.command != "report":
         raise RunRecordError(f"{record_path}: command {record.command!r} cannot be re-run; "
                              "expected 'report'")
-    model_path = resolve(record_path, record.model_path)
+    model_path = resolve(record_path, record.model_path) if model is None else Path(model)
     if not model_path.is_file():
-        raise RunRecordError(f"{record_path}: model file {model_path} (model_path = "
-                             f"{record.model_path!r}) does not exist")
+        given = (f"model_path = {record.model_path!r}" if model is None else "given with --model")
+        raise RunRecordError(f"{record_path}: model file {model_path} ({given}) does not exist; "
+                             "expected the model file of the recorded run")
     outcome = RerunOutcome(version_differences=compare_versions(record.versions,
                                                                 package_versions()))
     now = sha256_file(model_path)
@@ -284,7 +293,7 @@ def rerun(
     draws = record.arguments.get("draws")
     data = run_analyses(model_path, draws=draws, seed=record.seed, progress=progress)
     changed_inputs = compare_hashes(
-        record.input_files, _hash_inputs(data.model, model_path, record_path.parent),
+        record.input_files, _hash_inputs(data.model, model_path),
         kind="input file")
     outcome.inputs_changed = bool(changed_inputs)
     outcome.differences += changed_inputs

@@ -54,3 +54,36 @@ def test_unreadable_record_is_a_clear_error(tmp_path):
     run = runner.invoke(app, ["rerun", str(record)])
     assert run.exit_code == 2
     assert "r.run.json: not a JSON run record" in run.stderr
+
+
+def test_rerun_with_the_model_sent_alongside_the_record(recorded, tmp_path):
+    # A reviewer receives the record and the model in a folder of their own.
+    model, record = recorded
+    inbox = tmp_path / "inbox" / "deeper"
+    inbox.mkdir(parents=True)
+    shutil.copy(record, inbox / record.name)
+    shutil.copy(model, inbox / "sent.toml")
+    missing = runner.invoke(app, ["rerun", str(inbox / record.name), "--quiet"])
+    assert missing.exit_code == 2
+    assert "does not exist; expected the model file of the recorded run" in missing.stderr
+    run = runner.invoke(app, ["rerun", str(inbox / record.name), "--model",
+                              str(inbox / "sent.toml"), "--quiet"])
+    assert run.exit_code == 0, run.output
+    assert "Reproduced" in run.stdout
+
+
+def test_rerun_detects_a_changed_strategy_table(tmp_path):
+    model = tmp_path / "model.toml"
+    shutil.copy(BASE, model)
+    table = tmp_path / "model.strategies.csv"
+    table.write_text("strategy,state,age_from,age_to,action\n"
+                     "treat sick before 65,sick,,65,treat\n", encoding="utf-8")
+    made = runner.invoke(app, ["report", str(model), "--out", str(tmp_path / "r.html"),
+                               "--quiet"])
+    assert made.exit_code == 0, made.output
+    table.write_text(table.read_text(encoding="utf-8").replace(",65,", ",70,"),
+                     encoding="utf-8")
+    run = runner.invoke(app, ["rerun", str(tmp_path / "r.run.json"), "--quiet"])
+    assert run.exit_code == 1
+    assert "An input file the model reads (life table or strategy table) has changed" in run.stdout
+    assert "DIFFERS - input file model.strategies.csv" in run.stdout
