@@ -839,7 +839,7 @@ def validate_model(model: Model) -> list[ModelWarningRecord]:
     -------
     list of ModelWarningRecord
         Suspicious but allowed values: QALY weights above 1, death probabilities below
-        background mortality.
+        background mortality, estimates used in a row of another unit with no conversion.
 
     Raises
     ------
@@ -856,7 +856,56 @@ def validate_model(model: Model) -> list[ModelWarningRecord]:
     if problems:
         raise ModelError(problems, file=file)
     compiled = compile_model(model)
-    return _warnings(model, compiled)
+    return _unit_warnings(model, parsed) + _warnings(model, compiled)
+
+
+def _unit_warnings(model: Model, parsed) -> list[ModelWarningRecord]:
+    """Published estimates used in a row of the wrong unit, with no conversion at all.
+
+    A rate per year written straight into a probability row, a probability written
+    straight into a rate row, or a probability over ``per_years`` years used as the
+    per-cycle probability of a cycle of another length: each is a common slip when
+    copying figures from a paper (Fleurence & Hollenbeak 2007). Only expressions that
+    call no function are flagged, so ``rate_to_prob(r, cycle_years)``, ``exp(-r)`` or
+    ``per_cycle(p, 5)`` never are; nor is a rate or probability combined with one of the
+    row's own unit (``r_event * p_fatal`` splits a rate by a conditional probability).
+    """
+    records: list[ModelWarningRecord] = []
+    cycle = model.settings.cycle_years
+    for entries, row_unit in ((parsed.transitions, "probability"), (parsed.rates, "rate")):
+        for entry in entries:
+            if entry.expression.functions:
+                continue
+            names = sorted(entry.expression.names & set(model.parameters))
+            kinds = {model.parameters[name].kind for name in names}
+            for name in names:
+                p = model.parameters[name]
+                if row_unit == "probability" and p.kind == "rate" and "probability" not in kinds:
+                    message = (
+                        f"rate parameter {name!r} is used as a probability per cycle; "
+                        f"expected rate_to_prob({name}, cycle_years)"
+                    )
+                elif row_unit == "rate" and p.kind == "probability" and "rate" not in kinds:
+                    years = p.per_years if p.per_years is not None else cycle
+                    message = (
+                        f"probability parameter {name!r} is used as a rate per year; "
+                        f"expected prob_to_rate({name}, {years:g})"
+                    )
+                elif (
+                    row_unit == "probability"
+                    and p.kind == "probability"
+                    and p.per_years is not None
+                    and not math.isclose(p.per_years, cycle, rel_tol=1e-12)
+                ):
+                    message = (
+                        f"{name!r} is a probability over {p.per_years:g} years, used as the "
+                        f"probability per cycle of {cycle:g} years; expected "
+                        f"per_cycle({name}, {p.per_years:g})"
+                    )
+                else:
+                    continue
+                records.append(ModelWarningRecord(entry.where, message, {"parameter": name}))
+    return records
 
 
 def _warnings(model: Model, compiled) -> list[ModelWarningRecord]:

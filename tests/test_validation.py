@@ -352,3 +352,47 @@ def test_life_table_starting_after_start_age(tmp_path):
     data["mortality"] = {"table": "life.csv"}
     with pytest.raises(ModelError, match="starts at age 70, after start_age = 60"):
         load_dict(data, base_dir=tmp_path)
+
+
+def test_warning_for_a_rate_written_into_a_probability_row():
+    data = small_model_dict()
+    data["parameters"]["r_die_sick"] = {"value": 0.3, "kind": "rate", "source": "Synthetic"}
+    data["transitions"]["wait"]["sick"]["dead"] = "r_die_sick"
+    warnings = validate_model(load_dict(data))
+    assert [w.where for w in warnings] == ["transitions.wait.sick.dead"]
+    assert "rate parameter 'r_die_sick' is used as a probability per cycle" in warnings[0].message
+    assert "expected rate_to_prob(r_die_sick, cycle_years)" in warnings[0].message
+    # Converted, it is fine (Fleurence & Hollenbeak 2007: p = 1 - exp(-r t)).
+    data["transitions"]["wait"]["sick"]["dead"] = "rate_to_prob(r_die_sick, cycle_years)"
+    assert validate_model(load_dict(data)) == []
+
+
+def test_warning_for_a_probability_written_into_a_rate_row():
+    data = small_model_dict()
+    del data["transitions"]["wait"]["sick"]
+    data["rates"] = {"wait": {"sick": {"dead": "p_die_sick"}}}
+    data["parameters"]["p_die_sick"]["per_years"] = 5.0
+    warnings = validate_model(load_dict(data))
+    assert [w.where for w in warnings] == ["rates.wait.sick.dead"]
+    assert "expected prob_to_rate(p_die_sick, 5)" in warnings[0].message
+    # A rate split by a conditional probability is a rate: no warning.
+    data["parameters"]["r_event"] = {"value": 0.3, "kind": "rate", "source": "Synthetic"}
+    data["rates"]["wait"]["sick"]["dead"] = "r_event * p_die_sick"
+    assert validate_model(load_dict(data)) == []
+
+
+def test_warning_for_a_probability_over_another_period_used_per_cycle():
+    data = small_model_dict()
+    data["parameters"]["p_sick"]["per_years"] = 5.0
+    warnings = validate_model(load_dict(data))
+    assert [w.where for w in warnings] == ["transitions.wait.well.sick"]
+    assert "'p_sick' is a probability over 5 years, used as the probability per cycle of 1 " in (
+        warnings[0].message
+    )
+    assert "expected per_cycle(p_sick, 5)" in warnings[0].message
+    data["transitions"]["wait"]["well"]["sick"] = "per_cycle(p_sick, 5)"
+    assert validate_model(load_dict(data)) == []
+    # A period equal to the cycle needs no conversion.
+    data["transitions"]["wait"]["well"]["sick"] = "p_sick"
+    data["parameters"]["p_sick"]["per_years"] = 1.0
+    assert validate_model(load_dict(data)) == []
