@@ -51,12 +51,31 @@ def report_command(
                 model, out, draws=draws, seed=seed if draws else None,
                 command_line=shlex.join(["caredecide", *sys.argv[1:]]), progress=step,
             )
+    failed = _failed_checks(tables_dir_for(out))
+    if failed:
+        # Shown even with --quiet: results of a model that fails verification need care.
+        stderr.print(f"[bold red]warning:[/] {len(failed)} verification check(s) failed "
+                     f"({', '.join(failed)}); read the report's verification table before "
+                     "using the results.")
     stdout.print(f"Report: {out}")
     stdout.print(f"Tables: {tables_dir_for(out)} ({len(record.outputs)} files)")
     stdout.print(f"Run record: {record_path_for(out)} (re-run with: caredecide rerun "
                  f"{record_path_for(out)})")
     if not quiet:
         stderr.print("Open the report in any browser; it needs no network.")
+
+
+def _failed_checks(tables_dir: Path) -> list[str]:
+    """Identifiers of the failed checks in the written verification table (if any)."""
+    import csv
+
+    from caredecide.verify import FAIL
+
+    path = tables_dir / "verification.csv"
+    if not path.is_file():
+        return []
+    with path.open(encoding="utf-8", newline="") as handle:
+        return [row["check"] for row in csv.DictReader(handle) if row["status"] == FAIL]
 
 
 def register(app: typer.Typer) -> None:

@@ -23,6 +23,16 @@ def test_report_writes_html_tables_and_record(tmp_path):
     assert record.seed is None and record.arguments["draws"] is None
     assert (tmp_path / "r_tables" / "policy.csv").is_file()
     assert f"caredecide rerun {tmp_path / 'r.run.json'}" in run.stdout
+    assert "verification check(s) failed" not in run.stderr
+
+
+def test_report_of_a_model_failing_verification_warns_on_stderr(tmp_path):
+    broken = BASE.with_name("closed_cohort.toml")  # nobody should return from death
+    run = runner.invoke(app, ["report", str(broken), "--out", str(tmp_path / "r.html"),
+                              "--quiet"])
+    assert run.exit_code == 0, run.output  # the report is written, with the failure in it
+    assert "warning: 1 verification check(s) failed (closed_cohort)" in run.stderr
+    assert "1 check(s) FAILED" in (tmp_path / "r.html").read_text(encoding="utf-8")
 
 
 def test_invalid_model_is_a_clear_error(tmp_path):
