@@ -921,6 +921,7 @@ def _warnings(model: Model, compiled) -> list[ModelWarningRecord]:
                 {"value": float(weights[:, s].max())},
             )
         )
+    records += _life_table_warnings(model)
     # Death = absorbing states where no life-years accrue.
     dead = compiled.absorbing & ~np.array([s.alive for s in model.states])
     if model.mortality is None or not dead.any():
@@ -948,6 +949,28 @@ def _warnings(model: Model, compiled) -> list[ModelWarningRecord]:
             )
         )
     return records
+
+
+def _life_table_warnings(model: Model) -> list[ModelWarningRecord]:
+    """A life table that stops before the model does (its last hazard is carried on)."""
+    spec = model.mortality
+    n = model.n_cycles()
+    if spec is None or not spec.table_ages or n is None or spec.table_probabilities[-1] >= 1.0:
+        return []
+    last = spec.table_ages[-1]
+    end = model.settings.start_age + n * model.settings.cycle_years
+    if end <= last + 1.0 + 1e-9:
+        return []
+    return [
+        ModelWarningRecord(
+            "mortality.table",
+            f"the life table {spec.table!r} ends at age {last:g} but the model runs to age "
+            f"{end:g}; from age {last + 1:g} on it keeps the hazard of its last row "
+            f"(q = {spec.table_probabilities[-1]:g}); expected a table to age {end:g} or a "
+            "last row of 1",
+            {"last_age": last, "end_age": end},
+        )
+    ]
 
 
 # =====================================================================================

@@ -396,3 +396,17 @@ def test_warning_for_a_probability_over_another_period_used_per_cycle():
     data["transitions"]["wait"]["well"]["sick"] = "p_sick"
     data["parameters"]["p_sick"]["per_years"] = 1.0
     assert validate_model(load_dict(data)) == []
+
+
+def test_warning_for_a_life_table_that_stops_before_the_model(tmp_path):
+    (tmp_path / "life.csv").write_text("age,annual_probability\n60,0.01\n61,0.02\n")
+    data = small_model_dict()
+    data["mortality"] = {"table": "life.csv"}
+    data["transitions"]["wait"]["well"]["dead"] = "background"
+    warnings = validate_model(load_dict(data, base_dir=tmp_path))
+    assert [w.where for w in warnings] == ["mortality.table"]
+    assert "ends at age 61 but the model runs to age 70; from age 62 on" in warnings[0].message
+    # A table whose last row (age 69) covers the last cycle [69, 70) carries nothing on.
+    rows = "".join(f"{age},0.01\n" for age in range(60, 70))
+    (tmp_path / "life.csv").write_text("age,annual_probability\n" + rows)
+    assert validate_model(load_dict(data, base_dir=tmp_path)) == []
