@@ -113,13 +113,13 @@ def register(app: typer.Typer) -> None:
             Path, typer.Argument(metavar="MODEL", help="Model file (TOML) to validate.")
         ],
         quiet: Annotated[
-            bool, typer.Option("--quiet", "-q", help="Print only errors (no summary).")
+            bool, typer.Option("--quiet", "-q", help="Print only errors and warnings (no summary).")
         ] = False,
     ) -> None:
         """Validate a model file: print a summary, or every problem found (exit code 2)."""
         from caredecide.modelfile import load_model, validate_model
 
-        print_caution(quiet)
+        print_caution(False)  # the caution is always shown, whatever --quiet says
         with user_errors():
             model = load_model(model_path)
             warnings = validate_model(model)

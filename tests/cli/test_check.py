@@ -45,6 +45,7 @@ def test_warnings_go_to_stderr(tmp_path):
     assert result.exit_code == 0
     assert "warning:" in result.stderr and "states.well.qaly_weight" in result.stderr
     assert result.stdout == ""
+    assert "RESEARCH USE ONLY" in result.stderr  # the caution is never hidden
 
 
 def test_missing_file_is_a_clear_error(tmp_path):
