@@ -577,6 +577,24 @@ def _check_settings(model: Model, add) -> None:
         total = math.fsum(s.start.values())
         if abs(total - 1.0) > ROW_TOLERANCE:
             add("settings.start", f"shares sum to {total!r}; expected 1")
+    # A cohort that starts wholly in absorbing states never meets a decision.
+    absorbing = {state.id for state in model.states if state.absorbing}
+    start = {s.start: 1.0} if isinstance(s.start, str) else dict(s.start)
+    if (
+        start
+        and set(start) <= state_ids
+        and all(
+            state_id in absorbing
+            for state_id, share in start.items()
+            if _finite(share) and share > 0
+        )
+    ):
+        add(
+            "settings.start",
+            f"{s.start!r}: the whole cohort starts in absorbing states "
+            f"{sorted(absorbing & set(start))}; expected some of it in a state where a "
+            "decision is made",
+        )
 
 
 def _check_ids(kind: str, ids: list[str], add) -> None:

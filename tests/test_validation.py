@@ -410,3 +410,13 @@ def test_warning_for_a_life_table_that_stops_before_the_model(tmp_path):
     rows = "".join(f"{age},0.01\n" for age in range(60, 70))
     (tmp_path / "life.csv").write_text("age,annual_probability\n" + rows)
     assert validate_model(load_dict(data, base_dir=tmp_path)) == []
+
+
+def test_cohort_starting_wholly_in_absorbing_states():
+    data = small_model_dict()
+    data["settings"]["start"] = "dead"
+    message = problems_of(data)
+    assert "settings.start: 'dead': the whole cohort starts in absorbing states ['dead']" in message
+    # A zero share in an absorbing state is harmless.
+    data["settings"]["start"] = {"well": 1.0, "dead": 0.0}
+    assert load_dict(data).start_distribution() == {"well": 1.0, "dead": 0.0}
