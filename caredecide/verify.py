@@ -293,13 +293,17 @@ def check_probabilities_in_range(model: Model, objective: Objective) -> tuple[st
     from caredecide.sensitivity.variation import one_at_a_time_sets, parameter_ranges
 
     ranges = parameter_ranges(model)
-    frame = one_at_a_time_sets(model, list(ranges["parameter"]),
-                               ranges[["low", "high"]].to_numpy())
+    if len(ranges):
+        frame = one_at_a_time_sets(model, list(ranges["parameter"]),
+                                   ranges[["low", "high"]].to_numpy())
+    else:  # a model without parameters: the base case is the only parameter set
+        frame = pd.DataFrame()
     try:
         compiled = compile_model(model, frame if len(frame) else None)
     except CaredecideError as error:
         first = str(error).splitlines()[0]
-        return FAIL, f"{len(frame)} parameter sets (each parameter at low and high): {first}"
+        return FAIL, (f"{max(len(frame), 1)} parameter sets (each parameter at low and "
+                      f"high): {first}")
     P = compiled.transition
     rows = P.sum(axis=-1)
     worst_row, rows_ok = _deviation(rows, np.ones_like(rows))

@@ -177,3 +177,15 @@ def test_life_table_is_among_the_input_files(tmp_path):
     model_path = MODELS_DIR / "demo_counts_table.toml"
     found = input_files(load_model(model_path), model_path)
     assert found == [MODELS_DIR / "demo_life_table.csv"]
+
+
+def test_a_model_without_parameters_gets_a_report_with_a_note(tmp_path):
+    model = BASE.with_name("one_action_no_parameters.toml")
+    out = tmp_path / "report.html"
+    build_report(model, out, draws=20, seed=1)
+    page = out.read_text(encoding="utf-8")
+    section = page[page.index('<section id="sensitivity">'):
+                   page.index('<section id="uncertainty">')]
+    assert "not run: the model has no parameters to vary" in section
+    evidence = pd.read_csv(tables_dir_for(out) / "input_evidence.csv")
+    assert len(evidence) == 0 and "parameter" in evidence.columns

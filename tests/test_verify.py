@@ -66,6 +66,16 @@ def test_stationary_model_runs_the_solver_comparison(stationary):
     assert frame.loc["zero_discount", "status"] == verify.NOT_APPLICABLE
 
 
+def test_a_model_with_one_action_and_no_parameters_passes_or_does_not_apply():
+    report = verify.verify_model(load_model(BROKEN / "one_action_no_parameters.toml"))
+    frame = report.to_frame().set_index("check")
+    assert report.passed, frame.to_string()
+    assert set(frame.index[frame["status"] == verify.NOT_APPLICABLE]) == {
+        "no_effect_ties", "solvers_agree"}
+    # With no parameter to vary the base case is the only parameter set checked.
+    assert frame.loc["probabilities_in_range", "figures"].startswith("1 parameter sets")
+
+
 def test_unknown_check_is_refused(base_small):
     with pytest.raises(CaredecideError, match=r"unknown verification check.*'no_such_check'"):
         verify.verify_model(base_small, checks=["no_such_check"])

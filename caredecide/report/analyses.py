@@ -109,7 +109,8 @@ def input_tables(model: Model) -> dict[str, pd.DataFrame]:
         "oneoff_qaly_loss": [_text(a.oneoff_qaly_loss) for a in model.actions],
         "cost_per_cycle": [_text(a.cost_per_cycle) for a in model.actions],
     })
-    ranges = parameter_ranges(model).set_index("parameter")
+    ranges = parameter_ranges(model)
+    ranges = ranges.set_index("parameter") if len(ranges) else ranges
     rows = []
     for name in model.parameter_names():
         p = model.parameters.get(name)
@@ -179,6 +180,9 @@ def _sensitivity(data: ReportData) -> None:
         summarise_thresholds,
     )
 
+    if not data.model.parameter_names():
+        data.notes["sensitivity"] = "not run: the model has no parameters to vary"
+        return
     one = one_way(data.model, objective=data.objective)
     data.results["oneway"] = one.table
     data.results["policy_switches"] = one.switches
