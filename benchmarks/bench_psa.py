@@ -8,6 +8,8 @@ Prints, for ``--draws`` draws (default 10,000) of the synthetic demo model:
 * beside it, the reference measured in the same run: the solver alone on the same
   parameter sets (compile + ``solve`` in the same chunks, no evaluation or outputs), and
   ``solve`` alone, so the ratios show what the analysis adds to the core;
+* with ``--memory``: the peak memory per draw of one chunk of each bundled model beside
+  the estimate the default chunk size is computed from;
 * with ``--million``: one run of 1,000,000 draws, to show that memory stays bounded;
   ``--workers K`` runs it on a local Dask cluster of K processes. On the demo model this
   takes hours on 2 cores (compiling its age-dependent competing-risk rows costs a few
@@ -129,7 +131,8 @@ def _model(which: str):
 
 
 def child_psa(draws: int, seed: int, workers: int | None, which: str = "demo") -> dict:
-    from caredecide.uncertainty.psa import default_chunk_size, run_psa
+    from caredecide.compile import default_memory_limit
+    from caredecide.uncertainty.psa import DEFAULT_MEMORY_LIMIT, default_chunk_size, run_psa
 
     model = _model(which)
     start = time.perf_counter()
@@ -156,6 +159,7 @@ def child_psa(draws: int, seed: int, workers: int | None, which: str = "demo") -
     return {
         "draws": draws,
         "chunk_size": default_chunk_size(model, draws, None),
+        "budget_mib": min(DEFAULT_MEMORY_LIMIT, default_memory_limit()) / 2**20,
         "candidates": len(result.candidates),
         "solve_and_evaluate_s": solved - start,
         "outputs_s": done - solved,
@@ -195,10 +199,36 @@ def child_solver(draws: int, seed: int) -> dict:
             "peak_rss_mib": _peak_mib()}
 
 
+def child_memory(draws: int, path: str) -> dict:
+    """Peak memory per draw of one chunk (compile, solve, evaluate) against the estimate."""
+    import numpy as np
+
+    from caredecide.compile import estimate_compiled_bytes
+    from caredecide.modelfile import load_model
+    from caredecide.objective import Objective
+    from caredecide.uncertainty.psa import PSAContext, draw_bytes, solve_chunk
+    from caredecide.uncertainty.sampling import ParameterSampler
+
+    model = load_model(path)
+    n_t = model.n_cycles() or 1
+    context = PSAContext(model=model, objective=Objective.from_settings(model.settings),
+                         sampler=ParameterSampler.from_model(model), seed=1,
+                         candidate_policies=np.zeros((5, n_t, len(model.states)), np.int8))
+    solve_chunk(context, 0, 10)  # imports and caches warm
+    before = _peak_mib()
+    solve_chunk(context, 0, draws)
+    per_draw = (_peak_mib() - before) * 2**20 / draws
+    arrays = estimate_compiled_bytes(model, 1)
+    return {"model": Path(path).stem, "measured_per_draw": per_draw, "arrays_per_draw": arrays,
+            "estimate_per_draw": draw_bytes(model)}
+
+
 def _run(kind: str, draws: int, seed: int, workers: int | None = None,
          which: str = "demo") -> dict:
     command = [sys.executable, __file__, "--child", kind, "--draws", str(draws), "--seed",
                str(seed), "--model", which]
+    if kind == "memory":
+        command[-2] = "--model-path"
     if workers:
         command += ["--workers", str(workers)]
     output = subprocess.run(command, check=True, capture_output=True, text=True, cwd=ROOT)
@@ -217,8 +247,26 @@ def main() -> None:
                         help="model of the --million run (light: small synthetic model)")
     parser.add_argument("--model", choices=("demo", "light"), default="demo",
                         help=argparse.SUPPRESS)
-    parser.add_argument("--child", choices=("psa", "solver"), help=argparse.SUPPRESS)
+    parser.add_argument("--memory", action="store_true",
+                        help="measure the peak memory per draw of a 3,000-draw chunk of each "
+                             "bundled model against the chunk-size estimate, then stop")
+    parser.add_argument("--model-path", help=argparse.SUPPRESS)
+    parser.add_argument("--child", choices=("psa", "solver", "memory"), help=argparse.SUPPRESS)
     args = parser.parse_args()
+    if args.child == "memory":
+        print(json.dumps(child_memory(args.draws, args.model_path)))
+        return
+    if args.memory:
+        print("Peak working memory per draw of one 3,000-draw chunk (compile, solve, evaluate "
+              "5 candidates), fresh process each (research use only):")
+        for path in sorted((ROOT / "synthetic_cohort" / "models").glob("*.toml")):
+            m = _run("memory", 3000, args.seed, which=str(path))
+            print(f"  {m['model']}: measured {m['measured_per_draw'] / 1024:.1f} KiB = "
+                  f"{m['measured_per_draw'] / m['arrays_per_draw']:.1f} x the compiled arrays "
+                  f"({m['arrays_per_draw'] / 1024:.1f} KiB); estimate "
+                  f"{m['estimate_per_draw'] / 1024:.1f} KiB "
+                  f"(measured / estimate {m['measured_per_draw'] / m['estimate_per_draw']:.2f})")
+        return
     if args.child == "psa":
         print(json.dumps(child_psa(args.draws, args.seed, args.workers, args.model)))
         return
@@ -230,8 +278,9 @@ def main() -> None:
     reference = _run("solver", args.draws, args.seed)
     psa = _run("psa", args.draws, args.seed)
     core = reference["compile_s"] + reference["solve_s"]
-    print(f"  chunk size (default memory budget): {psa['chunk_size']:,} draws; "
-          f"{psa['candidates']} candidate policies")
+    print(f"  chunk size from the default memory budget ({psa['budget_mib']:.0f} MiB of working "
+          f"memory per chunk): {psa['chunk_size']:,} draws; {psa['candidates']} candidate "
+          "policies")
     print(f"  reference, solver alone: sampling {reference['sample_s']:.2f} s, compile "
           f"{reference['compile_s']:.2f} s, solve {reference['solve_s']:.2f} s "
           f"(peak {reference['peak_rss_mib']:.0f} MiB)")

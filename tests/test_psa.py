@@ -235,3 +235,38 @@ def test_refusals(model, options, message):
 def test_refuses_zero_draws(model):
     with pytest.raises(ModelError, match=r"draws = 0"):
         run_psa(model, 0, seed=1)
+
+
+def test_a_pilot_larger_than_the_budget_runs_in_chunks_with_the_same_results(model):
+    # A budget of 100 draws: the 1,000-draw pilot is solved in chunks of 100 (its draws
+    # run again once the candidates are known), and nothing else changes.
+    from caredecide.uncertainty.psa import default_chunk_size, draw_bytes
+
+    limit = 100 * draw_bytes(model)
+    assert default_chunk_size(model, 1300, limit) == 100
+    done = []
+    whole = run_psa(model, 1300, seed=8, chunk_size=1300, n_frequent=2, keep_policies=True)
+    small = run_psa(model, 1300, seed=8, memory_limit_bytes=limit, n_frequent=2,
+                    keep_policies=True, progress=lambda d, n: done.append(d))
+    _assert_same(small, whole)
+    assert [c.name for c in small.candidates] == [c.name for c in whole.candidates]
+    assert done == list(range(100, 1301, 100))
+
+
+def test_default_chunk_size_counts_compile_memory_and_the_infinite_horizon_trace(model):
+    # Per draw: 6 copies of the compiled arrays (the measured compile peak, see
+    # COMPILE_MEMORY_FACTOR) plus the per-cycle results; an infinite horizon counts the
+    # evaluation's display trace of DISPLAY_CAP + 1 cycles.
+    from caredecide.compile import estimate_compiled_bytes
+    from caredecide.evaluate import DISPLAY_CAP
+    from caredecide.uncertainty.psa import draw_bytes, draw_working_bytes
+
+    n_s, n_a = len(model.states), len(model.actions)
+    finite = draw_working_bytes(model)
+    assert finite == 8 * (model.n_cycles() + 1) * n_s * (n_a + 14)
+    assert draw_bytes(model) == 6 * estimate_compiled_bytes(model, 1) + finite
+    data = uncertain_model_dict()
+    data["settings"].pop("horizon_cycles")
+    data["settings"]["horizon"] = "infinite"
+    stationary = load_dict(data)
+    assert draw_working_bytes(stationary) == 8 * (DISPLAY_CAP + 1) * n_s * (n_a + 14)

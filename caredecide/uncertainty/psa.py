@@ -61,10 +61,9 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 import pandas as pd
 
-from caredecide.batch import WORKING_MEMORY_FACTOR
 from caredecide.compile import compile_model, default_memory_limit, estimate_compiled_bytes
 from caredecide.errors import ModelError, Problem
-from caredecide.evaluate import evaluate_policy
+from caredecide.evaluate import DISPLAY_CAP, evaluate_policy
 from caredecide.objective import Objective
 from caredecide.solvers import solve
 from caredecide.uncertainty.acceptability import (
@@ -265,6 +264,13 @@ def chunk_ranges(n_draws: int, chunk_size: int) -> list[tuple[int, int]]:
     return [(s, min(s + chunk_size, n_draws)) for s in range(0, n_draws, chunk_size)]
 
 
+COMPILE_MEMORY_FACTOR = 6
+"""Peak working memory of compiling a chunk, in copies of its compiled arrays. Measured
+(peak resident memory of a fresh process, ``python benchmarks/bench_psa.py --memory``):
+5.3 for demo_progressive and 5.9 for lesion_surveillance, whose rate rows go through
+the batched matrix exponential, and 2.0 for demo_counts_table (no rate rows). The batch
+driver's factor of 3 (``caredecide.batch.WORKING_MEMORY_FACTOR``) let a chunk overrun its
+budget by two thirds."""
 RESULT_ARRAYS_PER_CELL = 14
 """Float64 values per (cycle, state) that one draw's solver results and policy
 evaluations hold at once (values, Q-values per action, gaps, policy, trace, flows and
@@ -272,24 +278,34 @@ intermediates) beyond the compiled arrays - measured with benchmarks/bench_psa.p
 
 
 def draw_working_bytes(model) -> int:
-    """Bytes of working memory one draw needs in a chunk (compile, solve, evaluate).
+    """Bytes of working memory one draw needs in a chunk beyond compiling it.
 
-    The batch driver's rule (``WORKING_MEMORY_FACTOR`` copies of the compiled arrays)
-    covers compiling and solving; the solver's
-    per-cycle results and the cohort traces grow with the horizon even when the
-    compiled arrays do not (a model without age dependence), so they are added here.
+    The solver's per-cycle results and the cohort traces of the policy evaluations
+    grow with the horizon even when the compiled arrays do not (a model without age
+    dependence). An infinite horizon has no cycles to count, but its evaluation keeps
+    a display trace of up to ``DISPLAY_CAP + 1`` cycles (:mod:`caredecide.evaluate`),
+    so that length is counted.
     """
-    n_t = (model.n_cycles() or 1) + 1
+    cycles = model.n_cycles()
+    n_t = (DISPLAY_CAP if cycles is None else cycles) + 1
     cells = n_t * len(model.states) * (len(model.actions) + RESULT_ARRAYS_PER_CELL)
     return 8 * cells
+
+
+def draw_bytes(model) -> int:
+    """Working memory of one draw in a chunk (bytes): compile peak plus results.
+
+    ``COMPILE_MEMORY_FACTOR`` copies of the compiled arrays (the compile peak, which the
+    solver's buffers stay below) plus :func:`draw_working_bytes`; the sum errs on the
+    safe side, as the compile intermediates are freed before the solver runs.
+    """
+    return COMPILE_MEMORY_FACTOR * estimate_compiled_bytes(model, 1) + draw_working_bytes(model)
 
 
 def default_chunk_size(model, n_draws: int, memory_limit_bytes: int | None) -> int:
     """Draws per chunk from the memory budget, a multiple of BLOCK_SIZE when possible."""
     budget = _memory_limit(memory_limit_bytes)
-    per_draw = WORKING_MEMORY_FACTOR * estimate_compiled_bytes(model, 1) + draw_working_bytes(
-        model)
-    size = int(max(1, min(n_draws, budget // per_draw)))
+    size = int(max(1, min(n_draws, budget // draw_bytes(model))))
     return max(size // BLOCK_SIZE, 1) * BLOCK_SIZE if size >= BLOCK_SIZE else size
 
 
@@ -714,30 +730,40 @@ def run_psa(
                   solve(at_mean, objective, **solve_options).policy[0]))
     for strategy in [*default_strategies(base), *(strategies or ())]:
         named.append((strategy.name, ORIGIN_STRATEGY, resolve_strategy(base, strategy).policy))
-    # The pilot (first block) is solved once: its candidates are evaluated after the
-    # candidate set is known, and the remaining draws run in chunks from there.
+    # The pilot (first block) picks the frequent optima. When it fits the memory budget
+    # (or the chunk) it is solved once and evaluated after the candidate set is known;
+    # otherwise its policies are gathered chunk by chunk and its draws run again below.
     pilot_stop = min(n_draws, BLOCK_SIZE) if n_frequent else 0
+    pilot = None
     if pilot_stop:
-        pilot = _solve_draws(context, 0, pilot_stop)
-        policies = pilot[2].policy.reshape(pilot_stop, -1).astype(np.int8)
+        if chunk_size >= pilot_stop or pilot_stop * draw_bytes(model) <= limit:
+            pilot = _solve_draws(context, 0, pilot_stop)
+            pilot_policies = pilot[2].policy
+        else:
+            pilot_policies = np.concatenate(
+                [_solve_draws(context, a, b)[2].policy.astype(np.int8)
+                 for a, b in chunk_ranges(pilot_stop, chunk_size)])
+        policies = pilot_policies.reshape(pilot_stop, -1).astype(np.int8)
         distinct, counts = np.unique(policies, axis=0, return_counts=True)
         order = np.argsort(-counts, kind="stable")[:n_frequent]
         for rank, u in enumerate(order, start=1):
-            policy = distinct[u].reshape(pilot[2].policy.shape[1:])
+            policy = distinct[u].reshape(pilot_policies.shape[1:])
             named.append((f"frequent optimum {rank} ({counts[u] / pilot_stop:.0%} of pilot "
                           "draws)", ORIGIN_FREQUENT, policy))
+        del pilot_policies, policies
     candidates = _merge_candidates(named)
     context = replace(context, candidate_policies=np.stack([c.policy for c in candidates]))
 
     chunks: list[ChunkResult] = []
-    if pilot_stop:
+    done = 0
+    if pilot is not None:
         chunks.append(_evaluate_chunk(context, *pilot, 0, pilot_stop))
         del pilot
+        done = pilot_stop
         if progress is not None:
             progress(pilot_stop, n_draws)
     runner = serial_map if map_chunks is None else map_chunks
-    ranges = [(a + pilot_stop, b + pilot_stop)
-              for a, b in chunk_ranges(n_draws - pilot_stop, chunk_size)]
+    ranges = [(a + done, b + done) for a, b in chunk_ranges(n_draws - done, chunk_size)]
     for chunk in runner(context, ranges):
         chunks.append(chunk)
         if progress is not None:
