@@ -11,7 +11,7 @@ import typer
 from rich.console import Console
 from rich.table import Table
 
-from caredecide.cli.common import print_caution, stderr, stdout, user_errors
+from caredecide.cli.common import plain, print_caution, stderr, stdout, user_errors
 
 TABLE_FILE = "strategies.csv"
 FRONTIER_FILE = "frontier.csv"
@@ -63,7 +63,7 @@ def _print_table(result, currency: str) -> None:
         )
     _wide().print(table)
     per = f"{currency} per QALY".strip()
-    stdout.print(f"Best at {result.willingness_to_pay:,.0f} {per}: {result.best_strategy}")
+    stdout.print(f"Best at {result.willingness_to_pay:,.0f} {per}: {plain(result.best_strategy)}")
 
 
 def _print_frontier(result) -> None:
@@ -173,10 +173,10 @@ def compare_command(
             _print_frontier(result)
         if not quiet:
             for note in result.notes:
-                stderr.print(f"note: {note}")
+                stderr.print(f"note: {plain(note)}")
             for item in result.resolved:
                 for note in item.notes:
-                    stderr.print(f"note ({item.strategy.name}): {note}")
+                    stderr.print(f"note ({plain(item.strategy.name)}): {plain(note)}")
         if out is not None:
             written = write_outputs(out, result, currency)
             if not quiet:

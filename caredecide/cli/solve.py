@@ -15,7 +15,7 @@ from rich.table import Table
 
 from caredecide import __version__
 from caredecide.cautions import CAUTION_SHORT
-from caredecide.cli.common import print_caution, stderr, stdout, user_errors
+from caredecide.cli.common import plain, print_caution, stderr, stdout, user_errors
 from caredecide.errors import CaredecideError
 
 
@@ -89,7 +89,7 @@ def _print_table(compiled, result, outcome, summary: dict) -> None:
     for state, row in bands.iterrows():
         policy.add_row(str(state), *[str(v) for v in row])
     stdout.print(policy)
-    stdout.print(f"Structure: {summary['structure']}")
+    stdout.print(f"Structure: {plain(summary['structure'])}")
     ties = result.indifferent[0] & result.decision_states
     if ties.any():
         stdout.print(f"Indifferent (action gap within tolerance) in {int(ties.sum())} "
@@ -150,10 +150,10 @@ def solve_command(
             outcome = evaluate_policy(compiled, result.policy, objective)
         summary = build_summary(model, compiled, result, outcome)
         if not result.success:
-            stderr.print(f"[bold yellow]warning:[/] {result.message}")
+            stderr.print(f"[bold yellow]warning:[/] {plain(result.message)}")
         if wtp is not None and objective.kind == "qalys" and not quiet:
-            stderr.print(f"note: {model} maximises QALYs; --wtp {wtp:g} sets only the reported "
-                         "net monetary benefit, not the policy")
+            stderr.print(f"note: {plain(model)} maximises QALYs; --wtp {wtp:g} sets only the "
+                         "reported net monetary benefit, not the policy")
         if out is not None:
             try:
                 out.mkdir(parents=True, exist_ok=True)
@@ -167,7 +167,7 @@ def solve_command(
                     "expected a folder that can be created and written"
                 ) from None
             if not quiet:
-                stderr.print(f"Wrote policy.csv, trace.csv and summary.json to {out}")
+                stderr.print(f"Wrote policy.csv, trace.csv and summary.json to {plain(out)}")
         if output_format is OutputFormat.csv:
             typer.echo(_policy_frame(result).to_csv(index=False), nl=False)
         elif output_format is OutputFormat.json:
