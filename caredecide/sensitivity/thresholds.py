@@ -9,10 +9,11 @@ Method (for each varied quantity ``x`` with plausible range [low, high]):
    ``f(x) = Q_t(s, a; x) - Q_t(s, b; x)`` has ``f(x_i) >= 0 >= f(x_{i+1})``: a bracket.
    ``f`` is continuous in ``x`` when the model's arrays are (``V`` is a maximum of
    continuous functions).
-2. **Root.** Chandrupatla's method (a bracketing method in the family of Brent's,
-   Chandrupatla 1997, Adv Eng Softw 28(3):145-149) as implemented, vectorised over
-   brackets, by :func:`scipy.optimize.elementwise.find_root`. Every iteration evaluates
-   ``f`` at all unfinished brackets in ONE batch compiled and solved by the common core.
+2. **Root.** Brent's method (Brent 1973, *Algorithms for Minimization Without
+   Derivatives*, ch. 4) run on all brackets at once (:func:`.brent.brent_roots`, the
+   step rules of ``scipy.optimize.brentq``). Every step evaluates ``f`` at all unfinished
+   brackets in ONE batch compiled and solved by the common core; the gaps at the bracket
+   ends come from the grid and are not recomputed.
 3. **Report** per bracket the threshold, the action below and above it, the gap at the
    threshold, and whether some third action is better there (then the switch passes
    through that action). A quantity with no bracket reports "no switch within the
@@ -34,10 +35,10 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from scipy.optimize.elementwise import find_root
 
 from caredecide.errors import ModelError, Problem
 from caredecide.objective import Objective
+from caredecide.sensitivity.brent import RTOL_MIN, brent_roots
 from caredecide.sensitivity.variation import (
     check_grid,
     compiled_over_discount_rate,
@@ -157,42 +158,43 @@ def _roots(
     maxiter: int,
     progress: Progress | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Vectorised bracketing root search of the action gap over all brackets at once."""
-    x = np.where(f_lo == 0.0, x_lo, x_hi)  # an exact tie at a grid value is the threshold
-    f_x = np.where(f_lo == 0.0, f_lo, f_hi)
-    converged = (f_lo == 0.0) | (f_hi == 0.0)
+    """Brent's method on the action gap of every bracket at once (see :mod:`.brent`).
+
+    The bracket ends were solved on the grid already: their gaps are passed in, so each
+    Brent step costs one batch with one parameter set per unfinished bracket.
+    """
+
+    def gap(xv: np.ndarray, k: np.ndarray) -> np.ndarray:
+        _, res = solve_at(xv, p[k])
+        qv = np.asarray(res.q_values)
+        n = np.arange(k.size)
+        return qv[n, t[k], s[k], a_below[k]] - qv[n, t[k], s[k], a_above[k]]
+
+    # The solver breaks near-ties (within its tie tolerance) towards the lower action
+    # index, so a grid value may show action a although Q(a) < Q(b) by a rounding-level
+    # amount: both gaps then have the same sign. The switch is at that tied grid value.
+    tied = (f_lo != 0) & (f_hi != 0) & (np.signbit(f_lo) == np.signbit(f_hi))
+    at_low = np.abs(f_lo) <= np.abs(f_hi)
+    x = np.where(at_low, x_lo, x_hi)
+    f_x = np.where(at_low, f_lo, f_hi)
+    converged = np.ones(p.size, dtype=bool)
     nit = np.zeros(p.size, dtype=int)
-    open_ = np.flatnonzero(~converged)
+    open_ = np.flatnonzero(~tied)
     if open_.size:
 
-        def gap(xv: np.ndarray, k: np.ndarray) -> np.ndarray:
-            k = np.asarray(k).astype(int).reshape(-1)
-            xv = np.asarray(xv, dtype=float).reshape(-1)
-            # The bracket ends were solved on the grid already: reuse those gaps.
-            for known_x, known_f in ((x_lo, f_lo), (x_hi, f_hi)):
-                if np.array_equal(xv, known_x[k]):
-                    return known_f[k]
-            _, res = solve_at(xv, p[k])
-            qv = np.asarray(res.q_values)
-            n = np.arange(k.size)
-            return qv[n, t[k], s[k], a_below[k]] - qv[n, t[k], s[k], a_above[k]]
+        def report(done: int, total: int) -> None:
+            progress(done + p.size - total, p.size)
 
-        def report(state: Any) -> None:
-            done = int(converged.sum()) + int((np.asarray(state.status) != 1).sum())
-            progress(done, p.size)
-
-        found = find_root(
-            gap,
-            (x_lo[open_], x_hi[open_]),
-            args=(open_.astype(float),),
-            tolerances={"xatol": xtol, "xrtol": 4 * np.finfo(float).eps, "fatol": 0.0},
-            maxiter=maxiter,
+        found = brent_roots(
+            lambda xv, k: gap(xv, open_[k]),
+            x_lo[open_], x_hi[open_], f_lo[open_], f_hi[open_],
+            xtol=xtol, rtol=RTOL_MIN, maxiter=maxiter,
             callback=None if progress is None else report,
-        )
-        x[open_] = found.x
-        f_x[open_] = found.f_x
-        converged[open_] = found.success
-        nit[open_] = found.nit
+        )  # fmt: skip
+        x[open_] = found.root
+        f_x[open_] = found.f_root
+        converged[open_] = found.converged
+        nit[open_] = found.iterations
     return x, f_x, converged, nit
 
 
