@@ -70,40 +70,63 @@ def chromium_path() -> str:
     return CHROMIUM
 
 
+class AppServer:
+    """``caredecide app`` (demo model) started headless on a free 127.0.0.1 port.
+
+    ``home`` is its ``CAREDECIDE_HOME`` (drafts folder); a second server started on the same
+    home is a restart of the app as far as autosaved drafts are concerned.
+    """
+
+    def __init__(self, home: Path) -> None:
+        self.home = home
+        self.port = _free_port()
+        self.url = f"http://127.0.0.1:{self.port}"
+        executable = shutil.which("caredecide")
+        command = ([executable] if executable
+                   else [sys.executable, "-c", "from caredecide.cli import main; main()"])
+        self._log = open(home / f"app-{self.port}.log", "w+b")  # closed in stop()
+        self._process = subprocess.Popen(
+            [*command, "app", "--port", str(self.port), "--headless", "--quiet"],
+            env={**os.environ, "CAREDECIDE_HOME": str(home)},
+            stdout=self._log, stderr=subprocess.STDOUT, start_new_session=True,
+        )
+        deadline = time.monotonic() + STARTUP_SECONDS
+        while not _healthy(self.url):
+            if self._process.poll() is not None or time.monotonic() > deadline:
+                self._log.seek(0)
+                output = self._log.read().decode(errors="replace")[-3000:]
+                self.stop()
+                pytest.fail(f"caredecide app did not become healthy on {self.url}:\n{output}")
+            time.sleep(0.3)
+
+    def stop(self) -> None:
+        """Stop the server and its streamlit child (the process group we started)."""
+        if self._process.poll() is None:
+            os.killpg(self._process.pid, signal.SIGTERM)
+            try:
+                self._process.wait(timeout=20)
+            except subprocess.TimeoutExpired:
+                os.killpg(self._process.pid, signal.SIGKILL)
+                self._process.wait(timeout=10)
+        self._log.close()
+
+
 @pytest.fixture(scope="session")
 def app_url(tmp_path_factory) -> Iterator[str]:
     """Start ``caredecide app`` (demo model) headless on a free port; stop it afterwards."""
-    port = _free_port()
-    home = tmp_path_factory.mktemp("caredecide-home")
-    env = {**os.environ, "CAREDECIDE_HOME": str(home)}
-    executable = shutil.which("caredecide")
-    command = ([executable] if executable
-               else [sys.executable, "-c", "from caredecide.cli import main; main()"])
-    log = open(home / "app.log", "w+b")  # closed in the finally below
-    process = subprocess.Popen(
-        [*command, "app", "--port", str(port), "--headless", "--quiet"],
-        env=env, stdout=log, stderr=subprocess.STDOUT, start_new_session=True,
-    )
-    url = f"http://127.0.0.1:{port}"
-    deadline = time.monotonic() + STARTUP_SECONDS
-    while not _healthy(url):
-        if process.poll() is not None or time.monotonic() > deadline:
-            os.killpg(process.pid, signal.SIGTERM) if process.poll() is None else None
-            log.seek(0)
-            pytest.fail(f"caredecide app did not become healthy on {url}:\n"
-                        + log.read().decode(errors="replace")[-3000:])
-        time.sleep(0.3)
+    server = AppServer(tmp_path_factory.mktemp("caredecide-home"))
     try:
-        yield url
+        yield server.url
     finally:
-        # The app runs streamlit as a child: stop the whole session group we started.
-        os.killpg(process.pid, signal.SIGTERM)
-        try:
-            process.wait(timeout=20)
-        except subprocess.TimeoutExpired:
-            os.killpg(process.pid, signal.SIGKILL)
-            process.wait(timeout=10)
-        log.close()
+        server.stop()
+
+
+@pytest.fixture
+def app_home(tmp_path) -> Path:
+    """A fresh drafts home for tests that start (and restart) servers of their own."""
+    home = tmp_path / "caredecide-home"
+    home.mkdir()
+    return home
 
 
 @pytest.fixture(scope="session")
@@ -122,7 +145,7 @@ def browser(chromium_path):
 
 @pytest.fixture
 def page(browser):
-    context = browser.new_context(viewport={"width": 1400, "height": 2600})
+    context = browser.new_context(viewport={"width": 1400, "height": 4200}, accept_downloads=True)
     page = context.new_page()
     try:
         yield page

@@ -109,3 +109,96 @@ def test_an_edit_survives_a_page_reload(app_url, page, artifacts):
     assert "Edited in the browser: " in restored
     page.screenshot(path=str(artifacts / "app-model-restored.png"), full_page=True)
     assert page.locator("[data-testid='stException']").count() == 0
+
+
+NO_SKELETON = "() => document.querySelectorAll(\"[data-testid='stSkeleton']\").length === 0"
+
+
+def _matrix_grid(page, name: str):
+    """The data editor that follows the sub-heading ``name`` (e.g. "transitions.treat")."""
+    block = "[data-testid='stElementContainer']"
+    heading = f"{block}:has([data-testid='stHeading']:has-text('{name}'))"
+    return page.locator(f"{heading} + {block} [data-testid='stDataFrame']")
+
+
+def _edit_cell(page, grid, row: int, column: int, text: str) -> None:
+    """Type ``text`` into a data-editor cell as a user does: select, Enter, type, Enter.
+
+    ``row`` and ``column`` count data cells from 0 (the index column is not counted). The
+    grid is drawn on a canvas: the first data cell is clicked, then arrow keys move on.
+    """
+    box = grid.locator("[data-testid='data-grid-canvas']").bounding_box()
+    header, first_column_x = 36, 100  # header row height; a point inside the first data column
+    page.mouse.click(box["x"] + first_column_x, box["y"] + header + 17)
+    for _ in range(row):
+        page.keyboard.press("ArrowDown")
+    for _ in range(column):
+        page.keyboard.press("ArrowRight")
+    page.keyboard.press("Enter")
+    editor = page.locator("#portal textarea").first
+    editor.wait_for(timeout=TIMEOUT_MS)
+    editor.fill(text)
+    page.keyboard.press("Enter")
+
+
+def test_an_invalid_cell_edit_is_kept_beside_its_table_and_survives_a_restart(
+    page, app_home, artifacts
+):
+    """Type an impossible probability into a transition matrix in the browser: the error is
+    shown under that matrix naming the row and column, the edit stays in the grid, the
+    download and the autosaved draft hold it, and a restarted app restores it."""
+    from caredecide.modelfile import load_model
+    from synthetic_cohort import demo_model_path
+    from tests.browser.conftest import AppServer
+
+    state_ids = list(load_model(demo_model_path()).state_ids)
+    server = AppServer(app_home)
+    try:
+        page.goto(server.url, timeout=TIMEOUT_MS)
+        _wait_until_done(page, "Model")
+        page.get_by_role("tab", name="Transitions").click()
+        page.wait_for_function(NO_SKELETON, timeout=TIMEOUT_MS)
+        grid = _matrix_grid(page, "transitions.treat")
+        _edit_cell(page, grid, state_ids.index("stage_1"), state_ids.index("stage_2_tx"), "1.5")
+        page.get_by_text("problem(s) in").first.wait_for(timeout=TIMEOUT_MS)
+        _wait_until_done(page)
+
+        # The error names the cell and sits between this matrix and the next one.
+        error = page.locator("[data-testid='stAlertContentError']").filter(
+            has_text="row stage_1, column stage_2_tx")
+        error.first.wait_for(timeout=TIMEOUT_MS)
+        text = error.first.inner_text()
+        assert "transitions.treat.stage_1.stage_2_tx" in text and "[0, 1]" in text
+        below = _matrix_grid(page, "rates.wait").bounding_box()["y"]
+        grid_box = grid.bounding_box()
+        assert grid_box["y"] + grid_box["height"] <= error.first.bounding_box()["y"] < below
+
+        # Kept: in the autosaved draft and in the downloaded model file.
+        (draft,) = (app_home / "drafts").glob("*.toml")
+        saved = draft.read_text(encoding="utf-8")
+        assert "stage_2_tx = 1.5" in saved
+        with page.expect_download(timeout=TIMEOUT_MS) as download:
+            page.get_by_role("button", name="Download the model file").click()
+        assert download.value.suggested_filename == "demo_progressive.toml"
+        assert open(download.value.path(), encoding="utf-8").read() == saved
+        page.screenshot(path=str(artifacts / "app-model-invalid-edit.png"), full_page=True)
+        assert page.locator("[data-testid='stException']").count() == 0
+    finally:
+        server.stop()
+
+    restarted = AppServer(app_home)  # a restart: a new server, the same drafts folder
+    try:
+        page.goto(restarted.url, timeout=TIMEOUT_MS)
+        _wait_until_done(page, "Model")
+        page.get_by_text("Restored your autosaved draft").first.wait_for(timeout=TIMEOUT_MS)
+        assert page.get_by_text("problem(s) in").first.is_visible()
+        page.get_by_role("tab", name="Transitions").click()
+        page.wait_for_function(NO_SKELETON, timeout=TIMEOUT_MS)
+        error = page.locator("[data-testid='stAlertContentError']").filter(
+            has_text="row stage_1, column stage_2_tx")
+        assert error.first.is_visible()
+        page.screenshot(path=str(artifacts / "app-model-restored-after-restart.png"),
+                        full_page=True)
+        _check_view(page)
+    finally:
+        restarted.stop()

@@ -133,6 +133,8 @@ def test_an_invalid_edit_shows_its_error_beside_the_table_and_is_kept(app, priva
     errors = [e.value for e in app.error]
     assert any("transitions.treat.stage_1.stage_2_tx" in e and "[0, 1]" in e
                and "row stage_1, column stage_2_tx" in e for e in errors)
+    # The summary names the tab to open (the user may be on another one).
+    assert any("in the tab(s): Transitions (" in e for e in errors), errors
     # The other views refuse to solve and point back to the model view.
     app.switch_page("views/policy.py").run()
     assert not app.exception

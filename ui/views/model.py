@@ -6,6 +6,7 @@ shown beside the table they concern (by the table path of each problem).
 
 from __future__ import annotations
 
+from collections import Counter
 from pathlib import Path
 
 import streamlit as st
@@ -177,9 +178,17 @@ st.download_button(
 )
 checked = common.current_check()
 problems = checked.problems
+TAB_OF_TABLE = {"settings": "Settings", "states": "States", "actions": "Actions",
+                "parameters": "Parameters", "transitions": "Transitions", "rates": "Transitions"}
 if problems:
-    st.error(f"{len(problems)} problem(s) in {common.file_label()}; each is shown beside its "
-             "table. Your edits are kept and autosaved.", icon=":material/error:")
+    # Name the tabs to open: a user on another tab would not see the errors beside a table.
+    tabs_with = Counter(TAB_OF_TABLE.get(p.where.split(".")[0].split("[")[0],
+                                          "general, listed below")
+                        for p in problems)
+    where = ", ".join(f"{tab} ({count})" for tab, count in tabs_with.items())
+    st.error(f"{len(problems)} problem(s) in {common.file_label()}, in the tab(s): {where}. Each "
+             "is shown beside its table. Your edits are kept and autosaved.",
+             icon=":material/error:")
 else:
     st.success(f"{common.file_label()} is valid (autosaved).", icon=":material/check_circle:")
 TABLE_PREFIXES = ("settings", "states", "actions", "parameters", "transitions", "rates")
