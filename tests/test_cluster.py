@@ -58,3 +58,10 @@ def test_dask_client_names_an_unreachable_scheduler():
                                            r"'tcp://127\.0\.0\.1:1'"):
         with dask_client("tcp://127.0.0.1:1", connect_timeout="1s"):
             pass
+
+
+@pytest.mark.parametrize("timeout", ["soon", "0s", "-1s"])
+def test_dask_client_refuses_a_bad_connect_timeout(timeout):
+    with pytest.raises(ClusterError, match=r"connect timeout .*; expected a positive duration"):
+        with dask_client("tcp://127.0.0.1:1", connect_timeout=timeout):
+            pass

@@ -41,14 +41,22 @@ def _evppi_table(frame: pd.DataFrame, unit: str) -> Table:
 
 
 def _acceptability_table(frame: pd.DataFrame, action: str) -> Table:
+    """Share of draws choosing ``action``: one row per age band, one column per state.
+
+    Bands run down the rows so that a lifetime horizon (many bands) never squeezes the
+    column headers; decision states are few.
+    """
     data = frame[frame["action"] == action]
-    bands = list(dict.fromkeys(zip(data["age_from"], data["age_to"], strict=True)))
-    out = Table(title=f"Share of draws in which '{action}' is optimal, by state and age band")
-    out.add_column("state", no_wrap=True)
-    for low, high in bands:
-        out.add_column("any age" if pd.isna(low) else f"{low:g}-{high:g}", justify="right")
-    for state, rows in data.groupby("state", sort=False):
-        out.add_row(state, *(f"{s:.0%}" for s in rows["share"]))
+    states = list(dict.fromkeys(data["state"]))
+    out = Table(title=f"Share of draws in which '{action}' is optimal, by age band and state")
+    out.add_column("age band (years)", no_wrap=True)
+    for state in states:
+        out.add_column(state, justify="right")
+    # A loop over the printed rows (age bands), not over draws.
+    for (low, high), rows in data.groupby(["age_from", "age_to"], sort=True, dropna=False):
+        share = dict(zip(rows["state"], rows["share"], strict=True))
+        label = "any age" if pd.isna(low) else f"{low:g}-{high:g}"
+        out.add_row(label, *(f"{share[s]:.0%}" if s in share else "" for s in states))
     return out
 
 
@@ -67,6 +75,11 @@ def run_uncertainty(
         str | None,
         typer.Option("--scheduler", help="Run on the Dask scheduler at ADDRESS (tcp://HOST:PORT)."),
     ] = None,
+    connect_timeout: Annotated[
+        str,
+        typer.Option("--connect-timeout",
+                     help="How long to try reaching --scheduler (e.g. 20s, 2m)."),
+    ] = "20s",
     chunk_size: Annotated[
         int | None,
         typer.Option("--chunk-size", min=1, help="Draws per chunk (default: from memory)."),
@@ -86,7 +99,9 @@ def run_uncertainty(
     ] = 5.0,
     out: Annotated[
         Path | None,
-        typer.Option("--out", help="Folder for CSV (and Parquet) tables and charts (SVG, PNG)."),
+        typer.Option("--out", file_okay=False,
+                     help="Folder for CSV (and Parquet) tables and charts (SVG, PNG); "
+                          "created if missing."),
     ] = None,
     quiet: Annotated[
         bool, typer.Option("--quiet", help="No caution or progress on stderr.")
@@ -103,6 +118,8 @@ def run_uncertainty(
         stderr.print("[bold red]error:[/] give --workers or --scheduler, not both")
         raise typer.Exit(code=2)
     with user_errors():
+        if out is not None:  # before the run: a folder that cannot be made fails at once
+            out.mkdir(parents=True, exist_ok=True)
         from caredecide.modelfile import load_model
         from caredecide.strategies import read_strategy_table, sibling_table
         from caredecide.uncertainty.psa import run_psa
@@ -125,7 +142,8 @@ def run_uncertainty(
             else:
                 from caredecide.uncertainty.cluster import dask_client, dask_map
 
-                with dask_client(scheduler, workers) as client:
+                with dask_client(scheduler, workers,
+                                 connect_timeout=connect_timeout) as client:
                     result = run_psa(loaded, draws, seed, map_chunks=dask_map(client), **options)
         tables = _tables(result, band_years)
 

@@ -88,6 +88,7 @@ def dask_client(
                            f"got scheduler={scheduler!r}, workers={workers!r}")
     distributed = _distributed()
     if scheduler is not None:
+        _check_timeout(connect_timeout)
         try:
             client = distributed.Client(scheduler, timeout=connect_timeout)
         except (OSError, TimeoutError) as error:
@@ -112,6 +113,19 @@ def dask_client(
         **where,
     ) as cluster, distributed.Client(cluster) as client:
         yield client
+
+
+def _check_timeout(timeout: str) -> None:
+    """A ClusterError naming ``timeout`` unless it is a positive Dask time string."""
+    from dask.utils import parse_timedelta
+
+    try:
+        seconds = parse_timedelta(timeout)
+    except (KeyError, ValueError, TypeError):
+        seconds = None
+    if seconds is None or not seconds > 0:
+        raise ClusterError(f"connect timeout {timeout!r}; expected a positive duration such "
+                           "as '20s' or '2m'")
 
 
 def dask_map(client, *, max_in_flight: int | None = None) -> ChunkMap:

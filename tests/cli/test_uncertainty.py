@@ -89,3 +89,65 @@ def test_refuses_zero_draws(model_file):
     result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "0"])
     assert result.exit_code == 2
     assert "--draws" in result.output
+
+
+def test_acceptability_table_has_one_row_per_age_band(model_file, tmp_path):
+    # Bands run down the rows (a lifetime horizon must not squeeze the headers); each
+    # cell is the band's share from acceptability_by_age_band.csv.
+    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "60", "--seed",
+                                 "4", "--band-years", "2", "--quiet", "--out", str(tmp_path)])
+    assert result.exit_code == 0, result.output
+    bands = pd.read_csv(tmp_path / "acceptability_by_age_band.csv")
+    treat = bands[(bands["action"] == "treat") & (bands["state"] == "sick")]
+    lines = result.stdout.splitlines()
+    for row in treat.itertuples():
+        label = f"{row.age_from:g}-{row.age_to:g}"
+        line = next(x for x in lines if x.strip("│┃ ").startswith(label + " "))
+        assert line.split()[-2 if line.endswith("│") else -1] == f"{row.share:.0%}"
+
+
+def test_refuses_an_out_path_that_is_a_file(model_file, tmp_path):
+    target = tmp_path / "taken"
+    target.write_text("")
+    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "10",
+                                 "--out", str(target)])
+    assert result.exit_code == 2
+    assert "Invalid value for '--out'" in result.output
+
+
+def test_local_dask_workers_give_the_serial_results(model_file, tmp_path):
+    # --workers starts a local cluster of worker processes on loopback (127.0.0.1).
+    pytest.importorskip("distributed")
+    serial = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "250", "--seed",
+                                 "5", "--chunk-size", "100", "--quiet",
+                                 "--out", str(tmp_path / "serial")])
+    dask = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "250", "--seed", "5",
+                               "--chunk-size", "70", "--workers", "1", "--quiet",
+                               "--out", str(tmp_path / "dask")])
+    assert serial.exit_code == 0, serial.output
+    assert dask.exit_code == 0, dask.output
+    for name in ("draws.csv", "expected_loss.csv", "acceptability_by_cycle.csv", "evppi.csv"):
+        pd.testing.assert_frame_equal(pd.read_csv(tmp_path / "dask" / name),
+                                      pd.read_csv(tmp_path / "serial" / name), obj=name)
+    summary = json.loads((tmp_path / "dask" / "summary.json").read_text())
+    assert summary["evpi"] == json.loads((tmp_path / "serial" / "summary.json").read_text())[
+        "evpi"]
+    assert summary["chunk_size"] == 70
+
+
+def test_names_an_unreachable_scheduler(model_file):
+    pytest.importorskip("distributed")
+    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "10", "--quiet",
+                                 "--scheduler", "tcp://127.0.0.1:1", "--connect-timeout",
+                                 "1s"])
+    assert result.exit_code == 2
+    assert "could not reach the Dask scheduler at 'tcp://127.0.0.1:1'" in result.stderr
+
+
+def test_refuses_a_bad_connect_timeout(model_file):
+    pytest.importorskip("distributed")
+    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "10", "--quiet",
+                                 "--scheduler", "tcp://127.0.0.1:1", "--connect-timeout",
+                                 "soon"])
+    assert result.exit_code == 2
+    assert "connect timeout 'soon'; expected a positive duration" in result.stderr
