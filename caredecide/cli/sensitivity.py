@@ -8,9 +8,23 @@ from typing import Annotated
 
 import pandas as pd
 import typer
+from rich.console import Console
 from rich.table import Table
 
-from caredecide.cli.common import print_caution, progress, stderr, stdout, user_errors
+from caredecide.cli.common import plain, print_caution, progress, stderr, stdout, user_errors
+from caredecide.cli.solve import OutputError
+from caredecide.errors import ModelError, Problem
+
+TABLE_WIDTH = 150
+"""Tables are printed at least this wide (characters): a pipe defaults to 80, which would
+cut parameter names short."""
+MAP_MAX = 25
+"""A two-way map is printed as text up to this many values per axis (else: the CSV)."""
+
+
+def _print(renderable: object) -> None:
+    """Print a table on stdout at least :data:`TABLE_WIDTH` wide."""
+    Console(width=max(stdout.width, TABLE_WIDTH), highlight=False).print(renderable)
 
 
 def _number(value: float) -> str:
@@ -22,36 +36,71 @@ def _number(value: float) -> str:
 def _one_way_table(table: pd.DataFrame, unit: str) -> Table:
     out = Table(title=f"One-way sensitivity, ranked by swing (objective at the start, {unit})")
     for column in ("rank", "parameter", "low", "high", "at low", "base", "at high", "swing"):
-        out.add_column(column, justify="left" if column == "parameter" else "right")
-    out.add_column("policy changes (vs base)")
+        out.add_column(column, justify="left" if column == "parameter" else "right", no_wrap=True)
+    out.add_column("cells that switch (low / high)", justify="right")
     for row in table.itertuples():
         changes = row.policy_changes
         out.add_row(
             str(row.rank),
-            row.parameter + (" *" if changes != "none" else ""),
+            plain(row.parameter) + (" *" if changes != "none" else ""),
             _number(row.low),
             _number(row.high),
             _number(row.value_low),
             _number(row.value_base),
             _number(row.value_high),
             _number(row.swing),
-            changes,
+            f"{row.switches_low} / {row.switches_high}",
         )
     return out
+
+
+def _policy_changes(table: pd.DataFrame) -> list[str]:
+    """One line per parameter whose range changes the policy: where and how."""
+    return [
+        f"  {plain(row.parameter)}: {plain(row.policy_changes)}"
+        for row in table.itertuples()
+        if row.policy_changes != "none"
+    ]
+
+
+def _two_way_map(frame: pd.DataFrame) -> tuple[Table, list[str]]:
+    """The best action at the start on the grid as letters (rows: y, high values first)."""
+    actions = list(dict.fromkeys(frame["action_at_start"]))
+    letter = {a: chr(ord("A") + i) if i < 26 else str(i) for i, a in enumerate(actions)}
+    x_name, y_name = frame["x_parameter"].iloc[0], frame["y_parameter"].iloc[0]
+    xs = sorted(frame["x_value"].unique())
+    ys = sorted(frame["y_value"].unique(), reverse=True)
+    cells = frame.set_index(["y_value", "x_value"])
+    out = Table(
+        title=f"Best action at the start over {plain(x_name)} (columns) and {plain(y_name)} "
+        "(rows); * the policy differs from the base case somewhere",
+        show_lines=False,
+    )
+    out.add_column(f"{plain(y_name)} \\ {plain(x_name)}", justify="right", no_wrap=True)
+    for x in xs:
+        out.add_column(_number(x), justify="center", no_wrap=True)
+    for y in ys:
+        row = [_number(y)]
+        for x in xs:
+            cell = cells.loc[(y, x)]
+            row.append(letter[cell["action_at_start"]] + ("" if cell["same_as_base"] else "*"))
+        out.add_row(*row)
+    legend = [f"  {letter[a]} = {plain(a)}" for a in actions]
+    return out, legend
 
 
 def _threshold_table(summary: pd.DataFrame, title: str) -> Table:
     key = "parameter" if "parameter" in summary.columns else "setting"
     out = Table(title=title)
     for column in (key, "state", "ages", "below", "above", "threshold from", "to"):
-        out.add_column(column)
+        out.add_column(column, no_wrap=column != "ages")
     for row in summary.itertuples():
         out.add_row(
-            str(getattr(row, key)),
-            "" if pd.isna(row.state) else str(row.state),
+            plain(getattr(row, key)),
+            "" if pd.isna(row.state) else plain(row.state),
             str(row.ages),
-            "" if pd.isna(row.action_below) else str(row.action_below),
-            "" if pd.isna(row.action_above) else str(row.action_above),
+            "" if pd.isna(row.action_below) else plain(row.action_below),
+            "" if pd.isna(row.action_above) else plain(row.action_above),
             _number(row.threshold_min),
             _number(row.threshold_max),
         )
@@ -123,8 +172,12 @@ def run_sensitivity(
         )
         from caredecide.sensitivity.variation import default_objective
 
+        if out is not None:  # before the run: a folder that cannot be made fails at once
+            _make_folder(out)
         # load_model refuses oversized files (caredecide.modelfile.MAX_MODEL_BYTES).
         loaded = load_model(model)
+        if two_way_pair:  # check the pair before the long one-way and threshold runs
+            _check_pair(loaded, two_way_pair, str(model))
         objective = default_objective(loaded)
         names = [n.strip() for p in parameters or [] for n in p.split(",") if n.strip()] or None
         finite = loaded.n_cycles() is not None
@@ -171,14 +224,23 @@ def run_sensitivity(
                 total = finished.total or 1
                 bar.update(tasks[step], completed=total, total=total)
 
-    stdout.print(f"Objective: {objective.describe()}; model: {loaded.title}")
-    stdout.print(_one_way_table(results["oneway"], objective.unit))
-    stdout.print("* the optimal policy changes within this parameter's plausible range")
+    stdout.print(f"Objective: {plain(objective.describe())}; model: {plain(loaded.title)}")
+    _print(_one_way_table(results["oneway"], objective.unit))
+    changes = _policy_changes(results["oneway"])
+    if changes:
+        stdout.print(
+            "* the optimal policy changes within this parameter's plausible range "
+            "(end of the range: state, base action -> new action, ages):"
+        )
+        for line in changes:
+            stdout.print(line)
     rules = results["oneway"][["parameter", "rule"]]
     moved = rules[rules["rule"] != "moved alone"]
+    if len(moved):
+        stdout.print("How the other estimates follow a move:")
     for row in moved.itertuples():
-        stdout.print(f"  {row.parameter}: {row.rule}")
-    stdout.print(
+        stdout.print(f"  {plain(row.parameter)}: {plain(row.rule)}")
+    _print(
         _threshold_table(
             summarise_thresholds(results["thresholds"]),
             "Decision thresholds (parameter value where the best action switches)",
@@ -189,33 +251,74 @@ def run_sensitivity(
         ("threshold_discount_rate", "discount rate (outcomes and costs together)"),
     ):
         if key in results:
-            stdout.print(
-                _threshold_table(summarise_thresholds(results[key]), f"Threshold: {label}")
-            )
+            _print(_threshold_table(summarise_thresholds(results[key]), f"Threshold: {label}"))
     if "twoway" in results:
-        counts = results["twoway"]["action_at_start"].value_counts()
-        stdout.print(
-            "Two-way map, best action at the start: "
-            + ", ".join(f"{a}: {n} grid points" for a, n in counts.items())
-        )
+        frame = results["twoway"]
+        if grid <= MAP_MAX:
+            table, legend = _two_way_map(frame)
+            _print(table)
+            for line in legend:
+                stdout.print(line)
+        else:
+            counts = frame["action_at_start"].value_counts()
+            stdout.print(
+                "Two-way map, best action at the start: "
+                + ", ".join(f"[{plain(a)}] at {n} grid points" for a, n in counts.items())
+                + " (every point in twoway.csv with --out)"
+            )
 
     if out is not None:
         with user_errors():
             _write_outputs(out, results, objective.unit, quiet)
 
 
+def _make_folder(out: Path) -> None:
+    """Create the ``--out`` folder or raise an OutputError naming the option."""
+    if out.exists() and not out.is_dir():
+        raise OutputError(f"--out {out} is a file; expected a folder for the results")
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as error:
+        raise OutputError(
+            f"--out {out}: cannot write the results ({error.strerror or error}); "
+            "expected a folder that can be created and written"
+        ) from None
+
+
+def _check_pair(model, pair: tuple[str, str], file: str) -> None:
+    """Refuse a ``--two-way`` pair of one name twice or of unknown names."""
+    from caredecide.sensitivity import parameter_ranges
+
+    if pair[0] == pair[1]:
+        raise ModelError(
+            Problem(
+                where="--two-way",
+                message=f"needs two different parameters, got {pair[0]!r} twice",
+            ),
+            file=file,
+        )
+    parameter_ranges(model, list(pair))  # unknown names: an error naming parameters.<name>
+
+
 def _write_outputs(out: Path, results: dict[str, pd.DataFrame], unit: str, quiet: bool) -> None:
     from ui.charts import make_tornado_chart, make_two_way_chart
 
-    out.mkdir(parents=True, exist_ok=True)
     written = []
-    for name, frame in results.items():
-        path = out / f"{name}.csv"
-        frame.to_csv(path, index=False)
-        written.append(path)
-    written += _save_chart(make_tornado_chart(results["oneway"], unit=f"({unit})"), out, "tornado")
-    if "twoway" in results:
-        written += _save_chart(make_two_way_chart(results["twoway"]), out, "twoway")
+    try:
+        _make_folder(out)
+        for name, frame in results.items():
+            path = out / f"{name}.csv"
+            frame.to_csv(path, index=False)
+            written.append(path)
+        tornado = make_tornado_chart(results["oneway"], unit=f"({unit})")
+        written += _save_chart(tornado, out, "tornado")
+        if "twoway" in results:
+            written += _save_chart(make_two_way_chart(results["twoway"]), out, "twoway")
+    except OSError as error:
+        raise OutputError(
+            f"--out {out}: cannot write the results ({error.strerror or error}); "
+            "expected a folder that can be created and written"
+        ) from None
     if not quiet:
         stderr.print("Wrote " + ", ".join(str(p) for p in written))
 

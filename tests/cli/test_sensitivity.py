@@ -113,3 +113,56 @@ def test_sensitivity_unknown_parameter_is_a_clear_error(model_file):
     result = runner.invoke(app, ["sensitivity", str(model_file), "-p", "nope"])
     assert result.exit_code == 2
     assert "parameters.nope" in result.stderr and "unknown parameter 'nope'" in result.stderr
+
+
+def test_sensitivity_prints_full_names_the_policy_changes_and_a_text_map(model_file):
+    # CliRunner's stdout is a pipe (80 columns by default): names must still be whole.
+    result = runner.invoke(
+        app, ["sensitivity", str(model_file), "--two-way", "p", "hr", "--grid", "3", "--quiet"]
+    )
+    assert result.exit_code == 0, result.output
+    out = result.stdout
+    # base: p (1 - hr) = 0.06 > loss = 0.05 -> treat; p low 0.01 -> 0.006 < 0.05 -> wait
+    assert "p: low: sick treat->wait at ages 0" in out
+    assert "hr \\ p" in out  # the map's corner cell names both axes
+    # grid 3: p in {0.01, 0.105, 0.2}, hr in {0.2, 0.55, 0.9}; treat iff p (1 - hr) > 0.05.
+    # Rows from hr = 0.9 down: wait everywhere; at 0.55 treat from p = 0.2 (0.09);
+    # at 0.2 treat from p = 0.105 (0.084). Letters follow first appearance in the CSV order.
+    cells = [line.split("│") for line in out.splitlines() if line.startswith("│")]
+    map_rows = {c[1].strip(): c[2:5] for c in cells if c[1].strip() in ("0.9", "0.55", "0.2")}
+    letters = {k: [c.strip().rstrip("*") for c in v] for k, v in map_rows.items()}
+    legend = dict(line.strip().split(" = ") for line in out.splitlines()
+                  if line.startswith("  ") and " = " in line)  # fmt: skip
+    actions = {k: [legend[c] for c in row] for k, row in letters.items()}
+    assert actions == {
+        "0.9": ["wait", "wait", "wait"],
+        "0.55": ["wait", "wait", "treat"],
+        "0.2": ["wait", "treat", "treat"],
+    }
+
+
+def test_sensitivity_two_way_of_one_parameter_twice_is_refused_before_the_run(model_file):
+    result = runner.invoke(app, ["sensitivity", str(model_file), "--two-way", "p", "p"])
+    assert result.exit_code == 2
+    assert "--two-way: needs two different parameters, got 'p' twice" in result.stderr
+    assert "hand.toml" in result.stderr
+    assert "One-way" not in result.stdout  # nothing was computed
+
+
+def test_sensitivity_two_way_unknown_parameter_is_refused(model_file):
+    result = runner.invoke(app, ["sensitivity", str(model_file), "--two-way", "p", "nope"])
+    assert result.exit_code == 2
+    assert "parameters.nope: unknown parameter 'nope'" in result.stderr
+
+
+def test_sensitivity_out_that_is_a_file_is_refused_before_the_run(model_file, tmp_path):
+    target = tmp_path / "a_file"
+    target.write_text("not a folder")
+    result = runner.invoke(app, ["sensitivity", str(model_file), "--out", str(target)])
+    assert result.exit_code == 2
+    assert f"--out {target} is a file; expected a folder" in result.stderr
+    assert "One-way" not in result.stdout
+    blocked = target / "sub"
+    result = runner.invoke(app, ["sensitivity", str(model_file), "--out", str(blocked)])
+    assert result.exit_code == 2
+    assert f"--out {blocked}: cannot write the results" in result.stderr
