@@ -135,19 +135,17 @@ def test_local_dask_workers_give_the_serial_results(model_file, tmp_path):
     assert summary["chunk_size"] == 70
 
 
-def test_names_an_unreachable_scheduler(model_file):
+@pytest.mark.parametrize(
+    ("timeout", "message"),
+    [
+        ("1s", "could not reach the Dask scheduler at 'tcp://127.0.0.1:1'"),
+        ("soon", "connect timeout 'soon'; expected a positive duration"),
+    ],
+)
+def test_names_an_unreachable_scheduler_and_a_bad_timeout(model_file, timeout, message):
     pytest.importorskip("distributed")
     result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "10", "--quiet",
                                  "--scheduler", "tcp://127.0.0.1:1", "--connect-timeout",
-                                 "1s"])
+                                 timeout])
     assert result.exit_code == 2
-    assert "could not reach the Dask scheduler at 'tcp://127.0.0.1:1'" in result.stderr
-
-
-def test_refuses_a_bad_connect_timeout(model_file):
-    pytest.importorskip("distributed")
-    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "10", "--quiet",
-                                 "--scheduler", "tcp://127.0.0.1:1", "--connect-timeout",
-                                 "soon"])
-    assert result.exit_code == 2
-    assert "connect timeout 'soon'; expected a positive duration" in result.stderr
+    assert message in result.stderr
