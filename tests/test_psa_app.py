@@ -8,6 +8,7 @@ from streamlit.testing.v1 import AppTest
 
 from caredecide.cautions import CAUTION_SHORT
 from caredecide.modelfile import load_model
+from caredecide.strategies import read_strategy_table, sibling_table
 from caredecide.uncertainty.psa import run_psa
 from synthetic_cohort import demo_model_path
 from tests.conftest import load_dict
@@ -28,7 +29,11 @@ def test_uncertainty_view_shows_the_library_evpi():
     assert any(CAUTION_SHORT in w.value for w in at.warning)
     at.number_input(key="uncertainty_draws").set_value(60).run()
     assert not at.exception, at.exception
-    expected = run_psa(load_model(demo_model_path()), 60, 1).evpi()
+    # The strategy table beside the demo model joins the candidates, as in the CLI.
+    beside = sibling_table(demo_model_path())
+    assert any(beside.name in c.value for c in at.caption)
+    expected = run_psa(load_model(demo_model_path()), 60, 1,
+                       strategies=read_strategy_table(beside)).evpi()
     metrics = {m.label: m.value for m in at.metric}
     label = next(k for k in metrics if k.startswith("EVPI of the timing decision"))
     assert metrics[label] == f"{expected['evpi']:,.2f}"

@@ -8,6 +8,7 @@ import streamlit as st
 
 from caredecide.errors import CaredecideError
 from caredecide.modelfile import loads_model
+from caredecide.strategies import MAX_TABLE_BYTES, read_strategy_table, sibling_table
 from caredecide.uncertainty.psa import run_psa
 from ui import charts, common
 
@@ -15,9 +16,12 @@ MAX_APP_DRAWS = 20_000
 
 
 @st.cache_data(max_entries=8, show_spinner=False)
-def run_analysis(text: str, file: str, base_dir: str, draws: int, seed: int):
+def run_analysis(text: str, file: str, base_dir: str, draws: int, seed: int,
+                 table: tuple[str, str] | None = None):
+    """PSA of the working model; ``table`` (file name, CSV text) adds its strategies."""
     model = loads_model(text, file=file, base_dir=base_dir)
-    return run_psa(model, draws, seed)
+    strategies = read_strategy_table(table[0], text=table[1]) if table else []
+    return run_psa(model, draws, seed, strategies=strategies)
 
 
 model = common.valid_model_or_stop()
@@ -35,9 +39,17 @@ draws = left.number_input("Draws", min_value=10, max_value=MAX_APP_DRAWS, value=
                           key="uncertainty_draws")
 seed = right.number_input("Seed", min_value=0, value=1, step=1, key="uncertainty_seed")
 
+# The strategy table beside the model joins the candidates, as in the CLI and the report.
+source = common.working_source()
+beside = None if source.partition(":")[0] in ("upload", "template") else sibling_table(source)
+table = None
+if beside is not None and beside.stat().st_size <= MAX_TABLE_BYTES:
+    table = (str(beside), beside.read_text(encoding="utf-8-sig"))
+    st.caption(f"Candidates include the strategies of {beside.name}")
+
 try:
     with st.spinner(f"Solving {int(draws):,} draws (compile -> solve -> evaluate, in chunks)..."):
-        result = run_analysis(*key, int(draws), int(seed))
+        result = run_analysis(*key, int(draws), int(seed), table)
 except CaredecideError as error:
     st.error(str(error), icon=":material/error:")
     st.stop()
