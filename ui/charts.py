@@ -41,6 +41,14 @@ STATE_PALETTE: tuple[str, ...] = (
 
 _DARK_FILLS = {"#1D5A8C", "#7A3B63", "#3F3F3F"}
 
+GAP_RAMP: tuple[str, str] = ("#2B2B2B", "#F4F4F4")
+"""Action-gap ramp, smallest gap first: dark = close call. One hue, lightness only, so it
+reads the same under any colour-vision deficiency and in greyscale print."""
+
+MAX_SWEEPS_WITH_POINTS = 60
+"""Above this many sweeps the convergence lines carry no point marks (they would hide the
+dash pattern that tells the lines apart without colour)."""
+
 
 def _require(frame: pd.DataFrame, columns: Sequence[str], chart: str) -> None:
     missing = [c for c in columns if c not in frame.columns]
@@ -95,6 +103,7 @@ def make_policy_chart(
             "action:N",
             title="Best action",
             scale=alt.Scale(domain=actions, range=colours),
+            legend=alt.Legend(labelLimit=360),  # action labels are sentences: show them whole
         ),
         tooltip=["state:N", "age:O", "action:N"],
     )
@@ -133,11 +142,13 @@ def make_action_gap_chart(
         color=alt.Color(
             "action_gap:Q",
             title=f"Action gap {unit}".strip(),
-            scale=alt.Scale(scheme="greys", reverse=True, type="symlog"),
+            scale=alt.Scale(range=list(GAP_RAMP), type="symlog"),
         ),
         tooltip=["state:N", "age:O", alt.Tooltip("action_gap:Q", format=".4g")],
     )
-    text = base.mark_text(fontSize=9, color="#EBA83A").encode(text="mark:N")
+    # Amber dot with a dark outline: visible on the darkest and the lightest cell alike.
+    text = base.mark_text(fontSize=11, color=ACTION_PALETTE[1], stroke="#1A1A1A",
+                          strokeWidth=0.6).encode(text="mark:N")
     return alt.layer(cells, text).properties(
         title="Action gap (dark = small gap; a dot marks a close call)", height=alt.Step(22)
     )
@@ -232,7 +243,7 @@ def make_convergence_chart(frame: pd.DataFrame) -> alt.Chart | alt.LayerChart:
     data = frame[frame["amount"] > 0]
     lines = (
         alt.Chart(data)
-        .mark_line(point=True)
+        .mark_line(point=bool(data["sweep"].nunique() <= MAX_SWEEPS_WITH_POINTS), strokeWidth=2)
         .encode(
             x=alt.X("sweep:Q", title="Sweep", axis=alt.Axis(tickMinStep=1)),
             y=alt.Y("amount:Q", title="Size (sup norm)", scale=alt.Scale(type="log")),

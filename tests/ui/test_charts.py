@@ -65,6 +65,25 @@ def test_action_gap_chart_marks_close_calls_in_text():
     assert cells["encoding"]["color"]["title"] == "Action gap QALYs"
     assert text["encoding"]["text"]["field"] == "mark"
     assert [r["mark"] for r in _rows(spec)] == ["\u25cf", ""]
+    # Our own ramp (no library colour scheme), dark = small gap; the dot is outlined so it
+    # shows on a dark and a light cell alike.
+    scale = cells["encoding"]["color"]["scale"]
+    assert "scheme" not in scale and scale["range"] == list(charts.GAP_RAMP)
+    assert text["mark"]["stroke"] == "#1A1A1A" and text["mark"]["color"] == "#EBA83A"
+
+
+def test_gap_ramp_is_one_hue_from_dark_to_light():
+    # Greys only (r = g = b): colour-vision deficiency cannot confuse it; common practice.
+    dark, light = (tuple(int(c[i : i + 2], 16) for i in (1, 3, 5)) for c in charts.GAP_RAMP)
+    assert len(set(dark)) == 1 and len(set(light)) == 1 and dark[0] < light[0]
+
+
+def test_policy_chart_legend_shows_long_action_labels_whole():
+    frame = _policy_frame().assign(action=lambda f: f["action"] + " (or stay on treatment "
+                                   "once started)")
+    spec = charts.make_policy_chart(frame).to_dict()
+    limit = spec["layer"][0]["encoding"]["color"]["legend"]["labelLimit"]
+    assert limit >= 7 * max(len(a) for a in frame["action"])  # ~7 px per character at 11 px
 
 
 def test_value_chart_draws_lines_over_age_and_bars_for_a_single_age():
@@ -102,6 +121,18 @@ def test_convergence_chart_uses_a_log_scale_drops_zeros_and_marks_policy_stabili
     rule_rows = next(v for v in spec["datasets"].values() if v and "note" in v[0])
     assert rule_rows == [{"sweep": 2, "note": "policy stops changing"}]
     assert rule["mark"]["type"] == "rule"
+
+
+def test_convergence_chart_drops_points_on_long_runs_so_dashes_stay_visible():
+    def frame(n: int) -> pd.DataFrame:
+        return pd.DataFrame({"sweep": [*range(1, n + 1)] * 2,
+                             "quantity": ["residual"] * n + ["error bound"] * n,
+                             "amount": [1.0] * (2 * n)})
+
+    few = charts.make_convergence_chart(frame(charts.MAX_SWEEPS_WITH_POINTS)).to_dict()
+    many = charts.make_convergence_chart(frame(charts.MAX_SWEEPS_WITH_POINTS + 1)).to_dict()
+    assert few["mark"]["point"] is True and many["mark"]["point"] is False
+    assert many["encoding"]["strokeDash"]["field"] == "quantity"  # told apart without colour
 
 
 def test_convergence_chart_without_stability_column_is_a_single_layer():
