@@ -266,6 +266,18 @@ def test_model_too_large_for_memory_gives_the_estimate(small_model):
     with pytest.raises(ModelTooLargeError) as info:
         compile_model(small_model, {"p_sick": np.full(1000, 0.1)}, memory_limit_bytes=needed - 1)
     assert f"{needed:,} bytes" in str(info.value) and "test.toml" in str(info.value)
+    # One draw is 288 bytes: the advice names how many draws fit under the limit.
+    assert f"at most {(needed - 1) // 288:,} draws per batch" in str(info.value)
+
+
+def test_model_too_large_even_for_one_draw_names_the_horizon(small_model):
+    data = small_model_dict()
+    data["settings"]["horizon_cycles"] = 1_000_000
+    data["transitions"]["wait"]["well"]["dead"] = "0.01 + 0.0 * age"  # time-dependent rows
+    model = load_dict(data)
+    with pytest.raises(ModelTooLargeError) as info:
+        compile_model(model, memory_limit_bytes=10_000_000)
+    assert "shorten the horizon (settings.horizon_cycles or settings.until_age)" in str(info.value)
 
 
 def test_warning_for_qaly_weight_above_one(small_model):
