@@ -84,6 +84,24 @@ def test_upload_a_model_and_watch_value_iteration_converge(app_url, page, artifa
     assert page.locator("[data-testid='stException']").count() == 0
 
 
+def test_an_upload_that_is_not_text_is_refused_naming_the_file(app_url, page, tmp_path):
+    """Uploaded bytes are data: a non-UTF-8 file is refused with its name and what was
+    expected, and the working model stays as it was."""
+    bad = tmp_path / "not_text.toml"
+    bad.write_bytes(b"format = 1\n\xff\xfe\x00binary")
+    page.goto(app_url, timeout=TIMEOUT_MS)
+    _wait_until_done(page, "Model")
+    page.get_by_text("Open another model").click()
+    page.locator("[data-testid='stFileUploaderDropzoneInput']").set_input_files(str(bad))
+    error = page.locator("[data-testid='stAlertContentError']").filter(has_text="not_text.toml")
+    error.first.wait_for(timeout=TIMEOUT_MS)
+    assert "not UTF-8 text" in error.first.inner_text()
+    assert "expected a TOML model file" in error.first.inner_text()
+    _wait_until_done(page)
+    assert page.get_by_text("demo_progressive.toml is valid").first.is_visible()
+    _check_view(page)
+
+
 def test_an_edit_survives_a_page_reload(app_url, page, artifacts):
     """Edit the model text, reload the page (a new session): the autosaved draft comes back.
 

@@ -263,3 +263,24 @@ def test_every_bundled_model_opens_and_solves_in_the_views(app, bundled):
         app.switch_page(view).run()
         assert not app.exception, (view, app.exception)
         assert not app.error, (view, [e.value for e in app.error])
+
+
+def test_a_draft_of_another_model_is_offered_and_opens_in_a_fresh_session(app):
+    app.selectbox(key="open_template_choice").set_value("treat-or-wait")
+    app.button(key="open_template_button").click().run()
+    _edit(app, "settings", {0: {"willingness_to_pay": 12345.0}})
+    edited = app.session_state[common.TEXT_KEY]
+    assert "willingness_to_pay = 12345.0" in edited
+
+    fresh = AppTest.from_file(APP, default_timeout=120).run()  # opens the demo model...
+    assert not fresh.exception, fresh.exception
+    demo = demo_model_path().read_text(encoding="utf-8")
+    assert fresh.session_state[common.TEXT_KEY] == demo  # ...untouched by the other draft
+    assert not any("Restored your autosaved draft" in i.value for i in fresh.info)
+    offered = fresh.selectbox(key="open_draft_choice")
+    saved_at = drafts.load_draft("template:treat-or-wait").saved_at
+    assert offered.options == [f"treat-or-wait (template) ({saved_at})"]
+    fresh.button(key="open_draft_button").click().run()
+    assert not fresh.exception, fresh.exception
+    assert fresh.session_state[common.SOURCE_KEY] == "template:treat-or-wait"
+    assert fresh.session_state[common.TEXT_KEY] == edited
