@@ -88,3 +88,40 @@ def test_two_way_uses_letters_for_long_labels():
         "A = s1: wait; s2: treat",
         "B = s1: treat; s2: treat",
     ]
+
+
+def test_two_way_axes_follow_the_numbers_not_the_text():
+    # Text order would put "970.7" above "2143" and "10" before "9" (common practice:
+    # a map's axes run in numeric order, y rising upwards).
+    xs, ys = [9.0, 10.0, 11.0], [970.721, 1556.66, 2142.61]
+    frame = pd.DataFrame(
+        {
+            "x_parameter": "n",
+            "x_value": [x for _ in ys for x in xs],
+            "y_parameter": "c_start",
+            "y_value": [y for y in ys for _ in xs],
+            "action_at_start": "wait",
+            "same_as_base": True,
+        }
+    )
+    cells = make_two_way_chart(frame).to_dict()["layer"][0]
+    assert cells["encoding"]["x"]["sort"] == ["9", "10", "11"]
+    assert cells["encoding"]["y"]["sort"] == ["2143", "1557", "970.7"]
+
+
+def test_two_way_axis_labels_stay_distinct_on_a_narrow_range():
+    ys = [3000.0, 3000.25, 3000.5]  # all "3000" at 4 significant digits; apart at 5
+    frame = pd.DataFrame(
+        {
+            "x_parameter": "p",
+            "x_value": [0.1, 0.1, 0.1],
+            "y_parameter": "c",
+            "y_value": ys,
+            "action_at_start": ["wait", "treat", "treat"],
+            "same_as_base": True,
+        }
+    )
+    spec = make_two_way_chart(frame).to_dict()
+    rows = spec["datasets"][spec["data"]["name"]]
+    assert [r["y"] for r in rows] == ["3000", "3000.2", "3000.5"]
+    assert spec["layer"][0]["encoding"]["y"]["sort"] == ["3000.5", "3000.2", "3000"]

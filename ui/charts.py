@@ -383,16 +383,28 @@ def make_two_way_chart(
         dark = [f"{short[a]} = {a}" for a in dark]
         actions = [f"{short[a]} = {a}" for a in actions]
         short = {a: a.split(" = ", 1)[0] for a in actions}
+
+    def axis_labels(values: pd.Series) -> dict[float, str]:
+        # 4 significant digits, more when neighbours would share a label (<= 12).
+        distinct = sorted(values.unique())
+        for digits in range(4, 13):
+            labels = [f"{v:.{digits}g}" for v in distinct]
+            if len(set(labels)) == len(labels):
+                break
+        return dict(zip(distinct, labels, strict=True))
+
+    x_labels, y_labels = axis_labels(frame["x_value"]), axis_labels(frame["y_value"])
     data = frame.assign(
-        x=frame["x_value"].map(lambda v: f"{v:.4g}"),
-        y=frame["y_value"].map(lambda v: f"{v:.4g}"),
+        x=frame["x_value"].map(x_labels),
+        y=frame["y_value"].map(y_labels),
         label=frame["action_at_start"].astype(str).map(short)
         + frame["same_as_base"].map({True: "", False: "*"}),
     )
     x_name, y_name = str(frame["x_parameter"].iloc[0]), str(frame["y_parameter"].iloc[0])
+    # Explicit numeric orders: sorting the text labels would put "970.7" above "2143".
     base = alt.Chart(data).encode(
-        x=alt.X("x:O", title=x_name, sort=None),
-        y=alt.Y("y:O", title=y_name, sort="descending"),
+        x=alt.X("x:O", title=x_name, sort=list(x_labels.values())),
+        y=alt.Y("y:O", title=y_name, sort=list(y_labels.values())[::-1]),
     )
     cells = base.mark_rect(stroke="white", strokeWidth=0.5).encode(
         color=alt.Color(
