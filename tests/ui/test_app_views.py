@@ -92,6 +92,12 @@ def test_policy_view_shows_the_library_totals_and_policy(app):
     # Cohort trace: the library's trace under the optimal policy.
     shown_trace = _chart_data(app, 3)
     assert shown_trace["proportion"].tolist() == outcome.trace_frame()["proportion"].tolist()
+    # The closest choices: the library's ten smallest gaps, both actions named by label.
+    closest = next(d.value for d in app.dataframe if "next_best_action" in d.value.columns)
+    gaps = expected.nsmallest(10, "action_gap")
+    assert closest["action_gap"].tolist() == gaps["action_gap"].tolist()
+    assert closest["next_best_action"].tolist() == [labels[a] for a in gaps["next_best_action"]]
+    assert closest["action"].tolist() == [labels[a] for a in gaps["action"]]
 
 
 def test_wtp_control_changes_the_result_to_the_library_value(app):

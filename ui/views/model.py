@@ -162,7 +162,7 @@ st.title("Model")
 if error := st.session_state.pop("cd_startup_error", None):
     st.error(f"Could not open the startup model: {error}")
 if notice := st.session_state.get(common.NOTICE_KEY):
-    left, right = st.columns([4, 1])
+    left, right = st.columns([3, 2])  # room for the whole button label
     left.info(notice, icon=":material/history:")
     right.button("Discard draft, reopen the original", key="discard_draft_button",
                  on_click=_discard_draft)

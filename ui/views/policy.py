@@ -90,9 +90,14 @@ threshold = st.number_input(
 gaps = choices.assign(close=choices["indifferent"] | (choices["action_gap"] <= threshold))
 st.altair_chart(charts.make_action_gap_chart(gaps, state_order=decision_ids, unit=unit),
                 key="gap_chart")
+st.caption("Action gap: how much the best action beats the runner-up for one person in that "
+           "state at that age, in present value at the model start (discounted), so gaps at "
+           "older ages look smaller. The ten closest choices:")
 closest = gaps.nsmallest(10, "action_gap")[
     ["age", "state", "action", "next_best_action", "action_gap", "indifferent"]
 ]
+closest = closest.assign(  # labels, as in the "action" column ("" where there is no choice)
+    next_best_action=closest["next_best_action"].map(lambda a: labels.get(a, a)))
 st.dataframe(closest, hide_index=True, key="closest_table")
 
 # -- values and trace --------------------------------------------------------------------
