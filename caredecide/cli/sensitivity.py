@@ -138,13 +138,20 @@ def run_sensitivity(
     wtp_max: Annotated[
         float | None,
         typer.Option(
-            "--wtp-max", min=0.0, help="Search willingness to pay in [0, X] (default: 2 x model's)."
+            "--wtp-max",
+            min=0.0,
+            help="Search the willingness-to-pay threshold in [0, X] (net-benefit models; "
+            "default: 2 x the model's).",
         ),
     ] = None,
     discount_max: Annotated[
         float,
         typer.Option(
-            "--discount-max", min=0.0, max=0.99, help="Search the discount rate in [0, X]."
+            "--discount-max",
+            min=0.0,
+            max=0.99,
+            help="Search the discount-rate threshold (outcomes and costs together) in [0, X] "
+            "(finite-horizon models).",
         ),
     ] = 0.10,
     out: Annotated[
@@ -182,6 +189,16 @@ def run_sensitivity(
         names = [n.strip() for p in parameters or [] for n in p.split(",") if n.strip()] or None
         finite = loaded.n_cycles() is not None
         steps = ["one-way", "parameter thresholds"]
+        if wtp_max is not None and objective.kind != "net_benefit" and not quiet:
+            stderr.print(
+                f"note: {plain(model)} maximises QALYs; --wtp-max is used only with "
+                "objective = 'net_benefit' (no willingness-to-pay threshold searched)"
+            )
+        if not finite and not quiet:
+            stderr.print(
+                f"note: {plain(model)} has an infinite horizon; no discount-rate threshold "
+                "(the rate is the contraction factor of the recursion)"
+            )
         if objective.kind == "net_benefit":
             steps.append("willingness-to-pay threshold")
         if finite:

@@ -166,3 +166,13 @@ def test_sensitivity_out_that_is_a_file_is_refused_before_the_run(model_file, tm
     result = runner.invoke(app, ["sensitivity", str(model_file), "--out", str(blocked)])
     assert result.exit_code == 2
     assert f"--out {blocked}: cannot write the results" in result.stderr
+
+
+def test_sensitivity_wtp_max_on_a_qaly_model_is_noted(tmp_path):
+    path = tmp_path / "qalys.toml"
+    path.write_text(HAND_MODEL.replace('objective = "net_benefit"', 'objective = "qalys"'))
+    result = runner.invoke(app, ["sensitivity", str(path), "--wtp-max", "50000", "-p", "p"])
+    assert result.exit_code == 0, result.output
+    assert "--wtp-max is used only with objective = 'net_benefit'" in result.stderr
+    assert "Threshold: willingness to pay" not in result.stdout
+    assert "Threshold: discount rate" in result.stdout  # finite horizon: still searched
