@@ -290,3 +290,23 @@ def test_a_draft_of_another_model_is_offered_and_opens_in_a_fresh_session(app):
     assert not fresh.exception, fresh.exception
     assert fresh.session_state[common.SOURCE_KEY] == "template:treat-or-wait"
     assert fresh.session_state[common.TEXT_KEY] == edited
+
+
+@pytest.mark.parametrize("method", ["policy_iteration", "modified_policy_iteration"])
+def test_convergence_view_steps_through_the_other_infinite_horizon_solvers(app, method):
+    app.selectbox(key="open_template_choice").set_value("infinite-horizon")
+    app.button(key="open_template_button").click().run()
+    app.switch_page("views/convergence.py").run()
+    app.radio(key="convergence_method").set_value(method).run()
+    assert not app.exception, app.exception
+    result, _, _ = _library(TEMPLATES["infinite-horizon"], "qalys", 0.0, ".", method=method,
+                            record_history=True, max_iterations=5000)
+    assert app.metric[0].value == str(len(result.history))
+    last = result.history[-1]
+    assert app.metric[1].value == f"{last.residual[0]:.4g}"
+    shown = app.dataframe[0].value
+    labels = {"wait": "Wait", "treat": "Treat"}  # the template's action labels
+    decision = list(result.decision_states)
+    assert shown["action"].tolist() == [
+        labels[result.action_ids[a]] for a, d in zip(last.policy[0], decision, strict=True) if d
+    ]
