@@ -5,6 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from caredecide.compile import compile_model
 from caredecide.errors import ModelError
@@ -270,3 +272,19 @@ def test_default_chunk_size_counts_compile_memory_and_the_infinite_horizon_trace
     data["settings"]["horizon"] = "infinite"
     stationary = load_dict(data)
     assert draw_working_bytes(stationary) == 8 * (DISPLAY_CAP + 1) * n_s * (n_a + 14)
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.integers(1, 40), st.integers(1, 30), st.integers(1, 4), st.integers(0, 2**32 - 1))
+def test_distinct_rows_equals_numpy_unique_by_rows(n, m, n_actions, seed):
+    # The byte-string comparison must give numpy's row-wise result: the same rows in
+    # the same (lexicographic) order, inverse and counts (numpy.unique, axis=0).
+    from caredecide.uncertainty.psa import distinct_rows
+
+    rows = np.random.default_rng(seed).integers(0, n_actions, (n, m)).astype(np.int8)
+    unique, inverse, counts = distinct_rows(rows)
+    expected = np.unique(rows, axis=0, return_inverse=True, return_counts=True)
+    np.testing.assert_array_equal(unique, expected[0])
+    np.testing.assert_array_equal(inverse.ravel(), expected[1].ravel())
+    np.testing.assert_array_equal(counts, expected[2])
+    np.testing.assert_array_equal(unique[inverse.ravel()], rows)

@@ -231,7 +231,7 @@ def _evaluate_chunk(context: PSAContext, values: np.ndarray, compiled, result, s
     ) if len(context.candidate_policies) else np.empty((3, stop - start, 0))
     policy = result.policy.astype(np.int8)
     shares = action_shares(policy, compiled.n_actions).share
-    distinct, counts = np.unique(policy.reshape(len(policy), -1), axis=0, return_counts=True)
+    distinct, _, counts = distinct_rows(policy.reshape(len(policy), -1))
     return ChunkResult(
         start=start,
         stop=stop,
@@ -246,6 +246,20 @@ def _evaluate_chunk(context: PSAContext, values: np.ndarray, compiled, result, s
         success=bool(result.success),
         message=str(result.message),
     )
+
+
+def distinct_rows(rows: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Distinct rows of an (n, m) int8 table of action indices, sorted, with counts.
+
+    Returns ``(unique (U, m), inverse (n,), counts (U,))`` exactly as
+    ``numpy.unique(rows, axis=0, return_inverse=True, return_counts=True)`` would for
+    indices >= 0, but each row is compared as one m-byte string, which is some 30 times
+    faster than numpy's row-wise path for policies of a few hundred cells.
+    """
+    rows = np.ascontiguousarray(rows, dtype=np.int8)
+    keys = rows.view(np.dtype((np.void, rows.shape[1])))[:, 0]
+    unique, inverse, counts = np.unique(keys, return_inverse=True, return_counts=True)
+    return unique.view(np.int8).reshape(len(unique), rows.shape[1]), inverse, counts
 
 
 def serial_map(
@@ -744,7 +758,7 @@ def run_psa(
                 [_solve_draws(context, a, b)[2].policy.astype(np.int8)
                  for a, b in chunk_ranges(pilot_stop, chunk_size)])
         policies = pilot_policies.reshape(pilot_stop, -1).astype(np.int8)
-        distinct, counts = np.unique(policies, axis=0, return_counts=True)
+        distinct, _, counts = distinct_rows(policies)
         order = np.argsort(-counts, kind="stable")[:n_frequent]
         for rank, u in enumerate(order, start=1):
             policy = distinct[u].reshape(pilot_policies.shape[1:])
@@ -813,7 +827,7 @@ def _combine(chunks: list[ChunkResult], context: PSAContext, candidates: list[Ca
     distinct = np.concatenate([c.distinct_policies for c in chunks])
     counts = np.concatenate([c.distinct_counts for c in chunks])
     flat = distinct.reshape(len(distinct), -1)
-    unique, inverse = np.unique(flat, axis=0, return_inverse=True)
+    unique, inverse, _ = distinct_rows(flat)
     totals = np.bincount(np.ravel(inverse), weights=counts, minlength=len(unique)).astype(np.int64)
     order = np.lexsort((np.arange(len(unique)), -totals))  # most frequent first, then by policy
     n_t = base.n_cycles if base.n_cycles is not None else 1
