@@ -288,3 +288,17 @@ def test_distinct_rows_equals_numpy_unique_by_rows(n, m, n_actions, seed):
     np.testing.assert_array_equal(inverse.ravel(), expected[1].ravel())
     np.testing.assert_array_equal(counts, expected[2])
     np.testing.assert_array_equal(unique[inverse.ravel()], rows)
+
+
+def test_refuses_draws_whose_results_cannot_fit_in_memory(model, monkeypatch):
+    # Results kept per draw: parameters, (cost, QALYs, value) of the optimum and of each
+    # candidate, float64, held twice when joined. The check runs before the chunks.
+    import caredecide.uncertainty.psa as psa
+    from caredecide.errors import ModelTooLargeError
+
+    assert psa.kept_bytes(10, 4, 2) == 2 * 10 * 8 * (4 + 3 + 6)
+    assert psa.kept_bytes(10, 4, 2, policy_cells=5) == 2 * 10 * (8 * 13 + 5)
+    monkeypatch.setattr(psa, "default_memory_limit", lambda: 1000)
+    with pytest.raises(ModelTooLargeError, match=r"draws = 2,000: the per-draw results would "
+                                                 r"need about .* GiB .*expected at most"):
+        run_psa(model, 2000, seed=1, chunk_size=100, n_frequent=0)

@@ -62,7 +62,7 @@ import numpy as np
 import pandas as pd
 
 from caredecide.compile import compile_model, default_memory_limit, estimate_compiled_bytes
-from caredecide.errors import ModelError, Problem
+from caredecide.errors import ModelError, ModelTooLargeError, Problem
 from caredecide.evaluate import DISPLAY_CAP, evaluate_policy
 from caredecide.objective import Objective
 from caredecide.solvers import solve
@@ -321,6 +321,16 @@ def default_chunk_size(model, n_draws: int, memory_limit_bytes: int | None) -> i
     budget = _memory_limit(memory_limit_bytes)
     size = int(max(1, min(n_draws, budget // draw_bytes(model))))
     return max(size // BLOCK_SIZE, 1) * BLOCK_SIZE if size >= BLOCK_SIZE else size
+
+
+def kept_bytes(n_draws: int, n_parameters: int, n_candidates: int,
+               policy_cells: int = 0) -> int:
+    """Bytes the per-draw results of a run hold at the end (twice: pieces and joined).
+
+    Per draw: the sampled parameters, cost/QALYs/value of the own optimum and of each
+    candidate (float64), and ``policy_cells`` int8 values when policies are kept.
+    """
+    return 2 * n_draws * (8 * (n_parameters + 3 + 3 * n_candidates) + policy_cells)
 
 
 def _memory_limit(memory_limit_bytes: int | None) -> int:
@@ -767,6 +777,20 @@ def run_psa(
         del pilot_policies, policies
     candidates = _merge_candidates(named)
     context = replace(context, candidate_policies=np.stack([c.policy for c in candidates]))
+    # The per-draw results grow with the draws (the chunks do not): refuse at once a run
+    # whose results cannot fit, rather than after hours of work.
+    cells = candidates[0].policy.size if keep_policies else 0
+    needed = kept_bytes(n_draws, sampler.n_parameters, len(candidates), cells)
+    available = default_memory_limit()
+    if needed > available:
+        raise ModelTooLargeError(
+            f"draws = {n_draws:,}: the per-draw results would need about "
+            f"{needed / 2**30:.1f} GiB ({sampler.n_parameters} parameters and "
+            f"{len(candidates)} candidate policies per draw"
+            f"{', policies kept' if keep_policies else ''}); expected at most "
+            f"{available / 2**30:.1f} GiB (half the available memory). Use fewer draws"
+            f"{' or keep_policies=False' if keep_policies else ''}"
+        )
 
     chunks: list[ChunkResult] = []
     done = 0
