@@ -241,6 +241,15 @@ def run_sensitivity(
                 total = finished.total or 1
                 bar.update(tasks[step], completed=total, total=total)
 
+    for key in ("thresholds", "threshold_willingness_to_pay", "threshold_discount_rate"):
+        frame = results.get(key)
+        if frame is not None and (frame["status"] == "switch").any():
+            open_ = frame[(frame["status"] == "switch") & ~frame["converged"].astype(bool)]
+            if len(open_):  # never silent: the threshold is only the last iterate
+                stderr.print(
+                    f"[bold yellow]warning:[/] {len(open_)} threshold(s) in {key}.csv did not "
+                    "converge (the value shown is the last iterate of Brent's method)"
+                )
     stdout.print(f"Objective: {plain(objective.describe())}; model: {plain(loaded.title)}")
     _print(_one_way_table(results["oneway"], objective.unit))
     changes = _policy_changes(results["oneway"])

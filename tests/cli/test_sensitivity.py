@@ -176,3 +176,22 @@ def test_sensitivity_wtp_max_on_a_qaly_model_is_noted(tmp_path):
     assert "--wtp-max is used only with objective = 'net_benefit'" in result.stderr
     assert "Threshold: willingness to pay" not in result.stdout
     assert "Threshold: discount rate" in result.stdout  # finite horizon: still searched
+
+
+def test_sensitivity_warns_when_a_threshold_search_runs_out_of_steps(model_file, monkeypatch):
+    from caredecide.sensitivity import thresholds
+
+    real = thresholds.brent_roots
+
+    def one_step(*args, **kwargs):  # Brent's method cut to a single step
+        return real(*args, **{**kwargs, "maxiter": 1})
+
+    monkeypatch.setattr(thresholds, "brent_roots", one_step)
+    # A rate row makes the gap non-linear in the parameter, so one step is not enough.
+    text = HAND_MODEL.replace('dead = "p"', 'dead = "1 - exp(-p)"').replace(
+        'dead = "p * hr"', 'dead = "(1 - exp(-p)) * hr"'
+    )
+    model_file.write_text(text)
+    result = runner.invoke(app, ["sensitivity", str(model_file), "-p", "p"])
+    assert result.exit_code == 0, result.output
+    assert "threshold(s) in thresholds.csv did not converge" in result.stderr
