@@ -90,6 +90,12 @@ def run_uncertainty(
                      help="Strategy table (CSV) whose strategies join the candidates "
                           "(default: MODEL.strategies.csv beside the model, if any)."),
     ] = None,
+    rank_correlation: Annotated[
+        list[str] | None,
+        typer.Option("--rank-correlation", metavar="NAME,NAME=R",
+                     help="Target rank correlation of two uncertain parameters, NAME,NAME=R "
+                          "with -1 < R < 1 (Iman-Conover); repeat for more pairs."),
+    ] = None,
     wtp_range: Annotated[
         tuple[float, float] | None,
         typer.Option("--wtp-range", help="Willingness-to-pay range LO HI for the curves."),
@@ -118,6 +124,7 @@ def run_uncertainty(
         stderr.print("[bold red]error:[/] give --workers or --scheduler, not both")
         raise typer.Exit(code=2)
     with user_errors():
+        correlations = _correlation_pairs(rank_correlation or [])
         if out is not None:  # before the run: a folder that cannot be made fails at once
             out.mkdir(parents=True, exist_ok=True)
         from caredecide.modelfile import load_model
@@ -136,6 +143,7 @@ def run_uncertainty(
                 bar.update(task, completed=done)
 
             options = dict(chunk_size=chunk_size, wtp_range=wtp_range, strategies=extra,
+                           rank_correlation=correlations,
                            progress=advance)
             if workers is None and scheduler is None:
                 result = run_psa(loaded, draws, seed, **options)
@@ -173,6 +181,28 @@ def run_uncertainty(
     if out is not None:
         with user_errors():
             _write_outputs(out, result, tables, treat, quiet)
+
+
+def _correlation_pairs(texts: list[str]) -> dict[tuple[str, str], float]:
+    """``["a,b=0.6", ...]`` as ``{("a", "b"): 0.6}``; names are checked by the sampler."""
+    from caredecide.errors import ModelError, Problem
+
+    pairs, problems = {}, []
+    for text in texts:
+        names, _, value = text.partition("=")
+        first, _, second = names.partition(",")
+        try:
+            number = float(value)
+        except ValueError:
+            number = None
+        if not (first.strip() and second.strip() and number is not None):
+            problems.append(Problem("--rank-correlation", f"{text!r}; expected NAME,NAME=R "
+                                    "such as c_stage_2,c_stage_3=0.6"))
+            continue
+        pairs[(first.strip(), second.strip())] = number
+    if problems:
+        raise ModelError(problems)
+    return pairs
 
 
 def _shown_action(result) -> str:

@@ -150,3 +150,30 @@ def test_names_an_unreachable_scheduler_and_a_bad_timeout(model_file, timeout, m
                                  timeout])
     assert result.exit_code == 2
     assert message in result.stderr
+
+
+def test_rank_correlation_reaches_the_draws(model_file, tmp_path):
+    # Iman & Conover 1982 (Commun Stat Simul Comput 11(3):311-334): a normal-score
+    # correlation of 0.8 gives a Spearman correlation near (6/pi) asin(0.4) = 0.79.
+    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "300", "--quiet",
+                                 "--rank-correlation", "u_sick,c_drug=0.8",
+                                 "--out", str(tmp_path)])
+    assert result.exit_code == 0, result.output
+    draws = pd.read_csv(tmp_path / "draws.csv")
+    assert draws["u_sick"].rank().corr(draws["c_drug"].rank()) > 0.7
+
+
+@pytest.mark.parametrize(
+    ("text", "message"),
+    [
+        ("u_sick-c_drug=0.8", "--rank-correlation: 'u_sick-c_drug=0.8'; expected NAME,NAME=R"),
+        ("u_sick,c_drug=high", "--rank-correlation: 'u_sick,c_drug=high'; expected"),
+        ("u_sick,nowhere=0.5", "unknown parameter 'nowhere'"),
+        ("u_sick,c_drug=1.5", "correlation 1.5; expected a number in (-1, 1)"),
+    ],
+)
+def test_refuses_a_bad_rank_correlation(model_file, text, message):
+    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "10", "--quiet",
+                                 "--rank-correlation", text])
+    assert result.exit_code == 2
+    assert message in " ".join(result.stderr.split())
