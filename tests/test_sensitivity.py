@@ -496,3 +496,15 @@ def test_one_way_on_the_demo_equals_solving_each_end_alone():
             compiled, alone = _solve_sets(model, {row.parameter: np.array([getattr(row, end)])})
             expected = alone.value[0, 0] @ compiled.start_distribution
             assert getattr(row, f"value_{end}") == pytest.approx(expected, rel=1e-12)
+
+
+def test_model_without_parameters_is_refused_with_a_clear_message():
+    from pathlib import Path
+
+    from caredecide.modelfile import load_model
+    from caredecide.sensitivity import one_way
+
+    path = Path(__file__).parent / "data" / "no_parameters.toml"
+    with pytest.raises(ModelError, match=r"no_parameters.toml: parameters: the model has no "
+                                         r"parameters to vary"):
+        one_way(load_model(path))

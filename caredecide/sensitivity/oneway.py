@@ -28,6 +28,7 @@ from caredecide.sensitivity.variation import (
     parameter_ranges,
     parameter_sets,
     policy_ages,
+    require_parameters,
     solve_parameter_sets,
     start_values,
 )
@@ -83,6 +84,7 @@ def one_way(
     OneWayResult
     """
     objective = default_objective(model) if objective is None else objective
+    require_parameters(model)
     ranges = parameter_ranges(model, parameters)
     names = list(ranges["parameter"])
     ends = ranges[["low", "high"]].to_numpy()  # (P, 2)

@@ -47,6 +47,7 @@ from caredecide.sensitivity.variation import (
     parameter_ranges,
     parameter_sets,
     policy_ages,
+    require_parameters,
     solve_parameter_sets,
     source_file,
 )
@@ -272,6 +273,7 @@ def parameter_thresholds(
         ``"no switch within the plausible range"`` (or ``"no range (low = high)"``).
     """
     objective = default_objective(model) if objective is None else objective
+    require_parameters(model)
     ranges = parameter_ranges(model, parameters)
     names = list(ranges["parameter"])
 

@@ -115,6 +115,17 @@ def source_file(model: Any) -> str | None:
     return str(path) if path is not None else None
 
 
+def require_parameters(model: Any) -> None:
+    """Refuse a model with nothing to vary, naming the file (one-way and thresholds)."""
+    if not model.base_parameter_values():
+        raise ModelError(
+            Problem(where="parameters", message="the model has no parameters to vary; one-way "
+                    "analysis and parameter thresholds need at least one [parameters.NAME] "
+                    "entry (the willingness-to-pay and discount-rate thresholds do not)"),
+            file=source_file(model),
+        )
+
+
 def parameter_ranges(model: Any, names: Sequence[str] | None = None) -> pd.DataFrame:
     """Base value and plausible range of each parameter.
 
@@ -158,7 +169,8 @@ def parameter_ranges(model: Any, names: Sequence[str] | None = None) -> pd.DataF
                 "rule": consistency_rule(model, name),
             }
         )
-    return pd.DataFrame(rows)
+    columns = ["parameter", "base", "low", "high", "range_from", "varies", "rule"]
+    return pd.DataFrame(rows, columns=columns)
 
 
 # ----------------------------------------------------------------------------- batches
