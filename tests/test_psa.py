@@ -302,3 +302,21 @@ def test_refuses_draws_whose_results_cannot_fit_in_memory(model, monkeypatch):
     with pytest.raises(ModelTooLargeError, match=r"draws = 2,000: the per-draw results would "
                                                  r"need about .* GiB .*expected at most"):
         run_psa(model, 2000, seed=1, chunk_size=100, n_frequent=0)
+
+
+def test_evppi_on_the_first_draws_equals_the_regression_on_them(result):
+    # max_draws bounds the regressions: the first 250 of 400 draws, regressed directly
+    # (Strong et al. 2014 via voi.evppi_regression), give the same figures.
+    from caredecide.uncertainty.voi import evppi_regression
+
+    table = result.evppi(max_draws=250).set_index("parameter")
+    assert (table["draws"] == 250).all()
+    j = result.parameter_names.index("u_sick")
+    direct = evppi_regression(result.candidate_values[:250], result.parameters[:250, j])
+    assert table.loc["u_sick", "evppi"] == direct.value
+    total = float(evpi(result.candidate_values[:250]))
+    assert table.loc["u_sick", "share_of_evpi"] == pytest.approx(direct.value / total)
+    assert (result.evppi(max_draws=None)["draws"] == DRAWS).all()
+    with pytest.raises(ModelError, match=r"max_draws: 10; expected None or a whole number "
+                                         r">= 200"):
+        result.evppi(max_draws=10)

@@ -30,8 +30,10 @@ def _loss_table(frame: pd.DataFrame, unit: str) -> Table:
     return out
 
 
-def _evppi_table(frame: pd.DataFrame, unit: str) -> Table:
-    out = Table(title=f"EVPPI by parameter, regression method ({unit} per person)")
+def _evppi_table(frame: pd.DataFrame, unit: str, n_draws: int) -> Table:
+    used = int(frame["draws"].iloc[0])
+    sample = f"; the first {used:,} of {n_draws:,} draws" if used < n_draws else ""
+    out = Table(title=f"EVPPI by parameter, regression method ({unit} per person{sample})")
     for column in ("parameter", "EVPPI", "MC s.e.", "share of EVPI", "note"):
         out.add_column(column, justify="left" if column in ("parameter", "note") else "right")
     for row in frame.itertuples():
@@ -172,7 +174,7 @@ def run_uncertainty(
     stdout.print(f"{len(result.distinct_counts):,} distinct optimal policies across the draws; "
                  f"the most frequent is optimal in {share:.1%} of them.")
     if len(tables["evppi"]):
-        stdout.print(_evppi_table(tables["evppi"], unit))
+        stdout.print(_evppi_table(tables["evppi"], unit, result.n_draws))
     else:
         stdout.print("EVPPI not computed: it needs at least 200 draws and two candidates.")
     if not result.success:

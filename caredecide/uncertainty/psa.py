@@ -89,6 +89,8 @@ DEFAULT_FREQUENT = 3
 DEFAULT_WTP_POINTS = 41
 CONVERGENCE_POINTS = 200
 """Rows of the thinned running-mean table (geometrically spaced draw counts)."""
+EVPPI_MAX_DRAWS = 100_000
+"""EVPPI regressions use at most this many (the first) draws: memory and time bounded."""
 MIN_EVPPI_DRAWS = 200
 """Fewer draws than this give no EVPPI (the regression smoother needs ~10 per coefficient)."""
 
@@ -551,7 +553,8 @@ class PSAResult:
                                       strategies=self.candidate_names)
 
     # -- EVPPI ---------------------------------------------------------------------------
-    def evppi(self, *, method: str = "auto") -> pd.DataFrame:
+    def evppi(self, *, method: str = "auto",
+              max_draws: int | None = EVPPI_MAX_DRAWS) -> pd.DataFrame:
         """EVPPI of each sampled parameter and each Dirichlet group, ranked.
 
         Regression method of Strong, Oakley & Brennan 2014 (:func:`~caredecide.
@@ -559,18 +562,33 @@ class PSAResult:
         of ``k`` members is regressed on its first ``k - 1`` members (the last is
         determined by them).
 
+        Parameters
+        ----------
+        method : str
+            The smoother (see :mod:`caredecide.uncertainty.voi`).
+        max_draws : int or None
+            Regress on the first ``max_draws`` draws only (default
+            :data:`EVPPI_MAX_DRAWS`; None: all). The draws are independent, so the first
+            ones are a random sample; the cap bounds the regressions' memory (a
+            tensor-product fit holds several (D, 64) or (D, 125) arrays) and time.
+
         Returns
         -------
         pandas.DataFrame
             Columns parameter, members, evppi, mc_se, share_of_evpi (EVPPI / EVPI among
-            candidates), method, edf (largest effective degrees of freedom), message;
-            sorted by EVPPI, largest first. Empty with a note when the draws or
-            candidates are too few.
+            candidates on the same draws), method, edf (largest effective degrees of
+            freedom), draws (used in the regression), message; sorted by EVPPI, largest
+            first. Empty with a note when the draws or candidates are too few.
         """
         columns = ["parameter", "members", "evppi", "mc_se", "share_of_evpi", "method", "edf",
-                   "message"]
-        values = self.candidate_values
-        if values.shape[1] < 2 or self.n_draws < MIN_EVPPI_DRAWS or not self.parameter_names:
+                   "draws", "message"]
+        if max_draws is not None and (isinstance(max_draws, bool) or not isinstance(
+                max_draws, int) or max_draws < MIN_EVPPI_DRAWS):
+            raise ModelError(Problem("max_draws", f"{max_draws!r}; expected None or a whole "
+                                     f"number >= {MIN_EVPPI_DRAWS}"))
+        used = self.n_draws if max_draws is None else min(self.n_draws, max_draws)
+        values = self.candidate_values[:used]
+        if values.shape[1] < 2 or used < MIN_EVPPI_DRAWS or not self.parameter_names:
             return pd.DataFrame(columns=columns)
         total = float(evpi(values))
         grouped = {m for members in self.group_members.values() for m in members}
@@ -580,14 +598,15 @@ class PSAResult:
         for name, members in targets:  # a loop over parameters, each fit vectorized
             index = [self.parameter_names.index(m) for m in members]
             try:
-                fit = evppi_regression(values, self.parameters[:, index], method=method)
+                fit = evppi_regression(values, self.parameters[:used, index], method=method)
             except ModelError as error:
                 rows.append((name, ",".join(members), np.nan, np.nan, np.nan, "", np.nan,
-                             str(error)))
+                             used, str(error)))
                 continue
             rows.append((name, ",".join(members), fit.value, fit.standard_error,
                          fit.value / total if total > 0 else np.nan, fit.method,
-                         float(np.nanmax(fit.effective_degrees_of_freedom)), fit.message))
+                         float(np.nanmax(fit.effective_degrees_of_freedom)), used,
+                         fit.message))
         frame = pd.DataFrame(rows, columns=columns)
         return frame.sort_values("evppi", ascending=False, na_position="last",
                                  kind="stable").reset_index(drop=True)
