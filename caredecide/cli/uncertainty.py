@@ -11,6 +11,7 @@ import pandas as pd
 import typer
 from rich.table import Table
 
+from caredecide.cautions import CAUTION_SHORT
 from caredecide.cli.common import print_caution, progress, stderr, stdout, user_errors
 
 
@@ -112,7 +113,8 @@ def run_uncertainty(
                           "created if missing."),
     ] = None,
     quiet: Annotated[
-        bool, typer.Option("--quiet", help="No caution or progress on stderr.")
+        bool, typer.Option("--quiet", help="No progress or notes on stderr (the caution "
+                                            "is always shown).")
     ] = False,
 ) -> None:
     """Probabilistic sensitivity analysis of the timing policy: acceptability by state and
@@ -121,7 +123,7 @@ def run_uncertainty(
     Draws depend only on the seed, so the results are the same whatever the chunk size
     and whether the run is local or on a Dask cluster.
     """
-    print_caution(quiet)
+    print_caution(False)  # the caution is always shown, whatever --quiet says
     if workers is not None and scheduler is not None:
         stderr.print("[bold red]error:[/] give --workers or --scheduler, not both")
         raise typer.Exit(code=2)
@@ -252,7 +254,8 @@ def _write_outputs(out: Path, result, tables: dict[str, pd.DataFrame], action: s
             frame.to_parquet(out / f"{name}.parquet", index=False)
             written.append(out / f"{name}.parquet")
     summary = out / "summary.json"
-    summary.write_text(json.dumps(result.summary(), indent=2, default=float) + "\n")
+    record = {"caution": CAUTION_SHORT, **result.summary()}
+    summary.write_text(json.dumps(record, indent=2, default=float) + "\n")
     written.append(summary)
     unit = f"({result.objective.unit})"
     charts = {

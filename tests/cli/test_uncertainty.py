@@ -64,11 +64,14 @@ def test_a_strategy_table_beside_the_model_joins_the_candidates(model_file, tmp_
     assert "always treat when sick" in names
 
 
-def test_quiet_prints_no_caution(model_file):
-    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "20", "--quiet"])
+def test_quiet_prints_the_caution_and_nothing_else(model_file, tmp_path):
+    # The caution is always shown (as by solve, compare and check); --quiet drops the notes.
+    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "20", "--quiet",
+                                 "--out", str(tmp_path)])
     assert result.exit_code == 0, result.output
-    assert result.stderr == ""
+    assert " ".join(result.stderr.split()) == " ".join(CAUTION_SHORT.split())
     assert "EVPPI not computed" in result.stdout
+    assert json.loads((tmp_path / "summary.json").read_text())["caution"] == CAUTION_SHORT
 
 
 def test_refuses_workers_and_scheduler_together(model_file):
