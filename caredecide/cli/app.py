@@ -6,6 +6,10 @@ import os
 import signal
 import subprocess
 import sys
+import threading
+import time
+import urllib.request
+import webbrowser
 from pathlib import Path
 from typing import Annotated
 
@@ -26,17 +30,19 @@ def app_script() -> Path:
     return Path(ui.__file__).resolve().parent / "app.py"
 
 
-def streamlit_command(model: Path, port: int, headless: bool) -> tuple[list[str], dict[str, str]]:
+def streamlit_command(model: Path, port: int) -> tuple[list[str], dict[str, str]]:
     """The command line and environment that start the app on ``127.0.0.1:port``.
 
     The model path travels in :data:`MODEL_ENV`; usage statistics are off and the
-    server binds to the loopback address only.
+    server binds to the loopback address only. The server always runs headless: a
+    non-headless first run would stop at an interactive onboarding prompt on the
+    terminal; the browser is opened by :func:`open_browser_when_ready` instead.
     """
     command = [
         sys.executable, "-m", "streamlit", "run", str(app_script()),
         "--server.address=127.0.0.1",
         f"--server.port={port}",
-        f"--server.headless={'true' if headless else 'false'}",
+        "--server.headless=true",
         "--server.maxUploadSize=1",
         "--browser.gatherUsageStats=false",
         "--server.fileWatcherType=none",
@@ -82,10 +88,36 @@ def run_app(
             f"{MAX_MODEL_BYTES} bytes"
         )
         raise typer.Exit(code=2)
-    command, env = streamlit_command(path, port, headless)
+    command, env = streamlit_command(path, port)
+    if not headless:
+        open_browser_when_ready(f"http://127.0.0.1:{port}")
     if not quiet:
         stderr.print(f"Starting the app on http://127.0.0.1:{port} with {path} (Ctrl+C stops it)")
     raise typer.Exit(code=_run_until_stopped(command, env))
+
+
+def open_browser_when_ready(url: str, timeout_seconds: float = 60.0) -> threading.Thread:
+    """Open ``url`` in the user's browser once the server answers its health check.
+
+    Runs in a daemon thread so the server starts at once; gives up silently after
+    ``timeout_seconds`` (the address is printed on stderr anyway).
+    """
+
+    def wait_then_open() -> None:
+        deadline = time.monotonic() + timeout_seconds
+        while time.monotonic() < deadline:
+            try:
+                with urllib.request.urlopen(f"{url}/_stcore/health", timeout=2) as reply:
+                    if reply.status == 200:
+                        webbrowser.open(url)
+                        return
+            except OSError:
+                pass
+            time.sleep(0.5)
+
+    thread = threading.Thread(target=wait_then_open, name="open-browser", daemon=True)
+    thread.start()
+    return thread
 
 
 def _run_until_stopped(command: list[str], env: dict[str, str]) -> int:
