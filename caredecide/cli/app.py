@@ -73,13 +73,15 @@ def run_app(
     headless: Annotated[
         bool, typer.Option("--headless/--open-browser", help="Do not open a browser window.")
     ] = False,
-    quiet: Annotated[bool, typer.Option("--quiet", help="No caution line on stderr.")] = False,
+    quiet: Annotated[
+        bool, typer.Option("--quiet", help="No start-up note on stderr (the caution stays).")
+    ] = False,
 ) -> None:
     """Start the app in a local browser (research use only).
 
     The working model is autosaved to $CAREDECIDE_HOME/drafts (default ~/.caredecide/drafts).
     """
-    print_caution(quiet)
+    print_caution()
     path = model if model is not None else _default_model()
     size = path.stat().st_size
     if size > MAX_MODEL_BYTES:

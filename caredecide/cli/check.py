@@ -119,7 +119,7 @@ def register(app: typer.Typer) -> None:
         """Validate a model file: print a summary, or every problem found (exit code 2)."""
         from caredecide.modelfile import load_model, validate_model
 
-        print_caution(False)  # the caution is always shown, whatever --quiet says
+        print_caution()
         with user_errors():
             model = load_model(model_path)
             warnings = validate_model(model)

@@ -23,10 +23,10 @@ def plain(text: object) -> str:
     return escape(str(text))
 
 
-def print_caution(quiet: bool = False) -> None:
-    """Print the research-use caution on stderr (always, unless ``quiet``)."""
-    if not quiet:
-        stderr.print(f"[bold yellow]{CAUTION_SHORT}[/]")
+def print_caution() -> None:
+    """Print the research-use caution on stderr; every command does, whatever ``--quiet``
+    says (``--quiet`` drops progress and notes only)."""
+    stderr.print(f"[bold yellow]{CAUTION_SHORT}[/]")
 
 
 @contextmanager

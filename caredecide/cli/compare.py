@@ -151,7 +151,7 @@ def compare_command(
     from caredecide.compare import compare_strategies
     from caredecide.modelfile import load_model
 
-    print_caution(False)  # the caution is always shown, whatever --quiet says
+    print_caution()
     with user_errors():
         with stderr.status("Solving and evaluating...", spinner="dots") if not quiet \
                 else nullcontext() as status:

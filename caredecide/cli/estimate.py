@@ -115,7 +115,7 @@ def register(app: typer.Typer) -> None:
         ] = None,
         csv: Annotated[bool, typer.Option("--csv", help="Print the table as CSV.")] = False,
         quiet: Annotated[
-            bool, typer.Option("--quiet", "-q", help="No caution, notes or progress.")
+            bool, typer.Option("--quiet", "-q", help="No notes or progress (the caution stays).")
         ] = False,
     ) -> None:
         """Estimate transition probabilities or rates from patient records (research use only)."""
@@ -130,7 +130,7 @@ def register(app: typer.Typer) -> None:
             write_estimates,
         )
 
-        print_caution(quiet)
+        print_caution()
         if model is not None and out is None:
             stderr.print("[bold red]error:[/] --model needs --out (where to save the result)")
             raise typer.Exit(code=2)

@@ -44,7 +44,7 @@ def report_command(
     from caredecide.report import build_report, record_path_for, tables_dir_for
 
     # The caution is always shown (stderr), whatever --quiet says.
-    print_caution(False)
+    print_caution()
     with user_errors():
         with step_progress("report", 5, quiet) as step:
             record = build_report(

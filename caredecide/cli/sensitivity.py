@@ -159,7 +159,7 @@ def run_sensitivity(
         typer.Option("--out", help="Folder for CSV files and charts (SVG, PNG)."),
     ] = None,
     quiet: Annotated[
-        bool, typer.Option("--quiet", help="No caution or progress on stderr.")
+        bool, typer.Option("--quiet", help="No progress on stderr (the caution stays).")
     ] = False,
 ) -> None:
     """Rank the estimates by how much they move the decision; find decision thresholds.
@@ -167,7 +167,7 @@ def run_sensitivity(
     Parameters in a Dirichlet group move with the other members rescaled proportionally
     (the group sum stays fixed); rows with a 'rest' entry absorb changes automatically.
     """
-    print_caution(quiet)
+    print_caution()
     with user_errors():
         from caredecide.modelfile import load_model
         from caredecide.sensitivity import (

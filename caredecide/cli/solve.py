@@ -134,7 +134,7 @@ def solve_command(
     from caredecide.solvers import SolverError, solve
 
     # The caution is always shown (stderr), whatever --quiet says.
-    print_caution(False)
+    print_caution()
     with user_errors():
         with stderr.status("Solving...", spinner="dots") if not quiet else nullcontext():
             loaded = load_model(model)

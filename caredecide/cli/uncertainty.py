@@ -123,7 +123,7 @@ def run_uncertainty(
     Draws depend only on the seed, so the results are the same whatever the chunk size
     and whether the run is local or on a Dask cluster.
     """
-    print_caution(False)  # the caution is always shown, whatever --quiet says
+    print_caution()
     if workers is not None and scheduler is not None:
         stderr.print("[bold red]error:[/] give --workers or --scheduler, not both")
         raise typer.Exit(code=2)

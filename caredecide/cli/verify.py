@@ -24,7 +24,7 @@ def verify_command(
     from caredecide.modelfile import load_model
     from caredecide.verify import CHECK_IDS, FAIL, verify_model
 
-    print_caution(False)
+    print_caution()
     with user_errors():
         loaded = load_model(model)
         with step_progress("verify", len(CHECK_IDS), quiet) as step:

@@ -10,6 +10,7 @@ import pandas as pd
 import pytest
 from typer.testing import CliRunner
 
+from caredecide.cautions import CAUTION_SHORT
 from caredecide.cli import app
 from caredecide.estimation import estimate_counts, estimate_panel, load_records
 from caredecide.modelfile import load_model
@@ -155,7 +156,8 @@ def test_missing_file_exits_with_its_name():
 def test_quiet_prints_only_the_results():
     result = runner.invoke(app, ["estimate", VISITS, "--patients", PATIENTS, "--csv", "-q"])
     assert result.exit_code == 0
-    assert result.stderr == ""
+    # --quiet leaves only the caution on stderr: it is shown by every command, always.
+    assert result.stderr.strip() == CAUTION_SHORT
     assert result.stdout.startswith("parameter,estimate,se_log,low,high")
 
 
