@@ -5,6 +5,7 @@ from __future__ import annotations
 import sys
 from collections.abc import Iterator
 from contextlib import contextmanager
+from pathlib import Path
 
 import typer
 from rich.console import Console
@@ -21,6 +22,45 @@ def plain(text: object) -> str:
     """``text`` escaped so rich prints it literally (labels, sources and messages may
     contain square brackets)."""
     return escape(str(text))
+
+
+class OutputError(CaredecideError):
+    """The results cannot be written where the user asked (``--out``)."""
+
+
+def _unwritable(out: Path, error: OSError) -> OutputError:
+    return OutputError(
+        f"--out {out}: cannot write the results ({error.strerror or error}); "
+        "expected a folder that can be created and written"
+    )
+
+
+def prepare_output_folder(out: Path) -> None:
+    """Create the ``--out`` folder, or raise an OutputError naming the option."""
+    if out.exists() and not out.is_dir():
+        raise OutputError(f"--out {out} is a file; expected a folder for the results")
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as error:
+        raise _unwritable(out, error) from None
+
+
+@contextmanager
+def writing_to(out: Path) -> Iterator[None]:
+    """Prepare ``out``; turn any failure to write inside the block into an OutputError."""
+    prepare_output_folder(out)
+    try:
+        yield
+    except OSError as error:
+        raise _unwritable(out, error) from None
+
+
+def save_chart(chart, out: Path, stem: str) -> list[Path]:
+    """Save an Altair chart as ``stem.svg`` and ``stem.png`` (twice the pixel density)."""
+    paths = [out / f"{stem}.svg", out / f"{stem}.png"]
+    chart.save(str(paths[0]))
+    chart.save(str(paths[1]), scale_factor=2)
+    return paths
 
 
 def print_caution() -> None:

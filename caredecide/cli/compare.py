@@ -11,7 +11,7 @@ import typer
 from rich.console import Console
 from rich.table import Table
 
-from caredecide.cli.common import plain, print_caution, stderr, stdout, user_errors
+from caredecide.cli.common import plain, print_caution, save_chart, stderr, stdout, user_errors
 
 TABLE_FILE = "strategies.csv"
 FRONTIER_FILE = "frontier.csv"
@@ -81,13 +81,6 @@ def _print_frontier(result) -> None:
                  f"words: column 'structure' of {FRONTIER_FILE} (--out).")
 
 
-def _save_chart(chart, out: Path, stem: str) -> list[Path]:
-    paths = [out / f"{stem}.svg", out / f"{stem}.png"]
-    chart.save(str(paths[0]))
-    chart.save(str(paths[1]), scale_factor=2)
-    return paths
-
-
 def write_outputs(out: Path, result, currency: str = "") -> list[Path]:
     """CSV files (table, frontier, switch points, one trace per strategy) and charts."""
     from ui.charts import make_ce_plane_chart, make_frontier_chart
@@ -106,9 +99,9 @@ def write_outputs(out: Path, result, currency: str = "") -> list[Path]:
         trace.drop(columns="strategy").to_csv(path, index=False)
         written.append(path)
     unit = f"({currency})" if currency else ""  # axis titles as in the app: "... (EUR)"
-    written += _save_chart(make_ce_plane_chart(result.table, currency=unit), out, "ce_plane")
+    written += save_chart(make_ce_plane_chart(result.table, currency=unit), out, "ce_plane")
     if result.frontier is not None:
-        written += _save_chart(make_frontier_chart(result.frontier, currency=unit), out,
+        written += save_chart(make_frontier_chart(result.frontier, currency=unit), out,
                                "frontier")
     return written
 

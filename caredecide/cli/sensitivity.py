@@ -11,8 +11,17 @@ import typer
 from rich.console import Console
 from rich.table import Table
 
-from caredecide.cli.common import plain, print_caution, progress, stderr, stdout, user_errors
-from caredecide.cli.solve import OutputError
+from caredecide.cli.common import (
+    plain,
+    prepare_output_folder,
+    print_caution,
+    progress,
+    save_chart,
+    stderr,
+    stdout,
+    user_errors,
+    writing_to,
+)
 from caredecide.errors import ModelError, Problem
 
 TABLE_WIDTH = 150
@@ -107,13 +116,6 @@ def _threshold_table(summary: pd.DataFrame, title: str) -> Table:
     return out
 
 
-def _save_chart(chart, out: Path, stem: str) -> list[Path]:
-    paths = [out / f"{stem}.svg", out / f"{stem}.png"]
-    chart.save(str(paths[0]))
-    chart.save(str(paths[1]), scale_factor=2)
-    return paths
-
-
 def run_sensitivity(
     model: Annotated[
         Path,
@@ -180,7 +182,7 @@ def run_sensitivity(
         from caredecide.sensitivity.variation import default_objective
 
         if out is not None:  # before the run: a folder that cannot be made fails at once
-            _make_folder(out)
+            prepare_output_folder(out)
         # load_model refuses oversized files (caredecide.modelfile.MAX_MODEL_BYTES).
         loaded = load_model(model)
         if two_way_pair:  # check the pair before the long one-way and threshold runs
@@ -298,19 +300,6 @@ def run_sensitivity(
             _write_outputs(out, results, objective.unit, quiet)
 
 
-def _make_folder(out: Path) -> None:
-    """Create the ``--out`` folder or raise an OutputError naming the option."""
-    if out.exists() and not out.is_dir():
-        raise OutputError(f"--out {out} is a file; expected a folder for the results")
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-    except OSError as error:
-        raise OutputError(
-            f"--out {out}: cannot write the results ({error.strerror or error}); "
-            "expected a folder that can be created and written"
-        ) from None
-
-
 def _check_pair(model, pair: tuple[str, str], file: str) -> None:
     """Refuse a ``--two-way`` pair of one name twice or of unknown names."""
     from caredecide.sensitivity import parameter_ranges
@@ -330,21 +319,15 @@ def _write_outputs(out: Path, results: dict[str, pd.DataFrame], unit: str, quiet
     from ui.charts import make_tornado_chart, make_two_way_chart
 
     written = []
-    try:
-        _make_folder(out)
+    with writing_to(out):
         for name, frame in results.items():
             path = out / f"{name}.csv"
             frame.to_csv(path, index=False)
             written.append(path)
         tornado = make_tornado_chart(results["oneway"], unit=f"({unit})")
-        written += _save_chart(tornado, out, "tornado")
+        written += save_chart(tornado, out, "tornado")
         if "twoway" in results:
-            written += _save_chart(make_two_way_chart(results["twoway"]), out, "twoway")
-    except OSError as error:
-        raise OutputError(
-            f"--out {out}: cannot write the results ({error.strerror or error}); "
-            "expected a folder that can be created and written"
-        ) from None
+            written += save_chart(make_two_way_chart(results["twoway"]), out, "twoway")
     if not quiet:
         stderr.print("Wrote " + ", ".join(str(p) for p in written))
 

@@ -15,13 +15,15 @@ from rich.table import Table
 
 from caredecide import __version__
 from caredecide.cautions import CAUTION_SHORT
-from caredecide.cli.common import plain, print_caution, stderr, stdout, user_errors
-from caredecide.errors import CaredecideError
-
-
-class OutputError(CaredecideError):
-    """The results cannot be written where the user asked."""
-
+from caredecide.cli.common import (
+    OutputError,  # noqa: F401  (re-exported: older imports name it here)
+    plain,
+    print_caution,
+    stderr,
+    stdout,
+    user_errors,
+    writing_to,
+)
 
 POLICY_COLUMNS = ["cycle", "age", "state", "action", "value", "next_best_action", "action_gap"]
 
@@ -155,17 +157,11 @@ def solve_command(
             stderr.print(f"note: {plain(model)} maximises QALYs; --wtp {wtp:g} sets only the "
                          "reported net monetary benefit, not the policy")
         if out is not None:
-            try:
-                out.mkdir(parents=True, exist_ok=True)
+            with writing_to(out):
                 _policy_frame(result).to_csv(out / "policy.csv", index=False)
                 outcome.trace_frame().to_csv(out / "trace.csv", index=False)
                 (out / "summary.json").write_text(json.dumps(summary, indent=2) + "\n",
                                                   encoding="utf-8")
-            except OSError as error:
-                raise OutputError(
-                    f"--out {out}: cannot write the results ({error.strerror or error}); "
-                    "expected a folder that can be created and written"
-                ) from None
             if not quiet:
                 stderr.print(f"Wrote policy.csv, trace.csv and summary.json to {plain(out)}")
         if output_format is OutputFormat.csv:
