@@ -120,8 +120,7 @@ def run_uncertainty(
     """Probabilistic sensitivity analysis of the timing policy: acceptability by state and
     age, expected loss of each candidate policy, acceptability curves, EVPI and EVPPI.
 
-    Draws depend only on the seed, so the results are the same whatever the chunk size
-    and whether the run is local or on a Dask cluster.
+    Same seed, same draws and results, for any chunk size, locally or on a Dask cluster.
     """
     print_caution()
     if workers is not None and scheduler is not None:
