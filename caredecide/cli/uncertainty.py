@@ -12,7 +12,16 @@ import typer
 from rich.table import Table
 
 from caredecide.cautions import CAUTION_SHORT
-from caredecide.cli.common import print_caution, progress, stderr, stdout, user_errors
+from caredecide.cli.common import (
+    prepare_output_folder,
+    print_caution,
+    progress,
+    save_chart,
+    stderr,
+    stdout,
+    user_errors,
+    writing_to,
+)
 
 
 def _number(value: float, digits: str = ",.2f") -> str:
@@ -129,7 +138,7 @@ def run_uncertainty(
     with user_errors():
         correlations = _correlation_pairs(rank_correlation or [])
         if out is not None:  # before the run: a folder that cannot be made fails at once
-            out.mkdir(parents=True, exist_ok=True)
+            prepare_output_folder(out)
         from caredecide.modelfile import load_model
         from caredecide.strategies import read_strategy_table, sibling_table
         from caredecide.uncertainty.psa import run_psa
@@ -182,7 +191,7 @@ def run_uncertainty(
         stderr.print("[bold yellow]warning:[/] the solver reported a problem: "
                      + "; ".join(result.messages))
     if out is not None:
-        with user_errors():
+        with user_errors(), writing_to(out):
             _write_outputs(out, result, tables, treat, quiet)
 
 
@@ -237,7 +246,6 @@ def _write_outputs(out: Path, result, tables: dict[str, pd.DataFrame], action: s
         make_psa_convergence_chart,
     )
 
-    out.mkdir(parents=True, exist_ok=True)
     written = []
     try:
         import pyarrow  # noqa: F401
@@ -267,10 +275,7 @@ def _write_outputs(out: Path, result, tables: dict[str, pd.DataFrame], action: s
     if len(tables["evppi"]):
         charts["evppi"] = make_evppi_chart(tables["evppi"], unit=unit)
     for stem, chart in charts.items():
-        for suffix, options in ((".svg", {}), (".png", {"scale_factor": 2})):
-            path = out / f"{stem}{suffix}"
-            chart.save(str(path), **options)
-            written.append(path)
+        written += save_chart(chart, out, stem)
     if not quiet:
         stderr.print(f"Wrote {len(written)} files to {out}")
 

@@ -118,6 +118,17 @@ def test_refuses_an_out_path_that_is_a_file(model_file, tmp_path):
     assert "Invalid value for '--out'" in result.output
 
 
+def test_refuses_an_out_folder_that_cannot_be_made(model_file, tmp_path):
+    # A folder below a file cannot be created: refused before the run, naming --out.
+    (tmp_path / "taken").write_text("")
+    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "10",
+                                 "--out", str(tmp_path / "taken" / "psa")])
+    assert result.exit_code == 2
+    assert "--out" in result.stderr and "cannot write the results" in " ".join(
+        result.stderr.split())
+    assert "EVPI" not in result.stdout
+
+
 def test_local_dask_workers_give_the_serial_results(model_file, tmp_path):
     # --workers starts a local cluster of worker processes on loopback (127.0.0.1). The
     # first 1,000 draws are the pilot (run in the client); draws 1000-1149 go to Dask.
