@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 
 from caredecide.compile import compile_model, default_memory_limit, estimate_compiled_bytes
-from caredecide.evaluate import PolicyOutcome, evaluate_policy
+from caredecide.evaluate import DISPLAY_CAP, PolicyOutcome, evaluate_policy
 from caredecide.objective import Objective
 from caredecide.solvers import PolicyResult, SolverError, solve
 
@@ -26,10 +26,42 @@ OUTCOME_FIELDS = ("totals", "trace")
 """``"totals"``: a DataFrame of per-draw totals; ``"trace"``: (D, T + 1, S) cohort trace."""
 DEFAULT_KEEP = ("policy", "value", "action_gap", "indifferent", "totals")
 
-WORKING_MEMORY_FACTOR = 3
-"""Compiling and solving a chunk holds about this many copies of its compiled arrays
-(the arrays, compile intermediates, and per-cycle solver buffers) - common practice
-headroom, measured by benchmarks/bench_solver.py."""
+COMPILE_MEMORY_FACTOR = 6
+"""Peak working memory of compiling a chunk, in copies of its compiled arrays. Measured
+(peak resident memory of a fresh process, ``python benchmarks/bench_psa.py --memory``):
+5.3 for demo_progressive and 5.9 for lesion_surveillance, whose rate rows go through
+the batched matrix exponential, and 2.0 for demo_counts_table (no rate rows). A factor of 3,
+used before, let a chunk overrun its budget by two thirds."""
+RESULT_ARRAYS_PER_CELL = 14
+"""Float64 values per (cycle, state) that one draw's solver results and policy
+evaluations hold at once (values, Q-values per action, gaps, policy, trace, flows and
+intermediates) beyond the compiled arrays - measured with benchmarks/bench_psa.py."""
+
+
+def draw_working_bytes(model) -> int:
+    """Bytes of working memory one draw needs in a chunk beyond compiling it.
+
+    The solver's per-cycle results and the cohort traces of the policy evaluations
+    grow with the horizon even when the compiled arrays do not (a model without age
+    dependence). An infinite horizon has no cycles to count, but its evaluation keeps
+    a display trace of up to ``DISPLAY_CAP + 1`` cycles (:mod:`caredecide.evaluate`),
+    so that length is counted.
+    """
+    cycles = model.n_cycles()
+    n_t = (DISPLAY_CAP if cycles is None else cycles) + 1
+    cells = n_t * len(model.states) * (len(model.actions) + RESULT_ARRAYS_PER_CELL)
+    return 8 * cells
+
+
+def draw_bytes(model) -> int:
+    """Working memory of one draw in a chunk (bytes): compile peak plus results.
+
+    ``COMPILE_MEMORY_FACTOR`` copies of the compiled arrays (the compile peak, which the
+    solver's buffers stay below) plus :func:`draw_working_bytes`; the sum errs on the
+    safe side, as the compile intermediates are freed before the solver runs.
+    """
+    return COMPILE_MEMORY_FACTOR * estimate_compiled_bytes(model, 1) + draw_working_bytes(model)
+
 
 ChunkReducer = Callable[[int, int, PolicyResult, PolicyOutcome | None], object]
 
@@ -106,11 +138,10 @@ def slice_parameter_sets(parameter_sets: object, start: int, stop: int) -> objec
 def chunk_size_for(model, n_draws: int, memory_limit_bytes: int | None) -> int:
     """Draws per chunk so that a chunk's working memory fits ``memory_limit_bytes``.
 
-    Working memory per draw is taken as :data:`WORKING_MEMORY_FACTOR` times the compiled
-    arrays of one draw (``estimate_compiled_bytes``).
+    Working memory per draw is :func:`draw_bytes` (compile peak plus solver results).
     """
     budget = default_memory_limit() if memory_limit_bytes is None else int(memory_limit_bytes)
-    per_draw = WORKING_MEMORY_FACTOR * estimate_compiled_bytes(model, 1)
+    per_draw = draw_bytes(model)
     return int(max(1, min(n_draws, budget // max(per_draw, 1))))
 
 

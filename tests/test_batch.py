@@ -6,7 +6,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from caredecide.batch import chunk_size_for, solve_batch
+from caredecide.batch import chunk_size_for, draw_bytes, draw_working_bytes, solve_batch
 from caredecide.compile import compile_model, estimate_compiled_bytes
 from caredecide.evaluate import evaluate_policy
 from caredecide.modelfile import load_model
@@ -61,8 +61,12 @@ def test_base_case_uses_the_model_objective(model):
 
 
 def test_chunk_size_follows_the_memory_budget(model):
-    per_draw = 3 * estimate_compiled_bytes(model, 1)
+    # One estimate for every batch: the compile peak (6 copies of the compiled arrays,
+    # measured by benchmarks/bench_psa.py --memory) plus the per-cycle solver results.
+    per_draw = draw_bytes(model)
+    assert per_draw == 6 * estimate_compiled_bytes(model, 1) + draw_working_bytes(model)
     assert chunk_size_for(model, 10_000, 10 * per_draw) == 10
+    assert chunk_size_for(model, 10_000, 10 * per_draw - 1) == 9
     assert chunk_size_for(model, 10_000, 1) == 1  # never below one draw
     assert chunk_size_for(model, 5, 10**12) == 5  # never above the number of draws
 

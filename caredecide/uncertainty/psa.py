@@ -61,9 +61,15 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 import pandas as pd
 
-from caredecide.compile import compile_model, default_memory_limit, estimate_compiled_bytes
+from caredecide.batch import (  # noqa: F401  (the one memory estimate, re-exported)
+    COMPILE_MEMORY_FACTOR,
+    RESULT_ARRAYS_PER_CELL,
+    draw_bytes,
+    draw_working_bytes,
+)
+from caredecide.compile import compile_model, default_memory_limit
 from caredecide.errors import ModelError, ModelTooLargeError, Problem
-from caredecide.evaluate import DISPLAY_CAP, evaluate_policy
+from caredecide.evaluate import evaluate_policy
 from caredecide.objective import Objective
 from caredecide.solvers import solve
 from caredecide.uncertainty.acceptability import (
@@ -278,44 +284,6 @@ ChunkMap = Callable[[PSAContext, Sequence[tuple[int, int]]], Iterable[ChunkResul
 def chunk_ranges(n_draws: int, chunk_size: int) -> list[tuple[int, int]]:
     """``[(start, stop), ...]`` covering ``0:n_draws`` in chunks of ``chunk_size``."""
     return [(s, min(s + chunk_size, n_draws)) for s in range(0, n_draws, chunk_size)]
-
-
-COMPILE_MEMORY_FACTOR = 6
-"""Peak working memory of compiling a chunk, in copies of its compiled arrays. Measured
-(peak resident memory of a fresh process, ``python benchmarks/bench_psa.py --memory``):
-5.3 for demo_progressive and 5.9 for lesion_surveillance, whose rate rows go through
-the batched matrix exponential, and 2.0 for demo_counts_table (no rate rows). The batch
-driver's factor of 3 (``caredecide.batch.WORKING_MEMORY_FACTOR``) let a chunk overrun its
-budget by two thirds."""
-RESULT_ARRAYS_PER_CELL = 14
-"""Float64 values per (cycle, state) that one draw's solver results and policy
-evaluations hold at once (values, Q-values per action, gaps, policy, trace, flows and
-intermediates) beyond the compiled arrays - measured with benchmarks/bench_psa.py."""
-
-
-def draw_working_bytes(model) -> int:
-    """Bytes of working memory one draw needs in a chunk beyond compiling it.
-
-    The solver's per-cycle results and the cohort traces of the policy evaluations
-    grow with the horizon even when the compiled arrays do not (a model without age
-    dependence). An infinite horizon has no cycles to count, but its evaluation keeps
-    a display trace of up to ``DISPLAY_CAP + 1`` cycles (:mod:`caredecide.evaluate`),
-    so that length is counted.
-    """
-    cycles = model.n_cycles()
-    n_t = (DISPLAY_CAP if cycles is None else cycles) + 1
-    cells = n_t * len(model.states) * (len(model.actions) + RESULT_ARRAYS_PER_CELL)
-    return 8 * cells
-
-
-def draw_bytes(model) -> int:
-    """Working memory of one draw in a chunk (bytes): compile peak plus results.
-
-    ``COMPILE_MEMORY_FACTOR`` copies of the compiled arrays (the compile peak, which the
-    solver's buffers stay below) plus :func:`draw_working_bytes`; the sum errs on the
-    safe side, as the compile intermediates are freed before the solver runs.
-    """
-    return COMPILE_MEMORY_FACTOR * estimate_compiled_bytes(model, 1) + draw_working_bytes(model)
 
 
 def default_chunk_size(model, n_draws: int, memory_limit_bytes: int | None) -> int:
