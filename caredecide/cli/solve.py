@@ -16,7 +16,6 @@ from rich.table import Table
 from caredecide import __version__
 from caredecide.cautions import CAUTION_SHORT
 from caredecide.cli.common import (
-    OutputError,  # noqa: F401  (re-exported: older imports name it here)
     plain,
     print_caution,
     stderr,
