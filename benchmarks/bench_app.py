@@ -85,18 +85,26 @@ def median(times: list[tuple[float, float]], which: int = 0) -> float:
 
 
 def summary(name: str, times: list[tuple[float, float]]) -> str:
-    return (f"{name:<46} wall median {median(times) * 1e3:7.1f} ms, "
-            f"max {max(t[0] for t in times) * 1e3:7.1f} ms;  CPU median "
-            f"{median(times, 1) * 1e3:7.1f} ms  (n={len(times)})")
+    return (
+        f"{name:<46} wall median {median(times) * 1e3:7.1f} ms, "
+        f"max {max(t[0] for t in times) * 1e3:7.1f} ms;  CPU median "
+        f"{median(times, 1) * 1e3:7.1f} ms  (n={len(times)})"
+    )
 
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--repeats", type=int, default=9)
-    parser.add_argument("--parameter", default="c_drug_year",
-                        help="parameter of the demo model whose value is edited")
-    parser.add_argument("--profile", action="store_true",
-                        help="print a cProfile of one more edit re-render (not counted)")
+    parser.add_argument(
+        "--parameter",
+        default="c_drug_year",
+        help="parameter of the demo model whose value is edited",
+    )
+    parser.add_argument(
+        "--profile",
+        action="store_true",
+        help="print a cProfile of one more edit re-render (not counted)",
+    )
     args = parser.parse_args()
 
     print(f"{CAUTION_SHORT} (SYNTHETIC demo model)", file=sys.stderr)
@@ -134,13 +142,20 @@ def main() -> None:
         check(at)
         value = base_value * (1.0 + 0.01 * (i + 1))  # a new value each time: a cache miss
         key = f"table_parameters_{at.session_state[REVISION_KEY]}"
-        at.session_state[key] = {"edited_rows": {row: {"value": value}}, "added_rows": [],
-                                 "deleted_rows": []}
+        at.session_state[key] = {
+            "edited_rows": {row: {"value": value}},
+            "added_rows": [],
+            "deleted_rows": [],
+        }
         edit = timed(at.run)
         check(at)
         edited = at.session_state[TEXT_KEY]
-        if loads_model(edited, file="bench.toml", base_dir=base_dir).parameters[
-                args.parameter].value != value:
+        if (
+            loads_model(edited, file="bench.toml", base_dir=base_dir)
+            .parameters[args.parameter]
+            .value
+            != value
+        ):
             sys.exit("the edit did not reach the working model")
         at.switch_page("views/policy.py")
         if profiler is not None and i == args.repeats:
@@ -158,19 +173,24 @@ def main() -> None:
             render_times.append(render)
             hit_times.append(hit)
             # The reference right beside the app's run, so both see the same machine load.
-            library_times += [timed(lambda t=edited: library_alone(t, base_dir, kind, wtp))
-                              for _ in range(2)]
+            library_times += [
+                timed(lambda t=edited: library_alone(t, base_dir, kind, wtp)) for _ in range(2)
+            ]
 
     load_after = os.getloadavg()
 
     render, render_cpu = median(render_times), median(render_times, 1)
     edit = median(edit_times)
-    print(f"App benchmark on the SYNTHETIC demo model ({demo_model_path().name}); "
-          f"edit: parameter {args.parameter} (base {base_value:g}) +1%, +2%, ...")
-    print(f"Machine: {os.cpu_count()} cores; load average {load_before[0]:.2f} before, "
-          f"{load_after[0]:.2f} after: other processes share this machine, so each time is "
-          f"repeated and the MEDIAN is reported (max beside it). CPU time (this process, all "
-          f"threads) is beside it: it is what the work costs on an idle core.")
+    print(
+        f"App benchmark on the SYNTHETIC demo model ({demo_model_path().name}); "
+        f"edit: parameter {args.parameter} (base {base_value:g}) +1%, +2%, ..."
+    )
+    print(
+        f"Machine: {os.cpu_count()} cores; load average {load_before[0]:.2f} before, "
+        f"{load_after[0]:.2f} after: other processes share this machine, so each time is "
+        f"repeated and the MEDIAN is reported (max beside it). CPU time (this process, all "
+        f"threads) is beside it: it is what the work costs on an idle core."
+    )
     print(f"first app run (model view, cold)               wall {first * 1e3:7.1f} ms")
     print(f"first policy view (cold: imports, solve)       wall {first_policy * 1e3:7.1f} ms")
     print(summary("edit applied in the model view", edit_times))
@@ -186,24 +206,28 @@ def main() -> None:
         (f"(edit applied + re-render) / {TARGET_SECONDS:g} s target", None, None),
     ):
         if top is None:
-            pair = [(median(edit_times, k) + median(render_times, k)) / TARGET_SECONDS
-                    for k in (0, 1)]
+            pair = [
+                (median(edit_times, k) + median(render_times, k)) / TARGET_SECONDS for k in (0, 1)
+            ]
         elif bottom is None:
             pair = [median(top, k) / TARGET_SECONDS for k in (0, 1)]
         else:
             pair = [median(top, k) / median(bottom, k) for k in (0, 1)]
         print(f"{name:<40} {pair[0]:7.3f} {pair[1]:7.3f}")
     verdict = "MET" if render < TARGET_SECONDS else "NOT MET"
-    print(f"Target 'edit re-render of the policy view under {TARGET_SECONDS:g} s' on this machine "
-          f"under its present load: {verdict} (wall median {render:.3f} s, max "
-          f"{max(t[0] for t in render_times):.3f} s; CPU median {render_cpu:.3f} s). "
-          f"Edit applied in the model view plus the re-render: wall median "
-          f"{edit + render:.3f} s.")
+    print(
+        f"Target 'edit re-render of the policy view under {TARGET_SECONDS:g} s' on this machine "
+        f"under its present load: {verdict} (wall median {render:.3f} s, max "
+        f"{max(t[0] for t in render_times):.3f} s; CPU median {render_cpu:.3f} s). "
+        f"Edit applied in the model view plus the re-render: wall median "
+        f"{edit + render:.3f} s."
+    )
     if profiler is not None:
         stream = io.StringIO()
         # Our code and the chart/table conversion it triggers (the rest is Streamlit's own).
         pstats.Stats(profiler, stream=stream).sort_stats("cumulative").print_stats(
-            r"caredecide|/ui/|altair|vega_charts|dataframe_util", 40)
+            r"caredecide|/ui/|altair|vega_charts|dataframe_util", 40
+        )
         print(stream.getvalue())
 
 

@@ -169,8 +169,9 @@ def child_psa(draws: int, seed: int, workers: int | None, which: str = "demo") -
         "evpi_se": outputs["evpi"]["mc_se"],
         "peak_rss_mib": _peak_mib(),
         "worker_peak_rss_mib": max(worker_peaks.values(), default=0.0),
-        "kept_bytes": int(result.parameters.nbytes + result.optimal.nbytes
-                          + result.candidate_totals.nbytes),
+        "kept_bytes": int(
+            result.parameters.nbytes + result.optimal.nbytes + result.candidate_totals.nbytes
+        ),
     }
 
 
@@ -197,8 +198,12 @@ def child_solver(draws: int, seed: int) -> dict:
         t3 = time.perf_counter()
         del compiled  # as in the PSA: one chunk's arrays alive at a time
         sample_s, compile_s, solve_s = sample_s + t1 - t0, compile_s + t2 - t1, solve_s + t3 - t2
-    return {"sample_s": sample_s, "compile_s": compile_s, "solve_s": solve_s,
-            "peak_rss_mib": _peak_mib()}
+    return {
+        "sample_s": sample_s,
+        "compile_s": compile_s,
+        "solve_s": solve_s,
+        "peak_rss_mib": _peak_mib(),
+    }
 
 
 def child_memory(draws: int, path: str) -> dict:
@@ -213,22 +218,39 @@ def child_memory(draws: int, path: str) -> dict:
 
     model = load_model(path)
     n_t = model.n_cycles() or 1
-    context = PSAContext(model=model, objective=Objective.from_settings(model.settings),
-                         sampler=ParameterSampler.from_model(model), seed=1,
-                         candidate_policies=np.zeros((5, n_t, len(model.states)), np.int8))
+    context = PSAContext(
+        model=model,
+        objective=Objective.from_settings(model.settings),
+        sampler=ParameterSampler.from_model(model),
+        seed=1,
+        candidate_policies=np.zeros((5, n_t, len(model.states)), np.int8),
+    )
     solve_chunk(context, 0, 10)  # imports and caches warm
     before = _peak_mib()
     solve_chunk(context, 0, draws)
     per_draw = (_peak_mib() - before) * 2**20 / draws
     arrays = estimate_compiled_bytes(model, 1)
-    return {"model": Path(path).stem, "measured_per_draw": per_draw, "arrays_per_draw": arrays,
-            "estimate_per_draw": draw_bytes(model)}
+    return {
+        "model": Path(path).stem,
+        "measured_per_draw": per_draw,
+        "arrays_per_draw": arrays,
+        "estimate_per_draw": draw_bytes(model),
+    }
 
 
-def _run(kind: str, draws: int, seed: int, workers: int | None = None,
-         which: str = "demo") -> dict:
-    command = [sys.executable, __file__, "--child", kind, "--draws", str(draws), "--seed",
-               str(seed), "--model", which]
+def _run(kind: str, draws: int, seed: int, workers: int | None = None, which: str = "demo") -> dict:
+    command = [
+        sys.executable,
+        __file__,
+        "--child",
+        kind,
+        "--draws",
+        str(draws),
+        "--seed",
+        str(seed),
+        "--model",
+        which,
+    ]
     if kind == "memory":
         command[-2] = "--model-path"
     if workers:
@@ -241,17 +263,32 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--draws", type=int, default=10_000)
     parser.add_argument("--seed", type=int, default=1)
-    parser.add_argument("--million", action="store_true",
-                        help="also run 1,000,000 draws and report peak memory (slow)")
-    parser.add_argument("--workers", type=int, default=None,
-                        help="run the --million case on a local Dask cluster of K processes")
-    parser.add_argument("--million-model", choices=("demo", "light"), default="demo",
-                        help="model of the --million run (light: small synthetic model)")
-    parser.add_argument("--model", choices=("demo", "light"), default="demo",
-                        help=argparse.SUPPRESS)
-    parser.add_argument("--memory", action="store_true",
-                        help="measure the peak memory per draw of a 3,000-draw chunk of each "
-                             "bundled model against the chunk-size estimate, then stop")
+    parser.add_argument(
+        "--million",
+        action="store_true",
+        help="also run 1,000,000 draws and report peak memory (slow)",
+    )
+    parser.add_argument(
+        "--workers",
+        type=int,
+        default=None,
+        help="run the --million case on a local Dask cluster of K processes",
+    )
+    parser.add_argument(
+        "--million-model",
+        choices=("demo", "light"),
+        default="demo",
+        help="model of the --million run (light: small synthetic model)",
+    )
+    parser.add_argument(
+        "--model", choices=("demo", "light"), default="demo", help=argparse.SUPPRESS
+    )
+    parser.add_argument(
+        "--memory",
+        action="store_true",
+        help="measure the peak memory per draw of a 3,000-draw chunk of each "
+        "bundled model against the chunk-size estimate, then stop",
+    )
     parser.add_argument("--model-path", help=argparse.SUPPRESS)
     parser.add_argument("--child", choices=("psa", "solver", "memory"), help=argparse.SUPPRESS)
     args = parser.parse_args()
@@ -259,15 +296,19 @@ def main() -> None:
         print(json.dumps(child_memory(args.draws, args.model_path)))
         return
     if args.memory:
-        print("Peak working memory per draw of one 3,000-draw chunk (compile, solve, evaluate "
-              "5 candidates), fresh process each (research use only):")
+        print(
+            "Peak working memory per draw of one 3,000-draw chunk (compile, solve, evaluate "
+            "5 candidates), fresh process each (research use only):"
+        )
         for path in sorted((ROOT / "synthetic_cohort" / "models").glob("*.toml")):
             m = _run("memory", 3000, args.seed, which=str(path))
-            print(f"  {m['model']}: measured {m['measured_per_draw'] / 1024:.1f} KiB = "
-                  f"{m['measured_per_draw'] / m['arrays_per_draw']:.1f} x the compiled arrays "
-                  f"({m['arrays_per_draw'] / 1024:.1f} KiB); estimate "
-                  f"{m['estimate_per_draw'] / 1024:.1f} KiB "
-                  f"(measured / estimate {m['measured_per_draw'] / m['estimate_per_draw']:.2f})")
+            print(
+                f"  {m['model']}: measured {m['measured_per_draw'] / 1024:.1f} KiB = "
+                f"{m['measured_per_draw'] / m['arrays_per_draw']:.1f} x the compiled arrays "
+                f"({m['arrays_per_draw'] / 1024:.1f} KiB); estimate "
+                f"{m['estimate_per_draw'] / 1024:.1f} KiB "
+                f"(measured / estimate {m['measured_per_draw'] / m['estimate_per_draw']:.2f})"
+            )
         return
     if args.child == "psa":
         print(json.dumps(child_psa(args.draws, args.seed, args.workers, args.model)))
@@ -280,27 +321,40 @@ def main() -> None:
     reference = _run("solver", args.draws, args.seed)
     psa = _run("psa", args.draws, args.seed)
     core = reference["compile_s"] + reference["solve_s"]
-    print(f"  chunk size from the default memory budget ({psa['budget_mib']:.0f} MiB of working "
-          f"memory per chunk): {psa['chunk_size']:,} draws; {psa['candidates']} candidate "
-          "policies")
-    print(f"  reference, solver alone: sampling {reference['sample_s']:.2f} s, compile "
-          f"{reference['compile_s']:.2f} s, solve {reference['solve_s']:.2f} s "
-          f"(peak {reference['peak_rss_mib']:.0f} MiB)")
-    print(f"  PSA end to end: {psa['total_s']:.2f} s = draws solved and evaluated "
-          f"{psa['solve_and_evaluate_s']:.2f} s + outputs {psa['outputs_s']:.2f} s "
-          f"(peak {psa['peak_rss_mib']:.0f} MiB)")
-    print(f"  ratio PSA / (compile + solve): {psa['total_s'] / core:.2f}x; "
-          f"PSA / solve alone: {psa['total_s'] / reference['solve_s']:.1f}x")
+    print(
+        f"  chunk size from the default memory budget ({psa['budget_mib']:.0f} MiB of working "
+        f"memory per chunk): {psa['chunk_size']:,} draws; {psa['candidates']} candidate "
+        "policies"
+    )
+    print(
+        f"  reference, solver alone: sampling {reference['sample_s']:.2f} s, compile "
+        f"{reference['compile_s']:.2f} s, solve {reference['solve_s']:.2f} s "
+        f"(peak {reference['peak_rss_mib']:.0f} MiB)"
+    )
+    print(
+        f"  PSA end to end: {psa['total_s']:.2f} s = draws solved and evaluated "
+        f"{psa['solve_and_evaluate_s']:.2f} s + outputs {psa['outputs_s']:.2f} s "
+        f"(peak {psa['peak_rss_mib']:.0f} MiB)"
+    )
+    print(
+        f"  ratio PSA / (compile + solve): {psa['total_s'] / core:.2f}x; "
+        f"PSA / solve alone: {psa['total_s'] / reference['solve_s']:.1f}x"
+    )
     print(f"  EVPI of the timing decision {psa['evpi']:,.2f} (MC s.e. {psa['evpi_se']:,.2f})")
     if args.million:
         big = _run("psa", 1_000_000, args.seed, args.workers, args.million_model)
-        print(f"  1,000,000 draws of the {args.million_model} model"
-              f"{f' on {args.workers} Dask workers' if args.workers else ''}: "
-              f"{big['total_s']:.0f} s (outputs {big['outputs_s']:.0f} s), chunk "
-              f"{big['chunk_size']:,}, kept per-draw results {big['kept_bytes'] / 2**20:.0f} MiB, "
-              f"peak {big['peak_rss_mib']:.0f} MiB of this process"
-              + (f", largest worker peak {big['worker_peak_rss_mib']:.0f} MiB"
-                 if args.workers else ""))
+        print(
+            f"  1,000,000 draws of the {args.million_model} model"
+            f"{f' on {args.workers} Dask workers' if args.workers else ''}: "
+            f"{big['total_s']:.0f} s (outputs {big['outputs_s']:.0f} s), chunk "
+            f"{big['chunk_size']:,}, kept per-draw results {big['kept_bytes'] / 2**20:.0f} MiB, "
+            f"peak {big['peak_rss_mib']:.0f} MiB of this process"
+            + (
+                f", largest worker peak {big['worker_peak_rss_mib']:.0f} MiB"
+                if args.workers
+                else ""
+            )
+        )
 
 
 if __name__ == "__main__":

@@ -19,8 +19,15 @@ from caredecide.evaluate import DISPLAY_CAP, PolicyOutcome, evaluate_policy
 from caredecide.objective import Objective
 from caredecide.solvers import PolicyResult, SolverError, solve
 
-RESULT_FIELDS = ("policy", "value", "q_values", "action_gap", "next_best_action",
-                 "indifferent", "error_bound")
+RESULT_FIELDS = (
+    "policy",
+    "value",
+    "q_values",
+    "action_gap",
+    "next_best_action",
+    "indifferent",
+    "error_bound",
+)
 """Fields of :class:`PolicyResult` that ``keep`` may name (concatenated over draws)."""
 OUTCOME_FIELDS = ("totals", "trace")
 """``"totals"``: a DataFrame of per-draw totals; ``"trace"``: (D, T + 1, S) cohort trace."""
@@ -119,11 +126,15 @@ def count_parameter_sets(parameter_sets: object) -> int:
     if isinstance(parameter_sets, Mapping):
         lengths = {np.atleast_1d(np.asarray(v)).shape[0] for v in parameter_sets.values()}
         if len(lengths) > 1:
-            raise SolverError(f"parameter sets have different lengths {sorted(lengths)}; "
-                              "expected one length for every parameter")
+            raise SolverError(
+                f"parameter sets have different lengths {sorted(lengths)}; "
+                "expected one length for every parameter"
+            )
         return lengths.pop() if lengths else 1
-    raise SolverError(f"parameter_sets must be None, a mapping of arrays or a DataFrame; got "
-                      f"{type(parameter_sets).__name__}")
+    raise SolverError(
+        f"parameter_sets must be None, a mapping of arrays or a DataFrame; got "
+        f"{type(parameter_sets).__name__}"
+    )
 
 
 def slice_parameter_sets(parameter_sets: object, start: int, stop: int) -> object:
@@ -187,8 +198,10 @@ def solve_batch(
     """
     unknown = [k for k in keep if k not in RESULT_FIELDS + OUTCOME_FIELDS]
     if unknown:
-        raise SolverError(f"keep names unknown field(s) {unknown}; expected any of "
-                          f"{RESULT_FIELDS + OUTCOME_FIELDS}")
+        raise SolverError(
+            f"keep names unknown field(s) {unknown}; expected any of "
+            f"{RESULT_FIELDS + OUTCOME_FIELDS}"
+        )
     if objective is None:
         objective = Objective.from_settings(model.settings)
     n_draws = count_parameter_sets(parameter_sets)
@@ -203,8 +216,11 @@ def solve_batch(
     success, result = True, None
     for start in range(0, n_draws, chunk_size):
         stop = min(start + chunk_size, n_draws)
-        compiled = compile_model(model, slice_parameter_sets(parameter_sets, start, stop),
-                                 memory_limit_bytes=memory_limit_bytes)
+        compiled = compile_model(
+            model,
+            slice_parameter_sets(parameter_sets, start, stop),
+            memory_limit_bytes=memory_limit_bytes,
+        )
         result = solve(compiled, objective, **solve_options)
         outcome = evaluate_policy(compiled, result.policy, objective) if needs_outcome else None
         del compiled

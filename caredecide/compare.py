@@ -105,8 +105,9 @@ def _strategy_list(compiled, model, strategies, builtins, notes: list[str]) -> l
     if strategies is None:
         table = sibling_table(getattr(model, "source_path", None))
         if table is not None:
-            notes.append(f"strategy table {table} found beside the model: its strategies "
-                         "are included")
+            notes.append(
+                f"strategy table {table} found beside the model: its strategies are included"
+            )
             chosen += read_strategy_table(table)
         return chosen
     for item in [strategies] if single else strategies:
@@ -121,9 +122,14 @@ def _check_unique(resolved: Sequence[StrategyPolicy]) -> None:
         name = item.strategy.name
         if name in seen:
             where = [x.strategy.source or "built-in" for x in (seen[name], item)]
-            problems.append(Problem(f"strategies.{name}", f"strategy name {name!r} is used "
-                                    f"twice ({where[0]}; {where[1]}); expected unique names",
-                                    item.strategy.source or None))
+            problems.append(
+                Problem(
+                    f"strategies.{name}",
+                    f"strategy name {name!r} is used "
+                    f"twice ({where[0]}; {where[1]}); expected unique names",
+                    item.strategy.source or None,
+                )
+            )
         seen[name] = item
     if problems:
         raise ModelError(problems)
@@ -179,8 +185,16 @@ def compare_strategies(
     """
     model = _load(model)
     try:
-        return _compare_loaded(model, strategies, wtp, wtp_range, grid=grid, builtins=builtins,
-                               from_ages=from_ages, progress=progress)
+        return _compare_loaded(
+            model,
+            strategies,
+            wtp,
+            wtp_range,
+            grid=grid,
+            builtins=builtins,
+            from_ages=from_ages,
+            progress=progress,
+        )
     except ModelError as error:
         # A problem with no file of its own (an option, a built-in strategy) concerns this
         # model: name its file rather than a placeholder.
@@ -190,8 +204,9 @@ def compare_strategies(
         raise ModelError(error.problems, file=str(source)) from None
 
 
-def _compare_loaded(model, strategies, wtp, wtp_range, *, grid, builtins, from_ages,
-                    progress) -> ComparisonResult:
+def _compare_loaded(
+    model, strategies, wtp, wtp_range, *, grid, builtins, from_ages, progress
+) -> ComparisonResult:
     """:func:`compare_strategies` for a loaded model."""
     from caredecide.compile import compile_model
     from caredecide.solvers import solve
@@ -200,18 +215,27 @@ def _compare_loaded(model, strategies, wtp, wtp_range, *, grid, builtins, from_a
     if wtp is None:
         wtp = float(model.settings.willingness_to_pay)
     if not (np.isfinite(wtp) and wtp >= 0):
-        raise ModelError(Problem("willingness_to_pay", f"value {wtp!r} is not allowed; expected "
-                                 "a finite number >= 0 (money per QALY)"))
+        raise ModelError(
+            Problem(
+                "willingness_to_pay",
+                f"value {wtp!r} is not allowed; expected a finite number >= 0 (money per QALY)",
+            )
+        )
     wtp = float(wtp)
     if model.settings.objective != "net_benefit":
-        notes.append(f"the model's objective is {model.settings.objective!r}; the comparison "
-                     f"uses net monetary benefit at {wtp:,.0f} per QALY")
+        notes.append(
+            f"the model's objective is {model.settings.objective!r}; the comparison "
+            f"uses net monetary benefit at {wtp:,.0f} per QALY"
+        )
     objective = Objective("net_benefit", wtp)
     compiled = compile_model(model)
     result = solve(compiled, objective)
     optimal_name = f"optimal policy at WTP {wtp:,.0f}"
-    optimal = computed(optimal_name, result.policy[0],
-                       description=f"optimal at {wtp:,.0f} per QALY: {result.structure(0).text}")
+    optimal = computed(
+        optimal_name,
+        result.policy[0],
+        description=f"optimal at {wtp:,.0f} per QALY: {result.structure(0).text}",
+    )
     chosen = _strategy_list(compiled, model, strategies, builtins, notes)
     chosen += [from_age(action, age) for age in from_ages for action in compiled.action_ids[1:]]
     resolved = [resolve_strategy(compiled, s) for s in chosen]
@@ -236,10 +260,20 @@ def _compare_loaded(model, strategies, wtp, wtp_range, *, grid, builtins, from_a
             if name in added:
                 continue
             added.add(name)
-            resolved.append(StrategyPolicy(
-                Strategy(name, "computed", policy=policy, description=(
-                    f"{KIND_FRONTIER}: optimal for WTP {row['wtp_from']:,.2f} to "
-                    f"{row['wtp_to']:,.2f}: {row['structure']}")), policy))
+            resolved.append(
+                StrategyPolicy(
+                    Strategy(
+                        name,
+                        "computed",
+                        policy=policy,
+                        description=(
+                            f"{KIND_FRONTIER}: optimal for WTP {row['wtp_from']:,.2f} to "
+                            f"{row['wtp_to']:,.2f}: {row['structure']}"
+                        ),
+                    ),
+                    policy,
+                )
+            )
         frontier = frontier_result.table.assign(strategy=names)
         switches = frontier_result.switches
     _check_unique(resolved)
@@ -253,9 +287,15 @@ def _compare_loaded(model, strategies, wtp, wtp_range, *, grid, builtins, from_a
     table["label"] = table["strategy"].where(table["kind"] != KIND_FRONTIER, "")
     traces = _traces(outcome, index, [r.strategy.name for r in resolved])
     return ComparisonResult(
-        table=table, frontier=frontier, switches=switches, traces=traces,
-        willingness_to_pay=wtp, best_strategy=table.attrs["best_strategy"],
-        optimal_strategy=optimal_name, notes=notes, resolved=resolved,
+        table=table,
+        frontier=frontier,
+        switches=switches,
+        traces=traces,
+        willingness_to_pay=wtp,
+        best_strategy=table.attrs["best_strategy"],
+        optimal_strategy=optimal_name,
+        notes=notes,
+        resolved=resolved,
         frontier_result=frontier_result,
     )
 
@@ -264,10 +304,12 @@ def _traces(outcome, index: np.ndarray, names: list[str]) -> pd.DataFrame:
     """Long traces (strategy, cycle, age, state, proportion) of every strategy."""
     trace = outcome.trace[index]  # (K, T + 1, S)
     K, n_t, S = trace.shape
-    return pd.DataFrame({
-        "strategy": np.repeat(np.asarray(names, dtype=object), n_t * S),
-        "cycle": np.tile(np.repeat(np.arange(n_t), S), K),
-        "age": np.tile(np.repeat(outcome.ages, S), K),
-        "state": np.tile(np.asarray(outcome.state_ids, dtype=object), K * n_t),
-        "proportion": trace.ravel(),
-    })
+    return pd.DataFrame(
+        {
+            "strategy": np.repeat(np.asarray(names, dtype=object), n_t * S),
+            "cycle": np.tile(np.repeat(np.arange(n_t), S), K),
+            "age": np.tile(np.repeat(outcome.ages, S), K),
+            "state": np.tile(np.asarray(outcome.state_ids, dtype=object), K * n_t),
+            "proportion": trace.ravel(),
+        }
+    )

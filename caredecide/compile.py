@@ -275,15 +275,23 @@ def default_memory_limit() -> int:
 
 
 # -- compile ---------------------------------------------------------------------------
-def _too_large_advice(model: Model, n_draws: int, lengths: tuple[int, int, int],
-                      n_states: int, n_actions: int, limit: int) -> str:
+def _too_large_advice(
+    model: Model,
+    n_draws: int,
+    lengths: tuple[int, int, int],
+    n_states: int,
+    n_actions: int,
+    limit: int,
+) -> str:
     """What to change: the batch size when one draw fits, else the horizon or the states."""
     one_draw = _array_bytes(1, lengths, n_states, n_actions)
     if one_draw <= limit:
         return f"Use at most {limit // one_draw:,} draws per batch."
     if max(lengths) > 1:
-        return ("Even one parameter set does not fit: shorten the horizon "
-                "(settings.horizon_cycles or settings.until_age) or lengthen settings.cycle_years.")
+        return (
+            "Even one parameter set does not fit: shorten the horizon "
+            "(settings.horizon_cycles or settings.until_age) or lengthen settings.cycle_years."
+        )
     return "Even one parameter set does not fit: the model has too many states or actions."
 
 

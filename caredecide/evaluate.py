@@ -84,14 +84,29 @@ class PolicyOutcome:
     finite_horizon: bool
 
     def __repr__(self) -> str:
-        arrays = {name: getattr(self, name) for name in (
-            "trace", "life_years", "qalys", "costs", "life_years_undiscounted",
-            "qalys_undiscounted", "costs_undiscounted", "net_monetary_benefit", "value")}
+        arrays = {
+            name: getattr(self, name)
+            for name in (
+                "trace",
+                "life_years",
+                "qalys",
+                "costs",
+                "life_years_undiscounted",
+                "qalys_undiscounted",
+                "costs_undiscounted",
+                "net_monetary_benefit",
+                "value",
+            )
+        }
         return summary_repr(
             "PolicyOutcome",
             {"draws": int(self.value.shape[0]), "finite_horizon": self.finite_horizon},
-            {"objective": self.objective.describe(), "states": ", ".join(self.state_ids),
-             **arrays, "flows": ", ".join(self.flows)},
+            {
+                "objective": self.objective.describe(),
+                "states": ", ".join(self.state_ids),
+                **arrays,
+                "flows": ", ".join(self.flows),
+            },
         )
 
     def trace_frame(self, draw: int = 0) -> pd.DataFrame:
@@ -214,8 +229,11 @@ def _evaluate_finite(compiled, policy, objective, terminal_value) -> PolicyOutco
     d_o = compiled.per_cycle_discount()[0]
     trace = np.empty((D, T + 1, S))
     trace[:, 0] = compiled.start_distribution
-    flows = {f"{name}{suffix}": np.zeros((D, T + 1)) for name in _QUANTITIES
-             for suffix in ("", "_undiscounted")}
+    flows = {
+        f"{name}{suffix}": np.zeros((D, T + 1))
+        for name in _QUANTITIES
+        for suffix in ("", "_undiscounted")
+    }
     for t in range(T + 1):
         m = trace[:, t]
         for discount, suffix in ((True, ""), (False, "_undiscounted")):
@@ -258,7 +276,9 @@ def _evaluate_infinite(compiled, policy, objective) -> PolicyOutcome:
     dq, dc = decision_parts(compiled, 0, discount=False)
     ly = np.broadcast_to(compiled.life_years, (D, S))
     per_cycle = {
-        "life_years": ly, "qalys": q + _chosen(dq, policy), "costs": c + _chosen(dc, policy)
+        "life_years": ly,
+        "qalys": q + _chosen(dq, policy),
+        "costs": c + _chosen(dc, policy),
     }
     occupancy_only = {"life_years": ly, "qalys": q, "costs": c}
     d_o, d_c = compiled.per_cycle_discount()
@@ -278,8 +298,10 @@ def _evaluate_infinite(compiled, policy, objective) -> PolicyOutcome:
         correction = (1.0 - start_weight) * np.einsum("ds,ds->d", start, occupancy_only[name])
         for discount, suffix in ((True, ""), (False, "_undiscounted")):
             d = factor[name] if discount else 1.0
-            totals[name + suffix] = _stationary_total(P_pi, per_cycle[name], d, absorbing, start,
-                                                      trace[:, -1]) - correction
+            totals[name + suffix] = (
+                _stationary_total(P_pi, per_cycle[name], d, absorbing, start, trace[:, -1])
+                - correction
+            )
         flow = np.einsum("dts,ds->dt", trace, per_cycle[name]) * (factor[name] ** t)
         flow[:, 0] -= correction
         flows[name] = flow

@@ -41,15 +41,18 @@ def normalise_table(frame: pd.DataFrame) -> pd.DataFrame:
 
 def table_to_csv(frame: pd.DataFrame) -> bytes:
     """The CSV bytes of one result table (see the module docstring for the rules)."""
-    text = normalise_table(frame).to_csv(index=False, float_format=FLOAT_FORMAT,
-                                         lineterminator="\n", na_rep="")
+    text = normalise_table(frame).to_csv(
+        index=False, float_format=FLOAT_FORMAT, lineterminator="\n", na_rep=""
+    )
     return text.encode("utf-8")
 
 
 def _check_name(name: str) -> None:
     if not _NAME.match(name):
-        raise ValueError(f"table name {name!r} is not allowed; expected letters, digits, "
-                         "'_', '.' or '-' (it becomes a file name)")
+        raise ValueError(
+            f"table name {name!r} is not allowed; expected letters, digits, "
+            "'_', '.' or '-' (it becomes a file name)"
+        )
 
 
 def export_tables(results: Mapping[str, pd.DataFrame], out_dir: Path | str) -> dict[str, Path]:
@@ -171,15 +174,20 @@ def _fixed_zip(data: bytes) -> bytes:
     """
     fixed_date = FIXED_DATE.strftime("%Y-%m-%dT%H:%M:%SZ").encode()
     out = io.BytesIO()
-    with zipfile.ZipFile(io.BytesIO(data)) as source, \
-            zipfile.ZipFile(out, "w", zipfile.ZIP_DEFLATED) as target:
+    with (
+        zipfile.ZipFile(io.BytesIO(data)) as source,
+        zipfile.ZipFile(out, "w", zipfile.ZIP_DEFLATED) as target,
+    ):
         for info in source.infolist():
             fixed = _zip_info(info.filename)
             fixed.external_attr = info.external_attr
             content = source.read(info.filename)
             if info.filename == "docProps/core.xml":
-                content = re.sub(rb"(<dcterms:modified[^>]*>)[^<]*(<)", rb"\g<1>" + fixed_date
-                                 + rb"\g<2>", content)
+                content = re.sub(
+                    rb"(<dcterms:modified[^>]*>)[^<]*(<)",
+                    rb"\g<1>" + fixed_date + rb"\g<2>",
+                    content,
+                )
             target.writestr(fixed, content)
     return out.getvalue()
 

@@ -102,10 +102,14 @@ class PolicyFrontier:
     notes: list[str] = field(default_factory=list)
 
 
-_TOTALS = (("cost", "costs"), ("qalys", "qalys"), ("life_years", "life_years"),
-           ("cost_undiscounted", "costs_undiscounted"),
-           ("qalys_undiscounted", "qalys_undiscounted"),
-           ("life_years_undiscounted", "life_years_undiscounted"))
+_TOTALS = (
+    ("cost", "costs"),
+    ("qalys", "qalys"),
+    ("life_years", "life_years"),
+    ("cost_undiscounted", "costs_undiscounted"),
+    ("qalys_undiscounted", "qalys_undiscounted"),
+    ("life_years_undiscounted", "life_years_undiscounted"),
+)
 
 
 @dataclass
@@ -146,7 +150,8 @@ class _Lines:
         cost = np.array([t["cost"] for t in self.totals])
         qalys = np.array([t["qalys"] for t in self.totals])
         same = np.isclose(totals["cost"], cost, rtol=1e-12, atol=1e-9) & np.isclose(
-            totals["qalys"], qalys, rtol=1e-12, atol=1e-12)
+            totals["qalys"], qalys, rtol=1e-12, atol=1e-12
+        )
         return int(np.argmax(same)) if same.any() else None
 
 
@@ -164,11 +169,21 @@ def check_wtp_range(
     try:
         low, high = (float(v) for v in wtp_range)
     except (TypeError, ValueError):
-        raise ModelError(Problem(where, f"value {wtp_range!r} is not a pair of numbers; "
-                                 "expected (low, high) in money per QALY")) from None
+        raise ModelError(
+            Problem(
+                where,
+                f"value {wtp_range!r} is not a pair of numbers; "
+                "expected (low, high) in money per QALY",
+            )
+        ) from None
     if not (np.isfinite(low) and np.isfinite(high) and 0 <= low < high):
-        raise ModelError(Problem(where, f"range ({low:g}, {high:g}) is not allowed; expected "
-                                 "finite 0 <= low < high (money per QALY)"))
+        raise ModelError(
+            Problem(
+                where,
+                f"range ({low:g}, {high:g}) is not allowed; expected "
+                "finite 0 <= low < high (money per QALY)",
+            )
+        )
     return low, high
 
 
@@ -191,8 +206,9 @@ def _crossing(lines: _Lines, a: int, b: int, low: float, high: float) -> float:
         return high
     if np.sign(f_low) == np.sign(f_high):  # a tie at an end within the solver's tolerance
         return low if abs(f_low) <= abs(f_high) else high
-    return float(brentq(difference, low, high, xtol=1e-12 * max(1.0, high), rtol=1e-15,
-                        maxiter=200))
+    return float(
+        brentq(difference, low, high, xtol=1e-12 * max(1.0, high), rtol=1e-15, maxiter=200)
+    )
 
 
 def policy_frontier(
@@ -229,8 +245,9 @@ def policy_frontier(
     if compiled.n_draws != 1:
         raise ValueError(f"expected a compiled model with one draw, got {compiled.n_draws}")
     if not isinstance(grid, int) or grid < 2:
-        raise ModelError(Problem("grid", f"value {grid!r} is not allowed; expected an integer "
-                                 ">= 2"))
+        raise ModelError(
+            Problem("grid", f"value {grid!r} is not allowed; expected an integer >= 2")
+        )
     values = np.linspace(low, high, grid)
     lines = _Lines()
     ids = lines.add(compiled, _solve_at(compiled, values, **solve_options), FOUND_GRID)
@@ -256,11 +273,22 @@ def policy_frontier(
             progress(rounds, len(brackets))
     notes = []
     if brackets:
-        notes.append(f"refinement stopped after {max_rounds} rounds with {len(brackets)} "
-                     "bracket(s) unresolved; their crossings are reported as switch points")
+        notes.append(
+            f"refinement stopped after {max_rounds} rounds with {len(brackets)} "
+            "bracket(s) unresolved; their crossings are reported as switch points"
+        )
         switches += [(_crossing(lines, a, b, lo, hi), a, b) for lo, hi, a, b in brackets]
-    return _build(lines, int(ids[0]), sorted(switches), (low, high), rounds, values, n_solves,
-                  not brackets, notes)
+    return _build(
+        lines,
+        int(ids[0]),
+        sorted(switches),
+        (low, high),
+        rounds,
+        values,
+        n_solves,
+        not brackets,
+        notes,
+    )
 
 
 def _build(lines, first, switches, wtp_range, rounds, values, n_solves, success, notes):
@@ -271,20 +299,29 @@ def _build(lines, first, switches, wtp_range, rounds, values, n_solves, success,
     rows = []
     for i, k in enumerate(chain):
         totals = lines.totals[k]
-        rows.append({
-            "policy": order[k], "wtp_from": bounds[i], "wtp_to": bounds[i + 1], **totals,
-            "net_monetary_benefit_from": lines.nmb(k, bounds[i]),
-            "net_monetary_benefit_to": lines.nmb(k, bounds[i + 1]),
-            "found_by": lines.found_by[k], "structure": lines.structures[k],
-        })
+        rows.append(
+            {
+                "policy": order[k],
+                "wtp_from": bounds[i],
+                "wtp_to": bounds[i + 1],
+                **totals,
+                "net_monetary_benefit_from": lines.nmb(k, bounds[i]),
+                "net_monetary_benefit_to": lines.nmb(k, bounds[i + 1]),
+                "found_by": lines.found_by[k],
+                "structure": lines.structures[k],
+            }
+        )
     table = pd.DataFrame(rows)
-    switch_table = pd.DataFrame({
-        "wtp": [w for w, _, _ in switches],
-        "from_policy": [order.get(a, "?") for _, a, _ in switches],
-        "to_policy": [order[b] for _, _, b in switches],
-        "nmb_from": [lines.nmb(a, w) for w, a, _ in switches],
-        "nmb_to": [lines.nmb(b, w) for w, _, b in switches],
-    })
+    switch_table = pd.DataFrame(
+        {
+            "wtp": [w for w, _, _ in switches],
+            "from_policy": [order.get(a, "?") for _, a, _ in switches],
+            "to_policy": [order[b] for _, _, b in switches],
+            "nmb_from": [lines.nmb(a, w) for w, a, _ in switches],
+            "nmb_to": [lines.nmb(b, w) for w, _, b in switches],
+        }
+    )
     policies = {label: lines.policies[k] for k, label in order.items()}
-    return PolicyFrontier(table, switch_table, policies, (low, high), rounds, values, n_solves,
-                          success, notes)
+    return PolicyFrontier(
+        table, switch_table, policies, (low, high), rounds, values, n_solves, success, notes
+    )

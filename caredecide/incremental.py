@@ -195,9 +195,7 @@ def incremental_analysis(
     # Strong dominance among the distinct rows: dominates[i, j] when i is no costlier,
     # no less effective and not identical to j.
     distinct = ~identical
-    dominates = (
-        (cost[:, None] <= cost[None, :]) & (qalys[:, None] >= qalys[None, :]) & ~same
-    )
+    dominates = (cost[:, None] <= cost[None, :]) & (qalys[:, None] >= qalys[None, :]) & ~same
     dominates &= distinct[:, None] & distinct[None, :]
     dominated = dominates.any(axis=0)
     # Name the cheapest *non-dominated* dominator (dominance is transitive, so one exists).
@@ -268,9 +266,7 @@ def _convex_frontier(candidates: np.ndarray, cost: np.ndarray, qalys: np.ndarray
 def _check_frame(frame: pd.DataFrame) -> None:
     where = "strategies"
     if not isinstance(frame, pd.DataFrame):
-        raise ModelError(
-            Problem(where, f"expected a pandas DataFrame, got {type(frame).__name__}")
-        )
+        raise ModelError(Problem(where, f"expected a pandas DataFrame, got {type(frame).__name__}"))
     missing = [c for c in REQUIRED_COLUMNS if c not in frame.columns]
     if missing:
         raise ModelError(

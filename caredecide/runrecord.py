@@ -131,8 +131,9 @@ def read_record(path: Path | str) -> RunRecord:
     path = Path(path)
     size = path.stat().st_size
     if size > MAX_RECORD_BYTES:
-        raise RunRecordError(f"{path}: the run record is {size} bytes, larger than the limit "
-                             f"of {MAX_RECORD_BYTES}")
+        raise RunRecordError(
+            f"{path}: the run record is {size} bytes, larger than the limit of {MAX_RECORD_BYTES}"
+        )
     try:
         data = json.loads(path.read_text(encoding="utf-8"))
     except (UnicodeDecodeError, json.JSONDecodeError) as error:
@@ -140,21 +141,32 @@ def read_record(path: Path | str) -> RunRecord:
     if not isinstance(data, dict):
         raise RunRecordError(f"{path}: expected a JSON object, got {type(data).__name__}")
     if data.get("format") != RECORD_FORMAT:
-        raise RunRecordError(f"{path}: format = {data.get('format')!r} is not supported; "
-                             f"expected {RECORD_FORMAT}")
-    expected = {"command": str, "arguments": dict, "model_path": str, "model_sha256": str,
-                "versions": dict, "date": str, "outputs": dict, "output_dir": str}
+        raise RunRecordError(
+            f"{path}: format = {data.get('format')!r} is not supported; expected {RECORD_FORMAT}"
+        )
+    expected = {
+        "command": str,
+        "arguments": dict,
+        "model_path": str,
+        "model_sha256": str,
+        "versions": dict,
+        "date": str,
+        "outputs": dict,
+        "output_dir": str,
+    }
     for key, kind in expected.items():
         if not isinstance(data.get(key), kind):
-            raise RunRecordError(f"{path}: field {key!r} = {data.get(key)!r} is missing or "
-                                 f"not a {kind.__name__}")
+            raise RunRecordError(
+                f"{path}: field {key!r} = {data.get(key)!r} is missing or not a {kind.__name__}"
+            )
     seed = data.get("seed")
     if seed is not None and (not isinstance(seed, int) or isinstance(seed, bool) or seed < 0):
         raise RunRecordError(f"{path}: field 'seed' = {seed!r}; expected null or an integer >= 0")
     draws = data["arguments"].get("draws")
     if draws is not None and (not isinstance(draws, int) or isinstance(draws, bool) or draws < 1):
-        raise RunRecordError(f"{path}: field 'arguments.draws' = {draws!r}; expected null or "
-                             "an integer >= 1")
+        raise RunRecordError(
+            f"{path}: field 'arguments.draws' = {draws!r}; expected null or an integer >= 1"
+        )
     for key in ("outputs", "versions"):
         bad = {k: v for k, v in data[key].items() if not isinstance(v, str)}
         if bad:
@@ -164,8 +176,10 @@ def read_record(path: Path | str) -> RunRecord:
     if not isinstance(inputs, dict) or not all(
         isinstance(k, str) and isinstance(v, str) for k, v in inputs.items()
     ):
-        raise RunRecordError(f"{path}: field 'input_files' = {inputs!r}; expected an object "
-                             "of file path -> SHA-256 text")
+        raise RunRecordError(
+            f"{path}: field 'input_files' = {inputs!r}; expected an object "
+            "of file path -> SHA-256 text"
+        )
     known = set(RunRecord.__dataclass_fields__)
     return RunRecord(**{k: v for k, v in data.items() if k in known})
 
@@ -188,8 +202,9 @@ class Difference:
         return f"{self.what}: recorded {self.recorded}, now {self.now}"
 
 
-def compare_hashes(recorded: dict[str, str], now: dict[str, str], *,
-                   kind: str = "output") -> list[Difference]:
+def compare_hashes(
+    recorded: dict[str, str], now: dict[str, str], *, kind: str = "output"
+) -> list[Difference]:
     """Differences between two ``{file: sha256}`` maps (missing, extra, changed).
 
     ``kind`` names the files in the messages (``"output"``, ``"input file"``).
@@ -204,5 +219,8 @@ def compare_hashes(recorded: dict[str, str], now: dict[str, str], *,
 
 def compare_versions(recorded: dict[str, str], now: dict[str, str]) -> list[Difference]:
     """Version differences (a reason results may differ; reported, not an error)."""
-    return [Difference(f"version of {k}", recorded.get(k, "absent"), now.get(k, "absent"))
-            for k in sorted(set(recorded) | set(now)) if recorded.get(k) != now.get(k)]
+    return [
+        Difference(f"version of {k}", recorded.get(k, "absent"), now.get(k, "absent"))
+        for k in sorted(set(recorded) | set(now))
+        if recorded.get(k) != now.get(k)
+    ]

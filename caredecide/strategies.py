@@ -123,33 +123,52 @@ class StrategyPolicy:
 
 def never(action: str, *, otherwise: str | None = None, name: str | None = None) -> Strategy:
     """Never take ``action``: every state takes its alternative action."""
-    return Strategy(name or f"never {action}", "never", action=action, otherwise=otherwise,
-                    description=f"'{action}' is never taken")
+    return Strategy(
+        name or f"never {action}",
+        "never",
+        action=action,
+        otherwise=otherwise,
+        description=f"'{action}' is never taken",
+    )
 
 
 def at_once(action: str, *, otherwise: str | None = None, name: str | None = None) -> Strategy:
     """Take ``action`` at once, in every state and cycle where it is allowed."""
-    return Strategy(name or f"{action} at once", "at_once", action=action, otherwise=otherwise,
-                    description=f"'{action}' in every state where it is allowed, at every age")
+    return Strategy(
+        name or f"{action} at once",
+        "at_once",
+        action=action,
+        otherwise=otherwise,
+        description=f"'{action}' in every state where it is allowed, at every age",
+    )
 
 
 def from_state(
     action: str, state: str, *, otherwise: str | None = None, name: str | None = None
 ) -> Strategy:
     """Take ``action`` in the ordered states at or beyond ``state`` (severity order)."""
-    return Strategy(name or f"{action} from {state}", "from_state", action=action,
-                    otherwise=otherwise, state=state,
-                    description=f"'{action}' once the state is {state} or beyond "
-                                "(severity order)")
+    return Strategy(
+        name or f"{action} from {state}",
+        "from_state",
+        action=action,
+        otherwise=otherwise,
+        state=state,
+        description=f"'{action}' once the state is {state} or beyond (severity order)",
+    )
 
 
 def from_age(
     action: str, age: float, *, otherwise: str | None = None, name: str | None = None
 ) -> Strategy:
     """Take ``action`` wherever allowed from age ``age`` (years, start of cycle) on."""
-    return Strategy(name or f"{action} from age {age:g}", "from_age", action=action,
-                    otherwise=otherwise, age=float(age),
-                    description=f"'{action}' wherever allowed from age {age:g} on")
+    return Strategy(
+        name or f"{action} from age {age:g}",
+        "from_age",
+        action=action,
+        otherwise=otherwise,
+        age=float(age),
+        description=f"'{action}' wherever allowed from age {age:g} on",
+    )
 
 
 def computed(name: str, policy: np.ndarray, description: str = "") -> Strategy:
@@ -191,8 +210,9 @@ def _model_error(message: str, where: str, file: str | None = None) -> ModelErro
 
 def _action_index(compiled: CompiledModel, action: str, where: str) -> int:
     if action not in compiled.action_ids:
-        raise _model_error(f"unknown action {action!r}; expected one of "
-                           f"{list(compiled.action_ids)}", where)
+        raise _model_error(
+            f"unknown action {action!r}; expected one of {list(compiled.action_ids)}", where
+        )
     return compiled.action_ids.index(action)
 
 
@@ -225,8 +245,11 @@ def _alternative(compiled: CompiledModel, x: int, otherwise: int | None) -> np.n
 
 def _absorbing(compiled: CompiledModel) -> np.ndarray:
     absorbing = np.asarray(compiled.absorbing, dtype=bool)
-    return absorbing if absorbing.shape == (compiled.n_states,) else np.zeros(
-        compiled.n_states, dtype=bool)
+    return (
+        absorbing
+        if absorbing.shape == (compiled.n_states,)
+        else np.zeros(compiled.n_states, dtype=bool)
+    )
 
 
 def _describe_cells(compiled: CompiledModel, mask: np.ndarray) -> list[str]:
@@ -268,11 +291,15 @@ def resolve_strategy(compiled: CompiledModel, strategy: Strategy) -> StrategyPol
     if strategy.kind == "table":
         return _resolve_table(compiled, strategy)
     if strategy.kind not in KINDS:
-        raise _model_error(f"unknown strategy kind {strategy.kind!r}; expected one of {KINDS}",
-                           where + ".kind")
+        raise _model_error(
+            f"unknown strategy kind {strategy.kind!r}; expected one of {KINDS}", where + ".kind"
+        )
     x = _action_index(compiled, strategy.action, where + ".action")
-    otherwise = (None if strategy.otherwise is None
-                 else _action_index(compiled, strategy.otherwise, where + ".otherwise"))
+    otherwise = (
+        None
+        if strategy.otherwise is None
+        else _action_index(compiled, strategy.otherwise, where + ".otherwise")
+    )
     take_x = np.zeros((n_t, S), dtype=bool)
     if strategy.kind == "at_once":
         take_x[:] = True
@@ -281,7 +308,9 @@ def resolve_strategy(compiled: CompiledModel, strategy: Strategy) -> StrategyPol
         if strategy.state not in order:
             raise _model_error(
                 f"state {strategy.state!r} is not in the severity order {list(order)}; expected "
-                "one of them (settings.severity_order)", where + ".state")
+                "one of them (settings.severity_order)",
+                where + ".state",
+            )
         ranks = np.array([order.index(s) if s in order else -1 for s in compiled.state_ids])
         take_x[:] = ranks >= order.index(strategy.state)
     elif strategy.kind == "from_age":
@@ -289,7 +318,9 @@ def resolve_strategy(compiled: CompiledModel, strategy: Strategy) -> StrategyPol
         if ages is None:
             raise _model_error(
                 f"age {strategy.age:g} given, but the model has an infinite horizon (no age "
-                "axis); expected a finite horizon", where + ".age")
+                "axis); expected a finite horizon",
+                where + ".age",
+            )
         take_x[:] = (ages >= strategy.age)[:, None]
     alternative = _alternative(compiled, x, otherwise)
     allowed_x = compiled.allowed[:, x]
@@ -298,20 +329,26 @@ def resolve_strategy(compiled: CompiledModel, strategy: Strategy) -> StrategyPol
     notes = []
     blocked = take_x & ~allowed_x & live
     if blocked.any():
-        notes.append(f"'{strategy.action}' is not allowed in "
-                     f"{', '.join(_describe_cells(compiled, blocked))}: the alternative action "
-                     "is taken there")
+        notes.append(
+            f"'{strategy.action}' is not allowed in "
+            f"{', '.join(_describe_cells(compiled, blocked))}: the alternative action "
+            "is taken there"
+        )
     forced = ~take_x & (alternative == x)[None, :] & live
     if forced.any():
-        notes.append(f"'{strategy.action}' is the only allowed action in "
-                     f"{', '.join(_describe_cells(compiled, forced))}: taken there")
+        notes.append(
+            f"'{strategy.action}' is the only allowed action in "
+            f"{', '.join(_describe_cells(compiled, forced))}: taken there"
+        )
     if otherwise is not None:
         refused = ~take_x & ~compiled.allowed[:, otherwise][None, :] & live
         if refused.any():
-            notes.append(f"'{strategy.otherwise}' is not allowed in "
-                         f"{', '.join(_describe_cells(compiled, refused))}: the first allowed "
-                         "action other than "
-                         f"'{strategy.action}' is taken there")
+            notes.append(
+                f"'{strategy.otherwise}' is not allowed in "
+                f"{', '.join(_describe_cells(compiled, refused))}: the first allowed "
+                "action other than "
+                f"'{strategy.action}' is taken there"
+            )
     return StrategyPolicy(strategy, policy.astype(np.intp), tuple(notes))
 
 
@@ -319,9 +356,11 @@ def _resolve_computed(compiled: CompiledModel, strategy: Strategy, where: str) -
     n_t, S = _n_policy_cycles(compiled), compiled.n_states
     policy = np.asarray(strategy.policy)
     if policy.shape != (n_t, S) or not np.issubdtype(policy.dtype, np.integer):
-        raise _model_error(f"policy has shape {policy.shape} and dtype {policy.dtype}; expected "
-                           f"integer action indices of shape (cycles, states) = ({n_t}, {S})",
-                           where + ".policy")
+        raise _model_error(
+            f"policy has shape {policy.shape} and dtype {policy.dtype}; expected "
+            f"integer action indices of shape (cycles, states) = ({n_t}, {S})",
+            where + ".policy",
+        )
     return StrategyPolicy(strategy, policy.astype(np.intp), ())
 
 
@@ -337,7 +376,8 @@ def _resolve_table(compiled: CompiledModel, strategy: Strategy) -> StrategyPolic
     # (R, S) rows covering each state, (R, Tpi) rows covering each cycle.
     states = np.array([r.state for r in rules], dtype=object)
     covers_state = (states[:, None] == np.asarray(compiled.state_ids, dtype=object)[None, :]) | (
-        (states == ALL_STATES)[:, None] & live[None, :])
+        (states == ALL_STATES)[:, None] & live[None, :]
+    )
     lower = np.array([-math.inf if r.age_from is None else r.age_from for r in rules])
     upper = np.array([math.inf if r.age_to is None else r.age_to for r in rules])
     if ages is None:
@@ -354,13 +394,18 @@ def _resolve_table(compiled: CompiledModel, strategy: Strategy) -> StrategyPolic
         t, s = np.argwhere(clash)[0]
         rows = [r.row for r, c in zip(rules, covers[:, t, s], strict=True) if c]
         age = "" if ages is None else f" at age {ages[t]:g}"
-        raise ModelError(Problem(
-            where=f"rows {', '.join(map(str, rows))}",
-            message=(f"strategy {strategy.name!r}: these rows give state "
-                     f"{compiled.state_ids[s]!r}{age} different actions "
-                     f"({', '.join(repr(compiled.action_ids[a]) for a in np.unique(action[covers[:, t, s]]))}); "  # noqa: E501
-                     "expected one action per state and age"),
-            file=file))
+        raise ModelError(
+            Problem(
+                where=f"rows {', '.join(map(str, rows))}",
+                message=(
+                    f"strategy {strategy.name!r}: these rows give state "
+                    f"{compiled.state_ids[s]!r}{age} different actions "
+                    f"({', '.join(repr(compiled.action_ids[a]) for a in np.unique(action[covers[:, t, s]]))}); "  # noqa: E501
+                    "expected one action per state and age"
+                ),
+                file=file,
+            )
+        )
     first = _first_allowed(compiled)
     covered = high >= 0
     chosen = np.where(covered, high, first[None, :])
@@ -370,14 +415,18 @@ def _resolve_table(compiled: CompiledModel, strategy: Strategy) -> StrategyPolic
     not_allowed = covered & ~allowed & live[None, :]
     for a in np.unique(chosen[not_allowed]):
         cells = not_allowed & (chosen == a)
-        notes.append(f"'{compiled.action_ids[a]}' is not allowed in "
-                     f"{', '.join(_describe_cells(compiled, cells))}: the first allowed action "
-                     "is taken there")
+        notes.append(
+            f"'{compiled.action_ids[a]}' is not allowed in "
+            f"{', '.join(_describe_cells(compiled, cells))}: the first allowed action "
+            "is taken there"
+        )
     # Only states with a choice: where one action is allowed there is nothing to cover.
     uncovered = ~covered & (live & (compiled.allowed.sum(axis=1) > 1))[None, :]
     if uncovered.any():
-        notes.append(f"no row covers {', '.join(_describe_cells(compiled, uncovered))}: the "
-                     "first allowed action is taken there")
+        notes.append(
+            f"no row covers {', '.join(_describe_cells(compiled, uncovered))}: the "
+            "first allowed action is taken there"
+        )
     return StrategyPolicy(strategy, policy.astype(np.intp), tuple(notes))
 
 
@@ -390,20 +439,34 @@ def _rule_problems(
     for rule in rules:  # one message per offending row of the user's table
         line = rule.row + 1
         if rule.state not in states:
-            problems.append(Problem(
-                f"row {rule.row}.state",
-                f"unknown state {rule.state!r}; expected one of {list(compiled.state_ids)} or "
-                f"{ALL_STATES!r}", file, line))
+            problems.append(
+                Problem(
+                    f"row {rule.row}.state",
+                    f"unknown state {rule.state!r}; expected one of {list(compiled.state_ids)} or "
+                    f"{ALL_STATES!r}",
+                    file,
+                    line,
+                )
+            )
         if rule.action not in compiled.action_ids:
-            problems.append(Problem(
-                f"row {rule.row}.action",
-                f"unknown action {rule.action!r}; expected one of {list(compiled.action_ids)}",
-                file, line))
+            problems.append(
+                Problem(
+                    f"row {rule.row}.action",
+                    f"unknown action {rule.action!r}; expected one of {list(compiled.action_ids)}",
+                    file,
+                    line,
+                )
+            )
         if not finite and (rule.age_from is not None or rule.age_to is not None):
-            problems.append(Problem(
-                f"row {rule.row}.age_from",
-                f"ages ({rule.age_from}, {rule.age_to}) given, but the model has an infinite "
-                "horizon (no age axis); expected blank ages", file, line))
+            problems.append(
+                Problem(
+                    f"row {rule.row}.age_from",
+                    f"ages ({rule.age_from}, {rule.age_to}) given, but the model has an infinite "
+                    "horizon (no age axis); expected blank ages",
+                    file,
+                    line,
+                )
+            )
     return problems
 
 
@@ -428,8 +491,12 @@ def _parse_age(text: str, row: int, column: str, file: str) -> tuple[float | Non
     except ValueError:
         value = math.nan
     if not math.isfinite(value) or value < 0:
-        return None, Problem(f"row {row}.{column}", f"value {text!r} is not an age; expected a "
-                             "finite number of years >= 0, or blank", file, row + 1)
+        return None, Problem(
+            f"row {row}.{column}",
+            f"value {text!r} is not an age; expected a finite number of years >= 0, or blank",
+            file,
+            row + 1,
+        )
     return value, None
 
 
@@ -465,68 +532,122 @@ def read_strategy_table(path: Path | str, *, text: str | None = None) -> list[St
             raise _model_error("file not found; expected a strategy table (CSV)", "", file)
         size = path.stat().st_size
         if size > MAX_TABLE_BYTES:
-            raise _model_error(f"file is {size} bytes; expected at most {MAX_TABLE_BYTES} bytes "
-                               "for a strategy table", "", file)
+            raise _model_error(
+                f"file is {size} bytes; expected at most {MAX_TABLE_BYTES} bytes "
+                "for a strategy table",
+                "",
+                file,
+            )
         try:
             text = path.read_text(encoding="utf-8-sig")
         except UnicodeDecodeError as error:
-            raise _model_error(f"not UTF-8 text ({error.reason} at byte {error.start}); expected "
-                               "a CSV file", "", file) from None
+            raise _model_error(
+                f"not UTF-8 text ({error.reason} at byte {error.start}); expected a CSV file",
+                "",
+                file,
+            ) from None
     elif len(text.encode("utf-8")) > MAX_TABLE_BYTES:
-        raise _model_error(f"table is larger than {MAX_TABLE_BYTES} bytes; expected a smaller "
-                           "strategy table", "", file)
+        raise _model_error(
+            f"table is larger than {MAX_TABLE_BYTES} bytes; expected a smaller strategy table",
+            "",
+            file,
+        )
     try:
         rows = list(csv.reader(io.StringIO(text)))
     except csv.Error as error:
         raise _model_error(f"not a readable CSV table ({error})", "", file) from None
     rows = [r for r in rows if any(cell.strip() for cell in r)]
     if not rows:
-        raise _model_error("the table is empty; expected a header row "
-                           f"({', '.join(REQUIRED_COLUMNS + OPTIONAL_COLUMNS)}) and rows", "", file)
+        raise _model_error(
+            "the table is empty; expected a header row "
+            f"({', '.join(REQUIRED_COLUMNS + OPTIONAL_COLUMNS)}) and rows",
+            "",
+            file,
+        )
     header = [h.strip() for h in rows[0]]
     problems = []
     missing = [c for c in REQUIRED_COLUMNS if c not in header]
     if missing:
-        problems.append(Problem("header", f"missing column(s) {missing}; expected columns "
-                                f"{list(REQUIRED_COLUMNS)} and optionally "
-                                f"{list(OPTIONAL_COLUMNS)}, got {header}", file, 1))
+        problems.append(
+            Problem(
+                "header",
+                f"missing column(s) {missing}; expected columns "
+                f"{list(REQUIRED_COLUMNS)} and optionally "
+                f"{list(OPTIONAL_COLUMNS)}, got {header}",
+                file,
+                1,
+            )
+        )
     unknown = [c for c in header if c not in REQUIRED_COLUMNS + OPTIONAL_COLUMNS]
     if unknown:
-        problems.append(Problem("header", f"unknown column(s) {unknown}; expected only "
-                                f"{list(REQUIRED_COLUMNS + OPTIONAL_COLUMNS)}", file, 1))
+        problems.append(
+            Problem(
+                "header",
+                f"unknown column(s) {unknown}; expected only "
+                f"{list(REQUIRED_COLUMNS + OPTIONAL_COLUMNS)}",
+                file,
+                1,
+            )
+        )
     if problems:
         raise ModelError(problems, file=file)
     if len(rows) == 1:
-        raise _model_error("the table has a header but no rows; expected at least one row",
-                           "", file)
+        raise _model_error(
+            "the table has a header but no rows; expected at least one row", "", file
+        )
     default_name = Path(file).name.removesuffix(TABLE_SUFFIX).removesuffix(".csv")
     by_name: dict[str, list[TableRule]] = {}
     for number, cells in enumerate(rows[1:], start=1):  # user rows, each checked on its own
         record = dict(zip(header, [c.strip() for c in cells], strict=False))
         if len(cells) > len(header):
-            problems.append(Problem(f"row {number}", f"{len(cells)} cells; expected at most "
-                                    f"{len(header)} (one per header column)", file, number + 1))
+            problems.append(
+                Problem(
+                    f"row {number}",
+                    f"{len(cells)} cells; expected at most {len(header)} (one per header column)",
+                    file,
+                    number + 1,
+                )
+            )
             continue
         name = record.get("strategy", default_name) if "strategy" in header else default_name
         for column in REQUIRED_COLUMNS + (("strategy",) if "strategy" in header else ()):
             if not record.get(column, ""):
-                problems.append(Problem(f"row {number}.{column}", f"blank {column}; expected a "
-                                        f"{'strategy name' if column == 'strategy' else column + ' id'}",  # noqa: E501
-                                        file, number + 1))
+                problems.append(
+                    Problem(
+                        f"row {number}.{column}",
+                        f"blank {column}; expected a "
+                        f"{'strategy name' if column == 'strategy' else column + ' id'}",
+                        file,
+                        number + 1,
+                    )
+                )
         low, problem_low = _parse_age(record.get("age_from", ""), number, "age_from", file)
         high, problem_high = _parse_age(record.get("age_to", ""), number, "age_to", file)
         problems += [p for p in (problem_low, problem_high) if p is not None]
         if low is not None and high is not None and low >= high:
-            problems.append(Problem(f"row {number}.age_to", f"age_to {high:g} is not above "
-                                    f"age_from {low:g}; expected age_from < age_to", file,
-                                    number + 1))
-        by_name.setdefault(name, []).append(TableRule(
-            number, record.get("state", ""), record.get("action", ""), low, high))
+            problems.append(
+                Problem(
+                    f"row {number}.age_to",
+                    f"age_to {high:g} is not above age_from {low:g}; expected age_from < age_to",
+                    file,
+                    number + 1,
+                )
+            )
+        by_name.setdefault(name, []).append(
+            TableRule(number, record.get("state", ""), record.get("action", ""), low, high)
+        )
     if problems:
         raise ModelError(problems, file=file)
-    return [Strategy(name, "table", rules=tuple(rules), source=file,
-                     description=f"table {Path(file).name}, {len(rules)} row(s)")
-            for name, rules in by_name.items()]
+    return [
+        Strategy(
+            name,
+            "table",
+            rules=tuple(rules),
+            source=file,
+            description=f"table {Path(file).name}, {len(rules)} row(s)",
+        )
+        for name, rules in by_name.items()
+    ]
 
 
 def load_strategy_table(compiled: CompiledModel, path: Path | str) -> list[StrategyPolicy]:
@@ -589,18 +710,20 @@ def strategy_totals(
     """
     policies = np.stack([r.policy for r in resolved])
     outcome, index = evaluate_policies(compiled, policies, objective)
-    frame = pd.DataFrame({
-        "strategy": [r.strategy.name for r in resolved],
-        "kind": [r.strategy.kind for r in resolved],
-        "description": [r.strategy.description for r in resolved],
-        "cost": outcome.costs[index],
-        "qalys": outcome.qalys[index],
-        "life_years": outcome.life_years[index],
-        "cost_undiscounted": outcome.costs_undiscounted[index],
-        "qalys_undiscounted": outcome.qalys_undiscounted[index],
-        "life_years_undiscounted": outcome.life_years_undiscounted[index],
-        "notes": ["; ".join(r.notes) for r in resolved],
-    })
+    frame = pd.DataFrame(
+        {
+            "strategy": [r.strategy.name for r in resolved],
+            "kind": [r.strategy.kind for r in resolved],
+            "description": [r.strategy.description for r in resolved],
+            "cost": outcome.costs[index],
+            "qalys": outcome.qalys[index],
+            "life_years": outcome.life_years[index],
+            "cost_undiscounted": outcome.costs_undiscounted[index],
+            "qalys_undiscounted": outcome.qalys_undiscounted[index],
+            "life_years_undiscounted": outcome.life_years_undiscounted[index],
+            "notes": ["; ".join(r.notes) for r in resolved],
+        }
+    )
     return frame, outcome, index
 
 

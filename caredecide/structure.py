@@ -163,8 +163,10 @@ def _threshold_clauses(result, policy, ordered, unordered, a, b, is_b) -> list[s
             if column[t] == b:
                 rules.append(f"{names[b]} from age {ages[t]:g} onward in {states[s]}")
             else:
-                rules.append(f"{names[b]} in {states[s]} before age {ages[t]:g}, "
-                             f"{names[a]} from age {ages[t]:g} onward")
+                rules.append(
+                    f"{names[b]} in {states[s]} before age {ages[t]:g}, "
+                    f"{names[a]} from age {ages[t]:g} onward"
+                )
     rules.extend(f"{names[b]} in {states[s]}" for s in unordered if policy[0, s] == b)
     rules.append(f"{names[a]} otherwise")
     return rules
@@ -179,8 +181,10 @@ def _per_state(result, policy, decision, bands, draw: int = 0) -> PolicyStructur
         column = policy[:, s]
         if _switches(column):
             t = int(np.flatnonzero(np.diff(column))[0]) + 1
-            rules.append(f"{names[column[0]]} in {states[s]} before age {ages[t]:g}, "
-                         f"{names[column[t]]} from age {ages[t]:g} onward")
+            rules.append(
+                f"{names[column[0]]} in {states[s]} before age {ages[t]:g}, "
+                f"{names[column[t]]} from age {ages[t]:g} onward"
+            )
         else:
             rules.append(f"{names[column[0]]} in {states[s]}")
     text = "states have no clinical order; " + "; ".join(rules)
@@ -232,11 +236,15 @@ def _band_descriptions(result: PolicyResult, draw: int) -> list[str]:
             continue
         first, later = column.iloc[0], [a for a in actions if a != column.iloc[0]]
         switch = int(np.argmax(column.to_numpy() != first))
-        monotone = (len(later) == 1 and (column.iloc[switch:] == later[0]).all()
-                    and all(s in ranked for s in order))
+        monotone = (
+            len(later) == 1
+            and (column.iloc[switch:] == later[0]).all()
+            and all(s in ranked for s in order)
+        )
         if monotone:
-            clauses.append(f"{_age_words(band)}: {later[0]} from {order[switch]} onward, "
-                           f"{first} before")
+            clauses.append(
+                f"{_age_words(band)}: {later[0]} from {order[switch]} onward, {first} before"
+            )
         else:
             parts = [f"{a} in " + ", ".join(column.index[column == a]) for a in actions]
             clauses.append(f"{_age_words(band)}: " + "; ".join(parts))
@@ -264,8 +272,11 @@ def band_table(result: PolicyResult, draw: int = 0) -> pd.DataFrame:
     if ages is None or len(starts) == 1:
         labels = ["all ages"]
     else:
-        labels = [f"{ages[a]:g}" if a == b else f"{ages[a]:g}-{ages[b]:g}"
-                  for a, b in zip(starts, ends, strict=True)]
+        labels = [
+            f"{ages[a]:g}" if a == b else f"{ages[a]:g}-{ages[b]:g}"
+            for a, b in zip(starts, ends, strict=True)
+        ]
     names = np.asarray(result.action_ids, dtype=object)
-    return pd.DataFrame(names[policy[starts].T], index=pd.Index(states, name="state"),
-                        columns=labels)
+    return pd.DataFrame(
+        names[policy[starts].T], index=pd.Index(states, name="state"), columns=labels
+    )

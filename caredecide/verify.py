@@ -102,8 +102,9 @@ class VerificationReport:
     def to_frame(self) -> pd.DataFrame:
         """One row per check: check, title, status, figures, expected, source."""
         columns = ["check", "title", "status", "figures", "expected", "source"]
-        return pd.DataFrame([[getattr(c, k) for k in columns] for c in self.checks],
-                            columns=columns)
+        return pd.DataFrame(
+            [[getattr(c, k) for k in columns] for c in self.checks], columns=columns
+        )
 
 
 # ----------------------------------------------------------------------------- core calls
@@ -141,8 +142,7 @@ def _evaluate_fixed(compiled, objective: Objective):
     from caredecide.strategies import default_strategies, evaluate_policies, resolve_strategy
 
     resolved = [resolve_strategy(compiled, s) for s in default_strategies(compiled)]
-    outcome, index = evaluate_policies(compiled, np.stack([r.policy for r in resolved]),
-                                       objective)
+    outcome, index = evaluate_policies(compiled, np.stack([r.policy for r in resolved]), objective)
     names = [""] * outcome.value.shape[0]
     for r, i in zip(resolved[::-1], index[::-1], strict=True):  # first name wins
         names[i] = r.strategy.name
@@ -189,8 +189,11 @@ def with_costs_scaled(model: Model, factor: float) -> Model:
     """Every state cost, one-off cost and per-cycle action cost multiplied by ``factor``."""
     states = tuple(replace(s, cost=_scaled(s.cost, factor)) for s in model.states)
     actions = tuple(
-        replace(a, oneoff_cost=_scaled(a.oneoff_cost, factor),
-                cost_per_cycle=_scaled(a.cost_per_cycle, factor))
+        replace(
+            a,
+            oneoff_cost=_scaled(a.oneoff_cost, factor),
+            cost_per_cycle=_scaled(a.cost_per_cycle, factor),
+        )
         for a in model.actions
     )
     return replace(model, states=states, actions=actions)
@@ -220,9 +223,12 @@ def with_no_effect(model: Model, action_id: str, reference_id: str) -> Model:
         else:
             table.pop(action_id, None)
         tables[name] = table
-    twin = replace(action, oneoff_cost=reference.oneoff_cost,
-                   oneoff_qaly_loss=reference.oneoff_qaly_loss,
-                   cost_per_cycle=reference.cost_per_cycle)
+    twin = replace(
+        action,
+        oneoff_cost=reference.oneoff_cost,
+        oneoff_qaly_loss=reference.oneoff_qaly_loss,
+        cost_per_cycle=reference.cost_per_cycle,
+    )
     actions = tuple(twin if a.id == action_id else a for a in model.actions)
     return replace(model, actions=actions, **tables)
 
@@ -271,53 +277,69 @@ def _result(check_id: str, status: str, figures: str) -> CheckResult:
     raise KeyError(check_id)
 
 
-@_register("trace_sums_to_one", "The cohort trace sums to 1 in every cycle",
-           "|sum of shares - 1| <= 1e-9 at every boundary, optimal and fixed policies", TECH_VER)
+@_register(
+    "trace_sums_to_one",
+    "The cohort trace sums to 1 in every cycle",
+    "|sum of shares - 1| <= 1e-9 at every boundary, optimal and fixed policies",
+    TECH_VER,
+)
 def check_trace_sums_to_one(model: Model, objective: Objective) -> tuple[str, str]:
     solved = _solve(model, objective)
     fixed, _ = _evaluate_fixed(solved.compiled, objective)
-    sums = np.concatenate([solved.outcome.trace.sum(axis=-1).ravel(),
-                           fixed.trace.sum(axis=-1).ravel()])
+    sums = np.concatenate(
+        [solved.outcome.trace.sum(axis=-1).ravel(), fixed.trace.sum(axis=-1).ravel()]
+    )
     worst, ok = _deviation(sums, np.ones_like(sums))
-    return (PASS if ok else FAIL,
-            f"largest |sum - 1| = {worst:.3g} over {sums.size} boundaries "
-            f"(optimal policy and {fixed.trace.shape[0]} fixed strategies)")
+    return (
+        PASS if ok else FAIL,
+        f"largest |sum - 1| = {worst:.3g} over {sums.size} boundaries "
+        f"(optimal policy and {fixed.trace.shape[0]} fixed strategies)",
+    )
 
 
-@_register("probabilities_in_range", "No probability leaves [0, 1] at any age, also at "
-           "every parameter's low and high value",
-           "every transition probability in [0, 1] and every row summing to 1, at the base "
-           "case and with each parameter at either end of its plausible range", ADVISHE)
+@_register(
+    "probabilities_in_range",
+    "No probability leaves [0, 1] at any age, also at every parameter's low and high value",
+    "every transition probability in [0, 1] and every row summing to 1, at the base "
+    "case and with each parameter at either end of its plausible range",
+    ADVISHE,
+)
 def check_probabilities_in_range(model: Model, objective: Objective) -> tuple[str, str]:
     from caredecide.compile import compile_model
     from caredecide.sensitivity.variation import one_at_a_time_sets, parameter_ranges
 
     ranges = parameter_ranges(model)
     if len(ranges):
-        frame = one_at_a_time_sets(model, list(ranges["parameter"]),
-                                   ranges[["low", "high"]].to_numpy())
+        frame = one_at_a_time_sets(
+            model, list(ranges["parameter"]), ranges[["low", "high"]].to_numpy()
+        )
     else:  # a model without parameters: the base case is the only parameter set
         frame = pd.DataFrame()
     try:
         compiled = compile_model(model, frame if len(frame) else None)
     except CaredecideError as error:
         first = str(error).splitlines()[0]
-        return FAIL, (f"{max(len(frame), 1)} parameter sets (each parameter at low and "
-                      f"high): {first}")
+        return FAIL, (
+            f"{max(len(frame), 1)} parameter sets (each parameter at low and high): {first}"
+        )
     P = compiled.transition
     rows = P.sum(axis=-1)
     worst_row, rows_ok = _deviation(rows, np.ones_like(rows))
     low, high = float(P.min()), float(P.max())
     ok = rows_ok and low >= 0.0 and high <= 1.0
-    return (PASS if ok else FAIL,
-            f"{compiled.n_draws} parameter sets x {P.shape[1]} cycle(s): probabilities in "
-            f"[{_g(low)}, {_g(high)}]; largest |row sum - 1| = {worst_row:.3g}")
+    return (
+        PASS if ok else FAIL,
+        f"{compiled.n_draws} parameter sets x {P.shape[1]} cycle(s): probabilities in "
+        f"[{_g(low)}, {_g(high)}]; largest |row sum - 1| = {worst_row:.3g}",
+    )
 
 
-@_register("closed_cohort", "Closed cohort: nobody returns from death; deaths plus "
-           "survivors equal the starting cohort",
-           "the share in non-alive states never decreases and alive + dead = 1 at every "
-           "boundary", TECH_VER)
+@_register(
+    "closed_cohort",
+    "Closed cohort: nobody returns from death; deaths plus survivors equal the starting cohort",
+    "the share in non-alive states never decreases and alive + dead = 1 at every boundary",
+    TECH_VER,
+)
 def check_closed_cohort(model: Model, objective: Objective) -> tuple[str, str]:
     solved = _solve(model, objective)
     fixed, _ = _evaluate_fixed(solved.compiled, objective)
@@ -333,87 +355,131 @@ def check_closed_cohort(model: Model, objective: Objective) -> tuple[str, str]:
     dead = solved.outcome.trace[0, :, ~alive].sum(axis=0)
     survivors = solved.outcome.trace[0, :, alive].sum(axis=0)
     end_dead, end_alive = float(dead[-1]), float(survivors[-1])
-    return (PASS if ok else FAIL,
-            f"largest fall of the dead share = {drop:.3g}; largest |alive + dead - 1| = "
-            f"{worst:.3g}; optimal policy at the end: dead {_g(end_dead)} + alive "
-            f"{_g(end_alive)}")
+    return (
+        PASS if ok else FAIL,
+        f"largest fall of the dead share = {drop:.3g}; largest |alive + dead - 1| = "
+        f"{worst:.3g}; optimal policy at the end: dead {_g(end_dead)} + alive "
+        f"{_g(end_alive)}",
+    )
 
 
-@_register("qaly_weights_one", "All QALY weights 1 (no one-off losses) gives QALYs = "
-           "life-years", "QALYs equal life-years, discounted and undiscounted, for the optimal "
-           "and every fixed policy", TECH_VER)
+@_register(
+    "qaly_weights_one",
+    "All QALY weights 1 (no one-off losses) gives QALYs = life-years",
+    "QALYs equal life-years, discounted and undiscounted, for the optimal and every fixed policy",
+    TECH_VER,
+)
 def check_qaly_weights_one(model: Model, objective: Objective) -> tuple[str, str]:
     changed = with_qaly_weights_one(model)
     solved = _solve(changed, objective)
     fixed, _ = _evaluate_fixed(solved.compiled, objective)
-    worst, ok = _compare(pair for o in (solved.outcome, fixed) for pair in (
-        (o.qalys, o.life_years), (o.qalys_undiscounted, o.life_years_undiscounted)))
+    worst, ok = _compare(
+        pair
+        for o in (solved.outcome, fixed)
+        for pair in ((o.qalys, o.life_years), (o.qalys_undiscounted, o.life_years_undiscounted))
+    )
     o = solved.outcome
-    return (PASS if ok else FAIL,
-            f"optimal policy: QALYs {_g(o.qalys[0])} vs life-years {_g(o.life_years[0])} "
-            f"(discounted); largest difference {worst:.3g} over all policies")
+    return (
+        PASS if ok else FAIL,
+        f"optimal policy: QALYs {_g(o.qalys[0])} vs life-years {_g(o.life_years[0])} "
+        f"(discounted); largest difference {worst:.3g} over all policies",
+    )
 
 
-@_register("zero_discount", "Zero discount rates give discounted = undiscounted totals",
-           "with both rates 0, discounted totals equal the undiscounted totals of the same "
-           "policy in the original model", TECH_VER)
+@_register(
+    "zero_discount",
+    "Zero discount rates give discounted = undiscounted totals",
+    "with both rates 0, discounted totals equal the undiscounted totals of the same "
+    "policy in the original model",
+    TECH_VER,
+)
 def check_zero_discount(model: Model, objective: Objective) -> tuple[str, str]:
     if model.n_cycles() is None:
         return NOT_APPLICABLE, "an infinite horizon needs a positive discount rate"
     base = _solve(model, objective)
     policy = base.result.policy
-    undiscounted = _evaluate(with_settings(model, discount_outcomes=0.0, discount_costs=0.0),
-                             objective, policy)
+    undiscounted = _evaluate(
+        with_settings(model, discount_outcomes=0.0, discount_costs=0.0), objective, policy
+    )
     worst, ok = _compare(
         (getattr(undiscounted, name), getattr(source, f"{name}_undiscounted"))
-        for name in ("life_years", "qalys", "costs") for source in (undiscounted, base.outcome)
+        for name in ("life_years", "qalys", "costs")
+        for source in (undiscounted, base.outcome)
     )
-    return (PASS if ok else FAIL,
-            f"QALYs at rate 0: {_g(undiscounted.qalys[0])}; undiscounted in the original model: "
-            f"{_g(base.outcome.qalys_undiscounted[0])}; costs {_g(undiscounted.costs[0])} vs "
-            f"{_g(base.outcome.costs_undiscounted[0])}; largest difference {worst:.3g}")
+    return (
+        PASS if ok else FAIL,
+        f"QALYs at rate 0: {_g(undiscounted.qalys[0])}; undiscounted in the original model: "
+        f"{_g(base.outcome.qalys_undiscounted[0])}; costs {_g(undiscounted.costs[0])} vs "
+        f"{_g(base.outcome.costs_undiscounted[0])}; largest difference {worst:.3g}",
+    )
 
 
-@_register("zero_costs", "Zero costs give net monetary benefit = WTP x QALYs",
-           "with every cost 0: total costs 0 and NMB = WTP x QALYs for the optimal and every "
-           "fixed policy", f"{TECH_VER}; {NMB_SOURCE}")
+@_register(
+    "zero_costs",
+    "Zero costs give net monetary benefit = WTP x QALYs",
+    "with every cost 0: total costs 0 and NMB = WTP x QALYs for the optimal and every fixed policy",
+    f"{TECH_VER}; {NMB_SOURCE}",
+)
 def check_zero_costs(model: Model, objective: Objective) -> tuple[str, str]:
-    wtp = objective.willingness_to_pay if objective.kind == "net_benefit" else \
-        float(model.settings.willingness_to_pay)
+    wtp = (
+        objective.willingness_to_pay
+        if objective.kind == "net_benefit"
+        else float(model.settings.willingness_to_pay)
+    )
     nmb_objective = Objective("net_benefit", float(wtp))
     solved = _solve(with_costs_scaled(model, 0.0), nmb_objective)
     fixed, _ = _evaluate_fixed(solved.compiled, nmb_objective)
-    worst, ok = _compare(pair for o in (solved.outcome, fixed) for pair in (
-        (o.net_monetary_benefit, wtp * o.qalys), (o.costs, np.zeros_like(o.costs))))
+    worst, ok = _compare(
+        pair
+        for o in (solved.outcome, fixed)
+        for pair in ((o.net_monetary_benefit, wtp * o.qalys), (o.costs, np.zeros_like(o.costs)))
+    )
     o = solved.outcome
-    return (PASS if ok else FAIL,
-            f"WTP {_g(wtp)}: NMB {_g(o.net_monetary_benefit[0])} vs WTP x QALYs "
-            f"{_g(wtp * o.qalys[0])}; costs {_g(o.costs[0])}; largest difference {worst:.3g}")
+    return (
+        PASS if ok else FAIL,
+        f"WTP {_g(wtp)}: NMB {_g(o.net_monetary_benefit[0])} vs WTP x QALYs "
+        f"{_g(wtp * o.qalys[0])}; costs {_g(o.costs[0])}; largest difference {worst:.3g}",
+    )
 
 
-@_register("costs_double", "Doubling every cost doubles total costs",
-           "costs (discounted and undiscounted) of the base-case optimal policy double; QALYs "
-           "do not change", TECH_VER)
+@_register(
+    "costs_double",
+    "Doubling every cost doubles total costs",
+    "costs (discounted and undiscounted) of the base-case optimal policy double; QALYs "
+    "do not change",
+    TECH_VER,
+)
 def check_costs_double(model: Model, objective: Objective) -> tuple[str, str]:
     base = _solve(model, objective)
     doubled = _evaluate(with_costs_scaled(model, 2.0), objective, base.result.policy)
-    worst, ok = _compare([(doubled.costs, 2.0 * base.outcome.costs),
-                          (doubled.costs_undiscounted, 2.0 * base.outcome.costs_undiscounted),
-                          (doubled.qalys, base.outcome.qalys)])
-    return (PASS if ok else FAIL,
-            f"costs {_g(base.outcome.costs[0])} -> {_g(doubled.costs[0])} (x "
-            f"{_g(doubled.costs[0] / base.outcome.costs[0]) if base.outcome.costs[0] else 'n/a'}"
-            f"); largest deviation from exact doubling {worst:.3g}")
+    worst, ok = _compare(
+        [
+            (doubled.costs, 2.0 * base.outcome.costs),
+            (doubled.costs_undiscounted, 2.0 * base.outcome.costs_undiscounted),
+            (doubled.qalys, base.outcome.qalys),
+        ]
+    )
+    return (
+        PASS if ok else FAIL,
+        f"costs {_g(base.outcome.costs[0])} -> {_g(doubled.costs[0])} (x "
+        f"{_g(doubled.costs[0] / base.outcome.costs[0]) if base.outcome.costs[0] else 'n/a'}"
+        f"); largest deviation from exact doubling {worst:.3g}",
+    )
 
 
-@_register("qaly_weight_monotone", "Raising a state's QALY weight never lowers the optimal "
-           "value", f"each state's weight raised by {QALY_BUMP} per year (one batch): the "
-           "optimal value of every state at the start is not lower", PUTERMAN)
+@_register(
+    "qaly_weight_monotone",
+    "Raising a state's QALY weight never lowers the optimal value",
+    f"each state's weight raised by {QALY_BUMP} per year (one batch): the "
+    "optimal value of every state at the start is not lower",
+    PUTERMAN,
+)
 def check_qaly_weight_monotone(model: Model, objective: Objective) -> tuple[str, str]:
     bumped, names = with_qaly_bumps(model)
     n = len(names)
-    sets = {name: np.where(np.arange(n + 1) == i + 1, QALY_BUMP, 0.0)
-            for i, name in enumerate(names)}  # row 0 = base case, row i + 1 bumps state i
+    sets = {
+        name: np.where(np.arange(n + 1) == i + 1, QALY_BUMP, 0.0) for i, name in enumerate(names)
+    }  # row 0 = base case, row i + 1 bumps state i
     solved = _solve(bumped, objective, sets)
     value = solved.result.value[:, 0]  # (1 + S, S)
     change = value[1:] - value[:1]
@@ -421,14 +487,20 @@ def check_qaly_weight_monotone(model: Model, objective: Objective) -> tuple[str,
     worst = float(change.min())
     ok = worst >= -(ABSOLUTE_TOLERANCE + RELATIVE_TOLERANCE * scale)
     start = solved.result.expected_value(solved.compiled.start_distribution)
-    return (PASS if ok else FAIL,
-            f"{n} states bumped; smallest change of any state's optimal value = {_g(worst)} "
-            f"(start value {_g(start[0])} -> {_g(start[1:].min())} .. {_g(start[1:].max())})")
+    return (
+        PASS if ok else FAIL,
+        f"{n} states bumped; smallest change of any state's optimal value = {_g(worst)} "
+        f"(start value {_g(start[0])} -> {_g(start[1:].min())} .. {_g(start[1:].max())})",
+    )
 
 
-@_register("no_effect_ties", "A treatment with no effect, cost or harm ties with the "
-           "reference action", "each action made identical to the first action where both "
-           "are allowed: equal action values, reported as indifferent", f"{TECH_VER}; {ADVISHE}")
+@_register(
+    "no_effect_ties",
+    "A treatment with no effect, cost or harm ties with the reference action",
+    "each action made identical to the first action where both "
+    "are allowed: equal action values, reported as indifferent",
+    f"{TECH_VER}; {ADVISHE}",
+)
 def check_no_effect_ties(model: Model, objective: Objective) -> tuple[str, str]:
     if len(model.actions) < 2:
         return NOT_APPLICABLE, "the model has a single action"
@@ -438,21 +510,28 @@ def check_no_effect_ties(model: Model, objective: Objective) -> tuple[str, str]:
         solved = _solve(with_no_effect(model, action.id, reference.id), objective)
         r = solved.result
         a = model.action_ids.index(action.id)
-        both = (np.asarray(solved.compiled.allowed)[:, [0, a]].all(axis=1)
-                & ~np.asarray(solved.compiled.absorbing, dtype=bool))
+        both = np.asarray(solved.compiled.allowed)[:, [0, a]].all(axis=1) & ~np.asarray(
+            solved.compiled.absorbing, dtype=bool
+        )
         q = r.q_values[..., both, :]
         w, o = _deviation(q[..., a], q[..., 0])
         worst, ok = max(worst, w), ok and o
         flagged = flagged and bool(r.indifferent[..., both].all())
         cells += int(q[..., 0].size)
-    return (PASS if ok and flagged else FAIL,
-            f"largest |Q(action) - Q({reference.id})| = {worst:.3g} over {cells} state-cycles; "
-            f"all reported indifferent: {'yes' if flagged else 'no'}")
+    return (
+        PASS if ok and flagged else FAIL,
+        f"largest |Q(action) - Q({reference.id})| = {worst:.3g} over {cells} state-cycles; "
+        f"all reported indifferent: {'yes' if flagged else 'no'}",
+    )
 
 
-@_register("optimal_beats_fixed", "The optimal value is at least that of every fixed "
-           "strategy", "value of the optimal policy >= value of every built-in fixed strategy "
-           "(never / at once / from each ordered state)", PUTERMAN)
+@_register(
+    "optimal_beats_fixed",
+    "The optimal value is at least that of every fixed strategy",
+    "value of the optimal policy >= value of every built-in fixed strategy "
+    "(never / at once / from each ordered state)",
+    PUTERMAN,
+)
 def check_optimal_beats_fixed(model: Model, objective: Objective) -> tuple[str, str]:
     solved = _solve(model, objective)
     fixed, names = _evaluate_fixed(solved.compiled, objective)
@@ -462,13 +541,18 @@ def check_optimal_beats_fixed(model: Model, objective: Objective) -> tuple[str, 
     tolerance = ABSOLUTE_TOLERANCE + RELATIVE_TOLERANCE * abs(best) + bound
     ok = bool((margin >= -tolerance).all())
     listing = "; ".join(f"{n}: {_g(v)}" for n, v in zip(names, fixed.value, strict=True))
-    return (PASS if ok else FAIL,
-            f"optimal {_g(best)}; {listing}; smallest margin {_g(float(margin.min()))}")
+    return (
+        PASS if ok else FAIL,
+        f"optimal {_g(best)}; {listing}; smallest margin {_g(float(margin.min()))}",
+    )
 
 
-@_register("zero_wtp_cheapest", "At zero willingness to pay the cheapest policy is optimal",
-           "net benefit at WTP 0: the optimal policy costs no more than any fixed strategy",
-           f"{NMB_SOURCE}; {PUTERMAN}")
+@_register(
+    "zero_wtp_cheapest",
+    "At zero willingness to pay the cheapest policy is optimal",
+    "net benefit at WTP 0: the optimal policy costs no more than any fixed strategy",
+    f"{NMB_SOURCE}; {PUTERMAN}",
+)
 def check_zero_wtp_cheapest(model: Model, objective: Objective) -> tuple[str, str]:
     zero = Objective("net_benefit", 0.0)
     solved = _solve(model, zero)
@@ -477,28 +561,40 @@ def check_zero_wtp_cheapest(model: Model, objective: Objective) -> tuple[str, st
     bound = float(np.max(solved.result.error_bound, initial=0.0))
     tolerance = ABSOLUTE_TOLERANCE + RELATIVE_TOLERANCE * abs(cost) + bound
     ok = bool((fixed.costs >= cost - tolerance).all())
-    return (PASS if ok else FAIL,
-            f"optimal cost {_g(cost)}; cheapest fixed strategy "
-            f"({names[int(np.argmin(fixed.costs))]}) {_g(float(fixed.costs.min()))}")
+    return (
+        PASS if ok else FAIL,
+        f"optimal cost {_g(cost)}; cheapest fixed strategy "
+        f"({names[int(np.argmin(fixed.costs))]}) {_g(float(fixed.costs.min()))}",
+    )
 
 
-@_register("value_matches_evaluation", "The solver's value equals the evaluation of its "
-           "own policy", "value at the start from the Bellman recursion = total from the "
-           "cohort trace under the same policy", PUTERMAN)
+@_register(
+    "value_matches_evaluation",
+    "The solver's value equals the evaluation of its own policy",
+    "value at the start from the Bellman recursion = total from the "
+    "cohort trace under the same policy",
+    PUTERMAN,
+)
 def check_value_matches_evaluation(model: Model, objective: Objective) -> tuple[str, str]:
     solved = _solve(model, objective)
     recursion = solved.result.expected_value(solved.compiled.start_distribution)
     bound = float(np.max(solved.result.error_bound, initial=0.0))
     diff = float(np.abs(recursion - solved.outcome.value).max())
     ok = diff <= ABSOLUTE_TOLERANCE + RELATIVE_TOLERANCE * float(np.abs(recursion).max()) + bound
-    return (PASS if ok else FAIL,
-            f"recursion {_g(recursion[0])} vs trace {_g(solved.outcome.value[0])}; "
-            f"difference {diff:.3g} (solver bound {bound:.3g})")
+    return (
+        PASS if ok else FAIL,
+        f"recursion {_g(recursion[0])} vs trace {_g(solved.outcome.value[0])}; "
+        f"difference {diff:.3g} (solver bound {bound:.3g})",
+    )
 
 
-@_register("solvers_agree", "The solvers agree on a stationary model",
-           "value iteration, policy iteration and modified policy iteration: same policy "
-           "(except reported ties) and values within their error bounds", PUTERMAN)
+@_register(
+    "solvers_agree",
+    "The solvers agree on a stationary model",
+    "value iteration, policy iteration and modified policy iteration: same policy "
+    "(except reported ties) and values within their error bounds",
+    PUTERMAN,
+)
 def check_solvers_agree(model: Model, objective: Objective) -> tuple[str, str]:
     if model.n_cycles() is not None:
         return NOT_APPLICABLE, "finite horizon: backward induction is exact and the only method"
@@ -511,12 +607,17 @@ def check_solvers_agree(model: Model, objective: Objective) -> tuple[str, str]:
         gap = float(np.abs(other.value - ref.value).max())
         bound = float(other.error_bound.max() + ref.error_bound.max())
         scale = float(np.abs(ref.value).max())
-        ok = ok and bool(same.all()) and gap <= bound + ABSOLUTE_TOLERANCE + \
-            RELATIVE_TOLERANCE * scale
+        ok = (
+            ok
+            and bool(same.all())
+            and gap <= bound + ABSOLUTE_TOLERANCE + RELATIVE_TOLERANCE * scale
+        )
         worst = max(worst, gap)
-    return (PASS if ok else FAIL,
-            f"largest value difference {worst:.3g}; iterations "
-            + ", ".join(f"{m} {r.iterations}" for m, r in zip(methods, results, strict=True)))
+    return (
+        PASS if ok else FAIL,
+        f"largest value difference {worst:.3g}; iterations "
+        + ", ".join(f"{m} {r.iterations}" for m, r in zip(methods, results, strict=True)),
+    )
 
 
 CHECK_IDS: tuple[str, ...] = tuple(c[0] for c in _CHECKS)
@@ -550,12 +651,11 @@ def verify_model(
     chosen = CHECK_IDS if checks is None else tuple(checks)
     unknown = [c for c in chosen if c not in CHECK_IDS]
     if unknown:
-        raise CaredecideError(f"unknown verification check(s) {unknown}; expected any of "
-                              f"{list(CHECK_IDS)}")
+        raise CaredecideError(
+            f"unknown verification check(s) {unknown}; expected any of {list(CHECK_IDS)}"
+        )
     report = VerificationReport(model_title=model.title)
-    for done, (check_id, _, _, _, function) in enumerate(
-        c for c in _CHECKS if c[0] in chosen
-    ):
+    for done, (check_id, _, _, _, function) in enumerate(c for c in _CHECKS if c[0] in chosen):
         try:
             status, figures = function(model, objective)
         except CaredecideError as error:

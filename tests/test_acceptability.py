@@ -158,8 +158,11 @@ def test_action_shares_by_hand():
     st.integers(1, 3).flatmap(
         lambda a: st.tuples(
             st.just(a),
-            arrays(np.int64, st.tuples(st.integers(1, 20), st.integers(1, 4), st.integers(1, 4)),
-                   elements=st.integers(0, a - 1)),
+            arrays(
+                np.int64,
+                st.tuples(st.integers(1, 20), st.integers(1, 4), st.integers(1, 4)),
+                elements=st.integers(0, a - 1),
+            ),
         )
     )
 )

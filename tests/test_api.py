@@ -33,15 +33,17 @@ def test_readme_frames_are_long_one_row_per_cycle_and_state(readme_run):
     assert set(policy.state) == set(compiled.state_ids)
     assert set(policy.action) <= set(compiled.action_ids)
     # Age = start age + cycle x cycle length (the model's own settings).
-    np.testing.assert_allclose(policy.age, model.settings.start_age
-                               + compiled.cycle_length * policy.cycle)
+    np.testing.assert_allclose(
+        policy.age, model.settings.start_age + compiled.cycle_length * policy.cycle
+    )
     trace = outcome.trace_frame()
     assert trace.shape[0] == (T + 1) * S
     np.testing.assert_allclose(trace.groupby("cycle").proportion.sum(), 1.0, rtol=1e-12)
     totals = outcome.totals_frame()
     assert totals.shape[0] == 1
     assert totals.net_monetary_benefit.iloc[0] == pytest.approx(
-        result.objective.willingness_to_pay * totals.qalys.iloc[0] - totals.costs.iloc[0])
+        result.objective.willingness_to_pay * totals.qalys.iloc[0] - totals.costs.iloc[0]
+    )
     assert str(result.structure()) == result.structure().text != ""
 
 

@@ -23,22 +23,29 @@ def model():
 @pytest.fixture(scope="module")
 def draws():
     rng = np.random.default_rng(5)
-    return pd.DataFrame({"hr_treatment": rng.uniform(0.3, 0.9, 7),
-                         "c_drug_year": rng.uniform(1000, 9000, 7)})
+    return pd.DataFrame(
+        {"hr_treatment": rng.uniform(0.3, 0.9, 7), "c_drug_year": rng.uniform(1000, 9000, 7)}
+    )
 
 
 def test_chunked_batch_equals_one_batch(model, draws):
     objective = Objective("net_benefit", 30000.0)
     calls = []
-    batch = solve_batch(model, draws, objective, chunk_size=3,
-                        progress=lambda done, total: calls.append((done, total)))
+    batch = solve_batch(
+        model,
+        draws,
+        objective,
+        chunk_size=3,
+        progress=lambda done, total: calls.append((done, total)),
+    )
     compiled = compile_model(model, draws)
     whole = solve(compiled, objective)
     outcome = evaluate_policy(compiled, whole.policy, objective)
     np.testing.assert_array_equal(batch.fields["policy"], whole.policy)
     np.testing.assert_allclose(batch.fields["value"], whole.value, rtol=1e-12)
-    np.testing.assert_allclose(batch.totals["net_monetary_benefit"], outcome.net_monetary_benefit,
-                               rtol=1e-12)
+    np.testing.assert_allclose(
+        batch.totals["net_monetary_benefit"], outcome.net_monetary_benefit, rtol=1e-12
+    )
     assert batch.totals["draw"].tolist() == list(range(7))
     assert calls == [(3, 7), (6, 7), (7, 7)]
     assert batch.iterations == [compiled.n_cycles] * 3 and batch.success
@@ -46,9 +53,13 @@ def test_chunked_batch_equals_one_batch(model, draws):
 
 
 def test_reduce_callback_and_keep_nothing(model, draws):
-    batch = solve_batch(model, draws.to_dict("list"), chunk_size=4, keep=(),
-                        reduce=lambda start, stop, result, outcome: (start, stop,
-                                                                    result.policy.shape[0]))
+    batch = solve_batch(
+        model,
+        draws.to_dict("list"),
+        chunk_size=4,
+        keep=(),
+        reduce=lambda start, stop, result, outcome: (start, stop, result.policy.shape[0]),
+    )
     assert batch.fields == {} and batch.totals is None
     assert batch.reductions == [(0, 4, 4), (4, 7, 3)]
 

@@ -16,9 +16,12 @@ distributed = pytest.importorskip("distributed")
 
 @pytest.fixture(scope="module")
 def client():
-    with distributed.LocalCluster(processes=False, n_workers=1, threads_per_worker=2,
-                                  dashboard_address=None) as cluster, \
-            distributed.Client(cluster) as dask:
+    with (
+        distributed.LocalCluster(
+            processes=False, n_workers=1, threads_per_worker=2, dashboard_address=None
+        ) as cluster,
+        distributed.Client(cluster) as dask,
+    ):
         yield dask
 
 
@@ -26,13 +29,24 @@ def test_dask_run_equals_serial_run(client):
     model = load_dict(uncertain_model_dict())
     serial = run_psa(model, 300, seed=77, chunk_size=300, n_frequent=0)
     done = []
-    on_dask = run_psa(model, 300, seed=77, chunk_size=45, n_frequent=0,
-                      map_chunks=dask_map(client, max_in_flight=3),
-                      progress=lambda d, n: done.append(d))
-    for name in ("parameters", "optimal", "candidate_totals", "action_counts",
-                 "distinct_policies", "distinct_counts"):
-        np.testing.assert_array_equal(getattr(on_dask, name), getattr(serial, name),
-                                      err_msg=name)
+    on_dask = run_psa(
+        model,
+        300,
+        seed=77,
+        chunk_size=45,
+        n_frequent=0,
+        map_chunks=dask_map(client, max_in_flight=3),
+        progress=lambda d, n: done.append(d),
+    )
+    for name in (
+        "parameters",
+        "optimal",
+        "candidate_totals",
+        "action_counts",
+        "distinct_policies",
+        "distinct_counts",
+    ):
+        np.testing.assert_array_equal(getattr(on_dask, name), getattr(serial, name), err_msg=name)
     pd.testing.assert_frame_equal(on_dask.evppi(), serial.evppi())
     assert done == [45, 90, 135, 180, 225, 270, 300]  # in draw order
 
@@ -54,8 +68,11 @@ def test_dask_client_refuses_zero_workers():
 
 def test_dask_client_names_an_unreachable_scheduler():
     # Port 1 on loopback: nothing listens there.
-    with pytest.raises(ClusterError, match=r"could not reach the Dask scheduler at "
-                                           r"'tcp://127\.0\.0\.1:1'"):
+    with pytest.raises(
+        ClusterError,
+        match=r"could not reach the Dask scheduler at "
+        r"'tcp://127\.0\.0\.1:1'",
+    ):
         with dask_client("tcp://127.0.0.1:1", connect_timeout="1s"):
             pass
 

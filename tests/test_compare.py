@@ -37,8 +37,9 @@ def test_optimal_row_equals_the_solver_and_is_best(demo, with_range):
     row = with_range.table.set_index("strategy").loc[with_range.optimal_strategy]
     assert row["kind"] == KIND_OPTIMAL
     assert row["cost"] == outcome.costs[0] and row["qalys"] == outcome.qalys[0]
-    assert row["net_monetary_benefit"] == pytest.approx(result.expected_value(
-        compiled.start_distribution)[0], rel=1e-12)
+    assert row["net_monetary_benefit"] == pytest.approx(
+        result.expected_value(compiled.start_distribution)[0], rel=1e-12
+    )
     # The optimal policy has the highest NMB of every row (Puterman 1994, Theorem 4.5.1).
     nmb = with_range.table["net_monetary_benefit"]
     assert row["net_monetary_benefit"] >= nmb.max() - 1e-9 * abs(nmb.max())
@@ -47,16 +48,23 @@ def test_optimal_row_equals_the_solver_and_is_best(demo, with_range):
 
 def test_table_holds_builtins_the_sibling_table_and_frontier_policies(with_range):
     names = set(with_range.table["strategy"])
-    assert {"never treat", "treat at once", "treat from stage_2", "treat from stage_3",
-            "treat stage 2-3 before 80", "treat stage 3 before 75"} <= names
+    assert {
+        "never treat",
+        "treat at once",
+        "treat from stage_2",
+        "treat from stage_3",
+        "treat stage 2-3 before 80",
+        "treat stage 3 before 75",
+    } <= names
     assert any("found beside the model" in n for n in with_range.notes)
     frontier_rows = with_range.table[with_range.table["kind"] == KIND_FRONTIER]
     # every frontier interval is a row of the table (the one containing 30,000 is the
     # optimal policy's own row)
     assert len(frontier_rows) == len(with_range.frontier) - 1
     assert set(with_range.frontier["strategy"]) <= names
-    inside = with_range.frontier[(with_range.frontier["wtp_from"] <= 30000)
-                                 & (with_range.frontier["wtp_to"] >= 30000)]
+    inside = with_range.frontier[
+        (with_range.frontier["wtp_from"] <= 30000) & (with_range.frontier["wtp_to"] >= 30000)
+    ]
     assert list(inside["strategy"]) == [with_range.optimal_strategy]
 
 
@@ -74,9 +82,13 @@ def test_fixed_strategies_never_beat_the_frontier_anywhere_in_the_range(with_ran
 
 def test_incremental_status_and_best_strategy(with_range):
     table = with_range.table
-    assert table["status"].str.match(
-        r"^(on frontier|dominated by .+|extendedly dominated by .+ and .+|identical to .+)$"
-    ).all()
+    assert (
+        table["status"]
+        .str.match(
+            r"^(on frontier|dominated by .+|extendedly dominated by .+ and .+|identical to .+)$"
+        )
+        .all()
+    )
     assert table["best_at_wtp"].sum() == 1
     # 'treat stage 3 before 75' gives fewer QALYs than the cheaper frontier policy P5 at a
     # higher cost: strongly dominated.
@@ -96,7 +108,8 @@ def test_traces_start_from_the_cohort_and_sum_to_one(with_range, demo):
 def test_explicit_strategy_list_and_notes(demo):
     result = compare_strategies(demo, [never("treat"), at_once("treat")], wtp=10000.0)
     assert list(result.table["strategy"].sort_values()) == sorted(
-        ["never treat", "treat at once", "optimal policy at WTP 10,000"])
+        ["never treat", "treat at once", "optimal policy at WTP 10,000"]
+    )
     assert result.frontier is None and result.switches is None
     at_once_notes = result.table.set_index("strategy").loc["treat at once", "notes"]
     assert "'treat' is not allowed in stage_1_tx, stage_2_tx, stage_3_tx" in at_once_notes
@@ -117,8 +130,11 @@ def test_strategy_table_path_adds_to_the_builtins(demo, tmp_path):
 def test_duplicate_strategy_names_are_refused(demo, tmp_path):
     path = tmp_path / "x.csv"
     path.write_text("strategy,state,action\nnever treat,stage_1,wait\n", encoding="utf-8")
-    with pytest.raises(ModelError, match=r"strategy name 'never treat' is used twice "
-                                         r"\(built-in; .*x\.csv\)"):
+    with pytest.raises(
+        ModelError,
+        match=r"strategy name 'never treat' is used twice "
+        r"\(built-in; .*x\.csv\)",
+    ):
         compare_strategies(demo, path)
 
 
@@ -194,8 +210,14 @@ def test_one_action_model_reproduces_the_fixed_strategy_totals_exactly(tmp_path,
     assert len(table) == 2
     optimal, fixed = table.loc[result.optimal_strategy], table.loc["monitor at once"]
     # Same policy, same evaluation code: the totals agree to the last bit.
-    for column in ("cost", "qalys", "life_years", "cost_undiscounted", "qalys_undiscounted",
-                   "net_monetary_benefit"):
+    for column in (
+        "cost",
+        "qalys",
+        "life_years",
+        "cost_undiscounted",
+        "qalys_undiscounted",
+        "net_monetary_benefit",
+    ):
         assert optimal[column] == fixed[column], column
     assert {optimal["status"], fixed["status"]} == {"on frontier", "identical to monitor at once"}
     # Reference totals, start-of-cycle weights (Elbasha & Chhatwal 2016: left Riemann sum),
@@ -209,8 +231,7 @@ def test_one_action_model_reproduces_the_fixed_strategy_totals_exactly(tmp_path,
     if "infinite" in horizon:
         occupancy = scipy.linalg.solve(np.eye(3) - d * ONE_ACTION_P.T, start)
     else:
-        occupancy = sum(d**t * start @ np.linalg.matrix_power(ONE_ACTION_P, t)
-                        for t in range(3))
+        occupancy = sum(d**t * start @ np.linalg.matrix_power(ONE_ACTION_P, t) for t in range(3))
     assert fixed["qalys"] == pytest.approx(occupancy @ [0.9, 0.6, 0.0], rel=1e-12)
     assert fixed["cost"] == pytest.approx(occupancy @ [600.0, 3100.0, 0.0], rel=1e-12)
     assert fixed["life_years"] == pytest.approx(occupancy @ [1.0, 1.0, 0.0], rel=1e-12)
@@ -267,7 +288,8 @@ def test_frontier_chart_has_one_bar_per_interval(with_range):
     spec = make_frontier_chart(with_range.frontier).to_dict()
     assert spec["mark"]["type"] == "bar"
     assert spec["encoding"]["x"]["field"] == "wtp_from" and spec["encoding"]["x2"]["field"] == (
-        "wtp_to")
+        "wtp_to"
+    )
     data = next(iter(spec["datasets"].values()))
     assert len(data) == len(with_range.frontier)
 
@@ -312,7 +334,8 @@ def test_strategies_view_shows_the_library_table_and_frontier(app_test, demo):
     frontier = at.dataframe[-1].value
     np.testing.assert_array_equal(frontier["wtp_to"], expected.frontier["wtp_to"])
     assert f"Best at 30,000 EUR per QALY: {expected.best_strategy}" in [
-        s.value for s in at.subheader]
+        s.value for s in at.subheader
+    ]
 
 
 def test_strategies_view_without_a_range_and_with_a_bad_range(app_test):
@@ -320,8 +343,7 @@ def test_strategies_view_without_a_range_and_with_a_bad_range(app_test):
     at.number_input(key="strategies_high").set_value(0.0).run()
     assert not at.exception, at.exception
     assert len(at.dataframe) == 2  # the table and the fallbacks: no frontier
-    assert "Optimal policy over the willingness-to-pay range" not in [
-        s.value for s in at.subheader]
+    assert "Optimal policy over the willingness-to-pay range" not in [s.value for s in at.subheader]
     at.number_input(key="strategies_low").set_value(5000.0).run()
     assert any("'to' must be above 'from'" in e.value for e in at.error)
 
@@ -343,6 +365,9 @@ def test_from_ages_add_the_age_family(demo):
 
 def test_from_ages_need_a_finite_horizon():
     stationary = demo_model_path().with_name("teaching_stationary.toml")
-    with pytest.raises(ModelError, match=r"strategies\.intensive from age 65\.age: age 65 "
-                                         r"given, but the model has an infinite horizon"):
+    with pytest.raises(
+        ModelError,
+        match=r"strategies\.intensive from age 65\.age: age 65 "
+        r"given, but the model has an infinite horizon",
+    ):
         compare_strategies(stationary, from_ages=(65.0,))

@@ -35,8 +35,9 @@ def citations(text: str) -> set[str]:
 
 def libraries(text: str) -> set[str]:
     """Reference libraries imported or called in ``text`` (``import x``, ``x.attr``)."""
-    return {name for name in LIBRARIES
-            if re.search(rf"\b(?:import|from)\s+{name}\b|\b{name}\.\w", text)}
+    return {
+        name for name in LIBRARIES if re.search(rf"\b(?:import|from)\s+{name}\b|\b{name}\.\w", text)
+    }
 
 
 def sections(markdown: str) -> dict[str, str]:
@@ -45,24 +46,36 @@ def sections(markdown: str) -> dict[str, str]:
     out: dict[str, str] = {}
     for i, match in enumerate(found):
         end = found[i + 1].start() if i + 1 < len(found) else len(markdown)
-        out[match.group(1)] = markdown[match.end():end]
+        out[match.group(1)] = markdown[match.end() : end]
     return out
 
 
 def _test_files() -> list[Path]:
     # This file is left out: its own examples of the citation forms are not sources.
-    return sorted(p for p in (ROOT / "tests").rglob("*.py")
-                  if p.name not in ("__init__.py", "test_docs.py"))
+    return sorted(
+        p for p in (ROOT / "tests").rglob("*.py") if p.name not in ("__init__.py", "test_docs.py")
+    )
 
 
 def test_the_citation_pattern_reads_the_usual_forms():
-    text = ("Source: Briggs, Ades & Price 2003; Strong et al. 2014; Beck, Kassirer & "
-            "Pauker 1982, Am J Med; (Cantor 1994); Miller & Homan 1994; Jones, Epstein & "
-            "Garcia-Mochon 2017; Büyükkaramikli et al. 2019. No year: Table 3, page 2010.")
-    assert citations(text) == {"Price 2003", "Strong 2014", "Pauker 1982", "Cantor 1994",
-                               "Homan 1994", "Garcia-Mochon 2017", "Büyükkaramikli 2019"}
+    text = (
+        "Source: Briggs, Ades & Price 2003; Strong et al. 2014; Beck, Kassirer & "
+        "Pauker 1982, Am J Med; (Cantor 1994); Miller & Homan 1994; Jones, Epstein & "
+        "Garcia-Mochon 2017; Büyükkaramikli et al. 2019. No year: Table 3, page 2010."
+    )
+    assert citations(text) == {
+        "Price 2003",
+        "Strong 2014",
+        "Pauker 1982",
+        "Cantor 1994",
+        "Homan 1994",
+        "Garcia-Mochon 2017",
+        "Büyükkaramikli 2019",
+    }
     assert libraries("from quantecon.markov import DiscreteDP; import scipy.linalg") == {
-        "quantecon", "scipy"}
+        "quantecon",
+        "scipy",
+    }
     assert libraries("checked with `scipy.stats.beta`") == {"scipy"}
     # A package name in a list of versions is not a reference computation.
     assert libraries('versions = {"numpy", "scipy"}; scipyish quantecons') == set()
@@ -89,11 +102,12 @@ def test_every_source_a_test_cites_is_listed_in_validation_md(path):
     section = sections(VALIDATION.read_text(encoding="utf-8")).get(name)
     assert section is not None, (
         f"docs/validation.md has no section for {name}, which cites "
-        f"{sorted(cited | used)}; add a heading naming `{name}` with its checks")
+        f"{sorted(cited | used)}; add a heading naming `{name}` with its checks"
+    )
     missing = sorted((cited - citations(section)) | (used - libraries(section)))
     assert missing == [], (
-        f"docs/validation.md, section `{name}`: sources cited in the test but not listed: "
-        f"{missing}")
+        f"docs/validation.md, section `{name}`: sources cited in the test but not listed: {missing}"
+    )
 
 
 DOC_LINK = re.compile(r"\]\(([^)#\s]+)(?:#[^)]*)?\)")
@@ -103,7 +117,8 @@ DOC_LINK = re.compile(r"\]\(([^)#\s]+)(?:#[^)]*)?\)")
 def test_relative_links_in_the_documentation_resolve(doc):
     text = (DOCS / doc).read_text(encoding="utf-8")
     broken = sorted(
-        target for target in DOC_LINK.findall(text)
+        target
+        for target in DOC_LINK.findall(text)
         if "://" not in target and not (DOCS / target).exists()
     )
     assert broken == [], f"docs/{doc}: links to missing files: {broken}"
@@ -119,8 +134,9 @@ def test_index_puts_the_cautions_first_and_links_every_document():
     flat = " ".join(" ".join(lines).split())  # the caution texts verbatim, lines joined
     assert CAUTION_SHORT in flat and CAUTION_LONG in flat
     linked = set(DOC_LINK.findall(text))
-    unlinked = sorted(p.name for p in DOCS.glob("*.md") if p.name != "index.md"
-                      and p.name not in linked)
+    unlinked = sorted(
+        p.name for p in DOCS.glob("*.md") if p.name != "index.md" and p.name not in linked
+    )
     assert unlinked == [], f"docs/index.md does not link {unlinked}"
 
 
@@ -134,8 +150,12 @@ def test_every_source_cited_in_the_documents_is_in_the_reference_list():
     for doc in ("validation.md", "estimation.md", "limitations.md"):
         cited |= citations((DOCS / doc).read_text(encoding="utf-8"))
     missing = sorted(
-        key for key in cited
-        if not any(re.search(rf"\b{re.escape(key.rsplit(' ', 1)[0])}\b", entry)
-                   and key.rsplit(" ", 1)[1] in entry for entry in entries)
+        key
+        for key in cited
+        if not any(
+            re.search(rf"\b{re.escape(key.rsplit(' ', 1)[0])}\b", entry)
+            and key.rsplit(" ", 1)[1] in entry
+            for entry in entries
+        )
     )
     assert missing == [], f"cited but not in the references of docs/methods.md: {missing}"

@@ -17,16 +17,25 @@ QALYS = Objective("qalys")
 
 
 @settings(max_examples=25, deadline=None)
-@given(seed=st.integers(0, 2**32 - 1), n_states=st.integers(2, 8), n_actions=st.integers(1, 3),
-       rate=st.sampled_from([0.01, 0.035, 0.2]))
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    n_states=st.integers(2, 8),
+    n_actions=st.integers(1, 3),
+    rate=st.sampled_from([0.01, 0.035, 0.2]),
+)
 def test_stationary_evaluation_equals_direct_linear_solve(seed, n_states, n_actions, rate):
     # Reference: scipy.linalg.solve of (I - gamma P_pi) v = r_pi (Puterman 1994, Theorem
     # 6.1.1: the value of a stationary policy solves this system).
     rng = np.random.default_rng(seed)
     P, u, g = random_mdp(rng, n_states, n_actions, 1)
     start = rng.dirichlet(np.ones(n_states))
-    compiled = make_compiled(P[:, None], state_qaly=u[:, None], decision_qaly=g[:, None],
-                             discount_outcomes=rate, start_distribution=start)
+    compiled = make_compiled(
+        P[:, None],
+        state_qaly=u[:, None],
+        decision_qaly=g[:, None],
+        discount_outcomes=rate,
+        start_distribution=start,
+    )
     policy = rng.integers(0, n_actions, n_states)
     gamma = 1 / (1 + rate)
     P_pi = P[0][policy, np.arange(n_states)]
@@ -52,12 +61,16 @@ def test_optimal_policy_outcome_equals_solver_value(seed, n_states, n_cycles, wi
     P = rng.random((D, n_cycles, A, n_states, n_states))
     P /= P.sum(-1, keepdims=True)
     compiled = make_compiled(
-        P, state_qaly=rng.uniform(0, 1, (D, n_cycles + 1, n_states)),
+        P,
+        state_qaly=rng.uniform(0, 1, (D, n_cycles + 1, n_states)),
         state_cost=rng.uniform(0, 1000, (D, 1, n_states)),
         decision_qaly=rng.uniform(-0.1, 0.1, (D, n_cycles, n_states, A)),
         decision_cost=rng.uniform(0, 500, (D, 1, n_states, A)),
-        n_cycles=n_cycles, within_cycle=within, discount_outcomes=rates[0],
-        discount_costs=rates[1], start_distribution=rng.dirichlet(np.ones(n_states)),
+        n_cycles=n_cycles,
+        within_cycle=within,
+        discount_outcomes=rates[0],
+        discount_costs=rates[1],
+        start_distribution=rng.dirichlet(np.ones(n_states)),
     )
     objective = Objective("net_benefit", 20_000.0)
     terminal = rng.uniform(0, 100, n_states) if rates[0] == rates[1] else None
@@ -73,26 +86,41 @@ def test_optimal_policy_outcome_equals_solver_value(seed, n_states, n_cycles, wi
 def test_stationary_optimal_policy_outcome_equals_policy_iteration_value():
     rng = np.random.default_rng(11)
     P, u, g = random_mdp(rng, 6, 3, 1, n_draws=4)
-    compiled = make_compiled(P[:, None], state_qaly=u[:, None], decision_qaly=g[:, None],
-                             discount_outcomes=0.04, within_cycle="trapezoid",
-                             start_distribution=np.full(6, 1 / 6))
+    compiled = make_compiled(
+        P[:, None],
+        state_qaly=u[:, None],
+        decision_qaly=g[:, None],
+        discount_outcomes=0.04,
+        within_cycle="trapezoid",
+        start_distribution=np.full(6, 1 / 6),
+    )
     result = solve(compiled, QALYS)
     outcome = evaluate_policy(compiled, result.policy, QALYS)
-    np.testing.assert_allclose(outcome.value, result.value[:, 0] @ compiled.start_distribution,
-                               rtol=1e-10)
+    np.testing.assert_allclose(
+        outcome.value, result.value[:, 0] @ compiled.start_distribution, rtol=1e-10
+    )
 
 
 def _one_state(n_cycles, within, discount=0.0):
     p = 1 - np.exp(-0.1)
-    return make_compiled(np.array([[[1 - p, p], [0.0, 1.0]]]), state_qaly=[1.0, 0.0],
-                         n_cycles=n_cycles, within_cycle=within, absorbing=[False, True],
-                         discount_outcomes=discount, discount_costs=discount)
+    return make_compiled(
+        np.array([[[1 - p, p], [0.0, 1.0]]]),
+        state_qaly=[1.0, 0.0],
+        n_cycles=n_cycles,
+        within_cycle=within,
+        absorbing=[False, True],
+        discount_outcomes=discount,
+        discount_costs=discount,
+    )
 
 
 @pytest.mark.parametrize(
     ("within", "ten_cycles", "lifetime"),
-    [("start", 6.6425327, 10.508332), ("end", 6.0104121, 9.508332),
-     ("trapezoid", 6.3264724, 10.008332)],
+    [
+        ("start", 6.6425327, 10.508332),
+        ("end", 6.0104121, 9.508332),
+        ("trapezoid", 6.3264724, 10.008332),
+    ],
 )
 def test_life_expectancy_within_cycle_table(within, ten_cycles, lifetime):
     # Source: Elbasha & Chhatwal 2016, Med Decis Making 36(1):115-131 (REFERENCES.md):
@@ -120,9 +148,15 @@ def test_costs_and_net_benefit_by_hand():
     # one-off cost 50 of "treat" at each decision, costs at 100% (d_c = 0.5), outcomes 0%.
     #   QALYs = 0.8 + 0.8 = 1.6; costs = (100 + 50) + 0.5 (100 + 50) = 225
     #   NMB at 1000/QALY = 1600 - 225 = 1375
-    compiled = make_compiled(np.ones((2, 1, 1)), state_qaly=[0.8], state_cost=[100.0],
-                             decision_cost=[[0.0, 50.0]], n_cycles=2, discount_costs=1.0,
-                             absorbing=[False])
+    compiled = make_compiled(
+        np.ones((2, 1, 1)),
+        state_qaly=[0.8],
+        state_cost=[100.0],
+        decision_cost=[[0.0, 50.0]],
+        n_cycles=2,
+        discount_costs=1.0,
+        absorbing=[False],
+    )
     outcome = evaluate_policy(compiled, 1, Objective("net_benefit", 1000.0))
     assert outcome.qalys[0] == pytest.approx(1.6)
     assert outcome.costs[0] == pytest.approx(225.0)
@@ -132,8 +166,9 @@ def test_costs_and_net_benefit_by_hand():
 
 
 def test_undiscounted_total_is_infinite_when_an_absorbing_state_keeps_earning():
-    compiled = make_compiled(np.array([[[0.5, 0.5], [0.0, 1.0]]]), state_qaly=[1.0, 1.0],
-                             absorbing=[False, True])
+    compiled = make_compiled(
+        np.array([[[0.5, 0.5], [0.0, 1.0]]]), state_qaly=[1.0, 1.0], absorbing=[False, True]
+    )
     outcome = evaluate_policy(compiled, 0, QALYS)
     assert np.isinf(outcome.qalys_undiscounted[0])
 
@@ -152,8 +187,9 @@ def test_frames():
 
 
 def test_policy_errors():
-    compiled = make_compiled(np.array([[[1.0, 0], [0, 1]]] * 2), allowed=[[True, False],
-                             [True, True]], n_cycles=2)
+    compiled = make_compiled(
+        np.array([[[1.0, 0], [0, 1]]] * 2), allowed=[[True, False], [True, True]], n_cycles=2
+    )
     with pytest.raises(SolverError, match=r"action index 5 in state 's0' \(cycle 0\)"):
         evaluate_policy(compiled, 5, QALYS)
     with pytest.raises(SolverError, match=r"action 'a1' in state 's0' .* not allowed"):

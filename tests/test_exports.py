@@ -21,13 +21,18 @@ from caredecide.exports import (
 
 
 def test_csv_bytes_are_fixed():
-    frame = pd.DataFrame({"state": ["well", "sick"], "value": [1 / 3, -0.0],
-                          "gap": [np.nan, 1e-20], "n": [1, 2], "tie": [True, False]})
+    frame = pd.DataFrame(
+        {
+            "state": ["well", "sick"],
+            "value": [1 / 3, -0.0],
+            "gap": [np.nan, 1e-20],
+            "n": [1, 2],
+            "tie": [True, False],
+        }
+    )
     # Twelve significant digits, -0 written as 0, NaN as an empty field, "\n" line ends.
     assert table_to_csv(frame) == (
-        b"state,value,gap,n,tie\n"
-        b"well,0.333333333333,,1,True\n"
-        b"sick,0,1e-20,2,False\n"
+        b"state,value,gap,n,tie\nwell,0.333333333333,,1,True\nsick,0,1e-20,2,False\n"
     )
 
 
@@ -37,8 +42,9 @@ def test_column_order_and_row_order_are_kept():
 
 
 @settings(max_examples=25, deadline=None)
-@given(values=arrays(np.float64, st.integers(1, 20),
-                     elements=st.floats(-1e12, 1e12, allow_nan=False)))
+@given(
+    values=arrays(np.float64, st.integers(1, 20), elements=st.floats(-1e12, 1e12, allow_nan=False))
+)
 def test_csv_round_trips_to_twelve_digits_and_repeats_byte_for_byte(values):
     frame = pd.DataFrame({"x": values})
     data = table_to_csv(frame)
@@ -48,8 +54,9 @@ def test_csv_round_trips_to_twelve_digits_and_repeats_byte_for_byte(values):
 
 
 def test_export_tables_writes_one_file_per_table(tmp_path):
-    written = export_tables({"policy": pd.DataFrame({"a": [1]}),
-                             "trace": pd.DataFrame({"b": [0.5]})}, tmp_path / "out")
+    written = export_tables(
+        {"policy": pd.DataFrame({"a": [1]}), "trace": pd.DataFrame({"b": [0.5]})}, tmp_path / "out"
+    )
     assert sorted(p.name for p in written.values()) == ["policy.csv", "trace.csv"]
     assert (tmp_path / "out" / "trace.csv").read_bytes() == b"b\n0.5\n"
 

@@ -41,8 +41,9 @@ def test_hand_derived_switch_points_found_from_a_two_point_grid():
     assert list(table["found_by"]) == [FOUND_GRID, FOUND_REFINEMENT, FOUND_GRID]
     np.testing.assert_array_equal(frontier.policies["P2"][:, 0], [1, 0])  # treat, then wait
     np.testing.assert_allclose(frontier.switches["wtp"], [320.0, 800.0], rtol=1e-12)
-    np.testing.assert_allclose(frontier.switches["nmb_from"], frontier.switches["nmb_to"],
-                               rtol=1e-12)
+    np.testing.assert_allclose(
+        frontier.switches["nmb_from"], frontier.switches["nmb_to"], rtol=1e-12
+    )
 
 
 def test_switch_points_are_the_icers_of_the_incremental_frontier():
@@ -51,13 +52,14 @@ def test_switch_points_are_the_icers_of_the_incremental_frontier():
     # ICERs of the frontier policies in the incremental table.
     compiled = compile_model(load_model(demo_model_path()))
     frontier = policy_frontier(compiled, (0.0, 60000.0))
-    resolved = [resolve_strategy(compiled, computed(label, policy))
-                for label, policy in frontier.policies.items()]
+    resolved = [
+        resolve_strategy(compiled, computed(label, policy))
+        for label, policy in frontier.policies.items()
+    ]
     frame, _, _ = strategy_totals(compiled, resolved, Objective("net_benefit", 0.0))
     table = incremental_analysis(frame)
     assert table["on_frontier"].all()
-    np.testing.assert_allclose(table["icer"].to_numpy()[1:], frontier.switches["wtp"],
-                               rtol=1e-9)
+    np.testing.assert_allclose(table["icer"].to_numpy()[1:], frontier.switches["wtp"], rtol=1e-9)
 
 
 def test_grid_size_does_not_change_the_frontier():
@@ -67,7 +69,8 @@ def test_grid_size_does_not_change_the_frontier():
     assert len(coarse.table) == len(fine.table)
     np.testing.assert_allclose(coarse.switches["wtp"], fine.switches["wtp"], rtol=1e-9)
     assert (coarse.table["found_by"] == FOUND_REFINEMENT).sum() > (
-        fine.table["found_by"] == FOUND_REFINEMENT).sum()
+        fine.table["found_by"] == FOUND_REFINEMENT
+    ).sum()
 
 
 def _random_model(seed: int, n_states: int, n_cycles: int | None):
@@ -81,21 +84,28 @@ def _random_model(seed: int, n_states: int, n_cycles: int | None):
     allowed = np.ones((n_states, A), bool)
     allowed[0, 2] = False
     return make_compiled(
-        P, state_qaly=rng.uniform(0, 1, (n_q, n_states)) * (np.arange(n_states) < n_states - 1),
+        P,
+        state_qaly=rng.uniform(0, 1, (n_q, n_states)) * (np.arange(n_states) < n_states - 1),
         state_cost=rng.uniform(0, 1000, (n_q, n_states)),
         decision_cost=rng.uniform(0, 3000, (n_q if n_cycles is None else n_cycles, n_states, A)),
         decision_qaly=rng.uniform(0, 0.2, (n_q if n_cycles is None else n_cycles, n_states, A)),
-        allowed=allowed, n_cycles=n_cycles,
+        allowed=allowed,
+        n_cycles=n_cycles,
         start_distribution=np.append(rng.dirichlet(np.ones(n_states - 1)), 0.0),
-        discount_outcomes=0.04, discount_costs=0.04 if n_cycles is None else 0.06,
+        discount_outcomes=0.04,
+        discount_costs=0.04 if n_cycles is None else 0.06,
         within_cycle="trapezoid" if n_cycles else "start",
         absorbing=np.arange(n_states) == n_states - 1,
     )
 
 
 @settings(max_examples=25, deadline=None)
-@given(seed=st.integers(0, 2**32 - 1), n_states=st.integers(3, 6),
-       n_cycles=st.one_of(st.none(), st.integers(1, 6)), grid=st.integers(2, 6))
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    n_states=st.integers(3, 6),
+    n_cycles=st.one_of(st.none(), st.integers(1, 6)),
+    grid=st.integers(2, 6),
+)
 def test_switch_points_equal_nmb_and_nothing_better(seed, n_states, n_cycles, grid):
     compiled = _random_model(seed, n_states, n_cycles)
     high = 50000.0

@@ -95,8 +95,9 @@ def test_best_at_wtp_in_worked_example(wtp, best, nmb_best):
 def test_net_monetary_benefit_broadcasts():
     # Common practice: NMB = lambda * QALYs - cost. 20000 * 1.5 - 1000 = 29000.
     assert net_monetary_benefit(1000.0, 1.5, 20000.0) == pytest.approx(29000.0)
-    nmb = net_monetary_benefit(np.array([1000.0, 3000.0]), np.array([1.0, 1.2]),
-                               np.array([[0.0], [10000.0]]))
+    nmb = net_monetary_benefit(
+        np.array([1000.0, 3000.0]), np.array([1.0, 1.2]), np.array([[0.0], [10000.0]])
+    )
     np.testing.assert_allclose(nmb, [[-1000.0, -3000.0], [9000.0, 9000.0]])
 
 
@@ -251,8 +252,9 @@ def test_each_frontier_strategy_is_best_for_some_wtp(values):
     chosen = best_at_wtp(result["strategy"], result["cost"], result["qalys"], probe[strict])
     # Where the interval is not degenerate the best is unique up to identical strategies.
     chosen_rows = result.set_index("strategy").loc[list(chosen), ["cost", "qalys"]]
-    np.testing.assert_array_equal(chosen_rows.to_numpy(),
-                                  front[["cost", "qalys"]].to_numpy()[strict])
+    np.testing.assert_array_equal(
+        chosen_rows.to_numpy(), front[["cost", "qalys"]].to_numpy()[strict]
+    )
 
 
 @settings(max_examples=100, deadline=None)

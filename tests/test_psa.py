@@ -31,10 +31,19 @@ def uncertain_model_dict() -> dict:
     for name, spec in specs.items():
         data["parameters"][name]["distribution"] = spec
     # A parameter that enters no expression: its EVPPI must be ~0.
-    data["parameters"]["unused"] = {"value": 1.0, "kind": "other", "source": "Synthetic: test",
-                                    "distribution": {"type": "normal", "mean": 1.0, "sd": 1.0}}
-    data["groups"] = {"from_well": {"members": ["g_sick", "g_dead", "g_well"],
-                                    "counts": [10.0, 1.0, 89.0], "source": "Synthetic: test"}}
+    data["parameters"]["unused"] = {
+        "value": 1.0,
+        "kind": "other",
+        "source": "Synthetic: test",
+        "distribution": {"type": "normal", "mean": 1.0, "sd": 1.0},
+    }
+    data["groups"] = {
+        "from_well": {
+            "members": ["g_sick", "g_dead", "g_well"],
+            "counts": [10.0, 1.0, 89.0],
+            "source": "Synthetic: test",
+        }
+    }
     data["transitions"]["wait"]["well"] = {"sick": "g_sick", "dead": "g_dead", "well": "g_well"}
     return data
 
@@ -66,13 +75,21 @@ def test_acceptability_equals_shares_of_kept_policies(result):
     shown = frame[frame["action"] == "treat"]["share"].to_numpy()
     np.testing.assert_array_equal(shown, (policies[:, :, sick] == treat).mean(axis=0))
     # Binomial Monte Carlo error sqrt(p (1 - p) / D) (common practice).
-    np.testing.assert_allclose(frame["mc_se"], np.sqrt(frame["share"] * (1 - frame["share"])
-                                                       / DRAWS))
+    np.testing.assert_allclose(
+        frame["mc_se"], np.sqrt(frame["share"] * (1 - frame["share"]) / DRAWS)
+    )
 
 
 def _assert_same(a, b):
-    for name in ("parameters", "optimal", "candidate_totals", "action_counts",
-                 "distinct_policies", "distinct_counts", "policies"):
+    for name in (
+        "parameters",
+        "optimal",
+        "candidate_totals",
+        "action_counts",
+        "distinct_policies",
+        "distinct_counts",
+        "policies",
+    ):
         np.testing.assert_array_equal(getattr(a, name), getattr(b, name), err_msg=name)
     pd.testing.assert_frame_equal(a.evppi(), b.evppi())
     assert a.evpi() == b.evpi()
@@ -90,8 +107,15 @@ def test_pilot_block_and_chunks_give_the_same_results(model):
     # The first 1,000 draws are the pilot; the rest run in chunks of any size.
     done = []
     whole = run_psa(model, 1300, seed=8, chunk_size=1300, n_frequent=2, keep_policies=True)
-    split = run_psa(model, 1300, seed=8, chunk_size=120, n_frequent=2, keep_policies=True,
-                    progress=lambda d, n: done.append(d))
+    split = run_psa(
+        model,
+        1300,
+        seed=8,
+        chunk_size=120,
+        n_frequent=2,
+        keep_policies=True,
+        progress=lambda d, n: done.append(d),
+    )
     _assert_same(split, whole)
     assert done == [1000, 1120, 1240, 1300]
 
@@ -147,16 +171,32 @@ def test_evpi_arithmetic_by_hand():
     totals = np.zeros((3, 2, 2))
     totals[2] = [[10.0, 8.0], [9.0, 12.0]]
     result = PSAResult(
-        n_draws=2, seed=0, objective=Objective("net_benefit", 1.0), state_ids=("s",),
-        action_ids=("a",), decision_states=np.array([False]), allowed=np.ones((1, 1), bool),
+        n_draws=2,
+        seed=0,
+        objective=Objective("net_benefit", 1.0),
+        state_ids=("s",),
+        action_ids=("a",),
+        decision_states=np.array([False]),
+        allowed=np.ones((1, 1), bool),
         ages=None,
-        candidates=[Candidate("one", "test", np.zeros((1, 1), np.int8)),
-                    Candidate("two", "test", np.zeros((1, 1), np.int8))],
-        parameter_names=(), group_members={}, parameters=np.empty((2, 0)),
-        optimal=np.array([[0.0, 0.0, 10.0], [0.0, 0.0, 12.0]]), candidate_totals=totals,
-        action_counts=np.zeros((1, 1, 1), int), distinct_policies=np.zeros((1, 1, 1), np.int8),
-        distinct_counts=np.array([2]), policies=None, chunk_size=2, iterations=[1],
-        success=True, messages=[], wtp_grid=np.array([0.0, 1.0]),
+        candidates=[
+            Candidate("one", "test", np.zeros((1, 1), np.int8)),
+            Candidate("two", "test", np.zeros((1, 1), np.int8)),
+        ],
+        parameter_names=(),
+        group_members={},
+        parameters=np.empty((2, 0)),
+        optimal=np.array([[0.0, 0.0, 10.0], [0.0, 0.0, 12.0]]),
+        candidate_totals=totals,
+        action_counts=np.zeros((1, 1, 1), int),
+        distinct_policies=np.zeros((1, 1, 1), np.int8),
+        distinct_counts=np.array([2]),
+        policies=None,
+        chunk_size=2,
+        iterations=[1],
+        success=True,
+        messages=[],
+        wtp_grid=np.array([0.0, 1.0]),
     )
     np.testing.assert_allclose(result.expected_loss()["expected_loss"], [1.5, 1.0])
     assert result.evpi()["evpi"] == pytest.approx(1.0)
@@ -187,7 +227,8 @@ def test_convergence_ends_at_the_full_estimates(result):
     assert last.loc["EVPI", "n"] == DRAWS
     assert last.loc["EVPI", "mean"] == pytest.approx(result.evpi()["evpi"])
     assert last.loc["expected optimal value", "mean"] == pytest.approx(
-        result.evpi()["expected_optimal_value"])
+        result.evpi()["expected_optimal_value"]
+    )
 
 
 def test_infinite_horizon_has_one_age_band():
@@ -210,8 +251,7 @@ def test_user_strategies_join_the_candidates(model):
 
 
 def test_rank_correlation_reaches_the_draws(model):
-    linked = run_psa(model, 200, seed=3, n_frequent=0,
-                     rank_correlation={("u_sick", "c_drug"): 0.8})
+    linked = run_psa(model, 200, seed=3, n_frequent=0, rank_correlation={("u_sick", "c_drug"): 0.8})
     columns = [linked.parameter_names.index(n) for n in ("u_sick", "c_drug")]
     ranks = pd.DataFrame(linked.parameters[:, columns]).rank()
     assert ranks.corr().iloc[0, 1] > 0.6
@@ -248,8 +288,15 @@ def test_a_pilot_larger_than_the_budget_runs_in_chunks_with_the_same_results(mod
     assert default_chunk_size(model, 1300, limit) == 100
     done = []
     whole = run_psa(model, 1300, seed=8, chunk_size=1300, n_frequent=2, keep_policies=True)
-    small = run_psa(model, 1300, seed=8, memory_limit_bytes=limit, n_frequent=2,
-                    keep_policies=True, progress=lambda d, n: done.append(d))
+    small = run_psa(
+        model,
+        1300,
+        seed=8,
+        memory_limit_bytes=limit,
+        n_frequent=2,
+        keep_policies=True,
+        progress=lambda d, n: done.append(d),
+    )
     _assert_same(small, whole)
     assert [c.name for c in small.candidates] == [c.name for c in whole.candidates]
     assert done == list(range(100, 1301, 100))
@@ -299,8 +346,11 @@ def test_refuses_draws_whose_results_cannot_fit_in_memory(model, monkeypatch):
     assert psa.kept_bytes(10, 4, 2) == 2 * 10 * 8 * (4 + 3 + 6)
     assert psa.kept_bytes(10, 4, 2, policy_cells=5) == 2 * 10 * (8 * 13 + 5)
     monkeypatch.setattr(psa, "default_memory_limit", lambda: 1000)
-    with pytest.raises(ModelTooLargeError, match=r"draws = 2,000: the per-draw results would "
-                                                 r"need about .* GiB .*expected at most"):
+    with pytest.raises(
+        ModelTooLargeError,
+        match=r"draws = 2,000: the per-draw results would "
+        r"need about .* GiB .*expected at most",
+    ):
         run_psa(model, 2000, seed=1, chunk_size=100, n_frequent=0)
 
 
@@ -317,6 +367,9 @@ def test_evppi_on_the_first_draws_equals_the_regression_on_them(result):
     total = float(evpi(result.candidate_values[:250]))
     assert table.loc["u_sick", "share_of_evpi"] == pytest.approx(direct.value / total)
     assert (result.evppi(max_draws=None)["draws"] == DRAWS).all()
-    with pytest.raises(ModelError, match=r"max_draws: 10; expected None or a whole number "
-                                         r">= 200"):
+    with pytest.raises(
+        ModelError,
+        match=r"max_draws: 10; expected None or a whole number "
+        r">= 200",
+    ):
         result.evppi(max_draws=10)

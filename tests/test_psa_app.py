@@ -32,8 +32,9 @@ def test_uncertainty_view_shows_the_library_evpi():
     # The strategy table beside the demo model joins the candidates, as in the CLI.
     beside = sibling_table(demo_model_path())
     assert any(beside.name in c.value for c in at.caption)
-    expected = run_psa(load_model(demo_model_path()), 60, 1,
-                       strategies=read_strategy_table(beside)).evpi()
+    expected = run_psa(
+        load_model(demo_model_path()), 60, 1, strategies=read_strategy_table(beside)
+    ).evpi()
     metrics = {m.label: m.value for m in at.metric}
     label = next(k for k in metrics if k.startswith("EVPI of the timing decision"))
     assert metrics[label] == f"{expected['evpi']:,.2f}"
@@ -46,17 +47,18 @@ def test_policy_acceptability_chart_shows_the_shares_of_one_action(small_result)
     spec = charts.make_policy_acceptability_chart(frame, action="treat").to_dict()
     rows = next(iter(spec["datasets"].values()))
     assert {r["action"] for r in rows} == {"treat"}
-    assert [r["label"] for r in rows] == [f"{s:.0%}" for s in
-                                          frame[frame["action"] == "treat"]["share"]]
+    assert [r["label"] for r in rows] == [
+        f"{s:.0%}" for s in frame[frame["action"] == "treat"]["share"]
+    ]
 
 
 def test_acceptability_curves_chart_has_one_line_per_candidate(small_result):
-    chart = charts.make_acceptability_curves_chart(small_result.acceptability_curves(),
-                                                   small_result.acceptability_frontier())
+    chart = charts.make_acceptability_curves_chart(
+        small_result.acceptability_curves(), small_result.acceptability_frontier()
+    )
     assert isinstance(chart, alt.LayerChart)
     spec = chart.to_dict()
-    assert spec["layer"][0]["encoding"]["color"]["scale"]["domain"] == \
-        small_result.candidate_names
+    assert spec["layer"][0]["encoding"]["color"]["scale"]["domain"] == small_result.candidate_names
     assert len(spec["layer"]) == 2  # curves and frontier dots
 
 

@@ -26,10 +26,11 @@ def built(tmp_path_factory):
     folder = tmp_path_factory.mktemp("report")
     model = folder / "model.toml"
     text = BASE.read_text(encoding="utf-8")
-    text = text.replace('title = "Synthetic verification base model"',
-                        f"title = '{HOSTILE}'")
-    text = text.replace('source = "Synthetic: test"\n\n[parameters.p_die_sick]',
-                        f"source = '{HOSTILE}'\n\n[parameters.p_die_sick]")
+    text = text.replace('title = "Synthetic verification base model"', f"title = '{HOSTILE}'")
+    text = text.replace(
+        'source = "Synthetic: test"\n\n[parameters.p_die_sick]',
+        f"source = '{HOSTILE}'\n\n[parameters.p_die_sick]",
+    )
     model.write_text(text, encoding="utf-8")
     out = folder / "report.html"
     record = build_report(model, out, draws=40, seed=5, command_line="caredecide report")
@@ -44,7 +45,7 @@ def test_report_has_every_section_with_the_cautions_first(built):
     assert page.index("RESEARCH USE ONLY") < positions[1]
     assert "not a substitute for clinical judgment" in page
     # Probabilistic results were asked for, so their section holds results, not a note.
-    uncertainty = page[positions[7]:positions[8]]
+    uncertainty = page[positions[7] : positions[8]]
     assert "40 parameter draws, seed 5" in uncertainty
 
 
@@ -57,8 +58,11 @@ def test_report_escapes_model_text_and_loads_nothing(built):
     assert "default-src 'none'" in page  # Content-Security-Policy
     # The only URLs are XML namespaces of the inline SVG charts (and the escaped hostile text).
     urls = set(re.findall(r"https?://[^\s\"'<>&]+", page))
-    assert urls <= {"http://www.w3.org/2000/svg", "http://www.w3.org/1999/xlink",
-                    "http://example.invalid/x.png"}
+    assert urls <= {
+        "http://www.w3.org/2000/svg",
+        "http://www.w3.org/1999/xlink",
+        "http://example.invalid/x.png",
+    }
     assert page.count("<svg") >= 3  # policy map, cohort trace, tornado (+ CE plane)
 
 
@@ -69,8 +73,13 @@ def test_run_record_names_model_hash_seed_and_outputs(built):
     assert stored.model_sha256 == sha256_file(model)
     assert stored.seed == 5 and stored.arguments["draws"] == 40
     tables = tables_dir_for(out)
-    assert {"policy.csv", "trace.csv", "input_evidence.csv", "verification.csv",
-            "results.xlsx"} <= set(stored.outputs)
+    assert {
+        "policy.csv",
+        "trace.csv",
+        "input_evidence.csv",
+        "verification.csv",
+        "results.xlsx",
+    } <= set(stored.outputs)
     for name, digest in stored.outputs.items():
         assert sha256_file(tables / name) == digest
     page = out.read_text(encoding="utf-8")
@@ -80,8 +89,7 @@ def test_run_record_names_model_hash_seed_and_outputs(built):
 def test_evidence_table_lists_every_parameter_with_its_source(built):
     _, out, _ = built
     evidence = pd.read_csv(tables_dir_for(out) / "input_evidence.csv")
-    assert list(evidence["parameter"]) == ["p_sick", "p_die_sick", "rr_treat", "u_sick",
-                                           "c_drug"]
+    assert list(evidence["parameter"]) == ["p_sick", "p_die_sick", "rr_treat", "u_sick", "c_drug"]
     assert evidence.loc[0, "source"] == HOSTILE
     assert evidence.loc[1, ["value", "low", "high"]].tolist() == [0.2, 0.1, 0.3]
 
@@ -98,9 +106,10 @@ def test_rerun_detects_a_changed_model(built, tmp_path):
     folder = tmp_path / "copy"
     shutil.copytree(out.parent, folder)
     changed = folder / model.name
-    changed.write_text(changed.read_text(encoding="utf-8").replace("value = 0.1\n",
-                                                                   "value = 0.12\n", 1),
-                       encoding="utf-8")
+    changed.write_text(
+        changed.read_text(encoding="utf-8").replace("value = 0.1\n", "value = 0.12\n", 1),
+        encoding="utf-8",
+    )
     outcome = rerun(record_path_for(folder / out.name), out_dir=tmp_path / "tables")
     assert outcome.model_changed
     assert not outcome.reproduced
@@ -113,33 +122,42 @@ def test_missing_analysis_module_leaves_a_note(monkeypatch):
     monkeypatch.setitem(sys.modules, "caredecide.compare", None)
     data = run_analyses(BASE)
     assert "strategies" not in data.results
-    assert data.notes["strategies"] == ("left out: module caredecide.compare is not "
-                                        "available in this install")
+    assert data.notes["strategies"] == (
+        "left out: module caredecide.compare is not available in this install"
+    )
     assert data.notes["uncertainty"].startswith("not run: give --draws N")
     from caredecide.report.html import render_report
 
     page = render_report(data, {})
-    section = page[page.index('<section id="strategies">'):page.index('<section id="sens')]
+    section = page[page.index('<section id="strategies">') : page.index('<section id="sens')]
     assert "module caredecide.compare is not available" in section
 
 
 def test_probabilistic_section_has_its_charts_and_tables(built):
     _, out, record = built
     page = out.read_text(encoding="utf-8")
-    section = page[page.index('<section id="uncertainty">'):
-                   page.index('<section id="verification">')]
+    section = page[
+        page.index('<section id="uncertainty">') : page.index('<section id="verification">')
+    ]
     # Heat map of the treatment's share and the acceptability curves, drawn inline.
     assert section.count("<svg") == 2
     assert "How often 'treat' is optimal across the parameter draws" in section
     assert "Acceptability curves" in section
     # 40 draws are too few for EVPPI (MIN_EVPPI_DRAWS = 200): the section says so.
     assert "EVPPI not computed: it needs at least 200 draws" in section
-    assert {"psa_acceptability_curves.csv", "psa_acceptability_frontier.csv",
-            "psa_evppi.csv", "psa_convergence.csv", "psa_evpi.csv"} <= set(record.outputs)
+    assert {
+        "psa_acceptability_curves.csv",
+        "psa_acceptability_frontier.csv",
+        "psa_evppi.csv",
+        "psa_convergence.csv",
+        "psa_evpi.csv",
+    } <= set(record.outputs)
 
 
-STRATEGY_TABLE = ("strategy,state,age_from,age_to,action,note\n"
-                  "treat sick before 65,sick,,65,treat,Synthetic test strategy (invented)\n")
+STRATEGY_TABLE = (
+    "strategy,state,age_from,age_to,action,note\n"
+    "treat sick before 65,sick,,65,treat,Synthetic test strategy (invented)\n"
+)
 
 
 def test_strategy_table_beside_the_model_is_hashed_and_a_change_is_detected(tmp_path):
@@ -153,8 +171,7 @@ def test_strategy_table_beside_the_model_is_hashed_and_a_change_is_detected(tmp_
     # The table's strategy joins the comparison and the probabilistic candidates.
     tables = tables_dir_for(out)
     assert "treat sick before 65" in set(pd.read_csv(tables / "strategies.csv")["strategy"])
-    assert "treat sick before 65" in set(
-        pd.read_csv(tables / "psa_expected_loss.csv")["candidate"])
+    assert "treat sick before 65" in set(pd.read_csv(tables / "psa_expected_loss.csv")["candidate"])
     assert "input file: model.strategies.csv" in out.read_text(encoding="utf-8")
 
     assert rerun(record_path_for(out), out_dir=tmp_path / "same").reproduced
@@ -184,8 +201,9 @@ def test_a_model_without_parameters_gets_a_report_with_a_note(tmp_path):
     out = tmp_path / "report.html"
     build_report(model, out, draws=20, seed=1)
     page = out.read_text(encoding="utf-8")
-    section = page[page.index('<section id="sensitivity">'):
-                   page.index('<section id="uncertainty">')]
+    section = page[
+        page.index('<section id="sensitivity">') : page.index('<section id="uncertainty">')
+    ]
     assert "not run: the model has no parameters to vary" in section
     evidence = pd.read_csv(tables_dir_for(out) / "input_evidence.csv")
     assert len(evidence) == 0 and "parameter" in evidence.columns

@@ -20,10 +20,17 @@ from caredecide.runrecord import (
 
 
 def _record(**changes) -> RunRecord:
-    fields = dict(command="report", arguments={"draws": None}, model_path="m.toml",
-                  model_sha256="0" * 64, seed=None, versions={"caredecide": "0"},
-                  date="2026-01-01T00:00:00+00:00", outputs={"a.csv": "1" * 64},
-                  output_dir="m_tables")
+    fields = dict(
+        command="report",
+        arguments={"draws": None},
+        model_path="m.toml",
+        model_sha256="0" * 64,
+        seed=None,
+        versions={"caredecide": "0"},
+        date="2026-01-01T00:00:00+00:00",
+        outputs={"a.csv": "1" * 64},
+        output_dir="m_tables",
+    )
     fields.update(changes)
     return RunRecord(**fields)
 
@@ -31,7 +38,8 @@ def _record(**changes) -> RunRecord:
 def test_sha256_of_abc():
     # Source: FIPS 180-2, Appendix B.1 (SHA-256 of "abc").
     assert sha256_bytes(b"abc") == (
-        "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad")
+        "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
+    )
 
 
 def test_versions_name_the_package_python_and_numerical_libraries():
@@ -108,8 +116,9 @@ def test_negative_seed_is_refused(tmp_path):
 def test_bad_draws_argument_is_refused(tmp_path):
     data = json.loads(_record().to_json())
     data["arguments"]["draws"] = "many"
-    with pytest.raises(RunRecordError,
-                       match=r"field 'arguments.draws' = 'many'; expected null or an integer"):
+    with pytest.raises(
+        RunRecordError, match=r"field 'arguments.draws' = 'many'; expected null or an integer"
+    ):
         read_record(_write(tmp_path, json.dumps(data)))
 
 
@@ -122,8 +131,11 @@ def test_output_hash_that_is_not_text_is_refused(tmp_path):
 
 def test_input_files_that_are_not_a_path_to_hash_map_are_refused(tmp_path):
     data = json.loads(_record().to_json()) | {"input_files": ["life.csv"]}
-    with pytest.raises(RunRecordError, match=r"field 'input_files' = \['life.csv'\]; expected an "
-                       "object of file path -> SHA-256 text"):
+    with pytest.raises(
+        RunRecordError,
+        match=r"field 'input_files' = \['life.csv'\]; expected an "
+        "object of file path -> SHA-256 text",
+    ):
         read_record(_write(tmp_path, json.dumps(data)))
 
 

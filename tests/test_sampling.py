@@ -33,8 +33,7 @@ def _model_with(distributions: dict[str, dict], groups: dict | None = None):
         data["parameters"][name]["distribution"] = spec
     if groups:
         data["groups"] = groups
-        data["transitions"]["wait"]["well"] = {"sick": "g_sick", "dead": "g_dead",
-                                               "well": "g_well"}
+        data["transitions"]["wait"]["well"] = {"sick": "g_sick", "dead": "g_dead", "well": "g_well"}
     return load_dict(data)
 
 
@@ -56,14 +55,20 @@ def _check_mean_and_variance(x: np.ndarray, mean: float, variance: float) -> Non
         ({"type": "gamma", "mean": 1000.0, "se": 200.0}, 1000.0, 40_000.0),  # Gamma(25, 40)
         # Lognormal moments: mean exp(mu + s^2/2), variance (e^{s^2} - 1) e^{2 mu + s^2}
         # (common textbook result).
-        ({"type": "lognormal", "meanlog": 0.0, "sdlog": 0.25},
-         math.exp(0.25**2 / 2), math.expm1(0.25**2) * math.exp(0.25**2)),
+        (
+            {"type": "lognormal", "meanlog": 0.0, "sdlog": 0.25},
+            math.exp(0.25**2 / 2),
+            math.expm1(0.25**2) * math.exp(0.25**2),
+        ),
         ({"type": "normal", "mean": 3.0, "sd": 2.0}, 3.0, 4.0),
         # Uniform: (a + b)/2, (b - a)^2/12; triangular: (a + c + b)/3,
         # (a^2 + b^2 + c^2 - ab - ac - bc)/18 (common textbook results).
         ({"type": "uniform", "low": 2.0, "high": 5.0}, 3.5, 0.75),
-        ({"type": "triangular", "low": 0.0, "mode": 1.0, "high": 4.0}, 5.0 / 3.0,
-         (16 + 1 - 4) / 18),
+        (
+            {"type": "triangular", "low": 0.0, "mode": 1.0, "high": 4.0},
+            5.0 / 3.0,
+            (16 + 1 - 4) / 18,
+        ),
     ],
 )
 def test_sample_moments_match_distribution(spec, mean, variance):
@@ -77,20 +82,33 @@ def test_dirichlet_group_moments_and_rows_sum_to_one():
     # Source: Briggs, Ades & Price 2003, Med Decis Making 23(4):341-350: Dirichlet(counts)
     # has mean n_i / N and variance n_i (N - n_i) / (N^2 (N + 1)).
     counts = [30.0, 50.0, 20.0]
-    model = _model_with({}, {"row": {"members": ["g_sick", "g_dead", "g_well"],
-                                     "counts": counts, "source": "Synthetic: test"}})
+    model = _model_with(
+        {},
+        {
+            "row": {
+                "members": ["g_sick", "g_dead", "g_well"],
+                "counts": counts,
+                "source": "Synthetic: test",
+            }
+        },
+    )
     draws = sample_parameters(model, N, seed=5)
     assert list(draws.columns) == ["g_sick", "g_dead", "g_well"]
     np.testing.assert_allclose(draws.sum(axis=1), 1.0, atol=1e-12)
     total = sum(counts)
     for name, n_i in zip(draws.columns, counts, strict=True):
-        _check_mean_and_variance(draws[name].to_numpy(), n_i / total,
-                                 n_i * (total - n_i) / (total**2 * (total + 1)))
+        _check_mean_and_variance(
+            draws[name].to_numpy(), n_i / total, n_i * (total - n_i) / (total**2 * (total + 1))
+        )
 
 
 def test_fixed_and_missing_distributions_are_not_sampled():
-    model = _model_with({"p_sick": {"type": "fixed", "value": 0.1},
-                         "u_sick": {"type": "beta", "alpha": 6.0, "beta": 4.0}})
+    model = _model_with(
+        {
+            "p_sick": {"type": "fixed", "value": 0.1},
+            "u_sick": {"type": "beta", "alpha": 6.0, "beta": 4.0},
+        }
+    )
     assert ParameterSampler.from_model(model).names == ("u_sick",)
 
 
@@ -116,9 +134,16 @@ def test_block_uses_the_spawned_child_seed():
 @settings(max_examples=25, deadline=None)
 @given(cuts=st.lists(st.integers(min_value=0, max_value=2500), max_size=6))
 def test_any_chunking_gives_the_same_draws(cuts):
-    model = _model_with({"x": {"type": "gamma", "shape": 2.0, "scale": 3.0}},
-                        {"row": {"members": ["g_sick", "g_dead", "g_well"],
-                                 "counts": [3.0, 1.0, 6.0], "source": "Synthetic: test"}})
+    model = _model_with(
+        {"x": {"type": "gamma", "shape": 2.0, "scale": 3.0}},
+        {
+            "row": {
+                "members": ["g_sick", "g_dead", "g_well"],
+                "counts": [3.0, 1.0, 6.0],
+                "source": "Synthetic: test",
+            }
+        },
+    )
     sampler = ParameterSampler.from_model(model)
     whole = sampler.draw(17, 0, 2500)
     edges = [0, *sorted(cuts), 2500]
@@ -127,8 +152,10 @@ def test_any_chunking_gives_the_same_draws(cuts):
 
 
 def test_rank_correlation_keeps_marginals_and_correlates_ranks():
-    specs = {"a": {"type": "gamma", "mean": 10.0, "se": 3.0},
-             "b": {"type": "beta", "mean": 0.3, "se": 0.05}}
+    specs = {
+        "a": {"type": "gamma", "mean": 10.0, "se": 3.0},
+        "b": {"type": "beta", "mean": 0.3, "se": 0.05},
+    }
     model = _model_with(specs)
     plain = ParameterSampler.from_model(model).block(2, 0)
     linked = ParameterSampler.from_model(model, rank_correlation={("a", "b"): 0.7}).block(2, 0)
@@ -137,7 +164,8 @@ def test_rank_correlation_keeps_marginals_and_correlates_ranks():
     # The target is the correlation of normal scores; for normal variables Spearman's
     # rho is (6 / pi) asin(r / 2) (Pearson 1907; from memory) = 0.6829 for r = 0.7.
     draws = ParameterSampler.from_model(model, rank_correlation={("a", "b"): 0.7}).draw(
-        2, 0, 10 * BLOCK_SIZE)
+        2, 0, 10 * BLOCK_SIZE
+    )
     rho = scipy.stats.spearmanr(draws[:, 0], draws[:, 1]).statistic
     assert rho == pytest.approx(6 / math.pi * math.asin(0.35), abs=0.03)
 
@@ -168,16 +196,27 @@ def test_refuses_correlation_with_fixed_parameter():
 
 
 def test_refuses_correlation_with_dirichlet_member():
-    model = _model_with({"x": {"type": "normal", "mean": 0.0, "sd": 1.0}},
-                        {"row": {"members": ["g_sick", "g_dead", "g_well"],
-                                 "counts": [3.0, 1.0, 6.0], "source": "Synthetic: test"}})
+    model = _model_with(
+        {"x": {"type": "normal", "mean": 0.0, "sd": 1.0}},
+        {
+            "row": {
+                "members": ["g_sick", "g_dead", "g_well"],
+                "counts": [3.0, 1.0, 6.0],
+                "source": "Synthetic: test",
+            }
+        },
+    )
     with pytest.raises(ModelError, match=r"'g_sick' is a Dirichlet group member"):
         ParameterSampler.from_model(model, rank_correlation={("x", "g_sick"): 0.5})
 
 
 def test_refuses_correlation_outside_minus_one_one():
-    model = _model_with({"x": {"type": "normal", "mean": 0.0, "sd": 1.0},
-                         "y": {"type": "normal", "mean": 0.0, "sd": 1.0}})
+    model = _model_with(
+        {
+            "x": {"type": "normal", "mean": 0.0, "sd": 1.0},
+            "y": {"type": "normal", "mean": 0.0, "sd": 1.0},
+        }
+    )
     with pytest.raises(ModelError, match=r"rank_correlation\.x\.y: correlation 1\.5; expected"):
         ParameterSampler.from_model(model, rank_correlation={("x", "y"): 1.5})
 

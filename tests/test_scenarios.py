@@ -41,13 +41,14 @@ def solved():
 
 def test_the_bundled_scenarios_are_all_found():
     names = {path.name for path in SCENARIOS}
-    assert {"demo_progressive.toml", "lesion_surveillance.toml",
-            "teaching_stationary.toml"} <= names
+    assert {
+        "demo_progressive.toml",
+        "lesion_surveillance.toml",
+        "teaching_stationary.toml",
+    } <= names
 
 
-@pytest.mark.parametrize(
-    "name", ["demo_progressive", "lesion_surveillance", "teaching_stationary"]
-)
+@pytest.mark.parametrize("name", ["demo_progressive", "lesion_surveillance", "teaching_stationary"])
 def test_each_required_scenario_has_a_short_readme(name):
     readme = MODELS_DIR / f"{name}.README.md"
     text = readme.read_text(encoding="utf-8")
@@ -55,8 +56,10 @@ def test_each_required_scenario_has_a_short_readme(name):
     assert f"`{name}.toml`" in text
     assert f"caredecide solve synthetic_cohort/models/{name}.toml" in text
     # The caution of caredecide/cautions.py, in the README's own sentence.
-    assert "research use only: not a substitute for clinical judgment, local guidelines or " \
+    assert (
+        "research use only: not a substitute for clinical judgment, local guidelines or "
         "licensed practice" in " ".join(text.split()).lower()
+    )
     assert f"`{name}.README.md`" in (MODELS_DIR / "README.md").read_text(encoding="utf-8")
 
 
@@ -95,6 +98,7 @@ def test_scenario_has_a_non_trivial_policy(path, solved):
 
 # --- lesion surveillance: intervene from a size class, below an age ------------------
 
+
 def _lesion_policy(solved):
     _, compiled, result = solved[LESION.name]
     sizes = [compiled.state_ids.index(s) for s in ("small", "medium", "large")]
@@ -117,8 +121,7 @@ def test_lesion_intervention_stops_beyond_an_age_and_never_resumes(solved):
     assert np.all(np.diff(intervene.astype(int), axis=0) <= 0)
     assert np.any(intervene[:-1] & ~intervene[1:]), "the action changes with age in no size class"
     # The procedural risk grows with age, so large lesions keep the intervention longest.
-    last_age = [result.ages[np.flatnonzero(intervene[:, k])].max(initial=-np.inf)
-                for k in range(3)]
+    last_age = [result.ages[np.flatnonzero(intervene[:, k])].max(initial=-np.inf) for k in range(3)]
     assert last_age[2] >= last_age[1] >= last_age[0]
 
 
@@ -141,6 +144,7 @@ def test_lesion_procedure_row_combines_procedural_and_background_death(solved):
 
 # --- teaching model: the infinite-horizon solvers agree --------------------------------
 
+
 def _rewards(compiled, objective):
     """(S, A) reward and (S, A, S) transition of the stationary teaching model (draw 0)."""
     lam, k = objective.outcome_weight, objective.cost_weight
@@ -157,8 +161,13 @@ def teaching():
     compiled = compile_model(model)
     objective = Objective.from_settings(model.settings)
     runs = {
-        method: solve(compiled, objective, method=method, tolerance=1e-12,
-                      record_history=(method == "value_iteration"))
+        method: solve(
+            compiled,
+            objective,
+            method=method,
+            tolerance=1e-12,
+            record_history=(method == "value_iteration"),
+        )
         for method in ("value_iteration", "policy_iteration", "modified_policy_iteration")
     }
     return compiled, objective, runs
@@ -182,14 +191,16 @@ def test_teaching_solvers_agree_with_quantecon(teaching):
     R, Q = _rewards(compiled, objective)
     gamma = compiled.per_cycle_discount()[0]
     reference = quantecon.markov.DiscreteDP(R, Q, gamma).solve(
-        method="policy_iteration", max_iter=1000)
+        method="policy_iteration", max_iter=1000
+    )
     scale = np.abs(reference.v).max()
     for method, result in runs.items():
         assert result.success, (method, result.message)
         np.testing.assert_array_equal(result.policy[0, 0], reference.sigma, err_msg=method)
         # Relative tolerance 1e-12 of the largest value: the error bound is ~1e-12 * scale.
-        np.testing.assert_allclose(result.value[0, 0], reference.v, rtol=0,
-                                   atol=1e-9 * scale, err_msg=method)
+        np.testing.assert_allclose(
+            result.value[0, 0], reference.v, rtol=0, atol=1e-9 * scale, err_msg=method
+        )
     # The policy differs between states: it is worth teaching.
     assert np.unique(reference.sigma[~compiled.absorbing]).size == 2
 

@@ -505,6 +505,9 @@ def test_model_without_parameters_is_refused_with_a_clear_message():
     from caredecide.sensitivity import one_way
 
     path = Path(__file__).parent / "data" / "no_parameters.toml"
-    with pytest.raises(ModelError, match=r"no_parameters.toml: parameters: the model has no "
-                                         r"parameters to vary"):
+    with pytest.raises(
+        ModelError,
+        match=r"no_parameters.toml: parameters: the model has no "
+        r"parameters to vary",
+    ):
         one_way(load_model(path))

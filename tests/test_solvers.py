@@ -47,8 +47,9 @@ def test_puterman_two_state_finite_horizon_values_and_policy():
     assert result.q_values[0, 0, 1, 1] == -np.inf
 
 
-@pytest.mark.parametrize("method", ["policy_iteration", "value_iteration",
-                                    "modified_policy_iteration"])
+@pytest.mark.parametrize(
+    "method", ["policy_iteration", "value_iteration", "modified_policy_iteration"]
+)
 def test_puterman_two_state_infinite_horizon_by_hand(method):
     # Rewards and moves of Puterman 1994 section 3.1, discounted at gamma = 1/1.05.
     # By hand: v(s2) = -1 / (1 - gamma) = -21.
@@ -73,15 +74,19 @@ def test_auto_picks_backward_induction_and_policy_iteration():
 
 def _stationary_model(P, u, g, allowed, rate):
     return make_compiled(
-        P[:, None], state_qaly=u[:, None], decision_qaly=g[:, None], allowed=allowed,
-        discount_outcomes=rate, discount_costs=rate,
+        P[:, None],
+        state_qaly=u[:, None],
+        decision_qaly=g[:, None],
+        allowed=allowed,
+        discount_outcomes=rate,
+        discount_costs=rate,
     )
 
 
 def _random_allowed(rng, S, A, n_absorbing):
     allowed = rng.random((S, A)) < 0.7
     allowed[np.arange(S), rng.integers(0, A, S)] = True  # at least one action per state
-    allowed[S - n_absorbing:] = True
+    allowed[S - n_absorbing :] = True
     return allowed
 
 
@@ -121,8 +126,7 @@ def test_iterative_methods_agree_with_quantecon(seed, n_states, n_actions, n_abs
         decided = ~result.indifferent[0, 0] & result.decision_states
         assert (result.policy[0, 0][decided] == reference.sigma[decided]).all(), method
         assert allowed[np.arange(n_states), result.policy[0, 0]].all()
-    np.testing.assert_allclose(results["value_iteration"].value[0, 0], reference_vi.v,
-                               atol=1e-7)
+    np.testing.assert_allclose(results["value_iteration"].value[0, 0], reference_vi.v, atol=1e-7)
 
 
 @settings(max_examples=20, deadline=None)
@@ -138,9 +142,16 @@ def test_optimal_value_beats_every_fixed_policy_in_every_state(seed, n_states, n
     c = rng.uniform(0, 100, (n_cycles + 1, n_states))
     dc = rng.uniform(0, 50, (n_cycles, n_states, A))
     allowed = _random_allowed(rng, n_states, A, 0)
-    base = dict(state_qaly=q, state_cost=c, decision_cost=dc, allowed=allowed,
-                n_cycles=n_cycles, discount_outcomes=0.03, discount_costs=0.05,
-                within_cycle="trapezoid")
+    base = dict(
+        state_qaly=q,
+        state_cost=c,
+        decision_cost=dc,
+        allowed=allowed,
+        n_cycles=n_cycles,
+        discount_outcomes=0.03,
+        discount_costs=0.05,
+        within_cycle="trapezoid",
+    )
     objective = Objective("net_benefit", 200.0)
     optimal = solve(make_compiled(P, **base), objective)
     candidates = [np.where(allowed[:, a], a, allowed.argmax(1)) for a in range(A)]
@@ -164,8 +175,9 @@ def test_optimal_value_beats_every_fixed_policy_in_every_state(seed, n_states, n
     n_absorbing=st.integers(0, 2),
     rate=st.sampled_from([0.0, 0.035, 0.5]),
 )
-def test_backward_induction_agrees_with_quantecon(seed, n_states, n_actions, n_cycles,
-                                                  n_absorbing, rate):
+def test_backward_induction_agrees_with_quantecon(
+    seed, n_states, n_actions, n_cycles, n_absorbing, rate
+):
     # Reference library: quantecon.markov.backward_induction solves the same stationary
     # finite-horizon problem; its values are as at the start of each period, ours in present
     # value at the model start, converted by value_at_cycle_start(). The terminal value is
@@ -175,9 +187,15 @@ def test_backward_induction_agrees_with_quantecon(seed, n_states, n_actions, n_c
     P, u, g = random_mdp(rng, n_states, n_actions, n_absorbing)
     allowed = _random_allowed(rng, n_states, n_actions, n_absorbing)
     terminal = rng.uniform(-2, 2, n_states)
-    compiled = make_compiled(P[:, None], state_qaly=u[:, None], decision_qaly=g[:, None],
-                             allowed=allowed, n_cycles=n_cycles, discount_outcomes=rate,
-                             discount_costs=rate)
+    compiled = make_compiled(
+        P[:, None],
+        state_qaly=u[:, None],
+        decision_qaly=g[:, None],
+        allowed=allowed,
+        n_cycles=n_cycles,
+        discount_outcomes=rate,
+        discount_costs=rate,
+    )
     result = solve(compiled, QALYS, terminal_value=terminal)
 
     R = np.where(allowed, u[0][:, None] + g[0], -np.inf)
@@ -223,10 +241,16 @@ def test_backward_induction_equals_the_best_of_every_policy(seed, n_cycles, with
     P = rng.random((T, A, S, S)) ** 2
     P /= P.sum(-1, keepdims=True)
     base = make_compiled(
-        P, state_qaly=rng.uniform(0, 1, (T + 1, S)), state_cost=rng.uniform(0, 500, (T + 1, S)),
+        P,
+        state_qaly=rng.uniform(0, 1, (T + 1, S)),
+        state_cost=rng.uniform(0, 500, (T + 1, S)),
         decision_qaly=rng.uniform(-0.2, 0.2, (T, S, A)),
-        decision_cost=rng.uniform(0, 300, (T, S, A)), n_cycles=T, within_cycle=within,
-        discount_outcomes=rates[0], discount_costs=rates[1], absorbing=[False] * S,
+        decision_cost=rng.uniform(0, 300, (T, S, A)),
+        n_cycles=T,
+        within_cycle=within,
+        discount_outcomes=rates[0],
+        discount_costs=rates[1],
+        absorbing=[False] * S,
     )
     objective = Objective("net_benefit", 1000.0)
     optimal = solve(base, objective)
@@ -235,8 +259,9 @@ def test_backward_induction_equals_the_best_of_every_policy(seed, n_cycles, with
 
 
 @settings(max_examples=20, deadline=None)
-@given(seed=st.integers(0, 2**32 - 1), n_states=st.integers(2, 5),
-       rate=st.sampled_from([0.03, 0.2]))
+@given(
+    seed=st.integers(0, 2**32 - 1), n_states=st.integers(2, 5), rate=st.sampled_from([0.03, 0.2])
+)
 def test_stationary_optimum_is_the_best_stationary_policy(seed, n_states, rate):
     # Infinite horizon: a deterministic stationary policy is optimal (Puterman 1994,
     # chapter 6), so policy iteration's value in every state is the largest over all A^S
@@ -247,8 +272,9 @@ def test_stationary_optimum_is_the_best_stationary_policy(seed, n_states, rate):
     compiled = _stationary_model(P, u, g, np.ones((n_states, A), bool), rate)
     optimal = solve(compiled, QALYS, method="policy_iteration")
     best = _best_value_from_each_state(compiled, _every_policy(1, n_states, A), QALYS)
-    np.testing.assert_allclose(optimal.value[0, 0], best, rtol=1e-10,
-                               atol=optimal.error_bound[0] + 1e-9)
+    np.testing.assert_allclose(
+        optimal.value[0, 0], best, rtol=1e-10, atol=optimal.error_bound[0] + 1e-9
+    )
 
 
 # --- within-cycle methods and life expectancy -----------------------------------------
@@ -258,8 +284,13 @@ def _one_state(n_cycles, within_cycle, rate=0.1, cycle_length=1.0, discount=0.0)
     p = 1 - np.exp(-rate * cycle_length)
     P = np.array([[[1 - p, p], [0.0, 1.0]]])
     return make_compiled(
-        P, state_qaly=[cycle_length, 0.0], n_cycles=n_cycles, within_cycle=within_cycle,
-        cycle_length=cycle_length, discount_outcomes=discount, discount_costs=discount,
+        P,
+        state_qaly=[cycle_length, 0.0],
+        n_cycles=n_cycles,
+        within_cycle=within_cycle,
+        cycle_length=cycle_length,
+        discount_outcomes=discount,
+        discount_costs=discount,
         absorbing=[False, True],
     )
 
@@ -276,8 +307,8 @@ def test_within_cycle_methods_ten_cycles(within_cycle, expected):
 
 
 @pytest.mark.parametrize(
-    ("within_cycle", "expected"), [("start", 10.508332), ("end", 9.508332),
-                                   ("trapezoid", 10.008332), ("simpson", 10.000006)],
+    ("within_cycle", "expected"),
+    [("start", 10.508332), ("end", 9.508332), ("trapezoid", 10.008332), ("simpson", 10.000006)],
 )
 def test_within_cycle_methods_lifetime(within_cycle, expected):
     # Source: Elbasha & Chhatwal 2016 (lifetime row in REFERENCES.md); 600 cycles leave
@@ -286,8 +317,10 @@ def test_within_cycle_methods_lifetime(within_cycle, expected):
     assert result.value[0, 0, 0] == pytest.approx(expected, abs=5e-6)
 
 
-@pytest.mark.parametrize(("within_cycle", "expected"),
-                         [("start", 10.508332), ("end", 9.508332), ("trapezoid", 10.008332)])
+@pytest.mark.parametrize(
+    ("within_cycle", "expected"),
+    [("start", 10.508332), ("end", 9.508332), ("trapezoid", 10.008332)],
+)
 def test_within_cycle_infinite_horizon_correction(within_cycle, expected):
     # Same lifetime row (Elbasha & Chhatwal 2016). The infinite horizon needs a discount
     # rate, so compare the discounted solver value with the same sum done by hand:
@@ -330,9 +363,15 @@ def test_differential_discounting_by_hand():
     #   V_0 = 1000 * 1 * 1   - 100 * 1 + 40 + 400  = 1340
     # One blended factor would treat in both or neither cycle.
     compiled = make_compiled(
-        np.ones((2, 1, 1)), state_qaly=[1.0], state_cost=[100.0],
-        decision_qaly=[[0.0, 0.1]], decision_cost=[[0.0, 60.0]], n_cycles=2,
-        discount_outcomes=1.0, discount_costs=0.0, absorbing=[False],
+        np.ones((2, 1, 1)),
+        state_qaly=[1.0],
+        state_cost=[100.0],
+        decision_qaly=[[0.0, 0.1]],
+        decision_cost=[[0.0, 60.0]],
+        n_cycles=2,
+        discount_outcomes=1.0,
+        discount_costs=0.0,
+        absorbing=[False],
         action_ids=("wait", "treat"),
     )
     result = solve(compiled, Objective("net_benefit", 1000.0))
@@ -346,8 +385,14 @@ def test_differential_discounting_by_hand():
 def test_value_at_cycle_start_with_equal_rates():
     # One state earning 1 per cycle for 3 cycles at 10%: as at the start of cycle t the
     # remaining value is sum_{k<3-t} 1.1^-k (common practice: present value of an annuity).
-    compiled = make_compiled(np.ones((1, 1, 1)), state_qaly=[1.0], n_cycles=3,
-                             discount_outcomes=0.1, discount_costs=0.1, absorbing=[False])
+    compiled = make_compiled(
+        np.ones((1, 1, 1)),
+        state_qaly=[1.0],
+        n_cycles=3,
+        discount_outcomes=0.1,
+        discount_costs=0.1,
+        absorbing=[False],
+    )
     result = solve(compiled, Objective("net_benefit", 1.0))
     at_start = result.value_at_cycle_start()[0, :, 0]
     np.testing.assert_allclose(at_start, [1 + 1 / 1.1 + 1 / 1.21, 1 + 1 / 1.1, 1.0, 0.0])
@@ -371,24 +416,34 @@ def test_batched_solve_equals_single_solves(n_cycles):
     rng = np.random.default_rng(3)
     N, S, A = 7, 6, 3
     P, u, g = random_mdp(rng, S, A, 1, n_draws=N)
-    compiled = make_compiled(P[:, None], state_qaly=u[:, None], decision_qaly=g[:, None],
-                             n_cycles=n_cycles, discount_outcomes=0.05)
-    for method in (["backward_induction"] if n_cycles else
-                   ["policy_iteration", "value_iteration", "modified_policy_iteration"]):
+    compiled = make_compiled(
+        P[:, None],
+        state_qaly=u[:, None],
+        decision_qaly=g[:, None],
+        n_cycles=n_cycles,
+        discount_outcomes=0.05,
+    )
+    for method in (
+        ["backward_induction"]
+        if n_cycles
+        else ["policy_iteration", "value_iteration", "modified_policy_iteration"]
+    ):
         batch = solve(compiled, QALYS, method=method)
         for d in range(N):
             single = solve(compiled.take_draws(slice(d, d + 1)), QALYS, method=method)
             np.testing.assert_array_equal(batch.policy[d], single.policy[0])
-            np.testing.assert_allclose(batch.value[d], single.value[0], rtol=1e-9,
-                                       atol=2 * batch.error_bound.max())
+            np.testing.assert_allclose(
+                batch.value[d], single.value[0], rtol=1e-9, atol=2 * batch.error_bound.max()
+            )
 
 
 def test_exact_ties_are_reported_and_lowest_index_chosen():
     # Two actions with identical consequences: a tie in every cycle; the documented rule
     # picks action index 0. A third action is worse by 1.
     P = np.array([[[0.9, 0.1], [0, 1]]] * 3)
-    compiled = make_compiled(P, state_qaly=[1.0, 0.0], decision_qaly=[[0.0, 0.0, -1.0],
-                             [0, 0, 0]], n_cycles=4)
+    compiled = make_compiled(
+        P, state_qaly=[1.0, 0.0], decision_qaly=[[0.0, 0.0, -1.0], [0, 0, 0]], n_cycles=4
+    )
     result = solve(compiled, QALYS)
     assert result.indifferent[0, :, 0].all()
     assert (result.policy[0, :, 0] == 0).all()
@@ -399,8 +454,9 @@ def test_exact_ties_are_reported_and_lowest_index_chosen():
 
 def test_near_tie_within_tolerance_is_reported_not_resolved():
     P = np.array([[[0.9, 0.1], [0, 1]]] * 2)
-    compiled = make_compiled(P, state_qaly=[1.0, 0.0], decision_qaly=[[0.0, 1e-12], [0, 0]],
-                             n_cycles=2)
+    compiled = make_compiled(
+        P, state_qaly=[1.0, 0.0], decision_qaly=[[0.0, 1e-12], [0, 0]], n_cycles=2
+    )
     result = solve(compiled, QALYS)
     assert result.indifferent[0, :, 0].all() and (result.policy[0, :, 0] == 0).all()
     clear = solve(compiled, QALYS, tie_tolerance=0.0, tie_relative=0.0)
@@ -411,9 +467,14 @@ def test_near_tie_within_tolerance_is_reported_not_resolved():
 def test_not_allowed_actions_are_never_chosen(n_cycles):
     # Action 1 pays a huge reward but is not allowed in state 0.
     P = np.array([[[0.8, 0.2], [0, 1]]] * 2)
-    compiled = make_compiled(P, state_qaly=[1.0, 0.0], decision_qaly=[[0.0, 1e6], [0, 0]],
-                             allowed=[[True, False], [True, True]], n_cycles=n_cycles,
-                             discount_outcomes=0.05)
+    compiled = make_compiled(
+        P,
+        state_qaly=[1.0, 0.0],
+        decision_qaly=[[0.0, 1e6], [0, 0]],
+        allowed=[[True, False], [True, True]],
+        n_cycles=n_cycles,
+        discount_outcomes=0.05,
+    )
     result = solve(compiled, QALYS)
     assert (result.policy[..., 0] == 0).all()
     assert np.isneginf(result.q_values[..., 0, 1]).all()
@@ -423,12 +484,13 @@ def test_not_allowed_actions_are_never_chosen(n_cycles):
 # --- history, results, failures --------------------------------------------------------
 
 
-@pytest.mark.parametrize("method", ["value_iteration", "modified_policy_iteration",
-                                    "policy_iteration", "backward_induction"])
+@pytest.mark.parametrize(
+    "method",
+    ["value_iteration", "modified_policy_iteration", "policy_iteration", "backward_induction"],
+)
 def test_history_records_each_sweep(method):
     horizon = 5 if method == "backward_induction" else None
-    result = solve(puterman_two_state(horizon, 0.05), QALYS, method=method,
-                   record_history=True)
+    result = solve(puterman_two_state(horizon, 0.05), QALYS, method=method, record_history=True)
     assert len(result.history) == result.iterations
     last = result.history[-1]
     assert last.value.shape == (1, 2) and last.policy.shape == (1, 2)
@@ -445,8 +507,9 @@ def test_history_records_each_sweep(method):
 
 
 def test_max_iterations_reached_is_not_success():
-    result = solve(puterman_two_state(None, 0.01), QALYS, method="value_iteration",
-                   max_iterations=3)
+    result = solve(
+        puterman_two_state(None, 0.01), QALYS, method="value_iteration", max_iterations=3
+    )
     assert not result.success
     assert "max_iterations = 3" in result.message
     assert result.iterations == 3 and result.error_bound[0] > 0
@@ -455,8 +518,16 @@ def test_max_iterations_reached_is_not_success():
 def test_to_frame_lists_each_cycle_and_state():
     result = solve(puterman_two_state(2), QALYS)
     frame = result.to_frame()
-    assert list(frame.columns) == ["cycle", "age", "state", "action", "value",
-                                   "next_best_action", "action_gap", "indifferent"]
+    assert list(frame.columns) == [
+        "cycle",
+        "age",
+        "state",
+        "action",
+        "value",
+        "next_best_action",
+        "action_gap",
+        "indifferent",
+    ]
     assert frame.shape[0] == 4
     row = frame[(frame.cycle == 0) & (frame.state == "s1")].iloc[0]
     assert row.action == "a1" and row.next_best_action == "a2" and row.value == 9.5
@@ -465,12 +536,15 @@ def test_to_frame_lists_each_cycle_and_state():
 
 def test_relative_tolerance_scales_with_values():
     # Money-sized values: a relative tolerance of 1e-6 stops far sooner than an absolute one.
-    compiled = make_compiled(np.array([[[0.9, 0.1], [0, 1]]] * 2), state_cost=[-1e6, 0.0],
-                             discount_outcomes=0.05, discount_costs=0.05)
+    compiled = make_compiled(
+        np.array([[[0.9, 0.1], [0, 1]]] * 2),
+        state_cost=[-1e6, 0.0],
+        discount_outcomes=0.05,
+        discount_costs=0.05,
+    )
     objective = Objective("net_benefit", 0.0)
     rel = solve(compiled, objective, method="value_iteration", tolerance=1e-6)
-    absolute = solve(compiled, objective, method="value_iteration", tolerance=1e-6,
-                     relative=False)
+    absolute = solve(compiled, objective, method="value_iteration", tolerance=1e-6, relative=False)
     assert rel.iterations < absolute.iterations
     assert rel.error_bound[0] <= 1e-6 * np.abs(rel.value).max() / 2 * 1.0001
 
@@ -483,16 +557,22 @@ def test_relative_tolerance_scales_with_values():
     [
         (lambda: puterman_two_state(3), {"method": "newton"}, "method 'newton' is unknown"),
         (lambda: puterman_two_state(3), {"method": "value_iteration"}, "infinite horizon"),
-        (lambda: puterman_two_state(None, 0.05), {"method": "backward_induction"},
-         "finite number of cycles"),
+        (
+            lambda: puterman_two_state(None, 0.05),
+            {"method": "backward_induction"},
+            "finite number of cycles",
+        ),
         (lambda: puterman_two_state(None, 0.0), {}, "discount rate > 0"),
         (lambda: puterman_two_state(3), {"tolerance": 0.0}, "tolerance = 0.0"),
         (lambda: puterman_two_state(3), {"tie_tolerance": -1.0}, "tie_tolerance = -1.0"),
         (lambda: puterman_two_state(3), {"tie_relative": float("nan")}, "tie_relative"),
         (lambda: puterman_two_state(3), {"max_iterations": 0}, "max_iterations = 0"),
         (lambda: puterman_two_state(3), {"evaluation_sweeps": -1}, "evaluation_sweeps = -1"),
-        (lambda: puterman_two_state(3), {"terminal_value": [1.0, 2.0, 3.0]},
-         r"terminal_value has shape \(3,\)"),
+        (
+            lambda: puterman_two_state(3),
+            {"terminal_value": [1.0, 2.0, 3.0]},
+            r"terminal_value has shape \(3,\)",
+        ),
         (lambda: puterman_two_state(3), {"terminal_value": np.inf}, "non-finite"),
         (lambda: puterman_two_state(None, 0.05), {"terminal_value": 1.0}, "finite horizon only"),
     ],
@@ -506,9 +586,14 @@ def _two_rates(n_cycles=None, within="start", stationary=True):
     P = np.array([[[0.9, 0.1], [0, 1]]] * 2)
     if not stationary:
         P = np.stack([P, P])
-    return make_compiled(P, state_qaly=[1.0, 0.0], discount_outcomes=0.03,
-                         discount_costs=0.05 if within == "start" else 0.03,
-                         within_cycle=within, n_cycles=n_cycles)
+    return make_compiled(
+        P,
+        state_qaly=[1.0, 0.0],
+        discount_outcomes=0.03,
+        discount_costs=0.05 if within == "start" else 0.03,
+        within_cycle=within,
+        n_cycles=n_cycles,
+    )
 
 
 def test_infinite_horizon_unequal_rates_error():
@@ -534,8 +619,7 @@ def test_nonzero_terminal_with_differential_rates_error():
 
 
 def test_state_without_allowed_action_error():
-    compiled = make_compiled(np.array([[[1.0, 0], [0, 1]]]), allowed=[[True], [False]],
-                             n_cycles=2)
+    compiled = make_compiled(np.array([[[1.0, 0], [0, 1]]]), allowed=[[True], [False]], n_cycles=2)
     with pytest.raises(SolverError, match="state 's1' allows no action"):
         solve(compiled, QALYS)
 

@@ -71,7 +71,8 @@ def make_compiled(
         decision_qaly=dec(decision_qaly),
         decision_cost=dec(decision_cost),
         life_years=(
-            cycle_length * ~np.asarray(absorbing, bool) if life_years is None
+            cycle_length * ~np.asarray(absorbing, bool)
+            if life_years is None
             else np.asarray(life_years, float)
         ),
         start_distribution=(
@@ -115,8 +116,9 @@ def puterman_two_state(n_cycles: int | None = 5, discount: float = 0.0) -> Compi
     )
 
 
-def random_mdp(rng: np.random.Generator, n_states: int, n_actions: int, n_absorbing: int = 1,
-               n_draws: int = 1) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def random_mdp(
+    rng: np.random.Generator, n_states: int, n_actions: int, n_absorbing: int = 1, n_draws: int = 1
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Random stationary arrays: (D, A, S, S) transitions, (D, S) state reward, (D, S, A).
 
     The last ``n_absorbing`` states are absorbing with zero reward; some actions are masked.

@@ -54,13 +54,20 @@ def staged_model(n_cycles: int | None = 4, start_age: float = 60.0):
     allowed = np.ones((S, 2), bool)
     allowed[3:, TREAT] = False
     return make_compiled(
-        P, state_qaly=[0.9, 0.7, 0.5, 0.8, 0.0], state_cost=[100, 300, 900, 1500, 0],
-        decision_cost=np.array([[0, 500]] * 3 + [[0, 0]] * 2), allowed=allowed,
-        n_cycles=n_cycles, start_age=start_age,
+        P,
+        state_qaly=[0.9, 0.7, 0.5, 0.8, 0.0],
+        state_cost=[100, 300, 900, 1500, 0],
+        decision_cost=np.array([[0, 500]] * 3 + [[0, 0]] * 2),
+        allowed=allowed,
+        n_cycles=n_cycles,
+        start_age=start_age,
         state_ids=("mild", "moderate", "severe", "on_treatment", "dead"),
-        action_ids=("wait", "treat"), ordered_states=("mild", "moderate", "severe"),
-        start_distribution=[0.6, 0.3, 0.1, 0.0, 0.0], discount_outcomes=0.03,
-        discount_costs=0.03, within_cycle="trapezoid",
+        action_ids=("wait", "treat"),
+        ordered_states=("mild", "moderate", "severe"),
+        start_distribution=[0.6, 0.3, 0.1, 0.0, 0.0],
+        discount_outcomes=0.03,
+        discount_costs=0.03,
+        within_cycle="trapezoid",
     )
 
 
@@ -112,8 +119,9 @@ def test_default_strategies_drop_duplicates():
 
 
 def test_default_strategies_with_one_action():
-    compiled = make_compiled(np.array([[[0.9, 0.1], [0.0, 1.0]]]), n_cycles=3,
-                             action_ids=("monitor",))
+    compiled = make_compiled(
+        np.array([[[0.9, 0.1], [0.0, 1.0]]]), n_cycles=3, action_ids=("monitor",)
+    )
     assert [s.name for s in default_strategies(compiled)] == ["monitor at once"]
 
 
@@ -137,8 +145,11 @@ def test_from_age_needs_a_finite_horizon():
 
 
 def test_computed_policy_shape_is_checked():
-    with pytest.raises(ModelError, match=r"policy has shape \(3, 5\).*expected integer action "
-                                         r"indices of shape \(cycles, states\) = \(4, 5\)"):
+    with pytest.raises(
+        ModelError,
+        match=r"policy has shape \(3, 5\).*expected integer action "
+        r"indices of shape \(cycles, states\) = \(4, 5\)",
+    ):
         resolve_strategy(staged_model(), computed("mine", np.zeros((3, 5), int)))
 
 
@@ -152,10 +163,16 @@ def two_state(within_cycle: str = "start"):
     P[0, 0] = [0.5, 0.5]
     P[1, 0] = [0.75, 0.25]
     P[:, 1, 1] = 1.0
-    return make_compiled(P, state_qaly=[1.0, 0.0], decision_cost=[[0.0, 100.0], [0.0, 0.0]],
-                         allowed=[[True, True], [True, True]], n_cycles=2,
-                         within_cycle=within_cycle, state_ids=("alive", "dead"),
-                         action_ids=("wait", "treat"))
+    return make_compiled(
+        P,
+        state_qaly=[1.0, 0.0],
+        decision_cost=[[0.0, 100.0], [0.0, 0.0]],
+        allowed=[[True, True], [True, True]],
+        n_cycles=2,
+        within_cycle=within_cycle,
+        state_ids=("alive", "dead"),
+        action_ids=("wait", "treat"),
+    )
 
 
 def test_totals_by_hand_and_the_optimal_policy_beats_both_fixed_strategies():
@@ -189,10 +206,17 @@ def test_one_action_model_reproduces_the_fixed_strategy_exactly():
     P = rng.random((1, 4, 4))
     P[:, 3] = [0, 0, 0, 1]
     P /= P.sum(-1, keepdims=True)
-    compiled = make_compiled(P, state_qaly=rng.random(4), state_cost=rng.random(4) * 1000,
-                             decision_cost=rng.random((4, 1)) * 50, n_cycles=12,
-                             discount_outcomes=0.035, discount_costs=0.05,
-                             within_cycle="simpson", action_ids=("monitor",))
+    compiled = make_compiled(
+        P,
+        state_qaly=rng.random(4),
+        state_cost=rng.random(4) * 1000,
+        decision_cost=rng.random((4, 1)) * 50,
+        n_cycles=12,
+        discount_outcomes=0.035,
+        discount_costs=0.05,
+        within_cycle="simpson",
+        action_ids=("monitor",),
+    )
     objective = Objective("net_benefit", 25000.0)
     optimal = solve(compiled, objective)
     fixed = resolve_strategy(compiled, at_once("monitor"))
@@ -202,13 +226,15 @@ def test_one_action_model_reproduces_the_fixed_strategy_exactly():
         assert getattr(by_solver, name)[0] == getattr(by_strategy, name)[0]
     # And the optimal value is that same number (the solver's recursion agrees).
     assert optimal.expected_value(compiled.start_distribution)[0] == pytest.approx(
-        by_strategy.value[0], rel=1e-12)
+        by_strategy.value[0], rel=1e-12
+    )
 
 
 def test_identical_policies_get_identical_totals_in_first_appearance_order():
     compiled = staged_model()
-    policies = np.stack([np.zeros((4, 5), int), np.ones((4, 5), int) * [1, 1, 1, 0, 0],
-                         np.zeros((4, 5), int)])
+    policies = np.stack(
+        [np.zeros((4, 5), int), np.ones((4, 5), int) * [1, 1, 1, 0, 0], np.zeros((4, 5), int)]
+    )
     outcome, index = evaluate_policies(compiled, policies, Objective("net_benefit", 1.0))
     np.testing.assert_array_equal(index, [0, 1, 0])
     assert outcome.costs.shape == (2,)
@@ -218,8 +244,12 @@ def test_identical_policies_get_identical_totals_in_first_appearance_order():
 
 
 @settings(max_examples=30, deadline=None)
-@given(seed=st.integers(0, 2**32 - 1), n_states=st.integers(3, 6), n_cycles=st.integers(1, 6),
-       wtp=st.floats(0.0, 1e5))
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    n_states=st.integers(3, 6),
+    n_cycles=st.integers(1, 6),
+    wtp=st.floats(0.0, 1e5),
+)
 def test_optimal_nmb_is_at_least_every_fixed_strategy(seed, n_states, n_cycles, wtp):
     # Optimality of backward induction (Puterman 1994, Theorem 4.5.1): the optimal value
     # is >= the value of every policy, hence for the cohort's start distribution too.
@@ -233,12 +263,18 @@ def test_optimal_nmb_is_at_least_every_fixed_strategy(seed, n_states, n_cycles, 
     allowed[-1] = True
     start = rng.dirichlet(np.ones(n_states - 1))
     compiled = make_compiled(
-        P, state_qaly=rng.uniform(0, 1, (n_cycles + 1, n_states)),
+        P,
+        state_qaly=rng.uniform(0, 1, (n_cycles + 1, n_states)),
         state_cost=rng.uniform(0, 1000, (n_cycles + 1, n_states)),
         decision_cost=rng.uniform(0, 500, (n_cycles, n_states, A)),
-        decision_qaly=rng.uniform(-0.05, 0.05, (n_cycles, n_states, A)), allowed=allowed,
-        n_cycles=n_cycles, start_distribution=np.append(start, 0.0), discount_outcomes=0.03,
-        discount_costs=0.05, within_cycle="trapezoid", start_age=50.0,
+        decision_qaly=rng.uniform(-0.05, 0.05, (n_cycles, n_states, A)),
+        allowed=allowed,
+        n_cycles=n_cycles,
+        start_distribution=np.append(start, 0.0),
+        discount_outcomes=0.03,
+        discount_costs=0.05,
+        within_cycle="trapezoid",
+        start_age=50.0,
         ordered_states=tuple(f"s{i}" for i in range(n_states - 1)),
         absorbing=np.arange(n_states) == n_states - 1,
     )
@@ -256,10 +292,13 @@ def _assert_optimal_beats(compiled, fixed, random_actions: np.ndarray, wtp: floa
     optimal = solve(compiled, objective)
     allowed, S = compiled.allowed, compiled.n_states
     resolved = [resolve_strategy(compiled, s) for s in fixed]
-    random_policies = [np.where(allowed[np.arange(S)[None, :], p], p, allowed.argmax(1))
-                       for p in random_actions]
-    resolved += [resolve_strategy(compiled, computed(f"random {i}", p))
-                 for i, p in enumerate(random_policies)]
+    random_policies = [
+        np.where(allowed[np.arange(S)[None, :], p], p, allowed.argmax(1)) for p in random_actions
+    ]
+    resolved += [
+        resolve_strategy(compiled, computed(f"random {i}", p))
+        for i, p in enumerate(random_policies)
+    ]
     resolved.append(resolve_strategy(compiled, computed("optimal", optimal.policy[0])))
     frame, _, _ = strategy_totals(compiled, resolved, objective)
     nmb = wtp * frame["qalys"].to_numpy() - frame["cost"].to_numpy()
@@ -277,10 +316,13 @@ def write(tmp_path, text: str, name: str = "plan.strategies.csv"):
 
 
 def test_table_covers_cells_and_reports_fallbacks(tmp_path):
-    path = write(tmp_path, "strategy,state,age_from,age_to,action\n"
-                           "early,moderate,,62,treat\n"
-                           "early,severe,,,treat\n"
-                           "early,on_treatment,,,treat\n")
+    path = write(
+        tmp_path,
+        "strategy,state,age_from,age_to,action\n"
+        "early,moderate,,62,treat\n"
+        "early,severe,,,treat\n"
+        "early,on_treatment,,,treat\n",
+    )
     (strategy,) = read_strategy_table(path)
     resolved = resolve_strategy(staged_model(), strategy)
     np.testing.assert_array_equal(resolved.policy, [[0, 1, 1, 0, 0]] * 2 + [[0, 0, 1, 0, 0]] * 2)
@@ -305,7 +347,8 @@ def test_several_strategies_in_one_table_keep_their_order(tmp_path):
 
 def test_sibling_table_is_found_beside_the_demo_model():
     assert sibling_table(demo_model_path()) == demo_model_path().with_name(
-        "demo_progressive.strategies.csv")
+        "demo_progressive.strategies.csv"
+    )
     assert sibling_table(None) is None
 
 
@@ -321,19 +364,27 @@ def _error(path_or_call, compiled=None) -> str:
     ("text", "expected"),
     [
         # unknown state: file, line, row, column and value
-        ("state,action\nmild,wait\nsevre,treat\n",
-         r"plan\.strategies\.csv, line 3: row 2\.state: unknown state 'sevre'"),
+        (
+            "state,action\nmild,wait\nsevre,treat\n",
+            r"plan\.strategies\.csv, line 3: row 2\.state: unknown state 'sevre'",
+        ),
         # unknown action
-        ("state,action\nmild,operate\n",
-         r"plan\.strategies\.csv, line 2: row 1\.action: unknown action 'operate'"),
+        (
+            "state,action\nmild,operate\n",
+            r"plan\.strategies\.csv, line 2: row 1\.action: unknown action 'operate'",
+        ),
         # age that is not a number
-        ("state,action,age_from\nmild,treat,sixty\n",
-         r"line 2: row 1\.age_from: value 'sixty' is not an age"),
+        (
+            "state,action,age_from\nmild,treat,sixty\n",
+            r"line 2: row 1\.age_from: value 'sixty' is not an age",
+        ),
         # negative age
         ("state,action,age_to\nmild,treat,-3\n", r"row 1\.age_to: value '-3' is not an age"),
         # empty age interval
-        ("state,action,age_from,age_to\nmild,treat,70,65\n",
-         r"row 1\.age_to: age_to 65 is not above age_from 70"),
+        (
+            "state,action,age_from,age_to\nmild,treat,70,65\n",
+            r"row 1\.age_to: age_to 65 is not above age_from 70",
+        ),
         # blank state
         ("state,action\n,treat\n", r"row 1\.state: blank state"),
         # blank action
@@ -343,8 +394,7 @@ def _error(path_or_call, compiled=None) -> str:
         # missing column
         ("state,age_from\nmild,60\n", r"line 1: header: missing column\(s\) \['action'\]"),
         # unknown column (a typo is not silently ignored)
-        ("state,action,age_form\nmild,treat,60\n",
-         r"header: unknown column\(s\) \['age_form'\]"),
+        ("state,action,age_form\nmild,treat,60\n", r"header: unknown column\(s\) \['age_form'\]"),
         # too many cells
         ("state,action\nmild,treat,extra\n", r"row 1: 3 cells; expected at most 2"),
         # header only
@@ -352,9 +402,11 @@ def _error(path_or_call, compiled=None) -> str:
         # empty file
         ("\n", r"the table is empty"),
         # two rows give one cell different actions
-        ("state,age_from,action\nmoderate,,treat\nmoderate,62,wait\n",
-         r"rows 1, 2: strategy 'plan': these rows give state 'moderate' at age 62 different "
-         r"actions \('wait', 'treat'\)"),
+        (
+            "state,age_from,action\nmoderate,,treat\nmoderate,62,wait\n",
+            r"rows 1, 2: strategy 'plan': these rows give state 'moderate' at age 62 different "
+            r"actions \('wait', 'treat'\)",
+        ),
     ],
 )
 def test_table_errors_name_file_row_and_value(tmp_path, text, expected):
@@ -364,8 +416,9 @@ def test_table_errors_name_file_row_and_value(tmp_path, text, expected):
 def test_table_ages_in_an_infinite_horizon_model(tmp_path):
     path = write(tmp_path, "state,action,age_from\nmild,treat,60\n")
     message = _error(path, staged_model(n_cycles=None))
-    assert "line 2: row 1.age_from: ages (60.0, None) given, but the model has an infinite" \
-        in message
+    assert (
+        "line 2: row 1.age_from: ages (60.0, None) given, but the model has an infinite" in message
+    )
 
 
 def test_table_missing_file(tmp_path):
@@ -374,8 +427,9 @@ def test_table_missing_file(tmp_path):
 
 def test_table_too_large(tmp_path):
     path = write(tmp_path, "state,action\n" + "mild,treat\n" * (MAX_TABLE_BYTES // 10))
-    assert re.search(r"plan\.strategies\.csv: file is \d+ bytes; expected at most 1000000",
-                     _error(path))
+    assert re.search(
+        r"plan\.strategies\.csv: file is \d+ bytes; expected at most 1000000", _error(path)
+    )
 
 
 def test_table_not_utf8(tmp_path):
@@ -391,10 +445,13 @@ def test_table_reports_every_problem_at_once(tmp_path):
 
 
 @settings(max_examples=30, deadline=None)
-@given(seed=st.integers(0, 2**32 - 1), n_states=st.integers(3, 6),
-       wtp=st.floats(0.0, 1e5), rate=st.floats(0.01, 0.2))
-def test_optimal_nmb_is_at_least_every_fixed_strategy_infinite_horizon(seed, n_states, wtp,
-                                                                        rate):
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    n_states=st.integers(3, 6),
+    wtp=st.floats(0.0, 1e5),
+    rate=st.floats(0.01, 0.2),
+)
+def test_optimal_nmb_is_at_least_every_fixed_strategy_infinite_horizon(seed, n_states, wtp, rate):
     # Policy iteration gives a policy optimal in every state of a discounted infinite-horizon
     # MDP (Puterman 1994, section 6.4, from memory), so no stationary fixed strategy has a
     # higher expected NMB from the cohort's start distribution.
@@ -407,14 +464,19 @@ def test_optimal_nmb_is_at_least_every_fixed_strategy_infinite_horizon(seed, n_s
     allowed[:, 0] |= ~allowed.any(axis=1)
     allowed[-1] = True
     compiled = make_compiled(
-        P, state_qaly=rng.uniform(0, 1, n_states) * (np.arange(n_states) < n_states - 1),
+        P,
+        state_qaly=rng.uniform(0, 1, n_states) * (np.arange(n_states) < n_states - 1),
         state_cost=rng.uniform(0, 1000, n_states) * (np.arange(n_states) < n_states - 1),
         decision_cost=rng.uniform(0, 500, (n_states, A)),
-        decision_qaly=rng.uniform(-0.05, 0.05, (n_states, A)), allowed=allowed,
-        n_cycles=None, start_distribution=np.append(rng.dirichlet(np.ones(n_states - 1)), 0.0),
-        discount_outcomes=rate, discount_costs=rate,
+        decision_qaly=rng.uniform(-0.05, 0.05, (n_states, A)),
+        allowed=allowed,
+        n_cycles=None,
+        start_distribution=np.append(rng.dirichlet(np.ones(n_states - 1)), 0.0),
+        discount_outcomes=rate,
+        discount_costs=rate,
         ordered_states=tuple(f"s{i}" for i in range(n_states - 1)),
         absorbing=np.arange(n_states) == n_states - 1,
     )
-    _assert_optimal_beats(compiled, default_strategies(compiled),
-                          rng.integers(0, A, (6, 1, n_states)), wtp)
+    _assert_optimal_beats(
+        compiled, default_strategies(compiled), rng.integers(0, A, (6, 1, n_states)), wtp
+    )

@@ -71,7 +71,9 @@ def test_a_model_with_one_action_and_no_parameters_passes_or_does_not_apply():
     frame = report.to_frame().set_index("check")
     assert report.passed, frame.to_string()
     assert set(frame.index[frame["status"] == verify.NOT_APPLICABLE]) == {
-        "no_effect_ties", "solvers_agree"}
+        "no_effect_ties",
+        "solvers_agree",
+    }
     # With no parameter to vary the base case is the only parameter set checked.
     assert frame.loc["probabilities_in_range", "figures"].startswith("1 parameter sets")
 

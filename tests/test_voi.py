@@ -94,8 +94,7 @@ def test_evpi_is_non_negative(nb):
 
 
 @settings(max_examples=100, deadline=None)
-@given(st.lists(st.floats(-1e6, 1e6, allow_nan=False), min_size=1, max_size=5),
-       st.integers(1, 50))
+@given(st.lists(st.floats(-1e6, 1e6, allow_nan=False), min_size=1, max_size=5), st.integers(1, 50))
 def test_evpi_zero_for_identical_draws(row, n):
     # No uncertainty: every draw the same -> EVPI = 0 exactly.
     nb = np.tile(np.array(row), (n, 1))
@@ -245,9 +244,7 @@ def test_evppi_discrete_parameter():
     inb = means[phi.astype(int)] + rng.normal(0.0, 300.0, n)
     result = evppi_regression(np.column_stack([np.zeros(n), inb]), phi)
     group_means = np.array([inb[phi == v].mean() for v in range(3)])
-    np.testing.assert_allclose(
-        result.fitted[:, 1], group_means[phi.astype(int)], atol=0.02 * 300.0
-    )
+    np.testing.assert_allclose(result.fitted[:, 1], group_means[phi.astype(int)], atol=0.02 * 300.0)
 
 
 @settings(max_examples=25, deadline=None)

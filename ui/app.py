@@ -14,17 +14,31 @@ from ui import common
 st.set_page_config(page_title="caredecide - research use only", layout="wide")
 
 VIEWS = [
-    st.Page("views/model.py", title="Model", icon=":material/edit_note:", url_path="model",
-            default=True),
+    st.Page(
+        "views/model.py", title="Model", icon=":material/edit_note:", url_path="model", default=True
+    ),
     st.Page("views/policy.py", title="Policy", icon=":material/grid_on:", url_path="policy"),
-    st.Page("views/convergence.py", title="Convergence", icon=":material/trending_down:",
-            url_path="convergence"),
-    st.Page("views/sensitivity.py", title="Sensitivity", icon=":material/tune:",
-            url_path="sensitivity"),
-    st.Page("views/uncertainty.py", title="Uncertainty", icon=":material/casino:",
-            url_path="uncertainty"),
-    st.Page("views/strategies.py", title="Strategies", icon=":material/compare_arrows:",
-            url_path="strategies"),
+    st.Page(
+        "views/convergence.py",
+        title="Convergence",
+        icon=":material/trending_down:",
+        url_path="convergence",
+    ),
+    st.Page(
+        "views/sensitivity.py", title="Sensitivity", icon=":material/tune:", url_path="sensitivity"
+    ),
+    st.Page(
+        "views/uncertainty.py",
+        title="Uncertainty",
+        icon=":material/casino:",
+        url_path="uncertainty",
+    ),
+    st.Page(
+        "views/strategies.py",
+        title="Strategies",
+        icon=":material/compare_arrows:",
+        url_path="strategies",
+    ),
     st.Page("views/report.py", title="Report", icon=":material/description:", url_path="report"),
 ]
 

@@ -147,8 +147,9 @@ def make_action_gap_chart(
         tooltip=["state:N", "age:O", alt.Tooltip("action_gap:Q", format=".4g")],
     )
     # Amber dot with a dark outline: visible on the darkest and the lightest cell alike.
-    text = base.mark_text(fontSize=11, color=ACTION_PALETTE[1], stroke="#1A1A1A",
-                          strokeWidth=0.6).encode(text="mark:N")
+    text = base.mark_text(
+        fontSize=11, color=ACTION_PALETTE[1], stroke="#1A1A1A", strokeWidth=0.6
+    ).encode(text="mark:N")
     return alt.layer(cells, text).properties(
         title="Action gap (dark = small gap; a dot marks a close call)", height=alt.Step(22)
     )
@@ -168,7 +169,8 @@ def make_value_chart(
     _require(frame, ["state", "age", "value"], "value chart")
     states = _ordered(frame, "state", state_order)
     colour = alt.Color(
-        "state:N", title="Health state",
+        "state:N",
+        title="Health state",
         scale=alt.Scale(domain=states, range=_cycle(STATE_PALETTE, len(states))),
     )
     y = alt.Y("value:Q", title=f"Value {unit}".strip())
@@ -176,8 +178,12 @@ def make_value_chart(
         return (
             alt.Chart(frame)
             .mark_bar()
-            .encode(x=alt.X("state:N", sort=states, title="Health state"), y=y, color=colour,
-                    tooltip=["state:N", alt.Tooltip("value:Q", format=".4g")])
+            .encode(
+                x=alt.X("state:N", sort=states, title="Health state"),
+                y=y,
+                color=colour,
+                tooltip=["state:N", alt.Tooltip("value:Q", format=".4g")],
+            )
             .properties(title="Value of the best policy per state")
         )
     return (
@@ -187,17 +193,16 @@ def make_value_chart(
             x=alt.X("age:Q", title="Age (years)"),
             y=y,
             color=colour,
-            strokeDash=alt.StrokeDash("state:N", scale=alt.Scale(domain=states),
-                                      title="Health state"),
+            strokeDash=alt.StrokeDash(
+                "state:N", scale=alt.Scale(domain=states), title="Health state"
+            ),
             tooltip=["state:N", "age:Q", alt.Tooltip("value:Q", format=".4g")],
         )
         .properties(title="Value of the best policy per state and age")
     )
 
 
-def make_trace_chart(
-    frame: pd.DataFrame, *, state_order: Sequence[str] | None = None
-) -> alt.Chart:
+def make_trace_chart(frame: pd.DataFrame, *, state_order: Sequence[str] | None = None) -> alt.Chart:
     """Cohort trace as a stacked area: share of the cohort in each state over age.
 
     Parameters
@@ -215,10 +220,15 @@ def make_trace_chart(
         .mark_area()
         .encode(
             x=alt.X("age:Q", title="Age (years)"),
-            y=alt.Y("proportion:Q", stack="zero", title="Share of the cohort",
-                    scale=alt.Scale(domain=[0, 1])),
+            y=alt.Y(
+                "proportion:Q",
+                stack="zero",
+                title="Share of the cohort",
+                scale=alt.Scale(domain=[0, 1]),
+            ),
             color=alt.Color(
-                "state:N", title="Health state",
+                "state:N",
+                title="Health state",
                 scale=alt.Scale(domain=states, range=_cycle(STATE_PALETTE, len(states))),
             ),
             order=alt.Order("stack_order:Q"),
@@ -248,8 +258,9 @@ def make_convergence_chart(frame: pd.DataFrame) -> alt.Chart | alt.LayerChart:
             x=alt.X("sweep:Q", title="Sweep", axis=alt.Axis(tickMinStep=1)),
             y=alt.Y("amount:Q", title="Size (sup norm)", scale=alt.Scale(type="log")),
             # Colour and dash carry the same field: one legend, lines told apart without colour.
-            color=alt.Color("quantity:N", title="Quantity",
-                            scale=alt.Scale(range=list(ACTION_PALETTE[:4]))),
+            color=alt.Color(
+                "quantity:N", title="Quantity", scale=alt.Scale(range=list(ACTION_PALETTE[:4]))
+            ),
             strokeDash=alt.StrokeDash("quantity:N", title="Quantity"),
             tooltip=["sweep:Q", "quantity:N", alt.Tooltip("amount:Q", format=".3e")],
         )
@@ -257,12 +268,16 @@ def make_convergence_chart(frame: pd.DataFrame) -> alt.Chart | alt.LayerChart:
     if "policy_stable_from" in frame.columns and frame["policy_stable_from"].notna().any():
         stable = int(frame["policy_stable_from"].dropna().iloc[0])
         rule_data = pd.DataFrame({"sweep": [stable], "note": ["policy stops changing"]})
-        rule = alt.Chart(rule_data).mark_rule(color="#7A3B63", strokeDash=[4, 3]).encode(
-            x=alt.X("sweep:Q", axis=alt.Axis(tickMinStep=1)), tooltip=["note:N", "sweep:Q"]
+        rule = (
+            alt.Chart(rule_data)
+            .mark_rule(color="#7A3B63", strokeDash=[4, 3])
+            .encode(x=alt.X("sweep:Q", axis=alt.Axis(tickMinStep=1)), tooltip=["note:N", "sweep:Q"])
         )
-        label = alt.Chart(rule_data).mark_text(
-            align="left", dx=4, dy=-6, color="#7A3B63", baseline="top"
-        ).encode(x="sweep:Q", y=alt.value(0), text="note:N")
+        label = (
+            alt.Chart(rule_data)
+            .mark_text(align="left", dx=4, dy=-6, color="#7A3B63", baseline="top")
+            .encode(x="sweep:Q", y=alt.value(0), text="note:N")
+        )
         return alt.layer(lines, rule, label).properties(title="Convergence per sweep")
     return lines.properties(title="Convergence per sweep")
 
@@ -444,9 +459,10 @@ def make_ce_plane_chart(frame: pd.DataFrame, *, currency: str = "") -> alt.Layer
     _require(frame, ["strategy", "cost", "qalys", "status", "on_frontier"], "CE plane chart")
     data = frame.assign(
         label=frame["label"] if "label" in frame.columns else frame["strategy"],
-        group=frame["status"].astype(str).str.extract(
-            r"^(on frontier|dominated|extendedly dominated|identical)", expand=False
-        ).fillna("other"),
+        group=frame["status"]
+        .astype(str)
+        .str.extract(r"^(on frontier|dominated|extendedly dominated|identical)", expand=False)
+        .fillna("other"),
         # Frontier points are drawn last, so a strategy identical to one on the frontier
         # never hides it.
         draw_order=frame["on_frontier"].astype(int),
@@ -454,8 +470,11 @@ def make_ce_plane_chart(frame: pd.DataFrame, *, currency: str = "") -> alt.Layer
     groups = ["on frontier", "dominated", "extendedly dominated", "identical"]
     base = alt.Chart(data).encode(
         x=alt.X("qalys:Q", title="QALYs per person (discounted)", scale=alt.Scale(zero=False)),
-        y=alt.Y("cost:Q", title=f"Cost per person (discounted) {currency}".strip(),
-                scale=alt.Scale(zero=False)),
+        y=alt.Y(
+            "cost:Q",
+            title=f"Cost per person (discounted) {currency}".strip(),
+            scale=alt.Scale(zero=False),
+        ),
     )
     line = (
         alt.Chart(data[data["on_frontier"]].sort_values("cost"))
@@ -463,15 +482,25 @@ def make_ce_plane_chart(frame: pd.DataFrame, *, currency: str = "") -> alt.Layer
         .encode(x="qalys:Q", y="cost:Q", order="cost:Q")
     )
     points = base.mark_point(size=70, filled=True, opacity=0.9).encode(
-        shape=alt.Shape("group:N", title="Status", legend=alt.Legend(orient="bottom"),
-                        scale=alt.Scale(domain=groups,
-                                        range=["circle", "cross", "triangle-up", "square"])),
-        color=alt.Color("group:N", title="Status", legend=alt.Legend(orient="bottom"),
-                        scale=alt.Scale(domain=groups, range=[ACTION_PALETTE[i] for i in
-                                                              (0, 1, 3, 4)])),
+        shape=alt.Shape(
+            "group:N",
+            title="Status",
+            legend=alt.Legend(orient="bottom"),
+            scale=alt.Scale(domain=groups, range=["circle", "cross", "triangle-up", "square"]),
+        ),
+        color=alt.Color(
+            "group:N",
+            title="Status",
+            legend=alt.Legend(orient="bottom"),
+            scale=alt.Scale(domain=groups, range=[ACTION_PALETTE[i] for i in (0, 1, 3, 4)]),
+        ),
         order=alt.Order("draw_order:Q"),
-        tooltip=["strategy:N", "status:N", alt.Tooltip("cost:Q", format=",.2f"),
-                 alt.Tooltip("qalys:Q", format=".4f")],
+        tooltip=[
+            "strategy:N",
+            "status:N",
+            alt.Tooltip("cost:Q", format=",.2f"),
+            alt.Tooltip("qalys:Q", format=".4f"),
+        ],
     )
     text = base.mark_text(align="left", dx=6, dy=-4, fontSize=9).encode(text="label:N")
     return alt.layer(line, points, text).properties(
@@ -493,19 +522,24 @@ def make_frontier_chart(frame: pd.DataFrame, *, currency: str = "") -> alt.Chart
         Currency label for the axis.
     """
     _require(frame, ["policy", "wtp_from", "wtp_to"], "frontier chart")
-    tooltip = ["policy:N", alt.Tooltip("wtp_from:Q", format=",.2f"),
-               alt.Tooltip("wtp_to:Q", format=",.2f")]
+    tooltip = [
+        "policy:N",
+        alt.Tooltip("wtp_from:Q", format=",.2f"),
+        alt.Tooltip("wtp_to:Q", format=",.2f"),
+    ]
     if "structure" in frame.columns:
         tooltip.append("structure:N")
     return (
         alt.Chart(frame)
         .mark_bar(color=ACTION_PALETTE[0], height={"band": 0.8})
         .encode(
-            x=alt.X("wtp_from:Q",
-                    title=f"Willingness to pay per QALY {currency}".strip()),
+            x=alt.X("wtp_from:Q", title=f"Willingness to pay per QALY {currency}".strip()),
             x2="wtp_to:Q",
-            y=alt.Y("policy:N", sort=list(dict.fromkeys(frame["policy"].astype(str))),
-                    title="Optimal policy"),
+            y=alt.Y(
+                "policy:N",
+                sort=list(dict.fromkeys(frame["policy"].astype(str))),
+                title="Optimal policy",
+            ),
             tooltip=tooltip,
         )
         .properties(title="Optimal policy by willingness to pay", width=520)
@@ -515,8 +549,9 @@ def make_frontier_chart(frame: pd.DataFrame, *, currency: str = "") -> alt.Chart
 # --- probabilistic analysis (PSA) charts ---------------------------------------------------
 
 
-def make_policy_acceptability_chart(frame: pd.DataFrame, *, action: str,
-                                    state_order: Sequence[str] | None = None) -> alt.LayerChart:
+def make_policy_acceptability_chart(
+    frame: pd.DataFrame, *, action: str, state_order: Sequence[str] | None = None
+) -> alt.LayerChart:
     """Heat map: share of draws whose optimal policy takes ``action``, by state and age band.
 
     Parameters
@@ -530,8 +565,11 @@ def make_policy_acceptability_chart(frame: pd.DataFrame, *, action: str,
     state_order : sequence of str, optional
         Row order (default: order of first appearance).
     """
-    _require(frame, ["state", "age_from", "age_to", "action", "share", "mc_se"],
-             "policy acceptability chart")
+    _require(
+        frame,
+        ["state", "age_from", "age_to", "action", "share", "mc_se"],
+        "policy acceptability chart",
+    )
     data = frame[frame["action"] == action].copy()
     data["band"] = [
         "any age" if pd.isna(a) else f"{a:g}-{b:g}"
@@ -540,15 +578,26 @@ def make_policy_acceptability_chart(frame: pd.DataFrame, *, action: str,
     data["label"] = [f"{s:.0%}" for s in data["share"]]
     states = _ordered(data, "state", state_order)
     base = alt.Chart(data).encode(
-        x=alt.X("band:O", title="Age band (years at the start of the cycle)", sort=None,
-                axis=alt.Axis(labelAngle=0)),
+        x=alt.X(
+            "band:O",
+            title="Age band (years at the start of the cycle)",
+            sort=None,
+            axis=alt.Axis(labelAngle=0),
+        ),
         y=alt.Y("state:N", title="Health state", sort=states),
     )
     cells = base.mark_rect(stroke="white", strokeWidth=0.5).encode(
-        color=alt.Color("share:Q", title=f"Share of draws: {action}",
-                        scale=alt.Scale(domain=[0, 1], scheme="blues")),
-        tooltip=["state:N", "band:O", alt.Tooltip("share:Q", format=".1%"),
-                 alt.Tooltip("mc_se:Q", title="Monte Carlo error", format=".1%")],
+        color=alt.Color(
+            "share:Q",
+            title=f"Share of draws: {action}",
+            scale=alt.Scale(domain=[0, 1], scheme="blues"),
+        ),
+        tooltip=[
+            "state:N",
+            "band:O",
+            alt.Tooltip("share:Q", format=".1%"),
+            alt.Tooltip("mc_se:Q", title="Monte Carlo error", format=".1%"),
+        ],
     )
     text = base.mark_text(fontSize=10).encode(
         text="label:N",
@@ -556,13 +605,14 @@ def make_policy_acceptability_chart(frame: pd.DataFrame, *, action: str,
     )
     return alt.layer(cells, text).properties(
         title=f"How often '{action}' is optimal across the parameter draws",
-        height=alt.Step(28), width=alt.Step(52),
+        height=alt.Step(28),
+        width=alt.Step(52),
     )
 
 
-def make_acceptability_curves_chart(curves: pd.DataFrame,
-                                    frontier: pd.DataFrame | None = None, *,
-                                    currency: str = "") -> alt.LayerChart:
+def make_acceptability_curves_chart(
+    curves: pd.DataFrame, frontier: pd.DataFrame | None = None, *, currency: str = ""
+) -> alt.LayerChart:
     """Acceptability curves of candidate policies, optionally with the frontier marked.
 
     Parameters
@@ -576,29 +626,53 @@ def make_acceptability_curves_chart(curves: pd.DataFrame,
     currency : str
         Currency label for the axis.
     """
-    _require(curves, ["wtp", "strategy", "probability_cost_effective"],
-             "acceptability curves chart")
+    _require(
+        curves, ["wtp", "strategy", "probability_cost_effective"], "acceptability curves chart"
+    )
     names = _ordered(curves, "strategy", None)
     dashes = [[1, 0], [6, 3], [2, 2], [8, 3, 2, 3]]
     x = alt.X("wtp:Q", title=f"Willingness to pay per QALY {currency}".strip())
-    y = alt.Y("probability_cost_effective:Q", title="Probability cost effective",
-              scale=alt.Scale(domain=[0, 1]))
-    lines = alt.Chart(curves).mark_line(strokeWidth=2).encode(
-        x=x, y=y,
-        color=alt.Color("strategy:N", title="Candidate policy", sort=names,
-                        scale=alt.Scale(domain=names, range=_cycle(ACTION_PALETTE, len(names))),
-                        legend=alt.Legend(orient="right", labelLimit=260)),
-        strokeDash=alt.StrokeDash("strategy:N", sort=names, legend=None,
-                                  scale=alt.Scale(domain=names, range=_cycle(dashes, len(names)))),
-        tooltip=["strategy:N", alt.Tooltip("wtp:Q", format=",.0f"),
-                 alt.Tooltip("probability_cost_effective:Q", format=".1%")],
+    y = alt.Y(
+        "probability_cost_effective:Q",
+        title="Probability cost effective",
+        scale=alt.Scale(domain=[0, 1]),
+    )
+    lines = (
+        alt.Chart(curves)
+        .mark_line(strokeWidth=2)
+        .encode(
+            x=x,
+            y=y,
+            color=alt.Color(
+                "strategy:N",
+                title="Candidate policy",
+                sort=names,
+                scale=alt.Scale(domain=names, range=_cycle(ACTION_PALETTE, len(names))),
+                legend=alt.Legend(orient="right", labelLimit=260),
+            ),
+            strokeDash=alt.StrokeDash(
+                "strategy:N",
+                sort=names,
+                legend=None,
+                scale=alt.Scale(domain=names, range=_cycle(dashes, len(names))),
+            ),
+            tooltip=[
+                "strategy:N",
+                alt.Tooltip("wtp:Q", format=",.0f"),
+                alt.Tooltip("probability_cost_effective:Q", format=".1%"),
+            ],
+        )
     )
     layers = [lines]
     if frontier is not None:
-        _require(frontier, ["wtp", "strategy", "probability_cost_effective"],
-                 "acceptability frontier")
-        layers.append(alt.Chart(frontier).mark_point(filled=True, color="black", size=25).encode(
-            x=x, y=y, tooltip=["strategy:N", alt.Tooltip("wtp:Q", format=",.0f")]))
+        _require(
+            frontier, ["wtp", "strategy", "probability_cost_effective"], "acceptability frontier"
+        )
+        layers.append(
+            alt.Chart(frontier)
+            .mark_point(filled=True, color="black", size=25)
+            .encode(x=x, y=y, tooltip=["strategy:N", alt.Tooltip("wtp:Q", format=",.0f")])
+        )
     return alt.layer(*layers).properties(
         title="Acceptability curves (dots: highest expected net benefit)", width=520, height=300
     )
@@ -621,10 +695,18 @@ def make_evppi_chart(frame: pd.DataFrame, *, unit: str = "") -> alt.LayerChart:
     )
     order = list(data.sort_values("evppi", ascending=False)["parameter"])
     y = alt.Y("parameter:N", sort=order, title="Parameter or group")
-    bars = alt.Chart(data).mark_bar(color=ACTION_PALETTE[0]).encode(
-        x=alt.X("evppi:Q", title=f"EVPPI per person {unit}".strip()), y=y,
-        tooltip=["parameter:N", alt.Tooltip("evppi:Q", format=",.2f"),
-                 alt.Tooltip("mc_se:Q", format=",.2f")],
+    bars = (
+        alt.Chart(data)
+        .mark_bar(color=ACTION_PALETTE[0])
+        .encode(
+            x=alt.X("evppi:Q", title=f"EVPPI per person {unit}".strip()),
+            y=y,
+            tooltip=[
+                "parameter:N",
+                alt.Tooltip("evppi:Q", format=",.2f"),
+                alt.Tooltip("mc_se:Q", format=",.2f"),
+            ],
+        )
     )
     whiskers = alt.Chart(data).mark_rule(color="#3F3F3F").encode(x="low:Q", x2="high:Q", y=y)
     return alt.layer(bars, whiskers).properties(
@@ -642,14 +724,22 @@ def make_psa_convergence_chart(frame: pd.DataFrame) -> alt.FacetChart:
         ``mean``, ``se``.
     """
     _require(frame, ["quantity", "n", "mean", "se"], "PSA convergence chart")
-    data = frame.assign(low=frame["mean"] - 1.96 * frame["se"],
-                        high=frame["mean"] + 1.96 * frame["se"])
+    data = frame.assign(
+        low=frame["mean"] - 1.96 * frame["se"], high=frame["mean"] + 1.96 * frame["se"]
+    )
     x = alt.X("n:Q", title="Draws", scale=alt.Scale(type="log"))
-    band = alt.Chart().mark_area(opacity=0.3, color=ACTION_PALETTE[2]).encode(
-        x=x, y=alt.Y("low:Q", title="Running mean", scale=alt.Scale(zero=False)), y2="high:Q")
+    band = (
+        alt.Chart()
+        .mark_area(opacity=0.3, color=ACTION_PALETTE[2])
+        .encode(
+            x=x, y=alt.Y("low:Q", title="Running mean", scale=alt.Scale(zero=False)), y2="high:Q"
+        )
+    )
     line = alt.Chart().mark_line(color=ACTION_PALETTE[0]).encode(x=x, y="mean:Q")
-    return alt.layer(band, line, data=data).properties(width=480, height=160).facet(
-        row=alt.Row("quantity:N", title=None)
-    ).resolve_scale(y="independent").properties(
-        title="Convergence of the running means (band: 95% Monte Carlo interval)"
+    return (
+        alt.layer(band, line, data=data)
+        .properties(width=480, height=160)
+        .facet(row=alt.Row("quantity:N", title=None))
+        .resolve_scale(y="independent")
+        .properties(title="Convergence of the running means (band: 95% Monte Carlo interval)")
     )

@@ -100,8 +100,7 @@ def open_model(source: str, text: str) -> None:
     if draft is not None and draft.text != text:
         text = draft.text
         notice = (
-            f"Restored your autosaved draft of {source_label(source)} "
-            f"(saved {draft.saved_at} UTC)."
+            f"Restored your autosaved draft of {source_label(source)} (saved {draft.saved_at} UTC)."
         )
     st.session_state[SOURCE_KEY] = source
     st.session_state[TEXT_KEY] = text
@@ -196,6 +195,7 @@ def check_model(text: str, file: str, base_dir: str) -> Checked:
 
 def problems_under(problems: tuple[Problem, ...], *prefixes: str) -> list[Problem]:
     """Problems whose table path starts with one of ``prefixes`` (``""`` = every problem)."""
+
     def under(where: str, prefix: str) -> bool:
         return not prefix or where == prefix or where.startswith((f"{prefix}.", f"{prefix}["))
 
@@ -236,8 +236,15 @@ class Solved:
 
 @st.cache_data(max_entries=16, show_spinner=False)
 def solve_model(
-    text: str, file: str, base_dir: str, kind: str, willingness_to_pay: float, method: str = "auto",
-    record_history: bool = False, max_iterations: int = 100_000, _model: Model | None = None,
+    text: str,
+    file: str,
+    base_dir: str,
+    kind: str,
+    willingness_to_pay: float,
+    method: str = "auto",
+    record_history: bool = False,
+    max_iterations: int = 100_000,
+    _model: Model | None = None,
 ) -> Solved:
     """Compile the base case, solve it and evaluate the policy (cached on text and settings).
 
@@ -253,15 +260,24 @@ def solve_model(
     model = _model if _model is not None else loads_model(text, file=file, base_dir=base_dir)
     compiled = compile_model(model)
     objective = Objective(kind, float(willingness_to_pay))
-    result = solve(compiled, objective, method=method, record_history=record_history,
-                   max_iterations=max_iterations)
+    result = solve(
+        compiled,
+        objective,
+        method=method,
+        record_history=record_history,
+        max_iterations=max_iterations,
+    )
     evaluation = evaluate_policy(compiled, result.policy, objective)
     return Solved(result, evaluation.trace_frame(), evaluation.totals_frame())
 
 
 @st.cache_data(max_entries=16, show_spinner=False)
 def policy_structure(
-    text: str, file: str, base_dir: str, kind: str, willingness_to_pay: float,
+    text: str,
+    file: str,
+    base_dir: str,
+    kind: str,
+    willingness_to_pay: float,
 ) -> PolicyStructure:
     """Plain-language structure of the solved policy (cached: widgets rerun the view often)."""
     return solve_model(text, file, base_dir, kind, willingness_to_pay).result.structure()

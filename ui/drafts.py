@@ -109,8 +109,9 @@ def _read(stem: str, folder: Path) -> Draft | None:
         return None
     if not isinstance(meta, dict) or not isinstance(meta.get("source"), str):
         return None
-    return Draft(source=meta["source"], text=text, saved_at=str(meta.get("saved_at", "")),
-                 path=path)
+    return Draft(
+        source=meta["source"], text=text, saved_at=str(meta.get("saved_at", "")), path=path
+    )
 
 
 def load_draft(source: str, folder: Path | None = None) -> Draft | None:

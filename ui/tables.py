@@ -22,16 +22,42 @@ from caredecide.errors import ModelError, Problem
 from caredecide.model import ALL_STATES, Action, Model, Parameter, Settings, State
 
 SETTINGS_COLUMNS = (
-    "cycle_years", "horizon_cycles", "until_age", "infinite_horizon", "start_age", "start",
-    "discount_outcomes", "discount_costs", "objective", "willingness_to_pay", "within_cycle",
-    "currency", "severity_order",
+    "cycle_years",
+    "horizon_cycles",
+    "until_age",
+    "infinite_horizon",
+    "start_age",
+    "start",
+    "discount_outcomes",
+    "discount_costs",
+    "objective",
+    "willingness_to_pay",
+    "within_cycle",
+    "currency",
+    "severity_order",
 )
-STATE_COLUMNS = ("id", "label", "qaly_weight", "cost", "absorbing", "alive",
-                 "negative_cost_allowed")
-ACTION_COLUMNS = ("id", "label", "allowed_in", "oneoff_cost", "oneoff_qaly_loss",
-                  "cost_per_cycle")
-PARAMETER_COLUMNS = ("name", "value", "kind", "per_years", "low", "high", "distribution",
-                     "source", "label", "note")
+STATE_COLUMNS = (
+    "id",
+    "label",
+    "qaly_weight",
+    "cost",
+    "absorbing",
+    "alive",
+    "negative_cost_allowed",
+)
+ACTION_COLUMNS = ("id", "label", "allowed_in", "oneoff_cost", "oneoff_qaly_loss", "cost_per_cycle")
+PARAMETER_COLUMNS = (
+    "name",
+    "value",
+    "kind",
+    "per_years",
+    "low",
+    "high",
+    "distribution",
+    "source",
+    "label",
+    "note",
+)
 
 
 # -- cells ------------------------------------------------------------------------------
@@ -97,11 +123,21 @@ def cell_distribution(text: str, where: str) -> dict | None:
     try:
         value = tomllib.loads(f"d = {text}")["d"]
     except tomllib.TOMLDecodeError as error:
-        raise ModelError(Problem(where, f"{text!r} is not an inline table ({error}); expected "
-                                 'e.g. { type = "beta", mean = 0.1, se = 0.02 }')) from None
+        raise ModelError(
+            Problem(
+                where,
+                f"{text!r} is not an inline table ({error}); expected "
+                'e.g. { type = "beta", mean = 0.1, se = 0.02 }',
+            )
+        ) from None
     if not isinstance(value, dict):
-        raise ModelError(Problem(where, f"{text!r} is not an inline table; expected e.g. "
-                                 '{ type = "beta", mean = 0.1, se = 0.02 }'))
+        raise ModelError(
+            Problem(
+                where,
+                f"{text!r} is not an inline table; expected e.g. "
+                '{ type = "beta", mean = 0.1, se = 0.02 }',
+            )
+        )
     return value
 
 
@@ -122,10 +158,12 @@ def cell_start(text: str) -> str | dict[str, float]:
         try:
             shares[key.strip()] = float(value)
         except ValueError:
-            raise ModelError(Problem(
-                f"settings.start.{key.strip()}",
-                f"{value.strip()!r} is not a share; expected a number such as 0.4",
-            )) from None
+            raise ModelError(
+                Problem(
+                    f"settings.start.{key.strip()}",
+                    f"{value.strip()!r} is not a share; expected a number such as 0.4",
+                )
+            ) from None
     return shares
 
 
@@ -143,44 +181,74 @@ def model_to_tables(model: Model) -> dict[str, pd.DataFrame]:
     """One editable DataFrame per table of the model (see the module docstring)."""
     s = model.settings
     tables: dict[str, pd.DataFrame] = {
-        "settings": pd.DataFrame([{
-            "cycle_years": s.cycle_years,
-            "horizon_cycles": s.horizon_cycles,
-            "until_age": s.until_age,
-            "infinite_horizon": s.infinite_horizon,
-            "start_age": s.start_age,
-            "start": start_cell(s.start),
-            "discount_outcomes": s.discount_outcomes,
-            "discount_costs": s.discount_costs,
-            "objective": s.objective,
-            "willingness_to_pay": s.willingness_to_pay,
-            "within_cycle": s.within_cycle,
-            "currency": s.currency,
-            "severity_order": ", ".join(s.severity_order),
-        }]).astype({"horizon_cycles": "Float64", "until_age": "Float64"}),
+        "settings": pd.DataFrame(
+            [
+                {
+                    "cycle_years": s.cycle_years,
+                    "horizon_cycles": s.horizon_cycles,
+                    "until_age": s.until_age,
+                    "infinite_horizon": s.infinite_horizon,
+                    "start_age": s.start_age,
+                    "start": start_cell(s.start),
+                    "discount_outcomes": s.discount_outcomes,
+                    "discount_costs": s.discount_costs,
+                    "objective": s.objective,
+                    "willingness_to_pay": s.willingness_to_pay,
+                    "within_cycle": s.within_cycle,
+                    "currency": s.currency,
+                    "severity_order": ", ".join(s.severity_order),
+                }
+            ]
+        ).astype({"horizon_cycles": "Float64", "until_age": "Float64"}),
         "states": pd.DataFrame(
-            [{"id": st.id, "label": st.label, "qaly_weight": expression_cell(st.qaly_weight),
-              "cost": expression_cell(st.cost), "absorbing": st.absorbing, "alive": st.alive,
-              "negative_cost_allowed": st.negative_cost_allowed} for st in model.states],
+            [
+                {
+                    "id": st.id,
+                    "label": st.label,
+                    "qaly_weight": expression_cell(st.qaly_weight),
+                    "cost": expression_cell(st.cost),
+                    "absorbing": st.absorbing,
+                    "alive": st.alive,
+                    "negative_cost_allowed": st.negative_cost_allowed,
+                }
+                for st in model.states
+            ],
             columns=list(STATE_COLUMNS),
         ).astype({c: "boolean" for c in ("absorbing", "alive", "negative_cost_allowed")}),
         "actions": pd.DataFrame(
-            [{"id": a.id, "label": a.label,
-              "allowed_in": a.allowed_in if isinstance(a.allowed_in, str)
-              else ", ".join(a.allowed_in),
-              "oneoff_cost": expression_cell(a.oneoff_cost),
-              "oneoff_qaly_loss": expression_cell(a.oneoff_qaly_loss),
-              "cost_per_cycle": expression_cell(a.cost_per_cycle)} for a in model.actions],
+            [
+                {
+                    "id": a.id,
+                    "label": a.label,
+                    "allowed_in": a.allowed_in
+                    if isinstance(a.allowed_in, str)
+                    else ", ".join(a.allowed_in),
+                    "oneoff_cost": expression_cell(a.oneoff_cost),
+                    "oneoff_qaly_loss": expression_cell(a.oneoff_qaly_loss),
+                    "cost_per_cycle": expression_cell(a.cost_per_cycle),
+                }
+                for a in model.actions
+            ],
             columns=list(ACTION_COLUMNS),
         ),
         "parameters": pd.DataFrame(
-            [{"name": name, "value": p.value, "kind": p.kind, "per_years": p.per_years,
-              "low": p.low, "high": p.high, "distribution": distribution_cell(p.distribution),
-              "source": p.source, "label": p.label, "note": p.note}
-             for name, p in model.parameters.items()],
+            [
+                {
+                    "name": name,
+                    "value": p.value,
+                    "kind": p.kind,
+                    "per_years": p.per_years,
+                    "low": p.low,
+                    "high": p.high,
+                    "distribution": distribution_cell(p.distribution),
+                    "source": p.source,
+                    "label": p.label,
+                    "note": p.note,
+                }
+                for name, p in model.parameters.items()
+            ],
             columns=list(PARAMETER_COLUMNS),
-        ).astype({"value": "float64", "per_years": "Float64", "low": "Float64",
-                  "high": "Float64"}),
+        ).astype({"value": "float64", "per_years": "Float64", "low": "Float64", "high": "Float64"}),
     }
     for kind, table in (("transitions", model.transitions), ("rates", model.rates)):
         for action_id, rows in table.items():
@@ -193,8 +261,10 @@ def model_to_tables(model: Model) -> dict[str, pd.DataFrame]:
 
 # -- one table -> model -----------------------------------------------------------------
 def _records(frame: pd.DataFrame) -> list[dict[str, Any]]:
-    return [dict(zip(frame.columns, row, strict=True))
-            for row in frame.itertuples(index=False, name=None)]
+    return [
+        dict(zip(frame.columns, row, strict=True))
+        for row in frame.itertuples(index=False, name=None)
+    ]
 
 
 def _settings(row: dict[str, Any]) -> Settings:
@@ -224,9 +294,12 @@ def _number_or_zero(value: Any) -> float | str:
 def _state(row: dict[str, Any]) -> State:
     absorbing = _flag(row["absorbing"], False)
     return State(
-        id=_text(row["id"]), label=_text(row["label"]),
-        qaly_weight=_number_or_zero(row["qaly_weight"]), cost=_number_or_zero(row["cost"]),
-        absorbing=absorbing, alive=_flag(row["alive"], not absorbing),
+        id=_text(row["id"]),
+        label=_text(row["label"]),
+        qaly_weight=_number_or_zero(row["qaly_weight"]),
+        cost=_number_or_zero(row["cost"]),
+        absorbing=absorbing,
+        alive=_flag(row["alive"], not absorbing),
         negative_cost_allowed=_flag(row["negative_cost_allowed"], False),
     )
 
@@ -234,7 +307,8 @@ def _state(row: dict[str, Any]) -> State:
 def _action(row: dict[str, Any]) -> Action:
     allowed = _text(row["allowed_in"]) or ALL_STATES
     return Action(
-        id=_text(row["id"]), label=_text(row["label"]),
+        id=_text(row["id"]),
+        label=_text(row["label"]),
         allowed_in=allowed if allowed == ALL_STATES else _names(allowed),
         oneoff_cost=_number_or_zero(row["oneoff_cost"]),
         oneoff_qaly_loss=_number_or_zero(row["oneoff_qaly_loss"]),
@@ -246,11 +320,16 @@ def _parameter(row: dict[str, Any]) -> Parameter:
     name = _text(row["name"])
     value = _optional_number(row["value"])
     return Parameter(
-        name=name, value=math.nan if value is None else value, source=_text(row["source"]),
-        kind=_text(row["kind"]) or "other", per_years=_optional_number(row["per_years"]),
-        low=_optional_number(row["low"]), high=_optional_number(row["high"]),
+        name=name,
+        value=math.nan if value is None else value,
+        source=_text(row["source"]),
+        kind=_text(row["kind"]) or "other",
+        per_years=_optional_number(row["per_years"]),
+        low=_optional_number(row["low"]),
+        high=_optional_number(row["high"]),
         distribution=cell_distribution(row["distribution"], f"parameters.{name}.distribution"),
-        label=_text(row["label"]), note=_text(row["note"]),
+        label=_text(row["label"]),
+        note=_text(row["note"]),
     )
 
 
@@ -260,8 +339,11 @@ def _rows_from_matrix(
     """Matrix back to rows; entries keep their order in the file (new ones go last)."""
     rows: dict[str, dict[str, Any]] = {}
     for from_id, series in frame.iterrows():
-        cells = {str(to): cell for to, value in series.items()
-                 if (cell := cell_expression(value)) is not None}
+        cells = {
+            str(to): cell
+            for to, value in series.items()
+            if (cell := cell_expression(value)) is not None
+        }
         order = [to for to in before.get(str(from_id), {}) if to in cells]
         row = {to: cells[to] for to in [*order, *(t for t in cells if t not in order)]}
         if row:
@@ -294,8 +376,10 @@ def model_with_table(model: Model, name: str, frame: pd.DataFrame) -> Model:
         if rows or action_id in table:  # an untouched empty matrix adds nothing
             table[action_id] = rows
         return replace(model, **{kind: table})
-    raise KeyError(f"unknown model table {name!r}; expected one of settings, states, actions, "
-                   "parameters, transitions.<action>, rates.<action>")
+    raise KeyError(
+        f"unknown model table {name!r}; expected one of settings, states, actions, "
+        "parameters, transitions.<action>, rates.<action>"
+    )
 
 
 def with_header_comments(old_text: str, new_text: str) -> str:
@@ -322,7 +406,7 @@ def locate(name: str, frame: pd.DataFrame, where: str) -> str:
     ``transitions.treat.stage_1.dead`` -> ``"row stage_1, column dead"``; ``""`` when the
     path does not point into ``frame``.
     """
-    rest = where[len(name):].lstrip(".") if where.startswith(name) else ""
+    rest = where[len(name) :].lstrip(".") if where.startswith(name) else ""
     if not rest:
         return ""
     if name == "settings":

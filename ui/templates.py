@@ -12,7 +12,9 @@ _HEADER = (
     "# guidelines or licensed practice.\n"
 )
 
-TREAT_OR_WAIT = _HEADER + '''format = 1
+TREAT_OR_WAIT = (
+    _HEADER
+    + """format = 1
 title = "Template: treat now or wait (finite horizon)"
 
 [settings]
@@ -96,9 +98,12 @@ kind = "cost"
 low = 2000.0
 high = 4000.0
 source = "Invented for the template"
-'''
+"""
+)
 
-STATIONARY = _HEADER + '''format = 1
+STATIONARY = (
+    _HEADER
+    + """format = 1
 title = "Template: treat or wait, infinite horizon (for value iteration)"
 
 [settings]
@@ -169,7 +174,8 @@ kind = "other"
 low = 0.1
 high = 0.6
 source = "Invented for the template"
-'''
+"""
+)
 
 TEMPLATES: dict[str, str] = {
     "treat-or-wait": TREAT_OR_WAIT,

@@ -39,7 +39,11 @@ def streamlit_command(model: Path, port: int) -> tuple[list[str], dict[str, str]
     terminal; the browser is opened by :func:`open_browser_when_ready` instead.
     """
     command = [
-        sys.executable, "-m", "streamlit", "run", str(app_script()),
+        sys.executable,
+        "-m",
+        "streamlit",
+        "run",
+        str(app_script()),
         "--server.address=127.0.0.1",
         f"--server.port={port}",
         "--server.headless=true",
@@ -64,7 +68,9 @@ def run_app(
         Path | None,
         typer.Argument(
             help="Model file to open (TOML). Default: the bundled synthetic demo model.",
-            exists=True, dir_okay=False, readable=True,
+            exists=True,
+            dir_okay=False,
+            readable=True,
         ),
     ] = None,
     port: Annotated[

@@ -48,18 +48,32 @@ def _qalys(value: float) -> str:
 
 
 def _print_table(result, currency: str) -> None:
-    table = Table(title=f"Strategies at {result.willingness_to_pay:,.0f} {currency} per QALY "
-                        "(discounted, per person; sorted by cost)".replace("  ", " "))
-    for column, justify in (("strategy", "left"), ("cost", "right"), ("QALYs", "right"),
-                            ("incr. cost", "right"), ("incr. QALYs", "right"),
-                            ("ICER", "right"), ("NMB", "right"), ("status", "left")):
+    table = Table(
+        title=f"Strategies at {result.willingness_to_pay:,.0f} {currency} per QALY "
+        "(discounted, per person; sorted by cost)".replace("  ", " ")
+    )
+    for column, justify in (
+        ("strategy", "left"),
+        ("cost", "right"),
+        ("QALYs", "right"),
+        ("incr. cost", "right"),
+        ("incr. QALYs", "right"),
+        ("ICER", "right"),
+        ("NMB", "right"),
+        ("status", "left"),
+    ):
         table.add_column(column, justify=justify)
     for _, row in result.table.iterrows():  # display rows
         best = " (best)" if row["best_at_wtp"] else ""
         table.add_row(
-            f"{row['strategy']}{best}", f"{row['cost']:,.0f}", f"{row['qalys']:.4f}",
-            _money(row["incremental_cost"]), _qalys(row["incremental_qalys"]),
-            _money(row["icer"]), f"{row['net_monetary_benefit']:,.0f}", str(row["status"]),
+            f"{row['strategy']}{best}",
+            f"{row['cost']:,.0f}",
+            f"{row['qalys']:.4f}",
+            _money(row["incremental_cost"]),
+            _qalys(row["incremental_qalys"]),
+            _money(row["icer"]),
+            f"{row['net_monetary_benefit']:,.0f}",
+            str(row["status"]),
         )
     _wide().print(table)
     per = f"{currency} per QALY".strip()
@@ -71,14 +85,22 @@ def _print_frontier(result) -> None:
     for column in ("policy", "WTP from", "WTP to", "cost", "QALYs", "found by"):
         table.add_column(column)
     for _, row in result.frontier.iterrows():  # display rows
-        table.add_row(row["policy"], f"{row['wtp_from']:,.2f}", f"{row['wtp_to']:,.2f}",
-                      f"{row['cost']:,.0f}", f"{row['qalys']:.4f}", row["found_by"])
+        table.add_row(
+            row["policy"],
+            f"{row['wtp_from']:,.2f}",
+            f"{row['wtp_to']:,.2f}",
+            f"{row['cost']:,.0f}",
+            f"{row['qalys']:.4f}",
+            row["found_by"],
+        )
     _wide().print(table)
     frontier = result.frontier_result
-    stdout.print(f"{len(result.frontier)} optimal policies, {len(result.switches)} switch "
-                 f"point(s); {frontier.n_solves} WTP values solved ({len(frontier.grid)} on the "
-                 f"grid, the rest at crossings, {frontier.rounds} round(s)). Each policy in "
-                 f"words: column 'structure' of {FRONTIER_FILE} (--out).")
+    stdout.print(
+        f"{len(result.frontier)} optimal policies, {len(result.switches)} switch "
+        f"point(s); {frontier.n_solves} WTP values solved ({len(frontier.grid)} on the "
+        f"grid, the rest at crossings, {frontier.rounds} round(s)). Each policy in "
+        f"words: column 'structure' of {FRONTIER_FILE} (--out)."
+    )
 
 
 def write_outputs(out: Path, result, currency: str = "") -> list[Path]:
@@ -101,8 +123,7 @@ def write_outputs(out: Path, result, currency: str = "") -> list[Path]:
     unit = f"({currency})" if currency else ""  # axis titles as in the app: "... (EUR)"
     written += save_chart(make_ce_plane_chart(result.table, currency=unit), out, "ce_plane")
     if result.frontier is not None:
-        written += save_chart(make_frontier_chart(result.frontier, currency=unit), out,
-                               "frontier")
+        written += save_chart(make_frontier_chart(result.frontier, currency=unit), out, "frontier")
     return written
 
 
@@ -110,33 +131,44 @@ def compare_command(
     model: Annotated[Path, typer.Argument(help="Model file (TOML).", dir_okay=False)],
     strategies: Annotated[
         Path | None,
-        typer.Option("--strategies", dir_okay=False,
-                     help="Strategy table (CSV: strategy, state, age_from, age_to, action); "
-                          "default: <model>.strategies.csv beside the model, if any."),
+        typer.Option(
+            "--strategies",
+            dir_okay=False,
+            help="Strategy table (CSV: strategy, state, age_from, age_to, action); "
+            "default: <model>.strategies.csv beside the model, if any.",
+        ),
     ] = None,
     wtp: Annotated[
         float | None,
-        typer.Option("--wtp", min=0.0, help="Willingness to pay per QALY (default: the "
-                                            "model's)."),
+        typer.Option("--wtp", min=0.0, help="Willingness to pay per QALY (default: the model's)."),
     ] = None,
     wtp_range: Annotated[
         tuple[float, float] | None,
-        typer.Option("--wtp-range", help="Also find the optimal policy for every WTP in "
-                                         "[LO, HI], with exact switch points."),
+        typer.Option(
+            "--wtp-range",
+            help="Also find the optimal policy for every WTP in "
+            "[LO, HI], with exact switch points.",
+        ),
     ] = None,
     from_age: Annotated[
         list[float] | None,
-        typer.Option("--from-age", min=0.0,
-                     help="Also compare 'X from age AGE' for every action X after the "
-                          "first (repeat for several ages; finite horizons only)."),
+        typer.Option(
+            "--from-age",
+            min=0.0,
+            help="Also compare 'X from age AGE' for every action X after the "
+            "first (repeat for several ages; finite horizons only).",
+        ),
     ] = None,
     grid: Annotated[
         int, typer.Option("--grid", min=2, max=1001, help="WTP grid values solved first.")
     ] = 21,
     out: Annotated[
         Path | None,
-        typer.Option("--out", file_okay=False,
-                     help="Folder for CSV files (table, frontier, traces) and CE-plane charts."),
+        typer.Option(
+            "--out",
+            file_okay=False,
+            help="Folder for CSV files (table, frontier, traces) and CE-plane charts.",
+        ),
     ] = None,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress or notes on stderr.")] = False,
 ) -> None:
@@ -146,19 +178,27 @@ def compare_command(
 
     print_caution()
     with user_errors():
-        with stderr.status("Solving and evaluating...", spinner="dots") if not quiet \
-                else nullcontext() as status:
+        with (
+            stderr.status("Solving and evaluating...", spinner="dots")
+            if not quiet
+            else nullcontext() as status
+        ):
             loaded = load_model(model)
 
             def progress(round_number: int, brackets: int) -> None:
                 if status is not None:
-                    status.update(f"Refining switch points: round {round_number}, "
-                                  f"{brackets} interval(s) left")
+                    status.update(
+                        f"Refining switch points: round {round_number}, {brackets} interval(s) left"
+                    )
 
             result = compare_strategies(
-                loaded, strategies, wtp,
-                tuple(wtp_range) if wtp_range is not None else None, grid=grid,
-                from_ages=tuple(from_age or ()), progress=progress,
+                loaded,
+                strategies,
+                wtp,
+                tuple(wtp_range) if wtp_range is not None else None,
+                grid=grid,
+                from_ages=tuple(from_age or ()),
+                progress=progress,
             )
         currency = loaded.settings.currency
         _print_table(result, currency)

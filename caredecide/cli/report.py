@@ -20,20 +20,28 @@ def step_progress(name: str, total: int, quiet: bool) -> Iterator[Callable[[int,
     """A rich progress bar on stderr and its ``(done, total, step)`` callback."""
     with progress(name, total=total, quiet=quiet) as bar:
         task = bar.add_task(name, total=total)
-        yield lambda done, total, step: bar.update(task, completed=done, total=total,
-                                                   description=step)
+        yield lambda done, total, step: bar.update(
+            task, completed=done, total=total, description=step
+        )
 
 
 def report_command(
     model: Annotated[Path, typer.Argument(help="Model file (TOML).", dir_okay=False)],
     out: Annotated[
-        Path, typer.Option("--out", help="HTML report to write; tables and the run record "
-                           "go beside it.", dir_okay=False)
+        Path,
+        typer.Option(
+            "--out",
+            help="HTML report to write; tables and the run record go beside it.",
+            dir_okay=False,
+        ),
     ] = Path("report.html"),
     draws: Annotated[
         int | None,
-        typer.Option("--draws", min=1, help="Parameter draws for the probabilistic analysis "
-                     "(left out when not given)."),
+        typer.Option(
+            "--draws",
+            min=1,
+            help="Parameter draws for the probabilistic analysis (left out when not given).",
+        ),
     ] = None,
     seed: Annotated[
         int, typer.Option("--seed", min=0, help="Seed of the probabilistic analysis.")
@@ -48,19 +56,26 @@ def report_command(
     with user_errors():
         with step_progress("report", 5, quiet) as step:
             record = build_report(
-                model, out, draws=draws, seed=seed if draws else None,
-                command_line=shlex.join(["caredecide", *sys.argv[1:]]), progress=step,
+                model,
+                out,
+                draws=draws,
+                seed=seed if draws else None,
+                command_line=shlex.join(["caredecide", *sys.argv[1:]]),
+                progress=step,
             )
     failed = _failed_checks(tables_dir_for(out))
     if failed:
         # Shown even with --quiet: results of a model that fails verification need care.
-        stderr.print(f"[bold red]warning:[/] {len(failed)} verification check(s) failed "
-                     f"({', '.join(failed)}); read the report's verification table before "
-                     "using the results.")
+        stderr.print(
+            f"[bold red]warning:[/] {len(failed)} verification check(s) failed "
+            f"({', '.join(failed)}); read the report's verification table before "
+            "using the results."
+        )
     stdout.print(f"Report: {out}")
     stdout.print(f"Tables: {tables_dir_for(out)} ({len(record.outputs)} files)")
-    stdout.print(f"Run record: {record_path_for(out)} (re-run with: caredecide rerun "
-                 f"{record_path_for(out)})")
+    stdout.print(
+        f"Run record: {record_path_for(out)} (re-run with: caredecide rerun {record_path_for(out)})"
+    )
     if not quiet:
         stderr.print("Open the report in any browser; it needs no network.")
 

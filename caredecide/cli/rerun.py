@@ -12,16 +12,27 @@ from caredecide.cli.report import step_progress
 
 
 def rerun_command(
-    record: Annotated[Path, typer.Argument(help="Run record (JSON) written by 'caredecide "
-                                           "report'.", dir_okay=False)],
+    record: Annotated[
+        Path,
+        typer.Argument(help="Run record (JSON) written by 'caredecide report'.", dir_okay=False),
+    ],
     model: Annotated[
-        Path | None, typer.Option("--model", help="Model file to use instead of the path in the "
-                                  "record (e.g. a record and model sent together); its hash is "
-                                  "still compared.", dir_okay=False)
+        Path | None,
+        typer.Option(
+            "--model",
+            help="Model file to use instead of the path in the "
+            "record (e.g. a record and model sent together); its hash is "
+            "still compared.",
+            dir_okay=False,
+        ),
     ] = None,
     out: Annotated[
-        Path | None, typer.Option("--out", help="Folder for the re-run's tables (default: a "
-                                  "temporary folder).", file_okay=False)
+        Path | None,
+        typer.Option(
+            "--out",
+            help="Folder for the re-run's tables (default: a temporary folder).",
+            file_okay=False,
+        ),
     ] = None,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress on stderr.")] = False,
 ) -> None:
@@ -36,14 +47,17 @@ def rerun_command(
         stderr.print(f"[yellow]note:[/] {difference}")
     stdout.print(f"Re-run tables: {outcome.output_dir}")
     if outcome.reproduced:
-        stdout.print("Reproduced: the model file, its input files and every output match the "
-                     "record.")
+        stdout.print(
+            "Reproduced: the model file, its input files and every output match the record."
+        )
         return
     if outcome.model_changed:
         stdout.print("The model file has changed since the run was recorded.")
     if outcome.inputs_changed:
-        stdout.print("An input file the model reads (life table or strategy table) has "
-                     "changed, vanished or appeared since the run was recorded.")
+        stdout.print(
+            "An input file the model reads (life table or strategy table) has "
+            "changed, vanished or appeared since the run was recorded."
+        )
     for difference in outcome.differences:
         stdout.print(f"DIFFERS - {difference}")
     raise typer.Exit(code=1)

@@ -57,8 +57,11 @@ def build_summary(path: Path, compiled, result, outcome) -> dict:
         "model_file": str(path),
         "model_sha256": file_sha256(path),
         "package_version": __version__,
-        "objective": {**result.objective.to_dict(), "description": result.objective.describe(),
-                      "unit": result.objective.unit},
+        "objective": {
+            **result.objective.to_dict(),
+            "description": result.objective.describe(),
+            "unit": result.objective.unit,
+        },
         "horizon_cycles": compiled.n_cycles,
         "cycle_years": compiled.cycle_length,
         "totals": {k: _finite_or_none(v) for k, v in outcome.totals(0).items()},
@@ -93,29 +96,37 @@ def _print_table(compiled, result, outcome, summary: dict) -> None:
     stdout.print(f"Structure: {plain(summary['structure'])}")
     ties = result.indifferent[0] & result.decision_states
     if ties.any():
-        stdout.print(f"Indifferent (action gap within tolerance) in {int(ties.sum())} "
-                     "state-cycle(s); the lowest action index was chosen.")
+        stdout.print(
+            f"Indifferent (action gap within tolerance) in {int(ties.sum())} "
+            "state-cycle(s); the lowest action index was chosen."
+        )
     description = summary["objective"]["description"]
     totals = Table(title=f"Totals per person under the optimal policy ({description})")
     totals.add_column("quantity")
     totals.add_column("discounted", justify="right")
     totals.add_column("undiscounted", justify="right")
     for name in ("life_years", "qalys", "costs"):
-        totals.add_row(name.replace("_", " "), f"{getattr(outcome, name)[0]:,.4f}",
-                       f"{getattr(outcome, name + '_undiscounted')[0]:,.4f}")
+        totals.add_row(
+            name.replace("_", " "),
+            f"{getattr(outcome, name)[0]:,.4f}",
+            f"{getattr(outcome, name + '_undiscounted')[0]:,.4f}",
+        )
     totals.add_row("net monetary benefit", f"{outcome.net_monetary_benefit[0]:,.2f}", "")
     stdout.print(totals)
     solver = summary["solver"]
-    stdout.print(f"Solver: {solver['message']}; error bound {solver['error_bound']:.3g} "
-                 f"({summary['objective']['unit']}).")
+    stdout.print(
+        f"Solver: {solver['message']}; error bound {solver['error_bound']:.3g} "
+        f"({summary['objective']['unit']})."
+    )
 
 
 def solve_command(
     model: Annotated[Path, typer.Argument(help="Model file (TOML).", dir_okay=False)],
     out: Annotated[
         Path | None,
-        typer.Option("--out", help="Folder to write policy.csv, trace.csv and summary.json.",
-                     file_okay=False),
+        typer.Option(
+            "--out", help="Folder to write policy.csv, trace.csv and summary.json.", file_okay=False
+        ),
     ] = None,
     wtp: Annotated[
         float | None,
@@ -153,14 +164,17 @@ def solve_command(
         if not result.success:
             stderr.print(f"[bold yellow]warning:[/] {plain(result.message)}")
         if wtp is not None and objective.kind == "qalys" and not quiet:
-            stderr.print(f"note: {plain(model)} maximises QALYs; --wtp {wtp:g} sets only the "
-                         "reported net monetary benefit, not the policy")
+            stderr.print(
+                f"note: {plain(model)} maximises QALYs; --wtp {wtp:g} sets only the "
+                "reported net monetary benefit, not the policy"
+            )
         if out is not None:
             with writing_to(out):
                 _policy_frame(result).to_csv(out / "policy.csv", index=False)
                 outcome.trace_frame().to_csv(out / "trace.csv", index=False)
-                (out / "summary.json").write_text(json.dumps(summary, indent=2) + "\n",
-                                                  encoding="utf-8")
+                (out / "summary.json").write_text(
+                    json.dumps(summary, indent=2) + "\n", encoding="utf-8"
+                )
             if not quiet:
                 stderr.print(f"Wrote policy.csv, trace.csv and summary.json to {plain(out)}")
         if output_format is OutputFormat.csv:

@@ -35,8 +35,13 @@ def _loss_table(frame: pd.DataFrame, unit: str) -> Table:
     for column in ("candidate", "origin", "expected value", "expected loss", "MC s.e."):
         out.add_column(column, justify="left" if column in ("candidate", "origin") else "right")
     for row in frame.itertuples():
-        out.add_row(row.candidate, row.origin, _number(row.expected_value),
-                    _number(row.expected_loss), _number(row.mc_se))
+        out.add_row(
+            row.candidate,
+            row.origin,
+            _number(row.expected_value),
+            _number(row.expected_loss),
+            _number(row.mc_se),
+        )
     return out
 
 
@@ -47,8 +52,13 @@ def _evppi_table(frame: pd.DataFrame, unit: str, n_draws: int) -> Table:
     for column in ("parameter", "EVPPI", "MC s.e.", "share of EVPI", "note"):
         out.add_column(column, justify="left" if column in ("parameter", "note") else "right")
     for row in frame.itertuples():
-        out.add_row(row.parameter, _number(row.evppi), _number(row.mc_se),
-                    _number(row.share_of_evpi, ".1%"), str(row.message or ""))
+        out.add_row(
+            row.parameter,
+            _number(row.evppi),
+            _number(row.mc_se),
+            _number(row.share_of_evpi, ".1%"),
+            str(row.message or ""),
+        )
     return out
 
 
@@ -89,8 +99,9 @@ def run_uncertainty(
     ] = None,
     connect_timeout: Annotated[
         str,
-        typer.Option("--connect-timeout",
-                     help="How long to try reaching --scheduler (e.g. 20s, 2m)."),
+        typer.Option(
+            "--connect-timeout", help="How long to try reaching --scheduler (e.g. 20s, 2m)."
+        ),
     ] = "20s",
     chunk_size: Annotated[
         int | None,
@@ -98,15 +109,23 @@ def run_uncertainty(
     ] = None,
     strategies: Annotated[
         Path | None,
-        typer.Option("--strategies", exists=True, dir_okay=False, readable=True,
-                     help="Strategy table (CSV) whose strategies join the candidates "
-                          "(default: MODEL.strategies.csv beside the model, if any)."),
+        typer.Option(
+            "--strategies",
+            exists=True,
+            dir_okay=False,
+            readable=True,
+            help="Strategy table (CSV) whose strategies join the candidates "
+            "(default: MODEL.strategies.csv beside the model, if any).",
+        ),
     ] = None,
     rank_correlation: Annotated[
         list[str] | None,
-        typer.Option("--rank-correlation", metavar="NAME,NAME=R",
-                     help="Target rank correlation of two uncertain parameters, NAME,NAME=R "
-                          "with -1 < R < 1 (Iman-Conover); repeat for more pairs."),
+        typer.Option(
+            "--rank-correlation",
+            metavar="NAME,NAME=R",
+            help="Target rank correlation of two uncertain parameters, NAME,NAME=R "
+            "with -1 < R < 1 (Iman-Conover); repeat for more pairs.",
+        ),
     ] = None,
     wtp_range: Annotated[
         tuple[float, float] | None,
@@ -117,13 +136,17 @@ def run_uncertainty(
     ] = 5.0,
     out: Annotated[
         Path | None,
-        typer.Option("--out", file_okay=False,
-                     help="Folder for CSV (and Parquet) tables and charts (SVG, PNG); "
-                          "created if missing."),
+        typer.Option(
+            "--out",
+            file_okay=False,
+            help="Folder for CSV (and Parquet) tables and charts (SVG, PNG); created if missing.",
+        ),
     ] = None,
     quiet: Annotated[
-        bool, typer.Option("--quiet", help="No progress or notes on stderr (the caution "
-                                            "is always shown).")
+        bool,
+        typer.Option(
+            "--quiet", help="No progress or notes on stderr (the caution is always shown)."
+        ),
     ] = False,
 ) -> None:
     """Probabilistic sensitivity analysis of the timing policy: acceptability by state and
@@ -154,23 +177,28 @@ def run_uncertainty(
             def advance(done: int, total: int) -> None:
                 bar.update(task, completed=done)
 
-            options = dict(chunk_size=chunk_size, wtp_range=wtp_range, strategies=extra,
-                           rank_correlation=correlations,
-                           progress=advance)
+            options = dict(
+                chunk_size=chunk_size,
+                wtp_range=wtp_range,
+                strategies=extra,
+                rank_correlation=correlations,
+                progress=advance,
+            )
             if workers is None and scheduler is None:
                 result = run_psa(loaded, draws, seed, **options)
             else:
                 from caredecide.uncertainty.cluster import dask_client, dask_map
 
-                with dask_client(scheduler, workers,
-                                 connect_timeout=connect_timeout) as client:
+                with dask_client(scheduler, workers, connect_timeout=connect_timeout) as client:
                     result = run_psa(loaded, draws, seed, map_chunks=dask_map(client), **options)
         tables = _tables(result, band_years)
 
     unit = result.objective.unit
     info = result.evpi()
-    stdout.print(f"Model: {loaded.title}; objective: {result.objective.describe()}; "
-                 f"{result.n_draws:,} draws, seed {result.seed}")
+    stdout.print(
+        f"Model: {loaded.title}; objective: {result.objective.describe()}; "
+        f"{result.n_draws:,} draws, seed {result.seed}"
+    )
     treat = _shown_action(result)
     stdout.print(_acceptability_table(tables["acceptability_by_age_band"], treat))
     stdout.print(_loss_table(tables["expected_loss"], unit))
@@ -181,15 +209,18 @@ def run_uncertainty(
         f"{info['evpi_among_candidates']:,.2f} (s.e. {info['mc_se_among_candidates']:,.2f})."
     )
     share = result.distinct_counts[0] / result.n_draws
-    stdout.print(f"{len(result.distinct_counts):,} distinct optimal policies across the draws; "
-                 f"the most frequent is optimal in {share:.1%} of them.")
+    stdout.print(
+        f"{len(result.distinct_counts):,} distinct optimal policies across the draws; "
+        f"the most frequent is optimal in {share:.1%} of them."
+    )
     if len(tables["evppi"]):
         stdout.print(_evppi_table(tables["evppi"], unit, result.n_draws))
     else:
         stdout.print("EVPPI not computed: it needs at least 200 draws and two candidates.")
     if not result.success:
-        stderr.print("[bold yellow]warning:[/] the solver reported a problem: "
-                     + "; ".join(result.messages))
+        stderr.print(
+            "[bold yellow]warning:[/] the solver reported a problem: " + "; ".join(result.messages)
+        )
     if out is not None:
         with user_errors(), writing_to(out):
             _write_outputs(out, result, tables, treat, quiet)
@@ -208,8 +239,12 @@ def _correlation_pairs(texts: list[str]) -> dict[tuple[str, str], float]:
         except ValueError:
             number = None
         if not (first.strip() and second.strip() and number is not None):
-            problems.append(Problem("--rank-correlation", f"{text!r}; expected NAME,NAME=R "
-                                    "such as c_stage_2,c_stage_3=0.6"))
+            problems.append(
+                Problem(
+                    "--rank-correlation",
+                    f"{text!r}; expected NAME,NAME=R such as c_stage_2,c_stage_3=0.6",
+                )
+            )
             continue
         pairs[(first.strip(), second.strip())] = number
     if problems:
@@ -237,8 +272,9 @@ def _tables(result, band_years: float) -> dict[str, pd.DataFrame]:
     }
 
 
-def _write_outputs(out: Path, result, tables: dict[str, pd.DataFrame], action: str,
-                   quiet: bool) -> None:
+def _write_outputs(
+    out: Path, result, tables: dict[str, pd.DataFrame], action: str, quiet: bool
+) -> None:
     from ui.charts import (
         make_acceptability_curves_chart,
         make_evppi_chart,
@@ -267,9 +303,11 @@ def _write_outputs(out: Path, result, tables: dict[str, pd.DataFrame], action: s
     unit = f"({result.objective.unit})"
     charts = {
         "acceptability_by_state": make_policy_acceptability_chart(
-            tables["acceptability_by_age_band"], action=action),
+            tables["acceptability_by_age_band"], action=action
+        ),
         "acceptability_curves": make_acceptability_curves_chart(
-            tables["acceptability_curves"], tables["acceptability_frontier"]),
+            tables["acceptability_curves"], tables["acceptability_frontier"]
+        ),
         "convergence": make_psa_convergence_chart(tables["convergence"]),
     }
     if len(tables["evppi"]):

@@ -34,12 +34,16 @@ def verify_command(
         table.add_column(column, overflow="fold")
     for check in report.checks:
         style = "bold red" if check.status == FAIL else ""
-        table.add_row(check.title, f"[{style}]{check.status}[/]" if style else check.status,
-                      check.figures)
+        table.add_row(
+            check.title, f"[{style}]{check.status}[/]" if style else check.status, check.figures
+        )
     stdout.print(table)
     failed = report.failures
-    stdout.print(f"{len(failed)} of {len(report.checks)} checks failed" if failed
-                 else "Every check passed or does not apply.")
+    stdout.print(
+        f"{len(failed)} of {len(report.checks)} checks failed"
+        if failed
+        else "Every check passed or does not apply."
+    )
     if csv is not None:
         csv.write_bytes(table_to_csv(report.to_frame()))
     if failed:

@@ -24,9 +24,19 @@ from caredecide.report.analyses import ReportData, result_tables, run_analyses
 
 WORKBOOK_NAME = "results.xlsx"
 
-__all__ = ["Downloads", "ReportData", "RerunOutcome", "build_report", "downloads",
-           "input_files", "record_path_for", "rerun", "run_analyses", "tables_dir_for",
-           "write_outputs"]
+__all__ = [
+    "Downloads",
+    "ReportData",
+    "RerunOutcome",
+    "build_report",
+    "downloads",
+    "input_files",
+    "record_path_for",
+    "rerun",
+    "run_analyses",
+    "tables_dir_for",
+    "write_outputs",
+]
 
 
 def tables_dir_for(report_path: Path) -> Path:
@@ -67,13 +77,19 @@ def _hash_inputs(model, model_path: Path) -> dict[str, str]:
     """
     from caredecide.runrecord import sha256_file
 
-    return {Path(_relative(p, Path(model_path).parent)).as_posix(): sha256_file(p)
-            for p in sorted(input_files(model, model_path))}
+    return {
+        Path(_relative(p, Path(model_path).parent)).as_posix(): sha256_file(p)
+        for p in sorted(input_files(model, model_path))
+    }
 
 
 def _about(data: ReportData) -> dict[str, str]:
-    return {"model": data.model.title, "model file sha256": data.model_sha256,
-            "draws": str(data.draws or 0), "seed": str(data.seed)}
+    return {
+        "model": data.model.title,
+        "model file sha256": data.model_sha256,
+        "draws": str(data.draws or 0),
+        "seed": str(data.seed),
+    }
 
 
 def write_outputs(data: ReportData, tables_dir: Path) -> dict[str, str]:
@@ -130,8 +146,7 @@ def build_report(
     tables_dir = tables_dir_for(out)
     record = RunRecord(
         command="report",
-        arguments={"draws": draws, "seed": seed, "report": out.name,
-                   "command_line": command_line},
+        arguments={"draws": draws, "seed": seed, "report": out.name, "command_line": command_line},
         model_path=_relative(model_path, record_path.parent),
         model_sha256=data.model_sha256,
         seed=seed,
@@ -192,10 +207,19 @@ def downloads(
     located = Path(base_dir) / Path(file).name
     if located.is_file():
         model = replace(model, source_path=located)
-    data = run_analyses(model.source_path or Path(file), draws=draws, seed=seed, model=model,
-                        model_sha256=sha256_bytes(model_text.encode("utf-8")))
-    record = {"command_line": command_line, "seed": seed, "date": utc_now(),
-              "versions": package_versions()}
+    data = run_analyses(
+        model.source_path or Path(file),
+        draws=draws,
+        seed=seed,
+        model=model,
+        model_sha256=sha256_bytes(model_text.encode("utf-8")),
+    )
+    record = {
+        "command_line": command_line,
+        "seed": seed,
+        "date": utc_now(),
+        "versions": package_versions(),
+    }
     return Downloads(
         report_html=render_report(data, record).encode("utf-8"),
         workbook=workbook_bytes(data.inputs, data.results, about=_about(data)),
@@ -276,25 +300,28 @@ def rerun(
     record_path = Path(record_path)
     record = read_record(record_path)
     if record.command != "report":
-        raise RunRecordError(f"{record_path}: command {record.command!r} cannot be re-run; "
-                             "expected 'report'")
+        raise RunRecordError(
+            f"{record_path}: command {record.command!r} cannot be re-run; expected 'report'"
+        )
     model_path = resolve(record_path, record.model_path) if model is None else Path(model)
     if not model_path.is_file():
-        given = (f"model_path = {record.model_path!r}" if model is None else "given with --model")
-        raise RunRecordError(f"{record_path}: model file {model_path} ({given}) does not exist; "
-                             "expected the model file of the recorded run")
-    outcome = RerunOutcome(version_differences=compare_versions(record.versions,
-                                                                package_versions()))
+        given = f"model_path = {record.model_path!r}" if model is None else "given with --model"
+        raise RunRecordError(
+            f"{record_path}: model file {model_path} ({given}) does not exist; "
+            "expected the model file of the recorded run"
+        )
+    outcome = RerunOutcome(
+        version_differences=compare_versions(record.versions, package_versions())
+    )
     now = sha256_file(model_path)
     if now != record.model_sha256:
         outcome.model_changed = True
-        outcome.differences.append(Difference(f"model file {model_path}", record.model_sha256,
-                                              now))
+        outcome.differences.append(Difference(f"model file {model_path}", record.model_sha256, now))
     draws = record.arguments.get("draws")
     data = run_analyses(model_path, draws=draws, seed=record.seed, progress=progress)
     changed_inputs = compare_hashes(
-        record.input_files, _hash_inputs(data.model, model_path),
-        kind="input file")
+        record.input_files, _hash_inputs(data.model, model_path), kind="input file"
+    )
     outcome.inputs_changed = bool(changed_inputs)
     outcome.differences += changed_inputs
     target = Path(out_dir) if out_dir is not None else Path(tempfile.mkdtemp(prefix="rerun-"))

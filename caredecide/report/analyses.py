@@ -67,8 +67,14 @@ def _distribution_text(spec) -> str:
         return "fixed"
     spec = dict(spec)
     kind = spec.pop("type", "?")
-    return f"{kind}(" + ", ".join(f"{k}={v:g}" if isinstance(v, int | float) else f"{k}={v}"
-                                  for k, v in sorted(spec.items())) + ")"
+    return (
+        f"{kind}("
+        + ", ".join(
+            f"{k}={v:g}" if isinstance(v, int | float) else f"{k}={v}"
+            for k, v in sorted(spec.items())
+        )
+        + ")"
+    )
 
 
 def input_tables(model: Model) -> dict[str, pd.DataFrame]:
@@ -81,34 +87,49 @@ def input_tables(model: Model) -> dict[str, pd.DataFrame]:
     from caredecide.sensitivity.variation import parameter_ranges
 
     s = model.settings
-    horizon = ("infinite" if s.infinite_horizon else
-               f"{s.horizon_cycles} cycles" if s.horizon_cycles is not None else
-               f"until age {s.until_age:g}")
+    horizon = (
+        "infinite"
+        if s.infinite_horizon
+        else f"{s.horizon_cycles} cycles"
+        if s.horizon_cycles is not None
+        else f"until age {s.until_age:g}"
+    )
     settings = pd.DataFrame(
-        [("cycle_years", s.cycle_years), ("horizon", horizon), ("start_age", s.start_age),
-         ("start", "; ".join(f"{k}: {v:g}" for k, v in model.start_distribution().items())),
-         ("discount_outcomes", s.discount_outcomes), ("discount_costs", s.discount_costs),
-         ("objective", s.objective), ("willingness_to_pay", s.willingness_to_pay),
-         ("within_cycle", s.within_cycle), ("currency", s.currency),
-         ("severity_order", ", ".join(s.severity_order))],
+        [
+            ("cycle_years", s.cycle_years),
+            ("horizon", horizon),
+            ("start_age", s.start_age),
+            ("start", "; ".join(f"{k}: {v:g}" for k, v in model.start_distribution().items())),
+            ("discount_outcomes", s.discount_outcomes),
+            ("discount_costs", s.discount_costs),
+            ("objective", s.objective),
+            ("willingness_to_pay", s.willingness_to_pay),
+            ("within_cycle", s.within_cycle),
+            ("currency", s.currency),
+            ("severity_order", ", ".join(s.severity_order)),
+        ],
         columns=["setting", "value"],
     ).astype({"value": str})
-    states = pd.DataFrame({
-        "state": [x.id for x in model.states],
-        "label": [x.label for x in model.states],
-        "qaly_weight": [_text(x.qaly_weight) for x in model.states],
-        "cost": [_text(x.cost) for x in model.states],
-        "absorbing": [x.absorbing for x in model.states],
-        "alive": [x.alive for x in model.states],
-    })
-    actions = pd.DataFrame({
-        "action": [a.id for a in model.actions],
-        "label": [a.label for a in model.actions],
-        "allowed_in": [", ".join(model.allowed_states(a)) for a in model.actions],
-        "oneoff_cost": [_text(a.oneoff_cost) for a in model.actions],
-        "oneoff_qaly_loss": [_text(a.oneoff_qaly_loss) for a in model.actions],
-        "cost_per_cycle": [_text(a.cost_per_cycle) for a in model.actions],
-    })
+    states = pd.DataFrame(
+        {
+            "state": [x.id for x in model.states],
+            "label": [x.label for x in model.states],
+            "qaly_weight": [_text(x.qaly_weight) for x in model.states],
+            "cost": [_text(x.cost) for x in model.states],
+            "absorbing": [x.absorbing for x in model.states],
+            "alive": [x.alive for x in model.states],
+        }
+    )
+    actions = pd.DataFrame(
+        {
+            "action": [a.id for a in model.actions],
+            "label": [a.label for a in model.actions],
+            "allowed_in": [", ".join(model.allowed_states(a)) for a in model.actions],
+            "oneoff_cost": [_text(a.oneoff_cost) for a in model.actions],
+            "oneoff_qaly_loss": [_text(a.oneoff_qaly_loss) for a in model.actions],
+            "cost_per_cycle": [_text(a.cost_per_cycle) for a in model.actions],
+        }
+    )
     ranges = parameter_ranges(model)
     ranges = ranges.set_index("parameter") if len(ranges) else ranges
     rows = []
@@ -116,20 +137,57 @@ def input_tables(model: Model) -> dict[str, pd.DataFrame]:
         p = model.parameters.get(name)
         group = next((g for g in model.groups.values() if name in g.members), None)
         if p is not None:
-            described = (p.label, p.kind, p.per_years, _distribution_text(p.distribution),
-                         p.source, p.note)
+            described = (
+                p.label,
+                p.kind,
+                p.per_years,
+                _distribution_text(p.distribution),
+                p.source,
+                p.note,
+            )
         else:
             counts = ", ".join(f"{c:g}" for c in group.counts)
-            described = ("", f"probability (Dirichlet group {group.name})", None,
-                         f"dirichlet(counts={counts}, prior={group.prior:g})", group.source,
-                         group.note)
+            described = (
+                "",
+                f"probability (Dirichlet group {group.name})",
+                None,
+                f"dirichlet(counts={counts}, prior={group.prior:g})",
+                group.source,
+                group.note,
+            )
         label, kind, per_years, distribution, source, note = described
         r = ranges.loc[name]
-        rows.append((name, label, float(r["base"]), kind, per_years, float(r["low"]),
-                     float(r["high"]), r["range_from"], distribution, source, note))
-    evidence = pd.DataFrame(rows, columns=["parameter", "label", "value", "kind", "per_years",
-                                           "low", "high", "range_from", "distribution",
-                                           "source", "note"])
+        rows.append(
+            (
+                name,
+                label,
+                float(r["base"]),
+                kind,
+                per_years,
+                float(r["low"]),
+                float(r["high"]),
+                r["range_from"],
+                distribution,
+                source,
+                note,
+            )
+        )
+    evidence = pd.DataFrame(
+        rows,
+        columns=[
+            "parameter",
+            "label",
+            "value",
+            "kind",
+            "per_years",
+            "low",
+            "high",
+            "range_from",
+            "distribution",
+            "source",
+            "note",
+        ],
+    )
     return {"settings": settings, "states": states, "actions": actions, "evidence": evidence}
 
 
@@ -152,8 +210,9 @@ def _policy(data: ReportData) -> None:
     data.facts["solver"] = result.message
     data.facts["value_at_start"] = float(outcome.value[0])
     data.facts["finite_horizon"] = result.finite_horizon
-    data.facts["decision_states"] = [s for s, d in zip(result.state_ids, result.decision_states,
-                                                       strict=True) if d]
+    data.facts["decision_states"] = [
+        s for s, d in zip(result.state_ids, result.decision_states, strict=True) if d
+    ]
 
 
 def _strategies(data: ReportData) -> None:
@@ -161,8 +220,7 @@ def _strategies(data: ReportData) -> None:
 
     wtp = data.objective.willingness_to_pay
     wtp_range = (0.0, 2.0 * wtp) if data.objective.kind == "net_benefit" and wtp > 0 else None
-    comparison = compare_strategies(data.model, wtp=wtp if wtp_range else None,
-                                    wtp_range=wtp_range)
+    comparison = compare_strategies(data.model, wtp=wtp if wtp_range else None, wtp_range=wtp_range)
     data.results["strategies"] = comparison.table
     if comparison.frontier is not None:
         data.results["wtp_frontier"] = comparison.frontier
@@ -191,8 +249,9 @@ def _sensitivity(data: ReportData) -> None:
     data.results["thresholds_summary"] = summarise_thresholds(thresholds)
     wtp = data.objective.willingness_to_pay
     if data.objective.kind == "net_benefit" and wtp > 0:
-        wtp_table = setting_thresholds(data.model, "willingness_to_pay", 0.0, 2.0 * wtp,
-                                       objective=data.objective)
+        wtp_table = setting_thresholds(
+            data.model, "willingness_to_pay", 0.0, 2.0 * wtp, objective=data.objective
+        )
         data.results["threshold_willingness_to_pay"] = summarise_thresholds(wtp_table)
 
 
@@ -204,8 +263,7 @@ def _uncertainty(data: ReportData) -> None:
     # the built-in strategies when one lies beside the model file.
     table = sibling_table(data.model.source_path or data.model_path)
     extra = read_strategy_table(table) if table is not None else []
-    psa = run_psa(data.model, data.draws, data.seed, objective=data.objective,
-                  strategies=extra)
+    psa = run_psa(data.model, data.draws, data.seed, objective=data.objective, strategies=extra)
     data.results["psa_acceptability"] = psa.acceptability_by_age_band()
     data.results["psa_expected_loss"] = psa.expected_loss()
     data.results["psa_policy_frequencies"] = psa.policy_frequencies()
@@ -279,14 +337,20 @@ def run_analyses(
     model = load_model(model_path) if model is None else model
     if model_sha256 is None:
         model_sha256 = sha256_file(model_path)
-    data = ReportData(model=model, model_path=model_path, model_sha256=model_sha256,
-                      objective=Objective.from_settings(model.settings), draws=draws,
-                      seed=seed)
+    data = ReportData(
+        model=model,
+        model_path=model_path,
+        model_sha256=model_sha256,
+        objective=Objective.from_settings(model.settings),
+        draws=draws,
+        seed=seed,
+    )
     data.inputs = input_tables(model)
     steps = [s for s in STEPS if s != "uncertainty" or draws]
     if not draws:
-        data.notes["uncertainty"] = ("not run: give --draws N (and --seed S) for the "
-                                     "probabilistic analysis")
+        data.notes["uncertainty"] = (
+            "not run: give --draws N (and --seed S) for the probabilistic analysis"
+        )
     for done, step in enumerate(steps):
         try:
             _RUNNERS[step](data)

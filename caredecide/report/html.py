@@ -50,8 +50,13 @@ figure.chart { margin: 0.6rem 0; overflow-x: auto; }
 footer { font-size: 0.85rem; color: #444; margin-top: 2rem; }
 """
 
-STEP_OF_SECTION = {"policy": "policy", "strategies": "strategies", "sensitivity": "sensitivity",
-                   "uncertainty": "uncertainty", "verification": "verification"}
+STEP_OF_SECTION = {
+    "policy": "policy",
+    "strategies": "strategies",
+    "sensitivity": "sensitivity",
+    "uncertainty": "uncertainty",
+    "verification": "verification",
+}
 
 
 def _section_body(section: str, data: ReportData, record: dict) -> str:
@@ -91,7 +96,7 @@ def render_report(data: ReportData, record: dict) -> str:
         for sid, name in SECTION_TITLES.items()
     )
     return (
-        "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
+        '<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
         f'<meta http-equiv="Content-Security-Policy" content="{CSP}">'
         '<meta name="viewport" content="width=device-width, initial-scale=1">'
         f"<title>{esc(title)} - research use only</title><style>{STYLE}</style></head><body>"

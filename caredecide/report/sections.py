@@ -54,8 +54,14 @@ def number(value: object) -> str:
     return str(value)
 
 
-def table(frame: pd.DataFrame, columns: Sequence[str] | None = None, *,
-          max_rows: int = MAX_ROWS, index: bool = False, css_class: str = "") -> str:
+def table(
+    frame: pd.DataFrame,
+    columns: Sequence[str] | None = None,
+    *,
+    max_rows: int = MAX_ROWS,
+    index: bool = False,
+    css_class: str = "",
+) -> str:
     """An escaped HTML table of ``frame`` (first ``max_rows`` rows, a note when cut)."""
     if index:
         frame = frame.reset_index()
@@ -68,14 +74,24 @@ def table(frame: pd.DataFrame, columns: Sequence[str] | None = None, *,
         for value in row:
             value = value.item() if hasattr(value, "item") else value
             numeric = isinstance(value, int | float) and not isinstance(value, bool)
-            cells.append(f'<td class="num">{esc(number(value))}</td>' if numeric
-                         else f"<td>{esc(number(value))}</td>")
+            cells.append(
+                f'<td class="num">{esc(number(value))}</td>'
+                if numeric
+                else f"<td>{esc(number(value))}</td>"
+            )
         rows.append("<tr>" + "".join(cells) + "</tr>")
-    cut = (f'<p class="cut">Showing {max_rows} of {len(frame)} rows; the CSV export has all '
-           "of them.</p>" if len(frame) > max_rows else "")
+    cut = (
+        f'<p class="cut">Showing {max_rows} of {len(frame)} rows; the CSV export has all '
+        "of them.</p>"
+        if len(frame) > max_rows
+        else ""
+    )
     klass = f' class="{esc(css_class)}"' if css_class else ""
-    return (f'<div class="scroll"><table{klass}><thead><tr>{head}</tr></thead><tbody>'
-            + "".join(rows) + f"</tbody></table></div>{cut}")
+    return (
+        f'<div class="scroll"><table{klass}><thead><tr>{head}</tr></thead><tbody>'
+        + "".join(rows)
+        + f"</tbody></table></div>{cut}"
+    )
 
 
 def svg(build: Callable[[], object]) -> str:
@@ -107,8 +123,10 @@ def _para(text: str) -> str:
 
 # ----------------------------------------------------------------------------- sections
 def cautions_section(data: ReportData) -> str:
-    return (f'<div class="caution"><strong>{esc(CAUTION_SHORT)}</strong>'
-            f"<p>{esc(CAUTION_LONG)}</p></div>")
+    return (
+        f'<div class="caution"><strong>{esc(CAUTION_SHORT)}</strong>'
+        f"<p>{esc(CAUTION_LONG)}</p></div>"
+    )
 
 
 def job_section(data: ReportData) -> str:
@@ -117,25 +135,37 @@ def job_section(data: ReportData) -> str:
     if model.description:
         parts.append(f'<p class="description">{esc(model.description.strip())}</p>')
     horizon = model.n_cycles()
-    parts.append(_para(
-        f"Decision: which action to take in each health state at each age, chosen to "
-        f"maximise {data.objective.describe()}"
-        + (f" over {horizon} cycles of {model.settings.cycle_years:g} year(s)."
-           if horizon is not None else " over an infinite horizon (stationary model).")))
+    parts.append(
+        _para(
+            f"Decision: which action to take in each health state at each age, chosen to "
+            f"maximise {data.objective.describe()}"
+            + (
+                f" over {horizon} cycles of {model.settings.cycle_years:g} year(s)."
+                if horizon is not None
+                else " over an infinite horizon (stationary model)."
+            )
+        )
+    )
     return "".join(parts)
 
 
 def structure_section(data: ReportData) -> str:
-    return ("<h3>States</h3>" + table(data.inputs["states"])
-            + "<h3>Actions and where they are allowed</h3>" + table(data.inputs["actions"])
-            + "<h3>Settings</h3>" + table(data.inputs["settings"]))
+    return (
+        "<h3>States</h3>"
+        + table(data.inputs["states"])
+        + "<h3>Actions and where they are allowed</h3>"
+        + table(data.inputs["actions"])
+        + "<h3>Settings</h3>"
+        + table(data.inputs["settings"])
+    )
 
 
 def evidence_section(data: ReportData) -> str:
-    return (_para("Every estimate the model uses, with its plausible range (used by the "
-                  "one-way analysis), its distribution (used by the probabilistic analysis) "
-                  "and where it comes from.")
-            + table(data.inputs["evidence"], max_rows=500))
+    return _para(
+        "Every estimate the model uses, with its plausible range (used by the "
+        "one-way analysis), its distribution (used by the probabilistic analysis) "
+        "and where it comes from."
+    ) + table(data.inputs["evidence"], max_rows=500)
 
 
 def _policy_chart(data: ReportData):
@@ -150,10 +180,12 @@ def _policy_chart(data: ReportData):
     else:
         choices["age"] = "any age"
     starts = choices["action"] != choices.groupby("state")["action"].shift()
-    choices = choices.assign(label=choices["action"].where(starts, ""),
-                             action=choices["action"].map(labels))
-    return make_policy_chart(choices, action_order=[labels[a] for a in data.model.action_ids],
-                             state_order=decision)
+    choices = choices.assign(
+        label=choices["action"].where(starts, ""), action=choices["action"].map(labels)
+    )
+    return make_policy_chart(
+        choices, action_order=[labels[a] for a in data.model.action_ids], state_order=decision
+    )
 
 
 def _trace_chart(data: ReportData):
@@ -163,31 +195,54 @@ def _trace_chart(data: ReportData):
 
 
 def policy_section(data: ReportData) -> str:
-    return (f'<p class="headline">{esc(data.facts["structure"])}</p>'
-            + _para(f"Solver: {data.facts['solver']}. Objective at the start: "
-                    f"{number(data.facts['value_at_start'])} ({unit_text(data)}).")
-            + "<h3>Best action by state and age band</h3>" + table(data.results["policy_bands"])
-            + svg(lambda: _policy_chart(data))
-            + "<h3>Totals per person under the best policy</h3>"
-            + table(data.results["totals"])
-            + "<h3>Cohort trace</h3>" + svg(lambda: _trace_chart(data)))
+    return (
+        f'<p class="headline">{esc(data.facts["structure"])}</p>'
+        + _para(
+            f"Solver: {data.facts['solver']}. Objective at the start: "
+            f"{number(data.facts['value_at_start'])} ({unit_text(data)})."
+        )
+        + "<h3>Best action by state and age band</h3>"
+        + table(data.results["policy_bands"])
+        + svg(lambda: _policy_chart(data))
+        + "<h3>Totals per person under the best policy</h3>"
+        + table(data.results["totals"])
+        + "<h3>Cohort trace</h3>"
+        + svg(lambda: _trace_chart(data))
+    )
 
 
 def strategies_section(data: ReportData) -> str:
     from ui.charts import make_ce_plane_chart
 
     frame = data.results["strategies"]
-    columns = ["strategy", "cost", "qalys", "life_years", "status", "incremental_cost",
-               "incremental_qalys", "icer", "net_monetary_benefit"]
-    parts = [_para(f"Incremental analysis (Cantor 1994) at a willingness to pay of "
-                   f"{number(data.facts['strategy_wtp'])} per QALY; best: "
-                   f"{data.facts['best_strategy']}."),
-             table(frame, columns),
-             svg(lambda: make_ce_plane_chart(frame, currency=data.model.settings.currency))]
+    columns = [
+        "strategy",
+        "cost",
+        "qalys",
+        "life_years",
+        "status",
+        "incremental_cost",
+        "incremental_qalys",
+        "icer",
+        "net_monetary_benefit",
+    ]
+    parts = [
+        _para(
+            f"Incremental analysis (Cantor 1994) at a willingness to pay of "
+            f"{number(data.facts['strategy_wtp'])} per QALY; best: "
+            f"{data.facts['best_strategy']}."
+        ),
+        table(frame, columns),
+        svg(lambda: make_ce_plane_chart(frame, currency=data.model.settings.currency)),
+    ]
     if "wtp_frontier" in data.results:
-        parts += ["<h3>Policies optimal over a range of willingness to pay</h3>",
-                  table(data.results["wtp_frontier"],
-                        ["policy", "wtp_from", "wtp_to", "cost", "qalys", "found_by"])]
+        parts += [
+            "<h3>Policies optimal over a range of willingness to pay</h3>",
+            table(
+                data.results["wtp_frontier"],
+                ["policy", "wtp_from", "wtp_to", "cost", "qalys", "found_by"],
+            ),
+        ]
     return "".join(parts)
 
 
@@ -195,17 +250,36 @@ def sensitivity_section(data: ReportData) -> str:
     from ui.charts import make_tornado_chart
 
     one = data.results["oneway"]
-    parts = [svg(lambda: make_tornado_chart(one, unit=f"({unit_text(data)})")),
-             "<h3>One-way analysis, ranked by swing</h3>",
-             table(one, ["rank", "parameter", "low", "high", "value_low", "value_base",
-                         "value_high", "swing", "policy_changes", "rule"]),
-             "<h3>Decision thresholds</h3>",
-             _para("The value of an estimate at which the best action switches, by state "
-                   "and age band (root-finding on the action gap)."),
-             table(data.results["thresholds_summary"])]
+    parts = [
+        svg(lambda: make_tornado_chart(one, unit=f"({unit_text(data)})")),
+        "<h3>One-way analysis, ranked by swing</h3>",
+        table(
+            one,
+            [
+                "rank",
+                "parameter",
+                "low",
+                "high",
+                "value_low",
+                "value_base",
+                "value_high",
+                "swing",
+                "policy_changes",
+                "rule",
+            ],
+        ),
+        "<h3>Decision thresholds</h3>",
+        _para(
+            "The value of an estimate at which the best action switches, by state "
+            "and age band (root-finding on the action gap)."
+        ),
+        table(data.results["thresholds_summary"]),
+    ]
     if "threshold_willingness_to_pay" in data.results:
-        parts += ["<h3>Willingness-to-pay thresholds</h3>",
-                  table(data.results["threshold_willingness_to_pay"])]
+        parts += [
+            "<h3>Willingness-to-pay thresholds</h3>",
+            table(data.results["threshold_willingness_to_pay"]),
+        ]
     return "".join(parts)
 
 
@@ -226,65 +300,95 @@ def uncertainty_section(data: ReportData) -> str:
     unit = unit_text(data)
     action = _action_shown(data)
     parts = [
-        _para(f"{data.draws} parameter draws, seed {data.seed}. EVPI of the timing "
-              f"decision: {number(float(evpi['evpi']))} (Monte Carlo s.e. "
-              f"{number(float(evpi['mc_se']))}) {unit} per person, an upper bound as the "
-              f"best policy is sought among the candidates below (best: "
-              f"{evpi['best_candidate']}); among the candidates alone "
-              f"{number(float(evpi['evpi_among_candidates']))} (s.e. "
-              f"{number(float(evpi['mc_se_among_candidates']))})."),
+        _para(
+            f"{data.draws} parameter draws, seed {data.seed}. EVPI of the timing "
+            f"decision: {number(float(evpi['evpi']))} (Monte Carlo s.e. "
+            f"{number(float(evpi['mc_se']))}) {unit} per person, an upper bound as the "
+            f"best policy is sought among the candidates below (best: "
+            f"{evpi['best_candidate']}); among the candidates alone "
+            f"{number(float(evpi['evpi_among_candidates']))} (s.e. "
+            f"{number(float(evpi['mc_se_among_candidates']))})."
+        ),
         "<h3>Expected loss of each candidate policy</h3>",
         table(data.results["psa_expected_loss"]),
         "<h3>Share of draws in which each action is best</h3>",
-        svg(lambda: make_policy_acceptability_chart(
-            data.results["psa_acceptability"], action=action,
-            state_order=list(data.model.state_ids))),
+        svg(
+            lambda: make_policy_acceptability_chart(
+                data.results["psa_acceptability"],
+                action=action,
+                state_order=list(data.model.state_ids),
+            )
+        ),
         table(data.results["psa_acceptability"]),
         "<h3>Acceptability curves</h3>",
-        svg(lambda: make_acceptability_curves_chart(
-            data.results["psa_acceptability_curves"],
-            data.results.get("psa_acceptability_frontier"),
-            currency=data.model.settings.currency)),
+        svg(
+            lambda: make_acceptability_curves_chart(
+                data.results["psa_acceptability_curves"],
+                data.results.get("psa_acceptability_frontier"),
+                currency=data.model.settings.currency,
+            )
+        ),
     ]
     if "psa_policy_frequencies" in data.results:
         distinct = data.facts.get("psa_distinct_policies", "?")
-        parts += [f"<h3>Most frequent optimal policies ({esc(distinct)} distinct across the "
-                  "draws)</h3>", table(data.results["psa_policy_frequencies"])]
+        parts += [
+            f"<h3>Most frequent optimal policies ({esc(distinct)} distinct across the draws)</h3>",
+            table(data.results["psa_policy_frequencies"]),
+        ]
     evppi = data.results.get("psa_evppi")
     parts.append("<h3>Expected value of partial perfect information</h3>")
     if evppi is not None and len(evppi) and evppi["evppi"].notna().any():
-        parts += [svg(lambda: make_evppi_chart(evppi, unit=f"({unit})")),
-                  table(evppi, ["parameter", "members", "evppi", "mc_se", "share_of_evpi",
-                                "method", "message"])]
+        parts += [
+            svg(lambda: make_evppi_chart(evppi, unit=f"({unit})")),
+            table(
+                evppi,
+                ["parameter", "members", "evppi", "mc_se", "share_of_evpi", "method", "message"],
+            ),
+        ]
     else:
         from caredecide.uncertainty.psa import MIN_EVPPI_DRAWS
 
-        parts.append(note(f"EVPPI not computed: it needs at least {MIN_EVPPI_DRAWS} draws and "
-                          "two candidate policies."))
+        parts.append(
+            note(
+                f"EVPPI not computed: it needs at least {MIN_EVPPI_DRAWS} draws and "
+                "two candidate policies."
+            )
+        )
     return "".join(parts)
 
 
 def verification_section(data: ReportData) -> str:
     frame = data.results["verification"]
     failed = int((frame["status"] == "fail").sum())
-    verdict = ("Every check passed or does not apply." if failed == 0
-               else f"{failed} check(s) FAILED: read the figures before using the results.")
+    verdict = (
+        "Every check passed or does not apply."
+        if failed == 0
+        else f"{failed} check(s) FAILED: read the figures before using the results."
+    )
     rows = []
     for row in frame.itertuples(index=False):
-        rows.append(f'<tr class="{esc(row.status.replace(" ", "-"))}"><td>{esc(row.title)}</td>'
-                    f"<td><strong>{esc(row.status)}</strong></td><td>{esc(row.figures)}</td>"
-                    f"<td>{esc(row.expected)}</td><td>{esc(row.source)}</td></tr>")
-    return (f'<p class="headline">{esc(verdict)}</p><div class="scroll"><table class="checks">'
-            "<thead><tr><th>check</th><th>result</th><th>figures</th><th>expected</th>"
-            "<th>following</th></tr></thead><tbody>" + "".join(rows) + "</tbody></table></div>")
+        rows.append(
+            f'<tr class="{esc(row.status.replace(" ", "-"))}"><td>{esc(row.title)}</td>'
+            f"<td><strong>{esc(row.status)}</strong></td><td>{esc(row.figures)}</td>"
+            f"<td>{esc(row.expected)}</td><td>{esc(row.source)}</td></tr>"
+        )
+    return (
+        f'<p class="headline">{esc(verdict)}</p><div class="scroll"><table class="checks">'
+        "<thead><tr><th>check</th><th>result</th><th>figures</th><th>expected</th>"
+        "<th>following</th></tr></thead><tbody>" + "".join(rows) + "</tbody></table></div>"
+    )
 
 
 def run_record_section(data: ReportData, record: dict) -> str:
-    rows = [("model file", str(data.model_path)), ("model sha256", data.model_sha256),
-            ("command", record.get("command_line", "")), ("seed", record.get("seed")),
-            ("draws", data.draws), ("date (UTC)", record.get("date", ""))]
-    rows += [(f"input file: {k}", f"sha256 {v}")
-             for k, v in record.get("input_files", {}).items()]
+    rows = [
+        ("model file", str(data.model_path)),
+        ("model sha256", data.model_sha256),
+        ("command", record.get("command_line", "")),
+        ("seed", record.get("seed")),
+        ("draws", data.draws),
+        ("date (UTC)", record.get("date", "")),
+    ]
+    rows += [(f"input file: {k}", f"sha256 {v}") for k, v in record.get("input_files", {}).items()]
     rows += [(f"version: {k}", v) for k, v in record.get("versions", {}).items()]
     frame = pd.DataFrame(rows, columns=["item", "value"]).astype({"value": str})
     return table(frame, max_rows=100)

@@ -119,9 +119,12 @@ def require_parameters(model: Any) -> None:
     """Refuse a model with nothing to vary, naming the file (one-way and thresholds)."""
     if not model.base_parameter_values():
         raise ModelError(
-            Problem(where="parameters", message="the model has no parameters to vary; one-way "
-                    "analysis and parameter thresholds need at least one [parameters.NAME] "
-                    "entry (the willingness-to-pay and discount-rate thresholds do not)"),
+            Problem(
+                where="parameters",
+                message="the model has no parameters to vary; one-way "
+                "analysis and parameter thresholds need at least one [parameters.NAME] "
+                "entry (the willingness-to-pay and discount-rate thresholds do not)",
+            ),
             file=source_file(model),
         )
 

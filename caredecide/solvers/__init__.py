@@ -40,8 +40,10 @@ __all__ = ["METHODS", "PolicyResult", "SolverError", "SweepRecord", "solve"]
 
 
 def _check_positive(name: str, value: float, *, allow_zero: bool = False) -> None:
-    ok = isinstance(value, int | float) and math.isfinite(value) and (
-        value >= 0 if allow_zero else value > 0
+    ok = (
+        isinstance(value, int | float)
+        and math.isfinite(value)
+        and (value >= 0 if allow_zero else value > 0)
     )
     if not ok:
         expected = ">= 0" if allow_zero else "> 0"
@@ -111,11 +113,13 @@ def solve(
     _check_positive("tie_tolerance", tie_tolerance, allow_zero=True)
     _check_positive("tie_relative", tie_relative, allow_zero=True)
     if not isinstance(max_iterations, int) or max_iterations < 1:
-        raise SolverError(f"max_iterations = {max_iterations!r} is not allowed; expected an "
-                          "integer >= 1")
+        raise SolverError(
+            f"max_iterations = {max_iterations!r} is not allowed; expected an integer >= 1"
+        )
     if not isinstance(evaluation_sweeps, int) or evaluation_sweeps < 0:
-        raise SolverError(f"evaluation_sweeps = {evaluation_sweeps!r} is not allowed; expected "
-                          "an integer >= 0")
+        raise SolverError(
+            f"evaluation_sweeps = {evaluation_sweeps!r} is not allowed; expected an integer >= 0"
+        )
     check_compiled(compiled)
     finite = compiled.n_cycles is not None
     if method == "auto":
@@ -127,8 +131,12 @@ def solve(
         )
     if finite:
         return backward_induction(
-            compiled, objective, terminal_value=terminal_value, tie_absolute=tie_tolerance,
-            tie_relative=tie_relative, record_history=record_history,
+            compiled,
+            objective,
+            terminal_value=terminal_value,
+            tie_absolute=tie_tolerance,
+            tie_relative=tie_relative,
+            record_history=record_history,
         )
     if method == "backward_induction":
         raise SolverError(
@@ -138,7 +146,14 @@ def solve(
     if terminal_value is not None:
         raise SolverError("terminal_value applies to a finite horizon only; the model has none")
     return solve_stationary(
-        compiled, objective, method=method, tolerance=tolerance, relative=relative,
-        max_iterations=max_iterations, evaluation_sweeps=evaluation_sweeps,
-        tie_absolute=tie_tolerance, tie_relative=tie_relative, record_history=record_history,
+        compiled,
+        objective,
+        method=method,
+        tolerance=tolerance,
+        relative=relative,
+        max_iterations=max_iterations,
+        evaluation_sweeps=evaluation_sweeps,
+        tie_absolute=tie_tolerance,
+        tie_relative=tie_relative,
+        record_history=record_history,
     )

@@ -28,8 +28,10 @@ def check_compiled(compiled: CompiledModel) -> None:
     D = compiled.transition.shape[0] if compiled.transition.ndim == 5 else -1
     problems = []
     if compiled.transition.ndim != 5 or compiled.transition.shape[2:] != (A, S, S):
-        problems.append(f"transition has shape {compiled.transition.shape}; expected (D, Tp, {A}, "
-                        f"{S}, {S}) for {A} actions and {S} states")
+        problems.append(
+            f"transition has shape {compiled.transition.shape}; expected (D, Tp, {A}, "
+            f"{S}, {S}) for {A} actions and {S} states"
+        )
     for name in ("state_qaly", "state_cost"):
         arr = getattr(compiled, name)
         if arr.ndim != 3 or arr.shape[0] != D or arr.shape[2] != S:

@@ -118,8 +118,8 @@ def backward_induction(
         Q += decision_reward(compiled, objective, t)
         Q += occupancy_reward(compiled, objective, t, weights[t])[..., None]
         Q[:, not_allowed] = -np.inf
-        (policy[:, t], value[:, t], gap[:, t], next_best[:, t], indifferent[:, t]) = (
-            greedy_choice(Q, decision_states, tie_absolute, tie_relative)
+        (policy[:, t], value[:, t], gap[:, t], next_best[:, t], indifferent[:, t]) = greedy_choice(
+            Q, decision_states, tie_absolute, tie_relative
         )
         if history is not None:
             history.append(
@@ -134,9 +134,19 @@ def backward_induction(
             )
 
     return build_result(
-        compiled, objective, (policy, gap, next_best, indifferent), value=value,
-        q_values=q_values, decision_states=decision_states, ages=compiled.ages(),
-        history=history, method="backward_induction", iterations=T, tolerance=0.0,
-        relative=False, error_bound=np.zeros(D), success=True,
+        compiled,
+        objective,
+        (policy, gap, next_best, indifferent),
+        value=value,
+        q_values=q_values,
+        decision_states=decision_states,
+        ages=compiled.ages(),
+        history=history,
+        method="backward_induction",
+        iterations=T,
+        tolerance=0.0,
+        relative=False,
+        error_bound=np.zeros(D),
+        success=True,
         message=f"backward induction over {T} cycles (exact)",
     )

@@ -130,40 +130,71 @@ def _converged(residual: np.ndarray, threshold: np.ndarray) -> bool:
 def _record(history, sweep, v, Q, residual, bound) -> None:
     if history is not None:
         history.append(
-            SweepRecord(sweep=sweep, cycle=None, value=v.copy(), policy=Q.argmax(axis=1),
-                        residual=residual.copy(), error_bound=bound.copy())
+            SweepRecord(
+                sweep=sweep,
+                cycle=None,
+                value=v.copy(),
+                policy=Q.argmax(axis=1),
+                residual=residual.copy(),
+                error_bound=bound.copy(),
+            )
         )
 
 
 def value_iteration(
-    problem: StationaryProblem, *, tolerance: float, relative: bool, max_iterations: int,
+    problem: StationaryProblem,
+    *,
+    tolerance: float,
+    relative: bool,
+    max_iterations: int,
     history: list | None,
 ) -> tuple[np.ndarray, int, np.ndarray, bool]:
     """Value iteration from ``v_0 = 0``; returns (v, iterations, residual (D,), converged)."""
     D, _, S = problem.shape
     return _improve_and_evaluate(
-        problem, np.zeros((D, S)), tolerance=tolerance, relative=relative,
-        max_iterations=max_iterations, evaluation_sweeps=0, history=history,
+        problem,
+        np.zeros((D, S)),
+        tolerance=tolerance,
+        relative=relative,
+        max_iterations=max_iterations,
+        evaluation_sweeps=0,
+        history=history,
     )
 
 
 def modified_policy_iteration(
-    problem: StationaryProblem, *, tolerance: float, relative: bool, max_iterations: int,
-    evaluation_sweeps: int, history: list | None,
+    problem: StationaryProblem,
+    *,
+    tolerance: float,
+    relative: bool,
+    max_iterations: int,
+    evaluation_sweeps: int,
+    history: list | None,
 ) -> tuple[np.ndarray, int, np.ndarray, bool]:
     """Modified policy iteration from ``v_0 = min r / (1 - gamma)`` (so ``T v_0 >= v_0``)."""
     D, _, S = problem.shape
     finite_R = np.where(np.isfinite(problem.R), problem.R, np.inf)
     v0 = np.broadcast_to(finite_R.min(axis=(1, 2))[:, None] / (1.0 - problem.gamma), (D, S))
     return _improve_and_evaluate(
-        problem, v0.copy(), tolerance=tolerance, relative=relative,
-        max_iterations=max_iterations, evaluation_sweeps=evaluation_sweeps, history=history,
+        problem,
+        v0.copy(),
+        tolerance=tolerance,
+        relative=relative,
+        max_iterations=max_iterations,
+        evaluation_sweeps=evaluation_sweeps,
+        history=history,
     )
 
 
 def _improve_and_evaluate(
-    problem: StationaryProblem, v: np.ndarray, *, tolerance: float, relative: bool,
-    max_iterations: int, evaluation_sweeps: int, history: list | None,
+    problem: StationaryProblem,
+    v: np.ndarray,
+    *,
+    tolerance: float,
+    relative: bool,
+    max_iterations: int,
+    evaluation_sweeps: int,
+    history: list | None,
 ) -> tuple[np.ndarray, int, np.ndarray, bool]:
     """Bellman update then ``evaluation_sweeps`` partial evaluation sweeps, until the stop rule.
 
@@ -187,7 +218,10 @@ def _improve_and_evaluate(
 
 
 def policy_iteration(
-    problem: StationaryProblem, *, max_iterations: int, history: list | None,
+    problem: StationaryProblem,
+    *,
+    max_iterations: int,
+    history: list | None,
 ) -> tuple[np.ndarray, int, np.ndarray, bool]:
     """Policy iteration with exact evaluation; returns (v, iterations, residual, converged).
 
@@ -238,14 +272,21 @@ def solve_stationary(
     history: list[SweepRecord] | None = [] if record_history else None
     if method == "value_iteration":
         v, iterations, residual, converged = value_iteration(
-            problem, tolerance=tolerance, relative=relative, max_iterations=max_iterations,
+            problem,
+            tolerance=tolerance,
+            relative=relative,
+            max_iterations=max_iterations,
             history=history,
         )
         bound = problem.bound(residual)
     elif method == "modified_policy_iteration":
         v, iterations, residual, converged = modified_policy_iteration(
-            problem, tolerance=tolerance, relative=relative, max_iterations=max_iterations,
-            evaluation_sweeps=evaluation_sweeps, history=history,
+            problem,
+            tolerance=tolerance,
+            relative=relative,
+            max_iterations=max_iterations,
+            evaluation_sweeps=evaluation_sweeps,
+            history=history,
         )
         bound = problem.bound(residual)
     elif method == "policy_iteration":
@@ -272,9 +313,19 @@ def solve_stationary(
             f"reaching the tolerance (largest error bound {bound.max():.3g})"
         )
     return build_result(
-        compiled, objective,
+        compiled,
+        objective,
         (policy[:, None], gap[:, None], next_best[:, None], indifferent[:, None]),
-        value=value[:, None], q_values=Q[:, None], decision_states=decision_states, ages=None,
-        history=history, method=method, iterations=iterations, tolerance=tolerance,
-        relative=relative, error_bound=bound, success=converged, message=message,
+        value=value[:, None],
+        q_values=Q[:, None],
+        decision_states=decision_states,
+        ages=None,
+        history=history,
+        method=method,
+        iterations=iterations,
+        tolerance=tolerance,
+        relative=relative,
+        error_bound=bound,
+        success=converged,
+        message=message,
     )

@@ -183,9 +183,7 @@ def action_shares(policies: np.ndarray, n_actions: int) -> ActionShares:
         ``share`` and ``standard_error``, both (T, S, A).
     """
     if isinstance(n_actions, bool) or not isinstance(n_actions, int | np.integer) or n_actions < 1:
-        raise ModelError(
-            Problem("n_actions", f"expected an integer >= 1, got {n_actions!r}")
-        )
+        raise ModelError(Problem("n_actions", f"expected an integer >= 1, got {n_actions!r}"))
     array = np.asarray(policies)
     if array.ndim != 3 or array.shape[0] < 1:
         raise ModelError(
@@ -280,8 +278,9 @@ def _check_inputs(
             raise ModelError(Problem(name, f"expected a (draws, strategies) array: {exc}")) from exc
         if array.ndim != 2 or 0 in array.shape:
             raise ModelError(
-                Problem(name, f"expected a non-empty (draws, strategies) array, got shape "
-                              f"{array.shape}")
+                Problem(
+                    name, f"expected a non-empty (draws, strategies) array, got shape {array.shape}"
+                )
             )
         check_finite(name, array, ("draw", "strategy"))
         arrays.append(array)
@@ -300,8 +299,10 @@ def _check_inputs(
             )
         )
     k = cost.shape[1]
-    names = [f"strategy {i + 1}" for i in range(k)] if strategies is None else list(
-        map(str, strategies)
+    names = (
+        [f"strategy {i + 1}" for i in range(k)]
+        if strategies is None
+        else list(map(str, strategies))
     )
     if len(names) != k or len(set(names)) != k:
         raise ModelError(

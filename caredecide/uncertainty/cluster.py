@@ -48,7 +48,7 @@ def _distributed():
         import distributed
     except ImportError as error:  # the optional extra is not installed
         raise ClusterError(
-            "running on a cluster needs dask.distributed: pip install \"caredecide[cluster]\""
+            'running on a cluster needs dask.distributed: pip install "caredecide[cluster]"'
         ) from error
     return distributed
 
@@ -84,34 +84,44 @@ def dask_client(
         scheduler; dask.distributed not installed.
     """
     if (scheduler is None) == (workers is None):
-        raise ClusterError("give exactly one of a scheduler address or a number of workers; "
-                           f"got scheduler={scheduler!r}, workers={workers!r}")
+        raise ClusterError(
+            "give exactly one of a scheduler address or a number of workers; "
+            f"got scheduler={scheduler!r}, workers={workers!r}"
+        )
     distributed = _distributed()
     if scheduler is not None:
         _check_timeout(connect_timeout)
         try:
             client = distributed.Client(scheduler, timeout=connect_timeout)
         except (OSError, TimeoutError) as error:
-            raise ClusterError(f"could not reach the Dask scheduler at {scheduler!r}: {error}. "
-                               "Expected an address such as tcp://HOST:8786 of a running "
-                               "scheduler") from None
+            raise ClusterError(
+                f"could not reach the Dask scheduler at {scheduler!r}: {error}. "
+                "Expected an address such as tcp://HOST:8786 of a running "
+                "scheduler"
+            ) from None
         with client:
             yield client
         return
     if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
         raise ClusterError(f"workers = {workers!r}; expected a whole number >= 1")
-    if isinstance(threads_per_worker, bool) or not isinstance(threads_per_worker, int) or \
-            threads_per_worker < 1:
+    if (
+        isinstance(threads_per_worker, bool)
+        or not isinstance(threads_per_worker, int)
+        or threads_per_worker < 1
+    ):
         raise ClusterError(f"threads_per_worker = {threads_per_worker!r}; expected >= 1")
     # Worker processes listen on loopback only; threads talk in-process.
     where = {"host": "127.0.0.1"} if processes else {}
-    with distributed.LocalCluster(
-        n_workers=workers,
-        threads_per_worker=threads_per_worker,
-        processes=processes,
-        dashboard_address=None,
-        **where,
-    ) as cluster, distributed.Client(cluster) as client:
+    with (
+        distributed.LocalCluster(
+            n_workers=workers,
+            threads_per_worker=threads_per_worker,
+            processes=processes,
+            dashboard_address=None,
+            **where,
+        ) as cluster,
+        distributed.Client(cluster) as client,
+    ):
         yield client
 
 
@@ -124,8 +134,9 @@ def _check_timeout(timeout: str) -> None:
     except (KeyError, ValueError, TypeError):
         seconds = None
     if seconds is None or not seconds > 0:
-        raise ClusterError(f"connect timeout {timeout!r}; expected a positive duration such "
-                           "as '20s' or '2m'")
+        raise ClusterError(
+            f"connect timeout {timeout!r}; expected a positive duration such as '20s' or '2m'"
+        )
 
 
 def dask_map(client, *, max_in_flight: int | None = None) -> ChunkMap:

@@ -220,23 +220,31 @@ def _solve_draws(context: PSAContext, start: int, stop: int):
     sampler = context.sampler
     values = sampler.draw(context.seed, start, stop)
     parameter_sets = {name: values[:, j] for j, name in enumerate(sampler.names)}
-    compiled = compile_model(context.model, parameter_sets or None,
-                             memory_limit_bytes=context.memory_limit_bytes)
+    compiled = compile_model(
+        context.model, parameter_sets or None, memory_limit_bytes=context.memory_limit_bytes
+    )
     if not parameter_sets:  # nothing uncertain: the base case, repeated
         compiled = compiled.take_draws(np.zeros(stop - start, dtype=int))
     return values, compiled, solve(compiled, context.objective, **dict(context.solve_options))
 
 
-def _evaluate_chunk(context: PSAContext, values: np.ndarray, compiled, result, start: int,
-                    stop: int) -> ChunkResult:
+def _evaluate_chunk(
+    context: PSAContext, values: np.ndarray, compiled, result, start: int, stop: int
+) -> ChunkResult:
     """Evaluate the optimal and candidate policies of solved draws and count the policies."""
     optimal = _totals(evaluate_policy(compiled, result.policy, context.objective))
     # A loop over candidate policies (a handful), each evaluated on every draw at once.
-    candidates = np.stack(
-        [_totals(evaluate_policy(compiled, policy[None], context.objective)).T
-         for policy in context.candidate_policies],
-        axis=-1,
-    ) if len(context.candidate_policies) else np.empty((3, stop - start, 0))
+    candidates = (
+        np.stack(
+            [
+                _totals(evaluate_policy(compiled, policy[None], context.objective)).T
+                for policy in context.candidate_policies
+            ],
+            axis=-1,
+        )
+        if len(context.candidate_policies)
+        else np.empty((3, stop - start, 0))
+    )
     policy = result.policy.astype(np.int8)
     shares = action_shares(policy, compiled.n_actions).share
     distinct, _, counts = distinct_rows(policy.reshape(len(policy), -1))
@@ -270,9 +278,7 @@ def distinct_rows(rows: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]
     return unique.view(np.int8).reshape(len(unique), rows.shape[1]), inverse, counts
 
 
-def serial_map(
-    context: PSAContext, ranges: Sequence[tuple[int, int]]
-) -> Iterable[ChunkResult]:
+def serial_map(context: PSAContext, ranges: Sequence[tuple[int, int]]) -> Iterable[ChunkResult]:
     """Run chunks one after another in this process, yielding results in order."""
     for start, stop in ranges:
         yield solve_chunk(context, start, stop)
@@ -293,8 +299,7 @@ def default_chunk_size(model, n_draws: int, memory_limit_bytes: int | None) -> i
     return max(size // BLOCK_SIZE, 1) * BLOCK_SIZE if size >= BLOCK_SIZE else size
 
 
-def kept_bytes(n_draws: int, n_parameters: int, n_candidates: int,
-               policy_cells: int = 0) -> int:
+def kept_bytes(n_draws: int, n_parameters: int, n_candidates: int, policy_cells: int = 0) -> int:
     """Bytes the per-draw results of a run hold at the end (twice: pieces and joined).
 
     Per draw: the sampled parameters, cost/QALYs/value of the own optimum and of each
@@ -306,10 +311,17 @@ def kept_bytes(n_draws: int, n_parameters: int, n_candidates: int,
 def _memory_limit(memory_limit_bytes: int | None) -> int:
     if memory_limit_bytes is None:
         return min(DEFAULT_MEMORY_LIMIT, default_memory_limit())
-    if isinstance(memory_limit_bytes, bool) or not isinstance(memory_limit_bytes, int) or \
-            memory_limit_bytes < 1:
-        raise ModelError(Problem("memory_limit_bytes", f"{memory_limit_bytes!r}; expected a "
-                                 "whole number of bytes >= 1"))
+    if (
+        isinstance(memory_limit_bytes, bool)
+        or not isinstance(memory_limit_bytes, int)
+        or memory_limit_bytes < 1
+    ):
+        raise ModelError(
+            Problem(
+                "memory_limit_bytes",
+                f"{memory_limit_bytes!r}; expected a whole number of bytes >= 1",
+            )
+        )
     return memory_limit_bytes
 
 
@@ -401,14 +413,16 @@ class PSAResult:
         share = self.action_counts / self.n_draws
         n_t, n_s, n_a = share.shape
         ages = self.ages if self.ages is not None else np.full(n_t, np.nan)
-        frame = pd.DataFrame({
-            "cycle": np.repeat(np.arange(n_t), n_s * n_a),
-            "age": np.repeat(ages, n_s * n_a),
-            "state": np.tile(np.repeat(np.asarray(self.state_ids, dtype=object), n_a), n_t),
-            "action": np.tile(np.asarray(self.action_ids, dtype=object), n_t * n_s),
-            "share": share.ravel(),
-            "mc_se": np.sqrt(share * (1.0 - share) / self.n_draws).ravel(),
-        })
+        frame = pd.DataFrame(
+            {
+                "cycle": np.repeat(np.arange(n_t), n_s * n_a),
+                "age": np.repeat(ages, n_s * n_a),
+                "state": np.tile(np.repeat(np.asarray(self.state_ids, dtype=object), n_a), n_t),
+                "action": np.tile(np.asarray(self.action_ids, dtype=object), n_t * n_s),
+                "share": share.ravel(),
+                "mc_se": np.sqrt(share * (1.0 - share) / self.n_draws).ravel(),
+            }
+        )
         shown = (self.decision_states[:, None] & self.allowed)[None].repeat(n_t, axis=0)
         return frame[shown.ravel()].reset_index(drop=True)
 
@@ -423,8 +437,9 @@ class PSAResult:
             (mean of the per-cycle errors: an upper bound). Infinite horizon: one band
             with NaN ages.
         """
-        if not (isinstance(band_years, int | float) and math.isfinite(band_years)
-                and band_years > 0):
+        if not (
+            isinstance(band_years, int | float) and math.isfinite(band_years) and band_years > 0
+        ):
             raise ModelError(Problem("band_years", f"{band_years!r}; expected a number > 0"))
         frame = self.acceptability()
         if self.ages is None:
@@ -434,8 +449,7 @@ class PSAResult:
             band = np.floor((frame["age"] - start) / band_years + 1e-9)
             frame["age_from"] = start + band * band_years
             frame["age_to"] = frame["age_from"] + band_years
-        grouped = frame.groupby(["state", "age_from", "age_to", "action"], sort=False,
-                                dropna=False)
+        grouped = frame.groupby(["state", "age_from", "age_to", "action"], sort=False, dropna=False)
         out = grouped.agg(share=("share", "mean"), mc_se=("mc_se", "mean")).reset_index()
         return out[["state", "age_from", "age_to", "action", "share", "mc_se"]]
 
@@ -447,13 +461,15 @@ class PSAResult:
             match = [c.name for c in self.candidates if np.array_equal(c.policy, policy)]
             names.append(match[0] if match else "")
         share = self.distinct_counts[:n] / self.n_draws
-        return pd.DataFrame({
-            "rank": np.arange(1, n + 1),
-            "draws": self.distinct_counts[:n],
-            "share": share,
-            "mc_se": np.sqrt(share * (1 - share) / self.n_draws),
-            "candidate": names,
-        })
+        return pd.DataFrame(
+            {
+                "rank": np.arange(1, n + 1),
+                "draws": self.distinct_counts[:n],
+                "share": share,
+                "mc_se": np.sqrt(share * (1 - share) / self.n_draws),
+                "candidate": names,
+            }
+        )
 
     # -- losses and EVPI ---------------------------------------------------------------
     def expected_loss(self) -> pd.DataFrame:
@@ -468,17 +484,18 @@ class PSAResult:
         """
         regret = self.regret
         n = self.n_draws
-        se = regret.std(axis=0, ddof=1) / np.sqrt(n) if n > 1 else np.full(regret.shape[1],
-                                                                            np.nan)
-        return pd.DataFrame({
-            "candidate": self.candidate_names,
-            "origin": [c.origin for c in self.candidates],
-            "expected_cost": self.candidate_totals[0].mean(axis=0),
-            "expected_qalys": self.candidate_totals[1].mean(axis=0),
-            "expected_value": self.candidate_values.mean(axis=0),
-            "expected_loss": regret.mean(axis=0),
-            "mc_se": se,
-        })
+        se = regret.std(axis=0, ddof=1) / np.sqrt(n) if n > 1 else np.full(regret.shape[1], np.nan)
+        return pd.DataFrame(
+            {
+                "candidate": self.candidate_names,
+                "origin": [c.origin for c in self.candidates],
+                "expected_cost": self.candidate_totals[0].mean(axis=0),
+                "expected_qalys": self.candidate_totals[1].mean(axis=0),
+                "expected_value": self.candidate_values.mean(axis=0),
+                "expected_loss": regret.mean(axis=0),
+                "mc_se": se,
+            }
+        )
 
     def evpi(self) -> dict[str, float | str]:
         """EVPI of the timing decision (an upper bound; see the module docstring).
@@ -511,18 +528,27 @@ class PSAResult:
         (:func:`caredecide.uncertainty.acceptability.acceptability_curve`).
         """
         grid = self.wtp_grid if wtp_grid is None else np.asarray(wtp_grid, dtype=float)
-        return acceptability_curve(self.candidate_totals[0], self.candidate_totals[1], grid,
-                                   strategies=self.candidate_names)
+        return acceptability_curve(
+            self.candidate_totals[0],
+            self.candidate_totals[1],
+            grid,
+            strategies=self.candidate_names,
+        )
 
     def acceptability_frontier(self, wtp_grid: Sequence[float] | None = None) -> pd.DataFrame:
         """The candidate with the highest expected NMB at each WTP, and its probability."""
         grid = self.wtp_grid if wtp_grid is None else np.asarray(wtp_grid, dtype=float)
-        return acceptability_frontier(self.candidate_totals[0], self.candidate_totals[1], grid,
-                                      strategies=self.candidate_names)
+        return acceptability_frontier(
+            self.candidate_totals[0],
+            self.candidate_totals[1],
+            grid,
+            strategies=self.candidate_names,
+        )
 
     # -- EVPPI ---------------------------------------------------------------------------
-    def evppi(self, *, method: str = "auto",
-              max_draws: int | None = EVPPI_MAX_DRAWS) -> pd.DataFrame:
+    def evppi(
+        self, *, method: str = "auto", max_draws: int | None = EVPPI_MAX_DRAWS
+    ) -> pd.DataFrame:
         """EVPPI of each sampled parameter and each Dirichlet group, ranked.
 
         Regression method of Strong, Oakley & Brennan 2014 (:func:`~caredecide.
@@ -548,12 +574,28 @@ class PSAResult:
             freedom), draws (used in the regression), message; sorted by EVPPI, largest
             first. Empty with a note when the draws or candidates are too few.
         """
-        columns = ["parameter", "members", "evppi", "mc_se", "share_of_evpi", "method", "edf",
-                   "draws", "message"]
-        if max_draws is not None and (isinstance(max_draws, bool) or not isinstance(
-                max_draws, int) or max_draws < MIN_EVPPI_DRAWS):
-            raise ModelError(Problem("max_draws", f"{max_draws!r}; expected None or a whole "
-                                     f"number >= {MIN_EVPPI_DRAWS}"))
+        columns = [
+            "parameter",
+            "members",
+            "evppi",
+            "mc_se",
+            "share_of_evpi",
+            "method",
+            "edf",
+            "draws",
+            "message",
+        ]
+        if max_draws is not None and (
+            isinstance(max_draws, bool)
+            or not isinstance(max_draws, int)
+            or max_draws < MIN_EVPPI_DRAWS
+        ):
+            raise ModelError(
+                Problem(
+                    "max_draws",
+                    f"{max_draws!r}; expected None or a whole number >= {MIN_EVPPI_DRAWS}",
+                )
+            )
         used = self.n_draws if max_draws is None else min(self.n_draws, max_draws)
         values = self.candidate_values[:used]
         if values.shape[1] < 2 or used < MIN_EVPPI_DRAWS or not self.parameter_names:
@@ -568,16 +610,27 @@ class PSAResult:
             try:
                 fit = evppi_regression(values, self.parameters[:used, index], method=method)
             except ModelError as error:
-                rows.append((name, ",".join(members), np.nan, np.nan, np.nan, "", np.nan,
-                             used, str(error)))
+                rows.append(
+                    (name, ",".join(members), np.nan, np.nan, np.nan, "", np.nan, used, str(error))
+                )
                 continue
-            rows.append((name, ",".join(members), fit.value, fit.standard_error,
-                         fit.value / total if total > 0 else np.nan, fit.method,
-                         float(np.nanmax(fit.effective_degrees_of_freedom)), used,
-                         fit.message))
+            rows.append(
+                (
+                    name,
+                    ",".join(members),
+                    fit.value,
+                    fit.standard_error,
+                    fit.value / total if total > 0 else np.nan,
+                    fit.method,
+                    float(np.nanmax(fit.effective_degrees_of_freedom)),
+                    used,
+                    fit.message,
+                )
+            )
         frame = pd.DataFrame(rows, columns=columns)
-        return frame.sort_values("evppi", ascending=False, na_position="last",
-                                 kind="stable").reset_index(drop=True)
+        return frame.sort_values(
+            "evppi", ascending=False, na_position="last", kind="stable"
+        ).reset_index(drop=True)
 
     # -- convergence -----------------------------------------------------------------------
     def convergence(self, points: int = CONVERGENCE_POINTS) -> pd.DataFrame:
@@ -594,11 +647,14 @@ class PSAResult:
             geometrically spaced, always including the last.
         """
         best = int(np.argmax(self.candidate_values.mean(axis=0)))
-        rows = np.unique(np.geomspace(1, self.n_draws, num=min(points, self.n_draws))
-                         .astype(int)) - 1
+        rows = (
+            np.unique(np.geomspace(1, self.n_draws, num=min(points, self.n_draws)).astype(int)) - 1
+        )
         frames = []
-        for quantity, values in (("expected optimal value", self.optimal[:, 2]),
-                                 ("EVPI", self.regret[:, best])):
+        for quantity, values in (
+            ("expected optimal value", self.optimal[:, 2]),
+            ("EVPI", self.regret[:, best]),
+        ):
             running = running_mean(values).iloc[rows]
             frames.append(running.assign(quantity=quantity))
         return pd.concat(frames, ignore_index=True)[["quantity", "n", "mean", "se"]]
@@ -620,15 +676,17 @@ class PSAResult:
         n_t = self.action_counts.shape[0]
         ages = self.ages if self.ages is not None else np.full(n_t, np.nan)
         for c in self.candidates:
-            frame = pd.DataFrame({
-                "candidate": c.name,
-                "origin": c.origin,
-                "also": "; ".join(c.also),
-                "cycle": np.repeat(np.arange(n_t), len(self.state_ids)),
-                "age": np.repeat(ages, len(self.state_ids)),
-                "state": np.tile(np.asarray(self.state_ids, dtype=object), n_t),
-                "action": np.asarray(self.action_ids, dtype=object)[c.policy.ravel()],
-            })
+            frame = pd.DataFrame(
+                {
+                    "candidate": c.name,
+                    "origin": c.origin,
+                    "also": "; ".join(c.also),
+                    "cycle": np.repeat(np.arange(n_t), len(self.state_ids)),
+                    "age": np.repeat(ages, len(self.state_ids)),
+                    "state": np.tile(np.asarray(self.state_ids, dtype=object), n_t),
+                    "action": np.asarray(self.action_ids, dtype=object)[c.policy.ravel()],
+                }
+            )
             rows.append(frame)
         return pd.concat(rows, ignore_index=True)
 
@@ -725,20 +783,34 @@ def run_psa(
     elif isinstance(chunk_size, bool) or not isinstance(chunk_size, int) or chunk_size < 1:
         raise ModelError(Problem("chunk_size", f"{chunk_size!r}; expected a whole number >= 1"))
     sampler = ParameterSampler.from_model(model, rank_correlation=rank_correlation)
-    context = PSAContext(model=model, objective=objective, sampler=sampler, seed=seed,
-                         candidate_policies=np.empty((0, 0, 0), dtype=np.int8),
-                         keep_policies=keep_policies, memory_limit_bytes=limit,
-                         solve_options=tuple(sorted(solve_options.items())))
+    context = PSAContext(
+        model=model,
+        objective=objective,
+        sampler=sampler,
+        seed=seed,
+        candidate_policies=np.empty((0, 0, 0), dtype=np.int8),
+        keep_policies=keep_policies,
+        memory_limit_bytes=limit,
+        solve_options=tuple(sorted(solve_options.items())),
+    )
 
     # Candidates: base case, mean parameters, fixed strategies, pilot favourites.
     base = compile_model(model, memory_limit_bytes=limit)
     named: list[tuple[str, str, np.ndarray]] = [
         ("base-case optimal policy", ORIGIN_BASE, solve(base, objective, **solve_options).policy[0])
     ]
-    at_mean = compile_model(model, {k: np.array([v]) for k, v in sampler.means().items()}
-                            or None, memory_limit_bytes=limit)
-    named.append(("optimal at mean parameters", ORIGIN_MEAN,
-                  solve(at_mean, objective, **solve_options).policy[0]))
+    at_mean = compile_model(
+        model,
+        {k: np.array([v]) for k, v in sampler.means().items()} or None,
+        memory_limit_bytes=limit,
+    )
+    named.append(
+        (
+            "optimal at mean parameters",
+            ORIGIN_MEAN,
+            solve(at_mean, objective, **solve_options).policy[0],
+        )
+    )
     for strategy in [*default_strategies(base), *(strategies or ())]:
         named.append((strategy.name, ORIGIN_STRATEGY, resolve_strategy(base, strategy).policy))
     # The pilot (first block) picks the frequent optima. When it fits the memory budget
@@ -752,15 +824,23 @@ def run_psa(
             pilot_policies = pilot[2].policy
         else:
             pilot_policies = np.concatenate(
-                [_solve_draws(context, a, b)[2].policy.astype(np.int8)
-                 for a, b in chunk_ranges(pilot_stop, chunk_size)])
+                [
+                    _solve_draws(context, a, b)[2].policy.astype(np.int8)
+                    for a, b in chunk_ranges(pilot_stop, chunk_size)
+                ]
+            )
         policies = pilot_policies.reshape(pilot_stop, -1).astype(np.int8)
         distinct, _, counts = distinct_rows(policies)
         order = np.argsort(-counts, kind="stable")[:n_frequent]
         for rank, u in enumerate(order, start=1):
             policy = distinct[u].reshape(pilot_policies.shape[1:])
-            named.append((f"frequent optimum {rank} ({counts[u] / pilot_stop:.0%} of pilot "
-                          "draws)", ORIGIN_FREQUENT, policy))
+            named.append(
+                (
+                    f"frequent optimum {rank} ({counts[u] / pilot_stop:.0%} of pilot draws)",
+                    ORIGIN_FREQUENT,
+                    policy,
+                )
+            )
         del pilot_policies, policies
     candidates = _merge_candidates(named)
     context = replace(context, candidate_policies=np.stack([c.policy for c in candidates]))
@@ -823,13 +903,22 @@ def _wtp_grid(objective: Objective, wtp_range, points: int) -> np.ndarray:
             Problem("wtp_range", f"{wtp_range!r}; expected two numbers LOW HIGH")
         ) from None
     if not (math.isfinite(low) and math.isfinite(high) and 0 <= low < high):
-        raise ModelError(Problem("wtp_range", f"({low!r}, {high!r}); expected 0 <= LOW < HIGH "
-                                 "(currency per QALY)"))
+        raise ModelError(
+            Problem(
+                "wtp_range", f"({low!r}, {high!r}); expected 0 <= LOW < HIGH (currency per QALY)"
+            )
+        )
     return np.linspace(low, high, points)
 
 
-def _combine(chunks: list[ChunkResult], context: PSAContext, candidates: list[Candidate],
-             base, wtp_grid: np.ndarray, chunk_size: int) -> PSAResult:
+def _combine(
+    chunks: list[ChunkResult],
+    context: PSAContext,
+    candidates: list[Candidate],
+    base,
+    wtp_grid: np.ndarray,
+    chunk_size: int,
+) -> PSAResult:
     """Reduce the chunk results (in draw order) into one :class:`PSAResult`."""
     starts = [c.start for c in chunks]
     if starts != sorted(starts) or chunks[0].start != 0:
@@ -861,8 +950,7 @@ def _combine(chunks: list[ChunkResult], context: PSAContext, candidates: list[Ca
         action_counts=np.sum([c.action_counts for c in chunks], axis=0),
         distinct_policies=unique[order].reshape(len(unique), *distinct.shape[1:]),
         distinct_counts=totals[order],
-        policies=(np.concatenate([c.policies for c in chunks])
-                  if context.keep_policies else None),
+        policies=(np.concatenate([c.policies for c in chunks]) if context.keep_policies else None),
         chunk_size=chunk_size,
         iterations=[c.iterations for c in chunks],
         success=all(c.success for c in chunks),

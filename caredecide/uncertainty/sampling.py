@@ -74,8 +74,9 @@ def check_draw_count(n_draws: object, where: str = "draws") -> int:
         or not 1 <= n_draws <= MAX_DRAWS
     ):
         raise ModelError(
-            Problem(where, f"{where} = {n_draws!r}; expected a whole number from 1 to "
-                           f"{MAX_DRAWS:,}")
+            Problem(
+                where, f"{where} = {n_draws!r}; expected a whole number from 1 to {MAX_DRAWS:,}"
+            )
         )
     return int(n_draws)
 
@@ -156,9 +157,7 @@ class ParameterSampler:
             groups.append((group_name, dirichlet))
         if problems:
             raise ModelError(problems, file=file)
-        names = tuple(n for n, _ in distributions) + tuple(
-            m for _, g in groups for m in g.members
-        )
+        names = tuple(n for n, _ in distributions) + tuple(m for _, g in groups for m in g.members)
         correlation, correlated = _correlation_matrix(
             rank_correlation, model, dict(distributions), file
         )
@@ -193,8 +192,9 @@ class ParameterSampler:
         columns = [dist.sample(rng, BLOCK_SIZE) for _, dist in self.distributions]
         if self.correlation is not None:
             index = [self.names.index(n) for n in self.correlated]
-            reordered = _iman_conover(np.column_stack([columns[i] for i in index]),
-                                      self.correlation, rng)
+            reordered = _iman_conover(
+                np.column_stack([columns[i] for i in index]), self.correlation, rng
+            )
             for j, i in enumerate(index):
                 columns[i] = reordered[:, j]
         columns += [g.sample(rng, BLOCK_SIZE) for _, g in self.groups]  # (n, k) each
@@ -208,8 +208,11 @@ class ParameterSampler:
         The same rows whatever ``start``/``stop`` split is used (see the module docstring).
         """
         seed = check_seed(seed)
-        if not (isinstance(start, int | np.integer) and isinstance(stop, int | np.integer)
-                and 0 <= start <= stop):
+        if not (
+            isinstance(start, int | np.integer)
+            and isinstance(stop, int | np.integer)
+            and 0 <= start <= stop
+        ):
             raise ModelError(
                 Problem("draws", f"draw range {start!r}:{stop!r}; expected 0 <= start <= stop")
             )
@@ -277,14 +280,28 @@ def _correlation_matrix(
             continue
         for name in key:
             if name in members:
-                problems.append(Problem(where, f"{name!r} is a Dirichlet group member; its "
-                                        "rank cannot be correlated (the group sums to 1)"))
+                problems.append(
+                    Problem(
+                        where,
+                        f"{name!r} is a Dirichlet group member; its "
+                        "rank cannot be correlated (the group sums to 1)",
+                    )
+                )
             elif name not in model.parameters:
-                problems.append(Problem(where, f"unknown parameter {name!r}; expected one of "
-                                        f"{sorted(distributions)}"))
+                problems.append(
+                    Problem(
+                        where,
+                        f"unknown parameter {name!r}; expected one of {sorted(distributions)}",
+                    )
+                )
             elif name not in distributions:
-                problems.append(Problem(where, f"parameter {name!r} has no distribution (it is "
-                                        "fixed); only uncertain parameters can be correlated"))
+                problems.append(
+                    Problem(
+                        where,
+                        f"parameter {name!r} has no distribution (it is "
+                        "fixed); only uncertain parameters can be correlated",
+                    )
+                )
         number = value if isinstance(value, int | float) and not isinstance(value, bool) else None
         if number is None or not -1.0 < float(number) < 1.0:
             problems.append(Problem(where, f"correlation {value!r}; expected a number in (-1, 1)"))
@@ -298,9 +315,12 @@ def _correlation_matrix(
         matrix[index[a], index[b]] = matrix[index[b], index[a]] = float(value)
     if np.linalg.eigvalsh(matrix).min() <= 1e-10:
         raise ModelError(
-            Problem("rank_correlation", f"the correlations among {list(correlated)} do not form "
-                    f"a positive definite matrix (eigenvalues "
-                    f"{np.round(np.linalg.eigvalsh(matrix), 4).tolist()}); lower some of them"),
+            Problem(
+                "rank_correlation",
+                f"the correlations among {list(correlated)} do not form "
+                f"a positive definite matrix (eigenvalues "
+                f"{np.round(np.linalg.eigvalsh(matrix), 4).tolist()}); lower some of them",
+            ),
             file=file,
         )
     return matrix, correlated

@@ -355,9 +355,12 @@ def evppi_regression(
     values = _check_net_benefit(net_benefit, min_strategies=2)
     n_draws = values.shape[0]
     phi = _check_covariates(covariates, n_draws)
-    if isinstance(posterior_samples, bool) or not isinstance(
-        posterior_samples, int | np.integer
-    ) or posterior_samples == 1 or posterior_samples < 0:
+    if (
+        isinstance(posterior_samples, bool)
+        or not isinstance(posterior_samples, int | np.integer)
+        or posterior_samples == 1
+        or posterior_samples < 0
+    ):
         raise ModelError(
             Problem(
                 "posterior_samples",
@@ -581,8 +584,7 @@ def _fit_scipy_smoothing_spline(x: np.ndarray, y: np.ndarray) -> np.ndarray:
         raise ModelError(
             Problem(
                 "covariates",
-                f"scipy's smoothing spline failed on this parameter ({exc}); "
-                "use method='spline'",
+                f"scipy's smoothing spline failed on this parameter ({exc}); use method='spline'",
             )
         ) from exc
     return np.stack([fit(x) for fit in fits], axis=1)
@@ -600,8 +602,11 @@ def _margin_size(method: str, p: int, n_draws: int, basis_size: int | None) -> i
         raise ModelError(
             Problem("basis_size", f"expected at least {minimum} basis functions, got {basis_size}")
         )
-    size = int(basis_size) if basis_size is not None else int(sizes[fits & (sizes <= cap)].max(
-        initial=0))
+    size = (
+        int(basis_size)
+        if basis_size is not None
+        else int(sizes[fits & (sizes <= cap)].max(initial=0))
+    )
     if size == 0 or not fits[size - minimum]:
         size = max(size, minimum)
         need = MIN_DRAWS_PER_COEFFICIENT * (size**p if tensor else size * p)

@@ -82,13 +82,18 @@ class AppServer:
         self.port = _free_port()
         self.url = f"http://127.0.0.1:{self.port}"
         executable = shutil.which("caredecide")
-        command = ([executable] if executable
-                   else [sys.executable, "-c", "from caredecide.cli import main; main()"])
+        command = (
+            [executable]
+            if executable
+            else [sys.executable, "-c", "from caredecide.cli import main; main()"]
+        )
         self._log = open(home / f"app-{self.port}.log", "w+b")  # closed in stop()
         self._process = subprocess.Popen(
             [*command, "app", "--port", str(self.port), "--headless", "--quiet"],
             env={**os.environ, "CAREDECIDE_HOME": str(home)},
-            stdout=self._log, stderr=subprocess.STDOUT, start_new_session=True,
+            stdout=self._log,
+            stderr=subprocess.STDOUT,
+            start_new_session=True,
         )
         deadline = time.monotonic() + STARTUP_SECONDS
         while not _healthy(self.url):

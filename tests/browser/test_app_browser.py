@@ -45,8 +45,9 @@ def test_every_view_renders_without_exception(app_url, page, artifacts):
     assert len(hrefs) >= 3, hrefs
     for href in hrefs:
         name = href.rstrip("/").rsplit("/", 1)[-1] if href.rstrip("/") != app_url else ""
-        page.goto(href if href.startswith("http") else f"{app_url}/{href.lstrip('/')}",
-                  timeout=TIMEOUT_MS)
+        page.goto(
+            href if href.startswith("http") else f"{app_url}/{href.lstrip('/')}", timeout=TIMEOUT_MS
+        )
         _wait_until_done(page)
         charts = page.locator("[data-testid='stVegaLiteChart']")
         if charts.count():  # charts are drawn after the script: wait for the first one
@@ -183,7 +184,8 @@ def test_an_invalid_cell_edit_is_kept_beside_its_table_and_survives_a_restart(
 
         # The error names the cell and sits between this matrix and the next one.
         error = page.locator("[data-testid='stAlertContentError']").filter(
-            has_text="row stage_1, column stage_2_tx")
+            has_text="row stage_1, column stage_2_tx"
+        )
         error.first.wait_for(timeout=TIMEOUT_MS)
         text = error.first.inner_text()
         assert "transitions.treat.stage_1.stage_2_tx" in text and "[0, 1]" in text
@@ -213,10 +215,12 @@ def test_an_invalid_cell_edit_is_kept_beside_its_table_and_survives_a_restart(
         page.get_by_role("tab", name="Transitions").click()
         page.wait_for_function(NO_SKELETON, timeout=TIMEOUT_MS)
         error = page.locator("[data-testid='stAlertContentError']").filter(
-            has_text="row stage_1, column stage_2_tx")
+            has_text="row stage_1, column stage_2_tx"
+        )
         assert error.first.is_visible()
-        page.screenshot(path=str(artifacts / "app-model-restored-after-restart.png"),
-                        full_page=True)
+        page.screenshot(
+            path=str(artifacts / "app-model-restored-after-restart.png"), full_page=True
+        )
         _check_view(page)
     finally:
         restarted.stop()

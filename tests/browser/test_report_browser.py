@@ -53,8 +53,11 @@ def test_report_renders_offline_with_every_section(report_file, page, artifacts)
     assert page.locator("section#sensitivity figure.chart svg").count() == 1
     # The treatment's share of draws by state and age band, and the acceptability curves.
     assert page.locator("section#uncertainty figure.chart svg").count() == 2
-    assert page.locator("section#uncertainty .note").first.inner_text().startswith(
-        "EVPPI not computed")
+    assert (
+        page.locator("section#uncertainty .note")
+        .first.inner_text()
+        .startswith("EVPPI not computed")
+    )
     statuses = page.locator("section#verification table.checks tbody tr td:nth-child(2)")
     assert set(statuses.all_inner_texts()) == {"pass", "not applicable"}
     assert "30 parameter draws" in page.locator("section#uncertainty").inner_text()

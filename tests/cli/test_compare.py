@@ -45,15 +45,27 @@ def test_notes_go_to_stderr():
 
 
 def test_out_writes_table_frontier_traces_and_charts(tmp_path, library):
-    run = runner.invoke(app, ["compare", DEMO, "--wtp", "25000", "--wtp-range", "10000",
-                              "40000", "--out", str(tmp_path), "--quiet"])
+    run = runner.invoke(
+        app,
+        [
+            "compare",
+            DEMO,
+            "--wtp",
+            "25000",
+            "--wtp-range",
+            "10000",
+            "40000",
+            "--out",
+            str(tmp_path),
+            "--quiet",
+        ],
+    )
     assert run.exit_code == 0, run.output
     table = pd.read_csv(tmp_path / TABLE_FILE, keep_default_na=False)
     assert list(table["strategy"]) == list(library.table["strategy"])
     pd.testing.assert_series_equal(table["cost"], library.table["cost"], rtol=1e-12)
     frontier = pd.read_csv(tmp_path / FRONTIER_FILE)
-    pd.testing.assert_series_equal(frontier["wtp_from"], library.frontier["wtp_from"],
-                                   rtol=1e-12)
+    pd.testing.assert_series_equal(frontier["wtp_from"], library.frontier["wtp_from"], rtol=1e-12)
     assert len(pd.read_csv(tmp_path / SWITCHES_FILE)) == len(library.switches)
     names = list(dict.fromkeys(library.traces["strategy"]))
     for index, name in enumerate(names):
@@ -65,9 +77,11 @@ def test_out_writes_table_frontier_traces_and_charts(tmp_path, library):
     assert "Optimal policy over the willingness-to-pay range" in run.stdout
     # Axis titles carry the model's currency in brackets, as in the app.
     assert "Cost per person (discounted) (EUR)" in (tmp_path / "ce_plane.svg").read_text(
-        encoding="utf-8")
+        encoding="utf-8"
+    )
     assert "Willingness to pay per QALY (EUR)" in (tmp_path / "frontier.svg").read_text(
-        encoding="utf-8")
+        encoding="utf-8"
+    )
 
 
 def test_strategies_option_reads_the_table(tmp_path):
@@ -83,8 +97,7 @@ def test_bad_strategy_table_names_file_row_and_value(tmp_path):
     path.write_text("state,action\nstage_9,treat\n", encoding="utf-8")
     run = runner.invoke(app, ["compare", DEMO, "--strategies", str(path)])
     assert run.exit_code == 2
-    assert "plan.csv, line 2: row 1.state: unknown state 'stage_9'" in " ".join(
-        run.stderr.split())
+    assert "plan.csv, line 2: row 1.state: unknown state 'stage_9'" in " ".join(run.stderr.split())
 
 
 def test_bad_wtp_range_is_a_clear_error():
@@ -92,12 +105,14 @@ def test_bad_wtp_range_is_a_clear_error():
     assert run.exit_code == 2
     # The problem concerns this model: its file is named, not a placeholder.
     assert "demo_progressive.toml: wtp_range: range (500, 100) is not allowed" in " ".join(
-        run.stderr.split())
+        run.stderr.split()
+    )
 
 
 def test_trace_file_names_are_safe():
     assert trace_file_name(0, "optimal policy at WTP 30,000") == (
-        "01_optimal-policy-at-wtp-30-000.csv")
+        "01_optimal-policy-at-wtp-30-000.csv"
+    )
     assert trace_file_name(11, "!!!") == "12_strategy.csv"
 
 
@@ -111,8 +126,7 @@ def test_small_increments_are_never_printed_as_zero():
 
 
 def test_from_age_option_adds_the_age_strategy():
-    run = runner.invoke(app, ["compare", DEMO, "--from-age", "70", "--from-age", "80",
-                              "--quiet"])
+    run = runner.invoke(app, ["compare", DEMO, "--from-age", "70", "--from-age", "80", "--quiet"])
     assert run.exit_code == 0, run.output
     assert "treat from age 70" in run.stdout and "treat from age 80" in run.stdout
 
@@ -121,5 +135,4 @@ def test_from_age_on_an_infinite_horizon_is_a_clear_error():
     stationary = str(demo_model_path().with_name("teaching_stationary.toml"))
     run = runner.invoke(app, ["compare", stationary, "--from-age", "65"])
     assert run.exit_code == 2
-    assert "age 65 given, but the model has an infinite horizon" in " ".join(
-        run.stderr.split())
+    assert "age 65 given, but the model has an infinite horizon" in " ".join(run.stderr.split())

@@ -28,8 +28,7 @@ def test_report_writes_html_tables_and_record(tmp_path):
 
 def test_report_of_a_model_failing_verification_warns_on_stderr(tmp_path):
     broken = BASE.with_name("closed_cohort.toml")  # nobody should return from death
-    run = runner.invoke(app, ["report", str(broken), "--out", str(tmp_path / "r.html"),
-                              "--quiet"])
+    run = runner.invoke(app, ["report", str(broken), "--out", str(tmp_path / "r.html"), "--quiet"])
     assert run.exit_code == 0, run.output  # the report is written, with the failure in it
     assert "warning: 1 verification check(s) failed (closed_cohort)" in run.stderr
     assert "1 check(s) FAILED" in (tmp_path / "r.html").read_text(encoding="utf-8")
@@ -37,8 +36,9 @@ def test_report_of_a_model_failing_verification_warns_on_stderr(tmp_path):
 
 def test_invalid_model_is_a_clear_error(tmp_path):
     bad = tmp_path / "bad.toml"
-    bad.write_text(BASE.read_text(encoding="utf-8").replace("discount_costs = 0.04",
-                                                            "discount_costs = 1.5"))
+    bad.write_text(
+        BASE.read_text(encoding="utf-8").replace("discount_costs = 0.04", "discount_costs = 1.5")
+    )
     run = runner.invoke(app, ["report", str(bad), "--out", str(tmp_path / "r.html")])
     assert run.exit_code == 2
     assert "bad.toml" in run.stderr and "discount_costs" in run.stderr

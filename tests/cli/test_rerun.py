@@ -18,8 +18,20 @@ BASE = Path(__file__).parents[1] / "data" / "broken_models" / "base_small.toml"
 def recorded(tmp_path):
     model = tmp_path / "model.toml"
     shutil.copy(BASE, model)
-    run = runner.invoke(app, ["report", str(model), "--out", str(tmp_path / "r.html"),
-                              "--draws", "20", "--seed", "3", "--quiet"])
+    run = runner.invoke(
+        app,
+        [
+            "report",
+            str(model),
+            "--out",
+            str(tmp_path / "r.html"),
+            "--draws",
+            "20",
+            "--seed",
+            "3",
+            "--quiet",
+        ],
+    )
     assert run.exit_code == 0, run.output
     return model, tmp_path / "r.run.json"
 
@@ -28,20 +40,24 @@ def test_rerun_reproduces_and_exits_zero(recorded, tmp_path):
     _, record = recorded
     run = runner.invoke(app, ["rerun", str(record), "--out", str(tmp_path / "again"), "--quiet"])
     assert run.exit_code == 0, run.output
-    assert ("Reproduced: the model file, its input files and every output match the "
-            "record.") in run.stdout
+    assert (
+        "Reproduced: the model file, its input files and every output match the record."
+    ) in run.stdout
     assert "RESEARCH USE ONLY" in run.stderr
     again = sorted(p.name for p in (tmp_path / "again").iterdir())
     assert again == sorted(p.name for p in (tmp_path / "r_tables").iterdir())
     for name in again:  # byte-identical result tables
-        assert (tmp_path / "again" / name).read_bytes() == (tmp_path / "r_tables" /
-                                                             name).read_bytes()
+        assert (tmp_path / "again" / name).read_bytes() == (
+            tmp_path / "r_tables" / name
+        ).read_bytes()
 
 
 def test_rerun_detects_a_changed_model(recorded):
     model, record = recorded
-    model.write_text(model.read_text(encoding="utf-8").replace("cost = 2000.0", "cost = 2500.0"),
-                     encoding="utf-8")
+    model.write_text(
+        model.read_text(encoding="utf-8").replace("cost = 2000.0", "cost = 2500.0"),
+        encoding="utf-8",
+    )
     run = runner.invoke(app, ["rerun", str(record), "--quiet"])
     assert run.exit_code == 1
     assert "The model file has changed since the run was recorded." in run.stdout
@@ -66,8 +82,9 @@ def test_rerun_with_the_model_sent_alongside_the_record(recorded, tmp_path):
     missing = runner.invoke(app, ["rerun", str(inbox / record.name), "--quiet"])
     assert missing.exit_code == 2
     assert "does not exist; expected the model file of the recorded run" in missing.stderr
-    run = runner.invoke(app, ["rerun", str(inbox / record.name), "--model",
-                              str(inbox / "sent.toml"), "--quiet"])
+    run = runner.invoke(
+        app, ["rerun", str(inbox / record.name), "--model", str(inbox / "sent.toml"), "--quiet"]
+    )
     assert run.exit_code == 0, run.output
     assert "Reproduced" in run.stdout
 
@@ -76,13 +93,13 @@ def test_rerun_detects_a_changed_strategy_table(tmp_path):
     model = tmp_path / "model.toml"
     shutil.copy(BASE, model)
     table = tmp_path / "model.strategies.csv"
-    table.write_text("strategy,state,age_from,age_to,action\n"
-                     "treat sick before 65,sick,,65,treat\n", encoding="utf-8")
-    made = runner.invoke(app, ["report", str(model), "--out", str(tmp_path / "r.html"),
-                               "--quiet"])
+    table.write_text(
+        "strategy,state,age_from,age_to,action\ntreat sick before 65,sick,,65,treat\n",
+        encoding="utf-8",
+    )
+    made = runner.invoke(app, ["report", str(model), "--out", str(tmp_path / "r.html"), "--quiet"])
     assert made.exit_code == 0, made.output
-    table.write_text(table.read_text(encoding="utf-8").replace(",65,", ",70,"),
-                     encoding="utf-8")
+    table.write_text(table.read_text(encoding="utf-8").replace(",65,", ",70,"), encoding="utf-8")
     run = runner.invoke(app, ["rerun", str(tmp_path / "r.run.json"), "--quiet"])
     assert run.exit_code == 1
     assert "An input file the model reads (life table or strategy table) has changed" in run.stdout

@@ -38,8 +38,15 @@ def test_writes_policy_trace_and_summary(tmp_path, library_run):
     assert run.exit_code == 0, run.output
     assert "RESEARCH USE ONLY" in run.stderr  # the caution, even with --quiet
     policy = pd.read_csv(tmp_path / "policy.csv", keep_default_na=False)
-    assert list(policy.columns) == ["cycle", "age", "state", "action", "value",
-                                    "next_best_action", "action_gap"]
+    assert list(policy.columns) == [
+        "cycle",
+        "age",
+        "state",
+        "action",
+        "value",
+        "next_best_action",
+        "action_gap",
+    ]
     expected = result.to_frame()
     assert policy.action.tolist() == expected.action.tolist()
     np.testing.assert_allclose(policy.value, expected.value, rtol=1e-12)
@@ -51,7 +58,8 @@ def test_writes_policy_trace_and_summary(tmp_path, library_run):
     assert summary["solver"]["method"] == "backward_induction"
     assert summary["solver"]["iterations"] == result.iterations
     assert summary["totals"]["net_monetary_benefit"] == pytest.approx(
-        outcome.net_monetary_benefit[0], rel=1e-12)
+        outcome.net_monetary_benefit[0], rel=1e-12
+    )
     assert summary["objective"]["willingness_to_pay"] == 30000.0
     assert summary["package_version"]
     assert "RESEARCH USE ONLY" in summary["caution"]
@@ -94,7 +102,8 @@ def test_method_that_does_not_fit_the_horizon_error():
     run = runner.invoke(app, ["solve", DEMO, "--method", "value_iteration"])
     assert run.exit_code == 2
     assert "demo_progressive.toml: method 'value_iteration' is for an infinite horizon" in (
-        run.stderr)
+        run.stderr
+    )
 
 
 def test_broken_model_file_error(tmp_path):
@@ -114,7 +123,8 @@ def test_infinite_wtp_error_names_the_option():
     run = runner.invoke(app, ["solve", DEMO, "--wtp", "inf"])
     assert run.exit_code == 2
     assert "--wtp: willingness_to_pay = inf is not allowed; expected a finite number >= 0" in (
-        run.stderr)
+        run.stderr
+    )
 
 
 def test_unwritable_out_folder_error(tmp_path):
@@ -130,15 +140,18 @@ def test_wtp_with_a_qaly_objective_is_noted(tmp_path):
     text = demo_model_path().read_text(encoding="utf-8")
     assert 'objective = "net_benefit"' in text
     qaly_model = tmp_path / "qaly.toml"
-    qaly_model.write_text(text.replace('objective = "net_benefit"', 'objective = "qalys"'),
-                          encoding="utf-8")
+    qaly_model.write_text(
+        text.replace('objective = "net_benefit"', 'objective = "qalys"'), encoding="utf-8"
+    )
     low = runner.invoke(app, ["solve", str(qaly_model), "--wtp", "0", "--format", "json"])
     high = runner.invoke(app, ["solve", str(qaly_model), "--wtp", "90000", "--format", "json"])
     assert low.exit_code == high.exit_code == 0, low.output
     assert "maximises QALYs; --wtp 90000 sets only the reported net monetary benefit" in (
-        high.stderr)
+        high.stderr
+    )
     low_summary, high_summary = json.loads(low.stdout), json.loads(high.stdout)
     assert low_summary["structure"] == high_summary["structure"]
     totals = high_summary["totals"]
     assert totals["net_monetary_benefit"] == pytest.approx(
-        90000 * totals["qalys"] - totals["costs"], rel=1e-12)
+        90000 * totals["qalys"] - totals["costs"], rel=1e-12
+    )

@@ -28,16 +28,40 @@ def model_file(tmp_path_factory):
 
 def test_writes_tables_charts_and_summary(model_file, tmp_path):
     out = tmp_path / "psa"
-    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "250", "--seed",
-                                 "9", "--chunk-size", "100", "--wtp-range", "0", "50000",
-                                 "--out", str(out)])
+    result = runner.invoke(
+        app,
+        [
+            "uncertainty",
+            str(model_file),
+            "--draws",
+            "250",
+            "--seed",
+            "9",
+            "--chunk-size",
+            "100",
+            "--wtp-range",
+            "0",
+            "50000",
+            "--out",
+            str(out),
+        ],
+    )
     assert result.exit_code == 0, result.output
     assert CAUTION_SHORT in result.stderr
     assert "EVPI of the timing decision" in result.stdout
     assert "upper bound" in result.stdout
-    for name in ("acceptability_by_age_band.csv", "acceptability_curves.csv", "evppi.csv",
-                 "expected_loss.csv", "draws.csv", "convergence.csv", "summary.json",
-                 "acceptability_by_state.svg", "acceptability_curves.png", "evppi.svg"):
+    for name in (
+        "acceptability_by_age_band.csv",
+        "acceptability_curves.csv",
+        "evppi.csv",
+        "expected_loss.csv",
+        "draws.csv",
+        "convergence.csv",
+        "summary.json",
+        "acceptability_by_state.svg",
+        "acceptability_curves.png",
+        "evppi.svg",
+    ):
         assert (out / name).is_file(), name
     # The files hold the library's figures for the same seed (no separate maths).
     direct = run_psa(load_model(model_file), 250, seed=9, wtp_range=(0.0, 50000.0))
@@ -53,8 +77,9 @@ def test_a_strategy_table_beside_the_model_joins_the_candidates(model_file, tmp_
     table = model_file.with_name("small.strategies.csv")
     table.write_text("strategy,state,action\nalways treat when sick,sick,treat\n")
     try:
-        result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "20",
-                                     "--out", str(tmp_path)])
+        result = runner.invoke(
+            app, ["uncertainty", str(model_file), "--draws", "20", "--out", str(tmp_path)]
+        )
     finally:
         table.unlink()
     assert result.exit_code == 0, result.output
@@ -66,8 +91,9 @@ def test_a_strategy_table_beside_the_model_joins_the_candidates(model_file, tmp_
 
 def test_quiet_prints_the_caution_and_nothing_else(model_file, tmp_path):
     # The caution is always shown (as by solve, compare and check); --quiet drops the notes.
-    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "20", "--quiet",
-                                 "--out", str(tmp_path)])
+    result = runner.invoke(
+        app, ["uncertainty", str(model_file), "--draws", "20", "--quiet", "--out", str(tmp_path)]
+    )
     assert result.exit_code == 0, result.output
     assert " ".join(result.stderr.split()) == " ".join(CAUTION_SHORT.split())
     assert "EVPPI not computed" in result.stdout
@@ -75,15 +101,18 @@ def test_quiet_prints_the_caution_and_nothing_else(model_file, tmp_path):
 
 
 def test_refuses_workers_and_scheduler_together(model_file):
-    result = runner.invoke(app, ["uncertainty", str(model_file), "--workers", "2",
-                                 "--scheduler", "tcp://127.0.0.1:8786"])
+    result = runner.invoke(
+        app,
+        ["uncertainty", str(model_file), "--workers", "2", "--scheduler", "tcp://127.0.0.1:8786"],
+    )
     assert result.exit_code == 2
     assert "--workers or --scheduler, not both" in result.stderr
 
 
 def test_refuses_a_bad_wtp_range(model_file):
-    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "10",
-                                 "--wtp-range", "100", "10"])
+    result = runner.invoke(
+        app, ["uncertainty", str(model_file), "--draws", "10", "--wtp-range", "100", "10"]
+    )
     assert result.exit_code == 2
     assert "wtp_range: (100.0, 10.0); expected 0 <= LOW < HIGH" in result.stderr
 
@@ -97,8 +126,22 @@ def test_refuses_zero_draws(model_file):
 def test_acceptability_table_has_one_row_per_age_band(model_file, tmp_path):
     # Bands run down the rows (a lifetime horizon must not squeeze the headers); each
     # cell is the band's share from acceptability_by_age_band.csv.
-    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "60", "--seed",
-                                 "4", "--band-years", "2", "--quiet", "--out", str(tmp_path)])
+    result = runner.invoke(
+        app,
+        [
+            "uncertainty",
+            str(model_file),
+            "--draws",
+            "60",
+            "--seed",
+            "4",
+            "--band-years",
+            "2",
+            "--quiet",
+            "--out",
+            str(tmp_path),
+        ],
+    )
     assert result.exit_code == 0, result.output
     bands = pd.read_csv(tmp_path / "acceptability_by_age_band.csv")
     treat = bands[(bands["action"] == "treat") & (bands["state"] == "sick")]
@@ -112,8 +155,9 @@ def test_acceptability_table_has_one_row_per_age_band(model_file, tmp_path):
 def test_refuses_an_out_path_that_is_a_file(model_file, tmp_path):
     target = tmp_path / "taken"
     target.write_text("")
-    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "10",
-                                 "--out", str(target)])
+    result = runner.invoke(
+        app, ["uncertainty", str(model_file), "--draws", "10", "--out", str(target)]
+    )
     assert result.exit_code == 2
     assert "Invalid value for '--out'" in result.output
 
@@ -121,11 +165,14 @@ def test_refuses_an_out_path_that_is_a_file(model_file, tmp_path):
 def test_refuses_an_out_folder_that_cannot_be_made(model_file, tmp_path):
     # A folder below a file cannot be created: refused before the run, naming --out.
     (tmp_path / "taken").write_text("")
-    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "10",
-                                 "--out", str(tmp_path / "taken" / "psa")])
+    result = runner.invoke(
+        app,
+        ["uncertainty", str(model_file), "--draws", "10", "--out", str(tmp_path / "taken" / "psa")],
+    )
     assert result.exit_code == 2
     assert "--out" in result.stderr and "cannot write the results" in " ".join(
-        result.stderr.split())
+        result.stderr.split()
+    )
     assert "EVPI" not in result.stdout
 
 
@@ -133,20 +180,48 @@ def test_local_dask_workers_give_the_serial_results(model_file, tmp_path):
     # --workers starts a local cluster of worker processes on loopback (127.0.0.1). The
     # first 1,000 draws are the pilot (run in the client); draws 1000-1149 go to Dask.
     pytest.importorskip("distributed")
-    serial = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "1150", "--seed",
-                                 "5", "--chunk-size", "100", "--quiet",
-                                 "--out", str(tmp_path / "serial")])
-    dask = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "1150", "--seed",
-                               "5", "--chunk-size", "70", "--workers", "1", "--quiet",
-                               "--out", str(tmp_path / "dask")])
+    serial = runner.invoke(
+        app,
+        [
+            "uncertainty",
+            str(model_file),
+            "--draws",
+            "1150",
+            "--seed",
+            "5",
+            "--chunk-size",
+            "100",
+            "--quiet",
+            "--out",
+            str(tmp_path / "serial"),
+        ],
+    )
+    dask = runner.invoke(
+        app,
+        [
+            "uncertainty",
+            str(model_file),
+            "--draws",
+            "1150",
+            "--seed",
+            "5",
+            "--chunk-size",
+            "70",
+            "--workers",
+            "1",
+            "--quiet",
+            "--out",
+            str(tmp_path / "dask"),
+        ],
+    )
     assert serial.exit_code == 0, serial.output
     assert dask.exit_code == 0, dask.output
     for name in ("draws.csv", "expected_loss.csv", "acceptability_by_cycle.csv", "evppi.csv"):
-        pd.testing.assert_frame_equal(pd.read_csv(tmp_path / "dask" / name),
-                                      pd.read_csv(tmp_path / "serial" / name), obj=name)
+        pd.testing.assert_frame_equal(
+            pd.read_csv(tmp_path / "dask" / name), pd.read_csv(tmp_path / "serial" / name), obj=name
+        )
     summary = json.loads((tmp_path / "dask" / "summary.json").read_text())
-    assert summary["evpi"] == json.loads((tmp_path / "serial" / "summary.json").read_text())[
-        "evpi"]
+    assert summary["evpi"] == json.loads((tmp_path / "serial" / "summary.json").read_text())["evpi"]
     assert summary["chunk_size"] == 70
 
 
@@ -159,9 +234,20 @@ def test_local_dask_workers_give_the_serial_results(model_file, tmp_path):
 )
 def test_names_an_unreachable_scheduler_and_a_bad_timeout(model_file, timeout, message):
     pytest.importorskip("distributed")
-    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "10", "--quiet",
-                                 "--scheduler", "tcp://127.0.0.1:1", "--connect-timeout",
-                                 timeout])
+    result = runner.invoke(
+        app,
+        [
+            "uncertainty",
+            str(model_file),
+            "--draws",
+            "10",
+            "--quiet",
+            "--scheduler",
+            "tcp://127.0.0.1:1",
+            "--connect-timeout",
+            timeout,
+        ],
+    )
     assert result.exit_code == 2
     assert message in result.stderr
 
@@ -169,9 +255,20 @@ def test_names_an_unreachable_scheduler_and_a_bad_timeout(model_file, timeout, m
 def test_rank_correlation_reaches_the_draws(model_file, tmp_path):
     # Iman & Conover 1982 (Commun Stat Simul Comput 11(3):311-334): a normal-score
     # correlation of 0.8 gives a Spearman correlation near (6/pi) asin(0.4) = 0.79.
-    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "300", "--quiet",
-                                 "--rank-correlation", "u_sick,c_drug=0.8",
-                                 "--out", str(tmp_path)])
+    result = runner.invoke(
+        app,
+        [
+            "uncertainty",
+            str(model_file),
+            "--draws",
+            "300",
+            "--quiet",
+            "--rank-correlation",
+            "u_sick,c_drug=0.8",
+            "--out",
+            str(tmp_path),
+        ],
+    )
     assert result.exit_code == 0, result.output
     draws = pd.read_csv(tmp_path / "draws.csv")
     assert draws["u_sick"].rank().corr(draws["c_drug"].rank()) > 0.7
@@ -187,7 +284,9 @@ def test_rank_correlation_reaches_the_draws(model_file, tmp_path):
     ],
 )
 def test_refuses_a_bad_rank_correlation(model_file, text, message):
-    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "10", "--quiet",
-                                 "--rank-correlation", text])
+    result = runner.invoke(
+        app,
+        ["uncertainty", str(model_file), "--draws", "10", "--quiet", "--rank-correlation", text],
+    )
     assert result.exit_code == 2
     assert message in " ".join(result.stderr.split())

@@ -15,8 +15,10 @@ BROKEN = Path(__file__).parents[1] / "data" / "broken_models"
 
 
 def test_passing_model_exits_zero_and_writes_the_table(tmp_path):
-    run = runner.invoke(app, ["verify", str(BROKEN / "base_small.toml"), "--csv",
-                              str(tmp_path / "v.csv"), "--quiet"])
+    run = runner.invoke(
+        app,
+        ["verify", str(BROKEN / "base_small.toml"), "--csv", str(tmp_path / "v.csv"), "--quiet"],
+    )
     assert run.exit_code == 0, run.output
     assert "RESEARCH USE ONLY" in run.stderr
     assert "Every check passed or does not apply." in run.stdout

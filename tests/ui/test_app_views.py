@@ -71,7 +71,9 @@ def test_policy_view_shows_the_library_totals_and_policy(app):
     result, totals, outcome = _library(text, "net_benefit", 30000.0, _demo_dir())
     shown = [m.value for m in app.metric]
     assert shown == [
-        f"{totals['life_years']:,.4f}", f"{totals['qalys']:,.4f}", f"{totals['costs']:,.2f}",
+        f"{totals['life_years']:,.4f}",
+        f"{totals['qalys']:,.4f}",
+        f"{totals['costs']:,.2f}",
         f"{totals['net_monetary_benefit']:,.2f}",
     ]
     assert any(m.value == result.structure().text for m in app.markdown)
@@ -137,8 +139,12 @@ def test_an_invalid_edit_shows_its_error_beside_the_table_and_is_kept(app, priva
     source = app.session_state[common.SOURCE_KEY]
     assert drafts.load_draft(source).text == text  # ...and autosaved
     errors = [e.value for e in app.error]
-    assert any("transitions.treat.stage_1.stage_2_tx" in e and "[0, 1]" in e
-               and "row stage_1, column stage_2_tx" in e for e in errors)
+    assert any(
+        "transitions.treat.stage_1.stage_2_tx" in e
+        and "[0, 1]" in e
+        and "row stage_1, column stage_2_tx" in e
+        for e in errors
+    )
     # The summary names the tab to open (the user may be on another one).
     assert any("in the tab(s): Transitions (" in e for e in errors), errors
     # The other views refuse to solve and point back to the model view.
@@ -185,8 +191,15 @@ def test_convergence_view_steps_through_value_iteration_sweeps(app):
     app.switch_page("views/convergence.py").run()
     app.radio(key="convergence_method").set_value("value_iteration").run()
     assert not app.exception, app.exception
-    result, _, _ = _library(TEMPLATES["infinite-horizon"], "qalys", 0.0, ".",
-                         method="value_iteration", record_history=True, max_iterations=5000)
+    result, _, _ = _library(
+        TEMPLATES["infinite-horizon"],
+        "qalys",
+        0.0,
+        ".",
+        method="value_iteration",
+        record_history=True,
+        max_iterations=5000,
+    )
     assert app.metric[0].value == str(len(result.history))
     app.slider(key="convergence_sweep").set_value(3).run()
     third = result.history[2]
@@ -201,8 +214,13 @@ def test_convergence_view_steps_through_value_iteration_sweeps(app):
 def test_convergence_view_on_a_finite_model_uses_backward_induction(app):
     app.switch_page("views/convergence.py").run()
     assert not app.exception
-    result, _, _ = _library(demo_model_path().read_text(encoding="utf-8"), "net_benefit", 30000.0,
-                         _demo_dir(), record_history=True)
+    result, _, _ = _library(
+        demo_model_path().read_text(encoding="utf-8"),
+        "net_benefit",
+        30000.0,
+        _demo_dir(),
+        record_history=True,
+    )
     assert app.metric[0].value == str(result.iterations)
     assert any("backward induction" in m.value for m in app.markdown)
 
@@ -236,12 +254,16 @@ def test_switching_the_objective_to_qalys_shows_the_library_result(app):
 
 def test_adding_a_state_row_keeps_it_and_reports_what_it_lacks(app):
     key = f"table_states_{app.session_state[common.REVISION_KEY]}"
-    app.session_state[key] = {"edited_rows": {}, "added_rows": [{"id": "stage_4"}],
-                              "deleted_rows": []}
+    app.session_state[key] = {
+        "edited_rows": {},
+        "added_rows": [{"id": "stage_4"}],
+        "deleted_rows": [],
+    }
     app.run()
     assert not app.exception, app.exception
-    model = loads_model(app.session_state[common.TEXT_KEY], file="t", base_dir=_demo_dir(),
-                        validate=False)
+    model = loads_model(
+        app.session_state[common.TEXT_KEY], file="t", base_dir=_demo_dir(), validate=False
+    )
     added = model.state("stage_4")
     assert (added.alive, added.absorbing, added.cost) == (True, False, 0.0)
 
@@ -250,8 +272,11 @@ def test_deleting_a_parameter_row_reports_the_expressions_that_use_it(app):
     text = app.session_state[common.TEXT_KEY]
     names = list(loads_model(text, file="t", base_dir=_demo_dir()).parameters)
     key = f"table_parameters_{app.session_state[common.REVISION_KEY]}"
-    app.session_state[key] = {"edited_rows": {}, "added_rows": [],
-                              "deleted_rows": [names.index("c_drug_year")]}
+    app.session_state[key] = {
+        "edited_rows": {},
+        "added_rows": [],
+        "deleted_rows": [names.index("c_drug_year")],
+    }
     app.run()
     assert not app.exception, app.exception
     assert "c_drug_year" not in app.session_state[common.TEXT_KEY].split("[parameters", 1)[1]
@@ -299,8 +324,15 @@ def test_convergence_view_steps_through_the_other_infinite_horizon_solvers(app, 
     app.switch_page("views/convergence.py").run()
     app.radio(key="convergence_method").set_value(method).run()
     assert not app.exception, app.exception
-    result, _, _ = _library(TEMPLATES["infinite-horizon"], "qalys", 0.0, ".", method=method,
-                            record_history=True, max_iterations=5000)
+    result, _, _ = _library(
+        TEMPLATES["infinite-horizon"],
+        "qalys",
+        0.0,
+        ".",
+        method=method,
+        record_history=True,
+        max_iterations=5000,
+    )
     assert app.metric[0].value == str(len(result.history))
     last = result.history[-1]
     assert app.metric[1].value == f"{last.residual[0]:.4g}"

@@ -9,12 +9,14 @@ from ui import charts
 
 
 def _policy_frame() -> pd.DataFrame:
-    return pd.DataFrame({
-        "state": ["mild", "mild", "severe", "severe"],
-        "age": [60, 61, 60, 61],
-        "action": ["Wait", "Treat now", "Treat now", "Treat now"],
-        "label": ["W", "T", "T", "T"],
-    })
+    return pd.DataFrame(
+        {
+            "state": ["mild", "mild", "severe", "severe"],
+            "age": [60, 61, 60, 61],
+            "action": ["Wait", "Treat now", "Treat now", "Treat now"],
+            "label": ["W", "T", "T", "T"],
+        }
+    )
 
 
 def _rows(spec: dict) -> list[dict]:
@@ -55,10 +57,14 @@ def test_palette_colours_are_distinct_and_in_lightness_steps():
 
 
 def test_action_gap_chart_marks_close_calls_in_text():
-    frame = pd.DataFrame({
-        "state": ["mild", "mild"], "age": [60, 61], "action_gap": [0.0004, 2.5],
-        "close": [True, False],
-    })
+    frame = pd.DataFrame(
+        {
+            "state": ["mild", "mild"],
+            "age": [60, 61],
+            "action_gap": [0.0004, 2.5],
+            "close": [True, False],
+        }
+    )
     spec = charts.make_action_gap_chart(frame, unit="QALYs").to_dict()
     cells, text = spec["layer"]
     assert cells["encoding"]["color"]["field"] == "action_gap"
@@ -79,16 +85,18 @@ def test_gap_ramp_is_one_hue_from_dark_to_light():
 
 
 def test_policy_chart_legend_shows_long_action_labels_whole():
-    frame = _policy_frame().assign(action=lambda f: f["action"] + " (or stay on treatment "
-                                   "once started)")
+    frame = _policy_frame().assign(
+        action=lambda f: f["action"] + " (or stay on treatment once started)"
+    )
     spec = charts.make_policy_chart(frame).to_dict()
     limit = spec["layer"][0]["encoding"]["color"]["legend"]["labelLimit"]
     assert limit >= 7 * max(len(a) for a in frame["action"])  # ~7 px per character at 11 px
 
 
 def test_value_chart_draws_lines_over_age_and_bars_for_a_single_age():
-    over_age = pd.DataFrame({"state": ["a", "a", "b", "b"], "age": [60, 61, 60, 61],
-                             "value": [10.0, 9.0, 5.0, 4.5]})
+    over_age = pd.DataFrame(
+        {"state": ["a", "a", "b", "b"], "age": [60, 61, 60, 61], "value": [10.0, 9.0, 5.0, 4.5]}
+    )
     spec = charts.make_value_chart(over_age, unit="QALYs").to_dict()
     assert spec["mark"]["type"] == "line"
     assert spec["encoding"]["y"]["title"] == "Value QALYs"
@@ -97,8 +105,13 @@ def test_value_chart_draws_lines_over_age_and_bars_for_a_single_age():
 
 
 def test_trace_chart_stacks_states_in_the_given_order():
-    frame = pd.DataFrame({"age": [60, 60, 61, 61], "state": ["well", "dead", "well", "dead"],
-                          "proportion": [1.0, 0.0, 0.9, 0.1]})
+    frame = pd.DataFrame(
+        {
+            "age": [60, 60, 61, 61],
+            "state": ["well", "dead", "well", "dead"],
+            "proportion": [1.0, 0.0, 0.9, 0.1],
+        }
+    )
     spec = charts.make_trace_chart(frame, state_order=["well", "dead"]).to_dict()
     assert spec["mark"]["type"] == "area"
     assert spec["encoding"]["y"]["stack"] == "zero"
@@ -107,12 +120,14 @@ def test_trace_chart_stacks_states_in_the_given_order():
 
 
 def test_convergence_chart_uses_a_log_scale_drops_zeros_and_marks_policy_stability():
-    frame = pd.DataFrame({
-        "sweep": [1, 2, 3, 1, 2, 3],
-        "quantity": ["residual"] * 3 + ["error bound"] * 3,
-        "amount": [1.0, 0.1, 0.0, 19.0, 1.9, 0.0],
-        "policy_stable_from": [2] * 6,
-    })
+    frame = pd.DataFrame(
+        {
+            "sweep": [1, 2, 3, 1, 2, 3],
+            "quantity": ["residual"] * 3 + ["error bound"] * 3,
+            "amount": [1.0, 0.1, 0.0, 19.0, 1.9, 0.0],
+            "policy_stable_from": [2] * 6,
+        }
+    )
     spec = charts.make_convergence_chart(frame).to_dict()
     lines, rule, _label = spec["layer"]
     assert lines["encoding"]["y"]["scale"]["type"] == "log"
@@ -125,9 +140,13 @@ def test_convergence_chart_uses_a_log_scale_drops_zeros_and_marks_policy_stabili
 
 def test_convergence_chart_drops_points_on_long_runs_so_dashes_stay_visible():
     def frame(n: int) -> pd.DataFrame:
-        return pd.DataFrame({"sweep": [*range(1, n + 1)] * 2,
-                             "quantity": ["residual"] * n + ["error bound"] * n,
-                             "amount": [1.0] * (2 * n)})
+        return pd.DataFrame(
+            {
+                "sweep": [*range(1, n + 1)] * 2,
+                "quantity": ["residual"] * n + ["error bound"] * n,
+                "amount": [1.0] * (2 * n),
+            }
+        )
 
     few = charts.make_convergence_chart(frame(charts.MAX_SWEEPS_WITH_POINTS)).to_dict()
     many = charts.make_convergence_chart(frame(charts.MAX_SWEEPS_WITH_POINTS + 1)).to_dict()

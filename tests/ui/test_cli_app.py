@@ -55,7 +55,7 @@ def test_app_defaults_to_the_demo_model_and_prints_the_caution(monkeypatch):
     monkeypatch.setattr(subprocess, "Popen", _FakeServer(calls))
     result = runner.invoke(root, ["app", "--port", "9123", "--headless"])
     assert result.exit_code == 0, result.output
-    (cmd, env), = calls
+    ((cmd, env),) = calls
     assert env[MODEL_ENV] == str(demo_model_path().resolve())
     assert "--server.port=9123" in cmd
     assert CAUTION_SHORT in result.stderr
@@ -97,7 +97,7 @@ def test_open_browser_mode_keeps_the_server_headless_and_opens_the_page(monkeypa
     monkeypatch.setattr(app_module, "open_browser_when_ready", opened.append)
     result = runner.invoke(root, ["app", "--port", "9124", "--open-browser"])
     assert result.exit_code == 0, result.output
-    (cmd, _env), = calls
+    ((cmd, _env),) = calls
     assert "--server.headless=true" in cmd
     assert opened == ["http://127.0.0.1:9124"]
 

@@ -49,8 +49,17 @@ def test_clearing_a_matrix_cell_removes_that_transition():
 
 @pytest.mark.parametrize(
     ("text", "expected"),
-    [("0.25", 0.25), (" 1e-3 ", 0.001), ("p_progress * 2", "p_progress * 2"), ("rest", "rest"),
-     ("", None), ("   ", None), (None, None), (float("nan"), None), (3, 3.0)],
+    [
+        ("0.25", 0.25),
+        (" 1e-3 ", 0.001),
+        ("p_progress * 2", "p_progress * 2"),
+        ("rest", "rest"),
+        ("", None),
+        ("   ", None),
+        (None, None),
+        (float("nan"), None),
+        (3, 3.0),
+    ],
 )
 def test_cell_expression(text, expected):
     assert tables.cell_expression(text) == expected
@@ -118,8 +127,10 @@ def test_header_comments_survive_a_rewrite_from_tables():
     assert tables.with_header_comments("format = 1\n", "x\n") == "x\n"
 
 
-@given(value=st.floats(min_value=-1e12, max_value=1e12, allow_nan=False),
-       cost=st.one_of(st.floats(min_value=0, max_value=1e9), st.sampled_from(["c_x * 2", "rest"])))
+@given(
+    value=st.floats(min_value=-1e12, max_value=1e12, allow_nan=False),
+    cost=st.one_of(st.floats(min_value=0, max_value=1e9), st.sampled_from(["c_x * 2", "rest"])),
+)
 def test_a_table_edit_is_written_to_the_file_and_read_back(value, cost):
     # Invariant: whatever a table holds reaches the model file unchanged (valid or not).
     model = loads_model(TEMPLATES["treat-or-wait"], file="t")
@@ -128,8 +139,9 @@ def test_a_table_edit_is_written_to_the_file_and_read_back(value, cost):
     params.loc[0, "value"] = value
     states = frames["states"].copy()
     states.loc[1, "cost"] = tables.expression_cell(cost)
-    edited = tables.model_with_table(tables.model_with_table(model, "parameters", params),
-                                     "states", states)
+    edited = tables.model_with_table(
+        tables.model_with_table(model, "parameters", params), "states", states
+    )
     back = loads_model(dumps_model(edited), file="t", validate=False)
     assert back.parameters["p_progress"].value == value
     assert back.states[1].cost == cost
@@ -158,8 +170,12 @@ def test_locate_names_the_row_and_column_of_a_problem(name, where, expected):
 def test_problems_under_a_table_do_not_leak_to_a_table_with_a_longer_name():
     from caredecide.errors import Problem
 
-    problems = (Problem("transitions.wait.a.b", "x"), Problem("transitions.waitlist.a.b", "y"),
-                Problem("states[2].id", "z"), Problem("", "general"))
+    problems = (
+        Problem("transitions.wait.a.b", "x"),
+        Problem("transitions.waitlist.a.b", "y"),
+        Problem("states[2].id", "z"),
+        Problem("", "general"),
+    )
     assert [p.message for p in common.problems_under(problems, "transitions.wait")] == ["x"]
     assert [p.message for p in common.problems_under(problems, "states")] == ["z"]
     assert len(common.problems_under(problems, "")) == 4

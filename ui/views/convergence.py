@@ -35,8 +35,13 @@ if finite:
         "approximated. Open the *infinite-horizon* template to watch value iteration converge."
     )
 else:
-    method = st.radio("Method", list(INFINITE_METHODS), format_func=INFINITE_METHODS.get,
-                      horizontal=True, key="convergence_method")
+    method = st.radio(
+        "Method",
+        list(INFINITE_METHODS),
+        format_func=INFINITE_METHODS.get,
+        horizontal=True,
+        key="convergence_method",
+    )
     st.markdown(
         "Infinite horizon: each sweep applies the Bellman update. Stopping rule: when the "
         "residual falls below eps (1 - gamma) / (2 gamma) the greedy policy is eps-optimal "
@@ -47,9 +52,14 @@ else:
 try:
     with st.spinner("Solving and recording every sweep..."):
         solved = common.solve_model(
-            common.working_text(), common.file_label(), common.base_folder(),
-            settings.objective, float(settings.willingness_to_pay), method=method,
-            record_history=True, max_iterations=MAX_SWEEPS,
+            common.working_text(),
+            common.file_label(),
+            common.base_folder(),
+            settings.objective,
+            float(settings.willingness_to_pay),
+            method=method,
+            record_history=True,
+            max_iterations=MAX_SWEEPS,
         )
 except CaredecideError as error:
     st.error(str(error), icon=":material/error:")
@@ -73,14 +83,21 @@ stable_from = int(sweeps[np.flatnonzero(changed)[-1] + 1]) if changed.any() else
 
 st.metric("Sweeps", len(history))
 st.caption(f"{result.message}. The policy no longer changes from sweep {stable_from} on.")
-long = pd.concat([
-    pd.DataFrame({"sweep": sweeps, "quantity": "residual", "amount": residual}),
-    pd.DataFrame({"sweep": sweeps, "quantity": "error bound", "amount": bound}),
-]).assign(policy_stable_from=stable_from)
+long = pd.concat(
+    [
+        pd.DataFrame({"sweep": sweeps, "quantity": "residual", "amount": residual}),
+        pd.DataFrame({"sweep": sweeps, "quantity": "error bound", "amount": bound}),
+    ]
+).assign(policy_stable_from=stable_from)
 st.altair_chart(charts.make_convergence_chart(long), key="convergence_chart")
 
-k = st.slider("Show the state after sweep", min_value=1, max_value=len(history),
-              value=len(history), key="convergence_sweep")
+k = st.slider(
+    "Show the state after sweep",
+    min_value=1,
+    max_value=len(history),
+    value=len(history),
+    key="convergence_sweep",
+)
 record = history[k - 1]
 labels = {a.id: a.label or a.id for a in model.actions}
 where = f" (computes cycle {record.cycle})" if record.cycle is not None else ""
@@ -96,9 +113,11 @@ st.altair_chart(
     charts.make_value_chart(values[values["state"].isin(alive)], state_order=alive, unit=unit),
     key="sweep_value_chart",
 )
-chosen = pd.DataFrame({
-    "state": [s for s, d in zip(state_ids, decision, strict=True) if d],
-    "action": [labels[result.action_ids[a]] for a in record.policy[0][decision]],
-    "value": record.value[0][decision],
-})
+chosen = pd.DataFrame(
+    {
+        "state": [s for s, d in zip(state_ids, decision, strict=True) if d],
+        "action": [labels[result.action_ids[a]] for a in record.policy[0][decision]],
+        "value": record.value[0][decision],
+    }
+)
 st.dataframe(chosen, hide_index=True, key="sweep_policy_table")

@@ -78,13 +78,17 @@ def _open_panel() -> None:
     with st.expander("Open another model", expanded=False):
         bundled, upload, template, recovered = st.columns(4)
         with bundled:
-            st.selectbox("Bundled synthetic model", list(_bundled_models()),
-                         key="open_bundled_choice")
+            st.selectbox(
+                "Bundled synthetic model", list(_bundled_models()), key="open_bundled_choice"
+            )
             st.button("Open", key="open_bundled_button", on_click=_open_bundled)
         with upload:
             st.file_uploader(
-                "Upload a model file (TOML, at most 1 MB)", type=["toml"],
-                key="open_upload_file", on_change=_open_upload, max_upload_size=1,
+                "Upload a model file (TOML, at most 1 MB)",
+                type=["toml"],
+                key="open_upload_file",
+                on_change=_open_upload,
+                max_upload_size=1,
             )
             if error := st.session_state.get("cd_upload_error"):
                 st.error(error)
@@ -95,8 +99,12 @@ def _open_panel() -> None:
             others = [d for d in drafts.list_drafts() if d.source != common.working_source()]
             labels = {d.source: f"{common.source_label(d.source)} ({d.saved_at})" for d in others}
             if labels:
-                st.selectbox("Recovered drafts", list(labels), format_func=labels.get,
-                             key="open_draft_choice")
+                st.selectbox(
+                    "Recovered drafts",
+                    list(labels),
+                    format_func=labels.get,
+                    key="open_draft_choice",
+                )
                 st.button("Open draft", key="open_draft_button", on_click=_open_draft)
             else:
                 st.caption("No other autosaved drafts.")
@@ -114,7 +122,8 @@ COLUMN_CONFIG = {
     "parameters": {
         "kind": st.column_config.SelectboxColumn(options=list(PARAMETER_KINDS)),
         "distribution": st.column_config.TextColumn(
-            help='An inline table, e.g. { type = "beta", mean = 0.1, se = 0.02 }'),
+            help='An inline table, e.g. { type = "beta", mean = 0.1, se = 0.02 }'
+        ),
         "source": st.column_config.TextColumn(help="Where the estimate comes from (required)"),
     },
 }
@@ -132,12 +141,16 @@ def _table_editor(model, name: str, frame, problems) -> None:
     key = common.widget_key(f"table_{name}")
     dynamic = name in ("states", "actions", "parameters")
     edited = st.data_editor(
-        frame, key=key, num_rows="dynamic" if dynamic else "fixed",
+        frame,
+        key=key,
+        num_rows="dynamic" if dynamic else "fixed",
         hide_index=not name.startswith(("transitions.", "rates.")),
-        column_config=COLUMN_CONFIG.get(name), width="stretch",
+        column_config=COLUMN_CONFIG.get(name),
+        width="stretch",
     )
-    common.show_problems(common.problems_under(problems, name),
-                         locate=lambda where: locate(name, frame, where))
+    common.show_problems(
+        common.problems_under(problems, name), locate=lambda where: locate(name, frame, where)
+    )
     if _edited(key):
         try:
             new_model = model_with_table(model, name, edited)
@@ -164,31 +177,43 @@ if error := st.session_state.pop("cd_startup_error", None):
 if notice := st.session_state.get(common.NOTICE_KEY):
     left, right = st.columns([3, 2])  # room for the whole button label
     left.info(notice, icon=":material/history:")
-    right.button("Discard draft, reopen the original", key="discard_draft_button",
-                 on_click=_discard_draft)
+    right.button(
+        "Discard draft, reopen the original", key="discard_draft_button", on_click=_discard_draft
+    )
 if error := st.session_state.get("cd_autosave_error"):
     st.error(f"Autosave failed: {error}")
 
 _open_panel()
 text = common.working_text()
 st.download_button(
-    "Download the model file", data=text.encode("utf-8"), key="download_model",
+    "Download the model file",
+    data=text.encode("utf-8"),
+    key="download_model",
     file_name=Path(common.source_label(common.working_source()).split(" ")[0]).stem + ".toml",
     mime="application/toml",
 )
 checked = common.current_check()
 problems = checked.problems
-TAB_OF_TABLE = {"settings": "Settings", "states": "States", "actions": "Actions",
-                "parameters": "Parameters", "transitions": "Transitions", "rates": "Transitions"}
+TAB_OF_TABLE = {
+    "settings": "Settings",
+    "states": "States",
+    "actions": "Actions",
+    "parameters": "Parameters",
+    "transitions": "Transitions",
+    "rates": "Transitions",
+}
 if problems:
     # Name the tabs to open: a user on another tab would not see the errors beside a table.
-    tabs_with = Counter(TAB_OF_TABLE.get(p.where.split(".")[0].split("[")[0],
-                                          "general, listed below")
-                        for p in problems)
+    tabs_with = Counter(
+        TAB_OF_TABLE.get(p.where.split(".")[0].split("[")[0], "general, listed below")
+        for p in problems
+    )
     where = ", ".join(f"{tab} ({count})" for tab, count in tabs_with.items())
-    st.error(f"{len(problems)} problem(s) in {common.file_label()}, in the tab(s): {where}. Each "
-             "is shown beside its table. Your edits are kept and autosaved.",
-             icon=":material/error:")
+    st.error(
+        f"{len(problems)} problem(s) in {common.file_label()}, in the tab(s): {where}. Each "
+        "is shown beside its table. Your edits are kept and autosaved.",
+        icon=":material/error:",
+    )
 else:
     st.success(f"{common.file_label()} is valid (autosaved).", icon=":material/check_circle:")
 TABLE_PREFIXES = ("settings", "states", "actions", "parameters", "transitions", "rates")
@@ -201,8 +226,10 @@ tabs = st.tabs(["Settings", "States", "Actions", "Parameters", "Transitions", "M
 if readable.model is None:
     for tab in tabs[:5]:
         with tab:
-            st.warning("The model file text cannot be read into tables; fix the problems in "
-                       "the Model file tab.")
+            st.warning(
+                "The model file text cannot be read into tables; fix the problems in "
+                "the Model file tab."
+            )
             common.show_problems(list(readable.problems))
 else:
     model = readable.model
@@ -210,14 +237,21 @@ else:
         with tab:
             _table_editor(model, name, tables[name], problems)
     with tabs[4]:
-        st.caption("Rows: from-state; columns: to-state. A cell holds a probability per cycle "
-                   "(transitions) or a rate per year (rates): a number, an expression, or "
-                   "'rest' for the remainder. Empty = no transition.")
+        st.caption(
+            "Rows: from-state; columns: to-state. A cell holds a probability per cycle "
+            "(transitions) or a rate per year (rates): a number, an expression, or "
+            "'rest' for the remainder. Empty = no transition."
+        )
         for name in matrices:
             st.subheader(name)
             _table_editor(model, name, tables[name], problems)
         # Rows of an action that is not in the model: no matrix shows them.
-        common.show_problems([p for p in common.problems_under(problems, "transitions", "rates")
-                              if not common.problems_under((p,), *matrices)])
+        common.show_problems(
+            [
+                p
+                for p in common.problems_under(problems, "transitions", "rates")
+                if not common.problems_under((p,), *matrices)
+            ]
+        )
 with tabs[5]:
     _text_editor(problems)

@@ -17,21 +17,32 @@ st.title("Policy")
 
 left, right, _ = st.columns([1, 1, 2])
 kind = left.selectbox(
-    "Objective", list(OBJECTIVES), index=list(OBJECTIVES).index(settings.objective),
-    format_func=OBJECTIVE_NAMES.get, key="policy_objective",
+    "Objective",
+    list(OBJECTIVES),
+    index=list(OBJECTIVES).index(settings.objective),
+    format_func=OBJECTIVE_NAMES.get,
+    key="policy_objective",
 )
 willingness_to_pay = float(settings.willingness_to_pay)
 if kind == "net_benefit":
     willingness_to_pay = right.number_input(
-        f"Willingness to pay ({settings.currency or 'money'} per QALY)", min_value=0.0,
-        value=willingness_to_pay, step=1000.0, key="policy_wtp",
+        f"Willingness to pay ({settings.currency or 'money'} per QALY)",
+        min_value=0.0,
+        value=willingness_to_pay,
+        step=1000.0,
+        key="policy_wtp",
     )
 
 try:
     with st.spinner("Solving the model..."):
-        solved = common.solve_model(common.working_text(), common.file_label(),
-                                    common.base_folder(), kind, float(willingness_to_pay),
-                                    _model=model)
+        solved = common.solve_model(
+            common.working_text(),
+            common.file_label(),
+            common.base_folder(),
+            kind,
+            float(willingness_to_pay),
+            _model=model,
+        )
 except CaredecideError as error:
     st.error(str(error), icon=":material/error:")
     st.stop()
@@ -47,19 +58,29 @@ cols = st.columns(4)
 cols[0].metric("Life-years", f"{totals['life_years']:,.4f}")
 cols[1].metric("QALYs", f"{totals['qalys']:,.4f}")
 cols[2].metric(f"Costs ({settings.currency or 'money'})", f"{totals['costs']:,.2f}")
-cols[3].metric(f"Net monetary benefit at {willingness_to_pay:,.0f}",
-               f"{totals['net_monetary_benefit']:,.2f}")
+cols[3].metric(
+    f"Net monetary benefit at {willingness_to_pay:,.0f}", f"{totals['net_monetary_benefit']:,.2f}"
+)
 
 # -- structure ---------------------------------------------------------------------------
 st.subheader("What the policy says")
-structure = common.policy_structure(common.working_text(), common.file_label(),
-                                    common.base_folder(), kind, float(willingness_to_pay))
+structure = common.policy_structure(
+    common.working_text(),
+    common.file_label(),
+    common.base_folder(),
+    kind,
+    float(willingness_to_pay),
+)
 st.markdown(structure.text)
 labels = {a.id: a.label or a.id for a in model.actions}
-st.markdown("\n".join(
-    f"- **{labels.get(action, action)}**: " + "; ".join(f"{state} ({age})" for state, age in bands)
-    for action, bands in structure.bands.items() if bands
-))
+st.markdown(
+    "\n".join(
+        f"- **{labels.get(action, action)}**: "
+        + "; ".join(f"{state} ({age})" for state, age in bands)
+        for action, bands in structure.bands.items()
+        if bands
+    )
+)
 
 # -- heat maps ---------------------------------------------------------------------------
 state_labels = {s.id: s.label or s.id for s in model.states}
@@ -72,11 +93,13 @@ else:
 choices = frame[frame["state"].isin(decision_ids)]
 # Write the action where a run of equal choices starts in a row (cells are narrow).
 starts = choices["action"] != choices.groupby("state")["action"].shift()
-choices = choices.assign(label=choices["action"].where(starts, ""),
-                         action=choices["action"].map(labels))
+choices = choices.assign(
+    label=choices["action"].where(starts, ""), action=choices["action"].map(labels)
+)
 st.altair_chart(
-    charts.make_policy_chart(choices, action_order=[labels[a] for a in result.action_ids],
-                             state_order=decision_ids),
+    charts.make_policy_chart(
+        choices, action_order=[labels[a] for a in result.action_ids], state_order=decision_ids
+    ),
     key="policy_chart",
 )
 legend = "; ".join(f"{a} = {labels[a]}" for a in result.action_ids)
@@ -84,20 +107,26 @@ st.caption(f"The action is written where a run of equal choices starts ({legend}
 
 st.subheader("Where the choice is close")
 threshold = st.number_input(
-    f"Call a choice close when the action gap is below ({unit})", min_value=0.0,
-    value=0.01 if kind == "qalys" else 100.0, key="policy_close_threshold",
+    f"Call a choice close when the action gap is below ({unit})",
+    min_value=0.0,
+    value=0.01 if kind == "qalys" else 100.0,
+    key="policy_close_threshold",
 )
 gaps = choices.assign(close=choices["indifferent"] | (choices["action_gap"] <= threshold))
-st.altair_chart(charts.make_action_gap_chart(gaps, state_order=decision_ids, unit=unit),
-                key="gap_chart")
-st.caption("Action gap: how much the best action beats the runner-up for one person in that "
-           "state at that age, in present value at the model start (discounted), so gaps at "
-           "older ages look smaller. The ten closest choices:")
+st.altair_chart(
+    charts.make_action_gap_chart(gaps, state_order=decision_ids, unit=unit), key="gap_chart"
+)
+st.caption(
+    "Action gap: how much the best action beats the runner-up for one person in that "
+    "state at that age, in present value at the model start (discounted), so gaps at "
+    "older ages look smaller. The ten closest choices:"
+)
 closest = gaps.nsmallest(10, "action_gap")[
     ["age", "state", "action", "next_best_action", "action_gap", "indifferent"]
 ]
 closest = closest.assign(  # labels, as in the "action" column ("" where there is no choice)
-    next_best_action=closest["next_best_action"].map(lambda a: labels.get(a, a)))
+    next_best_action=closest["next_best_action"].map(lambda a: labels.get(a, a))
+)
 st.dataframe(closest, hide_index=True, key="closest_table")
 
 # -- values and trace --------------------------------------------------------------------
@@ -118,13 +147,18 @@ st.altair_chart(
     charts.make_value_chart(values[values["state"].isin(alive)], state_order=alive, unit=unit),
     key="value_chart",
 )
-st.caption(f"Expected discounted {OBJECTIVE_NAMES[kind].lower()} from that state and age on, "
-           f"{value_note}.")
+st.caption(
+    f"Expected discounted {OBJECTIVE_NAMES[kind].lower()} from that state and age on, {value_note}."
+)
 
 st.subheader("Cohort trace")
-st.altair_chart(charts.make_trace_chart(solved.trace, state_order=list(result.state_ids)),
-                key="trace_chart")
+st.altair_chart(
+    charts.make_trace_chart(solved.trace, state_order=list(result.state_ids)), key="trace_chart"
+)
 with st.expander("Tables"):
-    st.dataframe(frame.assign(state_label=frame["state"].map(state_labels)), hide_index=True,
-                 key="policy_table")
+    st.dataframe(
+        frame.assign(state_label=frame["state"].map(state_labels)),
+        hide_index=True,
+        key="policy_table",
+    )
     st.dataframe(solved.totals, hide_index=True, key="totals_table")

@@ -12,23 +12,54 @@ from caredecide.modelfile import loads_model
 from caredecide.strategies import MAX_TABLE_BYTES, read_strategy_table, sibling_table
 from ui import charts, common
 
-TABLE_COLUMNS = ["strategy", "kind", "cost", "qalys", "life_years", "incremental_cost",
-                 "incremental_qalys", "icer", "net_monetary_benefit", "status", "best_at_wtp",
-                 "notes"]
-FRONTIER_COLUMNS = ["policy", "strategy", "wtp_from", "wtp_to", "cost", "qalys", "found_by",
-                    "structure"]
+TABLE_COLUMNS = [
+    "strategy",
+    "kind",
+    "cost",
+    "qalys",
+    "life_years",
+    "incremental_cost",
+    "incremental_qalys",
+    "icer",
+    "net_monetary_benefit",
+    "status",
+    "best_at_wtp",
+    "notes",
+]
+FRONTIER_COLUMNS = [
+    "policy",
+    "strategy",
+    "wtp_from",
+    "wtp_to",
+    "cost",
+    "qalys",
+    "found_by",
+    "structure",
+]
 
 
 @st.cache_data(max_entries=16, show_spinner=False)
-def run_comparison(text: str, file: str, base_dir: str, tables: tuple[tuple[str, str], ...],
-                   wtp: float, low: float, high: float):
+def run_comparison(
+    text: str,
+    file: str,
+    base_dir: str,
+    tables: tuple[tuple[str, str], ...],
+    wtp: float,
+    low: float,
+    high: float,
+):
     """Compare strategies (cached on the model text, the tables' text and the WTP figures)."""
     model = loads_model(text, file=file, base_dir=base_dir)
     strategies = [s for name, content in tables for s in read_strategy_table(name, text=content)]
-    result = compare_strategies(model, strategies, wtp, (low, high) if high > low else None,
-                                builtins=True)
-    return result.table, result.frontier, result.notes, [
-        (r.strategy.name, note) for r in result.resolved for note in r.notes]
+    result = compare_strategies(
+        model, strategies, wtp, (low, high) if high > low else None, builtins=True
+    )
+    return (
+        result.table,
+        result.frontier,
+        result.notes,
+        [(r.strategy.name, note) for r in result.resolved for note in r.notes],
+    )
 
 
 model = common.valid_model_or_stop()
@@ -43,16 +74,28 @@ st.caption(
 )
 
 left, middle, right = st.columns(3)
-wtp = left.number_input(f"Willingness to pay ({currency} per QALY)", min_value=0.0,
-                        value=float(settings.willingness_to_pay), step=1000.0,
-                        key="strategies_wtp")
-low = middle.number_input("Frontier from (WTP)", min_value=0.0, value=0.0, step=1000.0,
-                          key="strategies_low")
-high = right.number_input("Frontier to (WTP; equal to 'from' = no frontier)", min_value=0.0,
-                          value=2.0 * float(settings.willingness_to_pay or 10000.0),
-                          step=1000.0, key="strategies_high")
-upload = st.file_uploader("Strategy table (CSV: strategy, state, age_from, age_to, action)",
-                          type=["csv"], key="strategies_upload")
+wtp = left.number_input(
+    f"Willingness to pay ({currency} per QALY)",
+    min_value=0.0,
+    value=float(settings.willingness_to_pay),
+    step=1000.0,
+    key="strategies_wtp",
+)
+low = middle.number_input(
+    "Frontier from (WTP)", min_value=0.0, value=0.0, step=1000.0, key="strategies_low"
+)
+high = right.number_input(
+    "Frontier to (WTP; equal to 'from' = no frontier)",
+    min_value=0.0,
+    value=2.0 * float(settings.willingness_to_pay or 10000.0),
+    step=1000.0,
+    key="strategies_high",
+)
+upload = st.file_uploader(
+    "Strategy table (CSV: strategy, state, age_from, age_to, action)",
+    type=["csv"],
+    key="strategies_upload",
+)
 
 tables: list[tuple[str, str]] = []
 source = common.working_source()
@@ -63,46 +106,68 @@ if beside is not None and beside.stat().st_size <= MAX_TABLE_BYTES:
 if upload is not None:
     data = upload.getvalue()
     if len(data) > MAX_TABLE_BYTES:
-        st.error(f"{upload.name}: {len(data)} bytes; expected at most {MAX_TABLE_BYTES} bytes "
-                 "for a strategy table", icon=":material/error:")
+        st.error(
+            f"{upload.name}: {len(data)} bytes; expected at most {MAX_TABLE_BYTES} bytes "
+            "for a strategy table",
+            icon=":material/error:",
+        )
         st.stop()
     try:
         tables.append((upload.name, data.decode("utf-8-sig")))
     except UnicodeDecodeError as error:  # the same words as a file read from disk
-        st.error(f"{upload.name}: not UTF-8 text ({error.reason} at byte {error.start}); "
-                 "expected a CSV file", icon=":material/error:")
+        st.error(
+            f"{upload.name}: not UTF-8 text ({error.reason} at byte {error.start}); "
+            "expected a CSV file",
+            icon=":material/error:",
+        )
         st.stop()
 
 if high < low:
-    st.error(f"Frontier range ({low:,.0f}, {high:,.0f}): 'to' must be above 'from'",
-             icon=":material/error:")
+    st.error(
+        f"Frontier range ({low:,.0f}, {high:,.0f}): 'to' must be above 'from'",
+        icon=":material/error:",
+    )
     st.stop()
 try:
     with st.spinner("Solving and evaluating every strategy..."):
         table, frontier, notes, fallbacks = run_comparison(
-            common.working_text(), common.file_label(), common.base_folder(), tuple(tables),
-            float(wtp), float(low), float(high))
+            common.working_text(),
+            common.file_label(),
+            common.base_folder(),
+            tuple(tables),
+            float(wtp),
+            float(low),
+            float(high),
+        )
 except CaredecideError as error:
     st.error(str(error), icon=":material/error:")
     st.stop()
 
 best = table.loc[table["best_at_wtp"], "strategy"].iloc[0]
 st.subheader(f"Best at {wtp:,.0f} {currency} per QALY: {best}")
-st.altair_chart(charts.make_ce_plane_chart(table, currency=f"({currency})"),
-                key="strategies_ce_plane")
+st.altair_chart(
+    charts.make_ce_plane_chart(table, currency=f"({currency})"), key="strategies_ce_plane"
+)
 st.dataframe(table[TABLE_COLUMNS], hide_index=True, key="strategies_table")
 for note in notes:
     st.info(note, icon=":material/info:")
 if fallbacks:
     with st.expander(f"Fallbacks made ({len(fallbacks)})"):
-        st.dataframe(pd.DataFrame(fallbacks, columns=["strategy", "note"]), hide_index=True,
-                     key="strategies_fallbacks")
+        st.dataframe(
+            pd.DataFrame(fallbacks, columns=["strategy", "note"]),
+            hide_index=True,
+            key="strategies_fallbacks",
+        )
 
 if frontier is not None:
     st.subheader("Optimal policy over the willingness-to-pay range")
-    st.caption("Each policy is optimal on one interval; switch points are where neighbouring "
-               "policies have equal net monetary benefit (found by root-finding, not only on "
-               "a grid).")
-    st.altair_chart(charts.make_frontier_chart(frontier, currency=f"({currency})"),
-                    key="strategies_frontier_chart")
+    st.caption(
+        "Each policy is optimal on one interval; switch points are where neighbouring "
+        "policies have equal net monetary benefit (found by root-finding, not only on "
+        "a grid)."
+    )
+    st.altair_chart(
+        charts.make_frontier_chart(frontier, currency=f"({currency})"),
+        key="strategies_frontier_chart",
+    )
     st.dataframe(frontier[FRONTIER_COLUMNS], hide_index=True, key="strategies_frontier")

@@ -16,8 +16,9 @@ MAX_APP_DRAWS = 20_000
 
 
 @st.cache_data(max_entries=8, show_spinner=False)
-def run_analysis(text: str, file: str, base_dir: str, draws: int, seed: int,
-                 table: tuple[str, str] | None = None):
+def run_analysis(
+    text: str, file: str, base_dir: str, draws: int, seed: int, table: tuple[str, str] | None = None
+):
     """PSA of the working model; ``table`` (file name, CSV text) adds its strategies."""
     model = loads_model(text, file=file, base_dir=base_dir)
     strategies = read_strategy_table(table[0], text=table[1]) if table else []
@@ -35,8 +36,9 @@ st.caption(
     "today are valued on every draw. The same seed gives the same draws."
 )
 left, right = st.columns(2)
-draws = left.number_input("Draws", min_value=10, max_value=MAX_APP_DRAWS, value=300, step=100,
-                          key="uncertainty_draws")
+draws = left.number_input(
+    "Draws", min_value=10, max_value=MAX_APP_DRAWS, value=300, step=100, key="uncertainty_draws"
+)
 seed = right.number_input("Seed", min_value=0, value=1, step=1, key="uncertainty_seed")
 
 # The strategy table beside the model joins the candidates, as in the CLI and the report.
@@ -56,8 +58,11 @@ except CaredecideError as error:
 
 info = result.evpi()
 first, second, third = st.columns(3)
-first.metric(f"EVPI of the timing decision ({unit} per person)", f"{info['evpi']:,.2f}",
-             help="An upper bound: the best policy is sought among the candidates only.")
+first.metric(
+    f"EVPI of the timing decision ({unit} per person)",
+    f"{info['evpi']:,.2f}",
+    help="An upper bound: the best policy is sought among the candidates only.",
+)
 second.metric("Monte Carlo standard error", f"{info['mc_se']:,.2f}")
 third.metric("Best candidate policy", info["best_candidate"])
 if not result.success:
@@ -65,12 +70,13 @@ if not result.success:
 
 st.subheader("How often each action is optimal")
 actions = list(result.action_ids)
-shown = st.selectbox("Action", actions, index=min(1, len(actions) - 1),
-                     key="uncertainty_action")
+shown = st.selectbox("Action", actions, index=min(1, len(actions) - 1), key="uncertainty_action")
 band = st.slider("Age band (years)", 1, 20, 5, key="uncertainty_band")
 bands = result.acceptability_by_age_band(float(band))
-st.altair_chart(charts.make_policy_acceptability_chart(bands, action=shown),
-                key="uncertainty_acceptability_chart")
+st.altair_chart(
+    charts.make_policy_acceptability_chart(bands, action=shown),
+    key="uncertainty_acceptability_chart",
+)
 with st.expander("Shares per cycle with Monte Carlo errors"):
     st.dataframe(result.acceptability(), hide_index=True, key="uncertainty_acceptability_table")
 
@@ -79,9 +85,11 @@ st.dataframe(result.expected_loss(), hide_index=True, key="uncertainty_loss_tabl
 
 st.subheader("Acceptability curves")
 st.altair_chart(
-    charts.make_acceptability_curves_chart(result.acceptability_curves(),
-                                           result.acceptability_frontier(),
-                                           currency=settings.currency or ""),
+    charts.make_acceptability_curves_chart(
+        result.acceptability_curves(),
+        result.acceptability_frontier(),
+        currency=settings.currency or "",
+    ),
     key="uncertainty_curves_chart",
 )
 
@@ -94,5 +102,6 @@ else:
     st.info("EVPPI needs at least 200 draws and two distinct candidate policies.")
 
 st.subheader("Convergence")
-st.altair_chart(charts.make_psa_convergence_chart(result.convergence()),
-                key="uncertainty_convergence")
+st.altair_chart(
+    charts.make_psa_convergence_chart(result.convergence()), key="uncertainty_convergence"
+)
