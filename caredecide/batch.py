@@ -14,8 +14,9 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from caredecide.compile import compile_model, default_memory_limit, estimate_compiled_bytes
+from caredecide.compile import compile_model, estimate_compiled_bytes
 from caredecide.evaluate import DISPLAY_CAP, PolicyOutcome, evaluate_policy
+from caredecide.limits import default_memory_limit
 from caredecide.objective import Objective
 from caredecide.solvers import PolicyResult, SolverError, solve
 

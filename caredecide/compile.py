@@ -16,7 +16,6 @@ made here, on every draw and cycle, so a bad draw is reported by its index.
 
 from __future__ import annotations
 
-import os
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 
@@ -24,15 +23,13 @@ import numpy as np
 
 from caredecide.compiled import CompiledModel
 from caredecide.errors import ModelError, ModelTooLargeError, Problem
+from caredecide.limits import default_memory_limit
 from caredecide.model import Model
 
 TIME_NAMES = frozenset({"age", "cycle", "years", "background"})
 """Expression variables that change from cycle to cycle."""
 ROW_TOLERANCE = 1e-9
 """A transition row must sum to 1 within this (absolute) tolerance."""
-DEFAULT_MEMORY_FRACTION = 0.5
-"""Without an explicit limit, refuse arrays larger than this share of available memory."""
-FALLBACK_MEMORY_LIMIT = 4 * 1024**3
 MAX_PROBLEMS_PER_RULE = 20
 _RATE_ROWS = {"deduplicate": True, "method": "pade"}
 """How rate rows are exponentiated (see :func:`_fill_rate_rows`); the benchmarks switch to
@@ -263,15 +260,6 @@ def estimate_compiled_bytes(model: Model, n_draws: int) -> int:
     return _array_bytes(
         n_draws, _time_lengths(model, parsed), len(model.states), len(model.actions)
     )
-
-
-def default_memory_limit() -> int:
-    """Half of the currently available physical memory (4 GiB when unknown)."""
-    try:
-        available = os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
-    except (ValueError, OSError, AttributeError):
-        return FALLBACK_MEMORY_LIMIT
-    return int(available * DEFAULT_MEMORY_FRACTION)
 
 
 # -- compile ---------------------------------------------------------------------------

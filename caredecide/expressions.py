@@ -52,6 +52,7 @@ from typing import NamedTuple
 import numpy as np
 
 from caredecide.errors import ExpressionError, ModelError
+from caredecide.limits import MAX_EXPRESSION_DEPTH, MAX_EXPRESSION_LENGTH
 
 __all__ = [
     "FUNCTIONS",
@@ -73,11 +74,9 @@ RESERVED_NAMES = frozenset({"age", "cycle", "years", "cycle_years", "background"
 index, years since model start, cycle length (years) and background mortality
 probability per cycle at that age."""
 
-MAX_LENGTH = 2000
-"""Longest expression text accepted, in characters."""
+MAX_LENGTH = MAX_EXPRESSION_LENGTH
 
-MAX_DEPTH = 50
-"""Deepest nesting accepted (parentheses, function calls, unary signs and powers)."""
+MAX_DEPTH = MAX_EXPRESSION_DEPTH
 
 
 # --- functions -------------------------------------------------------------------------

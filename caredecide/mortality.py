@@ -20,9 +20,7 @@ from pathlib import Path
 import numpy as np
 
 from caredecide.errors import ModelError, Problem
-
-MAX_LIFE_TABLE_BYTES = 1_000_000
-"""Life tables are small; refuse anything larger (uploaded files are data with limits)."""
+from caredecide.limits import MAX_LIFE_TABLE_BYTES
 
 
 def gompertz_makeham_q(

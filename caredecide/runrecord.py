@@ -21,10 +21,10 @@ from pathlib import Path
 
 from caredecide.cautions import CAUTION_SHORT
 from caredecide.errors import CaredecideError
+from caredecide.limits import MAX_RUN_RECORD_BYTES
 
 RECORD_FORMAT = 1
-MAX_RECORD_BYTES = 1_000_000
-"""Run records are user content: refuse larger files."""
+MAX_RECORD_BYTES = MAX_RUN_RECORD_BYTES
 DEPENDENCIES = ("numpy", "scipy", "pandas", "openpyxl", "altair", "vl-convert-python")
 
 

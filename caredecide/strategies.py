@@ -53,6 +53,7 @@ import pandas as pd
 from caredecide.compiled import CompiledModel
 from caredecide.errors import ModelError, Problem
 from caredecide.evaluate import PolicyOutcome, evaluate_policy
+from caredecide.limits import MAX_STRATEGY_TABLE_BYTES
 from caredecide.objective import Objective
 
 KINDS = ("never", "at_once", "from_state", "from_age", "table", "computed")
@@ -60,8 +61,7 @@ ALL_STATES = "all"
 """``state`` value in a strategy table meaning every non-absorbing state."""
 TABLE_SUFFIX = ".strategies.csv"
 """A strategy table beside ``model.toml`` is named ``model.strategies.csv``."""
-MAX_TABLE_BYTES = 1_000_000
-"""Strategy tables are data: larger files are refused."""
+MAX_TABLE_BYTES = MAX_STRATEGY_TABLE_BYTES
 REQUIRED_COLUMNS = ("state", "action")
 OPTIONAL_COLUMNS = ("strategy", "age_from", "age_to", "note")
 

@@ -16,10 +16,10 @@ import pandas as pd
 import streamlit as st
 
 from caredecide.cautions import CAUTION_LONG, CAUTION_SHORT
-from caredecide.cli.app import MAX_MODEL_BYTES, MODEL_ENV
 from caredecide.compile import compile_model
 from caredecide.errors import CaredecideError, ModelError, Problem
 from caredecide.evaluate import evaluate_policy
+from caredecide.limits import MAX_MODEL_BYTES, MODEL_ENV
 from caredecide.model import Model
 from caredecide.modelfile import loads_model
 from caredecide.objective import Objective

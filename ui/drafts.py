@@ -19,8 +19,7 @@ from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 
-MAX_DRAFT_BYTES = 1_000_000
-"""Largest draft read back (bytes); the same limit as an uploaded model file."""
+from caredecide.limits import MAX_DRAFT_BYTES
 
 _SAFE = re.compile(r"[^A-Za-z0-9_-]+")
 

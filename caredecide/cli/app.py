@@ -16,11 +16,7 @@ from typing import Annotated
 import typer
 
 from caredecide.cli.common import print_caution, stderr
-
-MODEL_ENV = "CAREDECIDE_MODEL"
-"""Environment variable through which the app receives the model file to open."""
-MAX_MODEL_BYTES = 1_000_000
-"""Largest model file the app opens (the same limit as an upload)."""
+from caredecide.limits import MAX_MODEL_BYTES, MODEL_ENV
 
 
 def app_script() -> Path:

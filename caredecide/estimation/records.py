@@ -24,11 +24,11 @@ import numpy as np
 import pandas as pd
 
 from caredecide.errors import ModelError, Problem
+from caredecide.limits import MAX_RECORDS_FILE_BYTES
 
 OBSERVED, DEATH, CENSORED = 0, 1, 2
 DEATH_STATE = "dead"
-MAX_FILE_BYTES = 50_000_000
-"""Largest visits/patients file read (50 MB)."""
+MAX_FILE_BYTES = MAX_RECORDS_FILE_BYTES
 VISIT_COLUMNS = ("patient_id", "years_since_entry", "stage")
 PATIENT_COLUMNS = ("patient_id", "death_years", "censor_years")
 

@@ -67,9 +67,10 @@ from caredecide.batch import (  # noqa: F401  (the one memory estimate, re-expor
     draw_bytes,
     draw_working_bytes,
 )
-from caredecide.compile import compile_model, default_memory_limit
+from caredecide.compile import compile_model
 from caredecide.errors import ModelError, ModelTooLargeError, Problem
 from caredecide.evaluate import evaluate_policy
+from caredecide.limits import CHUNK_MEMORY_BYTES, default_memory_limit
 from caredecide.objective import Objective
 from caredecide.solvers import solve
 from caredecide.uncertainty.acceptability import (
@@ -86,10 +87,7 @@ from caredecide.uncertainty.sampling import (
 )
 from caredecide.uncertainty.voi import evpi, evppi_regression
 
-DEFAULT_MEMORY_LIMIT = 1024**3
-"""Working-memory budget of one chunk when none is given: 1 GiB, or half the available
-memory if that is less. Larger chunks barely run faster (the solver is vectorized over
-draws already) and would leave less room for the kept per-draw results."""
+DEFAULT_MEMORY_LIMIT = CHUNK_MEMORY_BYTES
 DEFAULT_FREQUENT = 3
 """Most frequent per-draw optimal policies (from the pilot) added as candidates."""
 DEFAULT_WTP_POINTS = 41

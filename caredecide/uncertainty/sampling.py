@@ -39,11 +39,10 @@ import scipy.stats
 
 from caredecide.distributions import Distribution, dirichlet_from_counts, distribution_from_spec
 from caredecide.errors import ModelError, Problem
+from caredecide.limits import MAX_DRAWS
 
 BLOCK_SIZE = 1000
 """Draws per block: one SeedSequence child per block (see the module docstring)."""
-MAX_DRAWS = 100_000_000
-"""Largest number of draws accepted (a guard against typos such as an extra zero)."""
 
 __all__ = [
     "BLOCK_SIZE",

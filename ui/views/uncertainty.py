@@ -7,12 +7,11 @@ from __future__ import annotations
 import streamlit as st
 
 from caredecide.errors import CaredecideError
+from caredecide.limits import MAX_APP_DRAWS
 from caredecide.modelfile import loads_model
 from caredecide.strategies import MAX_TABLE_BYTES, read_strategy_table, sibling_table
 from caredecide.uncertainty.psa import run_psa
 from ui import charts, common
-
-MAX_APP_DRAWS = 20_000
 
 
 @st.cache_data(max_entries=8, show_spinner=False)

@@ -1,0 +1,58 @@
+"""Limits and defaults in one place: file sizes, memory budgets, draw counts.
+
+Every front end (CLI, report, app) and every library module takes its size limits and
+memory budgets from here, so a model file accepted by one is accepted by all.
+Sizes are in bytes.
+"""
+
+from __future__ import annotations
+
+import os
+
+MAX_MODEL_BYTES = 2_000_000
+"""Largest model file accepted, from disk or uploaded (a hand-written model is a few KB)."""
+MAX_LIFE_TABLE_BYTES = 1_000_000
+"""Largest life-table CSV a model file may point to."""
+MAX_STRATEGY_TABLE_BYTES = 1_000_000
+"""Largest strategy table (CSV) accepted."""
+MAX_RUN_RECORD_BYTES = 1_000_000
+"""Largest run record (JSON) read back by ``caredecide rerun``."""
+MAX_RECORDS_FILE_BYTES = 50_000_000
+"""Largest cohort-records file read by the estimation step."""
+MAX_DRAFT_BYTES = 1_000_000
+"""Largest draft the app keeps for one model."""
+MAX_EXPRESSION_LENGTH = 2000
+"""Longest expression text, in characters."""
+MAX_EXPRESSION_DEPTH = 50
+"""Deepest nesting of an expression tree."""
+MAX_DRAWS = 100_000_000
+"""Most probabilistic draws one run may ask for."""
+MAX_APP_DRAWS = 20_000
+"""Most probabilistic draws the app runs (the CLI has no such cap)."""
+
+MODEL_ENV = "CAREDECIDE_MODEL"
+"""Environment variable through which the app receives the model file to open."""
+
+MEMORY_FRACTION = 0.5
+"""Share of the currently available physical memory a batch may use."""
+FALLBACK_MEMORY_BYTES = 4 * 1024**3
+"""Memory budget when the available memory cannot be read."""
+CHUNK_MEMORY_BYTES = 1024**3
+"""Working-memory budget of one chunk of a probabilistic run when none is given: 1 GiB, or
+the memory budget if that is less. Larger chunks barely run faster (the solver is
+vectorized over draws already) and would leave less room for the kept per-draw results."""
+
+
+def default_memory_limit() -> int:
+    """Memory budget of a batch: half the currently available memory (4 GiB when unknown).
+
+    Returns
+    -------
+    int
+        Bytes.
+    """
+    try:
+        available = os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+    except (ValueError, OSError, AttributeError):
+        return FALLBACK_MEMORY_BYTES
+    return int(available * MEMORY_FRACTION)
