@@ -4,12 +4,15 @@
   diagram, with the states and ages whose optimal action changes;
 * :func:`parameter_thresholds` / :func:`setting_thresholds` - the value of an estimate,
   the willingness to pay or a discount rate at which the optimal action switches;
-* :func:`two_way` - the decision over a grid of two estimates.
+* :func:`two_way` - the decision over a grid of two estimates;
+* :func:`decision_tornado` - estimates ranked by the value lost when the base-case
+  policy is kept while the estimate moves over its range.
 
 Every analysis is a batch of parameter sets solved in one call of the common
 compile -> solve path (see docs/methods-sensitivity.md).
 """
 
+from caredecide.sensitivity.decision import DecisionTornado, decision_tornado
 from caredecide.sensitivity.oneway import OneWayResult, one_way
 from caredecide.sensitivity.thresholds import (
     NO_SWITCH,
@@ -28,10 +31,12 @@ from caredecide.sensitivity.variation import (
 
 __all__ = [
     "NO_SWITCH",
+    "DecisionTornado",
     "OneWayResult",
     "compiled_over_discount_rate",
     "compiled_over_willingness_to_pay",
     "consistency_rule",
+    "decision_tornado",
     "one_way",
     "parameter_ranges",
     "parameter_sets",
