@@ -27,7 +27,6 @@ methods, so a seeded generator reproduces a run exactly. Impossible requests rai
 
 from __future__ import annotations
 
-import copy
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
@@ -38,6 +37,7 @@ import scipy.optimize
 import scipy.stats
 
 from caredecide.errors import DistributionError
+from caredecide.model import DirichletGroup
 
 __all__ = [
     "KINDS",
@@ -326,7 +326,7 @@ _FROM_INTERVAL = {
 }
 
 
-def _check_draw_request(rng: object, n: object) -> None:
+def check_draw_request(rng: object, n: object) -> None:
     if not isinstance(rng, np.random.Generator):
         raise _error("sample", f"rng must be a numpy.random.Generator; got {type(rng).__name__}")
     if isinstance(n, bool) or not isinstance(n, int | np.integer) or n < 0:
@@ -469,7 +469,7 @@ class Distribution:
 
     def sample(self, rng: np.random.Generator, n: int) -> np.ndarray:
         """``n`` independent draws, shape (n,), from ``rng``'s own methods (reproducible)."""
-        _check_draw_request(rng, n)
+        check_draw_request(rng, n)
         p = self.params
         if self.kind == "beta":
             return rng.beta(p["alpha"], p["beta"], size=n)
@@ -554,44 +554,6 @@ def distribution_from_spec(spec: Mapping, *, where: str = "") -> Distribution:
 
 
 # -------------------------------------------------------------------------- Dirichlet
-@dataclass(frozen=True, eq=False)
-class DirichletGroup:
-    """A Dirichlet over the exits of one transition row.
-
-    Attributes
-    ----------
-    members : tuple of str, length k
-        Destination names, in the order of every array below.
-    alpha : numpy.ndarray, shape (k,)
-        Concentration parameters (counts plus prior), >= 0 with a positive sum; read-only.
-        A member with alpha 0 (never observed, no prior) is always 0.
-    spec : dict
-        The table it was built from (see :meth:`to_spec`).
-    """
-
-    members: tuple[str, ...]
-    alpha: np.ndarray
-    spec: dict = field(default_factory=dict)
-
-    def mean(self) -> np.ndarray:
-        """(k,) expected proportions ``alpha_i / sum(alpha)``."""
-        return self.alpha / self.alpha.sum()
-
-    def variance(self) -> np.ndarray:
-        """(k,) variances ``alpha_i (A - alpha_i) / (A^2 (A + 1))``, ``A = sum(alpha)``."""
-        total = self.alpha.sum()
-        return self.alpha * (total - self.alpha) / (total**2 * (total + 1.0))
-
-    def sample(self, rng: np.random.Generator, n: int) -> np.ndarray:
-        """(n, k) draws; every row sums to 1."""
-        _check_draw_request(rng, n)
-        return rng.dirichlet(self.alpha, size=n)
-
-    def to_spec(self) -> dict:
-        """The table this group was built from, unchanged."""
-        return copy.deepcopy(self.spec)
-
-
 def dirichlet_from_counts(
     counts: Mapping[str, float], prior: float = 0.0, *, where: str = ""
 ) -> DirichletGroup:
@@ -614,11 +576,11 @@ def dirichlet_from_counts(
         ``alpha_i = n_i + prior``; mean ``n_i / N`` and variance
         ``n_i (N - n_i) / (N^2 (N + 1))`` when ``prior`` is 0.
     """
-    return _dirichlet(counts, prior, None, where)
+    return _dirichlet(counts, prior, where)
 
 
-def _dirichlet(counts: object, prior: object, spec: dict | None, where: str) -> DirichletGroup:
-    """Validate and build; ``spec`` None means the counts-and-prior table."""
+def _dirichlet(counts: object, prior: object, where: str) -> DirichletGroup:
+    """Validate the counts and prior, and build the group."""
     if not isinstance(counts, Mapping) or len(counts) < 2:
         raise _error(where, f"counts must be a table of at least two destinations; got {counts!r}")
     add = _number(prior, where, "prior")
@@ -637,10 +599,9 @@ def _dirichlet(counts: object, prior: object, spec: dict | None, where: str) -> 
             f"counts sum to 0 and prior is {add!r}: a Dirichlet needs a positive total; "
             "give the observed counts or a prior (e.g. prior = 1)",
         )
-    alpha.setflags(write=False)
-    if spec is None:
-        spec = {"type": "dirichlet", "counts": dict(counts), "prior": prior}
-    return DirichletGroup(members=members, alpha=alpha, spec=copy.deepcopy(spec))
+    return DirichletGroup(
+        name=where.rsplit(".", 1)[-1], members=members, counts=tuple(values.tolist()), prior=add
+    )
 
 
 def dirichlet_from_spec(spec: Mapping, *, where: str = "") -> DirichletGroup:
@@ -657,4 +618,4 @@ def dirichlet_from_spec(spec: Mapping, *, where: str = "") -> DirichletGroup:
         )
     if "counts" not in spec:
         raise _error(where, "missing key 'counts' (a table of destination = count)")
-    return _dirichlet(spec["counts"], spec.get("prior", 0.0), dict(spec), where)
+    return _dirichlet(spec["counts"], spec.get("prior", 0.0), where)

@@ -1,6 +1,6 @@
 """Policy evaluation: cohort trace and totals for any policy (optimal or fixed).
 
-The same arithmetic as the solvers (rewards from :mod:`caredecide.solvers.common`):
+The same arithmetic as the solvers (rewards from :mod:`caredecide.solvers.bellman`):
 for a policy ``pi`` the cohort ``m_t`` (row vector over states) moves as
 ``m_{t+1} = m_t P_t[pi_t]`` and the totals are
 
@@ -23,7 +23,7 @@ import pandas as pd
 
 from caredecide.compiled import CompiledModel, occupancy_weights
 from caredecide.objective import Objective
-from caredecide.solvers.common import (
+from caredecide.solvers.bellman import (
     SolverError,
     check_compiled,
     combine,

@@ -19,6 +19,8 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 FORMAT_VERSION = 1
 """The model-file format this code reads and writes."""
 
@@ -141,9 +143,49 @@ class DirichletGroup:
     name: str
     members: tuple[str, ...]
     counts: tuple[float, ...]
-    source: str
+    source: str = ""
     prior: float = 0.0
     note: str = ""
+
+    @property
+    def alpha(self) -> np.ndarray:
+        """(k,) read-only concentration parameters ``counts + prior``.
+
+        A member with alpha 0 (never observed, no prior) is always 0.
+        """
+        alpha = np.array(self.alphas(), dtype=float)
+        alpha.setflags(write=False)
+        return alpha
+
+    def mean(self) -> np.ndarray:
+        """(k,) expected proportions ``alpha_i / sum(alpha)``."""
+        return self.alpha / self.alpha.sum()
+
+    def variance(self) -> np.ndarray:
+        """(k,) variances ``alpha_i (A - alpha_i) / (A^2 (A + 1))``, ``A = sum(alpha)``."""
+        alpha = self.alpha
+        total = alpha.sum()
+        return alpha * (total - alpha) / (total**2 * (total + 1.0))
+
+    def sample(self, rng: np.random.Generator, n: int) -> np.ndarray:
+        """(n, k) draws; every row sums to 1."""
+        from caredecide.distributions import check_draw_request
+
+        check_draw_request(rng, n)
+        return rng.dirichlet(self.alpha, size=n)
+
+    def to_spec(self) -> dict[str, Any]:
+        """The distribution as a table, ``{"type": "dirichlet", "counts": {...}, "prior": p}``.
+
+        ``prior`` is left out when it is 0 (its default).
+        """
+        spec: dict[str, Any] = {
+            "type": "dirichlet",
+            "counts": dict(zip(self.members, self.counts, strict=True)),
+        }
+        if self.prior:
+            spec["prior"] = self.prior
+        return spec
 
     def alphas(self) -> tuple[float, ...]:
         """Dirichlet concentration parameters ``counts + prior``."""

@@ -7,6 +7,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from caredecide.charts import make_ce_plane_chart, make_frontier_chart
 from caredecide.compare import KIND_FRONTIER, KIND_OPTIMAL, compare_strategies
 from caredecide.compile import compile_model
 from caredecide.errors import ModelError
@@ -16,7 +17,6 @@ from caredecide.objective import Objective
 from caredecide.solvers import solve
 from caredecide.strategies import at_once, never
 from synthetic_cohort import demo_model_path
-from ui.charts import make_ce_plane_chart, make_frontier_chart
 
 
 @pytest.fixture(scope="module")

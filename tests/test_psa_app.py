@@ -6,6 +6,7 @@ import altair as alt
 import pytest
 from streamlit.testing.v1 import AppTest
 
+from caredecide import charts
 from caredecide.cautions import CAUTION_SHORT
 from caredecide.modelfile import load_model
 from caredecide.strategies import read_strategy_table, sibling_table
@@ -14,7 +15,6 @@ from synthetic_cohort import demo_model_path
 from tests.conftest import load_dict
 from tests.test_psa import uncertain_model_dict
 from tests.ui.conftest import APP, private_app_state  # noqa: F401  (autouse fixture)
-from ui import charts
 
 
 @pytest.fixture(scope="module")

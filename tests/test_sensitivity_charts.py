@@ -5,7 +5,7 @@ from __future__ import annotations
 import pandas as pd
 import pytest
 
-from ui.charts import make_tornado_chart, make_two_way_chart
+from caredecide.charts import make_tornado_chart, make_two_way_chart
 
 
 def _one_way_table() -> pd.DataFrame:

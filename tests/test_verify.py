@@ -165,10 +165,10 @@ def _scale_occupancy_qalys(monkeypatch, module, factor: float) -> None:
 
 
 def test_monotonicity_check_fails_when_the_solver_flips_the_qaly_sign(base_small, monkeypatch):
-    import caredecide.solvers.common as common
+    import caredecide.solvers.bellman as common
 
     # Patch: the solvers' rewards (which look occupancy_parts up in
-    # caredecide.solvers.common) count QALYs with the wrong sign.
+    # caredecide.solvers.bellman) count QALYs with the wrong sign.
     _scale_occupancy_qalys(monkeypatch, common, -1.0)
     assert _status(base_small, "qaly_weight_monotone").status == verify.FAIL
 

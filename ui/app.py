@@ -1,7 +1,7 @@
 """Entry file of the caredecide app: ``streamlit run ui/app.py`` (or ``caredecide app``).
 
 Adding a view: write ``ui/views/<name>.py`` (a plain Streamlit script that reads the
-working model through :mod:`ui.common`) and add one ``st.Page`` line to :data:`VIEWS`.
+working model through :mod:`ui.working_model`) and add one ``st.Page`` line to :data:`VIEWS`.
 The cautions and the working model are set up here, so every view gets them.
 """
 
@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import streamlit as st
 
-from ui import common
+from ui import working_model
 
 st.set_page_config(page_title="caredecide - research use only", layout="wide")
 
@@ -43,8 +43,8 @@ VIEWS = [
 ]
 
 page = st.navigation(VIEWS)
-common.ensure_working_model()
-common.show_cautions()
+working_model.ensure_working_model()
+working_model.show_cautions()
 with st.sidebar:
-    st.caption(f"Working model: **{common.source_label(common.working_source())}**")
+    st.caption(f"Working model: **{working_model.source_label(working_model.working_source())}**")
 page.run()

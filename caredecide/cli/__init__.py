@@ -2,7 +2,7 @@
 
 Each sub-command lives in its own module of this package and exposes
 ``register(app)``; :data:`COMMAND_MODULES` lists them in help order. Results go to
-stdout, progress and warnings to stderr (see :mod:`caredecide.cli.common`).
+stdout, progress and warnings to stderr (see :mod:`caredecide.cli.console`).
 """
 
 from __future__ import annotations

@@ -15,15 +15,21 @@ from typing import Annotated
 
 import typer
 
-from caredecide.cli.common import print_caution, stderr
+from caredecide.cli.console import print_caution, stderr
 from caredecide.limits import MAX_MODEL_BYTES, MODEL_ENV
 
 
 def app_script() -> Path:
-    """Path of the app's entry file, ``ui/app.py``, wherever the package is installed."""
-    import ui
+    """Path of the app's entry file, ``ui/app.py``, wherever the package is installed.
 
-    return Path(ui.__file__).resolve().parent / "app.py"
+    The package is located, not imported: the library never imports the app.
+    """
+    import importlib.util
+
+    spec = importlib.util.find_spec("ui")
+    if spec is None or spec.origin is None:
+        raise FileNotFoundError("the app package 'ui' is not installed; reinstall caredecide")
+    return Path(spec.origin).resolve().parent / "app.py"
 
 
 def streamlit_command(model: Path, port: int) -> tuple[list[str], dict[str, str]]:

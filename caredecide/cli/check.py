@@ -8,7 +8,7 @@ from typing import Annotated
 import typer
 from rich.table import Table
 
-from caredecide.cli.common import plain, print_caution, stderr, stdout, user_errors
+from caredecide.cli.console import plain, print_caution, stderr, stdout, user_errors
 
 
 def _horizon_text(model) -> str:

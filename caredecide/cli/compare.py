@@ -11,7 +11,7 @@ import typer
 from rich.console import Console
 from rich.table import Table
 
-from caredecide.cli.common import plain, print_caution, save_chart, stderr, stdout, user_errors
+from caredecide.cli.console import plain, print_caution, save_chart, stderr, stdout, user_errors
 
 TABLE_FILE = "strategies.csv"
 FRONTIER_FILE = "frontier.csv"
@@ -105,7 +105,7 @@ def _print_frontier(result) -> None:
 
 def write_outputs(out: Path, result, currency: str = "") -> list[Path]:
     """CSV files (table, frontier, switch points, one trace per strategy) and charts."""
-    from ui.charts import make_ce_plane_chart, make_frontier_chart
+    from caredecide.charts import make_ce_plane_chart, make_frontier_chart
 
     out.mkdir(parents=True, exist_ok=True)
     written = [out / TABLE_FILE]

@@ -12,7 +12,7 @@ import pandas as pd
 import typer
 from rich.table import Table
 
-from caredecide.cli.common import plain, print_caution, stderr, stdout, user_errors
+from caredecide.cli.console import plain, print_caution, stderr, stdout, user_errors
 
 
 class Method(StrEnum):

@@ -12,7 +12,7 @@ from typing import Annotated
 
 import typer
 
-from caredecide.cli.common import print_caution, progress, stderr, stdout, user_errors
+from caredecide.cli.console import print_caution, progress, stderr, stdout, user_errors
 
 
 @contextmanager

@@ -7,7 +7,7 @@ from typing import Annotated
 
 import typer
 
-from caredecide.cli.common import print_caution, stderr, stdout, user_errors
+from caredecide.cli.console import print_caution, stderr, stdout, user_errors
 from caredecide.cli.report import step_progress
 
 

@@ -11,7 +11,7 @@ import typer
 from rich.console import Console
 from rich.table import Table
 
-from caredecide.cli.common import (
+from caredecide.cli.console import (
     plain,
     prepare_output_folder,
     print_caution,
@@ -316,7 +316,7 @@ def _check_pair(model, pair: tuple[str, str], file: str) -> None:
 
 
 def _write_outputs(out: Path, results: dict[str, pd.DataFrame], unit: str, quiet: bool) -> None:
-    from ui.charts import make_tornado_chart, make_two_way_chart
+    from caredecide.charts import make_tornado_chart, make_two_way_chart
 
     written = []
     with writing_to(out):

@@ -15,7 +15,7 @@ from rich.table import Table
 
 from caredecide import __version__
 from caredecide.cautions import CAUTION_SHORT
-from caredecide.cli.common import (
+from caredecide.cli.console import (
     plain,
     print_caution,
     stderr,

@@ -12,7 +12,7 @@ import typer
 from rich.table import Table
 
 from caredecide.cautions import CAUTION_SHORT
-from caredecide.cli.common import (
+from caredecide.cli.console import (
     prepare_output_folder,
     print_caution,
     progress,
@@ -275,7 +275,7 @@ def _tables(result, band_years: float) -> dict[str, pd.DataFrame]:
 def _write_outputs(
     out: Path, result, tables: dict[str, pd.DataFrame], action: str, quiet: bool
 ) -> None:
-    from ui.charts import (
+    from caredecide.charts import (
         make_acceptability_curves_chart,
         make_evppi_chart,
         make_policy_acceptability_chart,

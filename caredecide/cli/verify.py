@@ -8,7 +8,7 @@ from typing import Annotated
 import typer
 from rich.table import Table
 
-from caredecide.cli.common import print_caution, stdout, user_errors
+from caredecide.cli.console import print_caution, stdout, user_errors
 from caredecide.cli.report import step_progress
 
 

@@ -1,7 +1,7 @@
 """Pieces of the HTML report: escaped tables, inline SVG charts, and one builder per section.
 
 Every piece of model text (titles, labels, sources, notes, expressions) is user content
-and passes through :func:`html.escape`. Charts come from ``ui/charts.py`` builders and
+and passes through :func:`html.escape`. Charts come from ``caredecide/charts.py`` builders and
 are rendered to inline SVG by vl-convert, so the report needs no network to be viewed.
 """
 
@@ -169,7 +169,7 @@ def evidence_section(data: ReportData) -> str:
 
 
 def _policy_chart(data: ReportData):
-    from ui.charts import make_policy_chart
+    from caredecide.charts import make_policy_chart
 
     frame = data.results["policy"]
     decision = data.facts["decision_states"]
@@ -189,7 +189,7 @@ def _policy_chart(data: ReportData):
 
 
 def _trace_chart(data: ReportData):
-    from ui.charts import make_trace_chart
+    from caredecide.charts import make_trace_chart
 
     return make_trace_chart(data.results["trace"], state_order=list(data.model.state_ids))
 
@@ -212,7 +212,7 @@ def policy_section(data: ReportData) -> str:
 
 
 def strategies_section(data: ReportData) -> str:
-    from ui.charts import make_ce_plane_chart
+    from caredecide.charts import make_ce_plane_chart
 
     frame = data.results["strategies"]
     columns = [
@@ -247,7 +247,7 @@ def strategies_section(data: ReportData) -> str:
 
 
 def sensitivity_section(data: ReportData) -> str:
-    from ui.charts import make_tornado_chart
+    from caredecide.charts import make_tornado_chart
 
     one = data.results["oneway"]
     parts = [
@@ -290,7 +290,7 @@ def _action_shown(data: ReportData) -> str:
 
 
 def uncertainty_section(data: ReportData) -> str:
-    from ui.charts import (
+    from caredecide.charts import (
         make_acceptability_curves_chart,
         make_evppi_chart,
         make_policy_acceptability_chart,

@@ -18,7 +18,7 @@ import numpy as np
 
 from caredecide.compiled import CompiledModel
 from caredecide.objective import Objective
-from caredecide.solvers.common import (
+from caredecide.solvers.bellman import (
     DEFAULT_TIE_ABSOLUTE,
     DEFAULT_TIE_RELATIVE,
     SolverError,

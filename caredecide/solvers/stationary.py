@@ -31,7 +31,7 @@ import numpy as np
 
 from caredecide.compiled import CompiledModel
 from caredecide.objective import Objective
-from caredecide.solvers.common import (
+from caredecide.solvers.bellman import (
     SolverError,
     decision_reward,
     decision_state_mask,

@@ -23,7 +23,7 @@ from caredecide.objective import Objective
 from caredecide.solvers import solve
 from synthetic_cohort import MODELS_DIR, demo_model_path
 from tests.ui.conftest import APP
-from ui import common, drafts
+from ui import drafts, working_model
 from ui.templates import TEMPLATES
 
 # Every page listed in ui/app.py (views added later are covered too).
@@ -44,7 +44,7 @@ def _demo_dir() -> str:
 
 
 def _edit(at: AppTest, table: str, edited_rows: dict) -> AppTest:
-    key = f"table_{table}_{at.session_state[common.REVISION_KEY]}"
+    key = f"table_{table}_{at.session_state[working_model.REVISION_KEY]}"
     at.session_state[key] = {"edited_rows": edited_rows, "added_rows": [], "deleted_rows": []}
     return at.run()
 
@@ -113,14 +113,14 @@ def test_wtp_control_changes_the_result_to_the_library_value(app):
 
 
 def test_a_table_edit_changes_the_working_model_and_the_result(app):
-    before = app.session_state[common.TEXT_KEY]
+    before = app.session_state[working_model.TEXT_KEY]
     _edit(app, "parameters", {})  # no-op edit state: nothing changes
-    assert app.session_state[common.TEXT_KEY] == before
+    assert app.session_state[working_model.TEXT_KEY] == before
     names = list(loads_model(before, file="t", base_dir=_demo_dir()).parameters)
     row = names.index("c_drug_year")
     _edit(app, "parameters", {row: {"value": 5000.0}})
     assert not app.exception, app.exception
-    after = app.session_state[common.TEXT_KEY]
+    after = app.session_state[working_model.TEXT_KEY]
     edited = loads_model(after, file="t", base_dir=_demo_dir())
     assert edited.parameters["c_drug_year"].value == 5000.0
     assert after.startswith("# SYNTHETIC DEMO MODEL")  # the header marking survives
@@ -134,9 +134,9 @@ def test_a_table_edit_changes_the_working_model_and_the_result(app):
 def test_an_invalid_edit_shows_its_error_beside_the_table_and_is_kept(app, private_app_state):
     _edit(app, "transitions.treat", {0: {"stage_2_tx": "1.5"}})  # row 0 = from stage_1
     assert not app.exception, app.exception
-    text = app.session_state[common.TEXT_KEY]
+    text = app.session_state[working_model.TEXT_KEY]
     assert "stage_2_tx = 1.5" in text  # kept in the working model...
-    source = app.session_state[common.SOURCE_KEY]
+    source = app.session_state[working_model.SOURCE_KEY]
     assert drafts.load_draft(source).text == text  # ...and autosaved
     errors = [e.value for e in app.error]
     assert any(
@@ -155,24 +155,26 @@ def test_an_invalid_edit_shows_its_error_beside_the_table_and_is_kept(app, priva
 
 def test_the_autosaved_draft_is_restored_in_a_fresh_session(app):
     _edit(app, "settings", {0: {"willingness_to_pay": 45000.0}})
-    edited = app.session_state[common.TEXT_KEY]
+    edited = app.session_state[working_model.TEXT_KEY]
     assert "willingness_to_pay = 45000.0" in edited
     fresh = AppTest.from_file(APP, default_timeout=120).run()
     assert not fresh.exception
-    assert fresh.session_state[common.TEXT_KEY] == edited
+    assert fresh.session_state[working_model.TEXT_KEY] == edited
     assert any("Restored your autosaved draft" in i.value for i in fresh.info)
     # Discarding the draft reopens the file as saved.
     fresh.button(key="discard_draft_button").click().run()
-    assert fresh.session_state[common.TEXT_KEY] == demo_model_path().read_text(encoding="utf-8")
-    assert drafts.load_draft(fresh.session_state[common.SOURCE_KEY]) is None
+    assert fresh.session_state[working_model.TEXT_KEY] == demo_model_path().read_text(
+        encoding="utf-8"
+    )
+    assert drafts.load_draft(fresh.session_state[working_model.SOURCE_KEY]) is None
 
 
 def test_broken_model_text_is_kept_and_its_syntax_error_shown_with_the_line(app):
-    key = f"model_text_{app.session_state[common.REVISION_KEY]}"
-    broken = app.session_state[common.TEXT_KEY].replace("[settings]", "[settings", 1)
+    key = f"model_text_{app.session_state[working_model.REVISION_KEY]}"
+    broken = app.session_state[working_model.TEXT_KEY].replace("[settings]", "[settings", 1)
     app.text_area(key=key).set_value(broken).run()
     assert not app.exception, app.exception
-    assert app.session_state[common.TEXT_KEY] == broken
+    assert app.session_state[working_model.TEXT_KEY] == broken
     assert any("TOML syntax error" in e.value and "line" in e.value for e in app.error)
 
 
@@ -180,8 +182,8 @@ def test_starting_from_a_template_opens_it(app):
     app.selectbox(key="open_template_choice").set_value("infinite-horizon")
     app.button(key="open_template_button").click().run()
     assert not app.exception
-    assert app.session_state[common.SOURCE_KEY] == "template:infinite-horizon"
-    assert app.session_state[common.TEXT_KEY] == TEMPLATES["infinite-horizon"]
+    assert app.session_state[working_model.SOURCE_KEY] == "template:infinite-horizon"
+    assert app.session_state[working_model.TEXT_KEY] == TEMPLATES["infinite-horizon"]
     assert any("is valid" in s.value for s in app.success)
 
 
@@ -253,7 +255,7 @@ def test_switching_the_objective_to_qalys_shows_the_library_result(app):
 
 
 def test_adding_a_state_row_keeps_it_and_reports_what_it_lacks(app):
-    key = f"table_states_{app.session_state[common.REVISION_KEY]}"
+    key = f"table_states_{app.session_state[working_model.REVISION_KEY]}"
     app.session_state[key] = {
         "edited_rows": {},
         "added_rows": [{"id": "stage_4"}],
@@ -262,16 +264,16 @@ def test_adding_a_state_row_keeps_it_and_reports_what_it_lacks(app):
     app.run()
     assert not app.exception, app.exception
     model = loads_model(
-        app.session_state[common.TEXT_KEY], file="t", base_dir=_demo_dir(), validate=False
+        app.session_state[working_model.TEXT_KEY], file="t", base_dir=_demo_dir(), validate=False
     )
     added = model.state("stage_4")
     assert (added.alive, added.absorbing, added.cost) == (True, False, 0.0)
 
 
 def test_deleting_a_parameter_row_reports_the_expressions_that_use_it(app):
-    text = app.session_state[common.TEXT_KEY]
+    text = app.session_state[working_model.TEXT_KEY]
     names = list(loads_model(text, file="t", base_dir=_demo_dir()).parameters)
-    key = f"table_parameters_{app.session_state[common.REVISION_KEY]}"
+    key = f"table_parameters_{app.session_state[working_model.REVISION_KEY]}"
     app.session_state[key] = {
         "edited_rows": {},
         "added_rows": [],
@@ -279,7 +281,7 @@ def test_deleting_a_parameter_row_reports_the_expressions_that_use_it(app):
     }
     app.run()
     assert not app.exception, app.exception
-    assert "c_drug_year" not in app.session_state[common.TEXT_KEY].split("[parameters", 1)[1]
+    assert "c_drug_year" not in app.session_state[working_model.TEXT_KEY].split("[parameters", 1)[1]
     assert any("c_drug_year" in e.value for e in app.error)  # states still refer to it
 
 
@@ -288,7 +290,7 @@ def test_every_bundled_model_opens_and_solves_in_the_views(app, bundled):
     app.selectbox(key="open_bundled_choice").set_value(bundled)
     app.button(key="open_bundled_button").click().run()
     assert not app.exception, app.exception
-    assert app.session_state[common.SOURCE_KEY] == str((MODELS_DIR / bundled).resolve())
+    assert app.session_state[working_model.SOURCE_KEY] == str((MODELS_DIR / bundled).resolve())
     assert any("is valid" in s.value for s in app.success), [e.value for e in app.error]
     for view in ("views/policy.py", "views/convergence.py"):
         app.switch_page(view).run()
@@ -300,21 +302,21 @@ def test_a_draft_of_another_model_is_offered_and_opens_in_a_fresh_session(app):
     app.selectbox(key="open_template_choice").set_value("treat-or-wait")
     app.button(key="open_template_button").click().run()
     _edit(app, "settings", {0: {"willingness_to_pay": 12345.0}})
-    edited = app.session_state[common.TEXT_KEY]
+    edited = app.session_state[working_model.TEXT_KEY]
     assert "willingness_to_pay = 12345.0" in edited
 
     fresh = AppTest.from_file(APP, default_timeout=120).run()  # opens the demo model...
     assert not fresh.exception, fresh.exception
     demo = demo_model_path().read_text(encoding="utf-8")
-    assert fresh.session_state[common.TEXT_KEY] == demo  # ...untouched by the other draft
+    assert fresh.session_state[working_model.TEXT_KEY] == demo  # ...untouched by the other draft
     assert not any("Restored your autosaved draft" in i.value for i in fresh.info)
     offered = fresh.selectbox(key="open_draft_choice")
     saved_at = drafts.load_draft("template:treat-or-wait").saved_at
     assert offered.options == [f"treat-or-wait (template) ({saved_at})"]
     fresh.button(key="open_draft_button").click().run()
     assert not fresh.exception, fresh.exception
-    assert fresh.session_state[common.SOURCE_KEY] == "template:treat-or-wait"
-    assert fresh.session_state[common.TEXT_KEY] == edited
+    assert fresh.session_state[working_model.SOURCE_KEY] == "template:treat-or-wait"
+    assert fresh.session_state[working_model.TEXT_KEY] == edited
 
 
 @pytest.mark.parametrize("method", ["policy_iteration", "modified_policy_iteration"])

@@ -10,7 +10,7 @@ from hypothesis import strategies as st
 from caredecide.errors import ModelError
 from caredecide.modelfile import dumps_model, load_model, loads_model
 from synthetic_cohort import demo_model_path
-from ui import common, tables
+from ui import tables, working_model
 from ui.templates import TEMPLATES
 
 
@@ -103,21 +103,23 @@ def test_unknown_table_name_is_refused():
 
 
 def test_upload_over_the_size_limit_is_refused_with_its_size():
-    data = b"x" * (common.MAX_MODEL_BYTES + 1)
-    with pytest.raises(ModelError, match=rf"big\.toml: .*{common.MAX_MODEL_BYTES + 1} bytes"):
-        common.decode_upload("big.toml", data)
+    data = b"x" * (working_model.MAX_MODEL_BYTES + 1)
+    with pytest.raises(
+        ModelError, match=rf"big\.toml: .*{working_model.MAX_MODEL_BYTES + 1} bytes"
+    ):
+        working_model.decode_upload("big.toml", data)
 
 
 def test_upload_that_is_not_utf8_is_refused_naming_the_byte():
     with pytest.raises(ModelError, match=r"bin\.toml: .*not UTF-8 text \(byte 2\)"):
-        common.decode_upload("bin.toml", b"ab\xff\xfe")
+        working_model.decode_upload("bin.toml", b"ab\xff\xfe")
 
 
 def test_model_file_over_the_size_limit_is_refused(tmp_path):
     path = tmp_path / "huge.toml"
-    path.write_bytes(b"#" * (common.MAX_MODEL_BYTES + 1))
+    path.write_bytes(b"#" * (working_model.MAX_MODEL_BYTES + 1))
     with pytest.raises(ModelError, match=r"huge\.toml: the model file is \d+ bytes"):
-        common.read_model_file(path)
+        working_model.read_model_file(path)
 
 
 def test_header_comments_survive_a_rewrite_from_tables():
@@ -176,9 +178,9 @@ def test_problems_under_a_table_do_not_leak_to_a_table_with_a_longer_name():
         Problem("states[2].id", "z"),
         Problem("", "general"),
     )
-    assert [p.message for p in common.problems_under(problems, "transitions.wait")] == ["x"]
-    assert [p.message for p in common.problems_under(problems, "states")] == ["z"]
-    assert len(common.problems_under(problems, "")) == 4
+    assert [p.message for p in working_model.problems_under(problems, "transitions.wait")] == ["x"]
+    assert [p.message for p in working_model.problems_under(problems, "states")] == ["z"]
+    assert len(working_model.problems_under(problems, "")) == 4
 
 
 def test_an_action_without_rows_gets_an_empty_matrix_to_fill():

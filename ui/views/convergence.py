@@ -11,8 +11,9 @@ import numpy as np
 import pandas as pd
 import streamlit as st
 
+from caredecide import charts
 from caredecide.errors import CaredecideError
-from ui import charts, common
+from ui import working_model
 
 INFINITE_METHODS = {
     "value_iteration": "Value iteration",
@@ -21,7 +22,7 @@ INFINITE_METHODS = {
 }
 MAX_SWEEPS = 5_000  # cap on recorded sweeps: the history holds values for every sweep
 
-model = common.valid_model_or_stop()
+model = working_model.valid_model_or_stop()
 settings = model.settings
 st.title("Convergence")
 finite = model.n_cycles() is not None
@@ -51,10 +52,10 @@ else:
 
 try:
     with st.spinner("Solving and recording every sweep..."):
-        solved = common.solve_model(
-            common.working_text(),
-            common.file_label(),
-            common.base_folder(),
+        solved = working_model.solve_model(
+            working_model.working_text(),
+            working_model.file_label(),
+            working_model.base_folder(),
             settings.objective,
             float(settings.willingness_to_pay),
             method=method,

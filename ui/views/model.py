@@ -16,7 +16,7 @@ from caredecide.errors import ModelError
 from caredecide.model import OBJECTIVES, PARAMETER_KINDS
 from caredecide.modelfile import dumps_model
 from synthetic_cohort import MODELS_DIR
-from ui import common, drafts
+from ui import drafts, working_model
 from ui.tables import locate, model_to_tables, model_with_table, with_header_comments
 from ui.templates import TEMPLATES
 
@@ -28,12 +28,12 @@ def _bundled_models() -> dict[str, Path]:
 # -- callbacks (state changes happen here) -----------------------------------------------
 def _open_bundled() -> None:
     path = _bundled_models()[st.session_state["open_bundled_choice"]]
-    common.open_model(str(path.resolve()), common.read_model_file(path))
+    working_model.open_model(str(path.resolve()), working_model.read_model_file(path))
 
 
 def _open_template() -> None:
     name = st.session_state["open_template_choice"]
-    common.open_model(f"template:{name}", TEMPLATES[name])
+    working_model.open_model(f"template:{name}", TEMPLATES[name])
 
 
 def _open_upload() -> None:
@@ -41,36 +41,36 @@ def _open_upload() -> None:
     if upload is None:
         return
     try:
-        text = common.decode_upload(upload.name, upload.getvalue())
+        text = working_model.decode_upload(upload.name, upload.getvalue())
     except ModelError as error:
         st.session_state["cd_upload_error"] = str(error)
         return
     st.session_state.pop("cd_upload_error", None)
-    common.open_model(f"upload:{upload.name}", text)
+    working_model.open_model(f"upload:{upload.name}", text)
 
 
 def _open_draft() -> None:
     source = st.session_state["open_draft_choice"]
     draft = drafts.load_draft(source)
     if draft is not None:
-        common.open_model(source, draft.text)
+        working_model.open_model(source, draft.text)
 
 
 def _discard_draft() -> None:
-    source = common.working_source()
+    source = working_model.working_source()
     drafts.discard_draft(source)
     kind = source.partition(":")[0]
     if kind == "template":
         text = TEMPLATES.get(source.partition(":")[2], "")
     elif kind == "upload":
-        text = common.working_text()  # the uploaded bytes are gone; keep what is shown
+        text = working_model.working_text()  # the uploaded bytes are gone; keep what is shown
     else:
         try:
-            text = common.read_model_file(Path(source))
+            text = working_model.read_model_file(Path(source))
         except (OSError, ModelError) as error:  # the file is gone: keep what is shown
             st.session_state["cd_startup_error"] = f"{source}: {error}"
-            text = common.working_text()
-    common.open_model(source, text)
+            text = working_model.working_text()
+    working_model.open_model(source, text)
 
 
 # -- opening -----------------------------------------------------------------------------
@@ -96,8 +96,10 @@ def _open_panel() -> None:
             st.selectbox("Start from a template", list(TEMPLATES), key="open_template_choice")
             st.button("Start", key="open_template_button", on_click=_open_template)
         with recovered:
-            others = [d for d in drafts.list_drafts() if d.source != common.working_source()]
-            labels = {d.source: f"{common.source_label(d.source)} ({d.saved_at})" for d in others}
+            others = [d for d in drafts.list_drafts() if d.source != working_model.working_source()]
+            labels = {
+                d.source: f"{working_model.source_label(d.source)} ({d.saved_at})" for d in others
+            }
             if labels:
                 st.selectbox(
                     "Recovered drafts",
@@ -138,7 +140,7 @@ def _edited(key: str) -> bool:
 
 def _table_editor(model, name: str, frame, problems) -> None:
     """One keyed data editor; an edit is written to the working text at once."""
-    key = common.widget_key(f"table_{name}")
+    key = working_model.widget_key(f"table_{name}")
     dynamic = name in ("states", "actions", "parameters")
     edited = st.data_editor(
         frame,
@@ -148,25 +150,30 @@ def _table_editor(model, name: str, frame, problems) -> None:
         column_config=COLUMN_CONFIG.get(name),
         width="stretch",
     )
-    common.show_problems(
-        common.problems_under(problems, name), locate=lambda where: locate(name, frame, where)
+    working_model.show_problems(
+        working_model.problems_under(problems, name),
+        locate=lambda where: locate(name, frame, where),
     )
     if _edited(key):
         try:
             new_model = model_with_table(model, name, edited)
         except ModelError as error:  # cannot be written at all: keep it in the editor
-            common.show_problems(error.problems)
+            working_model.show_problems(error.problems)
             return
-        common.edit_model_text(with_header_comments(common.working_text(), dumps_model(new_model)))
+        working_model.edit_model_text(
+            with_header_comments(working_model.working_text(), dumps_model(new_model))
+        )
         st.rerun()
 
 
 def _text_editor(problems) -> None:
-    key = common.widget_key("model_text")
-    text = st.text_area("Model file (TOML)", value=common.working_text(), key=key, height=500)
-    common.show_problems([p for p in problems if p.line is not None])  # TOML syntax
-    if text != common.working_text():
-        common.edit_model_text(text)
+    key = working_model.widget_key("model_text")
+    text = st.text_area(
+        "Model file (TOML)", value=working_model.working_text(), key=key, height=500
+    )
+    working_model.show_problems([p for p in problems if p.line is not None])  # TOML syntax
+    if text != working_model.working_text():
+        working_model.edit_model_text(text)
         st.rerun()
 
 
@@ -174,7 +181,7 @@ def _text_editor(problems) -> None:
 st.title("Model")
 if error := st.session_state.pop("cd_startup_error", None):
     st.error(f"Could not open the startup model: {error}")
-if notice := st.session_state.get(common.NOTICE_KEY):
+if notice := st.session_state.get(working_model.NOTICE_KEY):
     left, right = st.columns([3, 2])  # room for the whole button label
     left.info(notice, icon=":material/history:")
     right.button(
@@ -184,15 +191,16 @@ if error := st.session_state.get("cd_autosave_error"):
     st.error(f"Autosave failed: {error}")
 
 _open_panel()
-text = common.working_text()
+text = working_model.working_text()
 st.download_button(
     "Download the model file",
     data=text.encode("utf-8"),
     key="download_model",
-    file_name=Path(common.source_label(common.working_source()).split(" ")[0]).stem + ".toml",
+    file_name=Path(working_model.source_label(working_model.working_source()).split(" ")[0]).stem
+    + ".toml",
     mime="application/toml",
 )
-checked = common.current_check()
+checked = working_model.current_check()
 problems = checked.problems
 TAB_OF_TABLE = {
     "settings": "Settings",
@@ -210,16 +218,18 @@ if problems:
     )
     where = ", ".join(f"{tab} ({count})" for tab, count in tabs_with.items())
     st.error(
-        f"{len(problems)} problem(s) in {common.file_label()}, in the tab(s): {where}. Each "
+        f"{len(problems)} problem(s) in {working_model.file_label()}, in the tab(s): {where}. Each "
         "is shown beside its table. Your edits are kept and autosaved.",
         icon=":material/error:",
     )
 else:
-    st.success(f"{common.file_label()} is valid (autosaved).", icon=":material/check_circle:")
+    st.success(
+        f"{working_model.file_label()} is valid (autosaved).", icon=":material/check_circle:"
+    )
 TABLE_PREFIXES = ("settings", "states", "actions", "parameters", "transitions", "rates")
-common.show_problems([p for p in problems if not p.where.startswith(TABLE_PREFIXES)])
+working_model.show_problems([p for p in problems if not p.where.startswith(TABLE_PREFIXES)])
 
-readable = common.read_model(text, common.file_label(), common.base_folder())
+readable = working_model.read_model(text, working_model.file_label(), working_model.base_folder())
 tables = model_to_tables(readable.model) if readable.model is not None else {}
 matrices = [n for n in tables if n.startswith(("transitions.", "rates."))]
 tabs = st.tabs(["Settings", "States", "Actions", "Parameters", "Transitions", "Model file"])
@@ -230,7 +240,7 @@ if readable.model is None:
                 "The model file text cannot be read into tables; fix the problems in "
                 "the Model file tab."
             )
-            common.show_problems(list(readable.problems))
+            working_model.show_problems(list(readable.problems))
 else:
     model = readable.model
     for tab, name in zip(tabs[:4], ("settings", "states", "actions", "parameters"), strict=True):
@@ -246,11 +256,11 @@ else:
             st.subheader(name)
             _table_editor(model, name, tables[name], problems)
         # Rows of an action that is not in the model: no matrix shows them.
-        common.show_problems(
+        working_model.show_problems(
             [
                 p
-                for p in common.problems_under(problems, "transitions", "rates")
-                if not common.problems_under((p,), *matrices)
+                for p in working_model.problems_under(problems, "transitions", "rates")
+                if not working_model.problems_under((p,), *matrices)
             ]
         )
 with tabs[5]:

@@ -5,13 +5,14 @@ from __future__ import annotations
 
 import streamlit as st
 
+from caredecide import charts
 from caredecide.errors import CaredecideError
 from caredecide.model import OBJECTIVES
-from ui import charts, common
+from ui import working_model
 
 OBJECTIVE_NAMES = {"net_benefit": "Net monetary benefit", "qalys": "QALYs"}
 
-model = common.valid_model_or_stop()
+model = working_model.valid_model_or_stop()
 settings = model.settings
 st.title("Policy")
 
@@ -35,10 +36,10 @@ if kind == "net_benefit":
 
 try:
     with st.spinner("Solving the model..."):
-        solved = common.solve_model(
-            common.working_text(),
-            common.file_label(),
-            common.base_folder(),
+        solved = working_model.solve_model(
+            working_model.working_text(),
+            working_model.file_label(),
+            working_model.base_folder(),
             kind,
             float(willingness_to_pay),
             _model=model,
@@ -64,10 +65,10 @@ cols[3].metric(
 
 # -- structure ---------------------------------------------------------------------------
 st.subheader("What the policy says")
-structure = common.policy_structure(
-    common.working_text(),
-    common.file_label(),
-    common.base_folder(),
+structure = working_model.policy_structure(
+    working_model.working_text(),
+    working_model.file_label(),
+    working_model.base_folder(),
     kind,
     float(willingness_to_pay),
 )

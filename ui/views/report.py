@@ -7,7 +7,7 @@ import streamlit as st
 
 from caredecide.errors import CaredecideError
 from caredecide.report import Downloads, downloads
-from ui import common
+from ui import working_model
 
 
 @st.cache_data(max_entries=4, show_spinner=False)
@@ -27,7 +27,7 @@ def _ask() -> None:
     st.session_state["report_requested"] = True
 
 
-model = common.valid_model_or_stop()
+model = working_model.valid_model_or_stop()
 st.session_state.setdefault("report_requested", False)
 st.title("Report and downloads")
 st.markdown(
@@ -52,9 +52,9 @@ if st.session_state["report_requested"]:
     try:
         with st.spinner("Running every analysis..."):
             ready = prepare(
-                common.working_text(),
-                common.file_label(),
-                common.base_folder(),
+                working_model.working_text(),
+                working_model.file_label(),
+                working_model.base_folder(),
                 int(draws),
                 int(seed),
             )

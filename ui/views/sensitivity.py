@@ -6,6 +6,7 @@ from __future__ import annotations
 import pandas as pd
 import streamlit as st
 
+from caredecide import charts
 from caredecide.errors import CaredecideError
 from caredecide.modelfile import loads_model
 from caredecide.sensitivity import (
@@ -15,7 +16,7 @@ from caredecide.sensitivity import (
     summarise_thresholds,
     two_way,
 )
-from ui import charts, common
+from ui import working_model
 
 
 @st.cache_data(max_entries=16, show_spinner=False)
@@ -43,9 +44,9 @@ def run_two_way(text: str, file: str, base_dir: str, x: str, y: str, grid: int):
     return two_way(model, x, y, grid=grid)
 
 
-model = common.valid_model_or_stop()
+model = working_model.valid_model_or_stop()
 settings = model.settings
-key = (common.working_text(), common.file_label(), common.base_folder())
+key = (working_model.working_text(), working_model.file_label(), working_model.base_folder())
 names = list(model.parameter_names())
 unit = "QALYs" if settings.objective == "qalys" else (settings.currency or "money")
 st.title("Sensitivity")

@@ -6,11 +6,12 @@ from __future__ import annotations
 import pandas as pd
 import streamlit as st
 
+from caredecide import charts
 from caredecide.compare import compare_strategies
 from caredecide.errors import CaredecideError
 from caredecide.modelfile import loads_model
 from caredecide.strategies import MAX_TABLE_BYTES, read_strategy_table, sibling_table
-from ui import charts, common
+from ui import working_model
 
 TABLE_COLUMNS = [
     "strategy",
@@ -62,7 +63,7 @@ def run_comparison(
     )
 
 
-model = common.valid_model_or_stop()
+model = working_model.valid_model_or_stop()
 settings = model.settings
 currency = settings.currency or "money"
 st.title("Strategies")
@@ -98,7 +99,7 @@ upload = st.file_uploader(
 )
 
 tables: list[tuple[str, str]] = []
-source = common.working_source()
+source = working_model.working_source()
 beside = None if source.partition(":")[0] in ("upload", "template") else sibling_table(source)
 if beside is not None and beside.stat().st_size <= MAX_TABLE_BYTES:
     tables.append((str(beside), beside.read_text(encoding="utf-8-sig")))
@@ -131,9 +132,9 @@ if high < low:
 try:
     with st.spinner("Solving and evaluating every strategy..."):
         table, frontier, notes, fallbacks = run_comparison(
-            common.working_text(),
-            common.file_label(),
-            common.base_folder(),
+            working_model.working_text(),
+            working_model.file_label(),
+            working_model.base_folder(),
             tuple(tables),
             float(wtp),
             float(low),

@@ -6,12 +6,13 @@ from __future__ import annotations
 
 import streamlit as st
 
+from caredecide import charts
 from caredecide.errors import CaredecideError
 from caredecide.limits import MAX_APP_DRAWS
 from caredecide.modelfile import loads_model
 from caredecide.strategies import MAX_TABLE_BYTES, read_strategy_table, sibling_table
 from caredecide.uncertainty.psa import run_psa
-from ui import charts, common
+from ui import working_model
 
 
 @st.cache_data(max_entries=8, show_spinner=False)
@@ -24,9 +25,9 @@ def run_analysis(
     return run_psa(model, draws, seed, strategies=strategies)
 
 
-model = common.valid_model_or_stop()
+model = working_model.valid_model_or_stop()
 settings = model.settings
-key = (common.working_text(), common.file_label(), common.base_folder())
+key = (working_model.working_text(), working_model.file_label(), working_model.base_folder())
 unit = "QALYs" if settings.objective == "qalys" else (settings.currency or "money")
 st.title("Uncertainty")
 st.caption(
@@ -41,7 +42,7 @@ draws = left.number_input(
 seed = right.number_input("Seed", min_value=0, value=1, step=1, key="uncertainty_seed")
 
 # The strategy table beside the model joins the candidates, as in the CLI and the report.
-source = common.working_source()
+source = working_model.working_source()
 beside = None if source.partition(":")[0] in ("upload", "template") else sibling_table(source)
 table = None
 if beside is not None and beside.stat().st_size <= MAX_TABLE_BYTES:

@@ -5,7 +5,7 @@ from __future__ import annotations
 import pandas as pd
 import pytest
 
-from ui import charts
+from caredecide import charts
 
 
 def _policy_frame() -> pd.DataFrame:
