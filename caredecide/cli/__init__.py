@@ -20,6 +20,7 @@ COMMAND_MODULES: tuple[str, ...] = (
     "check",
     "solve",
     "sensitivity",
+    "changes",
     "uncertainty",
     "compare",
     "estimate",
