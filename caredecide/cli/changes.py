@@ -7,7 +7,7 @@ from typing import Annotated
 
 import typer
 
-from caredecide.cli.common import (
+from caredecide.cli.console import (
     plain,
     prepare_output_folder,
     print_caution,
