@@ -1,0 +1,462 @@
+"""Sensitivity of the decision to each transition estimate: a switching factor per cell.
+
+For every movable cell of every transition table (:mod:`.cell_scaling`: not a ``rest``
+entry, not zero, not in an absorbing row) the cell is scaled by a factor ``k`` (the row
+follows by the cell's rule; one ``k`` for every cycle) and we ask how far ``k`` can move
+from 1, downwards and upwards, before the optimal policy changes in any state or age.
+
+Method, for cell ``c`` and one direction:
+
+1. **Margin.** With ``a0`` the base-case policy, the margin of decision cell ``(t, s)`` at
+   factor ``k`` is ``Q_t(s, a0; k) - max_{b != a0} Q_t(s, b; k)`` and the cell's margin
+   function is ``m(k) = min`` over decision cells not tied in the base case. ``m(1) > 0``;
+   the policy changes exactly where some margin turns negative, so the switching factor is
+   the first root of ``m`` going away from 1. ``m`` is continuous in ``k`` (a minimum of
+   differences of maxima of continuous functions).
+2. **Bracket.** ``m`` is evaluated on a grid of factors from 1 to the end of the search
+   range (``grid`` values: evenly spaced below 1, geometric above 1) for every cell and both
+   directions in ONE batch; the first grid interval where ``m`` turns negative brackets the
+   switch.
+3. **Root.** Brent's method on all brackets at once (:func:`.brent.brent_roots`), each step
+   one batch through the solver.
+4. **Report.** The switching factor below and above 1, the states and ages whose action
+   changes just past it, and the value lost by keeping the base-case policy when the cell is
+   at each of two factors (0.5 and 2 by default): ``V*(k) - V_{a0}(k)`` at the model start.
+
+The search above 1 stops at the smaller of ``search_max`` and the cell's feasible factor
+(beyond it a probability of the row would leave [0, 1]); the table says when it did. A
+switch and a switch back within one grid interval are missed; a finer ``grid`` looks closer.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from caredecide.errors import ModelError, Problem
+from caredecide.evaluate import evaluate_policy
+from caredecide.objective import Objective
+from caredecide.sensitivity.brent import RTOL_MIN, brent_roots
+from caredecide.sensitivity.cell_scaling import CellScaler, FixedCell, TransitionCell
+from caredecide.sensitivity.oneway import _ages_text
+from caredecide.sensitivity.variation import default_objective, policy_ages, source_file
+
+DEFAULT_LOSS_FACTORS = (0.5, 2.0)
+DEFAULT_SEARCH_MAX = 10.0
+DEFAULT_GRID = 6
+DEFAULT_XTOL = 1e-9
+PAST_STEP = 1e-6
+"""Relative step past a switching factor at which the changed states and ages are read."""
+
+SIDES = ("below", "above")
+NO_SWITCH = "no switch"
+CLOSENESS_BANDS = (
+    (1.1, "within 1.1x"),
+    (1.25, "within 1.25x"),
+    (1.5, "within 1.5x"),
+    (2.0, "within 2x"),
+    (np.inf, "further than 2x"),
+)
+"""A switching factor ``f`` falls in the first band with ``max(f, 1/f) <= bound``."""
+NO_SWITCH_BAND = "no switch in the search range"
+WHOLE_PATH_NOTE = "one factor scales the cell at every age"
+
+Progress = Callable[[int, int], None]
+
+
+@dataclass(frozen=True)
+class CellSensitivityResult:
+    """Switching factors of every movable transition cell (see the module docstring).
+
+    Attributes
+    ----------
+    cells : list of TransitionCell
+    fixed : list of FixedCell
+        Cells not moved, with the reason.
+    factor_below, factor_above : (C,) float
+        First factor below / above 1 at which the optimal policy changes; NaN when none
+        within the search range.
+    search_below, search_above : (C,) float
+        End of the search range in each direction (``search_above`` is capped at the
+        cell's feasible factor).
+    changes_below, changes_above : list of str
+        States and ages whose action changes just past the switch ("none" without one).
+    converged : (C, 2) bool
+        Brent's method stopped by its tolerance (True where there was nothing to find).
+    loss_factors : tuple of float
+        The factors (below 1, above 1) at which the value lost is reported.
+    value_lost : (C, 2) float
+        Value lost at the model start by keeping the base-case policy when the cell is at
+        each loss factor (objective units, present value); NaN when the factor is beyond
+        the cell's feasible factor.
+    base_value : float
+        Objective at the model start in the base case.
+    objective : Objective
+    search_max : float
+    tied_cells : int
+        Decision cells (cycle, state) tied in the base case, left out of the margins.
+    """
+
+    cells: list[TransitionCell]
+    fixed: list[FixedCell]
+    factor_below: np.ndarray
+    factor_above: np.ndarray
+    search_below: np.ndarray
+    search_above: np.ndarray
+    changes_below: list[str]
+    changes_above: list[str]
+    converged: np.ndarray
+    loss_factors: tuple[float, float]
+    value_lost: np.ndarray
+    base_value: float
+    objective: Objective
+    search_max: float
+    tied_cells: int = 0
+    action_ids: tuple[str, ...] = field(default=())
+    state_ids: tuple[str, ...] = field(default=())
+
+    def nearest_factor(self) -> np.ndarray:
+        """(C,) the switching factor nearer to 1 on a log scale (NaN without a switch)."""
+        with np.errstate(divide="ignore"):
+            below = np.where(np.isnan(self.factor_below), np.inf, -np.log(self.factor_below))
+            above = np.where(np.isnan(self.factor_above), np.inf, np.log(self.factor_above))
+        nearest = np.where(below <= above, self.factor_below, self.factor_above)
+        return np.where(np.isinf(np.minimum(below, above)), np.nan, nearest)
+
+    def to_frame(self) -> pd.DataFrame:
+        """One row per movable cell.
+
+        Columns: ``action, from_state, to_state, cell, rule, expression, base_low,
+        base_high, varies_with_age, feasible_max, factor_below, factor_above,
+        nearest_factor, closeness, changes_below, changes_above, search_below,
+        search_above, loss_factor_below, value_lost_below, loss_factor_above,
+        value_lost_above, note``. Factors multiply the cell's base value; values are in
+        the objective's unit at the model start.
+        """
+        nearest = self.nearest_factor()
+        rows = []
+        for i, cell in enumerate(self.cells):
+            rows.append(
+                {
+                    "action": cell.action_id,
+                    "from_state": cell.from_id,
+                    "to_state": cell.to_id,
+                    "cell": cell.path,
+                    "rule": cell.rule,
+                    "expression": cell.expression,
+                    "base_low": cell.base_low,
+                    "base_high": cell.base_high,
+                    "varies_with_age": cell.varies_with_age,
+                    "feasible_max": cell.feasible_max,
+                    "factor_below": self.factor_below[i],
+                    "factor_above": self.factor_above[i],
+                    "nearest_factor": nearest[i],
+                    "closeness": closeness_band(nearest[i]),
+                    "changes_below": self.changes_below[i],
+                    "changes_above": self.changes_above[i],
+                    "search_below": self.search_below[i],
+                    "search_above": self.search_above[i],
+                    "loss_factor_below": self.loss_factors[0],
+                    "value_lost_below": self.value_lost[i, 0],
+                    "loss_factor_above": self.loss_factors[1],
+                    "value_lost_above": self.value_lost[i, 1],
+                    "note": self._note(i),
+                }
+            )
+        return pd.DataFrame(rows, columns=FRAME_COLUMNS)
+
+    def fixed_frame(self) -> pd.DataFrame:
+        """One row per fixed cell: ``action, from_state, to_state, cell, reason``."""
+        return pd.DataFrame(
+            [(f.action_id, f.from_id, f.to_id, f.path, f.reason) for f in self.fixed],
+            columns=["action", "from_state", "to_state", "cell", "reason"],
+        )
+
+    def _note(self, i: int) -> str:
+        cell = self.cells[i]
+        notes = []
+        if cell.varies_with_age:
+            notes.append(WHOLE_PATH_NOTE)
+        if self.search_above[i] < self.search_max:
+            if self.search_above[i] <= 1.0:
+                notes.append("cannot increase: the row has no room (feasible factor 1)")
+            elif np.isnan(self.factor_above[i]):
+                notes.append(
+                    f"search above stopped at the feasible factor {self.search_above[i]:.4g}"
+                )
+        if cell.feasible_max < self.loss_factors[1]:
+            notes.append(
+                f"factor {self.loss_factors[1]:g} is beyond the feasible factor "
+                f"{cell.feasible_max:.4g}: no value lost reported there"
+            )
+        if not self.converged[i].all():
+            notes.append("root search did not converge")
+        return "; ".join(notes)
+
+
+FRAME_COLUMNS = [
+    "action", "from_state", "to_state", "cell", "rule", "expression", "base_low", "base_high",
+    "varies_with_age", "feasible_max", "factor_below", "factor_above", "nearest_factor",
+    "closeness", "changes_below", "changes_above", "search_below", "search_above",
+    "loss_factor_below", "value_lost_below", "loss_factor_above", "value_lost_above", "note",
+]  # fmt: skip
+
+
+def closeness_band(factor: float) -> str:
+    """The label of :data:`CLOSENESS_BANDS` a switching factor falls in."""
+    if factor is None or not np.isfinite(factor):
+        return NO_SWITCH_BAND
+    spread = np.inf if factor <= 0 else max(factor, 1.0 / factor)
+    return next(label for bound, label in CLOSENESS_BANDS if spread <= bound)
+
+
+def cell_sensitivity(
+    model: Any,
+    *,
+    objective: Objective | None = None,
+    loss_factors: tuple[float, float] = DEFAULT_LOSS_FACTORS,
+    search_max: float = DEFAULT_SEARCH_MAX,
+    grid: int = DEFAULT_GRID,
+    xtol: float = DEFAULT_XTOL,
+    progress: Progress | None = None,
+) -> CellSensitivityResult:
+    """Switching factor below and above 1 of every movable transition cell.
+
+    Parameters
+    ----------
+    model : caredecide.model.Model
+    objective : Objective, optional
+        Default: the model file's objective.
+    loss_factors : (float, float)
+        Factors (one in (0, 1), one > 1) at which the value lost by keeping the base-case
+        policy is reported.
+    search_max : float
+        Largest factor searched above 1 (> 1); the search below 1 runs down to 0.
+    grid : int
+        Grid values per direction used to bracket the first switch (>= 2).
+    xtol : float
+        Absolute tolerance on a switching factor (> 0).
+    progress : callable(done, total), optional
+        Batches solved out of an estimate of the total.
+
+    Returns
+    -------
+    CellSensitivityResult
+
+    Raises
+    ------
+    ModelError
+        An option out of range (naming it and the value), or a model that does not compile.
+    """
+    from caredecide.solvers import solve
+
+    _check_options(model, loss_factors, search_max, grid, xtol)
+    objective = default_objective(model) if objective is None else objective
+    scaler = CellScaler(model)
+    cells = scaler.cells
+    C = len(cells)
+    base = solve(scaler.base, objective)
+    base_policy = base.policy[0]  # (Tpi, S)
+    tied = base.indifferent[0] & base.decision_states[None, :]
+    mask = base.decision_states[None, :] & ~tied  # (Tpi, S) decision cells with a margin
+    base_value = float(base.expected_value(scaler.base.start_distribution)[0])
+    caps = np.array([c.feasible_max for c in cells], dtype=float)
+    search_above = np.minimum(caps, float(search_max))
+    search_below = np.zeros(C)
+    steps = [0, 2 + 20]
+    report = _progress(progress, steps)
+
+    # 1. The grid (both directions) and the loss factors in one batch.
+    fraction = np.arange(1, grid + 1) / grid
+    below_grid = 1.0 - fraction[None, :] * (1.0 - search_below[:, None])  # (C, G)
+    above_grid = search_above[:, None] ** fraction[None, :]  # (C, G); 1 where no room
+    above_grid[:, -1] = search_above
+    loss = np.array(loss_factors, dtype=float)
+    loss_ok = loss[None, :] <= caps[:, None]  # (C, 2)
+    loss_grid = np.where(loss_ok, loss[None, :], 1.0)
+    factors = np.concatenate([below_grid, above_grid, loss_grid], axis=1)  # (C, 2G + 2)
+    which = np.repeat(np.arange(C), factors.shape[1])
+    batch = scaler.scaled(which, factors.reshape(-1))
+    result = solve(batch, objective)
+    margins = _margins(result, base_policy, mask).reshape(C, -1)
+    report()
+
+    # 2. Brackets: the first grid interval in each direction where the margin turns negative.
+    base_margin = float(_margins(base, base_policy, mask)[0])
+    brackets = []  # (cell, side, x_near, x_far, m_near, m_far)
+    for side, grid_values, m in (
+        (0, below_grid, margins[:, :grid]),
+        (1, above_grid, margins[:, grid : 2 * grid]),
+    ):
+        searched = grid_values[:, -1] != 1.0
+        for c in np.flatnonzero(searched):
+            negative = np.flatnonzero(m[c] < 0)
+            if negative.size == 0:
+                continue
+            i = int(negative[0])
+            x_near = 1.0 if i == 0 else grid_values[c, i - 1]
+            m_near = base_margin if i == 0 else m[c, i - 1]
+            brackets.append((c, side, x_near, grid_values[c, i], m_near, m[c, i]))
+
+    factor = np.full((C, 2), np.nan)
+    converged = np.ones((C, 2), dtype=bool)
+    changes = [["none", "none"] for _ in range(C)]
+    if brackets:
+        cell_of, side_of, x_near, x_far, m_near, m_far = (
+            np.array(v) for v in zip(*brackets, strict=True)
+        )
+        cell_of, side_of = cell_of.astype(int), side_of.astype(int)
+
+        def margin_at(x: np.ndarray, k: np.ndarray) -> np.ndarray:
+            res = solve(scaler.scaled(cell_of[k], x), objective)
+            return _margins(res, base_policy, mask)
+
+        found = brent_roots(
+            margin_at, x_near, x_far, m_near, m_far, xtol=xtol, rtol=RTOL_MIN,
+            callback=lambda done, total: report(),
+        )  # fmt: skip
+        factor[cell_of, side_of] = found.root
+        converged[cell_of, side_of] = found.converged
+        # 3. The states and ages that change just past each switching factor.
+        direction = np.where(side_of == 0, -1.0, 1.0)
+        step = PAST_STEP * np.maximum(1.0, found.root)
+        past = np.clip(
+            found.root + direction * step, np.minimum(x_near, x_far), np.maximum(x_near, x_far)
+        )
+        past_batch = scaler.scaled(cell_of, past)
+        past_result = solve(past_batch, objective)
+        texts = _change_texts(scaler.base, past_result, base_policy, mask)
+        for n, (c, side) in enumerate(zip(cell_of, side_of, strict=True)):
+            changes[c][side] = texts[n]
+        report()
+
+    # 4. Value lost by keeping the base-case policy at the loss factors.
+    loss_draws = (np.arange(C)[:, None] * factors.shape[1] + 2 * grid + np.arange(2)).reshape(-1)
+    loss_compiled = batch.take_draws(loss_draws)
+    best = result.expected_value(batch.start_distribution)[loss_draws]
+    kept = evaluate_policy(loss_compiled, base_policy[None], objective).value
+    same = (_cell_margins(result, base_policy, mask)[loss_draws] >= 0).all(axis=(1, 2))
+    # The base-case policy is still optimal: nothing is lost (not a rounding residue).
+    value_lost = np.where(same, 0.0, np.maximum(best - kept, 0.0)).reshape(C, 2)
+    value_lost[~loss_ok] = np.nan
+
+    return CellSensitivityResult(
+        cells=cells,
+        fixed=scaler.fixed,
+        factor_below=factor[:, 0],
+        factor_above=factor[:, 1],
+        search_below=search_below,
+        search_above=search_above,
+        changes_below=[c[0] for c in changes],
+        changes_above=[c[1] for c in changes],
+        converged=converged,
+        loss_factors=(float(loss[0]), float(loss[1])),
+        value_lost=value_lost,
+        base_value=base_value,
+        objective=objective,
+        search_max=float(search_max),
+        tied_cells=int(tied.sum()),
+        action_ids=scaler.base.action_ids,
+        state_ids=scaler.base.state_ids,
+    )
+
+
+def _margins(result: Any, base_policy: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """(D,) smallest margin of the base-case action over the decision cells in ``mask``."""
+    return _cell_margins(result, base_policy, mask).min(axis=(1, 2), initial=np.inf)
+
+
+def _cell_margins(result: Any, base_policy: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """(D, Tpi, S) ``Q(a0) - max_{b != a0} Q(b)``; ``inf`` outside ``mask``."""
+    q = np.asarray(result.q_values)  # (D, Tpi, S, A), -inf where not allowed
+    chosen = np.broadcast_to(base_policy[None, :, :, None], (q.shape[0], *base_policy.shape, 1))
+    q_base = np.take_along_axis(q, chosen, axis=-1)[..., 0]
+    others = q.copy()
+    np.put_along_axis(others, chosen, -np.inf, axis=-1)
+    margin = q_base - others.max(axis=-1)
+    return np.where(mask[None], margin, np.inf)
+
+
+def _change_texts(base: Any, result: Any, base_policy: np.ndarray, mask: np.ndarray) -> list[str]:
+    """Per draw, the states and ages whose best action differs from the base case."""
+    margin = _cell_margins(result, base_policy, mask)  # (D, Tpi, S)
+    changed = margin < 0
+    # Rounding may leave the switching cell at a tiny positive margin: name the closest.
+    lowest = margin.reshape(margin.shape[0], -1).argmin(axis=1)
+    none = ~changed.any(axis=(1, 2))
+    changed.reshape(changed.shape[0], -1)[np.flatnonzero(none), lowest[none]] = True
+    ages = policy_ages(base, base_policy.shape[0])
+    q = np.asarray(result.q_values)
+    texts = []
+    for d in range(changed.shape[0]):
+        t, s = np.nonzero(changed[d])
+        best = q[d, t, s].argmax(axis=-1)
+        frame = pd.DataFrame(
+            {
+                "cycle": t,
+                "age": ages[t],
+                "state": np.asarray(base.state_ids, dtype=object)[s],
+                "base_action": np.asarray(base.action_ids, dtype=object)[base_policy[t, s]],
+                "action": np.asarray(base.action_ids, dtype=object)[best],
+            }
+        )
+        parts = [
+            f"{state} {before}->{after} at {_ages_text(group)}"
+            for (state, before, after), group in frame.groupby(
+                ["state", "base_action", "action"], sort=False
+            )
+        ]
+        texts.append("; ".join(parts))
+    return texts
+
+
+def _progress(progress: Progress | None, steps: list[int]) -> Callable[[], None]:
+    """A counter that reports ``(done, estimated total)``; the total grows if exceeded."""
+
+    def report() -> None:
+        steps[0] += 1
+        steps[1] = max(steps[1], steps[0] + 1)
+        if progress is not None:
+            progress(steps[0], steps[1])
+
+    return report
+
+
+def _check_options(
+    model: Any, loss_factors: Any, search_max: float, grid: int, xtol: float
+) -> None:
+    problems = []
+    try:
+        low, high = (float(v) for v in loss_factors)
+        ok = np.isfinite(low) and np.isfinite(high) and 0 < low < 1 < high
+    except (TypeError, ValueError):
+        ok = False
+    if not ok:
+        problems.append(
+            Problem(
+                "sensitivity.loss_factors",
+                f"{loss_factors!r} is not allowed; expected two factors, one in (0, 1) and "
+                "one above 1 (e.g. 0.5 and 2)",
+            )
+        )
+    if not (isinstance(search_max, int | float) and np.isfinite(search_max) and search_max > 1):
+        problems.append(
+            Problem(
+                "sensitivity.search_max",
+                f"{search_max!r} is not allowed; expected a finite factor above 1",
+            )
+        )
+    if not isinstance(grid, int | np.integer) or grid < 2:
+        problems.append(
+            Problem("sensitivity.grid", f"{grid!r} is not allowed; expected an integer >= 2")
+        )
+    if not (isinstance(xtol, int | float) and np.isfinite(xtol) and xtol > 0):
+        problems.append(
+            Problem("sensitivity.xtol", f"{xtol!r} is not allowed; expected a number > 0")
+        )
+    if problems:
+        raise ModelError(problems, file=source_file(model))
