@@ -34,7 +34,7 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 
 LIGHT_MODEL = """
-format = 1
+format = 2
 title = "Synthetic: light model for the million-draw memory check"
 description = "Synthetic: invented for a benchmark; not a clinical scenario."
 
@@ -133,7 +133,11 @@ def _model(which: str):
 
 def child_psa(draws: int, seed: int, workers: int | None, which: str = "demo") -> dict:
     from caredecide.compile import default_memory_limit
-    from caredecide.uncertainty.psa import DEFAULT_MEMORY_LIMIT, default_chunk_size, run_psa
+    from caredecide.uncertainty.psa import (
+        DEFAULT_MEMORY_LIMIT,
+        analyse_uncertainty,
+        default_chunk_size,
+    )
 
     model = _model(which)
     start = time.perf_counter()
@@ -141,11 +145,11 @@ def child_psa(draws: int, seed: int, workers: int | None, which: str = "demo") -
         from caredecide.uncertainty.cluster import dask_client, dask_map
 
         with dask_client(workers=workers) as client:
-            result = run_psa(model, draws, seed, map_chunks=dask_map(client))
+            result = analyse_uncertainty(model, draws, seed, map_chunks=dask_map(client))
             worker_peaks = client.run(_peak_mib)  # each worker process's own peak
     else:
         worker_peaks = {}
-        result = run_psa(model, draws, seed)
+        result = analyse_uncertainty(model, draws, seed)
     solved = time.perf_counter()
     outputs = {
         "acceptability": result.acceptability_by_age_band(),

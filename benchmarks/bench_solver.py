@@ -50,7 +50,7 @@ def model_text(finite: bool) -> str:
     """TOML of a SYNTHETIC 12-state, 3-action benchmark model (all numbers invented)."""
     lines = [
         "# SYNTHETIC benchmark model: invented numbers, research use only.",
-        "format = 1",
+        "format = 2",
         'title = "Synthetic benchmark: 11 progressive stages, 3 treatment intensities"',
         "[settings]",
         "cycle_years = 1.0",

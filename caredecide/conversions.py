@@ -9,8 +9,11 @@ survival. A Markov cohort model needs probabilities per cycle. With a constant r
 
 so a probability over ``t_old`` years becomes ``1 - (1 - p) ** (t_new / t_old)`` over
 ``t_new`` years (Miller & Homan 1994, Med Decis Making 14:52-58; Fleurence & Hollenbeak
-2007, PharmacoEconomics 25(1):3-6). Relative risks and hazard ratios multiply the
-*rate*, not the probability.
+2007, PharmacoEconomics 25(1):3-6). A relative risk can be applied on either scale, and
+both are found in published models: on the rate (``1 - (1 - p) ** rr``, which always
+stays a probability) or on the probability itself (``p * rr``, which matches a relative
+risk estimated as a ratio of probabilities over the same period but can leave [0, 1]).
+The two agree for small ``p`` and differ as ``p`` grows (Fleurence & Hollenbeak 2007).
 
 When a state has two or more exits, converting each exit on its own is wrong (Gidwani &
 Russell 2020, PharmacoEconomics, doi 10.1007/s40273-020-00937-z): the exits compete. Put
@@ -32,16 +35,17 @@ import numpy as np
 from caredecide.errors import ModelError, Problem
 
 __all__ = [
-    "apply_hazard_ratio",
-    "apply_odds_ratio",
-    "apply_relative_risk",
+    "chance_for_period",
+    "chance_within",
     "generator_to_transition",
-    "median_survival_to_rate",
-    "probability_to_rate",
-    "rate_to_probability",
+    "rate_behind",
+    "rate_behind_median",
+    "rate_behind_survival",
     "rates_to_generator",
-    "rescale_probability",
-    "survival_to_rate",
+    "times_relative_risk",
+    "with_hazard_ratio",
+    "with_odds_ratio",
+    "with_relative_risk",
 ]
 
 # Uniformization: scale each step so that q t / 2^s <= 1/2, and sum the series to k = 18.
@@ -131,7 +135,7 @@ def _years(value: object, function: str, argument: str = "years") -> np.ndarray:
 
 
 # --------------------------------------------------------------- rates and probabilities
-def rate_to_probability(rate: object, years: object = 1.0) -> np.ndarray:
+def chance_within(rate: object, years: object = 1.0) -> np.ndarray:
     """Probability of at least one event within ``years`` at a constant rate.
 
     Parameters
@@ -146,12 +150,12 @@ def rate_to_probability(rate: object, years: object = 1.0) -> np.ndarray:
     numpy.ndarray, shape broadcast(rate, years)
         ``1 - exp(-rate * years)``, in [0, 1).
     """
-    r = _checked(rate, "rate_to_probability", "rate", low=0.0, meaning="a rate per year")
-    t = _years(years, "rate_to_probability")
+    r = _checked(rate, "chance_within", "rate", low=0.0, meaning="a rate per year")
+    t = _years(years, "chance_within")
     return -np.expm1(-r * t)  # expm1 keeps precision for small rates
 
 
-def probability_to_rate(p: object, years: object = 1.0) -> np.ndarray:
+def rate_behind(p: object, years: object = 1.0) -> np.ndarray:
     """Constant rate implied by a probability of an event within ``years``.
 
     Parameters
@@ -166,12 +170,12 @@ def probability_to_rate(p: object, years: object = 1.0) -> np.ndarray:
     numpy.ndarray
         ``-ln(1 - p) / years``, events per person-year.
     """
-    probability = _probability(p, "probability_to_rate", high_open=True)
-    t = _years(years, "probability_to_rate")
+    probability = _probability(p, "rate_behind", high_open=True)
+    t = _years(years, "rate_behind")
     return -np.log1p(-probability) / t
 
 
-def rescale_probability(p: object, from_years: object, to_years: object) -> np.ndarray:
+def chance_for_period(p: object, from_years: object, to_years: object) -> np.ndarray:
     """Probability over ``to_years`` from a probability over ``from_years`` (constant rate).
 
     Parameters
@@ -187,9 +191,9 @@ def rescale_probability(p: object, from_years: object, to_years: object) -> np.n
     numpy.ndarray
         ``1 - (1 - p) ** (to_years / from_years)``.
     """
-    probability = _probability(p, "rescale_probability")
-    t_from = _years(from_years, "rescale_probability", "from_years")
-    t_to = _years(to_years, "rescale_probability", "to_years")
+    probability = _probability(p, "chance_for_period")
+    t_from = _years(from_years, "chance_for_period", "from_years")
+    t_to = _years(to_years, "chance_for_period", "to_years")
     return 1.0 - (1.0 - probability) ** (t_to / t_from)
 
 
@@ -205,7 +209,7 @@ def _scale_rate(
     return 1.0 - (1.0 - probability) ** factor
 
 
-def apply_relative_risk(p: object, rr: object, years: object = 1.0) -> np.ndarray:
+def with_relative_risk(p: object, rr: object, years: object = 1.0) -> np.ndarray:
     """Apply a relative risk to a probability on the rate scale.
 
     Parameters
@@ -214,7 +218,8 @@ def apply_relative_risk(p: object, rr: object, years: object = 1.0) -> np.ndarra
         Baseline probability of the event within ``years``, in [0, 1].
     rr : array_like, broadcastable with ``p``
         Relative risk, >= 0. It multiplies the (constant) rate, so the result stays a
-        probability even for ``rr > 1``; multiplying ``p`` itself would not.
+        probability even for ``rr > 1``. :func:`times_relative_risk` applies it to the
+        probability instead; see its notes for when each is used.
     years : float
         The period ``p`` refers to (> 0); the result refers to the same period. The
         formula does not depend on it (the period cancels), it is checked only.
@@ -224,20 +229,70 @@ def apply_relative_risk(p: object, rr: object, years: object = 1.0) -> np.ndarra
     numpy.ndarray
         ``1 - (1 - p) ** rr``.
     """
-    return _scale_rate(p, rr, years, "apply_relative_risk", "rr")
+    return _scale_rate(p, rr, years, "with_relative_risk", "rr")
 
 
-def apply_hazard_ratio(p: object, hazard_ratio: object, years: object = 1.0) -> np.ndarray:
-    """Apply a hazard ratio to a probability: the same rule as :func:`apply_relative_risk`.
+def times_relative_risk(p: object, rr: object) -> np.ndarray:
+    """Apply a relative risk to a probability on the probability scale: ``p * rr``.
+
+    Parameters
+    ----------
+    p : array_like, shape (...)
+        Baseline probability of the event over a period, in [0, 1].
+    rr : array_like, broadcastable with ``p``
+        Relative risk, >= 0, estimated as a ratio of probabilities over the same period.
+
+    Returns
+    -------
+    numpy.ndarray, shape broadcast(p, rr)
+        ``p * rr``, over the same period as ``p``.
+
+    Raises
+    ------
+    ModelError
+        When an input is out of range, or when ``p * rr`` exceeds 1 (naming the first
+        offending ``p``, ``rr`` and product): a probability cannot exceed 1, and clipping
+        would hide the problem.
+
+    Notes
+    -----
+    A relative risk from a trial is a ratio of probabilities (risks) over the trial's
+    follow-up; applied to a baseline probability over that same period, ``p * rr`` is
+    its direct use, and many published models are built that way. :func:`with_relative_risk`
+    applies it to the rate instead (``1 - (1 - p) ** rr``), which is the right reading of
+    a hazard ratio or a rate ratio and stays in [0, 1] for any ``rr``. The two agree when
+    ``p`` is small and differ as ``p`` grows: for ``p = 0.3`` and ``rr = 0.5``, 0.15
+    against 0.16334 (Fleurence & Hollenbeak 2007, PharmacoEconomics 25(1):3-6).
+    """
+    function = "times_relative_risk"
+    probability = _probability(p, function)
+    factor = _checked(rr, function, "rr", low=0.0, meaning="a relative risk, >= 0")
+    product = probability * factor
+    over = product > 1.0
+    if over.any():
+        index = _first_index(over) if product.ndim else ()
+        p_b, rr_b = np.broadcast_arrays(probability, factor)
+        raise _fail(
+            function,
+            "p, rr",
+            f"p * rr = {float(product[index])!r} exceeds 1 (p = {float(p_b[index])!r}, "
+            f"rr = {float(rr_b[index])!r}); expected a product in [0, 1]: use a smaller "
+            "relative risk, or apply it to the rate (with_relative_risk)",
+        )
+    return product
+
+
+def with_hazard_ratio(p: object, hazard_ratio: object, years: object = 1.0) -> np.ndarray:
+    """Apply a hazard ratio to a probability: the same rule as :func:`with_relative_risk`.
 
     Under constant hazards a hazard ratio multiplies the rate, so
     ``p' = 1 - (1 - p) ** hazard_ratio``; shapes and ranges as in
-    :func:`apply_relative_risk`.
+    :func:`with_relative_risk`.
     """
-    return _scale_rate(p, hazard_ratio, years, "apply_hazard_ratio", "hazard_ratio")
+    return _scale_rate(p, hazard_ratio, years, "with_hazard_ratio", "hazard_ratio")
 
 
-def apply_odds_ratio(p: object, odds_ratio: object) -> np.ndarray:
+def with_odds_ratio(p: object, odds_ratio: object) -> np.ndarray:
     """Apply an odds ratio to a probability on the odds scale.
 
     Parameters
@@ -253,16 +308,16 @@ def apply_odds_ratio(p: object, odds_ratio: object) -> np.ndarray:
         ``OR p / (1 - p + OR p)``, i.e. odds ``OR p / (1 - p)`` turned back into a
         probability; written this way it stays exact at ``p = 1``.
     """
-    probability = _probability(p, "apply_odds_ratio")
+    probability = _probability(p, "with_odds_ratio")
     ratio = _checked(
-        odds_ratio, "apply_odds_ratio", "odds_ratio", low=0.0, low_open=True, meaning="a ratio, > 0"
+        odds_ratio, "with_odds_ratio", "odds_ratio", low=0.0, low_open=True, meaning="a ratio, > 0"
     )
     scaled = ratio * probability
     return scaled / (1.0 - probability + scaled)
 
 
 # ---------------------------------------------------------------------------- survival
-def survival_to_rate(survival: object, years: object) -> np.ndarray:
+def rate_behind_survival(survival: object, years: object) -> np.ndarray:
     """Constant rate from the proportion surviving (event-free) at ``years``.
 
     Parameters
@@ -279,18 +334,18 @@ def survival_to_rate(survival: object, years: object) -> np.ndarray:
     """
     s = _checked(
         survival,
-        "survival_to_rate",
+        "rate_behind_survival",
         "survival",
         low=0.0,
         high=1.0,
         low_open=True,
         meaning="a proportion surviving; 0 has no finite rate",
     )
-    t = _years(years, "survival_to_rate")
+    t = _years(years, "rate_behind_survival")
     return -np.log(s) / t
 
 
-def median_survival_to_rate(median_years: object) -> np.ndarray:
+def rate_behind_median(median_years: object) -> np.ndarray:
     """Constant rate from a median survival time: ``ln 2 / median``.
 
     Parameters
@@ -303,7 +358,7 @@ def median_survival_to_rate(median_years: object) -> np.ndarray:
     numpy.ndarray
         Events per person-year.
     """
-    m = _years(median_years, "median_survival_to_rate", "median_years")
+    m = _years(median_years, "rate_behind_median", "median_years")
     return np.log(2.0) / m
 
 

@@ -32,7 +32,7 @@ negative number ``nan``, a negative base to a fractional power gives ``nan``. Th
 caller validates the results (a probability must lie in [0, 1], ...) and reports the
 offending draw. Comparisons and logical operators give 1.0 (true) or 0.0 (false);
 any ``nan`` operand gives ``nan`` so that a bad value is never hidden. The
-conversion functions (``prob_to_rate``, ``with_rr``, ...) are the exception: they
+conversion functions (``rate_behind``, ``with_rr``, ...) are the exception: they
 call :mod:`caredecide.conversions`, which checks its inputs (a probability in [0, 1],
 a positive period, ...), and an out-of-range input raises :class:`ExpressionError`
 naming the place, the function and the first offending value.
@@ -89,36 +89,40 @@ def _conversions() -> ModuleType:
     return conversions
 
 
-def _prob_to_rate(p: np.ndarray, years: np.ndarray) -> np.ndarray:
-    return _conversions().probability_to_rate(p, years)
+def _rate_behind(p: np.ndarray, years: np.ndarray) -> np.ndarray:
+    return _conversions().rate_behind(p, years)
 
 
-def _rate_to_prob(rate: np.ndarray, years: np.ndarray) -> np.ndarray:
-    return _conversions().rate_to_probability(rate, years)
+def _chance_within(rate: np.ndarray, years: np.ndarray) -> np.ndarray:
+    return _conversions().chance_within(rate, years)
 
 
 def _per_cycle(p: np.ndarray, over_years: np.ndarray, cycle_years: np.ndarray) -> np.ndarray:
-    return _conversions().rescale_probability(p, over_years, cycle_years)
+    return _conversions().chance_for_period(p, over_years, cycle_years)
 
 
 def _with_relative_risk(p: np.ndarray, rr: np.ndarray) -> np.ndarray:
-    return _conversions().apply_relative_risk(p, rr)
+    return _conversions().with_relative_risk(p, rr)
+
+
+def _times_relative_risk(p: np.ndarray, rr: np.ndarray) -> np.ndarray:
+    return _conversions().times_relative_risk(p, rr)
 
 
 def _with_hazard_ratio(p: np.ndarray, hazard_ratio: np.ndarray) -> np.ndarray:
-    return _conversions().apply_hazard_ratio(p, hazard_ratio)
+    return _conversions().with_hazard_ratio(p, hazard_ratio)
 
 
 def _with_odds_ratio(p: np.ndarray, odds_ratio: np.ndarray) -> np.ndarray:
-    return _conversions().apply_odds_ratio(p, odds_ratio)
+    return _conversions().with_odds_ratio(p, odds_ratio)
 
 
-def _surv_to_rate(survival: np.ndarray, years: np.ndarray) -> np.ndarray:
-    return _conversions().survival_to_rate(survival, years)
+def _rate_behind_survival(survival: np.ndarray, years: np.ndarray) -> np.ndarray:
+    return _conversions().rate_behind_survival(survival, years)
 
 
-def _median_to_rate(median_years: np.ndarray) -> np.ndarray:
-    return _conversions().median_survival_to_rate(median_years)
+def _rate_behind_median(median_years: np.ndarray) -> np.ndarray:
+    return _conversions().rate_behind_median(median_years)
 
 
 def _clip(x: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
@@ -149,14 +153,15 @@ class FunctionSpec(NamedTuple):
 
 FUNCTIONS: Mapping[str, FunctionSpec] = MappingProxyType(
     {
-        "prob_to_rate": FunctionSpec(_prob_to_rate, 2),
-        "rate_to_prob": FunctionSpec(_rate_to_prob, 2),
+        "rate_behind": FunctionSpec(_rate_behind, 2),
+        "chance_within": FunctionSpec(_chance_within, 2),
         "per_cycle": FunctionSpec(_per_cycle, 2),
         "with_rr": FunctionSpec(_with_relative_risk, 2),
+        "times_rr": FunctionSpec(_times_relative_risk, 2),
         "with_hr": FunctionSpec(_with_hazard_ratio, 2),
         "with_or": FunctionSpec(_with_odds_ratio, 2),
-        "surv_to_rate": FunctionSpec(_surv_to_rate, 2),
-        "median_to_rate": FunctionSpec(_median_to_rate, 1),
+        "rate_behind_survival": FunctionSpec(_rate_behind_survival, 2),
+        "rate_behind_median": FunctionSpec(_rate_behind_median, 1),
         "min": FunctionSpec(np.minimum, 2),
         "max": FunctionSpec(np.maximum, 2),
         "exp": FunctionSpec(np.exp, 1),
@@ -169,14 +174,15 @@ FUNCTIONS: Mapping[str, FunctionSpec] = MappingProxyType(
 
 FUNCTION_SIGNATURES: Mapping[str, str] = MappingProxyType(
     {
-        "prob_to_rate": "prob_to_rate(p, years)",
-        "rate_to_prob": "rate_to_prob(rate, years)",
+        "rate_behind": "rate_behind(p, years)",
+        "chance_within": "chance_within(rate, years)",
         "per_cycle": "per_cycle(p, over_years)",
         "with_rr": "with_rr(p, relative_risk)",
+        "times_rr": "times_rr(p, relative_risk)",
         "with_hr": "with_hr(p, hazard_ratio)",
         "with_or": "with_or(p, odds_ratio)",
-        "surv_to_rate": "surv_to_rate(survival, years)",
-        "median_to_rate": "median_to_rate(median_years)",
+        "rate_behind_survival": "rate_behind_survival(survival, years)",
+        "rate_behind_median": "rate_behind_median(median_years)",
         "min": "min(a, b)",
         "max": "max(a, b)",
         "exp": "exp(x)",
@@ -448,12 +454,17 @@ class _Parser:
     def call(self, name: _Token, depth: int) -> None:
         spec = FUNCTIONS.get(name.text)
         if spec is None:
+            from caredecide.upgrade import RENAMED_FUNCTIONS
+
             known = ", ".join(sorted(FUNCTIONS))
-            raise self.error(
-                name,
-                f"unknown function {name.text!r}{_suggest(name.text, FUNCTIONS)}",
-                f"one of {known}",
+            renamed = RENAMED_FUNCTIONS.get(name.text)
+            hint = (
+                f" ({name.text} was renamed {renamed} in model file format 2; "
+                "`caredecide check --upgrade FILE` rewrites a format-1 file)"
+                if renamed
+                else _suggest(name.text, FUNCTIONS)
             )
+            raise self.error(name, f"unknown function {name.text!r}{hint}", f"one of {known}")
         opened = self.advance()  # "("
         n_arguments = 0
         if self.peek().text != ")":

@@ -21,7 +21,7 @@ from typing import Any
 
 import numpy as np
 
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 """The model-file format this code reads and writes."""
 
 ExpressionText = float | str

@@ -18,7 +18,7 @@ from caredecide.modelfile import loads_model
 from synthetic_cohort import demo_model_path as _demo_model_path
 
 SMALL_MODEL: dict[str, Any] = {
-    "format": 1,
+    "format": 2,
     "title": "Synthetic test model",
     "description": "Invented for tests.",
     "settings": {

@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 
 from caredecide.uncertainty.cluster import ClusterError, dask_client, dask_map
-from caredecide.uncertainty.psa import run_psa
+from caredecide.uncertainty.psa import analyse_uncertainty
 from tests.conftest import load_dict
 from tests.test_psa import uncertain_model_dict
 
@@ -27,9 +27,9 @@ def client():
 
 def test_dask_run_equals_serial_run(client):
     model = load_dict(uncertain_model_dict())
-    serial = run_psa(model, 300, seed=77, chunk_size=300, n_frequent=0)
+    serial = analyse_uncertainty(model, 300, seed=77, chunk_size=300, n_frequent=0)
     done = []
-    on_dask = run_psa(
+    on_dask = analyse_uncertainty(
         model,
         300,
         seed=77,

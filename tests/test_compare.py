@@ -152,7 +152,7 @@ def test_model_path_is_loaded():
 # --- a model with one action: the optimal policy *is* the fixed strategy ------------------
 
 ONE_ACTION_MODEL = """# SYNTHETIC test model: every number is invented.
-format = 1
+format = 2
 title = "Synthetic one-action model"
 description = "Synthetic: a single action, so there is nothing to decide."
 

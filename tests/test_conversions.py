@@ -12,16 +12,17 @@ from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
 from caredecide.conversions import (
-    apply_hazard_ratio,
-    apply_odds_ratio,
-    apply_relative_risk,
+    chance_for_period,
+    chance_within,
     generator_to_transition,
-    median_survival_to_rate,
-    probability_to_rate,
-    rate_to_probability,
+    rate_behind,
+    rate_behind_median,
+    rate_behind_survival,
     rates_to_generator,
-    rescale_probability,
-    survival_to_rate,
+    times_relative_risk,
+    with_hazard_ratio,
+    with_odds_ratio,
+    with_relative_risk,
 )
 from caredecide.errors import ModelError
 
@@ -36,31 +37,31 @@ ratios = st.floats(0.0, 10.0, allow_nan=False)
 
 
 # ------------------------------------------------------------------ rates and probabilities
-def test_rate_to_probability_published_value():
+def test_chance_within_published_value():
     # Source: Fleurence & Hollenbeak 2007, PharmacoEconomics 25(1):3-6: r = 0.1/yr -> p = 0.0951626.
-    assert rate_to_probability(0.1) == pytest.approx(0.0951626, abs=PUBLISHED_7)
+    assert chance_within(0.1) == pytest.approx(0.0951626, abs=PUBLISHED_7)
     # The same over a 2-year period at half the rate.
-    assert rate_to_probability(0.05, years=2.0) == pytest.approx(0.0951626, abs=PUBLISHED_7)
+    assert chance_within(0.05, years=2.0) == pytest.approx(0.0951626, abs=PUBLISHED_7)
 
 
-def test_probability_to_rate_published_value():
+def test_rate_behind_published_value():
     # Source: Fleurence & Hollenbeak 2007: annual p = 0.2 -> r = 0.2231436 per year.
-    assert probability_to_rate(0.2) == pytest.approx(0.2231436, abs=PUBLISHED_7)
+    assert rate_behind(0.2) == pytest.approx(0.2231436, abs=PUBLISHED_7)
     # A 6-month probability of 0.2 is twice the rate per year.
-    assert probability_to_rate(0.2, years=0.5) == pytest.approx(2 * 0.2231436, abs=2 * PUBLISHED_7)
+    assert rate_behind(0.2, years=0.5) == pytest.approx(2 * 0.2231436, abs=2 * PUBLISHED_7)
 
 
-def test_rescale_probability_published_values():
+def test_chance_for_period_published_values():
     # Source: Fleurence & Hollenbeak 2007; Miller & Homan 1994, Med Decis Making 14:52-58:
     # annual p = 0.2 -> monthly p = 0.0184235; 5-year p = 0.5 -> annual p = 0.1294494.
-    assert rescale_probability(0.2, 1.0, 1.0 / 12.0) == pytest.approx(0.0184235, abs=PUBLISHED_7)
-    assert rescale_probability(0.5, 5.0, 1.0) == pytest.approx(0.1294494, abs=PUBLISHED_7)
+    assert chance_for_period(0.2, 1.0, 1.0 / 12.0) == pytest.approx(0.0184235, abs=PUBLISHED_7)
+    assert chance_for_period(0.5, 5.0, 1.0) == pytest.approx(0.1294494, abs=PUBLISHED_7)
 
 
 def test_conversions_broadcast_over_arrays():
     # Source: Fleurence & Hollenbeak 2007 (values above), evaluated as one array of draws.
     draws = np.array([[0.1], [0.2231436]])
-    result = rate_to_probability(draws, years=np.array([1.0, 2.0]))
+    result = chance_within(draws, years=np.array([1.0, 2.0]))
     assert result.shape == (2, 2)
     np.testing.assert_allclose(result[:, 0], [0.0951626, 0.2], atol=PUBLISHED_7)
 
@@ -71,8 +72,8 @@ def test_rate_probability_round_trip(rate, years):
     # Inverse functions by construction (common practice). Beyond r t = 15 the probability
     # is within 3e-7 of 1 and -ln(1 - p) is ill-conditioned in floating point.
     assume(rate * years <= 15.0)
-    p = rate_to_probability(rate, years)
-    assert probability_to_rate(p, years) == pytest.approx(rate, rel=1e-7, abs=1e-12)
+    p = chance_within(rate, years)
+    assert rate_behind(p, years) == pytest.approx(rate, rel=1e-7, abs=1e-12)
 
 
 @settings(deadline=None)
@@ -80,67 +81,96 @@ def test_rate_probability_round_trip(rate, years):
 def test_rescale_composes(p, a, b, c):
     # A constant rate makes rescaling transitive: a -> b -> c equals a -> c (common practice).
     # Skip intermediates that round to 1 (they lose p in floating point).
-    assume(1.0 - rescale_probability(p, a, b) > 1e-6)
-    direct = rescale_probability(p, a, c)
-    via = rescale_probability(rescale_probability(p, a, b), b, c)
+    assume(1.0 - chance_for_period(p, a, b) > 1e-6)
+    direct = chance_for_period(p, a, c)
+    via = chance_for_period(chance_for_period(p, a, b), b, c)
     assert via == pytest.approx(direct, rel=1e-9, abs=1e-12)
 
 
 # ------------------------------------------------------------------------ relative effects
-def test_relative_risk_acts_on_the_rate():
-    # Source: Fleurence & Hollenbeak 2007: p = 0.3, RR = 0.5 -> 0.1633400, not 0.3 x 0.5 = 0.15.
-    assert apply_relative_risk(0.3, 0.5) == pytest.approx(0.1633400, abs=PUBLISHED_7)
-    assert apply_relative_risk(0.3, 0.5) != pytest.approx(0.15, abs=1e-3)
+def test_relative_risk_on_the_rate_and_on_the_probability():
+    # Source: Fleurence & Hollenbeak 2007: p = 0.3, RR = 0.5 -> 0.1633400 applied to the
+    # rate, 0.3 x 0.5 = 0.15 applied to the probability.
+    assert with_relative_risk(0.3, 0.5) == pytest.approx(0.1633400, abs=PUBLISHED_7)
+    assert times_relative_risk(0.3, 0.5) == pytest.approx(0.15, abs=1e-15)
+    assert with_relative_risk(0.3, 0.5) != pytest.approx(0.15, abs=1e-3)
     # Same for a hazard ratio (constant hazards).
-    assert apply_hazard_ratio(0.3, 0.5) == pytest.approx(0.1633400, abs=PUBLISHED_7)
+    assert with_hazard_ratio(0.3, 0.5) == pytest.approx(0.1633400, abs=PUBLISHED_7)
 
 
 def test_relative_risk_above_one_stays_a_probability():
     # Multiplying p = 0.6 by RR = 2 would give 1.2; on the rate scale 1 - 0.4^2 = 0.84
     # (hand arithmetic; Fleurence & Hollenbeak 2007 rule).
-    assert apply_relative_risk(0.6, 2.0) == pytest.approx(0.84, abs=1e-15)
+    assert with_relative_risk(0.6, 2.0) == pytest.approx(0.84, abs=1e-15)
+
+
+def test_probability_scale_relative_risk_hand_values():
+    # Hand arithmetic (p * RR): 0.02 x 0.75 = 0.015; 0.4 x 2.5 = 1.0 is still a probability.
+    np.testing.assert_allclose(
+        times_relative_risk(np.array([0.02, 0.4]), np.array([0.75, 2.5])), [0.015, 1.0], rtol=1e-15
+    )
+
+
+@settings(deadline=None)
+@given(p=st.floats(0.0, 0.2), ratio=st.floats(0.0, 2.0))
+def test_both_scales_agree_for_small_probabilities(p, ratio):
+    # 1 - (1 - p)^RR = RR p + O(p^2): the difference is at most RR |RR - 1| p^2 / 2 (1 - p)^(RR-2)
+    # by Taylor's theorem (common practice); bounded here by RR |RR - 1| p^2 / (1 - p)^2.
+    difference = abs(with_relative_risk(p, ratio) - times_relative_risk(p, ratio))
+    assert difference <= ratio * abs(ratio - 1.0) * p**2 / (1.0 - p) ** 2 + 1e-15
+
+
+def test_error_probability_scale_product_above_one():
+    with raises(
+        "times_relative_risk(p, rr)", "p * rr = 1.2", "p = 0.6", "rr = 2.0", "with_relative_risk"
+    ):
+        times_relative_risk(np.array([0.1, 0.6]), 2.0)
+    with raises("times_relative_risk(rr)", "got -0.5"):
+        times_relative_risk(0.3, -0.5)
+    with raises("times_relative_risk(p)", "got 1.5"):
+        times_relative_risk(1.5, 0.5)
 
 
 @settings(deadline=None)
 @given(p=probabilities, ratio=ratios, years=periods)
 def test_hazard_ratio_is_relative_risk_and_period_free(p, ratio, years):
     # One rule for both; the period cancels (rate r = -ln(1-p)/t scaled then converted back).
-    expected = apply_relative_risk(p, ratio)
-    assert apply_hazard_ratio(p, ratio, years) == expected
-    assert apply_relative_risk(p, ratio, years) == expected
+    expected = with_relative_risk(p, ratio)
+    assert with_hazard_ratio(p, ratio, years) == expected
+    assert with_relative_risk(p, ratio, years) == expected
     # Equals going through the rate explicitly.
     if p < 0.999:
-        via_rate = rate_to_probability(ratio * probability_to_rate(p, years), years)
+        via_rate = chance_within(ratio * rate_behind(p, years), years)
         assert expected == pytest.approx(via_rate, rel=1e-9, abs=1e-12)
 
 
 def test_odds_ratio_published_formula():
     # Source: Zhang & Yu 1998, JAMA 280(19):1690-1691 (from memory): RR = OR / (1 - p0 + p0 OR).
     # p0 = 0.2, OR = 2: odds 0.25 x 2 = 0.5 -> p = 0.5 / 1.5 = 1/3 (hand arithmetic).
-    assert apply_odds_ratio(0.2, 2.0) == pytest.approx(1.0 / 3.0, abs=1e-15)
+    assert with_odds_ratio(0.2, 2.0) == pytest.approx(1.0 / 3.0, abs=1e-15)
     p0, odds_ratio = 0.35, 0.7
     rr = odds_ratio / (1.0 - p0 + p0 * odds_ratio)
-    assert apply_odds_ratio(p0, odds_ratio) == pytest.approx(rr * p0, rel=1e-14)
+    assert with_odds_ratio(p0, odds_ratio) == pytest.approx(rr * p0, rel=1e-14)
 
 
 @settings(deadline=None)
 @given(p=st.floats(0.001, 0.999), odds_ratio=st.floats(0.01, 100.0))
 def test_odds_ratio_multiplies_the_odds(p, odds_ratio):
     # Definition of the odds ratio (common practice).
-    q = apply_odds_ratio(p, odds_ratio)
+    q = with_odds_ratio(p, odds_ratio)
     assert 0.0 <= q <= 1.0
     assert q / (1.0 - q) == pytest.approx(odds_ratio * p / (1.0 - p), rel=1e-9)
 
 
 # --------------------------------------------------------------------------------- survival
-def test_survival_and_median_to_rate_deale():
+def test_rate_behind_survival_and_median_deale():
     # Source: Beck, Kassirer & Pauker 1982, Am J Med 73(6):883-888 (DEALE): 5-year survival
     # 0.5 -> mu = 0.138629/yr -> life expectancy 1/mu = 7.213475 y.
-    mu = survival_to_rate(0.5, 5.0)
+    mu = rate_behind_survival(0.5, 5.0)
     assert mu == pytest.approx(0.138629, abs=PUBLISHED_6)
     assert 1.0 / mu == pytest.approx(7.213475, abs=PUBLISHED_6)
     # A median survival of 5 years is the same statement: ln 2 / 5.
-    assert median_survival_to_rate(5.0) == pytest.approx(mu, rel=1e-15)
+    assert rate_behind_median(5.0) == pytest.approx(mu, rel=1e-15)
 
 
 def test_deale_rates_add_through_the_generator():
@@ -196,7 +226,7 @@ def test_converting_each_exit_separately_is_wrong():
     # Source: Gidwani & Russell 2020, PharmacoEconomics (doi 10.1007/s40273-020-00937-z):
     # with two exits, converting each rate on its own gives exits 0.0951626 and 0.0487706
     # and a stay of 0.8560668, against 0.860708 with the generator (Welton & Ades 2005).
-    separately = rate_to_probability(np.array([0.1, 0.05]))
+    separately = chance_within(np.array([0.1, 0.05]))
     stay_separately = 1.0 - separately.sum()
     P = generator_to_transition(two_exit_generator(0.1, 0.05), 1.0)
     assert stay_separately == pytest.approx(0.8560668, abs=PUBLISHED_7)
@@ -205,12 +235,12 @@ def test_converting_each_exit_separately_is_wrong():
     assert abs(P[0, 2] - separately[1]) > 2e-3
 
 
-def test_one_exit_matches_rate_to_probability():
+def test_one_exit_matches_chance_within():
     # A single exit has no competition: expm reduces to p = 1 - exp(-r t) (Fleurence &
     # Hollenbeak 2007).
     G = rates_to_generator(np.array([[0.0, 0.3], [0.0, 0.0]]))
     P = generator_to_transition(G, 2.5)
-    assert P[0, 1] == pytest.approx(rate_to_probability(0.3, 2.5), abs=1e-15)
+    assert P[0, 1] == pytest.approx(chance_within(0.3, 2.5), abs=1e-15)
 
 
 def random_generators(draw_rates: np.ndarray) -> np.ndarray:
@@ -289,80 +319,80 @@ def raises(*words: str):
 
 
 def test_error_negative_rate():
-    with raises("rate_to_probability(rate)", "[0, inf)", "got -0.1 at index (1,)"):
-        rate_to_probability([0.2, -0.1])
+    with raises("chance_within(rate)", "[0, inf)", "got -0.1 at index (1,)"):
+        chance_within([0.2, -0.1])
 
 
 def test_error_rate_not_finite():
-    with raises("rate_to_probability(rate)", "got nan"):
-        rate_to_probability(float("nan"))
+    with raises("chance_within(rate)", "got nan"):
+        chance_within(float("nan"))
 
 
 def test_error_rate_not_a_number():
-    with raises("rate_to_probability(rate)", "expected a number", "'fast'"):
-        rate_to_probability("fast")
+    with raises("chance_within(rate)", "expected a number", "'fast'"):
+        chance_within("fast")
 
 
 def test_error_years_not_positive():
-    with raises("rate_to_probability(years)", "(0, inf)", "got 0.0"):
-        rate_to_probability(0.1, years=0.0)
+    with raises("chance_within(years)", "(0, inf)", "got 0.0"):
+        chance_within(0.1, years=0.0)
 
 
 def test_error_probability_of_one_has_no_rate():
-    with raises("probability_to_rate(p)", "[0, 1)", "got 1.0"):
-        probability_to_rate(1.0)
+    with raises("rate_behind(p)", "[0, 1)", "got 1.0"):
+        rate_behind(1.0)
 
 
 def test_error_probability_out_of_range():
-    with raises("probability_to_rate(p)", "got 1.5"):
-        probability_to_rate(1.5)
-    with raises("rescale_probability(p)", "[0, 1]", "got -0.2"):
-        rescale_probability(-0.2, 1.0, 2.0)
+    with raises("rate_behind(p)", "got 1.5"):
+        rate_behind(1.5)
+    with raises("chance_for_period(p)", "[0, 1]", "got -0.2"):
+        chance_for_period(-0.2, 1.0, 2.0)
 
 
 def test_error_rescale_periods():
-    with raises("rescale_probability(from_years)", "got 0.0"):
-        rescale_probability(0.2, 0.0, 1.0)
-    with raises("rescale_probability(to_years)", "got -1.0"):
-        rescale_probability(0.2, 1.0, -1.0)
+    with raises("chance_for_period(from_years)", "got 0.0"):
+        chance_for_period(0.2, 0.0, 1.0)
+    with raises("chance_for_period(to_years)", "got -1.0"):
+        chance_for_period(0.2, 1.0, -1.0)
 
 
 def test_error_relative_risk_negative():
-    with raises("apply_relative_risk(rr)", "ratio", "got -0.5"):
-        apply_relative_risk(0.3, -0.5)
+    with raises("with_relative_risk(rr)", "ratio", "got -0.5"):
+        with_relative_risk(0.3, -0.5)
 
 
 def test_error_relative_risk_probability_and_years():
-    with raises("apply_relative_risk(p)", "got 2.0"):
-        apply_relative_risk(2.0, 0.5)
-    with raises("apply_relative_risk(years)", "got -1.0"):
-        apply_relative_risk(0.3, 0.5, years=-1.0)
+    with raises("with_relative_risk(p)", "got 2.0"):
+        with_relative_risk(2.0, 0.5)
+    with raises("with_relative_risk(years)", "got -1.0"):
+        with_relative_risk(0.3, 0.5, years=-1.0)
 
 
 def test_error_hazard_ratio_named():
-    with raises("apply_hazard_ratio(hazard_ratio)", "got -2.0"):
-        apply_hazard_ratio(0.3, -2.0)
+    with raises("with_hazard_ratio(hazard_ratio)", "got -2.0"):
+        with_hazard_ratio(0.3, -2.0)
 
 
 def test_error_odds_ratio_not_positive():
-    with raises("apply_odds_ratio(odds_ratio)", "(0, inf)", "got 0.0"):
-        apply_odds_ratio(0.3, 0.0)
-    with raises("apply_odds_ratio(p)", "got 1.2"):
-        apply_odds_ratio(1.2, 2.0)
+    with raises("with_odds_ratio(odds_ratio)", "(0, inf)", "got 0.0"):
+        with_odds_ratio(0.3, 0.0)
+    with raises("with_odds_ratio(p)", "got 1.2"):
+        with_odds_ratio(1.2, 2.0)
 
 
 def test_error_survival_zero():
-    with raises("survival_to_rate(survival)", "(0, 1]", "got 0.0"):
-        survival_to_rate(0.0, 5.0)
-    with raises("survival_to_rate(survival)", "got 1.1"):
-        survival_to_rate(1.1, 5.0)
-    with raises("survival_to_rate(years)", "got 0.0"):
-        survival_to_rate(0.5, 0.0)
+    with raises("rate_behind_survival(survival)", "(0, 1]", "got 0.0"):
+        rate_behind_survival(0.0, 5.0)
+    with raises("rate_behind_survival(survival)", "got 1.1"):
+        rate_behind_survival(1.1, 5.0)
+    with raises("rate_behind_survival(years)", "got 0.0"):
+        rate_behind_survival(0.5, 0.0)
 
 
 def test_error_median_survival_not_positive():
-    with raises("median_survival_to_rate(median_years)", "got -3.0"):
-        median_survival_to_rate(-3.0)
+    with raises("rate_behind_median(median_years)", "got -3.0"):
+        rate_behind_median(-3.0)
 
 
 def test_error_generator_not_square():

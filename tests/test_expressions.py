@@ -36,9 +36,9 @@ def test_contract_constants() -> None:
     assert REST_KEYWORD == "rest"
     assert RESERVED_NAMES == {"age", "cycle", "years", "cycle_years", "background"}
     expected_arity = {
-        "prob_to_rate": 2, "rate_to_prob": 2, "per_cycle": 2, "with_rr": 2, "with_hr": 2,
-        "with_or": 2, "surv_to_rate": 2, "median_to_rate": 1, "min": 2, "max": 2, "exp": 1,
-        "log": 1, "clip": 3, "when": 3,
+        "rate_behind": 2, "chance_within": 2, "per_cycle": 2, "with_rr": 2, "times_rr": 2,
+        "with_hr": 2, "with_or": 2, "rate_behind_survival": 2, "rate_behind_median": 1,
+        "min": 2, "max": 2, "exp": 1, "log": 1, "clip": 3, "when": 3,
     }  # fmt: skip
     assert {name: arity for name, (_, arity) in FUNCTIONS.items()} == expected_arity
     assert set(FUNCTION_SIGNATURES) == set(FUNCTIONS)
@@ -215,24 +215,26 @@ def test_incompatible_shapes_raise_naming_the_place() -> None:
     ("text", "variables", "expected", "tolerance"),
     [
         # Source: Fleurence & Hollenbeak 2007, PharmacoEconomics 25(1):3-6 — p = 1 - exp(-rt).
-        ("rate_to_prob(r, 1)", {"r": 0.1}, 0.0951626, 5e-8),
+        ("chance_within(r, 1)", {"r": 0.1}, 0.0951626, 5e-8),
         # Source: Fleurence & Hollenbeak 2007 — r = -ln(1 - p)/t.
-        ("prob_to_rate(p, 1)", {"p": 0.2}, 0.2231436, 5e-8),
+        ("rate_behind(p, 1)", {"p": 0.2}, 0.2231436, 5e-8),
         # Source: Fleurence & Hollenbeak 2007 — annual 0.2 -> monthly 0.0184235.
         ("per_cycle(p, 1)", {"p": 0.2, "cycle_years": 1 / 12}, 0.0184235, 5e-8),
         # Source: Miller & Homan 1994, Med Decis Making 14:52-58 — 5-year 0.5 -> annual.
         ("per_cycle(p, 5)", {"p": 0.5, "cycle_years": 1.0}, 0.1294494, 5e-8),
         # Source: Fleurence & Hollenbeak 2007 — RR on the rate scale, p' = 1 - (1 - p)^RR.
         ("with_rr(p, rr)", {"p": 0.3, "rr": 0.5}, 0.1633400, 5e-8),
+        # Source: Fleurence & Hollenbeak 2007 — RR on the probability scale, p' = RR p.
+        ("times_rr(p, rr)", {"p": 0.3, "rr": 0.5}, 0.15, 1e-15),
         # Source: Fleurence & Hollenbeak 2007 — a hazard ratio acts on the rate the same way.
         ("with_hr(p, hr)", {"p": 0.3, "hr": 0.5}, 0.1633400, 5e-8),
         # Source: Beck, Kassirer & Pauker 1982, Am J Med 73(6):883-888 (DEALE) —
         # 5-year survival 0.5 -> mu = 0.138629 per year.
-        ("surv_to_rate(s, 5)", {"s": 0.5}, 0.138629, 5e-7),
+        ("rate_behind_survival(s, 5)", {"s": 0.5}, 0.138629, 5e-7),
         # Same source: a 5-year median survival is 5-year survival 0.5, mu = ln 2 / 5.
-        ("median_to_rate(m)", {"m": 5.0}, 0.138629, 5e-7),
+        ("rate_behind_median(m)", {"m": 5.0}, 0.138629, 5e-7),
         # Beck et al. 1982: life expectancy 1/mu = 7.213475 y for 5-year survival 0.5.
-        ("1 / surv_to_rate(0.5, 5)", {}, 7.213475, 5e-7),
+        ("1 / rate_behind_survival(0.5, 5)", {}, 7.213475, 5e-7),
         # Beck et al. 1982: rates add; population LE 17 y plus excess 0.1/yr -> 6.296296 y.
         ("1 / (1 / le + excess)", {"le": 17.0, "excess": 0.1}, 6.296296, 5e-7),
         # Common practice: odds = p/(1-p); p = 0.2 -> odds 0.25, x OR 2 -> 0.5 -> p = 1/3.
@@ -301,7 +303,7 @@ def test_nan_is_never_hidden_by_comparisons_or_logic(text: str) -> None:
         ("np.exp(1)", 3, "attribute access"),
         ("p[0]", 2, "subscripts"),
         ("foo(p)", 1, "unknown function 'foo'"),
-        ("rate_to_probability(r, 1)", 1, "did you mean rate_to_prob"),
+        ("chance_witin(r, 1)", 1, "did you mean chance_within"),
         ("exp(1, 2)", 1, "exp takes 1 argument, got 2; expected exp(x)"),
         ("clip(x, 0)", 1, "clip takes 3 arguments, got 2"),
         ("min()", 1, "min takes 2 arguments, got 0"),

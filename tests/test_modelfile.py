@@ -181,7 +181,7 @@ def random_models(draw) -> Model:
     }
     rates = {
         action.id: {
-            s: {dead: f"prob_to_rate(p{draw(st.integers(0, n_params - 1))}, 1)"}
+            s: {dead: f"rate_behind(p{draw(st.integers(0, n_params - 1))}, 1)"}
             for (a, s), rated in by_rates.items()
             if a == action.id and rated
         }

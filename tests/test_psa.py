@@ -12,7 +12,7 @@ from caredecide.compile import compile_model
 from caredecide.errors import ModelError
 from caredecide.objective import Objective
 from caredecide.solvers import solve
-from caredecide.uncertainty.psa import Candidate, PSAResult, run_psa
+from caredecide.uncertainty.psa import Candidate, PSAResult, analyse_uncertainty
 from caredecide.uncertainty.voi import evpi
 from tests.conftest import load_dict, small_model_dict
 
@@ -55,7 +55,7 @@ def model():
 
 @pytest.fixture(scope="module")
 def result(model):
-    return run_psa(model, DRAWS, seed=2024, chunk_size=DRAWS, keep_policies=True)
+    return analyse_uncertainty(model, DRAWS, seed=2024, chunk_size=DRAWS, keep_policies=True)
 
 
 def test_acceptability_shares_sum_to_one_per_state_and_age(result):
@@ -97,8 +97,12 @@ def _assert_same(a, b):
 
 def test_chunk_size_does_not_change_any_result(model):
     # No pilot (n_frequent=0): every draw goes through the chunked runner.
-    whole = run_psa(model, DRAWS, seed=2024, chunk_size=DRAWS, keep_policies=True, n_frequent=0)
-    split = run_psa(model, DRAWS, seed=2024, chunk_size=37, keep_policies=True, n_frequent=0)
+    whole = analyse_uncertainty(
+        model, DRAWS, seed=2024, chunk_size=DRAWS, keep_policies=True, n_frequent=0
+    )
+    split = analyse_uncertainty(
+        model, DRAWS, seed=2024, chunk_size=37, keep_policies=True, n_frequent=0
+    )
     assert split.chunk_size == 37
     _assert_same(split, whole)
 
@@ -106,8 +110,10 @@ def test_chunk_size_does_not_change_any_result(model):
 def test_pilot_block_and_chunks_give_the_same_results(model):
     # The first 1,000 draws are the pilot; the rest run in chunks of any size.
     done = []
-    whole = run_psa(model, 1300, seed=8, chunk_size=1300, n_frequent=2, keep_policies=True)
-    split = run_psa(
+    whole = analyse_uncertainty(
+        model, 1300, seed=8, chunk_size=1300, n_frequent=2, keep_policies=True
+    )
+    split = analyse_uncertainty(
         model,
         1300,
         seed=8,
@@ -144,7 +150,7 @@ def test_evpi_is_nonnegative_and_at_least_evpi_among_candidates(result):
 
 def test_evpi_is_zero_when_every_parameter_is_fixed():
     data = small_model_dict()  # no distributions at all
-    fixed = run_psa(load_dict(data), 50, seed=1)
+    fixed = analyse_uncertainty(load_dict(data), 50, seed=1)
     assert fixed.evpi()["evpi"] == 0.0
     assert fixed.evpi()["evpi_among_candidates"] == 0.0
     assert fixed.parameters.shape == (50, 0)
@@ -235,7 +241,7 @@ def test_infinite_horizon_has_one_age_band():
     data = uncertain_model_dict()
     data["settings"].pop("horizon_cycles")
     data["settings"]["horizon"] = "infinite"
-    stationary = run_psa(load_dict(data), 60, seed=2)
+    stationary = analyse_uncertainty(load_dict(data), 60, seed=2)
     bands = stationary.acceptability_by_age_band()
     assert len(bands) == 2 and bands["age_from"].isna().all()
     np.testing.assert_allclose(bands["share"].sum(), 1.0)
@@ -245,13 +251,15 @@ def test_user_strategies_join_the_candidates(model):
     from caredecide.strategies import from_age
 
     extra = from_age("treat", 63.0, name="my own rule")
-    result = run_psa(model, 30, seed=1, strategies=[extra], n_frequent=0)
+    result = analyse_uncertainty(model, 30, seed=1, strategies=[extra], n_frequent=0)
     names = [n for c in result.candidates for n in (c.name, *c.also)]
     assert "my own rule" in names
 
 
 def test_rank_correlation_reaches_the_draws(model):
-    linked = run_psa(model, 200, seed=3, n_frequent=0, rank_correlation={("u_sick", "c_drug"): 0.8})
+    linked = analyse_uncertainty(
+        model, 200, seed=3, n_frequent=0, rank_correlation={("u_sick", "c_drug"): 0.8}
+    )
     columns = [linked.parameter_names.index(n) for n in ("u_sick", "c_drug")]
     ranks = pd.DataFrame(linked.parameters[:, columns]).rank()
     assert ranks.corr().iloc[0, 1] > 0.6
@@ -271,12 +279,12 @@ def test_rank_correlation_reaches_the_draws(model):
 )
 def test_refusals(model, options, message):
     with pytest.raises(ModelError, match=message):
-        run_psa(model, 10, seed=1, **options)
+        analyse_uncertainty(model, 10, seed=1, **options)
 
 
 def test_refuses_zero_draws(model):
     with pytest.raises(ModelError, match=r"draws = 0"):
-        run_psa(model, 0, seed=1)
+        analyse_uncertainty(model, 0, seed=1)
 
 
 def test_a_pilot_larger_than_the_budget_runs_in_chunks_with_the_same_results(model):
@@ -287,8 +295,10 @@ def test_a_pilot_larger_than_the_budget_runs_in_chunks_with_the_same_results(mod
     limit = 100 * draw_bytes(model)
     assert default_chunk_size(model, 1300, limit) == 100
     done = []
-    whole = run_psa(model, 1300, seed=8, chunk_size=1300, n_frequent=2, keep_policies=True)
-    small = run_psa(
+    whole = analyse_uncertainty(
+        model, 1300, seed=8, chunk_size=1300, n_frequent=2, keep_policies=True
+    )
+    small = analyse_uncertainty(
         model,
         1300,
         seed=8,
@@ -351,7 +361,7 @@ def test_refuses_draws_whose_results_cannot_fit_in_memory(model, monkeypatch):
         match=r"draws = 2,000: the per-draw results would "
         r"need about .* GiB .*expected at most",
     ):
-        run_psa(model, 2000, seed=1, chunk_size=100, n_frequent=0)
+        analyse_uncertainty(model, 2000, seed=1, chunk_size=100, n_frequent=0)
 
 
 def test_evppi_on_the_first_draws_equals_the_regression_on_them(result):

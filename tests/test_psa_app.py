@@ -10,7 +10,7 @@ from caredecide import charts
 from caredecide.cautions import CAUTION_SHORT
 from caredecide.modelfile import load_model
 from caredecide.strategies import read_strategy_table, sibling_table
-from caredecide.uncertainty.psa import run_psa
+from caredecide.uncertainty.psa import analyse_uncertainty
 from synthetic_cohort import demo_model_path
 from tests.conftest import load_dict
 from tests.test_psa import uncertain_model_dict
@@ -19,7 +19,7 @@ from tests.ui.conftest import APP, private_app_state  # noqa: F401  (autouse fix
 
 @pytest.fixture(scope="module")
 def small_result():
-    return run_psa(load_dict(uncertain_model_dict()), 250, seed=5)
+    return analyse_uncertainty(load_dict(uncertain_model_dict()), 250, seed=5)
 
 
 def test_uncertainty_view_shows_the_library_evpi():
@@ -32,7 +32,7 @@ def test_uncertainty_view_shows_the_library_evpi():
     # The strategy table beside the demo model joins the candidates, as in the CLI.
     beside = sibling_table(demo_model_path())
     assert any(beside.name in c.value for c in at.caption)
-    expected = run_psa(
+    expected = analyse_uncertainty(
         load_model(demo_model_path()), 60, 1, strategies=read_strategy_table(beside)
     ).evpi()
     metrics = {m.label: m.value for m in at.metric}

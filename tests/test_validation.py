@@ -373,9 +373,9 @@ def test_warning_for_a_rate_written_into_a_probability_row():
     warnings = validate_model(load_dict(data))
     assert [w.where for w in warnings] == ["transitions.wait.sick.dead"]
     assert "rate parameter 'r_die_sick' is used as a probability per cycle" in warnings[0].message
-    assert "expected rate_to_prob(r_die_sick, cycle_years)" in warnings[0].message
+    assert "expected chance_within(r_die_sick, cycle_years)" in warnings[0].message
     # Converted, it is fine (Fleurence & Hollenbeak 2007: p = 1 - exp(-r t)).
-    data["transitions"]["wait"]["sick"]["dead"] = "rate_to_prob(r_die_sick, cycle_years)"
+    data["transitions"]["wait"]["sick"]["dead"] = "chance_within(r_die_sick, cycle_years)"
     assert validate_model(load_dict(data)) == []
 
 
@@ -386,7 +386,7 @@ def test_warning_for_a_probability_written_into_a_rate_row():
     data["parameters"]["p_die_sick"]["per_years"] = 5.0
     warnings = validate_model(load_dict(data))
     assert [w.where for w in warnings] == ["rates.wait.sick.dead"]
-    assert "expected prob_to_rate(p_die_sick, 5)" in warnings[0].message
+    assert "expected rate_behind(p_die_sick, 5)" in warnings[0].message
     # A rate split by a conditional probability is a rate: no warning.
     data["parameters"]["r_event"] = {"value": 0.3, "kind": "rate", "source": "Synthetic"}
     data["rates"]["wait"]["sick"]["dead"] = "r_event * p_die_sick"

@@ -14,7 +14,7 @@ _HEADER = (
 
 TREAT_OR_WAIT = (
     _HEADER
-    + """format = 1
+    + """format = 2
 title = "Template: treat now or wait (finite horizon)"
 
 [settings]
@@ -103,7 +103,7 @@ source = "Invented for the template"
 
 STATIONARY = (
     _HEADER
-    + """format = 1
+    + """format = 2
 title = "Template: treat or wait, infinite horizon (for value iteration)"
 
 [settings]

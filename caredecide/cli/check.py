@@ -104,6 +104,21 @@ def print_summary(model) -> None:
         stdout.print(f"background mortality: {law}{source}")
 
 
+def _upgrade_file(path: Path) -> None:
+    """Rewrite ``path`` from the previous model file format, reporting each renamed call."""
+    from caredecide.upgrade import upgrade_text
+
+    text = path.read_text(encoding="utf-8")
+    upgraded, replacements = upgrade_text(text, file=str(path))
+    path.write_text(upgraded, encoding="utf-8")
+    for replacement in replacements:
+        stderr.print(f"upgraded: {plain(path)}: {plain(replacement)}")
+    stderr.print(
+        f"upgraded: {plain(path)} is now format 2 ({len(replacements)} call(s) renamed, "
+        "comments kept)"
+    )
+
+
 def register(app: typer.Typer) -> None:
     """Add the ``check`` sub-command to ``app``."""
 
@@ -115,11 +130,22 @@ def register(app: typer.Typer) -> None:
         quiet: Annotated[
             bool, typer.Option("--quiet", "-q", help="Print only errors and warnings (no summary).")
         ] = False,
+        upgrade: Annotated[
+            bool,
+            typer.Option(
+                "--upgrade",
+                help="Rewrite a file of the previous format (1) as the current one in place, "
+                "renaming the functions that changed and keeping comments; then check it.",
+            ),
+        ] = False,
     ) -> None:
         """Validate a model file: print a summary, or every problem found (exit code 2)."""
         from caredecide.modelfile import load_model, validate_model
 
         print_caution()
+        if upgrade:
+            with user_errors():
+                _upgrade_file(model_path)
         with user_errors():
             model = load_model(model_path)
             warnings = validate_model(model)

@@ -164,7 +164,7 @@ def run_uncertainty(
             prepare_output_folder(out)
         from caredecide.modelfile import load_model
         from caredecide.strategies import read_strategy_table, sibling_table
-        from caredecide.uncertainty.psa import run_psa
+        from caredecide.uncertainty.psa import analyse_uncertainty
 
         loaded = load_model(model)
         table = strategies or sibling_table(model)
@@ -185,12 +185,14 @@ def run_uncertainty(
                 progress=advance,
             )
             if workers is None and scheduler is None:
-                result = run_psa(loaded, draws, seed, **options)
+                result = analyse_uncertainty(loaded, draws, seed, **options)
             else:
                 from caredecide.uncertainty.cluster import dask_client, dask_map
 
                 with dask_client(scheduler, workers, connect_timeout=connect_timeout) as client:
-                    result = run_psa(loaded, draws, seed, map_chunks=dask_map(client), **options)
+                    result = analyse_uncertainty(
+                        loaded, draws, seed, map_chunks=dask_map(client), **options
+                    )
         tables = _tables(result, band_years)
 
     unit = result.objective.unit

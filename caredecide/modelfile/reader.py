@@ -31,6 +31,7 @@ from caredecide.model import (
     State,
 )
 from caredecide.modelfile.validator import validate_model
+from caredecide.upgrade import PREVIOUS_FORMAT_VERSION, renamed_data
 
 _MISSING = object()
 
@@ -251,7 +252,9 @@ def _build_model(data: Mapping[str, Any], base_dir: Path) -> tuple[Model, list[P
     r = _Reader()
     r.table(data, "", TOP_KEYS)
     format_version = r.get(data, "format", "", None)
-    if format_version is None:
+    if format_version == PREVIOUS_FORMAT_VERSION and not isinstance(format_version, bool):
+        data = renamed_data(data)  # read with the new function names; validate_model warns
+    elif format_version is None:
         r.problem("format", f"is required; expected format = {FORMAT_VERSION}")
     elif format_version != FORMAT_VERSION or isinstance(format_version, bool):
         r.problem(

@@ -27,6 +27,7 @@ from caredecide.model import (
     PARAMETER_KINDS,
     Model,
 )
+from caredecide.upgrade import PREVIOUS_FORMAT_VERSION, previous_format_warning
 
 ROW_TOLERANCE = 1e-9
 IDENTIFIER = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
@@ -48,7 +49,7 @@ def structural_problems(model: Model) -> list[Problem]:
     def add(where: str, message: str) -> None:
         problems.append(Problem(where, message))
 
-    if model.format_version != FORMAT_VERSION:
+    if model.format_version not in (FORMAT_VERSION, PREVIOUS_FORMAT_VERSION):
         add("format", f"unknown format version {model.format_version!r}; expected {FORMAT_VERSION}")
     if not model.title.strip():
         add("title", "is empty; give the model a title")
@@ -419,7 +420,8 @@ def validate_model(model: Model) -> list[ModelWarningRecord]:
     if problems:
         raise ModelError(problems, file=file)
     compiled = compile_model(model)
-    return _unit_warnings(model, parsed) + _warnings(model, compiled)
+    records = [previous_format_warning()] if model.format_version == PREVIOUS_FORMAT_VERSION else []
+    return records + _unit_warnings(model, parsed) + _warnings(model, compiled)
 
 
 def _unit_warnings(model: Model, parsed) -> list[ModelWarningRecord]:
@@ -429,7 +431,7 @@ def _unit_warnings(model: Model, parsed) -> list[ModelWarningRecord]:
     straight into a rate row, or a probability over ``per_years`` years used as the
     per-cycle probability of a cycle of another length: each is a common slip when
     copying figures from a paper (Fleurence & Hollenbeak 2007). Only expressions that
-    call no function are flagged, so ``rate_to_prob(r, cycle_years)``, ``exp(-r)`` or
+    call no function are flagged, so ``chance_within(r, cycle_years)``, ``exp(-r)`` or
     ``per_cycle(p, 5)`` never are; nor is a rate or probability combined with one of the
     row's own unit (``r_event * p_fatal`` splits a rate by a conditional probability).
     """
@@ -446,13 +448,13 @@ def _unit_warnings(model: Model, parsed) -> list[ModelWarningRecord]:
                 if row_unit == "probability" and p.kind == "rate" and "probability" not in kinds:
                     message = (
                         f"rate parameter {name!r} is used as a probability per cycle; "
-                        f"expected rate_to_prob({name}, cycle_years)"
+                        f"expected chance_within({name}, cycle_years)"
                     )
                 elif row_unit == "rate" and p.kind == "probability" and "rate" not in kinds:
                     years = p.per_years if p.per_years is not None else cycle
                     message = (
                         f"probability parameter {name!r} is used as a rate per year; "
-                        f"expected prob_to_rate({name}, {years:g})"
+                        f"expected rate_behind({name}, {years:g})"
                     )
                 elif (
                     row_unit == "probability"

@@ -8,6 +8,7 @@ from pathlib import Path
 from typing import Any
 
 from caredecide.model import (
+    FORMAT_VERSION,
     Model,
 )
 
@@ -19,7 +20,7 @@ def dumps_model(model: Model) -> str:
     """The model as TOML text that :func:`loads_model` reads back to an equal model."""
     s = model.settings
     out: list[str] = [
-        f"format = {model.format_version}",
+        f"format = {FORMAT_VERSION}",
         f"title = {_value(model.title)}",
     ]
     if model.description:

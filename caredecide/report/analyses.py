@@ -257,13 +257,15 @@ def _sensitivity(data: ReportData) -> None:
 
 def _uncertainty(data: ReportData) -> None:
     from caredecide.strategies import read_strategy_table, sibling_table
-    from caredecide.uncertainty.psa import run_psa
+    from caredecide.uncertainty.psa import analyse_uncertainty
 
     # The same candidates as 'caredecide uncertainty': the model's strategy table joins
     # the built-in strategies when one lies beside the model file.
     table = sibling_table(data.model.source_path or data.model_path)
     extra = read_strategy_table(table) if table is not None else []
-    psa = run_psa(data.model, data.draws, data.seed, objective=data.objective, strategies=extra)
+    psa = analyse_uncertainty(
+        data.model, data.draws, data.seed, objective=data.objective, strategies=extra
+    )
     data.results["psa_acceptability"] = psa.acceptability_by_age_band()
     data.results["psa_expected_loss"] = psa.expected_loss()
     data.results["psa_policy_frequencies"] = psa.policy_frequencies()

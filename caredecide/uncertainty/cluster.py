@@ -17,7 +17,7 @@ as candidates) runs in the client process; every later chunk runs on the cluster
 Typical use::
 
     with dask_client(workers=2) as client:            # a local cluster of 2 processes
-        result = run_psa(model, 100_000, seed=1, map_chunks=dask_map(client))
+        result = analyse_uncertainty(model, 100_000, seed=1, map_chunks=dask_map(client))
 
     with dask_client(scheduler="tcp://scheduler-host:8786") as client:   # an existing cluster
         ...
@@ -140,7 +140,7 @@ def _check_timeout(timeout: str) -> None:
 
 
 def dask_map(client, *, max_in_flight: int | None = None) -> ChunkMap:
-    """A chunk runner for :func:`caredecide.uncertainty.psa.run_psa` on ``client``.
+    """A chunk runner for :func:`caredecide.uncertainty.psa.analyse_uncertainty` on ``client``.
 
     Parameters
     ----------

@@ -108,7 +108,7 @@ __all__ = [
     "ChunkResult",
     "PSAContext",
     "PSAResult",
-    "run_psa",
+    "analyse_uncertainty",
     "serial_map",
     "solve_chunk",
 ]
@@ -705,7 +705,7 @@ class PSAResult:
 
 
 # --------------------------------------------------------------------------- the driver
-def run_psa(
+def analyse_uncertainty(
     model,
     n_draws: int,
     seed: int,

@@ -14,7 +14,7 @@ runner = CliRunner()
 # gap = Q(wait) - Q(treat) = loss - p (1 - hr) (QALYs, no discounting, start-of-cycle
 # counting), so treating is best when p (1 - hr) > loss; threshold p* = loss / (1 - hr).
 HAND_MODEL = """
-format = 1
+format = 2
 title = "Synthetic: hand-checkable threshold model"
 description = "Synthetic: invented for a test."
 

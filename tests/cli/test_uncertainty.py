@@ -13,7 +13,7 @@ from typer.testing import CliRunner
 from caredecide.cautions import CAUTION_SHORT
 from caredecide.cli import app
 from caredecide.modelfile import load_model
-from caredecide.uncertainty.psa import run_psa
+from caredecide.uncertainty.psa import analyse_uncertainty
 from tests.test_psa import uncertain_model_dict
 
 runner = CliRunner()
@@ -64,7 +64,7 @@ def test_writes_tables_charts_and_summary(model_file, tmp_path):
     ):
         assert (out / name).is_file(), name
     # The files hold the library's figures for the same seed (no separate maths).
-    direct = run_psa(load_model(model_file), 250, seed=9, wtp_range=(0.0, 50000.0))
+    direct = analyse_uncertainty(load_model(model_file), 250, seed=9, wtp_range=(0.0, 50000.0))
     summary = json.loads((out / "summary.json").read_text())
     assert summary["evpi"] == pytest.approx(direct.evpi()["evpi"], rel=1e-12)
     curves = pd.read_csv(out / "acceptability_curves.csv")

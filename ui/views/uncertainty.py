@@ -11,7 +11,7 @@ from caredecide.errors import CaredecideError
 from caredecide.limits import MAX_APP_DRAWS
 from caredecide.modelfile import loads_model
 from caredecide.strategies import MAX_TABLE_BYTES, read_strategy_table, sibling_table
-from caredecide.uncertainty.psa import run_psa
+from caredecide.uncertainty.psa import analyse_uncertainty
 from ui import working_model
 
 
@@ -22,7 +22,7 @@ def run_analysis(
     """PSA of the working model; ``table`` (file name, CSV text) adds its strategies."""
     model = loads_model(text, file=file, base_dir=base_dir)
     strategies = read_strategy_table(table[0], text=table[1]) if table else []
-    return run_psa(model, draws, seed, strategies=strategies)
+    return analyse_uncertainty(model, draws, seed, strategies=strategies)
 
 
 model = working_model.valid_model_or_stop()
