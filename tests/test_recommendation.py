@@ -19,7 +19,7 @@ from caredecide.modelfile import load_model
 from caredecide.sensitivity import parameter_thresholds
 from caredecide.sensitivity.context import threshold_context
 from caredecide.sensitivity.recommendation import what_would_change
-from caredecide.uncertainty.psa import run_psa
+from caredecide.uncertainty.psa import analyse_uncertainty
 from synthetic_cohort import MODELS_DIR
 from tests.test_sensitivity import SYNTHETIC, group_model, hand_model
 
@@ -139,7 +139,7 @@ def test_recommendation_text_names_every_decision_state_with_labels(demo, demo_t
 
 
 def test_psa_share_equals_the_per_draw_policies(demo, demo_thresholds):
-    psa = run_psa(demo, 120, seed=3, keep_policies=True, n_frequent=0)
+    psa = analyse_uncertainty(demo, 120, seed=3, keep_policies=True, n_frequent=0)
     result = what_would_change(demo, thresholds=demo_thresholds, psa=psa)
     base = psa.candidates[0].policy  # the base-case optimal policy
     for row in result.recommendations.itertuples():

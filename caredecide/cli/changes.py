@@ -85,10 +85,10 @@ def run_what_would_change(
                 else None
             )
             if draws:
-                from caredecide.uncertainty.psa import run_psa
+                from caredecide.uncertainty.psa import analyse_uncertainty
 
                 task = bar.add_task("probabilistic draws", total=draws)
-                psa = run_psa(
+                psa = analyse_uncertainty(
                     loaded,
                     draws,
                     seed,
