@@ -9,9 +9,10 @@ For every decision state this gathers, from analyses the library already runs:
   :func:`.context.threshold_context`), the ages affected and the action it flips to;
 * the **probability of each flip** under that estimate's distribution, every other
   estimate at base (:func:`.context.probability_beyond`);
-* optionally, from a probabilistic analysis (:func:`caredecide.uncertainty.analyse_uncertainty`), the
-  share of draws whose optimal policy differs from the base case in that state when all
-  estimates are uncertain together;
+* optionally, from a probabilistic analysis
+  (:func:`caredecide.uncertainty.psa.analyse_uncertainty`), the share of draws whose
+  optimal policy differs from the base case in that state when all estimates are
+  uncertain together;
 * optionally, **scenarios** (alternative models: other assumptions, other settings)
   whose optimal policy differs in that state, and how.
 
