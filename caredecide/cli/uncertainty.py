@@ -7,12 +7,14 @@ import math
 from pathlib import Path
 from typing import Annotated
 
+import numpy as np
 import pandas as pd
 import typer
 from rich.table import Table
 
 from caredecide.cautions import CAUTION_SHORT
 from caredecide.cli.console import (
+    plain,
     prepare_output_folder,
     print_caution,
     progress,
@@ -134,6 +136,32 @@ def run_uncertainty(
     band_years: Annotated[
         float, typer.Option("--band-years", min=0.01, help="Width of the age bands (years).")
     ] = 5.0,
+    population_per_year: Annotated[
+        float | None,
+        typer.Option(
+            "--population-per-year",
+            min=0.0,
+            help="Persons facing the decision each year: adds population EVPI and EVPPI.",
+        ),
+    ] = None,
+    decision_years: Annotated[
+        int,
+        typer.Option(
+            "--decision-years",
+            min=1,
+            max=200,
+            help="Years the decision stays in use (population EVPI/EVPPI; discounted at the "
+            "model's outcome rate).",
+        ),
+    ] = 10,
+    reference: Annotated[
+        str | None,
+        typer.Option(
+            "--reference",
+            help="Candidate the incremental means are taken against (default: the one with "
+            "the lowest mean cost).",
+        ),
+    ] = None,
     out: Annotated[
         Path | None,
         typer.Option(
@@ -194,6 +222,14 @@ def run_uncertainty(
                         loaded, draws, seed, map_chunks=dask_map(client), **options
                     )
         tables = _tables(result, band_years)
+        tables["strategy_means"] = result.strategy_summary(reference=reference)
+        if population_per_year is not None:
+            tables["population_value_of_information"] = result.population_value_of_information(
+                population_per_year,
+                decision_years,
+                float(loaded.settings.discount_outcomes),
+                evppi=tables["evppi"],
+            )
 
     unit = result.objective.unit
     info = result.evpi()
@@ -219,6 +255,11 @@ def run_uncertainty(
         stdout.print(_evppi_table(tables["evppi"], unit, result.n_draws))
     else:
         stdout.print("EVPPI not computed: it needs at least 200 draws and two candidates.")
+    stdout.print(_means_table(tables["strategy_means"]))
+    if "population_value_of_information" in tables:
+        stdout.print(_population_table(tables["population_value_of_information"], unit))
+    fixed = ", ".join(result.fixed_parameters) or "none"
+    stdout.print(f"Parameters held fixed at their base value (no distribution): {fixed}.")
     if not result.success:
         stderr.print(
             "[bold yellow]warning:[/] the solver reported a problem: " + "; ".join(result.messages)
@@ -226,6 +267,46 @@ def run_uncertainty(
     if out is not None:
         with user_errors(), writing_to(out):
             _write_outputs(out, result, tables, treat, quiet)
+
+
+def _means_table(frame: pd.DataFrame) -> Table:
+    """Probabilistic means with 95% intervals per candidate (the ICER against a reference)."""
+    reference = frame["reference"].iloc[0]
+    out = Table(
+        title=f"Probabilistic means per strategy (95% intervals of the draws; ICER against "
+        f"{plain(reference)})"
+    )
+    for column in ("strategy", "cost", "QALYs", "ICER (money per QALY)", "P(best)"):
+        out.add_column(column, justify="left" if column == "strategy" else "right")
+    for row in frame.itertuples():
+        out.add_row(
+            plain(row.strategy),
+            f"{row.mean_cost:,.0f} ({row.cost_low:,.0f} to {row.cost_high:,.0f})",
+            f"{row.mean_qalys:,.3f} ({row.qalys_low:,.3f} to {row.qalys_high:,.3f})",
+            "" if np.isnan(row.icer) else f"{row.icer:,.0f}",
+            "" if np.isnan(row.probability_best) else f"{row.probability_best:.1%}",
+        )
+    return out
+
+
+def _population_table(frame: pd.DataFrame, unit: str) -> Table:
+    """Per-person and population EVPI/EVPPI."""
+    first = frame.iloc[0]
+    out = Table(
+        title=f"Value of information for {first['per_year']:,.0f} persons a year over "
+        f"{first['years']} years, discounted at {first['discount_rate']:.1%} "
+        f"({first['persons']:,.0f} persons; {unit})"
+    )
+    for column in ("quantity", "per person", "population", "population MC s.e."):
+        out.add_column(column, justify="left" if column == "quantity" else "right")
+    for row in frame.itertuples():
+        out.add_row(
+            plain(row.quantity),
+            f"{row.per_person:,.2f}",
+            f"{row.population:,.0f}",
+            f"{row.population_mc_se:,.0f}",
+        )
+    return out
 
 
 def _correlation_pairs(texts: list[str]) -> dict[tuple[str, str], float]:

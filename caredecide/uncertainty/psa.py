@@ -85,7 +85,7 @@ from caredecide.uncertainty.sampling import (
     check_draw_count,
     check_seed,
 )
-from caredecide.uncertainty.voi import evpi, evppi_regression
+from caredecide.uncertainty.voi import discounted_population, evpi, evppi_regression
 
 DEFAULT_MEMORY_LIMIT = CHUNK_MEMORY_BYTES
 DEFAULT_FREQUENT = 3
@@ -356,6 +356,8 @@ class PSAResult:
     success : bool
     messages : list of str
     wtp_grid : (W,) float
+    fixed_parameters : tuple of str
+        Parameters held at their base value in every draw (no distribution).
     """
 
     n_draws: int
@@ -381,6 +383,7 @@ class PSAResult:
     success: bool
     messages: list[str]
     wtp_grid: np.ndarray
+    fixed_parameters: tuple[str, ...] = ()
 
     # -- basic arrays -------------------------------------------------------------------
     @property
@@ -657,14 +660,152 @@ class PSAResult:
             frames.append(running.assign(quantity=quantity))
         return pd.concat(frames, ignore_index=True)[["quantity", "n", "mean", "se"]]
 
+    # -- probabilistic means per strategy -------------------------------------------------
+    def strategy_summary(self, reference: str | None = None, level: float = 0.95) -> pd.DataFrame:
+        """Probabilistic mean cost, effect and ICER of every candidate, with intervals.
+
+        Means over the draws; intervals are the percentile intervals of the draws
+        (central ``level``; common practice for probabilistic results, e.g. Briggs,
+        Claxton & Sculpher 2006, ch. 4, from memory). Incremental figures are per-draw
+        differences against ``reference``; the ICER is the ratio of the mean
+        differences (a ratio of means, never a mean of ratios). The last row is each
+        draw's own optimal policy: the outcome with perfect information, not a policy
+        one can adopt today.
+
+        Parameters
+        ----------
+        reference : str, optional
+            Candidate name (default: the candidate with the lowest mean cost).
+        level : float
+            Interval coverage in (0, 1).
+
+        Returns
+        -------
+        pandas.DataFrame
+            Columns strategy, origin, mean_cost, cost_low, cost_high, mean_qalys,
+            qalys_low, qalys_high, incremental_cost, incremental_cost_low,
+            incremental_cost_high, incremental_qalys, incremental_qalys_low,
+            incremental_qalys_high, icer (money per QALY; NaN for the reference or a
+            zero QALY difference), mean_value, value_low, value_high (objective units),
+            probability_best (share of draws where it has the highest value among the
+            candidates), reference. Costs discounted, per person.
+        """
+        if not (isinstance(level, int | float) and 0 < level < 1):
+            raise ModelError(Problem("level", f"value {level!r}; expected a number in (0, 1)"))
+        names = self.candidate_names
+        if reference is None:
+            reference = names[int(np.argmin(self.candidate_totals[0].mean(axis=0)))]
+        if reference not in names:
+            raise ModelError(
+                Problem("reference", f"unknown strategy {reference!r}; expected one of {names}")
+            )
+        ref = names.index(reference)
+        cost = np.column_stack([self.candidate_totals[0], self.optimal[:, 0]])  # (D, K + 1)
+        qalys = np.column_stack([self.candidate_totals[1], self.optimal[:, 1]])
+        value = np.column_stack([self.candidate_totals[2], self.optimal[:, 2]])
+        tails = [50 * (1 - level), 100 - 50 * (1 - level)]
+
+        def interval(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+            low, high = np.percentile(x, tails, axis=0)
+            return low, high
+
+        d_cost = cost - cost[:, ref : ref + 1]
+        d_qalys = qalys - qalys[:, ref : ref + 1]
+        best = np.argmax(self.candidate_values, axis=1)
+        probability = np.bincount(best, minlength=len(names)) / self.n_draws
+        mean_dc, mean_dq = d_cost.mean(axis=0), d_qalys.mean(axis=0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            icer = np.where(mean_dq != 0, mean_dc / mean_dq, np.nan)
+        icer[ref] = np.nan
+        columns = {
+            "strategy": [*names, "each draw's own optimal policy (perfect information)"],
+            "origin": [c.origin for c in self.candidates] + ["perfect information"],
+            "mean_cost": cost.mean(axis=0),
+        }
+        columns["cost_low"], columns["cost_high"] = interval(cost)
+        columns["mean_qalys"] = qalys.mean(axis=0)
+        columns["qalys_low"], columns["qalys_high"] = interval(qalys)
+        columns["incremental_cost"] = mean_dc
+        columns["incremental_cost_low"], columns["incremental_cost_high"] = interval(d_cost)
+        columns["incremental_qalys"] = mean_dq
+        columns["incremental_qalys_low"], columns["incremental_qalys_high"] = interval(d_qalys)
+        columns["icer"] = icer
+        columns["mean_value"] = value.mean(axis=0)
+        columns["value_low"], columns["value_high"] = interval(value)
+        columns["probability_best"] = np.append(probability, np.nan)
+        columns["reference"] = reference
+        return pd.DataFrame(columns)
+
+    def plane_frame(self, max_draws: int = 1000) -> pd.DataFrame:
+        """Draws for a cost-effectiveness plane: strategy, draw, cost, qalys (long form).
+
+        At most the first ``max_draws`` draws per candidate (independent draws, so the
+        first ones are a random sample), for a readable scatter.
+        """
+        n = min(self.n_draws, int(max_draws))
+        names = np.asarray(self.candidate_names, dtype=object)
+        K = len(names)
+        return pd.DataFrame(
+            {
+                "strategy": np.tile(names, n),
+                "draw": np.repeat(np.arange(n), K),
+                "cost": self.candidate_totals[0, :n].ravel(),
+                "qalys": self.candidate_totals[1, :n].ravel(),
+            }
+        )
+
+    def population_value_of_information(
+        self,
+        per_year: float,
+        years: int,
+        discount_rate: float,
+        evppi: pd.DataFrame | None = None,
+    ) -> pd.DataFrame:
+        """EVPI (and EVPPI) per person and for the population the decision concerns.
+
+        The population is :func:`caredecide.uncertainty.voi.discounted_population`
+        (``per_year`` persons a year over ``years`` years, discounted at
+        ``discount_rate``).
+
+        Returns
+        -------
+        pandas.DataFrame
+            Columns quantity, per_person, mc_se, population, population_mc_se, persons
+            (the discounted population), per_year, years, discount_rate; rows: the
+            timing decision's EVPI (upper bound), the EVPI among candidates, then one
+            row per EVPPI entry of ``evppi`` (:meth:`evppi`) when given.
+        """
+        persons = discounted_population(per_year, years, discount_rate)
+        info = self.evpi()
+        rows = [
+            ("EVPI: timing decision (upper bound)", info["evpi"], info["mc_se"]),
+            ("EVPI: choice among candidates", info["evpi_among_candidates"],
+             info["mc_se_among_candidates"]),
+        ]  # fmt: skip
+        if evppi is not None:
+            rows += [
+                (f"EVPPI: {row.parameter}", row.evppi, row.mc_se) for row in evppi.itertuples()
+            ]
+        frame = pd.DataFrame(rows, columns=["quantity", "per_person", "mc_se"])
+        frame["population"] = frame["per_person"] * persons
+        frame["population_mc_se"] = frame["mc_se"] * persons
+        frame["persons"] = persons
+        frame["per_year"] = float(per_year)
+        frame["years"] = int(years)
+        frame["discount_rate"] = float(discount_rate)
+        return frame
+
     # -- tables for export -------------------------------------------------------------------
     def draws_frame(self) -> pd.DataFrame:
-        """One row per draw: parameters, the optimal policy's totals and each candidate's value."""
+        """One row per draw: parameters, the optimal policy's totals and each candidate's
+        cost, QALYs and value (discounted, per person)."""
         frame = pd.DataFrame(self.parameters, columns=list(self.parameter_names))
         frame.insert(0, "draw", np.arange(self.n_draws))
         for j, column in enumerate(("optimal_cost", "optimal_qalys", "optimal_value")):
             frame[column] = self.optimal[:, j]
         for k, name in enumerate(self.candidate_names):
+            frame[f"cost: {name}"] = self.candidate_totals[0, :, k]
+            frame[f"qalys: {name}"] = self.candidate_totals[1, :, k]
             frame[f"value: {name}"] = self.candidate_values[:, k]
         return frame
 
@@ -701,6 +842,7 @@ class PSAResult:
             "candidates": self.candidate_names,
             "distinct_optimal_policies": len(self.distinct_counts),
             "share_most_frequent_policy": float(self.distinct_counts[0] / self.n_draws),
+            "parameters_held_fixed": list(self.fixed_parameters),
         }
 
 
@@ -954,4 +1096,7 @@ def _combine(
         success=all(c.success for c in chunks),
         messages=[c.message for c in chunks if c.message],
         wtp_grid=wtp_grid,
+        fixed_parameters=tuple(
+            n for n in context.model.parameter_names() if n not in context.sampler.names
+        ),
     )

@@ -94,6 +94,7 @@ __all__ = [
     "METHODS",
     "EVPIResult",
     "EVPPIResult",
+    "discounted_population",
     "evpi",
     "evppi_regression",
     "opportunity_loss",
@@ -242,6 +243,56 @@ class EVPPIResult:
     regression_standard_error: float = float("nan")
     """Standard deviation of the EVPPI over posterior draws of the spline (NaN unless
     ``posterior_samples`` was given)."""
+
+
+def discounted_population(per_year: float, years: int, discount_rate: float) -> float:
+    """Persons who benefit from a decision over its lifetime, discounted to today.
+
+    Population EVPI and EVPPI scale the per-person values by the population that the
+    decision concerns over the time the information stays useful (Claxton 1999, J
+    Health Econ 18:341-364; Philips, Claxton & Palmer 2008, Med Decis Making
+    28(3):287-299, "The half-life of truth", both from memory)::
+
+        population = sum_{t=0}^{years-1} per_year / (1 + discount_rate) ** t
+
+    with ``per_year`` persons entering each year (incidence), year ``t`` discounted to
+    its start (the first year undiscounted).
+
+    Parameters
+    ----------
+    per_year : float
+        Persons facing the decision each year (>= 0).
+    years : int
+        Decision horizon in whole years (>= 1).
+    discount_rate : float
+        Annual rate in [0, 1).
+
+    Returns
+    -------
+    float
+        Discounted number of persons.
+    """
+    problems = []
+    if isinstance(per_year, bool) or not (
+        isinstance(per_year, int | float) and np.isfinite(per_year) and per_year >= 0
+    ):
+        problems.append(
+            Problem("population_per_year", f"value {per_year!r}; expected a number >= 0")
+        )
+    if isinstance(years, bool) or not isinstance(years, int | np.integer) or years < 1:
+        problems.append(
+            Problem("decision_years", f"value {years!r}; expected a whole number of years >= 1")
+        )
+    if isinstance(discount_rate, bool) or not (
+        isinstance(discount_rate, int | float) and 0 <= discount_rate < 1
+    ):
+        problems.append(
+            Problem("discount_rate", f"value {discount_rate!r}; expected an annual rate in [0, 1)")
+        )
+    if problems:
+        raise ModelError(problems)
+    t = np.arange(int(years))
+    return float(per_year * np.sum((1.0 + discount_rate) ** -t))
 
 
 def opportunity_loss(values: np.ndarray) -> tuple[float, float, np.ndarray, int]:
