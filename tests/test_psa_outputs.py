@@ -8,7 +8,7 @@ import pytest
 
 from caredecide.errors import ModelError
 from caredecide.modelfile import load_model
-from caredecide.uncertainty.psa import run_psa
+from caredecide.uncertainty.psa import analyse_uncertainty
 from caredecide.uncertainty.voi import discounted_population, evpi
 from synthetic_cohort import MODELS_DIR
 
@@ -53,7 +53,7 @@ def test_population_inputs_are_checked(args, where):
 @pytest.fixture(scope="module")
 def demo_psa():
     model = load_model(DEMO)
-    return model, run_psa(model, 150, seed=7)
+    return model, analyse_uncertainty(model, 150, seed=7)
 
 
 def test_population_table_scales_the_per_person_values(demo_psa):

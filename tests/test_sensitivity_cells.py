@@ -214,7 +214,9 @@ def test_rescaled_rows_stay_distributions_and_keep_the_other_ratios(k, stay, sha
     rest = 1.0 - stay
     row = {"sick": repr(stay), "dead": repr(rest * share)}
     model = two_state_model(wait_row=row | {"well": repr(rest * (1 - share))})
-    model = replace(model, states=(*model.states[:1], State(id="well", absorbing=True), model.states[1]))
+    model = replace(
+        model, states=(*model.states[:1], State(id="well", absorbing=True), model.states[1])
+    )
     scaler = CellScaler(model)
     i = next(n for n, c in enumerate(scaler.cells) if c.path == "transitions.wait.sick.sick")
     cell = scaler.cells[i]

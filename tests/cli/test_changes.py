@@ -42,7 +42,7 @@ def test_prints_the_recommendation_and_the_flips(model_file, tmp_path):
 
 def test_unreadable_scenario_is_a_clear_error(model_file, tmp_path):
     bad = tmp_path / "bad.toml"
-    bad.write_text("format = 1\ntitle = 3\n")
+    bad.write_text("format = 2\ntitle = 3\n")
     result = runner.invoke(app, ["what-would-change", str(model_file), "--scenario", str(bad)])
     assert result.exit_code == 2
     assert "bad.toml" in result.stderr
