@@ -55,9 +55,11 @@ def draw_working_bytes(model) -> int:
     a display trace of up to ``DISPLAY_CAP + 1`` cycles (:mod:`caredecide.evaluate`),
     so that length is counted.
     """
+    from caredecide.expand import expand_model
+
     cycles = model.n_cycles()
     n_t = (DISPLAY_CAP if cycles is None else cycles) + 1
-    cells = n_t * len(model.states) * (len(model.actions) + RESULT_ARRAYS_PER_CELL)
+    cells = n_t * len(expand_model(model).states) * (len(model.actions) + RESULT_ARRAYS_PER_CELL)
     return 8 * cells
 
 

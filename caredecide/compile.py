@@ -101,8 +101,10 @@ def parse_model_expressions(model: Model) -> ParsedModel:
     :mod:`caredecide.modelfile` reports them).
     """
     from caredecide.errors import ExpressionError
+    from caredecide.expand import expand_model
     from caredecide.expressions import REST_KEYWORD, parse_expression
 
+    model = expand_model(model)  # attributes and tunnels -> flat states
     parsed = ParsedModel()
     parameter_names = model.parameter_names()
     state_index = {s: i for i, s in enumerate(model.state_ids)}
@@ -256,6 +258,9 @@ def _array_bytes(n_draws: int, lengths: tuple[int, int, int], n_states: int, n_a
 
 def estimate_compiled_bytes(model: Model, n_draws: int) -> int:
     """Bytes the compiled arrays of ``n_draws`` parameter sets will take (float64)."""
+    from caredecide.expand import expand_model
+
+    model = expand_model(model)
     parsed = parse_model_expressions(model)
     return _array_bytes(
         n_draws, _time_lengths(model, parsed), len(model.states), len(model.actions)
@@ -313,6 +318,10 @@ def compile_model(
         Listing every problem: unparsable expressions, probabilities outside [0, 1],
         rows not summing to 1, NaN/inf, negative costs (naming draw and cycle/age).
     """
+    from caredecide.expand import expand
+
+    expansion = expand(model)  # attributes and tunnels -> flat states (caredecide.expand)
+    model = expansion.model
     parsed = parse_model_expressions(model)
     if parsed.problems:
         raise ModelError(parsed.problems, file=model.file_label)
@@ -399,6 +408,7 @@ def compile_model(
         action_labels=tuple(a.label or a.id for a in model.actions),
         absorbing=absorbing,
         ordered_states=tuple(settings.severity_order),
+        state_groups=expansion.groups,
     )
 
 

@@ -40,6 +40,7 @@ and costs are discounted exactly at their own rates.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -77,6 +78,11 @@ class CompiledModel:
     """(S,) bool: states the cohort never leaves."""
     ordered_states: tuple[str, ...] = ()
     """States in their clinical order (e.g. stages), for structure summaries; may be empty."""
+    state_groups: Mapping[str, tuple[str, ...]] = field(default_factory=dict)
+    """Where each state comes from when the model declares attributes or tunnels
+    (:mod:`caredecide.expand`): ``"state"`` -> declared state id, attribute name -> value
+    name, tunnel name -> step (``"0"``, ``"1"``, ``"2+"``); each tuple has S entries, ``""``
+    where a state does not carry the attribute or tunnel. Empty for a flat model."""
 
     @property
     def n_draws(self) -> int:

@@ -41,6 +41,7 @@ naming the place, the function and the first offending value.
 from __future__ import annotations
 
 import difflib
+import itertools
 import keyword
 import math
 import re
@@ -742,3 +743,39 @@ def parse_expression(
     return Expression(
         text, frozenset(parser.names), frozenset(parser.functions), False, tuple(program), where
     )
+
+
+def substitute_names(text: str | float | int, values: Mapping[str, float]) -> str | float | int:
+    """The expression with each variable in ``values`` replaced by its number.
+
+    Used to give each expanded copy of a state its own attribute values and tunnel step
+    (:mod:`caredecide.expand`): ``"c_care + on_treatment * c_drug"`` with
+    ``{"on_treatment": 1}`` gives ``"c_care + 1.0 * c_drug"``. Numbers are written with
+    ``repr`` (exact), negative ones in parentheses. Names called as functions, numbers,
+    ``rest`` and text that does not tokenize are left as they are (parsing reports them).
+
+    Parameters
+    ----------
+    text : str, float or int
+        Expression text, or a number (returned unchanged).
+    values : mapping of str to float
+        Variable name -> value.
+    """
+    if not isinstance(text, str) or not values:
+        return text
+    try:
+        tokens = _tokenize(text, "")
+    except ExpressionError:
+        return text
+    pieces: list[str] = []
+    last = 0
+    for token, following in itertools.pairwise(tokens):
+        if token.kind != "name" or token.text not in values or following.text == "(":
+            continue
+        number = float(values[token.text])
+        written = repr(number) if number >= 0 else f"({number!r})"
+        pieces.append(text[last : token.position])
+        pieces.append(written)
+        last = token.position + len(token.text)
+    pieces.append(text[last:])
+    return "".join(pieces)

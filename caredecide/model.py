@@ -93,6 +93,41 @@ class State:
     alive: bool = True
     """Life-years accrue only in alive states; the file default is ``not absorbing``."""
     negative_cost_allowed: bool = False
+    attributes: tuple[str, ...] = ()
+    """Names of ``[attributes]`` this state varies by: one copy per combination of values
+    (expanded by :mod:`caredecide.expand`)."""
+    tunnels: tuple[str, ...] = ()
+    """Names of ``[tunnels]`` counted in this state: one copy per step of each tunnel."""
+
+
+@dataclass(frozen=True)
+class StateAttribute:
+    """One ``[attributes.<name>]`` entry: a property that states can vary by.
+
+    ``values`` maps each value name (used in generated state ids) to the number that
+    expressions read under the attribute's name, e.g. ``{"untreated": 0, "treated": 1}``.
+    """
+
+    name: str
+    values: Mapping[str, float]
+    label: str = ""
+
+
+@dataclass(frozen=True)
+class Tunnel:
+    """One ``[tunnels.<name>]`` entry: whole cycles spent since entering a group of states.
+
+    A state listing the tunnel is copied once per step ``0 .. length``; expressions read
+    the step under the tunnel's name. Step 0 is the first cycle after entering; each
+    cycle moves the cohort one step on, and the last step (``length``, meaning "length
+    or more") keeps itself. ``only_for`` limits the tunnel to the copies with these
+    attribute values (``{"on_treatment": "treated"}``).
+    """
+
+    name: str
+    length: int
+    only_for: Mapping[str, str] = field(default_factory=dict)
+    label: str = ""
 
 
 @dataclass(frozen=True)
@@ -235,6 +270,10 @@ class Model:
     parameters: Mapping[str, Parameter] = field(default_factory=dict)
     groups: Mapping[str, DirichletGroup] = field(default_factory=dict)
     mortality: MortalitySpec | None = None
+    attributes: Mapping[str, StateAttribute] = field(default_factory=dict)
+    """State attributes (``[attributes]``); states listing them are expanded before compiling."""
+    tunnels: Mapping[str, Tunnel] = field(default_factory=dict)
+    """Tunnels (``[tunnels]``); states listing them are expanded before compiling."""
     description: str = ""
     format_version: int = FORMAT_VERSION
     source_path: Path | None = field(default=None, compare=False)

@@ -654,6 +654,9 @@ def verify_model(
         raise CaredecideError(
             f"unknown verification check(s) {unknown}; expected any of {list(CHECK_IDS)}"
         )
+    from caredecide.expand import expand_model
+
+    model = expand_model(model)  # the checks read states one by one: use the flat states
     report = VerificationReport(model_title=model.title)
     for done, (check_id, _, _, _, function) in enumerate(c for c in _CHECKS if c[0] in chosen):
         try:

@@ -29,6 +29,8 @@ from caredecide.model import (
     Parameter,
     Settings,
     State,
+    StateAttribute,
+    Tunnel,
 )
 from caredecide.modelfile.validator import validate_model
 from caredecide.upgrade import PREVIOUS_FORMAT_VERSION, renamed_data
@@ -47,6 +49,8 @@ TOP_KEYS = (
     "parameters",
     "groups",
     "mortality",
+    "attributes",
+    "tunnels",
 )
 SETTINGS_KEYS = (
     "cycle_years",
@@ -63,7 +67,17 @@ SETTINGS_KEYS = (
     "currency",
     "severity_order",
 )
-STATE_KEYS = ("id", "label", "qaly_weight", "cost", "absorbing", "alive", "negative_cost_allowed")
+STATE_KEYS = (
+    "id",
+    "label",
+    "qaly_weight",
+    "cost",
+    "absorbing",
+    "alive",
+    "negative_cost_allowed",
+    "attributes",
+    "tunnels",
+)
 ACTION_KEYS = ("id", "label", "allowed_in", "oneoff_cost", "oneoff_qaly_loss", "cost_per_cycle")
 PARAMETER_KEYS = (
     "value",
@@ -78,6 +92,8 @@ PARAMETER_KEYS = (
 )
 GROUP_KEYS = ("members", "counts", "prior", "source", "note")
 MORTALITY_KEYS = ("table", "gompertz_makeham", "source")
+ATTRIBUTE_KEYS = ("values", "label")
+TUNNEL_KEYS = ("length", "only_for", "label")
 
 
 # =====================================================================================
@@ -298,6 +314,14 @@ def _build_model(data: Mapping[str, Any], base_dir: Path) -> tuple[Model, list[P
         mortality = _read_mortality(
             r, r.table(data["mortality"], "mortality", MORTALITY_KEYS), base_dir
         )
+    attributes = {
+        name: _read_attribute(r, name, r.table(raw, f"attributes.{name}", ATTRIBUTE_KEYS))
+        for name, raw in r.table(data.get("attributes", {}), "attributes", None).items()
+    }
+    tunnels = {
+        name: _read_tunnel(r, name, r.table(raw, f"tunnels.{name}", TUNNEL_KEYS))
+        for name, raw in r.table(data.get("tunnels", {}), "tunnels", None).items()
+    }
     model = Model(
         format_version=format_version if isinstance(format_version, int) else FORMAT_VERSION,
         title=title or "",
@@ -310,6 +334,8 @@ def _build_model(data: Mapping[str, Any], base_dir: Path) -> tuple[Model, list[P
         parameters=parameters,
         groups=groups,
         mortality=mortality,
+        attributes=attributes,
+        tunnels=tunnels,
     )
     return model, r.problems
 
@@ -366,6 +392,47 @@ def _read_state(r: _Reader, t: dict[str, Any], i: int) -> State:
         absorbing=absorbing,
         alive=r.boolean(t, "alive", w, not absorbing),
         negative_cost_allowed=r.boolean(t, "negative_cost_allowed", w, False),
+        attributes=r.text_list(t, "attributes", w),
+        tunnels=r.text_list(t, "tunnels", w),
+    )
+
+
+def _read_attribute(r: _Reader, name: str, t: dict[str, Any]) -> StateAttribute:
+    """``[attributes.<name>]``: value names and the numbers expressions read for them."""
+    w = f"attributes.{name}"
+    values: dict[str, float] = {}
+    raw = r.get(t, "values", w, {})
+    if not isinstance(raw, Mapping):
+        r.problem(
+            f"{w}.values", f"{raw!r}; expected a table such as {{ untreated = 0, treated = 1 }}"
+        )
+        raw = {}
+    for value_name, number in raw.items():
+        if isinstance(number, bool) or not isinstance(number, int | float):
+            r.problem(
+                f"{w}.values.{value_name}",
+                f"{number!r} is not a number; expected the number expressions read for "
+                f"{value_name!r}",
+            )
+            continue
+        values[value_name] = float(number)
+    return StateAttribute(name=name, values=values, label=r.text(t, "label", w, ""))
+
+
+def _read_tunnel(r: _Reader, name: str, t: dict[str, Any]) -> Tunnel:
+    """``[tunnels.<name>]``: length in cycles, the attribute values it is limited to."""
+    w = f"tunnels.{name}"
+    length = r.get(t, "length", w, 0)
+    only_for = r.get(t, "only_for", w, {})
+    if not isinstance(only_for, Mapping) or not all(isinstance(v, str) for v in only_for.values()):
+        r.problem(
+            f"{w}.only_for",
+            f"{only_for!r}; expected a table of attribute values such as "
+            '{ on_treatment = "treated" }',
+        )
+        only_for = {}
+    return Tunnel(
+        name=name, length=length, only_for=dict(only_for), label=r.text(t, "label", w, "")
     )
 
 

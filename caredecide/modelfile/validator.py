@@ -411,8 +411,11 @@ def validate_model(model: Model) -> list[ModelWarningRecord]:
         With one :class:`Problem` per finding, each naming the file and table path.
     """
     from caredecide.compile import compile_model, parse_model_expressions
+    from caredecide.expand import expand
 
     file = model.file_label
+    expansion = expand(model)  # attributes and tunnels -> flat states; raises on bad ones
+    model = expansion.model
     problems = structural_problems(model)
     parsed = parse_model_expressions(model)
     problems += parsed.problems
@@ -421,6 +424,7 @@ def validate_model(model: Model) -> list[ModelWarningRecord]:
         raise ModelError(problems, file=file)
     compiled = compile_model(model)
     records = [previous_format_warning()] if model.format_version == PREVIOUS_FORMAT_VERSION else []
+    records += expansion.warnings
     return records + _unit_warnings(model, parsed) + _warnings(model, compiled)
 
 

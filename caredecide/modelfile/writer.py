@@ -46,8 +46,20 @@ def dumps_model(model: Model) -> str:
     if s.severity_order:
         settings["severity_order"] = list(s.severity_order)
     _section(out, "[settings]", settings)
+    for name, attribute in model.attributes.items():
+        fields: dict[str, Any] = {"values": dict(attribute.values)}
+        if attribute.label:
+            fields["label"] = attribute.label
+        _section(out, f"[attributes.{_key(name)}]", fields)
+    for name, tunnel in model.tunnels.items():
+        fields = {"length": tunnel.length}
+        if tunnel.only_for:
+            fields["only_for"] = dict(tunnel.only_for)
+        if tunnel.label:
+            fields["label"] = tunnel.label
+        _section(out, f"[tunnels.{_key(name)}]", fields)
     for state in model.states:
-        fields: dict[str, Any] = {"id": state.id}
+        fields = {"id": state.id}
         if state.label:
             fields["label"] = state.label
         fields.update(qaly_weight=state.qaly_weight, cost=state.cost)
@@ -57,6 +69,10 @@ def dumps_model(model: Model) -> str:
             fields["alive"] = state.alive
         if state.negative_cost_allowed:
             fields["negative_cost_allowed"] = True
+        if state.attributes:
+            fields["attributes"] = list(state.attributes)
+        if state.tunnels:
+            fields["tunnels"] = list(state.tunnels)
         _section(out, "[[states]]", fields)
     for action in model.actions:
         fields = {"id": action.id}

@@ -1,0 +1,123 @@
+"""Cohort traces and time in state, grouped by attribute or tunnel step.
+
+A model with attributes or tunnels is compiled to one flat state per copy
+(:mod:`caredecide.expand`); ``CompiledModel.state_groups`` says where each copy comes
+from. These helpers add the copies back up: the share of the cohort on treatment at
+each cycle, or the years spent in each tunnel step. For a flat model the only grouping
+is ``"state"`` (each state by itself).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import numpy as np
+import pandas as pd
+
+from caredecide.compiled import CompiledModel, occupancy_weights
+
+
+def grouping_names(compiled: CompiledModel) -> tuple[str, ...]:
+    """Names a trace can be grouped by: ``"state"``, then attributes and tunnels."""
+    return tuple(compiled.state_groups) or ("state",)
+
+
+def state_group_frame(compiled: CompiledModel) -> pd.DataFrame:
+    """One row per flat state: ``state_id``, ``label`` and one column per grouping.
+
+    Returns
+    -------
+    pandas.DataFrame
+        (S rows) columns ``state_id``, ``label``, then :func:`grouping_names`; ``""`` in
+        a grouping column where the state does not carry that attribute or tunnel.
+    """
+    groups = dict(compiled.state_groups) or {"state": compiled.state_ids}
+    labels = compiled.state_labels or compiled.state_ids
+    frame = pd.DataFrame({"state_id": list(compiled.state_ids), "label": list(labels)})
+    for name, values in groups.items():
+        frame[name] = list(values)
+    return frame
+
+
+def _by(compiled: CompiledModel, by: str | Sequence[str]) -> list[str]:
+    names = [by] if isinstance(by, str) else list(by)
+    known = grouping_names(compiled)
+    unknown = [n for n in names if n not in known]
+    if unknown or not names:
+        raise ValueError(
+            f"cannot group by {unknown or names!r}; expected one or more of {list(known)}"
+        )
+    return names
+
+
+def grouped_trace(
+    trace: np.ndarray, ages: np.ndarray, compiled: CompiledModel, by: str | Sequence[str]
+) -> pd.DataFrame:
+    """Cohort trace with the states of each group added up.
+
+    Parameters
+    ----------
+    trace : (T + 1, S) float
+        Share of the cohort in each flat state at each boundary (one draw of
+        ``PolicyOutcome.trace``).
+    ages : (T + 1,) float
+        Age at each boundary.
+    compiled : CompiledModel
+        The model the trace belongs to (for ``state_groups``).
+    by : str or sequence of str
+        Grouping names (:func:`grouping_names`), e.g. ``"on_treatment"`` or
+        ``["state", "on_treatment"]``.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Long frame: ``cycle``, ``age``, one column per ``by`` name, ``proportion``;
+        proportions of one cycle sum to the trace's (1 for a whole cohort).
+    """
+    names = _by(compiled, by)
+    trace = np.asarray(trace, dtype=float)
+    n_t, n_s = trace.shape
+    if n_s != compiled.n_states:
+        raise ValueError(f"trace has {n_s} states; the model has {compiled.n_states}")
+    groups = state_group_frame(compiled)
+    frame = pd.DataFrame(
+        {
+            "cycle": np.repeat(np.arange(n_t), n_s),
+            "age": np.repeat(np.asarray(ages, dtype=float), n_s),
+            "proportion": trace.ravel(),
+        }
+    )
+    for name in names:
+        frame[name] = np.tile(groups[name].to_numpy(dtype=object), n_t)
+    summed = frame.groupby(["cycle", "age", *names], sort=False, as_index=False)["proportion"]
+    return summed.sum()[["cycle", "age", *names, "proportion"]]
+
+
+def grouped_time(
+    trace: np.ndarray, compiled: CompiledModel, by: str | Sequence[str]
+) -> pd.DataFrame:
+    """Expected time spent in each group, undiscounted, with the model's within-cycle method.
+
+    Parameters
+    ----------
+    trace : (T + 1, S) float
+        One draw of a finite-horizon ``PolicyOutcome.trace``.
+    compiled : CompiledModel
+    by : str or sequence of str
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per group: the ``by`` columns, ``cycles`` (expected cycles spent there,
+        ``sum_t w_t m_t``) and ``years`` (``cycles`` x cycle length).
+    """
+    names = _by(compiled, by)
+    trace = np.asarray(trace, dtype=float)
+    weights = occupancy_weights(compiled.within_cycle, trace.shape[0] - 1)
+    per_state = weights @ trace  # (S,) expected cycles in each flat state
+    groups = state_group_frame(compiled)
+    frame = groups[names].copy()
+    frame["cycles"] = per_state
+    out = frame.groupby(names, sort=False, as_index=False)["cycles"].sum()
+    out["years"] = out["cycles"] * compiled.cycle_length
+    return out
