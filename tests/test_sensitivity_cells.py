@@ -178,7 +178,7 @@ def _recompiled(model: Model, cell, factor: float) -> np.ndarray:
     """The transitions of ``model`` compiled with the cell's expression times ``factor``."""
     table = "rates" if cell.rule == RATE_SCALED else "transitions"
     rows = copy.deepcopy(dict(getattr(model, table)))
-    rows[cell.action_id][cell.from_id][cell.to_id] = f"({cell.expression}) * {factor!r}"
+    rows[cell.action_id][cell.from_id][cell.to_id] = f"({cell.expression}) * {float(factor)!r}"
     return compile_model(replace(model, **{table: rows})).transition[0]
 
 

@@ -286,34 +286,44 @@ def cell_sensitivity(
     report()
 
     # 2. Brackets: the first grid interval in each direction where the margin turns negative.
-    base_margin = float(_margins(base, base_policy, mask)[0])
-    brackets = []  # (cell, side, x_near, x_far, m_near, m_far)
-    for side, grid_values, m in (
-        (0, below_grid, margins[:, :grid]),
-        (1, above_grid, margins[:, grid : 2 * grid]),
-    ):
+    #    The bracket's margin is the smallest over the decision cells whose action differs at
+    #    its far end: the first of them to switch is the switch sought, and leaving out the
+    #    cells that never switch in the bracket keeps the function smooth for Brent's method.
+    base_cells = _cell_margins(base, base_policy, mask)[0]  # (Tpi, S)
+    brackets = []  # (cell, side, x_near, x_far, index_near, index_far)
+    for side, grid_values, offset in ((0, below_grid, 0), (1, above_grid, grid)):
         searched = grid_values[:, -1] != 1.0
         for c in np.flatnonzero(searched):
-            negative = np.flatnonzero(m[c] < 0)
+            negative = np.flatnonzero(margins[c, offset : offset + grid] < 0)
             if negative.size == 0:
                 continue
             i = int(negative[0])
             x_near = 1.0 if i == 0 else grid_values[c, i - 1]
-            m_near = base_margin if i == 0 else m[c, i - 1]
-            brackets.append((c, side, x_near, grid_values[c, i], m_near, m[c, i]))
+            near = -1 if i == 0 else offset + i - 1  # -1: the near end is the base case
+            brackets.append((c, side, x_near, grid_values[c, i], near, offset + i))
 
     factor = np.full((C, 2), np.nan)
     converged = np.ones((C, 2), dtype=bool)
     changes = [["none", "none"] for _ in range(C)]
     if brackets:
-        cell_of, side_of, x_near, x_far, m_near, m_far = (
-            np.array(v) for v in zip(*brackets, strict=True)
-        )
+        columns = (np.array(v) for v in zip(*brackets, strict=True))
+        cell_of, side_of, x_near, x_far, i_near, i_far = columns
         cell_of, side_of = cell_of.astype(int), side_of.astype(int)
+        i_near, i_far = i_near.astype(int), i_far.astype(int)
+        grid_cells = _cell_margins(result, base_policy, mask).reshape(C, -1, *mask.shape)
+        far_cells = grid_cells[cell_of, i_far]  # (B, Tpi, S)
+        switching = far_cells < 0
+        near_cells = np.where(
+            (i_near < 0)[:, None, None],
+            base_cells[None],
+            grid_cells[cell_of, np.maximum(i_near, 0)],
+        )
+        m_near = np.where(switching, near_cells, np.inf).min(axis=(1, 2))
+        m_far = np.where(switching, far_cells, np.inf).min(axis=(1, 2))
 
         def margin_at(x: np.ndarray, k: np.ndarray) -> np.ndarray:
             res = solve(scaler.scaled(cell_of[k], x), objective)
-            return _margins(res, base_policy, mask)
+            return _margins(res, base_policy, switching[k])
 
         found = brent_roots(
             margin_at, x_near, x_far, m_near, m_far, xtol=xtol, rtol=RTOL_MIN,
@@ -371,14 +381,15 @@ def _margins(result: Any, base_policy: np.ndarray, mask: np.ndarray) -> np.ndarr
 
 
 def _cell_margins(result: Any, base_policy: np.ndarray, mask: np.ndarray) -> np.ndarray:
-    """(D, Tpi, S) ``Q(a0) - max_{b != a0} Q(b)``; ``inf`` outside ``mask``."""
+    """(D, Tpi, S) ``Q(a0) - max_{b != a0} Q(b)``; ``inf`` outside ``mask`` ((Tpi, S) or
+    (D, Tpi, S))."""
     q = np.asarray(result.q_values)  # (D, Tpi, S, A), -inf where not allowed
     chosen = np.broadcast_to(base_policy[None, :, :, None], (q.shape[0], *base_policy.shape, 1))
     q_base = np.take_along_axis(q, chosen, axis=-1)[..., 0]
     others = q.copy()
     np.put_along_axis(others, chosen, -np.inf, axis=-1)
     margin = q_base - others.max(axis=-1)
-    return np.where(mask[None], margin, np.inf)
+    return np.where(mask if mask.ndim == 3 else mask[None], margin, np.inf)
 
 
 def _change_texts(base: Any, result: Any, base_policy: np.ndarray, mask: np.ndarray) -> list[str]:
@@ -391,25 +402,22 @@ def _change_texts(base: Any, result: Any, base_policy: np.ndarray, mask: np.ndar
     changed.reshape(changed.shape[0], -1)[np.flatnonzero(none), lowest[none]] = True
     ages = policy_ages(base, base_policy.shape[0])
     q = np.asarray(result.q_values)
+    states = np.asarray(base.state_ids, dtype=object)
+    actions = np.asarray(base.action_ids, dtype=object)
+    n_actions = q.shape[-1]
     texts = []
     for d in range(changed.shape[0]):
-        t, s = np.nonzero(changed[d])
-        best = q[d, t, s].argmax(axis=-1)
-        frame = pd.DataFrame(
-            {
-                "cycle": t,
-                "age": ages[t],
-                "state": np.asarray(base.state_ids, dtype=object)[s],
-                "base_action": np.asarray(base.action_ids, dtype=object)[base_policy[t, s]],
-                "action": np.asarray(base.action_ids, dtype=object)[best],
-            }
-        )
-        parts = [
-            f"{state} {before}->{after} at {_ages_text(group)}"
-            for (state, before, after), group in frame.groupby(
-                ["state", "base_action", "action"], sort=False
+        t, s = np.nonzero(changed[d])  # ordered by cycle, then state
+        before, after = base_policy[t, s], q[d, t, s].argmax(axis=-1)
+        key = (s * n_actions + before) * n_actions + after
+        parts = []
+        for k in np.unique(key):  # state order, then actions
+            band = key == k
+            i = int(np.flatnonzero(band)[0])
+            cycles = pd.DataFrame({"cycle": t[band], "age": ages[t[band]]})
+            parts.append(
+                f"{states[s[i]]} {actions[before[i]]}->{actions[after[i]]} at {_ages_text(cycles)}"
             )
-        ]
         texts.append("; ".join(parts))
     return texts
 
