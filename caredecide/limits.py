@@ -25,6 +25,14 @@ MAX_EXPRESSION_LENGTH = 2000
 """Longest expression text, in characters."""
 MAX_EXPRESSION_DEPTH = 50
 """Deepest nesting of an expression tree."""
+MAX_NESTING = 32
+"""Deepest nesting of brackets/braces, or of tables, accepted in a TOML or JSON file
+(:mod:`caredecide.guarded`). A model file needs about 5 (a transition row is
+``transitions.ACTION.STATE.TARGET``); 32 leaves room and stays far below Python's
+recursion limit, which ``tomllib`` and ``json`` would otherwise reach."""
+MAX_HASHED_BYTES = 4 * 1024**3
+"""Largest file hashed for a run record (models, tables, outputs); a record may name any
+path, so a device or an endless file must not be read without end."""
 MAX_DRAWS = 100_000_000
 """Most probabilistic draws one run may ask for."""
 MAX_APP_DRAWS = 20_000

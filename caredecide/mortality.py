@@ -14,12 +14,14 @@ of age (common practice); ages past the last row keep the last row's hazard.
 from __future__ import annotations
 
 import csv
+import io
 import math
 from pathlib import Path
 
 import numpy as np
 
 from caredecide.errors import ModelError, Problem
+from caredecide.guarded import read_limited_text
 from caredecide.limits import MAX_LIFE_TABLE_BYTES
 
 
@@ -64,45 +66,45 @@ def read_life_table(path: Path | str) -> tuple[np.ndarray, np.ndarray]:
     """
     path = Path(path)
     where = "mortality.table"
-    size = path.stat().st_size
-    if size > MAX_LIFE_TABLE_BYTES:
+    if not path.exists():  # the model reader words this one itself
+        raise FileNotFoundError(2, "life table not found", str(path))
+    try:
+        text = read_limited_text(path, MAX_LIFE_TABLE_BYTES, what="a life table (CSV)")
+    except ModelError as error:
         raise ModelError(
-            Problem(where, f"life table is {size} bytes; expected at most {MAX_LIFE_TABLE_BYTES}"),
+            [Problem(p.where or where, p.message, p.file, p.line) for p in error.problems]
+        ) from None
+    reader = csv.DictReader(io.StringIO(text, newline=""))
+    columns = reader.fieldnames or []
+    if "age" not in columns or "annual_probability" not in columns:
+        raise ModelError(
+            Problem(
+                where,
+                f"columns are {columns}; expected 'age' and 'annual_probability'",
+            ),
             file=str(path),
         )
-    with path.open(newline="", encoding="utf-8") as handle:
-        reader = csv.DictReader(handle)
-        columns = reader.fieldnames or []
-        if "age" not in columns or "annual_probability" not in columns:
-            raise ModelError(
+    problems: list[Problem] = []
+    ages: list[float] = []
+    probabilities: list[float] = []
+    for row_number, row in enumerate(reader, start=2):
+        try:
+            age, q = float(row["age"]), float(row["annual_probability"])
+        except (TypeError, ValueError):
+            problems.append(
+                Problem(where, f"row {row_number}: {row!r} is not two numbers", line=row_number)
+            )
+            continue
+        if not 0.0 <= q <= 1.0:
+            problems.append(
                 Problem(
                     where,
-                    f"columns are {columns}; expected 'age' and 'annual_probability'",
-                ),
-                file=str(path),
+                    f"row {row_number} (age {age:g}): annual_probability {q!r} is outside [0, 1]",
+                    line=row_number,
+                )
             )
-        problems: list[Problem] = []
-        ages: list[float] = []
-        probabilities: list[float] = []
-        for row_number, row in enumerate(reader, start=2):
-            try:
-                age, q = float(row["age"]), float(row["annual_probability"])
-            except (TypeError, ValueError):
-                problems.append(
-                    Problem(where, f"row {row_number}: {row!r} is not two numbers", line=row_number)
-                )
-                continue
-            if not 0.0 <= q <= 1.0:
-                problems.append(
-                    Problem(
-                        where,
-                        f"row {row_number} (age {age:g}): annual_probability {q!r} "
-                        "is outside [0, 1]",
-                        line=row_number,
-                    )
-                )
-            ages.append(age)
-            probabilities.append(q)
+        ages.append(age)
+        probabilities.append(q)
     if problems:
         raise ModelError(problems, file=str(path))
     return validate_life_table(np.array(ages), np.array(probabilities), file=str(path))

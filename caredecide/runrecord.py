@@ -20,8 +20,9 @@ from importlib import metadata
 from pathlib import Path
 
 from caredecide.cautions import CAUTION_SHORT
-from caredecide.errors import CaredecideError
-from caredecide.limits import MAX_RUN_RECORD_BYTES
+from caredecide.errors import CaredecideError, ModelError
+from caredecide.guarded import check_nesting, read_limited_text, sha256_limited
+from caredecide.limits import MAX_HASHED_BYTES, MAX_RUN_RECORD_BYTES
 
 RECORD_FORMAT = 1
 MAX_RECORD_BYTES = MAX_RUN_RECORD_BYTES
@@ -83,8 +84,9 @@ def sha256_bytes(data: bytes) -> str:
 
 
 def sha256_file(path: Path | str) -> str:
-    """Hex SHA-256 of a file's bytes."""
-    return sha256_bytes(Path(path).read_bytes())
+    """Hex SHA-256 of a file's bytes (a regular file of at most ``MAX_HASHED_BYTES``,
+    through the guarded reader: a record may name any path)."""
+    return sha256_limited(path, MAX_HASHED_BYTES, what="an input or output file")
 
 
 def package_versions() -> dict[str, str]:
@@ -129,14 +131,14 @@ def read_record(path: Path | str) -> RunRecord:
         Naming the file, the field and the offending value.
     """
     path = Path(path)
-    size = path.stat().st_size
-    if size > MAX_RECORD_BYTES:
-        raise RunRecordError(
-            f"{path}: the run record is {size} bytes, larger than the limit of {MAX_RECORD_BYTES}"
-        )
     try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError) as error:
+        text = read_limited_text(path, MAX_RUN_RECORD_BYTES, what="a JSON run record")
+        check_nesting(text, file=str(path), kind="json")
+    except ModelError as error:
+        raise RunRecordError(str(error)) from None
+    try:
+        data = json.loads(text)
+    except (json.JSONDecodeError, ValueError, RecursionError) as error:
         raise RunRecordError(f"{path}: not a JSON run record ({error})") from None
     if not isinstance(data, dict):
         raise RunRecordError(f"{path}: expected a JSON object, got {type(data).__name__}")

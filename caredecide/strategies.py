@@ -53,6 +53,7 @@ import pandas as pd
 from caredecide.compiled import CompiledModel
 from caredecide.errors import ModelError, Problem
 from caredecide.evaluate import PolicyOutcome, evaluate_policy
+from caredecide.guarded import read_limited_text
 from caredecide.limits import MAX_STRATEGY_TABLE_BYTES
 from caredecide.objective import Objective
 
@@ -527,25 +528,7 @@ def read_strategy_table(path: Path | str, *, text: str | None = None) -> list[St
     """
     file = str(path)
     if text is None:
-        path = Path(path)
-        if not path.is_file():
-            raise _model_error("file not found; expected a strategy table (CSV)", "", file)
-        size = path.stat().st_size
-        if size > MAX_TABLE_BYTES:
-            raise _model_error(
-                f"file is {size} bytes; expected at most {MAX_TABLE_BYTES} bytes "
-                "for a strategy table",
-                "",
-                file,
-            )
-        try:
-            text = path.read_text(encoding="utf-8-sig")
-        except UnicodeDecodeError as error:
-            raise _model_error(
-                f"not UTF-8 text ({error.reason} at byte {error.start}); expected a CSV file",
-                "",
-                file,
-            ) from None
+        text = read_limited_text(path, MAX_STRATEGY_TABLE_BYTES, what="a strategy table (CSV)")
     elif len(text.encode("utf-8")) > MAX_TABLE_BYTES:
         raise _model_error(
             f"table is larger than {MAX_TABLE_BYTES} bytes; expected a smaller strategy table",

@@ -183,8 +183,10 @@ def test_death_at_the_last_visit_time_is_kept_and_censoring_there_is_not():
 def test_file_size_limit(tmp_path, monkeypatch):
     path = tmp_path / "visits.csv"
     visits_frame().to_csv(path, index=False)
-    monkeypatch.setattr(records_module, "MAX_FILE_BYTES", 10)
-    with pytest.raises(ModelError, match=r"visits.csv: file is \d+ bytes; the limit is 10 bytes"):
+    monkeypatch.setattr(records_module, "MAX_RECORDS_FILE_BYTES", 10)
+    with pytest.raises(
+        ModelError, match=r"visits.csv: the file is larger than the limit of 10 bytes"
+    ):
         load_records(path)
 
 
@@ -196,5 +198,5 @@ def test_unreadable_csv(tmp_path):
 
 
 def test_missing_file():
-    with pytest.raises(FileNotFoundError):
+    with pytest.raises(ModelError, match=r"no/such/visits\.csv: file not found; expected a CSV"):
         load_records("no/such/visits.csv")

@@ -75,7 +75,7 @@ def test_missing_life_table_is_named(tmp_path):
 
 
 def test_oversized_text_is_refused():
-    with pytest.raises(ModelError, match=f"larger than {MAX_MODEL_BYTES}"):
+    with pytest.raises(ModelError, match=f"larger than the limit of {MAX_MODEL_BYTES:,} bytes"):
         loads_model("#" * (MAX_MODEL_BYTES + 1))
 
 

@@ -80,7 +80,9 @@ def _write(tmp_path, content: str):
 
 def test_oversized_record_is_refused(tmp_path):
     path = _write(tmp_path, " " * (MAX_RECORD_BYTES + 1))
-    with pytest.raises(RunRecordError, match=r"r\.json: the run record is \d+ bytes, larger"):
+    with pytest.raises(
+        RunRecordError, match=r"r\.json: the file is larger than the limit of 1,000,000 bytes"
+    ):
         read_record(path)
 
 

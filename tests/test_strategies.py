@@ -428,14 +428,14 @@ def test_table_missing_file(tmp_path):
 def test_table_too_large(tmp_path):
     path = write(tmp_path, "state,action\n" + "mild,treat\n" * (MAX_TABLE_BYTES // 10))
     assert re.search(
-        r"plan\.strategies\.csv: file is \d+ bytes; expected at most 1000000", _error(path)
+        r"plan\.strategies\.csv: the file is larger than the limit of 1,000,000 bytes", _error(path)
     )
 
 
 def test_table_not_utf8(tmp_path):
     path = tmp_path / "bad.csv"
     path.write_bytes(b"state,action\n\xff\xfe,treat\n")
-    assert re.search(r"bad\.csv: not UTF-8 text", _error(path))
+    assert re.search(r"bad\.csv: byte 13 is not UTF-8 text", _error(path))
 
 
 def test_table_reports_every_problem_at_once(tmp_path):

@@ -19,6 +19,7 @@ from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 
+from caredecide.guarded import read_limited_bytes
 from caredecide.limits import MAX_DRAFT_BYTES
 
 _SAFE = re.compile(r"[^A-Za-z0-9_-]+")
@@ -99,12 +100,11 @@ def _read(stem: str, folder: Path) -> Draft | None:
     path = folder / f"{stem}.toml"
     meta_path = folder / f"{stem}.json"
     try:
-        if path.stat().st_size > MAX_DRAFT_BYTES:
-            return None  # not ours to open: a draft is never larger than we write
-        with path.open(encoding="utf-8", newline="") as handle:  # keep "\r" as written
-            text = handle.read()
-        meta = json.loads(meta_path.read_text(encoding="utf-8"))
-    except (OSError, ValueError):  # missing, unreadable or corrupt record: no draft
+        # Bytes decoded as they are, so "\r" stays as written; a draft is never larger
+        # than we write, and never anything but a regular file.
+        text = read_limited_bytes(path, MAX_DRAFT_BYTES).decode("utf-8")
+        meta = json.loads(read_limited_bytes(meta_path, MAX_DRAFT_BYTES).decode("utf-8"))
+    except (OSError, ValueError, RecursionError):  # missing, unreadable or corrupt: no draft
         return None
     if not isinstance(meta, dict) or not isinstance(meta.get("source"), str):
         return None

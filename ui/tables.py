@@ -19,6 +19,7 @@ from typing import Any
 import pandas as pd
 
 from caredecide.errors import ModelError, Problem
+from caredecide.guarded import check_nesting
 from caredecide.model import ALL_STATES, Action, Model, Parameter, Settings, State
 
 SETTINGS_COLUMNS = (
@@ -121,8 +122,11 @@ def cell_distribution(text: str, where: str) -> dict | None:
     if not text:
         return None
     try:
+        check_nesting(text, file=where)
         value = tomllib.loads(f"d = {text}")["d"]
-    except tomllib.TOMLDecodeError as error:
+    except ModelError as error:
+        raise ModelError(Problem(where, error.problems[0].message)) from None
+    except ValueError as error:  # TOMLDecodeError, or an integer too long to read
         raise ModelError(
             Problem(
                 where,

@@ -19,7 +19,8 @@ from caredecide.cautions import CAUTION_LONG, CAUTION_SHORT
 from caredecide.compile import compile_model
 from caredecide.errors import CaredecideError, ModelError, Problem
 from caredecide.evaluate import evaluate_policy
-from caredecide.limits import MAX_MODEL_BYTES, MODEL_ENV
+from caredecide.guarded import decode_text, read_limited_text
+from caredecide.limits import MAX_MODEL_BYTES, MAX_STRATEGY_TABLE_BYTES, MODEL_ENV
 from caredecide.model import Model
 from caredecide.modelfile import loads_model
 from caredecide.objective import Objective
@@ -63,14 +64,21 @@ def source_label(source: str) -> str:
 
 
 def read_model_file(path: Path) -> str:
-    """Text of a model file, refusing files over the size limit (ModelError naming the file)."""
-    size = path.stat().st_size
-    if size > MAX_MODEL_BYTES:
-        raise ModelError(
-            f"the model file is {size} bytes; expected at most {MAX_MODEL_BYTES} bytes",
-            file=str(path),
-        )
-    return path.read_text(encoding="utf-8")
+    """Text of a model file through the guarded reader (regular file, size cap, UTF-8);
+    ModelError naming the file otherwise."""
+    return read_limited_text(path, MAX_MODEL_BYTES, what="a model file (.toml)")
+
+
+def read_beside_table(path: Path | None) -> str | None:
+    """Text of the strategy table beside the model (None when there is none); a table
+    the guarded reader refuses is reported on the page and left out."""
+    if path is None:
+        return None
+    try:
+        return read_limited_text(path, MAX_STRATEGY_TABLE_BYTES, what="a strategy table (CSV)")
+    except ModelError as error:
+        st.warning(f"Strategy table left out: {error}", icon=":material/warning:")
+        return None
 
 
 def decode_upload(name: str, data: bytes) -> str:
@@ -80,13 +88,7 @@ def decode_upload(name: str, data: bytes) -> str:
             f"the uploaded file is {len(data)} bytes; expected at most {MAX_MODEL_BYTES} bytes",
             file=name,
         )
-    try:
-        return data.decode("utf-8")
-    except UnicodeDecodeError as error:
-        raise ModelError(
-            f"the uploaded file is not UTF-8 text (byte {error.start}); expected a TOML model file",
-            file=name,
-        ) from None
+    return decode_text(data, file=name, what="a TOML model file")
 
 
 def open_model(source: str, text: str) -> None:

@@ -15,7 +15,8 @@ from typing import Annotated
 
 import typer
 
-from caredecide.cli.console import print_caution, stderr
+from caredecide.cli.console import print_caution, stderr, user_errors
+from caredecide.guarded import check_nesting, read_limited_text
 from caredecide.limits import MAX_MODEL_BYTES, MODEL_ENV
 
 
@@ -91,13 +92,10 @@ def run_app(
     """
     print_caution()
     path = model if model is not None else _default_model()
-    size = path.stat().st_size
-    if size > MAX_MODEL_BYTES:
-        stderr.print(
-            f"[bold red]error:[/] {path}: the model file is {size} bytes; expected at most "
-            f"{MAX_MODEL_BYTES} bytes"
+    with user_errors():  # the app opens the file again; refuse a hostile one here first
+        check_nesting(
+            read_limited_text(path, MAX_MODEL_BYTES, what="a model file (.toml)"), file=str(path)
         )
-        raise typer.Exit(code=2)
     command, env = streamlit_command(path, port)
     if not headless:
         open_browser_when_ready(f"http://127.0.0.1:{port}")

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import hashlib
 import json
 import math
 from contextlib import nullcontext
@@ -43,7 +42,9 @@ class OutputFormat(StrEnum):
 
 def file_sha256(path: Path) -> str:
     """Hex SHA-256 of a file's bytes (identifies the exact model that was solved)."""
-    return hashlib.sha256(path.read_bytes()).hexdigest()
+    from caredecide.runrecord import sha256_file
+
+    return sha256_file(path)
 
 
 def _finite_or_none(value: float) -> float | None:

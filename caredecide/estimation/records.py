@@ -15,6 +15,7 @@ expected; all problems are reported at once.
 
 from __future__ import annotations
 
+import io
 import re
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -24,6 +25,7 @@ import numpy as np
 import pandas as pd
 
 from caredecide.errors import ModelError, Problem
+from caredecide.guarded import read_limited_bytes
 from caredecide.limits import MAX_RECORDS_FILE_BYTES
 
 OBSERVED, DEATH, CENSORED = 0, 1, 2
@@ -107,14 +109,12 @@ def natural_key(text: str) -> list[object]:
 def read_csv_limited(path: Path | str) -> pd.DataFrame:
     """Read a CSV data file after checking its size (strings kept as text)."""
     path = Path(path)
-    size = path.stat().st_size  # FileNotFoundError names the file
-    if size > MAX_FILE_BYTES:
-        raise ModelError(
-            f"file is {size:,} bytes; the limit is {MAX_FILE_BYTES:,} bytes", file=str(path)
-        )
+    data = read_limited_bytes(path, MAX_RECORDS_FILE_BYTES, what="a CSV file of records")
+    if not data.strip():
+        raise ModelError("the file is empty; expected a CSV file with a header row", file=str(path))
     try:
-        return pd.read_csv(path, dtype={"patient_id": str, "stage": str}, comment=None)
-    except (pd.errors.ParserError, UnicodeDecodeError, ValueError) as error:
+        return pd.read_csv(io.BytesIO(data), dtype={"patient_id": str, "stage": str}, comment=None)
+    except (pd.errors.ParserError, UnicodeDecodeError, ValueError, OverflowError) as error:
         raise ModelError(f"not a readable CSV file: {error}", file=str(path)) from None
 
 

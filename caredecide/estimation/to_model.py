@@ -28,6 +28,8 @@ import numpy as np
 from caredecide.errors import ModelError, Problem
 from caredecide.estimation.counts import CountEstimate
 from caredecide.estimation.panel import PanelEstimate
+from caredecide.guarded import read_limited_text
+from caredecide.limits import MAX_MODEL_BYTES
 from caredecide.model import DirichletGroup, Model, Parameter
 from caredecide.modelfile import IDENTIFIER
 
@@ -263,7 +265,9 @@ def write_estimates(
     out = Path(out)
     if model is not None:
         base = Path(model)
-    elif out.exists() and not out.read_text(encoding="utf-8").startswith(FRAGMENT_HEADER):
+    elif out.exists() and not read_limited_text(
+        out, MAX_MODEL_BYTES, what="a model file or a parameter tables file"
+    ).startswith(FRAGMENT_HEADER):
         base = out
     else:
         base = None

@@ -18,6 +18,7 @@ from caredecide.errors import (
     ModelError,
     Problem,
 )
+from caredecide.guarded import check_data_depth, check_nesting, check_text_size, read_limited_text
 from caredecide.limits import MAX_MODEL_BYTES
 from caredecide.model import (
     ALL_STATES,
@@ -216,15 +217,18 @@ def loads_model(
     ModelError
         Listing every problem found, each naming the file and table path.
     """
-    if len(text.encode("utf-8", errors="replace")) > MAX_MODEL_BYTES:
-        raise ModelError(
-            f"the model file is larger than {MAX_MODEL_BYTES} bytes; is it the right file?",
-            file=file,
-        )
+    check_text_size(text, MAX_MODEL_BYTES, file=file, what="a model file (.toml)")
+    check_nesting(text, file=file)
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as error:
         raise ModelError(_syntax_problem(error), file=file) from None
+    except (ValueError, RecursionError) as error:  # e.g. an integer of 5,000 digits
+        raise ModelError(
+            f"TOML value cannot be read ({error}); expected a model file of ordinary values",
+            file=file,
+        ) from None
+    check_data_depth(data, file=file)
     if base_dir is None:
         parent = Path(file).parent
         base_dir = parent if file != "<text>" and parent.is_dir() else Path.cwd()
@@ -241,20 +245,7 @@ def loads_model(
 def load_model(path: Path | str, *, validate: bool = True) -> Model:
     """Read and validate a model file (relative paths inside resolve against its folder)."""
     path = Path(path)
-    if path.is_dir():
-        raise ModelError("is a folder; expected a model file (.toml)", file=str(path))
-    size = path.stat().st_size
-    if size > MAX_MODEL_BYTES:
-        raise ModelError(
-            f"the model file is {size} bytes, larger than {MAX_MODEL_BYTES}", file=str(path)
-        )
-    try:
-        text = path.read_text(encoding="utf-8")
-    except UnicodeDecodeError as error:
-        raise ModelError(
-            f"byte {error.start} is not UTF-8 text; expected a TOML file saved as UTF-8",
-            file=str(path),
-        ) from None
+    text = read_limited_text(path, MAX_MODEL_BYTES, what="a model file (.toml)")
     return loads_model(text, file=str(path), base_dir=path.parent, validate=validate)
 
 

@@ -95,7 +95,7 @@ def test_csv_output_matches_the_library(library_run):
 def test_missing_file_error():
     run = runner.invoke(app, ["solve", "no_such_model.toml"])
     assert run.exit_code == 2
-    assert "file not found: no_such_model.toml" in run.stderr
+    assert "no_such_model.toml: file not found; expected a model file" in run.stderr
 
 
 def test_method_that_does_not_fit_the_horizon_error():

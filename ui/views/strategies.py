@@ -101,8 +101,9 @@ upload = st.file_uploader(
 tables: list[tuple[str, str]] = []
 source = working_model.working_source()
 beside = None if source.partition(":")[0] in ("upload", "template") else sibling_table(source)
-if beside is not None and beside.stat().st_size <= MAX_TABLE_BYTES:
-    tables.append((str(beside), beside.read_text(encoding="utf-8-sig")))
+beside_text = working_model.read_beside_table(beside)
+if beside_text is not None:
+    tables.append((str(beside), beside_text))
     st.caption(f"Strategy table beside the model: {beside.name}")
 if upload is not None:
     data = upload.getvalue()

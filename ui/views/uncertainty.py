@@ -10,7 +10,7 @@ from caredecide import charts
 from caredecide.errors import CaredecideError
 from caredecide.limits import MAX_APP_DRAWS
 from caredecide.modelfile import loads_model
-from caredecide.strategies import MAX_TABLE_BYTES, read_strategy_table, sibling_table
+from caredecide.strategies import read_strategy_table, sibling_table
 from caredecide.uncertainty.psa import analyse_uncertainty
 from ui import working_model
 
@@ -45,8 +45,9 @@ seed = right.number_input("Seed", min_value=0, value=1, step=1, key="uncertainty
 source = working_model.working_source()
 beside = None if source.partition(":")[0] in ("upload", "template") else sibling_table(source)
 table = None
-if beside is not None and beside.stat().st_size <= MAX_TABLE_BYTES:
-    table = (str(beside), beside.read_text(encoding="utf-8-sig"))
+beside_text = working_model.read_beside_table(beside)
+if beside_text is not None:
+    table = (str(beside), beside_text)
     st.caption(f"Candidates include the strategies of {beside.name}")
 
 try:
