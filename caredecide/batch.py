@@ -18,6 +18,7 @@ from caredecide.compile import compile_model, estimate_compiled_bytes
 from caredecide.evaluate import DISPLAY_CAP, PolicyOutcome, evaluate_policy
 from caredecide.limits import default_memory_limit
 from caredecide.objective import Objective
+from caredecide.options import check_scalar
 from caredecide.solvers import PolicyResult, SolverError, solve
 
 RESULT_FIELDS = (
@@ -210,8 +211,8 @@ def solve_batch(
     n_draws = count_parameter_sets(parameter_sets)
     if chunk_size is None:
         chunk_size = chunk_size_for(model, n_draws, memory_limit_bytes)
-    elif not isinstance(chunk_size, int) or chunk_size < 1:
-        raise SolverError(f"chunk_size = {chunk_size!r} is not allowed; expected an integer >= 1")
+    else:
+        chunk_size = check_scalar(chunk_size, "chunk_size", int, min_val=1)
     needs_outcome = any(k in OUTCOME_FIELDS for k in keep)
 
     pieces: dict[str, list[np.ndarray]] = {k: [] for k in keep if k != "totals"}

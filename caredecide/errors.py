@@ -70,6 +70,29 @@ class DistributionError(CaredecideError, ValueError):
     """A parameter distribution is impossible (e.g. a beta with that mean and standard error)."""
 
 
+class RunOptionError(CaredecideError, ValueError):
+    """A run option given by the caller (solver, batch or analysis setting) is not allowed.
+
+    Distinct from :class:`ModelError`: the model file is not at fault. Built by
+    :func:`caredecide.options.check_scalar` and :func:`caredecide.options.check_choice`.
+
+    Attributes
+    ----------
+    name : str
+        The option, e.g. ``"chunk_size"``.
+    value : object
+        The value given.
+    expected : str
+        The allowed range or choices, in words.
+    """
+
+    def __init__(self, name: str, value: object, expected: str):
+        self.name = name
+        self.value = value
+        self.expected = expected
+        super().__init__(f"{name} = {value!r} is not allowed; expected {expected}")
+
+
 class ModelTooLargeError(CaredecideError, MemoryError):
     """The compiled arrays would not fit the memory budget; the message gives the estimate."""
 

@@ -8,6 +8,7 @@ import pytest
 
 from caredecide.batch import chunk_size_for, draw_bytes, draw_working_bytes, solve_batch
 from caredecide.compile import compile_model, estimate_compiled_bytes
+from caredecide.errors import RunOptionError
 from caredecide.evaluate import evaluate_policy
 from caredecide.modelfile import load_model
 from caredecide.objective import Objective
@@ -85,7 +86,7 @@ def test_chunk_size_follows_the_memory_budget(model):
 def test_batch_errors(model, draws):
     with pytest.raises(SolverError, match=r"keep names unknown field\(s\) \['policies'\]"):
         solve_batch(model, draws, keep=("policies",))
-    with pytest.raises(SolverError, match="chunk_size = 0"):
+    with pytest.raises(RunOptionError, match="chunk_size = 0 is not allowed"):
         solve_batch(model, draws, chunk_size=0)
     with pytest.raises(SolverError, match="parameter_sets must be None"):
         solve_batch(model, [1, 2, 3])

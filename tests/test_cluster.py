@@ -6,6 +6,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from caredecide.errors import RunOptionError
 from caredecide.uncertainty.cluster import ClusterError, dask_client, dask_map
 from caredecide.uncertainty.psa import analyse_uncertainty
 from tests.conftest import load_dict
@@ -61,7 +62,9 @@ def test_dask_client_needs_exactly_one_of_scheduler_or_workers():
 
 
 def test_dask_client_refuses_zero_workers():
-    with pytest.raises(ClusterError, match=r"workers = 0; expected a whole number >= 1"):
+    with pytest.raises(
+        RunOptionError, match=r"workers = 0 is not allowed; expected a whole number >= 1"
+    ):
         with dask_client(workers=0):
             pass
 

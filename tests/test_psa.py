@@ -9,7 +9,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from caredecide.compile import compile_model
-from caredecide.errors import ModelError
+from caredecide.errors import ModelError, RunOptionError
 from caredecide.objective import Objective
 from caredecide.solvers import solve
 from caredecide.uncertainty.psa import Candidate, PSAResult, analyse_uncertainty
@@ -269,21 +269,26 @@ def test_rank_correlation_reaches_the_draws(model):
 @pytest.mark.parametrize(
     ("options", "message"),
     [
-        ({"chunk_size": 0}, r"chunk_size: 0; expected a whole number >= 1"),
+        ({"chunk_size": 0}, r"chunk_size = 0 is not allowed; expected a whole number >= 1"),
         ({"wtp_range": (5.0, 1.0)}, r"wtp_range: \(5\.0, 1\.0\); expected 0 <= LOW < HIGH"),
         ({"wtp_range": ("a", 1)}, r"wtp_range: \('a', 1\); expected two numbers"),
-        ({"wtp_points": 1}, r"wtp_points: 1; expected a whole number >= 2"),
-        ({"n_frequent": -1}, r"n_frequent: -1; expected a whole number >= 0"),
-        ({"memory_limit_bytes": 0}, r"memory_limit_bytes: 0; expected a whole number"),
+        ({"wtp_points": 1}, r"wtp_points = 1 is not allowed; expected a whole number >= 2"),
+        ({"n_frequent": -1}, r"n_frequent = -1 is not allowed; expected a whole number >= 0"),
+        ({"memory_limit_bytes": 0}, r"memory_limit_bytes = 0 is not allowed; expected a whole"),
+        ({"chunk_size": True}, r"chunk_size = True is not allowed"),
     ],
 )
 def test_refusals(model, options, message):
-    with pytest.raises(ModelError, match=message):
+    # Run options are the caller's: RunOptionError, never a model-file error.
+    error = RunOptionError if next(iter(options)) != "wtp_range" else ModelError
+    with pytest.raises(error, match=message) as info:
         analyse_uncertainty(model, 10, seed=1, **options)
+    if error is RunOptionError:
+        assert not isinstance(info.value, ModelError)
 
 
 def test_refuses_zero_draws(model):
-    with pytest.raises(ModelError, match=r"draws = 0"):
+    with pytest.raises(RunOptionError, match=r"draws = 0 is not allowed"):
         analyse_uncertainty(model, 0, seed=1)
 
 
@@ -378,8 +383,7 @@ def test_evppi_on_the_first_draws_equals_the_regression_on_them(result):
     assert table.loc["u_sick", "share_of_evpi"] == pytest.approx(direct.value / total)
     assert (result.evppi(max_draws=None)["draws"] == DRAWS).all()
     with pytest.raises(
-        ModelError,
-        match=r"max_draws: 10; expected None or a whole number "
-        r">= 200",
+        RunOptionError,
+        match=r"max_draws = 10 is not allowed; expected a whole number >= 200 \(or None",
     ):
         result.evppi(max_draws=10)

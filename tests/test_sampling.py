@@ -11,7 +11,7 @@ import scipy.stats
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from caredecide.errors import ModelError
+from caredecide.errors import ModelError, RunOptionError
 from caredecide.uncertainty.sampling import (
     BLOCK_SIZE,
     ParameterSampler,
@@ -173,13 +173,18 @@ def test_rank_correlation_keeps_marginals_and_correlates_ranks():
 # ---------------------------------------------------------------- one test per refusal
 def test_refuses_zero_draws():
     model = _model_with({"x": {"type": "normal", "mean": 0.0, "sd": 1.0}})
-    with pytest.raises(ModelError, match=r"draws = 0; expected a whole number from 1"):
+    with pytest.raises(
+        RunOptionError,
+        match=r"draws = 0 is not allowed; expected a whole number in \[1, 100,000,000\]",
+    ):
         sample_parameters(model, 0, seed=1)
 
 
 def test_refuses_negative_seed():
     model = _model_with({"x": {"type": "normal", "mean": 0.0, "sd": 1.0}})
-    with pytest.raises(ModelError, match=r"seed = -1; expected a whole number >= 0"):
+    with pytest.raises(
+        RunOptionError, match=r"seed = -1 is not allowed; expected a whole number >= 0"
+    ):
         sample_parameters(model, 10, seed=-1)
 
 

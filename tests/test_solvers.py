@@ -15,6 +15,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from quantecon.markov import DiscreteDP, backward_induction
 
+from caredecide.errors import ModelError, RunOptionError
 from caredecide.evaluate import evaluate_policy
 from caredecide.objective import Objective
 from caredecide.solvers import SolverError, solve
@@ -563,11 +564,6 @@ def test_relative_tolerance_scales_with_values():
             "finite number of cycles",
         ),
         (lambda: puterman_two_state(None, 0.0), {}, "discount rate > 0"),
-        (lambda: puterman_two_state(3), {"tolerance": 0.0}, "tolerance = 0.0"),
-        (lambda: puterman_two_state(3), {"tie_tolerance": -1.0}, "tie_tolerance = -1.0"),
-        (lambda: puterman_two_state(3), {"tie_relative": float("nan")}, "tie_relative"),
-        (lambda: puterman_two_state(3), {"max_iterations": 0}, "max_iterations = 0"),
-        (lambda: puterman_two_state(3), {"evaluation_sweeps": -1}, "evaluation_sweeps = -1"),
         (
             lambda: puterman_two_state(3),
             {"terminal_value": [1.0, 2.0, 3.0]},
@@ -580,6 +576,27 @@ def test_relative_tolerance_scales_with_values():
 def test_solver_option_errors(model, kwargs, match):
     with pytest.raises(SolverError, match=match):
         solve(model(), QALYS, **kwargs)
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "match"),
+    [
+        ({"tolerance": 0.0}, r"tolerance = 0\.0 is not allowed; expected a finite number > 0"),
+        ({"tie_tolerance": -1.0}, r"tie_tolerance = -1\.0 .* expected a finite number >= 0"),
+        ({"tie_relative": float("nan")}, "tie_relative = nan"),
+        ({"max_iterations": 0}, "max_iterations = 0 is not allowed; expected a whole number >= 1"),
+        ({"max_iterations": True}, "max_iterations = True is not allowed"),
+        ({"max_iterations": 2.5}, "max_iterations = 2.5"),
+        ({"evaluation_sweeps": -1}, "evaluation_sweeps = -1"),
+        ({"tolerance": "1e-6"}, "tolerance = '1e-6'"),
+    ],
+)
+def test_solver_run_option_errors_are_run_option_errors(kwargs, match):
+    # Bad run options are the caller's, not the model file's: one error type names them.
+    with pytest.raises(RunOptionError, match=match) as info:
+        solve(puterman_two_state(3), QALYS, **kwargs)
+    assert not isinstance(info.value, ModelError)
+    assert info.value.name == next(iter(kwargs))
 
 
 def _two_rates(n_cycles=None, within="start", stationary=True):

@@ -12,12 +12,11 @@ flagged ``indifferent``. Actions not allowed in a state are never chosen.
 
 from __future__ import annotations
 
-import math
-
 import numpy as np
 
 from caredecide.compiled import CompiledModel
 from caredecide.objective import Objective
+from caredecide.options import check_scalar
 from caredecide.solvers.bellman import (
     DEFAULT_TIE_ABSOLUTE,
     DEFAULT_TIE_RELATIVE,
@@ -37,17 +36,6 @@ METHODS = (
 )
 
 __all__ = ["METHODS", "PolicyResult", "SolverError", "SweepRecord", "solve"]
-
-
-def _check_positive(name: str, value: float, *, allow_zero: bool = False) -> None:
-    ok = (
-        isinstance(value, int | float)
-        and math.isfinite(value)
-        and (value >= 0 if allow_zero else value > 0)
-    )
-    if not ok:
-        expected = ">= 0" if allow_zero else "> 0"
-        raise SolverError(f"{name} = {value!r} is not allowed; expected a finite number {expected}")
 
 
 def solve(
@@ -101,25 +89,21 @@ def solve(
 
     Raises
     ------
+    RunOptionError
+        An option out of range or of the wrong type (``max_iterations=True`` included).
     SolverError
-        Unknown method, a method that does not fit the horizon, impossible options,
-        unequal discount rates or a zero rate for an infinite horizon.
+        Unknown method, a method that does not fit the horizon, unequal discount rates
+        or a zero rate for an infinite horizon.
     """
     if method not in METHODS:
         raise SolverError(f"solver method {method!r} is unknown; expected one of {METHODS}")
     if not isinstance(objective, Objective):
         raise SolverError(f"objective must be an Objective; got {type(objective).__name__}")
-    _check_positive("tolerance", tolerance)
-    _check_positive("tie_tolerance", tie_tolerance, allow_zero=True)
-    _check_positive("tie_relative", tie_relative, allow_zero=True)
-    if not isinstance(max_iterations, int) or max_iterations < 1:
-        raise SolverError(
-            f"max_iterations = {max_iterations!r} is not allowed; expected an integer >= 1"
-        )
-    if not isinstance(evaluation_sweeps, int) or evaluation_sweeps < 0:
-        raise SolverError(
-            f"evaluation_sweeps = {evaluation_sweeps!r} is not allowed; expected an integer >= 0"
-        )
+    check_scalar(tolerance, "tolerance", float, min_val=0.0, include_boundaries="neither")
+    check_scalar(tie_tolerance, "tie_tolerance", float, min_val=0.0)
+    check_scalar(tie_relative, "tie_relative", float, min_val=0.0)
+    check_scalar(max_iterations, "max_iterations", int, min_val=1)
+    check_scalar(evaluation_sweeps, "evaluation_sweeps", int, min_val=0)
     check_compiled(compiled)
     finite = compiled.n_cycles is not None
     if method == "auto":

@@ -34,6 +34,7 @@ from collections.abc import Iterable, Iterator, Sequence
 from contextlib import contextmanager
 
 from caredecide.errors import CaredecideError
+from caredecide.options import check_scalar
 from caredecide.uncertainty.psa import ChunkMap, ChunkResult, PSAContext, solve_chunk
 
 __all__ = ["ClusterError", "dask_client", "dask_map"]
@@ -102,14 +103,8 @@ def dask_client(
         with client:
             yield client
         return
-    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
-        raise ClusterError(f"workers = {workers!r}; expected a whole number >= 1")
-    if (
-        isinstance(threads_per_worker, bool)
-        or not isinstance(threads_per_worker, int)
-        or threads_per_worker < 1
-    ):
-        raise ClusterError(f"threads_per_worker = {threads_per_worker!r}; expected >= 1")
+    check_scalar(workers, "workers", int, min_val=1)
+    check_scalar(threads_per_worker, "threads_per_worker", int, min_val=1)
     # Worker processes listen on loopback only; threads talk in-process.
     where = {"host": "127.0.0.1"} if processes else {}
     with (

@@ -72,6 +72,7 @@ from caredecide.errors import ModelError, ModelTooLargeError, Problem
 from caredecide.evaluate import evaluate_policy
 from caredecide.limits import CHUNK_MEMORY_BYTES, default_memory_limit
 from caredecide.objective import Objective
+from caredecide.options import check_scalar
 from caredecide.solvers import solve
 from caredecide.uncertainty.acceptability import (
     acceptability_curve,
@@ -309,18 +310,7 @@ def kept_bytes(n_draws: int, n_parameters: int, n_candidates: int, policy_cells:
 def _memory_limit(memory_limit_bytes: int | None) -> int:
     if memory_limit_bytes is None:
         return min(DEFAULT_MEMORY_LIMIT, default_memory_limit())
-    if (
-        isinstance(memory_limit_bytes, bool)
-        or not isinstance(memory_limit_bytes, int)
-        or memory_limit_bytes < 1
-    ):
-        raise ModelError(
-            Problem(
-                "memory_limit_bytes",
-                f"{memory_limit_bytes!r}; expected a whole number of bytes >= 1",
-            )
-        )
-    return memory_limit_bytes
+    return check_scalar(memory_limit_bytes, "memory_limit_bytes", int, min_val=1)
 
 
 # --------------------------------------------------------------------------- the result
@@ -586,17 +576,7 @@ class PSAResult:
             "draws",
             "message",
         ]
-        if max_draws is not None and (
-            isinstance(max_draws, bool)
-            or not isinstance(max_draws, int)
-            or max_draws < MIN_EVPPI_DRAWS
-        ):
-            raise ModelError(
-                Problem(
-                    "max_draws",
-                    f"{max_draws!r}; expected None or a whole number >= {MIN_EVPPI_DRAWS}",
-                )
-            )
+        check_scalar(max_draws, "max_draws", int, min_val=MIN_EVPPI_DRAWS, allow_none=True)
         used = self.n_draws if max_draws is None else min(self.n_draws, max_draws)
         values = self.candidate_values[:used]
         if values.shape[1] < 2 or used < MIN_EVPPI_DRAWS or not self.parameter_names:
@@ -915,13 +895,12 @@ def analyse_uncertainty(
     if objective is None:
         objective = Objective.from_settings(model.settings)
     wtp_grid = _wtp_grid(objective, wtp_range, wtp_points)
-    if isinstance(n_frequent, bool) or not isinstance(n_frequent, int) or n_frequent < 0:
-        raise ModelError(Problem("n_frequent", f"{n_frequent!r}; expected a whole number >= 0"))
+    check_scalar(n_frequent, "n_frequent", int, min_val=0)
     limit = _memory_limit(memory_limit_bytes)
     if chunk_size is None:
         chunk_size = default_chunk_size(model, n_draws, limit)
-    elif isinstance(chunk_size, bool) or not isinstance(chunk_size, int) or chunk_size < 1:
-        raise ModelError(Problem("chunk_size", f"{chunk_size!r}; expected a whole number >= 1"))
+    else:
+        chunk_size = check_scalar(chunk_size, "chunk_size", int, min_val=1)
     sampler = ParameterSampler.from_model(model, rank_correlation=rank_correlation)
     context = PSAContext(
         model=model,
@@ -1031,8 +1010,7 @@ def _merge_candidates(named: list[tuple[str, str, np.ndarray]]) -> list[Candidat
 
 
 def _wtp_grid(objective: Objective, wtp_range, points: int) -> np.ndarray:
-    if isinstance(points, bool) or not isinstance(points, int) or points < 2:
-        raise ModelError(Problem("wtp_points", f"{points!r}; expected a whole number >= 2"))
+    check_scalar(points, "wtp_points", int, min_val=2)
     if wtp_range is None:
         high = 2 * objective.willingness_to_pay or 100_000.0
         return np.linspace(0.0, high, points)

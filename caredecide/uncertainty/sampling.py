@@ -40,6 +40,7 @@ import scipy.stats
 from caredecide.distributions import Distribution, dirichlet_from_counts, distribution_from_spec
 from caredecide.errors import ModelError, Problem
 from caredecide.limits import MAX_DRAWS
+from caredecide.options import check_scalar
 
 BLOCK_SIZE = 1000
 """Draws per block: one SeedSequence child per block (see the module docstring)."""
@@ -59,25 +60,13 @@ def block_seed(seed: int, block: int) -> np.random.SeedSequence:
 
 
 def check_seed(seed: object) -> int:
-    """``seed`` as an int, or a ModelError naming the value (a whole number >= 0)."""
-    if isinstance(seed, bool) or not isinstance(seed, int | np.integer) or seed < 0:
-        raise ModelError(Problem("seed", f"seed = {seed!r}; expected a whole number >= 0"))
-    return int(seed)
+    """``seed`` as an int, or a RunOptionError naming the value (a whole number >= 0)."""
+    return check_scalar(seed, "seed", int, min_val=0)
 
 
 def check_draw_count(n_draws: object, where: str = "draws") -> int:
-    """``n_draws`` as an int in [1, MAX_DRAWS], or a ModelError naming the value."""
-    if (
-        isinstance(n_draws, bool)
-        or not isinstance(n_draws, int | np.integer)
-        or not 1 <= n_draws <= MAX_DRAWS
-    ):
-        raise ModelError(
-            Problem(
-                where, f"{where} = {n_draws!r}; expected a whole number from 1 to {MAX_DRAWS:,}"
-            )
-        )
-    return int(n_draws)
+    """``n_draws`` as an int in [1, MAX_DRAWS], or a RunOptionError naming the value."""
+    return check_scalar(n_draws, where, int, min_val=1, max_val=MAX_DRAWS)
 
 
 @dataclass(frozen=True)
