@@ -207,3 +207,17 @@ def test_a_model_without_parameters_gets_a_report_with_a_note(tmp_path):
     assert "not run: the model has no parameters to vary" in section
     evidence = pd.read_csv(tables_dir_for(out) / "input_evidence.csv")
     assert len(evidence) == 0 and "parameter" in evidence.columns
+
+
+def test_the_report_lists_the_model_warnings(tmp_path):
+    # A QALY weight of 75 per year is a slip (full health is 1; common practice).
+    model = tmp_path / "slip.toml"
+    text = BASE.read_text(encoding="utf-8")
+    text, count = re.subn(r"(?m)^qaly_weight = 0\.9$", "qaly_weight = 75.0", text, count=1)
+    assert count == 1
+    model.write_text(text, encoding="utf-8")
+    out = tmp_path / "report.html"
+    build_report(model, out)
+    page = out.read_text(encoding="utf-8")
+    job = page[page.index('<section id="job">') :]
+    assert "The model has" in job and "QALY weight 75 is above 1" in job

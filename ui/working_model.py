@@ -17,12 +17,12 @@ import streamlit as st
 
 from caredecide.cautions import CAUTION_LONG, CAUTION_SHORT
 from caredecide.compile import compile_model
-from caredecide.errors import CaredecideError, ModelError, Problem
+from caredecide.errors import CaredecideError, ModelError, ModelWarningRecord, Problem
 from caredecide.evaluate import evaluate_policy
 from caredecide.guarded import decode_text, read_limited_text
 from caredecide.limits import MAX_MODEL_BYTES, MAX_STRATEGY_TABLE_BYTES, MODEL_ENV
 from caredecide.model import Model
-from caredecide.modelfile import loads_model
+from caredecide.modelfile import loads_model, validate_model
 from caredecide.objective import Objective
 from caredecide.solvers import PolicyResult, solve
 from caredecide.structure import PolicyStructure
@@ -181,18 +181,32 @@ class Checked:
 
     model: Model | None
     problems: tuple[Problem, ...]
+    warnings: tuple[ModelWarningRecord, ...] = ()
+    """The valid model's warnings (suspicious but allowed values), shown on every view."""
 
 
 @st.cache_data(max_entries=64, show_spinner=False)
 def check_model(text: str, file: str, base_dir: str) -> Checked:
     """Parse and validate model text (cached on the text): the model or every problem."""
     try:
-        model = loads_model(text, file=file, base_dir=base_dir)
+        model = loads_model(text, file=file, base_dir=base_dir, validate=False)
+        warnings = validate_model(model)
     except ModelError as error:
         return Checked(None, tuple(error.problems))
     except CaredecideError as error:
         return Checked(None, (Problem(where="", message=str(error), file=file),))
-    return Checked(model, ())
+    return Checked(model, (), tuple(warnings))
+
+
+def show_warnings(warnings: tuple[ModelWarningRecord, ...]) -> None:
+    """The model's warnings, each with its table path, in one warning box."""
+    if not warnings:
+        return
+    lines = "\n".join(f"- `{w.where}`: {w.message}" for w in warnings)
+    st.warning(
+        f"The model has {len(warnings)} warning(s); check them before using the results:\n{lines}",
+        icon=":material/report:",
+    )
 
 
 def problems_under(problems: tuple[Problem, ...], *prefixes: str) -> list[Problem]:
@@ -302,4 +316,5 @@ def valid_model_or_stop() -> Model:
         st.page_link("views/model.py", label="Go to the Model view", icon=":material/edit_note:")
         show_problems(list(checked.problems[:5]))
         st.stop()
+    show_warnings(checked.warnings)
     return checked.model

@@ -16,6 +16,7 @@ from typing import Annotated
 import typer
 
 from caredecide.cli.console import print_caution, stderr, user_errors
+from caredecide.cli.model_warnings import StrictOption, show_warnings
 from caredecide.guarded import check_nesting, read_limited_text
 from caredecide.limits import MAX_MODEL_BYTES, MODEL_ENV
 
@@ -85,6 +86,7 @@ def run_app(
     quiet: Annotated[
         bool, typer.Option("--quiet", help="No start-up note on stderr (the caution stays).")
     ] = False,
+    strict: StrictOption = False,
 ) -> None:
     """Start the app in a local browser (research use only).
 
@@ -96,12 +98,30 @@ def run_app(
         check_nesting(
             read_limited_text(path, MAX_MODEL_BYTES, what="a model file (.toml)"), file=str(path)
         )
+    _show_model_warnings(path, strict)
     command, env = streamlit_command(path, port)
     if not headless:
         open_browser_when_ready(f"http://127.0.0.1:{port}")
     if not quiet:
         stderr.print(f"Starting the app on http://127.0.0.1:{port} with {path} (Ctrl+C stops it)")
     raise typer.Exit(code=_run_until_stopped(command, env))
+
+
+def _show_model_warnings(path: Path, strict: bool) -> None:
+    """Print the model's warnings before the app starts (``--strict``: refuse to start).
+
+    An invalid model still opens: the app's Model view lists its problems for fixing.
+    """
+    from caredecide.errors import ModelError
+    from caredecide.modelfile import load_model, validate_model
+
+    with user_errors():
+        try:
+            model = load_model(path, validate=False)
+            warnings = validate_model(model)
+        except ModelError:
+            return
+        show_warnings(model, warnings, strict=strict)
 
 
 def open_browser_when_ready(url: str, timeout_seconds: float = 60.0) -> threading.Thread:

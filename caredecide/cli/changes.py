@@ -17,6 +17,7 @@ from caredecide.cli.console import (
     user_errors,
     writing_to,
 )
+from caredecide.cli.model_warnings import StrictOption, load_and_warn
 
 
 def run_what_would_change(
@@ -55,21 +56,21 @@ def run_what_would_change(
     quiet: Annotated[
         bool, typer.Option("--quiet", help="No progress on stderr (the caution stays).")
     ] = False,
+    strict: StrictOption = False,
 ) -> None:
     """Per health state: the recommended policy, the estimates that could flip it inside
     their plausible ranges (at which values, with what probability), and scenarios that
     change it."""
     print_caution()
     with user_errors():
-        from caredecide.modelfile import load_model
         from caredecide.sensitivity import parameter_thresholds
         from caredecide.sensitivity.recommendation import what_would_change
         from caredecide.sensitivity.variation import default_objective
 
         if out is not None:
             prepare_output_folder(out)
-        loaded = load_model(model)
-        alternatives = {path.stem: load_model(path) for path in scenario or []}
+        loaded = load_and_warn(model, strict=strict)
+        alternatives = {path.stem: load_and_warn(path, strict=strict) for path in scenario or []}
         objective = default_objective(loaded)
         psa = None
         with progress("{task.description}", total=2, quiet=quiet) as bar:

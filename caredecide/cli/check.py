@@ -9,6 +9,7 @@ import typer
 from rich.table import Table
 
 from caredecide.cli.console import plain, print_caution, stderr, stdout, user_errors
+from caredecide.cli.model_warnings import StrictOption, show_warnings
 
 
 def _horizon_text(model) -> str:
@@ -138,6 +139,7 @@ def register(app: typer.Typer) -> None:
                 "renaming the functions that changed and keeping comments; then check it.",
             ),
         ] = False,
+        strict: StrictOption = False,
     ) -> None:
         """Validate a model file: print a summary, or every problem found (exit code 2)."""
         from caredecide.modelfile import load_model, validate_model
@@ -147,10 +149,9 @@ def register(app: typer.Typer) -> None:
             with user_errors():
                 _upgrade_file(model_path)
         with user_errors():
-            model = load_model(model_path)
+            model = load_model(model_path, validate=False)
             warnings = validate_model(model)
-        for warning in warnings:
-            stderr.print(f"[yellow]warning:[/] {plain(model.file_label)}: {plain(warning)}")
+            show_warnings(model, warnings, strict=strict)
         if not quiet:
             print_summary(model)
             stdout.print(

@@ -12,6 +12,7 @@ from rich.console import Console
 from rich.table import Table
 
 from caredecide.cli.console import plain, print_caution, save_chart, stderr, stdout, user_errors
+from caredecide.cli.model_warnings import StrictOption, load_and_warn
 
 TABLE_FILE = "strategies.csv"
 FRONTIER_FILE = "frontier.csv"
@@ -171,10 +172,10 @@ def compare_command(
         ),
     ] = None,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress or notes on stderr.")] = False,
+    strict: StrictOption = False,
 ) -> None:
     """Compare the optimal policy with fixed strategies (research use only)."""
     from caredecide.compare import compare_strategies
-    from caredecide.modelfile import load_model
 
     print_caution()
     with user_errors():
@@ -183,7 +184,7 @@ def compare_command(
             if not quiet
             else nullcontext() as status
         ):
-            loaded = load_model(model)
+            loaded = load_and_warn(model, strict=strict)
 
             def progress(round_number: int, brackets: int) -> None:
                 if status is not None:

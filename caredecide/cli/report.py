@@ -13,6 +13,7 @@ from typing import Annotated
 import typer
 
 from caredecide.cli.console import print_caution, progress, stderr, stdout, user_errors
+from caredecide.cli.model_warnings import StrictOption, load_and_warn
 
 
 @contextmanager
@@ -47,6 +48,7 @@ def report_command(
         int, typer.Option("--seed", min=0, help="Seed of the probabilistic analysis.")
     ] = 1,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress on stderr.")] = False,
+    strict: StrictOption = False,
 ) -> None:
     """Write a report of every analysis of a model (research use only)."""
     from caredecide.report import build_report, record_path_for, tables_dir_for
@@ -54,6 +56,7 @@ def report_command(
     # The caution is always shown (stderr), whatever --quiet says.
     print_caution()
     with user_errors():
+        load_and_warn(model, strict=strict)
         with step_progress("report", 5, quiet) as step:
             record = build_report(
                 model,

@@ -22,6 +22,7 @@ from caredecide.cli.console import (
     user_errors,
     writing_to,
 )
+from caredecide.cli.model_warnings import StrictOption, load_and_warn
 from caredecide.errors import ModelError, Problem
 
 TABLE_WIDTH = 150
@@ -163,6 +164,7 @@ def run_sensitivity(
     quiet: Annotated[
         bool, typer.Option("--quiet", help="No progress on stderr (the caution stays).")
     ] = False,
+    strict: StrictOption = False,
 ) -> None:
     """Rank the estimates by how much they move the decision; find decision thresholds.
 
@@ -171,7 +173,6 @@ def run_sensitivity(
     """
     print_caution()
     with user_errors():
-        from caredecide.modelfile import load_model
         from caredecide.sensitivity import (
             one_way,
             parameter_thresholds,
@@ -184,7 +185,7 @@ def run_sensitivity(
         if out is not None:  # before the run: a folder that cannot be made fails at once
             prepare_output_folder(out)
         # load_model refuses oversized files (caredecide.modelfile.MAX_MODEL_BYTES).
-        loaded = load_model(model)
+        loaded = load_and_warn(model, strict=strict)
         if two_way_pair:  # check the pair before the long one-way and threshold runs
             _check_pair(loaded, two_way_pair, str(model))
         objective = default_objective(loaded)

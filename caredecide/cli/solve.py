@@ -22,6 +22,7 @@ from caredecide.cli.console import (
     user_errors,
     writing_to,
 )
+from caredecide.cli.model_warnings import StrictOption, load_and_warn
 
 POLICY_COLUMNS = ["cycle", "age", "state", "action", "value", "next_best_action", "action_gap"]
 
@@ -138,11 +139,11 @@ def solve_command(
         OutputFormat, typer.Option("--format", help="Output on stdout.")
     ] = OutputFormat.table,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress or notes on stderr.")] = False,
+    strict: StrictOption = False,
 ) -> None:
     """Solve a model: when to start treatment, with totals (research use only)."""
     from caredecide.compile import compile_model
     from caredecide.evaluate import evaluate_policy
-    from caredecide.modelfile import load_model
     from caredecide.objective import Objective, ObjectiveError
     from caredecide.solvers import SolverError, solve
 
@@ -150,7 +151,7 @@ def solve_command(
     print_caution()
     with user_errors():
         with stderr.status("Solving...", spinner="dots") if not quiet else nullcontext():
-            loaded = load_model(model)
+            loaded = load_and_warn(model, strict=strict)
             try:
                 objective = Objective.from_settings(loaded.settings, wtp)
             except ObjectiveError as error:  # name the option, not only the value

@@ -24,6 +24,7 @@ from caredecide.cli.console import (
     user_errors,
     writing_to,
 )
+from caredecide.cli.model_warnings import StrictOption, load_and_warn
 
 
 def _number(value: float, digits: str = ",.2f") -> str:
@@ -176,6 +177,7 @@ def run_uncertainty(
             "--quiet", help="No progress or notes on stderr (the caution is always shown)."
         ),
     ] = False,
+    strict: StrictOption = False,
 ) -> None:
     """Probabilistic sensitivity analysis of the timing policy: acceptability by state and
     age, expected loss of each candidate policy, acceptability curves, EVPI and EVPPI.
@@ -190,11 +192,10 @@ def run_uncertainty(
         correlations = _correlation_pairs(rank_correlation or [])
         if out is not None:  # before the run: a folder that cannot be made fails at once
             prepare_output_folder(out)
-        from caredecide.modelfile import load_model
         from caredecide.strategies import read_strategy_table, sibling_table
         from caredecide.uncertainty.psa import analyse_uncertainty
 
-        loaded = load_model(model)
+        loaded = load_and_warn(model, strict=strict)
         table = strategies or sibling_table(model)
         extra = read_strategy_table(table) if table is not None else []
         if table is not None and not quiet:

@@ -9,6 +9,7 @@ import typer
 from rich.table import Table
 
 from caredecide.cli.console import print_caution, stdout, user_errors
+from caredecide.cli.model_warnings import StrictOption, load_and_warn
 from caredecide.cli.report import step_progress
 
 
@@ -18,15 +19,15 @@ def verify_command(
         Path | None, typer.Option("--csv", help="Also write the table as CSV.", dir_okay=False)
     ] = None,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress on stderr.")] = False,
+    strict: StrictOption = False,
 ) -> None:
     """Run the verification battery on a model; exit code 1 when a check fails."""
     from caredecide.exports import table_to_csv
-    from caredecide.modelfile import load_model
     from caredecide.verify import CHECK_IDS, FAIL, verify_model
 
     print_caution()
     with user_errors():
-        loaded = load_model(model)
+        loaded = load_and_warn(model, strict=strict)
         with step_progress("verify", len(CHECK_IDS), quiet) as step:
             report = verify_model(loaded, progress=step)
     table = Table(title=f"Verification of {loaded.title}")

@@ -332,7 +332,7 @@ def run_analyses(
         When the model itself cannot be read or solved (the policy step); later steps
         record their error as a note instead.
     """
-    from caredecide.modelfile import load_model
+    from caredecide.modelfile import load_model, validate_model
     from caredecide.runrecord import sha256_file
 
     model_path = Path(model_path)
@@ -348,6 +348,7 @@ def run_analyses(
         seed=seed,
     )
     data.inputs = input_tables(model)
+    data.facts["warnings"] = [str(w) for w in validate_model(model)]
     steps = [s for s in STEPS if s != "uncertainty" or draws]
     if not draws:
         data.notes["uncertainty"] = (

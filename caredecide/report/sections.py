@@ -146,6 +146,13 @@ def job_section(data: ReportData) -> str:
             )
         )
     )
+    warnings = data.facts.get("warnings", [])
+    if warnings:
+        items = "".join(f"<li>{esc(w)}</li>" for w in warnings)
+        parts.append(
+            f'<div class="caution"><strong>The model has {len(warnings)} warning(s)</strong>'
+            f"<ul>{items}</ul><p>Check them before using the results.</p></div>"
+        )
     return "".join(parts)
 
 

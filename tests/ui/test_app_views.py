@@ -344,3 +344,25 @@ def test_convergence_view_steps_through_the_other_infinite_horizon_solvers(app, 
     assert shown["action"].tolist() == [
         labels[result.action_ids[a]] for a, d in zip(last.policy[0], decision, strict=True) if d
     ]
+
+
+@pytest.mark.parametrize("view", VIEWS)
+def test_every_view_shows_the_model_warnings(view, tmp_path, monkeypatch):
+    # A QALY weight of 75 per year is a slip (full health is 1; common practice): every
+    # view says so, not only the model check.
+    import tomli_w
+
+    from tests.conftest import small_model_dict
+
+    data = small_model_dict()
+    data["states"][0]["qaly_weight"] = 75.0
+    path = tmp_path / "slip.toml"
+    path.write_text(tomli_w.dumps(data), encoding="utf-8")
+    monkeypatch.setenv("CAREDECIDE_MODEL", str(path))
+    at = AppTest.from_file(APP, default_timeout=120)
+    at.run()
+    at.switch_page(view).run()
+    assert not at.exception, at.exception
+    shown = " ".join(w.value for w in at.warning)
+    assert "QALY weight 75 is above 1" in shown
+    assert "states.well.qaly_weight" in shown

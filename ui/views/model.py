@@ -226,6 +226,7 @@ else:
     st.success(
         f"{working_model.file_label()} is valid (autosaved).", icon=":material/check_circle:"
     )
+    working_model.show_warnings(checked.warnings)
 TABLE_PREFIXES = ("settings", "states", "actions", "parameters", "transitions", "rates")
 working_model.show_problems([p for p in problems if not p.where.startswith(TABLE_PREFIXES)])
 

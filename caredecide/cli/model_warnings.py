@@ -1,0 +1,73 @@
+"""The model's warnings on every command, and ``--strict`` to make them errors.
+
+Every analysis command loads its model through :func:`load_and_warn`: the model is
+validated once, each warning (a QALY weight above 1, a one-off charge that can repeat,
+an unused parameter, ...) is printed on stderr whatever ``--quiet`` says, and with
+``--strict`` any warning stops the command with exit code 2 before any analysis runs.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+from caredecide.cli.console import plain, stderr
+from caredecide.errors import CaredecideError, ModelWarningRecord
+from caredecide.model import Model
+
+__all__ = ["StrictOption", "WarningsAsErrors", "load_and_warn", "show_warnings"]
+
+StrictOption = Annotated[
+    bool,
+    typer.Option(
+        "--strict",
+        help="Treat the model's warnings as errors: stop with exit code 2 before any analysis.",
+    ),
+]
+"""The ``--strict`` option shared by every command that reads a model."""
+
+
+class WarningsAsErrors(CaredecideError):
+    """``--strict`` was given and the model has warnings (the message lists them)."""
+
+
+def show_warnings(model: Model, warnings: list[ModelWarningRecord], *, strict: bool) -> None:
+    """Print each warning on stderr; with ``strict``, raise :class:`WarningsAsErrors`.
+
+    Parameters
+    ----------
+    model : Model
+        The model the warnings concern (its file is named in every line).
+    warnings : list of ModelWarningRecord
+        From :func:`caredecide.modelfile.validate_model`.
+    strict : bool
+        The ``--strict`` option.
+    """
+    label = model.file_label
+    if strict and warnings:
+        listed = "\n".join(f"  {label}: {warning}" for warning in warnings)
+        raise WarningsAsErrors(
+            f"--strict: {label} has {len(warnings)} warning(s), treated as errors:\n{listed}\n"
+            "expected a model without warnings (fix them, or run without --strict)"
+        )
+    for warning in warnings:
+        stderr.print(f"[yellow]warning:[/] {plain(label)}: {plain(warning)}")
+
+
+def load_and_warn(path: Path | str, *, strict: bool) -> Model:
+    """Load and validate the model file at ``path``, show its warnings, honour ``strict``.
+
+    Raises
+    ------
+    ModelError
+        For an invalid model (every problem listed).
+    WarningsAsErrors
+        With ``strict`` when the model has warnings.
+    """
+    from caredecide.modelfile import load_model, validate_model
+
+    model = load_model(path, validate=False)
+    show_warnings(model, validate_model(model), strict=strict)
+    return model
