@@ -79,17 +79,47 @@ def grouped_trace(
     n_t, n_s = trace.shape
     if n_s != compiled.n_states:
         raise ValueError(f"trace has {n_s} states; the model has {compiled.n_states}")
-    groups = state_group_frame(compiled)
     frame = pd.DataFrame(
         {
             "cycle": np.repeat(np.arange(n_t), n_s),
             "age": np.repeat(np.asarray(ages, dtype=float), n_s),
+            "state": np.tile(np.asarray(compiled.state_ids, dtype=object), n_t),
             "proportion": trace.ravel(),
         }
     )
-    for name in names:
-        frame[name] = np.tile(groups[name].to_numpy(dtype=object), n_t)
-    summed = frame.groupby(["cycle", "age", *names], sort=False, as_index=False)["proportion"]
+    return group_trace_frame(frame, state_group_frame(compiled), names)
+
+
+def group_trace_frame(
+    frame: pd.DataFrame, groups: pd.DataFrame, by: str | Sequence[str]
+) -> pd.DataFrame:
+    """A long trace frame (``PolicyOutcome.trace_frame``) added up by group.
+
+    Parameters
+    ----------
+    frame : pandas.DataFrame
+        Columns ``cycle``, ``age``, ``state`` (flat state id) and ``proportion``.
+    groups : pandas.DataFrame
+        :func:`state_group_frame` of the same model.
+    by : str or sequence of str
+        Columns of ``groups`` to add up by.
+
+    Returns
+    -------
+    pandas.DataFrame
+        ``cycle``, ``age``, the ``by`` columns and ``proportion``, in trace order.
+    """
+    names = [by] if isinstance(by, str) else list(by)
+    missing = [n for n in names if n not in groups.columns or n in ("state_id", "label")]
+    if missing or not names:
+        raise ValueError(
+            f"cannot group by {missing or names!r}; expected one or more of "
+            f"{[c for c in groups.columns if c not in ('state_id', 'label')]}"
+        )
+    lookup = groups.set_index("state_id")[names]
+    flat = frame[["cycle", "age", "state", "proportion"]].rename(columns={"state": "state_id"})
+    joined = flat.join(lookup, on="state_id")
+    summed = joined.groupby(["cycle", "age", *names], sort=False, as_index=False)["proportion"]
     return summed.sum()[["cycle", "age", *names, "proportion"]]
 
 
