@@ -45,6 +45,8 @@ STATE_COLUMNS = (
     "absorbing",
     "alive",
     "negative_cost_allowed",
+    "attributes",
+    "tunnels",
 )
 ACTION_COLUMNS = ("id", "label", "allowed_in", "oneoff_cost", "oneoff_qaly_loss", "cost_per_cycle")
 PARAMETER_COLUMNS = (
@@ -214,6 +216,8 @@ def model_to_tables(model: Model) -> dict[str, pd.DataFrame]:
                     "absorbing": st.absorbing,
                     "alive": st.alive,
                     "negative_cost_allowed": st.negative_cost_allowed,
+                    "attributes": ", ".join(st.attributes),
+                    "tunnels": ", ".join(st.tunnels),
                 }
                 for st in model.states
             ],
@@ -305,6 +309,8 @@ def _state(row: dict[str, Any]) -> State:
         absorbing=absorbing,
         alive=_flag(row["alive"], not absorbing),
         negative_cost_allowed=_flag(row["negative_cost_allowed"], False),
+        attributes=_names(_text(row.get("attributes", ""))),
+        tunnels=_names(_text(row.get("tunnels", ""))),
     )
 
 

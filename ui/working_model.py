@@ -248,6 +248,9 @@ class Solved:
     result: PolicyResult
     trace: pd.DataFrame
     totals: pd.DataFrame
+    groups: pd.DataFrame | None = None
+    """One row per flat state with its declared state, attribute values and tunnel steps
+    (:func:`caredecide.grouping.state_group_frame`)."""
 
 
 @st.cache_data(max_entries=16, show_spinner=False)
@@ -284,7 +287,14 @@ def solve_model(
         max_iterations=max_iterations,
     )
     evaluation = evaluate_policy(compiled, result.policy, objective)
-    return Solved(result, evaluation.trace_frame(), evaluation.totals_frame())
+    from caredecide.grouping import state_group_frame
+
+    return Solved(
+        result,
+        evaluation.trace_frame(),
+        evaluation.totals_frame(),
+        state_group_frame(compiled),
+    )
 
 
 @st.cache_data(max_entries=16, show_spinner=False)

@@ -13,6 +13,7 @@ import streamlit as st
 
 from caredecide import charts
 from caredecide.errors import CaredecideError
+from caredecide.expand import expand_model
 from ui import working_model
 
 INFINITE_METHODS = {
@@ -108,7 +109,7 @@ cols[0].metric("Residual", f"{record.residual[0]:.4g}")
 cols[1].metric("Error bound", f"{record.error_bound[0]:.4g}")
 state_ids = list(result.state_ids)
 values = pd.DataFrame({"state": state_ids, "age": 0.0, "value": record.value[0]})
-alive = [s.id for s in model.states if s.alive]
+alive = [s.id for s in expand_model(model).states if s.alive]
 unit = "QALYs" if settings.objective == "qalys" else (settings.currency or "money")
 st.altair_chart(
     charts.make_value_chart(values[values["state"].isin(alive)], state_order=alive, unit=unit),

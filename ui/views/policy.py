@@ -7,6 +7,8 @@ import streamlit as st
 
 from caredecide import charts
 from caredecide.errors import CaredecideError
+from caredecide.expand import expand_model
+from caredecide.grouping import group_trace_frame
 from caredecide.model import OBJECTIVES
 from ui import working_model
 
@@ -84,7 +86,8 @@ st.markdown(
 )
 
 # -- heat maps ---------------------------------------------------------------------------
-state_labels = {s.id: s.label or s.id for s in model.states}
+flat_states = expand_model(model).states  # one per copy when the model has attributes
+state_labels = {s.id: s.label or s.id for s in flat_states}
 frame = result.to_frame()
 decision_ids = [s for s, d in zip(result.state_ids, result.decision_states, strict=True) if d]
 if result.finite_horizon:
@@ -143,7 +146,7 @@ if result.finite_horizon:
     values = values.assign(age=frame["age"].astype(float))
 else:
     values = values.assign(age=0.0)
-alive = [s.id for s in model.states if s.alive]
+alive = [s.id for s in flat_states if s.alive]
 st.altair_chart(
     charts.make_value_chart(values[values["state"].isin(alive)], state_order=alive, unit=unit),
     key="value_chart",
@@ -153,9 +156,22 @@ st.caption(
 )
 
 st.subheader("Cohort trace")
-st.altair_chart(
-    charts.make_trace_chart(solved.trace, state_order=list(result.state_ids)), key="trace_chart"
-)
+trace, trace_order = solved.trace, list(result.state_ids)
+groupings = [c for c in solved.groups.columns if c not in ("state_id", "label")]
+if groupings != ["state"]:  # the model has attributes or tunnels
+    by = st.selectbox(
+        "Show the trace by",
+        ["each state", *groupings],
+        format_func=lambda name: "declared state" if name == "state" else name,
+        key="policy_trace_grouping",
+        help="Add up the states generated from attributes and tunnels.",
+    )
+    if by != "each state":
+        shown = group_trace_frame(solved.trace, solved.groups, by)
+        shown[by] = shown[by].replace("", f"(no {by})")
+        trace = shown.rename(columns={by: "state"})
+        trace_order = list(dict.fromkeys(trace["state"]))
+st.altair_chart(charts.make_trace_chart(trace, state_order=trace_order), key="trace_chart")
 with st.expander("Tables"):
     st.dataframe(
         frame.assign(state_label=frame["state"].map(state_labels)),
