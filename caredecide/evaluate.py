@@ -298,10 +298,7 @@ def _evaluate_infinite(compiled, policy, objective) -> PolicyOutcome:
         correction = (1.0 - start_weight) * np.einsum("ds,ds->d", start, occupancy_only[name])
         for discount, suffix in ((True, ""), (False, "_undiscounted")):
             d = factor[name] if discount else 1.0
-            totals[name + suffix] = (
-                _stationary_total(P_pi, per_cycle[name], d, absorbing, start, trace[:, -1])
-                - correction
-            )
+            totals[name + suffix] = _stationary_total(P_pi, per_cycle[name], d, start) - correction
         flow = np.einsum("dts,ds->dt", trace, per_cycle[name]) * (factor[name] ** t)
         flow[:, 0] -= correction
         flows[name] = flow
@@ -309,22 +306,85 @@ def _evaluate_infinite(compiled, policy, objective) -> PolicyOutcome:
     return _outcome(compiled, objective, trace, totals, flows, np.zeros(D), ages, False)
 
 
-def _stationary_total(P_pi, reward, discount, absorbing, start, last_trace) -> np.ndarray:
-    """(D,) expected total ``sum_t d^t m_t . r`` over an infinite horizon by a linear solve."""
-    S = P_pi.shape[-1]
+def _stationary_total(P_pi, reward, discount, start) -> np.ndarray:
+    """(D,) expected total ``sum_t d^t m_t . r`` over an infinite horizon.
+
+    Discounted: a linear solve. Undiscounted: the total is finite on the transient
+    states (a linear solve restricted to them); a closed class of states the cohort
+    reaches (an absorbing state, or states it circles in forever) adds +inf or -inf by
+    the sign of its long-run reward per cycle (its stationary distribution times the
+    reward), and nothing when its rewards are all 0 (Kemeny & Snell 1960, Finite Markov Chains,
+    ch. 3-4: absorption probabilities and the fundamental matrix; from memory). Reached
+    classes of opposite signs, or a class whose non-zero rewards average 0 in the long
+    run, give NaN: the total is undefined. The classes are found
+    from ``P_pi`` itself, once per pattern of non-zero moves (draws usually share one).
+    """
+    D, S = P_pi.shape[0], P_pi.shape[-1]
     if discount < 1.0:
         values = np.linalg.solve(np.eye(S) - discount * P_pi, reward[..., None])[..., 0]
         return np.einsum("ds,ds->d", start, values)
-    # Undiscounted: finite only through the transient (non-absorbing) states.
-    keep = ~absorbing
-    system = np.eye(keep.sum()) - P_pi[:, keep][:, :, keep]
-    try:
-        values = np.linalg.solve(system, reward[:, keep, None])[..., 0]
-    except np.linalg.LinAlgError:
-        return np.full(P_pi.shape[0], np.inf)
-    total = np.einsum("ds,ds->d", start[:, keep], values)
-    earning = (np.abs(reward[:, absorbing]) > 0) & (last_trace[:, absorbing] > 0)
-    return np.where(earning.any(axis=1), np.inf, total)
+    from scipy.sparse.csgraph import connected_components
+
+    moves = P_pi > 0
+    starts = np.broadcast_to(start, (D, S)) > 0
+    keys = np.packbits(np.concatenate([moves.reshape(D, -1), starts], axis=1), axis=1)
+    _, group, inverse = np.unique(keys, axis=0, return_index=True, return_inverse=True)
+    total = np.zeros(D)
+    for g, first in enumerate(group):
+        draws = np.flatnonzero(inverse.reshape(-1) == g)
+        graph = moves[first]
+        n_classes, label = connected_components(graph, directed=True, connection="strong")
+        leaves = label[:, None] != label[None, :]
+        closed = np.array(
+            [not (graph[label == k] & leaves[label == k]).any() for k in range(n_classes)]
+        )
+        reach = starts[first].copy()
+        for _ in range(S):  # states reachable from the start (S steps suffice)
+            grown = reach | (reach[:, None] & graph).any(axis=0)
+            if (grown == reach).all():
+                break
+            reach = grown
+        transient = ~closed[label]
+        part = np.zeros(draws.size)
+        if transient.any():
+            Q = P_pi[draws][:, transient][:, :, transient]
+            values = np.linalg.solve(np.eye(transient.sum()) - Q, reward[draws][:, transient, None])
+            part = np.einsum(
+                "ds,ds->d", np.broadcast_to(start, (D, S))[draws][:, transient], values[..., 0]
+            )
+        positive, negative = np.zeros(draws.size, bool), np.zeros(draws.size, bool)
+        undefined = np.zeros(draws.size, bool)
+        for k in np.flatnonzero(closed):
+            members = label == k
+            if not reach[members].any():
+                continue
+            class_reward = reward[draws][:, members]
+            rate = _long_run_reward(P_pi[draws][:, members][:, :, members], class_reward)
+            positive |= rate > 0
+            negative |= rate < 0
+            # Non-zero rewards averaging 0 in the long run (+1, -1, +1, ...) never settle.
+            undefined |= (rate == 0) & (class_reward != 0).any(axis=1)
+        part = np.where(positive, np.inf, part)
+        part = np.where(negative, -np.inf, part)
+        total[draws] = np.where((positive & negative) | undefined, np.nan, part)
+    return total
+
+
+def _long_run_reward(P_class: np.ndarray, reward: np.ndarray) -> np.ndarray:
+    """(D,) reward per cycle in the long run of a closed class: ``pi . r`` with ``pi`` its
+    stationary distribution (``pi (I - P) = 0``, ``sum pi = 1``); 0 within 1e-12."""
+    n = P_class.shape[-1]
+    if n == 1:
+        rate = reward[:, 0]
+    else:
+        system = np.swapaxes(np.eye(n) - P_class, 1, 2).copy()
+        system[:, -1, :] = 1.0
+        rhs = np.zeros((P_class.shape[0], n, 1))
+        rhs[:, -1, 0] = 1.0
+        pi = np.linalg.solve(system, rhs)[..., 0]
+        rate = np.einsum("ds,ds->d", pi, reward)
+    scale = np.abs(reward).max(axis=1) if reward.size else 0.0
+    return np.where(np.abs(rate) <= 1e-12 * np.maximum(scale, 1.0), 0.0, rate)
 
 
 def _outcome(compiled, objective, trace, totals, flows, terminal, ages, finite) -> PolicyOutcome:

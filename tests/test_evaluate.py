@@ -170,7 +170,51 @@ def test_undiscounted_total_is_infinite_when_an_absorbing_state_keeps_earning():
         np.array([[[0.5, 0.5], [0.0, 1.0]]]), state_qaly=[1.0, 1.0], absorbing=[False, True]
     )
     outcome = evaluate_policy(compiled, 0, QALYS)
-    assert np.isinf(outcome.qalys_undiscounted[0])
+    assert outcome.qalys_undiscounted[0] == np.inf
+
+
+# Infinite horizon, undiscounted (issue 14 item 4). Expected cycles in a transient state
+# left with probability p per cycle: 1 / p (the fundamental matrix (I - Q)^-1; Kemeny &
+# Snell 1960, Finite Markov Chains, ch. 3, from memory). A reached closed class that keeps
+# earning adds +inf or -inf by the sign of its reward; all-zero rewards add nothing.
+LEAVE_HALF = np.array([[[0.5, 0.5], [0.0, 1.0]]])
+
+
+@pytest.mark.parametrize(
+    ("dead_cost", "expected"), [(0.0, 2.0 * 10.0), (3.0, np.inf), (-3.0, -np.inf)]
+)
+def test_undiscounted_infinite_total_is_signed(dead_cost, expected):
+    compiled = make_compiled(LEAVE_HALF, state_cost=[10.0, dead_cost], absorbing=[False, True])
+    assert evaluate_policy(compiled, 0, QALYS).costs_undiscounted[0] == expected
+
+
+def test_undiscounted_total_of_a_cohort_never_absorbed():
+    # Two states swapping forever, no absorbing state: zero costs total 0 (formerly +inf),
+    # QALYs of 1 per cycle total +inf, QALYs of -1 per cycle total -inf.
+    swap = np.array([[[0.0, 1.0], [1.0, 0.0]]])
+    zero = make_compiled(swap, state_qaly=[1.0, 1.0], absorbing=[False, False])
+    outcome = evaluate_policy(zero, 0, QALYS)
+    assert outcome.costs_undiscounted[0] == 0.0
+    assert outcome.qalys_undiscounted[0] == np.inf
+    losing = make_compiled(swap, state_qaly=[-1.0, -1.0], absorbing=[False, False])
+    assert evaluate_policy(losing, 0, QALYS).qalys_undiscounted[0] == -np.inf
+
+
+def test_undiscounted_total_without_a_sum_is_nan():
+    # Opposite signs in two reached absorbing states, or +1/-1 alternating: no total.
+    split = np.array([[[0.0, 0.5, 0.5], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]]])
+    compiled = make_compiled(split, state_cost=[0.0, 1.0, -1.0], absorbing=[False, True, True])
+    assert np.isnan(evaluate_policy(compiled, 0, QALYS).costs_undiscounted[0])
+    swap = np.array([[[0.0, 1.0], [1.0, 0.0]]])
+    alternating = make_compiled(swap, state_qaly=[1.0, -1.0], absorbing=[False, False])
+    assert np.isnan(evaluate_policy(alternating, 0, QALYS).qalys_undiscounted[0])
+
+
+def test_unreached_earning_state_adds_nothing():
+    # State 2 earns but is never reached from the start: the total stays finite (2 * 10).
+    P = np.array([[[0.5, 0.5, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]]])
+    compiled = make_compiled(P, state_cost=[10.0, 0.0, 5.0], absorbing=[False, True, True])
+    assert evaluate_policy(compiled, 0, QALYS).costs_undiscounted[0] == pytest.approx(20.0)
 
 
 def test_frames():

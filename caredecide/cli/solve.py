@@ -48,8 +48,11 @@ def file_sha256(path: Path) -> str:
     return sha256_file(path)
 
 
-def _finite_or_none(value: float) -> float | None:
-    return float(value) if math.isfinite(value) else None
+def _finite_or_none(value: float) -> float | str | None:
+    """A total for JSON: the number, "+inf" or "-inf" (signed), None when undefined."""
+    if math.isnan(value):
+        return None
+    return float(value) if math.isfinite(value) else ("+inf" if value > 0 else "-inf")
 
 
 def build_summary(path: Path, compiled, result, outcome) -> dict:
