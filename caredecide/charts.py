@@ -743,3 +743,77 @@ def make_psa_convergence_chart(frame: pd.DataFrame) -> alt.FacetChart:
         .resolve_scale(y="independent")
         .properties(title="Convergence of the running means (band: 95% Monte Carlo interval)")
     )
+
+
+CLOSENESS_COLOURS: dict[str, str] = {
+    "within 1.1x": "#5B1A2E",  # darkest: the decision hangs on this cell
+    "within 1.25x": "#9C3B3B",
+    "within 1.5x": "#D0743C",
+    "within 2x": "#EDB567",
+    "further than 2x": "#F6E3BD",
+    "no switch in the search range": "#FFFFFF",
+    "not moved": "#CFCFCF",
+}
+"""Transition sensitivity matrix: one warm hue darkening as the switching factor nears 1
+(lightness carries the order, so it reads in greyscale too); the factors are also written
+in every cell. Keys are the bands of :data:`caredecide.sensitivity.cells.CLOSENESS_BANDS`."""
+
+
+def make_cell_matrix_chart(
+    frame: pd.DataFrame, action: str, *, state_order: Sequence[str] | None = None
+) -> alt.LayerChart:
+    """One action's transition sensitivity matrix, laid out like the transition editor.
+
+    Parameters
+    ----------
+    frame : DataFrame
+        :meth:`caredecide.sensitivity.CellSensitivityResult.matrix_frame`: ``action,
+        from_state, to_state, cell, status, closeness, label, detail``.
+    action : str
+        The action whose matrix is drawn (rows: from-state, columns: to-state).
+    state_order : sequence of str, optional
+        Row and column order (default: order of first appearance).
+    """
+    _require(
+        frame,
+        ["action", "from_state", "to_state", "cell", "status", "closeness", "label", "detail"],
+        "cell matrix chart",
+    )
+    data = frame[frame["action"] == action]
+    states = (
+        list(state_order)
+        if state_order
+        else list(dict.fromkeys([*data["from_state"], *data["to_state"]]))
+    )
+    bands = list(CLOSENESS_COLOURS)
+    base = alt.Chart(data).encode(
+        x=alt.X("to_state:N", title="to", sort=states, scale=alt.Scale(domain=states),
+                axis=alt.Axis(orient="top", labelAngle=0)),
+        y=alt.Y("from_state:N", title="from", sort=states, scale=alt.Scale(domain=states)),
+    )  # fmt: skip
+    cells = base.mark_rect(stroke="#7A7A7A", strokeWidth=0.6).encode(
+        color=alt.Color(
+            "closeness:N",
+            title="Switching factor",
+            scale=alt.Scale(domain=bands, range=[CLOSENESS_COLOURS[b] for b in bands]),
+        ),
+        tooltip=[
+            alt.Tooltip("cell:N", title="cell"),
+            alt.Tooltip("closeness:N", title="nearest switch"),
+            alt.Tooltip("detail:N", title="detail"),
+        ],
+    )
+    text = base.mark_text(fontSize=10).encode(
+        text="label:N",
+        color=alt.condition(
+            alt.FieldOneOfPredicate(field="closeness", oneOf=bands[:2]),
+            alt.value("white"),
+            alt.value("black"),
+        ),
+    )
+    size = max(40 * len(states), 160)
+    return alt.layer(cells, text).properties(
+        title=f"Action: {action} (factor below 1 / above 1 at which the policy changes)",
+        width=size * 1.6,
+        height=size,
+    )

@@ -11,6 +11,7 @@ import typer
 from rich.console import Console
 from rich.table import Table
 
+from caredecide.cli.cell_table import cell_notes, cell_table, save_cell_matrices
 from caredecide.cli.console import (
     plain,
     prepare_output_folder,
@@ -157,6 +158,30 @@ def run_sensitivity(
             "(finite-horizon models).",
         ),
     ] = 0.10,
+    transition_cells: Annotated[
+        bool,
+        typer.Option(
+            "--transition-cells",
+            help="Also scale each transition cell by a factor and find the factor below and "
+            "above 1 at which the optimal policy first changes (the transition sensitivity "
+            "matrix).",
+        ),
+    ] = False,
+    cell_loss_factors: Annotated[
+        tuple[float, float],
+        typer.Option(
+            "--cell-loss-factors",
+            help="With --transition-cells: the two factors (one below 1, one above) at which "
+            "the value lost by keeping the base-case policy is reported.",
+        ),
+    ] = (0.5, 2.0),
+    cell_search_max: Annotated[
+        float,
+        typer.Option(
+            "--cell-search-max",
+            help="With --transition-cells: the largest factor searched above 1.",
+        ),
+    ] = 10.0,
     out: Annotated[
         Path | None,
         typer.Option("--out", help="Folder for CSV files and charts (SVG, PNG)."),
@@ -174,12 +199,14 @@ def run_sensitivity(
     print_caution()
     with user_errors():
         from caredecide.sensitivity import (
+            cell_sensitivity,
             one_way,
             parameter_thresholds,
             setting_thresholds,
             summarise_thresholds,
             two_way,
         )
+        from caredecide.sensitivity.cells import check_cell_options
         from caredecide.sensitivity.variation import default_objective
 
         if out is not None:  # before the run: a folder that cannot be made fails at once
@@ -188,6 +215,11 @@ def run_sensitivity(
         loaded = load_and_warn(model, strict=strict)
         if two_way_pair:  # check the pair before the long one-way and threshold runs
             _check_pair(loaded, two_way_pair, str(model))
+        if transition_cells:
+            check_cell_options(
+                str(model), cell_loss_factors, cell_search_max,
+                names={"loss_factors": "--cell-loss-factors", "search_max": "--cell-search-max"},
+            )  # fmt: skip
         objective = default_objective(loaded)
         names = [n.strip() for p in parameters or [] for n in p.split(",") if n.strip()] or None
         finite = loaded.n_cycles() is not None
@@ -208,6 +240,8 @@ def run_sensitivity(
             steps.append("discount-rate threshold")
         if two_way_pair:
             steps.append("two-way map")
+        if transition_cells:
+            steps.append("transition cells")
         results: dict[str, pd.DataFrame] = {}
         with progress("{task.description}", total=len(steps), quiet=quiet) as bar:
             tasks = {step: bar.add_task(step, total=None) for step in steps}
@@ -235,6 +269,12 @@ def run_sensitivity(
                         loaded, "discount_rate", 0.0, discount_max, objective=objective,
                         grid=max(grid, 21), progress=report(step),
                     )  # fmt: skip
+                elif step == "transition cells":
+                    cells = cell_sensitivity(
+                        loaded, objective=objective, loss_factors=cell_loss_factors,
+                        search_max=cell_search_max, progress=report(step),
+                    )  # fmt: skip
+                    results["transition_cells"] = cells.to_frame()
                 else:
                     x, y = two_way_pair
                     results["twoway"] = two_way(
@@ -296,9 +336,20 @@ def run_sensitivity(
                 + " (every point in twoway.csv with --out)"
             )
 
+    if transition_cells:
+        table, lines = cell_table(cells.summary_table(), objective.unit)
+        _print(table)
+        stdout.print("Policy changes just past each switch (state, base action -> new, ages):")
+        for line in lines + cell_notes(cells):
+            stdout.print(line)
+
     if out is not None:
         with user_errors():
             _write_outputs(out, results, objective.unit, quiet)
+            if transition_cells:
+                written = save_cell_matrices(cells, out)
+                if not quiet:
+                    stderr.print("Wrote " + ", ".join(str(p) for p in written))
 
 
 def _check_pair(model, pair: tuple[str, str], file: str) -> None:

@@ -121,7 +121,8 @@ class CellScaler:
     Parameters
     ----------
     model : caredecide.model.Model
-        A valid model; it is compiled once, at the base case.
+        A valid model; it is compiled once, at the base case. A model with attributes or
+        tunnel states is expanded first: the cells are those of its flat states.
 
     Attributes
     ----------
@@ -134,6 +135,9 @@ class CellScaler:
     """
 
     def __init__(self, model: Any):
+        from caredecide.expand import expand_model
+
+        model = expand_model(model)  # attributes and tunnels: the cells of the flat states
         parsed = parse_model_expressions(model)
         if parsed.problems:
             raise ModelError(parsed.problems, file=model.file_label)

@@ -41,7 +41,14 @@ from caredecide.errors import ModelError, Problem
 from caredecide.evaluate import evaluate_policy
 from caredecide.objective import Objective
 from caredecide.sensitivity.brent import RTOL_MIN, brent_roots
-from caredecide.sensitivity.cell_scaling import CellScaler, FixedCell, TransitionCell
+from caredecide.sensitivity.cell_scaling import (
+    FIXED_NO_ROOM,
+    FIXED_REMAINDER,
+    FIXED_ZERO,
+    CellScaler,
+    FixedCell,
+    TransitionCell,
+)
 from caredecide.sensitivity.oneway import _ages_text
 from caredecide.sensitivity.variation import default_objective, policy_ages, source_file
 
@@ -64,6 +71,9 @@ CLOSENESS_BANDS = (
 """A switching factor ``f`` falls in the first band with ``max(f, 1/f) <= bound``."""
 NO_SWITCH_BAND = "no switch in the search range"
 WHOLE_PATH_NOTE = "one factor scales the cell at every age"
+FIXED_BAND = "not moved"
+"""Closeness label of a fixed cell (a remainder, a zero) in the matrix view."""
+FIXED_LABELS = {FIXED_REMAINDER: "rest", FIXED_ZERO: "zero", FIXED_NO_ROOM: "fixed"}
 
 Progress = Callable[[int, int], None]
 
@@ -176,6 +186,86 @@ class CellSensitivityResult:
             columns=["action", "from_state", "to_state", "cell", "reason"],
         )
 
+    def summary_table(self) -> pd.DataFrame:
+        """The table the CLI, the report and the app show, nearest switch first.
+
+        Columns: ``action, from, to, switch below 1, switch above 1, closeness,
+        policy change just past the switch, value lost at <k>x`` (one per loss factor)
+        ``, note``. Factors are numbers (NaN: no switch in the search range).
+        """
+        frame = self.to_frame()
+        low, high = self.loss_factors
+        table = pd.DataFrame(
+            {
+                "action": frame["action"],
+                "from": frame["from_state"],
+                "to": frame["to_state"],
+                "switch below 1": frame["factor_below"],
+                "switch above 1": frame["factor_above"],
+                "closeness": frame["closeness"],
+                "policy change just past the switch": [
+                    _both(below, above)
+                    for below, above in zip(
+                        frame["changes_below"], frame["changes_above"], strict=True
+                    )
+                ],
+                f"value lost at {low:g}x": frame["value_lost_below"],
+                f"value lost at {high:g}x": frame["value_lost_above"],
+                "note": frame["note"],
+            }
+        )
+        with np.errstate(divide="ignore"):
+            distance = np.abs(np.log(frame["nearest_factor"].to_numpy(dtype=float)))
+        order = np.argsort(np.where(np.isnan(distance), np.inf, distance), kind="stable")
+        return table.iloc[order].reset_index(drop=True)
+
+    def matrix_frame(self) -> pd.DataFrame:
+        """Every cell with an entry, for the matrix view (one matrix per action).
+
+        Columns: ``action, from_state, to_state, cell, status`` ("moved" or the fixed
+        cell's short reason), ``closeness, label`` (text written in the cell: "below /
+        above" factors, "-" for none), ``detail`` (one line for a tooltip).
+        """
+        frame = self.to_frame()
+        moved = pd.DataFrame(
+            {
+                "action": frame["action"],
+                "from_state": frame["from_state"],
+                "to_state": frame["to_state"],
+                "cell": frame["cell"],
+                "status": "moved",
+                "closeness": frame["closeness"],
+                "label": [
+                    f"{_factor_text(b)} / {_factor_text(a)}"
+                    for b, a in zip(frame["factor_below"], frame["factor_above"], strict=True)
+                ],
+                "detail": [
+                    f"switch below 1: {_factor_text(b)}; above 1: {_factor_text(a)}; "
+                    f"{_both(cb, ca)}"
+                    for b, a, cb, ca in zip(
+                        frame["factor_below"],
+                        frame["factor_above"],
+                        frame["changes_below"],
+                        frame["changes_above"],
+                        strict=True,
+                    )
+                ],
+            }
+        )
+        fixed = pd.DataFrame(
+            {
+                "action": [f.action_id for f in self.fixed],
+                "from_state": [f.from_id for f in self.fixed],
+                "to_state": [f.to_id for f in self.fixed],
+                "cell": [f.path for f in self.fixed],
+                "status": [FIXED_LABELS.get(f.reason, "fixed") for f in self.fixed],
+                "closeness": FIXED_BAND,
+                "label": [FIXED_LABELS.get(f.reason, "fixed") for f in self.fixed],
+                "detail": [f.reason for f in self.fixed],
+            }
+        )
+        return pd.concat([moved, fixed], ignore_index=True)
+
     def _note(self, i: int) -> str:
         cell = self.cells[i]
         notes = []
@@ -204,6 +294,17 @@ FRAME_COLUMNS = [
     "closeness", "changes_below", "changes_above", "search_below", "search_above",
     "loss_factor_below", "value_lost_below", "loss_factor_above", "value_lost_above", "note",
 ]  # fmt: skip
+
+
+def _factor_text(factor: float) -> str:
+    return "-" if factor is None or not np.isfinite(factor) else f"{factor:.4g}"
+
+
+def _both(below: str, above: str) -> str:
+    """``"below: ...; above: ..."`` for the sides with a change (``"none"`` otherwise)."""
+    parts = [f"{side}: {text}" for side, text in (("below", below), ("above", above))]
+    kept = [p for p, text in zip(parts, (below, above), strict=True) if text != "none"]
+    return "; ".join(kept) or "none"
 
 
 def closeness_band(factor: float) -> str:
@@ -254,7 +355,7 @@ def cell_sensitivity(
     """
     from caredecide.solvers import solve
 
-    _check_options(model, loss_factors, search_max, grid, xtol)
+    check_cell_options(source_file(model), loss_factors, search_max, grid, xtol)
     objective = default_objective(model) if objective is None else objective
     scaler = CellScaler(model)
     cells = scaler.cells
@@ -351,7 +452,9 @@ def cell_sensitivity(
     kept = evaluate_policy(loss_compiled, base_policy[None], objective).value
     same = (_cell_margins(result, base_policy, mask)[loss_draws] >= 0).all(axis=(1, 2))
     # The base-case policy is still optimal: nothing is lost (not a rounding residue).
-    value_lost = np.where(same, 0.0, np.maximum(best - kept, 0.0)).reshape(C, 2)
+    lost = best - kept
+    same |= np.abs(lost) <= 1e-9 * np.maximum(1.0, np.abs(best))  # rounding, not a loss
+    value_lost = np.where(same, 0.0, np.maximum(lost, 0.0)).reshape(C, 2)
     value_lost[~loss_ok] = np.nan
 
     return CellSensitivityResult(
@@ -434,9 +537,28 @@ def _progress(progress: Progress | None, steps: list[int]) -> Callable[[], None]
     return report
 
 
-def _check_options(
-    model: Any, loss_factors: Any, search_max: float, grid: int, xtol: float
+def check_cell_options(
+    file: str | None,
+    loss_factors: Any,
+    search_max: float,
+    grid: int = DEFAULT_GRID,
+    xtol: float = DEFAULT_XTOL,
+    *,
+    names: dict[str, str] | None = None,
 ) -> None:
+    """Refuse options out of range, naming each (``names`` maps an option to the label a
+    front end uses, e.g. ``{"loss_factors": "--cell-loss-factors"}``).
+
+    Raises
+    ------
+    ModelError
+        One problem per bad option, with the value and what was expected.
+    """
+    names = names or {}
+
+    def where(option: str) -> str:
+        return names.get(option, f"sensitivity.{option}")
+
     problems = []
     try:
         low, high = (float(v) for v in loss_factors)
@@ -446,7 +568,7 @@ def _check_options(
     if not ok:
         problems.append(
             Problem(
-                "sensitivity.loss_factors",
+                where("loss_factors"),
                 f"{loss_factors!r} is not allowed; expected two factors, one in (0, 1) and "
                 "one above 1 (e.g. 0.5 and 2)",
             )
@@ -454,17 +576,15 @@ def _check_options(
     if not (isinstance(search_max, int | float) and np.isfinite(search_max) and search_max > 1):
         problems.append(
             Problem(
-                "sensitivity.search_max",
+                where("search_max"),
                 f"{search_max!r} is not allowed; expected a finite factor above 1",
             )
         )
     if not isinstance(grid, int | np.integer) or grid < 2:
         problems.append(
-            Problem("sensitivity.grid", f"{grid!r} is not allowed; expected an integer >= 2")
+            Problem(where("grid"), f"{grid!r} is not allowed; expected an integer >= 2")
         )
     if not (isinstance(xtol, int | float) and np.isfinite(xtol) and xtol > 0):
-        problems.append(
-            Problem("sensitivity.xtol", f"{xtol!r} is not allowed; expected a number > 0")
-        )
+        problems.append(Problem(where("xtol"), f"{xtol!r} is not allowed; expected a number > 0"))
     if problems:
-        raise ModelError(problems, file=source_file(model))
+        raise ModelError(problems, file=file)
