@@ -7,19 +7,12 @@ import pytest
 from typer.testing import CliRunner
 
 from caredecide.cli import app
-from tests.cli.test_sensitivity import HAND_MODEL
+from tests.cli.test_sensitivity import model_file  # noqa: F401 (the fixture: HAND_MODEL)
 
 runner = CliRunner()
 
 
-@pytest.fixture
-def model_file(tmp_path):
-    path = tmp_path / "hand.toml"
-    path.write_text(HAND_MODEL)
-    return path
-
-
-def test_transition_cells_table_csv_and_matrices(model_file, tmp_path):
+def test_transition_cells_table_csv_and_matrices(model_file, tmp_path):  # noqa: F811
     # Source: by hand (the Bellman equation of HAND_MODEL's two cycles, common practice).
     # Net benefit at 1000 per QALY; treat is best at cycle 0 while its margin
     # 1000 (d_wait - d_treat - loss) > 0, with d_wait = 0.1, d_treat = p hr = 0.04, loss = 0.05.
@@ -53,7 +46,7 @@ def test_transition_cells_table_csv_and_matrices(model_file, tmp_path):
         (["--cell-search-max", "0.5"], "--cell-search-max"),
     ],
 )
-def test_bad_cell_options_are_refused_by_name_before_the_run(model_file, options, named):
+def test_bad_cell_options_are_refused_by_name_before_the_run(model_file, options, named):  # noqa: F811
     result = runner.invoke(app, ["sensitivity", str(model_file), "--transition-cells", *options])
     assert result.exit_code == 2
     assert named in result.stderr
