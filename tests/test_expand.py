@@ -571,3 +571,33 @@ def test_reading_a_tunnel_outside_it_without_its_attribute_warns():
     assert len(messages) == 1
     assert "reads 'years_on_drug' in 'sick__untreated', which is outside the tunnel" in messages[0]
     assert validate_model(loads_model(_tunnel(), validate=False)) == []
+
+
+def test_the_documented_example_generates_the_documented_states():
+    from pathlib import Path
+
+    docs = (Path(__file__).parents[1] / "docs" / "model-file.md").read_text(encoding="utf-8")
+    section = docs.split("## `[attributes]`, `[tunnels]`", 1)[1].split("\n## ", 1)[0]
+    example = section.split("```toml\n", 1)[1].split("```", 1)[0]
+    table = [line.split("|")[1:3] for line in section.splitlines() if line.startswith("| `")]
+    documented = [(i.strip().strip("`"), label.strip()) for i, label in table]
+    parameters = "".join(
+        f'[parameters.{name}]\nvalue = {value}\nsource = "Synthetic"\n'
+        for name, value in (
+            ("u_sick", 0.7),
+            ("u_drug_harm", 0.05),
+            ("c_care", 100),
+            ("c_drug", 1000),
+            ("p_die", 0.1),
+            ("rr_drug", 0.5),
+        )
+    )
+    text = (
+        HEADER.format(horizon=8, start="sick__untreated", within="start", discount=0.0)
+        + example
+        + '[[states]]\nid = "dead"\nabsorbing = true\n[[actions]]\nid = "wait"\n'
+        + parameters
+    )
+    model = loads_model(text)
+    flat = expand(model).model
+    assert [(s.id, s.label) for s in flat.states][:-1] == documented
