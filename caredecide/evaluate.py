@@ -23,6 +23,7 @@ import pandas as pd
 
 from caredecide.compiled import CompiledModel, occupancy_weights
 from caredecide.objective import Objective
+from caredecide.solvers import kernels
 from caredecide.solvers.bellman import (
     SolverError,
     check_compiled,
@@ -228,7 +229,18 @@ def _evaluate_finite(compiled, policy, objective, terminal_value) -> PolicyOutco
     weights = occupancy_weights(compiled.within_cycle, T)
     d_o = compiled.per_cycle_discount()[0]
     trace = np.empty((D, T + 1, S))
-    trace[:, 0] = compiled.start_distribution
+    if kernels.available():  # gathers the chosen rows; no policy matrices are built
+        kernels.kernels().cohort_trace(
+            np.ascontiguousarray(compiled.transition),
+            np.ascontiguousarray(policy, dtype=np.intp),
+            np.ascontiguousarray(compiled.start_distribution, dtype=float),
+            trace,
+        )
+    else:
+        trace[:, 0] = compiled.start_distribution
+        for t in range(T):
+            P_pi = _policy_transition(transition_at(compiled, t), policy[:, t])
+            trace[:, t + 1] = (trace[:, t, None, :] @ P_pi)[:, 0]
     flows = {
         f"{name}{suffix}": np.zeros((D, T + 1))
         for name in _QUANTITIES
@@ -246,9 +258,6 @@ def _evaluate_finite(compiled, policy, objective, terminal_value) -> PolicyOutco
                 dq, dc = decision_parts(compiled, t, discount)
                 flows["qalys" + suffix][:, t] += np.einsum("ds,ds->d", m, _chosen(dq, policy[:, t]))
                 flows["costs" + suffix][:, t] += np.einsum("ds,ds->d", m, _chosen(dc, policy[:, t]))
-        if t < T:
-            P_pi = _policy_transition(transition_at(compiled, t), policy[:, t])
-            trace[:, t + 1] = (m[:, None, :] @ P_pi)[:, 0]
     totals = {name: flow.sum(axis=1) for name, flow in flows.items()}
     terminal = np.einsum(
         "ds,ds->d", trace[:, T], terminal_present_value(compiled, objective, terminal_value)

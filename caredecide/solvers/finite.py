@@ -8,8 +8,10 @@ per-cycle discount factors ``d_o``, ``d_c``::
                + (lambda d_o^t dq_t(s,a) - d_c^t dc_t(s,a)) + sum_s' P_t(s'|s,a) V_{t+1}(s')
     V_t(s)   = Q_t(s, policy_t(s)),  policy_t(s) = argmax over allowed a of Q_t(s, a)
 
-with within-cycle weights ``w`` from :func:`caredecide.compiled.occupancy_weights`. One
-batched matmul per cycle covers every draw, action and state.
+with within-cycle weights ``w`` from :func:`caredecide.compiled.occupancy_weights`. The
+compiled kernel (:mod:`caredecide.solvers.kernels`) walks each draw through its cycles with
+the reward, the expectation and the greedy choice fused; without numba, one batched matmul
+per cycle covers every draw, action and state.
 """
 
 from __future__ import annotations
@@ -18,6 +20,7 @@ import numpy as np
 
 from caredecide.compiled import CompiledModel, occupancy_weights
 from caredecide.objective import Objective
+from caredecide.solvers import kernels
 from caredecide.solvers.bellman import (
     SolverError,
     decision_reward,
@@ -96,7 +99,6 @@ def backward_induction(
     D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
     weights = occupancy_weights(compiled.within_cycle, T)
     decision_states = decision_state_mask(compiled)
-    not_allowed = ~compiled.allowed
 
     value = np.empty((D, T + 1, S))
     q_values = np.empty((D, T, S, A))
@@ -106,32 +108,39 @@ def backward_induction(
     indifferent = np.empty((D, T, S), dtype=bool)
     history: list[SweepRecord] | None = [] if record_history else None
 
-    value[:, T] = occupancy_reward(compiled, objective, T, weights[T]) + terminal_present_value(
-        compiled, objective, terminal_value
-    )
-    expected_next = np.empty((D, A, S, 1))
-    for t in range(T - 1, -1, -1):
-        # Expected value of the next boundary for every (draw, action, state): one matmul.
-        np.matmul(transition_at(compiled, t), value[:, t + 1, None, :, None], out=expected_next)
-        Q = q_values[:, t]
-        Q[...] = expected_next[..., 0].transpose(0, 2, 1)
-        Q += decision_reward(compiled, objective, t)
-        Q += occupancy_reward(compiled, objective, t, weights[t])[..., None]
-        Q[:, not_allowed] = -np.inf
-        (policy[:, t], value[:, t], gap[:, t], next_best[:, t], indifferent[:, t]) = greedy_choice(
-            Q, decision_states, tie_absolute, tie_relative
+    terminal = terminal_present_value(compiled, objective, terminal_value)
+    if kernels.available():
+        value[:, T] = terminal
+        d_o, d_c = compiled.per_cycle_discount()
+        steps = range(T + 1)
+        kernels.kernels().backward_induction(
+            *(np.ascontiguousarray(a) for a in _kernel_arrays(compiled)),
+            compiled.allowed,
+            decision_states,
+            np.array([weights[t] * d_o**t for t in steps]),
+            np.array([weights[t] * d_c**t for t in steps]),
+            np.array([d_o**t for t in steps[:-1]]),
+            np.array([d_c**t for t in steps[:-1]]),
+            float(objective.outcome_weight),
+            float(objective.cost_weight),
+            float(tie_absolute),
+            float(tie_relative),
+            value,
+            q_values,
+            policy,
+            gap,
+            next_best,
+            indifferent,
         )
         if history is not None:
-            history.append(
-                SweepRecord(
-                    sweep=T - t,
-                    cycle=t,
-                    value=value[:, t].copy(),
-                    policy=policy[:, t].copy(),
-                    residual=np.abs(value[:, t] - value[:, t + 1]).max(axis=-1),
-                    error_bound=np.zeros(D),
-                )
-            )
+            for t in range(T - 1, -1, -1):
+                _record(history, T, t, value, policy)
+    else:
+        _numpy_backward_induction(
+            compiled, objective, terminal, weights, decision_states,
+            (value, q_values, policy, gap, next_best, indifferent),
+            tie_absolute, tie_relative, history,
+        )  # fmt: skip
 
     return build_result(
         compiled,
@@ -150,3 +159,52 @@ def backward_induction(
         success=True,
         message=f"backward induction over {T} cycles (exact)",
     )
+
+
+def _kernel_arrays(compiled: CompiledModel) -> tuple[np.ndarray, ...]:
+    return (
+        compiled.transition,
+        compiled.state_qaly,
+        compiled.state_cost,
+        compiled.decision_qaly,
+        compiled.decision_cost,
+    )
+
+
+def _record(history: list[SweepRecord], T: int, t: int, value, policy) -> None:
+    history.append(
+        SweepRecord(
+            sweep=T - t,
+            cycle=t,
+            value=value[:, t].copy(),
+            policy=policy[:, t].copy(),
+            residual=np.abs(value[:, t] - value[:, t + 1]).max(axis=-1),
+            error_bound=np.zeros(value.shape[0]),
+        )
+    )
+
+
+def _numpy_backward_induction(
+    compiled, objective, terminal, weights, decision_states, out, tie_absolute, tie_relative,
+    history,
+) -> None:  # fmt: skip
+    """The numpy path (no compiled kernels): one batched matmul per cycle over all draws."""
+    value, q_values, policy, gap, next_best, indifferent = out
+    T = compiled.n_cycles
+    D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
+    not_allowed = ~compiled.allowed
+    value[:, T] = occupancy_reward(compiled, objective, T, weights[T]) + terminal
+    expected_next = np.empty((D, A, S, 1))
+    for t in range(T - 1, -1, -1):
+        # Expected value of the next boundary for every (draw, action, state): one matmul.
+        np.matmul(transition_at(compiled, t), value[:, t + 1, None, :, None], out=expected_next)
+        Q = q_values[:, t]
+        Q[...] = expected_next[..., 0].transpose(0, 2, 1)
+        Q += decision_reward(compiled, objective, t)
+        Q += occupancy_reward(compiled, objective, t, weights[t])[..., None]
+        Q[:, not_allowed] = -np.inf
+        (policy[:, t], value[:, t], gap[:, t], next_best[:, t], indifferent[:, t]) = greedy_choice(
+            Q, decision_states, tie_absolute, tie_relative
+        )
+        if history is not None:
+            _record(history, T, t, value, policy)

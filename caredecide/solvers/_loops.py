@@ -1,0 +1,158 @@
+"""The numba loops behind :mod:`caredecide.solvers.kernels` (imported only through it).
+
+Compiled on first use and cached on disk (``cache=True``). Letters as in
+:mod:`caredecide.compiled`. Every kernel loops over draws outermost, so one draw's arrays
+are read in order while they sit in cache.
+"""
+
+import numpy as np
+from numba import njit
+
+jit = njit(cache=True, nogil=True, error_model="numpy")
+inline = njit(cache=True, nogil=True, error_model="numpy", inline="always")
+
+
+@inline
+def combine(ow, cw, q, c):
+    # Objective value as in common.combine: ow * q - cw * c (zero weights skipped).
+    part = ow * q if ow != 0.0 else 0.0 * c
+    if cw != 0.0:
+        return part - cw * c
+    return part
+
+
+@inline
+def choose_greedy(
+    Q, best, top, deciding, tie_absolute, tie_relative, extra, d, t, s,
+    value, policy, gap, next_best, indifferent,
+):  # fmt: skip
+    # The tie rule of common.greedy_choice for one (draw, state): lowest index within
+    # the tolerance of the best; gap to the best other action; next-best action.
+    A = Q.shape[3]
+    tolerance = tie_absolute + tie_relative * abs(best)
+    tolerance = tolerance + extra
+    floor = best - tolerance
+    chosen = 0
+    for a in range(A):
+        if Q[d, t, s, a] >= floor:
+            chosen = a
+            break
+    second = -np.inf
+    for a in range(A):
+        if a != top and Q[d, t, s, a] > second:
+            second = Q[d, t, s, a]
+    other = -1
+    other_value = -np.inf
+    for a in range(A):
+        if a != chosen and (other < 0 or Q[d, t, s, a] > other_value):
+            other, other_value = a, Q[d, t, s, a]
+    value[d, t, s] = Q[d, t, s, chosen]
+    policy[d, t, s] = chosen
+    single = not (second > -np.inf)
+    if single or not deciding:
+        gap[d, t, s] = np.inf
+        next_best[d, t, s] = -1
+        indifferent[d, t, s] = False
+    else:
+        gap[d, t, s] = best - second
+        next_best[d, t, s] = other
+        indifferent[d, t, s] = best - second <= tolerance
+
+
+@jit
+def backward_induction(
+    P,  # (D, Tp, A, S, S)
+    state_qaly,  # (D, Tq, S)
+    state_cost,  # (D, Tq, S)
+    decision_qaly,  # (D, Td, S, A)
+    decision_cost,  # (D, Td, S, A)
+    allowed,  # (S, A) bool
+    decision_states,  # (S,) bool
+    occ_o,  # (T + 1,) w_t d_o^t
+    occ_c,  # (T + 1,) w_t d_c^t
+    dec_o,  # (T,) d_o^t
+    dec_c,  # (T,) d_c^t
+    ow,
+    cw,
+    tie_absolute,
+    tie_relative,
+    value,  # (D, T + 1, S) out; value[:, T] holds the terminal part on entry
+    q_values,  # (D, T, S, A) out
+    policy,  # (D, T, S) out
+    gap,  # (D, T, S) out
+    next_best,  # (D, T, S) out
+    indifferent,  # (D, T, S) out
+):
+    D, Tp, A, S = P.shape[0], P.shape[1], P.shape[2], P.shape[3]
+    T = q_values.shape[1]
+    Tq, Tc = state_qaly.shape[1] - 1, state_cost.shape[1] - 1
+    Tdq, Tdc = decision_qaly.shape[1] - 1, decision_cost.shape[1] - 1
+    for d in range(D):
+        tq, tc = min(T, Tq), min(T, Tc)
+        for s in range(S):
+            value[d, T, s] += combine(
+                ow, cw, occ_o[T] * state_qaly[d, tq, s], occ_c[T] * state_cost[d, tc, s]
+            )
+        for t in range(T - 1, -1, -1):
+            tp, tq, tc = min(t, Tp - 1), min(t, Tq), min(t, Tc)
+            tdq, tdc = min(t, Tdq), min(t, Tdc)
+            for s in range(S):
+                occupancy = combine(
+                    ow, cw, occ_o[t] * state_qaly[d, tq, s], occ_c[t] * state_cost[d, tc, s]
+                )
+                best = -np.inf
+                top = 0
+                for a in range(A):
+                    if not allowed[s, a]:
+                        q = -np.inf
+                    else:
+                        expected = 0.0
+                        for s2 in range(S):
+                            expected += P[d, tp, a, s, s2] * value[d, t + 1, s2]
+                        q = expected + combine(
+                            ow,
+                            cw,
+                            dec_o[t] * decision_qaly[d, tdq, s, a],
+                            dec_c[t] * decision_cost[d, tdc, s, a],
+                        )
+                        q += occupancy
+                    q_values[d, t, s, a] = q
+                    if q > best:
+                        best, top = q, a
+                choose_greedy(
+                    q_values,
+                    best,
+                    top,
+                    decision_states[s],
+                    tie_absolute,
+                    tie_relative,
+                    0.0,
+                    d,
+                    t,
+                    s,
+                    value,
+                    policy,
+                    gap,
+                    next_best,
+                    indifferent,
+                )
+
+
+@jit
+def cohort_trace(P, policy, start, trace):
+    # trace[d, t + 1] = trace[d, t] P_t[policy_t] by gathering the chosen rows.
+    D, Tp, S = P.shape[0], P.shape[1], P.shape[3]
+    Tpi = policy.shape[1]
+    for d in range(D):
+        for s in range(S):
+            trace[d, 0, s] = start[s]
+        for t in range(trace.shape[1] - 1):
+            tp, ti = min(t, Tp - 1), min(t, Tpi - 1)
+            for s2 in range(S):
+                trace[d, t + 1, s2] = 0.0
+            for s in range(S):
+                mass = trace[d, t, s]
+                if mass != 0.0:
+                    a = policy[d, ti, s]
+                    for s2 in range(S):
+                        trace[d, t + 1, s2] += mass * P[d, tp, a, s, s2]

@@ -1,0 +1,43 @@
+"""Compiled loops for the solvers' inner work (numba), with the numpy path as fallback.
+
+Each kernel walks one draw at a time through its own transition rows, so a draw's arrays
+are read once, in order, while they sit in cache; the reward, the expectation and the
+greedy choice are fused in one pass and a policy's transition matrix is never built (its
+rows are gathered as they are used). The arithmetic follows the numpy expressions of
+:mod:`caredecide.solvers.common` term by term, in the same order.
+
+The kernels are compiled on first use and cached on disk (``cache=True``), so later
+processes load them instead of compiling. :func:`available` is False when numba cannot
+be imported (or ``CAREDECIDE_KERNELS=numpy`` is set); callers then take the numpy path.
+A benchmark (``benchmarks/bench_kernels.py``) shows the gain over the best numpy version.
+"""
+
+from __future__ import annotations
+
+import os
+from functools import cache
+
+
+def available() -> bool:
+    """True when the compiled kernels can be used (read at every call, so a benchmark can
+    time both paths in one process)."""
+    if os.environ.get("CAREDECIDE_KERNELS", "").lower() == "numpy":
+        return False
+    return _numba_importable()
+
+
+@cache
+def _numba_importable() -> bool:
+    try:
+        import numba  # noqa: F401
+    except ImportError:  # pragma: no cover - numba is a dependency of the package
+        return False
+    return True
+
+
+@cache
+def kernels():
+    """The compiled kernels module (compiling or loading them on first call)."""
+    from caredecide.solvers import _loops
+
+    return _loops
