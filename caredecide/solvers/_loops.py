@@ -14,7 +14,7 @@ inline = njit(cache=True, nogil=True, error_model="numpy", inline="always")
 
 @inline
 def combine(ow, cw, q, c):
-    # Objective value as in common.combine: ow * q - cw * c (zero weights skipped).
+    # Objective value as in bellman.combine: ow * q - cw * c (zero weights skipped).
     part = ow * q if ow != 0.0 else 0.0 * c
     if cw != 0.0:
         return part - cw * c
@@ -26,7 +26,7 @@ def choose_greedy(
     Q, best, top, deciding, tie_absolute, tie_relative, extra, d, t, s,
     value, policy, gap, next_best, indifferent,
 ):  # fmt: skip
-    # The tie rule of common.greedy_choice for one (draw, state): lowest index within
+    # The tie rule of bellman.greedy_choice for one (draw, state): lowest index within
     # the tolerance of the best; gap to the best other action; next-best action.
     A = Q.shape[3]
     tolerance = tie_absolute + tie_relative * abs(best)

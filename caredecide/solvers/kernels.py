@@ -4,7 +4,7 @@ Each kernel walks one draw at a time through its own transition rows, so a draw'
 are read once, in order, while they sit in cache; the reward, the expectation and the
 greedy choice are fused in one pass and a policy's transition matrix is never built (its
 rows are gathered as they are used). The arithmetic follows the numpy expressions of
-:mod:`caredecide.solvers.common` term by term, in the same order.
+:mod:`caredecide.solvers.bellman` term by term, in the same order.
 
 The kernels are compiled on first use and cached on disk (``cache=True``), so later
 processes load them instead of compiling. :func:`available` is False when numba cannot
