@@ -23,6 +23,12 @@ import pandas as pd
 
 from caredecide.errors import ModelError, Problem
 from caredecide.frontier import DEFAULT_GRID, PolicyFrontier, check_wtp_range, policy_frontier
+from caredecide.frontier_view import (
+    DEFAULT_QALY_TOLERANCE,
+    collapse_frontier,
+    region_frame,
+    state_switch_points,
+)
 from caredecide.incremental import incremental_analysis
 from caredecide.objective import Objective
 from caredecide.strategies import (
@@ -74,6 +80,19 @@ class ComparisonResult:
     resolved : list of StrategyPolicy
         The policy array behind each row.
     frontier_result : PolicyFrontier or None
+    frontier_collapsed : pandas.DataFrame or None
+        The frontier with runs of near-identical policies shown as one
+        (:func:`caredecide.frontier_view.collapse_frontier`).
+    state_switches : pandas.DataFrame or None
+        WTP values where each state's recommendation changes, in words
+        (:func:`caredecide.frontier_view.state_switch_points`).
+    regions : pandas.DataFrame or None
+        Best action per state over (WTP, age) rectangles, for the switch-point chart.
+    effect_label : str
+        ``"QALYs"``, or ``"life-years"`` when every QALY weight is 1 in alive states and
+        no action carries a QALY change (the effect then counts life-years).
+    reference : str or None
+        The strategy the ``*_vs_reference`` columns are taken against.
     """
 
     table: pd.DataFrame
@@ -86,6 +105,11 @@ class ComparisonResult:
     notes: list[str] = field(default_factory=list)
     resolved: list[StrategyPolicy] = field(default_factory=list)
     frontier_result: PolicyFrontier | None = None
+    frontier_collapsed: pd.DataFrame | None = None
+    state_switches: pd.DataFrame | None = None
+    regions: pd.DataFrame | None = None
+    effect_label: str = "QALYs"
+    reference: str | None = None
 
 
 def _load(model):
@@ -145,6 +169,9 @@ def compare_strategies(
     builtins: bool | None = None,
     from_ages: Sequence[float] = (),
     progress: Callable[[int, int], None] | None = None,
+    include_optimal: bool = True,
+    reference: str | None = None,
+    qaly_tolerance: float = DEFAULT_QALY_TOLERANCE,
 ) -> ComparisonResult:
     """Compare the optimal policy with fixed strategies at a willingness to pay.
 
@@ -160,8 +187,9 @@ def compare_strategies(
     wtp : float, optional
         Willingness to pay (money per QALY, >= 0); default: the model's.
     wtp_range : (float, float), optional
-        Also find every policy that is optimal for some WTP in ``[low, high]``; each
-        joins the table.
+        Also find every policy that is optimal for some WTP in ``[low, high]``: the
+        frontier, its own table (never rows of the incremental table), collapsed by
+        ``qaly_tolerance``, and the switch points per state.
     grid : int
         Grid values of the WTP solved first in the frontier search.
     builtins : bool, optional
@@ -172,6 +200,15 @@ def compare_strategies(
         (model order). Finite horizons only.
     progress : callable(round, brackets), optional
         Frontier refinement progress.
+    include_optimal : bool
+        Add the optimal policy at ``wtp`` to the table (False: compare the described
+        strategies with each other alone).
+    reference : str, optional
+        A strategy of the table: every row gains ``cost_vs_reference``,
+        ``qalys_vs_reference`` and ``icer_vs_reference`` against it.
+    qaly_tolerance : float
+        Frontier policies within this many QALYs (and this many QALYs times ``wtp`` in
+        cost) of the first policy of a run are shown as one in ``frontier_collapsed``.
 
     Returns
     -------
@@ -194,6 +231,9 @@ def compare_strategies(
             builtins=builtins,
             from_ages=from_ages,
             progress=progress,
+            include_optimal=include_optimal,
+            reference=reference,
+            qaly_tolerance=qaly_tolerance,
         )
     except ModelError as error:
         # A problem with no file of its own (an option, a built-in strategy) concerns this
@@ -205,7 +245,18 @@ def compare_strategies(
 
 
 def _compare_loaded(
-    model, strategies, wtp, wtp_range, *, grid, builtins, from_ages, progress
+    model,
+    strategies,
+    wtp,
+    wtp_range,
+    *,
+    grid,
+    builtins,
+    from_ages,
+    progress,
+    include_optimal=True,
+    reference=None,
+    qaly_tolerance=DEFAULT_QALY_TOLERANCE,
 ) -> ComparisonResult:
     """:func:`compare_strategies` for a loaded model."""
     from caredecide.compile import compile_model
@@ -239,65 +290,89 @@ def _compare_loaded(
     chosen = _strategy_list(compiled, model, strategies, builtins, notes)
     chosen += [from_age(action, age) for age in from_ages for action in compiled.action_ids[1:]]
     resolved = [resolve_strategy(compiled, s) for s in chosen]
-    resolved.insert(0, resolve_strategy(compiled, optimal))
+    optimal_resolved = resolve_strategy(compiled, optimal)
+    if include_optimal:
+        resolved.insert(0, optimal_resolved)
+    elif len(resolved) < 2:
+        raise ModelError(
+            Problem(
+                "strategies",
+                f"{len(resolved)} described strateg{'y' if len(resolved) == 1 else 'ies'} "
+                "without the optimal policy; expected at least two to compare",
+            )
+        )
 
-    frontier = switches = frontier_result = None
+    frontier = switches = frontier_result = collapsed = state_switches = regions = None
     if wtp_range is not None:
         check_wtp_range(wtp_range)
         frontier_result = policy_frontier(compiled, wtp_range, grid=grid, progress=progress)
         notes += frontier_result.notes
-        names = []
-        added: set[str] = set()
-        for _, row in frontier_result.table.iterrows():  # one row per frontier interval
-            policy = frontier_result.policies[row["policy"]]
-            if np.array_equal(policy, resolved[0].policy):
-                names.append(optimal_name)
-                continue
-            name = f"optimal {row['policy']}"  # its WTP interval is in the frontier table
-            names.append(name)
-            # A policy optimal on two intervals (possible only within the solver's tie
-            # tolerance) is one strategy: one row in the table, not a duplicate name.
-            if name in added:
-                continue
-            added.add(name)
-            resolved.append(
-                StrategyPolicy(
-                    Strategy(
-                        name,
-                        "computed",
-                        policy=policy,
-                        description=(
-                            f"{KIND_FRONTIER}: optimal for WTP {row['wtp_from']:,.2f} to "
-                            f"{row['wtp_to']:,.2f}: {row['structure']}"
-                        ),
-                    ),
-                    policy,
-                )
-            )
+        names = [
+            optimal_name
+            if np.array_equal(frontier_result.policies[label], optimal_resolved.policy)
+            else f"optimal {label}"  # its WTP interval is in the frontier table
+            for label in frontier_result.table["policy"]
+        ]
         frontier = frontier_result.table.assign(strategy=names)
         switches = frontier_result.switches
+        collapsed = collapse_frontier(frontier_result, wtp, qaly_tolerance)
+        state_switches = state_switch_points(compiled, frontier_result)
+        regions = region_frame(compiled, frontier_result)
     _check_unique(resolved)
 
     totals, outcome, index = strategy_totals(compiled, resolved, objective)
-    totals.loc[0, "kind"] = KIND_OPTIMAL
-    totals.loc[totals["description"].str.startswith(KIND_FRONTIER), "kind"] = KIND_FRONTIER
+    if include_optimal:
+        totals.loc[0, "kind"] = KIND_OPTIMAL
     table = incremental_analysis(totals, willingness_to_pay=wtp)
-    # Chart label: fixed strategies and the optimal policy by name; the many policies of a
-    # WTP range stay unlabelled on a plane (they are listed in the frontier table).
-    table["label"] = table["strategy"].where(table["kind"] != KIND_FRONTIER, "")
+    table["label"] = table["strategy"]
+    names_in_table = list(table["strategy"])
+    if reference is not None:
+        if reference not in names_in_table:
+            raise ModelError(
+                Problem(
+                    "reference",
+                    f"strategy {reference!r} is not in the comparison; expected one of "
+                    f"{names_in_table}",
+                )
+            )
+        base = table.set_index("strategy").loc[reference]
+        table["cost_vs_reference"] = table["cost"] - base["cost"]
+        table["qalys_vs_reference"] = table["qalys"] - base["qalys"]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            icer = table["cost_vs_reference"] / table["qalys_vs_reference"]
+        table["icer_vs_reference"] = icer.where(table["qalys_vs_reference"] != 0)
     traces = _traces(outcome, index, [r.strategy.name for r in resolved])
+    best = table.attrs["best_strategy"]
     return ComparisonResult(
         table=table,
         frontier=frontier,
         switches=switches,
         traces=traces,
         willingness_to_pay=wtp,
-        best_strategy=table.attrs["best_strategy"],
-        optimal_strategy=optimal_name,
+        best_strategy=best,
+        optimal_strategy=optimal_name if include_optimal else "",
         notes=notes,
         resolved=resolved,
         frontier_result=frontier_result,
+        frontier_collapsed=collapsed,
+        state_switches=state_switches,
+        regions=regions,
+        effect_label=effect_label(compiled),
+        reference=reference,
     )
+
+
+def effect_label(compiled) -> str:
+    """``"life-years"`` when the QALY arrays count life-years exactly, else ``"QALYs"``.
+
+    The effect is life-years when every state's QALY weight equals its life-years per
+    cycle and no action adds or removes QALYs (a model that gives weight 1 to every
+    alive state).
+    """
+    qaly = np.asarray(compiled.state_qaly)
+    years = np.broadcast_to(np.asarray(compiled.life_years), qaly.shape)
+    same = np.allclose(qaly, years, rtol=0, atol=1e-12)
+    return "life-years" if same and not np.any(compiled.decision_qaly) else "QALYs"
 
 
 def _traces(outcome, index: np.ndarray, names: list[str]) -> pd.DataFrame:

@@ -57,11 +57,12 @@ def test_table_holds_builtins_the_sibling_table_and_frontier_policies(with_range
         "treat stage 3 before 75",
     } <= names
     assert any("found beside the model" in n for n in with_range.notes)
-    frontier_rows = with_range.table[with_range.table["kind"] == KIND_FRONTIER]
-    # every frontier interval is a row of the table (the one containing 30,000 is the
-    # optimal policy's own row)
-    assert len(frontier_rows) == len(with_range.frontier) - 1
-    assert set(with_range.frontier["strategy"]) <= names
+    # The incremental table holds the described strategies plus ONE optimal policy; the
+    # frontier's policies stay in their own table.
+    assert (with_range.table["kind"] == KIND_OPTIMAL).sum() == 1
+    assert not (with_range.table["kind"] == KIND_FRONTIER).any()
+    assert len(with_range.table) == len({r.strategy.name for r in with_range.resolved})
+    assert with_range.optimal_strategy in names
     inside = with_range.frontier[
         (with_range.frontier["wtp_from"] <= 30000) & (with_range.frontier["wtp_to"] >= 30000)
     ]
@@ -90,10 +91,12 @@ def test_incremental_status_and_best_strategy(with_range):
         .all()
     )
     assert table["best_at_wtp"].sum() == 1
-    # 'treat stage 3 before 75' gives fewer QALYs than the cheaper frontier policy P5 at a
-    # higher cost: strongly dominated.
+    # Statuses name only strategies the table describes (never an undescribed "optimal P5").
     status = table.set_index("strategy")["status"]
-    assert status["treat stage 3 before 75"].startswith("dominated by optimal P")
+    for text in status:
+        for name in set(table["strategy"]) - {text}:
+            text = text.replace(name, "")
+        assert "optimal P" not in text
 
 
 def test_traces_start_from_the_cohort_and_sum_to_one(with_range, demo):
@@ -260,7 +263,6 @@ def test_a_policy_optimal_on_two_intervals_is_one_row(demo, monkeypatch):
     result = compare_strategies(demo, wtp=30000.0, wtp_range=(0.0, 20000.0))
     assert result.table["strategy"].is_unique
     assert result.frontier["strategy"].iloc[0] == result.frontier["strategy"].iloc[-1]
-    assert set(result.frontier["strategy"]) <= set(result.table["strategy"])
 
 
 # --- chart builders ---------------------------------------------------------------------
@@ -371,3 +373,83 @@ def test_from_ages_need_a_finite_horizon():
         r"given, but the model has an infinite horizon",
     ):
         compare_strategies(stationary, from_ages=(65.0,))
+
+
+# --- a readable frontier (issue: committee) ------------------------------------------------
+
+
+def test_described_strategies_alone_with_a_reference(demo):
+    result = compare_strategies(
+        demo, [never("treat"), at_once("treat")], wtp=30000.0, include_optimal=False,
+        reference="never treat",
+    )  # fmt: skip
+    assert sorted(result.table["strategy"]) == ["never treat", "treat at once"]
+    row = result.table.set_index("strategy").loc["treat at once"]
+    ref = result.table.set_index("strategy").loc["never treat"]
+    # ICER against the reference: difference in cost over difference in QALYs (Cantor
+    # 1994, Med Decis Making 14(3):259-265).
+    expected = (row["cost"] - ref["cost"]) / (row["qalys"] - ref["qalys"])
+    assert row["icer_vs_reference"] == pytest.approx(expected, rel=1e-12)
+    assert np.isnan(ref["icer_vs_reference"])
+
+
+def test_no_optimal_needs_two_strategies(demo):
+    with pytest.raises(ModelError, match="at least two"):
+        compare_strategies(demo, [never("treat")], include_optimal=False)
+
+
+def test_collapsed_frontier_merges_within_the_stated_tolerance(with_range):
+    full = with_range.frontier.set_index("policy")
+    collapsed = with_range.frontier_collapsed
+    tolerance = 1e-3  # the default, QALYs per person; cost: 1e-3 x 30,000 = 30
+    covered = [p for text in collapsed["policies"] for p in text.split(", ")]
+    assert covered == list(dict.fromkeys(with_range.frontier["policy"]))
+    for row in collapsed.itertuples():
+        members = row.policies.split(", ")
+        first = full.loc[members[0]]
+        for name in members[1:]:
+            assert abs(full.loc[name, "qalys"] - first["qalys"]) <= tolerance
+            assert abs(full.loc[name, "cost"] - first["cost"]) <= tolerance * 30000
+    # Runs tile the WTP range without gaps.
+    np.testing.assert_allclose(collapsed["wtp_from"].iloc[1:], collapsed["wtp_to"].iloc[:-1])
+    # A zero tolerance keeps every distinct policy.
+    strict = compare_strategies(
+        load_model(demo_model_path()), wtp=30000.0, wtp_range=(0.0, 60000.0), qaly_tolerance=0.0
+    )
+    assert len(strict.frontier_collapsed) == strict.frontier["policy"].nunique()
+
+
+def test_switch_points_per_state_follow_the_frontier_policies(with_range):
+    frontier = with_range.frontier_result
+    switches = with_range.state_switches
+    # Every WTP where a state's column of the policy changes is listed, and no other.
+    table = frontier.table
+    expected = set()
+    for i in range(1, len(table)):
+        before = frontier.policies[table["policy"].iloc[i - 1]]
+        after = frontier.policies[table["policy"].iloc[i]]
+        for s, state in enumerate(with_range.traces["state"].unique()):
+            if not np.array_equal(before[:, s], after[:, s]):
+                expected.add((table["wtp_from"].iloc[i], state))
+    assert set(zip(switches["wtp"], switches["state"], strict=True)) == expected
+    assert (switches["before"] != switches["after"]).all()
+    # Regions tile each state's (WTP, age) rectangle: widths x heights sum to the area.
+    regions = with_range.regions
+    area = (regions["x_to"] - regions["x_from"]) * (regions["age_to"] - regions["age_from"])
+    per_state = area.groupby(regions["state"]).sum()
+    ages = compile_model(load_model(demo_model_path())).ages()
+    np.testing.assert_allclose(per_state, 60000.0 * (ages[-1] - ages[0]), rtol=1e-12)
+
+
+def test_effect_label_follows_the_outcome(demo):
+    from caredecide.compare import effect_label
+
+    compiled = compile_model(demo)
+    assert effect_label(compiled) == "QALYs"
+    from dataclasses import replace
+
+    years = np.broadcast_to(compiled.life_years, compiled.state_qaly.shape)
+    counting_years = replace(
+        compiled, state_qaly=years.copy(), decision_qaly=np.zeros_like(compiled.decision_qaly)
+    )
+    assert effect_label(counting_years) == "life-years"

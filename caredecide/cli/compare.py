@@ -7,6 +7,7 @@ from contextlib import nullcontext
 from pathlib import Path
 from typing import Annotated
 
+import pandas as pd
 import typer
 from rich.console import Console
 from rich.table import Table
@@ -16,7 +17,13 @@ from caredecide.cli.model_warnings import StrictOption, load_and_warn
 
 TABLE_FILE = "strategies.csv"
 FRONTIER_FILE = "frontier.csv"
+FRONTIER_FULL_FILE = "frontier_full.csv"
 SWITCHES_FILE = "switch_points.csv"
+STATE_SWITCHES_FILE = "switch_points_by_state.csv"
+MAX_FRONTIER_ROWS = 12
+"""A longer frontier is not printed: the switch points per state say it shorter."""
+SHOWN_PER_STATE = 6
+"""Switch points printed per state (the first and last halves; every one is in the CSV)."""
 TRACES_FOLDER = "traces"
 TABLE_WIDTH = 150
 """Tables are printed at least this wide (characters), so names and statuses stay on one line
@@ -53,20 +60,24 @@ def _print_table(result, currency: str) -> None:
         title=f"Strategies at {result.willingness_to_pay:,.0f} {currency} per QALY "
         "(discounted, per person; sorted by cost)".replace("  ", " ")
     )
-    for column, justify in (
+    effect = result.effect_label
+    columns = [
         ("strategy", "left"),
         ("cost", "right"),
-        ("QALYs", "right"),
+        (effect, "right"),
         ("incr. cost", "right"),
-        ("incr. QALYs", "right"),
+        (f"incr. {effect}", "right"),
         ("ICER", "right"),
         ("NMB", "right"),
         ("status", "left"),
-    ):
+    ]
+    if result.reference is not None:
+        columns.insert(-1, (f"ICER vs {result.reference}", "right"))
+    for column, justify in columns:
         table.add_column(column, justify=justify)
     for _, row in result.table.iterrows():  # display rows
         best = " (best)" if row["best_at_wtp"] else ""
-        table.add_row(
+        cells = [
             f"{row['strategy']}{best}",
             f"{row['cost']:,.0f}",
             f"{row['qalys']:.4f}",
@@ -75,33 +86,50 @@ def _print_table(result, currency: str) -> None:
             _money(row["icer"]),
             f"{row['net_monetary_benefit']:,.0f}",
             str(row["status"]),
-        )
+        ]
+        if result.reference is not None:
+            cells.insert(-1, _money(row["icer_vs_reference"]))
+        table.add_row(*cells)
     _wide().print(table)
     per = f"{currency} per QALY".strip()
     stdout.print(f"Best at {result.willingness_to_pay:,.0f} {per}: {plain(result.best_strategy)}")
 
 
 def _print_frontier(result) -> None:
-    table = Table(title="Optimal policy over the willingness-to-pay range")
-    for column in ("policy", "WTP from", "WTP to", "cost", "QALYs", "found by"):
+    collapsed = result.frontier_collapsed
+    effect = result.effect_label
+    table = Table(
+        title="Optimal policy over the willingness-to-pay range (near-identical policies "
+        "shown as one)"
+    )
+    for column in ("policies", "WTP from", "WTP to", "cost", effect):
         table.add_column(column)
-    for _, row in result.frontier.iterrows():  # display rows
+    for _, row in collapsed.iterrows():  # display rows
         table.add_row(
-            row["policy"],
+            row["policies"],
             f"{row['wtp_from']:,.2f}",
             f"{row['wtp_to']:,.2f}",
             f"{row['cost']:,.0f}",
             f"{row['qalys']:.4f}",
-            row["found_by"],
         )
-    _wide().print(table)
+    if len(collapsed) <= MAX_FRONTIER_ROWS:
+        _wide().print(table)
     frontier = result.frontier_result
     stdout.print(
-        f"{len(result.frontier)} optimal policies, {len(result.switches)} switch "
-        f"point(s); {frontier.n_solves} WTP values solved ({len(frontier.grid)} on the "
-        f"grid, the rest at crossings, {frontier.rounds} round(s)). Each policy in "
-        f"words: column 'structure' of {FRONTIER_FILE} (--out)."
+        f"{len(result.frontier)} optimal policies in {len(collapsed)} runs "
+        f"({plain(collapsed['tolerance'].iloc[0])}); {frontier.n_solves} WTP values solved. "
+        f"Runs: {FRONTIER_FILE}; every policy: {FRONTIER_FULL_FILE} (--out)."
     )
+    switches = result.state_switches
+    stdout.print("Where each state's recommendation changes as the willingness to pay rises:")
+    for state, rows in switches.groupby("state_label", sort=False):
+        stdout.print(f"  {plain(state)}: {len(rows)} switch point(s)")
+        half = SHOWN_PER_STATE // 2
+        shown = rows if len(rows) <= SHOWN_PER_STATE else pd.concat([rows[:half], rows[-half:]])
+        for i, row in enumerate(shown.itertuples()):
+            if len(rows) > SHOWN_PER_STATE and i == half:
+                stdout.print(f"    ... {len(rows) - SHOWN_PER_STATE} more in {STATE_SWITCHES_FILE}")
+            stdout.print(f"    at {row.wtp:,.0f}: {plain(row.after)}")
 
 
 def write_outputs(out: Path, result, currency: str = "") -> list[Path]:
@@ -112,9 +140,12 @@ def write_outputs(out: Path, result, currency: str = "") -> list[Path]:
     written = [out / TABLE_FILE]
     result.table.to_csv(written[0], index=False)
     if result.frontier is not None:
-        result.frontier.to_csv(out / FRONTIER_FILE, index=False)
+        result.frontier_collapsed.to_csv(out / FRONTIER_FILE, index=False)
+        result.frontier.to_csv(out / FRONTIER_FULL_FILE, index=False)
         result.switches.to_csv(out / SWITCHES_FILE, index=False)
-        written += [out / FRONTIER_FILE, out / SWITCHES_FILE]
+        result.state_switches.to_csv(out / STATE_SWITCHES_FILE, index=False)
+        written += [out / n for n in (FRONTIER_FILE, FRONTIER_FULL_FILE, SWITCHES_FILE,
+                                      STATE_SWITCHES_FILE)]  # fmt: skip
     folder = out / TRACES_FOLDER
     folder.mkdir(exist_ok=True)
     for index, (name, trace) in enumerate(result.traces.groupby("strategy", sort=False)):
@@ -163,6 +194,27 @@ def compare_command(
     grid: Annotated[
         int, typer.Option("--grid", min=2, max=1001, help="WTP grid values solved first.")
     ] = 21,
+    no_optimal: Annotated[
+        bool,
+        typer.Option(
+            "--no-optimal", help="Compare the described strategies alone (no optimal policy row)."
+        ),
+    ] = False,
+    reference: Annotated[
+        str | None,
+        typer.Option(
+            "--reference", help="Strategy every other is also compared with (ICER vs it)."
+        ),
+    ] = None,
+    qaly_tolerance: Annotated[
+        float,
+        typer.Option(
+            "--qaly-tolerance",
+            min=0.0,
+            help="Frontier policies within this many QALYs (and as much in money at the WTP) "
+            "are shown as one.",
+        ),
+    ] = 1e-3,
     out: Annotated[
         Path | None,
         typer.Option(
@@ -200,6 +252,9 @@ def compare_command(
                 grid=grid,
                 from_ages=tuple(from_age or ()),
                 progress=progress,
+                include_optimal=not no_optimal,
+                reference=reference,
+                qaly_tolerance=qaly_tolerance,
             )
         currency = loaded.settings.currency
         _print_table(result, currency)

@@ -10,6 +10,8 @@ from caredecide.cautions import CAUTION_SHORT
 from caredecide.cli import app
 from caredecide.cli.compare import (
     FRONTIER_FILE,
+    FRONTIER_FULL_FILE,
+    STATE_SWITCHES_FILE,
     SWITCHES_FILE,
     TABLE_FILE,
     TRACES_FOLDER,
@@ -64,8 +66,12 @@ def test_out_writes_table_frontier_traces_and_charts(tmp_path, library):
     table = pd.read_csv(tmp_path / TABLE_FILE, keep_default_na=False)
     assert list(table["strategy"]) == list(library.table["strategy"])
     pd.testing.assert_series_equal(table["cost"], library.table["cost"], rtol=1e-12)
-    frontier = pd.read_csv(tmp_path / FRONTIER_FILE)
+    frontier = pd.read_csv(tmp_path / FRONTIER_FULL_FILE)
     pd.testing.assert_series_equal(frontier["wtp_from"], library.frontier["wtp_from"], rtol=1e-12)
+    runs = pd.read_csv(tmp_path / FRONTIER_FILE)
+    assert list(runs["policies"]) == list(library.frontier_collapsed["policies"])
+    by_state = pd.read_csv(tmp_path / STATE_SWITCHES_FILE)
+    assert len(by_state) == len(library.state_switches)
     assert len(pd.read_csv(tmp_path / SWITCHES_FILE)) == len(library.switches)
     names = list(dict.fromkeys(library.traces["strategy"]))
     for index, name in enumerate(names):
@@ -74,7 +80,7 @@ def test_out_writes_table_frontier_traces_and_charts(tmp_path, library):
     for stem in ("ce_plane", "frontier"):
         assert (tmp_path / f"{stem}.svg").read_text(encoding="utf-8").lstrip().startswith("<svg")
         assert (tmp_path / f"{stem}.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
-    assert "Optimal policy over the willingness-to-pay range" in run.stdout
+    assert "Where each state's recommendation changes" in run.stdout
     # Axis titles carry the model's currency in brackets, as in the app.
     assert "Cost per person (discounted) (EUR)" in (tmp_path / "ce_plane.svg").read_text(
         encoding="utf-8"
@@ -136,3 +142,18 @@ def test_from_age_on_an_infinite_horizon_is_a_clear_error():
     run = runner.invoke(app, ["compare", stationary, "--from-age", "65"])
     assert run.exit_code == 2
     assert "age 65 given, but the model has an infinite horizon" in " ".join(run.stderr.split())
+
+
+def test_no_optimal_and_a_reference_strategy():
+    run = runner.invoke(
+        app, ["compare", DEMO, "--no-optimal", "--reference", "never treat", "--quiet"]
+    )
+    assert run.exit_code == 0, run.output
+    assert "optimal policy" not in run.stdout
+    assert "ICER vs never treat" in run.stdout
+
+
+def test_unknown_reference_is_a_clear_error():
+    run = runner.invoke(app, ["compare", DEMO, "--reference", "nope"])
+    assert run.exit_code == 2
+    assert "reference" in run.stderr and "'nope'" in run.stderr
