@@ -151,3 +151,18 @@ def grouped_time(
     out = frame.groupby(names, sort=False, as_index=False)["cycles"].sum()
     out["years"] = out["cycles"] * compiled.cycle_length
     return out
+
+
+def with_group_columns(frame: pd.DataFrame, compiled: CompiledModel) -> pd.DataFrame:
+    """``frame`` (a ``state`` column of flat state ids) with where each state comes from.
+
+    Adds ``declared_state`` and one column per attribute and tunnel (value name or step,
+    ``""`` where the state does not carry it), so a trace or policy table written to CSV
+    can be added up by group elsewhere. A flat model's frame is returned unchanged; a
+    grouping whose name is already a column is left out.
+    """
+    if not compiled.state_groups:
+        return frame
+    groups = state_group_frame(compiled).rename(columns={"state": "declared_state"})
+    names = [c for c in groups.columns if c not in ("state_id", "label", *frame.columns)]
+    return frame.join(groups.set_index("state_id")[names], on="state")

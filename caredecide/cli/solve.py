@@ -147,6 +147,7 @@ def solve_command(
     """Solve a model: when to start treatment, with totals (research use only)."""
     from caredecide.compile import compile_model
     from caredecide.evaluate import evaluate_policy
+    from caredecide.grouping import with_group_columns
     from caredecide.objective import Objective, ObjectiveError
     from caredecide.solvers import SolverError, solve
 
@@ -175,8 +176,11 @@ def solve_command(
             )
         if out is not None:
             with writing_to(out):
-                _policy_frame(result).to_csv(out / "policy.csv", index=False)
-                outcome.trace_frame().to_csv(out / "trace.csv", index=False)
+                # Models with attributes or tunnels: where each generated state comes from.
+                policy = with_group_columns(_policy_frame(result), compiled)
+                policy.to_csv(out / "policy.csv", index=False)
+                trace = with_group_columns(outcome.trace_frame(), compiled)
+                trace.to_csv(out / "trace.csv", index=False)
                 (out / "summary.json").write_text(
                     json.dumps(summary, indent=2) + "\n", encoding="utf-8"
                 )

@@ -197,8 +197,10 @@ def _policy_chart(data: ReportData):
 
 def _trace_chart(data: ReportData):
     from caredecide.charts import make_trace_chart
+    from caredecide.expand import expand_model
 
-    return make_trace_chart(data.results["trace"], state_order=list(data.model.state_ids))
+    states = expand_model(data.model).state_ids  # one per copy of an attribute or tunnel
+    return make_trace_chart(data.results["trace"], state_order=list(states))
 
 
 def policy_section(data: ReportData) -> str:
@@ -302,6 +304,7 @@ def uncertainty_section(data: ReportData) -> str:
         make_evppi_chart,
         make_policy_acceptability_chart,
     )
+    from caredecide.expand import expand_model
 
     evpi = data.results["psa_evpi"].iloc[0]
     unit = unit_text(data)
@@ -323,7 +326,7 @@ def uncertainty_section(data: ReportData) -> str:
             lambda: make_policy_acceptability_chart(
                 data.results["psa_acceptability"],
                 action=action,
-                state_order=list(data.model.state_ids),
+                state_order=list(expand_model(data.model).state_ids),
             )
         ),
         table(data.results["psa_acceptability"]),
