@@ -773,6 +773,9 @@ def make_cell_matrix_chart(
         The action whose matrix is drawn (rows: from-state, columns: to-state).
     state_order : sequence of str, optional
         Row and column order (default: order of first appearance).
+
+    Clicking a cell selects it (point selection ``cell_pick`` on the ``cell`` field), so a
+    front end can show that cell's detail.
     """
     _require(
         frame,
@@ -791,17 +794,22 @@ def make_cell_matrix_chart(
                 axis=alt.Axis(orient="top", labelAngle=0)),
         y=alt.Y("from_state:N", title="from", sort=states, scale=alt.Scale(domain=states)),
     )  # fmt: skip
-    cells = base.mark_rect(stroke="#7A7A7A", strokeWidth=0.6).encode(
-        color=alt.Color(
-            "closeness:N",
-            title="Switching factor",
-            scale=alt.Scale(domain=bands, range=[CLOSENESS_COLOURS[b] for b in bands]),
-        ),
-        tooltip=[
-            alt.Tooltip("cell:N", title="cell"),
-            alt.Tooltip("closeness:N", title="nearest switch"),
-            alt.Tooltip("detail:N", title="detail"),
-        ],
+    picked = alt.selection_point(fields=["cell"], name="cell_pick", on="click")
+    cells = (
+        base.mark_rect(stroke="#7A7A7A", strokeWidth=0.6)
+        .add_params(picked)
+        .encode(
+            color=alt.Color(
+                "closeness:N",
+                title="Switching factor",
+                scale=alt.Scale(domain=bands, range=[CLOSENESS_COLOURS[b] for b in bands]),
+            ),
+            tooltip=[
+                alt.Tooltip("cell:N", title="cell"),
+                alt.Tooltip("closeness:N", title="nearest switch"),
+                alt.Tooltip("detail:N", title="detail"),
+            ],
+        )
     )
     text = base.mark_text(fontSize=10).encode(
         text="label:N",
@@ -811,9 +819,8 @@ def make_cell_matrix_chart(
             alt.value("black"),
         ),
     )
-    size = max(40 * len(states), 160)
     return alt.layer(cells, text).properties(
         title=f"Action: {action} (factor below 1 / above 1 at which the policy changes)",
-        width=size * 1.6,
-        height=size,
+        width=max(90 * len(states), 240),
+        height=max(50 * len(states), 260),  # room for the whole legend
     )

@@ -28,6 +28,12 @@ VIEWS = [
         "views/sensitivity.py", title="Sensitivity", icon=":material/tune:", url_path="sensitivity"
     ),
     st.Page(
+        "views/cells.py",
+        title="Transition cells",
+        icon=":material/table_view:",
+        url_path="transition-cells",
+    ),
+    st.Page(
         "views/uncertainty.py",
         title="Uncertainty",
         icon=":material/casino:",
