@@ -3,9 +3,10 @@
 No Streamlit and no maths here: the views compute with :mod:`caredecide` and pass
 frames; tests check the builders through ``chart.to_dict()``.
 
-Colours: a palette of our own chosen for colour-vision deficiency (blue and amber differ
-in lightness as well as hue; the rest add lightness steps), and every categorical
-encoding also carries a text label or a legend with words, never colour alone.
+Colours: one palette per kind of meaning (:mod:`caredecide.palettes`: actions, states,
+low/high ends, series), chosen for colour-vision deficiency (blue and amber differ in
+lightness as well as hue), and every categorical encoding also carries a text label or a
+legend with words, never colour alone.
 """
 
 from __future__ import annotations
@@ -15,31 +16,16 @@ from collections.abc import Sequence
 import altair as alt
 import pandas as pd
 
-ACTION_PALETTE: tuple[str, ...] = (
-    "#1D5A8C",  # deep blue
-    "#EBA83A",  # amber
-    "#8CC5B8",  # pale teal
-    "#7A3B63",  # plum
-    "#B9B9B9",  # light grey
-    "#3F3F3F",  # charcoal
+from caredecide.palettes import (
+    ACTION_PALETTE,
+    DARK_FILLS,
+    LOW_HIGH_PALETTE,
+    SERIES_PALETTE,
+    STATE_PALETTE,
 )
-"""Categorical colours for actions, in the model's action order."""
 
-STATE_PALETTE: tuple[str, ...] = (
-    "#9CC3E4",
-    "#1D5A8C",
-    "#EBA83A",
-    "#A8612A",
-    "#8CC5B8",
-    "#2F7566",
-    "#C79AB9",
-    "#7A3B63",
-    "#D6D6D6",
-    "#555555",
-)
-"""Categorical colours for health states in a cohort trace (light/dark pairs)."""
-
-_DARK_FILLS = {"#1D5A8C", "#7A3B63", "#3F3F3F"}
+# One palette per kind of meaning (caredecide.palettes): actions, states, low/high, series.
+_DARK_FILLS = DARK_FILLS
 
 GAP_RAMP: tuple[str, str] = ("#2B2B2B", "#F4F4F4")
 """Action-gap ramp, smallest gap first: dark = close call. One hue, lightness only, so it
@@ -147,9 +133,9 @@ def make_action_gap_chart(
         tooltip=["state:N", "age:O", alt.Tooltip("action_gap:Q", format=".4g")],
     )
     # Amber dot with a dark outline: visible on the darkest and the lightest cell alike.
-    text = base.mark_text(
-        fontSize=11, color=ACTION_PALETTE[1], stroke="#1A1A1A", strokeWidth=0.6
-    ).encode(text="mark:N")
+    text = base.mark_text(fontSize=11, color="#FFFFFF", stroke="#1A1A1A", strokeWidth=0.6).encode(
+        text="mark:N"
+    )
     return alt.layer(cells, text).properties(
         title="Action gap (dark = small gap; a dot marks a close call)", height=alt.Step(22)
     )
@@ -259,7 +245,7 @@ def make_convergence_chart(frame: pd.DataFrame) -> alt.Chart | alt.LayerChart:
             y=alt.Y("amount:Q", title="Size (sup norm)", scale=alt.Scale(type="log")),
             # Colour and dash carry the same field: one legend, lines told apart without colour.
             color=alt.Color(
-                "quantity:N", title="Quantity", scale=alt.Scale(range=list(ACTION_PALETTE[:4]))
+                "quantity:N", title="Quantity", scale=alt.Scale(range=list(SERIES_PALETTE[:4]))
             ),
             strokeDash=alt.StrokeDash("quantity:N", title="Quantity"),
             tooltip=["sweep:Q", "quantity:N", alt.Tooltip("amount:Q", format=".3e")],
@@ -270,12 +256,12 @@ def make_convergence_chart(frame: pd.DataFrame) -> alt.Chart | alt.LayerChart:
         rule_data = pd.DataFrame({"sweep": [stable], "note": ["policy stops changing"]})
         rule = (
             alt.Chart(rule_data)
-            .mark_rule(color="#7A3B63", strokeDash=[4, 3])
+            .mark_rule(color="#111111", strokeDash=[4, 3])
             .encode(x=alt.X("sweep:Q", axis=alt.Axis(tickMinStep=1)), tooltip=["note:N", "sweep:Q"])
         )
         label = (
             alt.Chart(rule_data)
-            .mark_text(align="left", dx=4, dy=-6, color="#7A3B63", baseline="top")
+            .mark_text(align="left", dx=4, dy=-6, color="#111111", baseline="top")
             .encode(x="sweep:Q", y=alt.value(0), text="note:N")
         )
         return alt.layer(lines, rule, label).properties(title="Convergence per sweep")
@@ -338,7 +324,7 @@ def make_tornado_chart(frame: pd.DataFrame, *, unit: str = "") -> alt.LayerChart
                 legend=alt.Legend(orient="bottom"),
                 scale=alt.Scale(
                     domain=["parameter at its low value", "parameter at its high value"],
-                    range=list(ACTION_PALETTE[:2]),
+                    range=list(LOW_HIGH_PALETTE),
                 ),
             ),
             tooltip=[
@@ -492,7 +478,7 @@ def make_ce_plane_chart(frame: pd.DataFrame, *, currency: str = "") -> alt.Layer
             "group:N",
             title="Status",
             legend=alt.Legend(orient="bottom"),
-            scale=alt.Scale(domain=groups, range=[ACTION_PALETTE[i] for i in (0, 1, 3, 4)]),
+            scale=alt.Scale(domain=groups, range=list(SERIES_PALETTE[:4])),
         ),
         order=alt.Order("draw_order:Q"),
         tooltip=[
@@ -531,7 +517,7 @@ def make_frontier_chart(frame: pd.DataFrame, *, currency: str = "") -> alt.Chart
         tooltip.append("structure:N")
     return (
         alt.Chart(frame)
-        .mark_bar(color=ACTION_PALETTE[0], height={"band": 0.8})
+        .mark_bar(color=SERIES_PALETTE[1], height={"band": 0.8})
         .encode(
             x=alt.X("wtp_from:Q", title=f"Willingness to pay per QALY {currency}".strip()),
             x2="wtp_to:Q",
@@ -647,7 +633,7 @@ def make_acceptability_curves_chart(
                 "strategy:N",
                 title="Candidate policy",
                 sort=names,
-                scale=alt.Scale(domain=names, range=_cycle(ACTION_PALETTE, len(names))),
+                scale=alt.Scale(domain=names, range=_cycle(SERIES_PALETTE, len(names))),
                 legend=alt.Legend(orient="right", labelLimit=260),
             ),
             strokeDash=alt.StrokeDash(
@@ -697,7 +683,7 @@ def make_evppi_chart(frame: pd.DataFrame, *, unit: str = "") -> alt.LayerChart:
     y = alt.Y("parameter:N", sort=order, title="Parameter or group")
     bars = (
         alt.Chart(data)
-        .mark_bar(color=ACTION_PALETTE[0])
+        .mark_bar(color=SERIES_PALETTE[1])
         .encode(
             x=alt.X("evppi:Q", title=f"EVPPI per person {unit}".strip()),
             y=y,
@@ -730,12 +716,12 @@ def make_psa_convergence_chart(frame: pd.DataFrame) -> alt.FacetChart:
     x = alt.X("n:Q", title="Draws", scale=alt.Scale(type="log"))
     band = (
         alt.Chart()
-        .mark_area(opacity=0.3, color=ACTION_PALETTE[2])
+        .mark_area(opacity=0.3, color=SERIES_PALETTE[2])
         .encode(
             x=x, y=alt.Y("low:Q", title="Running mean", scale=alt.Scale(zero=False)), y2="high:Q"
         )
     )
-    line = alt.Chart().mark_line(color=ACTION_PALETTE[0]).encode(x=x, y="mean:Q")
+    line = alt.Chart().mark_line(color=SERIES_PALETTE[0]).encode(x=x, y="mean:Q")
     return (
         alt.layer(band, line, data=data)
         .properties(width=480, height=160)

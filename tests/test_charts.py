@@ -75,7 +75,7 @@ def test_action_gap_chart_marks_close_calls_in_text():
     # shows on a dark and a light cell alike.
     scale = cells["encoding"]["color"]["scale"]
     assert "scheme" not in scale and scale["range"] == list(charts.GAP_RAMP)
-    assert text["mark"]["stroke"] == "#1A1A1A" and text["mark"]["color"] == "#EBA83A"
+    assert text["mark"]["stroke"] == "#1A1A1A" and text["mark"]["color"] == "#FFFFFF"
 
 
 def test_gap_ramp_is_one_hue_from_dark_to_light():
