@@ -166,3 +166,27 @@ def with_group_columns(frame: pd.DataFrame, compiled: CompiledModel) -> pd.DataF
     groups = state_group_frame(compiled).rename(columns={"state": "declared_state"})
     names = [c for c in groups.columns if c not in ("state_id", "label", *frame.columns)]
     return frame.join(groups.set_index("state_id")[names], on="state")
+
+
+def states_named(compiled: CompiledModel, name: str) -> np.ndarray | None:
+    """(S,) bool: the states ``name`` stands for, or None when it names none.
+
+    ``name`` is a state id of the compiled model, or, for a model with attributes and
+    tunnels, a declared state (``"sick"``: every copy) or a declared state with values
+    joined by ``__`` (``"sick__treated"``: the copies with that value, at every tunnel
+    step), as in the model file.
+    """
+    ids = np.asarray(compiled.state_ids, dtype=object)
+    if name in compiled.state_ids:
+        return ids == name
+    groups = compiled.state_groups
+    if not groups:
+        return None
+    from caredecide.expand import SEPARATOR
+
+    base, *values = name.split(SEPARATOR)
+    mask = np.asarray(groups["state"], dtype=object) == base
+    others = [np.asarray(v, dtype=object) for k, v in groups.items() if k != "state"]
+    for value in values:
+        mask &= np.any([column == value for column in others], axis=0) if others else False
+    return mask if mask.any() else None

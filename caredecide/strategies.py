@@ -53,6 +53,7 @@ import pandas as pd
 from caredecide.compiled import CompiledModel
 from caredecide.errors import ModelError, Problem
 from caredecide.evaluate import PolicyOutcome, evaluate_policy
+from caredecide.grouping import states_named
 from caredecide.guarded import read_limited_text
 from caredecide.limits import MAX_STRATEGY_TABLE_BYTES
 from caredecide.objective import Objective
@@ -376,9 +377,11 @@ def _resolve_table(compiled: CompiledModel, strategy: Strategy) -> StrategyPolic
     ages = cycle_ages(compiled)
     # (R, S) rows covering each state, (R, Tpi) rows covering each cycle.
     states = np.array([r.state for r in rules], dtype=object)
-    covers_state = (states[:, None] == np.asarray(compiled.state_ids, dtype=object)[None, :]) | (
-        (states == ALL_STATES)[:, None] & live[None, :]
+    # A declared state or a value (a model with attributes) covers every copy it names.
+    named = np.array(
+        [states_named(compiled, r.state) if r.state != ALL_STATES else live for r in rules]
     )
+    covers_state = named | ((states == ALL_STATES)[:, None] & live[None, :])
     lower = np.array([-math.inf if r.age_from is None else r.age_from for r in rules])
     upper = np.array([math.inf if r.age_to is None else r.age_to for r in rules])
     if ages is None:
@@ -435,11 +438,10 @@ def _rule_problems(
     compiled: CompiledModel, rules: Sequence[TableRule], file: str | None
 ) -> list[Problem]:
     problems = []
-    states = set(compiled.state_ids) | {ALL_STATES}
     finite = compiled.n_cycles is not None
     for rule in rules:  # one message per offending row of the user's table
         line = rule.row + 1
-        if rule.state not in states:
+        if rule.state != ALL_STATES and states_named(compiled, rule.state) is None:
             problems.append(
                 Problem(
                     f"row {rule.row}.state",

@@ -601,3 +601,27 @@ def test_the_documented_example_generates_the_documented_states():
     model = loads_model(text)
     flat = expand(model).model
     assert [(s.id, s.label) for s in flat.states][:-1] == documented
+
+
+def test_a_strategy_table_may_name_a_declared_state_or_a_value(tmp_path):
+    from caredecide.grouping import states_named
+    from caredecide.strategies import load_strategy_table
+
+    compiled = _compiled(ATTRIBUTE_MODEL + PARAMETERS)
+    assert states_named(compiled, "stage_1").tolist() == [True, True, False, False, False]
+    assert states_named(compiled, "stage_2__untreated").tolist() == [0, 0, 1, 0, 0]
+    assert states_named(compiled, "stage_2__treatd") is None
+    table = tmp_path / "arms.strategies.csv"
+    table.write_text(
+        "strategy,state,age_from,age_to,action\n"
+        "late,stage_2__untreated,,,treat\n"
+        "late,stage_1,,,wait\n",
+        encoding="utf-8",
+    )
+    (late,) = load_strategy_table(compiled, table)
+    treat, wait = compiled.action_ids.index("treat"), compiled.action_ids.index("wait")
+    assert (late.policy[:, 2] == treat).all()
+    assert (late.policy[:, [0, 1, 3]] == wait).all()
+    table.write_text("strategy,state,action\nbad,stage_3,treat\n", encoding="utf-8")
+    with pytest.raises(ModelError, match="unknown state 'stage_3'"):
+        load_strategy_table(compiled, table)
