@@ -7,15 +7,50 @@ validation rule can be hit in isolation.
 from __future__ import annotations
 
 import copy
+import os
 from pathlib import Path
 from typing import Any
 
 import pytest
 import tomli_w
+from hypothesis import settings
 
 from caredecide.model import Model
 from caredecide.modelfile import loads_model
 from synthetic_cohort import demo_model_path as _demo_model_path
+
+# Under load (CI, a shared machine) a property test can exceed hypothesis's 200 ms
+# deadline without anything being wrong: the "ci" profile has no deadline. It is loaded
+# when CI is set, or by name with HYPOTHESIS_PROFILE=ci.
+settings.register_profile("ci", deadline=None, print_blob=True)
+if os.environ.get("HYPOTHESIS_PROFILE"):
+    settings.load_profile(os.environ["HYPOTHESIS_PROFILE"])
+elif os.environ.get("CI"):
+    settings.load_profile("ci")
+
+SLOW = {
+    # Modules (or module::test) that take more than a few seconds each on a quiet
+    # machine (measured with --durations); `pytest -m "not slow and not browser"` skips them.
+    "tests/cli/test_uncertainty.py",
+    "tests/cli/test_rerun.py",
+    "tests/cli/test_report.py",
+    "tests/test_acceptability.py",
+    "tests/test_conversions.py::test_stiff_and_gentle_stack_matches_scipy_expm",
+    "tests/test_conversions.py::test_matches_scipy_expm_from_slow_to_stiff",
+    "tests/cli/test_sensitivity.py::test_sensitivity_prints_ranking_and_thresholds_and_writes_files",
+    "tests/cli/test_compare.py::test_out_writes_table_frontier_traces_and_charts",
+}
+
+
+def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item]) -> None:
+    """Mark the tests listed in :data:`SLOW` with ``slow``."""
+    root = Path(__file__).resolve().parent.parent
+    for item in items:
+        module = Path(str(item.fspath)).resolve().relative_to(root).as_posix()
+        test = f"{module}::{item.name.split('[')[0]}"
+        if module in SLOW or test in SLOW:
+            item.add_marker(pytest.mark.slow)
+
 
 SMALL_MODEL: dict[str, Any] = {
     "format": 2,
