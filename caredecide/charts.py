@@ -12,6 +12,7 @@ legend with words, never colour alone.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from typing import TypeVar
 
 import altair as alt
 import pandas as pd
@@ -23,6 +24,10 @@ from caredecide.palettes import (
     SERIES_PALETTE,
     STATE_PALETTE,
 )
+
+ChartLike = alt.Chart | alt.LayerChart | alt.FacetChart
+"""What a builder returns: altair types a layered chart with properties as either."""
+_T = TypeVar("_T")
 
 # One palette per kind of meaning (caredecide.palettes): actions, states, low/high, series.
 _DARK_FILLS = DARK_FILLS
@@ -49,7 +54,7 @@ def _ordered(frame: pd.DataFrame, column: str, order: Sequence[str] | None) -> l
     return list(order) if order is not None else list(dict.fromkeys(frame[column].astype(str)))
 
 
-def _cycle(palette: Sequence[str], n: int) -> list[str]:
+def _cycle(palette: Sequence[_T], n: int) -> list[_T]:
     return [palette[i % len(palette)] for i in range(n)]
 
 
@@ -66,7 +71,7 @@ def make_policy_chart(
     *,
     action_order: Sequence[str] | None = None,
     state_order: Sequence[str] | None = None,
-) -> alt.LayerChart:
+) -> ChartLike:
     """Heat map of the chosen action per state (rows) and age (columns), with text labels.
 
     Parameters
@@ -108,7 +113,7 @@ def make_policy_chart(
 
 def make_action_gap_chart(
     frame: pd.DataFrame, *, state_order: Sequence[str] | None = None, unit: str = ""
-) -> alt.LayerChart:
+) -> ChartLike:
     """Heat map of the action gap: how much better the best action is than the runner-up.
 
     Parameters
@@ -224,7 +229,7 @@ def make_trace_chart(frame: pd.DataFrame, *, state_order: Sequence[str] | None =
     )
 
 
-def make_convergence_chart(frame: pd.DataFrame) -> alt.Chart | alt.LayerChart:
+def make_convergence_chart(frame: pd.DataFrame) -> ChartLike:
     """Residual per sweep beside the theoretical error bound, on a log scale.
 
     Parameters
@@ -268,7 +273,7 @@ def make_convergence_chart(frame: pd.DataFrame) -> alt.Chart | alt.LayerChart:
     return lines.properties(title="Convergence per sweep")
 
 
-def make_tornado_chart(frame: pd.DataFrame, *, unit: str = "") -> alt.LayerChart:
+def make_tornado_chart(frame: pd.DataFrame, *, unit: str = "") -> ChartLike:
     """Tornado diagram of a one-way analysis, widest swing at the top.
 
     Parameters
@@ -352,7 +357,7 @@ def make_tornado_chart(frame: pd.DataFrame, *, unit: str = "") -> alt.LayerChart
 
 def make_two_way_chart(
     frame: pd.DataFrame, *, action_order: Sequence[str] | None = None
-) -> alt.LayerChart:
+) -> ChartLike:
     """Map of the best action at the start over a grid of two parameters.
 
     Parameters
@@ -428,7 +433,7 @@ def make_two_way_chart(
     )
 
 
-def make_ce_plane_chart(frame: pd.DataFrame, *, currency: str = "") -> alt.LayerChart:
+def make_ce_plane_chart(frame: pd.DataFrame, *, currency: str = "") -> ChartLike:
     """Cost-effectiveness plane: strategies by QALYs (x) and cost (y), frontier joined.
 
     Parameters
@@ -537,7 +542,7 @@ def make_frontier_chart(frame: pd.DataFrame, *, currency: str = "") -> alt.Chart
 
 def make_policy_acceptability_chart(
     frame: pd.DataFrame, *, action: str, state_order: Sequence[str] | None = None
-) -> alt.LayerChart:
+) -> ChartLike:
     """Heat map: share of draws whose optimal policy takes ``action``, by state and age band.
 
     Parameters
@@ -598,7 +603,7 @@ def make_policy_acceptability_chart(
 
 def make_acceptability_curves_chart(
     curves: pd.DataFrame, frontier: pd.DataFrame | None = None, *, currency: str = ""
-) -> alt.LayerChart:
+) -> ChartLike:
     """Acceptability curves of candidate policies, optionally with the frontier marked.
 
     Parameters
@@ -664,7 +669,7 @@ def make_acceptability_curves_chart(
     )
 
 
-def make_evppi_chart(frame: pd.DataFrame, *, unit: str = "") -> alt.LayerChart:
+def make_evppi_chart(frame: pd.DataFrame, *, unit: str = "") -> ChartLike:
     """EVPPI per parameter (or Dirichlet group), largest first, with +-1.96 s.e. whiskers.
 
     Parameters

@@ -18,6 +18,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -26,12 +27,15 @@ from caredecide.errors import ModelError, ModelTooLargeError, Problem
 from caredecide.limits import default_memory_limit
 from caredecide.model import Model
 
+if TYPE_CHECKING:
+    from caredecide.expressions import Expression
+
 TIME_NAMES = frozenset({"age", "cycle", "years", "background"})
 """Expression variables that change from cycle to cycle."""
 ROW_TOLERANCE = 1e-9
 """A transition row must sum to 1 within this (absolute) tolerance."""
 MAX_PROBLEMS_PER_RULE = 20
-_RATE_ROWS = {"deduplicate": True, "method": "pade"}
+_RATE_ROWS: dict[str, Any] = {"deduplicate": True, "method": "pade"}
 """How rate rows are exponentiated (see :func:`_fill_rate_rows`); the benchmarks switch to
 ``{"deduplicate": False, "method": "uniformization"}``, the former path, for comparison."""
 
@@ -41,7 +45,7 @@ class Entry:
     """One expression of the model and where it sits."""
 
     where: str
-    expression: object  # caredecide.expressions.Expression
+    expression: Expression
     action: int = -1
     state: int = -1
     target: int = -1
@@ -117,7 +121,7 @@ def parse_model_expressions(model: Model) -> ParsedModel:
         if s in state_index and s not in absorbing
     }
 
-    def parse(value: object, where: str, allow_rest: bool = False, **index: int) -> Entry | None:
+    def parse(value: Any, where: str, allow_rest: bool = False, **index: int) -> Entry | None:
         try:
             expression = parse_expression(value, where=where, allow_rest=allow_rest)
             expression.check_names(parameter_names, where=where)
@@ -177,9 +181,7 @@ def parse_model_expressions(model: Model) -> ParsedModel:
 
 
 # -- parameter batches ------------------------------------------------------------------
-def parameter_batch(
-    model: Model, parameter_sets: object = None
-) -> tuple[dict[str, np.ndarray], int]:
+def parameter_batch(model: Model, parameter_sets: Any = None) -> tuple[dict[str, np.ndarray], int]:
     """Parameter values for a batch: ``{name: (D, 1) array}`` and ``D``.
 
     Parameters
@@ -230,9 +232,9 @@ def parameter_batch(
     if problems:
         raise ModelError(problems, file=where_file)
     n_draws = sizes.pop() if sizes else 1
-    values = {name: np.full((n_draws, 1), value) for name, value in base.items()}
-    values.update({name: v.reshape(n_draws, 1) for name, v in columns.items()})
-    return values, n_draws
+    batch = {name: np.full((n_draws, 1), value) for name, value in base.items()}
+    batch.update({name: v.reshape(n_draws, 1) for name, v in columns.items()})
+    return batch, n_draws
 
 
 # -- sizes ---------------------------------------------------------------------------
@@ -599,7 +601,7 @@ class _Evaluator:
             }
         with np.errstate(all="ignore"):  # NaN/inf are reported by check_finite
             for i, entry in enumerate(entries):
-                value = np.asarray(entry.expression.evaluate(variables), dtype=float)
+                value = np.asarray(entry.expression.evaluate(variables), dtype=np.float64)
                 out[i] = np.broadcast_to(value, (self.n_draws, length))
         return out
 

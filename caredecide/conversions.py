@@ -29,6 +29,7 @@ first offending value and the expected range. Times are in years unless stated.
 from __future__ import annotations
 
 import math
+from typing import Any
 
 import numpy as np
 
@@ -126,7 +127,7 @@ def _checked(
     return values
 
 
-def _probability(value: object, function: str, argument: str = "p", **kw: object) -> np.ndarray:
+def _probability(value: object, function: str, argument: str = "p", **kw: Any) -> np.ndarray:
     return _checked(value, function, argument, low=0.0, high=1.0, meaning="a probability", **kw)
 
 
@@ -491,8 +492,8 @@ def _generator_exponential(Q: np.ndarray, method: str = "pade") -> np.ndarray:
     P = np.zeros(Q.shape)
     P[..., ~kept, ~kept] = 1.0
     if kept.any():
-        block = np.ix_(kept, kept)
-        P[(..., *block)] = _stack_exponential(np.ascontiguousarray(Q[(..., *block)]))
+        rows, columns = np.ix_(kept, kept)
+        P[..., rows, columns] = _stack_exponential(np.ascontiguousarray(Q[..., rows, columns]))
     return P
 
 
@@ -504,8 +505,8 @@ def _states_in_play(pattern: np.ndarray) -> np.ndarray:
     with exits: their rows and columns of ``expm`` are those of the identity.
     """
     pattern = pattern & ~np.eye(pattern.shape[-1], dtype=bool)
-    leaves = pattern.any(axis=1)
-    return leaves | pattern[leaves].any(axis=0)
+    leaves = np.asarray(pattern.any(axis=1))
+    return np.asarray(leaves | pattern[leaves].any(axis=0))
 
 
 def _stack_exponential(Q: np.ndarray) -> np.ndarray:
@@ -523,9 +524,9 @@ def _stack_exponential(Q: np.ndarray) -> np.ndarray:
     distinct, inverse = _distinct_rows(np.packbits(flat_pattern, axis=1))
     pattern = np.unpackbits(distinct, axis=1, count=n_states * n_states).astype(bool)
     pattern = pattern.reshape(-1, n_states, n_states) & ~np.eye(n_states, dtype=bool)
-    leaves = pattern.any(axis=-1)  # (K, S)
+    leaves = np.asarray(pattern.any(axis=-1))  # (K, S)
     entered_from_leaving = (pattern & leaves[:, :, None]).any(axis=-2)
-    one_step = ~(leaves & entered_from_leaving).any(axis=-1)[inverse]  # (N,)
+    one_step = ~np.asarray((leaves & entered_from_leaving).any(axis=-1))[inverse]  # (N,)
     if one_step.all():
         return _one_step_exponential(A).reshape(Q.shape)
     unreachable = ~_closure(pattern)[inverse]

@@ -596,7 +596,7 @@ class Expression:
             for instruction in self._program:
                 opcode = instruction[0]
                 if opcode == "const":
-                    stack.append(np.float64(instruction[1]))
+                    stack.append(np.asarray(instruction[1], dtype=np.float64))
                 elif opcode == "load":
                     stack.append(self._variable(variables, instruction[1]))
                 elif opcode == "unary":

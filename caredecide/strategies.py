@@ -194,7 +194,8 @@ def default_strategies(compiled: CompiledModel) -> list[Strategy]:
         candidates.append(never(action))
         candidates.append(at_once(action))
         candidates += [from_state(action, s) for s in compiled.ordered_states[1:]]
-    kept, seen = [], []
+    kept: list = []
+    seen: list = []
     for strategy in candidates:
         policy = resolve_strategy(compiled, strategy).policy
         if not any(np.array_equal(policy, other) for other in seen):

@@ -108,7 +108,7 @@ def summarize_policy(result: PolicyResult, draw: int = 0) -> PolicyStructure:
     index = {s: i for i, s in enumerate(result.state_ids)}
     decision = [i for i in range(len(result.state_ids)) if result.decision_states[i]]
     ordered = [index[s] for s in result.ordered_states if s in index and index[s] in decision]
-    bands = {name: [] for name in names}
+    bands: dict[str, list[tuple[str, str]]] = {name: [] for name in names}
     for s in decision:
         for action, band in age_bands(policy[:, s], ages):
             bands[names[action]].append((result.state_ids[s], band))

@@ -27,13 +27,19 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field, replace
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
 
+from caredecide.compiled import CompiledModel
 from caredecide.errors import CaredecideError
 from caredecide.model import Model
 from caredecide.objective import Objective
+
+if TYPE_CHECKING:
+    from caredecide.evaluate import PolicyOutcome
+    from caredecide.solvers import PolicyResult
 
 PASS = "pass"
 FAIL = "fail"
@@ -110,9 +116,9 @@ class VerificationReport:
 # ----------------------------------------------------------------------------- core calls
 @dataclass
 class _Solved:
-    compiled: object
-    result: object
-    outcome: object
+    compiled: CompiledModel
+    result: PolicyResult
+    outcome: PolicyOutcome
 
 
 def _solve(model: Model, objective: Objective, parameter_sets=None, **options) -> _Solved:
@@ -212,7 +218,7 @@ def with_no_effect(model: Model, action_id: str, reference_id: str) -> Model:
     action = next(a for a in model.actions if a.id == action_id)
     reference = next(a for a in model.actions if a.id == reference_id)
     shared = set(model.allowed_states(action)) & set(model.allowed_states(reference))
-    tables = {}
+    tables: dict[str, Any] = {}
     for name in ("transitions", "rates"):
         table = {k: dict(v) for k, v in getattr(model, name).items()}
         own = {s: row for s, row in table.get(action_id, {}).items() if s not in shared}

@@ -415,14 +415,17 @@ def _follow_up_intervals(
     problems = []
     for column, values in (("death_years", death_at), ("censor_years", censor_at)):
         early = np.flatnonzero(np.isfinite(values) & (values < last_time))
-        problems += _first_problems(
-            early,
-            file,
-            lambda i, c=column, v=values: (
+        def describe(i: int, c: str = column, v: np.ndarray = values) -> tuple[str, str]:
+            return (
                 f"patient {patient_ids[i]}, column {c}",
                 f"value {v[i]} is before the last visit at {last_time[i]} years; expected a time "
                 "at or after the last visit",
-            ),
+            )
+
+        problems += _first_problems(
+            early,
+            file,
+            describe,
         )
     twice = np.flatnonzero(recorded_dead & np.isfinite(death_at))
     problems += _first_problems(

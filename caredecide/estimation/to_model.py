@@ -173,7 +173,9 @@ def estimates_to_parameters(
     check_prefix(prefix)
     if isinstance(estimates, PanelEstimate | CountEstimate):
         estimates = [estimates]
-    parameters, groups, notes = {}, {}, []
+    parameters: dict[str, Parameter] = {}
+    groups: dict[str, DirichletGroup] = {}
+    notes: list[str] = []
     for estimate in estimates:  # one per treatment group or method
         part = (
             _panel_entries(estimate, prefix)

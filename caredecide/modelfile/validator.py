@@ -328,7 +328,13 @@ def _check_parameters(model: Model, add) -> None:
             bound = getattr(p, key)
             if bound is not None and not _finite(bound):
                 add(f"{w}.{key}", f"{bound!r}; expected a finite number")
-        if _finite(p.low) and _finite(p.high) and not p.low <= p.value <= p.high:
+        if (
+            p.low is not None
+            and p.high is not None
+            and _finite(p.low)
+            and _finite(p.high)
+            and not p.low <= p.value <= p.high
+        ):
             add(w, f"value {p.value!r} lies outside [low, high] = [{p.low!r}, {p.high!r}]")
         if p.distribution is not None:
             try:

@@ -42,6 +42,7 @@ def terminal_present_value(
     whole objective (QALYs, or equal rates).
     """
     D, S, T = compiled.n_draws, compiled.n_states, compiled.n_cycles
+    assert T is not None, "backward induction needs a finite horizon"
     if terminal_value is None:
         return np.zeros((D, S))
     terminal = np.asarray(terminal_value, dtype=float)

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
@@ -238,7 +238,7 @@ def build_result(
     decision_states: np.ndarray,
     ages: np.ndarray | None,
     history: list[SweepRecord] | None,
-    **solver: object,
+    **solver: Any,
 ) -> PolicyResult:
     """Assemble a :class:`PolicyResult` from a greedy choice and the solver's own fields.
 

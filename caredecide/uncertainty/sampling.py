@@ -40,6 +40,7 @@ import scipy.stats
 from caredecide.distributions import Distribution, dirichlet_from_counts, distribution_from_spec
 from caredecide.errors import ModelError, Problem
 from caredecide.limits import MAX_DRAWS
+from caredecide.model import DirichletGroup
 from caredecide.options import check_scalar
 
 BLOCK_SIZE = 1000
@@ -89,7 +90,7 @@ class ParameterSampler:
 
     names: tuple[str, ...]
     distributions: tuple[tuple[str, Distribution], ...]
-    groups: tuple[tuple[str, object], ...]
+    groups: tuple[tuple[str, DirichletGroup], ...]
     correlation: np.ndarray | None = None
     correlated: tuple[str, ...] = ()
     file: str = "<model>"
