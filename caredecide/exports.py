@@ -19,7 +19,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from caredecide.cautions import CAUTION_LONG
+from caredecide.cautions import CAUTION_LONG, CAUTION_SHORT
 
 FLOAT_FORMAT = "%.12g"
 """Twelve significant digits: well above the precision of any model input."""
@@ -81,10 +81,17 @@ def export_tables(results: Mapping[str, pd.DataFrame], out_dir: Path | str) -> d
     return written
 
 
-def tables_zip_bytes(results: Mapping[str, pd.DataFrame]) -> bytes:
-    """Every table as ``<name>.csv`` in one zip (fixed time stamps: byte-reproducible)."""
+CAUTION_FILE = "CAUTION.txt"
+"""The caution's file in every zip of tables (first member, so it is seen first)."""
+
+
+def tables_zip_bytes(results: Mapping[str, pd.DataFrame], *, caution: str | None = None) -> bytes:
+    """Every table as ``<name>.csv`` in one zip (fixed time stamps: byte-reproducible),
+    with the caution as :data:`CAUTION_FILE` (default: the research-use caution)."""
+    text = caution or f"{CAUTION_SHORT}\n\n{CAUTION_LONG}"
     out = io.BytesIO()
     with zipfile.ZipFile(out, "w", zipfile.ZIP_DEFLATED) as archive:
+        archive.writestr(_zip_info(CAUTION_FILE), text + "\n")
         for name, frame in results.items():
             _check_name(name)
             archive.writestr(_zip_info(f"{name}.csv"), table_to_csv(frame))
@@ -126,6 +133,7 @@ def workbook_bytes(
     results: Mapping[str, pd.DataFrame],
     *,
     about: Mapping[str, str] | None = None,
+    caution: str = CAUTION_LONG,
 ) -> bytes:
     """One XLSX workbook: an ``about`` sheet, inputs (``in_*``) and results (``out_*``).
 
@@ -146,7 +154,7 @@ def workbook_bytes(
     workbook = Workbook()
     sheet = workbook.active
     sheet.title = "about"
-    sheet.append(["caution", CAUTION_LONG])
+    sheet.append(["caution", caution])
     for key, value in (about or {}).items():
         sheet.append([str(key), str(value)])
     sheet.append(["sheets", "in_*: model inputs; out_*: results (one table per sheet)"])

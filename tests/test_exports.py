@@ -91,12 +91,14 @@ def test_workbook_bytes_carry_no_clock(monkeypatch):
 
 
 def test_tables_zip_holds_the_same_csv_bytes_with_fixed_stamps():
+    from caredecide.cautions import CAUTION_SHORT
     from caredecide.exports import tables_zip_bytes
 
     tables = {"policy": pd.DataFrame({"a": [0.25]}), "trace": pd.DataFrame({"b": ["x"]})}
     data = tables_zip_bytes(tables)
     archive = zipfile.ZipFile(io.BytesIO(data))
-    assert archive.namelist() == ["policy.csv", "trace.csv"]
+    assert archive.namelist() == ["CAUTION.txt", "policy.csv", "trace.csv"]
+    assert archive.read("CAUTION.txt").decode().startswith(CAUTION_SHORT)
     assert archive.read("policy.csv") == table_to_csv(tables["policy"])
     assert {i.date_time for i in archive.infolist()} == {(1980, 1, 1, 0, 0, 0)}
     assert tables_zip_bytes(tables) == data

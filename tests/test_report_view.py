@@ -56,6 +56,7 @@ def test_downloads_are_the_report_workbook_and_tables():
 def test_app_tables_are_the_command_line_tables_byte_for_byte(tmp_path):
     # The app's zip and the files 'caredecide report' writes come from the same analyses:
     # the strategy table beside the demo model joins both, whatever the working directory.
+    from caredecide.cautions import caution_short
     from caredecide.report import build_report, downloads, tables_dir_for
 
     path = demo_model_path()
@@ -64,7 +65,10 @@ def test_app_tables_are_the_command_line_tables_byte_for_byte(tmp_path):
     build_report(path, out)
     archive = zipfile.ZipFile(io.BytesIO(ready.tables_zip))
     written = sorted(p.name for p in tables_dir_for(out).glob("*.csv"))
-    assert sorted(archive.namelist()) == written
+    assert sorted(set(archive.namelist()) - {"CAUTION.txt"}) == written
+    # The zip carries the caution, with the demo-data note (a bundled model).
+    assert archive.read("CAUTION.txt").decode().startswith(caution_short(path))
+    assert "Demo data are synthetic" in archive.read("CAUTION.txt").decode()
     for name in written:
         assert archive.read(name) == (tables_dir_for(out) / name).read_bytes(), name
     assert b"treat stage 2-3 before 80" in archive.read("strategies.csv")

@@ -15,7 +15,7 @@ from pathlib import Path
 import pandas as pd
 import streamlit as st
 
-from caredecide.cautions import CAUTION_LONG, CAUTION_SHORT
+from caredecide.cautions import caution_long, caution_short
 from caredecide.compile import compile_model
 from caredecide.errors import CaredecideError, ModelError, ModelWarningRecord, Problem
 from caredecide.evaluate import evaluate_policy
@@ -42,8 +42,9 @@ NOTICE_KEY = "cd_notice"
 # -- cautions --------------------------------------------------------------------------
 def show_cautions() -> None:
     """The research-use caution: prominent, at the top, not dismissible (every view)."""
-    st.warning(f"**{CAUTION_SHORT}**", icon=":material/warning:")
-    st.caption(CAUTION_LONG)
+    source = st.session_state.get(SOURCE_KEY)
+    st.warning(f"**{caution_short(source)}**", icon=":material/warning:")
+    st.caption(caution_long(source))
 
 
 # -- the working model ------------------------------------------------------------------

@@ -92,7 +92,7 @@ def run_app(
 
     The working model is autosaved to $CAREDECIDE_HOME/drafts (default ~/.caredecide/drafts).
     """
-    print_caution()
+    print_caution(model)
     path = model if model is not None else _default_model()
     with user_errors():  # the app opens the file again; refuse a hostile one here first
         check_nesting(

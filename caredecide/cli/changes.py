@@ -61,7 +61,7 @@ def run_what_would_change(
     """Per health state: the recommended policy, the estimates that could flip it inside
     their plausible ranges (at which values, with what probability), and scenarios that
     change it."""
-    print_caution()
+    print_caution(model)
     with user_errors():
         from caredecide.sensitivity import parameter_thresholds
         from caredecide.sensitivity.recommendation import what_would_change

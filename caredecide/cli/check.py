@@ -144,7 +144,7 @@ def register(app: typer.Typer) -> None:
         """Validate a model file: print a summary, or every problem found (exit code 2)."""
         from caredecide.modelfile import load_model, validate_model
 
-        print_caution()
+        print_caution(model_path)
         if upgrade:
             with user_errors():
                 _upgrade_file(model_path)

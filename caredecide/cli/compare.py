@@ -229,7 +229,7 @@ def compare_command(
     """Compare the optimal policy with fixed strategies (research use only)."""
     from caredecide.compare import compare_strategies
 
-    print_caution()
+    print_caution(model)
     with user_errors():
         with (
             stderr.status("Solving and evaluating...", spinner="dots")

@@ -11,7 +11,7 @@ import typer
 from rich.console import Console
 from rich.markup import escape
 
-from caredecide.cautions import CAUTION_SHORT
+from caredecide.cautions import caution_short
 from caredecide.errors import CaredecideError
 
 stdout = Console(soft_wrap=True, highlight=False)
@@ -63,10 +63,10 @@ def save_chart(chart, out: Path, stem: str) -> list[Path]:
     return paths
 
 
-def print_caution() -> None:
+def print_caution(model: object = None) -> None:
     """Print the research-use caution on stderr; every command does, whatever ``--quiet``
     says (``--quiet`` drops progress and notes only)."""
-    stderr.print(f"[bold yellow]{CAUTION_SHORT}[/]")
+    stderr.print(f"[bold yellow]{plain(caution_short(model))}[/]")
 
 
 @contextmanager

@@ -130,7 +130,7 @@ def register(app: typer.Typer) -> None:
             write_estimates,
         )
 
-        print_caution()
+        print_caution(visits)
         if model is not None and out is None:
             stderr.print("[bold red]error:[/] --model needs --out (where to save the result)")
             raise typer.Exit(code=2)

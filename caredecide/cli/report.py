@@ -54,7 +54,7 @@ def report_command(
     from caredecide.report import build_report, record_path_for, tables_dir_for
 
     # The caution is always shown (stderr), whatever --quiet says.
-    print_caution()
+    print_caution(model)
     with user_errors():
         load_and_warn(model, strict=strict)
         with step_progress("report", 5, quiet) as step:

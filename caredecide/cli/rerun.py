@@ -39,7 +39,7 @@ def rerun_command(
     """Re-run a recorded analysis; exit code 1 when anything differs from the record."""
     from caredecide.report import rerun
 
-    print_caution()
+    print_caution(model)
     with user_errors():
         with step_progress("rerun", 5, quiet) as step:
             outcome = rerun(record, model=model, out_dir=out, progress=step)

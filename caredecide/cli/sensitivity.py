@@ -196,7 +196,7 @@ def run_sensitivity(
     Parameters in a Dirichlet group move with the other members rescaled proportionally
     (the group sum stays fixed); rows with a 'rest' entry absorb changes automatically.
     """
-    print_caution()
+    print_caution(model)
     with user_errors():
         from caredecide.sensitivity import (
             cell_sensitivity,

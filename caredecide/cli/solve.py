@@ -13,7 +13,7 @@ import typer
 from rich.table import Table
 
 from caredecide import __version__
-from caredecide.cautions import CAUTION_SHORT
+from caredecide.cautions import caution_short
 from caredecide.cli.console import (
     plain,
     print_caution,
@@ -58,7 +58,7 @@ def _finite_or_none(value: float) -> float | str | None:
 def build_summary(path: Path, compiled, result, outcome) -> dict:
     """The ``summary.json`` content: objective, totals, solver, model file and version."""
     return {
-        "caution": CAUTION_SHORT,
+        "caution": caution_short(path),
         "model_file": str(path),
         "model_sha256": file_sha256(path),
         "package_version": __version__,
@@ -152,7 +152,7 @@ def solve_command(
     from caredecide.solvers import SolverError, solve
 
     # The caution is always shown (stderr), whatever --quiet says.
-    print_caution()
+    print_caution(model)
     with user_errors():
         with stderr.status("Solving...", spinner="dots") if not quiet else nullcontext():
             loaded = load_and_warn(model, strict=strict)

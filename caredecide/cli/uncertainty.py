@@ -12,7 +12,7 @@ import pandas as pd
 import typer
 from rich.table import Table
 
-from caredecide.cautions import CAUTION_SHORT
+from caredecide.cautions import caution_short
 from caredecide.cli.console import (
     plain,
     prepare_output_folder,
@@ -184,7 +184,7 @@ def run_uncertainty(
 
     Same seed, same draws and results, for any chunk size, locally or on a Dask cluster.
     """
-    print_caution()
+    print_caution(model)
     if workers is not None and scheduler is not None:
         stderr.print("[bold red]error:[/] give --workers or --scheduler, not both")
         raise typer.Exit(code=2)
@@ -267,7 +267,7 @@ def run_uncertainty(
         )
     if out is not None:
         with user_errors(), writing_to(out):
-            _write_outputs(out, result, tables, treat, quiet)
+            _write_outputs(out, result, tables, treat, quiet, model)
 
 
 def _means_table(frame: pd.DataFrame) -> Table:
@@ -357,7 +357,12 @@ def _tables(result, band_years: float) -> dict[str, pd.DataFrame]:
 
 
 def _write_outputs(
-    out: Path, result, tables: dict[str, pd.DataFrame], action: str, quiet: bool
+    out: Path,
+    result,
+    tables: dict[str, pd.DataFrame],
+    action: str,
+    quiet: bool,
+    model: Path | None = None,
 ) -> None:
     from caredecide.charts import (
         make_acceptability_curves_chart,
@@ -381,7 +386,7 @@ def _write_outputs(
             frame.to_parquet(out / f"{name}.parquet", index=False)
             written.append(out / f"{name}.parquet")
     summary = out / "summary.json"
-    record = {"caution": CAUTION_SHORT, **result.summary()}
+    record = {"caution": caution_short(model), **result.summary()}
     summary.write_text(json.dumps(record, indent=2, default=float) + "\n")
     written.append(summary)
     unit = f"({result.objective.unit})"

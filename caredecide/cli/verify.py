@@ -25,7 +25,7 @@ def verify_command(
     from caredecide.exports import table_to_csv
     from caredecide.verify import CHECK_IDS, FAIL, verify_model
 
-    print_caution()
+    print_caution(model)
     with user_errors():
         loaded = load_and_warn(model, strict=strict)
         with step_progress("verify", len(CHECK_IDS), quiet) as step:

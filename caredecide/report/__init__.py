@@ -196,6 +196,7 @@ def downloads(
     command_line : str
         Shown in the report's run record.
     """
+    from caredecide.cautions import caution_long, caution_short
     from caredecide.exports import tables_zip_bytes, workbook_bytes
     from caredecide.modelfile import loads_model
     from caredecide.report.html import render_report
@@ -222,8 +223,13 @@ def downloads(
     }
     return Downloads(
         report_html=render_report(data, record).encode("utf-8"),
-        workbook=workbook_bytes(data.inputs, data.results, about=_about(data)),
-        tables_zip=tables_zip_bytes(result_tables(data)),
+        workbook=workbook_bytes(
+            data.inputs, data.results, about=_about(data), caution=caution_long(data.model_path)
+        ),
+        tables_zip=tables_zip_bytes(
+            result_tables(data),
+            caution=f"{caution_short(data.model_path)}\n\n{caution_long(data.model_path)}",
+        ),
         verification=data.results.get("verification"),
     )
 

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from caredecide.cautions import CAUTION_SHORT
+from caredecide.cautions import caution_short
 from caredecide.report.analyses import ReportData
 from caredecide.report.sections import (
     SECTION_BUILDERS,
@@ -90,6 +90,7 @@ def render_report(data: ReportData, record: dict) -> str:
         HTML5 text (UTF-8 when written).
     """
     title = f"caredecide report: {data.model.title}"
+    caution = caution_short(data.model_path)
     contents = "".join(f'<a href="#{sid}">{esc(name)}</a>' for sid, name in SECTION_TITLES.items())
     sections = "".join(
         f'<section id="{sid}"><h2>{esc(name)}</h2>{_section_body(sid, data, record)}</section>'
@@ -100,9 +101,9 @@ def render_report(data: ReportData, record: dict) -> str:
         f'<meta http-equiv="Content-Security-Policy" content="{CSP}">'
         '<meta name="viewport" content="width=device-width, initial-scale=1">'
         f"<title>{esc(title)} - research use only</title><style>{STYLE}</style></head><body>"
-        f'<header class="top"><h1>{esc(title)}</h1><p>{esc(CAUTION_SHORT)}</p></header>'
+        f'<header class="top"><h1>{esc(title)}</h1><p>{esc(caution)}</p></header>'
         f'<main><nav class="contents">{contents}</nav>{sections}'
-        f"<footer>{esc(CAUTION_SHORT)} Produced by caredecide "
+        f"<footer>{esc(caution)} Produced by caredecide "
         f"{esc(record.get('versions', {}).get('caredecide', ''))}.</footer></main>"
         "</body></html>\n"
     )

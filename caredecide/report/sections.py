@@ -13,7 +13,7 @@ from collections.abc import Callable, Sequence
 
 import pandas as pd
 
-from caredecide.cautions import CAUTION_LONG, CAUTION_SHORT
+from caredecide.cautions import caution_long, caution_short
 from caredecide.report.analyses import ReportData
 
 SECTION_TITLES: dict[str, str] = {
@@ -124,8 +124,8 @@ def _para(text: str) -> str:
 # ----------------------------------------------------------------------------- sections
 def cautions_section(data: ReportData) -> str:
     return (
-        f'<div class="caution"><strong>{esc(CAUTION_SHORT)}</strong>'
-        f"<p>{esc(CAUTION_LONG)}</p></div>"
+        f'<div class="caution"><strong>{esc(caution_short(data.model_path))}</strong>'
+        f"<p>{esc(caution_long(data.model_path))}</p></div>"
     )
 
 

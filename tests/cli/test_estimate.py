@@ -10,7 +10,7 @@ import pandas as pd
 import pytest
 from typer.testing import CliRunner
 
-from caredecide.cautions import CAUTION_SHORT
+from caredecide.cautions import caution_short
 from caredecide.cli import app
 from caredecide.estimation import estimate_counts, estimate_panel, load_records
 from caredecide.modelfile import load_model
@@ -157,7 +157,7 @@ def test_quiet_prints_only_the_results():
     result = runner.invoke(app, ["estimate", VISITS, "--patients", PATIENTS, "--csv", "-q"])
     assert result.exit_code == 0
     # --quiet leaves only the caution on stderr: it is shown by every command, always.
-    assert result.stderr.strip() == CAUTION_SHORT
+    assert result.stderr.strip() == caution_short(VISITS)  # bundled records: demo note
     assert result.stdout.startswith("parameter,estimate,se_log,low,high")
 
 
