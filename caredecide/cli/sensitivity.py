@@ -217,7 +217,7 @@ def run_sensitivity(
             _check_pair(loaded, two_way_pair, str(model))
         if transition_cells:
             check_cell_options(
-                str(model), cell_loss_factors, cell_search_max,
+                cell_loss_factors, cell_search_max,
                 names={"loss_factors": "--cell-loss-factors", "search_max": "--cell-search-max"},
             )  # fmt: skip
         objective = default_objective(loaded)

@@ -30,6 +30,7 @@ switch and a switch back within one grid interval are missed; a finer ``grid`` l
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
@@ -37,9 +38,10 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from caredecide.errors import ModelError, Problem
+from caredecide.errors import RunOptionError
 from caredecide.evaluate import evaluate_policy
 from caredecide.objective import Objective
+from caredecide.options import check_scalar
 from caredecide.sensitivity.brent import RTOL_MIN, brent_roots
 from caredecide.sensitivity.cell_scaling import (
     FIXED_NO_ROOM,
@@ -50,7 +52,7 @@ from caredecide.sensitivity.cell_scaling import (
     TransitionCell,
 )
 from caredecide.sensitivity.oneway import _ages_text
-from caredecide.sensitivity.variation import default_objective, policy_ages, source_file
+from caredecide.sensitivity.variation import default_objective, policy_ages
 
 DEFAULT_LOSS_FACTORS = (0.5, 2.0)
 DEFAULT_SEARCH_MAX = 10.0
@@ -355,7 +357,7 @@ def cell_sensitivity(
     """
     from caredecide.solvers import solve
 
-    check_cell_options(source_file(model), loss_factors, search_max, grid, xtol)
+    check_cell_options(loss_factors, search_max, grid, xtol)
     objective = default_objective(model) if objective is None else objective
     scaler = CellScaler(model)
     cells = scaler.cells
@@ -538,7 +540,6 @@ def _progress(progress: Progress | None, steps: list[int]) -> Callable[[], None]
 
 
 def check_cell_options(
-    file: str | None,
     loss_factors: Any,
     search_max: float,
     grid: int = DEFAULT_GRID,
@@ -546,45 +547,32 @@ def check_cell_options(
     *,
     names: dict[str, str] | None = None,
 ) -> None:
-    """Refuse options out of range, naming each (``names`` maps an option to the label a
-    front end uses, e.g. ``{"loss_factors": "--cell-loss-factors"}``).
+    """Refuse run options out of range, naming each (``names`` maps an option to the label
+    a front end uses, e.g. ``{"loss_factors": "--cell-loss-factors"}``).
 
     Raises
     ------
-    ModelError
-        One problem per bad option, with the value and what was expected.
+    RunOptionError
+        Naming the first bad option, its value and what was expected.
     """
     names = names or {}
 
-    def where(option: str) -> str:
-        return names.get(option, f"sensitivity.{option}")
+    def name(option: str) -> str:
+        return names.get(option, option)
 
-    problems = []
     try:
         low, high = (float(v) for v in loss_factors)
-        ok = np.isfinite(low) and np.isfinite(high) and 0 < low < 1 < high
+        ok = math.isfinite(low) and math.isfinite(high) and 0 < low < 1 < high
     except (TypeError, ValueError):
         ok = False
     if not ok:
-        problems.append(
-            Problem(
-                where("loss_factors"),
-                f"{loss_factors!r} is not allowed; expected two factors, one in (0, 1) and "
-                "one above 1 (e.g. 0.5 and 2)",
-            )
+        raise RunOptionError(
+            name("loss_factors"),
+            loss_factors,
+            "two factors, one in (0, 1) and one above 1 (e.g. 0.5 and 2)",
         )
-    if not (isinstance(search_max, int | float) and np.isfinite(search_max) and search_max > 1):
-        problems.append(
-            Problem(
-                where("search_max"),
-                f"{search_max!r} is not allowed; expected a finite factor above 1",
-            )
-        )
-    if not isinstance(grid, int | np.integer) or grid < 2:
-        problems.append(
-            Problem(where("grid"), f"{grid!r} is not allowed; expected an integer >= 2")
-        )
-    if not (isinstance(xtol, int | float) and np.isfinite(xtol) and xtol > 0):
-        problems.append(Problem(where("xtol"), f"{xtol!r} is not allowed; expected a number > 0"))
-    if problems:
-        raise ModelError(problems, file=file)
+    check_scalar(search_max, name("search_max"), float, min_val=1.0, include_boundaries="neither",
+                 max_val=math.inf)  # fmt: skip
+    check_scalar(grid, name("grid"), int, min_val=2)
+    check_scalar(xtol, name("xtol"), float, min_val=0.0, include_boundaries="neither",
+                 max_val=math.inf)  # fmt: skip
