@@ -238,6 +238,7 @@ def _sensitivity(data: ReportData) -> None:
         summarise_thresholds,
     )
 
+    _transition_cells(data)
     if not data.model.parameter_names():
         data.notes["sensitivity"] = "not run: the model has no parameters to vary"
         return
@@ -253,6 +254,16 @@ def _sensitivity(data: ReportData) -> None:
             data.model, "willingness_to_pay", 0.0, 2.0 * wtp, objective=data.objective
         )
         data.results["threshold_willingness_to_pay"] = summarise_thresholds(wtp_table)
+
+
+def _transition_cells(data: ReportData) -> None:
+    """The switching factor of every transition cell (the same table as the CLI's)."""
+    from caredecide.sensitivity import cell_sensitivity
+
+    cells = cell_sensitivity(data.model, objective=data.objective)
+    data.results["transition_cells"] = cells.to_frame()
+    data.results["transition_cells_table"] = cells.summary_table()
+    data.results["transition_cells_matrix"] = cells.matrix_frame()
 
 
 def _uncertainty(data: ReportData) -> None:

@@ -289,6 +289,32 @@ def sensitivity_section(data: ReportData) -> str:
             "<h3>Willingness-to-pay thresholds</h3>",
             table(data.results["threshold_willingness_to_pay"]),
         ]
+    return "".join(parts) + transition_cells_part(data)
+
+
+def transition_cells_part(data: ReportData) -> str:
+    """The transition sensitivity matrix (one per action) and its table."""
+    from caredecide.charts import make_cell_matrix_chart
+    from caredecide.expand import expand_model
+
+    if "transition_cells_table" not in data.results:
+        return ""
+    matrix = data.results["transition_cells_matrix"]
+    states = list(expand_model(data.model).state_ids)
+    parts = [
+        "<h3>Transition cells</h3>",
+        _para(
+            "Each transition cell multiplied by a factor (a rate cell: its rate, before the "
+            "matrix exponential; the row's remainder absorbs the change, or its other entries "
+            "are rescaled in proportion). Shown: the factor below and above 1 at which the "
+            "best policy first changes in some state or age, nearest to 1 first, and the value "
+            "lost by keeping the base-case policy at two factors. A cell that changes with age "
+            "is multiplied by the same factor at every age."
+        ),
+    ]
+    for action in dict.fromkeys(matrix["action"]):
+        parts.append(svg(lambda a=action: make_cell_matrix_chart(matrix, a, state_order=states)))
+    parts.append(table(data.results["transition_cells_table"]))
     return "".join(parts)
 
 
