@@ -63,7 +63,8 @@ def test_competing_exits_from_rates_match_closed_form():
     data["rates"] = {"wait": {"sick": {"cured": 0.1, "dead": 0.05}}}
     c = compile_model(load_dict(data))
     # Source: Welton & Ades 2005 closed form P_j = r_j/(a+b)(1 - e^{-(a+b)t}):
-    # stay 0.860708, exit-a 0.092861, exit-b 0.046431 (REFERENCES.md).
+    # stay e^-0.15 = 0.860708, exit-a 0.092861, exit-b 0.046431 (Med Decis Making
+    # 25(6):633-645; worked from the closed form).
     np.testing.assert_allclose(
         c.transition[0, 0, 0, 1], [0.0, 0.860708, 0.092861, 0.046431], atol=5e-7
     )
@@ -74,7 +75,8 @@ def test_rate_rows_of_one_action_share_one_generator():
     data["transitions"]["wait"] = {}
     data["rates"] = {"wait": {"well": {"sick": 0.1, "dead": 0.05}, "sick": {"dead": 0.2}}}
     c = compile_model(load_dict(data))
-    # Source: Jones, Epstein & Garcia-Mochon 2017 / REFERENCES.md: progressive 1->2->3 with
+    # Source: Jones, Epstein & Garcia-Mochon 2017, Value in Health (closed form of
+    # a progressive model, from memory; worked by hand): progressive 1->2->3 with
     # l12 = 0.1, l13 = 0.05, l23 = 0.2: row 1 = 0.860708 / 0.083954 / 0.055338;
     # row 2 = 0.818731 / 0.181269.
     np.testing.assert_allclose(c.transition[0, 0, 0, 0], [0.860708, 0.083954, 0.055338], atol=5e-7)

@@ -123,8 +123,10 @@ def _one_state(n_cycles, within, discount=0.0):
     ],
 )
 def test_life_expectancy_within_cycle_table(within, ten_cycles, lifetime):
-    # Source: Elbasha & Chhatwal 2016, Med Decis Making 36(1):115-131 (REFERENCES.md):
-    # one alive state, mu = 0.1/yr, 1-year cycles. life_years = 1 per cycle alive.
+    # Source: Elbasha & Chhatwal 2016, Med Decis Making 36(1):115-131 (within-cycle formulas;
+    # values are geometric sums worked from them, e.g. start-of-cycle, 10 cycles:
+    # (1 - e^-1) / (1 - e^-0.1) = 6.6425327): one alive state, mu = 0.1/yr, 1-year cycles.
+    # life_years = 1 per cycle alive.
     finite = evaluate_policy(_one_state(10, within), 0, QALYS)
     assert finite.life_years[0] == pytest.approx(ten_cycles, abs=5e-7)
     assert finite.qalys_undiscounted[0] == pytest.approx(ten_cycles, abs=5e-7)
@@ -138,7 +140,8 @@ def test_life_expectancy_within_cycle_table(within, ten_cycles, lifetime):
 
 
 def test_simpson_life_expectancy_ten_cycles():
-    # Source: Elbasha & Chhatwal 2016 (REFERENCES.md): Simpson 1/3, 10 cycles -> 6.3212091.
+    # Source: Elbasha & Chhatwal 2016, Med Decis Making 36(1):115-131: Simpson 1/3 rule over
+    # 10 one-year cycles of e^(-0.1 t) -> 6.3212091 (worked from their formula).
     outcome = evaluate_policy(_one_state(10, "simpson"), 0, QALYS)
     assert outcome.life_years[0] == pytest.approx(6.3212091, abs=5e-7)
 

@@ -89,8 +89,9 @@ def _state_after_one_year(design: CohortDesign, n: int, seed: int) -> np.ndarray
 
 def test_simulated_process_matches_the_matrix_exponential():
     # Source: Welton & Ades 2005, Med Decis Making 25(6):633-645; Jones, Epstein &
-    # Garcia-Mochon 2017 (REFERENCES.md): progressive 1 -> 2 -> 3 with l12 = 0.1,
-    # l13 = 0.05, l23 = 0.2 gives row 1 of expm(Q) = 0.860708 / 0.083954 / 0.055338.
+    # Garcia-Mochon 2017, Value in Health (from memory; worked by hand): progressive
+    # 1 -> 2 -> 3 with l12 = 0.1, l13 = 0.05, l23 = 0.2 gives row 1 of
+    # expm(Q) = 0.860708 / 0.083954 / 0.055338.
     design = fully_observed_design(
         progressive_rates([0.1], [0.05, 0.2]), (1.0, 0.0), follow_up_years=2.0
     )

@@ -29,7 +29,7 @@ QALYS = Objective("qalys")
 
 def test_puterman_two_state_finite_horizon_values_and_policy():
     # Source: Puterman 1994, Markov Decision Processes, section 3.1 two-state example
-    # (values in /work/shared/REFERENCES.md): with n steps left V(s1) = 10, 9.5, 8.75,
+    # (worked values from memory, re-derived by hand): with n steps left V(s1) = 10, 9.5, 8.75,
     # 7.875, 6.9375 and V(s2) = -n; a12 with one step left, a11 otherwise.
     result = solve(puterman_two_state(5), QALYS)
     assert result.method == "backward_induction" and result.success
@@ -301,8 +301,9 @@ def _one_state(n_cycles, within_cycle, rate=0.1, cycle_length=1.0, discount=0.0)
     [("start", 6.6425327), ("end", 6.0104121), ("trapezoid", 6.3264724), ("simpson", 6.3212091)],
 )
 def test_within_cycle_methods_ten_cycles(within_cycle, expected):
-    # Source: Elbasha & Chhatwal 2016, Med Decis Making 36(1):115-131 (table in
-    # REFERENCES.md): one alive state, mu = 0.1/yr, 1-year cycles, 10 cycles.
+    # Source: Elbasha & Chhatwal 2016, Med Decis Making 36(1):115-131 (within-cycle formulas;
+    # values are geometric sums worked from them): one alive state, mu = 0.1/yr, 1-year
+    # cycles, 10 cycles.
     result = solve(_one_state(10, within_cycle), QALYS)
     assert result.value[0, 0, 0] == pytest.approx(expected, abs=5e-7)
 
@@ -312,7 +313,8 @@ def test_within_cycle_methods_ten_cycles(within_cycle, expected):
     [("start", 10.508332), ("end", 9.508332), ("trapezoid", 10.008332), ("simpson", 10.000006)],
 )
 def test_within_cycle_methods_lifetime(within_cycle, expected):
-    # Source: Elbasha & Chhatwal 2016 (lifetime row in REFERENCES.md); 600 cycles leave
+    # Source: Elbasha & Chhatwal 2016, Med Decis Making 36(1):115-131 (lifetime sums worked
+    # from their formulas, e.g. start-of-cycle 1 / (1 - e^-0.1) = 10.508332); 600 cycles leave
     # e^-60 of the cohort alive, far below the checked digits.
     result = solve(_one_state(600, within_cycle), QALYS)
     assert result.value[0, 0, 0] == pytest.approx(expected, abs=5e-6)
