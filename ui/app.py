@@ -28,6 +28,18 @@ VIEWS = [
         "views/sensitivity.py", title="Sensitivity", icon=":material/tune:", url_path="sensitivity"
     ),
     st.Page(
+        "views/changes.py",
+        title="What would change it",
+        icon=":material/help_center:",
+        url_path="what-would-change",
+    ),
+    st.Page(
+        "views/regions.py",
+        title="Policy regions",
+        icon=":material/map:",
+        url_path="policy-regions",
+    ),
+    st.Page(
         "views/cells.py",
         title="Transition cells",
         icon=":material/table_view:",

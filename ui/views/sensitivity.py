@@ -6,7 +6,7 @@ from __future__ import annotations
 import pandas as pd
 import streamlit as st
 
-from caredecide import charts
+from caredecide import charts, decision_charts
 from caredecide.errors import CaredecideError
 from caredecide.modelfile import loads_model
 from caredecide.sensitivity import (
@@ -16,6 +16,8 @@ from caredecide.sensitivity import (
     summarise_thresholds,
     two_way,
 )
+from caredecide.sensitivity.context import threshold_context
+from caredecide.sensitivity.decision import LOSS_SOURCE, decision_tornado
 from ui import working_model
 
 
@@ -27,9 +29,11 @@ def run_one_way(text: str, file: str, base_dir: str, names: tuple[str, ...]):
 
 
 @st.cache_data(max_entries=16, show_spinner=False)
-def run_thresholds(text: str, file: str, base_dir: str, names: tuple[str, ...], grid: int):
+def run_decision(text: str, file: str, base_dir: str, names: tuple[str, ...], grid: int):
     model = loads_model(text, file=file, base_dir=base_dir)
-    return parameter_thresholds(model, list(names) or None, grid=grid)
+    thresholds = parameter_thresholds(model, list(names) or None, grid=grid)
+    result = decision_tornado(model, list(names) or None, grid=grid, thresholds=thresholds)
+    return result.table, threshold_context(model, thresholds)
 
 
 @st.cache_data(max_entries=16, show_spinner=False)
@@ -63,15 +67,34 @@ grid = st.slider("Grid values per parameter", 3, 41, 11, key="sensitivity_grid")
 selected = tuple(chosen)
 
 try:
+    with st.spinner("Decision tornado and thresholds (batches through the solver)..."):
+        decision, context = run_decision(*key, selected, int(grid))
     with st.spinner("One-way analysis (one batch through the solver)..."):
         table, switches = run_one_way(*key, selected)
-    with st.spinner("Searching decision thresholds..."):
-        thresholds = run_thresholds(*key, selected, int(grid))
 except CaredecideError as error:
     st.error(str(error), icon=":material/error:")
     st.stop()
 
-st.subheader("Tornado diagram")
+st.subheader("Decision tornado: which estimate would change the decision")
+st.caption(
+    "Each bar is the value lost (per person, discounted) by keeping today's policy if the "
+    "estimate were at the low (left) or high (right) end of its range, against the policy "
+    "that is best there. Ranked by the mean of the two ends: the expected value of perfect "
+    f"information about the estimate alone at its bounds ({LOSS_SOURCE})."
+)
+st.altair_chart(
+    decision_charts.make_decision_tornado_chart(decision, unit=unit),
+    key="sensitivity_decision_tornado",
+)
+st.dataframe(
+    decision[["rank", "parameter", "base", "low", "high", "loss_low", "loss_high",
+              "loss_at_bounds", "loss_qalys_at_bounds", "share_cells_changed",
+              "nearest_threshold", "distance_share", "value_rank"]],
+    hide_index=True, key="sensitivity_decision_table",
+)  # fmt: skip
+
+st.subheader("Value-level tornado (second view)")
+st.caption("How far each estimate moves the expected outcome, whether or not the policy changes.")
 st.altair_chart(charts.make_tornado_chart(table, unit=f"({unit})"), key="sensitivity_tornado")
 shown = table[["rank", "parameter", "low", "high", "value_low", "value_base", "value_high",
                "swing", "policy_changes", "rule"]]  # fmt: skip
@@ -79,10 +102,14 @@ st.dataframe(shown, hide_index=True, key="sensitivity_oneway_table")
 with st.expander("Every state and age whose best action changes"):
     st.dataframe(switches, hide_index=True, key="sensitivity_switches")
 
-st.subheader("Decision thresholds")
-st.dataframe(summarise_thresholds(thresholds), hide_index=True, key="sensitivity_thresholds")
-with st.expander("Thresholds per cycle"):
-    st.dataframe(thresholds, hide_index=True, key="sensitivity_thresholds_all")
+st.subheader("Decision thresholds in context")
+st.caption(
+    "The value of each estimate at which a best action switches, beside its base value and "
+    "range; 'distance_share' is the move from base as a share of the range and "
+    "'probability_beyond' the chance of a value past the threshold under the estimate's "
+    "distribution."
+)
+st.dataframe(context, hide_index=True, key="sensitivity_thresholds")
 
 st.subheader("Thresholds of the settings")
 left, right = st.columns(2)
