@@ -190,3 +190,14 @@ def states_named(compiled: CompiledModel, name: str) -> np.ndarray | None:
     for value in values:
         mask &= np.any([column == value for column in others], axis=0) if others else False
     return mask if mask.any() else None
+
+
+def trace_by_group(frame: pd.DataFrame, groups: pd.DataFrame, by: str) -> pd.DataFrame:
+    """A long trace frame added up by one grouping, shaped for a cohort trace chart.
+
+    The ``state`` column holds the group (value name, tunnel step or declared state);
+    states that do not carry the attribute or tunnel are shown as ``"(no <by>)"``.
+    """
+    shown = group_trace_frame(frame, groups, by)
+    shown[by] = shown[by].replace("", f"(no {by})")
+    return shown.rename(columns={by: "state"})

@@ -625,3 +625,16 @@ def test_a_strategy_table_may_name_a_declared_state_or_a_value(tmp_path):
     table.write_text("strategy,state,action\nbad,stage_3,treat\n", encoding="utf-8")
     with pytest.raises(ModelError, match="unknown state 'stage_3'"):
         load_strategy_table(compiled, table)
+
+
+def test_the_report_shows_the_trace_by_attribute_and_tunnel(tmp_path):
+    from caredecide.report import build_report
+
+    model = tmp_path / "tunnel.toml"
+    model.write_text(_tunnel_model(start="sick__untreated", enter="0.5", die="0.1"), "utf-8")
+    out = tmp_path / "report.html"
+    build_report(model, out, draws=20, seed=1)
+    page = out.read_text(encoding="utf-8")
+    policy = page[page.index('<section id="policy">') : page.index('<section id="strategies">')]
+    for name in ("declared state", "on_treatment", "years_on_drug"):
+        assert f"<h3>Cohort trace by {name}</h3>" in policy

@@ -205,6 +205,10 @@ def _policy(data: ReportData) -> None:
     bands = band_table(result)
     data.results["policy_bands"] = bands.reset_index()
     data.results["trace"] = outcome.trace_frame()
+    if compiled.state_groups:  # attributes or tunnels: where each generated state comes from
+        from caredecide.grouping import state_group_frame
+
+        data.results["state_groups"] = state_group_frame(compiled)
     data.results["totals"] = outcome.totals_frame().drop(columns="draw")
     data.facts["structure"] = result.structure().text
     data.facts["solver"] = result.message

@@ -217,7 +217,25 @@ def policy_section(data: ReportData) -> str:
         + table(data.results["totals"])
         + "<h3>Cohort trace</h3>"
         + svg(lambda: _trace_chart(data))
+        + _grouped_traces(data)
     )
+
+
+def _grouped_traces(data: ReportData) -> str:
+    """One cohort trace per attribute and tunnel, its generated states added up."""
+    from caredecide.charts import make_trace_chart
+    from caredecide.grouping import trace_by_group
+
+    groups = data.results.get("state_groups")
+    if groups is None:
+        return ""
+    parts = []
+    for name in [c for c in groups.columns if c not in ("state_id", "label")]:
+        frame = trace_by_group(data.results["trace"], groups, name)
+        title = "declared state" if name == "state" else esc(name)
+        parts.append(f"<h3>Cohort trace by {title}</h3>")
+        parts.append(svg(lambda frame=frame: make_trace_chart(frame)))
+    return "".join(parts)
 
 
 def strategies_section(data: ReportData) -> str:

@@ -8,7 +8,7 @@ import streamlit as st
 from caredecide import charts
 from caredecide.errors import CaredecideError
 from caredecide.expand import expand_model
-from caredecide.grouping import group_trace_frame
+from caredecide.grouping import trace_by_group
 from caredecide.model import OBJECTIVES
 from ui import working_model
 
@@ -167,9 +167,7 @@ if groupings != ["state"]:  # the model has attributes or tunnels
         help="Add up the states generated from attributes and tunnels.",
     )
     if by != "each state":
-        shown = group_trace_frame(solved.trace, solved.groups, by)
-        shown[by] = shown[by].replace("", f"(no {by})")
-        trace = shown.rename(columns={by: "state"})
+        trace = trace_by_group(solved.trace, solved.groups, by)
         trace_order = list(dict.fromkeys(trace["state"]))
 st.altair_chart(charts.make_trace_chart(trace, state_order=trace_order), key="trace_chart")
 with st.expander("Tables"):
