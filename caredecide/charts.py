@@ -810,8 +810,13 @@ def make_cell_matrix_chart(
             alt.value("black"),
         ),
     )
-    return alt.layer(cells, text).properties(
+    layered = alt.layer(
+        cells,
+        text,
         title=f"Action: {action} (factor below 1 / above 1 at which the policy changes)",
         width=max(90 * len(states), 240),
         height=max(50 * len(states), 260),  # room for the whole legend
     )
+    # altair types a layer holding a selection as possibly faceted; no facet is set here.
+    assert isinstance(layered, alt.LayerChart)
+    return layered

@@ -10,6 +10,7 @@ from __future__ import annotations
 import html
 import math
 from collections.abc import Callable, Sequence
+from functools import partial
 
 import pandas as pd
 
@@ -331,7 +332,7 @@ def transition_cells_part(data: ReportData) -> str:
         ),
     ]
     for action in dict.fromkeys(matrix["action"]):
-        parts.append(svg(lambda a=action: make_cell_matrix_chart(matrix, a, state_order=states)))
+        parts.append(svg(partial(make_cell_matrix_chart, matrix, action, state_order=states)))
     parts.append(table(data.results["transition_cells_table"]))
     return "".join(parts)
 
