@@ -32,20 +32,17 @@ def choose_greedy(
     tolerance = tie_absolute + tie_relative * abs(best)
     tolerance = tolerance + extra
     floor = best - tolerance
-    chosen = 0
+    chosen = -1
+    second = -np.inf  # best value among actions other than the first best one (top)
+    runner_up = -1
     for a in range(A):
-        if Q[d, t, s, a] >= floor:
+        x = Q[d, t, s, a]
+        if chosen < 0 and x >= floor:
             chosen = a
-            break
-    second = -np.inf
-    for a in range(A):
-        if a != top and Q[d, t, s, a] > second:
-            second = Q[d, t, s, a]
-    other = -1
-    other_value = -np.inf
-    for a in range(A):
-        if a != chosen and (other < 0 or Q[d, t, s, a] > other_value):
-            other, other_value = a, Q[d, t, s, a]
+        if a != top and x > second:
+            second, runner_up = x, a
+    # next best = best action other than the chosen one: top itself unless chosen is top
+    other = runner_up if chosen == top else top
     value[d, t, s] = Q[d, t, s, chosen]
     policy[d, t, s] = chosen
     single = not (second > -np.inf)
@@ -57,6 +54,16 @@ def choose_greedy(
         gap[d, t, s] = best - second
         next_best[d, t, s] = other
         indifferent[d, t, s] = best - second <= tolerance
+
+
+@njit(cache=True, nogil=True, inline="always", fastmath={"reassoc", "contract"})
+def expectation(row, following):
+    # sum_s' P(s'|s, a) V(s'): reassociation lets the short sum use SIMD lanes (rounding
+    # differs from numpy's matmul in the last bits, as BLAS kernels differ among themselves).
+    total = 0.0
+    for s2 in range(row.shape[0]):
+        total += row[s2] * following[s2]
+    return total
 
 
 @jit
@@ -87,6 +94,7 @@ def backward_induction(
     T = q_values.shape[1]
     Tq, Tc = state_qaly.shape[1] - 1, state_cost.shape[1] - 1
     Tdq, Tdc = decision_qaly.shape[1] - 1, decision_cost.shape[1] - 1
+    following = np.empty(S)  # V_{t+1} of the draw, kept local (no aliasing with outputs)
     for d in range(D):
         tq, tc = min(T, Tq), min(T, Tc)
         for s in range(S):
@@ -96,6 +104,8 @@ def backward_induction(
         for t in range(T - 1, -1, -1):
             tp, tq, tc = min(t, Tp - 1), min(t, Tq), min(t, Tc)
             tdq, tdc = min(t, Tdq), min(t, Tdc)
+            for s2 in range(S):
+                following[s2] = value[d, t + 1, s2]
             for s in range(S):
                 occupancy = combine(
                     ow, cw, occ_o[t] * state_qaly[d, tq, s], occ_c[t] * state_cost[d, tc, s]
@@ -106,10 +116,7 @@ def backward_induction(
                     if not allowed[s, a]:
                         q = -np.inf
                     else:
-                        expected = 0.0
-                        for s2 in range(S):
-                            expected += P[d, tp, a, s, s2] * value[d, t + 1, s2]
-                        q = expected + combine(
+                        q = expectation(P[d, tp, a, s], following) + combine(
                             ow,
                             cw,
                             dec_o[t] * decision_qaly[d, tdq, s, a],
