@@ -47,7 +47,9 @@ from synthetic_cohort import demo_model_path
 
 APP = str(Path(__file__).resolve().parents[1] / "ui" / "app.py")
 TARGET_SECONDS = 1.0
-TEXT_KEY = "cd_model_text"  # ui.working_model.TEXT_KEY (imported lazily: ui needs the env set first)
+TEXT_KEY = (
+    "cd_model_text"  # ui.working_model.TEXT_KEY (imported lazily: ui needs the env set first)
+)
 REVISION_KEY = "cd_revision"  # ui.working_model.REVISION_KEY
 
 

@@ -130,3 +130,30 @@ def test_backward_induction_kernel_matches_quantecon():
     v, sigma = quantecon_backward_induction(ddp, T)
     np.testing.assert_allclose(result.value[0], v, rtol=1e-12, atol=1e-12)
     np.testing.assert_array_equal(result.policy[0], sigma)
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    shape=st.sampled_from([(1, 3), (4, 2), (2, 3, 5), (3, 1, 2)]),
+    A=st.integers(1, 4),
+    ties=st.booleans(),
+)
+def test_greedy_kernel_matches_numpy_greedy_choice(seed, shape, A, ties):
+    # The documented tie rule (lowest index within the tolerance; gap to the best other
+    # action; next-best action), compiled and vectorised, on values with exact ties,
+    # near-ties inside the tolerance and actions not allowed (-inf).
+    from caredecide.solvers.bellman import greedy_choice
+
+    rng = np.random.default_rng(seed)
+    *lead, S = shape
+    Q = np.round(rng.normal(0, 3, (*lead, S, A)), 0 if ties else 6)
+    Q[..., 1:] += rng.choice([0.0, 1e-10, 1.0], Q[..., 1:].shape)
+    Q[rng.random(Q.shape) < 0.25] = -np.inf
+    Q[..., 0] = np.where(np.isinf(Q).all(axis=-1), 1.0, Q[..., 0])  # one allowed action
+    decision_states = rng.random(S) < 0.8
+    uncertainty = rng.choice([0.0, 0.5], tuple(lead))
+    fast = greedy_choice(Q.copy(), decision_states, 1e-9, 1e-9, uncertainty)
+    plain = _numpy_path(greedy_choice, Q.copy(), decision_states, 1e-9, 1e-9, uncertainty)
+    for name, a, b in zip(("policy", "value", "gap", "next", "tie"), fast, plain, strict=True):
+        np.testing.assert_array_equal(a, b, err_msg=name)

@@ -163,3 +163,127 @@ def cohort_trace(P, policy, start, trace):
                     a = policy[d, ti, s]
                     for s2 in range(S):
                         trace[d, t + 1, s2] += mass * P[d, tp, a, s, s2]
+
+
+@jit
+def value_iteration(P, R, gamma, tolerance, relative, max_iterations, v, residual, sweeps, done):
+    # Per draw: v <- max_a R + gamma P v from v = 0 until ||v' - v|| < eps (1 - g) / (2 g),
+    # eps = tolerance (x max |v| when relative); each draw stops on its own.
+    # P (D, A, S, S), R (D, A, S); out v (D, S), residual (D,), sweeps (D,), done (D,).
+    D, A, S = R.shape[0], R.shape[1], R.shape[2]
+    current = np.empty(S)
+    following = np.empty(S)
+    for d in range(D):
+        current[:] = 0.0
+        done[d] = False
+        change = np.inf
+        n = 0
+        while n < max_iterations:
+            n += 1
+            change = 0.0
+            largest = 0.0
+            for s in range(S):
+                best = -np.inf
+                for a in range(A):
+                    q = gamma * expectation(P[d, a, s], current) + R[d, a, s]
+                    if q > best:
+                        best = q
+                following[s] = best
+                change = max(change, abs(best - current[s]))
+                largest = max(largest, abs(best))
+            current[:] = following
+            eps = tolerance * largest if relative else tolerance
+            if change < eps * (1.0 - gamma) / (2.0 * gamma) or change == 0.0:
+                done[d] = True
+                break
+        v[d] = current
+        residual[d] = change
+        sweeps[d] = n
+
+
+@jit
+def policy_values(P, R, gamma, d, policy, v):
+    # Exact value of a policy for draw d: solve (I - gamma P_pi) v = r_pi, gathering the
+    # chosen rows of P into one draw's S x S system (in cache).
+    S = R.shape[2]
+    system = np.empty((S, S))
+    reward = np.empty(S)
+    for s in range(S):
+        a = policy[s]
+        for s2 in range(S):
+            system[s, s2] = -gamma * P[d, a, s, s2]
+        system[s, s] += 1.0
+        reward[s] = R[d, a, s]
+    v[:] = np.linalg.solve(system, reward)
+
+
+@jit
+def policy_iteration(P, R, gamma, max_iterations, v, residual, sweeps, done):
+    # Per draw: start greedy for v = 0; evaluate exactly; improve, keeping the current
+    # action unless another is better beyond rounding; stop when the policy is unchanged.
+    D, A, S = R.shape[0], R.shape[1], R.shape[2]
+    policy = np.empty(S, dtype=np.intp)
+    improved = np.empty(S, dtype=np.intp)
+    current = np.empty(S)
+    for d in range(D):
+        for s in range(S):
+            policy[s] = 0
+            for a in range(1, A):
+                if R[d, a, s] > R[d, policy[s], s]:
+                    policy[s] = a
+        done[d] = False
+        n = 0
+        change = np.inf
+        while n < max_iterations:
+            n += 1
+            policy_values(P, R, gamma, d, policy, current)
+            change = 0.0
+            same = True
+            for s in range(S):
+                best = -np.inf
+                top = 0
+                kept = -np.inf
+                for a in range(A):
+                    q = gamma * expectation(P[d, a, s], current) + R[d, a, s]
+                    if q > best:
+                        best, top = q, a
+                    if a == policy[s]:
+                        kept = q
+                change = max(change, abs(best - current[s]))
+                slack = 1e-12 * max(abs(best), 1.0)
+                improved[s] = policy[s] if kept >= best - slack else top
+                same = same and improved[s] == policy[s]
+            if same:
+                done[d] = True
+                break
+            policy[:] = improved
+        if not done[d]:
+            policy_values(P, R, gamma, d, policy, current)
+            change = 0.0
+            for s in range(S):
+                best = -np.inf
+                for a in range(A):
+                    best = max(best, gamma * expectation(P[d, a, s], current) + R[d, a, s])
+                change = max(change, abs(best - current[s]))
+        v[d] = current
+        residual[d] = change
+        sweeps[d] = n
+
+
+@jit
+def greedy(Q, decision_states, tie_absolute, tie_relative, extra, value, policy, gap, next_best,
+           indifferent):  # fmt: skip
+    # The tie rule over Q (N, T, S, A) with extra tolerance (N,); outputs (N, T, S).
+    N, T, S, A = Q.shape
+    for d in range(N):
+        for t in range(T):
+            for s in range(S):
+                best = -np.inf
+                top = 0
+                for a in range(A):
+                    if Q[d, t, s, a] > best:
+                        best, top = Q[d, t, s, a], a
+                choose_greedy(
+                    Q, best, top, decision_states[s], tie_absolute, tie_relative, extra[d],
+                    d, t, s, value, policy, gap, next_best, indifferent,
+                )  # fmt: skip

@@ -11,6 +11,7 @@ import numpy as np
 from caredecide.compiled import CompiledModel
 from caredecide.errors import CaredecideError
 from caredecide.objective import Objective
+from caredecide.solvers import kernels
 
 
 class SolverError(CaredecideError, ValueError):
@@ -166,6 +167,8 @@ def greedy_choice(
     indifferent : (..., S) bool
         True where the gap is within the tie tolerance.
     """
+    if kernels.available() and Q.ndim >= 2 and Q.shape[-1] > 0:
+        return _greedy_kernel(Q, decision_states, tie_absolute, tie_relative, uncertainty)
     best = Q.max(axis=-1)
     tolerance = tie_absolute + tie_relative * np.abs(best)
     tolerance = tolerance + np.asarray(uncertainty)[..., None]
@@ -187,4 +190,25 @@ def greedy_choice(
     gap[..., ~decision_states] = np.inf
     next_best[..., ~decision_states] = -1
     indifferent[..., ~decision_states] = False
+    return policy, value, gap, next_best, indifferent
+
+
+def _greedy_kernel(Q, decision_states, tie_absolute, tie_relative, uncertainty):
+    """:func:`greedy_choice` by the compiled loop (same rule, one pass, no copies of Q)."""
+    lead, (S, A) = Q.shape[:-2], Q.shape[-2:]
+    n = int(np.prod(lead, dtype=np.int64))
+    flat = np.ascontiguousarray(Q, dtype=float).reshape(n, 1, S, A)
+    extra = np.ascontiguousarray(np.broadcast_to(np.asarray(uncertainty, dtype=float), lead))
+    out = (
+        np.empty((n, 1, S)),
+        np.empty((n, 1, S), dtype=np.intp),
+        np.empty((n, 1, S)),
+        np.empty((n, 1, S), dtype=np.intp),
+        np.empty((n, 1, S), dtype=bool),
+    )
+    kernels.kernels().greedy(
+        flat, np.ascontiguousarray(decision_states, dtype=bool), float(tie_absolute),
+        float(tie_relative), extra.reshape(n), *out,
+    )  # fmt: skip
+    value, policy, gap, next_best, indifferent = (x.reshape(*lead, S) for x in out)
     return policy, value, gap, next_best, indifferent

@@ -31,6 +31,7 @@ import numpy as np
 
 from caredecide.compiled import CompiledModel
 from caredecide.objective import Objective
+from caredecide.solvers import kernels
 from caredecide.solvers.bellman import (
     SolverError,
     decision_reward,
@@ -247,6 +248,32 @@ def policy_iteration(
     return v, max_iterations, residual, False
 
 
+def _per_draw(
+    problem: StationaryProblem, method: str, tolerance: float, relative: bool, max_iterations: int
+) -> tuple[np.ndarray, int, np.ndarray, bool]:
+    """Value or policy iteration by the compiled kernels, one draw at a time.
+
+    Each draw stops when its own stopping rule holds (its arrays stay in cache for all
+    its sweeps), so its error bound holds as in the batched method; ``iterations`` is the
+    largest number of sweeps any draw needed.
+    """
+    D, A, S = problem.shape
+    P = problem.P.reshape(D, A, S, S)
+    v, residual = np.empty((D, S)), np.empty(D)
+    sweeps, done = np.empty(D, dtype=np.intp), np.empty(D, dtype=bool)
+    loops = kernels.kernels()
+    if method == "value_iteration":
+        loops.value_iteration(
+            P, problem.R, problem.gamma, tolerance, relative, max_iterations, v, residual,
+            sweeps, done,
+        )  # fmt: skip
+    else:
+        loops.policy_iteration(
+            P, problem.R, problem.gamma, max_iterations, v, residual, sweeps, done
+        )
+    return v, int(sweeps.max(initial=0)), residual, bool(done.all())
+
+
 def solve_stationary(
     compiled: CompiledModel,
     objective: Objective,
@@ -270,7 +297,21 @@ def solve_stationary(
     """
     problem = StationaryProblem(compiled, objective)
     history: list[SweepRecord] | None = [] if record_history else None
-    if method == "value_iteration":
+    per_draw = (
+        method in ("value_iteration", "policy_iteration")
+        and not record_history
+        and kernels.available()
+    )
+    if per_draw:
+        v, iterations, residual, converged = _per_draw(
+            problem, method, tolerance, relative, max_iterations
+        )
+        bound = (
+            problem.bound(residual)
+            if method == "value_iteration"
+            else (residual / (1.0 - problem.gamma))
+        )
+    elif method == "value_iteration":
         v, iterations, residual, converged = value_iteration(
             problem,
             tolerance=tolerance,
