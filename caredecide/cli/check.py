@@ -48,11 +48,16 @@ def print_summary(model) -> None:
     start = ", ".join(f"{k} {v:g}" for k, v in model.start_distribution().items())
     stdout.print(f"start: {start}")
 
+    from caredecide.expand import expand
+
+    expansion = expand(model)
+    flat = expansion.model
     states = Table(title="States")
     for column in ("id", "label", "QALY weight / year", "cost / cycle", "kind", "allowed actions"):
         states.add_column(column)
     for state in model.states:
-        allowed = [a.id for a in model.actions if state.id in model.allowed_states(a)]
+        copies = {c.id for c in expansion.copies if c.base == state.id}
+        allowed = [a.id for a in flat.actions if copies & set(flat.allowed_states(a))]
         kind = "absorbing" if state.absorbing else "transient"
         if not state.alive:
             kind += ", dead"
@@ -65,6 +70,18 @@ def print_summary(model) -> None:
             ", ".join(allowed) if allowed else "(no decision)",
         )
     stdout.print(states)
+    if expansion.groups:  # attributes and tunnels: the states the model is computed on
+        generated = Table(
+            title=f"Generated states ({len(flat.states)}, from attributes and tunnels)"
+        )
+        for column in ("id", "label", "allowed actions"):
+            generated.add_column(column)
+        for state in flat.states:
+            allowed = [a.id for a in flat.actions if state.id in flat.allowed_states(a)]
+            generated.add_row(
+                state.id, plain(state.label), ", ".join(allowed) if allowed else "(no decision)"
+            )
+        stdout.print(generated)
 
     actions = Table(title="Actions")
     columns = ("id", "label", "allowed in", "one-off cost", "one-off QALY loss", "cost / cycle")

@@ -1,4 +1,5 @@
-"""``caredecide solve --out`` on a model with attributes and a tunnel: group columns."""
+"""CLI on a model with attributes and a tunnel: `check` lists the generated states, `solve --out`
+writes where each comes from."""
 
 from __future__ import annotations
 
@@ -34,3 +35,13 @@ def test_trace_and_policy_csv_say_where_each_generated_state_comes_from(tmp_path
     assert at_3["sick__treated__years_on_drug_2plus"] == 0.5
     policy = pd.read_csv(tmp_path / "out" / "policy.csv", keep_default_na=False)
     assert {"declared_state", "on_treatment", "years_on_drug"} <= set(policy.columns)
+
+
+def test_check_lists_the_generated_states_with_their_actions(tmp_path):
+    path = tmp_path / "tunnel.toml"
+    path.write_text(_tunnel_model(start="sick__untreated", enter="0.5", die="0"), "utf-8")
+    run = runner.invoke(app, ["check", str(path)], env={"COLUMNS": "200"})
+    assert run.exit_code == 0, run.output
+    assert "Generated states (5, from attributes and tunnels)" in run.stdout
+    assert "Sick, treated, years on drug 2+" in run.stdout
+    assert "sick__treated__years_on_drug_0" in run.stdout
