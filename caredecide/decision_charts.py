@@ -260,8 +260,16 @@ def make_threshold_age_chart(
             .mark_point(shape="diamond", size=140, filled=True, color="#111111")
             .encode(x="x_value:Q", y="threshold_age:Q", tooltip=["note:N", "threshold_age:Q"])
         )
+        layers = [line, marker]
+        if rows["threshold_age"].isna().all():
+            note = pd.DataFrame({"note": ["one action at every age: no threshold age"]})
+            layers.append(
+                alt.Chart(note)
+                .mark_text(fontSize=12, color="#111111")
+                .encode(text="note:N", x=alt.value(PANEL_WIDTH / 2), y=alt.value(PANEL_HEIGHT / 2))
+            )
         panels.append(
-            alt.layer(line, marker).properties(
+            alt.layer(*layers).properties(
                 title=f"{state}: age from which the last action holds",
                 width=PANEL_WIDTH,
                 height=PANEL_HEIGHT,

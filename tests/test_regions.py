@@ -91,7 +91,7 @@ def test_threshold_age_chart_marks_the_base_point(demo):
         result.frame, result.base, x_title="hr_treatment", y_title="c_drug_year"
     ).to_dict()
     assert len(spec["vconcat"]) == 3
-    line, marker = spec["vconcat"][1]["layer"]
+    line, marker = spec["vconcat"][1]["layer"][:2]
     assert marker["mark"]["shape"] == "diamond"
     assert line["encoding"]["color"]["scale"]["range"] == list(LOW_HIGH_PALETTE)
 
@@ -111,3 +111,12 @@ def test_chart_builders_name_missing_columns():
     with pytest.raises(ValueError, match="policy-region map: frame lacks column"):
         decision_charts.make_region_map_chart(pd.DataFrame({"x": [1]}), x_title="x",
                                               action_labels=["a"])  # fmt: skip
+
+
+def test_estimates_are_offered_most_decisive_first(demo):
+    from caredecide.sensitivity.regions import estimates_by_decision_loss
+
+    ranked = estimates_by_decision_loss(demo)
+    table = decision_tornado(demo, ranked, grid=5).table
+    assert ranked == list(table["parameter"])
+    assert table["changes_policy"].iloc[0]

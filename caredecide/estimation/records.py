@@ -415,6 +415,7 @@ def _follow_up_intervals(
     problems = []
     for column, values in (("death_years", death_at), ("censor_years", censor_at)):
         early = np.flatnonzero(np.isfinite(values) & (values < last_time))
+
         def describe(i: int, c: str = column, v: np.ndarray = values) -> tuple[str, str]:
             return (
                 f"patient {patient_ids[i]}, column {c}",

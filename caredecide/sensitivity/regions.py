@@ -229,3 +229,19 @@ def threshold_age_map(
         x_parameter=x_parameter,
         y_parameter=y_parameter,
     )
+
+
+def estimates_by_decision_loss(model: Any, objective: Objective | None = None) -> list[str]:
+    """Estimates with a range, most decisive first (the decision tornado's ranking).
+
+    A map of an estimate that changes no decision is one colour; front ends offer the
+    estimates in this order so that the first map shown is the most informative.
+    """
+    from caredecide.sensitivity.decision import decision_tornado
+
+    ranges = parameter_ranges(model)
+    varying = list(ranges.loc[ranges["varies"], "parameter"])
+    if not varying:
+        return []
+    table = decision_tornado(model, varying, objective=objective, grid=5).table
+    return list(table["parameter"])

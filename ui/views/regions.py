@@ -8,8 +8,17 @@ import streamlit as st
 from caredecide import decision_charts
 from caredecide.errors import CaredecideError
 from caredecide.modelfile import loads_model
-from caredecide.sensitivity.regions import policy_region_map, threshold_age_map
+from caredecide.sensitivity.regions import (
+    estimates_by_decision_loss,
+    policy_region_map,
+    threshold_age_map,
+)
 from ui import working_model
+
+
+@st.cache_data(max_entries=16, show_spinner=False)
+def ranked_estimates(text: str, file: str, base_dir: str) -> list[str]:
+    return estimates_by_decision_loss(loads_model(text, file=file, base_dir=base_dir))
 
 
 @st.cache_data(max_entries=16, show_spinner=False)
@@ -32,10 +41,13 @@ names = [
     n for n in model.parameter_names() if model.parameter_range(n)[1] > model.parameter_range(n)[0]
 ]
 st.title("Policy regions")
+with st.spinner("Ranking the estimates by how much they change the decision..."):
+    names = ranked_estimates(*key)
 st.caption(
     "Best action by age in each state as one estimate moves over its plausible range "
     "(dashed line: the base value), and the threshold age as two estimates move together "
-    "(diamond: the base point). Every other estimate stays at its base value."
+    "(diamond: the base point). Every other estimate stays at its base value. Estimates "
+    "are offered most decisive first (the decision tornado's ranking)."
 )
 if not names:
     st.info("The model has no estimate with a range to map.")
