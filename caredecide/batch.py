@@ -1,22 +1,33 @@
-"""The batch driver every analysis uses: compile a chunk of parameter sets, solve, repeat.
+"""Batches of given parameter sets through the one chunk driver (:mod:`caredecide.chunks`).
 
-``solve_batch`` splits ``D`` parameter sets into chunks sized from a memory budget, runs
-``compile_model -> solve -> evaluate_policy`` on each (the one core path) and either
-concatenates the kept fields or hands each chunk to a reducing callback, so peak memory
-stays bounded however many draws there are.
+``solve_batch`` splits ``D`` parameter sets into chunks sized from the memory budget, runs
+``compile_model -> solve -> evaluate_policy`` on each (the one core path, as a
+:class:`BatchJob`) with a serial or Dask map, and either concatenates the kept fields or
+hands each chunk to a reducing callback, so peak memory stays bounded however many draws
+there are.
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import pandas as pd
 
-from caredecide.compile import compile_model, estimate_compiled_bytes
-from caredecide.evaluate import DISPLAY_CAP, PolicyOutcome, evaluate_policy
-from caredecide.limits import default_memory_limit
+from caredecide.chunks import (  # noqa: F401  (the one memory rule, re-exported)
+    COMPILE_MEMORY_FACTOR,
+    RESULT_ARRAYS_PER_CELL,
+    ChunkMap,
+    chunk_ranges,
+    chunk_size_for,
+    draw_bytes,
+    draw_working_bytes,
+    run_chunks,
+)
+from caredecide.compile import compile_model
+from caredecide.evaluate import PolicyOutcome, evaluate_policy
 from caredecide.objective import Objective
 from caredecide.options import check_scalar
 from caredecide.solvers import PolicyResult, SolverError, solve
@@ -35,46 +46,78 @@ OUTCOME_FIELDS = ("totals", "trace")
 """``"totals"``: a DataFrame of per-draw totals; ``"trace"``: (D, T + 1, S) cohort trace."""
 DEFAULT_KEEP = ("policy", "value", "action_gap", "indifferent", "totals")
 
-COMPILE_MEMORY_FACTOR = 6
-"""Peak working memory of compiling a chunk, in copies of its compiled arrays. Measured
-(peak resident memory of a fresh process, ``python benchmarks/bench_psa.py --memory``):
-5.3 for demo_progressive and 5.9 for lesion_surveillance, whose rate rows go through
-the batched matrix exponential, and 2.0 for demo_counts_table (no rate rows). A factor of 3,
-used before, let a chunk overrun its budget by two thirds."""
-RESULT_ARRAYS_PER_CELL = 14
-"""Float64 values per (cycle, state) that one draw's solver results and policy
-evaluations hold at once (values, Q-values per action, gaps, policy, trace, flows and
-intermediates) beyond the compiled arrays - measured with benchmarks/bench_psa.py."""
-
-
-def draw_working_bytes(model) -> int:
-    """Bytes of working memory one draw needs in a chunk beyond compiling it.
-
-    The solver's per-cycle results and the cohort traces of the policy evaluations
-    grow with the horizon even when the compiled arrays do not (a model without age
-    dependence). An infinite horizon has no cycles to count, but its evaluation keeps
-    a display trace of up to ``DISPLAY_CAP + 1`` cycles (:mod:`caredecide.evaluate`),
-    so that length is counted.
-    """
-    from caredecide.expand import expand_model
-
-    cycles = model.n_cycles()
-    n_t = (DISPLAY_CAP if cycles is None else cycles) + 1
-    cells = n_t * len(expand_model(model).states) * (len(model.actions) + RESULT_ARRAYS_PER_CELL)
-    return 8 * cells
-
-
-def draw_bytes(model) -> int:
-    """Working memory of one draw in a chunk (bytes): compile peak plus results.
-
-    ``COMPILE_MEMORY_FACTOR`` copies of the compiled arrays (the compile peak, which the
-    solver's buffers stay below) plus :func:`draw_working_bytes`; the sum errs on the
-    safe side, as the compile intermediates are freed before the solver runs.
-    """
-    return COMPILE_MEMORY_FACTOR * estimate_compiled_bytes(model, 1) + draw_working_bytes(model)
-
-
 ChunkReducer = Callable[[int, int, PolicyResult, PolicyOutcome | None], object]
+
+
+@dataclass
+class ChunkOutput:
+    """What :class:`BatchJob` returns for one chunk (small: kept fields and reductions)."""
+
+    fields: dict[str, np.ndarray]
+    totals: pd.DataFrame | None
+    reduction: object
+    iterations: int
+    message: str
+    error_bound: float
+    success: bool
+    method: str
+    state_ids: tuple[str, ...]
+    action_ids: tuple[str, ...]
+    ages: np.ndarray | None
+
+
+@dataclass(frozen=True)
+class BatchJob:
+    """Compile, solve (and evaluate) the parameter sets ``start:stop`` of a batch.
+
+    A chunk job of :mod:`caredecide.chunks`: a pure function of its range, picklable when
+    ``reduce`` is.
+    """
+
+    model: Any
+    parameter_sets: Any
+    objective: Objective
+    keep: tuple[str, ...]
+    reduce: ChunkReducer | None
+    memory_limit_bytes: int | None
+    solve_options: tuple[tuple[str, Any], ...]
+
+    def __call__(self, start: int, stop: int) -> ChunkOutput:
+        compiled = compile_model(
+            self.model,
+            slice_parameter_sets(self.parameter_sets, start, stop),
+            memory_limit_bytes=self.memory_limit_bytes,
+        )
+        result = solve(compiled, self.objective, **dict(self.solve_options))
+        outcome = None
+        if any(k in OUTCOME_FIELDS for k in self.keep):
+            outcome = evaluate_policy(compiled, result.policy, self.objective)
+        del compiled
+        fields = {}
+        for name in self.keep:
+            if name == "trace":
+                assert outcome is not None
+                fields[name] = outcome.trace
+            elif name != "totals":
+                fields[name] = getattr(result, name)
+        totals = None
+        if outcome is not None and "totals" in self.keep:
+            totals = outcome.totals_frame()
+            totals["draw"] += start
+        reduction = self.reduce(start, stop, result, outcome) if self.reduce else None
+        return ChunkOutput(
+            fields=fields,
+            totals=totals,
+            reduction=reduction,
+            iterations=int(result.iterations),
+            message=str(result.message),
+            error_bound=float(np.max(result.error_bound)),
+            success=bool(result.success),
+            method=result.method,
+            state_ids=result.state_ids,
+            action_ids=result.action_ids,
+            ages=result.ages,
+        )
 
 
 @dataclass
@@ -141,23 +184,13 @@ def count_parameter_sets(parameter_sets: object) -> int:
     )
 
 
-def slice_parameter_sets(parameter_sets: object, start: int, stop: int) -> object:
+def slice_parameter_sets(parameter_sets: Any, start: int, stop: int) -> Any:
     """Parameter sets ``start:stop`` in the same form (None stays None)."""
     if parameter_sets is None:
         return None
     if isinstance(parameter_sets, pd.DataFrame):
         return parameter_sets.iloc[start:stop]
     return {k: np.atleast_1d(np.asarray(v))[start:stop] for k, v in parameter_sets.items()}
-
-
-def chunk_size_for(model, n_draws: int, memory_limit_bytes: int | None) -> int:
-    """Draws per chunk so that a chunk's working memory fits ``memory_limit_bytes``.
-
-    Working memory per draw is :func:`draw_bytes` (compile peak plus solver results).
-    """
-    budget = default_memory_limit() if memory_limit_bytes is None else int(memory_limit_bytes)
-    per_draw = draw_bytes(model)
-    return int(max(1, min(n_draws, budget // max(per_draw, 1))))
 
 
 def solve_batch(
@@ -170,6 +203,7 @@ def solve_batch(
     progress: Callable[[int, int], None] | None = None,
     keep: Sequence[str] = DEFAULT_KEEP,
     reduce: ChunkReducer | None = None,
+    map_chunks: ChunkMap | None = None,
     **solve_options,
 ) -> BatchResult:
     """Solve ``model`` for many parameter sets, chunk by chunk.
@@ -185,7 +219,8 @@ def solve_batch(
     chunk_size : int, optional
         Draws per chunk; default from ``memory_limit_bytes``.
     memory_limit_bytes : int, optional
-        Budget for one chunk's working memory (default: half the available memory).
+        Budget for one chunk's working memory (default:
+        :func:`caredecide.chunks.memory_budget`).
     progress : callable(done, total), optional
         Called after each chunk with draws done and the total.
     keep : sequence of str
@@ -193,6 +228,10 @@ def solve_batch(
     reduce : callable(start, stop, result, outcome), optional
         Called per chunk (``outcome`` None unless "totals" or "trace" is kept); its
         return values are collected in ``reductions``. Use with ``keep=()`` for huge runs.
+        It must be picklable (a module-level function) to run on a Dask cluster.
+    map_chunks : callable(job, ranges), optional
+        :func:`caredecide.chunks.serial_map` (default) or
+        :func:`caredecide.chunks.dask_map`; results are identical either way.
     **solve_options
         Passed to :func:`caredecide.solvers.solve` (method, tolerance, ...).
 
@@ -213,35 +252,34 @@ def solve_batch(
         chunk_size = chunk_size_for(model, n_draws, memory_limit_bytes)
     else:
         chunk_size = check_scalar(chunk_size, "chunk_size", int, min_val=1)
-    needs_outcome = any(k in OUTCOME_FIELDS for k in keep)
 
+    job = BatchJob(
+        model=model,
+        parameter_sets=parameter_sets,
+        objective=objective,
+        keep=tuple(keep),
+        reduce=reduce,
+        memory_limit_bytes=memory_limit_bytes,
+        solve_options=tuple(sorted(solve_options.items())),
+    )
     pieces: dict[str, list[np.ndarray]] = {k: [] for k in keep if k != "totals"}
     totals, reductions, iterations, messages, bounds = [], [], [], [], []
-    success, result = True, None
-    for start in range(0, n_draws, chunk_size):
-        stop = min(start + chunk_size, n_draws)
-        compiled = compile_model(
-            model,
-            slice_parameter_sets(parameter_sets, start, stop),
-            memory_limit_bytes=memory_limit_bytes,
-        )
-        result = solve(compiled, objective, **solve_options)
-        outcome = evaluate_policy(compiled, result.policy, objective) if needs_outcome else None
-        del compiled
+    success = True
+    chunk: ChunkOutput | None = None
+    for chunk in run_chunks(
+        job, chunk_ranges(n_draws, chunk_size), map_chunks=map_chunks, progress=progress
+    ):
         for name in pieces:
-            pieces[name].append(outcome.trace if name == "trace" else getattr(result, name))
-        if "totals" in keep:
-            frame = outcome.totals_frame()
-            frame["draw"] += start
-            totals.append(frame)
+            pieces[name].append(chunk.fields[name])
+        if chunk.totals is not None:
+            totals.append(chunk.totals)
         if reduce is not None:
-            reductions.append(reduce(start, stop, result, outcome))
-        iterations.append(result.iterations)
-        messages.append(result.message)
-        bounds.append(float(result.error_bound.max()))
-        success = success and result.success
-        if progress is not None:
-            progress(stop, n_draws)
+            reductions.append(chunk.reduction)
+        iterations.append(chunk.iterations)
+        messages.append(chunk.message)
+        bounds.append(chunk.error_bound)
+        success = success and chunk.success
+    assert chunk is not None  # at least one parameter set, so at least one chunk
     return BatchResult(
         fields={name: np.concatenate(arrays) for name, arrays in pieces.items()},
         totals=pd.concat(totals, ignore_index=True) if totals else None,
@@ -251,10 +289,10 @@ def solve_batch(
         iterations=iterations,
         success=success,
         messages=messages,
-        method=result.method,
+        method=chunk.method,
         objective=objective,
-        state_ids=result.state_ids,
-        action_ids=result.action_ids,
-        ages=result.ages,
+        state_ids=chunk.state_ids,
+        action_ids=chunk.action_ids,
+        ages=chunk.ages,
         error_bound=max(bounds),
     )

@@ -392,7 +392,7 @@ def default_objective(model: Any) -> Objective:
 def solve_parameter_sets(
     model: Any, frame: pd.DataFrame, objective: Objective
 ) -> tuple[CompiledModel, Any]:
-    """Compile a batch of parameter sets and solve it in one call of the common core.
+    """Compile and solve a batch of parameter sets through the one chunk driver.
 
     Parameters
     ----------
@@ -406,11 +406,10 @@ def solve_parameter_sets(
     (CompiledModel, PolicyResult)
         The compiled batch (D draws) and its solution.
     """
-    from caredecide.compile import compile_model
-    from caredecide.solvers import solve
+    from caredecide.chunks import solve_in_chunks
 
-    compiled = compile_model(model, frame)
-    return compiled, solve(compiled, objective)
+    # The one chunk driver: chunks within the memory budget, joined in row order.
+    return solve_in_chunks(model, frame, objective)
 
 
 def start_values(compiled: CompiledModel, result: Any) -> np.ndarray:

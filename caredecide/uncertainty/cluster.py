@@ -29,13 +29,12 @@ workers need no access to the model file. See docs/methods-uncertainty.md.
 
 from __future__ import annotations
 
-from collections import deque
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Iterator
 from contextlib import contextmanager
 
+from caredecide.chunks import dask_map
 from caredecide.errors import CaredecideError
 from caredecide.options import check_scalar
-from caredecide.uncertainty.psa import ChunkMap, ChunkResult, PSAContext, solve_chunk
 
 __all__ = ["ClusterError", "dask_client", "dask_map"]
 
@@ -132,40 +131,3 @@ def _check_timeout(timeout: str) -> None:
         raise ClusterError(
             f"connect timeout {timeout!r}; expected a positive duration such as '20s' or '2m'"
         )
-
-
-def dask_map(client, *, max_in_flight: int | None = None) -> ChunkMap:
-    """A chunk runner for :func:`caredecide.uncertainty.psa.analyse_uncertainty` on ``client``.
-
-    Parameters
-    ----------
-    client : distributed.Client
-    max_in_flight : int, optional
-        Chunks submitted but not yet collected (default: twice the worker threads).
-
-    Returns
-    -------
-    callable(context, ranges) -> iterator of ChunkResult, in draw order
-    """
-
-    def run(context: PSAContext, ranges: Sequence[tuple[int, int]]) -> Iterable[ChunkResult]:
-        threads = sum(client.nthreads().values()) or 1
-        window = max_in_flight or 2 * threads
-        shared = client.scatter(context, broadcast=True)
-        pending: deque = deque()
-        todo = iter(ranges)
-        for start, stop in todo:
-            # Distinct keys per chunk: pure=False, so equal arguments never merge.
-            pending.append(client.submit(solve_chunk, shared, start, stop, pure=False))
-            if len(pending) >= window:
-                break
-        while pending:
-            future = pending.popleft()
-            result = future.result()
-            future.release()
-            for start, stop in todo:
-                pending.append(client.submit(solve_chunk, shared, start, stop, pure=False))
-                break
-            yield result
-
-    return run

@@ -55,8 +55,9 @@ a Dask cluster (:mod:`caredecide.uncertainty.cluster`).
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Iterable, Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -67,13 +68,23 @@ from caredecide.batch import (  # noqa: F401  (the one memory estimate, re-expor
     draw_bytes,
     draw_working_bytes,
 )
+from caredecide.chunks import (
+    ChunkMap,
+    chunk_ranges,
+    chunk_size_for,
+    memory_budget,
+    run_chunks,
+    serial_map,
+)
 from caredecide.compile import compile_model
+from caredecide.compiled import CompiledModel
 from caredecide.errors import ModelError, ModelTooLargeError, Problem
 from caredecide.evaluate import evaluate_policy
 from caredecide.limits import CHUNK_MEMORY_BYTES, default_memory_limit
+from caredecide.model import Model
 from caredecide.objective import Objective
 from caredecide.options import check_scalar
-from caredecide.solvers import solve
+from caredecide.solvers import PolicyResult, solve
 from caredecide.uncertainty.acceptability import (
     acceptability_curve,
     acceptability_frontier,
@@ -154,14 +165,14 @@ class PSAContext:
         Passed to :func:`caredecide.solvers.solve`.
     """
 
-    model: object
+    model: Model
     objective: Objective
     sampler: ParameterSampler
     seed: int
     candidate_policies: np.ndarray
     keep_policies: bool = False
     memory_limit_bytes: int = DEFAULT_MEMORY_LIMIT
-    solve_options: tuple[tuple[str, object], ...] = ()
+    solve_options: tuple[tuple[str, Any], ...] = ()
 
 
 @dataclass
@@ -211,10 +222,13 @@ def solve_chunk(context: PSAContext, start: int, stop: int) -> ChunkResult:
 
     Pure function of its arguments: the same range gives the same result anywhere.
     """
-    return _evaluate_chunk(context, *_solve_draws(context, start, stop), start, stop)
+    values, compiled, result = _solve_draws(context, start, stop)
+    return _evaluate_chunk(context, values, compiled, result, start, stop)
 
 
-def _solve_draws(context: PSAContext, start: int, stop: int):
+def _solve_draws(
+    context: PSAContext, start: int, stop: int
+) -> tuple[np.ndarray, CompiledModel, PolicyResult]:
     """(values (n, P), compiled, PolicyResult) of draws ``start:stop``."""
     sampler = context.sampler
     values = sampler.draw(context.seed, start, stop)
@@ -277,25 +291,19 @@ def distinct_rows(rows: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]
     return unique.view(np.int8).reshape(len(unique), rows.shape[1]), inverse, counts
 
 
-def serial_map(context: PSAContext, ranges: Sequence[tuple[int, int]]) -> Iterable[ChunkResult]:
-    """Run chunks one after another in this process, yielding results in order."""
-    for start, stop in ranges:
-        yield solve_chunk(context, start, stop)
+@dataclass(frozen=True)
+class PSAJob:
+    """The chunk job of a probabilistic run (:mod:`caredecide.chunks`): :func:`solve_chunk`."""
 
+    context: PSAContext
 
-ChunkMap = Callable[[PSAContext, Sequence[tuple[int, int]]], Iterable[ChunkResult]]
-
-
-def chunk_ranges(n_draws: int, chunk_size: int) -> list[tuple[int, int]]:
-    """``[(start, stop), ...]`` covering ``0:n_draws`` in chunks of ``chunk_size``."""
-    return [(s, min(s + chunk_size, n_draws)) for s in range(0, n_draws, chunk_size)]
+    def __call__(self, start: int, stop: int) -> ChunkResult:
+        return solve_chunk(self.context, start, stop)
 
 
 def default_chunk_size(model, n_draws: int, memory_limit_bytes: int | None) -> int:
     """Draws per chunk from the memory budget, a multiple of BLOCK_SIZE when possible."""
-    budget = _memory_limit(memory_limit_bytes)
-    size = int(max(1, min(n_draws, budget // draw_bytes(model))))
-    return max(size // BLOCK_SIZE, 1) * BLOCK_SIZE if size >= BLOCK_SIZE else size
+    return chunk_size_for(model, n_draws, memory_limit_bytes, block=BLOCK_SIZE)
 
 
 def kept_bytes(n_draws: int, n_parameters: int, n_candidates: int, policy_cells: int = 0) -> int:
@@ -305,12 +313,6 @@ def kept_bytes(n_draws: int, n_parameters: int, n_candidates: int, policy_cells:
     candidate (float64), and ``policy_cells`` int8 values when policies are kept.
     """
     return 2 * n_draws * (8 * (n_parameters + 3 + 3 * n_candidates) + policy_cells)
-
-
-def _memory_limit(memory_limit_bytes: int | None) -> int:
-    if memory_limit_bytes is None:
-        return min(DEFAULT_MEMORY_LIMIT, default_memory_limit())
-    return check_scalar(memory_limit_bytes, "memory_limit_bytes", int, min_val=1)
 
 
 # --------------------------------------------------------------------------- the result
@@ -583,7 +585,9 @@ class PSAResult:
             return pd.DataFrame(columns=columns)
         total = float(evpi(values))
         grouped = {m for members in self.group_members.values() for m in members}
-        targets = [(n, (n,)) for n in self.parameter_names if n not in grouped]
+        targets: list[tuple[str, tuple[str, ...]]] = [
+            (n, (n,)) for n in self.parameter_names if n not in grouped
+        ]
         targets += [(g, members[:-1]) for g, members in self.group_members.items()]
         rows = []
         for name, members in targets:  # a loop over parameters, each fit vectorized
@@ -866,7 +870,8 @@ def analyse_uncertainty(
         Draws per chunk (default from ``memory_limit_bytes``, a multiple of
         ``BLOCK_SIZE``). Results do not depend on it.
     memory_limit_bytes : int, optional
-        Working-memory budget of one chunk (default :data:`DEFAULT_MEMORY_LIMIT`).
+        Working-memory budget of one chunk (default
+        :func:`caredecide.chunks.memory_budget`).
     rank_correlation : mapping, optional
         Rank correlations between parameters (Iman-Conover; see sampling).
     strategies : sequence of caredecide.strategies.Strategy, optional
@@ -876,9 +881,10 @@ def analyse_uncertainty(
         Most frequent per-draw optimal policies in the pilot added as candidates.
     keep_policies : bool
         Keep every draw's optimal policy ((D, Tpi, S) int8).
-    map_chunks : callable(context, ranges) -> iterable of ChunkResult, optional
-        How chunks run: :func:`serial_map` (default) or
-        :func:`caredecide.uncertainty.cluster.dask_map`. Must yield results in order.
+    map_chunks : callable(job, ranges) -> iterable of ChunkResult, optional
+        How chunks run (the one chunk driver, :mod:`caredecide.chunks`):
+        :func:`~caredecide.chunks.serial_map` (default) or
+        :func:`~caredecide.chunks.dask_map`. Must yield results in order.
     progress : callable(done, total), optional
         Called after each chunk with draws done and ``n_draws``.
     **solve_options
@@ -896,7 +902,7 @@ def analyse_uncertainty(
         objective = Objective.from_settings(model.settings)
     wtp_grid = _wtp_grid(objective, wtp_range, wtp_points)
     check_scalar(n_frequent, "n_frequent", int, min_val=0)
-    limit = _memory_limit(memory_limit_bytes)
+    limit = memory_budget(memory_limit_bytes)
     if chunk_size is None:
         chunk_size = default_chunk_size(model, n_draws, limit)
     else:
@@ -986,12 +992,10 @@ def analyse_uncertainty(
         done = pilot_stop
         if progress is not None:
             progress(pilot_stop, n_draws)
-    runner = serial_map if map_chunks is None else map_chunks
     ranges = [(a + done, b + done) for a, b in chunk_ranges(n_draws - done, chunk_size)]
-    for chunk in runner(context, ranges):
-        chunks.append(chunk)
-        if progress is not None:
-            progress(chunk.stop, n_draws)
+    chunks += run_chunks(
+        PSAJob(context), ranges, map_chunks=map_chunks, progress=progress, total=n_draws
+    )
     return _combine(chunks, context, candidates, base, wtp_grid, chunk_size)
 
 

@@ -1,0 +1,296 @@
+"""The one chunk driver: split a batch into chunks that fit one memory budget, map them.
+
+Every batch of parameter sets (one-way, thresholds, two-way, scenarios, probabilistic
+draws) is cut into ``[(start, stop), ...]`` ranges by :func:`chunk_ranges`, with a size
+from :func:`chunk_size_for` (one memory rule: :func:`memory_budget` and
+:func:`draw_bytes`), and each range is handed to a *chunk job* — a picklable callable
+``job(start, stop) -> result`` that compiles, solves and reduces its draws through the
+one core path. A *chunk map* runs the job over the ranges and yields results in range
+order: :func:`serial_map` in this process, or :func:`dask_map` on a Dask cluster. A job is
+a pure function of its range, so results do not depend on the chunk size or the map.
+"""
+
+from __future__ import annotations
+
+from collections import deque
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from dataclasses import dataclass, replace
+from typing import Any, Protocol
+
+import numpy as np
+import pandas as pd
+
+from caredecide.compile import compile_model, estimate_compiled_bytes
+from caredecide.compiled import CompiledModel
+from caredecide.evaluate import DISPLAY_CAP
+from caredecide.limits import CHUNK_MEMORY_BYTES, default_memory_limit
+from caredecide.objective import Objective
+from caredecide.options import check_scalar
+from caredecide.solvers import PolicyResult, solve
+
+__all__ = [
+    "ChunkJob",
+    "ChunkMap",
+    "chunk_ranges",
+    "chunk_size_for",
+    "dask_map",
+    "draw_bytes",
+    "memory_budget",
+    "run_chunks",
+    "serial_map",
+    "solve_in_chunks",
+]
+
+
+class ChunkJob(Protocol):
+    """Work on the draws ``start:stop`` of a batch; a pure function of the range."""
+
+    def __call__(self, start: int, stop: int) -> Any: ...
+
+
+ChunkMap = Callable[[ChunkJob, Sequence[tuple[int, int]]], Iterable[Any]]
+"""Runs a job over ranges and yields the results in range order."""
+
+
+COMPILE_MEMORY_FACTOR = 6
+"""Peak working memory of compiling a chunk, in copies of its compiled arrays. Measured
+(peak resident memory of a fresh process, ``python benchmarks/bench_psa.py --memory``):
+5.3 for demo_progressive and 5.9 for lesion_surveillance, whose rate rows go through
+the batched matrix exponential, and 2.0 for demo_counts_table (no rate rows). A factor of 3,
+used before, let a chunk overrun its budget by two thirds."""
+RESULT_ARRAYS_PER_CELL = 14
+"""Float64 values per (cycle, state) that one draw's solver results and policy
+evaluations hold at once (values, Q-values per action, gaps, policy, trace, flows and
+intermediates) beyond the compiled arrays - measured with benchmarks/bench_psa.py."""
+
+
+def draw_working_bytes(model) -> int:
+    """Bytes of working memory one draw needs in a chunk beyond compiling it.
+
+    The solver's per-cycle results and the cohort traces of the policy evaluations
+    grow with the horizon even when the compiled arrays do not (a model without age
+    dependence). An infinite horizon has no cycles to count, but its evaluation keeps
+    a display trace of up to ``DISPLAY_CAP + 1`` cycles (:mod:`caredecide.evaluate`),
+    so that length is counted.
+    """
+    from caredecide.expand import expand_model
+
+    cycles = model.n_cycles()
+    n_t = (DISPLAY_CAP if cycles is None else cycles) + 1
+    cells = n_t * len(expand_model(model).states) * (len(model.actions) + RESULT_ARRAYS_PER_CELL)
+    return 8 * cells
+
+
+def draw_bytes(model) -> int:
+    """Working memory of one draw in a chunk (bytes): compile peak plus results.
+
+    ``COMPILE_MEMORY_FACTOR`` copies of the compiled arrays (the compile peak, which the
+    solver's buffers stay below) plus :func:`draw_working_bytes`; the sum errs on the
+    safe side, as the compile intermediates are freed before the solver runs.
+    """
+    return COMPILE_MEMORY_FACTOR * estimate_compiled_bytes(model, 1) + draw_working_bytes(model)
+
+
+def memory_budget(memory_limit_bytes: int | None = None) -> int:
+    """Working-memory budget of one chunk, in bytes: the one rule every batch uses.
+
+    ``None``: :data:`caredecide.limits.CHUNK_MEMORY_BYTES` (1 GiB) or half the currently
+    available memory if that is less. A given budget must be a whole number >= 1.
+
+    Raises
+    ------
+    RunOptionError
+        A budget that is not a whole number >= 1.
+    """
+    if memory_limit_bytes is None:
+        return min(CHUNK_MEMORY_BYTES, default_memory_limit())
+    return check_scalar(memory_limit_bytes, "memory_limit_bytes", int, min_val=1)
+
+
+def chunk_size_for(
+    model, n_draws: int, memory_limit_bytes: int | None = None, *, block: int = 1
+) -> int:
+    """Draws per chunk so that a chunk's working memory fits the budget.
+
+    Working memory per draw is :func:`draw_bytes` (compile peak plus solver results).
+    The size is at least 1 and at most ``n_draws``; when it is at least ``block`` it is
+    rounded down to a multiple of ``block`` (the random-number blocks of a probabilistic
+    run).
+    """
+    budget = memory_budget(memory_limit_bytes)
+    size = int(max(1, min(n_draws, budget // max(draw_bytes(model), 1))))
+    return max(size // block, 1) * block if size >= block else size
+
+
+def chunk_ranges(n_draws: int, chunk_size: int) -> list[tuple[int, int]]:
+    """``[(start, stop), ...]`` covering ``0:n_draws`` in chunks of ``chunk_size``."""
+    chunk_size = check_scalar(chunk_size, "chunk_size", int, min_val=1)
+    return [(s, min(s + chunk_size, n_draws)) for s in range(0, n_draws, chunk_size)]
+
+
+def serial_map(job: ChunkJob, ranges: Sequence[tuple[int, int]]) -> Iterator[Any]:
+    """Run ``job`` over ``ranges`` one after another in this process, in order."""
+    for start, stop in ranges:
+        yield job(start, stop)
+
+
+def _call(job: ChunkJob, start: int, stop: int) -> Any:
+    return job(start, stop)
+
+
+def dask_map(client, *, max_in_flight: int | None = None) -> ChunkMap:
+    """A chunk map that runs jobs on a Dask ``distributed.Client``, results in order.
+
+    The job is scattered to every worker once; at most ``max_in_flight`` chunks (default:
+    twice the worker threads) are submitted but not yet collected, so memory stays
+    bounded however many chunks there are. Dask itself is not imported here: only the
+    client's methods are used.
+    """
+
+    def run(job: ChunkJob, ranges: Sequence[tuple[int, int]]) -> Iterator[Any]:
+        threads = sum(client.nthreads().values()) or 1
+        window = max_in_flight or 2 * threads
+        shared = client.scatter(job, broadcast=True)
+        pending: deque = deque()
+        todo = iter(ranges)
+        for start, stop in todo:
+            # Distinct keys per chunk: pure=False, so equal arguments never merge.
+            pending.append(client.submit(_call, shared, start, stop, pure=False))
+            if len(pending) >= window:
+                break
+        while pending:
+            future = pending.popleft()
+            result = future.result()
+            future.release()
+            for start, stop in todo:
+                pending.append(client.submit(_call, shared, start, stop, pure=False))
+                break
+            yield result
+
+    return run
+
+
+def run_chunks(
+    job: ChunkJob,
+    ranges: Sequence[tuple[int, int]],
+    *,
+    map_chunks: ChunkMap | None = None,
+    progress: Callable[[int, int], None] | None = None,
+    total: int | None = None,
+) -> Iterator[Any]:
+    """Run ``job`` over ``ranges`` with ``map_chunks`` (default serial), in range order.
+
+    ``progress(done, total)`` is called after each chunk with the ``stop`` of that chunk
+    (``total`` defaults to the last stop).
+    """
+    runner = serial_map if map_chunks is None else map_chunks
+    end = total if total is not None else (ranges[-1][1] if ranges else 0)
+    for (_, stop), result in zip(ranges, runner(job, ranges), strict=True):
+        if progress is not None:
+            progress(stop, end)
+        yield result
+
+
+# ------------------------------------------------------------ batches of given parameter sets
+_COMPILED_DRAW_FIELDS = (
+    "transition",
+    "state_qaly",
+    "state_cost",
+    "decision_qaly",
+    "decision_cost",
+)
+_RESULT_DRAW_FIELDS = (
+    "policy",
+    "value",
+    "q_values",
+    "action_gap",
+    "next_best_action",
+    "indifferent",
+    "error_bound",
+)
+
+
+def join_compiled(pieces: Sequence[CompiledModel]) -> CompiledModel:
+    """One compiled model holding the draws of ``pieces`` in order (same model, same shapes)."""
+    if len(pieces) == 1:
+        return pieces[0]
+    joined: dict[str, Any] = {
+        f: np.concatenate([getattr(p, f) for p in pieces]) for f in _COMPILED_DRAW_FIELDS
+    }
+    return replace(pieces[0], **joined)
+
+
+def join_results(pieces: Sequence[PolicyResult]) -> PolicyResult:
+    """One solver result holding the draws of ``pieces`` in order.
+
+    Per-draw arrays are concatenated; ``iterations`` is the largest of the chunks,
+    ``success`` holds only if every chunk succeeded, and the message is the first failing
+    chunk's (else the first chunk's). Sweep histories are not joined.
+    """
+    if len(pieces) == 1:
+        return pieces[0]
+    failing = [p for p in pieces if not p.success]
+    joined: dict[str, Any] = {
+        f: np.concatenate([getattr(p, f) for p in pieces]) for f in _RESULT_DRAW_FIELDS
+    }
+    return replace(
+        pieces[0],
+        **joined,
+        iterations=max(p.iterations for p in pieces),
+        success=not failing,
+        message=(failing or pieces)[0].message,
+        history=None,
+    )
+
+
+@dataclass(frozen=True)
+class SolveSetsJob:
+    """Compile and solve the rows ``start:stop`` of a table of parameter sets."""
+
+    model: Any
+    parameter_sets: pd.DataFrame
+    objective: Objective
+    memory_limit_bytes: int | None = None
+
+    def __call__(self, start: int, stop: int) -> tuple[CompiledModel, PolicyResult]:
+        compiled = compile_model(
+            self.model,
+            self.parameter_sets.iloc[start:stop],
+            memory_limit_bytes=self.memory_limit_bytes,
+        )
+        return compiled, solve(compiled, self.objective)
+
+
+def solve_in_chunks(
+    model,
+    parameter_sets: pd.DataFrame,
+    objective: Objective,
+    *,
+    chunk_size: int | None = None,
+    memory_limit_bytes: int | None = None,
+    map_chunks: ChunkMap | None = None,
+) -> tuple[CompiledModel, PolicyResult]:
+    """Compile and solve a table of parameter sets chunk by chunk; join the chunks.
+
+    The compile peak (several copies of a chunk's arrays) stays within the budget; the
+    joined arrays hold every draw. Used by the sensitivity batches (one-way, thresholds,
+    decision tornado), which need every draw's policy and values at once.
+
+    Parameters
+    ----------
+    parameter_sets : pandas.DataFrame
+        (D rows) parameter sets, columns = parameter names.
+    chunk_size : int, optional
+        Rows per chunk; default from the memory budget (:func:`chunk_size_for`).
+
+    Returns
+    -------
+    (CompiledModel, PolicyResult)
+        For the D draws, in row order; identical whatever the chunk size or map.
+    """
+    n = len(parameter_sets)
+    if chunk_size is None:
+        chunk_size = chunk_size_for(model, n, memory_limit_bytes)
+    job = SolveSetsJob(model, parameter_sets, objective, memory_limit_bytes)
+    pieces = list(run_chunks(job, chunk_ranges(n, chunk_size), map_chunks=map_chunks))
+    return join_compiled([c for c, _ in pieces]), join_results([r for _, r in pieces])
