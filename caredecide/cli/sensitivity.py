@@ -276,6 +276,7 @@ def run_sensitivity(
                     )  # fmt: skip
                     results["transition_cells"] = cells.to_frame()
                 else:
+                    assert two_way_pair is not None  # the step is listed only with a pair
                     x, y = two_way_pair
                     results["twoway"] = two_way(
                         loaded, x, y, grid=grid, objective=objective, progress=report(step)

@@ -326,6 +326,7 @@ def cell_sensitivity(
     grid: int = DEFAULT_GRID,
     xtol: float = DEFAULT_XTOL,
     progress: Progress | None = None,
+    memory_limit_bytes: int | None = None,
 ) -> CellSensitivityResult:
     """Switching factor below and above 1 of every movable transition cell.
 
@@ -345,6 +346,9 @@ def cell_sensitivity(
         Absolute tolerance on a switching factor (> 0).
     progress : callable(done, total), optional
         Batches solved out of an estimate of the total.
+    memory_limit_bytes : int, optional
+        Budget for one chunk of moved draws (default: half the available memory); larger
+        batches are solved chunk by chunk, as by the batch driver.
 
     Returns
     -------
@@ -383,9 +387,15 @@ def cell_sensitivity(
     loss_grid = np.where(loss_ok, loss[None, :], 1.0)
     factors = np.concatenate([below_grid, above_grid, loss_grid], axis=1)  # (C, 2G + 2)
     which = np.repeat(np.arange(C), factors.shape[1])
-    batch = scaler.scaled(which, factors.reshape(-1))
-    result = solve(batch, objective)
-    margins = _margins(result, base_policy, mask).reshape(C, -1)
+    loss_draws = (np.arange(C)[:, None] * factors.shape[1] + 2 * grid + np.arange(2)).reshape(-1)
+    evaluate = np.zeros(which.size, dtype=bool)
+    evaluate[loss_draws] = True
+    moved = _solve_moved(
+        scaler, which, factors.reshape(-1), objective, base_policy, mask, evaluate=evaluate,
+        memory_limit_bytes=memory_limit_bytes,
+    )  # fmt: skip
+    grid_cells = moved.cell_margins.reshape(C, -1, *mask.shape)  # (C, 2G + 2, Tpi, S)
+    margins = grid_cells.min(axis=(2, 3))
     report()
 
     # 2. Brackets: the first grid interval in each direction where the margin turns negative.
@@ -413,7 +423,6 @@ def cell_sensitivity(
         cell_of, side_of, x_near, x_far, i_near, i_far = columns
         cell_of, side_of = cell_of.astype(int), side_of.astype(int)
         i_near, i_far = i_near.astype(int), i_far.astype(int)
-        grid_cells = _cell_margins(result, base_policy, mask).reshape(C, -1, *mask.shape)
         far_cells = grid_cells[cell_of, i_far]  # (B, Tpi, S)
         switching = far_cells < 0
         near_cells = np.where(
@@ -425,8 +434,11 @@ def cell_sensitivity(
         m_far = np.where(switching, far_cells, np.inf).min(axis=(1, 2))
 
         def margin_at(x: np.ndarray, k: np.ndarray) -> np.ndarray:
-            res = solve(scaler.scaled(cell_of[k], x), objective)
-            return _margins(res, base_policy, switching[k])
+            at = _solve_moved(
+                scaler, cell_of[k], x, objective, base_policy, mask,
+                memory_limit_bytes=memory_limit_bytes,
+            )  # fmt: skip
+            return np.where(switching[k], at.cell_margins, np.inf).min(axis=(1, 2))
 
         found = brent_roots(
             margin_at, x_near, x_far, m_near, m_far, xtol=xtol, rtol=RTOL_MIN,
@@ -440,19 +452,19 @@ def cell_sensitivity(
         past = np.clip(
             found.root + direction * step, np.minimum(x_near, x_far), np.maximum(x_near, x_far)
         )
-        past_batch = scaler.scaled(cell_of, past)
-        past_result = solve(past_batch, objective)
-        texts = _change_texts(scaler.base, past_result, base_policy, mask)
+        just_past = _solve_moved(
+            scaler, cell_of, past, objective, base_policy, mask,
+            memory_limit_bytes=memory_limit_bytes,
+        )  # fmt: skip
+        texts = _change_texts(scaler.base, just_past, base_policy)
         for n, (c, side) in enumerate(zip(cell_of, side_of, strict=True)):
             changes[c][side] = texts[n]
         report()
 
     # 4. Value lost by keeping the base-case policy at the loss factors.
-    loss_draws = (np.arange(C)[:, None] * factors.shape[1] + 2 * grid + np.arange(2)).reshape(-1)
-    loss_compiled = batch.take_draws(loss_draws)
-    best = result.expected_value(batch.start_distribution)[loss_draws]
-    kept = evaluate_policy(loss_compiled, base_policy[None], objective).value
-    same = (_cell_margins(result, base_policy, mask)[loss_draws] >= 0).all(axis=(1, 2))
+    best = moved.start_value[loss_draws]
+    kept = moved.kept_value[loss_draws]
+    same = (moved.cell_margins[loss_draws] >= 0).all(axis=(1, 2))
     # The base-case policy is still optimal: nothing is lost (not a rounding residue).
     lost = best - kept
     same |= np.abs(lost) <= 1e-9 * np.maximum(1.0, np.abs(best))  # rounding, not a loss
@@ -480,9 +492,54 @@ def cell_sensitivity(
     )
 
 
-def _margins(result: Any, base_policy: np.ndarray, mask: np.ndarray) -> np.ndarray:
-    """(D,) smallest margin of the base-case action over the decision cells in ``mask``."""
-    return _cell_margins(result, base_policy, mask).min(axis=(1, 2), initial=np.inf)
+@dataclass(frozen=True)
+class _Moved:
+    """Per-draw results of a batch of moved cells (see :func:`_solve_moved`)."""
+
+    cell_margins: np.ndarray  # (N, Tpi, S) margin of the base-case action, inf outside mask
+    policy: np.ndarray  # (N, Tpi, S) optimal action
+    start_value: np.ndarray  # (N,) objective at the model start, optimal policy
+    kept_value: np.ndarray  # (N,) the same under the base-case policy (NaN: not evaluated)
+
+
+def _solve_moved(
+    scaler: CellScaler,
+    which: np.ndarray,
+    factors: np.ndarray,
+    objective: Objective,
+    base_policy: np.ndarray,
+    mask: np.ndarray,
+    *,
+    evaluate: np.ndarray | None = None,
+    memory_limit_bytes: int | None = None,
+) -> _Moved:
+    """Move cell ``which[n]`` by ``factors[n]`` in draw ``n`` and solve, chunk by chunk.
+
+    Chunks are sized by the batch driver's memory rule
+    (:func:`caredecide.batch.chunk_size_for`); only the per-draw reductions are kept.
+    ``evaluate`` (N,) bool marks draws whose value under the base-case policy is wanted.
+    """
+    from caredecide.batch import chunk_size_for
+    from caredecide.solvers import solve
+
+    n = which.size
+    size = chunk_size_for(scaler.model, n, memory_limit_bytes)
+    margins = np.empty((n, *mask.shape))
+    policy = np.empty((n, *mask.shape), dtype=int)
+    start_value = np.empty(n)
+    kept_value = np.full(n, np.nan)
+    for start in range(0, n, size):
+        rows = slice(start, min(start + size, n))
+        compiled = scaler.scaled(which[rows], factors[rows])
+        result = solve(compiled, objective)
+        margins[rows] = _cell_margins(result, base_policy, mask)
+        policy[rows] = result.policy
+        start_value[rows] = result.expected_value(compiled.start_distribution)
+        if evaluate is not None and evaluate[rows].any():
+            picked = np.flatnonzero(evaluate[rows])
+            outcome = evaluate_policy(compiled.take_draws(picked), base_policy[None], objective)
+            kept_value[start + picked] = outcome.value
+    return _Moved(margins, policy, start_value, kept_value)
 
 
 def _cell_margins(result: Any, base_policy: np.ndarray, mask: np.ndarray) -> np.ndarray:
@@ -497,23 +554,22 @@ def _cell_margins(result: Any, base_policy: np.ndarray, mask: np.ndarray) -> np.
     return np.where(mask if mask.ndim == 3 else mask[None], margin, np.inf)
 
 
-def _change_texts(base: Any, result: Any, base_policy: np.ndarray, mask: np.ndarray) -> list[str]:
+def _change_texts(base: Any, moved: _Moved, base_policy: np.ndarray) -> list[str]:
     """Per draw, the states and ages whose best action differs from the base case."""
-    margin = _cell_margins(result, base_policy, mask)  # (D, Tpi, S)
+    margin = moved.cell_margins  # (D, Tpi, S)
     changed = margin < 0
     # Rounding may leave the switching cell at a tiny positive margin: name the closest.
     lowest = margin.reshape(margin.shape[0], -1).argmin(axis=1)
     none = ~changed.any(axis=(1, 2))
     changed.reshape(changed.shape[0], -1)[np.flatnonzero(none), lowest[none]] = True
     ages = policy_ages(base, base_policy.shape[0])
-    q = np.asarray(result.q_values)
     states = np.asarray(base.state_ids, dtype=object)
     actions = np.asarray(base.action_ids, dtype=object)
-    n_actions = q.shape[-1]
+    n_actions = len(base.action_ids)
     texts = []
     for d in range(changed.shape[0]):
         t, s = np.nonzero(changed[d])  # ordered by cycle, then state
-        before, after = base_policy[t, s], q[d, t, s].argmax(axis=-1)
+        before, after = base_policy[t, s], moved.policy[d, t, s]
         key = (s * n_actions + before) * n_actions + after
         parts = []
         for k in np.unique(key):  # state order, then actions
