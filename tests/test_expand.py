@@ -1,7 +1,9 @@
 """State attributes and tunnels: expanded into flat states before compiling.
 
 Every model here is a synthetic scenario of our own; the figures checked are derived by
-hand in the comments beside them.
+hand in the comments beside them. What a tunnel is follows the trade: a chain of copies of
+a state, one per cycle since entry, that gives a Markov cohort model memory of the time
+spent in a state (Siebert et al. 2012, Med Decis Making 32(5):690-700; from memory).
 """
 
 from __future__ import annotations
