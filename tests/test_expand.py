@@ -640,3 +640,37 @@ def test_the_report_shows_the_trace_by_attribute_and_tunnel(tmp_path):
     policy = page[page.index('<section id="policy">') : page.index('<section id="strategies">')]
     for name in ("declared state", "on_treatment", "years_on_drug"):
         assert f"<h3>Cohort trace by {name}</h3>" in policy
+
+
+def test_a_tunnel_shared_by_two_states_keeps_counting_across_them():
+    # Common practice: time on treatment goes on when the disease progresses; a state
+    # with a tunnel of its own counts time in that state only.
+    text = (
+        HEADER.format(horizon=3, start="a", within="start", discount=0.0)
+        + """
+[tunnels.on_drug]
+length = 3
+[tunnels.in_b]
+length = 1
+[[states]]
+id = "a"
+tunnels = ["on_drug"]
+[[states]]
+id = "b"
+tunnels = ["on_drug", "in_b"]
+[[states]]
+id = "dead"
+absorbing = true
+[[actions]]
+id = "wait"
+[transitions.wait.a]
+b = 1
+[transitions.wait.b]
+b = 1
+"""
+    )
+    flat = expand(loads_model(text)).model
+    rows = flat.transitions["wait"]
+    assert rows["a__on_drug_0"] == {"b__on_drug_1__in_b_0": 1.0}
+    assert rows["b__on_drug_1__in_b_0"] == {"b__on_drug_2__in_b_1plus": 1.0}
+    assert rows["b__on_drug_3plus__in_b_1plus"] == {"b__on_drug_3plus__in_b_1plus": 1.0}
