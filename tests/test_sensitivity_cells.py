@@ -315,3 +315,12 @@ def test_chunked_batches_give_the_same_result():
     numbers = ["factor_below", "factor_above", "value_lost_below", "value_lost_above"]
     np.testing.assert_allclose(chunked[numbers], whole[numbers], rtol=1e-12)
     assert list(chunked["changes_below"]) == list(whole["changes_below"])
+
+
+def test_a_model_with_only_fixed_cells_gives_an_empty_table():
+    # wait: dead = 0 (zero), sick = rest; treat: rest only -> nothing to move.
+    model = two_state_model(wait_row={"dead": 0.0, "sick": "rest"})
+    model = replace(model, transitions={**model.transitions, "treat": {"sick": {"sick": "rest"}}})
+    result = cell_sensitivity(model)
+    assert result.to_frame().empty and list(result.to_frame().columns) == FRAME_COLUMNS
+    assert set(result.fixed_frame()["reason"]) == {FIXED_ZERO, FIXED_REMAINDER}

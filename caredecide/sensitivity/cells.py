@@ -394,7 +394,7 @@ def cell_sensitivity(
         scaler, which, factors.reshape(-1), objective, base_policy, mask, evaluate=evaluate,
         memory_limit_bytes=memory_limit_bytes,
     )  # fmt: skip
-    grid_cells = moved.cell_margins.reshape(C, -1, *mask.shape)  # (C, 2G + 2, Tpi, S)
+    grid_cells = moved.cell_margins.reshape(C, factors.shape[1], *mask.shape)  # (C, 2G+2, Tpi, S)
     margins = grid_cells.min(axis=(2, 3))
     report()
 
@@ -502,6 +502,36 @@ class _Moved:
     kept_value: np.ndarray  # (N,) the same under the base-case policy (NaN: not evaluated)
 
 
+@dataclass(frozen=True)
+class _MovedJob:
+    """Chunk job (:mod:`caredecide.chunks`): move, solve and reduce draws ``start:stop``."""
+
+    scaler: CellScaler
+    which: np.ndarray
+    factors: np.ndarray
+    objective: Objective
+    base_policy: np.ndarray
+    mask: np.ndarray
+    evaluate: np.ndarray | None
+
+    def __call__(self, start: int, stop: int) -> _Moved:
+        from caredecide.solvers import solve
+
+        compiled = self.scaler.scaled(self.which[start:stop], self.factors[start:stop])
+        result = solve(compiled, self.objective)
+        kept = np.full(stop - start, np.nan)
+        if self.evaluate is not None and self.evaluate[start:stop].any():
+            picked = np.flatnonzero(self.evaluate[start:stop])
+            base = self.base_policy[None]
+            kept[picked] = evaluate_policy(compiled.take_draws(picked), base, self.objective).value
+        return _Moved(
+            _cell_margins(result, self.base_policy, self.mask),
+            np.asarray(result.policy),
+            result.expected_value(compiled.start_distribution),
+            kept,
+        )
+
+
 def _solve_moved(
     scaler: CellScaler,
     which: np.ndarray,
@@ -515,31 +545,22 @@ def _solve_moved(
 ) -> _Moved:
     """Move cell ``which[n]`` by ``factors[n]`` in draw ``n`` and solve, chunk by chunk.
 
-    Chunks are sized by the batch driver's memory rule
-    (:func:`caredecide.batch.chunk_size_for`); only the per-draw reductions are kept.
-    ``evaluate`` (N,) bool marks draws whose value under the base-case policy is wanted.
+    The one chunk driver (:mod:`caredecide.chunks`) sizes the chunks from the memory budget
+    and runs them; only the per-draw reductions are kept. ``evaluate`` (N,) bool marks the
+    draws whose value under the base-case policy is wanted.
     """
-    from caredecide.batch import chunk_size_for
-    from caredecide.solvers import solve
+    from caredecide.chunks import chunk_ranges, chunk_size_for, run_chunks
 
     n = which.size
+    if n == 0:  # no movable cell
+        empty = np.empty((0, *mask.shape))
+        return _Moved(empty, empty.astype(int), np.empty(0), np.empty(0))
     size = chunk_size_for(scaler.model, n, memory_limit_bytes)
-    margins = np.empty((n, *mask.shape))
-    policy = np.empty((n, *mask.shape), dtype=int)
-    start_value = np.empty(n)
-    kept_value = np.full(n, np.nan)
-    for start in range(0, n, size):
-        rows = slice(start, min(start + size, n))
-        compiled = scaler.scaled(which[rows], factors[rows])
-        result = solve(compiled, objective)
-        margins[rows] = _cell_margins(result, base_policy, mask)
-        policy[rows] = result.policy
-        start_value[rows] = result.expected_value(compiled.start_distribution)
-        if evaluate is not None and evaluate[rows].any():
-            picked = np.flatnonzero(evaluate[rows])
-            outcome = evaluate_policy(compiled.take_draws(picked), base_policy[None], objective)
-            kept_value[start + picked] = outcome.value
-    return _Moved(margins, policy, start_value, kept_value)
+    job = _MovedJob(scaler, which, factors, objective, base_policy, mask, evaluate)
+    pieces = list(run_chunks(job, chunk_ranges(n, size)))
+    return _Moved(
+        *(np.concatenate([getattr(p, f) for p in pieces]) for f in _Moved.__dataclass_fields__)
+    )
 
 
 def _cell_margins(result: Any, base_policy: np.ndarray, mask: np.ndarray) -> np.ndarray:
