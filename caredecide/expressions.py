@@ -64,6 +64,7 @@ __all__ = [
     "REST_KEYWORD",
     "Expression",
     "FunctionSpec",
+    "did_you_mean",
     "parse_expression",
 ]
 
@@ -245,7 +246,11 @@ def _error(
     return error
 
 
-def _suggest(name: str, candidates: Collection[str]) -> str:
+_ARRAY_INDEX = re.compile(r" at index \([0-9, ]*\)")
+
+
+def did_you_mean(name: str, candidates: Collection[str]) -> str:
+    """`` (did you mean a, b?)`` listing up to three close candidates, or ``""``."""
     close = difflib.get_close_matches(name, sorted(candidates), n=3, cutoff=0.6)
     return f" (did you mean {', '.join(close)}?)" if close else ""
 
@@ -463,7 +468,7 @@ class _Parser:
                 f" ({name.text} was renamed {renamed} in model file format 2; "
                 "`caredecide check --upgrade FILE` rewrites a format-1 file)"
                 if renamed
-                else _suggest(name.text, FUNCTIONS)
+                else did_you_mean(name.text, FUNCTIONS)
             )
             raise self.error(name, f"unknown function {name.text!r}{hint}", f"one of {known}")
         opened = self.advance()  # "("
@@ -619,7 +624,7 @@ class Expression:
             raise _error(
                 self.where,
                 self.source,
-                f"no value for variable {name!r}{supplied}{_suggest(name, variables)}",
+                f"no value for variable {name!r}{supplied}{did_you_mean(name, variables)}",
                 expected="a value for every name in the expression",
             )
         value = variables[name]
@@ -638,7 +643,9 @@ class Expression:
         try:
             return np.asarray(function(*args), dtype=np.float64)
         except ModelError as exc:  # a conversion function rejected an input value
-            found = "; ".join(f"{p.where}: {p.message}" for p in exc.problems)
+            # The array index of the first bad value means nothing to a modeller (the
+            # caller names the table path); keep the value and the rule.
+            found = "; ".join(f"{p.where}: {_ARRAY_INDEX.sub('', p.message)}" for p in exc.problems)
             raise _error(
                 self.where,
                 self.source,
@@ -672,7 +679,7 @@ class Expression:
         unknown = sorted(self.names - allowed)
         if not unknown:
             return
-        listed = "; ".join(f"{name!r}{_suggest(name, allowed)}" for name in unknown)
+        listed = "; ".join(f"{name!r}{did_you_mean(name, allowed)}" for name in unknown)
         plural = "s" if len(unknown) > 1 else ""
         raise _error(
             where,

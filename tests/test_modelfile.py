@@ -127,17 +127,20 @@ def random_models(draw) -> Model:
     for i in range(n_params):
         value = draw(st.floats(0.0, 0.4))
         ranged = draw(st.booleans())
+        distribution = draw(_distributions)
+        # Only a distribution within [0, 1] fits a probability (validation refuses others).
+        within = distribution is None or distribution.get("type") == "beta"
         parameters[f"p{i}"] = Parameter(
             name=f"p{i}",
             value=value,
-            kind="probability",
+            kind="probability" if within else "other",
             per_years=draw(st.none() | st.floats(0.1, 10.0)),
             low=value / 2 if ranged else None,
             high=min(1.0, value * 2) if ranged else None,
             source=draw(_label.filter(lambda s: s.strip())),
             label=draw(_label),
             note=draw(_label),
-            distribution=draw(_distributions),
+            distribution=distribution,
         )
     weights = st.floats(0.0, 1.0)
     if horizon != "infinite":  # an infinite horizon needs values that do not change with age

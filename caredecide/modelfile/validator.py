@@ -20,12 +20,18 @@ from caredecide.errors import (
     ModelWarningRecord,
     Problem,
 )
+from caredecide.expressions import did_you_mean
 from caredecide.model import (
     ALL_STATES,
     FORMAT_VERSION,
     OBJECTIVES,
     PARAMETER_KINDS,
     Model,
+)
+from caredecide.modelfile.advisories import (
+    distribution_problems,
+    repeated_charge_warnings,
+    unused_parameter_warnings,
 )
 from caredecide.upgrade import PREVIOUS_FORMAT_VERSION, previous_format_warning
 
@@ -57,6 +63,7 @@ def structural_problems(model: Model) -> list[Problem]:
     _check_states_and_actions(model, add)
     _check_rows(model, add)
     _check_parameters(model, add)
+    problems.extend(distribution_problems(model))
     _check_mortality(model, add)
     return problems
 
@@ -109,15 +116,21 @@ def _check_settings(model: Model, add) -> None:
         if state_id not in state_ids:
             add(
                 "settings.severity_order",
-                f"unknown state {state_id!r}; states are {sorted(state_ids)}",
+                _unknown("state", state_id, state_ids),
             )
     if isinstance(s.start, str):
         if s.start not in state_ids:
-            add("settings.start", f"unknown state {s.start!r}; states are {sorted(state_ids)}")
+            add(
+                "settings.start",
+                _unknown("state", s.start, state_ids),
+            )
     else:
         for state_id, share in s.start.items():
             if state_id not in state_ids:
-                add(f"settings.start.{state_id}", f"unknown state; states are {sorted(state_ids)}")
+                add(
+                    f"settings.start.{state_id}",
+                    _unknown("state", state_id, state_ids, named=False),
+                )
             if not (_finite(share) and 0.0 <= share <= 1.0):
                 add(f"settings.start.{state_id}", f"share {share!r}; expected a number in [0, 1]")
         total = math.fsum(s.start.values())
@@ -178,7 +191,7 @@ def _check_states_and_actions(model: Model, add) -> None:
             if state_id not in state_ids:
                 add(
                     f"actions.{action.id}.allowed_in",
-                    f"unknown state {state_id!r}; states are {state_ids}",
+                    _unknown("state", state_id, state_ids),
                 )
             elif state_id in absorbing:
                 add(
@@ -206,19 +219,23 @@ def _check_rows(model: Model, add) -> None:
         for action_id, rows in table.items():
             if action_id not in action_ids:
                 add(
-                    f"{table_name}.{action_id}", f"unknown action; actions are {sorted(action_ids)}"
+                    f"{table_name}.{action_id}",
+                    _unknown("action", action_id, action_ids, named=False),
                 )
                 continue
             for from_id, row in rows.items():
                 where = f"{table_name}.{action_id}.{from_id}"
                 if from_id not in state_ids:
-                    add(where, f"unknown state {from_id!r}; states are {sorted(state_ids)}")
+                    add(
+                        where,
+                        _unknown("state", from_id, state_ids),
+                    )
                     continue
                 for to_id in row:
                     if to_id not in state_ids:
                         add(
                             f"{where}.{to_id}",
-                            f"unknown state {to_id!r}; states are {sorted(state_ids)}",
+                            _unknown("state", to_id, state_ids),
                         )
                 if from_id in absorbing:
                     exits = [k for k in row if k != from_id]
@@ -343,6 +360,13 @@ def _check_parameters(model: Model, add) -> None:
                 add(f"{w}.distribution", _strip_where(str(error), f"{w}.distribution"))
 
 
+def _unknown(kind: str, name: str, known, *, named: bool = True) -> str:
+    """``unknown state 'x' (did you mean y?); states are [...]`` (the name left out when
+    the table path already shows it)."""
+    shown = f" {name!r}" if named else ""
+    return f"unknown {kind}{shown}{did_you_mean(name, known)}; {kind}s are {sorted(known)}"
+
+
 def _check_name(name: str, where: str, add, reserved) -> None:
     if not IDENTIFIER.match(name):
         add(where, f"name {name!r}; expected letters, digits and _ (not starting with a digit)")
@@ -431,7 +455,14 @@ def validate_model(model: Model) -> list[ModelWarningRecord]:
     compiled = compile_model(model)
     records = [previous_format_warning()] if model.format_version == PREVIOUS_FORMAT_VERSION else []
     records += expansion.warnings
-    return records + _unit_warnings(model, parsed) + _warnings(model, compiled)
+    used = {name for entry in parsed.all_entries() for name in entry.expression.names}
+    return (
+        records
+        + _unit_warnings(model, parsed)
+        + _warnings(model, compiled)
+        + repeated_charge_warnings(model, compiled)
+        + unused_parameter_warnings(model, used)
+    )
 
 
 def _unit_warnings(model: Model, parsed) -> list[ModelWarningRecord]:

@@ -119,9 +119,13 @@ class ParameterSampler:
             (-1, 1), or a matrix that is not positive definite; bad distributions (naming
             ``parameters.<name>.distribution``).
         """
+        from caredecide.modelfile.advisories import distribution_problems
+
         file = model.file_label
         distributions = []
-        problems = []
+        # A distribution that can draw outside its parameter's range (a normal on a
+        # probability) is refused here too, before any draw, for models built in code.
+        problems = distribution_problems(model)
         for name, parameter in model.parameters.items():
             if parameter.distribution is None:
                 continue
