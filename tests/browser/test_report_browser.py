@@ -8,6 +8,7 @@ from pathlib import Path
 
 import pytest
 
+from caredecide.modelfile import load_model
 from caredecide.report import build_report
 from caredecide.report.sections import SECTION_TITLES
 
@@ -50,7 +51,9 @@ def test_report_renders_offline_with_every_section(report_file, page, artifacts)
         heading = page.locator(f"section#{sid} > h2")
         assert heading.inner_text() == title
     assert page.locator("section#policy figure.chart svg").count() == 2
-    assert page.locator("section#sensitivity figure.chart svg").count() == 1
+    # The tornado diagram, then one transition sensitivity matrix per action.
+    n_actions = len(load_model(BASE).actions)
+    assert page.locator("section#sensitivity figure.chart svg").count() == 1 + n_actions
     # The treatment's share of draws by state and age band, and the acceptability curves.
     assert page.locator("section#uncertainty figure.chart svg").count() == 2
     assert (
