@@ -227,37 +227,11 @@ def evaluate_policy(
 def _evaluate_finite(compiled, policy, objective, terminal_value) -> PolicyOutcome:
     D, S, T = compiled.n_draws, compiled.n_states, compiled.n_cycles
     weights = occupancy_weights(compiled.within_cycle, T)
-    d_o = compiled.per_cycle_discount()[0]
     trace = np.empty((D, T + 1, S))
     if kernels.available():  # gathers the chosen rows; no policy matrices are built
-        kernels.kernels().cohort_trace(
-            np.ascontiguousarray(compiled.transition),
-            np.ascontiguousarray(policy, dtype=np.intp),
-            np.ascontiguousarray(compiled.start_distribution, dtype=float),
-            trace,
-        )
+        flows = _finite_flows_kernel(compiled, policy, weights, trace)
     else:
-        trace[:, 0] = compiled.start_distribution
-        for t in range(T):
-            P_pi = _policy_transition(transition_at(compiled, t), policy[:, t])
-            trace[:, t + 1] = (trace[:, t, None, :] @ P_pi)[:, 0]
-    flows = {
-        f"{name}{suffix}": np.zeros((D, T + 1))
-        for name in _QUANTITIES
-        for suffix in ("", "_undiscounted")
-    }
-    for t in range(T + 1):
-        m = trace[:, t]
-        for discount, suffix in ((True, ""), (False, "_undiscounted")):
-            q, c = occupancy_parts(compiled, t, weights[t], discount)
-            ly = weights[t] * (d_o**t if discount else 1.0) * compiled.life_years
-            flows["life_years" + suffix][:, t] = m @ ly
-            flows["qalys" + suffix][:, t] = np.einsum("ds,ds->d", m, q)
-            flows["costs" + suffix][:, t] = np.einsum("ds,ds->d", m, c)
-            if t < T:
-                dq, dc = decision_parts(compiled, t, discount)
-                flows["qalys" + suffix][:, t] += np.einsum("ds,ds->d", m, _chosen(dq, policy[:, t]))
-                flows["costs" + suffix][:, t] += np.einsum("ds,ds->d", m, _chosen(dc, policy[:, t]))
+        flows = _finite_flows_numpy(compiled, policy, weights, trace)
     totals = {name: flow.sum(axis=1) for name, flow in flows.items()}
     terminal = np.einsum(
         "ds,ds->d", trace[:, T], terminal_present_value(compiled, objective, terminal_value)
@@ -415,3 +389,69 @@ def _outcome(compiled, objective, trace, totals, flows, terminal, ages, finite) 
         ages=np.asarray(ages, dtype=float),
         finite_horizon=finite,
     )
+
+
+def _finite_flows_kernel(compiled, policy, weights, trace) -> dict[str, np.ndarray]:
+    """Fill ``trace`` and return the per-boundary flows, by the compiled loops."""
+    D, T = compiled.n_draws, compiled.n_cycles
+    d_o, d_c = compiled.per_cycle_discount()
+    loops = kernels.kernels()
+    policy = np.ascontiguousarray(policy, dtype=np.intp)
+    loops.cohort_trace(
+        np.ascontiguousarray(compiled.transition),
+        policy,
+        np.ascontiguousarray(compiled.start_distribution, dtype=float),
+        trace,
+    )
+    flows = np.empty((6, D, T + 1))
+    steps = range(T + 1)
+    loops.policy_flows(
+        trace,
+        policy,
+        *(
+            np.ascontiguousarray(a, dtype=float)
+            for a in (
+                compiled.state_qaly,
+                compiled.state_cost,
+                compiled.decision_qaly,
+                compiled.decision_cost,
+                compiled.life_years,
+            )
+        ),
+        np.array([weights[t] * d_o**t for t in steps]),
+        np.array([weights[t] * d_c**t for t in steps]),
+        np.array([d_o**t for t in steps[:-1]]),
+        np.array([d_c**t for t in steps[:-1]]),
+        np.asarray(weights, dtype=float),
+        flows,
+    )
+    names = [f"{name}{suffix}" for suffix in ("", "_undiscounted") for name in _QUANTITIES]
+    return dict(zip(names, flows, strict=True))
+
+
+def _finite_flows_numpy(compiled, policy, weights, trace) -> dict[str, np.ndarray]:
+    """Fill ``trace`` and return the per-boundary flows (numpy path)."""
+    D, T = compiled.n_draws, compiled.n_cycles
+    d_o = compiled.per_cycle_discount()[0]
+    trace[:, 0] = compiled.start_distribution
+    for t in range(T):
+        P_pi = _policy_transition(transition_at(compiled, t), policy[:, t])
+        trace[:, t + 1] = (trace[:, t, None, :] @ P_pi)[:, 0]
+    flows = {
+        f"{name}{suffix}": np.zeros((D, T + 1))
+        for name in _QUANTITIES
+        for suffix in ("", "_undiscounted")
+    }
+    for t in range(T + 1):
+        m = trace[:, t]
+        for discount, suffix in ((True, ""), (False, "_undiscounted")):
+            q, c = occupancy_parts(compiled, t, weights[t], discount)
+            ly = weights[t] * (d_o**t if discount else 1.0) * compiled.life_years
+            flows["life_years" + suffix][:, t] = m @ ly
+            flows["qalys" + suffix][:, t] = np.einsum("ds,ds->d", m, q)
+            flows["costs" + suffix][:, t] = np.einsum("ds,ds->d", m, c)
+            if t < T:
+                dq, dc = decision_parts(compiled, t, discount)
+                flows["qalys" + suffix][:, t] += np.einsum("ds,ds->d", m, _chosen(dq, policy[:, t]))
+                flows["costs" + suffix][:, t] += np.einsum("ds,ds->d", m, _chosen(dc, policy[:, t]))
+    return flows

@@ -110,8 +110,15 @@ def test_cohort_trace_kernel_matches_numpy_path(seed, T, S):
     plain = _numpy_path(evaluate_policy, compiled, policy, objective)
     np.testing.assert_allclose(fast.trace, plain.trace, rtol=0, atol=1e-14)
     np.testing.assert_allclose(fast.trace.sum(-1), 1.0, atol=1e-12)  # mass is conserved
-    for name in ("qalys", "costs", "life_years", "value"):
+    for name in ("qalys", "costs", "life_years", "value", "net_monetary_benefit"):
         np.testing.assert_allclose(getattr(fast, name), getattr(plain, name), rtol=1e-12)
+    for name in ("qalys", "costs", "life_years"):
+        np.testing.assert_allclose(
+            getattr(fast, f"{name}_undiscounted"),
+            getattr(plain, f"{name}_undiscounted"),
+            rtol=1e-12,
+        )
+        np.testing.assert_allclose(fast.flows[name], plain.flows[name], rtol=1e-12, atol=1e-12)
 
 
 def test_backward_induction_kernel_matches_quantecon():
