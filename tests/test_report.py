@@ -45,7 +45,8 @@ def test_report_has_every_section_with_the_cautions_first(built):
     assert page.index("RESEARCH USE ONLY") < positions[1]
     assert "not a substitute for clinical judgment" in page
     # Probabilistic results were asked for, so their section holds results, not a note.
-    uncertainty = page[positions[7] : positions[8]]
+    at = list(SECTION_TITLES).index("uncertainty")
+    uncertainty = page[positions[at] : positions[at + 1]]
     assert "40 parameter draws, seed 5" in uncertainty
 
 
@@ -139,8 +140,10 @@ def test_probabilistic_section_has_its_charts_and_tables(built):
     section = page[
         page.index('<section id="uncertainty">') : page.index('<section id="verification">')
     ]
-    # Heat map of the treatment's share and the acceptability curves, drawn inline.
-    assert section.count("<svg") == 2
+    # The plane of the draws, the heat map of the treatment's share and the acceptability
+    # curves, drawn inline.
+    assert section.count("<svg") == 3
+    assert "Cost-effectiveness plane of the probabilistic draws" in section
     assert "How often 'treat' is optimal across the parameter draws" in section
     assert "Acceptability curves" in section
     # 40 draws are too few for EVPPI (MIN_EVPPI_DRAWS = 200): the section says so.

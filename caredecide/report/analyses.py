@@ -228,6 +228,9 @@ def _strategies(data: ReportData) -> None:
     data.results["strategies"] = comparison.table
     if comparison.frontier is not None:
         data.results["wtp_frontier"] = comparison.frontier
+        data.results["wtp_frontier_runs"] = comparison.frontier_collapsed
+        data.results["wtp_state_switches"] = comparison.state_switches
+        data.results["wtp_regions"] = comparison.regions
     data.facts["best_strategy"] = comparison.best_strategy
     data.facts["strategy_wtp"] = comparison.willingness_to_pay
     if comparison.notes:
@@ -236,11 +239,14 @@ def _strategies(data: ReportData) -> None:
 
 def _sensitivity(data: ReportData) -> None:
     from caredecide.sensitivity import (
+        decision_tornado,
         one_way,
         parameter_thresholds,
         setting_thresholds,
         summarise_thresholds,
     )
+    from caredecide.sensitivity.context import threshold_context
+    from caredecide.sensitivity.recommendation import what_would_change
 
     _transition_cells(data)
     if not data.model.parameter_names():
@@ -252,6 +258,13 @@ def _sensitivity(data: ReportData) -> None:
     thresholds = parameter_thresholds(data.model, objective=data.objective)
     data.results["thresholds"] = thresholds
     data.results["thresholds_summary"] = summarise_thresholds(thresholds)
+    data.results["thresholds_context"] = threshold_context(data.model, thresholds)
+    data.results["decision_tornado"] = decision_tornado(
+        data.model, objective=data.objective, thresholds=thresholds
+    ).table
+    changes = what_would_change(data.model, objective=data.objective, thresholds=thresholds)
+    data.results["what_would_change_states"] = changes.recommendations
+    data.results["what_would_change_flips"] = changes.flips
     wtp = data.objective.willingness_to_pay
     if data.objective.kind == "net_benefit" and wtp > 0:
         wtp_table = setting_thresholds(
@@ -288,6 +301,17 @@ def _uncertainty(data: ReportData) -> None:
     data.results["psa_acceptability_frontier"] = psa.acceptability_frontier()
     data.results["psa_evppi"] = psa.evppi()
     data.results["psa_convergence"] = psa.convergence()
+    data.results["psa_strategy_means"] = psa.strategy_summary()
+    data.results["psa_plane"] = psa.plane_frame(max_draws=500)
+    data.facts["psa_fixed_parameters"] = list(psa.fixed_parameters)
+    states = data.results.get("what_would_change_states")
+    if states is not None:
+        from caredecide.sensitivity.recommendation import share_of_draws_differing
+
+        shares = share_of_draws_differing(psa, psa.candidates[0].policy, len(psa.state_ids))
+        index = {s: i for i, s in enumerate(psa.state_ids)}
+        states["psa_share_differs"] = [shares[index[s]] for s in states["state"]]
+        states["psa_draws"] = psa.n_draws
     evpi = psa.evpi()
     data.results["psa_evpi"] = pd.DataFrame([evpi])
     data.facts["psa_distinct_policies"] = len(psa.distinct_counts)

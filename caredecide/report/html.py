@@ -52,6 +52,7 @@ footer { font-size: 0.85rem; color: #444; margin-top: 2rem; }
 
 STEP_OF_SECTION = {
     "policy": "policy",
+    "changes": "sensitivity",
     "strategies": "strategies",
     "sensitivity": "sensitivity",
     "uncertainty": "uncertainty",

@@ -23,6 +23,7 @@ SECTION_TITLES: dict[str, str] = {
     "structure": "Model structure",
     "evidence": "Evidence",
     "policy": "Best policy",
+    "changes": "What would change the recommendation",
     "strategies": "Comparison with fixed strategies",
     "sensitivity": "Sensitivity and thresholds",
     "uncertainty": "Probabilistic results",
@@ -239,6 +240,20 @@ def _grouped_traces(data: ReportData) -> str:
     return "".join(parts)
 
 
+def _switch_chart(data: ReportData):
+    from caredecide.decision_charts import make_region_map_chart
+
+    labels = [a.label or a.id for a in data.model.actions]
+    currency = data.model.settings.currency
+    return make_region_map_chart(
+        data.results["wtp_regions"],
+        x_title=f"Willingness to pay per QALY {f'({currency})' if currency else ''}".strip(),
+        action_labels=labels,
+        base=data.facts.get("strategy_wtp"),
+        title="Best action by age as the willingness to pay rises (one panel per state)",
+    )
+
+
 def strategies_section(data: ReportData) -> str:
     from caredecide.charts import make_ce_plane_chart
 
@@ -264,21 +279,99 @@ def strategies_section(data: ReportData) -> str:
         svg(lambda: make_ce_plane_chart(frame, currency=data.model.settings.currency)),
     ]
     if "wtp_frontier" in data.results:
-        parts += [
-            "<h3>Policies optimal over a range of willingness to pay</h3>",
-            table(
-                data.results["wtp_frontier"],
-                ["policy", "wtp_from", "wtp_to", "cost", "qalys", "found_by"],
-            ),
+        parts += ["<h3>Policies optimal over a range of willingness to pay</h3>"]
+        if "wtp_regions" in data.results:
+            parts.append(svg(lambda: _switch_chart(data)))
+        if "wtp_state_switches" in data.results:
+            parts += [
+                _para("Where each state's recommendation changes as the willingness to pay rises:"),
+                table(data.results["wtp_state_switches"]),
+            ]
+        runs = data.results.get("wtp_frontier_runs", data.results["wtp_frontier"])
+        columns = [c for c in ("policies", "policy", "wtp_from", "wtp_to", "cost", "qalys")
+                   if c in runs.columns]  # fmt: skip
+        parts.append(table(runs, columns))
+    return "".join(parts)
+
+
+def changes_section(data: ReportData) -> str:
+    """Per state: the recommendation, the estimates that could flip it, how likely."""
+    from types import SimpleNamespace
+
+    from caredecide.sensitivity.recommendation import flip_sentence
+
+    states = data.results["what_would_change_states"]
+    flips = data.results["what_would_change_flips"]
+    parts = [
+        _para(
+            "For each health state: what the model recommends, which estimates could flip "
+            "it inside their plausible ranges and at which values, and the probability of a "
+            "value beyond that point under the estimate's own distribution (every other "
+            "estimate at its base value)."
+        )
+    ]
+    for row in states.itertuples():
+        parts.append(f"<h3>{esc(row.state_label)}</h3>")
+        parts.append(_para(f"Recommended: {row.recommended}."))
+        items = [
+            f"<li>{esc(flip_sentence(SimpleNamespace(**flip._asdict())))}</li>"
+            for flip in flips[flips["state"] == row.state].itertuples()
         ]
+        parts.append(
+            f"<ul>{''.join(items)}</ul>"
+            if items
+            else _para("No estimate flips it inside its plausible range.")
+        )
+        share = getattr(row, "psa_share_differs", float("nan"))
+        if share == share:  # not NaN: a probabilistic analysis ran
+            parts.append(
+                _para(
+                    f"With every estimate uncertain together, {share:.1%} of "
+                    f"{int(row.psa_draws):,} probabilistic draws recommend something else here."
+                )
+            )
     return "".join(parts)
 
 
 def sensitivity_section(data: ReportData) -> str:
     from caredecide.charts import make_tornado_chart
+    from caredecide.decision_charts import make_decision_tornado_chart
+    from caredecide.sensitivity.decision import LOSS_SOURCE
 
     one = data.results["oneway"]
-    parts = [
+    decision = data.results.get("decision_tornado")
+    parts = []
+    if decision is not None:
+        parts += [
+            "<h3>Decision tornado: value lost by keeping the base-case policy</h3>",
+            _para(
+                "For each estimate at the low and at the high end of its range: the value "
+                "lost (per person, discounted) by keeping today's policy instead of the policy "
+                "best at that value; ranked by the mean of the two ends, the expected value of "
+                f"perfect information about the estimate alone at its bounds ({LOSS_SOURCE})."
+            ),
+            svg(lambda: make_decision_tornado_chart(decision, unit=unit_text(data))),
+            table(
+                decision,
+                [
+                    "rank",
+                    "parameter",
+                    "base",
+                    "low",
+                    "high",
+                    "loss_low",
+                    "loss_high",
+                    "loss_at_bounds",
+                    "loss_qalys_at_bounds",
+                    "share_cells_changed",
+                    "nearest_threshold",
+                    "distance_share",
+                    "value_rank",
+                ],
+            ),
+            "<h3>Value-level tornado (second view)</h3>",
+        ]
+    parts += [
         svg(lambda: make_tornado_chart(one, unit=f"({unit_text(data)})")),
         "<h3>One-way analysis, ranked by swing</h3>",
         table(
@@ -301,7 +394,7 @@ def sensitivity_section(data: ReportData) -> str:
             "The value of an estimate at which the best action switches, by state "
             "and age band (root-finding on the action gap)."
         ),
-        table(data.results["thresholds_summary"]),
+        table(data.results.get("thresholds_context", data.results["thresholds_summary"])),
     ]
     if "threshold_willingness_to_pay" in data.results:
         parts += [
@@ -364,6 +457,16 @@ def uncertainty_section(data: ReportData) -> str:
             f"{number(float(evpi['evpi_among_candidates']))} (s.e. "
             f"{number(float(evpi['mc_se_among_candidates']))})."
         ),
+        "<h3>Probabilistic means per strategy</h3>",
+        _para(
+            "Mean cost and QALYs over the draws with 95% percentile intervals; ICER as the "
+            "ratio of mean differences against the reference. Parameters held fixed at their "
+            "base value (no distribution): "
+            + (", ".join(data.facts.get("psa_fixed_parameters", [])) or "none")
+            + "."
+        ),
+        table(data.results["psa_strategy_means"]) if "psa_strategy_means" in data.results else "",
+        svg(lambda: _plane(data)) if "psa_plane" in data.results else "",
         "<h3>Expected loss of each candidate policy</h3>",
         table(data.results["psa_expected_loss"]),
         "<h3>Share of draws in which each action is best</h3>",
@@ -412,6 +515,12 @@ def uncertainty_section(data: ReportData) -> str:
     return "".join(parts)
 
 
+def _plane(data: ReportData):
+    from caredecide.decision_charts import make_draws_plane_chart
+
+    return make_draws_plane_chart(data.results["psa_plane"], currency=data.model.settings.currency)
+
+
 def verification_section(data: ReportData) -> str:
     frame = data.results["verification"]
     failed = int((frame["status"] == "fail").sum())
@@ -455,6 +564,7 @@ SECTION_BUILDERS: dict[str, Callable[[ReportData], str]] = {
     "structure": structure_section,
     "evidence": evidence_section,
     "policy": policy_section,
+    "changes": changes_section,
     "strategies": strategies_section,
     "sensitivity": sensitivity_section,
     "uncertainty": uncertainty_section,

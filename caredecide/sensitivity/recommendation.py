@@ -186,7 +186,7 @@ def what_would_change(
         )
     flips = _flips(model, thresholds, state_label, action_label, parameter_label)
 
-    shares = _psa_shares(psa, policy, len(compiled.state_ids))
+    shares = share_of_draws_differing(psa, policy, len(compiled.state_ids))
     rows = []
     for s, state in enumerate(compiled.state_ids):
         if not decision[s]:
@@ -303,8 +303,12 @@ def _flips(
     return frame.drop(columns="_order").reset_index(drop=True)
 
 
-def _psa_shares(psa: Any | None, policy: np.ndarray, n_states: int) -> np.ndarray:
-    """(S,) share of draws whose optimal policy differs from ``policy`` in each state."""
+def share_of_draws_differing(psa: Any | None, policy: np.ndarray, n_states: int) -> np.ndarray:
+    """(S,) share of draws whose optimal policy differs from ``policy`` in each state.
+
+    Counted exactly from the distinct per-draw optimal policies of a probabilistic
+    analysis and their counts (NaN everywhere without one).
+    """
     if psa is None:
         return np.full(n_states, np.nan)
     distinct = np.asarray(psa.distinct_policies)  # (U, Tpi, S)
@@ -313,4 +317,9 @@ def _psa_shares(psa: Any | None, policy: np.ndarray, n_states: int) -> np.ndarra
     return (counts[:, None] * differs).sum(axis=0) / float(psa.n_draws)
 
 
-__all__ = ["RecommendationChanges", "flip_sentence", "what_would_change"]
+__all__ = [
+    "RecommendationChanges",
+    "flip_sentence",
+    "share_of_draws_differing",
+    "what_would_change",
+]
