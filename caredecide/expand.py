@@ -35,11 +35,11 @@ import difflib
 import itertools
 import math
 import re
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field, replace
 
 from caredecide.errors import ModelError, ModelWarningRecord, Problem
-from caredecide.model import Model, State, StateAttribute, Tunnel
+from caredecide.model import ExpressionText, Model, State, StateAttribute, Tunnel
 
 SEPARATOR = "__"
 """Joins a state id, value names and tunnel steps into a generated state id."""
@@ -178,19 +178,18 @@ class _Expander:
                     f"{length!r}; expected a whole number of cycles >= 1 (the last step, "
                     "'length or more', keeps itself)",
                 )
-            for attribute, value in tunnel.only_for.items():
-                if attribute not in model.attributes:
+            for limit, value in tunnel.only_for.items():
+                if limit not in model.attributes:
                     self.add(
-                        f"{where}.only_for.{attribute}",
-                        f"unknown attribute {attribute!r}{_suggest(attribute, model.attributes)}; "
+                        f"{where}.only_for.{limit}",
+                        f"unknown attribute {limit!r}{_suggest(limit, model.attributes)}; "
                         f"attributes are {sorted(model.attributes)}",
                     )
-                elif value not in model.attributes[attribute].values:
-                    known = list(model.attributes[attribute].values)
+                elif value not in model.attributes[limit].values:
+                    known = list(model.attributes[limit].values)
                     self.add(
-                        f"{where}.only_for.{attribute}",
-                        f"unknown value {value!r}{_suggest(value, known)}; "
-                        f"{attribute!r} takes {known}",
+                        f"{where}.only_for.{limit}",
+                        f"unknown value {value!r}{_suggest(value, known)}; {limit!r} takes {known}",
                     )
         for state in model.states:
             self._check_state(state)
@@ -488,13 +487,13 @@ class _Expander:
     def _rows(
         self,
         table_name: str,
-        table: Mapping[str, Mapping[str, Mapping[str, object]]],
+        table: Mapping[str, Mapping[str, Mapping[str, ExpressionText]]],
         given: dict[tuple[str, str], str],
         variables: Mapping[str, Mapping[str, float]],
-    ) -> dict[str, dict[str, dict[str, object]]]:
+    ) -> dict[str, dict[str, dict[str, ExpressionText]]]:
         from caredecide.expressions import substitute_names
 
-        out: dict[str, dict[str, dict[str, object]]] = {}
+        out: dict[str, dict[str, dict[str, ExpressionText]]] = {}
         for action_id, rows in table.items():
             out[action_id] = {}
             for key, row in rows.items():
@@ -524,7 +523,7 @@ class _Expander:
                             'chance_within(rate, cycle_years) per exit and "rest")',
                         )
                         continue
-                    flat_row: dict[str, object] = {}
+                    flat_row: dict[str, ExpressionText] = {}
                     for to_key, value in row.items():
                         target = self.target(to_key, source, f"{where}.{to_key}")
                         if target is None:
@@ -594,7 +593,7 @@ def _step_text(tunnel: Tunnel, k: int) -> str:
     return f"{k}+" if k == tunnel.length else str(k)
 
 
-def _suggest(name: str, candidates: object) -> str:
+def _suggest(name: str, candidates: Iterable[str]) -> str:
     close = difflib.get_close_matches(name, sorted(candidates), n=3, cutoff=0.6)
     return f" (did you mean {', '.join(repr(c) for c in close)}?)" if close else ""
 

@@ -7,6 +7,7 @@ are rendered to inline SVG by vl-convert, so the report needs no network to be v
 
 from __future__ import annotations
 
+import functools
 import html
 import math
 from collections.abc import Callable, Sequence
@@ -236,7 +237,7 @@ def _grouped_traces(data: ReportData) -> str:
         frame = trace_by_group(data.results["trace"], groups, name)
         title = "declared state" if name == "state" else esc(name)
         parts.append(f"<h3>Cohort trace by {title}</h3>")
-        parts.append(svg(lambda frame=frame: make_trace_chart(frame)))
+        parts.append(svg(functools.partial(make_trace_chart, frame)))
     return "".join(parts)
 
 
