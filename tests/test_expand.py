@@ -674,3 +674,51 @@ b = 1
     assert rows["a__on_drug_0"] == {"b__on_drug_1__in_b_0": 1.0}
     assert rows["b__on_drug_1__in_b_0"] == {"b__on_drug_2__in_b_1plus": 1.0}
     assert rows["b__on_drug_3plus__in_b_1plus"] == {"b__on_drug_3plus__in_b_1plus": 1.0}
+
+
+@settings(max_examples=25, deadline=None)
+@given(
+    n_values=st.integers(1, 4),
+    length=st.integers(1, 4),
+    limited=st.booleans(),
+    die=st.floats(0.0, 0.5),
+)
+def test_generated_states_are_counted_named_once_and_keep_the_cohort_whole(
+    n_values, length, limited, die
+):
+    # Invariants (common practice): one state per value and step, ids unique, rows that
+    # sum to 1, and a cohort trace whose groups add up to the whole cohort every cycle.
+    values = ", ".join(f"v{i} = {i}" for i in range(n_values))
+    only_for = 'only_for = { kind = "v0" }\n' if limited else ""
+    text = (
+        HEADER.format(horizon=5, start="a__v0", within="start", discount=0.0)
+        + f"""
+[attributes.kind]
+values = {{ {values} }}
+[tunnels.t]
+length = {length}
+{only_for}
+[[states]]
+id = "a"
+qaly_weight = "1 - 0.1 * kind - 0.01 * t"
+attributes = ["kind"]
+tunnels = ["t"]
+[[states]]
+id = "dead"
+absorbing = true
+[[actions]]
+id = "wait"
+[transitions.wait.a]
+dead = {die!r}
+a__v0 = "rest"
+"""
+    )
+    compiled = _compiled(text)
+    in_tunnel = 1 if limited else n_values
+    assert compiled.n_states == (n_values - in_tunnel) + in_tunnel * (length + 1) + 1
+    assert len(set(compiled.state_ids)) == compiled.n_states
+    np.testing.assert_allclose(compiled.transition.sum(axis=-1), 1.0, atol=1e-12)
+    outcome = evaluate_policy(compiled, 0, Objective("qalys", 0.0))
+    for by in ("state", "kind", "t"):
+        grouped = grouped_trace(outcome.trace[0], outcome.ages, compiled, by)
+        np.testing.assert_allclose(grouped.groupby("cycle")["proportion"].sum(), 1.0, atol=1e-12)
