@@ -109,8 +109,12 @@ def parse_model_expressions(model: Model) -> ParsedModel:
     from caredecide.expressions import REST_KEYWORD, parse_expression
 
     model = expand_model(model)  # attributes and tunnels -> flat states
+    from caredecide.derived import resolve_derived
+
     parsed = ParsedModel()
     parameter_names = model.parameter_names()
+    definitions, parsed.problems = resolve_derived(model.derived, parameter_names)
+    known = (*parameter_names, *model.derived)
     state_index = {s: i for i, s in enumerate(model.state_ids)}
     action_index = {a: i for i, a in enumerate(model.action_ids)}
     absorbing = {s.id for s in model.states if s.absorbing}
@@ -124,7 +128,8 @@ def parse_model_expressions(model: Model) -> ParsedModel:
     def parse(value: Any, where: str, allow_rest: bool = False, **index: int) -> Entry | None:
         try:
             expression = parse_expression(value, where=where, allow_rest=allow_rest)
-            expression.check_names(parameter_names, where=where)
+            expression.check_names(known, where=where)
+            expression = expression.with_definitions(definitions)
         except ExpressionError as error:
             message = str(error)
             if message.startswith(f"{where}: "):  # Problem shows `where` itself
@@ -564,6 +569,17 @@ def _fill_rate_rows(
     )
 
 
+def setting_values(settings) -> dict[str, float]:
+    """The settings expressions may read (:data:`caredecide.expressions.SETTING_NAMES`)."""
+    return {
+        "cycle_years": settings.cycle_years,
+        "start_age": settings.start_age,
+        "discount_costs": settings.discount_costs,
+        "discount_outcomes": settings.discount_outcomes,
+        "willingness_to_pay": settings.willingness_to_pay,
+    }
+
+
 class _Evaluator:
     """Evaluates expressions over (D, T) and reports failures by draw and cycle/age."""
 
@@ -582,6 +598,7 @@ class _Evaluator:
             age = settings.start_age + years
             variables: dict[str, np.ndarray | float] = dict(values)
             variables.update(age=age, cycle=cycle, years=years, cycle_years=settings.cycle_years)
+            variables.update(setting_values(settings))
             if model.mortality is not None:
                 variables["background"] = background_probability(
                     model.mortality, age, settings.cycle_years

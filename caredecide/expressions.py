@@ -62,6 +62,7 @@ __all__ = [
     "MAX_LENGTH",
     "RESERVED_NAMES",
     "REST_KEYWORD",
+    "SETTING_NAMES",
     "Expression",
     "FunctionSpec",
     "did_you_mean",
@@ -71,10 +72,17 @@ __all__ = [
 REST_KEYWORD = "rest"
 """The keyword meaning "whatever probability remains in this row"."""
 
-RESERVED_NAMES = frozenset({"age", "cycle", "years", "cycle_years", "background"})
+SETTING_NAMES = frozenset(
+    {"cycle_years", "start_age", "discount_costs", "discount_outcomes", "willingness_to_pay"}
+)
+"""Settings readable in expressions, by their ``[settings]`` key: cycle length (years),
+age at the model start (years), annual discount rates of costs and of outcomes, and the
+willingness to pay per QALY."""
+
+RESERVED_NAMES = frozenset({"age", "cycle", "years", "background"}) | SETTING_NAMES
 """Variables the model supplies at evaluation: age at cycle start (years), 0-based cycle
-index, years since model start, cycle length (years) and background mortality
-probability per cycle at that age."""
+index, years since model start, background mortality probability per cycle at that age,
+and the settings of :data:`SETTING_NAMES`."""
 
 MAX_LENGTH = MAX_EXPRESSION_LENGTH
 
@@ -661,6 +669,46 @@ class Expression:
                 expected="inputs that broadcast together",
             ) from exc
 
+    def with_definitions(self, definitions: Mapping[str, Expression]) -> Expression:
+        """This expression with every name defined in ``definitions`` replaced by its
+        definition (named intermediate expressions, ``[derived]`` in a model file).
+
+        Parameters
+        ----------
+        definitions : mapping of str to Expression
+            Definitions that are themselves already expanded (no defined name left).
+
+        Returns
+        -------
+        Expression
+            Same ``source`` and ``where`` (messages show what the user wrote); ``names``
+            and ``functions`` are those of the expanded program, so time dependence and
+            the parameters used are seen through the definitions. ``self`` when no
+            defined name is used.
+        """
+        used = self.names & definitions.keys()
+        if not used:
+            return self
+        program: list[_Instruction] = []
+        for instruction in self._program:
+            if instruction[0] == "load" and instruction[1] in used:
+                program.extend(definitions[instruction[1]]._program)
+            else:
+                program.append(instruction)
+        names = set(self.names - used)
+        functions = set(self.functions)
+        for name in used:
+            names |= definitions[name].names
+            functions |= definitions[name].functions
+        return Expression(
+            self.source,
+            frozenset(names),
+            frozenset(functions),
+            self.is_rest,
+            tuple(program),
+            self.where,
+        )
+
     def check_names(
         self, known: Collection[str], *, where: str, include_reserved: bool = True
     ) -> None:
@@ -685,7 +733,7 @@ class Expression:
             where,
             self.source,
             f"unknown name{plural} {listed}",
-            expected="parameter names defined in the model or one of "
+            expected="parameter or [derived] names defined in the model or one of "
             + ", ".join(sorted(RESERVED_NAMES)),
         )
 

@@ -274,6 +274,9 @@ class Model:
     """State attributes (``[attributes]``); states listing them are expanded before compiling."""
     tunnels: Mapping[str, Tunnel] = field(default_factory=dict)
     """Tunnels (``[tunnels]``); states listing them are expanded before compiling."""
+    derived: Mapping[str, ExpressionText] = field(default_factory=dict)
+    """Named intermediate expressions (``[derived]``): ``name -> expression``, defined
+    once and usable in any expression (:mod:`caredecide.derived`)."""
     description: str = ""
     format_version: int = FORMAT_VERSION
     source_path: Path | None = field(default=None, compare=False)

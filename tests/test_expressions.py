@@ -34,7 +34,10 @@ def value(text: str | float, **variables: object) -> float:
 
 def test_contract_constants() -> None:
     assert REST_KEYWORD == "rest"
-    assert RESERVED_NAMES == {"age", "cycle", "years", "cycle_years", "background"}
+    assert RESERVED_NAMES == {
+        "age", "cycle", "years", "cycle_years", "background",
+        "start_age", "discount_costs", "discount_outcomes", "willingness_to_pay",
+    }  # fmt: skip
     expected_arity = {
         "rate_behind": 2, "chance_within": 2, "per_cycle": 2, "with_rr": 2, "times_rr": 2,
         "with_hr": 2, "with_or": 2, "rate_behind_survival": 2, "rate_behind_median": 1,

@@ -138,13 +138,17 @@ def unused_parameter_warnings(model: Model, used_names: set[str]) -> list[ModelW
 def _one_off_values(model: Model) -> dict[tuple[str, str], tuple[str, float | None]]:
     """``(action, "cost" | "QALY loss") -> (text, base-case value or None)`` for every
     one-off charge that is not the number 0; None when it varies with time."""
+    from caredecide.compile import setting_values
+    from caredecide.derived import resolve_derived
     from caredecide.expressions import parse_expression
 
-    base = model.base_parameter_values()
+    base = model.base_parameter_values() | setting_values(model.settings)
+    definitions, _ = resolve_derived(model.derived, model.parameter_names())
     values: dict[tuple[str, str], tuple[str, float | None]] = {}
     for action in model.actions:
         for attribute, what in (("oneoff_cost", "cost"), ("oneoff_qaly_loss", "QALY loss")):
             expression = parse_expression(getattr(action, attribute))
+            expression = expression.with_definitions(definitions)
             value = None
             if expression.names <= set(base):
                 value = float(expression.evaluate(base))

@@ -52,6 +52,7 @@ TOP_KEYS = (
     "mortality",
     "attributes",
     "tunnels",
+    "derived",
 )
 SETTINGS_KEYS = (
     "cycle_years",
@@ -313,6 +314,8 @@ def _build_model(data: Mapping[str, Any], base_dir: Path) -> tuple[Model, list[P
         name: _read_tunnel(r, name, r.table(raw, f"tunnels.{name}", TUNNEL_KEYS))
         for name, raw in r.table(data.get("tunnels", {}), "tunnels", None).items()
     }
+    raw_derived = r.table(data.get("derived", {}), "derived", None)
+    derived = {name: r.expression(raw_derived, name, "derived") for name in raw_derived}
     model = Model(
         format_version=format_version if isinstance(format_version, int) else FORMAT_VERSION,
         title=title or "",
@@ -327,6 +330,7 @@ def _build_model(data: Mapping[str, Any], base_dir: Path) -> tuple[Model, list[P
         mortality=mortality,
         attributes=attributes,
         tunnels=tunnels,
+        derived=derived,
     )
     return model, r.problems
 

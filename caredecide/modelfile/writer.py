@@ -46,6 +46,8 @@ def dumps_model(model: Model) -> str:
     if s.severity_order:
         settings["severity_order"] = list(s.severity_order)
     _section(out, "[settings]", settings)
+    if model.derived:
+        _section(out, "[derived]", dict(model.derived))
     for name, attribute in model.attributes.items():
         fields: dict[str, Any] = {"values": dict(attribute.values)}
         if attribute.label:
