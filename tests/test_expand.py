@@ -73,9 +73,8 @@ stage_2 = "with_hr(p_12, when(on_treatment == 1, hr, 1))"
 dead = "p_die"
 stage_1 = "rest"
 
-[transitions.wait.stage_2]
-dead = "p_die + 0.1 * (1 - on_treatment)"
-stage_2 = "rest"
+[rates.wait.stage_2]
+dead = "rate_behind(p_die, 1) + 0.1 * (1 - on_treatment)"
 
 [transitions.treat.stage_1]
 stage_2__treated = "with_hr(p_12, hr)"
@@ -137,13 +136,11 @@ stage_2__treated = "with_hr(p_12, hr)"
 dead = "p_die"
 stage_1__treated = "rest"
 
-[transitions.wait.stage_2__untreated]
-dead = "p_die + 0.1"
-stage_2__untreated = "rest"
+[rates.wait.stage_2__untreated]
+dead = "rate_behind(p_die, 1) + 0.1"
 
-[transitions.wait.stage_2__treated]
-dead = "p_die"
-stage_2__treated = "rest"
+[rates.wait.stage_2__treated]
+dead = "rate_behind(p_die, 1)"
 
 [transitions.treat.stage_1__untreated]
 stage_2__treated = "with_hr(p_12, hr)"
