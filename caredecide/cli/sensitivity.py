@@ -65,6 +65,57 @@ def _one_way_table(table: pd.DataFrame, unit: str) -> Table:
     return out
 
 
+def _decision_table(table: pd.DataFrame, unit: str) -> Table:
+    """The decision tornado: value lost by keeping the base-case policy, ranked."""
+    from caredecide.sensitivity.decision import LOSS_SOURCE
+
+    out = Table(
+        title=f"Decision tornado: value lost by keeping the base-case policy ({unit} per "
+        f"person), ranked by the mean at the two ends ({LOSS_SOURCE})"
+    )
+    for column in ("rank", "parameter", "low end", "high end", "mean", "cells",
+                   "threshold", "distance", "value rank"):  # fmt: skip
+        out.add_column(column, justify="left" if column == "parameter" else "right", no_wrap=True)
+    for row in table.itertuples():
+        out.add_row(
+            str(row.rank),
+            plain(row.parameter),
+            _number(row.loss_low),
+            _number(row.loss_high),
+            _number(row.loss_at_bounds),
+            f"{row.share_cells_changed:.0%}",
+            _number(row.nearest_threshold),
+            "" if math.isnan(row.distance_share) else f"{row.distance_share:.1%}",
+            str(row.value_rank),
+        )
+    return out
+
+
+def _context_table(context: pd.DataFrame) -> Table:
+    """Decision thresholds beside the base value, range and probability beyond."""
+    out = Table(
+        title="Decision thresholds (parameter value where the best action switches), with the "
+        "base value, the distance as a share of the range and the probability of a value "
+        "beyond under the distribution"
+    )
+    for column in ("parameter", "state", "ages", "below", "above", "base", "threshold",
+                   "distance", "P(beyond)"):  # fmt: skip
+        out.add_column(column, no_wrap=column not in ("ages", "below", "above"))
+    for row in context.itertuples():
+        out.add_row(
+            plain(row.parameter),
+            "" if pd.isna(row.state) else plain(row.state),
+            str(row.ages),
+            "" if pd.isna(row.action_below) else plain(row.action_below),
+            "" if pd.isna(row.action_above) else plain(row.action_above),
+            _number(row.base),
+            _number(row.threshold),
+            "" if pd.isna(row.distance_share) else f"{row.distance_share:.1%}",
+            "" if pd.isna(row.probability_beyond) else f"{row.probability_beyond:.1%}",
+        )
+    return out
+
+
 def _policy_changes(table: pd.DataFrame) -> list[str]:
     """One line per parameter whose range changes the policy: where and how."""
     return [
@@ -129,6 +180,14 @@ def run_sensitivity(
             "--parameters",
             "-p",
             help="Parameter(s) to vary: repeat the option or separate by commas (default: all).",
+        ),
+    ] = None,
+    region_map: Annotated[
+        str | None,
+        typer.Option(
+            "--region-map",
+            help="A parameter: map the best action per (its value, age) in every state "
+            "(region_map.csv and chart with --out).",
         ),
     ] = None,
     two_way_pair: Annotated[
@@ -207,6 +266,9 @@ def run_sensitivity(
             two_way,
         )
         from caredecide.sensitivity.cells import check_cell_options
+        from caredecide.sensitivity.context import threshold_context
+        from caredecide.sensitivity.decision import decision_tornado
+        from caredecide.sensitivity.regions import policy_region_map
         from caredecide.sensitivity.variation import default_objective
 
         if out is not None:  # before the run: a folder that cannot be made fails at once
@@ -215,6 +277,10 @@ def run_sensitivity(
         loaded = load_and_warn(model, strict=strict)
         if two_way_pair:  # check the pair before the long one-way and threshold runs
             _check_pair(loaded, two_way_pair, str(model))
+        if region_map:  # an unknown name: an error naming parameters.<name>, before the runs
+            from caredecide.sensitivity import parameter_ranges
+
+            parameter_ranges(loaded, [region_map])
         if transition_cells:
             check_cell_options(
                 cell_loss_factors, cell_search_max,
@@ -240,6 +306,9 @@ def run_sensitivity(
             steps.append("discount-rate threshold")
         if two_way_pair:
             steps.append("two-way map")
+        if region_map:
+            steps.append("region map")
+        region_meta = None
         if transition_cells:
             steps.append("transition cells")
         results: dict[str, pd.DataFrame] = {}
@@ -258,6 +327,16 @@ def run_sensitivity(
                     results["thresholds"] = parameter_thresholds(
                         loaded, names, objective=objective, grid=grid, progress=report(step)
                     )
+                    results["thresholds_context"] = threshold_context(loaded, results["thresholds"])
+                    results["decision_tornado"] = decision_tornado(
+                        loaded, names, objective=objective, grid=grid,
+                        thresholds=results["thresholds"],
+                    ).table  # fmt: skip
+                elif step == "region map":
+                    assert region_map is not None  # the step is listed only with a name
+                    regions = policy_region_map(loaded, region_map, objective=objective)
+                    results["region_map"] = regions.frame
+                    region_meta = (regions.parameter, regions.base, regions.action_labels)
                 elif step.startswith("willingness"):
                     high = wtp_max if wtp_max is not None else 2 * objective.willingness_to_pay
                     results["threshold_willingness_to_pay"] = setting_thresholds(
@@ -295,6 +374,7 @@ def run_sensitivity(
                     "converge (the value shown is the last iterate of Brent's method)"
                 )
     stdout.print(f"Objective: {plain(objective.describe())}; model: {plain(loaded.title)}")
+    _print(_decision_table(results["decision_tornado"], objective.unit))
     _print(_one_way_table(results["oneway"], objective.unit))
     changes = _policy_changes(results["oneway"])
     if changes:
@@ -310,12 +390,7 @@ def run_sensitivity(
         stdout.print("How the other estimates follow a move:")
     for row in moved.itertuples():
         stdout.print(f"  {plain(row.parameter)}: {plain(row.rule)}")
-    _print(
-        _threshold_table(
-            summarise_thresholds(results["thresholds"]),
-            "Decision thresholds (parameter value where the best action switches)",
-        )
-    )
+    _print(_context_table(results["thresholds_context"]))
     for key, label in (
         ("threshold_willingness_to_pay", "willingness to pay"),
         ("threshold_discount_rate", "discount rate (outcomes and costs together)"),
@@ -346,7 +421,7 @@ def run_sensitivity(
 
     if out is not None:
         with user_errors():
-            _write_outputs(out, results, objective.unit, quiet)
+            _write_outputs(out, results, objective.unit, quiet, region_meta)
             if transition_cells:
                 written = save_cell_matrices(cells, out)
                 if not quiet:
@@ -368,8 +443,11 @@ def _check_pair(model, pair: tuple[str, str], file: str) -> None:
     parameter_ranges(model, list(pair))  # unknown names: an error naming parameters.<name>
 
 
-def _write_outputs(out: Path, results: dict[str, pd.DataFrame], unit: str, quiet: bool) -> None:
+def _write_outputs(
+    out: Path, results: dict[str, pd.DataFrame], unit: str, quiet: bool, region_meta=None
+) -> None:
     from caredecide.charts import make_tornado_chart, make_two_way_chart
+    from caredecide.decision_charts import make_decision_tornado_chart, make_region_map_chart
 
     written = []
     with writing_to(out):
@@ -379,6 +457,14 @@ def _write_outputs(out: Path, results: dict[str, pd.DataFrame], unit: str, quiet
             written.append(path)
         tornado = make_tornado_chart(results["oneway"], unit=f"({unit})")
         written += save_chart(tornado, out, "tornado")
+        decision = make_decision_tornado_chart(results["decision_tornado"], unit=unit)
+        written += save_chart(decision, out, "decision_tornado")
+        if region_meta is not None:
+            name, base, labels = region_meta
+            chart = make_region_map_chart(
+                results["region_map"], x_title=name, action_labels=labels, base=base
+            )
+            written += save_chart(chart, out, "region_map")
         if "twoway" in results:
             written += save_chart(make_two_way_chart(results["twoway"]), out, "twoway")
     if not quiet:
