@@ -6,7 +6,7 @@ from __future__ import annotations
 import pandas as pd
 import streamlit as st
 
-from caredecide import charts
+from caredecide import charts, decision_charts
 from caredecide.compare import compare_strategies
 from caredecide.errors import CaredecideError
 from caredecide.modelfile import loads_model
@@ -48,18 +48,33 @@ def run_comparison(
     wtp: float,
     low: float,
     high: float,
+    include_optimal: bool = True,
+    reference: str | None = None,
 ):
     """Compare strategies (cached on the model text, the tables' text and the WTP figures)."""
     model = loads_model(text, file=file, base_dir=base_dir)
     strategies = [s for name, content in tables for s in read_strategy_table(name, text=content)]
     result = compare_strategies(
-        model, strategies, wtp, (low, high) if high > low else None, builtins=True
+        model,
+        strategies,
+        wtp,
+        (low, high) if high > low else None,
+        builtins=True,
+        include_optimal=include_optimal,
+        reference=reference,
     )
     return (
         result.table,
         result.frontier,
         result.notes,
         [(r.strategy.name, note) for r in result.resolved for note in r.notes],
+        {
+            "collapsed": result.frontier_collapsed,
+            "state_switches": result.state_switches,
+            "regions": result.regions,
+            "effect": result.effect_label,
+            "actions": [a.label or a.id for a in model.actions],
+        },
     )
 
 
@@ -91,6 +106,10 @@ high = right.number_input(
     value=2.0 * float(settings.willingness_to_pay or 10000.0),
     step=1000.0,
     key="strategies_high",
+)
+options_left, options_right = st.columns(2)
+include_optimal = options_left.checkbox(
+    "Include the optimal policy in the table", value=True, key="strategies_include_optimal"
 )
 upload = st.file_uploader(
     "Strategy table (CSV: strategy, state, age_from, age_to, action)",
@@ -132,7 +151,7 @@ if high < low:
     st.stop()
 try:
     with st.spinner("Solving and evaluating every strategy..."):
-        table, frontier, notes, fallbacks = run_comparison(
+        arguments = (
             working_model.working_text(),
             working_model.file_label(),
             working_model.base_folder(),
@@ -140,7 +159,15 @@ try:
             float(wtp),
             float(low),
             float(high),
+            bool(include_optimal),
         )
+        table, frontier, notes, fallbacks, extra = run_comparison(*arguments)
+        choices = ["(none)", *table["strategy"]]
+        reference = options_right.selectbox(
+            "Also compare every strategy with", choices, index=0, key="strategies_reference"
+        )
+        if reference != "(none)":
+            table, frontier, notes, fallbacks, extra = run_comparison(*arguments, reference)
 except CaredecideError as error:
     st.error(str(error), icon=":material/error:")
     st.stop()
@@ -150,7 +177,15 @@ st.subheader(f"Best at {wtp:,.0f} {currency} per QALY: {best}")
 st.altair_chart(
     charts.make_ce_plane_chart(table, currency=f"({currency})"), key="strategies_ce_plane"
 )
-st.dataframe(table[TABLE_COLUMNS], hide_index=True, key="strategies_table")
+effect = extra["effect"]
+columns = TABLE_COLUMNS + [
+    c for c in ("cost_vs_reference", "qalys_vs_reference", "icer_vs_reference") if c in table
+]
+st.dataframe(
+    table[columns].rename(columns={c: c.replace("qalys", effect) for c in columns if "qalys" in c}),
+    hide_index=True,
+    key="strategies_table",
+)
 for note in notes:
     st.info(note, icon=":material/info:")
 if fallbacks:
@@ -164,12 +199,31 @@ if fallbacks:
 if frontier is not None:
     st.subheader("Optimal policy over the willingness-to-pay range")
     st.caption(
-        "Each policy is optimal on one interval; switch points are where neighbouring "
-        "policies have equal net monetary benefit (found by root-finding, not only on "
-        "a grid)."
+        "Best action by age in each state as the willingness to pay rises (dashed line: the "
+        "chosen WTP). Switch points are where neighbouring policies have equal net monetary "
+        "benefit (found by root-finding, not only on a grid)."
     )
     st.altair_chart(
-        charts.make_frontier_chart(frontier, currency=f"({currency})"),
-        key="strategies_frontier_chart",
+        decision_charts.make_region_map_chart(
+            extra["regions"],
+            x_title=f"Willingness to pay ({currency} per QALY)",
+            action_labels=extra["actions"],
+            base=float(wtp),
+            title="Switch points per state over the willingness to pay",
+        ),
+        key="strategies_switch_chart",
     )
-    st.dataframe(frontier[FRONTIER_COLUMNS], hide_index=True, key="strategies_frontier")
+    st.dataframe(extra["state_switches"], hide_index=True, key="strategies_state_switches")
+    collapsed = extra["collapsed"]
+    st.caption(f"Frontier runs: {collapsed['tolerance'].iloc[0]}.")
+    st.dataframe(
+        collapsed[["policies", "wtp_from", "wtp_to", "cost", "qalys", "structure"]],
+        hide_index=True,
+        key="strategies_frontier_runs",
+    )
+    with st.expander(f"Every policy of the frontier ({len(frontier)})"):
+        st.altair_chart(
+            charts.make_frontier_chart(frontier, currency=f"({currency})"),
+            key="strategies_frontier_chart",
+        )
+        st.dataframe(frontier[FRONTIER_COLUMNS], hide_index=True, key="strategies_frontier")

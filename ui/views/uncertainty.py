@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import streamlit as st
 
-from caredecide import charts
+from caredecide import charts, decision_charts
 from caredecide.errors import CaredecideError
 from caredecide.limits import MAX_APP_DRAWS
 from caredecide.modelfile import loads_model
@@ -81,6 +81,30 @@ st.altair_chart(
 with st.expander("Shares per cycle with Monte Carlo errors"):
     st.dataframe(result.acceptability(), hide_index=True, key="uncertainty_acceptability_table")
 
+st.subheader("Probabilistic means per strategy")
+names = result.candidate_names
+reference = st.selectbox(
+    "Reference for the incremental figures",
+    names,
+    index=names.index(result.strategy_summary()["reference"].iloc[0]),
+    key="uncertainty_reference",
+)
+st.dataframe(
+    result.strategy_summary(reference=reference), hide_index=True, key="uncertainty_means_table"
+)
+st.caption(
+    "Means over the draws with 95% percentile intervals; ICER = ratio of the mean differences "
+    "against the reference. Held fixed at their base value (no distribution): "
+    + (", ".join(result.fixed_parameters) or "none")
+    + "."
+)
+st.altair_chart(
+    decision_charts.make_draws_plane_chart(
+        result.plane_frame(), currency=f"({settings.currency})" if settings.currency else ""
+    ),
+    key="uncertainty_plane",
+)
+
 st.subheader("Candidate policies: expected loss")
 st.dataframe(result.expected_loss(), hide_index=True, key="uncertainty_loss_table")
 
@@ -101,6 +125,34 @@ if len(evppi):
     st.dataframe(evppi, hide_index=True, key="uncertainty_evppi_table")
 else:
     st.info("EVPPI needs at least 200 draws and two distinct candidate policies.")
+
+st.subheader("Value of information for the population")
+a, b, c = st.columns(3)
+per_year = a.number_input(
+    "Persons facing the decision each year", min_value=0.0, value=1000.0, step=100.0,
+    key="uncertainty_population",
+)  # fmt: skip
+years = b.number_input(
+    "Years the decision stays in use", min_value=1, max_value=200, value=10, step=1,
+    key="uncertainty_years",
+)  # fmt: skip
+rate = c.number_input(
+    "Annual discount rate", min_value=0.0, max_value=0.99,
+    value=float(settings.discount_outcomes), step=0.005, format="%.3f",
+    key="uncertainty_population_rate",
+)  # fmt: skip
+try:
+    population = result.population_value_of_information(
+        float(per_year), int(years), float(rate), evppi=evppi if len(evppi) else None
+    )
+except CaredecideError as error:
+    st.error(str(error), icon=":material/error:")
+else:
+    st.dataframe(population, hide_index=True, key="uncertainty_population_table")
+    st.caption(
+        f"{population['persons'].iloc[0]:,.0f} persons once discounted: each year's persons "
+        "discounted to today, the first year undiscounted."
+    )
 
 st.subheader("Convergence")
 st.altair_chart(
