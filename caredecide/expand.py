@@ -408,6 +408,7 @@ class _Expander:
             )
         self.copies = self.build_copies()
         self.by_key = {(c.base, c.values, c.steps): c for c in self.copies}
+        self.inlined = self._derived_reading_copies()
         variables = {c.id: self.variables(c) for c in self.copies}
 
         states = []
@@ -419,17 +420,27 @@ class _Expander:
                     state,
                     id=copy.id,
                     label=copy.label,
-                    qaly_weight=substitute_names(state.qaly_weight, values),
-                    cost=substitute_names(state.cost, values),
+                    qaly_weight=substitute_names(self.inline(state.qaly_weight), values),
+                    cost=substitute_names(self.inline(state.cost), values),
                     attributes=(),
                     tunnels=(),
                 )
             )
             for field_name in ("qaly_weight", "cost"):
                 self._warn_unguarded(
-                    getattr(state, field_name), copy, f"states.{copy.id}.{field_name}"
+                    self.inline(getattr(state, field_name)), copy, f"states.{copy.id}.{field_name}"
                 )
 
+        for action in model.actions:  # actions are the same in every state
+            for field_name in ("oneoff_cost", "oneoff_qaly_loss", "cost_per_cycle"):
+                read = sorted(_names(getattr(action, field_name)) & set(self.inlined))
+                if read:
+                    self.add(
+                        f"actions.{action.id}.{field_name}",
+                        f"reads derived value(s) {read}, which read attributes or tunnels; "
+                        "an action's costs are the same in every state, so expected them "
+                        "in the states' costs or rows",
+                    )
         actions = []
         for action in model.actions:
             allowed = action.allowed_in
@@ -481,6 +492,8 @@ class _Expander:
             settings=replace(settings, start=start, severity_order=tuple(order)),
             attributes={},
             tunnels={},
+            # Definitions that read attributes or tunnels were written into each copy.
+            derived={k: v for k, v in model.derived.items() if k not in self.inlined},
         )
         return Expansion(flat, tuple(self.copies), self._groups(), tuple(self.warnings))
 
@@ -535,10 +548,37 @@ class _Expander:
                                 "another entry of the row reaches too; give each copy once",
                             )
                             continue
+                        value = self.inline(value)
                         flat_row[target.id] = substitute_names(value, variables[source.id])
                         self._warn_unguarded(value, source, f"{where}.{to_key}")
                     out[action_id][source.id] = flat_row
         return out
+
+    def _derived_reading_copies(self) -> dict[str, str]:
+        """``[derived]`` values that read an attribute or a tunnel, directly or through
+        other derived values: name -> definition text. Each copy gets them written in."""
+        reads = {name: _names(text) for name, text in self.model.derived.items()}
+        found: set[str] = set(self.model.attributes) | set(self.model.tunnels)
+        dependent: set[str] = set()
+        changed = True
+        while changed:
+            changed = False
+            for name, used in reads.items():
+                if name not in dependent and used & (found | dependent):
+                    dependent.add(name)
+                    changed = True
+        return {name: str(self.model.derived[name]) for name in dependent}
+
+    def inline(self, value: ExpressionText) -> ExpressionText:
+        """``value`` with the derived values that read attributes or tunnels written in."""
+        from caredecide.expressions import substitute_names
+
+        for _ in range(len(self.inlined) + 1):  # a loop of definitions is reported later
+            hits = _names(value) & set(self.inlined)
+            if not hits:
+                break
+            value = substitute_names(value, {name: self.inlined[name] for name in hits})
+        return value
 
     def _start_copy(self, key: str, where: str) -> str | None:
         copies = self.matching(key, where)
@@ -583,6 +623,19 @@ class _Expander:
                 for c in self.copies
             )
         return groups
+
+
+def _names(value: object) -> set[str]:
+    """Names an expression reads (empty when it does not parse; parsing reports it)."""
+    from caredecide.errors import ExpressionError
+    from caredecide.expressions import parse_expression
+
+    if not isinstance(value, str):
+        return set()
+    try:
+        return set(parse_expression(value).names)
+    except ExpressionError:
+        return set()
 
 
 def _step_id(tunnel: Tunnel, k: int) -> str:

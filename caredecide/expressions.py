@@ -800,21 +800,24 @@ def parse_expression(
     )
 
 
-def substitute_names(text: str | float | int, values: Mapping[str, float]) -> str | float | int:
-    """The expression with each variable in ``values`` replaced by its number.
+def substitute_names(
+    text: str | float | int, values: Mapping[str, float | str]
+) -> str | float | int:
+    """The expression with each variable in ``values`` replaced by its number or text.
 
     Used to give each expanded copy of a state its own attribute values and tunnel step
     (:mod:`caredecide.expand`): ``"c_care + on_treatment * c_drug"`` with
     ``{"on_treatment": 1}`` gives ``"c_care + 1.0 * c_drug"``. Numbers are written with
-    ``repr`` (exact), negative ones in parentheses. Names called as functions, numbers,
+    ``repr`` (exact), negative ones in parentheses; text (a definition written in place of
+    its name) always in parentheses. Names called as functions, numbers,
     ``rest`` and text that does not tokenize are left as they are (parsing reports them).
 
     Parameters
     ----------
     text : str, float or int
         Expression text, or a number (returned unchanged).
-    values : mapping of str to float
-        Variable name -> value.
+    values : mapping of str to float or str
+        Variable name -> number, or expression text to put in its place.
     """
     if not isinstance(text, str) or not values:
         return text
@@ -827,8 +830,12 @@ def substitute_names(text: str | float | int, values: Mapping[str, float]) -> st
     for token, following in itertools.pairwise(tokens):
         if token.kind != "name" or token.text not in values or following.text == "(":
             continue
-        number = float(values[token.text])
-        written = repr(number) if number >= 0 else f"({number!r})"
+        value = values[token.text]
+        if isinstance(value, str):
+            written = f"({value})"
+        else:
+            number = float(value)
+            written = repr(number) if number >= 0 else f"({number!r})"
         pieces.append(text[last : token.position])
         pieces.append(written)
         last = token.position + len(token.text)

@@ -719,3 +719,17 @@ a__v0 = "rest"
     for by in ("state", "kind", "t"):
         grouped = grouped_trace(outcome.trace[0], outcome.ages, compiled, by)
         np.testing.assert_allclose(grouped.groupby("cycle")["proportion"].sum(), 1.0, atol=1e-12)
+
+
+def test_a_derived_value_may_read_attributes_and_tunnels():
+    # Common practice: a named intermediate is shorthand, so writing it in changes nothing.
+    derived = '[derived]\ndrug_cost = "when(on_treatment == 1 and years_on_drug < 2, 1000, 0)"\n'
+    plain = _tunnel_model(start="sick__untreated", enter="0.5", die="0.1")
+    text = plain.replace(
+        'cost = "when(on_treatment == 1 and years_on_drug < 2, 1000, 0)"', 'cost = "drug_cost"'
+    )
+    with_derived = _compiled(text + derived)
+    assert np.array_equal(with_derived.state_cost, _compiled(plain).state_cost)
+    bad = text.replace('id = "wait"\n', 'id = "wait"\noneoff_cost = "drug_cost"\n') + derived
+    message = _errors(bad)
+    assert "actions.wait.oneoff_cost: reads derived value(s) ['drug_cost']" in message
