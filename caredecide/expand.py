@@ -39,12 +39,11 @@ from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field, replace
 
 from caredecide.errors import ModelError, ModelWarningRecord, Problem
+from caredecide.limits import MAX_EXPANDED_STATES
 from caredecide.model import ExpressionText, Model, State, StateAttribute, Tunnel
 
 SEPARATOR = "__"
 """Joins a state id, value names and tunnel steps into a generated state id."""
-MAX_EXPANDED_STATES = 2000
-"""Most states an expansion may generate (the transition array grows as the square)."""
 _IDENTIFIER = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
 
 

@@ -33,6 +33,10 @@ recursion limit, which ``tomllib`` and ``json`` would otherwise reach."""
 MAX_HASHED_BYTES = 4 * 1024**3
 """Largest file hashed for a run record (models, tables, outputs); a record may name any
 path, so a device or an endless file must not be read without end."""
+MAX_EXPANDED_STATES = 2000
+"""Most states attributes and tunnels may generate (:mod:`caredecide.expand`): the
+transition arrays grow as the square of the states (2,000 states and 3 actions take
+96 MB per parameter set and cycle); the compile step's memory check applies on top."""
 MAX_DRAWS = 100_000_000
 """Most probabilistic draws one run may ask for."""
 MAX_APP_DRAWS = 20_000
