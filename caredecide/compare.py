@@ -111,6 +111,21 @@ class ComparisonResult:
     effect_label: str = "QALYs"
     reference: str | None = None
 
+    def to_frame(self) -> pd.DataFrame:
+        """The incremental table: one row per strategy."""
+        return self.table
+
+    def to_dict(self) -> dict:
+        """The table, the frontier (if searched), the best strategy and notes (JSON-ready)."""
+        return {
+            "willingness_to_pay": self.willingness_to_pay,
+            "best_strategy": self.best_strategy,
+            "optimal_strategy": self.optimal_strategy,
+            "table": self.table.to_dict(orient="records"),
+            "frontier": None if self.frontier is None else self.frontier.to_dict(orient="records"),
+            "notes": list(self.notes),
+        }
+
 
 def _load(model):
     from caredecide.modelfile import load_model

@@ -45,6 +45,14 @@ MAX_APP_DRAWS = 20_000
 MODEL_ENV = "CAREDECIDE_MODEL"
 """Environment variable through which the app receives the model file to open."""
 
+WTP_SEARCH_MAX_WHEN_ZERO = 100_000.0
+"""Upper end (money per QALY) of willingness-to-pay searches and curves when the model's
+willingness to pay is 0 (otherwise the upper end is twice the model's value)."""
+SETTING_THRESHOLD_GRID = 21
+"""Fewest grid values when searching a setting's threshold (willingness to pay, discount)."""
+DISCOUNT_SEARCH_MAX = 0.10
+"""Upper end of the discount-rate threshold search (annual rate)."""
+
 MEMORY_FRACTION = 0.5
 """Share of the currently available physical memory a batch may use."""
 FALLBACK_MEMORY_BYTES = 4 * 1024**3

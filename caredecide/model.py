@@ -114,6 +114,21 @@ class StateAttribute:
 
 
 @dataclass(frozen=True)
+class Scenario:
+    """A ``[scenarios.<name>]`` entry: a named set of overrides of model-file values.
+
+    ``overrides`` maps a path of the model file (``settings.discount_costs``,
+    ``parameters.hr_treatment.value``, ``states.stage_2.cost``) to its value in the
+    scenario; every other value is the base case's.
+    """
+
+    name: str
+    overrides: Mapping[str, Any]
+    label: str = ""
+    note: str = ""
+
+
+@dataclass(frozen=True)
 class Tunnel:
     """One ``[tunnels.<name>]`` entry: whole cycles spent since entering a group of states.
 
@@ -273,6 +288,8 @@ class Model:
     attributes: Mapping[str, StateAttribute] = field(default_factory=dict)
     """State attributes (``[attributes]``); states listing them are expanded before compiling."""
     tunnels: Mapping[str, Tunnel] = field(default_factory=dict)
+    scenarios: Mapping[str, Scenario] = field(default_factory=dict)
+    """Named scenarios (``[scenarios.<name>]``), in file order."""
     """Tunnels (``[tunnels]``); states listing them are expanded before compiling."""
     derived: Mapping[str, ExpressionText] = field(default_factory=dict)
     """Named intermediate expressions (``[derived]``): ``name -> expression``, defined

@@ -105,6 +105,14 @@ class VerificationReport:
     def failures(self) -> list[CheckResult]:
         return [c for c in self.checks if c.status == FAIL]
 
+    def to_dict(self) -> dict:
+        """The model title, the verdict and one entry per check (JSON-ready)."""
+        return {
+            "model": self.model_title,
+            "passed": self.passed,
+            "checks": self.to_frame().to_dict(orient="records"),
+        }
+
     def to_frame(self) -> pd.DataFrame:
         """One row per check: check, title, status, figures, expected, source."""
         columns = ["check", "title", "status", "figures", "expected", "source"]

@@ -14,6 +14,7 @@ from typing import Annotated
 import typer
 
 from caredecide.cli.console import plain, stderr
+from caredecide.compiled import CompiledModel
 from caredecide.errors import CaredecideError, ModelWarningRecord
 from caredecide.model import Model
 
@@ -59,6 +60,14 @@ def show_warnings(model: Model, warnings: list[ModelWarningRecord], *, strict: b
 def load_and_warn(path: Path | str, *, strict: bool) -> Model:
     """Load and validate the model file at ``path``, show its warnings, honour ``strict``.
 
+    See :func:`load_checked`, which also returns the compiled base case.
+    """
+    return load_checked(path, strict=strict)[0]
+
+
+def load_checked(path: Path | str, *, strict: bool) -> tuple[Model, CompiledModel]:
+    """Load and validate the model file at ``path``, show its warnings, honour ``strict``.
+
     Raises
     ------
     ModelError
@@ -66,8 +75,9 @@ def load_and_warn(path: Path | str, *, strict: bool) -> Model:
     WarningsAsErrors
         With ``strict`` when the model has warnings.
     """
-    from caredecide.modelfile import load_model, validate_model
+    from caredecide.modelfile import load_model, validate_and_compile
 
     model = load_model(path, validate=False)
-    show_warnings(model, validate_model(model), strict=strict)
-    return model
+    validated = validate_and_compile(model)  # compiles the base case once
+    show_warnings(model, validated.warnings, strict=strict)
+    return model, validated.compiled

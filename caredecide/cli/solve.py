@@ -22,7 +22,7 @@ from caredecide.cli.console import (
     user_errors,
     writing_to,
 )
-from caredecide.cli.model_warnings import StrictOption, load_and_warn
+from caredecide.cli.model_warnings import StrictOption, load_checked
 
 POLICY_COLUMNS = ["cycle", "age", "state", "action", "value", "next_best_action", "action_gap"]
 
@@ -145,27 +145,27 @@ def solve_command(
     strict: StrictOption = False,
 ) -> None:
     """Solve a model: when to start treatment, with totals (research use only)."""
-    from caredecide.compile import compile_model
-    from caredecide.evaluate import evaluate_policy
+    from caredecide.analysis import analyse_base_case
     from caredecide.grouping import with_group_columns
     from caredecide.objective import Objective, ObjectiveError
-    from caredecide.solvers import SolverError, solve
+    from caredecide.solvers import SolverError
 
     # The caution is always shown (stderr), whatever --quiet says.
     print_caution(model)
     with user_errors():
         with stderr.status("Solving...", spinner="dots") if not quiet else nullcontext():
-            loaded = load_and_warn(model, strict=strict)
+            loaded, compiled = load_checked(model, strict=strict)
             try:
                 objective = Objective.from_settings(loaded.settings, wtp)
             except ObjectiveError as error:  # name the option, not only the value
                 raise ObjectiveError(f"--wtp: {error}" if wtp is not None else error) from None
-            compiled = compile_model(loaded)
             try:
-                result = solve(compiled, objective, method=method.value)
+                base = analyse_base_case(
+                    loaded, objective=objective, compiled=compiled, method=method.value
+                )
             except SolverError as error:  # name the file the problem concerns
                 raise SolverError(f"{model}: {error}") from None
-            outcome = evaluate_policy(compiled, result.policy, objective)
+            result, outcome = base.solution, base.outcome
         summary = build_summary(model, compiled, result, outcome)
         if not result.success:
             stderr.print(f"[bold yellow]warning:[/] {plain(result.message)}")

@@ -12,7 +12,9 @@ from caredecide.modelfile.reader import load_model, loads_model
 from caredecide.modelfile.validator import (
     IDENTIFIER,
     ROW_TOLERANCE,
+    ValidatedModel,
     structural_problems,
+    validate_and_compile,
     validate_model,
 )
 from caredecide.modelfile.writer import dumps_model, save_model
@@ -21,10 +23,12 @@ __all__ = [
     "IDENTIFIER",
     "MAX_MODEL_BYTES",
     "ROW_TOLERANCE",
+    "ValidatedModel",
     "dumps_model",
     "load_model",
     "loads_model",
     "save_model",
     "structural_problems",
+    "validate_and_compile",
     "validate_model",
 ]

@@ -28,6 +28,7 @@ from caredecide.model import (
     Model,
     MortalitySpec,
     Parameter,
+    Scenario,
     Settings,
     State,
     StateAttribute,
@@ -53,6 +54,7 @@ TOP_KEYS = (
     "attributes",
     "tunnels",
     "derived",
+    "scenarios",
 )
 SETTINGS_KEYS = (
     "cycle_years",
@@ -316,6 +318,10 @@ def _build_model(data: Mapping[str, Any], base_dir: Path) -> tuple[Model, list[P
     }
     raw_derived = r.table(data.get("derived", {}), "derived", None)
     derived = {name: r.expression(raw_derived, name, "derived") for name in raw_derived}
+    scenarios = {
+        name: _read_scenario(r, name, r.table(raw, f"scenarios.{name}", None))
+        for name, raw in r.table(data.get("scenarios", {}), "scenarios", None).items()
+    }
     model = Model(
         format_version=format_version if isinstance(format_version, int) else FORMAT_VERSION,
         title=title or "",
@@ -331,8 +337,36 @@ def _build_model(data: Mapping[str, Any], base_dir: Path) -> tuple[Model, list[P
         attributes=attributes,
         tunnels=tunnels,
         derived=derived,
+        scenarios=scenarios,
     )
     return model, r.problems
+
+
+def _flatten(table: Mapping[str, Any], prefix: str = "") -> dict[str, Any]:
+    """Nested tables as dotted paths: ``{"settings": {"x": 1}}`` -> ``{"settings.x": 1}``."""
+    flat: dict[str, Any] = {}
+    for key, value in table.items():
+        path = f"{prefix}.{key}" if prefix else str(key)
+        if isinstance(value, Mapping):
+            flat.update(_flatten(value, path))
+        else:
+            flat[path] = value
+    return flat
+
+
+def _read_scenario(r: _Reader, name: str, t: dict[str, Any]) -> Scenario:
+    """``label`` and ``note`` are text; every other key is a path of the model file."""
+    w = f"scenarios.{name}"
+    label = r.text(t, "label", w, "")
+    note = r.text(t, "note", w, "")
+    overrides = _flatten({k: v for k, v in t.items() if k not in ("label", "note")})
+    for path in overrides:
+        if path.split(".")[0] == "scenarios":
+            r.problem(f"{w}.{path}", "a scenario cannot change the scenarios themselves")
+    if not overrides:
+        r.problem(w, "sets nothing; expected at least one path = value, e.g. "
+                  "settings.discount_costs = 0.06")  # fmt: skip
+    return Scenario(name=name, overrides=overrides, label=label or "", note=note or "")
 
 
 def _read_settings(r: _Reader, t: dict[str, Any]) -> Settings:

@@ -10,10 +10,11 @@ from __future__ import annotations
 
 import math
 import re
+from dataclasses import dataclass
 
 import numpy as np
 
-from caredecide.compiled import WITHIN_CYCLE_METHODS
+from caredecide.compiled import WITHIN_CYCLE_METHODS, CompiledModel
 from caredecide.errors import (
     DistributionError,
     ModelError,
@@ -423,17 +424,39 @@ def _check_time_use(model: Model, parsed, add) -> None:
             )
 
 
+@dataclass(frozen=True)
+class ValidatedModel:
+    """A model that passed every check: its warnings and its compiled base case.
+
+    Attributes
+    ----------
+    warnings : list of ModelWarningRecord
+    compiled : CompiledModel
+        The base case (one draw), compiled once during validation: pass it on to the
+        analysis instead of compiling again.
+    """
+
+    warnings: list[ModelWarningRecord]
+    compiled: CompiledModel
+
+
 def validate_model(model: Model) -> list[ModelWarningRecord]:
-    """Check a model completely; return warnings or raise listing every problem.
+    """Check a model completely; return its warnings (see :func:`validate_and_compile`)."""
+    return validate_and_compile(model).warnings
+
+
+def validate_and_compile(model: Model) -> ValidatedModel:
+    """Check a model completely; return warnings and the compiled base case, or raise.
 
     Runs the structural checks, parses every expression, then compiles the base case
     (which checks probabilities, rows, NaN and costs at every cycle).
 
     Returns
     -------
-    list of ModelWarningRecord
-        Suspicious but allowed values: QALY weights above 1, death probabilities below
-        background mortality, estimates used in a row of another unit with no conversion.
+    ValidatedModel
+        ``warnings``: suspicious but allowed values (QALY weights above 1, death
+        probabilities below background mortality, estimates used in a row of another
+        unit with no conversion); ``compiled``: the base case, so no caller compiles twice.
 
     Raises
     ------
@@ -450,19 +473,23 @@ def validate_model(model: Model) -> list[ModelWarningRecord]:
     parsed = parse_model_expressions(model)
     problems += parsed.problems
     _check_time_use(model, parsed, lambda w, m: problems.append(Problem(w, m)))
+    from caredecide.modelfile.overrides import scenario_problems
+
+    problems += scenario_problems(model)
     if problems:
         raise ModelError(problems, file=file)
     compiled = compile_model(model)
     records = [previous_format_warning()] if model.format_version == PREVIOUS_FORMAT_VERSION else []
     records += expansion.warnings
     used = {name for entry in parsed.all_entries() for name in entry.expression.names}
-    return (
+    warnings = (
         records
         + _unit_warnings(model, parsed)
         + _warnings(model, compiled)
         + repeated_charge_warnings(model, compiled)
         + unused_parameter_warnings(model, used)
     )
+    return ValidatedModel(warnings, compiled)
 
 
 def _unit_warnings(model: Model, parsed) -> list[ModelWarningRecord]:

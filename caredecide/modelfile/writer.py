@@ -127,6 +127,14 @@ def dumps_model(model: Model) -> str:
         if m.source:
             fields["source"] = m.source
         _section(out, "[mortality]", fields)
+    for name, scenario in model.scenarios.items():
+        fields = {}
+        if scenario.label:
+            fields["label"] = scenario.label
+        if scenario.note:
+            fields["note"] = scenario.note
+        fields.update(scenario.overrides)  # dotted paths, written as quoted keys
+        _section(out, f"[scenarios.{_key(name)}]", fields)
     return "\n".join(out) + "\n"
 
 

@@ -402,7 +402,22 @@ def sensitivity_section(data: ReportData) -> str:
             "<h3>Willingness-to-pay thresholds</h3>",
             table(data.results["threshold_willingness_to_pay"]),
         ]
-    return "".join(parts) + transition_cells_part(data)
+    return "".join(parts) + transition_cells_part(data) + scenarios_part(data)
+
+
+def scenarios_part(data: ReportData) -> str:
+    """The base case and the model's named scenarios side by side (when it has any)."""
+    if "scenarios" not in data.results:
+        return ""
+    return (
+        "<h3>Scenarios</h3>"
+        + _para(
+            "Each scenario changes the listed values of the model file. The ICER compares, "
+            "under the scenario's assumptions, its optimal policy with the base-case policy "
+            "kept unchanged."
+        )
+        + table(data.results["scenarios"])
+    )
 
 
 def transition_cells_part(data: ReportData) -> str:

@@ -645,6 +645,14 @@ class PSAResult:
         return pd.concat(frames, ignore_index=True)[["quantity", "n", "mean", "se"]]
 
     # -- probabilistic means per strategy -------------------------------------------------
+    def to_frame(self) -> pd.DataFrame:
+        """Mean cost, effect and ICER of every candidate (:meth:`strategy_summary`)."""
+        return self.strategy_summary()
+
+    def to_dict(self) -> dict:
+        """The run's summary (draws, seed, EVPI, candidates) as plain values (:meth:`summary`)."""
+        return self.summary()
+
     def strategy_summary(self, reference: str | None = None, level: float = 0.95) -> pd.DataFrame:
         """Probabilistic mean cost, effect and ICER of every candidate, with intervals.
 

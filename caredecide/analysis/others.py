@@ -1,0 +1,46 @@
+"""Entry points for strategies, uncertainty and verification, with their shared rules."""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING, Any
+
+from caredecide.model import Model
+from caredecide.objective import Objective
+
+if TYPE_CHECKING:  # each analysis imports its own modules on use (the report's notes)
+    from caredecide.compare import ComparisonResult
+    from caredecide.uncertainty.psa import PSAResult
+    from caredecide.verify import VerificationReport
+
+
+def analyse_strategies(
+    model: Model, strategies: Any = None, *, frontier: bool = True, **options: Any
+) -> ComparisonResult:
+    """Compare the optimal policy with fixed strategies at the model's willingness to pay.
+
+    With ``frontier`` (and the net-benefit objective) the willingness-to-pay frontier is
+    searched over the same range as the sensitivity suite's threshold
+    (:func:`~caredecide.analysis.sensitivity.willingness_to_pay_search`). Other options go
+    to :func:`caredecide.compare.compare_strategies`.
+    """
+    from caredecide.analysis.sensitivity import willingness_to_pay_search
+    from caredecide.compare import compare_strategies
+
+    objective = Objective.from_settings(model.settings, options.get("wtp"))
+    if frontier and "wtp_range" not in options:
+        options["wtp_range"] = willingness_to_pay_search(objective)
+    return compare_strategies(model, strategies, **options)
+
+
+def analyse_uncertainty(model: Model, n_draws: int, seed: int, **options: Any) -> PSAResult:
+    """The probabilistic analysis (:func:`caredecide.uncertainty.psa.analyse_uncertainty`)."""
+    from caredecide.uncertainty.psa import analyse_uncertainty as run
+
+    return run(model, n_draws, seed, **options)
+
+
+def analyse_verification(model: Model, **options: Any) -> VerificationReport:
+    """The verification battery (:func:`caredecide.verify.verify_model`)."""
+    from caredecide.verify import verify_model
+
+    return verify_model(model, **options)
