@@ -16,15 +16,13 @@ import pandas as pd
 import streamlit as st
 
 from caredecide.cautions import caution_long, caution_short
-from caredecide.compile import compile_model
 from caredecide.errors import CaredecideError, ModelError, ModelWarningRecord, Problem
-from caredecide.evaluate import evaluate_policy
 from caredecide.guarded import decode_text, read_limited_text
 from caredecide.limits import MAX_MODEL_BYTES, MAX_STRATEGY_TABLE_BYTES, MODEL_ENV
 from caredecide.model import Model
 from caredecide.modelfile import loads_model, validate_model
 from caredecide.objective import Objective
-from caredecide.solvers import PolicyResult, solve
+from caredecide.solvers import PolicyResult
 from caredecide.structure import PolicyStructure
 from synthetic_cohort import demo_model_path
 from ui import drafts
@@ -277,24 +275,22 @@ def solve_model(
     CaredecideError
         When the model is invalid or cannot be solved as asked.
     """
+    from caredecide.analysis.base_case import analyse_base_case
+    from caredecide.grouping import state_group_frame
+
     model = _model if _model is not None else loads_model(text, file=file, base_dir=base_dir)
-    compiled = compile_model(model)
-    objective = Objective(kind, float(willingness_to_pay))
-    result = solve(
-        compiled,
-        objective,
+    base = analyse_base_case(
+        model,
+        objective=Objective(kind, float(willingness_to_pay)),
         method=method,
         record_history=record_history,
         max_iterations=max_iterations,
     )
-    evaluation = evaluate_policy(compiled, result.policy, objective)
-    from caredecide.grouping import state_group_frame
-
     return Solved(
-        result,
-        evaluation.trace_frame(),
-        evaluation.totals_frame(),
-        state_group_frame(compiled),
+        base.solution,
+        base.trace_frame(),
+        base.outcome.totals_frame(),
+        state_group_frame(base.compiled),
     )
 
 

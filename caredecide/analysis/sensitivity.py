@@ -62,6 +62,25 @@ def willingness_to_pay_search(
     return (0.0, float(high))
 
 
+def setting_threshold(
+    model: Model,
+    setting: str,
+    high: float,
+    *,
+    objective: Objective | None = None,
+    grid: int = DEFAULT_GRID,
+    progress: Callable[[int, int], None] | None = None,
+) -> pd.DataFrame:
+    """Threshold table of one setting searched over ``[0, high]`` (the suite's grid rule).
+
+    The grid has at least :data:`~caredecide.limits.SETTING_THRESHOLD_GRID` values.
+    """
+    return setting_thresholds(
+        model, setting, 0.0, high, objective=objective,
+        grid=max(grid, SETTING_THRESHOLD_GRID), progress=progress,
+    )  # fmt: skip
+
+
 @dataclass
 class SensitivitySuite:
     """Everything the sensitivity suite found.
@@ -161,7 +180,6 @@ def analyse_sensitivity(
         model, names, objective=objective, grid=grid, progress=step("parameter thresholds")
     )
     suite = SensitivitySuite(objective, one, thresholds)
-    setting_grid = max(grid, SETTING_THRESHOLD_GRID)
     wtp_range = willingness_to_pay_search(objective, wtp_max)
     if wtp_range is None:
         suite.notes.append(
@@ -170,9 +188,9 @@ def analyse_sensitivity(
         )
     else:
         suite.searched["willingness_to_pay"] = wtp_range
-        suite.setting_thresholds["willingness_to_pay"] = setting_thresholds(
-            model, "willingness_to_pay", *wtp_range, objective=objective,
-            grid=setting_grid, progress=step("willingness-to-pay threshold"),
+        suite.setting_thresholds["willingness_to_pay"] = setting_threshold(
+            model, "willingness_to_pay", wtp_range[1], objective=objective,
+            grid=grid, progress=step("willingness-to-pay threshold"),
         )  # fmt: skip
     if model.n_cycles() is None:
         suite.notes.append(
@@ -181,8 +199,8 @@ def analyse_sensitivity(
         )
     else:
         suite.searched["discount_rate"] = (0.0, float(discount_max))
-        suite.setting_thresholds["discount_rate"] = setting_thresholds(
-            model, "discount_rate", 0.0, discount_max, objective=objective,
-            grid=setting_grid, progress=step("discount-rate threshold"),
+        suite.setting_thresholds["discount_rate"] = setting_threshold(
+            model, "discount_rate", discount_max, objective=objective,
+            grid=grid, progress=step("discount-rate threshold"),
         )  # fmt: skip
     return suite

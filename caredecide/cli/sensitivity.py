@@ -151,6 +151,11 @@ def _two_way_map(frame: pd.DataFrame) -> tuple[Table, list[str]]:
     return out, legend
 
 
+def _ignoring_step(update):
+    """A suite progress callback (step, done, total) that updates one bar."""
+    return lambda _step, done, total: update(done, total)
+
+
 def _threshold_table(summary: pd.DataFrame, title: str) -> Table:
     key = "parameter" if "parameter" in summary.columns else "setting"
     out = Table(title=title)
@@ -257,14 +262,8 @@ def run_sensitivity(
     """
     print_caution(model)
     with user_errors():
-        from caredecide.sensitivity import (
-            cell_sensitivity,
-            one_way,
-            parameter_thresholds,
-            setting_thresholds,
-            summarise_thresholds,
-            two_way,
-        )
+        from caredecide.analysis.sensitivity import analyse_sensitivity
+        from caredecide.sensitivity import cell_sensitivity, summarise_thresholds, two_way
         from caredecide.sensitivity.cells import check_cell_options
         from caredecide.sensitivity.context import threshold_context
         from caredecide.sensitivity.decision import decision_tornado
@@ -288,22 +287,12 @@ def run_sensitivity(
             )  # fmt: skip
         objective = default_objective(loaded)
         names = [n.strip() for p in parameters or [] for n in p.split(",") if n.strip()] or None
-        finite = loaded.n_cycles() is not None
-        steps = ["one-way", "parameter thresholds"]
         if wtp_max is not None and objective.kind != "net_benefit" and not quiet:
             stderr.print(
                 f"note: {plain(model)} maximises QALYs; --wtp-max is used only with "
                 "objective = 'net_benefit' (no willingness-to-pay threshold searched)"
             )
-        if not finite and not quiet:
-            stderr.print(
-                f"note: {plain(model)} has an infinite horizon; no discount-rate threshold "
-                "(the rate is the contraction factor of the recursion)"
-            )
-        if objective.kind == "net_benefit":
-            steps.append("willingness-to-pay threshold")
-        if finite:
-            steps.append("discount-rate threshold")
+        steps = ["one-way and thresholds"]
         if two_way_pair:
             steps.append("two-way map")
         if region_map:
@@ -319,35 +308,28 @@ def run_sensitivity(
                 return lambda done, total: bar.update(tasks[step], completed=done, total=total)
 
             for step in steps:
-                if step == "one-way":
-                    one = one_way(loaded, names, objective=objective)
-                    results["oneway"] = one.table
-                    results["policy_switches"] = one.switches
-                elif step == "parameter thresholds":
-                    results["thresholds"] = parameter_thresholds(
-                        loaded, names, objective=objective, grid=grid, progress=report(step)
-                    )
-                    results["thresholds_context"] = threshold_context(loaded, results["thresholds"])
+                if step == "one-way and thresholds":
+                    # The suite holds every rule: what is searched, over which range, and
+                    # what is skipped and why (shown below as notes).
+                    suite = analyse_sensitivity(
+                        loaded, names, objective=objective, grid=grid, wtp_max=wtp_max,
+                        discount_max=discount_max,
+                        progress=_ignoring_step(report(step)),
+                    )  # fmt: skip
+                    results.update(suite.tables())
+                    results["thresholds_context"] = threshold_context(loaded, suite.thresholds)
                     results["decision_tornado"] = decision_tornado(
                         loaded, names, objective=objective, grid=grid,
-                        thresholds=results["thresholds"],
+                        thresholds=suite.thresholds,
                     ).table  # fmt: skip
+                    if not quiet:
+                        for text in suite.notes:
+                            stderr.print(f"note: {plain(model)}: {plain(text)}")
                 elif step == "region map":
                     assert region_map is not None  # the step is listed only with a name
                     regions = policy_region_map(loaded, region_map, objective=objective)
                     results["region_map"] = regions.frame
                     region_meta = (regions.parameter, regions.base, regions.action_labels)
-                elif step.startswith("willingness"):
-                    high = wtp_max if wtp_max is not None else 2 * objective.willingness_to_pay
-                    results["threshold_willingness_to_pay"] = setting_thresholds(
-                        loaded, "willingness_to_pay", 0.0, high, objective=objective,
-                        grid=max(grid, 21), progress=report(step),
-                    )  # fmt: skip
-                elif step.startswith("discount"):
-                    results["threshold_discount_rate"] = setting_thresholds(
-                        loaded, "discount_rate", 0.0, discount_max, objective=objective,
-                        grid=max(grid, 21), progress=report(step),
-                    )  # fmt: skip
                 elif step == "transition cells":
                     cells = cell_sensitivity(
                         loaded, objective=objective, loss_factors=cell_loss_factors,

@@ -7,12 +7,14 @@ import pandas as pd
 import streamlit as st
 
 from caredecide import charts, decision_charts
+from caredecide.analysis.sensitivity import setting_threshold, willingness_to_pay_search
 from caredecide.errors import CaredecideError
+from caredecide.limits import DISCOUNT_SEARCH_MAX
 from caredecide.modelfile import loads_model
+from caredecide.objective import Objective
 from caredecide.sensitivity import (
     one_way,
     parameter_thresholds,
-    setting_thresholds,
     summarise_thresholds,
     two_way,
 )
@@ -37,9 +39,9 @@ def run_decision(text: str, file: str, base_dir: str, names: tuple[str, ...], gr
 
 
 @st.cache_data(max_entries=16, show_spinner=False)
-def run_setting(text: str, file: str, base_dir: str, setting: str, low: float, high: float):
+def run_setting(text: str, file: str, base_dir: str, setting: str, high: float):
     model = loads_model(text, file=file, base_dir=base_dir)
-    return setting_thresholds(model, setting, low, high)
+    return setting_threshold(model, setting, high)
 
 
 @st.cache_data(max_entries=16, show_spinner=False)
@@ -116,20 +118,22 @@ left, right = st.columns(2)
 frames: list[pd.DataFrame] = []
 try:
     if settings.objective == "net_benefit":
+        # The library's search range (the same as the command line and the report).
+        searched = willingness_to_pay_search(Objective.from_settings(settings))
+        assert searched is not None  # net benefit: always searched
         wtp_max = left.number_input(
             f"Search willingness to pay from 0 to ({settings.currency or 'money'} per QALY)",
-            min_value=1.0, value=max(2.0 * float(settings.willingness_to_pay), 1.0),
-            step=1000.0, key="sensitivity_wtp_max",
+            min_value=1.0, value=searched[1], step=1000.0, key="sensitivity_wtp_max",
         )  # fmt: skip
         with st.spinner("Willingness-to-pay threshold..."):
-            frames.append(run_setting(*key, "willingness_to_pay", 0.0, float(wtp_max)))
+            frames.append(run_setting(*key, "willingness_to_pay", float(wtp_max)))
     if model.n_cycles() is not None:
         rate_max = right.number_input(
             "Search the discount rate (outcomes and costs) from 0 to", min_value=0.001,
-            max_value=0.99, value=0.10, step=0.01, key="sensitivity_rate_max",
+            max_value=0.99, value=DISCOUNT_SEARCH_MAX, step=0.01, key="sensitivity_rate_max",
         )  # fmt: skip
         with st.spinner("Discount-rate threshold..."):
-            frames.append(run_setting(*key, "discount_rate", 0.0, float(rate_max)))
+            frames.append(run_setting(*key, "discount_rate", float(rate_max)))
 except CaredecideError as error:
     st.error(str(error), icon=":material/error:")
 if frames:
