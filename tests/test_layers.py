@@ -26,6 +26,7 @@ FLOORS: dict[str, int] = {
     "caredecide.options": 1,
     "caredecide.palettes": 1,
     "caredecide.charts": 1,
+    "caredecide.decision_charts": 1,
     "caredecide.compiled": 1,
     "caredecide.conversions": 1,
     "caredecide.distributions": 1,
@@ -40,6 +41,7 @@ FLOORS: dict[str, int] = {
     "caredecide.modelfile": 2,
     "caredecide.expand": 2,
     "caredecide.compile": 2,
+    "caredecide.derived": 2,
     "caredecide.grouping": 2,
     "caredecide.solvers": 3,
     "caredecide.evaluate": 3,
@@ -66,9 +68,12 @@ FLOORS: dict[str, int] = {
 
 
 def floor_of(module: str) -> int | None:
+    """The floor of the longest prefix listed in FLOORS (the bare package only exactly)."""
     parts = module.split(".")
     for n in range(len(parts), 0, -1):
         prefix = ".".join(parts[:n])
+        if prefix == "caredecide" and module != "caredecide":
+            continue  # a module of the package needs its own line
         if prefix in FLOORS:
             return FLOORS[prefix]
     return None
