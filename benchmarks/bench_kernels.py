@@ -31,18 +31,23 @@ import time
 from dataclasses import replace
 from pathlib import Path
 
-import numpy as np
+# One thread for every BLAS: CPU seconds then compare single-threaded work (threaded BLAS
+# spins and inflates CPU time on a shared machine). Set before numpy is imported.
+for _name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_name, "1")
+
+import numpy as np  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).parent))
 
-from bench_solver import WTP, bandwidth_gbps, draws_frame, model_text
-from plain_reference import plain_backward_induction, plain_cohort_trace
+from bench_solver import WTP, bandwidth_gbps, draws_frame, model_text  # noqa: E402
+from plain_reference import plain_backward_induction, plain_cohort_trace  # noqa: E402
 
-from caredecide.compile import compile_model
-from caredecide.evaluate import evaluate_policy
-from caredecide.modelfile import load_model
-from caredecide.objective import Objective
-from caredecide.solvers import solve
+from caredecide.compile import compile_model  # noqa: E402
+from caredecide.evaluate import evaluate_policy  # noqa: E402
+from caredecide.modelfile import load_model  # noqa: E402
+from caredecide.objective import Objective  # noqa: E402
+from caredecide.solvers import solve  # noqa: E402
 
 OBJECTIVE = Objective("net_benefit", WTP)
 

@@ -25,20 +25,26 @@ Run: python benchmarks/bench_stationary_grid.py [--repeats 3] [--markdown]
 from __future__ import annotations
 
 import argparse
+import os
 import statistics
 import sys
 import time
 from pathlib import Path
 
-import numpy as np
+# One thread for every BLAS: CPU seconds then compare single-threaded work (threaded BLAS
+# spins and inflates CPU time on a shared machine). Set before numpy is imported.
+for _name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_name, "1")
+
+import numpy as np  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).parent))
 
-from plain_reference import blocked, plain_policy_iteration, plain_value_iteration
+from plain_reference import blocked, plain_policy_iteration, plain_value_iteration  # noqa: E402
 
-from caredecide.compiled import CompiledModel
-from caredecide.objective import Objective
-from caredecide.solvers import solve
+from caredecide.compiled import CompiledModel  # noqa: E402
+from caredecide.objective import Objective  # noqa: E402
+from caredecide.solvers import solve  # noqa: E402
 
 RATE = 0.035
 TOLERANCE = 1e-8

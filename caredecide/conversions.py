@@ -28,11 +28,13 @@ first offending value and the expected range. Times are in years unless stated.
 
 from __future__ import annotations
 
+import functools
 import math
 from typing import Any
 
 import numpy as np
 
+from caredecide import jit
 from caredecide.errors import ModelError, Problem
 
 __all__ = [
@@ -581,6 +583,8 @@ def _pade_exponential(A: np.ndarray, unreachable: np.ndarray) -> np.ndarray:
     that tolerance (a negative entry or a row sum off by more) is recomputed by
     uniformization, which keeps every term non-negative.
     """
+    if jit.available():
+        return _compiled_pade_exponential(A, unreachable)
     norm = -2.0 * np.diagonal(A, axis1=-2, axis2=-1).min(axis=-1, initial=0.0)
     degree = np.searchsorted(_PADE_THETA[:-1], norm)  # index into _PADE_DEGREES
     squarings = np.zeros(A.shape[0], dtype=int)
@@ -606,6 +610,40 @@ def _pade_exponential(A: np.ndarray, unreachable: np.ndarray) -> np.ndarray:
         P[lost] = _uniformized_exponential(A[lost])
     np.clip(P, 0.0, 1.0, out=P)
     return P
+
+
+def _compiled_pade_exponential(A: np.ndarray, unreachable: np.ndarray) -> np.ndarray:
+    """:func:`_pade_exponential` by the compiled loop, one matrix at a time (same steps,
+    same degree and squarings per matrix; rounding differs from the batched version only
+    in the last bits)."""
+    from caredecide import _exponential_loops
+
+    A = np.ascontiguousarray(A, dtype=float)
+    P = np.empty_like(A)
+    lost = np.empty(A.shape[0], dtype=bool)
+    _exponential_loops.pade_exponential(
+        A,
+        np.ascontiguousarray(unreachable, dtype=bool),
+        _PADE_THETA,
+        np.array(_PADE_DEGREES, dtype=np.int64),
+        _pade_table(),
+        _PADE_ROUND_OFF,
+        P,
+        lost,
+    )
+    if lost.any():
+        P[lost] = np.clip(_uniformized_exponential(A[lost]), 0.0, 1.0)
+    return P
+
+
+@functools.cache
+def _pade_table() -> np.ndarray:
+    """(5, 14) coefficients ``b_0..b_m`` of each degree in ``_PADE_DEGREES``, zero-padded."""
+    table = np.zeros((len(_PADE_DEGREES), max(_PADE_DEGREES) + 1))
+    for row, m in enumerate(_PADE_DEGREES):
+        table[row, : m + 1] = _pade_coefficients(m)
+    table.setflags(write=False)
+    return table
 
 
 def _pade_coefficients(m: int) -> np.ndarray:

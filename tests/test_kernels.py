@@ -164,3 +164,32 @@ def test_greedy_kernel_matches_numpy_greedy_choice(seed, shape, A, ties):
     plain = _numpy_path(greedy_choice, Q.copy(), decision_states, 1e-9, 1e-9, uncertainty)
     for name, a, b in zip(("policy", "value", "gap", "next", "tie"), fast, plain, strict=True):
         np.testing.assert_array_equal(a, b, err_msg=name)
+
+
+@settings(max_examples=25, deadline=None)
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    S=st.integers(2, 7),
+    scale=st.sampled_from([0.01, 0.5, 3.0, 40.0, 900.0]),
+)
+def test_compiled_pade_exponential_matches_numpy_path_and_scipy(seed, S, scale):
+    # Reference: scipy.linalg.expm (Higham 2005 scaling and squaring, the same algorithm);
+    # large scales exercise degree 13 with squarings.
+    from scipy.linalg import expm
+
+    from caredecide.conversions import _closure, _pade_exponential
+
+    rng = np.random.default_rng(seed)
+    G = rng.uniform(0, 1, (6, S, S)) * (rng.random((6, S, S)) < 0.6)
+    G[:, -1] = 0.0  # an absorbing state
+    G[:, np.arange(S), np.arange(S)] = 0.0
+    G[:, np.arange(S), np.arange(S)] = -G.sum(-1)
+    G *= scale * rng.uniform(0.5, 1.0, (6, 1, 1))
+    pattern = (G != 0) & ~np.eye(S, dtype=bool)
+    unreachable = ~_closure(pattern)
+    fast = _pade_exponential(G, unreachable)
+    plain = _numpy_path(_pade_exponential, G, unreachable)
+    np.testing.assert_allclose(fast, plain, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(fast, np.clip([expm(g) for g in G], 0, 1), rtol=0, atol=1e-11)
+    assert (fast >= 0).all() and np.allclose(fast.sum(-1), 1.0, atol=1e-12)
+    assert (fast[unreachable] == 0).all()

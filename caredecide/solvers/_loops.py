@@ -165,6 +165,24 @@ def cohort_trace(P, policy, start, trace):
                         trace[d, t + 1, s2] += mass * P[d, tp, a, s, s2]
 
 
+BLAS_STATES = 48
+"""From this many states a sweep's expectations go to BLAS (dgemv), faster on long rows."""
+
+
+@inline
+def expect_all(P, d, v, out):
+    # out[a * S + s] = sum_s' P[d, a, s, s'] v[s'] for every action and state of draw d.
+    A, S = P.shape[1], P.shape[2]
+    if S >= BLAS_STATES:
+        np.dot(P[d].reshape((A * S, S)), v, out)
+    else:
+        k = 0
+        for a in range(A):
+            for s in range(S):
+                out[k] = expectation(P[d, a, s], v)
+                k += 1
+
+
 @jit
 def value_iteration(P, R, gamma, tolerance, relative, max_iterations, v, residual, sweeps, done):
     # Per draw: v <- max_a R + gamma P v from v = 0 until ||v' - v|| < eps (1 - g) / (2 g),
@@ -173,6 +191,7 @@ def value_iteration(P, R, gamma, tolerance, relative, max_iterations, v, residua
     D, A, S = R.shape[0], R.shape[1], R.shape[2]
     current = np.empty(S)
     following = np.empty(S)
+    expected = np.empty(A * S)
     for d in range(D):
         current[:] = 0.0
         done[d] = False
@@ -182,10 +201,11 @@ def value_iteration(P, R, gamma, tolerance, relative, max_iterations, v, residua
             n += 1
             change = 0.0
             largest = 0.0
+            expect_all(P, d, current, expected)
             for s in range(S):
                 best = -np.inf
                 for a in range(A):
-                    q = gamma * expectation(P[d, a, s], current) + R[d, a, s]
+                    q = gamma * expected[a * S + s] + R[d, a, s]
                     if q > best:
                         best = q
                 following[s] = best
@@ -225,6 +245,7 @@ def policy_iteration(P, R, gamma, max_iterations, v, residual, sweeps, done):
     policy = np.empty(S, dtype=np.intp)
     improved = np.empty(S, dtype=np.intp)
     current = np.empty(S)
+    expected = np.empty(A * S)
     for d in range(D):
         for s in range(S):
             policy[s] = 0
@@ -239,12 +260,13 @@ def policy_iteration(P, R, gamma, max_iterations, v, residual, sweeps, done):
             policy_values(P, R, gamma, d, policy, current)
             change = 0.0
             same = True
+            expect_all(P, d, current, expected)
             for s in range(S):
                 best = -np.inf
                 top = 0
                 kept = -np.inf
                 for a in range(A):
-                    q = gamma * expectation(P[d, a, s], current) + R[d, a, s]
+                    q = gamma * expected[a * S + s] + R[d, a, s]
                     if q > best:
                         best, top = q, a
                     if a == policy[s]:
@@ -260,10 +282,11 @@ def policy_iteration(P, R, gamma, max_iterations, v, residual, sweeps, done):
         if not done[d]:
             policy_values(P, R, gamma, d, policy, current)
             change = 0.0
+            expect_all(P, d, current, expected)
             for s in range(S):
                 best = -np.inf
                 for a in range(A):
-                    best = max(best, gamma * expectation(P[d, a, s], current) + R[d, a, s])
+                    best = max(best, gamma * expected[a * S + s] + R[d, a, s])
                 change = max(change, abs(best - current[s]))
         v[d] = current
         residual[d] = change

@@ -14,25 +14,11 @@ A benchmark (``benchmarks/bench_kernels.py``) shows the gain over the best numpy
 
 from __future__ import annotations
 
-import os
 from functools import cache
 
+from caredecide.jit import available
 
-def available() -> bool:
-    """True when the compiled kernels can be used (read at every call, so a benchmark can
-    time both paths in one process)."""
-    if os.environ.get("CAREDECIDE_KERNELS", "").lower() == "numpy":
-        return False
-    return _numba_importable()
-
-
-@cache
-def _numba_importable() -> bool:
-    try:
-        import numba  # noqa: F401
-    except ImportError:  # pragma: no cover - numba is a dependency of the package
-        return False
-    return True
+__all__ = ["available", "kernels"]
 
 
 @cache

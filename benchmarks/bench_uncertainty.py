@@ -1,0 +1,158 @@
+"""End to end: `caredecide uncertainty` on the demo model, split by step, serial vs workers.
+
+Not a test: prints times measured in this run on this machine, and their ratios.
+
+1. The split (CPU seconds of one serial run, in a fresh process): imports, sampling,
+   compile, solve, evaluate, value of information (EVPI, EVPPI), outputs (tables and
+   charts written to a temporary folder), the rest; with the peak resident memory.
+2. Serial against ``--workers 2`` (wall and CPU seconds, fresh processes, interleaved).
+3. With ``--baseline PATH`` (a checkout of an older caredecide, e.g. from
+   ``git worktree add /tmp/old <commit>``), the same serial run of that version, in the
+   same run, and the ratio.
+
+Run: python benchmarks/bench_uncertainty.py [--draws 10000] [--repeats 3] [--baseline PATH]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "synthetic_cohort" / "models" / "demo_progressive.toml"
+
+CHILD = r"""
+import json, resource, sys, time
+start_cpu = time.process_time()
+sys.path.insert(0, {src!r})
+import caredecide.cli as cli
+import caredecide.cli.uncertainty as cli_uncertainty
+import caredecide.uncertainty.psa as psa
+from caredecide.uncertainty.sampling import ParameterSampler
+split = {{"imports": time.process_time() - start_cpu}}
+
+def timed(owner, name, step):
+    original = getattr(owner, name)
+    def wrapper(*args, **kwargs):
+        begin = time.process_time()
+        try:
+            return original(*args, **kwargs)
+        finally:
+            split[step] = split.get(step, 0.0) + time.process_time() - begin
+    setattr(owner, name, wrapper)
+
+if {split_steps!r}:
+    timed(ParameterSampler, "draw", "sampling")
+    timed(psa, "compile_model", "compile")
+    timed(psa, "solve", "solve")
+    timed(psa, "evaluate_policy", "evaluate")
+    timed(psa, "evpi", "value of information")
+    timed(psa, "evppi_regression", "value of information")
+    timed(cli_uncertainty, "_write_outputs", "outputs")
+sys.argv = ["caredecide", "uncertainty", {model!r}, "--draws", {draws!r}, "--out", {out!r},
+            "--quiet", *{extra!r}]
+try:
+    cli.main()
+except SystemExit as stop:
+    if stop.code:
+        raise
+split["total"] = time.process_time()
+split["peak_mib"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+print(json.dumps(split))
+"""
+
+
+def run_child(src: Path, draws: int, extra: list[str], split_steps: bool) -> dict[str, float]:
+    """One fresh process; returns its split (CPU s), wall seconds and children's CPU."""
+    with tempfile.TemporaryDirectory() as out:
+        code = CHILD.format(
+            src=str(src),
+            split_steps=split_steps,
+            model=str(DEMO),
+            draws=str(draws),
+            out=out,
+            extra=extra,
+        )
+        before = resource.getrusage(resource.RUSAGE_CHILDREN)
+        start = time.perf_counter()
+        done = subprocess.run(
+            [sys.executable, "-c", code], capture_output=True, text=True, cwd=str(src)
+        )
+        wall = time.perf_counter() - start
+        after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    if done.returncode:
+        raise SystemExit(f"run failed ({src}):\n{done.stderr[-2000:]}")
+    info = json.loads(done.stdout.strip().splitlines()[-1])
+    info["wall"] = wall
+    info["cpu_all"] = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+    return info
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--draws", type=int, default=10_000)
+    parser.add_argument("--repeats", type=int, default=3)
+    parser.add_argument("--baseline", type=Path, default=None)
+    args = parser.parse_args()
+    print("SYNTHETIC demo model (invented numbers); research use only.")
+    run_child(ROOT, 50, [], False)  # kernels compiled and cached before any timing
+
+    split = run_child(ROOT, args.draws, [], True)
+    print(f"== 1. uncertainty --draws {args.draws} on the demo, serial: CPU seconds by step ==")
+    steps = ("imports", "sampling", "compile", "solve", "evaluate", "value of information")
+    accounted = 0.0
+    for step in (*steps, "outputs"):
+        seconds = split.get(step, 0.0)
+        accounted += seconds
+        print(f"  {step:22s} {seconds:7.2f} s  {seconds / split['total']:6.1%}")
+    rest = split["total"] - accounted
+    print(f"  {'rest (analysis, CLI)':22s} {rest:7.2f} s  {rest / split['total']:6.1%}")
+    print(
+        f"  {'total':22s} {split['total']:7.2f} s   wall {split['wall']:.2f} s   "
+        f"peak resident memory {split['peak_mib']:.0f} MiB (target <= 1024 MiB)"
+    )
+
+    runs: dict[str, list[dict[str, float]]] = {"serial": [], "--workers 2": []}
+    if args.baseline:
+        runs["baseline serial"] = []
+    for _ in range(args.repeats):
+        runs["serial"].append(run_child(ROOT, args.draws, [], False))
+        runs["--workers 2"].append(run_child(ROOT, args.draws, ["--workers", "2"], False))
+        if args.baseline:
+            runs["baseline serial"].append(run_child(args.baseline, args.draws, [], False))
+    print(f"\n== 2. fresh processes, interleaved, median of {args.repeats} ==")
+    median = {
+        name: {
+            key: statistics.median(r[key] for r in rs) for key in ("wall", "cpu_all", "peak_mib")
+        }
+        for name, rs in runs.items()
+    }
+    for name, m in median.items():
+        print(
+            f"  {name:16s} wall {m['wall']:7.2f} s   CPU (with its processes) "
+            f"{m['cpu_all']:7.2f} s   peak {m['peak_mib']:5.0f} MiB"
+        )
+    serial, workers = median["serial"], median["--workers 2"]
+    print(
+        f"  --workers 2 / serial: wall {workers['wall'] / serial['wall']:.2f}x "
+        "(target <= 1.00x; 2 cores shared with other jobs)"
+    )
+    if args.baseline:
+        base = median["baseline serial"]
+        print(
+            f"  baseline / this (serial): wall {base['wall'] / serial['wall']:.2f}x, "
+            f"CPU {base['cpu_all'] / serial['cpu_all']:.2f}x (target >= 4x)"
+        )
+    print(f"(machine load while measured: {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores)")
+
+
+if __name__ == "__main__":
+    main()
