@@ -27,7 +27,6 @@ from caredecide.sensitivity.cell_scaling import (
     FIXED_REMAINDER,
     FIXED_ZERO,
     RATE_SCALED,
-    REMAINDER_ABSORBS,
     CellScaler,
 )
 from caredecide.sensitivity.cells import (
@@ -249,11 +248,18 @@ def test_demo_switching_factors_bound_a_change_of_policy():
             assert not differs[0].any() and differs[1].any()
             checked += 1
     assert checked >= 10
-    # The zero cell (treat, stage_3 -> stage_3_tx = 0.0) and the rest entries stay fixed.
+    # Every "rest" entry of the model stays fixed as a remainder; literal zeros as zeros.
     reasons = dict(zip(result.fixed_frame()["cell"], result.fixed_frame()["reason"], strict=True))
-    assert reasons["rates.treat.stage_3.stage_3_tx"] == FIXED_ZERO
-    assert reasons["transitions.wait.stage_1.stage_1"] == FIXED_REMAINDER
-    assert REMAINDER_ABSORBS in set(result.to_frame()["rule"])
+    for table in ("transitions", "rates"):
+        for action, rows in getattr(model, table).items():
+            for source, row in rows.items():
+                for target, value in row.items():
+                    path = f"{table}.{action}.{source}.{target}"
+                    if value == "rest":
+                        assert reasons[path] == FIXED_REMAINDER
+                    elif value in (0, 0.0, "0", "0.0"):
+                        assert reasons[path] == FIXED_ZERO
+    assert set(reasons.values()) <= {FIXED_REMAINDER, FIXED_ZERO}
 
 
 def test_value_lost_equals_evaluating_the_base_policy_on_the_moved_model():
@@ -262,12 +268,19 @@ def test_value_lost_equals_evaluating_the_base_policy_on_the_moved_model():
     scaler = CellScaler(model)
     objective = Objective.from_settings(model.settings)
     base_policy = solve(scaler.base, objective).policy
-    i = next(n for n, c in enumerate(scaler.cells) if c.path == "transitions.wait.early.late")
-    moved = scaler.scaled(np.array([i, i]), np.array([0.8, 1.2]))
+    C = len(scaler.cells)
+    caps = np.array([c.feasible_max for c in scaler.cells])
+    factors = np.minimum(np.tile([0.8, 1.2], C), np.repeat(caps, 2))
+    moved = scaler.scaled(np.repeat(np.arange(C), 2), factors)
     best = solve(moved, objective).expected_value(moved.start_distribution)
     kept = evaluate_policy(moved, base_policy, objective).value
-    np.testing.assert_allclose(result.value_lost[i], best - kept, rtol=1e-9, atol=1e-6)
-    assert result.value_lost[i, 0] > 1.0
+    feasible = (factors == np.tile([0.8, 1.2], C)).reshape(C, 2)
+    expected = (best - kept).reshape(C, 2)
+    np.testing.assert_allclose(
+        result.value_lost[feasible], expected[feasible], rtol=1e-9, atol=1e-6
+    )
+    assert np.isnan(result.value_lost[~feasible]).all()  # beyond the feasible factor
+    assert (result.value_lost[feasible] > 1.0).any()
 
 
 @pytest.mark.parametrize(

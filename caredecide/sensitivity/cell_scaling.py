@@ -287,7 +287,7 @@ class CellScaler:
             raise ModelError(
                 Problem(
                     cell.path,
-                    f"factor {factors[n]!r} is not allowed; expected a factor in "
+                    f"factor {float(factors[n])!r} is not allowed; expected a factor in "
                     f"[0, {cell.feasible_max:.6g}] (beyond it a probability of the row "
                     "would leave [0, 1])",
                 ),
