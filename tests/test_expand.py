@@ -733,3 +733,32 @@ def test_a_derived_value_may_read_attributes_and_tunnels():
     bad = text.replace('id = "wait"\n', 'id = "wait"\noneoff_cost = "drug_cost"\n') + derived
     message = _errors(bad)
     assert "actions.wait.oneoff_cost: reads derived value(s) ['drug_cost']" in message
+
+
+def test_the_bundled_demo_with_attributes_and_a_tunnel_moves_the_cohort_as_written():
+    from caredecide.mortality import background_probability
+    from caredecide.solvers import solve
+    from synthetic_cohort import MODELS_DIR
+
+    model = loads_model(
+        (MODELS_DIR / "demo_years_since_progression.toml").read_text("utf-8"),
+        base_dir=MODELS_DIR,
+    )
+    compiled = compile_model(model)
+    assert compiled.n_states == 9
+    objective = Objective.from_settings(model.settings)
+    result = solve(compiled, objective)
+    start = compiled.state_ids.index("stable__off_drug")
+    assert compiled.action_ids[result.policy[0, 0, start]] == "start_drug"
+    outcome = evaluate_policy(compiled, result.policy, objective)
+    by_drug = grouped_trace(outcome.trace[0], outcome.ages, compiled, "drug")
+    by_year = grouped_trace(outcome.trace[0], outcome.ages, compiled, "years_progressed")
+    q55 = float(background_probability(model.mortality, np.array([55.0]), 1.0)[0])
+    # Hand-derived first cycle: the whole cohort starts the drug at 55; those who do not die
+    # of background causes are on the drug at 56, and 1 - (1 - 0.08) ** 0.6 of the cohort
+    # has progressed (a hazard ratio on an annual probability, Fleurence & Hollenbeak 2007)
+    # and is in its first year since progression.
+    on_drug = by_drug[(by_drug["cycle"] == 1) & (by_drug["drug"] == "on_drug")]["proportion"]
+    assert float(on_drug.iloc[0]) == pytest.approx(1.0 - q55, rel=1e-12)
+    year_0 = by_year[(by_year["cycle"] == 1) & (by_year["years_progressed"] == "0")]["proportion"]
+    assert float(year_0.iloc[0]) == pytest.approx(1.0 - 0.92**0.6, rel=1e-12)
