@@ -17,7 +17,6 @@ import numpy as np
 import pandas as pd
 
 from caredecide.chunks import (  # noqa: F401  (the one memory rule, re-exported)
-    COMPILE_MEMORY_FACTOR,
     RESULT_ARRAYS_PER_CELL,
     ChunkMap,
     chunk_ranges,

@@ -20,7 +20,7 @@ from typing import Any, Protocol
 import numpy as np
 import pandas as pd
 
-from caredecide.compile import compile_model, estimate_compiled_bytes
+from caredecide.compile import compile_model
 from caredecide.compiled import CompiledModel
 from caredecide.evaluate import DISPLAY_CAP
 from caredecide.limits import CHUNK_MEMORY_BYTES, default_memory_limit
@@ -52,12 +52,6 @@ ChunkMap = Callable[[ChunkJob, Sequence[tuple[int, int]]], Iterable[Any]]
 """Runs a job over ranges and yields the results in range order."""
 
 
-COMPILE_MEMORY_FACTOR = 6
-"""Peak working memory of compiling a chunk, in copies of its compiled arrays. Measured
-(peak resident memory of a fresh process, ``python benchmarks/bench_psa.py --memory``):
-5.3 for demo_progressive and 5.9 for lesion_surveillance, whose rate rows go through
-the batched matrix exponential, and 2.0 for demo_counts_table (no rate rows). A factor of 3,
-used before, let a chunk overrun its budget by two thirds."""
 RESULT_ARRAYS_PER_CELL = 14
 """Float64 values per (cycle, state) that one draw's solver results and policy
 evaluations hold at once (values, Q-values per action, gaps, policy, trace, flows and
@@ -82,13 +76,16 @@ def draw_working_bytes(model) -> int:
 
 
 def draw_bytes(model) -> int:
-    """Working memory of one draw in a chunk (bytes): compile peak plus results.
+    """Working memory of one draw in a chunk (bytes).
 
-    ``COMPILE_MEMORY_FACTOR`` copies of the compiled arrays (the compile peak, which the
-    solver's buffers stay below) plus :func:`draw_working_bytes`; the sum errs on the
-    safe side, as the compile intermediates are freed before the solver runs.
+    The peak of one compile -> solve -> evaluate pass per draw
+    (:func:`caredecide.memory.draw_bytes`, temporaries included, checked against
+    tracemalloc) plus :func:`draw_working_bytes` for what a chunk keeps beside it (kept
+    fields, the evaluations of other candidates).
     """
-    return COMPILE_MEMORY_FACTOR * estimate_compiled_bytes(model, 1) + draw_working_bytes(model)
+    from caredecide import memory
+
+    return memory.draw_bytes(memory.shape_of(model)) + draw_working_bytes(model)
 
 
 def memory_budget(memory_limit_bytes: int | None = None) -> int:

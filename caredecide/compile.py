@@ -23,8 +23,9 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from caredecide.compiled import CompiledModel
-from caredecide.errors import ModelError, ModelTooLargeError, Problem
+from caredecide.errors import ModelError, Problem
 from caredecide.limits import default_memory_limit
+from caredecide.memory import check_fits, shape_from_parsed
 from caredecide.model import Model
 
 if TYPE_CHECKING:
@@ -275,26 +276,6 @@ def estimate_compiled_bytes(model: Model, n_draws: int) -> int:
 
 
 # -- compile ---------------------------------------------------------------------------
-def _too_large_advice(
-    model: Model,
-    n_draws: int,
-    lengths: tuple[int, int, int],
-    n_states: int,
-    n_actions: int,
-    limit: int,
-) -> str:
-    """What to change: the batch size when one draw fits, else the horizon or the states."""
-    one_draw = _array_bytes(1, lengths, n_states, n_actions)
-    if one_draw <= limit:
-        return f"Use at most {limit // one_draw:,} draws per batch."
-    if max(lengths) > 1:
-        return (
-            "Even one parameter set does not fit: shorten the horizon "
-            "(settings.horizon_cycles or settings.until_age) or lengthen settings.cycle_years."
-        )
-    return "Even one parameter set does not fit: the model has too many states or actions."
-
-
 def compile_model(
     model: Model,
     parameter_sets: object = None,
@@ -310,8 +291,9 @@ def compile_model(
     parameter_sets : None, mapping name -> (D,) array, or pandas.DataFrame
         None = base case (D = 1); missing names take base values; unknown names raise.
     memory_limit_bytes : int, optional
-        Refuse (``ModelTooLargeError``) when the arrays would be larger; default: half of
-        the available memory.
+        Refuse (``ModelTooLargeError``) when the estimated peak of compiling, solving and
+        evaluating (:func:`caredecide.memory.pipeline_peak_bytes`) would be larger;
+        default: half of the available memory.
 
     Returns
     -------
@@ -334,17 +316,10 @@ def compile_model(
         raise ModelError(parsed.problems, file=model.file_label)
     values, n_draws = parameter_batch(model, parameter_sets)
     settings = model.settings
-    n_states, n_actions = len(model.states), len(model.actions)
     lengths = _time_lengths(model, parsed)
-    needed = _array_bytes(n_draws, lengths, n_states, n_actions)
     limit = default_memory_limit() if memory_limit_bytes is None else int(memory_limit_bytes)
-    if needed > limit:
-        raise ModelTooLargeError(
-            f"{model.file_label}: compiling {n_draws} parameter set(s) of {n_states} states, "
-            f"{n_actions} actions and time axes {lengths} needs {needed:,} bytes "
-            f"({needed / 1024**2:,.1f} MiB); the limit is {limit:,} bytes. "
-            + _too_large_advice(model, n_draws, lengths, n_states, n_actions, limit)
-        )
+    # The whole pass (compile, solve, evaluate), temporaries included, before any array.
+    check_fits(shape_from_parsed(model, parsed, n_draws), limit, file=model.file_label)
     tp, tq, td = lengths
     evaluator = _Evaluator(model, values, n_draws)
     problems: list[Problem] = []
@@ -471,7 +446,9 @@ def _transitions(
 
     if parsed.rests:
         a, s, to = _indices(parsed.rests)
-        remainder = 1.0 - P[:, :, a, s, :].sum(axis=-1)  # (D, Tp, n): rest cells still hold 0
+        # Row sums first, then the rest rows picked: indexing P[:, :, a, s, :] would copy
+        # nearly all of P (every rest row), doubling the compile peak.
+        remainder = 1.0 - P.sum(axis=-1)[:, :, a, s]  # (D, Tp, n): rest cells still hold 0
         problems += evaluator.check_range(
             parsed.rests,
             np.moveaxis(remainder, -1, 0),

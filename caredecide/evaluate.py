@@ -22,6 +22,7 @@ import numpy as np
 import pandas as pd
 
 from caredecide.compiled import CompiledModel, occupancy_weights
+from caredecide.limits import DISPLAY_CAP  # (re-exported) at most this many cycles shown
 from caredecide.objective import Objective
 from caredecide.solvers import kernels
 from caredecide.solvers.bellman import (
@@ -38,8 +39,6 @@ from caredecide.solvers.stationary import START_WEIGHT
 
 DISPLAY_ABSORBED = 0.999
 """Infinite horizon: the trace is shown until this share of the cohort is absorbed..."""
-DISPLAY_CAP = 1000
-"""...or for this many cycles at most."""
 
 _QUANTITIES = ("life_years", "qalys", "costs")
 

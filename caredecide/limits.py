@@ -37,6 +37,9 @@ MAX_EXPANDED_STATES = 2000
 """Most states attributes and tunnels may generate (:mod:`caredecide.expand`): the
 transition arrays grow as the square of the states (2,000 states and 3 actions take
 96 MB per parameter set and cycle); the compile step's memory check applies on top."""
+DISPLAY_CAP = 1000
+"""Most cycles an infinite-horizon cohort trace shows (:mod:`caredecide.evaluate`); the
+memory estimate counts it (:mod:`caredecide.memory`)."""
 MAX_DRAWS = 100_000_000
 """Most probabilistic draws one run may ask for."""
 MAX_APP_DRAWS = 20_000

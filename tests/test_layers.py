@@ -42,6 +42,7 @@ FLOORS: dict[str, int] = {
     "caredecide.expand": 2,
     "caredecide.compile": 2,
     "caredecide.derived": 2,
+    "caredecide.memory": 2,
     "caredecide.grouping": 2,
     "caredecide.solvers": 3,
     "caredecide.evaluate": 3,

@@ -318,9 +318,9 @@ def test_a_pilot_larger_than_the_budget_runs_in_chunks_with_the_same_results(mod
 
 
 def test_default_chunk_size_counts_compile_memory_and_the_infinite_horizon_trace(model):
-    # Per draw: 6 copies of the compiled arrays (the measured compile peak, see
-    # COMPILE_MEMORY_FACTOR) plus the per-cycle results; an infinite horizon counts the
-    # evaluation's display trace of DISPLAY_CAP + 1 cycles.
+    # Per draw: the pass's peak per draw (caredecide.memory, checked against tracemalloc in
+    # tests/test_memory.py) plus the per-cycle results kept; an infinite horizon counts
+    # the evaluation's display trace of DISPLAY_CAP + 1 cycles.
     from caredecide.compile import estimate_compiled_bytes
     from caredecide.evaluate import DISPLAY_CAP
     from caredecide.uncertainty.psa import draw_bytes, draw_working_bytes
@@ -328,7 +328,10 @@ def test_default_chunk_size_counts_compile_memory_and_the_infinite_horizon_trace
     n_s, n_a = len(model.states), len(model.actions)
     finite = draw_working_bytes(model)
     assert finite == 8 * (model.n_cycles() + 1) * n_s * (n_a + 14)
-    assert draw_bytes(model) == 6 * estimate_compiled_bytes(model, 1) + finite
+    from caredecide import memory
+
+    assert draw_bytes(model) == memory.draw_bytes(memory.shape_of(model)) + finite
+    assert draw_bytes(model) > estimate_compiled_bytes(model, 1) + finite
     data = uncertain_model_dict()
     data["settings"].pop("horizon_cycles")
     data["settings"]["horizon"] = "infinite"
@@ -366,7 +369,10 @@ def test_refuses_draws_whose_results_cannot_fit_in_memory(model, monkeypatch):
         match=r"draws = 2,000: the per-draw results would "
         r"need about .* GiB .*expected at most",
     ):
-        analyse_uncertainty(model, 2000, seed=1, chunk_size=100, n_frequent=0)
+        # The chunks' own budget is given, so only the kept results meet the small limit.
+        analyse_uncertainty(
+            model, 2000, seed=1, chunk_size=100, n_frequent=0, memory_limit_bytes=10**9
+        )
 
 
 def test_evppi_on_the_first_draws_equals_the_regression_on_them(result):

@@ -259,15 +259,20 @@ def test_every_problem_is_reported_at_once():
 
 
 def test_model_too_large_for_memory_gives_the_estimate(small_model):
+    from caredecide.memory import pipeline_peak_bytes, shape_of
+
     needed = estimate_compiled_bytes(small_model, 1000)
     # 3 states, 2 actions, no time dependence: transitions 2x3x3 + occupancy 2x3 + decisions
     # 2x3x2 = 36 floats per draw (common practice: 8 bytes per float64).
     assert needed == 1000 * 36 * 8
+    peak = pipeline_peak_bytes(shape_of(small_model, 1000))
+    assert peak > needed  # temporaries and the solver's results are counted too
     with pytest.raises(ModelTooLargeError) as info:
-        compile_model(small_model, {"p_sick": np.full(1000, 0.1)}, memory_limit_bytes=needed - 1)
-    assert f"{needed:,} bytes" in str(info.value) and "test.toml" in str(info.value)
-    # One draw is 288 bytes: the advice names how many draws fit under the limit.
-    assert f"at most {(needed - 1) // 288:,} draws per batch" in str(info.value)
+        compile_model(small_model, {"p_sick": np.full(1000, 0.1)}, memory_limit_bytes=peak - 1)
+    message = str(info.value)
+    assert f"({peak:,} bytes)" in message and f"({peak - 1:,} bytes)" in message
+    assert "test.toml" in message and "Use at most" in message and "parameter sets" in message
+    compile_model(small_model, {"p_sick": np.full(1000, 0.1)}, memory_limit_bytes=peak)
 
 
 def test_model_too_large_even_for_one_draw_names_the_horizon(small_model):

@@ -63,7 +63,6 @@ import numpy as np
 import pandas as pd
 
 from caredecide.batch import (  # noqa: F401  (the one memory estimate, re-exported)
-    COMPILE_MEMORY_FACTOR,
     RESULT_ARRAYS_PER_CELL,
     draw_bytes,
     draw_working_bytes,

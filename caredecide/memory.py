@@ -1,0 +1,227 @@
+"""Peak working memory of compiling, solving and evaluating a model: one estimate.
+
+Every guard and every chunk size uses :func:`pipeline_peak_bytes`, so a run refused
+here would have failed, and a run let through stays within its budget. The estimate
+counts the arrays the compiler (:mod:`caredecide.compile`), the solvers
+(:mod:`caredecide.solvers`) and policy evaluation (:mod:`caredecide.evaluate`) hold at
+their peaks, temporaries included, in bytes of float64 (8), intp (8) and bool (1):
+
+* compile: the compiled arrays, the expression stacks and row sums, and for rate rows the
+  generators and the exponential's work arrays (``RATE_WORK_COPIES`` copies of the
+  generator stack, one matrix per draw and cycle: the worst case, when no two
+  (draw, cycle) columns of rates are equal);
+* solve: the compiled arrays held, plus the results: values (D, T+1, S), Q-values
+  (D, T, S, A), policy, gap, next-best action (intp) and ties (bool) per (D, T, S); an
+  infinite horizon holds (D, S, S) systems and (D, S, A) sweeps instead;
+* evaluate: the cohort trace (D, T+1, S) (up to ``DISPLAY_CAP + 1`` rows for an infinite
+  horizon) and the (D, S, S) linear systems of the totals.
+
+The pipeline peak is the largest of the three stages. The coefficients were measured with
+:mod:`tracemalloc` (``tests/test_memory.py`` checks the estimate against the measured peak
+within 25% over a grid of shapes).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from caredecide.errors import ModelTooLargeError
+from caredecide.limits import DISPLAY_CAP
+
+FLOAT = 8
+RATE_WORK_COPIES = 10.0
+"""Generator-stack copies the batched matrix exponential holds at its peak (Pade
+scaling and squaring: powers, numerator, denominator, solve and squaring buffers, the
+selected rows and their copy per draw): measured 12.2-12.5 when every matrix takes the
+same Pade degree, 8.2-8.4 when the norms split the stack into groups of different
+degrees (the usual case over draws). 10 keeps the estimate within 25% of both."""
+STACK_COPIES = 3
+"""Copies of an expression stack (n_entries, D, T) alive at once (values, check masks,
+the moved copy scattered into the arrays)."""
+ROW_SUM_COPIES = 3
+"""Copies of the (D, Tp, A, S) row sums alive at once (sums, deviations, mask)."""
+ENTRY_OBJECT_BYTES = 1600
+"""Python objects of one parsed expression and its bookkeeping (measured about 1.5 KB),
+alive while compiling: they matter for models with thousands of entries."""
+BASE_BYTES = 128 * 1024
+"""Fixed working memory of a pass (variables, small arrays, messages)."""
+INFINITE_SYSTEM_COPIES = 3
+"""(D, S, S) matrices a policy-iteration step or an infinite-horizon total holds at once
+(policy transitions, the system matrix, its factorisation)."""
+
+
+@dataclass(frozen=True)
+class PipelineShape:
+    """Sizes that decide the memory of one compile -> solve -> evaluate pass.
+
+    Attributes
+    ----------
+    n_draws, n_states, n_actions : int
+        ``D``, ``S`` (flat states, after expansion), ``A``.
+    transition_cycles, occupancy_cycles, decision_cycles : int
+        ``Tp``, ``Tq``, ``Td``: time-axis lengths of the compiled arrays (1 = stationary).
+    n_cycles : int or None
+        Horizon in cycles (None = infinite).
+    n_entries : int
+        Expressions filling the transition arrays (probabilities, remainders, rates).
+    rate_actions, rate_states : int
+        Actions with rate rows and states entering their generators (0 without rates).
+    rate_rows : int
+        Rows given by rates.
+    """
+
+    n_draws: int
+    n_states: int
+    n_actions: int
+    transition_cycles: int
+    occupancy_cycles: int
+    decision_cycles: int
+    n_cycles: int | None
+    n_entries: int
+    rate_actions: int = 0
+    rate_states: int = 0
+    rate_rows: int = 0
+
+    def with_draws(self, n_draws: int) -> PipelineShape:
+        """The same shape for ``n_draws`` parameter sets."""
+        from dataclasses import replace
+
+        return replace(self, n_draws=int(n_draws))
+
+
+def compiled_bytes(shape: PipelineShape) -> int:
+    """Bytes of the compiled arrays (held from compile to the end of the pass)."""
+    D, S, A = shape.n_draws, shape.n_states, shape.n_actions
+    tp, tq, td = shape.transition_cycles, shape.occupancy_cycles, shape.decision_cycles
+    return FLOAT * D * (tp * A * S * S + 2 * tq * S + 2 * td * S * A)
+
+
+def compile_peak_bytes(shape: PipelineShape) -> int:
+    """Peak bytes while compiling: the arrays plus the compiler's temporaries."""
+    D, S, A, tp = shape.n_draws, shape.n_states, shape.n_actions, shape.transition_cycles
+    temporaries = FLOAT * D * tp * (STACK_COPIES * shape.n_entries + ROW_SUM_COPIES * A * S)
+    if shape.rate_actions:
+        K = shape.rate_states
+        generators = FLOAT * D * tp * shape.rate_actions * K * K
+        temporaries = max(temporaries, int(RATE_WORK_COPIES * generators))
+    objects = ENTRY_OBJECT_BYTES * (shape.n_entries + 2 * S + 3 * A)
+    return compiled_bytes(shape) + temporaries + objects
+
+
+def results_bytes(shape: PipelineShape) -> int:
+    """Bytes of the solver's results (values, Q-values, policy, gaps, ties)."""
+    D, S, A = shape.n_draws, shape.n_states, shape.n_actions
+    if shape.n_cycles is None:
+        return FLOAT * D * S * (A + 5)
+    T = shape.n_cycles
+    return FLOAT * D * (T + 1) * S + D * T * S * (FLOAT * A + 3 * FLOAT + 1)
+
+
+def solve_work_bytes(shape: PipelineShape) -> int:
+    """Bytes the solver holds besides its results (infinite horizon: linear systems)."""
+    D, S, A = shape.n_draws, shape.n_states, shape.n_actions
+    if shape.n_cycles is None:
+        return FLOAT * D * (INFINITE_SYSTEM_COPIES * S * S + 4 * S * A)
+    return FLOAT * D * S * (A + 2)  # one cycle's expectation and choice
+
+
+def evaluate_bytes(shape: PipelineShape) -> int:
+    """Bytes of one policy evaluation: cohort trace, flows and (infinite) linear systems."""
+    D, S = shape.n_draws, shape.n_states
+    if shape.n_cycles is None:
+        # The display trace grows row by row until the cohort is absorbed or the cap is
+        # reached (the worst case counted), then is stacked: two copies at the peak.
+        rows = DISPLAY_CAP + 1
+        return FLOAT * D * (rows * (2 * S + 6) + INFINITE_SYSTEM_COPIES * S * S)
+    return FLOAT * D * (shape.n_cycles + 1) * (S + 6)  # the trace and six flow series
+
+
+def pipeline_peak_bytes(shape: PipelineShape) -> int:
+    """Peak bytes of compile -> solve -> evaluate: the largest stage (see module doc)."""
+    held = compiled_bytes(shape)
+    return BASE_BYTES + max(
+        compile_peak_bytes(shape),
+        held + results_bytes(shape) + solve_work_bytes(shape),
+        held + results_bytes(shape) + evaluate_bytes(shape),
+    )
+
+
+def shape_of(model, n_draws: int = 1) -> PipelineShape:
+    """The :class:`PipelineShape` of a (validated) model for ``n_draws`` parameter sets.
+
+    Reads the structure only (expressions are parsed, never evaluated).
+    """
+    from caredecide.compile import parse_model_expressions
+    from caredecide.expand import expand_model
+
+    flat = expand_model(model)
+    return shape_from_parsed(flat, parse_model_expressions(flat), n_draws)
+
+
+def shape_from_parsed(flat_model, parsed, n_draws: int) -> PipelineShape:
+    """The shape of an expanded model whose expressions are parsed
+    (:func:`caredecide.compile.parse_model_expressions`)."""
+    from caredecide.compile import _time_lengths
+
+    tp, tq, td = _time_lengths(flat_model, parsed)
+    rate_actions = {e.action for e in parsed.rates}
+    rate_states = {e.state for e in parsed.rates} | {e.target for e in parsed.rates}
+    return PipelineShape(
+        n_draws=int(n_draws),
+        n_states=len(flat_model.states),
+        n_actions=len(flat_model.actions),
+        transition_cycles=tp,
+        occupancy_cycles=tq,
+        decision_cycles=td,
+        n_cycles=flat_model.n_cycles(),
+        n_entries=len(parsed.transitions) + len(parsed.rests) + len(parsed.rates),
+        rate_actions=len(rate_actions),
+        rate_states=len(rate_states),
+        rate_rows=len({(e.action, e.state) for e in parsed.rates}),
+    )
+
+
+def draw_bytes(shape: PipelineShape) -> int:
+    """Peak bytes one more draw adds to a pass (the estimate is linear in ``D`` beyond
+    a fixed part: expression objects and small working arrays, counted once)."""
+    one = pipeline_peak_bytes(shape.with_draws(1))
+    return max(pipeline_peak_bytes(shape.with_draws(2)) - one, 1)
+
+
+def gib(n_bytes: float) -> str:
+    """Bytes as GiB (or MiB below 1 GiB) with one decimal, for messages."""
+    if n_bytes >= 1024**3:
+        return f"{n_bytes / 1024**3:,.1f} GiB"
+    return f"{n_bytes / 1024**2:,.1f} MiB"
+
+
+def check_fits(shape: PipelineShape, limit: int, *, file: str, advice: str = "") -> int:
+    """Refuse (``ModelTooLargeError``) a pass whose peak estimate exceeds ``limit`` bytes.
+
+    Returns the estimate. The message names the file, the estimate, the budget, the
+    sizes behind them and what to change.
+    """
+    needed = pipeline_peak_bytes(shape)
+    if needed > limit:
+        horizon = "an infinite horizon" if shape.n_cycles is None else f"{shape.n_cycles:,} cycles"
+        if not advice:
+            one = pipeline_peak_bytes(shape.with_draws(1))
+            per_draw = draw_bytes(shape)
+            if shape.n_draws > 1 and one <= limit:
+                fitting = max(1, (limit - (one - per_draw)) // per_draw)
+                advice = f"Use at most {fitting:,} parameter sets at once."
+            elif shape.n_cycles is not None and shape.n_cycles > 1:
+                advice = (
+                    "Even one parameter set does not fit: shorten the horizon "
+                    "(settings.horizon_cycles or settings.until_age), lengthen "
+                    "settings.cycle_years, or use fewer states."
+                )
+            else:
+                advice = "Even one parameter set does not fit: use fewer states or actions."
+        raise ModelTooLargeError(
+            f"{file}: {shape.n_draws:,} parameter set(s) of {shape.n_states:,} states, "
+            f"{shape.n_actions} actions and {horizon} need an estimated {gib(needed)} "
+            f"({needed:,} bytes) of memory at the peak (compile, solve, evaluate); the "
+            f"budget is {gib(limit)} ({limit:,} bytes). {advice}"
+        )
+    return needed
