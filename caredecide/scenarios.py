@@ -151,8 +151,9 @@ def run_scenarios(
         for o in chunk
     ]  # fmt: skip
     outcomes = [base, *rest]
-    return [
-        ScenarioOutcome(**{**o.__dict__, "overrides": dict(s.overrides)})
+    given = dict(overrides or {})
+    return [  # what each row changes: the --set values, then the scenario's own
+        ScenarioOutcome(**{**o.__dict__, "overrides": {**given, **s.overrides}})
         for o, (s, _) in zip(outcomes, entries, strict=True)
     ]
 

@@ -20,6 +20,7 @@ COMMAND_MODULES: tuple[str, ...] = (
     "check",
     "solve",
     "sensitivity",
+    "scenarios",
     "changes",
     "uncertainty",
     "compare",

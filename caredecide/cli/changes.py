@@ -17,7 +17,7 @@ from caredecide.cli.console import (
     user_errors,
     writing_to,
 )
-from caredecide.cli.model_warnings import StrictOption, load_and_warn
+from caredecide.cli.model_warnings import SetOption, StrictOption, load_and_warn
 
 
 def run_what_would_change(
@@ -57,6 +57,7 @@ def run_what_would_change(
         bool, typer.Option("--quiet", help="No progress on stderr (the caution stays).")
     ] = False,
     strict: StrictOption = False,
+    sets: SetOption = None,
 ) -> None:
     """Per health state: the recommended policy, the estimates that could flip it inside
     their plausible ranges (at which values, with what probability), and scenarios that
@@ -69,7 +70,7 @@ def run_what_would_change(
 
         if out is not None:
             prepare_output_folder(out)
-        loaded = load_and_warn(model, strict=strict)
+        loaded = load_and_warn(model, strict=strict, sets=sets)
         alternatives = {path.stem: load_and_warn(path, strict=strict) for path in scenario or []}
         objective = default_objective(loaded)
         psa = None

@@ -13,7 +13,7 @@ from rich.console import Console
 from rich.table import Table
 
 from caredecide.cli.console import plain, print_caution, save_chart, stderr, stdout, user_errors
-from caredecide.cli.model_warnings import StrictOption, load_and_warn
+from caredecide.cli.model_warnings import SetOption, StrictOption, load_and_warn
 
 TABLE_FILE = "strategies.csv"
 FRONTIER_FILE = "frontier.csv"
@@ -225,6 +225,7 @@ def compare_command(
     ] = None,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress or notes on stderr.")] = False,
     strict: StrictOption = False,
+    sets: SetOption = None,
 ) -> None:
     """Compare the optimal policy with fixed strategies (research use only)."""
     from caredecide.compare import compare_strategies
@@ -236,7 +237,7 @@ def compare_command(
             if not quiet
             else nullcontext() as status
         ):
-            loaded = load_and_warn(model, strict=strict)
+            loaded = load_and_warn(model, strict=strict, sets=sets)
 
             def progress(round_number: int, brackets: int) -> None:
                 if status is not None:

@@ -9,7 +9,7 @@ an unused parameter, ...) is printed on stderr whatever ``--quiet`` says, and wi
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, Any
 
 import typer
 
@@ -28,6 +28,31 @@ StrictOption = Annotated[
     ),
 ]
 """The ``--strict`` option shared by every command that reads a model."""
+
+SetOption = Annotated[
+    list[str] | None,
+    typer.Option(
+        "--set",
+        metavar="PATH=VALUE",
+        help="Change one value of the model file for this run (repeatable), e.g. "
+        "--set settings.discount_costs=0.06 or --set parameters.hr_treatment.value=0.6. "
+        "The value is read as data (a number, true/false, text), never run.",
+    ),
+]
+"""The ``--set`` option shared by every analysis command."""
+
+
+def parse_sets(sets: list[str] | None) -> dict[str, Any]:
+    """``--set`` texts as ``{path: value}`` (a later value for a path wins).
+
+    Raises
+    ------
+    RunOptionError
+        Naming ``--set``, the text and what was expected.
+    """
+    from caredecide.modelfile.overrides import parse_assignment
+
+    return dict(parse_assignment(text) for text in sets or [])
 
 
 class WarningsAsErrors(CaredecideError):
@@ -57,15 +82,17 @@ def show_warnings(model: Model, warnings: list[ModelWarningRecord], *, strict: b
         stderr.print(f"[yellow]warning:[/] {plain(label)}: {plain(warning)}")
 
 
-def load_and_warn(path: Path | str, *, strict: bool) -> Model:
+def load_and_warn(path: Path | str, *, strict: bool, sets: list[str] | None = None) -> Model:
     """Load and validate the model file at ``path``, show its warnings, honour ``strict``.
 
     See :func:`load_checked`, which also returns the compiled base case.
     """
-    return load_checked(path, strict=strict)[0]
+    return load_checked(path, strict=strict, sets=sets)[0]
 
 
-def load_checked(path: Path | str, *, strict: bool) -> tuple[Model, CompiledModel]:
+def load_checked(
+    path: Path | str, *, strict: bool, sets: list[str] | None = None
+) -> tuple[Model, CompiledModel]:
     """Load and validate the model file at ``path``, show its warnings, honour ``strict``.
 
     Raises
@@ -76,8 +103,10 @@ def load_checked(path: Path | str, *, strict: bool) -> tuple[Model, CompiledMode
         With ``strict`` when the model has warnings.
     """
     from caredecide.modelfile import load_model, validate_and_compile
+    from caredecide.modelfile.overrides import with_overrides
 
-    model = load_model(path, validate=False)
+    overrides = parse_sets(sets)  # before reading: a malformed --set fails at once
+    model = with_overrides(load_model(path, validate=False), overrides, validate=False)
     validated = validate_and_compile(model)  # compiles the base case once
     show_warnings(model, validated.warnings, strict=strict)
     return model, validated.compiled

@@ -13,7 +13,7 @@ from typing import Annotated
 import typer
 
 from caredecide.cli.console import print_caution, progress, stderr, stdout, user_errors
-from caredecide.cli.model_warnings import StrictOption, load_and_warn
+from caredecide.cli.model_warnings import SetOption, StrictOption, load_and_warn, parse_sets
 
 
 @contextmanager
@@ -49,6 +49,7 @@ def report_command(
     ] = 1,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress on stderr.")] = False,
     strict: StrictOption = False,
+    sets: SetOption = None,
 ) -> None:
     """Write a report of every analysis of a model (research use only)."""
     from caredecide.report import build_report, record_path_for, tables_dir_for
@@ -56,7 +57,7 @@ def report_command(
     # The caution is always shown (stderr), whatever --quiet says.
     print_caution(model)
     with user_errors():
-        load_and_warn(model, strict=strict)
+        load_and_warn(model, strict=strict, sets=sets)
         with step_progress("report", 5, quiet) as step:
             record = build_report(
                 model,
@@ -65,6 +66,7 @@ def report_command(
                 seed=seed if draws else None,
                 command_line=shlex.join(["caredecide", *sys.argv[1:]]),
                 progress=step,
+                overrides=parse_sets(sets),
             )
     failed = _failed_checks(tables_dir_for(out))
     if failed:

@@ -23,7 +23,7 @@ from caredecide.cli.console import (
     user_errors,
     writing_to,
 )
-from caredecide.cli.model_warnings import StrictOption, load_and_warn
+from caredecide.cli.model_warnings import SetOption, StrictOption, load_and_warn
 from caredecide.errors import ModelError, Problem
 
 TABLE_WIDTH = 150
@@ -254,6 +254,7 @@ def run_sensitivity(
         bool, typer.Option("--quiet", help="No progress on stderr (the caution stays).")
     ] = False,
     strict: StrictOption = False,
+    sets: SetOption = None,
 ) -> None:
     """Rank the estimates by how much they move the decision; find decision thresholds.
 
@@ -273,7 +274,7 @@ def run_sensitivity(
         if out is not None:  # before the run: a folder that cannot be made fails at once
             prepare_output_folder(out)
         # load_model refuses oversized files (caredecide.modelfile.MAX_MODEL_BYTES).
-        loaded = load_and_warn(model, strict=strict)
+        loaded = load_and_warn(model, strict=strict, sets=sets)
         if two_way_pair:  # check the pair before the long one-way and threshold runs
             _check_pair(loaded, two_way_pair, str(model))
         if region_map:  # an unknown name: an error naming parameters.<name>, before the runs

@@ -22,7 +22,7 @@ from caredecide.cli.console import (
     user_errors,
     writing_to,
 )
-from caredecide.cli.model_warnings import StrictOption, load_checked
+from caredecide.cli.model_warnings import SetOption, StrictOption, load_checked
 
 POLICY_COLUMNS = ["cycle", "age", "state", "action", "value", "next_best_action", "action_gap"]
 
@@ -143,6 +143,7 @@ def solve_command(
     ] = OutputFormat.table,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress or notes on stderr.")] = False,
     strict: StrictOption = False,
+    sets: SetOption = None,
 ) -> None:
     """Solve a model: when to start treatment, with totals (research use only)."""
     from caredecide.analysis import analyse_base_case
@@ -154,7 +155,7 @@ def solve_command(
     print_caution(model)
     with user_errors():
         with stderr.status("Solving...", spinner="dots") if not quiet else nullcontext():
-            loaded, compiled = load_checked(model, strict=strict)
+            loaded, compiled = load_checked(model, strict=strict, sets=sets)
             try:
                 objective = Objective.from_settings(loaded.settings, wtp)
             except ObjectiveError as error:  # name the option, not only the value

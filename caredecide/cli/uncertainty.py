@@ -24,7 +24,7 @@ from caredecide.cli.console import (
     user_errors,
     writing_to,
 )
-from caredecide.cli.model_warnings import StrictOption, load_and_warn
+from caredecide.cli.model_warnings import SetOption, StrictOption, load_and_warn
 
 
 def _number(value: float, digits: str = ",.2f") -> str:
@@ -178,6 +178,7 @@ def run_uncertainty(
         ),
     ] = False,
     strict: StrictOption = False,
+    sets: SetOption = None,
 ) -> None:
     """Probabilistic sensitivity analysis of the timing policy: acceptability by state and
     age, expected loss of each candidate policy, acceptability curves, EVPI and EVPPI.
@@ -195,7 +196,7 @@ def run_uncertainty(
         from caredecide.strategies import read_strategy_table, sibling_table
         from caredecide.uncertainty.psa import analyse_uncertainty
 
-        loaded = load_and_warn(model, strict=strict)
+        loaded = load_and_warn(model, strict=strict, sets=sets)
         table = strategies or sibling_table(model)
         extra = read_strategy_table(table) if table is not None else []
         if table is not None and not quiet:

@@ -9,7 +9,7 @@ import typer
 from rich.table import Table
 
 from caredecide.cli.console import print_caution, stdout, user_errors
-from caredecide.cli.model_warnings import StrictOption, load_and_warn
+from caredecide.cli.model_warnings import SetOption, StrictOption, load_and_warn
 from caredecide.cli.report import step_progress
 
 
@@ -20,6 +20,7 @@ def verify_command(
     ] = None,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress on stderr.")] = False,
     strict: StrictOption = False,
+    sets: SetOption = None,
 ) -> None:
     """Run the verification battery on a model; exit code 1 when a check fails."""
     from caredecide.exports import table_to_csv
@@ -27,7 +28,7 @@ def verify_command(
 
     print_caution(model)
     with user_errors():
-        loaded = load_and_warn(model, strict=strict)
+        loaded = load_and_warn(model, strict=strict, sets=sets)
         with step_progress("verify", len(CHECK_IDS), quiet) as step:
             report = verify_model(loaded, progress=step)
     table = Table(title=f"Verification of {loaded.title}")

@@ -117,6 +117,7 @@ def build_report(
     seed: int | None = None,
     command_line: str = "",
     progress: Callable[[int, int, str], None] | None = None,
+    overrides: dict | None = None,
 ):
     """Run every analysis, write the report, the tables and the run record.
 
@@ -141,12 +142,18 @@ def build_report(
     from caredecide.runrecord import RunRecord, package_versions, utc_now, write_record
 
     model_path, out = Path(model_path), Path(out)
-    data = run_analyses(model_path, draws=draws, seed=seed, progress=progress)
+    data = run_analyses(model_path, draws=draws, seed=seed, progress=progress, overrides=overrides)
     record_path = record_path_for(out)
     tables_dir = tables_dir_for(out)
     record = RunRecord(
         command="report",
-        arguments={"draws": draws, "seed": seed, "report": out.name, "command_line": command_line},
+        arguments={
+            "draws": draws,
+            "seed": seed,
+            "report": out.name,
+            "command_line": command_line,
+            **({"set": dict(overrides)} if overrides else {}),
+        },
         model_path=_relative(model_path, record_path.parent),
         model_sha256=data.model_sha256,
         seed=seed,
@@ -324,7 +331,13 @@ def rerun(
         outcome.model_changed = True
         outcome.differences.append(Difference(f"model file {model_path}", record.model_sha256, now))
     draws = record.arguments.get("draws")
-    data = run_analyses(model_path, draws=draws, seed=record.seed, progress=progress)
+    data = run_analyses(
+        model_path,
+        draws=draws,
+        seed=record.seed,
+        progress=progress,
+        overrides=record.arguments.get("set"),
+    )
     changed_inputs = compare_hashes(
         record.input_files, _hash_inputs(data.model, model_path), kind="input file"
     )
