@@ -7,8 +7,8 @@ Not a test: prints times measured in this run on this machine, and their ratios.
    charts written to a temporary folder), the rest; with the peak resident memory.
 2. Serial against ``--workers 2`` (wall and CPU seconds, fresh processes, interleaved).
 3. With ``--baseline PATH`` (a checkout of an older caredecide, e.g. from
-   ``git worktree add /tmp/old <commit>``), the same serial run of that version, in the
-   same run, and the ratio.
+   ``git worktree add /tmp/old <commit>``), the same serial run of that version on its
+   own demo model (the demo file format changed since), in the same run, and the ratio.
 
 Run: python benchmarks/bench_uncertainty.py [--draws 10000] [--repeats 3] [--baseline PATH]
 """
@@ -27,7 +27,7 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
-DEMO = ROOT / "synthetic_cohort" / "models" / "demo_progressive.toml"
+DEMO = Path("synthetic_cohort") / "models" / "demo_progressive.toml"  # of each version
 
 CHILD = r"""
 import json, resource, sys, time
@@ -76,7 +76,7 @@ def run_child(src: Path, draws: int, extra: list[str], split_steps: bool) -> dic
         code = CHILD.format(
             src=str(src),
             split_steps=split_steps,
-            model=str(DEMO),
+            model=str(src / DEMO),
             draws=str(draws),
             out=out,
             extra=extra,

@@ -80,21 +80,25 @@ def check_scalar(
     """
     if value is None and allow_none:
         return None
-    expected = _describe(target_type, min_val, max_val, include_boundaries)
-    if allow_none:
-        expected += " (or None for the default)"
+
+    def refused() -> RunOptionError:  # the message is built only when needed (hot path)
+        expected = _describe(target_type, min_val, max_val, include_boundaries)
+        if allow_none:
+            expected += " (or None for the default)"
+        return RunOptionError(name, value, expected)
+
     wanted = Integral if target_type is int else Real
     if isinstance(value, bool) or not isinstance(value, wanted):
-        raise RunOptionError(name, value, expected)
+        raise refused()
     number = int(value) if target_type is int else float(value)
     if target_type is float and not math.isfinite(number):
-        raise RunOptionError(name, value, expected)
+        raise refused()
     left = include_boundaries in ("both", "left")
     right = include_boundaries in ("both", "right")
     if min_val is not None and (number < min_val or (number == min_val and not left)):
-        raise RunOptionError(name, value, expected)
+        raise refused()
     if max_val is not None and (number > max_val or (number == max_val and not right)):
-        raise RunOptionError(name, value, expected)
+        raise refused()
     return number
 
 
