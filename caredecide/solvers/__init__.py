@@ -16,7 +16,7 @@ import numpy as np
 
 from caredecide.compiled import CompiledModel
 from caredecide.objective import Objective
-from caredecide.options import check_scalar
+from caredecide.options import check_choice, check_scalar
 from caredecide.solvers.bellman import (
     DEFAULT_TIE_ABSOLUTE,
     DEFAULT_TIE_RELATIVE,
@@ -25,6 +25,7 @@ from caredecide.solvers.bellman import (
 )
 from caredecide.solvers.finite import backward_induction
 from caredecide.solvers.result import PolicyResult, SweepRecord
+from caredecide.solvers.sparse import TRANSITION_FORMS
 from caredecide.solvers.stationary import solve_stationary
 
 METHODS = (
@@ -51,6 +52,7 @@ def solve(
     tie_tolerance: float = DEFAULT_TIE_ABSOLUTE,
     tie_relative: float = DEFAULT_TIE_RELATIVE,
     record_history: bool = False,
+    transition_form: str = "auto",
 ) -> PolicyResult:
     """Find the policy that maximises the objective, for every draw of the model.
 
@@ -82,6 +84,11 @@ def solve(
     record_history : bool
         Keep per-sweep values, policy, residual and error bound in ``result.history``
         (memory grows with sweeps x draws x states).
+    transition_form : {"auto", "dense", "sparse"}
+        Infinite horizon: solve with sparse transition rows (scipy.sparse) or dense
+        arrays; "auto" picks sparse for large, sparse models with few draws
+        (:func:`caredecide.solvers.sparse.choose_form`). ``result.transition_form`` says
+        which was used.
 
     Returns
     -------
@@ -104,6 +111,7 @@ def solve(
     check_scalar(tie_relative, "tie_relative", float, min_val=0.0)
     check_scalar(max_iterations, "max_iterations", int, min_val=1)
     check_scalar(evaluation_sweeps, "evaluation_sweeps", int, min_val=0)
+    check_choice(transition_form, "transition_form", TRANSITION_FORMS)
     check_compiled(compiled)
     finite = compiled.n_cycles is not None
     if method == "auto":
@@ -112,6 +120,11 @@ def solve(
         raise SolverError(
             f"method {method!r} is for an infinite horizon; the model has n_cycles = "
             f"{compiled.n_cycles} (use 'backward_induction' or 'auto')"
+        )
+    if finite and transition_form == "sparse":
+        raise SolverError(
+            "transition_form = 'sparse' serves an infinite horizon (policy and value "
+            f"iteration); the model has n_cycles = {compiled.n_cycles} (use 'auto' or 'dense')"
         )
     if finite:
         return backward_induction(
@@ -140,4 +153,5 @@ def solve(
         tie_absolute=tie_tolerance,
         tie_relative=tie_relative,
         record_history=record_history,
+        transition_form=transition_form,
     )

@@ -111,6 +111,8 @@ class PolicyResult:
         Clinical order of the states (may be empty).
     history : list of SweepRecord or None
         Per-sweep history when solved with ``record_history=True``.
+    transition_form : {"dense", "sparse"}
+        How the solver stored the transitions (see :mod:`caredecide.solvers.sparse`).
     """
 
     policy: np.ndarray
@@ -134,6 +136,8 @@ class PolicyResult:
     discount: tuple[float, float] = (1.0, 1.0)
     ordered_states: tuple[str, ...] = ()
     history: list[SweepRecord] | None = field(default=None, repr=False)
+    transition_form: str = "dense"
+    """How the solver stored the transitions: "dense" arrays or "sparse" rows (CSR)."""
 
     @property
     def n_draws(self) -> int:

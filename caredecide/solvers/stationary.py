@@ -41,6 +41,7 @@ from caredecide.solvers.bellman import (
     stationary_discount,
 )
 from caredecide.solvers.result import PolicyResult, SweepRecord, build_result
+from caredecide.solvers.sparse import choose_form, sparse_iterate
 
 START_WEIGHT = {"start": 1.0, "end": 0.0, "trapezoid": 0.5}
 
@@ -286,8 +287,13 @@ def solve_stationary(
     tie_absolute: float,
     tie_relative: float,
     record_history: bool = False,
+    transition_form: str = "auto",
 ) -> PolicyResult:
     """Solve an infinite-horizon model with one of the iterative methods.
+
+    ``transition_form`` is "auto", "dense" or "sparse" (:mod:`caredecide.solvers.sparse`:
+    policy and value iteration of large models with few moves per state); the result's
+    ``transition_form`` says which was used.
 
     Returns
     -------
@@ -297,12 +303,36 @@ def solve_stationary(
     """
     problem = StationaryProblem(compiled, objective)
     history: list[SweepRecord] | None = [] if record_history else None
+    form = choose_form(compiled.transition, transition_form)
+    if form == "sparse" and (record_history or method == "modified_policy_iteration"):
+        if transition_form == "sparse":
+            raise SolverError(
+                "sparse transitions serve policy and value iteration without a sweep history; "
+                f"got method = {method!r}, record_history = {record_history}"
+            )
+        form = "dense"
     per_draw = (
         method in ("value_iteration", "policy_iteration")
         and not record_history
         and kernels.available()
     )
-    if per_draw:
+    if form == "sparse":
+        D, A, S = problem.shape
+        v, iterations, residual, converged = sparse_iterate(
+            problem.P.reshape(D, A, S, S),
+            problem.R,
+            problem.gamma,
+            method,
+            tolerance,
+            relative,
+            max_iterations,
+        )
+        bound = (
+            problem.bound(residual)
+            if method == "value_iteration"
+            else (residual / (1.0 - problem.gamma))
+        )
+    elif per_draw:
         v, iterations, residual, converged = _per_draw(
             problem, method, tolerance, relative, max_iterations
         )
@@ -348,6 +378,8 @@ def solve_stationary(
     )
     if converged:
         message = f"{method.replace('_', ' ')} converged in {iterations} iterations"
+        if form == "sparse":
+            message += " (sparse transitions)"
     else:
         message = (
             f"{method.replace('_', ' ')} stopped at max_iterations = {max_iterations} before "
@@ -369,4 +401,5 @@ def solve_stationary(
         error_bound=bound,
         success=converged,
         message=message,
+        transition_form=form,
     )
