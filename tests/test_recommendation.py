@@ -158,3 +158,14 @@ def test_a_scenario_that_changes_the_policy_is_listed():
     assert list(result.scenarios["scenario"]) == ["heavier toxicity"]
     assert "wait" in result.scenarios["recommended"].iloc[0]
     assert any("heavier toxicity" in line for line in result.lines())
+
+
+def test_context_and_two_way_show_action_labels(demo, demo_thresholds):
+    from caredecide.sensitivity import two_way
+
+    labels = {a.id: a.label for a in demo.actions}
+    table = threshold_context(demo, demo_thresholds).dropna(subset=["threshold"])
+    assert (table["label_below"] == table["action_below"].map(labels)).all()
+    grid = two_way(demo, "hr_treatment", "c_drug_year", grid=2)
+    assert set(grid["action_at_start"]) <= {f"stage_1: {x}; stage_2: {y}" for x in
+                                            labels.values() for y in labels.values()}  # fmt: skip

@@ -31,7 +31,7 @@ BELOW = "below"
 CONTEXT_COLUMNS = [
     "parameter", "state", "ages", "action_below", "action_above", "base", "low", "high",
     "threshold", "direction", "distance_share", "probability_beyond", "threshold_min",
-    "threshold_max", "cells", "distribution",
+    "threshold_max", "cells", "distribution", "label_below", "label_above",
 ]  # fmt: skip
 
 
@@ -99,7 +99,8 @@ def threshold_context(model: Any, thresholds: pd.DataFrame) -> pd.DataFrame:
         the threshold lies from the base value), ``distance_share``,
         ``probability_beyond`` (of ``threshold``: the chance at least one cell of the
         band flips), ``threshold_min, threshold_max``, ``cells`` and ``distribution``.
-        Rows sorted by parameter (model order), then distance. A parameter without a
+        ``label_below, label_above`` are the actions' labels. Rows sorted by parameter
+        (model order), then distance. A parameter without a
         switch keeps one row whose ``ages`` holds the status text.
     """
     switches = thresholds[thresholds["status"] == SWITCH].copy()
@@ -157,6 +158,9 @@ def threshold_context(model: Any, thresholds: pd.DataFrame) -> pd.DataFrame:
                 }
             )
     frame = pd.DataFrame(rows).reindex(columns=CONTEXT_COLUMNS)
+    labels = {a.id: (getattr(a, "label", "") or a.id) for a in getattr(model, "actions", ())}
+    frame["label_below"] = frame["action_below"].map(labels)
+    frame["label_above"] = frame["action_above"].map(labels)
     order = {n: i for i, n in enumerate(names)}
     frame["_order"] = frame["parameter"].map(order)
     frame = frame.sort_values(["_order", "distance_share"], kind="stable", na_position="last")

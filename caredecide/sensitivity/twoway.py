@@ -60,8 +60,8 @@ def two_way(
     -------
     pandas.DataFrame
         (grid * grid rows): ``x_parameter, x_value, y_parameter, y_value,
-        action_at_start`` (the action at cycle 0 in the start state; with several
-        start states ``"state: action; ..."``), ``start_value`` (objective at the model
+        action_at_start`` (the label of the action at cycle 0 in the start state; with
+        several start states ``"state: action; ..."``), ``start_value`` (objective at the model
         start), ``structure`` (plain-language policy summary) and ``same_as_base``
         (the whole policy equals the base-case policy).
     """
@@ -110,7 +110,12 @@ def two_way(
     chunks = batch.reductions
     first = np.concatenate([c["first"] for c in chunks])  # (N^2, n_start)
     state_ids = np.asarray(base_compiled.state_ids, dtype=object)
-    action_ids = np.asarray(base_compiled.action_ids, dtype=object)
+    # Actions are shown by their labels (the id when a model gives none).
+    labels = base_compiled.action_labels or base_compiled.action_ids
+    action_ids = np.asarray(
+        [label or a for label, a in zip(labels, base_compiled.action_ids, strict=True)],
+        dtype=object,
+    )
     names = action_ids[first]
     if starts.size == 1:
         action_at_start = names[:, 0]
