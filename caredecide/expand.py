@@ -137,6 +137,7 @@ class _Expander:
         model = self.model
         taken = {
             *model.parameter_names(),
+            *model.derived,
             *RESERVED_NAMES,
             *FUNCTIONS,
             REST_KEYWORD,

@@ -78,6 +78,22 @@ def test_the_sampling_path_never_sees_a_misfit_distribution():
         analyse_uncertainty(load_dict(data, validate=False), 10, seed=1)
 
 
+@pytest.mark.parametrize(
+    ("name", "key", "bound", "fragment"),
+    [
+        ("p_die_sick", "high", 1.5, "1.5 is outside the range of a probability"),
+        ("rr_treat", "low", -0.2, "-0.2 is outside the range of a relative_risk"),
+        ("u_sick", "high", 1.1, "1.1 is outside the range of a qaly_weight"),
+    ],
+)
+def test_a_bound_outside_the_kind_range_is_refused_naming_the_parameter(name, key, bound, fragment):
+    data = small_model_dict()
+    other = "high" if key == "low" else "low"
+    data["parameters"][name][key] = bound
+    data["parameters"][name][other] = data["parameters"][name]["value"]
+    assert f"test.toml: parameters.{name}.{key}: {fragment}" in problems_of(data)
+
+
 # ---------------------------------------------------------------- repeated one-off charge
 def test_the_demo_pattern_is_flagged_for_each_state_it_repeats_in():
     model = load_model(REPEAT_PATTERN, validate=False)

@@ -26,6 +26,7 @@ from caredecide.model import Model
 
 __all__ = [
     "KIND_RANGES",
+    "bound_problems",
     "distribution_problems",
     "repeated_charge_warnings",
     "unused_parameter_warnings",
@@ -95,6 +96,32 @@ def distribution_problems(model: Model) -> list[Problem]:
                 f"{_FITTING[parameter.kind]}",
             )
         )
+    return problems
+
+
+def bound_problems(model: Model) -> list[Problem]:
+    """A problem per ``low``/``high`` bound outside the range of its parameter's kind.
+
+    One-way and threshold analyses move a parameter to its bounds: a bound of 1.5 on a
+    probability would otherwise fail deep inside an analysis, at a cell, without the
+    parameter's name.
+    """
+    problems: list[Problem] = []
+    for name, parameter in model.parameters.items():
+        if parameter.kind not in KIND_RANGES:
+            continue
+        low, high, rule = KIND_RANGES[parameter.kind]
+        for key in ("low", "high"):
+            bound = getattr(parameter, key)
+            if bound is None or not math.isfinite(bound) or low <= bound <= high:
+                continue
+            problems.append(
+                Problem(
+                    f"parameters.{name}.{key}",
+                    f"{bound!r} is outside the range of a {parameter.kind} "
+                    f"({rule}); expected a bound within {_interval(low, high)}",
+                )
+            )
     return problems
 
 

@@ -30,6 +30,7 @@ from caredecide.model import (
     Model,
 )
 from caredecide.modelfile.advisories import (
+    bound_problems,
     distribution_problems,
     repeated_charge_warnings,
     unused_parameter_warnings,
@@ -65,6 +66,7 @@ def structural_problems(model: Model) -> list[Problem]:
     _check_rows(model, add)
     _check_parameters(model, add)
     problems.extend(distribution_problems(model))
+    problems.extend(bound_problems(model))
     _check_mortality(model, add)
     return problems
 
