@@ -40,10 +40,8 @@ def _message(error: ExpressionError, where: str) -> str:
 
 
 def _name_problems(name: str, parameter_names: Collection[str]) -> list[str]:
-    from caredecide.modelfile.validator import IDENTIFIER
-
     found = []
-    if not IDENTIFIER.match(name):
+    if not (name.isascii() and name.isidentifier()):  # letters, digits, _ (no leading digit)
         found.append(f"name {name!r}; expected letters, digits and _ (not starting with a digit)")
     if name in RESERVED_NAMES:
         found.append(f"name {name!r} is reserved (the model supplies it); choose another name")
