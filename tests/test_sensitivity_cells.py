@@ -337,3 +337,31 @@ def test_a_model_with_only_fixed_cells_gives_an_empty_table():
     result = cell_sensitivity(model)
     assert result.to_frame().empty and list(result.to_frame().columns) == FRAME_COLUMNS
     assert set(result.fixed_frame()["reason"]) == {FIXED_ZERO, FIXED_REMAINDER}
+
+
+@settings(max_examples=15, deadline=None)
+@given(
+    p=st.floats(0.1, 0.6),
+    q_share=st.floats(0.1, 0.8),
+    loss_share=st.floats(0.1, 0.8),
+)
+def test_switching_factors_follow_the_algebra_for_any_estimates(p, q_share, loss_share):
+    # Source: two_state_model's docstring (common practice: the Bellman equation), with
+    # q < p and L < p - q so that treating is best: the wait cell switches at (q + L) / p,
+    # the treat cell at (p - L) / q when that is below its search end min(10, 1 / q).
+    q = q_share * p
+    loss = loss_share * (p - q)
+    model = two_state_model()
+    parameters = dict(model.parameters)
+    parameters["p"] = replace(parameters["p"], value=p)
+    parameters["q"] = replace(parameters["q"], value=q)
+    parameters["loss"] = replace(parameters["loss"], value=loss)
+    frame = cell_sensitivity(replace(model, parameters=parameters)).to_frame()
+    wait = _row(frame, "transitions.wait.sick.dead")
+    treat = _row(frame, "transitions.treat.sick.dead")
+    assert wait["factor_below"] == pytest.approx((q + loss) / p, abs=1e-8)
+    above = (p - loss) / q
+    if above < min(10.0, 1.0 / q) * (1 - 1e-6):
+        assert treat["factor_above"] == pytest.approx(above, abs=1e-8)
+    elif above > min(10.0, 1.0 / q) * (1 + 1e-6):
+        assert np.isnan(treat["factor_above"])

@@ -6,7 +6,10 @@ from __future__ import annotations
 
 import pytest
 
-from tests.browser.test_app_browser import TIMEOUT_MS, _check_view, _wait_until_done
+from caredecide.modelfile import load_model
+from caredecide.sensitivity import cell_sensitivity
+from synthetic_cohort import demo_model_path
+from tests.browser.test_app_browser import DONE, TIMEOUT_MS, _check_view, _wait_until_done
 
 pytestmark = pytest.mark.browser
 
@@ -29,4 +32,12 @@ def test_transition_matrix_shows_in_a_real_browser(app_url, page, artifacts):
     charts.nth(1).locator("canvas, svg").first.wait_for(timeout=TIMEOUT_MS)
     page.screenshot(path=str(folder / "matrix-second-action.png"), full_page=True)
     assert page.get_by_text("Switch below 1").first.is_visible()  # the chosen cell's detail
+    # Choosing another cell shows that cell's detail.
+    cells = cell_sensitivity(load_model(demo_model_path())).to_frame()["cell"]
+    other = str(cells.iloc[-1])
+    page.get_by_test_id("stSelectbox").first.click()
+    page.get_by_role("option", name=other, exact=True).click()
+    page.wait_for_selector(DONE, timeout=TIMEOUT_MS)
+    page.locator("strong", has_text=other).first.wait_for(timeout=TIMEOUT_MS)  # its detail
+    page.screenshot(path=str(folder / "cell-detail.png"), full_page=True)
     _check_view(page)
