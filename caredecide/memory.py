@@ -8,8 +8,9 @@ their peaks, temporaries included, in bytes of float64 (8), intp (8) and bool (1
 
 * compile: the compiled arrays, the expression stacks and row sums, and for rate rows the
   generators and the exponential's work arrays (``RATE_WORK_COPIES`` copies of the
-  generator stack, one matrix per draw and cycle: the worst case, when no two
-  (draw, cycle) columns of rates are equal);
+  generator stack with the compiled loop, ``RATE_WORK_COPIES_NUMPY`` without; one matrix
+  per draw and cycle: the worst case, when no two (draw, cycle) columns of rates are
+  equal);
 * solve: the compiled arrays held, plus the results: values (D, T+1, S), Q-values
   (D, T, S, A), policy, gap, next-best action (intp) and ties (bool) per (D, T, S); an
   infinite horizon holds (D, S, S) systems and (D, S, A) sweeps instead;
@@ -29,12 +30,14 @@ from caredecide.errors import ModelTooLargeError
 from caredecide.limits import DISPLAY_CAP
 
 FLOAT = 8
-RATE_WORK_COPIES = 10.0
-"""Generator-stack copies the batched matrix exponential holds at its peak (Pade
-scaling and squaring: powers, numerator, denominator, solve and squaring buffers, the
-selected rows and their copy per draw): measured 12.2-12.5 when every matrix takes the
-same Pade degree, 8.2-8.4 when the norms split the stack into groups of different
-degrees (the usual case over draws). 10 keeps the estimate within 25% of both."""
+RATE_WORK_COPIES = 4.0
+"""Generator-stack copies alive at the peak of the rate rows' matrix exponential with the
+compiled loop (one matrix at a time): the generators, their scaled and contiguous copies,
+the result and the selected rows; measured 3.5-4.5."""
+RATE_WORK_COPIES_NUMPY = 10.0
+"""The same for the batched numpy path (``CAREDECIDE_KERNELS=numpy``): Pade powers,
+numerator, denominator and squaring buffers for every matrix at once; measured 8.2-12.5
+(lower when the norms split the stack into groups of different degrees)."""
 STACK_COPIES = 3
 """Copies of an expression stack (n_entries, D, T) alive at once (values, check masks,
 the moved copy scattered into the arrays)."""
@@ -103,7 +106,10 @@ def compile_peak_bytes(shape: PipelineShape) -> int:
     if shape.rate_actions:
         K = shape.rate_states
         generators = FLOAT * D * tp * shape.rate_actions * K * K
-        temporaries = max(temporaries, int(RATE_WORK_COPIES * generators))
+        from caredecide import jit
+
+        copies = RATE_WORK_COPIES if jit.available() else RATE_WORK_COPIES_NUMPY
+        temporaries = max(temporaries, int(copies * generators))
     objects = ENTRY_OBJECT_BYTES * (shape.n_entries + 2 * S + 3 * A)
     return compiled_bytes(shape) + temporaries + objects
 
