@@ -28,6 +28,9 @@ VIEWS = [
         "views/sensitivity.py", title="Sensitivity", icon=":material/tune:", url_path="sensitivity"
     ),
     st.Page(
+        "views/scenarios.py", title="Scenarios", icon=":material/layers:", url_path="scenarios"
+    ),
+    st.Page(
         "views/changes.py",
         title="What would change it",
         icon=":material/help_center:",
