@@ -365,3 +365,10 @@ def test_switching_factors_follow_the_algebra_for_any_estimates(p, q_share, loss
         assert treat["factor_above"] == pytest.approx(above, abs=1e-8)
     elif above > min(10.0, 1.0 / q) * (1 + 1e-6):
         assert np.isnan(treat["factor_above"])
+
+
+def test_an_infinite_horizon_names_no_ages():
+    # One stationary policy: a change holds in every cycle (common practice).
+    frame = cell_sensitivity(load_model(MODELS_DIR / "teaching_stationary.toml")).to_frame()
+    texts = [t for t in (*frame["changes_below"], *frame["changes_above"]) if t != "none"]
+    assert texts and all(t.endswith("in every cycle") for t in texts)

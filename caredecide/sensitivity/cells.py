@@ -597,9 +597,9 @@ def _change_texts(base: Any, moved: _Moved, base_policy: np.ndarray) -> list[str
             band = key == k
             i = int(np.flatnonzero(band)[0])
             cycles = pd.DataFrame({"cycle": t[band], "age": ages[t[band]]})
-            parts.append(
-                f"{states[s[i]]} {actions[before[i]]}->{actions[after[i]]} at {_ages_text(cycles)}"
-            )
+            # An infinite horizon has one stationary policy: no ages to name.
+            when = "in every cycle" if base.n_cycles is None else f"at {_ages_text(cycles)}"
+            parts.append(f"{states[s[i]]} {actions[before[i]]}->{actions[after[i]]} {when}")
         texts.append("; ".join(parts))
     return texts
 
