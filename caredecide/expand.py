@@ -495,6 +495,7 @@ class _Expander:
             # Definitions that read attributes or tunnels were written into each copy.
             derived={k: v for k, v in model.derived.items() if k not in self.inlined},
         )
+        self._warn_beyond_length()
         return Expansion(flat, tuple(self.copies), self._groups(), tuple(self.warnings))
 
     def _rows(
@@ -613,6 +614,33 @@ class _Expander:
                 )
             )
 
+    def _warn_beyond_length(self) -> None:
+        """Warn when an expression compares a tunnel with a step it never reaches."""
+        cells: list[tuple[str, object]] = []
+        for state in self.model.states:
+            cells += [
+                (f"states.{state.id}.{f}", getattr(state, f)) for f in ("qaly_weight", "cost")
+            ]
+        for table_name in ("transitions", "rates"):
+            for action_id, rows in getattr(self.model, table_name).items():
+                for key, row in rows.items():
+                    cells += [(f"{table_name}.{action_id}.{key}.{t}", v) for t, v in row.items()]
+        cells += [(f"derived.{name}", text) for name, text in self.model.derived.items()]
+        for where, value in cells:
+            if not isinstance(value, str):
+                continue
+            for name, tunnel in self.model.tunnels.items():
+                for step in _compared_steps(value, name, tunnel.length):
+                    self.warnings.append(
+                        ModelWarningRecord(
+                            where,
+                            f"{value!r} compares {name!r} with {step:g}, but its steps stop at "
+                            f"{tunnel.length} ('{tunnel.length} or more'), so the comparison "
+                            f"cannot tell them apart; expected tunnels.{name}.length >= {step:g}",
+                            {"tunnel": name, "step": step},
+                        )
+                    )
+
     def _groups(self) -> dict[str, tuple[str, ...]]:
         groups: dict[str, tuple[str, ...]] = {"state": tuple(c.base for c in self.copies)}
         for name in self.model.attributes:
@@ -636,6 +664,30 @@ def _names(value: object) -> set[str]:
         return set(parse_expression(value).names)
     except ExpressionError:
         return set()
+
+
+_FLIPPED = {"<": ">", "<=": ">=", ">": "<", ">=": "<=", "==": "==", "!=": "!="}
+
+
+def _compared_steps(text: str, name: str, length: int) -> list[float]:
+    """Steps a comparison of ``name`` with a number needs beyond the tunnel's ``length``.
+
+    ``name >= v`` (or ``<``, ``==``, ``!=``) tells steps apart only if step ``v`` exists
+    (``v <= length``); ``name > v`` (or ``<=``) only if step ``v + 1`` does. Returns the step
+    each comparison would need, where it exceeds ``length``.
+    """
+    number = r"([0-9]+(?:\.[0-9]*)?)"
+    operator = r"(<=|>=|==|!=|<|>)"
+    found = [
+        (op, float(v))
+        for op, v in re.findall(rf"\b{re.escape(name)}\s*{operator}\s*{number}", text)
+    ]
+    found += [
+        (_FLIPPED[op], float(v))
+        for v, op in re.findall(rf"(?<![\w.]){number}\s*{operator}\s*{re.escape(name)}\b", text)
+    ]
+    needed = [v + 1 if op in (">", "<=") else v for op, v in found]
+    return [n for n in needed if n > length]
 
 
 def _step_id(tunnel: Tunnel, k: int) -> str:

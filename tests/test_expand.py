@@ -762,3 +762,17 @@ def test_the_bundled_demo_with_attributes_and_a_tunnel_moves_the_cohort_as_writt
     assert float(on_drug.iloc[0]) == pytest.approx(1.0 - q55, rel=1e-12)
     year_0 = by_year[(by_year["cycle"] == 1) & (by_year["years_progressed"] == "0")]["proportion"]
     assert float(year_0.iloc[0]) == pytest.approx(1.0 - 0.92**0.6, rel=1e-12)
+
+
+def test_comparing_a_tunnel_with_a_step_it_never_reaches_warns():
+    text = _tunnel_model(
+        start="sick__untreated", enter="0.5", die="when(years_on_drug >= 5, 0.2, 0.1)"
+    )
+    warnings = validate_model(loads_model(text, validate=False))
+    found = [w for w in warnings if "steps stop at 2" in w.message]
+    assert [w.where for w in found] == [  # one warning per cell written in the file
+        "transitions.wait.sick__untreated.dead",
+        "transitions.wait.sick__treated.dead",
+    ]
+    assert "compares 'years_on_drug' with 5" in found[0].message
+    assert "expected tunnels.years_on_drug.length >= 5" in found[0].message
