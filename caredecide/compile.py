@@ -565,6 +565,7 @@ class _Evaluator:
 
         self.model = model
         self.n_draws = n_draws
+        self._parameters = values
         settings = model.settings
         n = model.n_cycles()
         self.n_cycles = 1 if n is None else n
@@ -648,7 +649,20 @@ class _Evaluator:
             problems.append(
                 Problem(
                     entries[i].where,
-                    f"{entries[i].expression.source!r} gives {value!r} {place}: {message}",
+                    f"{entries[i].expression.source!r} gives {value!r} {place}"
+                    f"{self._parameters_at(entries[i], int(d))}: {message}",
                 )
             )
         return problems
+
+    def _parameters_at(self, entry: Entry, draw: int) -> str:
+        """`` (with p_sick = 0.3, ...)``: the parameters the entry uses, at ``draw``."""
+        names = sorted(entry.expression.names & self._parameters.keys())
+        if not names:
+            return ""
+        shown = []
+        for name in names:
+            column = self._parameters[name]
+            value = float(column[draw if column.shape[0] > 1 else 0, 0])
+            shown.append(f"{name} = {value:.6g}")
+        return f" (with {', '.join(shown)})"

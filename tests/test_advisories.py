@@ -6,6 +6,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from caredecide.errors import ModelError
@@ -197,3 +198,17 @@ def test_conversion_errors_over_draws_name_the_place_not_an_array_index():
     message = str(caught.value)
     assert message.startswith("transitions.treat.sick.dead: expression 'with_rr(p, rr)'")
     assert "got -0.07" in message and "index" not in message
+
+
+def test_a_bad_value_at_a_draw_names_the_cell_and_the_parameters_behind_it():
+    from caredecide.compile import compile_model
+
+    data = small_model_dict()
+    data["transitions"]["wait"]["well"]["sick"] = "p_sick * 5"
+    model = load_dict(data)
+    with pytest.raises(ModelError) as caught:
+        compile_model(model, {"p_sick": np.array([0.1, 0.3, 0.1])})
+    assert (
+        "transitions.wait.well.sick: 'p_sick * 5' gives 1.5 for draw 1 in every cycle "
+        "(with p_sick = 0.3): probability; expected a probability in [0, 1]"
+    ) in str(caught.value)

@@ -96,11 +96,14 @@ def consistency_rule(model: Any, name: str) -> str:
 
 
 def _check_names(model: Any, names: Iterable[str]) -> None:
+    from caredecide.expressions import did_you_mean
+
     known = model.base_parameter_values()
     problems = [
         Problem(
             where=f"parameters.{name}",
-            message=f"unknown parameter {name!r}; expected one of {sorted(known)}",
+            message=f"unknown parameter {name!r}{did_you_mean(name, known)}; "
+            f"expected one of {sorted(known)}",
         )
         for name in names
         if name not in known

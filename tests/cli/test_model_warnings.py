@@ -81,3 +81,9 @@ def test_app_prints_warnings_and_strict_refuses_to_start(slip_model, monkeypatch
     assert run.exit_code == 2
     assert QALY_SLIP in run.stderr
     assert started == []
+
+
+def test_an_unknown_parameter_on_the_command_line_gets_a_suggestion(slip_model):
+    run = runner.invoke(app, ["sensitivity", str(slip_model), "--parameters", "p_sik"])
+    assert run.exit_code == 2
+    assert "unknown parameter 'p_sik' (did you mean p_sick" in run.stderr
