@@ -599,7 +599,10 @@ def _change_texts(base: Any, moved: _Moved, base_policy: np.ndarray) -> list[str
             cycles = pd.DataFrame({"cycle": t[band], "age": ages[t[band]]})
             # An infinite horizon has one stationary policy: no ages to name.
             when = "in every cycle" if base.n_cycles is None else f"at {_ages_text(cycles)}"
-            parts.append(f"{states[s[i]]} {actions[before[i]]}->{actions[after[i]]} {when}")
+            if before[i] == after[i]:  # the rounding fallback above: a tie, not yet a switch
+                parts.append(f"{states[s[i]]} {actions[before[i]]} tied with another {when}")
+            else:
+                parts.append(f"{states[s[i]]} {actions[before[i]]}->{actions[after[i]]} {when}")
         texts.append("; ".join(parts))
     return texts
 
