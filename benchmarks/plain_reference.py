@@ -14,30 +14,52 @@ from __future__ import annotations
 
 import numpy as np
 
-from caredecide.compiled import CompiledModel, occupancy_weights
+from caredecide.compiled import CompiledModel, cycle_weights, stationary_cycle_weights
 
 
 def _at(array: np.ndarray, t: int) -> np.ndarray:
     return array[:, min(t, array.shape[1] - 1)]
 
 
+def _occupancy(model: CompiledModel, t: int, wtp: float, w_o, w_c) -> np.ndarray:
+    """(D, S, A) objective reward per cycle in s under a, weighted w_o (QALYs) and w_c (costs)."""
+    q = _at(model.state_qaly, t)[..., None]
+    c = _at(model.state_cost, t)[..., None]
+    if model.state_action_qaly is not None:
+        q = q + _at(model.state_action_qaly, t)
+    if model.state_action_cost is not None:
+        c = c + _at(model.state_action_cost, t)
+    return np.broadcast_to(
+        wtp * w_o * q - w_c * c, (model.n_draws, model.n_states, model.n_actions)
+    )
+
+
+def _now_and_arrival(model: CompiledModel, t: int, wtp: float, start, end, d_o, d_c, power: int):
+    """Reward at the decision (D, S, A) and on arrival (D, A, S) of cycle t."""
+    u_start = _occupancy(model, t, wtp, start[0], start[1])
+    if model.move is not None:  # start occupancy counted after the decision-time move
+        u_start = np.einsum("dasj,dja->dsa", _at(model.move, t), u_start)
+    decision = wtp * d_o**power * _at(model.decision_qaly, t) - d_c**power * _at(
+        model.decision_cost, t
+    )
+    return decision + u_start, _occupancy(model, t, wtp, end[0], end[1]).transpose(0, 2, 1)
+
+
 def plain_backward_induction(model: CompiledModel, wtp: float) -> tuple[np.ndarray, np.ndarray]:
     """Backward induction (Puterman 1994, section 4.5): policy (D, T, S), value (D, T + 1, S)."""
     T, D, S = model.n_cycles, model.n_draws, model.n_states
-    w = occupancy_weights(model.within_cycle, T)
     d_o, d_c = model.per_cycle_discount()
-    value = np.empty((D, T + 1, S))
+    start_o, end_o = cycle_weights(model.within_cycle, T, d_o)
+    start_c, end_c = cycle_weights(model.within_cycle, T, d_c)
+    value = np.zeros((D, T + 1, S))
     policy = np.empty((D, T, S), dtype=np.intp)
-    value[:, T] = w[T] * (
-        wtp * d_o**T * _at(model.state_qaly, T) - d_c**T * _at(model.state_cost, T)
-    )
     for t in range(T - 1, -1, -1):
-        occupancy = w[t] * (
-            wtp * d_o**t * _at(model.state_qaly, t) - d_c**t * _at(model.state_cost, t)
+        now, arrival = _now_and_arrival(
+            model, t, wtp, (start_o[t], start_c[t]), (end_o[t], end_c[t]), d_o, d_c, t
         )
-        decision = wtp * d_o**t * _at(model.decision_qaly, t) - d_c**t * _at(model.decision_cost, t)
-        expected = (_at(model.transition, t) @ value[:, t + 1, None, :, None])[..., 0]  # (D, A, S)
-        Q = expected.transpose(0, 2, 1) + decision + occupancy[..., None]
+        rhs = (arrival + value[:, t + 1, None, :])[..., None]
+        expected = (_at(model.transition, t) @ rhs)[..., 0]  # (D, A, S)
+        Q = expected.transpose(0, 2, 1) + now
         Q[:, ~model.allowed] = -np.inf
         policy[:, t] = Q.argmax(axis=-1)
         value[:, t] = Q.max(axis=-1)
@@ -47,11 +69,12 @@ def plain_backward_induction(model: CompiledModel, wtp: float) -> tuple[np.ndarr
 def _stationary(model: CompiledModel, wtp: float):
     D, S, A = model.n_draws, model.n_states, model.n_actions
     gamma = model.per_cycle_discount()[0]
-    R = wtp * model.state_qaly[:, 0, :, None] - model.state_cost[:, 0, :, None]
-    R = R + wtp * model.decision_qaly[:, 0] - model.decision_cost[:, 0]  # (D, S, A)
+    start, end = stationary_cycle_weights(model.within_cycle, gamma)
+    now, arrival = _now_and_arrival(model, 0, wtp, (start, start), (end, end), gamma, gamma, 0)
+    P = model.transition[:, 0]
+    R = now + (P @ arrival[..., None])[..., 0].transpose(0, 2, 1)  # (D, S, A)
     R[:, ~model.allowed] = -np.inf
-    P = model.transition[:, 0].reshape(D, A * S, S)
-    return gamma, R.transpose(0, 2, 1), P, (D, A, S)
+    return gamma, R.transpose(0, 2, 1), P.reshape(D, A * S, S), (D, A, S)
 
 
 def plain_value_iteration(model: CompiledModel, wtp: float, tolerance: float):

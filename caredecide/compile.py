@@ -251,7 +251,7 @@ def _time_lengths(model: Model, parsed: ParsedModel) -> tuple[int, int, int]:
         return 1, 1, 1
     return (
         n if parsed.transitions_use_time else 1,
-        n + 1 if parsed.states_use_time else 1,
+        n if parsed.states_use_time else 1,
         n if parsed.decisions_use_time else 1,
     )
 
@@ -328,11 +328,11 @@ def compile_model(
     allowed = _allowed_matrix(model, absorbing)
     defined_rows = (allowed & ~absorbing[:, None]).T  # (A, S): rows the model must give
 
-    # Occupancy rewards at boundaries 0..T.
-    qaly_weight = evaluator.stack(parsed.state_qaly, tq, boundaries=True)  # (S, D, Tq)
-    state_cost = evaluator.stack(parsed.state_cost, tq, boundaries=True)
-    problems += evaluator.check_finite(parsed.state_qaly, qaly_weight, boundaries=True)
-    problems += evaluator.check_finite(parsed.state_cost, state_cost, boundaries=True)
+    # Occupancy rewards of cycles 0..T-1 (`cycle`, `age` as in the transitions).
+    qaly_weight = evaluator.stack(parsed.state_qaly, tq)  # (S, D, Tq)
+    state_cost = evaluator.stack(parsed.state_cost, tq)
+    problems += evaluator.check_finite(parsed.state_qaly, qaly_weight)
+    problems += evaluator.check_finite(parsed.state_cost, state_cost)
     may_be_negative = np.array([s.negative_cost_allowed for s in model.states], dtype=bool)
     problems += evaluator.check_range(
         [e for e in parsed.state_cost if not may_be_negative[e.state]],
@@ -341,7 +341,6 @@ def compile_model(
         high=np.inf,
         what="cost",
         expected="a cost >= 0 (set negative_cost_allowed = true for a saving)",
-        boundaries=True,
     )
 
     # Decision rewards at cycle starts 0..T-1.

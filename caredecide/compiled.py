@@ -11,17 +11,31 @@ A model plus a batch of ``D`` parameter sets compiles (``caredecide.compile``) t
 Arrays
 ------
 transition : (D, Tp, A, S, S) float64, Tp in {1, T}
-    ``transition[d, t, a, s, s2]`` = probability of moving from ``s`` to ``s2`` during
-    cycle ``t`` when action ``a`` is taken at the start of cycle ``t``. Rows of actions
-    not allowed in ``s`` hold a self-loop (they are masked out by ``allowed``).
+    ``transition[d, t, a, s, s2]`` = probability of being in ``s2`` at the end of cycle
+    ``t`` when action ``a`` is taken in ``s`` at the start of cycle ``t``: the decision-time
+    move (``move``) and the cycle's transitions together. Rows of actions not allowed in
+    ``s`` hold a self-loop (they are masked out by ``allowed``).
+move : (D, Tm, A, S, S) float64 or None, Tm in {1, T}
+    Decision-time moves: ``move[d, t, a, s, s1]`` = share of the cohort that taking ``a``
+    in ``s`` at the start of cycle ``t`` puts in ``s1`` before the cycle's transitions
+    (identity rows where the action moves no one). ``None``: no action moves anyone.
+    Occupancy rewards of the start of the cycle are counted in ``s1`` (after the move).
 allowed : (S, A) bool
     Whether action ``a`` may be chosen in state ``s``. Absorbing states allow every
     action with identical outcomes (no decision is made there).
-state_qaly : (D, Tq, S) float64, Tq in {1, T + 1}
-    QALYs accrued per cycle spent in ``s`` (utility weight x cycle length in years),
-    evaluated at cycle boundary ``t`` = 0..T. Subject to the within-cycle method.
+state_qaly : (D, Tq, S) float64, Tq in {1, T}
+    QALYs accrued per cycle spent in ``s`` (utility weight x cycle length in years) during
+    cycle ``t`` = 0..T-1 (expressions see ``cycle = t``). Subject to the within-cycle method.
 state_cost : (D, Tq, S) float64
-    Costs per cycle spent in ``s``; subject to the within-cycle method.
+    Costs per cycle spent in ``s`` during cycle ``t``; subject to the within-cycle method.
+state_action_qaly : (D, Tr, S, A) float64 or None, Tr in {1, T}
+    QALYs per cycle spent in ``s`` by the cohort that took action ``a`` at the start of
+    cycle ``t`` (added to ``state_qaly``; counted by occupancy and subject to the
+    within-cycle method: in the state reached by the move at the start of the cycle, in
+    the state reached at its end). ``None``: zero.
+state_action_cost : (D, Tr, S, A) float64 or None
+    Costs per cycle in ``s`` under action ``a`` (e.g. a drug paid while treated), like
+    ``state_action_qaly``. ``None``: zero.
 decision_qaly : (D, Td, S, A) float64, Td in {1, T}
     QALYs gained (negative: lost) when action ``a`` is taken in ``s`` at cycle ``t``
     (one-off QALY loss). Charged at the decision, not corrected within cycle.
@@ -34,8 +48,20 @@ start_distribution : (S,) float64
     Cohort proportions at cycle 0; sums to 1.
 
 Discounting and within-cycle weights are *not* folded into these arrays: the solver
-applies them (see :func:`occupancy_weights` and :func:`discount_factors`), so outcomes
-and costs are discounted exactly at their own rates.
+applies them (see :func:`cycle_weights`), so outcomes and costs are discounted exactly at
+their own rates.
+
+Timeline of cycle ``t`` (boundaries ``t`` and ``t + 1``, age ``start_age + t x cycle_length``
+at its start):
+
+1. at boundary ``t`` the cohort ``m_t`` is in its states; the decision is made and the
+   one-off charges (``decision_qaly``, ``decision_cost``) fall on ``m_t`` at ``d^t``;
+2. the decision-time move puts the cohort in ``m_t^+ = m_t M_t`` (``m_t^+ = m_t`` without
+   moves);
+3. the cycle's transitions give ``m_{t+1}``;
+4. the occupancy rewards of cycle ``t`` (state rewards plus state-action rewards of the
+   action taken) count ``start_t x m_t^+ + end_t x m_{t+1}``, with present-value weights
+   ``(start_t, end_t)`` from :func:`cycle_weights` (within-cycle method and discount).
 """
 
 from __future__ import annotations
@@ -45,7 +71,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-WITHIN_CYCLE_METHODS = ("start", "end", "trapezoid", "simpson")
+WITHIN_CYCLE_METHODS = ("start", "end", "trapezoid", "simpson", "half_cycle")
+STATIONARY_METHODS = ("start", "end", "trapezoid", "half_cycle")
+"""Within-cycle methods whose weights are the same every cycle (infinite horizon)."""
 
 
 @dataclass(frozen=True)
@@ -67,11 +95,18 @@ class CompiledModel:
     cycle_length: float = 1.0
     """Years per cycle."""
     start_age: float = 0.0
-    discount_outcomes: float = 0.0
-    """Annual discount rate for QALYs and life-years."""
-    discount_costs: float = 0.0
-    """Annual discount rate for costs."""
+    discount_outcomes: float | np.ndarray = 0.0
+    """Annual discount rate for QALYs and life-years; a (D,) array gives each draw its own
+    rate (finite horizon only; e.g. a threshold search over the rate)."""
+    discount_costs: float | np.ndarray = 0.0
+    """Annual discount rate for costs (float or (D,) array, as ``discount_outcomes``)."""
     within_cycle: str = "start"
+    move: np.ndarray | None = None
+    """(D, Tm, A, S, S) decision-time moves, or None (see the module docstring)."""
+    state_action_qaly: np.ndarray | None = None
+    """(D, Tr, S, A) QALYs per cycle in a state under an action, or None (zero)."""
+    state_action_cost: np.ndarray | None = None
+    """(D, Tr, S, A) costs per cycle in a state under an action, or None (zero)."""
     state_labels: tuple[str, ...] = ()
     action_labels: tuple[str, ...] = ()
     absorbing: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=bool))
@@ -105,6 +140,10 @@ class CompiledModel:
             and self.state_cost.shape[1] == 1
             and self.decision_qaly.shape[1] == 1
             and self.decision_cost.shape[1] == 1
+            and all(
+                array is None or array.shape[1] == 1
+                for array in (self.move, self.state_action_qaly, self.state_action_cost)
+            )
         )
 
     def ages(self) -> np.ndarray:
@@ -113,8 +152,11 @@ class CompiledModel:
             raise ValueError("an infinite-horizon model has no age axis")
         return self.start_age + self.cycle_length * np.arange(self.n_cycles + 1)
 
-    def per_cycle_discount(self) -> tuple[float, float]:
-        """Per-cycle discount factors (outcomes, costs): ``(1 + r) ** -cycle_length``."""
+    def per_cycle_discount(self) -> tuple[float | np.ndarray, float | np.ndarray]:
+        """Per-cycle discount factors (outcomes, costs): ``(1 + r) ** -cycle_length``.
+
+        Floats, or (D,) arrays when the rates are given per draw.
+        """
         return (
             (1.0 + self.discount_outcomes) ** -self.cycle_length,
             (1.0 + self.discount_costs) ** -self.cycle_length,
@@ -124,6 +166,9 @@ class CompiledModel:
         """A compiled model holding only the selected draws (views where possible)."""
         from dataclasses import replace
 
+        def per_draw(rate: float | np.ndarray) -> float | np.ndarray:
+            return rate[index] if np.ndim(rate) else rate
+
         return replace(
             self,
             transition=self.transition[index],
@@ -131,26 +176,57 @@ class CompiledModel:
             state_cost=self.state_cost[index],
             decision_qaly=self.decision_qaly[index],
             decision_cost=self.decision_cost[index],
+            discount_outcomes=per_draw(self.discount_outcomes),
+            discount_costs=per_draw(self.discount_costs),
+            move=None if self.move is None else self.move[index],
+            state_action_qaly=(
+                None if self.state_action_qaly is None else self.state_action_qaly[index]
+            ),
+            state_action_cost=(
+                None if self.state_action_cost is None else self.state_action_cost[index]
+            ),
         )
 
 
-def occupancy_weights(method: str, n_cycles: int) -> np.ndarray:
-    """Weights of the cohort occupancy at boundaries 0..T for a within-cycle method.
+def cycle_weights(
+    method: str, n_cycles: int, discount: float = 1.0
+) -> tuple[np.ndarray, np.ndarray]:
+    """Present-value weights of the start and end occupancy of each cycle.
+
+    The occupancy reward of cycle ``t`` is ``start[t] m_t^+ . u_t + end[t] m_{t+1} . u_t``
+    (``m_t^+`` the cohort after the decision-time move at the start of the cycle,
+    ``m_{t+1}`` at its end, ``u_t`` the reward per cycle), in present value at the model
+    start.
 
     Parameters
     ----------
-    method : {"start", "end", "trapezoid", "simpson"}
-        Start-of-cycle (left Riemann sum), end-of-cycle (right sum), half-cycle
-        correction (trapezoid rule) or Simpson's 1/3 rule (Elbasha & Chhatwal 2016,
-        Med Decis Making 36(1):115-131). Simpson's rule needs an even number of
-        cycles; for an odd number the last three intervals use Simpson's 3/8 rule.
+    method : str
+        One of :data:`WITHIN_CYCLE_METHODS`:
+
+        ``"start"``      start occupancy, discounted at the start: ``(d^t, 0)``;
+        ``"end"``        end occupancy, discounted at the end: ``(0, d^{t+1})``;
+        ``"trapezoid"``  each boundary at its own time, ``(d^t / 2, d^{t+1} / 2)``
+                         (Elbasha & Chhatwal 2016, Med Decis Making 36(1):115-131);
+        ``"half_cycle"`` the cycle-average occupancy ``(m_t + m_{t+1}) / 2`` discounted
+                         once, at the end of the cycle: ``(d^{t+1} / 2, d^{t+1} / 2)``
+                         (the textbook half-cycle correction; Sonnenberg & Beck 1993,
+                         Med Decis Making 13(4):322-338; Siebert et al. 2012, Value
+                         Health 15(6):812-820);
+        ``"simpson"``    Simpson's 1/3 rule over pairs of cycles (3/8 rule on the last
+                         three for an odd count), each boundary discounted at its own
+                         time; a panel's inner boundary is split equally between the two
+                         cycles it joins (Elbasha & Chhatwal 2016).
     n_cycles : int
         Number of cycles ``T`` (>= 1).
+    discount : float
+        Per-cycle discount factor ``d`` in (0, 1].
 
     Returns
     -------
-    numpy.ndarray
-        (T + 1,) weights; the total reward is ``sum_t w[t] * d^t * m_t . u_t``.
+    start, end : numpy.ndarray
+        (T,) each. Without moves and with rewards constant over time, the sum of the two
+        weights meeting at each boundary is the classic boundary weight (``"start"``:
+        1, ..., 1, 0; ``"trapezoid"``: 1/2, 1, ..., 1, 1/2; Simpson: 1/3, 4/3, 2/3, ...).
     """
     if method not in WITHIN_CYCLE_METHODS:
         raise ValueError(
@@ -158,29 +234,61 @@ def occupancy_weights(method: str, n_cycles: int) -> np.ndarray:
         )
     if n_cycles < 1:
         raise ValueError(f"n_cycles must be >= 1, got {n_cycles}")
-    w = np.ones(n_cycles + 1)
+    at_start = discount ** np.arange(n_cycles, dtype=float)
+    at_end = at_start * discount
     if method == "start":
-        w[-1] = 0.0
-    elif method == "end":
-        w[0] = 0.0
-    elif method == "trapezoid":
-        w[0] = w[-1] = 0.5
-    else:
-        w = _simpson_weights(n_cycles)
-    return w
+        return at_start, np.zeros(n_cycles)
+    if method == "end":
+        return np.zeros(n_cycles), at_end
+    if method == "trapezoid":
+        return 0.5 * at_start, 0.5 * at_end
+    if method == "half_cycle":
+        return 0.5 * at_end, 0.5 * at_end
+    start, end = _simpson_split(n_cycles)
+    return start * at_start, end * at_end
 
 
-def _simpson_weights(n: int) -> np.ndarray:
-    w = np.zeros(n + 1)
+def stationary_cycle_weights(method: str, discount: float) -> tuple[float, float]:
+    """``(start, end)`` weights of cycle ``t`` divided by ``d^t`` (the same every cycle).
+
+    For an infinite horizon: ``"start"`` (1, 0), ``"end"`` (0, d), ``"trapezoid"``
+    (1/2, d/2), ``"half_cycle"`` (d/2, d/2) (see :func:`cycle_weights`). Simpson's rule
+    pairs cycles, so it has no stationary form.
+    """
+    if method not in STATIONARY_METHODS:
+        raise ValueError(
+            f"within-cycle method {method!r} needs a finite horizon; expected one of "
+            f"{STATIONARY_METHODS} for an infinite horizon"
+        )
+    start, end = cycle_weights(method, 1, discount)
+    return float(start[0]), float(end[0])
+
+
+def boundary_weights(method: str, n_cycles: int) -> np.ndarray:
+    """(T + 1,) undiscounted weight of the occupancy at each boundary 0..T (no moves).
+
+    The start weight of cycle ``t`` plus the end weight of cycle ``t - 1``: a summary of
+    :func:`cycle_weights` for documentation and checks.
+    """
+    start, end = cycle_weights(method, n_cycles, 1.0)
+    weights = np.zeros(n_cycles + 1)
+    weights[:-1] += start
+    weights[1:] += end
+    return weights
+
+
+def _simpson_split(n: int) -> tuple[np.ndarray, np.ndarray]:
+    """Undiscounted (start, end) weights per cycle of the composite Simpson rule."""
+    start, end = np.zeros(n), np.zeros(n)
     if n == 1:  # a single interval: Simpson's rule is undefined, use the trapezoid
-        w[:] = 0.5
-        return w
+        return np.array([0.5]), np.array([0.5])
     even = n if n % 2 == 0 else n - 3
-    if even > 0:
-        w[0 : even + 1 : 2] += 2.0 / 3.0
-        w[1:even:2] += 4.0 / 3.0
-        w[0] -= 1.0 / 3.0
-        w[even] -= 1.0 / 3.0
-    if n % 2 == 1:  # Simpson's 3/8 rule on the last three intervals
-        w[even : even + 4] += np.array([3.0, 9.0, 9.0, 3.0]) / 8.0
-    return w
+    for k in range(0, even, 2):  # 1/3 rule on cycles k, k + 1: boundary weights 1/3, 4/3, 1/3
+        start[k], end[k] = 1.0 / 3.0, 2.0 / 3.0
+        start[k + 1], end[k + 1] = 2.0 / 3.0, 1.0 / 3.0
+    if n % 2 == 1:  # 3/8 rule on the last three cycles: 3/8, 9/8, 9/8, 3/8
+        e = even
+        start[e], end[e] = 3.0 / 8.0, 9.0 / 16.0
+        start[e + 1], end[e + 1] = 9.0 / 16.0, 9.0 / 16.0
+        start[e + 2], end[e + 2] = 9.0 / 16.0, 3.0 / 8.0
+    return start, end

@@ -1,17 +1,18 @@
 """Policy evaluation: cohort trace and totals for any policy (optimal or fixed).
 
-The same arithmetic as the solvers (rewards from :mod:`caredecide.solvers.bellman`):
-for a policy ``pi`` the cohort ``m_t`` (row vector over states) moves as
-``m_{t+1} = m_t P_t[pi_t]`` and the totals are
+The same arithmetic as the solvers (rewards from
+:func:`caredecide.solvers.bellman.cycle_parts`): for a policy ``pi`` the cohort ``m_t``
+(row vector over states, at boundary ``t`` before the decision) moves as
+``m_{t+1} = m_t P_t[pi_t]`` (the decision-time move is part of ``P_t``) and each total is
 
-    QALYs = sum_t w_t d_o^t m_t . q_t + sum_{t<T} d_o^t m_t . dq_t[pi_t]
-    costs = sum_t w_t d_c^t m_t . c_t + sum_{t<T} d_c^t m_t . dc_t[pi_t]
+    sum_{t<T} sum_s m_t(s) (now_t(s, pi_t(s)) + sum_s' P_t[pi_t(s)](s, s') arrival_t(pi_t(s), s'))
 
-so for the optimal policy ``outcome.value`` equals ``result.value[:, 0] @ start``.
-Infinite horizon: totals by a batched linear solve ``(I - d P_pi) x = r_pi`` per quantity
-(outcomes at ``d_o``, costs at ``d_c``); undiscounted totals by the same solve restricted
-to the non-absorbing states (infinite when an absorbing state keeps earning). The trace
-is shown over a display horizon until 99.9% of the cohort is absorbed, or a cap.
+(one-off charges and start occupancy after the move; end occupancy), so for the optimal
+policy ``outcome.value`` equals ``result.value[:, 0] @ start``. Infinite horizon: totals
+by a batched linear solve ``(I - d P_pi) x = r_pi`` per quantity (outcomes at ``d_o``,
+costs at ``d_c``); undiscounted totals by the same solve restricted to the non-absorbing
+states (infinite when an absorbing state keeps earning). The trace is shown over a
+display horizon until 99.9% of the cohort is absorbed, or a cap.
 """
 
 from __future__ import annotations
@@ -21,7 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from caredecide.compiled import CompiledModel, occupancy_weights
+from caredecide.compiled import STATIONARY_METHODS, CompiledModel
 from caredecide.limits import DISPLAY_CAP  # (re-exported) at most this many cycles shown
 from caredecide.objective import Objective
 from caredecide.solvers import kernels
@@ -29,13 +30,11 @@ from caredecide.solvers.bellman import (
     SolverError,
     check_compiled,
     combine,
-    decision_parts,
-    occupancy_parts,
+    cycle_parts,
     transition_at,
 )
 from caredecide.solvers.finite import terminal_present_value
 from caredecide.solvers.result import summary_repr
-from caredecide.solvers.stationary import START_WEIGHT
 
 DISPLAY_ABSORBED = 0.999
 """Infinite horizon: the trace is shown until this share of the cohort is absorbed..."""
@@ -59,8 +58,9 @@ class PolicyOutcome:
     value : (D,) float
         The objective (net benefit or QALYs) including any terminal value.
     flows : dict of str to (D, T + 1) float
-        Discounted QALYs, costs and life-years accrued at each boundary (with the
-        within-cycle weights; decision charges at the boundary where they fall).
+        Discounted QALYs, costs and life-years of cycle ``t`` at index ``t`` (one-off
+        charges and the cycle's occupancy with the within-cycle weights); the last entry
+        (the horizon, where no cycle starts) is 0 for a finite horizon.
     objective : Objective
     state_ids : tuple of str
     ages : (T + 1,) float
@@ -122,7 +122,8 @@ class PolicyOutcome:
         )
 
     def flow_frame(self, draw: int = 0) -> pd.DataFrame:
-        """Per-boundary discounted flows of one draw: cycle, age, life_years, qalys, costs."""
+        """Discounted flows of each cycle of one draw: cycle, age (at its start), life_years,
+        qalys, costs."""
         frame = pd.DataFrame({"cycle": np.arange(self.trace.shape[1]), "age": self.ages})
         for name in _QUANTITIES:
             frame[name] = self.flows[name][draw]
@@ -192,6 +193,19 @@ def _chosen(decision: np.ndarray, policy: np.ndarray) -> np.ndarray:
     return np.take_along_axis(decision, policy[..., None], axis=-1)[..., 0]
 
 
+def _policy_reward(
+    parts: tuple[np.ndarray, np.ndarray], P_pi: np.ndarray, policy: np.ndarray
+) -> np.ndarray:
+    """(D, S) reward of a cycle for the cohort in each state under ``policy`` (D, S).
+
+    ``parts`` = (at_decision (D, S, A), on_arrival (D, A, S)) of
+    :func:`caredecide.solvers.bellman.cycle_parts`; ``P_pi`` (D, S, S).
+    """
+    at_decision, on_arrival = parts
+    arrival = np.take_along_axis(on_arrival, policy[..., None], axis=1)  # (D, S, S') by action
+    return _chosen(at_decision, policy) + np.einsum("dsj,dsj->ds", P_pi, arrival)
+
+
 def evaluate_policy(
     compiled: CompiledModel,
     policy: np.ndarray | int,
@@ -225,12 +239,20 @@ def evaluate_policy(
 
 def _evaluate_finite(compiled, policy, objective, terminal_value) -> PolicyOutcome:
     D, S, T = compiled.n_draws, compiled.n_states, compiled.n_cycles
-    weights = occupancy_weights(compiled.within_cycle, T)
     trace = np.empty((D, T + 1, S))
     if kernels.available():  # gathers the chosen rows; no policy matrices are built
-        flows = _finite_flows_kernel(compiled, policy, weights, trace)
+        kernels.kernels().cohort_trace(
+            np.ascontiguousarray(compiled.transition),
+            np.ascontiguousarray(policy, dtype=np.intp),
+            np.ascontiguousarray(compiled.start_distribution, dtype=float),
+            trace,
+        )
     else:
-        flows = _finite_flows_numpy(compiled, policy, weights, trace)
+        trace[:, 0] = compiled.start_distribution
+        for t in range(T):
+            P_pi = _policy_transition(transition_at(compiled, t), policy[:, t])
+            trace[:, t + 1] = (trace[:, t, None, :] @ P_pi)[:, 0]
+    flows = _finite_flows(compiled, policy, trace)
     totals = {name: flow.sum(axis=1) for name, flow in flows.items()}
     terminal = np.einsum(
         "ds,ds->d", trace[:, T], terminal_present_value(compiled, objective, terminal_value)
@@ -238,31 +260,39 @@ def _evaluate_finite(compiled, policy, objective, terminal_value) -> PolicyOutco
     return _outcome(compiled, objective, trace, totals, flows, terminal, compiled.ages(), True)
 
 
+def _finite_flows(compiled, policy, trace) -> dict[str, np.ndarray]:
+    """Discounted and undiscounted flows of each cycle (index t; the last entry 0)."""
+    D, T = compiled.n_draws, compiled.n_cycles
+    flows = {
+        f"{name}{suffix}": np.zeros((D, T + 1))
+        for name in _QUANTITIES
+        for suffix in ("", "_undiscounted")
+    }
+    for t in range(T):
+        m = trace[:, t]
+        P_pi = _policy_transition(transition_at(compiled, t), policy[:, t])
+        for discount, suffix in ((True, ""), (False, "_undiscounted")):
+            parts = cycle_parts(compiled, t, discount, life_years=True)
+            for name in _QUANTITIES:
+                reward = _policy_reward(parts[name], P_pi, policy[:, t])
+                flows[name + suffix][:, t] = np.einsum("ds,ds->d", m, reward)
+    return flows
+
+
 def _evaluate_infinite(compiled, policy, objective) -> PolicyOutcome:
     if not compiled.is_stationary:
         raise SolverError("an infinite horizon needs stationary arrays (time axis of length 1)")
-    if compiled.within_cycle not in START_WEIGHT:
+    if compiled.within_cycle not in STATIONARY_METHODS:
         raise SolverError(
             f"within-cycle method {compiled.within_cycle!r} needs a finite horizon; expected "
-            f"one of {tuple(START_WEIGHT)} for an infinite horizon"
+            f"one of {STATIONARY_METHODS} for an infinite horizon"
         )
     D, S = compiled.n_draws, compiled.n_states
-    start_weight = START_WEIGHT[compiled.within_cycle]
     P_pi = _policy_transition(compiled.transition[:, 0], policy)
     start = np.broadcast_to(compiled.start_distribution, (D, S))
     absorbing = np.asarray(compiled.absorbing, bool)
     if absorbing.shape != (S,):
         absorbing = np.zeros(S, bool)
-
-    q, c = occupancy_parts(compiled, 0, 1.0, discount=False)
-    dq, dc = decision_parts(compiled, 0, discount=False)
-    ly = np.broadcast_to(compiled.life_years, (D, S))
-    per_cycle = {
-        "life_years": ly,
-        "qalys": q + _chosen(dq, policy),
-        "costs": c + _chosen(dc, policy),
-    }
-    occupancy_only = {"life_years": ly, "qalys": q, "costs": c}
     d_o, d_c = compiled.per_cycle_discount()
     factor = {"life_years": d_o, "qalys": d_o, "costs": d_c}
 
@@ -276,14 +306,14 @@ def _evaluate_infinite(compiled, policy, objective) -> PolicyOutcome:
 
     totals, flows = {}, {}
     t = np.arange(trace.shape[1])
-    for name in _QUANTITIES:
-        correction = (1.0 - start_weight) * np.einsum("ds,ds->d", start, occupancy_only[name])
-        for discount, suffix in ((True, ""), (False, "_undiscounted")):
+    for discount, suffix in ((True, ""), (False, "_undiscounted")):
+        parts = cycle_parts(compiled, 0, discount, life_years=True)
+        for name in _QUANTITIES:
+            per_cycle = _policy_reward(parts[name], P_pi, policy)  # (D, S) at the cycle start
             d = factor[name] if discount else 1.0
-            totals[name + suffix] = _stationary_total(P_pi, per_cycle[name], d, start) - correction
-        flow = np.einsum("dts,ds->dt", trace, per_cycle[name]) * (factor[name] ** t)
-        flow[:, 0] -= correction
-        flows[name] = flow
+            totals[name + suffix] = _stationary_total(P_pi, per_cycle, d, start)
+            if discount:
+                flows[name] = np.einsum("dts,ds->dt", trace, per_cycle) * (d**t)
     ages = compiled.start_age + compiled.cycle_length * t
     return _outcome(compiled, objective, trace, totals, flows, np.zeros(D), ages, False)
 
@@ -388,69 +418,3 @@ def _outcome(compiled, objective, trace, totals, flows, terminal, ages, finite) 
         ages=np.asarray(ages, dtype=float),
         finite_horizon=finite,
     )
-
-
-def _finite_flows_kernel(compiled, policy, weights, trace) -> dict[str, np.ndarray]:
-    """Fill ``trace`` and return the per-boundary flows, by the compiled loops."""
-    D, T = compiled.n_draws, compiled.n_cycles
-    d_o, d_c = compiled.per_cycle_discount()
-    loops = kernels.kernels()
-    policy = np.ascontiguousarray(policy, dtype=np.intp)
-    loops.cohort_trace(
-        np.ascontiguousarray(compiled.transition),
-        policy,
-        np.ascontiguousarray(compiled.start_distribution, dtype=float),
-        trace,
-    )
-    flows = np.empty((6, D, T + 1))
-    steps = range(T + 1)
-    loops.policy_flows(
-        trace,
-        policy,
-        *(
-            np.ascontiguousarray(a, dtype=float)
-            for a in (
-                compiled.state_qaly,
-                compiled.state_cost,
-                compiled.decision_qaly,
-                compiled.decision_cost,
-                compiled.life_years,
-            )
-        ),
-        np.array([weights[t] * d_o**t for t in steps]),
-        np.array([weights[t] * d_c**t for t in steps]),
-        np.array([d_o**t for t in steps[:-1]]),
-        np.array([d_c**t for t in steps[:-1]]),
-        np.asarray(weights, dtype=float),
-        flows,
-    )
-    names = [f"{name}{suffix}" for suffix in ("", "_undiscounted") for name in _QUANTITIES]
-    return dict(zip(names, flows, strict=True))
-
-
-def _finite_flows_numpy(compiled, policy, weights, trace) -> dict[str, np.ndarray]:
-    """Fill ``trace`` and return the per-boundary flows (numpy path)."""
-    D, T = compiled.n_draws, compiled.n_cycles
-    d_o = compiled.per_cycle_discount()[0]
-    trace[:, 0] = compiled.start_distribution
-    for t in range(T):
-        P_pi = _policy_transition(transition_at(compiled, t), policy[:, t])
-        trace[:, t + 1] = (trace[:, t, None, :] @ P_pi)[:, 0]
-    flows = {
-        f"{name}{suffix}": np.zeros((D, T + 1))
-        for name in _QUANTITIES
-        for suffix in ("", "_undiscounted")
-    }
-    for t in range(T + 1):
-        m = trace[:, t]
-        for discount, suffix in ((True, ""), (False, "_undiscounted")):
-            q, c = occupancy_parts(compiled, t, weights[t], discount)
-            ly = weights[t] * (d_o**t if discount else 1.0) * compiled.life_years
-            flows["life_years" + suffix][:, t] = m @ ly
-            flows["qalys" + suffix][:, t] = np.einsum("ds,ds->d", m, q)
-            flows["costs" + suffix][:, t] = np.einsum("ds,ds->d", m, c)
-            if t < T:
-                dq, dc = decision_parts(compiled, t, discount)
-                flows["qalys" + suffix][:, t] += np.einsum("ds,ds->d", m, _chosen(dq, policy[:, t]))
-                flows["costs" + suffix][:, t] += np.einsum("ds,ds->d", m, _chosen(dc, policy[:, t]))
-    return flows

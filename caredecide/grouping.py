@@ -14,7 +14,7 @@ from collections.abc import Sequence
 import numpy as np
 import pandas as pd
 
-from caredecide.compiled import CompiledModel, occupancy_weights
+from caredecide.compiled import CompiledModel, boundary_weights
 
 
 def grouping_names(compiled: CompiledModel) -> tuple[str, ...]:
@@ -143,7 +143,7 @@ def grouped_time(
     """
     names = _by(compiled, by)
     trace = np.asarray(trace, dtype=float)
-    weights = occupancy_weights(compiled.within_cycle, trace.shape[0] - 1)
+    weights = boundary_weights(compiled.within_cycle, trace.shape[0] - 1)
     per_state = weights @ trace  # (S,) expected cycles in each flat state
     groups = state_group_frame(compiled)
     frame = groups[names].copy()

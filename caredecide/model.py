@@ -72,7 +72,8 @@ class Settings:
     willingness_to_pay: float = 0.0
     """Money per QALY (>= 0), used by the net-benefit objective."""
     within_cycle: str = "trapezoid"
-    """Within-cycle method: ``"start"``, ``"end"``, ``"trapezoid"`` or ``"simpson"``."""
+    """Within-cycle method: ``"start"``, ``"end"``, ``"trapezoid"``, ``"half_cycle"`` or
+    ``"simpson"`` (:func:`caredecide.compiled.cycle_weights`)."""
     currency: str = ""
     """Label only (e.g. ``"EUR"``); no conversion is done."""
     severity_order: tuple[str, ...] = ()

@@ -101,12 +101,13 @@ def test_time_axes_follow_what_depends_on_time():
     np.testing.assert_allclose(c.decision_cost[0, :, 1, 1], [1500, 1500] + [500] * 8)
 
 
-def test_occupancy_time_axis_has_boundaries_zero_to_t():
+def test_occupancy_time_axis_has_cycles_zero_to_t_minus_one():
+    # One meaning of `cycle`/`years`: the cycle index 0..T-1, as in the transitions.
     data = small_model_dict()
     data["states"][0]["cost"] = "100 * years"
     c = compile_model(load_dict(data))
-    assert c.state_cost.shape == (1, 11, 3)
-    np.testing.assert_allclose(c.state_cost[0, :, 0], 100.0 * np.arange(11))
+    assert c.state_cost.shape == (1, 10, 3)
+    np.testing.assert_allclose(c.state_cost[0, :, 0], 100.0 * np.arange(10))
 
 
 def test_background_mortality_enters_by_age():

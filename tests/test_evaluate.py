@@ -51,18 +51,28 @@ def test_stationary_evaluation_equals_direct_linear_solve(seed, n_states, n_acti
     seed=st.integers(0, 2**32 - 1),
     n_states=st.integers(2, 6),
     n_cycles=st.integers(1, 7),
-    within=st.sampled_from(["start", "end", "trapezoid", "simpson"]),
+    within=st.sampled_from(["start", "end", "trapezoid", "simpson", "half_cycle"]),
     rates=st.sampled_from([(0.0, 0.0), (0.03, 0.03), (0.015, 0.04)]),
+    moves=st.booleans(),
 )
-def test_optimal_policy_outcome_equals_solver_value(seed, n_states, n_cycles, within, rates):
-    # The same rewards and weights as the recursion: outcome.value = result.value[:, 0] @ start.
+def test_optimal_policy_outcome_equals_solver_value(seed, n_states, n_cycles, within, rates, moves):
+    # The same rewards and weights as the recursion: outcome.value = result.value[:, 0] @ start,
+    # with or without decision-time moves and state-action occupancy rewards.
     rng = np.random.default_rng(seed)
     D, A = 3, 2
     P = rng.random((D, n_cycles, A, n_states, n_states))
     P /= P.sum(-1, keepdims=True)
+    move = None
+    if moves:
+        move = rng.random((D, 1, A, n_states, n_states)) ** 4
+        move /= move.sum(-1, keepdims=True)
+        P = move @ P  # the compiled transition holds the move and the cycle's rows together
     compiled = make_compiled(
         P,
-        state_qaly=rng.uniform(0, 1, (D, n_cycles + 1, n_states)),
+        move=move,
+        state_action_qaly=rng.uniform(-0.1, 0.1, (D, n_cycles, n_states, A)) if moves else None,
+        state_action_cost=rng.uniform(0, 300, (D, 1, n_states, A)) if moves else None,
+        state_qaly=rng.uniform(0, 1, (D, n_cycles, n_states)),
         state_cost=rng.uniform(0, 1000, (D, 1, n_states)),
         decision_qaly=rng.uniform(-0.1, 0.1, (D, n_cycles, n_states, A)),
         decision_cost=rng.uniform(0, 500, (D, 1, n_states, A)),

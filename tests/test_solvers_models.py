@@ -38,13 +38,17 @@ def make_compiled(
     cycle_length: float = 1.0,
     start_age: float = 0.0,
     life_years=None,
+    move=None,
+    state_action_qaly=None,
+    state_action_cost=None,
 ) -> CompiledModel:
     """A CompiledModel from core arrays; missing axes (draw, time) are added with length 1.
 
     transition: (A, S, S), (Tp, A, S, S) or (D, Tp, A, S, S); state_qaly/cost: (S,),
     (Tq, S) or (D, Tq, S); decision_qaly/cost: (S, A), (Td, S, A) or (D, Td, S, A).
     Absorbing states default to those that keep the whole cohort under every action;
-    life-years default to the cycle length in every other state.
+    life-years default to the cycle length in every other state. ``move`` is shaped like
+    ``transition``; ``state_action_qaly``/``cost`` like the decision arrays (None: absent).
     """
     P = _with_draw_and_time(transition, 3)
     D = P.shape[0]
@@ -86,6 +90,9 @@ def make_compiled(
         within_cycle=within_cycle,
         absorbing=np.asarray(absorbing, dtype=bool),
         ordered_states=ordered_states,
+        move=None if move is None else _with_draw_and_time(move, 3),
+        state_action_qaly=None if state_action_qaly is None else dec(state_action_qaly),
+        state_action_cost=None if state_action_cost is None else dec(state_action_cost),
     )
 
 

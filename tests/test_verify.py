@@ -134,13 +134,15 @@ def test_zero_discount_check_fails_when_discounting_ignores_the_rates(base_small
 def _cost_leak(monkeypatch):
     import caredecide.evaluate as evaluate
 
-    original = evaluate.decision_parts
+    original = evaluate.cycle_parts
 
-    def leaky(compiled, t, discount=True):
-        dq, dc = original(compiled, t, discount)
-        return dq, dc + 1.0  # Patch: one unit of cost charged at every decision.
+    def leaky(compiled, t, discount=True, **options):
+        parts = original(compiled, t, discount, **options)
+        now, arrival = parts["costs"]
+        parts["costs"] = (now + 1.0, arrival)  # Patch: one unit of cost at every decision.
+        return parts
 
-    monkeypatch.setattr(evaluate, "decision_parts", leaky)
+    monkeypatch.setattr(evaluate, "cycle_parts", leaky)
 
 
 def test_zero_costs_check_fails_when_a_cost_is_added(base_small, monkeypatch):
@@ -155,19 +157,21 @@ def test_cost_doubling_check_fails_when_a_fixed_cost_is_added(base_small, monkey
 
 
 def _scale_occupancy_qalys(monkeypatch, module, factor: float) -> None:
-    original = module.occupancy_parts
+    original = module.cycle_parts
 
-    def scaled(compiled, t, weight, discount=True):
-        q, c = original(compiled, t, weight, discount)
-        return factor * q, c
+    def scaled(compiled, t, discount=True, **options):
+        parts = original(compiled, t, discount, **options)
+        now, arrival = parts["qalys"]
+        parts["qalys"] = (factor * now, factor * arrival)
+        return parts
 
-    monkeypatch.setattr(module, "occupancy_parts", scaled)
+    monkeypatch.setattr(module, "cycle_parts", scaled)
 
 
 def test_monotonicity_check_fails_when_the_solver_flips_the_qaly_sign(base_small, monkeypatch):
     import caredecide.solvers.bellman as common
 
-    # Patch: the solvers' rewards (which look occupancy_parts up in
+    # Patch: the solvers' rewards (which look cycle_parts up in
     # caredecide.solvers.bellman) count QALYs with the wrong sign.
     _scale_occupancy_qalys(monkeypatch, common, -1.0)
     assert _status(base_small, "qaly_weight_monotone").status == verify.FAIL

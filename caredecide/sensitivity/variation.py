@@ -302,6 +302,9 @@ def compiled_over_willingness_to_pay(
         tiled,
         state_qaly=tiled.state_qaly * scale,
         decision_qaly=tiled.decision_qaly * scale[..., None],
+        state_action_qaly=(
+            None if tiled.state_action_qaly is None else tiled.state_action_qaly * scale[..., None]
+        ),
     )
 
 
@@ -312,11 +315,9 @@ def compiled_over_discount_rate(
 ) -> CompiledModel:
     """Draws that differ only in the annual discount rate(s) (finite horizon).
 
-    The finite-horizon recursion works in present value at the model start, so
-    discounting at cycle ``t`` is the factor ``d^t`` on that cycle's rewards. Folding
-    ``d_d^t`` of draw ``d`` into its reward arrays and solving with zero discount gives
-    exactly the values at each draw's own rate (outcomes and costs keep their own
-    factors).
+    Each draw carries its own rates (``CompiledModel.discount_outcomes`` as a (N,)
+    array), which the solvers apply exactly as a single rate (outcomes and costs keep
+    their own factors; every within-cycle method).
 
     Parameters
     ----------
@@ -328,7 +329,7 @@ def compiled_over_discount_rate(
     Returns
     -------
     CompiledModel
-        N draws with zero discount rates and time-dependent reward arrays.
+        N draws sharing the arrays, each with its own discount rates.
     """
     if compiled.n_cycles is None:
         raise ModelError(
@@ -347,7 +348,7 @@ def compiled_over_discount_rate(
             (discount_costs, compiled.discount_costs),
         )
     ]
-    outcomes, costs = np.broadcast_arrays(*[np.atleast_1d(r) for r in rates])
+    outcomes, costs = (np.array(r) for r in np.broadcast_arrays(*[np.atleast_1d(r) for r in rates]))
     for label, r in (("discount_outcomes", outcomes), ("discount_costs", costs)):
         bad = np.flatnonzero((r < 0) | (r >= 1) | ~np.isfinite(r))
         if bad.size:
@@ -357,31 +358,7 @@ def compiled_over_discount_rate(
                     message=f"discount rate {r[bad[0]]!r} is outside [0, 1)",
                 )
             )
-    n = outcomes.size
-    T = compiled.n_cycles
-    tiled = _tile(compiled, n)
-    cycles = np.arange(T + 1)
-    # (N, T + 1) per-cycle discount factors d^t at boundary t
-    d_out = (1.0 + outcomes[:, None]) ** (-compiled.cycle_length * cycles)
-    d_cost = (1.0 + costs[:, None]) ** (-compiled.cycle_length * cycles)
-
-    def fold_state(array: np.ndarray, factor: np.ndarray) -> np.ndarray:
-        full = np.broadcast_to(array, (n, T + 1, array.shape[2]))
-        return full * factor[:, :, None]
-
-    def fold_decision(array: np.ndarray, factor: np.ndarray) -> np.ndarray:
-        full = np.broadcast_to(array, (n, T, *array.shape[2:]))
-        return full * factor[:, :T, None, None]
-
-    return replace(
-        tiled,
-        state_qaly=fold_state(tiled.state_qaly, d_out),
-        state_cost=fold_state(tiled.state_cost, d_cost),
-        decision_qaly=fold_decision(tiled.decision_qaly, d_out),
-        decision_cost=fold_decision(tiled.decision_cost, d_cost),
-        discount_outcomes=0.0,
-        discount_costs=0.0,
-    )
+    return replace(_tile(compiled, outcomes.size), discount_outcomes=outcomes, discount_costs=costs)
 
 
 # ----------------------------------------------------------------------------- the core path

@@ -69,60 +69,36 @@ def expectation(row, following):
 @jit
 def backward_induction(
     P,  # (D, Tp, A, S, S)
-    state_qaly,  # (D, Tq, S)
-    state_cost,  # (D, Tq, S)
-    decision_qaly,  # (D, Td, S, A)
-    decision_cost,  # (D, Td, S, A)
+    arrival,  # (D, T, A, S) objective reward on arriving in s' at the end of cycle t under a
     allowed,  # (S, A) bool
     decision_states,  # (S,) bool
-    occ_o,  # (T + 1,) w_t d_o^t
-    occ_c,  # (T + 1,) w_t d_c^t
-    dec_o,  # (T,) d_o^t
-    dec_c,  # (T,) d_c^t
-    ow,
-    cw,
     tie_absolute,
     tie_relative,
     value,  # (D, T + 1, S) out; value[:, T] holds the terminal part on entry
-    q_values,  # (D, T, S, A) out
+    q_values,  # (D, T, S, A) in: the reward at the decision (bellman.cycle_rewards); out: Q
     policy,  # (D, T, S) out
     gap,  # (D, T, S) out
     next_best,  # (D, T, S) out
     indifferent,  # (D, T, S) out
 ):
+    # Q_t(s, a) = now_t(s, a) + sum_s' P_t(s'|s, a) (arrival_t(a, s') + V_{t+1}(s')).
     D, Tp, A, S = P.shape[0], P.shape[1], P.shape[2], P.shape[3]
     T = q_values.shape[1]
-    Tq, Tc = state_qaly.shape[1] - 1, state_cost.shape[1] - 1
-    Tdq, Tdc = decision_qaly.shape[1] - 1, decision_cost.shape[1] - 1
-    following = np.empty(S)  # V_{t+1} of the draw, kept local (no aliasing with outputs)
+    following = np.empty((A, S))  # arrival_t(a) + V_{t+1} of the draw, kept local
     for d in range(D):
-        tq, tc = min(T, Tq), min(T, Tc)
-        for s in range(S):
-            value[d, T, s] += combine(
-                ow, cw, occ_o[T] * state_qaly[d, tq, s], occ_c[T] * state_cost[d, tc, s]
-            )
         for t in range(T - 1, -1, -1):
-            tp, tq, tc = min(t, Tp - 1), min(t, Tq), min(t, Tc)
-            tdq, tdc = min(t, Tdq), min(t, Tdc)
-            for s2 in range(S):
-                following[s2] = value[d, t + 1, s2]
+            tp = min(t, Tp - 1)
+            for a in range(A):
+                for s2 in range(S):
+                    following[a, s2] = arrival[d, t, a, s2] + value[d, t + 1, s2]
             for s in range(S):
-                occupancy = combine(
-                    ow, cw, occ_o[t] * state_qaly[d, tq, s], occ_c[t] * state_cost[d, tc, s]
-                )
                 best = -np.inf
                 top = 0
                 for a in range(A):
                     if not allowed[s, a]:
                         q = -np.inf
                     else:
-                        q = expectation(P[d, tp, a, s], following) + combine(
-                            ow,
-                            cw,
-                            dec_o[t] * decision_qaly[d, tdq, s, a],
-                            dec_c[t] * decision_cost[d, tdc, s, a],
-                        )
-                        q += occupancy
+                        q = q_values[d, t, s, a] + expectation(P[d, tp, a, s], following[a])
                     q_values[d, t, s, a] = q
                     if q > best:
                         best, top = q, a

@@ -6,9 +6,11 @@ arithmetic (one core). Letters as in :mod:`caredecide.compiled`.
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 
-from caredecide.compiled import CompiledModel
+from caredecide.compiled import CompiledModel, cycle_weights, stationary_cycle_weights
 from caredecide.errors import CaredecideError
 from caredecide.objective import Objective
 from caredecide.solvers import kernels
@@ -37,10 +39,13 @@ def check_compiled(compiled: CompiledModel) -> None:
         arr = getattr(compiled, name)
         if arr.ndim != 3 or arr.shape[0] != D or arr.shape[2] != S:
             problems.append(f"{name} has shape {arr.shape}; expected ({D}, Tq, {S})")
-    for name in ("decision_qaly", "decision_cost"):
+    for name in ("decision_qaly", "decision_cost", "state_action_qaly", "state_action_cost"):
         arr = getattr(compiled, name)
-        if arr.ndim != 4 or arr.shape[0] != D or arr.shape[2:] != (S, A):
-            problems.append(f"{name} has shape {arr.shape}; expected ({D}, Td, {S}, {A})")
+        if arr is not None and (arr.ndim != 4 or arr.shape[0] != D or arr.shape[2:] != (S, A)):
+            problems.append(f"{name} has shape {arr.shape}; expected ({D}, T, {S}, {A})")
+    move = compiled.move
+    if move is not None and (move.ndim != 5 or move.shape[0] != D or move.shape[2:] != (A, S, S)):
+        problems.append(f"move has shape {move.shape}; expected ({D}, Tm, {A}, {S}, {S})")
     if compiled.allowed.shape != (S, A):
         problems.append(f"allowed has shape {compiled.allowed.shape}; expected ({S}, {A})")
     elif not compiled.allowed.any(axis=1).all():
@@ -58,29 +63,105 @@ def decision_state_mask(compiled: CompiledModel) -> np.ndarray:
     return ~absorbing & (compiled.allowed.sum(axis=1) > 1)
 
 
-def occupancy_parts(
-    compiled: CompiledModel, t: int, weight: float, discount: bool = True
-) -> tuple[np.ndarray, np.ndarray]:
-    """(D, S) QALYs and (D, S) costs of occupying each state at boundary ``t``.
+@functools.lru_cache(maxsize=64)
+def _undiscounted_weights(method: str, n_cycles: int) -> tuple[np.ndarray, np.ndarray]:
+    return cycle_weights(method, n_cycles, 1.0)
 
-    ``weight * d_o**t * q_t`` and ``weight * d_c**t * c_t``: present value at the model
-    start, each at its own per-cycle factor (no blended rate). ``discount=False`` gives
-    undiscounted values.
+
+def _discount_power(d: float | np.ndarray, power: int) -> float | np.ndarray:
+    """``d ** power``; a per-draw (D,) factor becomes (D, 1, 1) to broadcast over (D, S, A)."""
+    d = np.asarray(d, dtype=float)
+    return float(d**power) if d.ndim == 0 else (d**power)[:, None, None]
+
+
+def _weights_at(compiled: CompiledModel, t: int, d: float | np.ndarray) -> tuple:
+    """Present-value (start, end) weights of cycle ``t`` at per-cycle factor ``d``.
+
+    Finite horizon: :func:`caredecide.compiled.cycle_weights`; infinite horizon: the
+    stationary weights (:func:`caredecide.compiled.stationary_cycle_weights`, ``t = 0``).
+    ``d`` may be per draw (D,) (e.g. a batch over discount rates).
+    """
+    method = compiled.within_cycle
+    if compiled.n_cycles is None:
+        stationary_cycle_weights(method, 1.0)  # refuses a method without a stationary form
+        start, end = _undiscounted_weights(method, 1)
+        t = 0
+    else:
+        start, end = _undiscounted_weights(method, compiled.n_cycles)
+    shift = 1 if method == "half_cycle" else 0  # the cycle average is discounted at its end
+    return start[t] * _discount_power(d, t + shift), end[t] * _discount_power(d, t + 1)
+
+
+def _at(array: np.ndarray | None, t: int) -> np.ndarray | None:
+    return None if array is None else array[:, min(t, array.shape[1] - 1)]
+
+
+def cycle_parts(
+    compiled: CompiledModel, t: int, discount: bool = True, *, life_years: bool = False
+) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """QALYs, costs (and life-years) of cycle ``t`` for each decision, in present value.
+
+    Follows the timeline of :mod:`caredecide.compiled`: one-off charges and the start
+    occupancy (after the decision-time move) are known at the decision; the end occupancy
+    depends on the state reached at the end of the cycle.
+
+    Parameters
+    ----------
+    compiled : CompiledModel
+    t : int
+        Cycle index (0 for an infinite horizon: the stationary weights, without ``d^t``).
+    discount : bool
+        False gives undiscounted values.
+    life_years : bool
+        Also return ``"life_years"`` (no decision or state-action part).
+
+    Returns
+    -------
+    dict of str to (at_decision, on_arrival)
+        ``at_decision`` (D, S, A): charged to the cohort in ``s`` taking ``a`` at the
+        start of cycle ``t``; ``on_arrival`` (D, A, S): counted for the cohort that took
+        ``a`` and is in ``s`` at the end of cycle ``t``. Keys ``"qalys"``, ``"costs"``
+        (and ``"life_years"``).
     """
     d_o, d_c = compiled.per_cycle_discount() if discount else (1.0, 1.0)
-    q = compiled.state_qaly[:, min(t, compiled.state_qaly.shape[1] - 1)]
-    c = compiled.state_cost[:, min(t, compiled.state_cost.shape[1] - 1)]
-    return (weight * d_o**t) * q, (weight * d_c**t) * c
+    T = compiled.n_cycles
+    power = 0 if T is None else t
+    move = _at(compiled.move, t)  # (D, A, S, S) or None
+    D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
+    sources = {
+        "qalys": (compiled.state_qaly, compiled.state_action_qaly, compiled.decision_qaly, d_o),
+        "costs": (compiled.state_cost, compiled.state_action_cost, compiled.decision_cost, d_c),
+    }
+    if life_years:
+        ly = np.broadcast_to(np.asarray(compiled.life_years, float)[None, :, None], (D, S, 1))
+        sources["life_years"] = (ly, None, None, d_o)
+    parts = {}
+    for name, (state, state_action, decision, d) in sources.items():
+        start_w, end_w = _weights_at(compiled, t, d)
+        u = _at(state, t) if name != "life_years" else state  # (D, S) or (D, S, 1)
+        u = u[..., None] if u.ndim == 2 else u
+        sa = _at(state_action, t)
+        u = np.broadcast_to(u if sa is None else u + sa, (D, S, A))  # reward per cycle in s under a
+        occupied = u if move is None else np.einsum("dasj,dja->dsa", move, u)
+        at_decision = start_w * occupied
+        if decision is not None:
+            at_decision = at_decision + _discount_power(d, power) * _at(decision, t)
+        parts[name] = (at_decision, end_w * u.transpose(0, 2, 1))  # end_w (D, 1, 1) or scalar
+    return parts
 
 
-def decision_parts(
-    compiled: CompiledModel, t: int, discount: bool = True
+def cycle_rewards(
+    compiled: CompiledModel, objective: Objective, t: int
 ) -> tuple[np.ndarray, np.ndarray]:
-    """(D, S, A) QALYs and (D, S, A) costs charged at the decision at the start of cycle ``t``."""
-    d_o, d_c = compiled.per_cycle_discount() if discount else (1.0, 1.0)
-    dq = compiled.decision_qaly[:, min(t, compiled.decision_qaly.shape[1] - 1)]
-    dc = compiled.decision_cost[:, min(t, compiled.decision_cost.shape[1] - 1)]
-    return d_o**t * dq, d_c**t * dc
+    """Objective rewards of cycle ``t`` (present value): ``(at_decision, on_arrival)``.
+
+    ``at_decision`` (D, S, A) and ``on_arrival`` (D, A, S) as in :func:`cycle_parts`;
+    the action value is ``at_decision[s, a] + sum_s' P_t[a, s, s'] (on_arrival[a, s'] +
+    V_{t+1}[s'])``.
+    """
+    parts = cycle_parts(compiled, t)
+    (q_now, q_end), (c_now, c_end) = parts["qalys"], parts["costs"]
+    return combine(objective, q_now, c_now), combine(objective, q_end, c_end)
 
 
 def combine(objective: Objective, qalys: np.ndarray, costs: np.ndarray) -> np.ndarray:
@@ -89,18 +170,6 @@ def combine(objective: Objective, qalys: np.ndarray, costs: np.ndarray) -> np.nd
     if objective.cost_weight:
         return outcome_part - objective.cost_weight * costs
     return outcome_part
-
-
-def occupancy_reward(
-    compiled: CompiledModel, objective: Objective, t: int, weight: float
-) -> np.ndarray:
-    """(D, S) objective reward of occupying each state at boundary ``t`` (present value)."""
-    return combine(objective, *occupancy_parts(compiled, t, weight))
-
-
-def decision_reward(compiled: CompiledModel, objective: Objective, t: int) -> np.ndarray:
-    """(D, S, A) objective reward of each action at the start of cycle ``t`` (present value)."""
-    return combine(objective, *decision_parts(compiled, t))
 
 
 def transition_at(compiled: CompiledModel, t: int) -> np.ndarray:
@@ -117,13 +186,17 @@ def stationary_discount(compiled: CompiledModel, objective: Objective) -> float:
         If the rates differ (net benefit) or the relevant rate is not > 0.
     """
     d_o = compiled.per_cycle_discount()[0]
-    if objective.kind == "net_benefit" and compiled.discount_outcomes != compiled.discount_costs:
+    if objective.kind == "net_benefit" and np.any(
+        np.asarray(compiled.discount_outcomes) != np.asarray(compiled.discount_costs)
+    ):
         raise SolverError(
             "an infinite horizon needs one discount rate for outcomes and costs when the "
             f"objective is net benefit; got discount_outcomes = {compiled.discount_outcomes} and "
             f"discount_costs = {compiled.discount_costs} (use a finite horizon for differential "
             "discounting, or the QALY objective)"
         )
+    if np.ndim(compiled.discount_outcomes) or np.ndim(compiled.discount_costs):
+        raise SolverError("an infinite horizon needs one discount rate for every draw")
     if not compiled.discount_outcomes > 0:
         raise SolverError(
             f"an infinite horizon needs a discount rate > 0; got discount_outcomes = "

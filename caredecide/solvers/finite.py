@@ -3,14 +3,15 @@
 Working in present value at the model start keeps outcomes and costs at their own
 per-cycle discount factors ``d_o``, ``d_c``::
 
-    V_T(s)   = w_T (lambda d_o^T q_T(s) - d_c^T c_T(s)) + terminal(s)
-    Q_t(s,a) = w_t (lambda d_o^t q_t(s) - d_c^t c_t(s))
-               + (lambda d_o^t dq_t(s,a) - d_c^t dc_t(s,a)) + sum_s' P_t(s'|s,a) V_{t+1}(s')
+    V_T(s)   = terminal(s)
+    Q_t(s,a) = now_t(s,a) + sum_s' P_t(s'|s,a) (arrival_t(a,s') + V_{t+1}(s'))
     V_t(s)   = Q_t(s, policy_t(s)),  policy_t(s) = argmax over allowed a of Q_t(s, a)
 
-with within-cycle weights ``w`` from :func:`caredecide.compiled.occupancy_weights`. The
-compiled kernel (:mod:`caredecide.solvers.kernels`) walks each draw through its cycles with
-the reward, the expectation and the greedy choice fused; without numba, one batched matmul
+with ``now_t`` the one-off charges plus the start occupancy of cycle ``t`` (after the
+decision-time move) and ``arrival_t`` its end occupancy, each weighted by the within-cycle
+method (:func:`caredecide.solvers.bellman.cycle_rewards`). The compiled kernel
+(:mod:`caredecide.solvers.kernels`) walks each draw through its cycles with the
+expectation and the greedy choice fused; without numba, one batched matmul
 per cycle covers every draw, action and state.
 """
 
@@ -18,15 +19,14 @@ from __future__ import annotations
 
 import numpy as np
 
-from caredecide.compiled import CompiledModel, occupancy_weights
+from caredecide.compiled import CompiledModel
 from caredecide.objective import Objective
 from caredecide.solvers import kernels
 from caredecide.solvers.bellman import (
     SolverError,
-    decision_reward,
+    cycle_rewards,
     decision_state_mask,
     greedy_choice,
-    occupancy_reward,
     transition_at,
 )
 from caredecide.solvers.result import PolicyResult, SweepRecord, build_result
@@ -56,13 +56,13 @@ def terminal_present_value(
     if not np.isfinite(terminal).all():
         raise SolverError("terminal_value holds a non-finite value; expected finite numbers")
     d_o, d_c = compiled.per_cycle_discount()
-    if objective.kind == "net_benefit" and d_o != d_c and np.any(terminal != 0):
+    if objective.kind == "net_benefit" and np.any(d_o != d_c) and np.any(terminal != 0):
         raise SolverError(
             "a non-zero terminal_value needs one discount rate for outcomes and costs; got "
             f"discount_outcomes = {compiled.discount_outcomes}, discount_costs = "
             f"{compiled.discount_costs}"
         )
-    return terminal * d_o**T
+    return terminal * np.reshape(d_o**T, (-1, 1))
 
 
 def backward_induction(
@@ -98,7 +98,6 @@ def backward_induction(
     if T is None:
         raise SolverError("backward induction needs a finite number of cycles (n_cycles)")
     D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
-    weights = occupancy_weights(compiled.within_cycle, T)
     decision_states = decision_state_mask(compiled)
 
     value = np.empty((D, T + 1, S))
@@ -109,21 +108,18 @@ def backward_induction(
     indifferent = np.empty((D, T, S), dtype=bool)
     history: list[SweepRecord] | None = [] if record_history else None
 
-    terminal = terminal_present_value(compiled, objective, terminal_value)
+    value[:, T] = terminal_present_value(compiled, objective, terminal_value)
     if kernels.available():
-        value[:, T] = terminal
-        d_o, d_c = compiled.per_cycle_discount()
-        steps = range(T + 1)
+        # The rewards of every cycle, computed once by the shared arithmetic (cycle_rewards):
+        # q_values starts as the reward at the decision; the kernel adds the expectation.
+        arrival = np.empty((D, T, A, S))
+        for t in range(T):
+            q_values[:, t], arrival[:, t] = cycle_rewards(compiled, objective, t)
         kernels.kernels().backward_induction(
-            *(np.ascontiguousarray(a) for a in _kernel_arrays(compiled)),
+            np.ascontiguousarray(compiled.transition),
+            arrival,
             compiled.allowed,
             decision_states,
-            np.array([weights[t] * d_o**t for t in steps]),
-            np.array([weights[t] * d_c**t for t in steps]),
-            np.array([d_o**t for t in steps[:-1]]),
-            np.array([d_c**t for t in steps[:-1]]),
-            float(objective.outcome_weight),
-            float(objective.cost_weight),
             float(tie_absolute),
             float(tie_relative),
             value,
@@ -138,7 +134,7 @@ def backward_induction(
                 _record(history, T, t, value, policy)
     else:
         _numpy_backward_induction(
-            compiled, objective, terminal, weights, decision_states,
+            compiled, objective, decision_states,
             (value, q_values, policy, gap, next_best, indifferent),
             tie_absolute, tie_relative, history,
         )  # fmt: skip
@@ -162,16 +158,6 @@ def backward_induction(
     )
 
 
-def _kernel_arrays(compiled: CompiledModel) -> tuple[np.ndarray, ...]:
-    return (
-        compiled.transition,
-        compiled.state_qaly,
-        compiled.state_cost,
-        compiled.decision_qaly,
-        compiled.decision_cost,
-    )
-
-
 def _record(history: list[SweepRecord], T: int, t: int, value, policy) -> None:
     history.append(
         SweepRecord(
@@ -186,23 +172,22 @@ def _record(history: list[SweepRecord], T: int, t: int, value, policy) -> None:
 
 
 def _numpy_backward_induction(
-    compiled, objective, terminal, weights, decision_states, out, tie_absolute, tie_relative,
-    history,
+    compiled, objective, decision_states, out, tie_absolute, tie_relative, history,
 ) -> None:  # fmt: skip
     """The numpy path (no compiled kernels): one batched matmul per cycle over all draws."""
     value, q_values, policy, gap, next_best, indifferent = out
     T = compiled.n_cycles
     D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
     not_allowed = ~compiled.allowed
-    value[:, T] = occupancy_reward(compiled, objective, T, weights[T]) + terminal
     expected_next = np.empty((D, A, S, 1))
     for t in range(T - 1, -1, -1):
-        # Expected value of the next boundary for every (draw, action, state): one matmul.
-        np.matmul(transition_at(compiled, t), value[:, t + 1, None, :, None], out=expected_next)
+        now, arrival = cycle_rewards(compiled, objective, t)
+        # Expected end-of-cycle value for every (draw, action, state): one matmul.
+        rhs = (arrival + value[:, t + 1, None, :])[..., None]
+        np.matmul(transition_at(compiled, t), rhs, out=expected_next)
         Q = q_values[:, t]
         Q[...] = expected_next[..., 0].transpose(0, 2, 1)
-        Q += decision_reward(compiled, objective, t)
-        Q += occupancy_reward(compiled, objective, t, weights[t])[..., None]
+        Q += now
         Q[:, not_allowed] = -np.inf
         (policy[:, t], value[:, t], gap[:, t], next_best[:, t], indifferent[:, t]) = greedy_choice(
             Q, decision_states, tie_absolute, tie_relative

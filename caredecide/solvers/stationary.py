@@ -4,7 +4,7 @@ With one per-cycle discount factor ``gamma`` (the QALY objective, or equal rates
 outcomes and costs) the Bellman operator is (Puterman 1994, chapter 6)::
 
     (T v)(s) = max over allowed a of r(s, a) + gamma sum_s' P(s'|s, a) v(s')
-    r(s, a)  = lambda q(s) - c(s) + lambda dq(s, a) - dc(s, a)
+    r(s, a)  = now(s, a) + sum_s' P(s'|s, a) arrival(a, s')
 
 * value iteration stops when ``||v_{n+1} - v_n|| < eps (1 - gamma) / (2 gamma)``; then the
   greedy policy is eps-optimal and ``||v_{n+1} - v*|| <= gamma ||v_{n+1} - v_n|| / (1 - gamma)
@@ -19,31 +19,29 @@ outcomes and costs) the Bellman operator is (Puterman 1994, chapter 6)::
 ``eps`` is ``tolerance`` times the largest |value| of each draw when ``relative`` (values
 in money are large), else ``tolerance``. Iteration continues until every draw meets it.
 
-Within-cycle method: the recursion counts each state's reward at the start of every cycle
-("start"); "end" and "trapezoid" give boundary 0 the weight ``w_0`` = 0 or 1/2, so
-``(1 - w_0) u(s)`` is subtracted from the values at t = 0. The correction depends on the
-state only, so the policy is unchanged. Simpson's rule needs a finite horizon.
+Rewards per cycle (:func:`caredecide.solvers.bellman.cycle_rewards` at ``t = 0``): one-off
+charges and the start occupancy after the decision-time move (``now``), plus the end
+occupancy (``arrival``) weighted by the within-cycle method's stationary weights
+(:func:`caredecide.compiled.stationary_cycle_weights`). Simpson's rule pairs cycles and
+needs a finite horizon.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-from caredecide.compiled import CompiledModel
+from caredecide.compiled import STATIONARY_METHODS, CompiledModel
 from caredecide.objective import Objective
 from caredecide.solvers import kernels
 from caredecide.solvers.bellman import (
     SolverError,
-    decision_reward,
+    cycle_rewards,
     decision_state_mask,
     greedy_choice,
-    occupancy_reward,
     stationary_discount,
 )
 from caredecide.solvers.result import PolicyResult, SweepRecord, build_result
 from caredecide.solvers.sparse import choose_form, sparse_iterate
-
-START_WEIGHT = {"start": 1.0, "end": 0.0, "trapezoid": 0.5}
 
 
 class StationaryProblem:
@@ -56,12 +54,8 @@ class StationaryProblem:
     P : (D, A * S, S) float
         Transition rows stacked by (action, state).
     R : (D, A, S) float
-        Reward per cycle of taking ``a`` in ``s`` (start-of-cycle convention); ``-inf``
-        where not allowed.
-    occupancy : (D, S) float
-        State-only part ``u(s)`` of the reward, for the within-cycle correction.
-    start_weight : float
-        ``w_0`` of the within-cycle method.
+        Reward per cycle of taking ``a`` in ``s`` (present value at the cycle's start);
+        ``-inf`` where not allowed.
     """
 
     def __init__(self, compiled: CompiledModel, objective: Objective):
@@ -75,21 +69,21 @@ class StationaryProblem:
                 "an infinite horizon needs stationary arrays (time axis of length 1); "
                 "the compiled arrays vary with the cycle"
             )
-        if compiled.within_cycle not in START_WEIGHT:
+        if compiled.within_cycle not in STATIONARY_METHODS:
             raise SolverError(
                 f"within-cycle method {compiled.within_cycle!r} needs a finite horizon; "
-                f"expected one of {tuple(START_WEIGHT)} for an infinite horizon"
+                f"expected one of {STATIONARY_METHODS} for an infinite horizon"
             )
         self.gamma = stationary_discount(compiled, objective)
         D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
         self.shape = (D, A, S)
-        # Undiscounted rewards: with one factor, stationary present values are d^t times these.
-        self.occupancy = occupancy_reward(compiled, objective, 0, 1.0)
-        R = decision_reward(compiled, objective, 0).transpose(0, 2, 1) + self.occupancy[:, None]
+        # Rewards of one cycle at its start: present values are d^t times these.
+        now, arrival = cycle_rewards(compiled, objective, 0)
+        P = compiled.transition[:, 0]  # (D, A, S, S)
+        R = now.transpose(0, 2, 1) + (P @ arrival[..., None])[..., 0]
         R[:, ~compiled.allowed.T] = -np.inf
         self.R = np.ascontiguousarray(R)
-        self.P = np.ascontiguousarray(compiled.transition[:, 0]).reshape(D, A * S, S)
-        self.start_weight = START_WEIGHT[compiled.within_cycle]
+        self.P = np.ascontiguousarray(P).reshape(D, A * S, S)
         self._buffer = np.empty((D, A * S, 1))
 
     def action_values(self, v: np.ndarray) -> np.ndarray:
@@ -298,7 +292,7 @@ def solve_stationary(
     Returns
     -------
     PolicyResult
-        ``policy`` (D, 1, S); ``value`` (D, 1, S) after the within-cycle correction;
+        ``policy`` (D, 1, S); ``value`` (D, 1, S);
         ``error_bound`` (D,) bounds ``||value - v*||`` in the sup norm.
     """
     problem = StationaryProblem(compiled, objective)
@@ -371,7 +365,6 @@ def solve_stationary(
     # Greedy step on the final values: Q errors are at most gamma * bound, so gaps below
     # twice the bound are reported as ties rather than resolved by rounding.
     Q = problem.action_values(v).transpose(0, 2, 1).copy()  # (D, S, A)
-    Q -= ((1.0 - problem.start_weight) * problem.occupancy)[..., None]
     decision_states = decision_state_mask(compiled)
     policy, value, gap, next_best, indifferent = greedy_choice(
         Q, decision_states, tie_absolute, tie_relative, uncertainty=2.0 * bound
