@@ -71,6 +71,8 @@ class ParsedModel:
     """Remainder entries ("rest"): one per row at most."""
     rates: list[Entry] = field(default_factory=list)
     problems: list[Problem] = field(default_factory=list)
+    derived_used: set[str] = field(default_factory=set)
+    """``[derived]`` names written in the model's cells (before expansion)."""
 
     def all_entries(self) -> list[Entry]:
         return [
@@ -130,6 +132,7 @@ def parse_model_expressions(model: Model) -> ParsedModel:
         try:
             expression = parse_expression(value, where=where, allow_rest=allow_rest)
             expression.check_names(known, where=where)
+            parsed.derived_used |= expression.names & model.derived.keys()
             expression = expression.with_definitions(definitions)
         except ExpressionError as error:
             message = str(error)

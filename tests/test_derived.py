@@ -147,3 +147,11 @@ def test_a_definition_is_not_a_table():
     data = small_model_dict()
     data["derived"] = {"x": {"value": 1}}
     assert "derived.x" in problems_of(data)
+
+
+def test_an_unused_definition_is_a_warning_one_used_through_another_is_not():
+    data = with_derived(c_total="c_drug + c_visit", c_visit="25", c_spare="1")
+    data["actions"][1]["cost_per_cycle"] = "c_total"
+    unused = [w for w in validate_model(load_dict(data)) if w.extra.get("rule") == "unused_derived"]
+    assert [w.where for w in unused] == ["derived.c_spare"]
+    assert "'c_spare' is not used by any cell of the model" in unused[0].message

@@ -29,6 +29,7 @@ __all__ = [
     "bound_problems",
     "distribution_problems",
     "repeated_charge_warnings",
+    "unused_derived_warnings",
     "unused_parameter_warnings",
 ]
 
@@ -183,6 +184,34 @@ def _one_off_values(model: Model) -> dict[tuple[str, str], tuple[str, float | No
                     continue
             values[(action.id, what)] = (expression.source, value)
     return values
+
+
+def unused_derived_warnings(model: Model, used_by_cells: set[str]) -> list[ModelWarningRecord]:
+    """A warning per ``[derived]`` name that no cell uses, directly or through another."""
+    from caredecide.errors import ExpressionError
+    from caredecide.expressions import parse_expression
+
+    refers: dict[str, set[str]] = {}
+    for name, text in model.derived.items():
+        try:
+            refers[name] = set(parse_expression(text).names) & model.derived.keys()  # type: ignore[arg-type]
+        except ExpressionError:
+            refers[name] = set()
+    used, frontier = set(), set(used_by_cells)
+    while frontier:
+        name = frontier.pop()
+        if name not in used:
+            used.add(name)
+            frontier |= refers.get(name, set())
+    return [
+        ModelWarningRecord(
+            f"derived.{name}",
+            f"{name!r} is not used by any cell of the model; use it, or remove it",
+            {"rule": "unused_derived", "name": name},
+        )
+        for name in model.derived
+        if name not in used
+    ]
 
 
 def repeated_charge_warnings(model: Model, compiled) -> list[ModelWarningRecord]:

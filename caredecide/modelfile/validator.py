@@ -33,6 +33,7 @@ from caredecide.modelfile.advisories import (
     bound_problems,
     distribution_problems,
     repeated_charge_warnings,
+    unused_derived_warnings,
     unused_parameter_warnings,
 )
 from caredecide.upgrade import PREVIOUS_FORMAT_VERSION, previous_format_warning
@@ -490,6 +491,7 @@ def validate_and_compile(model: Model) -> ValidatedModel:
         + _warnings(model, compiled)
         + repeated_charge_warnings(model, compiled)
         + unused_parameter_warnings(model, used)
+        + unused_derived_warnings(model, parsed.derived_used)
     )
     return ValidatedModel(warnings, compiled)
 
