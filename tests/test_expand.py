@@ -776,3 +776,10 @@ def test_comparing_a_tunnel_with_a_step_it_never_reaches_warns():
     ]
     assert "compares 'years_on_drug' with 5" in found[0].message
     assert "expected tunnels.years_on_drug.length >= 5" in found[0].message
+
+
+def test_the_compiled_base_case_from_validation_keeps_the_grouping():
+    from caredecide.modelfile import validate_and_compile
+
+    model = loads_model(_tunnel_model(start="sick__untreated", enter="0.5", die="0.1"))
+    assert validate_and_compile(model).compiled.state_groups == compile_model(model).state_groups

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import math
 import re
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -481,7 +481,8 @@ def validate_and_compile(model: Model) -> ValidatedModel:
     problems += scenario_problems(model)
     if problems:
         raise ModelError(problems, file=file)
-    compiled = compile_model(model)
+    # The flat model compiles to the same arrays; keep where each generated state comes from.
+    compiled = replace(compile_model(model), state_groups=expansion.groups)
     records = [previous_format_warning()] if model.format_version == PREVIOUS_FORMAT_VERSION else []
     records += expansion.warnings
     used = {name for entry in parsed.all_entries() for name in entry.expression.names}
