@@ -169,3 +169,18 @@ def test_context_and_two_way_show_action_labels(demo, demo_thresholds):
     grid = two_way(demo, "hr_treatment", "c_drug_year", grid=2)
     assert set(grid["action_at_start"]) <= {f"stage_1: {x}; stage_2: {y}" for x in
                                             labels.values() for y in labels.values()}  # fmt: skip
+
+
+def test_the_models_own_scenarios_are_examined():
+    from caredecide.model import Scenario
+
+    model = hand_model()
+    # loss = 0.1 > p (1 - hr) = 0.06: waiting becomes best (hand algebra above).
+    named = {
+        "heavier": Scenario("heavier", {"parameters.loss.value": 0.1}, label="heavier toxicity"),
+        "lighter": Scenario("lighter", {"parameters.loss.value": 0.01}),
+    }
+    model = replace(model, scenarios=named)
+    result = what_would_change(model)
+    assert result.scenario_names == ["heavier toxicity", "lighter"]
+    assert list(result.scenarios["scenario"]) == ["heavier toxicity"]

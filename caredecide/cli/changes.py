@@ -71,7 +71,13 @@ def run_what_would_change(
         if out is not None:
             prepare_output_folder(out)
         loaded = load_and_warn(model, strict=strict, sets=sets)
-        alternatives = {path.stem: load_and_warn(path, strict=strict) for path in scenario or []}
+        from caredecide.sensitivity.recommendation import model_scenarios
+
+        # The model's own [scenarios] always count; --scenario files add to them.
+        alternatives = {
+            **model_scenarios(loaded),
+            **{path.stem: load_and_warn(path, strict=strict) for path in scenario or []},
+        }
         objective = default_objective(loaded)
         psa = None
         with progress("{task.description}", total=2, quiet=quiet) as bar:

@@ -259,6 +259,7 @@ def _sensitivity(data: ReportData) -> None:
     changes = what_would_change(data.model, objective=data.objective, thresholds=thresholds)
     data.results["what_would_change_states"] = changes.recommendations
     data.results["what_would_change_flips"] = changes.flips
+    data.results["what_would_change_scenarios"] = changes.scenarios
     if "willingness_to_pay" in suite.setting_thresholds:
         # The summary by age band, as before, under the name the report has always used.
         data.results["threshold_willingness_to_pay"] = suite.threshold_summary("willingness_to_pay")

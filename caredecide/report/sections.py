@@ -318,6 +318,12 @@ def changes_section(data: ReportData) -> str:
             f"<li>{esc(flip_sentence(SimpleNamespace(**flip._asdict())))}</li>"
             for flip in flips[flips["state"] == row.state].itertuples()
         ]
+        scenarios = data.results.get("what_would_change_scenarios")
+        if scenarios is not None:
+            items += [
+                f"<li>{esc(f'Scenario {s.scenario!r} changes it: {s.recommended}.')}</li>"
+                for s in scenarios[scenarios["state"] == row.state].itertuples()
+            ]
         parts.append(
             f"<ul>{''.join(items)}</ul>"
             if items

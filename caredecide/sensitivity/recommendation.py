@@ -157,6 +157,8 @@ def what_would_change(
         A probabilistic analysis of the same model and objective.
     scenarios : mapping of str to Model, optional
         Alternative models (same states and actions) to compare with the base case.
+        Default: the model's own named scenarios (``[scenarios.NAME]``), each under its
+        label (or name).
 
     Returns
     -------
@@ -166,6 +168,8 @@ def what_would_change(
     from caredecide.solvers import solve
 
     objective = default_objective(model) if objective is None else objective
+    if scenarios is None:
+        scenarios = model_scenarios(model)
     compiled = compile_model(model)
     base = solve(compiled, objective)
     policy = np.asarray(base.policy[0])  # (Tpi, S)
@@ -226,6 +230,18 @@ def what_would_change(
         scenario_names=list(scenarios or {}),
         objective=objective,
     )
+
+
+def model_scenarios(model: Any) -> dict[str, Any]:
+    """The model's named scenarios as ``{label or name: model with its overrides}``."""
+    if not getattr(model, "scenarios", None):
+        return {}
+    from caredecide.scenarios import scenario_models
+
+    return {
+        (scenario.label or scenario.name): alternative
+        for scenario, alternative in scenario_models(model)[1:]  # [0] is the base case
+    }
 
 
 def _labels(model: Any, kind: str) -> dict[str, str]:

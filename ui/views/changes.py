@@ -16,7 +16,7 @@ from ui import working_model
 def run_changes(text: str, file: str, base_dir: str, grid: int):
     model = loads_model(text, file=file, base_dir=base_dir)
     result = what_would_change(model, grid=grid)
-    return result.recommendations, result.flips, result.lines()
+    return result.recommendations, result.flips, result.lines(), result.scenarios
 
 
 model = working_model.valid_model_or_stop()
@@ -31,7 +31,7 @@ st.caption(
 grid = st.slider("Grid values per estimate", 5, 41, 11, key="changes_grid")
 try:
     with st.spinner("Searching the values that flip each decision..."):
-        recommendations, flips, lines = run_changes(*key, int(grid))
+        recommendations, flips, lines, scenarios = run_changes(*key, int(grid))
 except CaredecideError as error:
     st.error(str(error), icon=":material/error:")
     st.stop()
@@ -44,6 +44,8 @@ for row in recommendations.itertuples():
         st.markdown("No estimate flips it inside its plausible range.")
     for flip in state_flips.itertuples():
         st.markdown(f"- {flip_sentence(flip)}")
+    for scenario in scenarios[scenarios["state"] == row.state].itertuples():
+        st.markdown(f"- Scenario **{scenario.scenario}** changes it: {scenario.recommended}.")
 with st.expander("The figures as a table"):
     st.dataframe(flips, hide_index=True, key="changes_flips_table")
 st.download_button(
