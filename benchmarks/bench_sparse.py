@@ -1,0 +1,121 @@
+"""A 2,000-state model with at most 10 non-zeros per row: sparse vs dense transitions.
+
+Not a test: prints times and peak memory measured in this run on this machine.
+
+Model: SYNTHETIC (invented numbers), stationary, 2 actions; each state moves to itself,
+a few states on, or to an absorbing state (4 to 5 non-zeros per row), one draw (the base
+case). Each form solves it in a fresh process (so its peak resident memory is its own):
+``solve(..., transition_form="dense")`` (compiled per-draw loops, dense LU) and
+``transition_form="sparse"`` (scipy.sparse CSR, sparse LU); ``"auto"`` must pick sparse.
+Policies and values must agree before a ratio is printed.
+
+Run: python benchmarks/bench_sparse.py [--states 2000] [--repeats 3]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import statistics
+import subprocess
+import sys
+
+for _name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_name, "1")
+
+CHILD = r"""
+import json, resource, sys, time
+import numpy as np
+from caredecide.compiled import CompiledModel
+from caredecide.objective import Objective
+from caredecide.solvers import solve
+
+S, A, form, method = {states}, 2, {form!r}, {method!r}
+rng = np.random.default_rng(11)
+P = np.zeros((1, 1, A, S, S))
+for a in range(A):
+    for s in range(S - 1):
+        targets = [s, min(s + 1, S - 2), min(s + 2, S - 2), min(s + 5, S - 2), S - 1]
+        P[0, 0, a, s, targets] += rng.uniform(0.05, 1.0, 5) * [1.0, 0.4 / (a + 1), 0.2, 0.1, 0.03]
+P[0, 0, :, S - 1, S - 1] = 1.0
+P /= P.sum(-1, keepdims=True)
+qaly = np.linspace(0.95, 0.2, S)
+qaly[-1] = 0.0
+cost = np.zeros((1, 1, S, A))
+cost[0, 0, :-1, 1] = rng.uniform(200, 2000, S - 1)
+absorbing = np.zeros(S, bool)
+absorbing[-1] = True
+model = CompiledModel(
+    state_ids=tuple(f"s{{k}}" for k in range(S)), action_ids=("wait", "treat"),
+    transition=P, allowed=np.ones((S, A), bool), state_qaly=qaly[None, None].copy(),
+    state_cost=np.zeros((1, 1, S)), decision_qaly=np.zeros((1, 1, S, A)),
+    decision_cost=cost, life_years=(~absorbing).astype(float),
+    start_distribution=np.eye(S)[0], n_cycles=None, discount_outcomes=0.035,
+    discount_costs=0.035, absorbing=absorbing,
+)
+objective = Objective("net_benefit", 30000.0)
+solve(model.take_draws(slice(0, 1)), objective, method=method, transition_form=form)  # warm
+start = time.process_time()
+result = solve(model, objective, method=method, transition_form=form)
+seconds = time.process_time() - start
+print(json.dumps({{
+    "seconds": seconds, "form": result.transition_form, "iterations": result.iterations,
+    "policy": result.policy[0, 0].tolist(), "value": result.value[0, 0].tolist(),
+    "indifferent": result.indifferent[0, 0].tolist(),
+    "nonzeros_per_row": float(np.count_nonzero(P) / (A * S)),
+    "peak_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+}}))
+"""
+
+
+def run(states: int, form: str, method: str) -> dict:
+    code = CHILD.format(states=states, form=form, method=method)
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    if done.returncode:
+        raise SystemExit(done.stderr[-2000:])
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--states", type=int, default=2000)
+    parser.add_argument("--repeats", type=int, default=3)
+    args = parser.parse_args()
+    print("SYNTHETIC benchmark model (invented numbers); research use only.")
+    for method in ("policy_iteration", "value_iteration"):
+        runs = {"dense": [], "sparse": [], "auto": []}
+        for _ in range(args.repeats):
+            for form in runs:
+                runs[form].append(run(args.states, form, method))
+        dense, sparse, auto = runs["dense"][0], runs["sparse"][0], runs["auto"][0]
+        if auto["form"] != "sparse":
+            raise SystemExit(f"auto picked {auto['form']}, expected sparse")
+        tied = set(i for i, t in enumerate(dense["indifferent"]) if t)
+        differ = [
+            i
+            for i, (a, b) in enumerate(zip(dense["policy"], sparse["policy"], strict=True))
+            if a != b and i not in tied
+        ]
+        gap = max(abs(a - b) for a, b in zip(dense["value"], sparse["value"], strict=True))
+        scale = max(abs(a) for a in dense["value"])
+        if differ or gap > 1e-6 * scale:
+            raise SystemExit(f"{method}: forms disagree ({len(differ)} policies, value {gap:g})")
+        t = {form: statistics.median(r["seconds"] for r in rs) for form, rs in runs.items()}
+        peak = {form: max(r["peak_mib"] for r in rs) for form, rs in runs.items()}
+        print(
+            f"\n== {method}: {args.states} states, 2 actions, one draw, "
+            f"{dense['nonzeros_per_row']:.1f} non-zeros per row (median of {args.repeats}) =="
+        )
+        print(f"answers agree (max |value difference| {gap:.1e}, values up to {scale:.3g})")
+        for form in runs:
+            print(
+                f"  {form:6s} {t[form]:8.3f} s CPU   peak {peak[form]:6.0f} MiB "
+                f"(process total)   used: {runs[form][0]['form']}"
+            )
+        print(f"  dense / sparse: {t['dense'] / t['sparse']:.1f}x (target >= 10x)")
+    print("(machine shared with other jobs while measured: absolute times are noisy)")
+
+
+if __name__ == "__main__":
+    main()
