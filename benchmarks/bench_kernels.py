@@ -40,7 +40,7 @@ import numpy as np  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).parent))
 
-from bench_solver import WTP, bandwidth_gbps, draws_frame, model_text  # noqa: E402
+from bench_solver import WTP, draws_frame, model_text  # noqa: E402
 from plain_reference import plain_backward_induction, plain_cohort_trace  # noqa: E402
 
 from caredecide.compile import compile_model  # noqa: E402
@@ -63,6 +63,17 @@ def compiled_model(n_draws: int, chunk: int = 1000):
     names = ("transition", "state_qaly", "state_cost", "decision_qaly", "decision_cost")
     joined = {name: np.concatenate([getattr(p, name) for p in parts]) for name in names}
     return replace(parts[0], **joined)
+
+
+def bandwidth_gbps(n_bytes: int = 512 * 1024**2, repeats: int = 5) -> float:
+    """Memory-read bandwidth (GB/s): best CPU time of numpy sums over a large array."""
+    array = np.ones(n_bytes // 8)
+    best = np.inf
+    for _ in range(repeats):
+        start = time.process_time()
+        array.sum()
+        best = min(best, time.process_time() - start)
+    return n_bytes / best / 1e9
 
 
 def with_path(path: str, function, *args, **kwargs):

@@ -184,6 +184,7 @@ def main() -> None:
     warm = synthetic_model(5, 2, 2)  # compile or load the kernels before any timing
     for method in ("policy_iteration", "value_iteration"):
         solve(warm, OBJECTIVE, method=method)
+        quantecon_loop(warm, method, np.full(2, 1e-6))  # quantecon compiles on first use
     worst = {}
     for S in args.states:
         for A in (2, 3):
