@@ -37,6 +37,7 @@ import math
 import re
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field, replace
+from typing import Any
 
 from caredecide.errors import ModelError, ModelWarningRecord, Problem
 from caredecide.limits import MAX_EXPANDED_STATES
@@ -357,7 +358,11 @@ class _Expander:
             if c.base == base and all(dict(c.values).get(a) == v for a, v in chosen.items())
         ]
 
-    def target(self, key: str, source: StateCopy, where: str) -> StateCopy | None:
+    def target(
+        self, key: str, source: StateCopy, where: str, *, advance: bool = True
+    ) -> StateCopy | None:
+        """The copy ``key`` reaches from ``source``: a cycle later (``advance``, a row) or at
+        once (a decision-time move, where no time passes and a tunnel keeps its step)."""
         read = self.read_key(key, where)
         if read is None:
             return None
@@ -381,7 +386,9 @@ class _Expander:
         steps = []
         for tunnel in self.active_tunnels(self.states[base], dict(values)):
             k = source_steps.get(tunnel.name)
-            steps.append((tunnel.name, 0 if k is None else min(k + 1, tunnel.length)))
+            if k is not None and advance:
+                k = min(k + 1, tunnel.length)
+            steps.append((tunnel.name, 0 if k is None else k))
         return self.by_key[(base, tuple(values), tuple(steps))]
 
     # -- the flat model ------------------------------------------------------------------
@@ -462,10 +469,18 @@ class _Expander:
             for a in actions
         }
         given: dict[tuple[str, str], str] = {}
-        tables = {}
+        tables: dict[str, Any] = {}
         for table_name in ("transitions", "rates"):
             tables[table_name] = self._rows(
                 table_name, getattr(model, table_name), given, variables
+            )
+        # Decision-time moves (no time passes) and rewards of a state under an action (keyed
+        # by fields, not states), in models whose format has them.
+        if hasattr(model, "moves"):
+            tables["moves"] = self._rows("moves", model.moves, {}, variables, advance=False)
+        if hasattr(model, "under_action"):
+            tables["under_action"] = self._rows(
+                "under_action", model.under_action, {}, variables, targets=False
             )
 
         settings = model.settings
@@ -487,8 +502,7 @@ class _Expander:
             model,
             states=tuple(states),
             actions=tuple(actions),
-            transitions=tables["transitions"],
-            rates=tables["rates"],
+            **tables,
             settings=replace(settings, start=start, severity_order=tuple(order)),
             attributes={},
             tunnels={},
@@ -504,7 +518,13 @@ class _Expander:
         table: Mapping[str, Mapping[str, Mapping[str, ExpressionText]]],
         given: dict[tuple[str, str], str],
         variables: Mapping[str, Mapping[str, float]],
+        *,
+        advance: bool = True,
+        targets: bool = True,
     ) -> dict[str, dict[str, dict[str, ExpressionText]]]:
+        """Rows of ``table`` for every copy they cover. ``advance``: targets are reached a
+        cycle later (tunnel steps move on); ``targets=False``: the inner keys are field
+        names (``under_action``), copied for each copy with its values written in."""
         from caredecide.expressions import substitute_names
 
         out: dict[str, dict[str, dict[str, ExpressionText]]] = {}
@@ -539,7 +559,12 @@ class _Expander:
                         continue
                     flat_row: dict[str, ExpressionText] = {}
                     for to_key, value in row.items():
-                        target = self.target(to_key, source, f"{where}.{to_key}")
+                        if not targets:
+                            value = self.inline(value)
+                            flat_row[to_key] = substitute_names(value, variables[source.id])
+                            self._warn_unguarded(value, source, f"{where}.{to_key}")
+                            continue
+                        target = self.target(to_key, source, f"{where}.{to_key}", advance=advance)
                         if target is None:
                             continue
                         if target.id in flat_row:
@@ -621,8 +646,8 @@ class _Expander:
             cells += [
                 (f"states.{state.id}.{f}", getattr(state, f)) for f in ("qaly_weight", "cost")
             ]
-        for table_name in ("transitions", "rates"):
-            for action_id, rows in getattr(self.model, table_name).items():
+        for table_name in ("transitions", "rates", "moves", "under_action"):
+            for action_id, rows in getattr(self.model, table_name, {}).items():
                 for key, row in rows.items():
                     cells += [(f"{table_name}.{action_id}.{key}.{t}", v) for t, v in row.items()]
         cells += [(f"derived.{name}", text) for name, text in self.model.derived.items()]
