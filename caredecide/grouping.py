@@ -128,6 +128,9 @@ def grouped_time(
 ) -> pd.DataFrame:
     """Expected time spent in each group, undiscounted, with the model's within-cycle method.
 
+    The occupancy at each boundary is weighted by :func:`caredecide.compiled.boundary_weights`;
+    in a model with decision-time moves the boundary counts the cohort before the move.
+
     Parameters
     ----------
     trace : (T + 1, S) float

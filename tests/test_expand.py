@@ -783,3 +783,16 @@ def test_the_compiled_base_case_from_validation_keeps_the_grouping():
 
     model = loads_model(_tunnel_model(start="sick__untreated", enter="0.5", die="0.1"))
     assert validate_and_compile(model).compiled.state_groups == compile_model(model).state_groups
+
+
+def test_the_base_case_result_gives_the_trace_and_time_by_group():
+    from caredecide.analysis.base_case import analyse_base_case
+
+    model = loads_model(_tunnel_model(start="sick__untreated", enter="0.5", die="0"))
+    base = analyse_base_case(model)
+    by_step = base.grouped_trace_frame("years_on_drug")
+    at_3 = by_step[by_step["cycle"] == 3].set_index("years_on_drug")["proportion"]
+    # Hand-derived as in test_a_cost_in_the_first_two_cycles_after_entering_the_tunnel.
+    assert at_3.to_dict() == pytest.approx({"": 0.125, "0": 0.125, "1": 0.25, "2+": 0.5})
+    time = base.time_in_group_frame("on_treatment").set_index("on_treatment")
+    assert time.loc["treated", "years"] == pytest.approx(0.5 + 0.75 + 0.875)

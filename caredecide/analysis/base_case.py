@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -59,6 +60,23 @@ class BaseCaseResult:
     def trace_frame(self) -> pd.DataFrame:
         """The cohort trace of the optimal policy."""
         return self.outcome.trace_frame()
+
+    def grouped_trace_frame(self, by: str | Sequence[str]) -> pd.DataFrame:
+        """The cohort trace added up by declared state, attribute or tunnel step.
+
+        ``by`` names one or more of :func:`caredecide.grouping.grouping_names` (``"state"``
+        for any model; attribute and tunnel names for a model that declares them).
+        Columns: ``cycle``, ``age``, the ``by`` columns, ``proportion``.
+        """
+        from caredecide.grouping import grouped_trace
+
+        return grouped_trace(self.outcome.trace[0], self.outcome.ages, self.compiled, by)
+
+    def time_in_group_frame(self, by: str | Sequence[str]) -> pd.DataFrame:
+        """Expected cycles and years (undiscounted) in each group under the optimal policy."""
+        from caredecide.grouping import grouped_time
+
+        return grouped_time(self.outcome.trace[0], self.compiled, by)
 
     def to_dict(self) -> dict[str, Any]:
         """Totals, the policy in words, the objective and the solver's report (JSON-ready)."""
