@@ -111,11 +111,11 @@ def run_what_would_change(
     for line in lines:
         stdout.print(plain(line))
     if out is not None:
-        with user_errors(), writing_to(out):
-            result.flips.to_csv(out / "flips.csv", index=False)
-            result.recommendations.to_csv(out / "recommendations.csv", index=False)
-            result.scenarios.to_csv(out / "scenario_changes.csv", index=False)
-            (out / "what_would_change.txt").write_text("\n".join(lines) + "\n", encoding="utf-8")
+        with user_errors(), writing_to(out) as folder:
+            result.flips.to_csv(folder / "flips.csv", index=False)
+            result.recommendations.to_csv(folder / "recommendations.csv", index=False)
+            result.scenarios.to_csv(folder / "scenario_changes.csv", index=False)
+            (folder / "what_would_change.txt").write_text("\n".join(lines) + "\n", encoding="utf-8")
         if not quiet:
             stderr.print(f"Wrote flips.csv, recommendations.csv and what_would_change.txt in {out}")
 

@@ -12,7 +12,15 @@ import typer
 from rich.console import Console
 from rich.table import Table
 
-from caredecide.cli.console import plain, print_caution, save_chart, stderr, stdout, user_errors
+from caredecide.cli.console import (
+    plain,
+    print_caution,
+    save_chart,
+    stderr,
+    stdout,
+    user_errors,
+    writing_to,
+)
 from caredecide.cli.model_warnings import SetOption, StrictOption, load_and_warn
 
 TABLE_FILE = "strategies.csv"
@@ -268,7 +276,8 @@ def compare_command(
                 for note in item.notes:
                     stderr.print(f"note ({plain(item.strategy.name)}): {plain(note)}")
         if out is not None:
-            written = write_outputs(out, result, currency)
+            with writing_to(out) as folder:  # all files, or none
+                written = write_outputs(folder, result, currency)
             if not quiet:
                 stderr.print(f"Wrote {len(written)} files to {out}")
 

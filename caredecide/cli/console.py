@@ -46,11 +46,16 @@ def prepare_output_folder(out: Path) -> None:
 
 
 @contextmanager
-def writing_to(out: Path) -> Iterator[None]:
-    """Prepare ``out``; turn any failure to write inside the block into an OutputError."""
+def writing_to(out: Path) -> Iterator[Path]:
+    """A staging folder beside ``out`` for one output set (:mod:`caredecide.outputs`):
+    the files move into ``out`` only when the whole block succeeded, and the staging
+    folder is removed on every exit path. Any failure to write becomes an OutputError."""
+    from caredecide.outputs import staged_folder
+
     prepare_output_folder(out)
     try:
-        yield
+        with staged_folder(out) as folder:
+            yield folder
     except OSError as error:
         raise _unwritable(out, error) from None
 
@@ -88,6 +93,13 @@ def user_errors() -> Iterator[None]:
     except PermissionError as error:
         stderr.print(
             f"[bold red]error:[/] {plain(error.filename)} cannot be read: permission denied"
+        )
+        raise typer.Exit(code=2) from None
+    except OSError as error:  # a disk full or failing while outputs are written
+        place = plain(error.filename) if error.filename else "the output files"
+        stderr.print(
+            f"[bold red]error:[/] {place}: {plain(error.strerror or error)}; nothing was "
+            "written (expected a folder that can be written)"
         )
         raise typer.Exit(code=2) from None
 

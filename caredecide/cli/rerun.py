@@ -45,7 +45,8 @@ def rerun_command(
             outcome = rerun(record, model=model, out_dir=out, progress=step)
     for difference in outcome.version_differences:
         stderr.print(f"[yellow]note:[/] {difference}")
-    stdout.print(f"Re-run tables: {outcome.output_dir}")
+    if outcome.output_dir is not None:
+        stdout.print(f"Re-run tables: {outcome.output_dir}")
     if outcome.reproduced:
         stdout.print(
             "Reproduced: the model file, its input files and every output match the record."

@@ -408,7 +408,7 @@ def run_sensitivity(
             if transition_cells:
                 written = save_cell_matrices(cells, out)
                 if not quiet:
-                    stderr.print("Wrote " + ", ".join(str(p) for p in written))
+                    stderr.print("Wrote " + ", ".join(str(out / p.name) for p in written))
 
 
 def _check_pair(model, pair: tuple[str, str], file: str) -> None:
@@ -433,25 +433,25 @@ def _write_outputs(
     from caredecide.decision_charts import make_decision_tornado_chart, make_region_map_chart
 
     written = []
-    with writing_to(out):
+    with writing_to(out) as folder:
         for name, frame in results.items():
-            path = out / f"{name}.csv"
+            path = folder / f"{name}.csv"
             frame.to_csv(path, index=False)
             written.append(path)
         tornado = make_tornado_chart(results["oneway"], unit=f"({unit})")
-        written += save_chart(tornado, out, "tornado")
+        written += save_chart(tornado, folder, "tornado")
         decision = make_decision_tornado_chart(results["decision_tornado"], unit=unit)
-        written += save_chart(decision, out, "decision_tornado")
+        written += save_chart(decision, folder, "decision_tornado")
         if region_meta is not None:
             name, base, labels = region_meta
             chart = make_region_map_chart(
                 results["region_map"], x_title=name, action_labels=labels, base=base
             )
-            written += save_chart(chart, out, "region_map")
+            written += save_chart(chart, folder, "region_map")
         if "twoway" in results:
-            written += save_chart(make_two_way_chart(results["twoway"]), out, "twoway")
+            written += save_chart(make_two_way_chart(results["twoway"]), folder, "twoway")
     if not quiet:
-        stderr.print("Wrote " + ", ".join(str(p) for p in written))
+        stderr.print("Wrote " + ", ".join(str(out / p.name) for p in written))
 
 
 def register(app: typer.Typer) -> None:

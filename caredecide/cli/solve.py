@@ -176,13 +176,13 @@ def solve_command(
                 "reported net monetary benefit, not the policy"
             )
         if out is not None:
-            with writing_to(out):
+            with writing_to(out) as folder:
                 # Models with attributes or tunnels: where each generated state comes from.
                 policy = with_group_columns(_policy_frame(result), compiled)
-                policy.to_csv(out / "policy.csv", index=False)
+                policy.to_csv(folder / "policy.csv", index=False)
                 trace = with_group_columns(outcome.trace_frame(), compiled)
-                trace.to_csv(out / "trace.csv", index=False)
-                (out / "summary.json").write_text(
+                trace.to_csv(folder / "trace.csv", index=False)
+                (folder / "summary.json").write_text(
                     json.dumps(summary, indent=2) + "\n", encoding="utf-8"
                 )
             if not quiet:

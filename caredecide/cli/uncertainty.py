@@ -267,8 +267,10 @@ def run_uncertainty(
             "[bold yellow]warning:[/] the solver reported a problem: " + "; ".join(result.messages)
         )
     if out is not None:
-        with user_errors(), writing_to(out):
-            _write_outputs(out, result, tables, treat, quiet, model)
+        with user_errors(), writing_to(out) as folder:
+            _write_outputs(folder, result, tables, treat, quiet, model)
+        if not quiet:
+            stderr.print(f"Wrote the results to {plain(out)}")
 
 
 def _means_table(frame: pd.DataFrame) -> Table:
@@ -404,8 +406,7 @@ def _write_outputs(
         charts["evppi"] = make_evppi_chart(tables["evppi"], unit=unit)
     for stem, chart in charts.items():
         written += save_chart(chart, out, stem)
-    if not quiet:
-        stderr.print(f"Wrote {len(written)} files to {out}")
+    del quiet  # the caller says where the files went
 
 
 def register(app: typer.Typer) -> None:

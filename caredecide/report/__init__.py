@@ -20,6 +20,7 @@ from collections.abc import Callable
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 
+from caredecide.outputs import staged_folder
 from caredecide.report.analyses import ReportData, result_tables, run_analyses
 
 WORKBOOK_NAME = "results.xlsx"
@@ -159,12 +160,16 @@ def build_report(
         seed=seed,
         versions=package_versions(),
         date=utc_now(),
-        outputs=write_outputs(data, tables_dir),
+        outputs={},
         output_dir=_relative(tables_dir, record_path.parent),
         input_files=_hash_inputs(data.model, model_path),
     )
-    write_report(data, {**asdict(record), "command_line": command_line}, out)
-    write_record(record, record_path)
+    # Report, tables and record are one output set: staged beside the report and moved
+    # into place only when all three were written (caredecide.outputs).
+    with staged_folder(out.parent) as staging:
+        record.outputs = write_outputs(data, staging / tables_dir.name)
+        write_report(data, {**asdict(record), "command_line": command_line}, staging / out.name)
+        write_record(record, staging / record_path.name)
     return record
 
 
@@ -343,7 +348,12 @@ def rerun(
     )
     outcome.inputs_changed = bool(changed_inputs)
     outcome.differences += changed_inputs
-    target = Path(out_dir) if out_dir is not None else Path(tempfile.mkdtemp(prefix="rerun-"))
-    outcome.output_dir = target
-    outcome.differences += compare_hashes(record.outputs, write_outputs(data, target))
+    if out_dir is None:  # compared, then removed: no temporary folder is left behind
+        with tempfile.TemporaryDirectory(prefix="rerun-") as scratch:
+            written = write_outputs(data, Path(scratch))
+    else:
+        outcome.output_dir = Path(out_dir)
+        with staged_folder(outcome.output_dir) as staging:
+            written = write_outputs(data, staging)
+    outcome.differences += compare_hashes(record.outputs, written)
     return outcome
