@@ -51,11 +51,13 @@ def test_report_renders_offline_with_every_section(report_file, page, artifacts)
         heading = page.locator(f"section#{sid} > h2")
         assert heading.inner_text() == title
     assert page.locator("section#policy figure.chart svg").count() == 2
-    # The tornado diagram, then one transition sensitivity matrix per action.
+    # The decision tornado and the value-level tornado, then one transition sensitivity
+    # matrix per action.
     n_actions = len(load_model(BASE).actions)
-    assert page.locator("section#sensitivity figure.chart svg").count() == 1 + n_actions
-    # The treatment's share of draws by state and age band, and the acceptability curves.
-    assert page.locator("section#uncertainty figure.chart svg").count() == 2
+    assert page.locator("section#sensitivity figure.chart svg").count() == 2 + n_actions
+    # The plane of the draws, the treatment's share of draws by state and age band, and the
+    # acceptability curves.
+    assert page.locator("section#uncertainty figure.chart svg").count() == 3
     assert (
         page.locator("section#uncertainty .note")
         .first.inner_text()
