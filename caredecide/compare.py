@@ -93,6 +93,8 @@ class ComparisonResult:
         no action carries a QALY change (the effect then counts life-years).
     reference : str or None
         The strategy the ``*_vs_reference`` columns are taken against.
+    action_labels : tuple of str
+        Every action's label in model order (for colours that never move).
     """
 
     table: pd.DataFrame
@@ -110,6 +112,7 @@ class ComparisonResult:
     regions: pd.DataFrame | None = None
     effect_label: str = "QALYs"
     reference: str | None = None
+    action_labels: tuple[str, ...] = ()
 
     def to_frame(self) -> pd.DataFrame:
         """The incremental table: one row per strategy."""
@@ -374,6 +377,12 @@ def _compare_loaded(
         regions=regions,
         effect_label=effect_label(compiled),
         reference=reference,
+        action_labels=tuple(
+            label or a
+            for label, a in zip(
+                compiled.action_labels or compiled.action_ids, compiled.action_ids, strict=True
+            )
+        ),
     )
 
 

@@ -164,6 +164,16 @@ def write_outputs(out: Path, result, currency: str = "") -> list[Path]:
     written += save_chart(make_ce_plane_chart(result.table, currency=unit), out, "ce_plane")
     if result.frontier is not None:
         written += save_chart(make_frontier_chart(result.frontier, currency=unit), out, "frontier")
+        from caredecide.decision_charts import make_region_map_chart
+
+        chart = make_region_map_chart(
+            result.regions,
+            x_title=f"Willingness to pay per QALY {unit}".strip(),
+            action_labels=list(result.action_labels),
+            base=result.willingness_to_pay,
+            title="Switch points per state: best action by age as the willingness to pay rises",
+        )
+        written += save_chart(chart, out, "switch_points_by_state")
     return written
 
 

@@ -392,6 +392,8 @@ def _write_outputs(
     record = {"caution": caution_short(model), **result.summary()}
     summary.write_text(json.dumps(record, indent=2, default=float) + "\n")
     written.append(summary)
+    from caredecide.decision_charts import make_draws_plane_chart
+
     unit = f"({result.objective.unit})"
     charts = {
         "acceptability_by_state": make_policy_acceptability_chart(
@@ -401,6 +403,7 @@ def _write_outputs(
             tables["acceptability_curves"], tables["acceptability_frontier"]
         ),
         "convergence": make_psa_convergence_chart(tables["convergence"]),
+        "ce_plane_draws": make_draws_plane_chart(result.plane_frame()),
     }
     if len(tables["evppi"]):
         charts["evppi"] = make_evppi_chart(tables["evppi"], unit=unit)

@@ -77,7 +77,7 @@ def test_out_writes_table_frontier_traces_and_charts(tmp_path, library):
     for index, name in enumerate(names):
         trace = pd.read_csv(tmp_path / TRACES_FOLDER / trace_file_name(index, name))
         assert list(trace.columns) == ["cycle", "age", "state", "proportion"]
-    for stem in ("ce_plane", "frontier"):
+    for stem in ("ce_plane", "frontier", "switch_points_by_state"):
         assert (tmp_path / f"{stem}.svg").read_text(encoding="utf-8").lstrip().startswith("<svg")
         assert (tmp_path / f"{stem}.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert "Where each state's recommendation changes" in run.stdout

@@ -31,6 +31,7 @@ def test_population_and_means_are_printed_and_written(tmp_path):
     # Demo outcome discount 3.5%: 1000 (1 + 1/1.035 + 1/1.035^2) persons (see
     # tests/test_psa_outputs.py for the hand arithmetic).
     assert population["persons"].iloc[0] == pytest.approx(discounted_population(1000, 3, 0.035))
+    assert (out / "ce_plane_draws.svg").read_text().lstrip().startswith("<svg")
     draws = pd.read_csv(out / "draws.csv")
     means = pd.read_csv(out / "strategy_means.csv")
     for name in means["strategy"].iloc[:-1]:
