@@ -124,6 +124,7 @@ def register(app: typer.Typer) -> None:
             estimate_panel,
             load_records,
         )
+        from caredecide.estimation.records import require_deaths
         from caredecide.estimation.to_model import (
             check_prefix,
             estimates_to_parameters,
@@ -144,6 +145,7 @@ def register(app: typer.Typer) -> None:
         with user_errors():
             check_prefix(prefix)  # before the fit, which can take a while
             records = load_records(visits, patients, states=state_list, death_state=death_state)
+            require_deaths(records, patients_given=patients is not None)
             if method is Method.counts:
                 results = estimate_counts(records, cycle_years, prior=prior, tolerance=tolerance)
                 frame = pd.concat([r.table() for r in results], ignore_index=True)

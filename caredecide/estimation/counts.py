@@ -6,10 +6,12 @@ uncertainty about the row is a Dirichlet distribution with parameters ``n_ij + p
 (Briggs, Ades & Price 2003, Med Decis Making 23(4):341-350: mean ``a_j / A``, variance
 ``a_j (A - a_j) / (A^2 (A + 1))`` with ``A = sum_j a_j``).
 
-Only intervals one cycle long (within ``tolerance`` x cycle) are counted; a death at
-an exact time counts as a transition to death when it falls within one cycle of the
-last visit. Other intervals (irregular gaps, censored ends) are left out and counted in
-``n_skipped`` - use the panel estimator (:mod:`caredecide.estimation.panel`) for them.
+Transitions are counted over windows one cycle long (:func:`one_cycle_windows`): from a
+visit to a visit one cycle later (within ``tolerance`` x cycle), or to a death within the
+cycle, for deaths and survivors alike; deaths carry the stated correction for survivors
+whose state one cycle on was not seen. Windows without a known end are counted in
+``n_skipped`` - the panel estimator (:mod:`caredecide.estimation.panel`) uses every
+interval.
 """
 
 from __future__ import annotations
@@ -105,37 +107,110 @@ class CountEstimate:
         )
 
 
-def transition_counts(
+@dataclass(frozen=True)
+class CycleWindows:
+    """One-cycle windows cut from the records: where a patient was at a visit and where
+    one cycle later (all arrays (W,)).
+
+    ``weight`` is 1 for a window ending at a visit one cycle later and ``observable``
+    for a death within the cycle (see :func:`one_cycle_windows`).
+    """
+
+    start_state: np.ndarray
+    end_state: np.ndarray
+    weight: np.ndarray
+    treated: np.ndarray
+    patient: np.ndarray
+    n_skipped: int
+    observable: float
+
+
+def one_cycle_windows(
     records: CohortRecords, cycle_years: float = 1.0, *, tolerance: float = 0.1
-) -> tuple[np.ndarray, np.ndarray]:
-    """Which intervals are one cycle long, and the state pair of each.
+) -> CycleWindows:
+    """Non-overlapping one-cycle windows per patient, deaths and survivors alike.
 
-    Parameters
-    ----------
-    records : CohortRecords
-    cycle_years : float
-        Cycle length in years (> 0).
-    tolerance : float
-        Accepted deviation of an interval from one cycle, as a fraction of the cycle.
+    A window starts at a visit (state ``i``, time ``t``). It ends in state ``j`` when a
+    later visit falls within ``t + cycle +/- tolerance x cycle``, or in death when the
+    patient died by ``t + cycle``; the next window starts at that visit (or at the first
+    visit after ``t + cycle`` when none fell in the band). A window whose patient was
+    alive past the band but never seen in it has no known end state, and one censored
+    before its end is left out: both are counted in ``n_skipped``.
 
-    Returns
-    -------
-    usable : (N,) bool
-        Intervals counted: observed ends ``|years - cycle| <= tolerance x cycle``, exact
-        deaths within ``(1 + tolerance)`` cycles of the last visit.
-    pair_index : (N,) int
-        ``start_state * S + end_state`` (meaningful where ``usable``).
+    Deaths are always seen (their time is exact), a survivor's state only when a visit
+    happens to fall in the band: counting both alike would overstate death whenever
+    visits are irregular. The stated correction: each death is weighted by ``observable``,
+    the share of the windows known to survive the band that had a visit in it (visits
+    scheduled without regard to the patient's health; common practice for
+    missing-at-random outcomes: inverse probability weighting, from memory). With visits
+    exactly one cycle apart ``observable`` is 1 and every weight is 1.
     """
     if not cycle_years > 0:
         raise ModelError(f"cycle_years is {cycle_years}; expected a number of years > 0")
     if not 0 <= tolerance < 1:
         raise ModelError(f"tolerance is {tolerance}; expected a fraction in [0, 1)")
     slack = tolerance * cycle_years
-    one_cycle = np.abs(records.years - cycle_years) <= slack
-    within = records.years <= cycle_years + slack
-    usable = ((records.end_kind == OBSERVED) & one_cycle) | ((records.end_kind == DEATH) & within)
-    usable &= records.end_kind != CENSORED
-    return usable, records.start_state * records.n_states + records.end_state
+    death = records.death_index
+    order = np.lexsort((np.arange(records.n_intervals), records.patient))
+    patient = records.patient[order]
+    starts = np.flatnonzero(np.r_[True, patient[1:] != patient[:-1]])
+    ends = np.r_[starts[1:], patient.size]
+    rows: list[tuple[int, int, bool, bool, int]] = []  # (from, to, is_death, treated, patient)
+    skipped, seen, unseen = 0, 0, 0
+    for first, last in zip(starts, ends, strict=True):
+        index = order[first:last]
+        years = records.years[index]
+        visit_time = np.r_[0.0, np.cumsum(years)]  # start of each interval, then its end
+        kind = records.end_kind[index]
+        final_time, final_kind = visit_time[-1], kind[-1]
+        # Visits: the start of every interval, and the end of the last when observed.
+        times = visit_time[:-1]
+        states = records.start_state[index]
+        treated = records.treated[index]
+        if final_kind == OBSERVED:
+            times = np.r_[times, final_time]
+            states = np.r_[states, records.end_state[index][-1]]
+            treated = np.r_[treated, treated[-1]]
+        k = 0
+        while k < times.size:
+            followed = k + 1 < times.size or (final_kind != OBSERVED and final_time > times[k])
+            if not followed and final_kind != DEATH:
+                break  # the last visit: nothing after it, not a window
+            goal = times[k] + cycle_years
+            band = np.flatnonzero(np.abs(times - goal) <= slack)
+            band = band[band > k]
+            died_by_goal = final_kind == DEATH and final_time <= goal
+            if band.size and not (died_by_goal and final_time < times[band[0]]):
+                j = band[0]
+                rows.append((states[k], states[j], False, treated[k], patient[first]))
+                seen += 1
+                k = j
+                continue
+            if died_by_goal:
+                rows.append((states[k], death, True, treated[k], patient[first]))
+                break
+            alive_past_band = times[-1] > goal + slack or (
+                final_kind != CENSORED and final_time > goal + slack
+            )
+            if alive_past_band:
+                unseen += 1
+            skipped += 1
+            later = np.flatnonzero(times >= goal)
+            if not later.size:
+                break
+            k = later[0]
+    observable = seen / (seen + unseen) if seen + unseen else 1.0
+    table = np.array(rows, dtype=float).reshape(-1, 5)
+    is_death = table[:, 2].astype(bool)
+    return CycleWindows(
+        start_state=table[:, 0].astype(int),
+        end_state=table[:, 1].astype(int),
+        weight=np.where(is_death, observable, 1.0),
+        treated=table[:, 3].astype(bool),
+        patient=table[:, 4].astype(int),
+        n_skipped=skipped,
+        observable=float(observable),
+    )
 
 
 def estimate_counts(
@@ -168,22 +243,24 @@ def estimate_counts(
     """
     if not prior >= 0:
         raise ModelError(f"prior is {prior}; expected a pseudo-count >= 0")
-    usable, pair_index = transition_counts(records, cycle_years, tolerance=tolerance)
-    if not usable.any():
+    windows = one_cycle_windows(records, cycle_years, tolerance=tolerance)
+    if not windows.weight.size:
         raise ModelError(
-            f"none of the {records.n_intervals} observation intervals is one cycle "
-            f"({cycle_years} years +/- {tolerance:.0%}) long; expected regular visits "
-            "(use the panel method for irregular visits)",
+            f"none of the {records.n_intervals} observation intervals gives a window of one "
+            f"cycle ({cycle_years} years +/- {tolerance:.0%}); expected visits about one "
+            "cycle apart (use the panel method for irregular visits)",
             file=records.source,
         )
     n_states = records.n_states
+    pair_index = windows.start_state * n_states + windows.end_state
     estimates = []
     for group, flag in TREATMENT_GROUPS.items():  # two groups, not a loop over states
-        in_group = records.treated == flag
-        chosen = usable & in_group
+        chosen = windows.treated == flag
         if not chosen.any():
             continue
-        counts = np.bincount(pair_index[chosen], minlength=n_states * n_states)
+        counts = np.bincount(
+            pair_index[chosen], weights=windows.weight[chosen], minlength=n_states * n_states
+        )
         estimates.append(
             CountEstimate(
                 state_ids=records.state_ids,
@@ -191,8 +268,8 @@ def estimate_counts(
                 counts=counts.reshape(n_states, n_states).astype(float),
                 prior=float(prior),
                 cycle_years=float(cycle_years),
-                n_patients=int(np.unique(records.patient[chosen]).size),
-                n_skipped=int((in_group & ~usable).sum()),
+                n_patients=int(np.unique(windows.patient[chosen]).size),
+                n_skipped=windows.n_skipped if group == "untreated" else 0,
                 source=records.source,
             )
         )

@@ -467,3 +467,25 @@ def _follow_up_intervals(
         "treated": last_treated[index],
         "end_kind": np.where(died[index], DEATH, CENSORED),
     }
+
+
+def require_deaths(records: CohortRecords, *, patients_given: bool) -> None:
+    """Refuse records with no death at all when no patients file was given.
+
+    Without deaths every estimated death rate is 0: immortal patients. Deaths come from
+    a patients file (``death_years``) or from visit rows in the death state.
+
+    Raises
+    ------
+    ModelError
+        Naming the visits file and what to add.
+    """
+    if patients_given or bool((records.end_kind == DEATH).any()):
+        return
+    raise ModelError(
+        f"the records hold no deaths and no patients file was given, so every death rate "
+        f"would be 0 (immortal patients); expected --patients PATIENTS.csv (columns "
+        f"patient_id, death_years, censor_years) or visit rows in the death state "
+        f"{records.state_ids[-1]!r}",
+        file=records.source,
+    )
