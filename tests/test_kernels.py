@@ -193,3 +193,28 @@ def test_compiled_pade_exponential_matches_numpy_path_and_scipy(seed, S, scale):
     np.testing.assert_allclose(fast, np.clip([expm(g) for g in G], 0, 1), rtol=0, atol=1e-11)
     assert (fast >= 0).all() and np.allclose(fast.sum(-1), 1.0, atol=1e-12)
     assert (fast[unreachable] == 0).all()
+
+
+@pytest.mark.parametrize("method", ["policy_iteration", "value_iteration"])
+def test_numpy_path_in_cache_sized_blocks_matches_kernels(method):
+    # More draws than one block: the numpy path runs block by block (common practice:
+    # blocking changes the layout, never the answer beyond the stopping tolerance).
+    from caredecide.solvers.stationary import draw_block
+
+    rng = np.random.default_rng(3)
+    S, A = 12, 2
+    D = draw_block(S, A) + 7
+    P = rng.dirichlet(np.ones(S), size=(D, 1, A, S))
+    compiled = make_compiled(
+        P,
+        state_qaly=rng.uniform(0, 1, (D, 1, S)),
+        decision_qaly=rng.uniform(-0.2, 0, (D, 1, S, A)),
+        discount_outcomes=0.05,
+        discount_costs=0.05,
+    )
+    fast = solve(compiled, Objective("qalys"), method=method, tolerance=1e-10)
+    plain = _numpy_path(solve, compiled, Objective("qalys"), method=method, tolerance=1e-10)
+    decided = ~fast.indifferent & ~plain.indifferent & fast.decision_states
+    np.testing.assert_array_equal(fast.policy[decided], plain.policy[decided])
+    np.testing.assert_allclose(fast.value, plain.value, rtol=1e-8)
+    assert fast.success and plain.success

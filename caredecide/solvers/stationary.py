@@ -243,6 +243,38 @@ def policy_iteration(
     return v, max_iterations, residual, False
 
 
+BLOCK_BYTES = 1024**2
+"""Transitions per block of draws on the numpy path: about half a core's L2 cache."""
+
+
+def draw_block(n_states: int, n_actions: int) -> int:
+    """Draws per block whose transitions (A S S float64) fill about :data:`BLOCK_BYTES`."""
+    return max(1, BLOCK_BYTES // (n_actions * n_states * n_states * 8))
+
+
+def _in_blocks(compiled, objective, problem, history, run):
+    """Run an iterative method on blocks of draws sized to the cache (numpy path).
+
+    Each block iterates until its own draws meet the stopping rule, and its arrays stay
+    in cache across sweeps. With a sweep history the draws run as one batch (the history
+    is per sweep over all draws).
+    """
+    D, A, S = problem.shape
+    block = draw_block(S, A)
+    if history is not None or D <= block:
+        return run(problem)
+    parts = [
+        run(StationaryProblem(compiled.take_draws(slice(i, i + block)), objective))
+        for i in range(0, D, block)
+    ]
+    return (
+        np.concatenate([p[0] for p in parts]),
+        max(p[1] for p in parts),
+        np.concatenate([p[2] for p in parts]),
+        all(p[3] for p in parts),
+    )
+
+
 def _per_draw(
     problem: StationaryProblem, method: str, tolerance: float, relative: bool, max_iterations: int
 ) -> tuple[np.ndarray, int, np.ndarray, bool]:
@@ -336,28 +368,28 @@ def solve_stationary(
             else (residual / (1.0 - problem.gamma))
         )
     elif method == "value_iteration":
-        v, iterations, residual, converged = value_iteration(
-            problem,
-            tolerance=tolerance,
-            relative=relative,
-            max_iterations=max_iterations,
-            history=history,
-        )
+        v, iterations, residual, converged = _in_blocks(
+            compiled, objective, problem, history,
+            lambda part: value_iteration(
+                part, tolerance=tolerance, relative=relative, max_iterations=max_iterations,
+                history=history,
+            ),
+        )  # fmt: skip
         bound = problem.bound(residual)
     elif method == "modified_policy_iteration":
-        v, iterations, residual, converged = modified_policy_iteration(
-            problem,
-            tolerance=tolerance,
-            relative=relative,
-            max_iterations=max_iterations,
-            evaluation_sweeps=evaluation_sweeps,
-            history=history,
-        )
+        v, iterations, residual, converged = _in_blocks(
+            compiled, objective, problem, history,
+            lambda part: modified_policy_iteration(
+                part, tolerance=tolerance, relative=relative, max_iterations=max_iterations,
+                evaluation_sweeps=evaluation_sweeps, history=history,
+            ),
+        )  # fmt: skip
         bound = problem.bound(residual)
     elif method == "policy_iteration":
-        v, iterations, residual, converged = policy_iteration(
-            problem, max_iterations=max_iterations, history=history
-        )
+        v, iterations, residual, converged = _in_blocks(
+            compiled, objective, problem, history,
+            lambda part: policy_iteration(part, max_iterations=max_iterations, history=history),
+        )  # fmt: skip
         bound = residual / (1.0 - problem.gamma)
     else:  # pragma: no cover - solve() checks the method
         raise SolverError(f"unknown stationary method {method!r}")
