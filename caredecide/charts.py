@@ -417,6 +417,8 @@ def make_two_way_chart(
             "action_at_start:N",
             title="Best action at the start",
             scale=alt.Scale(domain=actions, range=colours),
+            # Long action labels: below the map, whole (a legend is never cut).
+            legend=alt.Legend(orient="bottom", direction="vertical", labelLimit=0),
         ),
         tooltip=["x:O", "y:O", "action_at_start:N", "same_as_base:N"],
     )

@@ -34,7 +34,9 @@ def _require(frame: pd.DataFrame, columns: Sequence[str], chart: str) -> None:
 
 def _legend(title: str) -> alt.Legend:
     """A legend below the plot, one entry per line, labels never truncated."""
-    return alt.Legend(title=title, orient="bottom", direction="vertical", labelLimit=0)
+    return alt.Legend(
+        title=title, orient="bottom", direction="vertical", labelLimit=0, titleLimit=0
+    )
 
 
 def make_decision_tornado_chart(table: pd.DataFrame, *, unit: str = "") -> alt.LayerChart:
@@ -91,7 +93,12 @@ def make_decision_tornado_chart(table: pd.DataFrame, *, unit: str = "") -> alt.L
             "edge": table["loss_high"].to_numpy(dtype=float),
         }
     )
-    y = alt.Y("parameter:N", sort=order, title="Estimate (most value lost first)")
+    y = alt.Y(
+        "parameter:N",
+        sort=order,
+        title="Estimate (most value lost first)",
+        axis=alt.Axis(labelLimit=0),
+    )
     axis_title = f"Value lost by keeping the base-case policy {f'({unit})' if unit else ''}"
     bar = (
         alt.Chart(bars)
@@ -243,7 +250,7 @@ def make_threshold_age_chart(
                 color=alt.Color(
                     "y_value:Q",
                     scale=alt.Scale(range=list(LOW_HIGH_PALETTE)),
-                    legend=alt.Legend(title=y_title, orient="bottom", labelLimit=0),
+                    legend=alt.Legend(title=y_title, orient="bottom", labelLimit=0, titleLimit=0),
                 ),
                 detail="y_value:Q",
                 tooltip=[

@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from caredecide.compile import compile_model
 from caredecide.evaluate import evaluate_policy
@@ -125,3 +127,25 @@ def test_value_rank_keeps_the_value_level_order(demo):
     value_table = one_way(demo).table
     by_value = result.table.sort_values("value_rank")["parameter"].tolist()
     assert by_value == value_table["parameter"].tolist()
+
+
+@settings(max_examples=15, deadline=None)
+@given(
+    loss=st.floats(0.0, 0.1, allow_nan=False),
+    hr=st.floats(0.2, 0.9, allow_nan=False),
+)
+def test_loss_is_the_gap_where_the_action_flips(loss, hr):
+    # Hand model (QALYs, no discounting): treat at cycle 0 when p (1 - hr) > loss. Keeping
+    # the base action when p moves to x loses |x (1 - hr) - loss| where the best action at x
+    # differs from the base one, nothing elsewhere (common practice: the regret of a
+    # decision is the gap to the best action).
+    model = hand_model().with_parameter_values({"loss": loss, "hr": hr})
+    result = decision_tornado(model, ["p"], grid=3)
+    row = result.table.iloc[0]
+    base_treats = 0.1 * (1 - hr) > loss
+    for end, x in (("loss_low", 0.01), ("loss_high", 0.2)):
+        gap = x * (1 - hr) - loss
+        flips = (gap > 0) != base_treats and abs(gap) > 1e-12
+        expected = abs(gap) if flips else 0.0
+        assert row[end] == pytest.approx(expected, abs=1e-9)
+    assert row["loss_low"] >= 0 and row["loss_high"] >= 0

@@ -120,3 +120,16 @@ def test_estimates_are_offered_most_decisive_first(demo):
     table = decision_tornado(demo, ranked, grid=5).table
     assert ranked == list(table["parameter"])
     assert table["changes_policy"].iloc[0]
+
+
+def test_no_legend_title_or_axis_label_is_cut(demo):
+    from caredecide import charts
+    from caredecide.sensitivity import two_way
+
+    result = decision_tornado(demo, grid=3)
+    bar = decision_charts.make_decision_tornado_chart(result.table).to_dict()["layer"][0]
+    assert bar["encoding"]["color"]["legend"]["titleLimit"] == 0
+    assert bar["encoding"]["y"]["axis"]["labelLimit"] == 0
+    grid = two_way(demo, "hr_treatment", "c_drug_year", grid=2)
+    cells = charts.make_two_way_chart(grid).to_dict()["layer"][0]
+    assert cells["encoding"]["color"]["legend"]["labelLimit"] == 0

@@ -70,3 +70,23 @@ def test_what_would_change_page_in_a_real_browser(app_url, page, artifacts):
     path = folder / "what-would-change.png"
     page.screenshot(path=str(path), full_page=True)
     print(f"screenshot kept: {path}")
+
+
+def test_decision_tornado_in_a_real_browser(app_url, page, artifacts):
+    folder = artifacts / SCREENSHOTS
+    folder.mkdir(exist_ok=True)
+    page.goto(f"{app_url}/sensitivity", timeout=TIMEOUT_MS)
+    _wait_until_done(page, "Sensitivity")
+    _check_view(page)
+    heading = page.get_by_role("heading", name="Decision tornado: which estimate would change")
+    assert heading.first.is_visible()
+    charts = page.locator("[data-testid='stVegaLiteChart']")
+    charts.first.locator("canvas, svg").first.wait_for(timeout=TIMEOUT_MS)
+    geometry = charts.first.evaluate(CLIPPED)
+    assert geometry["overflowX"] <= 1 and geometry["overflowY"] <= 1, geometry
+    # The decision tornado comes before the value-level tornado.
+    value_view = page.get_by_role("heading", name="Value-level tornado (second view)").first
+    assert heading.first.bounding_box()["y"] < value_view.bounding_box()["y"]
+    path = folder / "decision-tornado.png"
+    page.screenshot(path=str(path), full_page=True)
+    print(f"screenshot kept: {path}")
