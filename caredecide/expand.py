@@ -434,9 +434,9 @@ class _Expander:
                 )
             )
             for field_name in ("qaly_weight", "cost"):
-                self._warn_unguarded(
-                    self.inline(getattr(state, field_name)), copy, f"states.{copy.id}.{field_name}"
-                )
+                value = self.inline(getattr(state, field_name))
+                self._check_reads(value, copy, f"states.{state.id}.{field_name}")
+                self._warn_unguarded(value, copy, f"states.{copy.id}.{field_name}")
 
         for action in model.actions:  # actions are the same in every state
             for field_name in ("oneoff_cost", "oneoff_qaly_loss", "cost_per_cycle"):
@@ -562,6 +562,7 @@ class _Expander:
                         if not targets:
                             value = self.inline(value)
                             flat_row[to_key] = substitute_names(value, variables[source.id])
+                            self._check_reads(value, source, f"{where}.{to_key}")
                             self._warn_unguarded(value, source, f"{where}.{to_key}")
                             continue
                         target = self.target(to_key, source, f"{where}.{to_key}", advance=advance)
@@ -576,6 +577,7 @@ class _Expander:
                             continue
                         value = self.inline(value)
                         flat_row[target.id] = substitute_names(value, variables[source.id])
+                        self._check_reads(value, source, f"{where}.{to_key}")
                         self._warn_unguarded(value, source, f"{where}.{to_key}")
                     out[action_id][source.id] = flat_row
         return out
@@ -617,6 +619,20 @@ class _Expander:
             )
             return None
         return first[0].id if first else None
+
+    def _check_reads(self, value: object, copy: StateCopy, where: str) -> None:
+        """An expression may read only the attributes and tunnels of its own state."""
+        declared = set(self.model.attributes) | set(self.model.tunnels)
+        state = self.states[copy.base]
+        for name in sorted(_names(value) & declared - {*state.attributes, *state.tunnels}):
+            kind = "attribute" if name in self.model.attributes else "tunnel"
+            message = (
+                f"{value!r} reads {kind} {name!r}, which state {state.id!r} does not "
+                f"{'vary by' if kind == 'attribute' else 'count'}; expected it in the "
+                f"state's {kind}s list, or an expression without it"
+            )
+            if not any(p.where == where and p.message == message for p in self.problems):
+                self.add(where, message)
 
     def _warn_unguarded(self, value: object, copy: StateCopy, where: str) -> None:
         """Warn when a tunnel read outside the tunnel is not told apart by its attribute."""

@@ -796,3 +796,14 @@ def test_the_base_case_result_gives_the_trace_and_time_by_group():
     assert at_3.to_dict() == pytest.approx({"": 0.125, "0": 0.125, "1": 0.25, "2+": 0.5})
     time = base.time_in_group_frame("on_treatment").set_index("on_treatment")
     assert time.loc["treated", "years"] == pytest.approx(0.5 + 0.75 + 0.875)
+
+
+def test_an_expression_reading_an_attribute_its_state_lacks_is_refused():
+    text = _tunnel().replace(
+        'id = "dead"\nabsorbing = true', 'id = "dead"\nabsorbing = true\ncost = "on_treatment * 5"'
+    )
+    message = _errors(text)
+    assert (
+        "states.dead.cost: 'on_treatment * 5' reads attribute 'on_treatment', which state "
+        "'dead' does not vary by" in message
+    )
