@@ -262,7 +262,8 @@ def write_estimates(
     model : path, optional
         A model file to merge into; the result is saved at ``out``.
     """
-    from caredecide.modelfile import load_model, save_model
+    from caredecide.modelfile import loads_model, save_model
+    from caredecide.outputs import staged_file
 
     out = Path(out)
     if model is not None:
@@ -274,7 +275,12 @@ def write_estimates(
     else:
         base = None
     if base is None:
-        out.write_text(dumps_parameters(estimated), encoding="utf-8")
+        with staged_file(out) as staging:
+            staging.write_text(dumps_parameters(estimated), encoding="utf-8")
     else:
-        save_model(merge_into_model(load_model(base), estimated), out)
+        # The file's own text is kept: comments (the synthetic-data header), key order
+        # and layout survive; only the estimated entries change.
+        text = read_limited_text(base, MAX_MODEL_BYTES, what="a model file (.toml)")
+        model = loads_model(text, file=str(base), base_dir=base.parent)
+        save_model(merge_into_model(model, estimated), out, original_text=text)
     return out

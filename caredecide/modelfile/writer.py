@@ -138,9 +138,22 @@ def dumps_model(model: Model) -> str:
     return "\n".join(out) + "\n"
 
 
-def save_model(model: Model, path: Path | str) -> None:
-    """Write ``model`` to ``path`` as TOML (UTF-8)."""
-    Path(path).write_text(dumps_model(model), encoding="utf-8")
+def save_model(model: Model, path: Path | str, *, original_text: str | None = None) -> None:
+    """Write ``model`` to ``path`` as TOML (UTF-8), whole or not at all.
+
+    With ``original_text`` (the file the model was read from) only the changed keys are
+    rewritten, keeping its comments, key order and layout
+    (:func:`caredecide.modelfile.roundtrip.updated_model_text`).
+    """
+    from caredecide.modelfile.roundtrip import updated_model_text
+    from caredecide.outputs import staged_file
+
+    if original_text is None:
+        text = dumps_model(model)
+    else:
+        text = updated_model_text(original_text, model, file=str(path))
+    with staged_file(path) as staging:
+        staging.write_text(text, encoding="utf-8")
 
 
 def _section(out: list[str], header: str, fields: Mapping[str, Any]) -> None:

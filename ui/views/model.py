@@ -15,6 +15,7 @@ from caredecide.compiled import WITHIN_CYCLE_METHODS
 from caredecide.errors import ModelError
 from caredecide.model import OBJECTIVES, PARAMETER_KINDS
 from caredecide.modelfile import dumps_model
+from caredecide.modelfile.roundtrip import updated_model_text
 from synthetic_cohort import MODELS_DIR
 from ui import drafts, working_model
 from ui.tables import locate, model_to_tables, model_with_table, with_header_comments
@@ -160,10 +161,18 @@ def _table_editor(model, name: str, frame, problems) -> None:
         except ModelError as error:  # cannot be written at all: keep it in the editor
             working_model.show_problems(error.problems)
             return
-        working_model.edit_model_text(
-            with_header_comments(working_model.working_text(), dumps_model(new_model))
-        )
+        working_model.edit_model_text(_written_back(working_model.working_text(), new_model))
         st.rerun()
+
+
+def _written_back(text: str, new_model) -> str:
+    """The working text with one table's edit: comments, order and layout kept
+    (caredecide.modelfile.roundtrip); a text the round trip cannot read (it parsed
+    moments ago, so only in odd cases) is written afresh with its header comments."""
+    try:
+        return updated_model_text(text, new_model, file=working_model.file_label())
+    except (ModelError, ValueError):
+        return with_header_comments(text, dumps_model(new_model))
 
 
 def _text_editor(problems) -> None:
