@@ -184,3 +184,11 @@ def test_the_models_own_scenarios_are_examined():
     result = what_would_change(model)
     assert result.scenario_names == ["heavier toxicity", "lighter"]
     assert list(result.scenarios["scenario"]) == ["heavier toxicity"]
+
+
+def test_age_bands_of_a_flip_are_listed_youngest_first():
+    model = load_model(MODELS_DIR / "demo_counts_table.toml")
+    result = what_would_change(model)
+    for text in result.flips["ages"]:
+        firsts = [float(band.split("-")[0]) for band in text.split(", ")]
+        assert firsts == sorted(firsts), text

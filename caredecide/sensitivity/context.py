@@ -31,7 +31,7 @@ BELOW = "below"
 CONTEXT_COLUMNS = [
     "parameter", "state", "ages", "action_below", "action_above", "base", "low", "high",
     "threshold", "direction", "distance_share", "probability_beyond", "threshold_min",
-    "threshold_max", "cells", "distribution", "label_below", "label_above",
+    "threshold_max", "cells", "distribution", "label_below", "label_above", "first_cycle",
 ]  # fmt: skip
 
 
@@ -99,7 +99,8 @@ def threshold_context(model: Any, thresholds: pd.DataFrame) -> pd.DataFrame:
         the threshold lies from the base value), ``distance_share``,
         ``probability_beyond`` (of ``threshold``: the chance at least one cell of the
         band flips), ``threshold_min, threshold_max``, ``cells`` and ``distribution``.
-        ``label_below, label_above`` are the actions' labels. Rows sorted by parameter
+        ``label_below, label_above`` are the actions' labels; ``first_cycle`` the band's
+        first decision cycle. Rows sorted by parameter
         (model order), then distance. A parameter without a
         switch keeps one row whose ``ages`` holds the status text.
     """
@@ -142,6 +143,7 @@ def threshold_context(model: Any, thresholds: pd.DataFrame) -> pd.DataFrame:
                     "threshold_max": float(values.max()),
                     "cells": len(band),
                     "distribution": text,
+                    "first_cycle": int(band["cycle"].iloc[0]),
                 }
             )
     for name in names:

@@ -279,6 +279,7 @@ def _flips(
     rows = []
     keys = ["state", "parameter", "direction"]
     for (state, name, direction), group in context.groupby(keys, sort=False):
+        group = group.sort_values("first_cycle", kind="stable")  # bands in age order
         nearest = group.loc[group["distance_share"].idxmin()]
         ends = pd.concat([group["threshold_min"], group["threshold_max"]])
         far = ends.max() if direction == ABOVE else ends.min()
