@@ -268,6 +268,25 @@ def _finite_flows(compiled, policy, trace) -> dict[str, np.ndarray]:
         for name in _QUANTITIES
         for suffix in ("", "_undiscounted")
     }
+    if kernels.available():  # the chosen rows gathered as used: no policy matrices
+        names = [f"{n}{suffix}" for suffix in ("", "_undiscounted") for n in _QUANTITIES]
+        P = np.ascontiguousarray(compiled.transition)
+        chosen = np.ascontiguousarray(policy, dtype=np.intp)
+        out = np.empty((len(names), D))
+        for t in range(T):
+            parts = [
+                cycle_parts(compiled, t, discount, life_years=True)[name]
+                for discount in (True, False)
+                for name in _QUANTITIES
+            ]
+            kernels.kernels().cycle_flows(
+                P, min(t, P.shape[1] - 1), chosen, min(t, chosen.shape[1] - 1), trace, t,
+                np.stack([np.broadcast_to(p[0], p[0].shape) for p in parts]),
+                np.stack([p[1] for p in parts]), out,
+            )  # fmt: skip
+            for k, name in enumerate(names):
+                flows[name][:, t] = out[k]
+        return flows
     for t in range(T):
         m = trace[:, t]
         P_pi = _policy_transition(transition_at(compiled, t), policy[:, t])

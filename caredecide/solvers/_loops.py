@@ -289,45 +289,21 @@ def greedy(Q, decision_states, tie_absolute, tie_relative, extra, value, policy,
 
 
 @jit
-def policy_flows(trace, policy, state_qaly, state_cost, decision_qaly, decision_cost,
-                 life_years, occ_o, occ_c, dec_o, dec_c, weights, flows):  # fmt: skip
-    # Per boundary t of each draw: m_t . (f_t q_t) + m_t . (g_t dq_t[pi_t]) for QALYs, the
-    # same for costs, m_t . (f_t ly) for life-years; f_t = w_t d^t, g_t = d^t; flows
-    # (6, D, T + 1): discounted life-years, QALYs, costs, then the undiscounted three.
-    D, T1, S = trace.shape
-    T = T1 - 1
-    Tq, Tc = state_qaly.shape[1] - 1, state_cost.shape[1] - 1
-    Tdq, Tdc = decision_qaly.shape[1] - 1, decision_cost.shape[1] - 1
-    Tpi = policy.shape[1] - 1
+def cycle_flows(P, tp, policy, ti, trace, t, at_decision, on_arrival, out):
+    # out[k, d] = sum_s m_t(s) (at_decision[k, d, s, a] + sum_s' P_t(s'|s, a)
+    # on_arrival[k, d, a, s']) with a = policy[d, ti, s]: the cycle-t reward of the cohort
+    # for K quantities, gathering the chosen rows of P (no policy matrix is built).
+    K, D, S = at_decision.shape[0], at_decision.shape[1], trace.shape[2]
+    totals = np.empty(K)
     for d in range(D):
-        for t in range(T1):
-            tq, tc = min(t, Tq), min(t, Tc)
-            ly, q, c, ly_u, q_u, c_u = 0.0, 0.0, 0.0, 0.0, 0.0, 0.0
-            for s in range(S):
-                m = trace[d, t, s]
-                ly += m * (occ_o[t] * life_years[s])
-                q += m * (occ_o[t] * state_qaly[d, tq, s])
-                c += m * (occ_c[t] * state_cost[d, tc, s])
-                ly_u += m * (weights[t] * life_years[s])
-                q_u += m * (weights[t] * state_qaly[d, tq, s])
-                c_u += m * (weights[t] * state_cost[d, tc, s])
-            if t < T:
-                tdq, tdc, ti = min(t, Tdq), min(t, Tdc), min(t, Tpi)
-                dq, dc, dq_u, dc_u = 0.0, 0.0, 0.0, 0.0
-                for s in range(S):
-                    m = trace[d, t, s]
-                    a = policy[d, ti, s]
-                    dq += m * (dec_o[t] * decision_qaly[d, tdq, s, a])
-                    dc += m * (dec_c[t] * decision_cost[d, tdc, s, a])
-                    dq_u += m * decision_qaly[d, tdq, s, a]
-                    dc_u += m * decision_cost[d, tdc, s, a]
-                q += dq
-                c += dc
-                q_u += dq_u
-                c_u += dc_u
-            flows[0, d, t] = ly
-            flows[1, d, t] = q
-            flows[2, d, t] = c
-            flows[3, d, t] = ly_u
-            flows[4, d, t] = q_u
-            flows[5, d, t] = c_u
+        totals[:] = 0.0
+        for s in range(S):
+            m = trace[d, t, s]
+            a = policy[d, ti, s]
+            for k in range(K):
+                e = 0.0
+                for s2 in range(S):
+                    e += P[d, tp, a, s, s2] * on_arrival[k, d, a, s2]
+                totals[k] += m * (at_decision[k, d, s, a] + e)
+        for k in range(K):
+            out[k, d] = totals[k]
