@@ -404,7 +404,8 @@ def make_two_way_chart(
         x=frame["x_value"].map(x_labels),
         y=frame["y_value"].map(y_labels),
         label=frame["action_at_start"].astype(str).map(short)
-        + frame["same_as_base"].map({True: "", False: "*"}),
+        + frame["same_as_base"].map({True: "", False: "*"})
+        + (frame["is_base"].map({True: " (base)", False: ""}) if "is_base" in frame else ""),
     )
     x_name, y_name = str(frame["x_parameter"].iloc[0]), str(frame["y_parameter"].iloc[0])
     # Explicit numeric orders: sorting the text labels would put "970.7" above "2143".

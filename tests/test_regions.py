@@ -133,3 +133,21 @@ def test_no_legend_title_or_axis_label_is_cut(demo):
     grid = two_way(demo, "hr_treatment", "c_drug_year", grid=2)
     cells = charts.make_two_way_chart(grid).to_dict()["layer"][0]
     assert cells["encoding"]["color"]["legend"]["labelLimit"] == 0
+
+
+def test_two_way_map_can_hold_the_base_case_as_a_cell():
+    from caredecide import charts
+    from caredecide.sensitivity import two_way
+
+    # Hand model: p base 0.1 and hr base 0.4 are not on a 5-value grid of their ranges.
+    frame = two_way(hand_model(), "p", "hr", grid=5, include_base=True)
+    assert len(frame) == 6 * 6
+    base = frame[frame["is_base"]]
+    assert len(base) == 1 and base["same_as_base"].all()
+    assert (base["x_value"].iloc[0], base["y_value"].iloc[0]) == (0.1, 0.4)
+    # treat iff p (1 - hr) > loss = 0.05 (d = 1), also on the added rows and columns.
+    expected = np.where(frame["x_value"] * (1 - frame["y_value"]) > 0.05, "treat", "wait")
+    assert (frame["action_at_start"].to_numpy() == expected).all()
+    spec = charts.make_two_way_chart(frame).to_dict()
+    rows = spec["datasets"][spec["data"]["name"]]
+    assert [r["label"] for r in rows if r["is_base"]] == ["treat (base)"]

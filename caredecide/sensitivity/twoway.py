@@ -39,6 +39,7 @@ def two_way(
     x_range: tuple[float, float] | None = None,
     y_range: tuple[float, float] | None = None,
     progress: Callable[[int, int], None] | None = None,
+    include_base: bool = False,
 ) -> pd.DataFrame:
     """The optimal decision at the start over a grid of two parameters.
 
@@ -55,6 +56,10 @@ def two_way(
         Override the plausible ranges.
     progress : callable(done, total), optional
         Called after each chunk of grid points is solved.
+    include_base : bool
+        Add each parameter's base value to its axis (when inside the range and not on the
+        grid already), so that the base case is a cell of the map: there the policy is the
+        base-case policy, and the cells that differ from it mean something.
 
     Returns
     -------
@@ -62,8 +67,9 @@ def two_way(
         (grid * grid rows): ``x_parameter, x_value, y_parameter, y_value,
         action_at_start`` (the label of the action at cycle 0 in the start state; with
         several start states ``"state: action; ..."``), ``start_value`` (objective at the model
-        start), ``structure`` (plain-language policy summary) and ``same_as_base``
-        (the whole policy equals the base-case policy).
+        start), ``structure`` (plain-language policy summary), ``same_as_base``
+        (the whole policy equals the base-case policy) and ``is_base`` (both parameters
+        at their base values).
     """
     if x_parameter == y_parameter:
         raise ModelError(
@@ -82,7 +88,11 @@ def two_way(
         low, high = (
             given if given is not None else (ranges.at[name, "low"], ranges.at[name, "high"])
         )
-        axes.append(np.linspace(float(low), float(high), grid))
+        values = np.linspace(float(low), float(high), grid)
+        base_value = float(ranges.at[name, "base"])
+        if include_base and values[0] <= base_value <= values[-1]:
+            values = np.union1d(values, [base_value])
+        axes.append(values)
     X, Y = np.meshgrid(axes[0], axes[1], indexing="xy")  # (grid, grid): rows y, columns x
     base_compiled, base = solve_parameter_sets(model, parameter_sets(model, {}), objective)
     start = np.asarray(base_compiled.start_distribution)
@@ -132,5 +142,7 @@ def two_way(
             "start_value": np.concatenate([c["value"] for c in chunks]),
             "structure": [text for c in chunks for text in c["structure"]],
             "same_as_base": np.concatenate([c["same"] for c in chunks]),
+            "is_base": (X.ravel() == ranges.at[x_parameter, "base"])
+            & (Y.ravel() == ranges.at[y_parameter, "base"]),
         }
     )

@@ -47,7 +47,7 @@ def run_setting(text: str, file: str, base_dir: str, setting: str, high: float):
 @st.cache_data(max_entries=16, show_spinner=False)
 def run_two_way(text: str, file: str, base_dir: str, x: str, y: str, grid: int):
     model = loads_model(text, file=file, base_dir=base_dir)
-    return two_way(model, x, y, grid=grid)
+    return two_way(model, x, y, grid=grid, include_base=True)
 
 
 model = working_model.valid_model_or_stop()
