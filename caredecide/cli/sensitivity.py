@@ -135,7 +135,8 @@ def _two_way_map(frame: pd.DataFrame) -> tuple[Table, list[str]]:
     cells = frame.set_index(["y_value", "x_value"])
     out = Table(
         title=f"Best action at the start over {plain(x_name)} (columns) and {plain(y_name)} "
-        "(rows); * the policy differs from the base case somewhere",
+        "(rows, base values included); * the policy differs from the base case somewhere; "
+        "B the base case",
         show_lines=False,
     )
     out.add_column(f"{plain(y_name)} \\ {plain(x_name)}", justify="right", no_wrap=True)
@@ -145,7 +146,8 @@ def _two_way_map(frame: pd.DataFrame) -> tuple[Table, list[str]]:
         row = [_number(y)]
         for x in xs:
             cell = cells.loc[(y, x)]
-            row.append(letter[cell["action_at_start"]] + ("" if cell["same_as_base"] else "*"))
+            mark = "" if cell["same_as_base"] else "*"
+            row.append(letter[cell["action_at_start"]] + mark + (" B" if cell["is_base"] else ""))
         out.add_row(*row)
     legend = [f"  {letter[a]} = {plain(a)}" for a in actions]
     return out, legend
@@ -341,8 +343,9 @@ def run_sensitivity(
                     assert two_way_pair is not None  # the step is listed only with a pair
                     x, y = two_way_pair
                     results["twoway"] = two_way(
-                        loaded, x, y, grid=grid, objective=objective, progress=report(step)
-                    )
+                        loaded, x, y, grid=grid, objective=objective, progress=report(step),
+                        include_base=True,
+                    )  # fmt: skip
                 finished = next(t for t in bar.tasks if t.id == tasks[step])
                 total = finished.total or 1
                 bar.update(tasks[step], completed=total, total=total)

@@ -125,18 +125,23 @@ def test_sensitivity_prints_full_names_the_policy_changes_and_a_text_map(model_f
     # base: p (1 - hr) = 0.06 > loss = 0.05 -> treat; p low 0.01 -> 0.006 < 0.05 -> wait
     assert "p: low: sick treat->wait at ages 0" in out
     assert "hr \\ p" in out  # the map's corner cell names both axes
-    # grid 3: p in {0.01, 0.105, 0.2}, hr in {0.2, 0.55, 0.9}; treat iff p (1 - hr) > 0.05.
-    # Rows from hr = 0.9 down: wait everywhere; at 0.55 treat from p = 0.2 (0.09);
-    # at 0.2 treat from p = 0.105 (0.084). Letters follow first appearance in the CSV order.
+    # grid 3 plus the base values: p in {0.01, 0.1, 0.105, 0.2}, hr in {0.2, 0.4, 0.55, 0.9};
+    # treat iff p (1 - hr) > 0.05. First three columns (p = 0.01, 0.1, 0.105): at hr = 0.9
+    # and 0.55 wait (at most 0.0473); at 0.2 treat from p = 0.1 (0.08); at the base row
+    # hr = 0.4 treat from p = 0.1 (0.06), the base cell marked B. Letters follow first
+    # appearance in the CSV order.
     cells = [line.split("│") for line in out.splitlines() if line.startswith("│")]
-    map_rows = {c[1].strip(): c[2:5] for c in cells if c[1].strip() in ("0.9", "0.55", "0.2")}
-    letters = {k: [c.strip().rstrip("*") for c in v] for k, v in map_rows.items()}
+    rows = ("0.9", "0.55", "0.4", "0.2")
+    map_rows = {c[1].strip(): c[2:5] for c in cells if c[1].strip() in rows}
+    letters = {k: [c.strip().split()[0].rstrip("*") for c in v] for k, v in map_rows.items()}
+    assert map_rows["0.4"][1].strip().endswith("B")
     legend = dict(line.strip().split(" = ") for line in out.splitlines()
                   if line.startswith("  ") and " = " in line)  # fmt: skip
     actions = {k: [legend[c] for c in row] for k, row in letters.items()}
     assert actions == {
         "0.9": ["wait", "wait", "wait"],
-        "0.55": ["wait", "wait", "treat"],
+        "0.55": ["wait", "wait", "wait"],
+        "0.4": ["wait", "treat", "treat"],
         "0.2": ["wait", "treat", "treat"],
     }
 
