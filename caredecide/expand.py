@@ -20,7 +20,10 @@ Rules of the expansion:
 * A target ``stage_2`` in a row keeps the source copy's attribute values; a target
   ``stage_2__treated`` sets that value. A tunnel step counts whole cycles in the tunnel:
   moving from a copy at step ``k`` to a copy that carries the same tunnel gives step
-  ``min(k + 1, N)``; entering from outside the tunnel gives step 0.
+  ``min(k + 1, N)``; entering from outside the tunnel gives step 0. A decision-time move
+  (``[moves]``) takes no time: a move within one tunnel keeps the step, a move into it
+  gives step 0. ``[under_action]`` rewards are copied to every copy they cover.
+* ``[derived]`` values that read attributes or tunnels are written into each copy.
 * Expressions of a copy (its QALY weight and cost, and its rows) read the attribute
   values and the tunnel steps under their names. In a copy outside a tunnel (its
   ``only_for`` values do not hold) the tunnel's name reads 0.
