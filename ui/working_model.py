@@ -198,11 +198,16 @@ def check_model(text: str, file: str, base_dir: str) -> Checked:
 
 
 def show_warnings(warnings: tuple[ModelWarningRecord, ...]) -> None:
-    """The model's warnings, each with its table path, in one warning box."""
+    """The model's warnings, each with its table path, in one warning box.
+
+    Always one element on the page, empty without warnings: widgets below it (the Model
+    view's tabs) keep their place, and so their state, when warnings come and go.
+    """
+    box = st.container()
     if not warnings:
         return
     lines = "\n".join(f"- `{w.where}`: {w.message}" for w in warnings)
-    st.warning(
+    box.warning(
         f"The model has {len(warnings)} warning(s); check them before using the results:\n{lines}",
         icon=":material/report:",
     )

@@ -235,7 +235,8 @@ else:
     st.success(
         f"{working_model.file_label()} is valid (autosaved).", icon=":material/check_circle:"
     )
-    working_model.show_warnings(checked.warnings)
+# One element whether or not there are warnings, so the tabs below keep the open tab.
+working_model.show_warnings(checked.warnings if not problems else ())
 TABLE_PREFIXES = ("settings", "states", "actions", "parameters", "transitions", "rates")
 working_model.show_problems([p for p in problems if not p.where.startswith(TABLE_PREFIXES)])
 
