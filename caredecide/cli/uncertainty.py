@@ -287,7 +287,8 @@ def _means_table(frame: pd.DataFrame) -> Table:
             plain(row.strategy),
             f"{row.mean_cost:,.0f} ({row.cost_low:,.0f} to {row.cost_high:,.0f})",
             f"{row.mean_qalys:,.3f} ({row.qalys_low:,.3f} to {row.qalys_high:,.3f})",
-            "" if np.isnan(row.icer) else f"{row.icer:,.0f}",
+            ("" if np.isnan(row.icer) else f"{row.icer:,.0f}")
+            + ("" if np.isnan(row.icer_low) else f" ({row.icer_low:,.0f} to {row.icer_high:,.0f})"),
             "" if np.isnan(row.probability_best) else f"{row.probability_best:.1%}",
         )
     return out

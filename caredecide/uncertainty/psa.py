@@ -677,7 +677,10 @@ class PSAResult:
             qalys_low, qalys_high, incremental_cost, incremental_cost_low,
             incremental_cost_high, incremental_qalys, incremental_qalys_low,
             incremental_qalys_high, icer (money per QALY; NaN for the reference or a
-            zero QALY difference), mean_value, value_low, value_high (objective units),
+            zero QALY difference), icer_low, icer_high (bootstrap percentile interval of
+            the ratio of mean differences; NaN where the interval of the mean QALY
+            difference contains 0, as the ratio then has no interval), mean_value,
+            value_low, value_high (objective units),
             probability_best (share of draws where it has the highest value among the
             candidates), reference. Costs discounted, per person.
         """
@@ -721,6 +724,9 @@ class PSAResult:
         columns["incremental_qalys"] = mean_dq
         columns["incremental_qalys_low"], columns["incremental_qalys_high"] = interval(d_qalys)
         columns["icer"] = icer
+        columns["icer_low"], columns["icer_high"] = _icer_interval(
+            d_cost, d_qalys, ref, level, self.seed
+        )
         columns["mean_value"] = value.mean(axis=0)
         columns["value_low"], columns["value_high"] = interval(value)
         columns["probability_best"] = np.append(probability, np.nan)
@@ -1004,6 +1010,41 @@ def analyse_uncertainty(
         PSAJob(context), ranges, map_chunks=map_chunks, progress=progress, total=n_draws
     )
     return _combine(chunks, context, candidates, base, wtp_grid, chunk_size)
+
+
+ICER_BOOTSTRAP = 1000
+"""Resamples of the draws for the ICER interval."""
+
+
+def _icer_interval(
+    d_cost: np.ndarray, d_qalys: np.ndarray, reference: int, level: float, seed: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """Percentile interval of the ICER by the non-parametric bootstrap of the draws.
+
+    Resample the ``D`` draws with replacement :data:`ICER_BOOTSTRAP` times; in each
+    resample the ICER is the ratio of the mean differences (Briggs, Wonderling & Mooney
+    1997, Health Econ 6:327-340, from memory). Where the interval of the mean QALY
+    difference contains zero the ratio is unbounded there: NaN. ``d_cost``, ``d_qalys``
+    are (D, K) differences against the reference column.
+    """
+    D, K = d_cost.shape
+    rng = np.random.default_rng(np.random.SeedSequence([int(seed), 1997]))
+    tails = [50 * (1 - level), 100 - 50 * (1 - level)]
+    low = np.full(K, np.nan)
+    high = np.full(K, np.nan)
+    if D < 2:
+        return low, high
+    counts = rng.multinomial(D, np.full(D, 1.0 / D), size=ICER_BOOTSTRAP) / D  # (B, D) weights
+    mean_dc = counts @ d_cost  # (B, K)
+    mean_dq = counts @ d_qalys
+    q_low, q_high = np.percentile(mean_dq, tails, axis=0)
+    bounded = (q_low > 0) | (q_high < 0)
+    bounded[reference] = False
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratios = mean_dc / mean_dq
+    if bounded.any():
+        low[bounded], high[bounded] = np.percentile(ratios[:, bounded], tails, axis=0)
+    return low, high
 
 
 def _merge_candidates(named: list[tuple[str, str, np.ndarray]]) -> list[Candidate]:
