@@ -71,9 +71,13 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from caredecide.errors import CompiledModelError
+
 WITHIN_CYCLE_METHODS = ("start", "end", "trapezoid", "simpson", "half_cycle")
 STATIONARY_METHODS = ("start", "end", "trapezoid", "half_cycle")
 """Within-cycle methods whose weights are the same every cycle (infinite horizon)."""
+ROW_SUM_TOLERANCE = 1e-8
+"""A transition row or the start distribution must sum to 1 within this (absolute)."""
 
 
 @dataclass(frozen=True)
@@ -118,6 +122,26 @@ class CompiledModel:
     (:mod:`caredecide.expand`): ``"state"`` -> declared state id, attribute name -> value
     name, tunnel name -> step (``"0"``, ``"1"``, ``"2+"``); each tuple has S entries, ``""``
     where a state does not carry the attribute or tunnel. Empty for a flat model."""
+
+    def __post_init__(self) -> None:
+        self.check()
+
+    def check(self) -> None:
+        """Check the contract of the module docstring; raise listing every finding.
+
+        Shapes agree with ``S`` states and ``A`` actions (time axes of length 1 or the
+        horizon), every state allows at least one action, the start distribution and
+        every transition row sum to 1 (within :data:`ROW_SUM_TOLERANCE`).
+
+        Raises
+        ------
+        CompiledModelError
+        """
+        problems = _shape_problems(self)
+        if not problems:
+            problems = _value_problems(self)
+        if problems:
+            raise CompiledModelError("compiled model is inconsistent: " + "; ".join(problems))
 
     @property
     def n_draws(self) -> int:
@@ -186,6 +210,71 @@ class CompiledModel:
                 None if self.state_action_cost is None else self.state_action_cost[index]
             ),
         )
+
+
+def _shape_problems(c: CompiledModel) -> list[str]:
+    """Shapes that disagree with S states, A actions, D draws and the horizon."""
+    S, A = len(c.state_ids), len(c.action_ids)
+    problems = []
+    P = c.transition
+    if P.ndim != 5 or P.shape[2:] != (A, S, S):
+        return [
+            f"transition has shape {P.shape}; expected (D, Tp, {A}, {S}, {S}) for {A} actions "
+            f"and {S} states"
+        ]
+    D = P.shape[0]
+    T = c.n_cycles if c.n_cycles is not None else 1
+    if c.n_cycles is None and P.shape[1] != 1:
+        problems.append(
+            f"transition has {P.shape[1]} cycles; an infinite horizon needs stationary arrays "
+            "(1 cycle)"
+        )
+    elif P.shape[1] not in (1, T):
+        problems.append(f"transition has {P.shape[1]} cycles; expected 1 or {T}")
+    for name in ("state_qaly", "state_cost"):
+        arr = getattr(c, name)
+        if arr.ndim != 3 or arr.shape[0] != D or arr.shape[2] != S:
+            problems.append(f"{name} has shape {arr.shape}; expected ({D}, Tq, {S})")
+    for name in ("decision_qaly", "decision_cost", "state_action_qaly", "state_action_cost"):
+        arr = getattr(c, name)
+        if arr is not None and (arr.ndim != 4 or arr.shape[0] != D or arr.shape[2:] != (S, A)):
+            problems.append(f"{name} has shape {arr.shape}; expected ({D}, Td, {S}, {A})")
+    move = c.move
+    if move is not None and (move.ndim != 5 or move.shape[0] != D or move.shape[2:] != (A, S, S)):
+        problems.append(f"move has shape {move.shape}; expected ({D}, Tm, {A}, {S}, {S})")
+    if np.shape(c.allowed) != (S, A):
+        problems.append(f"allowed has shape {np.shape(c.allowed)}; expected ({S}, {A})")
+    for name in ("life_years", "start_distribution"):
+        if np.shape(getattr(c, name)) != (S,):
+            problems.append(f"{name} has shape {np.shape(getattr(c, name))}; expected ({S},)")
+    if np.shape(c.absorbing) not in ((0,), (S,)):
+        problems.append(f"absorbing has shape {np.shape(c.absorbing)}; expected ({S},)")
+    return problems
+
+
+def _value_problems(c: CompiledModel) -> list[str]:
+    """Rows that do not sum to 1, states with no allowed action."""
+    problems = []
+    allowed = np.asarray(c.allowed, dtype=bool)
+    if not allowed.any(axis=1).all():
+        state = c.state_ids[int(np.flatnonzero(~allowed.any(axis=1))[0])]
+        problems.append(f"state {state!r} allows no action; expected at least one allowed action")
+    start = np.asarray(c.start_distribution, dtype=float)
+    if not abs(start.sum() - 1.0) <= ROW_SUM_TOLERANCE or (start < 0).any():
+        problems.append(
+            f"start_distribution sums to {float(start.sum())!r}; expected shares >= 0 summing to 1"
+        )
+    # One reduction over the transitions: rows of allowed (state, action) pairs sum to 1.
+    gap = np.abs(c.transition.sum(axis=-1) - 1.0)  # (D, Tp, A, S)
+    bad = ~(gap <= ROW_SUM_TOLERANCE) & allowed.T[None, None]
+    if bad.any():
+        d, t, a, s = (int(i) for i in np.argwhere(bad)[0])
+        problems.append(
+            f"transition row of state {c.state_ids[s]!r} under action {c.action_ids[a]!r} "
+            f"(draw {d}, cycle {t}) sums to {1.0 + float(c.transition[d, t, a, s].sum() - 1.0)!r}; "
+            "expected 1"
+        )
+    return problems
 
 
 def cycle_weights(

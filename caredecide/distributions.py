@@ -462,7 +462,7 @@ class Distribution:
         bad = ~((probabilities >= 0.0) & (probabilities <= 1.0))
         if bad.any():
             first = probabilities[np.unravel_index(np.argmax(bad), bad.shape)] if bad.ndim else q
-            raise _error("quantile", f"q = {first!r} must lie in [0, 1]")
+            raise _error("quantile", f"q = {float(np.asarray(first))!r} must lie in [0, 1]")
         if self.kind == "fixed":
             return np.full(probabilities.shape, self.params["value"])
         return np.asarray(self.scipy().ppf(probabilities), dtype=float)

@@ -70,6 +70,15 @@ class DistributionError(CaredecideError, ValueError):
     """A parameter distribution is impossible (e.g. a beta with that mean and standard error)."""
 
 
+class CompiledModelError(CaredecideError, ValueError):
+    """A :class:`~caredecide.compiled.CompiledModel` breaks its own contract.
+
+    Array shapes that disagree, a state with no allowed action, a start distribution or a
+    transition row that does not sum to 1. Raised on construction; the message lists every
+    finding.
+    """
+
+
 class RunOptionError(CaredecideError, ValueError):
     """A run option given by the caller (solver, batch or analysis setting) is not allowed.
 

@@ -15,7 +15,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from quantecon.markov import DiscreteDP, backward_induction
 
-from caredecide.errors import ModelError, RunOptionError
+from caredecide.errors import CompiledModelError, ModelError, RunOptionError
 from caredecide.evaluate import evaluate_policy
 from caredecide.objective import Objective
 from caredecide.solvers import SolverError, solve
@@ -628,8 +628,9 @@ def test_infinite_horizon_simpson_error():
 
 
 def test_infinite_horizon_time_varying_error():
-    with pytest.raises(SolverError, match="stationary arrays"):
-        solve(_two_rates(stationary=False), QALYS)
+    # The compiled model refuses it on construction (its own contract).
+    with pytest.raises(CompiledModelError, match="infinite horizon needs stationary arrays"):
+        _two_rates(stationary=False)
 
 
 def test_nonzero_terminal_with_differential_rates_error():
@@ -638,15 +639,37 @@ def test_nonzero_terminal_with_differential_rates_error():
 
 
 def test_state_without_allowed_action_error():
-    compiled = make_compiled(np.array([[[1.0, 0], [0, 1]]]), allowed=[[True], [False]], n_cycles=2)
-    with pytest.raises(SolverError, match="state 's1' allows no action"):
-        solve(compiled, QALYS)
+    with pytest.raises(CompiledModelError, match="state 's1' allows no action"):
+        make_compiled(np.array([[[1.0, 0], [0, 1]]]), allowed=[[True], [False]], n_cycles=2)
 
 
 def test_inconsistent_shapes_error():
-    compiled = replace(puterman_two_state(2), state_qaly=np.zeros((1, 1, 3)))
-    with pytest.raises(SolverError, match=r"state_qaly has shape \(1, 1, 3\)"):
+    with pytest.raises(CompiledModelError, match=r"state_qaly has shape \(1, 1, 3\)"):
+        replace(puterman_two_state(2), state_qaly=np.zeros((1, 1, 3)))
+
+
+def test_a_row_changed_in_place_is_caught_by_the_solver():
+    compiled = puterman_two_state(2)
+    compiled.transition[0, 0, 0, 0, 0] += 0.5  # arrays stay writable: solve checks again
+    with pytest.raises(
+        SolverError, match=r"transition row of state 's1' under action 'a1' .* sums to 1\.5"
+    ):
         solve(compiled, QALYS)
+
+
+@pytest.mark.parametrize(
+    ("change", "message"),
+    [
+        ({"start_distribution": np.array([0.5, 0.4])}, "start_distribution sums to 0.9"),
+        ({"life_years": np.ones(3)}, r"life_years has shape \(3,\); expected \(2,\)"),
+        ({"allowed": np.ones((2, 3), dtype=bool)}, r"allowed has shape \(2, 3\)"),
+        ({"transition": np.full((1, 1, 2, 2, 2), 0.4)}, r"sums to 0\.8.*expected 1"),
+    ],
+)
+def test_compiled_model_checks_its_contract(change, message):
+    # One error per rule of the array contract (caredecide/compiled.py).
+    with pytest.raises(CompiledModelError, match=message):
+        replace(puterman_two_state(2), **change)
 
 
 def test_objective_errors():

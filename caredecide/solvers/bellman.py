@@ -11,7 +11,7 @@ import functools
 import numpy as np
 
 from caredecide.compiled import CompiledModel, cycle_weights, stationary_cycle_weights
-from caredecide.errors import CaredecideError
+from caredecide.errors import CaredecideError, CompiledModelError
 from caredecide.objective import Objective
 from caredecide.solvers import kernels
 
@@ -26,33 +26,17 @@ DEFAULT_TIE_RELATIVE = 1e-9
 
 
 def check_compiled(compiled: CompiledModel) -> None:
-    """Check array shapes agree and every state allows an action; raise SolverError."""
-    S, A = compiled.n_states, compiled.n_actions
-    D = compiled.transition.shape[0] if compiled.transition.ndim == 5 else -1
-    problems = []
-    if compiled.transition.ndim != 5 or compiled.transition.shape[2:] != (A, S, S):
-        problems.append(
-            f"transition has shape {compiled.transition.shape}; expected (D, Tp, {A}, "
-            f"{S}, {S}) for {A} actions and {S} states"
-        )
-    for name in ("state_qaly", "state_cost"):
-        arr = getattr(compiled, name)
-        if arr.ndim != 3 or arr.shape[0] != D or arr.shape[2] != S:
-            problems.append(f"{name} has shape {arr.shape}; expected ({D}, Tq, {S})")
-    for name in ("decision_qaly", "decision_cost", "state_action_qaly", "state_action_cost"):
-        arr = getattr(compiled, name)
-        if arr is not None and (arr.ndim != 4 or arr.shape[0] != D or arr.shape[2:] != (S, A)):
-            problems.append(f"{name} has shape {arr.shape}; expected ({D}, T, {S}, {A})")
-    move = compiled.move
-    if move is not None and (move.ndim != 5 or move.shape[0] != D or move.shape[2:] != (A, S, S)):
-        problems.append(f"move has shape {move.shape}; expected ({D}, Tm, {A}, {S}, {S})")
-    if compiled.allowed.shape != (S, A):
-        problems.append(f"allowed has shape {compiled.allowed.shape}; expected ({S}, {A})")
-    elif not compiled.allowed.any(axis=1).all():
-        state = compiled.state_ids[int(np.flatnonzero(~compiled.allowed.any(axis=1))[0])]
-        problems.append(f"state {state!r} allows no action; expected at least one allowed action")
-    if problems:
-        raise SolverError("compiled model is inconsistent: " + "; ".join(problems))
+    """Check the compiled model's contract again (its arrays may have been changed in place).
+
+    Raises
+    ------
+    SolverError
+        With the findings of :meth:`CompiledModel.check`.
+    """
+    try:
+        compiled.check()
+    except CompiledModelError as error:
+        raise SolverError(str(error)) from None
 
 
 def decision_state_mask(compiled: CompiledModel) -> np.ndarray:
