@@ -101,6 +101,7 @@ def main() -> None:
     parser.add_argument("--draws", type=int, default=10_000)
     parser.add_argument("--repeats", type=int, default=3)
     parser.add_argument("--baseline", type=Path, default=None)
+    parser.add_argument("--split-only", action="store_true", help="Only part 1.")
     args = parser.parse_args()
     print("SYNTHETIC demo model (invented numbers); research use only.")
     run_child(ROOT, 50, [], False)  # kernels compiled and cached before any timing
@@ -120,6 +121,8 @@ def main() -> None:
         f"peak resident memory {split['peak_mib']:.0f} MiB (target <= 1024 MiB)"
     )
 
+    if args.split_only:
+        return
     runs: dict[str, list[dict[str, float]]] = {"serial": [], "--workers 2": []}
     if args.baseline:
         runs["baseline serial"] = []

@@ -268,25 +268,8 @@ def _finite_flows(compiled, policy, trace) -> dict[str, np.ndarray]:
         for name in _QUANTITIES
         for suffix in ("", "_undiscounted")
     }
-    if kernels.available():  # the chosen rows gathered as used: no policy matrices
-        names = [f"{n}{suffix}" for suffix in ("", "_undiscounted") for n in _QUANTITIES]
-        P = np.ascontiguousarray(compiled.transition)
-        chosen = np.ascontiguousarray(policy, dtype=np.intp)
-        out = np.empty((len(names), D))
-        for t in range(T):
-            parts = [
-                cycle_parts(compiled, t, discount, life_years=True)[name]
-                for discount in (True, False)
-                for name in _QUANTITIES
-            ]
-            kernels.kernels().cycle_flows(
-                P, min(t, P.shape[1] - 1), chosen, min(t, chosen.shape[1] - 1), trace, t,
-                np.stack([np.broadcast_to(p[0], p[0].shape) for p in parts]),
-                np.stack([p[1] for p in parts]), out,
-            )  # fmt: skip
-            for k, name in enumerate(names):
-                flows[name][:, t] = out[k]
-        return flows
+    if kernels.available():
+        return _kernel_flows(compiled, [policy], [trace])[0]
     for t in range(T):
         m = trace[:, t]
         P_pi = _policy_transition(transition_at(compiled, t), policy[:, t])
@@ -296,6 +279,76 @@ def _finite_flows(compiled, policy, trace) -> dict[str, np.ndarray]:
                 reward = _policy_reward(parts[name], P_pi, policy[:, t])
                 flows[name + suffix][:, t] = np.einsum("ds,ds->d", m, reward)
     return flows
+
+
+def _kernel_flows(compiled, policies, traces) -> list[dict[str, np.ndarray]]:
+    """Flows of several policies (each (D, T, S) with its trace), compiled loops.
+
+    The rewards of each cycle (:func:`caredecide.solvers.bellman.cycle_parts`) do not
+    depend on the policy: they are built once per cycle for all the policies; the chosen
+    transition rows are gathered as they are used (no policy matrices).
+    """
+    D, T = compiled.n_draws, compiled.n_cycles
+    names = [f"{n}{suffix}" for suffix in ("", "_undiscounted") for n in _QUANTITIES]
+    flows = [{name: np.zeros((D, T + 1)) for name in names} for _ in policies]
+    P = np.ascontiguousarray(compiled.transition)
+    chosen = [np.ascontiguousarray(policy, dtype=np.intp) for policy in policies]
+    out = np.empty((len(names), D))
+    for t in range(T):
+        both = [cycle_parts(compiled, t, discount, life_years=True) for discount in (True, False)]
+        parts = [by_name[name] for by_name in both for name in _QUANTITIES]
+        at_decision = np.stack([np.broadcast_to(p[0], p[0].shape) for p in parts])
+        on_arrival = np.stack([p[1] for p in parts])
+        for policy, trace, flow in zip(chosen, traces, flows, strict=True):
+            kernels.kernels().cycle_flows(
+                P, min(t, P.shape[1] - 1), policy, min(t, policy.shape[1] - 1), trace, t,
+                at_decision, on_arrival, out,
+            )  # fmt: skip
+            for k, name in enumerate(names):
+                flow[name][:, t] = out[k]
+    return flows
+
+
+def evaluate_policies(
+    compiled: CompiledModel,
+    policies: list[np.ndarray | int],
+    objective: Objective,
+    *,
+    terminal_value: np.ndarray | float | None = None,
+) -> list[PolicyOutcome]:
+    """:func:`evaluate_policy` for several policies of the same compiled model.
+
+    The same outcomes as one call per policy; a finite horizon builds each cycle's
+    rewards once for all the policies (what a probabilistic analysis of several
+    candidate policies needs).
+    """
+    if compiled.n_cycles is None or not kernels.available() or len(policies) < 2:
+        return [
+            evaluate_policy(compiled, policy, objective, terminal_value=terminal_value)
+            for policy in policies
+        ]
+    check_compiled(compiled)
+    T = compiled.n_cycles
+    checked = [check_policy(compiled, policy) for policy in policies]
+    traces = []
+    for policy in checked:
+        trace = np.empty((compiled.n_draws, T + 1, compiled.n_states))
+        kernels.kernels().cohort_trace(
+            np.ascontiguousarray(compiled.transition),
+            np.ascontiguousarray(policy, dtype=np.intp),
+            np.ascontiguousarray(compiled.start_distribution, dtype=float),
+            trace,
+        )
+        traces.append(trace)
+    terminal_part = terminal_present_value(compiled, objective, terminal_value)
+    outcomes = []
+    for trace, flows in zip(traces, _kernel_flows(compiled, checked, traces), strict=True):
+        totals = {name: flow.sum(axis=1) for name, flow in flows.items()}
+        terminal = np.einsum("ds,ds->d", trace[:, T], terminal_part)
+        outcomes.append(
+            _outcome(compiled, objective, trace, totals, flows, terminal, compiled.ages(), True)
+        )
+    return outcomes
 
 
 def _evaluate_infinite(compiled, policy, objective) -> PolicyOutcome:

@@ -218,3 +218,24 @@ def test_numpy_path_in_cache_sized_blocks_matches_kernels(method):
     np.testing.assert_array_equal(fast.policy[decided], plain.policy[decided])
     np.testing.assert_allclose(fast.value, plain.value, rtol=1e-8)
     assert fast.success and plain.success
+
+
+def test_several_policies_at_once_equal_one_at_a_time():
+    # evaluate_policies shares each cycle's rewards among the policies; the outcomes must
+    # be those of one evaluate_policy call per policy.
+    from caredecide.evaluate import evaluate_policies
+
+    rng = np.random.default_rng(11)
+    compiled = _random_finite(rng, 4, 6, 5, 3, tie=False)
+    allowed = compiled.allowed
+    policies = [
+        np.array([[[rng.choice(np.flatnonzero(allowed[s])) for s in range(5)]] * 6]),
+        np.argmax(allowed, axis=1)[None, None, :],
+    ]
+    objective = Objective("qalys")  # a terminal value needs one discount rate for both
+    together = evaluate_policies(compiled, policies, objective, terminal_value=2.0)
+    for policy, outcome in zip(policies, together, strict=True):
+        alone = evaluate_policy(compiled, policy, objective, terminal_value=2.0)
+        np.testing.assert_array_equal(outcome.trace, alone.trace)
+        for name in ("qalys", "costs", "life_years", "value", "costs_undiscounted"):
+            np.testing.assert_array_equal(getattr(outcome, name), getattr(alone, name))

@@ -78,7 +78,7 @@ from caredecide.chunks import (
 from caredecide.compile import compile_model
 from caredecide.compiled import CompiledModel
 from caredecide.errors import ModelError, ModelTooLargeError, Problem
-from caredecide.evaluate import evaluate_policy
+from caredecide.evaluate import evaluate_policies
 from caredecide.limits import CHUNK_MEMORY_BYTES, default_memory_limit
 from caredecide.model import Model
 from caredecide.objective import Objective
@@ -244,16 +244,16 @@ def _evaluate_chunk(
     context: PSAContext, values: np.ndarray, compiled, result, start: int, stop: int
 ) -> ChunkResult:
     """Evaluate the optimal and candidate policies of solved draws and count the policies."""
-    optimal = _totals(evaluate_policy(compiled, result.policy, context.objective))
-    # A loop over candidate policies (a handful), each evaluated on every draw at once.
+    # The optimal and the candidate policies (a handful), each on every draw at once;
+    # each cycle's rewards are built once for all of them.
+    outcomes = evaluate_policies(
+        compiled,
+        [result.policy, *(policy[None] for policy in context.candidate_policies)],
+        context.objective,
+    )
+    optimal = _totals(outcomes[0])
     candidates = (
-        np.stack(
-            [
-                _totals(evaluate_policy(compiled, policy[None], context.objective)).T
-                for policy in context.candidate_policies
-            ],
-            axis=-1,
-        )
+        np.stack([_totals(outcome).T for outcome in outcomes[1:]], axis=-1)
         if len(context.candidate_policies)
         else np.empty((3, stop - start, 0))
     )
