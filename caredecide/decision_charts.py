@@ -15,6 +15,7 @@ import altair as alt
 import numpy as np
 import pandas as pd
 
+from caredecide.charts import ChartLike
 from caredecide.palettes import LOW_HIGH_PALETTE, SERIES_PALETTE, action_colours, cycle
 
 PANEL_WIDTH = 460
@@ -39,7 +40,7 @@ def _legend(title: str) -> alt.Legend:
     )
 
 
-def make_decision_tornado_chart(table: pd.DataFrame, *, unit: str = "") -> alt.LayerChart:
+def make_decision_tornado_chart(table: pd.DataFrame, *, unit: str = "") -> ChartLike:
     """Decision tornado: value lost by keeping the base-case policy, at each end of a range.
 
     Parameters
@@ -136,7 +137,7 @@ def _region_panel(
     colours: dict[str, str],
     x_title: str,
     base: float | None,
-) -> alt.LayerChart:
+) -> ChartLike:
     domain = list(colours)
     rect = (
         alt.Chart(data)

@@ -297,6 +297,7 @@ def resolve_strategy(compiled: CompiledModel, strategy: Strategy) -> StrategyPol
         raise _model_error(
             f"unknown strategy kind {strategy.kind!r}; expected one of {KINDS}", where + ".kind"
         )
+    assert strategy.action is not None  # every kind but "computed" and "table" names one
     x = _action_index(compiled, strategy.action, where + ".action")
     otherwise = (
         None

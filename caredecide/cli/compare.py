@@ -5,7 +5,7 @@ from __future__ import annotations
 import re
 from contextlib import nullcontext
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, Literal
 
 import pandas as pd
 import typer
@@ -69,7 +69,7 @@ def _print_table(result, currency: str) -> None:
         "(discounted, per person; sorted by cost)".replace("  ", " ")
     )
     effect = result.effect_label
-    columns = [
+    columns: list[tuple[str, Literal["left", "right"]]] = [
         ("strategy", "left"),
         ("cost", "right"),
         (effect, "right"),
@@ -267,7 +267,7 @@ def compare_command(
                 loaded,
                 strategies,
                 wtp,
-                tuple(wtp_range) if wtp_range is not None else None,
+                (wtp_range[0], wtp_range[1]) if wtp_range is not None else None,
                 grid=grid,
                 from_ages=tuple(from_age or ()),
                 progress=progress,

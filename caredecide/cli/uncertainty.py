@@ -5,7 +5,7 @@ from __future__ import annotations
 import json
 import math
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, Any
 
 import numpy as np
 import pandas as pd
@@ -207,7 +207,7 @@ def run_uncertainty(
             def advance(done: int, total: int) -> None:
                 bar.update(task, completed=done)
 
-            options = dict(
+            options: dict[str, Any] = dict(
                 chunk_size=chunk_size,
                 wtp_range=wtp_range,
                 strategies=extra,

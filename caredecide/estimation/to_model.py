@@ -281,6 +281,6 @@ def write_estimates(
         # The file's own text is kept: comments (the synthetic-data header), key order
         # and layout survive; only the estimated entries change.
         text = read_limited_text(base, MAX_MODEL_BYTES, what="a model file (.toml)")
-        model = loads_model(text, file=str(base), base_dir=base.parent)
-        save_model(merge_into_model(model, estimated), out, original_text=text)
+        base_model = loads_model(text, file=str(base), base_dir=base.parent)
+        save_model(merge_into_model(base_model, estimated), out, original_text=text)
     return out

@@ -194,7 +194,7 @@ def unused_derived_warnings(model: Model, used_by_cells: set[str]) -> list[Model
     refers: dict[str, set[str]] = {}
     for name, text in model.derived.items():
         try:
-            refers[name] = set(parse_expression(text).names) & model.derived.keys()  # type: ignore[arg-type]
+            refers[name] = set(parse_expression(text).names) & model.derived.keys()
         except ExpressionError:
             refers[name] = set()
     used, frontier = set(), set(used_by_cells)

@@ -152,6 +152,7 @@ def input_tables(model: Model) -> dict[str, pd.DataFrame]:
                 p.note,
             )
         else:
+            assert group is not None  # every parameter name is declared or a group member
             counts = ", ".join(f"{c:g}" for c in group.counts)
             described = (
                 "",
@@ -294,8 +295,9 @@ def _uncertainty(data: ReportData) -> None:
     # the built-in strategies when one lies beside the model file.
     table = sibling_table(data.model.source_path or data.model_path)
     extra = read_strategy_table(table) if table is not None else []
+    assert data.draws is not None  # the step runs only with draws (see run_analyses)
     psa = analyse_uncertainty(
-        data.model, data.draws, data.seed, objective=data.objective, strategies=extra
+        data.model, data.draws, data.seed or 0, objective=data.objective, strategies=extra
     )
     data.results["psa_acceptability"] = psa.acceptability_by_age_band()
     data.results["psa_expected_loss"] = psa.expected_loss()

@@ -12,6 +12,7 @@ import html
 import math
 from collections.abc import Callable, Sequence
 from functools import partial
+from typing import Any
 
 import pandas as pd
 
@@ -97,7 +98,7 @@ def table(
     )
 
 
-def svg(build: Callable[[], object]) -> str:
+def svg(build: Callable[[], Any]) -> str:
     """Inline SVG of the chart ``build()`` returns; a note when it cannot be drawn."""
     try:
         import vl_convert

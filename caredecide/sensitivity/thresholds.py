@@ -184,7 +184,8 @@ def _roots(
     if open_.size:
 
         def report(done: int, total: int) -> None:
-            progress(done + p.size - total, p.size)
+            if progress is not None:
+                progress(done + p.size - total, p.size)
 
         found = brent_roots(
             lambda xv, k: gap(xv, open_[k]),

@@ -207,7 +207,9 @@ def parameter_sets(model: Any, changes: Mapping[str, np.ndarray]) -> pd.DataFram
     _check_names(model, changes)
     base = model.base_parameter_values()
     arrays = np.broadcast_arrays(*[np.asarray(v, dtype=float) for v in changes.values()])
-    moved = {name: np.atleast_1d(a).astype(float) for name, a in zip(changes, arrays, strict=True)}
+    moved: dict[str, np.ndarray] = {
+        name: np.atleast_1d(a).astype(float) for name, a in zip(changes, arrays, strict=True)
+    }
     n = len(next(iter(moved.values()))) if moved else 1
     columns = {name: np.full(n, float(value)) for name, value in base.items()}
     columns.update(moved)
@@ -220,7 +222,7 @@ def parameter_sets(model: Any, changes: Mapping[str, np.ndarray]) -> pd.DataFram
             continue
         total = sum(float(base[m]) for m in members)
         others_base = sum(float(base[m]) for m in others)
-        remainder = total - sum(moved[m] for m in moved_members)
+        remainder = total - np.sum([moved[m] for m in moved_members], axis=0)
         bad = np.flatnonzero((remainder < -1e-12) | ((others_base <= 0) & (abs(remainder) > 1e-12)))
         if bad.size:
             k = int(bad[0])
