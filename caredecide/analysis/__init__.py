@@ -9,6 +9,8 @@ the report and the app show the same figures for the same model.
 - :func:`analyse_strategies` -> :class:`~caredecide.compare.ComparisonResult`;
 - :func:`analyse_sensitivity` -> :class:`SensitivitySuite`;
 - :func:`analyse_uncertainty` -> :class:`~caredecide.uncertainty.psa.PSAResult`;
+- :func:`analyse_convergence` -> :class:`~caredecide.convergence.SweepTrace` and
+  :func:`analyse_method_race` -> :class:`~caredecide.convergence.MethodRace`;
 - :func:`analyse_scenarios` -> :class:`ScenarioResult`;
 - :func:`analyse_verification` -> :class:`~caredecide.verify.VerificationReport`.
 """
@@ -24,6 +26,8 @@ _HOMES = {
     "analyse_strategies": "others",
     "analyse_uncertainty": "others",
     "analyse_verification": "others",
+    "analyse_convergence": "convergence",
+    "analyse_method_race": "convergence",
     "ScenarioResult": "scenarios",
     "analyse_scenarios": "scenarios",
     "SensitivitySuite": "sensitivity",
@@ -43,6 +47,8 @@ __all__ = [
     "ScenarioResult",
     "SensitivitySuite",
     "analyse_base_case",
+    "analyse_convergence",
+    "analyse_method_race",
     "analyse_scenarios",
     "analyse_sensitivity",
     "analyse_strategies",

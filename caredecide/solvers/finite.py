@@ -131,7 +131,7 @@ def backward_induction(
         )
         if history is not None:
             for t in range(T - 1, -1, -1):
-                _record(history, T, t, value, policy)
+                _record(history, T, t, value, policy, q_values)
     else:
         _numpy_backward_induction(
             compiled, objective, decision_states,
@@ -158,7 +158,7 @@ def backward_induction(
     )
 
 
-def _record(history: list[SweepRecord], T: int, t: int, value, policy) -> None:
+def _record(history: list[SweepRecord], T: int, t: int, value, policy, q_values) -> None:
     history.append(
         SweepRecord(
             sweep=T - t,
@@ -167,6 +167,7 @@ def _record(history: list[SweepRecord], T: int, t: int, value, policy) -> None:
             policy=policy[:, t].copy(),
             residual=np.abs(value[:, t] - value[:, t + 1]).max(axis=-1),
             error_bound=np.zeros(value.shape[0]),
+            q_values=q_values[:, t].copy(),
         )
     )
 
@@ -193,4 +194,4 @@ def _numpy_backward_induction(
             Q, decision_states, tie_absolute, tie_relative
         )
         if history is not None:
-            _record(history, T, t, value, policy)
+            _record(history, T, t, value, policy, q_values)

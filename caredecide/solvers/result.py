@@ -57,6 +57,11 @@ class SweepRecord:
         1994 Theorem 6.3.1; policy iteration, where ``residual`` is the Bellman residual
         ``||T v - v||`` of the evaluated policy: ``residual / (1 - gamma)``); 0 for backward
         induction, which is exact.
+    q_values : (D, S, A) float or None
+        Action values the sweep chose from (``-inf`` where an action is not allowed):
+        value iteration and modified policy iteration ``r + gamma P v_{n-1}``; policy
+        iteration ``r + gamma P v_n`` of the evaluated policy (its improvement step);
+        backward induction the cycle's action values.
     """
 
     sweep: int
@@ -65,6 +70,7 @@ class SweepRecord:
     policy: np.ndarray
     residual: np.ndarray
     error_bound: np.ndarray
+    q_values: np.ndarray | None = None
 
 
 @dataclass(repr=False)

@@ -133,6 +133,7 @@ def _record(history, sweep, v, Q, residual, bound) -> None:
                 policy=Q.argmax(axis=1),
                 residual=residual.copy(),
                 error_bound=bound.copy(),
+                q_values=Q.transpose(0, 2, 1).copy(),
             )
         )
 

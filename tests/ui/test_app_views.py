@@ -187,32 +187,6 @@ def test_starting_from_a_template_opens_it(app):
     assert any("is valid" in s.value for s in app.success)
 
 
-def test_convergence_view_steps_through_value_iteration_sweeps(app):
-    app.selectbox(key="open_template_choice").set_value("infinite-horizon")
-    app.button(key="open_template_button").click().run()
-    app.switch_page("views/convergence.py").run()
-    app.radio(key="convergence_method").set_value("value_iteration").run()
-    assert not app.exception, app.exception
-    result, _, _ = _library(
-        TEMPLATES["infinite-horizon"],
-        "qalys",
-        0.0,
-        ".",
-        method="value_iteration",
-        record_history=True,
-        max_iterations=5000,
-    )
-    assert app.metric[0].value == str(len(result.history))
-    app.slider(key="convergence_sweep").set_value(3).run()
-    third = result.history[2]
-    assert app.metric[1].value == f"{third.residual[0]:.4g}"
-    assert app.metric[2].value == f"{third.error_bound[0]:.4g}"
-    # The residual chart holds the library's residual for every sweep.
-    residuals = _chart_data(app, 0)
-    shown = residuals[residuals["quantity"] == "residual"]["amount"].to_numpy()
-    assert shown.tolist() == [r.residual[0] for r in result.history if r.residual[0] > 0]
-
-
 def test_convergence_view_on_a_finite_model_uses_backward_induction(app):
     app.switch_page("views/convergence.py").run()
     assert not app.exception
@@ -317,33 +291,6 @@ def test_a_draft_of_another_model_is_offered_and_opens_in_a_fresh_session(app):
     assert not fresh.exception, fresh.exception
     assert fresh.session_state[working_model.SOURCE_KEY] == "template:treat-or-wait"
     assert fresh.session_state[working_model.TEXT_KEY] == edited
-
-
-@pytest.mark.parametrize("method", ["policy_iteration", "modified_policy_iteration"])
-def test_convergence_view_steps_through_the_other_infinite_horizon_solvers(app, method):
-    app.selectbox(key="open_template_choice").set_value("infinite-horizon")
-    app.button(key="open_template_button").click().run()
-    app.switch_page("views/convergence.py").run()
-    app.radio(key="convergence_method").set_value(method).run()
-    assert not app.exception, app.exception
-    result, _, _ = _library(
-        TEMPLATES["infinite-horizon"],
-        "qalys",
-        0.0,
-        ".",
-        method=method,
-        record_history=True,
-        max_iterations=5000,
-    )
-    assert app.metric[0].value == str(len(result.history))
-    last = result.history[-1]
-    assert app.metric[1].value == f"{last.residual[0]:.4g}"
-    shown = app.dataframe[0].value
-    labels = {"wait": "Wait", "treat": "Treat"}  # the template's action labels
-    decision = list(result.decision_states)
-    assert shown["action"].tolist() == [
-        labels[result.action_ids[a]] for a, d in zip(last.policy[0], decision, strict=True) if d
-    ]
 
 
 @pytest.mark.parametrize("view", VIEWS)
