@@ -53,7 +53,7 @@ if {split_steps!r}:
     timed(ParameterSampler, "draw", "sampling")
     timed(psa, "compile_model", "compile")
     timed(psa, "solve", "solve")
-    timed(psa, "evaluate_policy", "evaluate")
+    timed(psa, "evaluate_policies", "evaluate")
     timed(psa, "evpi", "value of information")
     timed(psa, "evppi_regression", "value of information")
     timed(cli_uncertainty, "_write_outputs", "outputs")
