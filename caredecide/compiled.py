@@ -191,7 +191,7 @@ class CompiledModel:
         from dataclasses import replace
 
         def per_draw(rate: float | np.ndarray) -> float | np.ndarray:
-            return rate[index] if np.ndim(rate) else rate
+            return np.asarray(rate)[index] if np.ndim(rate) else rate
 
         return replace(
             self,

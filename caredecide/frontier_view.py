@@ -89,8 +89,8 @@ def _runs(actions: np.ndarray) -> list[tuple[int, int, int]]:
 def policy_regions(
     compiled: CompiledModel,
     policies: Sequence[np.ndarray],
-    x_from: Sequence[float],
-    x_to: Sequence[float],
+    x_from: Sequence[float] | np.ndarray,
+    x_to: Sequence[float] | np.ndarray,
 ) -> pd.DataFrame:
     """Best action per state as rectangles over (x, age): one per run of equal actions.
 

@@ -120,6 +120,8 @@ def register(app: typer.Typer) -> None:
     ) -> None:
         """Estimate transition probabilities or rates from patient records (research use only)."""
         from caredecide.estimation import (
+            CountEstimate,
+            PanelEstimate,
             estimate_counts,
             estimate_panel,
             load_records,
@@ -147,9 +149,10 @@ def register(app: typer.Typer) -> None:
             records = load_records(visits, patients, states=state_list, death_state=death_state)
             require_deaths(records, patients_given=patients is not None)
             if method is Method.counts:
-                results = estimate_counts(records, cycle_years, prior=prior, tolerance=tolerance)
-                frame = pd.concat([r.table() for r in results], ignore_index=True)
-                skipped = sum(r.n_skipped for r in results)
+                counts = estimate_counts(records, cycle_years, prior=prior, tolerance=tolerance)
+                results: list[CountEstimate | PanelEstimate] = list(counts)
+                frame = pd.concat([r.table() for r in counts], ignore_index=True)
+                skipped = sum(r.n_skipped for r in counts)
                 if skipped and not quiet:
                     stderr.print(
                         f"[yellow]note:[/] {skipped} of {records.n_intervals} intervals are "
@@ -163,16 +166,15 @@ def register(app: typer.Typer) -> None:
                     else stderr.status("fitting rates by maximum likelihood", spinner="dots")
                 )
                 with status:
-                    results = [
-                        estimate_panel(
-                            records,
-                            structure=transitions.value,
-                            treatment_effect=None if treatment_effect else False,
-                        )
-                    ]
-                frame = results[0].table()
-                if not results[0].converged:
-                    stderr.print(f"[yellow]warning:[/] optimiser: {results[0].message}")
+                    panel = estimate_panel(
+                        records,
+                        structure=transitions.value,
+                        treatment_effect=None if treatment_effect else False,
+                    )
+                results = [panel]
+                frame = panel.table()
+                if not panel.converged:
+                    stderr.print(f"[yellow]warning:[/] optimiser: {panel.message}")
             estimated = estimates_to_parameters(results, prefix=prefix)
             if out is not None:
                 written = write_estimates(estimated, out, model=model)
@@ -186,7 +188,7 @@ def register(app: typer.Typer) -> None:
             if method is Method.counts:
                 stdout.print(_rich_table("Transition probabilities per cycle (counts)", frame))
             else:
-                result = results[0]
+                result = panel
                 stdout.print(_rich_table("Rates per year (se on the log scale)", frame))
                 for treated in (False, True)[: 1 + result.treatment_effect]:
                     label = "treated" if treated else "untreated"

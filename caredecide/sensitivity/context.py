@@ -138,7 +138,7 @@ def threshold_context(model: Any, thresholds: pd.DataFrame) -> pd.DataFrame:
                     "threshold": nearest,
                     "direction": first["direction"],
                     "distance_share": abs(nearest - base) / (high - low) if high > low else np.nan,
-                    "probability_beyond": float(probability_beyond(cdf, nearest, base)),
+                    "probability_beyond": float(probability_beyond(cdf, np.asarray(nearest), base)),
                     "threshold_min": float(values.min()),
                     "threshold_max": float(values.max()),
                     "cells": len(band),

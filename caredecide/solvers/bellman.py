@@ -7,6 +7,7 @@ arithmetic (one core). Letters as in :mod:`caredecide.compiled`.
 from __future__ import annotations
 
 import functools
+from typing import Any, overload
 
 import numpy as np
 
@@ -76,6 +77,10 @@ def _weights_at(compiled: CompiledModel, t: int, d: float | np.ndarray) -> tuple
     return start[t] * _discount_power(d, t + shift), end[t] * _discount_power(d, t + 1)
 
 
+@overload
+def _at(array: np.ndarray, t: int) -> np.ndarray: ...
+@overload
+def _at(array: None, t: int) -> None: ...
 def _at(array: np.ndarray | None, t: int) -> np.ndarray | None:
     return None if array is None else array[:, min(t, array.shape[1] - 1)]
 
@@ -112,7 +117,7 @@ def cycle_parts(
     power = 0 if T is None else t
     move = _at(compiled.move, t)  # (D, A, S, S) or None
     D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
-    sources = {
+    sources: dict[str, tuple[Any, Any, Any, Any]] = {
         "qalys": (compiled.state_qaly, compiled.state_action_qaly, compiled.decision_qaly, d_o),
         "costs": (compiled.state_cost, compiled.state_action_cost, compiled.decision_cost, d_c),
     }
