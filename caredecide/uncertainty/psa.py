@@ -99,6 +99,8 @@ from caredecide.uncertainty.sampling import (
 from caredecide.uncertainty.voi import discounted_population, evpi, evppi_regression
 
 DEFAULT_MEMORY_LIMIT = CHUNK_MEMORY_BYTES
+EVALUATION_GROUP = 4
+"""Policies evaluated together on a chunk (their traces are held at once)."""
 DEFAULT_FREQUENT = 3
 """Most frequent per-draw optimal policies (from the pilot) added as candidates."""
 DEFAULT_WTP_POINTS = 41
@@ -246,14 +248,18 @@ def _evaluate_chunk(
     """Evaluate the optimal and candidate policies of solved draws and count the policies."""
     # The optimal and the candidate policies (a handful), each on every draw at once;
     # each cycle's rewards are built once for all of them.
-    outcomes = evaluate_policies(
-        compiled,
-        [result.policy, *(policy[None] for policy in context.candidate_policies)],
-        context.objective,
-    )
-    optimal = _totals(outcomes[0])
+    # Groups of EVALUATION_GROUP policies bound the traces held at once.
+    policies = [result.policy, *(policy[None] for policy in context.candidate_policies)]
+    totals = [
+        _totals(outcome)
+        for i in range(0, len(policies), EVALUATION_GROUP)
+        for outcome in evaluate_policies(
+            compiled, policies[i : i + EVALUATION_GROUP], context.objective
+        )
+    ]
+    optimal = totals[0]
     candidates = (
-        np.stack([_totals(outcome).T for outcome in outcomes[1:]], axis=-1)
+        np.stack([total.T for total in totals[1:]], axis=-1)
         if len(context.candidate_policies)
         else np.empty((3, stop - start, 0))
     )
