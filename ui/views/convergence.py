@@ -217,9 +217,9 @@ st.markdown(rule + f" No choice changes after sweep {trace.stable_from()}.")
 last = trace.sweeps
 if int(st.session_state.get(SWEEP_KEY, 1)) > last:
     st.session_state[SWEEP_KEY] = last
-steps = st.columns([1, 1, 4])
-steps[0].button("◀ One sweep back", key="convergence_back", on_click=_step, args=(-1, last))
-steps[1].button("One sweep forward ▶", key="convergence_forward", on_click=_step, args=(1, last))
+steps = st.columns([1.3, 1.3, 3])
+steps[0].button("◀ Previous sweep", key="convergence_back", on_click=_step, args=(-1, last))
+steps[1].button("Next sweep ▶", key="convergence_forward", on_click=_step, args=(1, last))
 if last > 1:
     k = int(steps[2].slider("Chosen sweep", min_value=1, max_value=last, key=SWEEP_KEY))
 else:
