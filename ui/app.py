@@ -7,60 +7,53 @@ The cautions and the working model are set up here, so every view gets them.
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import streamlit as st
 
 from ui import working_model
 
-st.set_page_config(page_title="caredecide - research use only", layout="wide")
+# The page icon is a local file: a named icon would be fetched from an outside font
+# server (the app makes no outside request).
+ICON = Path(__file__).with_name("icon.png")
+st.set_page_config(page_title="caredecide - research use only", page_icon=str(ICON), layout="wide")
 
 VIEWS = [
-    st.Page(
-        "views/model.py", title="Model", icon=":material/edit_note:", url_path="model", default=True
-    ),
-    st.Page("views/policy.py", title="Policy", icon=":material/grid_on:", url_path="policy"),
+    st.Page("views/model.py", title="Model", url_path="model", default=True),
+    st.Page("views/policy.py", title="Policy", url_path="policy"),
     st.Page(
         "views/convergence.py",
         title="Convergence",
-        icon=":material/trending_down:",
         url_path="convergence",
     ),
-    st.Page(
-        "views/sensitivity.py", title="Sensitivity", icon=":material/tune:", url_path="sensitivity"
-    ),
-    st.Page(
-        "views/scenarios.py", title="Scenarios", icon=":material/layers:", url_path="scenarios"
-    ),
+    st.Page("views/sensitivity.py", title="Sensitivity", url_path="sensitivity"),
+    st.Page("views/scenarios.py", title="Scenarios", url_path="scenarios"),
     st.Page(
         "views/changes.py",
         title="What would change it",
-        icon=":material/help_center:",
         url_path="what-would-change",
     ),
     st.Page(
         "views/regions.py",
         title="Policy regions",
-        icon=":material/map:",
         url_path="policy-regions",
     ),
     st.Page(
         "views/cells.py",
         title="Transition cells",
-        icon=":material/table_view:",
         url_path="transition-cells",
     ),
     st.Page(
         "views/uncertainty.py",
         title="Uncertainty",
-        icon=":material/casino:",
         url_path="uncertainty",
     ),
     st.Page(
         "views/strategies.py",
         title="Strategies",
-        icon=":material/compare_arrows:",
         url_path="strategies",
     ),
-    st.Page("views/report.py", title="Report", icon=":material/description:", url_path="report"),
+    st.Page("views/report.py", title="Report", url_path="report"),
 ]
 
 page = st.navigation(VIEWS)

@@ -131,11 +131,16 @@ def edit_model_text(text: str) -> None:
     st.session_state[TEXT_KEY] = text
     _bump_revision()
     try:
-        drafts.save_draft(st.session_state[SOURCE_KEY], text)
+        saved = drafts.save_draft(st.session_state[SOURCE_KEY], text)
     except (OSError, ValueError) as error:
         st.session_state["cd_autosave_error"] = str(error)
     else:
         st.session_state.pop("cd_autosave_error", None)
+        if st.session_state.get(NOTICE_KEY):  # the restored draft moved on: say when
+            st.session_state[NOTICE_KEY] = (
+                f"Working on your autosaved draft of {source_label(saved.source)} "
+                f"(last saved {saved.saved_at} UTC)."
+            )
 
 
 def working_text() -> str:

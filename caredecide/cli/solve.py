@@ -119,10 +119,13 @@ def _print_table(compiled, result, outcome, summary: dict) -> None:
     totals.add_row("net monetary benefit", f"{outcome.net_monetary_benefit[0]:,.2f}", "")
     stdout.print(totals)
     solver = summary["solver"]
-    stdout.print(
-        f"Solver: {solver['message']}; error bound {solver['error_bound']:.3g} "
-        f"({summary['objective']['unit']})."
-    )
+    if result.method == "backward_induction":  # exact: no error bound to report
+        stdout.print(f"Solver: {solver['message']}.")
+    else:
+        stdout.print(
+            f"Solver: {solver['message']}; error bound {solver['error_bound']:.3g} "
+            f"({summary['objective']['unit']})."
+        )
 
 
 def solve_command(

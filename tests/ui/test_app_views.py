@@ -169,6 +169,23 @@ def test_the_autosaved_draft_is_restored_in_a_fresh_session(app):
     assert drafts.load_draft(fresh.session_state[working_model.SOURCE_KEY]) is None
 
 
+def test_the_draft_notice_shows_the_latest_save_time(app):
+    import json
+
+    _edit(app, "settings", {0: {"willingness_to_pay": 45000.0}})
+    source = app.session_state[working_model.SOURCE_KEY]
+    meta = drafts.load_draft(source).path.with_suffix(".json")
+    record = json.loads(meta.read_text(encoding="utf-8"))
+    meta.write_text(json.dumps({**record, "saved_at": "2020-01-01T00:00:00+00:00"}))
+    fresh = AppTest.from_file(APP, default_timeout=120).run()
+    assert any("2020-01-01T00:00:00+00:00" in i.value for i in fresh.info)
+    _edit(fresh, "settings", {0: {"willingness_to_pay": 46000.0}})
+    latest = drafts.load_draft(source).saved_at
+    notices = [i.value for i in fresh.info if "draft" in i.value]
+    assert notices and all("2020-01-01" not in n for n in notices)  # formerly kept
+    assert any(latest in n for n in notices)
+
+
 def test_broken_model_text_is_kept_and_its_syntax_error_shown_with_the_line(app):
     key = f"model_text_{app.session_state[working_model.REVISION_KEY]}"
     broken = app.session_state[working_model.TEXT_KEY].replace("[settings]", "[settings", 1)
