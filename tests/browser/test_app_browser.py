@@ -36,8 +36,33 @@ def _check_view(page) -> None:
     assert page.get_by_text(CAUTION_SHORT, exact=False).first.is_visible()
 
 
+LOCAL_HOSTS = {"127.0.0.1", "localhost", "::1"}
+
+
+def _block_outside_requests(page) -> list[str]:
+    """Route every request of the page: any to another host than the app's own is
+    blocked and recorded (the app must make no outside request)."""
+    from urllib.parse import urlparse
+
+    outside: list[str] = []
+
+    def guard(route) -> None:
+        url = route.request.url
+        if url.startswith(("data:", "blob:", "about:")) or urlparse(url).hostname in LOCAL_HOSTS:
+            route.continue_()
+        else:
+            outside.append(url)
+            route.abort()
+
+    page.context.route("**/*", guard)
+    return outside
+
+
 def test_every_view_renders_without_exception(app_url, page, artifacts):
-    """Visit every view listed in the sidebar (views added later are covered too)."""
+    """Visit every view listed in the sidebar (views added later are covered too), with
+    every outside request blocked: any attempt fails the test (formerly the page icon was
+    fetched from an outside font server)."""
+    outside = _block_outside_requests(page)
     page.goto(app_url, timeout=TIMEOUT_MS)
     _wait_until_done(page, "Model")
     links = page.locator("[data-testid='stSidebarNav'] a")
@@ -54,6 +79,8 @@ def test_every_view_renders_without_exception(app_url, page, artifacts):
             charts.first.locator("canvas, svg").first.wait_for(timeout=TIMEOUT_MS)
         page.screenshot(path=str(artifacts / f"app-{name or 'model'}.png"), full_page=True)
         _check_view(page)
+    page.wait_for_timeout(500)  # late requests (icons) come after the script
+    assert outside == [], f"outside requests attempted: {sorted(set(outside))}"
 
 
 def test_sidebar_navigation_reaches_each_view_in_one_session(app_url, page):
