@@ -26,6 +26,7 @@ from caredecide.chunks import (  # noqa: F401  (the one memory rule, re-exported
     run_chunks,
 )
 from caredecide.compile import compile_model
+from caredecide.compiled import CompiledModel
 from caredecide.evaluate import PolicyOutcome, evaluate_policy
 from caredecide.objective import Objective
 from caredecide.options import check_scalar
@@ -46,6 +47,39 @@ OUTCOME_FIELDS = ("totals", "trace")
 DEFAULT_KEEP = ("policy", "value", "action_gap", "indifferent", "totals")
 
 ChunkReducer = Callable[[int, int, PolicyResult, PolicyOutcome | None], object]
+
+
+@dataclass(frozen=True)
+class Solved:
+    """A compiled batch, its optimal policies and their cohort traces and totals."""
+
+    compiled: CompiledModel
+    solution: PolicyResult
+    outcome: PolicyOutcome
+
+
+def solve_and_evaluate(
+    model: Any,
+    objective: Objective,
+    *,
+    compiled: CompiledModel | None = None,
+    parameter_sets: Any = None,
+    **solve_options: Any,
+) -> Solved:
+    """compile -> solve -> evaluate the optimal policy: the one place the three are chained.
+
+    ``compiled`` is used when given (the base case from validation); otherwise the model
+    is compiled for ``parameter_sets`` (None: the base case). The core functions are
+    looked up at call time, so the verification battery's self-checks can replace one.
+    """
+    from caredecide.compile import compile_model
+    from caredecide.evaluate import evaluate_policy
+    from caredecide.solvers import solve
+
+    if compiled is None:
+        compiled = compile_model(model, parameter_sets)
+    solution = solve(compiled, objective, **solve_options)
+    return Solved(compiled, solution, evaluate_policy(compiled, solution.policy, objective))
 
 
 @dataclass

@@ -23,13 +23,12 @@ from typing import Any
 
 import numpy as np
 
+from caredecide.batch import solve_and_evaluate
 from caredecide.chunks import chunk_ranges, run_chunks
-from caredecide.compile import compile_model
 from caredecide.evaluate import evaluate_policy
 from caredecide.model import Model, Scenario
 from caredecide.modelfile.overrides import with_overrides
 from caredecide.objective import Objective
-from caredecide.solvers import solve
 
 BASE_CASE = "base case"
 """Name of the first row of every scenario table."""
@@ -63,9 +62,8 @@ class ScenarioJob:
 
     def one(self, name: str, label: str, model: Model) -> ScenarioOutcome:
         objective = self.objective or Objective.from_settings(model.settings)
-        compiled = compile_model(model)
-        solution = solve(compiled, objective)
-        outcome = evaluate_policy(compiled, solution.policy, objective)
+        done = solve_and_evaluate(model, objective)
+        compiled, solution, outcome = done.compiled, done.solution, done.outcome
         kept, note = None, ""
         if self.base_policy is not None:
             if (model.settings.cycle_years, model.n_cycles()) != self.base_shape:

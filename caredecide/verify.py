@@ -131,13 +131,10 @@ class _Solved:
 
 def _solve(model: Model, objective: Objective, parameter_sets=None, **options) -> _Solved:
     """Compile, solve and evaluate through the common core (looked up at call time)."""
-    from caredecide.compile import compile_model
-    from caredecide.evaluate import evaluate_policy
-    from caredecide.solvers import solve
+    from caredecide.batch import solve_and_evaluate
 
-    compiled = compile_model(model, parameter_sets)
-    result = solve(compiled, objective, **options)
-    return _Solved(compiled, result, evaluate_policy(compiled, result.policy, objective))
+    done = solve_and_evaluate(model, objective, parameter_sets=parameter_sets, **options)
+    return _Solved(done.compiled, done.solution, done.outcome)
 
 
 def _evaluate(model: Model, objective: Objective, policy: np.ndarray):

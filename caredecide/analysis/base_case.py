@@ -8,12 +8,12 @@ from typing import Any
 
 import pandas as pd
 
-from caredecide.compile import compile_model
+from caredecide.batch import solve_and_evaluate
 from caredecide.compiled import CompiledModel
-from caredecide.evaluate import PolicyOutcome, evaluate_policy
+from caredecide.evaluate import PolicyOutcome
 from caredecide.model import Model
 from caredecide.objective import Objective
-from caredecide.solvers import PolicyResult, solve
+from caredecide.solvers import PolicyResult
 
 
 @dataclass(frozen=True)
@@ -129,8 +129,5 @@ def analyse_base_case(
     """
     if objective is None:
         objective = Objective.from_settings(model.settings, willingness_to_pay)
-    if compiled is None:
-        compiled = compile_model(model)
-    solution = solve(compiled, objective, **solve_options)
-    outcome = evaluate_policy(compiled, solution.policy, objective)
-    return BaseCaseResult(model, objective, compiled, solution, outcome)
+    done = solve_and_evaluate(model, objective, compiled=compiled, **solve_options)
+    return BaseCaseResult(model, objective, done.compiled, done.solution, done.outcome)
