@@ -70,6 +70,13 @@ class ParsedModel:
     rests: list[Entry] = field(default_factory=list)
     """Remainder entries ("rest"): one per row at most."""
     rates: list[Entry] = field(default_factory=list)
+    moves: list[Entry] = field(default_factory=list)
+    """Decision-time move shares (``[moves]``), remainder entries excluded."""
+    move_rests: list[Entry] = field(default_factory=list)
+    under_cost: list[Entry] = field(default_factory=list)
+    """Costs per cycle of a state under an action (``[under_action]``)."""
+    under_qaly: list[Entry] = field(default_factory=list)
+    """QALY weight changes (per year) of a state under an action."""
     problems: list[Problem] = field(default_factory=list)
     derived_used: set[str] = field(default_factory=set)
     """``[derived]`` names written in the model's cells (before expansion)."""
@@ -84,11 +91,19 @@ class ParsedModel:
             *self.transitions,
             *self.rests,
             *self.rates,
+            *self.moves,
+            *self.move_rests,
+            *self.under_cost,
+            *self.under_qaly,
         ]
 
     @property
     def transitions_use_time(self) -> bool:
-        return any(e.uses_time for e in (*self.transitions, *self.rates))
+        return any(e.uses_time for e in (*self.transitions, *self.rates, *self.moves))
+
+    @property
+    def under_action_uses_time(self) -> bool:
+        return any(e.uses_time for e in (*self.under_cost, *self.under_qaly))
 
     @property
     def states_use_time(self) -> bool:
@@ -186,6 +201,39 @@ def parse_model_expressions(model: Model) -> ParsedModel:
                         parsed.rates.append(entry)
                     else:
                         parsed.transitions.append(entry)
+    for action_id, rows in model.moves.items():
+        for from_id, row in rows.items():
+            for to_id, value in row.items():
+                if (action_id, from_id) not in defined or to_id not in state_index:
+                    continue  # reported by validation
+                entry = parse(
+                    value,
+                    f"moves.{action_id}.{from_id}.{to_id}",
+                    allow_rest=True,
+                    action=action_index[action_id],
+                    state=state_index[from_id],
+                    target=state_index[to_id],
+                )
+                if entry is not None:
+                    (parsed.move_rests if entry.expression.is_rest else parsed.moves).append(entry)
+    for action_id, rows in model.under_action.items():
+        for state_id, fields in rows.items():
+            for key, value in fields.items():
+                bucket = {"cost": parsed.under_cost, "qaly_weight_change": parsed.under_qaly}
+                if (
+                    action_id not in action_index
+                    or state_id not in state_index
+                    or key not in bucket
+                ):
+                    continue  # reported by validation
+                entry = parse(
+                    value,
+                    f"under_action.{action_id}.{state_id}.{key}",
+                    action=action_index[action_id],
+                    state=state_index[state_id],
+                )
+                if entry is not None:
+                    bucket[key].append(entry)
     return parsed
 
 
@@ -330,6 +378,8 @@ def compile_model(
     absorbing = np.array([s.absorbing for s in model.states], dtype=bool)
     allowed = _allowed_matrix(model, absorbing)
     defined_rows = (allowed & ~absorbing[:, None]).T  # (A, S): rows the model must give
+    for a, s in _moved_away(model):  # wholly moved: the destination's rows apply instead
+        defined_rows[a, s] = False
 
     # Occupancy rewards of cycles 0..T-1 (`cycle`, `age` as in the transitions).
     qaly_weight = evaluator.stack(parsed.state_qaly, tq)  # (S, D, Tq)
@@ -362,6 +412,13 @@ def compile_model(
         )
 
     transition = _transitions(model, parsed, evaluator, defined_rows, tp, problems)
+    move = _moves(model, parsed, evaluator, allowed, tp, problems)
+    if move is not None and not problems:
+        transition = _after_moves(transition, move, parsed, allowed, absorbing)
+    n = model.n_cycles()
+    tr = n if (n is not None and parsed.under_action_uses_time) else 1
+    under_cost = _under_action(model, parsed.under_cost, evaluator, tr, problems, cost=True)
+    under_qaly = _under_action(model, parsed.under_qaly, evaluator, tr, problems, cost=False)
     if problems:
         raise ModelError(problems[: MAX_PROBLEMS_PER_RULE * 4], file=model.file_label)
 
@@ -393,7 +450,139 @@ def compile_model(
         absorbing=absorbing,
         ordered_states=tuple(settings.severity_order),
         state_groups=expansion.groups,
+        move=move,
+        state_action_qaly=None if under_qaly is None else under_qaly * settings.cycle_years,
+        state_action_cost=under_cost,
     )
+
+
+def _moved_away(model: Model) -> list[tuple[int, int]]:
+    """(action, state) indices whose move sends the whole cohort elsewhere (no own row)."""
+    from caredecide.modelfile.validator import moves_everyone
+
+    actions = {a: i for i, a in enumerate(model.action_ids)}
+    states = {s: i for i, s in enumerate(model.state_ids)}
+    return [
+        (actions[a], states[s])
+        for a, rows in model.moves.items()
+        for s in rows
+        if a in actions and s in states and moves_everyone(model, a, s)
+    ]
+
+
+def _moves(
+    model: Model,
+    parsed: ParsedModel,
+    evaluator: _Evaluator,
+    allowed: np.ndarray,
+    tp: int,
+    problems: list[Problem],
+) -> np.ndarray | None:
+    """(D, Tp, A, S, S) decision-time moves (identity rows where none), or None."""
+    if not parsed.moves and not parsed.move_rests:
+        return None
+    n_states, n_actions = len(model.states), len(model.actions)
+    M = np.zeros((evaluator.n_draws, tp, n_actions, n_states, n_states))
+    M[..., np.arange(n_states), np.arange(n_states)] = 1.0
+    a, s, _ = _indices([*parsed.moves, *parsed.move_rests])
+    M[:, :, a, s, :] = 0.0  # rows the model gives start empty
+    if parsed.moves:
+        shares = evaluator.stack(parsed.moves, tp)  # (n, D, Tp)
+        problems += evaluator.check_finite(parsed.moves, shares)
+        problems += evaluator.check_range(
+            parsed.moves, shares, low=0.0, high=1.0, what="share", expected="a share in [0, 1]"
+        )
+        a, s, to = _indices(parsed.moves)
+        M[:, :, a, s, to] = np.moveaxis(shares, 0, -1)
+    if parsed.move_rests:
+        a, s, to = _indices(parsed.move_rests)
+        remainder = 1.0 - M.sum(axis=-1)[:, :, a, s]
+        problems += evaluator.check_range(
+            parsed.move_rests,
+            np.moveaxis(remainder, -1, 0),
+            low=-ROW_TOLERANCE,
+            high=np.inf,
+            what="remainder",
+            expected="the other shares of the move to sum to at most 1 (remainder >= 0)",
+        )
+        M[:, :, a, s, to] = np.clip(remainder, 0.0, 1.0)
+    row_sums = M.sum(axis=-1)
+    off = np.abs(row_sums - 1.0) > ROW_TOLERANCE
+    if off.any() and not problems:
+        for a, s in np.argwhere(off.any(axis=(0, 1)))[:MAX_PROBLEMS_PER_RULE]:
+            d, t = np.argwhere(off[:, :, a, s])[0]
+            problems.append(
+                Problem(
+                    f"moves.{model.action_ids[a]}.{model.state_ids[s]}",
+                    f"shares sum to {float(row_sums[d, t, a, s]):.12g} "
+                    f"{evaluator.place(int(d), int(t), length=tp)}; expected 1 "
+                    f'(within {ROW_TOLERANCE:g}; use "rest" for the share that stays)',
+                )
+            )
+    return M
+
+
+def rows_after_move(allowed: np.ndarray, absorbing: np.ndarray) -> np.ndarray:
+    """(A, S) int: the action whose rows apply in state ``s`` after a move under ``a``.
+
+    The same action where it is allowed; otherwise the one action allowed there (the
+    validator refuses a destination with several and not this one). Absorbing states keep
+    the cohort under every action.
+    """
+    n_states, n_actions = allowed.shape
+    rows = np.tile(np.arange(n_actions)[:, None], (1, n_states))
+    for s in range(n_states):
+        choices = np.flatnonzero(allowed[s])
+        if not absorbing[s] and choices.size == 1:
+            rows[~allowed[s], s] = choices[0]
+    return rows
+
+
+def _after_moves(
+    P: np.ndarray, M: np.ndarray, parsed: ParsedModel, allowed: np.ndarray, absorbing: np.ndarray
+) -> np.ndarray:
+    """Transitions with each moved row replaced by ``move row @ rows of the destinations``."""
+    a, s, _ = _indices([*parsed.moves, *parsed.move_rests])
+    moved = np.unique(np.stack([a, s]), axis=1)  # (2, n) distinct (action, state) rows
+    rows = rows_after_move(allowed, absorbing)  # (A, S)
+    n_states = P.shape[-1]
+    # after[:, :, n, s1, :] = the row of s1 under the action that applies after the move
+    after = P[:, :, rows[moved[0]], np.arange(n_states)[None, :], :]  # (D, Tp, n, S, S)
+    out = P.copy()
+    out[:, :, moved[0], moved[1], :] = np.einsum(
+        "dtnj,dtnjk->dtnk", M[:, :, moved[0], moved[1], :], after
+    )
+    return out
+
+
+def _under_action(
+    model: Model,
+    entries: list[Entry],
+    evaluator: _Evaluator,
+    length: int,
+    problems: list[Problem],
+    *,
+    cost: bool,
+) -> np.ndarray | None:
+    """(D, Tr, S, A) costs (or QALY weight changes per year) of a state under an action."""
+    if not entries:
+        return None
+    values = evaluator.stack(entries, length)  # (n, D, Tr)
+    problems += evaluator.check_finite(entries, values)
+    if cost:
+        may_be_negative = np.array([model.states[e.state].negative_cost_allowed for e in entries])
+        problems += evaluator.check_range(
+            [e for e, neg in zip(entries, may_be_negative, strict=True) if not neg],
+            values[~may_be_negative],
+            low=0.0,
+            high=np.inf,
+            what="cost",
+            expected="a cost >= 0 (set negative_cost_allowed = true on the state for a saving)",
+        )
+    out = np.zeros((evaluator.n_draws, length, len(model.states), len(model.actions)))
+    a, s, _ = _indices(entries)
+    out[:, :, s, a] = np.moveaxis(values, 0, -1)
+    return out
 
 
 def _allowed_matrix(model: Model, absorbing: np.ndarray) -> np.ndarray:

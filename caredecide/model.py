@@ -283,6 +283,14 @@ class Model:
     """``transitions[action][from_state][to_state]`` = probability per cycle (or "rest")."""
     rates: Mapping[str, Mapping[str, Mapping[str, ExpressionText]]] = field(default_factory=dict)
     """``rates[action][from_state][to_state]`` = rate per year (competing exits)."""
+    moves: Mapping[str, Mapping[str, Mapping[str, ExpressionText]]] = field(default_factory=dict)
+    """``moves[action][from_state][to_state]`` = share of the cohort the action moves there
+    when it is taken, before the cycle's transitions (decision-time move; "rest" allowed)."""
+    under_action: Mapping[str, Mapping[str, Mapping[str, ExpressionText]]] = field(
+        default_factory=dict
+    )
+    """``under_action[action][state]`` = ``{"cost": per cycle, "qaly_weight_change": per
+    year}``: occupancy rewards of the state for the cohort that took the action."""
     parameters: Mapping[str, Parameter] = field(default_factory=dict)
     groups: Mapping[str, DirichletGroup] = field(default_factory=dict)
     mortality: MortalitySpec | None = None

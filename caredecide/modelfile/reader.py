@@ -48,6 +48,8 @@ TOP_KEYS = (
     "actions",
     "transitions",
     "rates",
+    "moves",
+    "under_action",
     "parameters",
     "groups",
     "mortality",
@@ -294,6 +296,8 @@ def _build_model(data: Mapping[str, Any], base_dir: Path) -> tuple[Model, list[P
 
     transitions = _read_rows(r, data.get("transitions", {}), "transitions")
     rates = _read_rows(r, data.get("rates", {}), "rates")
+    moves = _read_rows(r, data.get("moves", {}), "moves")
+    under_action = _read_rows(r, data.get("under_action", {}), "under_action")
 
     parameters: dict[str, Parameter] = {}
     for name, raw in r.table(data.get("parameters", {}), "parameters", None).items():
@@ -331,6 +335,8 @@ def _build_model(data: Mapping[str, Any], base_dir: Path) -> tuple[Model, list[P
         actions=tuple(actions),
         transitions=transitions,
         rates=rates,
+        moves=moves,
+        under_action=under_action,
         parameters=parameters,
         groups=groups,
         mortality=mortality,

@@ -65,6 +65,8 @@ def structural_problems(model: Model) -> list[Problem]:
     _check_settings(model, add)
     _check_states_and_actions(model, add)
     _check_rows(model, add)
+    _check_moves(model, add)
+    _check_under_action(model, add)
     _check_parameters(model, add)
     problems.extend(distribution_problems(model))
     problems.extend(bound_problems(model))
@@ -282,7 +284,7 @@ def _check_rows(model: Model, add) -> None:
             given = state_id in model.transitions.get(action.id, {}) or state_id in model.rates.get(
                 action.id, {}
             )
-            if not given:
+            if not given and not moves_everyone(model, action.id, state_id):
                 add(
                     f"transitions.{action.id}.{state_id}",
                     f"missing row: action {action.id!r} is allowed in {state_id!r}; expected "
@@ -362,6 +364,86 @@ def _check_parameters(model: Model, add) -> None:
                 distribution_from_spec(p.distribution, where=f"{w}.distribution")
             except DistributionError as error:
                 add(f"{w}.distribution", _strip_where(str(error), f"{w}.distribution"))
+
+
+def moves_everyone(model: Model, action_id: str, state_id: str) -> bool:
+    """True when ``[moves.<action>.<state>]`` moves the whole cohort elsewhere (no share
+    stays), so the state needs no row of its own under the action."""
+    row = model.moves.get(action_id, {}).get(state_id)
+    return row is not None and state_id not in row
+
+
+def _check_moves(model: Model, add) -> None:
+    """``[moves.<action>.<from>]``: known names, the action allowed in ``from``, one "rest",
+    and rows that exist for the cycle after the move (no chained moves)."""
+    from caredecide.expressions import REST_KEYWORD
+
+    state_ids = set(model.state_ids)
+    absorbing = {s.id for s in model.states if s.absorbing}
+    by_id = {a.id: a for a in model.actions}
+    allowed_in = {a.id: set(model.allowed_states(a)) for a in model.actions}
+    for action_id, rows in model.moves.items():
+        if action_id not in by_id:
+            add(f"moves.{action_id}", _unknown("action", action_id, by_id, named=False))
+            continue
+        for from_id, row in rows.items():
+            where = f"moves.{action_id}.{from_id}"
+            if from_id not in state_ids:
+                add(where, _unknown("state", from_id, state_ids))
+                continue
+            if from_id in absorbing or from_id not in allowed_in[action_id]:
+                add(
+                    where,
+                    f"action {action_id!r} is not allowed in {from_id!r}, so it cannot move the "
+                    f"cohort from there; expected a state of its allowed_in "
+                    f"{sorted(allowed_in[action_id])}",
+                )
+                continue
+            rests = [k for k, v in row.items() if isinstance(v, str) and v.strip() == REST_KEYWORD]
+            if len(rests) > 1:
+                add(where, f"{len(rests)} entries use {REST_KEYWORD!r} ({rests}); at most one may")
+            for to_id in row:
+                if to_id not in state_ids:
+                    add(f"{where}.{to_id}", _unknown("state", to_id, state_ids))
+                    continue
+                if to_id == from_id or to_id in absorbing:
+                    continue
+                if to_id in rows:
+                    add(
+                        f"{where}.{to_id}",
+                        f"{to_id!r} is itself moved by {action_id!r}; a decision moves the "
+                        "cohort once, expected a destination without a move of its own",
+                    )
+                    continue
+                there = [a.id for a in model.actions if to_id in allowed_in[a.id]]
+                if action_id not in there and len(there) != 1:
+                    add(
+                        f"{where}.{to_id}",
+                        f"after the move the cycle's transitions are those of {to_id!r} under "
+                        f"{action_id!r}, which is not allowed there, and {to_id!r} allows "
+                        f"{sorted(there)}; expected {action_id!r} allowed in {to_id!r}, or a "
+                        "single action there",
+                    )
+
+
+def _check_under_action(model: Model, add) -> None:
+    """``[under_action.<action>.<state>]``: known action and state, keys cost and
+    qaly_weight_change."""
+    keys = ("cost", "qaly_weight_change")
+    state_ids = set(model.state_ids)
+    action_ids = set(model.action_ids)
+    for action_id, rows in model.under_action.items():
+        if action_id not in action_ids:
+            add(f"under_action.{action_id}", _unknown("action", action_id, action_ids, named=False))
+            continue
+        for state_id, fields in rows.items():
+            where = f"under_action.{action_id}.{state_id}"
+            if state_id not in state_ids:
+                add(where, _unknown("state", state_id, state_ids))
+                continue
+            for key in fields:
+                if key not in keys:
+                    add(f"{where}.{key}", f"unknown field {key!r}; expected one of {keys}")
 
 
 def _unknown(kind: str, name: str, known, *, named: bool = True) -> str:

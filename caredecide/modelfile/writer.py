@@ -88,7 +88,13 @@ def dumps_model(model: Model) -> str:
             cost_per_cycle=action.cost_per_cycle,
         )
         _section(out, "[[actions]]", fields)
-    for table_name, table in (("transitions", model.transitions), ("rates", model.rates)):
+    tables = (
+        ("transitions", model.transitions),
+        ("rates", model.rates),
+        ("moves", model.moves),
+        ("under_action", model.under_action),
+    )
+    for table_name, table in tables:
         for action_id, rows in table.items():
             if not rows:  # an action with no rows yet (e.g. being edited) stays in the file
                 _section(out, f"[{table_name}.{_key(action_id)}]", {})
