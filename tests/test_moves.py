@@ -174,3 +174,21 @@ def test_a_chained_move_is_refused():
     data["moves"]["start"]["sick_tx"] = {"dead": 1.0}
     with pytest.raises(ModelError, match=r"moves\.start\.sick\.sick_tx.*itself moved"):
         load_dict(data)
+
+
+def test_a_format_one_cost_by_cycle_warns_what_cycle_means_now():
+    from caredecide.modelfile import validate_model
+
+    # A format-1 file: costs were read at boundaries then, so the meaning may be misread.
+    data = _model(**{"settings.within_cycle": "end", "format": 1})
+    warnings = validate_model(load_dict(data))
+    where = [w.where for w in warnings]
+    assert "under_action.continue.sick_tx.cost" in where
+    text = next(w.message for w in warnings if w.where == "under_action.continue.sick_tx.cost")
+    assert "'cycle < 2' means the first two cycles" in text and "'end'" in text
+    # Start-of-cycle counting: the value and the count fall on the same boundary; no warning.
+    warnings = validate_model(load_dict(_model(format=1)))
+    assert "under_action.continue.sick_tx.cost" not in [w.where for w in warnings]
+    # A format-2 file is written for the one meaning documented now; no warning.
+    warnings = validate_model(load_dict(_model(**{"settings.within_cycle": "end"})))
+    assert "under_action.continue.sick_tx.cost" not in [w.where for w in warnings]

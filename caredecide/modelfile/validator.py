@@ -571,12 +571,45 @@ def validate_and_compile(model: Model) -> ValidatedModel:
     warnings = (
         records
         + _unit_warnings(model, parsed)
+        + cycle_meaning_warnings(model, parsed)
         + _warnings(model, compiled)
         + repeated_charge_warnings(model, compiled)
         + unused_parameter_warnings(model, used)
         + unused_derived_warnings(model, parsed.derived_used)
     )
     return ValidatedModel(warnings, compiled)
+
+
+def cycle_meaning_warnings(model: Model, parsed) -> list[ModelWarningRecord]:
+    """Occupancy rewards that depend on ``cycle``, ``years`` or ``age``: say what they mean.
+
+    A cost or QALY weight of cycle ``t`` sees ``cycle = t`` (age at the start of the cycle)
+    and, with any method but ``start``, is also counted on the cohort at the END of cycle
+    ``t``. Format 1 evaluated these at boundaries (``cycle`` the boundary index), so a
+    format-1 file that uses them with such a method may have been written for the other
+    meaning (off by one cycle at the end of each cycle): warn there.
+    """
+    method = model.settings.within_cycle
+    if method == "start" or model.format_version != PREVIOUS_FORMAT_VERSION:
+        return []
+    records = []
+    entries = (*parsed.state_qaly, *parsed.state_cost, *parsed.under_cost, *parsed.under_qaly)
+    for entry in entries:
+        used = sorted(entry.expression.names & {"cycle", "years", "age"})
+        if used:
+            records.append(
+                ModelWarningRecord(
+                    entry.where,
+                    f"{entry.expression.source!r} uses {', '.join(used)}, which format 1 read "
+                    "at cycle boundaries; now cycle = t is the "
+                    f"cycle the value belongs to (age at its start), and with within_cycle = "
+                    f"{method!r} it is also counted on the cohort at the end of that cycle "
+                    "(boundary t + 1); 'cycle < 2' means the first two cycles, not boundaries "
+                    "0 and 1",
+                    {"names": used, "within_cycle": method},
+                )
+            )
+    return records
 
 
 def _unit_warnings(model: Model, parsed) -> list[ModelWarningRecord]:
