@@ -414,7 +414,7 @@ def compile_model(
     transition = _transitions(model, parsed, evaluator, defined_rows, tp, problems)
     move = _moves(model, parsed, evaluator, allowed, tp, problems)
     if move is not None and not problems:
-        transition = _after_moves(transition, move, parsed, allowed, absorbing)
+        transition = apply_moves(transition, move, allowed, absorbing)
     n = model.n_cycles()
     tr = n if (n is not None and parsed.under_action_uses_time) else 1
     under_cost = _under_action(model, parsed.under_cost, evaluator, tr, problems, cost=True)
@@ -538,14 +538,21 @@ def rows_after_move(allowed: np.ndarray, absorbing: np.ndarray) -> np.ndarray:
     return rows
 
 
-def _after_moves(
-    P: np.ndarray, M: np.ndarray, parsed: ParsedModel, allowed: np.ndarray, absorbing: np.ndarray
+def apply_moves(
+    P: np.ndarray, M: np.ndarray, allowed: np.ndarray, absorbing: np.ndarray
 ) -> np.ndarray:
-    """Transitions with each moved row replaced by ``move row @ rows of the destinations``."""
-    a, s, _ = _indices([*parsed.moves, *parsed.move_rests])
-    moved = np.unique(np.stack([a, s]), axis=1)  # (2, n) distinct (action, state) rows
-    rows = rows_after_move(allowed, absorbing)  # (A, S)
+    """Transitions with each moved row replaced by ``move row @ rows of the destinations``.
+
+    ``P`` (D, Tp, A, S, S) holds the rows before the moves (a wholly moved row a self-loop
+    placeholder), ``M`` (D, Tp, A, S, S) the moves; rows where ``M`` is the identity are
+    left as they are. Also used by :mod:`caredecide.sensitivity.cell_scaling`.
+    """
     n_states = P.shape[-1]
+    identity = np.eye(n_states)
+    moved = np.nonzero((M != identity).any(axis=(0, 1, 4)))  # (action, state) moved rows
+    if moved[0].size == 0:
+        return P
+    rows = rows_after_move(allowed, absorbing)  # (A, S)
     # after[:, :, n, s1, :] = the row of s1 under the action that applies after the move
     after = P[:, :, rows[moved[0]], np.arange(n_states)[None, :], :]  # (D, Tp, n, S, S)
     out = P.copy()
@@ -553,6 +560,24 @@ def _after_moves(
         "dtnj,dtnjk->dtnk", M[:, :, moved[0], moved[1], :], after
     )
     return out
+
+
+def transitions_before_moves(model: Model) -> np.ndarray:
+    """(1, Tp, A, S, S) base-case transitions of an expanded model before the moves apply."""
+    parsed = parse_model_expressions(model)
+    values, n_draws = parameter_batch(model)
+    evaluator = _Evaluator(model, values, n_draws)
+    absorbing = np.array([s.absorbing for s in model.states], dtype=bool)
+    defined_rows = (_allowed_matrix(model, absorbing) & ~absorbing[:, None]).T
+    for a, s in _moved_away(model):
+        defined_rows[a, s] = False
+    problems: list[Problem] = []
+    P = _transitions(
+        model, parsed, evaluator, defined_rows, _time_lengths(model, parsed)[0], problems
+    )
+    if problems:
+        raise ModelError(problems, file=model.file_label)
+    return P
 
 
 def _under_action(

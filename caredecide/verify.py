@@ -217,14 +217,15 @@ def with_settings(model: Model, **changes) -> Model:
 def with_no_effect(model: Model, action_id: str, reference_id: str) -> Model:
     """``action_id`` made identical to ``reference_id`` wherever both are allowed.
 
-    Its transition rows (probabilities or rates), one-off cost, one-off QALY loss and
-    per-cycle cost are those of the reference action: no effect, cost or harm of its own.
+    Its transition rows (probabilities or rates), decision-time moves, costs and QALYs
+    under the action, one-off cost, one-off QALY loss and per-cycle cost are those of the
+    reference action: no effect, cost or harm of its own.
     """
     action = next(a for a in model.actions if a.id == action_id)
     reference = next(a for a in model.actions if a.id == reference_id)
     shared = set(model.allowed_states(action)) & set(model.allowed_states(reference))
     tables: dict[str, Any] = {}
-    for name in ("transitions", "rates"):
+    for name in ("transitions", "rates", "moves", "under_action"):
         table = {k: dict(v) for k, v in getattr(model, name).items()}
         own = {s: row for s, row in table.get(action_id, {}).items() if s not in shared}
         copied = {s: dict(row) for s, row in table.get(reference_id, {}).items() if s in shared}

@@ -38,9 +38,11 @@ from caredecide.compile import (
     _RATE_ROWS,
     _Evaluator,
     _fill_rate_rows,
+    apply_moves,
     compile_model,
     parameter_batch,
     parse_model_expressions,
+    transitions_before_moves,
 )
 from caredecide.compiled import CompiledModel
 from caredecide.errors import ModelError, Problem
@@ -143,6 +145,11 @@ class CellScaler:
             raise ModelError(parsed.problems, file=model.file_label)
         self.model = model
         self.base = compile_model(model)
+        # Cells are scaled in the rows before the decision-time moves, which are applied
+        # again afterwards (a moved row follows the rows of its destinations).
+        self._before = (
+            self.base.transition if self.base.move is None else transitions_before_moves(model)
+        )
         self._rate_entries = parsed.rates
         tp = self.base.transition.shape[1]
         if parsed.rates:
@@ -153,7 +160,7 @@ class CellScaler:
         self.cells, self.fixed = self._find_cells(parsed)
 
     def _find_cells(self, parsed: Any) -> tuple[list[TransitionCell], list[FixedCell]]:
-        P = self.base.transition[0]  # (Tp, A, S, S)
+        P = self._before[0]  # (Tp, A, S, S)
         state_ids, action_ids = self.base.state_ids, self.base.action_ids
         rests = {(e.action, e.state): e.target for e in parsed.rests}
         cells: list[TransitionCell] = []
@@ -243,8 +250,8 @@ class CellScaler:
             raise ValueError(f"which {which.shape} and factors {factors.shape} differ in shape")
         self._check_factors(which, factors)
         batch = self.base.take_draws(np.zeros(which.size, dtype=int))
-        P = np.array(batch.transition)  # (N, Tp, A, S, S), a copy
-        P0 = self.base.transition[0]
+        P = np.repeat(self._before, which.size, axis=0)  # (N, Tp, A, S, S), a copy
+        P0 = self._before[0]
         rate_rows = []
         for c in np.unique(which):
             cell = self.cells[c]
@@ -274,6 +281,8 @@ class CellScaler:
                 block, self._rate_entries, rates, self.model.settings.cycle_years, **_RATE_ROWS
             )
             P[rows] = block
+        if batch.move is not None:
+            P = apply_moves(P, batch.move, batch.allowed, batch.absorbing)
         return replace(batch, transition=P)
 
     def _check_factors(self, which: np.ndarray, factors: np.ndarray) -> None:
