@@ -155,3 +155,18 @@ def test_an_unused_definition_is_a_warning_one_used_through_another_is_not():
     unused = [w for w in validate_model(load_dict(data)) if w.extra.get("rule") == "unused_derived"]
     assert [w.where for w in unused] == ["derived.c_spare"]
     assert "'c_spare' is not used by any cell of the model" in unused[0].message
+
+
+def test_check_lists_the_definitions(tmp_path):
+    import tomli_w
+    from typer.testing import CliRunner
+
+    from caredecide.cli import app
+
+    data = with_derived(p_die_treated="with_rr(p_die_sick, rr_treat)")
+    data["transitions"]["treat"]["sick"]["dead"] = "p_die_treated"
+    path = tmp_path / "derived.toml"
+    path.write_text(tomli_w.dumps(data), encoding="utf-8")
+    run = CliRunner().invoke(app, ["check", str(path)])
+    assert run.exit_code == 0, run.output
+    assert "Derived values" in run.stdout and "with_rr(p_die_sick, rr_treat)" in run.stdout

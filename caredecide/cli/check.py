@@ -111,6 +111,13 @@ def print_summary(model) -> None:
             kind, source = f"Dirichlet group {group.name}", group.source
         parameters.add_row(name, f"{value:g}", kind, f"{low:.4g} - {high:.4g}", plain(source))
     stdout.print(parameters)
+    if model.derived:
+        derived = Table(title="Derived values ([derived])")
+        for column in ("name", "expression"):
+            derived.add_column(column)
+        for name, expression in model.derived.items():
+            derived.add_row(name, _value_text(expression))
+        stdout.print(derived)
     if model.mortality is not None:
         m = model.mortality
         law = (
