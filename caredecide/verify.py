@@ -627,7 +627,7 @@ def check_solvers_agree(model: Model, objective: Objective) -> tuple[str, str]:
         worst = max(worst, gap)
     return (
         PASS if ok else FAIL,
-        f"largest value difference {worst:.3g}; iterations "
+        f"largest value difference {worst:.3g}; sweeps "
         + ", ".join(f"{m} {r.iterations}" for m, r in zip(methods, results, strict=True)),
     )
 

@@ -91,7 +91,7 @@ class BaseCaseResult:
             "structure": self.structure,
             "solver": {
                 "method": solution.method,
-                "iterations": int(solution.iterations),
+                "sweeps": int(solution.iterations),
                 "success": bool(solution.success),
                 "message": solution.message,
                 "error_bound": float(solution.error_bound.max()),

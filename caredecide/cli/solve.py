@@ -72,7 +72,7 @@ def build_summary(path: Path, compiled, result, outcome) -> dict:
         "totals": {k: _finite_or_none(v) for k, v in outcome.totals(0).items()},
         "solver": {
             "method": result.method,
-            "iterations": int(result.iterations),
+            "sweeps": int(result.iterations),
             "tolerance": result.tolerance,
             "relative_tolerance": result.relative,
             "error_bound": float(result.error_bound.max()),

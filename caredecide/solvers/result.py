@@ -156,7 +156,7 @@ class PolicyResult:
             {
                 "message": self.message,
                 "objective": f"{self.objective.describe()} (values in {self.objective.unit})",
-                "iterations": self.iterations,
+                "sweeps": self.iterations,
                 "tolerance": f"{self.tolerance:g} ({'relative' if self.relative else 'absolute'})",
                 "error_bound (largest)": f"{float(np.max(self.error_bound)):.3g}",
                 "states": ", ".join(self.state_ids),

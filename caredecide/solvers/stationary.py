@@ -403,7 +403,7 @@ def solve_stationary(
         Q, decision_states, tie_absolute, tie_relative, uncertainty=2.0 * bound
     )
     if converged:
-        message = f"{method.replace('_', ' ')} converged in {iterations} iterations"
+        message = f"{method.replace('_', ' ')} converged in {iterations} sweeps"
         if form == "sparse":
             message += " (sparse transitions)"
     else:

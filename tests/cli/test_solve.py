@@ -56,7 +56,7 @@ def test_writes_policy_trace_and_summary(tmp_path, library_run):
     summary = json.loads((tmp_path / "summary.json").read_text())
     assert summary["model_sha256"] == hashlib.sha256(open(DEMO, "rb").read()).hexdigest()
     assert summary["solver"]["method"] == "backward_induction"
-    assert summary["solver"]["iterations"] == result.iterations
+    assert summary["solver"]["sweeps"] == result.iterations
     assert summary["totals"]["net_monetary_benefit"] == pytest.approx(
         outcome.net_monetary_benefit[0], rel=1e-12
     )
