@@ -109,6 +109,15 @@ def test_the_demo_pattern_is_flagged_for_each_state_it_repeats_in():
     assert "can be paid in consecutive cycles" in first
 
 
+def test_the_rewritten_demo_moves_the_cohort_and_is_not_flagged():
+    # "Start treatment" now moves stage_k to stage_k on treatment at the decision, so the
+    # treated cohort leaves the state where the one-off charge is made.
+    from synthetic_cohort import demo_model_path
+
+    warnings = validate_model(load_model(demo_model_path()))
+    assert not [w for w in warnings if w.extra.get("rule") == "repeated_one_off"]
+
+
 def test_repeated_charge_needs_mass_kept_in_the_same_state():
     # The small model: treat in `sick` keeps 1 - 0.2 x 0.5 ... of the cohort in `sick`.
     data = small_model_dict()
