@@ -216,15 +216,14 @@ def parse_model_expressions(model: Model) -> ParsedModel:
                 )
                 if entry is not None:
                     (parsed.move_rests if entry.expression.is_rest else parsed.moves).append(entry)
+    under: dict[str, list[Entry]] = {
+        "cost": parsed.under_cost,
+        "qaly_weight_change": parsed.under_qaly,
+    }
     for action_id, rows in model.under_action.items():
         for state_id, fields in rows.items():
             for key, value in fields.items():
-                bucket = {"cost": parsed.under_cost, "qaly_weight_change": parsed.under_qaly}
-                if (
-                    action_id not in action_index
-                    or state_id not in state_index
-                    or key not in bucket
-                ):
+                if action_id not in action_index or state_id not in state_index or key not in under:
                     continue  # reported by validation
                 entry = parse(
                     value,
@@ -233,7 +232,7 @@ def parse_model_expressions(model: Model) -> ParsedModel:
                     state=state_index[state_id],
                 )
                 if entry is not None:
-                    bucket[key].append(entry)
+                    under[key].append(entry)
     return parsed
 
 

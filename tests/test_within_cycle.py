@@ -121,3 +121,35 @@ def test_simpson_has_no_stationary_form():
 def test_unknown_method_is_named():
     with pytest.raises(ValueError, match="'midpoint' is unknown"):
         cycle_weights("midpoint", 3)
+
+
+def test_cycle_in_a_cost_means_the_cycle_as_in_the_transitions():
+    # One meaning of `cycle` (docs/model-file.md timeline): a cost written when(cycle < 2, ...)
+    # is paid in cycles 0 and 1. End-of-cycle counting, 3 cycles, half dying each cycle, no
+    # discount: the cost is counted at the ends of cycles 0 and 1, boundaries 1 and 2:
+    #   100 x 0.5 + 100 x 0.25 = 75 (read at boundary indices it would be 100 x 0.5 = 50).
+    from caredecide.compile import compile_model
+    from tests.conftest import load_dict
+
+    data = {
+        "format": 2,
+        "title": "Synthetic test model",
+        "settings": {
+            "cycle_years": 1.0,
+            "horizon_cycles": 3,
+            "start": "alive",
+            "objective": "qalys",
+            "within_cycle": "end",
+        },
+        "states": [
+            {"id": "alive", "qaly_weight": 1.0, "cost": "when(cycle < 2, 100, 0)"},
+            {"id": "dead", "absorbing": True},
+        ],
+        "actions": [{"id": "wait"}],
+        "transitions": {"wait": {"alive": {"dead": "when(cycle < 2, 0.5, 1)", "alive": "rest"}}},
+        "parameters": {},
+    }
+    outcome = evaluate_policy(compile_model(load_dict(data)), 0, QALYS)
+    assert outcome.costs[0] == pytest.approx(75.0, rel=1e-12)
+    # The transition used the same cycles: half die in cycles 0 and 1, everyone in cycle 2.
+    np.testing.assert_allclose(outcome.trace[0, :, 0], [1.0, 0.5, 0.25, 0.0])
