@@ -861,6 +861,17 @@ class _Evaluator:
             # 12 significant digits: -0.2 rather than -0.19999999999999998.
             value = float(f"{float(values[i, d, t]):.12g}")
             place = self.place(int(d), int(t), boundaries=boundaries, length=values.shape[2])
+            source = str(entries[i].expression.source).strip()
+            if source in self._parameters:
+                # The entry is one parameter: the value to fix is under [parameters], so
+                # the problem is reported there (the app lists it under that tab).
+                problems.append(
+                    Problem(
+                        f"parameters.{source}",
+                        f"value {value!r} {place}, used by {entries[i].where}: {message}",
+                    )
+                )
+                continue
             problems.append(
                 Problem(
                     entries[i].where,

@@ -443,3 +443,20 @@ def test_cohort_starting_wholly_in_absorbing_states():
     # A zero share in an absorbing state is harmless.
     data["settings"]["start"] = {"well": 1.0, "dead": 0.0}
     assert load_dict(data).start_distribution() == {"well": 1.0, "dead": 0.0}
+
+
+def test_a_negative_cost_parameter_is_reported_under_parameters():
+    # The value to fix sits in [parameters]: the problem names it there (the app lists
+    # problems under the tab of their table), and says which entry uses it.
+    from ui.working_model import problems_under
+
+    data = small_model_dict()
+    data["parameters"]["c_well"] = {"value": -5.0, "kind": "cost", "source": "Synthetic: test"}
+    data["states"][0]["cost"] = "c_well"
+    with pytest.raises(ModelError) as info:
+        load_dict(data)
+    problems = tuple(info.value.problems)
+    assert [p.where for p in problems] == ["parameters.c_well"]
+    assert "value -5.0" in problems[0].message and "used by states.well.cost" in problems[0].message
+    assert problems_under(problems, "parameters") == list(problems)
+    assert problems_under(problems, "states") == []
