@@ -195,3 +195,16 @@ def test_no_old_name_left_outside_the_upgrade_table():
             if pattern.search(line):
                 found.append(f"{path.relative_to(ROOT)}:{number}: {line.strip()}")
     assert not found, "\n".join(found)
+
+
+def test_upgrade_lists_what_to_review_where_format_2_reads_cycle_differently(tmp_path):
+    # A cost by cycle in a format-1 file was read at cycle boundaries; the upgrade says so
+    # before the format-1 warning disappears with the new format line.
+    path = tmp_path / "by_cycle.toml"
+    text = PREVIOUS.replace("cost = 100\n", 'cost = "when(cycle < 2, 100, 0)"\n', 1)
+    text = text.replace('start = "well"\n', 'start = "well"\nwithin_cycle = "trapezoid"\n', 1)
+    path.write_text(text, encoding="utf-8")
+    run = runner.invoke(app, ["check", str(path), "--upgrade", "--quiet"])
+    assert run.exit_code == 0, run.output
+    review = [line for line in run.stderr.splitlines() if line.startswith("review:")]
+    assert any("states.well.cost" in line and "format 1 read" in line for line in review)

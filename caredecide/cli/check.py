@@ -135,6 +135,7 @@ def _upgrade_file(path: Path) -> None:
 
     text = path.read_text(encoding="utf-8")
     upgraded, replacements = upgrade_text(text, file=str(path))
+    _review_before_upgrade(text, path)
     path.write_text(upgraded, encoding="utf-8")
     for replacement in replacements:
         stderr.print(f"upgraded: {plain(path)}: {plain(replacement)}")
@@ -142,6 +143,21 @@ def _upgrade_file(path: Path) -> None:
         f"upgraded: {plain(path)} is now format 2 ({len(replacements)} call(s) renamed, "
         "comments kept)"
     )
+
+
+def _review_before_upgrade(text: str, path: Path) -> None:
+    """Print the warnings of the file read as format 1 (other than the format itself):
+    those about a changed meaning (``cycle`` in a cost) vanish once the file is format 2."""
+    from caredecide.errors import CaredecideError
+    from caredecide.modelfile import loads_model, validate_model
+
+    try:
+        warnings = validate_model(loads_model(text, file=str(path), validate=False))
+    except CaredecideError:
+        return  # the check after the upgrade lists the problems
+    for warning in warnings:
+        if warning.where != "format":
+            stderr.print(f"[yellow]review:[/] {plain(path)}: {plain(warning)}")
 
 
 def register(app: typer.Typer) -> None:
