@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from caredecide.compile import compile_model
 from caredecide.errors import ModelError
@@ -170,3 +172,27 @@ def test_check_lists_the_definitions(tmp_path):
     run = CliRunner().invoke(app, ["check", str(path)])
     assert run.exit_code == 0, run.output
     assert "Derived values" in run.stdout and "with_rr(p_die_sick, rr_treat)" in run.stdout
+
+
+@settings(deadline=None, max_examples=60)
+@given(
+    coefficients=st.lists(st.floats(-5, 5, allow_nan=False), min_size=1, max_size=6),
+    x=st.floats(-10, 10, allow_nan=False),
+)
+def test_expanding_definitions_equals_writing_them_out(coefficients, x):
+    # Invariant (common practice): a name stands for its definition in parentheses.
+    from caredecide.derived import resolve_derived
+    from caredecide.expressions import parse_expression
+
+    definitions = {"d0": f"{coefficients[0]!r} * x"}
+    written = {"d0": f"({coefficients[0]!r} * x)"}
+    for i, c in enumerate(coefficients[1:], start=1):
+        definitions[f"d{i}"] = f"{c!r} * d{i - 1} - x"
+        written[f"d{i}"] = f"({c!r} * {written[f'd{i - 1}']} - x)"
+    last = f"d{len(coefficients) - 1}"
+    resolved, problems = resolve_derived(dict(reversed(definitions.items())), ["x"])
+    assert problems == []
+    expanded = parse_expression(f"2 * {last} + 1").with_definitions(resolved)
+    direct = parse_expression(f"2 * {written[last]} + 1")
+    assert expanded.names == {"x"}
+    assert float(expanded.evaluate({"x": x})) == float(direct.evaluate({"x": x}))
