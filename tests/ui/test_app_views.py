@@ -193,6 +193,11 @@ def test_broken_model_text_is_kept_and_its_syntax_error_shown_with_the_line(app)
     assert not app.exception, app.exception
     assert app.session_state[working_model.TEXT_KEY] == broken
     assert any("TOML syntax error" in e.value and "line" in e.value for e in app.error)
+    # The pointer names the tab where it can be fixed, and only that tab shows it: no
+    # circle between the table tabs and the Model file tab (issue 14).
+    assert any("in the tab(s): Model file (1)" in e.value for e in app.error)
+    syntax_errors = [e for e in app.error if "TOML syntax error" in e.value]
+    assert len(syntax_errors) == 1
 
 
 def test_starting_from_a_template_opens_it(app):

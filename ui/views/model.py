@@ -221,8 +221,12 @@ TAB_OF_TABLE = {
 }
 if problems:
     # Name the tabs to open: a user on another tab would not see the errors beside a table.
+    # A syntax error (it has a line) is fixed in the text: the Model file tab, where it
+    # is shown; the table tabs cannot show an unreadable file.
     tabs_with = Counter(
-        TAB_OF_TABLE.get(p.where.split(".")[0].split("[")[0], "general, listed below")
+        "Model file"
+        if p.line is not None
+        else TAB_OF_TABLE.get(p.where.split(".")[0].split("[")[0], "general, listed below")
         for p in problems
     )
     where = ", ".join(f"{tab} ({count})" for tab, count in tabs_with.items())
@@ -238,7 +242,9 @@ else:
 # One element whether or not there are warnings, so the tabs below keep the open tab.
 working_model.show_warnings(checked.warnings if not problems else ())
 TABLE_PREFIXES = ("settings", "states", "actions", "parameters", "transitions", "rates")
-working_model.show_problems([p for p in problems if not p.where.startswith(TABLE_PREFIXES)])
+working_model.show_problems(
+    [p for p in problems if p.line is None and not p.where.startswith(TABLE_PREFIXES)]
+)
 
 readable = working_model.read_model(text, working_model.file_label(), working_model.base_folder())
 tables = model_to_tables(readable.model) if readable.model is not None else {}
@@ -248,10 +254,11 @@ if readable.model is None:
     for tab in tabs[:5]:
         with tab:
             st.warning(
-                "The model file text cannot be read into tables; fix the problems in "
-                "the Model file tab."
+                "The model file text cannot be read into tables; fix the problems shown "
+                "in the Model file tab (the last tab)."
             )
-            working_model.show_problems(list(readable.problems))
+            # Problems the text editor does not show (no line: the file's structure).
+            working_model.show_problems([p for p in readable.problems if p.line is None])
 else:
     model = readable.model
     for tab, name in zip(tabs[:4], ("settings", "states", "actions", "parameters"), strict=True):
