@@ -13,42 +13,19 @@ from caredecide.evaluate import evaluate_policy
 from caredecide.expand import expand
 from caredecide.modelfile import loads_model
 from caredecide.objective import Objective
-from tests.test_expand import HEADER
+from tests.test_expand import _tunnel_model
 
+# The tunnel model of tests/test_expand.py, with nobody starting the drug on their own and
+# an action that starts it by a decision-time move.
 MODEL = (
-    HEADER.format(horizon=4, start="sick__untreated", within="start", discount=0.0)
+    _tunnel_model(start="sick__untreated", enter="0", die="0.1")
     + """
-[attributes.on_treatment]
-values = { untreated = 0, treated = 1 }
-
-[tunnels.years_on_drug]
-length = 2
-only_for = { on_treatment = "treated" }
-
-[[states]]
-id = "sick"
-qaly_weight = 0.7
-cost = "when(on_treatment == 1 and years_on_drug < 2, 1000, 0)"
-attributes = ["on_treatment"]
-tunnels = ["years_on_drug"]
-
-[[states]]
-id = "dead"
-absorbing = true
-
-[[actions]]
-id = "wait"
-
 [[actions]]
 id = "start"
 allowed_in = ["sick__untreated"]
 
 [moves.start.sick__untreated]
 sick__treated = "rest"
-
-[transitions.wait.sick]
-dead = 0.1
-sick = "rest"
 """
 )
 
