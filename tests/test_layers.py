@@ -48,6 +48,7 @@ FLOORS: dict[str, int] = {
     "caredecide.derived": 2,
     "caredecide.memory": 2,
     "caredecide.grouping": 2,
+    "caredecide.diagram": 2,
     "caredecide.solvers": 3,
     "caredecide.evaluate": 3,
     "caredecide.structure": 3,

@@ -17,7 +17,7 @@ from caredecide.model import OBJECTIVES, PARAMETER_KINDS
 from caredecide.modelfile import dumps_model
 from caredecide.modelfile.roundtrip import updated_model_text
 from synthetic_cohort import MODELS_DIR
-from ui import drafts, working_model
+from ui import diagram_panel, drafts, working_model
 from ui.tables import locate, model_to_tables, model_with_table, with_header_comments
 from ui.templates import TEMPLATES
 
@@ -273,6 +273,7 @@ else:
         for name in matrices:
             st.subheader(name)
             _table_editor(model, name, tables[name], problems)
+            diagram_panel.show_cells_in_full(tables[name], name)
         # Rows of an action that is not in the model: no matrix shows them.
         working_model.show_problems(
             [
@@ -281,5 +282,12 @@ else:
                 if not working_model.problems_under((p,), *matrices)
             ]
         )
+        if not problems:
+            diagram_panel.show_diagram(
+                text,
+                working_model.file_label(),
+                working_model.base_folder(),
+                {a.id: a.label or a.id for a in model.actions},
+            )
 with tabs[5]:
     _text_editor(problems)
