@@ -243,11 +243,11 @@ def model_to_tables(model: Model) -> dict[str, pd.DataFrame]:
             [
                 {
                     "name": name,
-                    "value": p.value,
+                    "value": number_text(p.value),
                     "kind": p.kind,
-                    "per_years": p.per_years,
-                    "low": p.low,
-                    "high": p.high,
+                    "per_years": number_text(p.per_years),
+                    "low": number_text(p.low),
+                    "high": number_text(p.high),
                     "distribution": distribution_cell(p.distribution),
                     "source": p.source,
                     "label": p.label,
@@ -256,7 +256,7 @@ def model_to_tables(model: Model) -> dict[str, pd.DataFrame]:
                 for name, p in model.parameters.items()
             ],
             columns=list(PARAMETER_COLUMNS),
-        ).astype({"value": "float64", "per_years": "Float64", "low": "Float64", "high": "Float64"}),
+        ).astype({c: object for c in ("value", "per_years", "low", "high")}),
     }
     for kind, table in (("transitions", model.transitions), ("rates", model.rates)):
         for action_id, rows in table.items():
@@ -326,17 +326,47 @@ def _action(row: dict[str, Any]) -> Action:
     )
 
 
+def number_text(value: Any) -> str:
+    """A number as the text of a grid cell ("" for none): text cells keep whatever is
+    typed, so a wrong entry can be shown with its error instead of being lost."""
+    if value is None or value is pd.NA or (isinstance(value, float) and math.isnan(value)):
+        return ""
+    return repr(float(value)) if isinstance(value, float) else str(value)
+
+
+def cell_number(value: Any, where: str, *, required: bool = False) -> float | None:
+    """The number in a grid cell; ModelError naming ``where`` and the text otherwise."""
+    text = _text(value).strip() if not isinstance(value, int | float) else value
+    if isinstance(text, int | float) and not isinstance(text, bool):
+        number = float(text)
+    elif text == "":
+        number = None
+    else:
+        try:
+            number = float(text)
+        except ValueError:
+            number = math.nan
+        if not math.isfinite(number):
+            raise ModelError(
+                Problem(where, f"{text!r} is not a number; expected a number such as 0.25")
+            )
+    if number is None and required:
+        raise ModelError(Problem(where, "is empty; expected a number such as 0.25"))
+    return number
+
+
 def _parameter(row: dict[str, Any]) -> Parameter:
     name = _text(row["name"])
-    value = _optional_number(row["value"])
+    where = f"parameters.{name}"
+    value = cell_number(row["value"], f"{where}.value", required=True)
     return Parameter(
         name=name,
         value=math.nan if value is None else value,
         source=_text(row["source"]),
         kind=_text(row["kind"]) or "other",
-        per_years=_optional_number(row["per_years"]),
-        low=_optional_number(row["low"]),
-        high=_optional_number(row["high"]),
+        per_years=cell_number(row["per_years"], f"{where}.per_years"),
+        low=cell_number(row["low"], f"{where}.low"),
+        high=cell_number(row["high"], f"{where}.high"),
         distribution=cell_distribution(row["distribution"], f"parameters.{name}.distribution"),
         label=_text(row["label"]),
         note=_text(row["note"]),

@@ -169,6 +169,19 @@ def test_the_autosaved_draft_is_restored_in_a_fresh_session(app):
     assert drafts.load_draft(fresh.session_state[working_model.SOURCE_KEY]) is None
 
 
+def test_text_typed_into_a_number_cell_is_kept_and_shown_with_its_error(app):
+    # Formerly the number cell dropped the text: the file got "nan" and the grid "None".
+    before = app.session_state[working_model.TEXT_KEY]
+    _edit(app, "parameters", {0: {"value": "0.3x"}})
+    assert not app.exception, app.exception
+    assert app.session_state[working_model.TEXT_KEY] == before  # nothing written
+    assert "nan" not in app.session_state[working_model.TEXT_KEY]
+    errors = [e.value for e in app.error]
+    assert any("'0.3x' is not a number" in e and ".value" in e for e in errors), errors
+    key = f"table_parameters_{app.session_state[working_model.REVISION_KEY]}"
+    assert app.session_state[key]["edited_rows"] == {0: {"value": "0.3x"}}  # still shown
+
+
 def test_the_draft_notice_shows_the_latest_save_time(app):
     import json
 

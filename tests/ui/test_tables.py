@@ -199,3 +199,16 @@ def test_an_action_without_rows_gets_an_empty_matrix_to_fill():
     filled.loc["early", "dead"] = "0.5"
     edited = tables.model_with_table(model, "transitions.refer", filled)
     assert edited.transitions["refer"] == {"early": {"dead": 0.5}}
+
+
+def test_number_cells_keep_text_and_refuse_it_with_its_place():
+    assert tables.cell_number("0.25", "parameters.p.value") == 0.25
+    assert tables.cell_number(3, "parameters.p.value") == 3.0
+    assert tables.cell_number("", "parameters.p.low") is None
+    with pytest.raises(ModelError, match=r"parameters\.p\.value: 'abc' is not a number"):
+        tables.cell_number("abc", "parameters.p.value")
+    with pytest.raises(ModelError, match=r"parameters\.p\.value: 'nan' is not a number"):
+        tables.cell_number("nan", "parameters.p.value")
+    with pytest.raises(ModelError, match=r"parameters\.p\.value: is empty; expected a number"):
+        tables.cell_number(None, "parameters.p.value", required=True)
+    assert tables.number_text(0.1) == "0.1" and tables.number_text(None) == ""

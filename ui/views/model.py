@@ -128,6 +128,11 @@ COLUMN_CONFIG = {
             help='An inline table, e.g. { type = "beta", mean = 0.1, se = 0.02 }'
         ),
         "source": st.column_config.TextColumn(help="Where the estimate comes from (required)"),
+        # Text cells: a mistyped number stays visible beside its error, not lost as None.
+        **{
+            column: st.column_config.TextColumn(help="A number")
+            for column in ("value", "per_years", "low", "high")
+        },
     },
 }
 
