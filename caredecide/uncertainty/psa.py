@@ -79,7 +79,7 @@ from caredecide.compile import compile_model
 from caredecide.compiled import CompiledModel
 from caredecide.errors import ModelError, ModelTooLargeError, Problem
 from caredecide.evaluate import evaluate_policies
-from caredecide.limits import CHUNK_MEMORY_BYTES, default_memory_limit
+from caredecide.limits import CHUNK_MEMORY_BYTES, WTP_SEARCH_MAX_WHEN_ZERO, default_memory_limit
 from caredecide.model import Model
 from caredecide.objective import Objective
 from caredecide.options import check_scalar
@@ -1070,7 +1070,7 @@ def _merge_candidates(named: list[tuple[str, str, np.ndarray]]) -> list[Candidat
 def _wtp_grid(objective: Objective, wtp_range, points: int) -> np.ndarray:
     check_scalar(points, "wtp_points", int, min_val=2)
     if wtp_range is None:
-        high = 2 * objective.willingness_to_pay or 100_000.0
+        high = 2 * objective.willingness_to_pay or WTP_SEARCH_MAX_WHEN_ZERO  # the one rule
         return np.linspace(0.0, high, points)
     try:
         low, high = (float(x) for x in wtp_range)
