@@ -195,7 +195,11 @@ _COMPILED_DRAW_FIELDS = (
     "state_cost",
     "decision_qaly",
     "decision_cost",
+    "move",
+    "state_action_qaly",
+    "state_action_cost",
 )
+"""Per-draw arrays of a compiled model (the last three may be None: no move, no reward)."""
 _RESULT_DRAW_FIELDS = (
     "policy",
     "value",
@@ -212,8 +216,13 @@ def join_compiled(pieces: Sequence[CompiledModel]) -> CompiledModel:
     if len(pieces) == 1:
         return pieces[0]
     joined: dict[str, Any] = {
-        f: np.concatenate([getattr(p, f) for p in pieces]) for f in _COMPILED_DRAW_FIELDS
+        f: np.concatenate([getattr(p, f) for p in pieces])
+        for f in _COMPILED_DRAW_FIELDS
+        if getattr(pieces[0], f) is not None
     }
+    for rate in ("discount_outcomes", "discount_costs"):  # per-draw rates (threshold batches)
+        if np.ndim(getattr(pieces[0], rate)):
+            joined[rate] = np.concatenate([getattr(p, rate) for p in pieces])
     return replace(pieces[0], **joined)
 
 
