@@ -32,6 +32,8 @@ SLOW = {
     # Modules (or module::test) that take more than a few seconds each on a quiet
     # machine (measured with --durations); `pytest -m "not slow and not browser"` skips them.
     "tests/cli/test_uncertainty.py",
+    "tests/cli/test_best_schedule.py::test_best_schedule_prints_and_writes_the_library_figures",
+    "tests/test_policy_search.py::test_search_matches_brute_force_on_200_random_tiny_models",
     "tests/cli/test_rerun.py",
     "tests/cli/test_report.py",
     "tests/test_acceptability.py",

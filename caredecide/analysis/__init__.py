@@ -11,6 +11,8 @@ the report and the app show the same figures for the same model.
 - :func:`analyse_uncertainty` -> :class:`~caredecide.uncertainty.psa.PSAResult`;
 - :func:`analyse_convergence` -> :class:`~caredecide.convergence.SweepTrace` and
   :func:`analyse_method_race` -> :class:`~caredecide.convergence.MethodRace`;
+- :func:`analyse_best_schedule` ->
+  :class:`~caredecide.uncertainty.policy_search.PolicySearchResult`;
 - :func:`analyse_scenarios` -> :class:`ScenarioResult`;
 - :func:`analyse_verification` -> :class:`~caredecide.verify.VerificationReport`.
 """
@@ -25,6 +27,7 @@ _HOMES = {
     "analyse_base_case": "base_case",
     "analyse_strategies": "others",
     "analyse_uncertainty": "others",
+    "analyse_best_schedule": "others",
     "analyse_verification": "others",
     "analyse_convergence": "convergence",
     "analyse_method_race": "convergence",
@@ -47,6 +50,7 @@ __all__ = [
     "ScenarioResult",
     "SensitivitySuite",
     "analyse_base_case",
+    "analyse_best_schedule",
     "analyse_convergence",
     "analyse_method_race",
     "analyse_scenarios",

@@ -9,6 +9,7 @@ from caredecide.objective import Objective
 
 if TYPE_CHECKING:  # each analysis imports its own modules on use (the report's notes)
     from caredecide.compare import ComparisonResult
+    from caredecide.uncertainty.policy_search import PolicySearchResult
     from caredecide.uncertainty.psa import PSAResult
     from caredecide.verify import VerificationReport
 
@@ -44,3 +45,13 @@ def analyse_verification(model: Model, **options: Any) -> VerificationReport:
     from caredecide.verify import verify_model
 
     return verify_model(model, **options)
+
+
+def analyse_best_schedule(
+    model: Model, n_draws: int, seed: int, **options: Any
+) -> PolicySearchResult:
+    """The one schedule best over the probabilistic draws
+    (:func:`caredecide.uncertainty.policy_search.best_policy_over_draws`)."""
+    from caredecide.uncertainty.policy_search import best_policy_over_draws
+
+    return best_policy_over_draws(model, n_draws, seed, **options)

@@ -23,6 +23,7 @@ COMMAND_MODULES: tuple[str, ...] = (
     "scenarios",
     "changes",
     "uncertainty",
+    "best_schedule",
     "compare",
     "estimate",
     "report",

@@ -43,6 +43,7 @@ import numpy as np
 import pandas as pd
 
 from caredecide.compiled import CompiledModel
+from caredecide.errors import CaredecideError
 from caredecide.objective import Objective
 from caredecide.options import check_choice, check_scalar
 from caredecide.solvers.bellman import cycle_rewards, decision_state_mask, transition_at
@@ -50,6 +51,7 @@ from caredecide.solvers.result import PolicyResult
 
 __all__ = [
     "CRITERIA",
+    "PolicySearchError",
     "PolicySearchResult",
     "evaluate_shared_policy",
     "search_shared_policy",
@@ -58,6 +60,11 @@ __all__ = [
 CRITERIA = ("expected", "lower_percentile", "regret_percentile")
 """What the search maximises: the mean over the draws; a lower percentile of the
 objective; or (minimises) a percentile of the regret against each draw's own optimum."""
+
+
+class PolicySearchError(CaredecideError, ValueError):
+    """The search cannot run on this model or policy (the message says why)."""
+
 
 MAX_PASSES = 200
 """Improvement passes at most per start (each pass costs about one policy evaluation)."""
@@ -88,7 +95,7 @@ class _Rewards:
 
     def __init__(self, compiled: CompiledModel, objective: Objective) -> None:
         if compiled.n_cycles is None:
-            raise ValueError(
+            raise PolicySearchError(
                 "the best shared policy over draws is searched on finite-horizon models "
                 "only; this model has an infinite horizon"
             )
@@ -147,12 +154,12 @@ def _check_policy(compiled: CompiledModel, policy: np.ndarray) -> np.ndarray:
     T, S = int(compiled.n_cycles or 0), compiled.n_states
     policy = np.asarray(policy)
     if policy.shape != (T, S):
-        raise ValueError(
+        raise PolicySearchError(
             f"a shared policy has shape (cycles, states) = ({T}, {S}); got {policy.shape}"
         )
     policy = policy.astype(np.intp)
     if not compiled.allowed[np.arange(S)[None, :], policy].all():
-        raise ValueError("the policy chooses an action not allowed in some state")
+        raise PolicySearchError("the policy chooses an action not allowed in some state")
     return policy
 
 
@@ -332,6 +339,45 @@ class PolicySearchResult:
                 ],
             }
         )
+
+    def lines(self) -> list[str]:
+        """The result in plain words, for the CLI and the report."""
+        label = {
+            "expected": "expected value over the draws",
+            "lower_percentile": f"{self.percentile:g}th percentile of the objective",
+            "regret_percentile": f"{100 - self.percentile:g}th percentile of regret (minimised)",
+        }[self.criterion]
+        best = self.per_draw_best.mean()
+        base = self.per_draw_base.mean()
+        differing = self.differing_cells
+        out = [
+            f"Best shared schedule over {self.n_draws:,} draws (criterion: {label}).",
+            f"Expected value: best schedule {best:,.2f}, base-case schedule {base:,.2f} "
+            f"({self.unit} per person).",
+            f"Value of the stochastic solution: {self.value_of_stochastic_solution:,.2f} "
+            f"(Monte Carlo s.e. {self.vss_standard_error:,.2f}).",
+            f"EVPI against the best schedule found: {self.evpi_best:,.2f}; against the "
+            f"candidate policies: {self.evpi_candidates:,.2f} (per person).",
+            f"The best schedule is optimal in {self.acceptability:.1%} of the draws.",
+        ]
+        if differing.empty:
+            out.append("It is the base-case schedule in every state and cycle.")
+        else:
+            out.append(f"It differs from the base-case schedule in {len(differing)} cell(s):")
+            for state, rows in differing.groupby("state", sort=False):
+                ages = ", ".join(f"{age:g}" for age in rows["age"])
+                first = rows.iloc[0]
+                out.append(
+                    f"  {state}: {first['best_over_draws']} instead of {first['base_case']} "
+                    f"at ages {ages}"
+                )
+        for row in self.starts.itertuples():
+            out.append(
+                f"  start '{row.start}': {row.expected_before:,.2f} -> {row.expected_after:,.2f} "
+                f"in {row.passes} pass(es) ({row.cells_changed} cell(s) changed)"
+            )
+        out.extend(self.notes)
+        return out
 
     def policy_frame(self) -> pd.DataFrame:
         """One row per cycle and state: age, best-over-draws action, base-case action."""
@@ -514,7 +560,7 @@ def best_policy_over_draws(
     sampler = ParameterSampler.from_model(model)
     base = compile_model(model, memory_limit_bytes=memory_limit_bytes)
     if base.n_cycles is None:
-        raise ValueError(
+        raise PolicySearchError(
             "the best shared policy over draws is searched on finite-horizon models only"
         )
     base_policy = solve(base, objective).policy[0]
