@@ -38,7 +38,8 @@ class TransitionDiagram:
     labels : tuple of str
         State labels (words), same order.
     groups : tuple of str
-        Declared state of each flat state (its box in the diagram).
+        Box of each flat state in the diagram (its declared state, or its value of the
+        attribute or tunnel grouped by).
     absorbing : tuple of bool
     edges : DataFrame
         One row per move with probability > 0 at cycle 0: ``source``, ``target`` (flat ids),
@@ -137,7 +138,7 @@ def _edges(model, flat, table, action, source, row, states, kind) -> list[dict]:
 
 
 def transition_diagram(
-    model: Model, action: str, compiled: CompiledModel | None = None
+    model: Model, action: str, compiled: CompiledModel | None = None, *, group_by: str = "state"
 ) -> TransitionDiagram:
     """The bubble diagram of ``action``: its moves at cycle 0 with their defining cells.
 
@@ -149,6 +150,10 @@ def transition_diagram(
         An action id of the model.
     compiled : CompiledModel, optional
         The compiled base case, when the caller has it (else compiled here).
+    group_by : str
+        What the boxes group: "state" (the declared state of each copy) or the name of an
+        attribute or tunnel (copies with the same value share a box; states without it
+        stand alone).
 
     Raises
     ------
@@ -160,7 +165,13 @@ def transition_diagram(
     compiled = compile_model(model) if compiled is None else compiled
     a = compiled.action_ids.index(action)
     states = tuple(compiled.state_ids)
-    groups = tuple(dict(compiled.state_groups).get("state", states))
+    declared = tuple(dict(compiled.state_groups).get("state", states))
+    check_choice(group_by, "group_by", ("state", *dict(compiled.state_groups)))
+    values = dict(compiled.state_groups).get(group_by, states)
+    groups = tuple(
+        s if not v else (v if group_by == "state" else f"{group_by}: {v}")
+        for v, s in zip(values, states, strict=True)
+    )
     action_ids = tuple(compiled.action_ids)
     # The rows that apply in each state under this action (another action's where this
     # one is not allowed and one other is), as the compiler fills them.
@@ -172,7 +183,7 @@ def transition_diagram(
             rows += _edges(model, flat, "moves", action, source, moves[s], states, "move")
             continue
         if compiled.absorbing[s]:
-            rows.append(_edge(source, source, f"states.{groups[s]}.absorbing", "absorbing", 1.0))
+            rows.append(_edge(source, source, f"states.{declared[s]}.absorbing", "absorbing", 1.0))
             continue
         b = action_ids[row_action[s]]
         P = np.asarray(compiled.transition[0, 0, row_action[s], s])

@@ -52,6 +52,9 @@ def test_expanded_states_are_grouped_by_declared_state_and_name_the_written_cell
     model = load_model(MODELS_DIR / "demo_years_since_progression.toml")
     diagram = transition_diagram(model, "wait")
     assert 'subgraph "cluster_progressed"' in diagram.to_dot()
+    by_drug = transition_diagram(model, "wait", group_by="drug").to_dot()
+    assert 'subgraph "cluster_drug: on_drug"' in by_drug
+    assert 'subgraph "cluster_drug: off_drug"' in by_drug
     cells = set(diagram.edges["cell"])
     # Cells are named as written in the file (declared rows), not by generated copies.
     assert all("years_progressed_" not in c.split(".")[2] for c in cells), cells
@@ -61,3 +64,5 @@ def test_an_unknown_action_is_refused_naming_it():
     model = load_model(MODELS_DIR / "teaching_stationary.toml")
     with pytest.raises(RunOptionError, match="action"):
         transition_diagram(model, "surgery")
+    with pytest.raises(RunOptionError, match="group_by"):
+        transition_diagram(model, "usual", group_by="colour")

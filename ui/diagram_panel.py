@@ -15,8 +15,14 @@ from caredecide.modelfile import loads_model
 
 
 @st.cache_data(max_entries=16, show_spinner=False)
-def _diagram(text: str, file: str, base_dir: str, action: str) -> TransitionDiagram:
-    return transition_diagram(loads_model(text, file=file, base_dir=base_dir), action)
+def _diagram(text: str, file: str, base_dir: str, action: str, by: str) -> TransitionDiagram:
+    return transition_diagram(loads_model(text, file=file, base_dir=base_dir), action, group_by=by)
+
+
+@st.cache_data(max_entries=16, show_spinner=False)
+def _groupings(text: str, file: str, base_dir: str) -> list[str]:
+    model = loads_model(text, file=file, base_dir=base_dir)
+    return ["state", *model.attributes, *model.tunnels]
 
 
 def show_diagram(text: str, file: str, base_dir: str, actions: dict[str, str]) -> None:
@@ -26,7 +32,17 @@ def show_diagram(text: str, file: str, base_dir: str, actions: dict[str, str]) -
     """
     st.subheader("State-transition diagram")
     action = st.selectbox("Action", list(actions), format_func=actions.get, key="diagram_action")
-    diagram = _diagram(text, file, base_dir, action)
+    groupings = _groupings(text, file, base_dir)
+    by = "state"
+    if len(groupings) > 1:
+        by = st.radio(
+            "Boxes group the states by",
+            groupings,
+            format_func=lambda g: "declared state" if g == "state" else g,
+            horizontal=True,
+            key="diagram_group_by",
+        )
+    diagram = _diagram(text, file, base_dir, action, by)
     st.caption(
         "Bubbles are states (double ring: absorbing); an arrow is a move within one cycle "
         "labelled with its cell's expression and base-case probability per cycle (cycle 0; "
