@@ -117,10 +117,21 @@ def test_trace_check_fails_when_the_cohort_leaks(base_small, monkeypatch):
     import caredecide.evaluate as evaluate
 
     original = evaluate.transition_at
-    # Patch: 1% of the cohort vanishes every cycle in policy evaluation.
-    monkeypatch.setattr(evaluate, "transition_at", lambda c, t: 0.99 * original(c, t))
+    calls = []
+
+    def leaking(compiled, t):
+        calls.append(t)
+        return 0.99 * original(compiled, t)
+
+    # Patch: 1% of the cohort vanishes every cycle in policy evaluation. The compiled
+    # cohort-trace loop reads the transition array directly, so the fault is injected on
+    # the numpy path (the loop equals it to rounding: tests/test_kernels.py).
+    monkeypatch.setenv("CAREDECIDE_KERNELS", "numpy")
+    monkeypatch.setattr(evaluate, "transition_at", leaking)
     result = _status(base_small, "trace_sums_to_one")
+    assert calls, "the patched transition was never read: the fault was not injected"
     assert result.status == verify.FAIL
+    assert "largest |sum - 1|" in result.figures
 
 
 def test_zero_discount_check_fails_when_discounting_ignores_the_rates(base_small, monkeypatch):
