@@ -47,7 +47,6 @@ from caredecide.errors import CaredecideError
 from caredecide.objective import Objective
 from caredecide.options import check_choice, check_scalar
 from caredecide.solvers.bellman import cycle_rewards, decision_state_mask, transition_at
-from caredecide.solvers.result import PolicyResult
 
 __all__ = [
     "CRITERIA",
@@ -91,30 +90,36 @@ class SharedPolicyValues:
 
 
 class _Rewards:
-    """Cycle rewards of a compiled batch, built once (they do not depend on the policy)."""
+    """Cycle rewards of compiled chunks of draws, built once (they do not depend on the
+    policy). Every operation runs chunk by chunk, so the draws never need one array."""
 
-    def __init__(self, compiled: CompiledModel, objective: Objective) -> None:
-        if compiled.n_cycles is None:
+    def __init__(self, chunks: Sequence[CompiledModel], objective: Objective) -> None:
+        first = chunks[0]
+        if first.n_cycles is None:
             raise PolicySearchError(
                 "the best shared policy over draws is searched on finite-horizon models "
                 "only; this model has an infinite horizon"
             )
-        self.compiled = compiled
-        self.parts = [cycle_rewards(compiled, objective, t) for t in range(compiled.n_cycles)]
-        self.not_allowed = ~np.asarray(compiled.allowed, dtype=bool)
+        self.chunks = list(chunks)
+        self.first = first
+        self.T = int(first.n_cycles)
+        self.parts = [[cycle_rewards(c, objective, t) for t in range(self.T)] for c in self.chunks]
+        self.not_allowed = ~np.asarray(first.allowed, dtype=bool)
+        self.n_draws = sum(c.n_draws for c in self.chunks)
 
-    def action_values(self, t: int, next_value: np.ndarray) -> np.ndarray:
-        """(D, S, A) action values at cycle ``t`` given the (D, S) value of cycle t + 1."""
-        now, arrival = self.parts[t]
-        rhs = (arrival + next_value[:, None, :])[..., None]  # (D, A, S, 1)
-        expected = np.matmul(transition_at(self.compiled, t), rhs)[..., 0]  # (D, A, S)
+    def action_values(self, k: int, t: int, next_value: np.ndarray) -> np.ndarray:
+        """(Dk, S, A) action values of chunk ``k`` at cycle ``t`` given its (Dk, S)
+        values of cycle t + 1."""
+        now, arrival = self.parts[k][t]
+        rhs = (arrival + next_value[:, None, :])[..., None]  # (Dk, A, S, 1)
+        expected = np.matmul(transition_at(self.chunks[k], t), rhs)[..., 0]  # (Dk, A, S)
         Q = now + expected.transpose(0, 2, 1)
         Q[:, self.not_allowed] = -np.inf
         return Q
 
 
 def _occupancy(compiled: CompiledModel, policy: np.ndarray) -> np.ndarray:
-    """(D, T, S) start-of-cycle occupancy under ``policy`` (T, S)."""
+    """(D, T, S) start-of-cycle occupancy of one chunk under ``policy`` (T, S)."""
     D, S, T = compiled.n_draws, compiled.n_states, int(compiled.n_cycles or 0)
     m = np.empty((D, T, S))
     m[:, 0] = compiled.start_distribution
@@ -125,29 +130,42 @@ def _occupancy(compiled: CompiledModel, policy: np.ndarray) -> np.ndarray:
     return m
 
 
-def _evaluate(rewards: _Rewards, policy: np.ndarray) -> SharedPolicyValues:
-    compiled = rewards.compiled
-    D, S, A, T = compiled.n_draws, compiled.n_states, compiled.n_actions, compiled.n_cycles
-    assert T is not None
-    Q = np.empty((D, T, S, A))
-    value = np.zeros((D, S))
-    states = np.arange(S)
-    for t in range(T - 1, -1, -1):
-        Q[:, t] = rewards.action_values(t, value)
-        value = Q[:, t, states, policy[t]]
-    per_draw = value @ compiled.start_distribution
-    return SharedPolicyValues(per_draw, _occupancy(compiled, policy), Q)
+def _evaluate(rewards: _Rewards, policy: np.ndarray, full: bool = True) -> SharedPolicyValues:
+    """Values of ``policy`` on every draw; with ``full`` also occupancy and action values
+    (else those two are empty arrays: the expected-value search needs neither)."""
+    per_draw, occupancy, action_values = [], [], []
+    states = np.arange(rewards.first.n_states)
+    for k, compiled in enumerate(rewards.chunks):
+        D, S, A, T = compiled.n_draws, compiled.n_states, compiled.n_actions, rewards.T
+        Q = np.empty((D, T, S, A)) if full else None
+        value = np.zeros((D, S))
+        for t in range(T - 1, -1, -1):
+            Qt = rewards.action_values(k, t, value)
+            if Q is not None:
+                Q[:, t] = Qt
+            value = Qt[:, states, policy[t]]
+        per_draw.append(value @ compiled.start_distribution)
+        if Q is not None:
+            occupancy.append(_occupancy(compiled, policy))
+            action_values.append(Q)
+    if not full:
+        return SharedPolicyValues(np.concatenate(per_draw), np.empty(0), np.empty(0))
+    return SharedPolicyValues(
+        np.concatenate(per_draw), np.concatenate(occupancy), np.concatenate(action_values)
+    )
 
 
 def evaluate_shared_policy(
-    compiled: CompiledModel, objective: Objective, policy: np.ndarray
+    compiled: CompiledModel | Sequence[CompiledModel], objective: Objective, policy: np.ndarray
 ) -> SharedPolicyValues:
     """Evaluate one policy ``(T, S)`` on every draw of ``compiled`` (finite horizon).
 
-    The values equal :func:`caredecide.evaluate.evaluate_policy` (same rewards, same
-    recursion as backward induction; test).
+    ``compiled`` may be a sequence of chunks of draws of one model. The values equal
+    :func:`caredecide.evaluate.evaluate_policy` (same rewards, same recursion as backward
+    induction; test).
     """
-    return _evaluate(_Rewards(compiled, objective), _check_policy(compiled, policy))
+    chunks = [compiled] if isinstance(compiled, CompiledModel) else list(compiled)
+    return _evaluate(_Rewards(chunks, objective), _check_policy(chunks[0], policy))
 
 
 def _check_policy(compiled: CompiledModel, policy: np.ndarray) -> np.ndarray:
@@ -163,24 +181,29 @@ def _check_policy(compiled: CompiledModel, policy: np.ndarray) -> np.ndarray:
     return policy
 
 
-def _sweep(rewards: _Rewards, policy: np.ndarray, weights: np.ndarray | None, tol: float) -> int:
+def _sweep(
+    rewards: _Rewards, policy: np.ndarray, weights: list[np.ndarray] | None, tol: float
+) -> int:
     """One backward pass of exact per-cycle improvements; returns the cells changed.
 
-    ``weights`` (D, T, S) is the occupancy under ``policy`` (the exact rule); ``None``
-    weighs every draw equally (the weight-select-update pass).
+    ``weights`` (per chunk, (Dk, T, S)) is the occupancy under ``policy`` (the exact rule);
+    ``None`` weighs every draw equally (the weight-select-update pass).
     """
-    compiled = rewards.compiled
-    T, S = int(compiled.n_cycles or 0), compiled.n_states
-    deciding = np.flatnonzero(decision_state_mask(compiled))
+    first = rewards.first
+    S = first.n_states
+    deciding = np.flatnonzero(decision_state_mask(first))
     states = np.arange(S)
-    value = np.zeros((compiled.n_draws, S))
+    values = [np.zeros((c.n_draws, S)) for c in rewards.chunks]
     changed = 0
-    for t in range(T - 1, -1, -1):
-        Q = rewards.action_values(t, value)  # (D, S, A) with later cycles already improved
-        w = np.ones(Q.shape[:2]) if weights is None else weights[:, t]
-        finite = np.where(np.isfinite(Q), Q, 0.0)
-        score = np.einsum("ds,dsa->sa", w, finite) / Q.shape[0]
-        score[~np.isfinite(Q[0])] = -np.inf
+    for t in range(rewards.T - 1, -1, -1):
+        # Action values with later cycles already improved, chunk by chunk.
+        Qs = [rewards.action_values(k, t, values[k]) for k in range(len(rewards.chunks))]
+        score = np.zeros((S, first.n_actions))
+        for k, Q in enumerate(Qs):
+            w = np.ones(Q.shape[:2]) if weights is None else weights[k][:, t]
+            score += np.einsum("ds,dsa->sa", w, np.where(np.isfinite(Q), Q, 0.0))
+        score /= rewards.n_draws
+        score[rewards.not_allowed] = -np.inf
         for s in deciding:
             current = policy[t, s]
             best = int(np.argmax(score[s]))
@@ -188,7 +211,7 @@ def _sweep(rewards: _Rewards, policy: np.ndarray, weights: np.ndarray | None, to
             if score[s, best] > score[s, current] + tol * scale:
                 policy[t, s] = best
                 changed += 1
-        value = Q[:, states, policy[t]]
+        values = [Q[:, states, policy[t]] for Q in Qs]
     return changed
 
 
@@ -205,7 +228,7 @@ def _criterion_value(
 def _improve_expected(rewards: _Rewards, policy: np.ndarray, tol: float) -> tuple[np.ndarray, int]:
     policy = policy.copy()
     for passes in range(1, MAX_PASSES + 1):
-        weights = _occupancy(rewards.compiled, policy)
+        weights = [_occupancy(c, policy) for c in rewards.chunks]
         if _sweep(rewards, policy, weights, tol) == 0:
             return policy, passes
     return policy, MAX_PASSES
@@ -220,10 +243,10 @@ def _improve_percentile(
     tol: float,
 ) -> tuple[np.ndarray, int]:
     """Greedy single-cell changes, each judged exactly on every draw's new value."""
-    compiled = rewards.compiled
+    compiled = rewards.first
     deciding = np.flatnonzero(decision_state_mask(compiled))
     policy = policy.copy()
-    T, A = int(compiled.n_cycles or 0), compiled.n_actions
+    T, A = rewards.T, compiled.n_actions
     for passes in range(1, MAX_PASSES + 1):
         values = _evaluate(rewards, policy)
         current = _criterion_value(values.per_draw, criterion, percentile, best)
@@ -417,7 +440,7 @@ class PolicySearchResult:
 
 
 def search_shared_policy(
-    compiled: CompiledModel,
+    compiled: CompiledModel | Sequence[CompiledModel],
     objective: Objective,
     starts: Mapping[str, np.ndarray],
     *,
@@ -434,8 +457,9 @@ def search_shared_policy(
 
     Parameters
     ----------
-    compiled : CompiledModel
-        D draws, finite horizon T.
+    compiled : CompiledModel or sequence of CompiledModel
+        D draws, finite horizon T; or chunks of the draws of one model (in order), so the
+        draws never need one array.
     objective : Objective
     starts : mapping name -> (T, S) int
         Start policies (e.g. the base-case optimum, the optimum at mean parameters). The
@@ -462,7 +486,9 @@ def search_shared_policy(
     percentile = check_scalar(
         percentile, "percentile", float, min_val=0.0, max_val=100.0, include_boundaries="neither"
     )
-    rewards = _Rewards(compiled, objective)
+    chunks = [compiled] if isinstance(compiled, CompiledModel) else list(compiled)
+    rewards = _Rewards(chunks, objective)
+    compiled = chunks[0]
     best_per_draw = np.asarray(per_draw_optimal, dtype=float)
     named = {name: _check_policy(compiled, p) for name, p in starts.items()}
     if per_draw_policies is not None:
@@ -477,14 +503,14 @@ def search_shared_policy(
     rows = []
     best_policy, best_score = None, -np.inf
     for i, (name, start) in enumerate(named.items()):
-        before = _evaluate(rewards, start).per_draw
+        before = _evaluate(rewards, start, full=False).per_draw
         if criterion == "expected":
             found, passes = _improve_expected(rewards, start, tolerance)
         else:
             found, passes = _improve_percentile(
                 rewards, start, criterion, percentile, best_per_draw, tolerance
             )
-        after = _evaluate(rewards, found).per_draw
+        after = _evaluate(rewards, found, full=False).per_draw
         score = _criterion_value(after, criterion, percentile, best_per_draw)
         rows.append(
             {
@@ -503,8 +529,8 @@ def search_shared_policy(
             progress(i + 1, len(named))
     assert best_policy is not None
     base = _check_policy(compiled, base_policy)
-    per_best = _evaluate(rewards, best_policy).per_draw
-    per_base = _evaluate(rewards, base).per_draw
+    per_best = _evaluate(rewards, best_policy, full=False).per_draw
+    per_base = _evaluate(rewards, base, full=False).per_draw
     scale = np.maximum(1.0, np.abs(best_per_draw))
     accept = float(np.mean(best_per_draw - per_best <= 1e-9 * scale))
     notes = []
@@ -542,13 +568,16 @@ def best_policy_over_draws(
     memory_limit_bytes: int | None = None,
     progress: Callable[[int, int], None] | None = None,
     extra_starts: Sequence[tuple[str, np.ndarray]] = (),
+    map_chunks: Any = None,
 ) -> PolicySearchResult:
     """Draw ``n_draws`` parameter sets and search the best shared policy over them.
 
     The draws are the probabilistic analysis's own (same sampler, same seed gives the same
-    draws). Held in memory at once: refused with a clear message when the compiled draws
-    exceed the memory budget (:func:`caredecide.compile.compile_model`).
+    draws). They are compiled and solved chunk by chunk through the one chunk driver
+    (:mod:`caredecide.chunks`; ``map_chunks`` serial by default, or
+    :func:`~caredecide.chunks.dask_map`); the compiled chunks are kept for the search.
     """
+    from caredecide.chunks import chunk_ranges, chunk_size_for, memory_budget, run_chunks
     from caredecide.compile import compile_model
     from caredecide.solvers import solve
     from caredecide.uncertainty.sampling import ParameterSampler, check_draw_count, check_seed
@@ -566,26 +595,54 @@ def best_policy_over_draws(
     base_policy = solve(base, objective).policy[0]
     at_mean = compile_model(model, {k: np.array([v]) for k, v in sampler.means().items()} or None)
     mean_policy = solve(at_mean, objective).policy[0]
-    values = sampler.draw(seed, 0, n_draws)
-    sets = {name: values[:, j] for j, name in enumerate(sampler.names)}
-    compiled = compile_model(model, sets or None, memory_limit_bytes=memory_limit_bytes)
-    if not sets:
-        compiled = compiled.take_draws(np.zeros(n_draws, dtype=int))
-    solved: PolicyResult = solve(compiled, objective)
-    per_draw_optimal = solved.value[:, 0] @ compiled.start_distribution
+    limit = memory_budget(memory_limit_bytes)
+    job = _SolveDrawsJob(model, objective, sampler, seed, limit)
+    # An eighth of the budget per chunk: the compiled chunks are kept for the search.
+    ranges = chunk_ranges(n_draws, chunk_size_for(model, n_draws, limit // 8))
+    pieces = list(run_chunks(job, ranges, map_chunks=map_chunks))
+    chunks = [piece[0] for piece in pieces]
+    per_draw_optimal = np.concatenate([piece[1] for piece in pieces])
+    per_draw_policies = np.concatenate([piece[2] for piece in pieces])
     starts = {
         "base-case optimum": base_policy,
         "optimum at mean parameters": mean_policy,
         **dict(extra_starts),
     }
     return search_shared_policy(
-        compiled,
+        chunks,
         objective,
         starts,
         base_policy=base_policy,
         per_draw_optimal=per_draw_optimal,
-        per_draw_policies=solved.policy,
+        per_draw_policies=per_draw_policies,
         criterion=criterion,
         percentile=percentile,
         progress=progress,
     )
+
+
+@dataclass(frozen=True)
+class _SolveDrawsJob:
+    """Chunk job: compile and solve draws ``start:stop``; keep the compiled chunk, each
+    draw's optimal value and policy (int8)."""
+
+    model: Any
+    objective: Objective
+    sampler: Any
+    seed: int
+    memory_limit_bytes: int
+
+    def __call__(self, start: int, stop: int) -> tuple[CompiledModel, np.ndarray, np.ndarray]:
+        from caredecide.compile import compile_model
+        from caredecide.solvers import solve
+
+        values = self.sampler.draw(self.seed, start, stop)
+        sets = {name: values[:, j] for j, name in enumerate(self.sampler.names)}
+        compiled = compile_model(
+            self.model, sets or None, memory_limit_bytes=self.memory_limit_bytes
+        )
+        if not sets:
+            compiled = compiled.take_draws(np.zeros(stop - start, dtype=int))
+        solved = solve(compiled, self.objective)
+        optimal = solved.value[:, 0] @ compiled.start_distribution
+        return compiled, optimal, solved.policy.astype(np.int8)
