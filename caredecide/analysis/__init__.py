@@ -29,6 +29,7 @@ _HOMES = {
     "analyse_uncertainty": "others",
     "analyse_best_schedule": "others",
     "analyse_verification": "others",
+    "candidate_table": "others",
     "analyse_convergence": "convergence",
     "analyse_method_race": "convergence",
     "ScenarioResult": "scenarios",
@@ -58,5 +59,6 @@ __all__ = [
     "analyse_strategies",
     "analyse_uncertainty",
     "analyse_verification",
+    "candidate_table",
     "willingness_to_pay_search",
 ]

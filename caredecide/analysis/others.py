@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from caredecide.model import Model
@@ -33,11 +34,39 @@ def analyse_strategies(
     return compare_strategies(model, strategies, **options)
 
 
-def analyse_uncertainty(model: Model, n_draws: int, seed: int, **options: Any) -> PSAResult:
-    """The probabilistic analysis (:func:`caredecide.uncertainty.psa.analyse_uncertainty`)."""
+def candidate_table(model: Model, table: Path | str | None = None) -> Path | None:
+    """The strategy table whose strategies join the candidates of an analysis.
+
+    ``table`` when given, else ``<model>.strategies.csv`` beside the model file when one
+    exists (the same rule as :func:`caredecide.compare.compare_strategies`), else None.
+    """
+    from caredecide.strategies import sibling_table
+
+    return Path(table) if table is not None else sibling_table(model.source_path)
+
+
+def analyse_uncertainty(
+    model: Model,
+    n_draws: int,
+    seed: int,
+    *,
+    strategies: Any = None,
+    table: Path | str | None = None,
+    **options: Any,
+) -> PSAResult:
+    """The probabilistic analysis (:func:`caredecide.uncertainty.psa.analyse_uncertainty`).
+
+    ``strategies`` (a sequence of strategies) are added to the built-in candidates as
+    given; when it is None, the strategies of :func:`candidate_table` (``table``, or the
+    table beside the model file) are added, so every front end values the same candidates.
+    """
+    from caredecide.strategies import read_strategy_table
     from caredecide.uncertainty.psa import analyse_uncertainty as run
 
-    return run(model, n_draws, seed, **options)
+    if strategies is None:
+        found = candidate_table(model, table)
+        strategies = read_strategy_table(found) if found is not None else []
+    return run(model, n_draws, seed, strategies=strategies, **options)
 
 
 def analyse_verification(model: Model, **options: Any) -> VerificationReport:

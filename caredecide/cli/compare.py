@@ -246,7 +246,7 @@ def compare_command(
     sets: SetOption = None,
 ) -> None:
     """Compare the optimal policy with fixed strategies (research use only)."""
-    from caredecide.compare import compare_strategies
+    from caredecide.analysis import analyse_strategies
 
     print_caution(model)
     with user_errors():
@@ -263,11 +263,13 @@ def compare_command(
                         f"Refining switch points: round {round_number}, {brackets} interval(s) left"
                     )
 
-            result = compare_strategies(
+            # The frontier is searched only over a range given with --wtp-range.
+            result = analyse_strategies(
                 loaded,
                 strategies,
-                wtp,
-                (wtp_range[0], wtp_range[1]) if wtp_range is not None else None,
+                frontier=False,
+                wtp=wtp,
+                wtp_range=(wtp_range[0], wtp_range[1]) if wtp_range is not None else None,
                 grid=grid,
                 from_ages=tuple(from_age or ()),
                 progress=progress,

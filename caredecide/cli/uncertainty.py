@@ -193,12 +193,10 @@ def run_uncertainty(
         correlations = _correlation_pairs(rank_correlation or [])
         if out is not None:  # before the run: a folder that cannot be made fails at once
             prepare_output_folder(out)
-        from caredecide.strategies import read_strategy_table, sibling_table
-        from caredecide.uncertainty.psa import analyse_uncertainty
+        from caredecide.analysis import analyse_uncertainty, candidate_table
 
         loaded = load_and_warn(model, strict=strict, sets=sets)
-        table = strategies or sibling_table(model)
-        extra = read_strategy_table(table) if table is not None else []
+        table = candidate_table(loaded, strategies)
         if table is not None and not quiet:
             stderr.print(f"Candidates include the strategies of {table}")
         with progress("solving draws", total=draws, quiet=quiet) as bar:
@@ -210,7 +208,7 @@ def run_uncertainty(
             options: dict[str, Any] = dict(
                 chunk_size=chunk_size,
                 wtp_range=wtp_range,
-                strategies=extra,
+                table=table,
                 rank_correlation=correlations,
                 progress=advance,
             )

@@ -23,14 +23,15 @@ def verify_command(
     sets: SetOption = None,
 ) -> None:
     """Run the verification battery on a model; exit code 1 when a check fails."""
+    from caredecide.analysis import analyse_verification
     from caredecide.exports import table_to_csv
-    from caredecide.verify import CHECK_IDS, FAIL, verify_model
+    from caredecide.verify import CHECK_IDS, FAIL
 
     print_caution(model)
     with user_errors():
         loaded = load_and_warn(model, strict=strict, sets=sets)
         with step_progress("verify", len(CHECK_IDS), quiet) as step:
-            report = verify_model(loaded, progress=step)
+            report = analyse_verification(loaded, progress=step)
     table = Table(title=f"Verification of {loaded.title}")
     for column in ("check", "result", "figures"):
         table.add_column(column, overflow="fold")

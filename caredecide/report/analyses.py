@@ -288,16 +288,17 @@ def _transition_cells(data: ReportData) -> None:
 
 
 def _uncertainty(data: ReportData) -> None:
-    from caredecide.strategies import read_strategy_table, sibling_table
-    from caredecide.uncertainty.psa import analyse_uncertainty
+    from caredecide.analysis import analyse_uncertainty
+    from caredecide.strategies import sibling_table
 
-    # The same candidates as 'caredecide uncertainty': the model's strategy table joins
-    # the built-in strategies when one lies beside the model file.
-    table = sibling_table(data.model.source_path or data.model_path)
-    extra = read_strategy_table(table) if table is not None else []
     assert data.draws is not None  # the step runs only with draws (see run_analyses)
+    # The candidates (the built-ins and the table beside the model) are the library's rule.
     psa = analyse_uncertainty(
-        data.model, data.draws, data.seed or 0, objective=data.objective, strategies=extra
+        data.model,
+        data.draws,
+        data.seed or 0,
+        objective=data.objective,
+        table=None if data.model.source_path else sibling_table(data.model_path),
     )
     data.results["psa_acceptability"] = psa.acceptability_by_age_band()
     data.results["psa_expected_loss"] = psa.expected_loss()
@@ -325,9 +326,9 @@ def _uncertainty(data: ReportData) -> None:
 
 
 def _verification(data: ReportData) -> None:
-    from caredecide.verify import verify_model
+    from caredecide.analysis import analyse_verification
 
-    report = verify_model(data.model, objective=data.objective)
+    report = analyse_verification(data.model, objective=data.objective)
     data.results["verification"] = report.to_frame()
     data.facts["verification_passed"] = report.passed
 

@@ -7,9 +7,10 @@ import pandas as pd
 import streamlit as st
 
 from caredecide import charts, decision_charts
-from caredecide.compare import compare_strategies
+from caredecide.analysis import analyse_strategies, willingness_to_pay_search
 from caredecide.errors import CaredecideError
 from caredecide.modelfile import loads_model
+from caredecide.objective import Objective
 from caredecide.strategies import MAX_TABLE_BYTES, read_strategy_table, sibling_table
 from ui import working_model
 
@@ -54,11 +55,12 @@ def run_comparison(
     """Compare strategies (cached on the model text, the tables' text and the WTP figures)."""
     model = loads_model(text, file=file, base_dir=base_dir)
     strategies = [s for name, content in tables for s in read_strategy_table(name, text=content)]
-    result = compare_strategies(
+    result = analyse_strategies(
         model,
         strategies,
-        wtp,
-        (low, high) if high > low else None,
+        frontier=False,  # searched over the range shown on the page (default: the rule's)
+        wtp=wtp,
+        wtp_range=(low, high) if high > low else None,
         builtins=True,
         include_optimal=include_optimal,
         reference=reference,
@@ -89,6 +91,8 @@ st.caption(
     "to pay."
 )
 
+# The frontier range starts at the library's rule (none for the QALY objective).
+search = willingness_to_pay_search(Objective.from_settings(settings)) or (0.0, 0.0)
 left, middle, right = st.columns(3)
 wtp = left.number_input(
     f"Willingness to pay ({currency} per QALY)",
@@ -98,12 +102,12 @@ wtp = left.number_input(
     key="strategies_wtp",
 )
 low = middle.number_input(
-    "Frontier from (WTP)", min_value=0.0, value=0.0, step=1000.0, key="strategies_low"
+    "Frontier from (WTP)", min_value=0.0, value=search[0], step=1000.0, key="strategies_low"
 )
 high = right.number_input(
     "Frontier to (WTP; equal to 'from' = no frontier)",
     min_value=0.0,
-    value=2.0 * float(settings.willingness_to_pay or 10000.0),
+    value=search[1],
     step=1000.0,
     key="strategies_high",
 )

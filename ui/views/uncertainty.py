@@ -7,11 +7,11 @@ from __future__ import annotations
 import streamlit as st
 
 from caredecide import charts, decision_charts
+from caredecide.analysis import analyse_uncertainty
 from caredecide.errors import CaredecideError
 from caredecide.limits import MAX_APP_DRAWS
 from caredecide.modelfile import loads_model
 from caredecide.strategies import read_strategy_table, sibling_table
-from caredecide.uncertainty.psa import analyse_uncertainty
 from ui import working_model
 
 
