@@ -414,6 +414,7 @@ def compile_model(
     move = _moves(model, parsed, evaluator, allowed, tp, problems)
     if move is not None and not problems:
         transition = apply_moves(transition, move, allowed, absorbing)
+        move = _one_slice_when_constant(move)
     n = model.n_cycles()
     tr = n if (n is not None and parsed.under_action_uses_time) else 1
     under_cost = _under_action(model, parsed.under_cost, evaluator, tr, problems, cost=True)
@@ -521,6 +522,17 @@ def _moves(
     return M
 
 
+def _one_slice_when_constant(array: np.ndarray) -> np.ndarray:
+    """``array`` (D, T, ...) with its time axis cut to length 1 when every cycle is the same.
+
+    Moves rarely vary with the cycle; keeping one slice saves a transition-sized array
+    per draw (the contract broadcasts a time axis of length 1).
+    """
+    if array.shape[1] > 1 and (array == array[:, :1]).all():
+        return array[:, :1].copy()
+    return array
+
+
 def rows_after_move(allowed: np.ndarray, absorbing: np.ndarray) -> np.ndarray:
     """(A, S) int: the action whose rows apply in state ``s`` after a move under ``a``.
 
@@ -547,6 +559,7 @@ def apply_moves(
     left as they are. Also used by :mod:`caredecide.sensitivity.cell_scaling`.
     """
     n_states = P.shape[-1]
+    M = np.broadcast_to(M, P.shape)  # a move kept for one cycle applies to every cycle
     identity = np.eye(n_states)
     moved = np.nonzero((M != identity).any(axis=(0, 1, 4)))  # (action, state) moved rows
     if moved[0].size == 0:
