@@ -152,7 +152,7 @@ epsilon = 0.01
 if not finite:
     epsilon = float(
         controls[1].number_input(
-            "ε of the stopping rule (value units)",
+            "ε of the stopping rule (value units; value and modified policy iteration)",
             min_value=1e-8,
             value=0.01,
             format="%g",
