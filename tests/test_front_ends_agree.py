@@ -19,7 +19,13 @@ import tomli_w
 from streamlit.testing.v1 import AppTest
 from typer.testing import CliRunner
 
-from caredecide.analysis import analyse_base_case, willingness_to_pay_search
+from caredecide.analysis import (
+    analyse_base_case,
+    analyse_strategies,
+    analyse_uncertainty,
+    analyse_verification,
+    willingness_to_pay_search,
+)
 from caredecide.cli import app as cli
 from caredecide.limits import WTP_SEARCH_MAX_WHEN_ZERO
 from caredecide.modelfile import load_model
@@ -135,3 +141,125 @@ def test_scenario_tables_identical(model_path, report, app_test):
             assert frame[column].astype(float).tolist() == pytest.approx(
                 from_report[column].astype(float).tolist(), rel=0, abs=0, nan_ok=True
             ), column
+
+
+# ----------------------------------------------------------------------------- strategies
+STRATEGY_NUMBERS = ("cost", "qalys", "incremental_cost", "incremental_qalys", "icer")
+
+
+def _same_numbers(frame: pd.DataFrame, expected: pd.DataFrame, columns) -> None:
+    for column in columns:
+        assert frame[column].astype(float).tolist() == pytest.approx(
+            expected[column].astype(float).tolist(), rel=0, abs=0, nan_ok=True
+        ), column
+
+
+def test_strategy_tables_identical(model_path, report, tmp_path, app_test):
+    # Incremental analysis by strong and extended dominance (Cantor 1994) and net monetary
+    # benefit at the model's willingness to pay: one table from caredecide.analysis.
+    out = tmp_path / "compare"
+    result = runner.invoke(cli, ["compare", str(model_path), "--out", str(out), "--quiet"])
+    assert result.exit_code == 0, result.output
+    from_cli = pd.read_csv(out / "strategies.csv")
+    from_report = report.results["strategies"]
+    app_test.switch_page("views/strategies.py").run()
+    assert not app_test.exception, app_test.exception
+    comparison = analyse_strategies(load_model(model_path))
+    library = comparison.table
+    # The app names the effect columns by the effect shown (e.g. QALYs): named back here.
+    shown = _shown(app_test, "best_at_wtp")
+    from_app = shown.rename(
+        columns={c.replace("qalys", comparison.effect_label): c for c in STRATEGY_NUMBERS}
+    )
+    assert len(from_report) >= 3  # the optimal policy and at least two built-in strategies
+    for frame in (from_cli, from_report, from_app):
+        assert list(frame["strategy"]) == list(library["strategy"])
+        assert list(frame["status"]) == list(library["status"])
+        _same_numbers(frame, library, (*STRATEGY_NUMBERS, "net_monetary_benefit"))
+    # At a willingness to pay of 0 the net monetary benefit is minus the cost (common practice).
+    assert from_report["net_monetary_benefit"].tolist() == (-from_report["cost"]).tolist()
+
+
+# ----------------------------------------------------------------------------- verification
+def test_verification_tables_identical(model_path, report, tmp_path, app_test):
+    csv = tmp_path / "verify.csv"
+    result = runner.invoke(cli, ["verify", str(model_path), "--csv", str(csv)])
+    assert result.exit_code in (0, 1), result.output
+    from_cli = pd.read_csv(csv, keep_default_na=False)
+    from_report = report.results["verification"]
+    app_test.switch_page("views/report.py").run()
+    app_test.button(key="report_prepare").click().run()
+    assert not app_test.exception, app_test.exception
+    from_app = _shown(app_test, "figures")
+    library = analyse_verification(load_model(model_path)).to_frame()
+    assert len(library) >= 5
+    for frame in (from_cli, from_report, from_app):
+        for column in ("title", "status", "figures"):
+            assert frame[column].astype(str).tolist() == library[column].astype(str).tolist()
+
+
+# ----------------------------------------------------------------------------- uncertainty
+DRAWS, SEED = 40, 11
+
+
+@pytest.fixture(scope="module")
+def uncertain_path(tmp_path_factory):
+    from tests.test_psa import uncertain_model_dict
+
+    path = tmp_path_factory.mktemp("agree_psa") / "uncertain.toml"
+    path.write_text(tomli_w.dumps(uncertain_model_dict()), encoding="utf-8")
+    return path
+
+
+def test_uncertainty_identical(uncertain_path, tmp_path, monkeypatch):
+    out = tmp_path / "psa"
+    result = runner.invoke(
+        cli,
+        [
+            "uncertainty",
+            str(uncertain_path),
+            "--draws",
+            str(DRAWS),
+            "--seed",
+            str(SEED),
+            "--out",
+            str(out),
+            "--quiet",
+        ],
+    )
+    assert result.exit_code == 0, result.output
+    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    report = run_analyses(uncertain_path, draws=DRAWS, seed=SEED)
+    library = analyse_uncertainty(load_model(uncertain_path), DRAWS, SEED)
+    evpi = library.evpi()
+    assert evpi["evpi"] >= 0.0  # EVPI is never negative (Claxton 1999)
+    # Command line and report: the same EVPI, acceptability and acceptability curves.
+    for name in ("evpi", "mc_se", "evpi_among_candidates"):
+        assert summary[name] == report.results["psa_evpi"][name].iloc[0] == evpi[name], name
+    by_band = pd.read_csv(out / "acceptability_by_age_band.csv")
+    _same_numbers(by_band, report.results["psa_acceptability"], ("share", "mc_se"))
+    _same_numbers(by_band, library.acceptability_by_age_band(), ("share", "mc_se"))
+    curves = pd.read_csv(out / "acceptability_curves.csv")
+    expected_curves = library.acceptability_curves()
+    numeric = [c for c in expected_curves.columns if expected_curves[c].dtype.kind == "f"]
+    assert numeric
+    _same_numbers(curves, report.results["psa_acceptability_curves"], numeric)
+    _same_numbers(curves, expected_curves, numeric)
+    # The app on the same model, draws and seed.
+    monkeypatch.setenv("CAREDECIDE_HOME", str(tmp_path / "home"))
+    monkeypatch.setenv("CAREDECIDE_MODEL", str(uncertain_path))
+    st.cache_data.clear()
+    try:
+        at = AppTest.from_file(APP, default_timeout=300)
+        at.run()
+        at.switch_page("views/uncertainty.py").run()
+        at.number_input(key="uncertainty_draws").set_value(DRAWS).run()
+        at.number_input(key="uncertainty_seed").set_value(SEED).run()
+        assert not at.exception, at.exception
+        shown = {m.label: m.value for m in at.metric}
+        label = next(k for k in shown if k.startswith("EVPI"))
+        assert shown[label] == f"{evpi['evpi']:,.2f}"
+        by_cycle = pd.read_csv(out / "acceptability_by_cycle.csv")
+        _same_numbers(_shown(at, "share"), by_cycle, ("share", "mc_se"))
+    finally:
+        st.cache_data.clear()
