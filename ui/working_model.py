@@ -68,6 +68,20 @@ def read_model_file(path: Path) -> str:
     return read_limited_text(path, MAX_MODEL_BYTES, what="a model file (.toml)")
 
 
+def beside_table() -> tuple[str, str] | None:
+    """(file, CSV text) of the strategy table beside the working model's file, when one
+    exists and reads (the library's rule, :func:`caredecide.analysis.candidate_table`;
+    an upload or a template has no folder, so no table)."""
+    from caredecide.strategies import sibling_table
+
+    source = working_source()
+    if source.partition(":")[0] in ("upload", "template"):
+        return None
+    path = sibling_table(source)
+    text = read_beside_table(path)
+    return (str(path), text) if path is not None and text is not None else None
+
+
 def read_beside_table(path: Path | None) -> str | None:
     """Text of the strategy table beside the model (None when there is none); a table
     the guarded reader refuses is reported on the page and left out."""

@@ -3,6 +3,8 @@ and the optimal policy over a willingness-to-pay range (all computed by caredeci
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import pandas as pd
 import streamlit as st
 
@@ -11,7 +13,7 @@ from caredecide.analysis import analyse_strategies, willingness_to_pay_search
 from caredecide.errors import CaredecideError
 from caredecide.modelfile import loads_model
 from caredecide.objective import Objective
-from caredecide.strategies import MAX_TABLE_BYTES, read_strategy_table, sibling_table
+from caredecide.strategies import MAX_TABLE_BYTES, read_strategy_table
 from ui import working_model
 
 TABLE_COLUMNS = [
@@ -122,12 +124,10 @@ upload = st.file_uploader(
 )
 
 tables: list[tuple[str, str]] = []
-source = working_model.working_source()
-beside = None if source.partition(":")[0] in ("upload", "template") else sibling_table(source)
-beside_text = working_model.read_beside_table(beside)
-if beside_text is not None:
-    tables.append((str(beside), beside_text))
-    st.caption(f"Strategy table beside the model: {beside.name}")
+beside = working_model.beside_table()
+if beside is not None:
+    tables.append(beside)
+    st.caption(f"Strategy table beside the model: {Path(beside[0]).name}")
 if upload is not None:
     data = upload.getvalue()
     if len(data) > MAX_TABLE_BYTES:

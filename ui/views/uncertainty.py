@@ -4,6 +4,8 @@ caredecide.uncertainty.psa)."""
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import streamlit as st
 
 from caredecide import charts, decision_charts
@@ -11,7 +13,7 @@ from caredecide.analysis import analyse_uncertainty
 from caredecide.errors import CaredecideError
 from caredecide.limits import MAX_APP_DRAWS
 from caredecide.modelfile import loads_model
-from caredecide.strategies import read_strategy_table, sibling_table
+from caredecide.strategies import read_strategy_table
 from ui import working_model
 
 
@@ -42,13 +44,9 @@ draws = left.number_input(
 seed = right.number_input("Seed", min_value=0, value=1, step=1, key="uncertainty_seed")
 
 # The strategy table beside the model joins the candidates, as in the CLI and the report.
-source = working_model.working_source()
-beside = None if source.partition(":")[0] in ("upload", "template") else sibling_table(source)
-table = None
-beside_text = working_model.read_beside_table(beside)
-if beside_text is not None:
-    table = (str(beside), beside_text)
-    st.caption(f"Candidates include the strategies of {beside.name}")
+table = working_model.beside_table()
+if table is not None:
+    st.caption(f"Candidates include the strategies of {Path(table[0]).name}")
 
 try:
     with st.spinner(f"Solving {int(draws):,} draws (compile -> solve -> evaluate, in chunks)..."):
