@@ -76,3 +76,21 @@ def test_psa_convergence_chart_has_one_panel_per_quantity(small_result):
 def test_chart_builders_name_missing_columns(small_result):
     with pytest.raises(ValueError, match=r"EVPPI chart: frame lacks column\(s\) \['mc_se'\]"):
         charts.make_evppi_chart(small_result.evppi().drop(columns="mc_se"))
+
+
+def test_uncertainty_view_shows_the_library_best_schedule():
+    # Common practice: the app displays the analysis layer's figures unchanged.
+    from caredecide.analysis import analyse_best_schedule
+
+    at = AppTest.from_file(APP, default_timeout=300).run()
+    at.switch_page("views/uncertainty.py").run()
+    at.number_input(key="uncertainty_draws").set_value(40).run()
+    at.toggle(key="best_schedule_run").set_value(True).run()
+    assert not at.exception, at.exception
+    expected = analyse_best_schedule(load_model(demo_model_path()), 40, 1)
+    metrics = {m.label: m.value for m in at.metric}
+    vss = next(k for k in metrics if k.startswith("Value of the stochastic solution"))
+    assert metrics[vss] == f"{expected.value_of_stochastic_solution:,.2f}"
+    evpi = next(k for k in metrics if k.startswith("EVPI against the best schedule"))
+    assert metrics[evpi] == f"{expected.evpi_best:,.2f}"
+    assert metrics["Draws where it is optimal"] == f"{expected.acceptability:.1%}"

@@ -323,6 +323,8 @@ class PolicySearchResult:
     ages: np.ndarray
     acceptability: float
     notes: tuple[str, ...] = field(default_factory=tuple)
+    deciding_states: tuple[str, ...] = ()
+    """States where a choice is made (two or more allowed actions, not absorbing)."""
 
     @property
     def n_draws(self) -> int:
@@ -413,6 +415,21 @@ class PolicySearchResult:
                 "state": [self.state_ids[i] for i in s],
                 "best_over_draws": [self.action_labels[a] for a in self.policy.ravel()],
                 "base_case": [self.action_labels[a] for a in self.base_policy.ravel()],
+            }
+        )
+
+    def map_frame(self) -> pd.DataFrame:
+        """The best schedule for a policy map: one row per (state, age) where a choice is
+        made; ``label`` marks with ``*`` the cells that differ from the base-case schedule
+        (columns state, age, action, label; see :func:`caredecide.charts.make_policy_chart`)."""
+        frame = self.policy_frame()
+        frame = frame[frame["state"].isin(self.deciding_states)]
+        return pd.DataFrame(
+            {
+                "state": frame["state"].to_numpy(),
+                "age": frame["age"].to_numpy(),
+                "action": frame["best_over_draws"].to_numpy(),
+                "label": np.where(frame["best_over_draws"] != frame["base_case"], "*", ""),
             }
         )
 
@@ -554,6 +571,9 @@ def search_shared_policy(
         ages=compiled.ages() if ages is None else ages,
         acceptability=accept,
         notes=tuple(notes),
+        deciding_states=tuple(
+            compiled.state_ids[i] for i in np.flatnonzero(decision_state_mask(compiled))
+        ),
     )
 
 

@@ -9,7 +9,7 @@ from pathlib import Path
 import streamlit as st
 
 from caredecide import charts, decision_charts
-from caredecide.analysis import analyse_uncertainty
+from caredecide.analysis import analyse_best_schedule, analyse_uncertainty
 from caredecide.errors import CaredecideError
 from caredecide.limits import MAX_APP_DRAWS
 from caredecide.modelfile import loads_model
@@ -25,6 +25,15 @@ def run_analysis(
     model = loads_model(text, file=file, base_dir=base_dir)
     strategies = read_strategy_table(table[0], text=table[1]) if table else []
     return analyse_uncertainty(model, draws, seed, strategies=strategies)
+
+
+@st.cache_data(max_entries=4, show_spinner=False)
+def run_best_schedule(
+    text: str, file: str, base_dir: str, draws: int, seed: int, criterion: str, percentile: float
+):
+    """The one schedule best over the same draws (caredecide.uncertainty.policy_search)."""
+    model = loads_model(text, file=file, base_dir=base_dir)
+    return analyse_best_schedule(model, draws, seed, criterion=criterion, percentile=percentile)
 
 
 model = working_model.valid_model_or_stop()
@@ -151,6 +160,49 @@ else:
         f"{population['persons'].iloc[0]:,.0f} persons once discounted: each year's persons "
         "discounted to today, the first year undiscounted."
     )
+
+st.subheader("The best schedule given what is not known")
+st.caption(
+    "The schedule recommended above is optimal at the base-case estimates. The one schedule "
+    "with the best expected value over these same draws can differ: it is searched by exact "
+    "improvement passes from several starts (finite-horizon models). Cells marked * differ "
+    "from the base-case schedule."
+)
+criteria = {
+    "expected": "Expected value over the draws",
+    "lower_percentile": "A low percentile of the objective (robust; a different criterion)",
+    "regret_percentile": "A high percentile of regret, minimised (robust; a different criterion)",
+}
+left, right = st.columns(2)
+criterion = left.selectbox(
+    "Criterion", list(criteria), format_func=criteria.get, key="best_schedule_criterion"
+)
+percentile = right.number_input(
+    "Percentile (robust criteria)", min_value=0.5, max_value=49.5, value=5.0, step=0.5,
+    key="best_schedule_percentile", disabled=criterion == "expected",
+)  # fmt: skip
+if st.toggle("Search the best schedule over these draws", key="best_schedule_run"):
+    try:
+        with st.spinner("Searching the best schedule over the draws..."):
+            best = run_best_schedule(*key, int(draws), int(seed), str(criterion), float(percentile))
+    except CaredecideError as error:
+        st.error(str(error), icon=":material/error:")
+    else:
+        first, second, third = st.columns(3)
+        first.metric(
+            f"Value of the stochastic solution ({unit} per person)",
+            f"{best.value_of_stochastic_solution:,.2f}",
+            help=f"Monte Carlo standard error {best.vss_standard_error:,.2f}",
+        )
+        second.metric(
+            f"EVPI against the best schedule ({unit} per person)",
+            f"{best.evpi_best:,.2f}",
+            help=f"Against the candidate policies: {best.evpi_candidates:,.2f}",
+        )
+        third.metric("Draws where it is optimal", f"{best.acceptability:.1%}")
+        st.markdown("\n".join(f"- {line.strip()}" for line in best.lines()[5:]))
+        st.altair_chart(charts.make_policy_chart(best.map_frame()), key="best_schedule_map")
+        st.dataframe(best.to_frame(), hide_index=True, key="best_schedule_starts")
 
 st.subheader("Convergence")
 st.altair_chart(
