@@ -256,6 +256,11 @@ def test_uncertainty_identical(uncertain_path, tmp_path, monkeypatch):
         at.number_input(key="uncertainty_draws").set_value(DRAWS).run()
         at.number_input(key="uncertainty_seed").set_value(SEED).run()
         assert not at.exception, at.exception
+        # The acceptability of one action is shown first, the same one everywhere: the
+        # first action after the model's first (common practice: the treatment).
+        assert library.shown_action == library.action_ids[1]
+        assert at.selectbox(key="uncertainty_action").value == library.shown_action
+        assert report.facts["psa_shown_action"] == library.shown_action
         shown = {m.label: m.value for m in at.metric}
         label = next(k for k in shown if k.startswith("EVPI"))
         assert shown[label] == f"{evpi['evpi']:,.2f}"

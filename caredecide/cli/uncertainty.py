@@ -237,7 +237,7 @@ def run_uncertainty(
         f"Model: {loaded.title}; objective: {result.objective.describe()}; "
         f"{result.n_draws:,} draws, seed {result.seed}"
     )
-    treat = _shown_action(result)
+    treat = result.shown_action
     stdout.print(_acceptability_table(tables["acceptability_by_age_band"], treat))
     stdout.print(_loss_table(tables["expected_loss"], unit))
     stdout.print(
@@ -336,11 +336,6 @@ def _correlation_pairs(texts: list[str]) -> dict[tuple[str, str], float]:
     if problems:
         raise ModelError(problems)
     return pairs
-
-
-def _shown_action(result) -> str:
-    """The action whose acceptability is shown: the first one other than the model's first."""
-    return result.action_ids[1] if len(result.action_ids) > 1 else result.action_ids[0]
 
 
 def _tables(result, band_years: float) -> dict[str, pd.DataFrame]:

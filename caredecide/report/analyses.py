@@ -310,6 +310,7 @@ def _uncertainty(data: ReportData) -> None:
     data.results["psa_strategy_means"] = psa.strategy_summary()
     data.results["psa_plane"] = psa.plane_frame(max_draws=500)
     data.facts["psa_fixed_parameters"] = list(psa.fixed_parameters)
+    data.facts["psa_shown_action"] = psa.shown_action
     states = data.results.get("what_would_change_states")
     if states is not None:
         from caredecide.sensitivity.recommendation import share_of_draws_differing

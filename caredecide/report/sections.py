@@ -453,12 +453,6 @@ def transition_cells_part(data: ReportData) -> str:
     return "".join(parts)
 
 
-def _action_shown(data: ReportData) -> str:
-    """The action whose acceptability is drawn: the first one after the model's first."""
-    ids = data.model.action_ids
-    return ids[1] if len(ids) > 1 else ids[0]
-
-
 def uncertainty_section(data: ReportData) -> str:
     from caredecide.charts import (
         make_acceptability_curves_chart,
@@ -469,7 +463,7 @@ def uncertainty_section(data: ReportData) -> str:
 
     evpi = data.results["psa_evpi"].iloc[0]
     unit = unit_text(data)
-    action = _action_shown(data)
+    action = str(data.facts["psa_shown_action"])  # PSAResult.shown_action
     parts = [
         _para(
             f"{data.draws} parameter draws, seed {data.seed}. EVPI of the timing "

@@ -495,6 +495,12 @@ class PSAResult:
             }
         )
 
+    @property
+    def shown_action(self) -> str:
+        """The action whose acceptability every front end shows first: the first action
+        other than the model's first (the one that is not the default), else the only one."""
+        return self.action_ids[1] if len(self.action_ids) > 1 else self.action_ids[0]
+
     def evpi(self) -> dict[str, float | str]:
         """EVPI of the timing decision (an upper bound; see the module docstring).
 

@@ -78,7 +78,9 @@ if not result.success:
 
 st.subheader("How often each action is optimal")
 actions = list(result.action_ids)
-shown = st.selectbox("Action", actions, index=min(1, len(actions) - 1), key="uncertainty_action")
+shown = st.selectbox(
+    "Action", actions, index=actions.index(result.shown_action), key="uncertainty_action"
+)
 band = st.slider("Age band (years)", 1, 20, 5, key="uncertainty_band")
 bands = result.acceptability_by_age_band(float(band))
 st.altair_chart(
