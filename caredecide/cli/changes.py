@@ -93,7 +93,7 @@ def run_what_would_change(
                 else None
             )
             if draws:
-                from caredecide.uncertainty.psa import analyse_uncertainty
+                from caredecide.analysis import analyse_uncertainty
 
                 task = bar.add_task("probabilistic draws", total=draws)
                 psa = analyse_uncertainty(
