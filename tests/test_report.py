@@ -140,9 +140,10 @@ def test_probabilistic_section_has_its_charts_and_tables(built):
     section = page[
         page.index('<section id="uncertainty">') : page.index('<section id="verification">')
     ]
-    # The plane of the draws, the heat map of the treatment's share and the acceptability
-    # curves, drawn inline.
-    assert section.count("<svg") == 3
+    # The plane of the draws, the heat map of the treatment's share, the acceptability
+    # curves and the map of the best schedule over the draws, drawn inline.
+    assert section.count("<svg") == 4
+    assert "The best schedule given what is not known" in section
     assert "Cost-effectiveness plane of the probabilistic draws" in section
     assert "How often 'treat' is optimal across the parameter draws" in section
     assert "Acceptability curves" in section
@@ -154,7 +155,20 @@ def test_probabilistic_section_has_its_charts_and_tables(built):
         "psa_evppi.csv",
         "psa_convergence.csv",
         "psa_evpi.csv",
+        "best_schedule.csv",
+        "best_schedule_starts.csv",
     } <= set(record.outputs)
+
+
+def test_best_schedule_in_the_report_equals_the_library(built):
+    # Common practice: the report displays the analysis layer's figures unchanged.
+    from caredecide.analysis import analyse_best_schedule
+    from caredecide.modelfile import load_model
+
+    model, out, _ = built
+    page = out.read_text(encoding="utf-8")
+    best = analyse_best_schedule(load_model(model), 40, 5)
+    assert f"Value of the stochastic solution: {best.value_of_stochastic_solution:,.2f}" in page
 
 
 STRATEGY_TABLE = (

@@ -321,9 +321,29 @@ def _uncertainty(data: ReportData) -> None:
         states["psa_draws"] = psa.n_draws
     evpi = psa.evpi()
     data.results["psa_evpi"] = pd.DataFrame([evpi])
+    _best_schedule(data)
     data.facts["psa_distinct_policies"] = len(psa.distinct_counts)
     if not psa.success:
         data.notes["uncertainty"] = "the solver reported a problem: " + "; ".join(psa.messages)
+
+
+def _best_schedule(data: ReportData) -> None:
+    """The one schedule best over the same draws (finite horizon; else a note)."""
+    from caredecide.analysis import analyse_best_schedule
+
+    assert data.draws is not None
+    try:
+        best = analyse_best_schedule(
+            data.model, data.draws, data.seed or 0, objective=data.objective
+        )
+    except CaredecideError as error:
+        data.notes["best_schedule"] = f"left out: {str(error).splitlines()[0]}"
+        return
+    data.results["best_schedule_starts"] = best.to_frame()
+    data.results["best_schedule_cells"] = best.differing_cells
+    data.results["best_schedule"] = best.policy_frame()
+    data.facts["best_schedule_lines"] = best.lines()[:5]
+    data.facts["best_schedule_map"] = best.map_frame()
 
 
 def _verification(data: ReportData) -> None:

@@ -510,6 +510,19 @@ def uncertainty_section(data: ReportData) -> str:
             f"<h3>Most frequent optimal policies ({esc(distinct)} distinct across the draws)</h3>",
             table(data.results["psa_policy_frequencies"]),
         ]
+    parts.append("<h3>The best schedule given what is not known</h3>")
+    if "best_schedule_starts" in data.results:
+        from caredecide.charts import make_policy_chart
+
+        parts += [
+            "".join(_para(line) for line in data.facts["best_schedule_lines"]),
+            svg(lambda: make_policy_chart(data.facts["best_schedule_map"])),
+            note("Cells marked * differ from the base-case schedule."),
+            table(data.results["best_schedule_cells"]),
+            table(data.results["best_schedule_starts"]),
+        ]
+    else:
+        parts.append(note(data.notes.get("best_schedule", "not run")))
     evppi = data.results.get("psa_evppi")
     parts.append("<h3>Expected value of partial perfect information</h3>")
     if evppi is not None and len(evppi) and evppi["evppi"].notna().any():
