@@ -57,7 +57,9 @@ def test_report_renders_offline_with_every_section(report_file, page, artifacts)
     assert page.locator("section#sensitivity figure.chart svg").count() == 2 + n_actions
     # The plane of the draws, the treatment's share of draws by state and age band, and the
     # acceptability curves.
-    assert page.locator("section#uncertainty figure.chart svg").count() == 3
+    assert (
+        page.locator("section#uncertainty figure.chart svg").count() == 4
+    )  # plane, shares, curves, best schedule map
     assert (
         page.locator("section#uncertainty .note")
         .first.inner_text()
