@@ -190,3 +190,21 @@ def test_bad_options_are_refused_naming_them():
         _search(compiled, criterion="lower_percentile", percentile=100.0)
     with pytest.raises(ValueError, match="shape"):
         evaluate_shared_policy(compiled, QALYS, np.zeros((2, 3), dtype=int))
+
+
+def test_best_schedule_identical_serial_and_dask_and_across_chunk_sizes():
+    # Common practice: how the draws are split and where chunks run changes nothing.
+    from caredecide.modelfile import load_model
+    from caredecide.uncertainty.cluster import dask_client, dask_map
+    from caredecide.uncertainty.policy_search import best_policy_over_draws
+    from synthetic_cohort import demo_model_path
+
+    model = load_model(demo_model_path())
+    serial = best_policy_over_draws(model, 30, 4)
+    small = best_policy_over_draws(model, 30, 4, memory_limit_bytes=60_000_000)
+    with dask_client(workers=1, processes=False, threads_per_worker=2) as client:
+        on_dask = best_policy_over_draws(model, 30, 4, map_chunks=dask_map(client))
+    for other in (small, on_dask):
+        np.testing.assert_array_equal(other.policy, serial.policy)
+        np.testing.assert_array_equal(other.per_draw_best, serial.per_draw_best)
+        np.testing.assert_array_equal(other.per_draw_optimal, serial.per_draw_optimal)
