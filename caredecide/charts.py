@@ -193,16 +193,38 @@ def make_value_chart(
     )
 
 
-def make_trace_chart(frame: pd.DataFrame, *, state_order: Sequence[str] | None = None) -> alt.Chart:
+def trace_until_absorbed(
+    frame: pd.DataFrame, live_states: Sequence[str], *, left: float = 1e-3
+) -> pd.DataFrame:
+    """The trace up to the first cycle where less than ``left`` of the cohort is alive.
+
+    For an infinite horizon the trace runs to a display cap; past the point where the
+    cohort has left the live states there is nothing to see. ``frame`` has ``cycle``,
+    ``state`` and ``proportion``.
+    """
+    _require(frame, ["cycle", "state", "proportion"], "cohort trace")
+    alive = frame[frame["state"].isin(live_states)].groupby("cycle")["proportion"].sum()
+    gone = alive.index[alive.to_numpy() < left]
+    if len(gone) == 0:
+        return frame
+    return frame[frame["cycle"] <= gone[0]]
+
+
+def make_trace_chart(
+    frame: pd.DataFrame, *, state_order: Sequence[str] | None = None, time: str = "age"
+) -> alt.Chart:
     """Cohort trace as a stacked area: share of the cohort in each state over age.
 
     Parameters
     ----------
     frame : DataFrame
-        ``age`` (years at the cycle boundary), ``state`` and ``proportion`` (0..1; the
-        proportions at one age sum to 1).
+        ``age`` (years at the cycle boundary) or ``cycle``, ``state`` and ``proportion``
+        (0..1; the proportions at one boundary sum to 1).
+    time : {"age", "cycle"}
+        The horizontal axis: age for a finite horizon, cycles for an infinite horizon
+        (a stationary model has no age).
     """
-    _require(frame, ["age", "state", "proportion"], "cohort trace chart")
+    _require(frame, [time, "state", "proportion"], "cohort trace chart")
     states = _ordered(frame, "state", state_order)
     order = {s: i for i, s in enumerate(states)}
     data = frame.assign(stack_order=frame["state"].map(order))
@@ -210,7 +232,7 @@ def make_trace_chart(frame: pd.DataFrame, *, state_order: Sequence[str] | None =
         alt.Chart(data)
         .mark_area()
         .encode(
-            x=alt.X("age:Q", title="Age (years)"),
+            x=alt.X(f"{time}:Q", title="Age (years)" if time == "age" else "Cycles from the start"),
             y=alt.Y(
                 "proportion:Q",
                 stack="zero",
@@ -223,7 +245,7 @@ def make_trace_chart(frame: pd.DataFrame, *, state_order: Sequence[str] | None =
                 scale=alt.Scale(domain=states, range=_cycle(STATE_PALETTE, len(states))),
             ),
             order=alt.Order("stack_order:Q"),
-            tooltip=["state:N", "age:Q", alt.Tooltip("proportion:Q", format=".3f")],
+            tooltip=["state:N", f"{time}:Q", alt.Tooltip("proportion:Q", format=".3f")],
         )
         .properties(title="Cohort trace under the best policy")
     )

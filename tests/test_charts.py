@@ -172,3 +172,20 @@ def test_convergence_chart_without_stability_column_is_a_single_layer():
 def test_missing_columns_are_named(builder, frame):
     with pytest.raises(ValueError, match=r"lacks column\(s\)"):
         builder(frame)
+
+
+def test_trace_until_absorbed_cuts_where_the_cohort_has_left():
+    # Worked by hand: alive shares 1, 0.1, 0.0005, 0.00001 -> shown up to cycle 2.
+    import pandas as pd
+
+    alive = [1.0, 0.1, 0.0005, 0.00001]
+    frame = pd.DataFrame(
+        {
+            "cycle": [c for c in range(4) for _ in range(2)],
+            "state": ["well", "dead"] * 4,
+            "proportion": [x for a in alive for x in (a, 1 - a)],
+        }
+    )
+    shown = charts.trace_until_absorbed(frame, ["well"])
+    assert shown["cycle"].max() == 2
+    assert charts.trace_until_absorbed(frame, ["well"], left=1e-6).equals(frame)

@@ -348,3 +348,49 @@ def test_every_view_shows_the_model_warnings(view, tmp_path, monkeypatch):
     shown = " ".join(w.value for w in at.warning)
     assert "QALY weight 75 is above 1" in shown
     assert "states.well.qaly_weight" in shown
+
+
+def test_infinite_horizon_policy_view_has_no_age_axis_and_no_zero_cost_figures(
+    tmp_path, monkeypatch
+):
+    # Common practice: a stationary model has no age; a model without costs shows none.
+    import tomli_w
+
+    from caredecide import charts
+    from caredecide.analysis import analyse_base_case
+    from caredecide.modelfile import load_model
+    from tests.conftest import small_model_dict
+
+    data = small_model_dict()
+    data["settings"].pop("horizon_cycles")
+    data["settings"]["horizon"] = "infinite"
+    data["settings"]["objective"] = "qalys"
+    data["settings"]["discount_outcomes"] = 0.03
+    for state in data["states"]:
+        state["cost"] = 0.0
+    for action in data["actions"]:
+        for key in ("oneoff_cost", "cost_per_cycle"):
+            action.pop(key, None)
+    data["parameters"].pop("c_drug", None)
+    path = tmp_path / "stationary.toml"
+    path.write_text(tomli_w.dumps(data), encoding="utf-8")
+    monkeypatch.setenv("CAREDECIDE_MODEL", str(path))
+    at = AppTest.from_file(APP, default_timeout=120)
+    at.run()
+    at.switch_page("views/policy.py").run()
+    assert not at.exception, at.exception
+    metrics = {m.label: m.value for m in at.metric}
+    costs = next(k for k in metrics if k.startswith("Costs"))
+    assert metrics[costs] == "none in this model"
+    assert metrics["Net monetary benefit"] == "not used (QALYs only, no costs)"
+    # The trace is drawn over cycles and cut where the cohort has left the live states.
+    result = analyse_base_case(load_model(path))
+    trace = result.trace_frame()
+    shown = charts.trace_until_absorbed(trace, ["well", "sick"])
+    alive = shown[shown["state"] != "dead"].groupby("cycle")["proportion"].sum()
+    assert alive.iloc[:-1].min() >= 1e-3  # nothing cut while 0.1% or more is alive
+    assert alive.iloc[-1] < 1e-3 or shown["cycle"].max() == trace["cycle"].max()
+    caption = next(c.value for c in at.caption if "no age axis" in c.value)
+    assert f"(cycle {int(shown['cycle'].max())})" in caption
+    spec = charts.make_trace_chart(shown, time="cycle").to_dict()
+    assert spec["encoding"]["x"]["field"] == "cycle"

@@ -60,10 +60,17 @@ st.subheader("Totals per person under the best policy (discounted)")
 cols = st.columns(4)
 cols[0].metric("Life-years", f"{totals['life_years']:,.4f}")
 cols[1].metric("QALYs", f"{totals['qalys']:,.4f}")
-cols[2].metric(f"Costs ({settings.currency or 'money'})", f"{totals['costs']:,.2f}")
-cols[3].metric(
-    f"Net monetary benefit at {willingness_to_pay:,.0f}", f"{totals['net_monetary_benefit']:,.2f}"
-)
+if totals["costs_undiscounted"] == 0:  # a model without costs: no figure to show
+    cols[2].metric(f"Costs ({settings.currency or 'money'})", "none in this model")
+else:
+    cols[2].metric(f"Costs ({settings.currency or 'money'})", f"{totals['costs']:,.2f}")
+if kind == "qalys" and totals["costs_undiscounted"] == 0:
+    cols[3].metric("Net monetary benefit", "not used (QALYs only, no costs)")
+else:
+    cols[3].metric(
+        f"Net monetary benefit at {willingness_to_pay:,.0f}",
+        f"{totals['net_monetary_benefit']:,.2f}",
+    )
 
 # -- structure ---------------------------------------------------------------------------
 st.subheader("What the policy says")
@@ -169,7 +176,17 @@ if groupings != ["state"]:  # the model has attributes or tunnels
     if by != "each state":
         trace = trace_by_group(solved.trace, solved.groups, by)
         trace_order = list(dict.fromkeys(trace["state"]))
-st.altair_chart(charts.make_trace_chart(trace, state_order=trace_order), key="trace_chart")
+if result.finite_horizon:
+    trace_chart = charts.make_trace_chart(trace, state_order=trace_order)
+else:  # no age on an infinite horizon: cycles, shown until the cohort has left
+    live = [s.id for s in flat_states if s.alive and not s.absorbing]
+    trace = charts.trace_until_absorbed(trace, live)
+    trace_chart = charts.make_trace_chart(trace, state_order=trace_order, time="cycle")
+    st.caption(
+        f"An infinite horizon has no age axis: cycles from the start, shown until less than "
+        f"0.1% of the cohort is alive (cycle {int(trace['cycle'].max())})."
+    )
+st.altair_chart(trace_chart, key="trace_chart")
 with st.expander("Tables"):
     st.dataframe(
         frame.assign(state_label=frame["state"].map(state_labels)),
