@@ -130,6 +130,22 @@ def test_an_upload_that_is_not_text_is_refused_naming_the_file(app_url, page, tm
     _check_view(page)
 
 
+_COUNT_RUNS = """() => {
+    window.cdFinishedRuns = 0;
+    const app = document.querySelector("[data-testid='stApp']");
+    new MutationObserver((records) => {
+        for (const r of records) if (r.oldValue === "running") window.cdFinishedRuns += 1;
+    }).observe(app, {attributes: true, attributeOldValue: true,
+                     attributeFilter: ["data-test-script-state"]});
+}"""
+"""Browser script: count the script runs that finish from now on (the app's run state)."""
+
+_RUN_FINISHED = """() => window.cdFinishedRuns > 0 && document.querySelector(
+    "[data-testid='stApp']").getAttribute("data-test-script-state") === "notRunning"
+"""
+"""Browser script: a run has finished since :data:`_COUNT_RUNS` and none is running."""
+
+
 def test_an_edit_survives_a_page_reload(app_url, page, artifacts):
     """Edit the model text, reload the page (a new session): the autosaved draft comes back.
 
@@ -139,11 +155,16 @@ def test_an_edit_survives_a_page_reload(app_url, page, artifacts):
     _wait_until_done(page, "Model")
     page.get_by_role("tab", name="Model file").click()
     editor = page.locator("[data-testid='stTextArea'] textarea").first
-    text = editor.input_value()
+    text = editor.input_value(timeout=TIMEOUT_MS)
     edited = text.replace('title = "', 'title = "Edited in the browser: ', 1)
     assert edited != text
     editor.fill(edited)
+    # The valid-model message and the idle state are already on the page before the edit
+    # is sent: wait for a script run to start and finish after the commit (the draft is
+    # saved in that run), or a slow server is reloaded before the draft exists.
+    page.evaluate(_COUNT_RUNS)
     editor.press("Control+Enter")  # commit the text area
+    page.wait_for_function(_RUN_FINISHED, timeout=TIMEOUT_MS)
     page.get_by_text("is valid (autosaved)").first.wait_for(timeout=TIMEOUT_MS)
     page.wait_for_selector(DONE, timeout=TIMEOUT_MS)
 
