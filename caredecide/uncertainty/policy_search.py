@@ -226,12 +226,64 @@ def _criterion_value(
 
 
 def _improve_expected(rewards: _Rewards, policy: np.ndarray, tol: float) -> tuple[np.ndarray, int]:
+    """Improvement passes until no change of one cycle's decisions improves the schedule."""
     policy = policy.copy()
     for passes in range(1, MAX_PASSES + 1):
         weights = [_occupancy(c, policy) for c in rewards.chunks]
         if _sweep(rewards, policy, weights, tol) == 0:
             return policy, passes
     return policy, MAX_PASSES
+
+
+def _polish_with_thresholds(
+    rewards: _Rewards, policy: np.ndarray, tol: float
+) -> tuple[np.ndarray, int]:
+    """Threshold moves then improvement passes, alternated until neither improves.
+
+    Returns the schedule and the number of threshold rounds taken.
+    """
+    policy = policy.copy()
+    rounds = 0
+    while rounds < MAX_PASSES and _threshold_move(rewards, policy, tol):
+        rounds += 1
+        policy, _ = _improve_expected(rewards, policy, tol)
+    return policy, rounds
+
+
+def _threshold_schedules(column: np.ndarray, first: int, second: int) -> list[np.ndarray]:
+    """Every one-switch schedule of one state over T cycles: ``first`` before cycle k and
+    ``second`` from k on, or the reverse (k = 0..T)."""
+    T = column.size
+    out = []
+    for k in range(T + 1):
+        early = np.arange(T) < k
+        out.append(np.where(early, first, second))
+        out.append(np.where(early, second, first))
+    return out
+
+
+def _threshold_move(rewards: _Rewards, policy: np.ndarray, tol: float) -> bool:
+    """Try every threshold age in each two-action state, the other states kept; take the
+    best improving one (exact: each candidate evaluated on every draw). True if taken."""
+    first = rewards.first
+    current = float(_evaluate(rewards, policy, full=False).per_draw.mean())
+    best_value, best = current + tol * max(1.0, abs(current)), None
+    for s in np.flatnonzero(decision_state_mask(first)):
+        actions = np.flatnonzero(first.allowed[s])
+        if actions.size != 2:
+            continue
+        for column in _threshold_schedules(policy[:, s], int(actions[0]), int(actions[1])):
+            if np.array_equal(column, policy[:, s]):
+                continue
+            trial = policy.copy()
+            trial[:, s] = column
+            value = float(_evaluate(rewards, trial, full=False).per_draw.mean())
+            if value > best_value:
+                best_value, best = value, (s, column)
+    if best is None:
+        return False
+    policy[:, best[0]] = best[1]
+    return True
 
 
 def _improve_percentile(
@@ -469,6 +521,7 @@ def search_shared_policy(
     tolerance: float = 1e-12,
     ages: np.ndarray | None = None,
     progress: Callable[[int, int], None] | None = None,
+    threshold_moves: bool = True,
 ) -> PolicySearchResult:
     """Search the one policy best over every draw of ``compiled``.
 
@@ -494,6 +547,11 @@ def search_shared_policy(
         percentile (100 - percentile) of regret.
     tolerance : float
         Relative gain below which a change is not taken.
+    threshold_moves : bool
+        Expected criterion: from the best schedule found, also try every threshold age
+        (one switch between the two actions, either way round) in each two-action state with
+        the other states kept, each evaluated exactly on every draw; take the best
+        improving one, re-run the passes, repeat until neither improves.
 
     Returns
     -------
@@ -545,6 +603,22 @@ def search_shared_policy(
         if progress is not None:
             progress(i + 1, len(named))
     assert best_policy is not None
+    if criterion == "expected" and threshold_moves:
+        before = _evaluate(rewards, best_policy, full=False).per_draw
+        polished, rounds = _polish_with_thresholds(rewards, best_policy, tolerance)
+        after = _evaluate(rewards, polished, full=False).per_draw
+        rows.append(
+            {
+                "start": "threshold moves on the best found",
+                "candidate": False,
+                "expected_before": float(before.mean()),
+                "expected_after": float(after.mean()),
+                "criterion_after": float(after.mean()),
+                "passes": rounds,
+                "cells_changed": int((polished != best_policy).sum()),
+            }
+        )
+        best_policy = polished
     base = _check_policy(compiled, base_policy)
     per_best = _evaluate(rewards, best_policy, full=False).per_draw
     per_base = _evaluate(rewards, base, full=False).per_draw
