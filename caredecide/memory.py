@@ -71,6 +71,10 @@ class PipelineShape:
         Actions with rate rows and states entering their generators (0 without rates).
     rate_rows : int
         Rows given by rates.
+    move_rows : int
+        (action, state) rows with a decision-time move (0 without moves).
+    state_action_cycles : int
+        Time-axis length of the costs and QALYs of a state under an action (0: none).
     """
 
     n_draws: int
@@ -84,6 +88,8 @@ class PipelineShape:
     rate_actions: int = 0
     rate_states: int = 0
     rate_rows: int = 0
+    move_rows: int = 0
+    state_action_cycles: int = 0
 
     def with_draws(self, n_draws: int) -> PipelineShape:
         """The same shape for ``n_draws`` parameter sets."""
@@ -96,7 +102,10 @@ def compiled_bytes(shape: PipelineShape) -> int:
     """Bytes of the compiled arrays (held from compile to the end of the pass)."""
     D, S, A = shape.n_draws, shape.n_states, shape.n_actions
     tp, tq, td = shape.transition_cycles, shape.occupancy_cycles, shape.decision_cycles
-    return FLOAT * D * (tp * A * S * S + 2 * tq * S + 2 * td * S * A)
+    held = FLOAT * D * (tp * A * S * S + 2 * tq * S + 2 * td * S * A)
+    if shape.move_rows:  # the moves, kept for one cycle when no cycle differs (the usual case)
+        held += FLOAT * D * A * S * S
+    return held + FLOAT * D * 2 * shape.state_action_cycles * S * A
 
 
 def compile_peak_bytes(shape: PipelineShape) -> int:
@@ -110,6 +119,10 @@ def compile_peak_bytes(shape: PipelineShape) -> int:
 
         copies = RATE_WORK_COPIES if jit.available() else RATE_WORK_COPIES_NUMPY
         temporaries = max(temporaries, int(copies * generators))
+    if shape.move_rows:
+        # The moves for every cycle, the transitions copied to apply them, and the
+        # destinations' rows gathered for each moved row (compile.apply_moves).
+        temporaries += FLOAT * D * tp * (2 * A * S * S + shape.move_rows * S * S)
     objects = ENTRY_OBJECT_BYTES * (shape.n_entries + 2 * S + 3 * A)
     return compiled_bytes(shape) + temporaries + objects
 
@@ -184,6 +197,14 @@ def shape_from_parsed(flat_model, parsed, n_draws: int) -> PipelineShape:
         rate_actions=len(rate_actions),
         rate_states=len(rate_states),
         rate_rows=len({(e.action, e.state) for e in parsed.rates}),
+        move_rows=len({(e.action, e.state) for e in [*parsed.moves, *parsed.move_rests]}),
+        state_action_cycles=(
+            0
+            if not (parsed.under_cost or parsed.under_qaly)
+            else (flat_model.n_cycles() or 1)
+            if parsed.under_action_uses_time
+            else 1
+        ),
     )
 
 

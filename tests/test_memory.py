@@ -138,3 +138,29 @@ def test_advice_names_how_many_parameter_sets_fit():
         memory.check_fits(shape, limit, file="grid.toml")
     assert memory.check_fits(shape.with_draws(10), limit, file="grid.toml") == limit
     assert per_draw > 0
+
+
+@pytest.mark.parametrize("name", ["demo_progressive.toml", "demo_years_since_progression.toml"])
+def test_estimate_counts_decision_time_moves(name):
+    # The bundled demos start treatment by a decision-time move (and one has tunnels): the
+    # moves, the transitions copied to apply them and the gathered destination rows count.
+    from caredecide.modelfile import load_model
+    from caredecide.uncertainty.sampling import ParameterSampler
+    from synthetic_cohort import MODELS_DIR
+
+    model = load_model(MODELS_DIR / name)
+    sampler = ParameterSampler.from_model(model)
+    values = sampler.draw(1, 0, 500)
+    sets = {n: values[:, j] for j, n in enumerate(sampler.names)}
+    objective = Objective.from_settings(model.settings)
+    gc.collect()
+    tracemalloc.start()
+    try:
+        compiled = compile_model(model, sets, memory_limit_bytes=1 << 40)
+        result = solve(compiled, objective)
+        evaluate_policy(compiled, result.policy, objective)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    estimate = memory.pipeline_peak_bytes(memory.shape_of(model, 500))
+    assert 0.75 * peak <= estimate <= 1.25 * peak, (estimate, peak)
