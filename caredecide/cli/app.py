@@ -92,8 +92,8 @@ def run_app(
 
     The working model is autosaved to $CAREDECIDE_HOME/drafts (default ~/.caredecide/drafts).
     """
-    print_caution(model)
     path = model if model is not None else _default_model()
+    print_caution(path)  # names the demo data when the bundled model opens
     with user_errors():  # the app opens the file again; refuse a hostile one here first
         check_nesting(
             read_limited_text(path, MAX_MODEL_BYTES, what="a model file (.toml)"), file=str(path)

@@ -59,6 +59,8 @@ def test_app_defaults_to_the_demo_model_and_prints_the_caution(monkeypatch):
     assert env[MODEL_ENV] == str(demo_model_path().resolve())
     assert "--server.port=9123" in cmd
     assert CAUTION_SHORT in result.stderr
+    # The bundled model opens by default: the caution names the synthetic demo data.
+    assert "Demo data are synthetic" in result.stderr
 
 
 def test_app_passes_the_exit_code_of_streamlit_through(monkeypatch):
