@@ -21,6 +21,7 @@ import pandas as pd
 from caredecide.errors import ModelError, Problem
 from caredecide.guarded import check_nesting
 from caredecide.model import ALL_STATES, Action, Model, Parameter, Settings, State
+from caredecide.modelfile.reader import ACTION_KEYS, PARAMETER_KEYS, STATE_KEYS
 
 SETTINGS_COLUMNS = (
     "cycle_years",
@@ -37,30 +38,10 @@ SETTINGS_COLUMNS = (
     "currency",
     "severity_order",
 )
-STATE_COLUMNS = (
-    "id",
-    "label",
-    "qaly_weight",
-    "cost",
-    "absorbing",
-    "alive",
-    "negative_cost_allowed",
-    "attributes",
-    "tunnels",
-)
-ACTION_COLUMNS = ("id", "label", "allowed_in", "oneoff_cost", "oneoff_qaly_loss", "cost_per_cycle")
-PARAMETER_COLUMNS = (
-    "name",
-    "value",
-    "kind",
-    "per_years",
-    "low",
-    "high",
-    "distribution",
-    "source",
-    "label",
-    "note",
-)
+# The editable columns are the model file's own keys (one list, in the reader).
+STATE_COLUMNS = STATE_KEYS
+ACTION_COLUMNS = ACTION_KEYS
+PARAMETER_COLUMNS = ("name", *PARAMETER_KEYS)
 
 
 # -- cells ------------------------------------------------------------------------------
