@@ -9,6 +9,7 @@ from typing import Annotated
 import typer
 
 from caredecide.cli.console import (
+    QuietOption,
     plain,
     prepare_output_folder,
     print_caution,
@@ -49,9 +50,7 @@ def run_best_schedule(
         Path | None,
         typer.Option("--out", help="Folder for best_schedule.csv, starts.csv and summary.json."),
     ] = None,
-    quiet: Annotated[
-        bool, typer.Option("--quiet", help="No progress on stderr (the caution stays).")
-    ] = False,
+    quiet: QuietOption = False,
     strict: StrictOption = False,
     sets: SetOption = None,
 ) -> None:

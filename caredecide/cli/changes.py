@@ -8,6 +8,7 @@ from typing import Annotated
 import typer
 
 from caredecide.cli.console import (
+    QuietOption,
     plain,
     prepare_output_folder,
     print_caution,
@@ -53,9 +54,7 @@ def run_what_would_change(
         Path | None,
         typer.Option("--out", help="Folder for flips.csv, recommendations.csv and the text."),
     ] = None,
-    quiet: Annotated[
-        bool, typer.Option("--quiet", help="No progress on stderr (the caution stays).")
-    ] = False,
+    quiet: QuietOption = False,
     strict: StrictOption = False,
     sets: SetOption = None,
 ) -> None:

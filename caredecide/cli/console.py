@@ -6,6 +6,7 @@ import sys
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
+from typing import Annotated
 
 import typer
 from rich.console import Console
@@ -13,6 +14,11 @@ from rich.markup import escape
 
 from caredecide.cautions import caution_short
 from caredecide.errors import CaredecideError
+
+QuietOption = Annotated[
+    bool, typer.Option("--quiet", help="No progress on stderr (the caution stays).")
+]
+"""The ``--quiet`` option of the analysis commands (progress only; the caution stays)."""
 
 stdout = Console(soft_wrap=True, highlight=False)
 stderr = Console(stderr=True, soft_wrap=True, highlight=False)

@@ -13,6 +13,7 @@ from rich.table import Table
 
 from caredecide.cli.cell_table import cell_notes, cell_table, save_cell_matrices
 from caredecide.cli.console import (
+    QuietOption,
     plain,
     prepare_output_folder,
     print_caution,
@@ -252,9 +253,7 @@ def run_sensitivity(
         Path | None,
         typer.Option("--out", help="Folder for CSV files and charts (SVG, PNG)."),
     ] = None,
-    quiet: Annotated[
-        bool, typer.Option("--quiet", help="No progress on stderr (the caution stays).")
-    ] = False,
+    quiet: QuietOption = False,
     strict: StrictOption = False,
     sets: SetOption = None,
 ) -> None:
