@@ -642,6 +642,8 @@ def _transitions(
     problems: list[Problem],
 ) -> np.ndarray:
     """(D, Tp, A, S, S) transition probabilities per cycle; appends problems found."""
+    from caredecide.expand import apply_rate_row_clock
+
     n_states, n_actions = len(model.states), len(model.actions)
     n_draws = evaluator.n_draws
     P = np.zeros((n_draws, tp, n_actions, n_states, n_states))
@@ -671,6 +673,7 @@ def _transitions(
         )
         if not problems:
             _fill_rate_rows(P, parsed.rates, rates, model.settings.cycle_years, **_RATE_ROWS)
+            apply_rate_row_clock(P, model)  # rate rows inside tunnels: steps one on
 
     if parsed.rests:
         a, s, to = _indices(parsed.rests)

@@ -119,21 +119,27 @@ def _edges(model, flat, table, action, source, row, states, kind) -> list[dict]:
     written = getattr(model, table).get(action, {})
     row_key = _declared_key(list(written), source)
     cells = written.get(row_key, {}) if row_key else {}
+    # A rate row inside a tunnel: where each reached copy is at the cycle end (step on).
+    clock = flat.rate_row_clock.get(action, {}).get(source, {}) if table == "rates" else {}
     out = []
     for target, expression in getattr(flat, table).get(action, {}).get(source, {}).items():
-        if target not in states or row[states.index(target)] <= 0:
+        end = clock.get(target, target)
+        if end not in states or row[states.index(end)] <= 0:
             continue
         column = _declared_key(list(cells), target)
         if column is None and target == source and "rest" in cells:
             column = "rest"
         text = cells.get(column, expression) if column else expression
         cell = f"{table}.{action}.{row_key or source}.{column or target}"
-        out.append(_edge(source, target, cell, str(text), float(row[states.index(target)]), kind))
+        out.append(_edge(source, end, cell, str(text), float(row[states.index(end)]), kind))
     seen = {e["target"] for e in out}
-    if table == "rates" and source not in seen and row[states.index(source)] > 0:
-        # A rate row keeps the mass that does not exit in its own state.
-        p = float(row[states.index(source)])
-        out.append(_edge(source, source, f"{table}.{action}.{row_key or source}", "stays", p, kind))
+    stay = clock.get(source, source)
+    if table == "rates" and stay not in seen and row[states.index(stay)] > 0:
+        # A rate row keeps the mass that does not exit in its own state (inside a tunnel:
+        # in the copy one step on).
+        p = float(row[states.index(stay)])
+        text = "stays" if stay == source else "stays (one tunnel step on)"
+        out.append(_edge(source, stay, f"{table}.{action}.{row_key or source}", text, p, kind))
     return out
 
 

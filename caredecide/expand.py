@@ -28,8 +28,12 @@ Rules of the expansion:
   values and the tunnel steps under their names. In a copy outside a tunnel (its
   ``only_for`` values do not hold) the tunnel's name reads 0.
 * ``settings.start`` names one copy (every attribute value given); it starts at step 0.
-* A copy inside a tunnel needs ``[transitions]`` rows: a ``[rates]`` row keeps the mass
-  that does not exit in its own copy, which would stop the tunnel's clock.
+* A ``[rates]`` row inside a tunnel: within a cycle a tunnel's step stays at its value at
+  the cycle start, so rate rows reach their targets without stepping on (as moves do), and
+  the flat model's ``rate_row_clock`` says where each copy the cohort reached is at the
+  cycle end (one step on for the tunnels it started in); :func:`apply_rate_row_clock`
+  moves it there after the exponential. Leaving a tunnel at step 0 and coming back within
+  one cycle through rate rows is refused (the step at the end is not defined).
 """
 
 from __future__ import annotations
@@ -473,10 +477,11 @@ class _Expander:
         }
         given: dict[tuple[str, str], str] = {}
         tables: dict[str, Any] = {}
-        for table_name in ("transitions", "rates"):
-            tables[table_name] = self._rows(
-                table_name, getattr(model, table_name), given, variables
-            )
+        tables["transitions"] = self._rows("transitions", model.transitions, given, variables)
+        # Within a cycle a tunnel's step stays at its value at the cycle start (the clock
+        # ticks at the cycle end, see rate_row_clock), so rate rows reach their targets at
+        # once, as moves do: a target in the same tunnel keeps the step, entering gives 0.
+        tables["rates"] = self._rows("rates", model.rates, given, variables, advance=False)
         # Decision-time moves (no time passes) and rewards of a state under an action (keyed
         # by fields, not states), in models whose format has them.
         if hasattr(model, "moves"):
@@ -501,6 +506,8 @@ class _Expander:
                 c.id for c in self.matching(key, "settings.severity_order") if c.id not in order
             ]
         self.fail_if_problems()
+        clock = self._rate_row_clock(tables["rates"])
+        self.fail_if_problems()
         flat = replace(
             model,
             states=tuple(states),
@@ -511,6 +518,7 @@ class _Expander:
             tunnels={},
             # Definitions that read attributes or tunnels were written into each copy.
             derived={k: v for k, v in model.derived.items() if k not in self.inlined},
+            rate_row_clock=clock,
         )
         self._warn_beyond_length()
         return Expansion(flat, tuple(self.copies), self._groups(), tuple(self.warnings))
@@ -551,15 +559,6 @@ class _Expander:
                         )
                         continue
                     given[(action_id, source.id)] = where
-                    if table_name == "rates" and source.steps:
-                        self.add(
-                            where,
-                            f"{source.id!r} is inside tunnel {source.steps[0][0]!r}: a rate row "
-                            "keeps the cohort that does not leave in its own copy, which stops "
-                            "the tunnel's clock; expected a [transitions] row (e.g. "
-                            'chance_within(rate, cycle_years) per exit and "rest")',
-                        )
-                        continue
                     flat_row: dict[str, ExpressionText] = {}
                     for to_key, value in row.items():
                         if not targets:
@@ -584,6 +583,82 @@ class _Expander:
                         self._warn_unguarded(value, source, f"{where}.{to_key}")
                     out[action_id][source.id] = flat_row
         return out
+
+    def _rate_row_clock(
+        self, rates: Mapping[str, Mapping[str, Mapping[str, ExpressionText]]]
+    ) -> dict[str, dict[str, dict[str, str]]]:
+        """Where the cohort of a rate row inside a tunnel ends the cycle.
+
+        All rate rows of an action form one generator; within the cycle a tunnel's step
+        is the one at the cycle start (the rows were resolved without advancing). For a
+        source copy inside a tunnel, every copy its cohort can reach within the cycle is
+        mapped to the copy at the cycle end: a tunnel the source was in and the reached
+        copy still shows at the source's step (the cohort stayed in it) steps one on,
+        ``min(k + 1, N)``; a tunnel entered during the cycle shows step 0 and keeps it.
+        That reading needs the two cases told apart: a cohort that starts at step 0 and
+        can leave the tunnel and come back within the cycle (through rate rows) would be
+        at step 0 either way, so that is refused.
+
+        Returns ``{action: {source: {reached: at_end}}}`` with only the copies that move.
+        """
+        by_id = {c.id: c for c in self.copies}
+        lengths = {name: t.length for name, t in self.model.tunnels.items()}
+        clock: dict[str, dict[str, dict[str, str]]] = {}
+        for action_id, rows in rates.items():
+            for source_id in rows:
+                source = by_id[source_id]
+                if not source.steps:
+                    continue
+                start = dict(source.steps)
+                reached = self._reached_within_cycle(rows, source, action_id)
+                ends: dict[str, str] = {}
+                for copy in reached:
+                    steps = tuple(
+                        (name, min(k + 1, lengths[name]) if start.get(name) == k else k)
+                        for name, k in copy.steps
+                    )
+                    end = self.by_key[(copy.base, copy.values, steps)]
+                    if end.id != copy.id:
+                        ends[copy.id] = end.id
+                if ends:
+                    clock.setdefault(action_id, {})[source_id] = ends
+        return clock
+
+    def _reached_within_cycle(
+        self, rows: Mapping[str, Mapping[str, ExpressionText]], source: StateCopy, action: str
+    ) -> list[StateCopy]:
+        """Copies reachable from ``source`` through rate rows of one action (itself too);
+        reports a path that leaves a tunnel ``source`` is in at step 0 and comes back."""
+        by_id = {c.id: c for c in self.copies}
+        # (copy id, tunnels at step 0 that the path has left) -> search both at once.
+        at_zero = frozenset(name for name, k in source.steps if k == 0)
+        seen: set[tuple[str, frozenset[str]]] = {(source.id, frozenset())}
+        queue = [(source.id, frozenset[str]())]
+        reached = {source.id: source}
+        while queue:
+            copy_id, left = queue.pop()
+            for target_id in rows.get(copy_id, {}):
+                target = by_id[target_id]
+                inside = {name for name, _ in target.steps}
+                back = sorted(left & inside)
+                if back:
+                    self.add(
+                        f"rates.{action}.{source.base}",
+                        f"within one cycle the cohort starting in {source.id!r} (step 0 of "
+                        f"tunnel {back[0]!r}) can leave the tunnel and come back through "
+                        f"rate rows (reaching {target.id!r}), and would then be at step 0 "
+                        "either way, so the step at the cycle end is not defined; expected "
+                        "one of the rows on that path as a [transitions] row (e.g. "
+                        f"[transitions.{action}.{target.base}] with chance_within(rate, "
+                        'cycle_years) per exit and "rest")',
+                    )
+                    return list(reached.values())
+                now_left = frozenset(left | (at_zero - inside))
+                reached.setdefault(target.id, target)
+                if (target.id, now_left) not in seen:
+                    seen.add((target.id, now_left))
+                    queue.append((target.id, now_left))
+        return list(reached.values())
 
     def _derived_reading_copies(self) -> dict[str, str]:
         """``[derived]`` values that read an attribute or a tunnel, directly or through
@@ -697,6 +772,39 @@ class _Expander:
         return groups
 
 
+def apply_rate_row_clock(P: Any, model: Model) -> None:
+    """Move the cohort of rate rows inside tunnels to their step at the cycle end, in place.
+
+    Parameters
+    ----------
+    P : ndarray, shape (D, Tp, A, S, S)
+        Transition probabilities per cycle of the flat ``model``, rate rows already
+        exponentiated (each row's cohort where it is after the cycle, tunnel steps as at
+        the cycle start).
+    model : Model
+        The flat model (:func:`expand_model`); its ``rate_row_clock`` says, per action and
+        source copy, which copy each reached copy becomes at the cycle end. Nothing
+        happens when it is empty (no rate row inside a tunnel).
+    """
+    import numpy as np
+
+    if not model.rate_row_clock:
+        return
+    actions = {a: i for i, a in enumerate(model.action_ids)}
+    states = {s: i for i, s in enumerate(model.state_ids)}
+    index = [
+        (actions[a], states[source], states[reached], states[end])
+        for a, rows in model.rate_row_clock.items()
+        for source, ends in rows.items()
+        for reached, end in ends.items()
+    ]
+    a, s, reached, end = (np.array(column, dtype=int) for column in zip(*index, strict=True))
+    moving = P[:, :, a, s, reached]  # (D, Tp, n), a copy
+    P[:, :, a, s, reached] = 0.0
+    # Unbuffered sum (two reached copies could end in one); P's last three axes first.
+    np.add.at(np.moveaxis(P, (2, 3, 4), (0, 1, 2)), (a, s, end), np.moveaxis(moving, -1, 0))
+
+
 def _names(value: object) -> set[str]:
     """Names an expression reads (empty when it does not parse; parsing reports it)."""
     from caredecide.errors import ExpressionError
@@ -754,6 +862,7 @@ __all__ = [
     "StateAttribute",
     "StateCopy",
     "Tunnel",
+    "apply_rate_row_clock",
     "expand",
     "expand_model",
     "uses_expansion",

@@ -305,6 +305,12 @@ class Model:
     once and usable in any expression (:mod:`caredecide.derived`)."""
     description: str = ""
     format_version: int = FORMAT_VERSION
+    rate_row_clock: Mapping[str, Mapping[str, Mapping[str, str]]] = field(default_factory=dict)
+    """Set by :mod:`caredecide.expand` in a flat model only (never read from a file):
+    ``rate_row_clock[action][source][reached] = at_end`` for a ``[rates]`` row of a copy
+    inside a tunnel. Within a cycle a tunnel's step stays where it was at the cycle start;
+    the cohort that started the cycle in ``source`` and is in copy ``reached`` after the
+    exponential ends the cycle in ``at_end`` (its tunnel steps one on)."""
     source_path: Path | None = field(default=None, compare=False)
     """The file the model was read from (for messages and relative paths); not compared."""
 

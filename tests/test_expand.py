@@ -484,15 +484,22 @@ def test_a_tunnel_on_an_absorbing_state_is_refused():
     assert "states.dead.tunnels: state 'dead' is absorbing" in message
 
 
-def test_a_rate_row_inside_a_tunnel_is_refused():
+def test_a_rate_row_inside_a_tunnel_moves_the_stay_one_step_on():
+    # Formerly refused; tests/test_expand_rates.py checks the figures. One exit at 0.1 per
+    # year over one year: exp(-0.1) = 0.9048374180 goes one step on (Welton & Ades 2005).
     text = _tunnel().replace(
         '[transitions.wait.sick__treated]\ndead = "0"\nsick = "rest"',
         "[rates.wait.sick__treated]\ndead = 0.1",
     )
-    message = _errors(text)
-    assert "rates.wait.sick__treated" in message
-    assert "is inside tunnel 'years_on_drug'" in message
-    assert "expected a [transitions] row" in message
+    compiled = compile_model(loads_model(text))
+    ids = list(compiled.state_ids)
+    zero, one = (
+        ids.index("sick__treated__years_on_drug_0"),
+        ids.index("sick__treated__years_on_drug_1"),
+    )
+    P = compiled.transition[0, 0, 0]
+    assert P[zero, one] == pytest.approx(0.9048374180, abs=1e-10)
+    assert P[zero, zero] == 0.0
 
 
 def test_start_must_name_one_copy():

@@ -46,6 +46,7 @@ from caredecide.compile import (
 )
 from caredecide.compiled import CompiledModel
 from caredecide.errors import ModelError, Problem
+from caredecide.expand import apply_rate_row_clock
 
 REMAINDER_ABSORBS = "the row's remainder absorbs the change"
 EXITS_RESCALED = "the other entries of the row are rescaled in proportion"
@@ -280,6 +281,7 @@ class CellScaler:
             _fill_rate_rows(
                 block, self._rate_entries, rates, self.model.settings.cycle_years, **_RATE_ROWS
             )
+            apply_rate_row_clock(block, self.model)  # rate rows inside tunnels
             P[rows] = block
         if batch.move is not None:
             P = apply_moves(P, batch.move, batch.allowed, batch.absorbing)
