@@ -31,13 +31,18 @@ import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from numbers import Real
+from typing import TYPE_CHECKING
 
 import numpy as np
-import scipy.optimize
-import scipy.stats
 
 from caredecide.errors import DistributionError
 from caredecide.model import DirichletGroup
+
+if TYPE_CHECKING:
+    import scipy.stats
+
+# scipy.stats and scipy.optimize are imported where used (fitting to an interval,
+# quantiles): they take a large part of a command's start-up, and sampling needs neither.
 
 __all__ = [
     "KINDS",
@@ -115,7 +120,9 @@ def _z(level: float, where: str) -> float:
     """Standard normal quantile for a two-sided interval of coverage ``level``."""
     if not 0.0 < level < 1.0:
         raise _error(where, f"level = {level!r} must lie in (0, 1), e.g. 0.95")
-    return float(scipy.stats.norm.ppf(0.5 + level / 2.0))
+    from scipy.special import ndtri  # = scipy.stats.norm.ppf, without importing scipy.stats
+
+    return float(ndtri(0.5 + level / 2.0))
 
 
 def _ordered(low: float, high: float, where: str) -> None:
@@ -222,6 +229,9 @@ def _match_interval(
     kind: str, low: float, high: float, level: float, start: tuple[float, float], where: str
 ) -> tuple[float, float]:
     """Two positive parameters whose distribution has ``low``, ``high`` as its quantiles."""
+    import scipy.optimize
+    import scipy.stats
+
     q = np.array([0.5 - level / 2.0, 0.5 + level / 2.0])
     target = np.array([low, high])
 
@@ -429,6 +439,8 @@ class Distribution:
 
     def scipy(self) -> scipy.stats.rv_continuous:
         """The equivalent frozen ``scipy.stats`` distribution (not for ``fixed``)."""
+        import scipy.stats
+
         p = self.params
         if self.kind == "beta":
             return scipy.stats.beta(p["alpha"], p["beta"])

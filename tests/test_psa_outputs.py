@@ -131,3 +131,34 @@ def test_icer_interval_by_bootstrap_of_the_draws(demo_psa):
     assert (rows["icer_low"] <= rows["icer"]).all() and (rows["icer"] <= rows["icer_high"]).all()
     reference = summary.set_index("strategy").loc["never treat"]
     assert np.isnan(reference["icer_low"]) and np.isnan(reference["icer_high"])
+
+
+def test_icer_bootstrap_equals_resampling_the_draws_one_resample_at_a_time():
+    # Non-parametric bootstrap of the ratio of mean differences (Briggs, Wonderling &
+    # Mooney 1997, Health Econ 6:327-340, from memory), written out plainly: draw D row
+    # indices with replacement, take the mean differences of those rows, their ratio; the
+    # percentile interval of the B ratios. The batched weights must give the same
+    # resamples in the same order (same generator, same stream of indices).
+    from caredecide.uncertainty.psa import ICER_BOOTSTRAP, _icer_interval
+
+    rng = np.random.default_rng(5)
+    D = 300
+    d_qalys = np.column_stack([np.zeros(D), rng.normal(0.4, 0.3, D), rng.normal(0.0, 1.0, D)])
+    d_cost = np.column_stack([np.zeros(D), rng.normal(8000, 3000, D), rng.normal(0, 10, D)])
+    low, high = _icer_interval(d_cost, d_qalys, 0, 0.9, seed=7)
+
+    plain = np.random.default_rng(np.random.SeedSequence([7, 1997]))
+    ratios, q_means = [], []
+    for _ in range(ICER_BOOTSTRAP):
+        rows = plain.integers(0, D, size=D)
+        q_means.append(d_qalys[rows].mean(axis=0))
+        with np.errstate(divide="ignore", invalid="ignore"):  # the reference column: 0 / 0
+            ratios.append(d_cost[rows].mean(axis=0) / q_means[-1])
+    ratios_table = np.array(ratios)
+    assert np.isnan(low[0]) and np.isnan(high[0])  # the reference
+    # Column 1 gains QALYs in every resample: bounded, the 5th and 95th percentiles.
+    expected = np.percentile(ratios_table[:, 1], [5, 95])
+    np.testing.assert_allclose([low[1], high[1]], expected, rtol=1e-12)
+    # Column 2's mean QALY difference straddles 0 across resamples: no interval.
+    q_low, q_high = np.percentile(np.array(q_means)[:, 2], [5, 95])
+    assert q_low < 0 < q_high and np.isnan(low[2]) and np.isnan(high[2])

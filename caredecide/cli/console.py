@@ -67,10 +67,18 @@ def writing_to(out: Path) -> Iterator[Path]:
 
 
 def save_chart(chart, out: Path, stem: str) -> list[Path]:
-    """Save an Altair chart as ``stem.svg`` and ``stem.png`` (twice the pixel density)."""
+    """Save an Altair chart as ``stem.svg`` and ``stem.png`` (twice the pixel density).
+
+    The chart is laid out once: the PNG is the SVG rasterised (``vl_convert.svg_to_png``,
+    the same renderer Altair's own PNG export ends in; the bytes are the same), so the
+    Vega layout is not run a second time.
+    """
+    import vl_convert
+
     paths = [out / f"{stem}.svg", out / f"{stem}.png"]
     chart.save(str(paths[0]))
-    chart.save(str(paths[1]), scale_factor=2)
+    svg = paths[0].read_text(encoding="utf-8")
+    paths[1].write_bytes(vl_convert.svg_to_png(svg, scale=2))
     return paths
 
 

@@ -1026,6 +1026,8 @@ def analyse_uncertainty(
 
 ICER_BOOTSTRAP = 1000
 """Resamples of the draws for the ICER interval."""
+BOOTSTRAP_BLOCK = 100
+"""Resamples built at once (a (BOOTSTRAP_BLOCK, D) table of weights)."""
 
 
 def _icer_interval(
@@ -1046,9 +1048,17 @@ def _icer_interval(
     high = np.full(K, np.nan)
     if D < 2:
         return low, high
-    counts = rng.multinomial(D, np.full(D, 1.0 / D), size=ICER_BOOTSTRAP) / D  # (B, D) weights
-    mean_dc = counts @ d_cost  # (B, K)
-    mean_dq = counts @ d_qalys
+    # Each resample as the share of each draw in it, (n, D), counted from D indices drawn
+    # with replacement: the multinomial law, at a fraction of the cost of sampling a
+    # multinomial of D categories. Blocks of resamples bound the memory.
+    mean_dc = np.empty((ICER_BOOTSTRAP, K))
+    mean_dq = np.empty((ICER_BOOTSTRAP, K))
+    for first in range(0, ICER_BOOTSTRAP, BOOTSTRAP_BLOCK):
+        n = min(BOOTSTRAP_BLOCK, ICER_BOOTSTRAP - first)
+        index = rng.integers(0, D, size=(n, D)) + (np.arange(n) * D)[:, None]
+        weights = np.bincount(index.ravel(), minlength=n * D).reshape(n, D) / D
+        mean_dc[first : first + n] = weights @ d_cost  # (n, K)
+        mean_dq[first : first + n] = weights @ d_qalys
     q_low, q_high = np.percentile(mean_dq, tails, axis=0)
     bounded = (q_low > 0) | (q_high < 0)
     bounded[reference] = False

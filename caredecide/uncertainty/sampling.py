@@ -34,8 +34,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-import scipy.special
-import scipy.stats
 
 from caredecide.distributions import Distribution, dirichlet_from_counts, distribution_from_spec
 from caredecide.errors import ModelError, Problem
@@ -327,6 +325,9 @@ def _iman_conover(values: np.ndarray, target: np.ndarray, rng: np.random.Generat
     ``scores F'^-1 L'``, and each column of ``values`` takes the rank order of the
     adjusted scores.
     """
+    import scipy.special
+    import scipy.stats
+
     n, c = values.shape
     scores = scipy.special.ndtri(np.arange(1, n + 1) / (n + 1))
     permuted = np.column_stack([rng.permutation(scores) for _ in range(c)])  # loop over columns
