@@ -18,7 +18,7 @@ from functools import cache
 
 from caredecide.jit import available
 
-__all__ = ["available", "kernels"]
+__all__ = ["available", "kernels", "stationary_kernels"]
 
 
 @cache
@@ -27,3 +27,11 @@ def kernels():
     from caredecide.solvers import _loops
 
     return _loops
+
+
+@cache
+def stationary_kernels():
+    """The compiled loops of the infinite-horizon solvers (compiling or loading them)."""
+    from caredecide.solvers import _stationary_loops
+
+    return _stationary_loops

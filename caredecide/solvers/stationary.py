@@ -44,6 +44,32 @@ from caredecide.solvers.result import PolicyResult, SweepRecord, build_result
 from caredecide.solvers.sparse import choose_form, sparse_iterate
 
 
+def check_stationary(compiled: CompiledModel) -> None:
+    """Refuse a model the infinite-horizon solvers cannot take.
+
+    Raises
+    ------
+    SolverError
+        A finite horizon, arrays that vary with the cycle, or a within-cycle method
+        without a stationary form.
+    """
+    if compiled.n_cycles is not None:
+        raise SolverError(
+            f"this solver is for an infinite horizon; the model has n_cycles = "
+            f"{compiled.n_cycles} (use backward induction)"
+        )
+    if not compiled.is_stationary:
+        raise SolverError(
+            "an infinite horizon needs stationary arrays (time axis of length 1); "
+            "the compiled arrays vary with the cycle"
+        )
+    if compiled.within_cycle not in STATIONARY_METHODS:
+        raise SolverError(
+            f"within-cycle method {compiled.within_cycle!r} needs a finite horizon; "
+            f"expected one of {STATIONARY_METHODS} for an infinite horizon"
+        )
+
+
 class StationaryProblem:
     """Arrays of an infinite-horizon problem laid out for fast Bellman sweeps.
 
@@ -59,21 +85,7 @@ class StationaryProblem:
     """
 
     def __init__(self, compiled: CompiledModel, objective: Objective):
-        if compiled.n_cycles is not None:
-            raise SolverError(
-                f"this solver is for an infinite horizon; the model has n_cycles = "
-                f"{compiled.n_cycles} (use backward induction)"
-            )
-        if not compiled.is_stationary:
-            raise SolverError(
-                "an infinite horizon needs stationary arrays (time axis of length 1); "
-                "the compiled arrays vary with the cycle"
-            )
-        if compiled.within_cycle not in STATIONARY_METHODS:
-            raise SolverError(
-                f"within-cycle method {compiled.within_cycle!r} needs a finite horizon; "
-                f"expected one of {STATIONARY_METHODS} for an infinite horizon"
-            )
+        check_stationary(compiled)
         self.gamma = stationary_discount(compiled, objective)
         D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
         self.shape = (D, A, S)
@@ -277,29 +289,50 @@ def _in_blocks(compiled, objective, problem, history, run):
 
 
 def _per_draw(
-    problem: StationaryProblem, method: str, tolerance: float, relative: bool, max_iterations: int
-) -> tuple[np.ndarray, int, np.ndarray, bool]:
-    """Value or policy iteration by the compiled kernels, one draw at a time.
+    compiled: CompiledModel,
+    objective: Objective,
+    method: str,
+    tolerance: float,
+    relative: bool,
+    max_iterations: int,
+) -> tuple[int, np.ndarray, bool, np.ndarray]:
+    """Value or policy iteration by the compiled loops, one draw at a time.
 
-    Each draw stops when its own stopping rule holds (its arrays stay in cache for all
-    its sweeps), so its error bound holds as in the batched method; ``iterations`` is the
+    Each draw's rewards are assembled in the loop from :func:`cycle_rewards`, and the
+    draw stops when its own stopping rule holds (its arrays stay in cache for all its
+    sweeps), so its error bound holds as in the batched method; ``iterations`` is the
     largest number of sweeps any draw needed.
+
+    Returns
+    -------
+    iterations, error bound (D,) on ``||v - v*||``, converged (every draw), and Q
+    (D, S, A) the action values of the final values ``v`` (``-inf`` where not allowed).
     """
-    D, A, S = problem.shape
-    P = problem.P.reshape(D, A, S, S)
-    v, residual = np.empty((D, S)), np.empty(D)
+    gamma = stationary_discount(compiled, objective)
+    now, arrival = cycle_rewards(compiled, objective, 0)
+    P = compiled.transition[:, 0]  # (D, A, S, S)
+    if not P.flags.c_contiguous:
+        P = np.ascontiguousarray(P)
+    D, A, S = P.shape[:3]
+    v, residual, Q = np.empty((D, S)), np.empty(D), np.empty((D, S, A))
     sweeps, done = np.empty(D, dtype=np.intp), np.empty(D, dtype=bool)
-    loops = kernels.kernels()
+    rewards = (
+        np.ascontiguousarray(now),
+        np.ascontiguousarray(arrival),
+        bool(arrival.any()),
+        compiled.allowed,
+        gamma,
+    )
+    loops = kernels.stationary_kernels()
     if method == "value_iteration":
         loops.value_iteration(
-            P, problem.R, problem.gamma, tolerance, relative, max_iterations, v, residual,
-            sweeps, done,
-        )  # fmt: skip
-    else:
-        loops.policy_iteration(
-            P, problem.R, problem.gamma, max_iterations, v, residual, sweeps, done
+            P, *rewards, tolerance, relative, max_iterations, v, residual, sweeps, done, Q
         )
-    return v, int(sweeps.max(initial=0)), residual, bool(done.all())
+        bound = gamma * residual / (1.0 - gamma)
+    else:
+        loops.policy_iteration(P, *rewards, max_iterations, v, residual, sweeps, done, Q)
+        bound = residual / (1.0 - gamma)
+    return int(sweeps.max(initial=0)), bound, bool(done.all()), Q
 
 
 def solve_stationary(
@@ -320,7 +353,9 @@ def solve_stationary(
 
     ``transition_form`` is "auto", "dense" or "sparse" (:mod:`caredecide.solvers.sparse`:
     policy and value iteration of large models with few moves per state); the result's
-    ``transition_form`` says which was used.
+    ``transition_form`` says which was used. Policy and value iteration without a sweep
+    history run in the compiled loops when they are available (:func:`_per_draw`), else
+    on the numpy path in cache-sized blocks of draws.
 
     Returns
     -------
@@ -328,7 +363,7 @@ def solve_stationary(
         ``policy`` (D, 1, S); ``value`` (D, 1, S);
         ``error_bound`` (D,) bounds ``||value - v*||`` in the sup norm.
     """
-    problem = StationaryProblem(compiled, objective)
+    check_stationary(compiled)
     history: list[SweepRecord] | None = [] if record_history else None
     form = choose_form(compiled.transition, transition_form)
     if form == "sparse" and (record_history or method == "modified_policy_iteration"):
@@ -338,66 +373,24 @@ def solve_stationary(
                 f"got method = {method!r}, record_history = {record_history}"
             )
         form = "dense"
-    per_draw = (
-        method in ("value_iteration", "policy_iteration")
+    if (
+        form == "dense"
+        and method in ("value_iteration", "policy_iteration")
         and not record_history
         and kernels.available()
-    )
-    if form == "sparse":
-        D, A, S = problem.shape
-        v, iterations, residual, converged = sparse_iterate(
-            problem.P.reshape(D, A, S, S),
-            problem.R,
-            problem.gamma,
-            method,
-            tolerance,
-            relative,
-            max_iterations,
+    ):
+        iterations, bound, converged, Q = _per_draw(
+            compiled, objective, method, tolerance, relative, max_iterations
         )
-        bound = (
-            problem.bound(residual)
-            if method == "value_iteration"
-            else (residual / (1.0 - problem.gamma))
-        )
-    elif per_draw:
-        v, iterations, residual, converged = _per_draw(
-            problem, method, tolerance, relative, max_iterations
-        )
-        bound = (
-            problem.bound(residual)
-            if method == "value_iteration"
-            else (residual / (1.0 - problem.gamma))
-        )
-    elif method == "value_iteration":
-        v, iterations, residual, converged = _in_blocks(
-            compiled, objective, problem, history,
-            lambda part: value_iteration(
-                part, tolerance=tolerance, relative=relative, max_iterations=max_iterations,
-                history=history,
-            ),
+    else:
+        iterations, bound, converged, Q = _batched(
+            compiled, objective, method, form, history,
+            tolerance=tolerance, relative=relative, max_iterations=max_iterations,
+            evaluation_sweeps=evaluation_sweeps,
         )  # fmt: skip
-        bound = problem.bound(residual)
-    elif method == "modified_policy_iteration":
-        v, iterations, residual, converged = _in_blocks(
-            compiled, objective, problem, history,
-            lambda part: modified_policy_iteration(
-                part, tolerance=tolerance, relative=relative, max_iterations=max_iterations,
-                evaluation_sweeps=evaluation_sweeps, history=history,
-            ),
-        )  # fmt: skip
-        bound = problem.bound(residual)
-    elif method == "policy_iteration":
-        v, iterations, residual, converged = _in_blocks(
-            compiled, objective, problem, history,
-            lambda part: policy_iteration(part, max_iterations=max_iterations, history=history),
-        )  # fmt: skip
-        bound = residual / (1.0 - problem.gamma)
-    else:  # pragma: no cover - solve() checks the method
-        raise SolverError(f"unknown stationary method {method!r}")
 
     # Greedy step on the final values: Q errors are at most gamma * bound, so gaps below
     # twice the bound are reported as ties rather than resolved by rounding.
-    Q = problem.action_values(v).transpose(0, 2, 1).copy()  # (D, S, A)
     decision_states = decision_state_mask(compiled)
     policy, value, gap, next_best, indifferent = greedy_choice(
         Q, decision_states, tie_absolute, tie_relative, uncertainty=2.0 * bound
@@ -429,3 +422,53 @@ def solve_stationary(
         message=message,
         transition_form=form,
     )
+
+
+def _batched(
+    compiled: CompiledModel,
+    objective: Objective,
+    method: str,
+    form: str,
+    history: list[SweepRecord] | None,
+    **options,
+) -> tuple[int, np.ndarray, bool, np.ndarray]:
+    """The numpy path (blocks of draws) or the sparse path; returns as :func:`_per_draw`."""
+    problem = StationaryProblem(compiled, objective)
+    tolerance, relative = options["tolerance"], options["relative"]
+    max_iterations = options["max_iterations"]
+    if form == "sparse":
+        D, A, S = problem.shape
+        v, iterations, residual, converged = sparse_iterate(
+            problem.P.reshape(D, A, S, S), problem.R, problem.gamma, method,
+            tolerance, relative, max_iterations,
+        )  # fmt: skip
+    elif method == "value_iteration":
+        v, iterations, residual, converged = _in_blocks(
+            compiled, objective, problem, history,
+            lambda part: value_iteration(
+                part, tolerance=tolerance, relative=relative, max_iterations=max_iterations,
+                history=history,
+            ),
+        )  # fmt: skip
+    elif method == "modified_policy_iteration":
+        v, iterations, residual, converged = _in_blocks(
+            compiled, objective, problem, history,
+            lambda part: modified_policy_iteration(
+                part, tolerance=tolerance, relative=relative, max_iterations=max_iterations,
+                evaluation_sweeps=options["evaluation_sweeps"], history=history,
+            ),
+        )  # fmt: skip
+    elif method == "policy_iteration":
+        v, iterations, residual, converged = _in_blocks(
+            compiled, objective, problem, history,
+            lambda part: policy_iteration(part, max_iterations=max_iterations, history=history),
+        )  # fmt: skip
+    else:  # pragma: no cover - solve() checks the method
+        raise SolverError(f"unknown stationary method {method!r}")
+    bound = (
+        residual / (1.0 - problem.gamma)
+        if method == "policy_iteration"
+        else problem.bound(residual)
+    )
+    Q = problem.action_values(v).transpose(0, 2, 1).copy()  # (D, S, A)
+    return iterations, bound, converged, Q
