@@ -116,7 +116,7 @@ def test_substitution_refuses_a_cycle_and_solves_a_chain():
     gamma = 0.9
     system = np.array([[0.5, 0.5, 0.0], [0.0, 0.5, 0.5], [0.0, 0.0, 1.0]])
     reward = np.array([1.0, 2.0, 1.0])
-    v = np.empty(3)
+    v = np.full(3, np.nan)  # states not yet solved must not be read (0 * nan = nan)
     work = np.empty(3, dtype=np.intp), np.empty(3, dtype=np.intp)
     assert loops.by_substitution(system, reward, gamma, *work, v)
     v2 = 1.0 / (1 - gamma)

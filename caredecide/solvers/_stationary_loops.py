@@ -133,7 +133,7 @@ def by_substitution(system, reward, gamma, successors, stack, v):
         s = stack[top]
         total = 0.0
         for s2 in range(S):
-            if s2 != s:
+            if s2 != s and system[s, s2] != 0.0:  # v[s2] of the others is not written yet
                 total += system[s, s2] * v[s2]
         v[s] = (reward[s] + gamma * total) / (1.0 - gamma * system[s, s])
         solved += 1
