@@ -1,20 +1,30 @@
 """Sparse transitions (scipy.sparse) for large models with few moves per state.
 
-Checked against the dense solvers and against quantecon's DiscreteDP in its
-state-action-pair form with a sparse transition matrix (a general-purpose reference
-library).
+Checked against the dense solvers and evaluation, and against quantecon's DiscreteDP in
+its state-action-pair form with a sparse transition matrix (a general-purpose reference
+library): policy iteration, and backward induction for a finite horizon.
 """
 
 from __future__ import annotations
 
+import warnings
+from dataclasses import replace
+
 import numpy as np
 import pytest
 from quantecon.markov import DiscreteDP
+from quantecon.markov import backward_induction as quantecon_backward_induction
 
 from caredecide.errors import RunOptionError
+from caredecide.evaluate import _QUANTITIES, evaluate_policy
 from caredecide.objective import Objective
 from caredecide.solvers import SolverError, solve
-from caredecide.solvers.sparse import SPARSE_MIN_STATES, choose_form
+from caredecide.solvers.sparse import (
+    SPARSE_MIN_STATES,
+    _block_rows,
+    choose_form,
+    sparse_trace_and_flows,
+)
 from tests.test_solvers_models import make_compiled
 
 QALYS = Objective("qalys")
@@ -86,11 +96,6 @@ def test_unknown_transition_form_is_refused():
         solve(_sparse_model(12), QALYS, transition_form="packed")
 
 
-def test_sparse_form_for_a_finite_horizon_is_refused():
-    with pytest.raises(SolverError, match="infinite horizon"):
-        solve(_sparse_model(12, n_cycles=5), QALYS, transition_form="sparse")
-
-
 def test_sparse_form_with_modified_policy_iteration_is_refused():
     with pytest.raises(SolverError, match="modified_policy_iteration"):
         solve(
@@ -99,3 +104,133 @@ def test_sparse_form_with_modified_policy_iteration_is_refused():
             method="modified_policy_iteration",
             transition_form="sparse",
         )
+
+
+def _finite_sparse_model(S, T, *, D=1, A=2, time_varying=False, seed=4):
+    """A progressive model with 4 non-zeros per row, rewards of every kind, trapezoid
+    within-cycle weights (rewards on arrival too) and different discount rates."""
+    rng = np.random.default_rng(seed)
+    Tp = T if time_varying else 1
+    P = np.zeros((D, Tp, A, S, S))
+    live = np.arange(S - 1)
+    for step, weight in enumerate([1.0, 0.5, 0.2]):
+        P[..., live, np.minimum(live + step, S - 2)] += weight * rng.uniform(
+            0.05, 1.0, (D, Tp, A, S - 1)
+        )
+    P[..., live, S - 1] += 0.05 * rng.uniform(0.5, 1.0, (D, Tp, A, S - 1))
+    P[..., S - 1, S - 1] = 1.0
+    P /= P.sum(-1, keepdims=True)
+    allowed = np.ones((S, A), dtype=bool)
+    allowed[: S // 3, A - 1] = False  # the last action only from a third of the way on
+    u = rng.uniform(0.3, 1.0, (D, 1, S))
+    u[..., -1] = 0.0
+    return make_compiled(
+        P,
+        state_qaly=u,
+        state_cost=rng.uniform(0, 500, (D, 1, S)),
+        decision_cost=np.concatenate(
+            [np.zeros((D, 1, S, 1)), rng.uniform(0, 2000, (D, 1, S, A - 1))], axis=-1
+        ),
+        decision_qaly=rng.uniform(-0.05, 0.0, (D, 1, S, A)),
+        allowed=allowed,
+        n_cycles=T,
+        start_distribution=np.eye(S)[0],
+        discount_outcomes=0.015,
+        discount_costs=0.035,
+        within_cycle="trapezoid",
+    )
+
+
+@pytest.mark.parametrize("time_varying", [False, True])
+def test_sparse_backward_induction_equals_dense(time_varying):
+    # Same recursion, two storage forms (common practice: a storage change never changes
+    # the answer beyond rounding): identical policies, values to 1e-10 relative.
+    compiled = _finite_sparse_model(SPARSE_MIN_STATES + 30, 12, D=2, time_varying=time_varying)
+    objective = Objective("net_benefit", 25_000.0)
+    sparse = solve(compiled, objective, transition_form="sparse", terminal_value=0.0)
+    dense = solve(compiled, objective, transition_form="dense")
+    assert sparse.transition_form == "sparse" and dense.transition_form == "dense"
+    assert "sparse transitions" in sparse.message
+    np.testing.assert_array_equal(sparse.policy, dense.policy)
+    np.testing.assert_array_equal(sparse.indifferent, dense.indifferent)
+    np.testing.assert_array_equal(sparse.next_best_action, dense.next_best_action)
+    scale = np.abs(dense.value).max()
+    np.testing.assert_allclose(sparse.value, dense.value, rtol=0, atol=1e-10 * scale)
+    finite = np.isfinite(dense.q_values)
+    np.testing.assert_array_equal(finite, np.isfinite(sparse.q_values))
+    np.testing.assert_allclose(
+        sparse.q_values[finite], dense.q_values[finite], rtol=0, atol=1e-10 * scale
+    )
+    assert len(set(sparse.policy[0].ravel().tolist())) > 1  # a real choice was made
+
+
+def test_sparse_backward_induction_matches_quantecon():
+    # Reference: quantecon.markov.backward_induction on DiscreteDP in state-action-pair
+    # form with a scipy.sparse transition matrix (no discounting, rewards at the start of
+    # each cycle, so its values are ours; beta = 1 only disables its infinite methods).
+    from scipy import sparse as sp
+
+    S, A, T = SPARSE_MIN_STATES + 5, 2, 15
+    compiled = replace(
+        _sparse_model(S, A, seed=9, n_cycles=T), discount_outcomes=0.0, discount_costs=0.0
+    )
+    result = solve(compiled, QALYS)
+    assert result.transition_form == "sparse"  # auto: large, sparse, constant over cycles
+    P = compiled.transition[0, 0]
+    s_idx, a_idx = np.repeat(np.arange(S), A), np.tile(np.arange(A), S)
+    R = compiled.state_qaly[0, 0][s_idx] + compiled.decision_qaly[0, 0][s_idx, a_idx]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)
+        ddp = DiscreteDP(R, sp.csr_array(P[a_idx, s_idx]), 1.0, s_idx, a_idx)
+    v, sigma = quantecon_backward_induction(ddp, T)
+    np.testing.assert_allclose(result.value[0], v, rtol=1e-12, atol=1e-12)
+    decided = ~result.indifferent[0]
+    np.testing.assert_array_equal(result.policy[0][decided], sigma[decided])
+
+
+def test_sparse_trace_and_flows_equal_the_dense_evaluation():
+    # The cohort trace and every flow of the optimal policy, sparse against dense
+    # (common practice: same quantities, another storage form).
+    compiled = _finite_sparse_model(SPARSE_MIN_STATES + 10, 9, D=2, time_varying=True)
+    objective = Objective("net_benefit", 25_000.0)
+    policy = solve(compiled, objective, transition_form="dense").policy
+    dense = evaluate_policy(compiled, policy, objective)
+    trace, flows = sparse_trace_and_flows(compiled, policy, _QUANTITIES)
+    np.testing.assert_allclose(trace, dense.trace, rtol=0, atol=1e-13)
+    np.testing.assert_allclose(trace.sum(-1), 1.0, atol=1e-12)  # the cohort is kept
+    assert set(flows) == set(dense.flows) | {f"{n}_undiscounted" for n in _QUANTITIES}
+    for name, flow in dense.flows.items():
+        np.testing.assert_allclose(flows[name], flow, rtol=1e-12, atol=1e-12, err_msg=name)
+    np.testing.assert_allclose(flows["qalys"].sum(1), dense.qalys, rtol=1e-12)
+    np.testing.assert_allclose(flows["costs_undiscounted"].sum(1), dense.costs_undiscounted)
+
+
+@pytest.mark.parametrize("compiled_loop", [True, False])
+def test_block_rows_put_each_matrix_in_its_own_columns(compiled_loop):
+    # One product with the block matrix equals one dense product per block (common
+    # practice), whether the compiled loop or scipy reads the dense rows.
+    from tests.test_kernels import _numpy_path
+
+    rng = np.random.default_rng(2)
+    P = rng.uniform(0, 1, (3, 5, 5)) * (rng.random((3, 5, 5)) < 0.4)
+    x = rng.normal(size=(3, 5))
+    block = _block_rows(P) if compiled_loop else _numpy_path(_block_rows, P)
+    assert block.shape == (15, 15) and block.nnz == np.count_nonzero(P)
+    np.testing.assert_allclose(block @ x.ravel(), np.einsum("kij,kj->ki", P, x).ravel())
+
+
+def test_auto_keeps_dense_for_transitions_that_vary_by_cycle():
+    constant = _finite_sparse_model(SPARSE_MIN_STATES, 3)
+    varying = _finite_sparse_model(SPARSE_MIN_STATES, 3, time_varying=True)
+    assert choose_form(constant.transition, "auto") == "sparse"
+    assert choose_form(varying.transition, "auto") == "dense"
+    assert solve(varying, QALYS).transition_form == "dense"
+    assert solve(constant, QALYS).transition_form == "sparse"
+
+
+def test_sparse_backward_induction_keeps_no_history():
+    compiled = _finite_sparse_model(SPARSE_MIN_STATES, 3)
+    with pytest.raises(SolverError, match="record_history"):
+        solve(compiled, QALYS, transition_form="sparse", record_history=True)
+    kept = solve(compiled, QALYS, record_history=True)  # auto falls back to dense
+    assert kept.transition_form == "dense" and len(kept.history) == 3

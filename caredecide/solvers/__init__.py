@@ -23,9 +23,9 @@ from caredecide.solvers.bellman import (
     SolverError,
     check_compiled,
 )
-from caredecide.solvers.finite import backward_induction
+from caredecide.solvers.finite import backward_induction, terminal_present_value
 from caredecide.solvers.result import PolicyResult, SweepRecord
-from caredecide.solvers.sparse import TRANSITION_FORMS
+from caredecide.solvers.sparse import TRANSITION_FORMS, choose_form, sparse_backward_induction
 from caredecide.solvers.stationary import solve_stationary
 
 METHODS = (
@@ -85,10 +85,11 @@ def solve(
         Keep per-sweep values, policy, residual and error bound in ``result.history``
         (memory grows with sweeps x draws x states).
     transition_form : {"auto", "dense", "sparse"}
-        Infinite horizon: solve with sparse transition rows (scipy.sparse) or dense
-        arrays; "auto" picks sparse for large, sparse models with few draws
-        (:func:`caredecide.solvers.sparse.choose_form`). ``result.transition_form`` says
-        which was used.
+        Solve with sparse transition rows (scipy.sparse CSR) or dense arrays; "auto"
+        picks sparse for large, sparse models with few draws whose transitions do not
+        vary with the cycle (:func:`caredecide.solvers.sparse.choose_form`).
+        ``result.transition_form`` says which was used. Sparse serves backward induction,
+        policy and value iteration, without a sweep history.
 
     Returns
     -------
@@ -121,12 +122,23 @@ def solve(
             f"method {method!r} is for an infinite horizon; the model has n_cycles = "
             f"{compiled.n_cycles} (use 'backward_induction' or 'auto')"
         )
-    if finite and transition_form == "sparse":
-        raise SolverError(
-            "transition_form = 'sparse' serves an infinite horizon (policy and value "
-            f"iteration); the model has n_cycles = {compiled.n_cycles} (use 'auto' or 'dense')"
-        )
     if finite:
+        form = choose_form(compiled.transition, transition_form)
+        if form == "sparse" and record_history:
+            if transition_form == "sparse":
+                raise SolverError(
+                    "sparse transitions keep no sweep history; got record_history = True "
+                    "(use transition_form = 'dense' or 'auto')"
+                )
+            form = "dense"
+        if form == "sparse":
+            return sparse_backward_induction(
+                compiled,
+                objective,
+                terminal_present_value(compiled, objective, terminal_value),
+                tie_absolute=tie_tolerance,
+                tie_relative=tie_relative,
+            )
         return backward_induction(
             compiled,
             objective,

@@ -18,7 +18,7 @@ from functools import cache
 
 from caredecide.jit import available
 
-__all__ = ["available", "kernels", "stationary_kernels"]
+__all__ = ["available", "kernels", "sparse_kernels", "stationary_kernels"]
 
 
 @cache
@@ -35,3 +35,11 @@ def stationary_kernels():
     from caredecide.solvers import _stationary_loops
 
     return _stationary_loops
+
+
+@cache
+def sparse_kernels():
+    """The compiled loop that reads dense transitions into sparse rows."""
+    from caredecide.solvers import _sparse_loops
+
+    return _sparse_loops

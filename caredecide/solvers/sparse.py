@@ -2,22 +2,42 @@
 
 Progressive models and tunnel states give transition rows with a handful of non-zeros
 among thousands of states. For the base case and one-way analyses (a few draws) the
-iterative solvers then store each draw's ``P`` (A S, S) in compressed sparse rows and:
+solvers then store ``P`` in compressed sparse rows (CSR) and:
 
 * policy iteration solves ``(I - gamma P_pi) v = r_pi`` with a sparse LU
   (``scipy.sparse.linalg.spsolve``), ``P_pi`` being the policy's rows of the CSR matrix;
-* value iteration sweeps ``v <- max_a r + gamma P v`` with a sparse product.
+* value iteration sweeps ``v <- max_a r + gamma P v`` with a sparse product;
+* backward induction (finite horizon) computes each cycle's expectations
+  ``sum_s' P_t(s'|s, a) (arrival_t(a, s') + V_{t+1}(s'))`` of every draw, action and state
+  with one sparse product; transitions that do not vary with the cycle (time axis of
+  length 1) are converted once, so a 60-cycle model holds one sparse copy, not 60;
+* the cohort trace and per-cycle flows of a finite-horizon policy
+  (:func:`sparse_trace_and_flows`) move the cohort with the same sparse rows.
 
-Stopping rules, the keep-the-current-action rule and the results are those of
-:mod:`caredecide.solvers.stationary`. :func:`choose_form` picks the form from the size and
-the density; the result's ``transition_form`` says which one was used.
+Stopping rules, the keep-the-current-action rule, the rewards
+(:func:`caredecide.solvers.bellman.cycle_rewards`), the tie rule and the results are those
+of :mod:`caredecide.solvers.stationary` and :mod:`caredecide.solvers.finite`.
+:func:`choose_form` picks the form from the size and the density; the result's
+``transition_form`` says which one was used.
 """
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 
-from caredecide.solvers.bellman import SolverError
+from caredecide.compiled import CompiledModel
+from caredecide.objective import Objective
+from caredecide.solvers import kernels
+from caredecide.solvers.bellman import (
+    SolverError,
+    cycle_parts,
+    cycle_rewards,
+    decision_state_mask,
+    greedy_choice,
+)
+from caredecide.solvers.result import PolicyResult, build_result
 
 TRANSITION_FORMS = ("auto", "dense", "sparse")
 SPARSE_MIN_STATES = 300
@@ -32,8 +52,10 @@ def choose_form(transition: np.ndarray, requested: str) -> str:
     """``"dense"`` or ``"sparse"`` for transitions (D, Tp, A, S, S) and a requested form.
 
     ``"auto"``: sparse when there are at least :data:`SPARSE_MIN_STATES` states, at most
-    :data:`SPARSE_MAX_DRAWS` draws and a share of non-zeros of at most
-    :data:`SPARSE_MAX_DENSITY` (counted on the first draw).
+    :data:`SPARSE_MAX_DRAWS` draws, transitions that do not vary with the cycle
+    (``Tp = 1``; converting one sparse copy per cycle costs as much as the dense solve)
+    and a share of non-zeros of at most :data:`SPARSE_MAX_DENSITY` (counted on the
+    first draw).
     """
     if requested not in TRANSITION_FORMS:
         raise SolverError(
@@ -42,7 +64,7 @@ def choose_form(transition: np.ndarray, requested: str) -> str:
     if requested != "auto":
         return requested
     D, S = transition.shape[0], transition.shape[-1]
-    if S < SPARSE_MIN_STATES or D > SPARSE_MAX_DRAWS:
+    if S < SPARSE_MIN_STATES or D > SPARSE_MAX_DRAWS or transition.shape[1] > 1:
         return "dense"
     density = np.count_nonzero(transition[0]) / transition[0].size
     return "sparse" if density <= SPARSE_MAX_DENSITY else "dense"
@@ -50,10 +72,28 @@ def choose_form(transition: np.ndarray, requested: str) -> str:
 
 def _rows(P: np.ndarray):
     """CSR matrix (A S, S) of one draw's stationary transitions (A, S, S)."""
+    A, S = P.shape[0], P.shape[1]
+    return _csr(P.reshape(A * S, S), block=0)
+
+
+def _csr(rows: np.ndarray, block: int):
+    """CSR form of dense rows (K, S); ``block > 0``: row ``k`` moved to the columns of
+    block ``k // block`` (a block-diagonal matrix (K, K / block * S))."""
     from scipy import sparse
 
-    A, S = P.shape[0], P.shape[1]
-    return sparse.csr_array(P.reshape(A * S, S))
+    K, S = rows.shape
+    width = S if block == 0 else (K // block) * S
+    if kernels.available():
+        indptr, indices, data = kernels.sparse_kernels().csr_from_dense(
+            np.ascontiguousarray(rows, dtype=float), block
+        )
+        return sparse.csr_array((data, indices, indptr), shape=(K, width))
+    matrix = sparse.csr_array(rows)
+    if block == 0:
+        return matrix
+    per_block = np.add.reduceat(np.diff(matrix.indptr), np.arange(0, K, block))
+    shift = np.repeat(np.arange(K // block, dtype=matrix.indices.dtype) * S, per_block)
+    return sparse.csr_array((matrix.data, matrix.indices + shift, matrix.indptr), shape=(K, width))
 
 
 def sparse_iterate(
@@ -138,3 +178,161 @@ def _value_iteration(rows, R, gamma, tolerance, relative, max_iterations):
         if change < eps * (1.0 - gamma) / (2.0 * gamma) or change == 0.0:
             return v, n, change, True
     return v, max_iterations, change, False
+
+
+def _block_rows(P: np.ndarray):
+    """CSR (K S, K S) holding the rows of ``K`` dense (S, S) matrices ``P`` (K, S, S).
+
+    Row ``k S + s`` holds ``P[k, s]`` in the columns of block ``k`` (a block-diagonal
+    matrix), so one product with the stacked vectors ``x`` (K S,) gives every
+    ``P[k] @ x[k]``.
+    """
+    K, S = P.shape[0], P.shape[1]
+    return _csr(P.reshape(K * S, S), block=S)
+
+
+def sparse_backward_induction(
+    compiled: CompiledModel,
+    objective: Objective,
+    terminal: np.ndarray,
+    *,
+    tie_absolute: float,
+    tie_relative: float,
+) -> PolicyResult:
+    """Backward induction with the transitions in CSR form (Puterman 1994, section 4.5).
+
+    Same recursion as :func:`caredecide.solvers.finite.backward_induction`::
+
+        Q_t(s, a) = now_t(s, a) + sum_s' P_t(s'|s, a) (arrival_t(a, s') + V_{t+1}(s'))
+
+    with the expectations of all draws, actions and states of a cycle in one sparse
+    product (:func:`_block_rows`); the sparse copy of a time slice of ``P`` is made once
+    and reused by every cycle it covers.
+
+    Parameters
+    ----------
+    compiled : CompiledModel
+        Finite horizon (``n_cycles`` = T).
+    objective : Objective
+    terminal : (D, S) float
+        Terminal value in present value at the model start
+        (:func:`caredecide.solvers.finite.terminal_present_value`).
+    tie_absolute, tie_relative : float
+        Tie tolerance on action gaps.
+
+    Returns
+    -------
+    PolicyResult
+        As backward induction's: ``policy`` (D, T, S), ``value`` (D, T + 1, S);
+        ``transition_form = "sparse"``.
+    """
+    T = compiled.n_cycles
+    if T is None:
+        raise SolverError("backward induction needs a finite number of cycles (n_cycles)")
+    D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
+    decision_states = decision_state_mask(compiled)
+    not_allowed = ~np.asarray(compiled.allowed, dtype=bool)
+    value = np.empty((D, T + 1, S))
+    q_values = np.empty((D, T, S, A))
+    policy = np.empty((D, T, S), dtype=np.intp)
+    gap = np.empty((D, T, S))
+    next_best = np.empty((D, T, S), dtype=np.intp)
+    indifferent = np.empty((D, T, S), dtype=bool)
+    value[:, T] = terminal
+    Tp = compiled.transition.shape[1]
+    blocks: dict[int, Any] = {}  # time slice -> CSR of every draw and action
+    for t in range(T - 1, -1, -1):
+        tp = min(t, Tp - 1)
+        if tp not in blocks:
+            blocks = {tp: _block_rows(compiled.transition[:, tp].reshape(D * A, S, S))}
+        now, arrival = cycle_rewards(compiled, objective, t)  # (D, S, A), (D, A, S)
+        following = (arrival + value[:, t + 1, None, :]).reshape(D * A * S)
+        expected = (blocks[tp] @ following).reshape(D, A, S)
+        Q = q_values[:, t]
+        np.add(now, expected.transpose(0, 2, 1), out=Q)
+        Q[:, not_allowed] = -np.inf
+        (policy[:, t], value[:, t], gap[:, t], next_best[:, t], indifferent[:, t]) = greedy_choice(
+            Q, decision_states, tie_absolute, tie_relative
+        )
+    return build_result(
+        compiled,
+        objective,
+        (policy, gap, next_best, indifferent),
+        value=value,
+        q_values=q_values,
+        decision_states=decision_states,
+        ages=compiled.ages(),
+        history=None,
+        method="backward_induction",
+        iterations=T,
+        tolerance=0.0,
+        relative=False,
+        error_bound=np.zeros(D),
+        success=True,
+        message=f"backward induction over {T} cycles (exact; sparse transitions)",
+        transition_form="sparse",
+    )
+
+
+def sparse_trace_and_flows(
+    compiled: CompiledModel, policy: np.ndarray, quantities: tuple[str, ...]
+) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """Cohort trace and per-cycle flows of a finite-horizon policy, transitions in CSR.
+
+    The same quantities as the dense evaluation in :mod:`caredecide.evaluate`:
+    ``m_{t+1} = m_t P_t[policy_t]`` and ``flow_t = sum_s m_t(s) (at_decision_t(s, a) +
+    sum_s' P_t(s'|s, a) on_arrival_t(a, s'))`` with ``a = policy_t(s)`` and the parts of
+    :func:`caredecide.solvers.bellman.cycle_parts`. The cohort moves by one product with
+    the transposed sparse matrix of every draw and action (the mass of ``s`` placed in the
+    row of its chosen action); the expected arrival rewards of every action by one sparse
+    product per cycle.
+
+    Parameters
+    ----------
+    compiled : CompiledModel
+        Finite horizon (``n_cycles`` = T).
+    policy : (D, Tpi, S) int
+        Tpi = T, or 1 (the same every cycle).
+    quantities : tuple of str
+        Keys of ``cycle_parts(..., life_years=True)`` to total, e.g. ("life_years",
+        "qalys", "costs").
+
+    Returns
+    -------
+    trace : (D, T + 1, S) float
+        Share of the cohort in each state at each boundary.
+    flows : dict of str to (D, T + 1) float
+        For each quantity, discounted (key ``name``) and undiscounted (``name +
+        "_undiscounted"``) per cycle; the last entry 0.
+    """
+    T = compiled.n_cycles
+    if T is None:
+        raise SolverError("the sparse cohort trace is for a finite horizon (n_cycles)")
+    D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
+    names = [f"{n}{suffix}" for suffix in ("", "_undiscounted") for n in quantities]
+    flows = {name: np.zeros((D, T + 1)) for name in names}
+    trace = np.empty((D, T + 1, S))
+    trace[:, 0] = compiled.start_distribution
+    Tp, Tpi = compiled.transition.shape[1], policy.shape[1]
+    blocks: dict[int, tuple[Any, Any]] = {}  # time slice -> (CSR, its transpose)
+    draw, state = np.arange(D)[:, None], np.arange(S)[None, :]
+    placed = np.zeros((D, A, S))
+    for t in range(T):
+        tp = min(t, Tp - 1)
+        if tp not in blocks:
+            block = _block_rows(compiled.transition[:, tp].reshape(D * A, S, S))
+            blocks = {tp: (block, block.T.tocsr())}
+        block, moved = blocks[tp]
+        chosen = policy[:, min(t, Tpi - 1)]  # (D, S)
+        m = trace[:, t]
+        both = [cycle_parts(compiled, t, discount, life_years=True) for discount in (True, False)]
+        parts = [by_name[name] for by_name in both for name in quantities]
+        arrival = np.stack([p[1].reshape(D * A * S) for p in parts], axis=1)  # (D A S, K)
+        expected = (block @ arrival).reshape(D, A, S, len(parts))[draw, chosen, state]
+        for k, name in enumerate(names):
+            at_decision = np.broadcast_to(parts[k][0], (D, S, A))[draw, state, chosen]
+            flows[name][:, t] = np.einsum("ds,ds->d", m, at_decision + expected[..., k])
+        placed[:] = 0.0
+        placed[draw, chosen, state] = m
+        trace[:, t + 1] = (moved @ placed.reshape(D * A * S)).reshape(D, A, S).sum(axis=1)
+    return trace, flows
