@@ -45,7 +45,7 @@ from caredecide.modelfile import load_model
 from caredecide.sensitivity import parameter_ranges, parameter_sets
 from caredecide.uncertainty.sampling import sample_parameters
 
-FORMER = {"deduplicate": False, "method": "uniformization"}
+FORMER = {"deduplicate": False, "method": "uniformization", "factor": False}
 """The rate-row path before this benchmark existed: whole matrices, no de-duplication."""
 PLAIN_PADE = {"deduplicate": False, "method": "pade"}
 AGREEMENT = 1e-12

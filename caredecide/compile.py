@@ -36,9 +36,11 @@ TIME_NAMES = frozenset({"age", "cycle", "years", "background"})
 ROW_TOLERANCE = 1e-9
 """A transition row must sum to 1 within this (absolute) tolerance."""
 MAX_PROBLEMS_PER_RULE = 20
-_RATE_ROWS: dict[str, Any] = {"deduplicate": True, "method": "pade"}
-"""How rate rows are exponentiated (see :func:`_fill_rate_rows`); the benchmarks switch to
-``{"deduplicate": False, "method": "uniformization"}``, the former path, for comparison."""
+_RATE_ROWS: dict[str, Any] = {"deduplicate": True, "method": "pade", "factor": True}
+"""How rate rows are exponentiated (:func:`caredecide.rate_rows.fill_rate_rows`); the
+benchmarks switch to ``{"factor": False}`` (one exponential per distinct (draw, cycle)
+column) and ``{"deduplicate": False, "method": "uniformization", "factor": False}`` (the
+first path: whole matrices, every draw and cycle) for comparison."""
 
 
 @dataclass
@@ -411,10 +413,12 @@ def compile_model(
         )
 
     transition = _transitions(model, parsed, evaluator, defined_rows, tp, problems)
-    move = _moves(model, parsed, evaluator, allowed, tp, problems)
+    # Moves get a time axis only when a share changes with the cycle.
+    tm = tp if any(e.uses_time for e in (*parsed.moves, *parsed.move_rests)) else 1
+    move = _moves(model, parsed, evaluator, allowed, tm, problems)
     if move is not None and not problems:
-        transition = apply_moves(transition, move, allowed, absorbing)
         move = _one_slice_when_constant(move)
+        transition = apply_moves(transition, move, allowed, absorbing, in_place=True)
     n = model.n_cycles()
     tr = n if (n is not None and parsed.under_action_uses_time) else 1
     under_cost = _under_action(model, parsed.under_cost, evaluator, tr, problems, cost=True)
@@ -475,19 +479,22 @@ def _moves(
     parsed: ParsedModel,
     evaluator: _Evaluator,
     allowed: np.ndarray,
-    tp: int,
+    tm: int,
     problems: list[Problem],
 ) -> np.ndarray | None:
-    """(D, Tp, A, S, S) decision-time moves (identity rows where none), or None."""
+    """(D, Tm, A, S, S) decision-time moves (identity rows where none), or None.
+
+    ``tm`` is 1 when no share uses the time variables (one slice serves every cycle).
+    """
     if not parsed.moves and not parsed.move_rests:
         return None
     n_states, n_actions = len(model.states), len(model.actions)
-    M = np.zeros((evaluator.n_draws, tp, n_actions, n_states, n_states))
+    M = np.zeros((evaluator.n_draws, tm, n_actions, n_states, n_states))
     M[..., np.arange(n_states), np.arange(n_states)] = 1.0
     a, s, _ = _indices([*parsed.moves, *parsed.move_rests])
     M[:, :, a, s, :] = 0.0  # rows the model gives start empty
     if parsed.moves:
-        shares = evaluator.stack(parsed.moves, tp)  # (n, D, Tp)
+        shares = evaluator.stack(parsed.moves, tm)  # (n, D, Tm)
         problems += evaluator.check_finite(parsed.moves, shares)
         problems += evaluator.check_range(
             parsed.moves, shares, low=0.0, high=1.0, what="share", expected="a share in [0, 1]"
@@ -515,7 +522,7 @@ def _moves(
                 Problem(
                     f"moves.{model.action_ids[a]}.{model.state_ids[s]}",
                     f"shares sum to {float(row_sums[d, t, a, s]):.12g} "
-                    f"{evaluator.place(int(d), int(t), length=tp)}; expected 1 "
+                    f"{evaluator.place(int(d), int(t), length=tm)}; expected 1 "
                     f'(within {ROW_TOLERANCE:g}; use "rest" for the share that stays)',
                 )
             )
@@ -550,27 +557,44 @@ def rows_after_move(allowed: np.ndarray, absorbing: np.ndarray) -> np.ndarray:
 
 
 def apply_moves(
-    P: np.ndarray, M: np.ndarray, allowed: np.ndarray, absorbing: np.ndarray
+    P: np.ndarray,
+    M: np.ndarray,
+    allowed: np.ndarray,
+    absorbing: np.ndarray,
+    *,
+    in_place: bool = False,
 ) -> np.ndarray:
     """Transitions with each moved row replaced by ``move row @ rows of the destinations``.
 
     ``P`` (D, Tp, A, S, S) holds the rows before the moves (a wholly moved row a self-loop
-    placeholder), ``M`` (D, Tp, A, S, S) the moves; rows where ``M`` is the identity are
-    left as they are. Also used by :mod:`caredecide.sensitivity.cell_scaling`.
+    placeholder), ``M`` (D, Tm, A, S, S) the moves (Tm = 1 applies to every cycle); rows
+    where ``M`` is the identity are left as they are. ``in_place`` writes into ``P``
+    (the compiler's own array) instead of a copy. Each moved row is the sum over the
+    destinations ``j`` some draw moves to of ``M[..., j] * P[row of j]``: one (D, Tp, S)
+    temporary at a time. Also used by :mod:`caredecide.sensitivity.cell_scaling`.
     """
     n_states = P.shape[-1]
-    M = np.broadcast_to(M, P.shape)  # a move kept for one cycle applies to every cycle
-    identity = np.eye(n_states)
-    moved = np.nonzero((M != identity).any(axis=(0, 1, 4)))  # (action, state) moved rows
-    if moved[0].size == 0:
+    away = (M != np.eye(n_states)).any(axis=(0, 1))  # (A, S, S): moved rows, per column
+    moved = np.argwhere(away.any(axis=-1))  # (n, 2) (action, state)
+    if moved.size == 0:
         return P
     rows = rows_after_move(allowed, absorbing)  # (A, S)
-    # after[:, :, n, s1, :] = the row of s1 under the action that applies after the move
-    after = P[:, :, rows[moved[0]], np.arange(n_states)[None, :], :]  # (D, Tp, n, S, S)
-    out = P.copy()
-    out[:, :, moved[0], moved[1], :] = np.einsum(
-        "dtnj,dtnjk->dtnk", M[:, :, moved[0], moved[1], :], after
-    )
+    shares = (M != 0).any(axis=(0, 1))  # (A, S, S): destinations some draw moves to
+    sources = {(int(rows[a, j]), int(j)) for a, s in moved for j in np.flatnonzero(shares[a, s])}
+    out = P if in_place else P.copy()
+    # A moved row read as a destination is read before it is replaced.
+    deferred = in_place and any((int(a), int(s)) in sources for a, s in moved)
+    new_rows = []
+    for a, s in moved:
+        row = np.zeros((*P.shape[:2], n_states))  # (D, Tp, S)
+        for j in np.flatnonzero(shares[a, s]):
+            row += M[:, :, a, s, j, None] * P[:, :, rows[a, j], j, :]
+        if deferred:
+            new_rows.append(row)
+        else:
+            out[:, :, a, s, :] = row
+    for (a, s), row in zip(moved, new_rows, strict=False):
+        out[:, :, a, s, :] = row
     return out
 
 
@@ -677,9 +701,12 @@ def _transitions(
 
     if parsed.rests:
         a, s, to = _indices(parsed.rests)
-        # Row sums first, then the rest rows picked: indexing P[:, :, a, s, :] would copy
-        # nearly all of P (every rest row), doubling the compile peak.
-        remainder = 1.0 - P.sum(axis=-1)[:, :, a, s]  # (D, Tp, n): rest cells still hold 0
+        # One rest row at a time: indexing P[:, :, a, s, :] at once would copy every rest
+        # row, and summing every row of P costs a pass over all of it.
+        remainder = np.stack(
+            [1.0 - P[:, :, ai, si, :].sum(axis=-1) for ai, si in zip(a, s, strict=True)],
+            axis=-1,
+        )  # (D, Tp, n): rest cells still hold 0
         problems += evaluator.check_range(
             parsed.rests,
             np.moveaxis(remainder, -1, 0),
@@ -690,26 +717,37 @@ def _transitions(
         )
         P[:, :, a, s, to] = np.clip(remainder, 0.0, 1.0)
 
-    row_sums = P.sum(axis=-1)  # (D, Tp, A, S)
-    off = np.abs(row_sums - 1.0) > ROW_TOLERANCE
-    if off.any() and not problems:
-        bad_rows = np.argwhere(off.any(axis=(0, 1)))
-        for a, s in bad_rows[:MAX_PROBLEMS_PER_RULE]:
-            d, t = np.argwhere(off[:, :, a, s])[0]
-            table = "rates" if _is_rate_row(parsed, a, s) else "transitions"
+    # Only rows of given probabilities without a remainder can miss 1: a rest row sums
+    # to 1 by construction (its remainder was checked above), a rate row is a row of a
+    # generator's exponential (checked there), the other rows are self-loops.
+    checked = np.array(defined_rows, dtype=bool)  # (A, S)
+    for e in (*parsed.rests, *parsed.rates):
+        checked[e.action, e.state] = False
+    if problems or not checked.any():
+        return P
+    if checked.sum() > checked.size // 2:  # one pass over P beats many strided ones
+        all_sums = np.einsum("dtask->dtas", P)
+        sums = {(int(i), int(j)): all_sums[:, :, i, j] for i, j in np.argwhere(checked)}
+    else:
+        sums = {
+            (int(i), int(j)): np.einsum("dtk->dt", P[:, :, i, j, :])
+            for i, j in np.argwhere(checked)
+        }
+    for (row_action, row_state), row_sums in sums.items():  # (D, Tp) each
+        off = np.abs(row_sums - 1.0) > ROW_TOLERANCE
+        if off.any():
+            d, t = np.argwhere(off)[0]
             problems.append(
                 Problem(
-                    f"{table}.{model.action_ids[a]}.{model.state_ids[s]}",
-                    f"row sums to {float(row_sums[d, t, a, s]):.12g} "
+                    f"transitions.{model.action_ids[row_action]}.{model.state_ids[row_state]}",
+                    f"row sums to {float(row_sums[d, t]):.12g} "
                     f"{evaluator.place(int(d), int(t), length=tp)}; expected 1 "
                     f'(within {ROW_TOLERANCE:g}; use "rest" for the remainder)',
                 )
             )
+            if len(problems) >= MAX_PROBLEMS_PER_RULE:
+                break
     return P
-
-
-def _is_rate_row(parsed: ParsedModel, action: int, state: int) -> bool:
-    return any(e.action == action and e.state == state for e in parsed.rates)
 
 
 def _indices(entries: list[Entry]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -725,56 +763,18 @@ def _fill_rate_rows(
     entries: list[Entry],
     rates: np.ndarray,
     cycle_years: float,
-    *,
-    deduplicate: bool = True,
-    method: str = "pade",
+    **options: Any,
 ) -> None:
     """Replace rows given by rates with ``expm(cycle_years G)`` of their action's generator.
 
-    All rate rows of one action share one generator, so a path through two rate rows
-    within one cycle is counted; states without a rate row are absorbing inside it.
-
-    ``rates`` is (n_entries, D, Tp). The generators of a (draw, cycle) follow from its
-    column of rates alone, and batches often repeat a column (one-way and threshold sets
-    change one parameter at a time; parameters outside rate rows leave it unchanged), so
-    each distinct column is exponentiated once (``deduplicate``; the result is the same
-    to the last bit, since each matrix's exponential does not depend on its neighbours).
-    ``method`` is passed to :func:`caredecide.conversions._generator_exponential`.
+    ``rates`` is (n_entries, D, Tp); ``options`` are those of
+    :func:`caredecide.rate_rows.fill_rate_rows` (``deduplicate``, ``method``, ``factor``;
+    :data:`_RATE_ROWS` by default in the compiler).
     """
-    # The rates were checked (finite, >= 0) and the diagonal is built here, so the
-    # generator needs none of generator_to_transition's input checks.
-    from caredecide.conversions import (
-        _distinct_rows,
-        _generator_exponential,
-        _states_in_play,
-    )
+    from caredecide.rate_rows import fill_rate_rows
 
     a, s, to = _indices(entries)
-    actions = np.unique(a)
-    local = np.searchsorted(actions, a)  # position of each entry's action in `actions`
-    n_draws, tp, _, n_states, _ = P.shape
-    # Only states with rate rows and their targets enter the exponential (the others have
-    # identity rows and columns); the former path kept whole matrices.
-    pattern = np.zeros((n_states, n_states), dtype=bool)
-    pattern[s, to] = True
-    kept = np.flatnonzero(_states_in_play(pattern) | (method != "pade"))
-    position = np.searchsorted(kept, np.arange(n_states))  # block index of a kept state
-    columns = np.moveaxis(rates, 0, -1).reshape(n_draws * tp, len(entries))  # (D Tp, n)
-    if deduplicate:
-        columns, inverse = _distinct_rows(columns)
-    G = np.zeros((columns.shape[0], actions.size, kept.size, kept.size))
-    G[:, local, position[s], position[to]] = columns
-    diagonal = np.arange(kept.size)
-    G[:, :, diagonal, diagonal] = -G.sum(axis=-1)
-    rows = np.unique(np.stack([local, s]), axis=1)  # (action position, state) of rate rows
-    block = _generator_exponential(G * cycle_years, method)[:, rows[0], position[rows[1]], :]
-    if deduplicate:
-        block = block[inverse]
-    target_actions, target_states = actions[rows[0]], rows[1]
-    P[:, :, target_actions, target_states, :] = 0.0
-    P[:, :, target_actions[:, None], target_states[:, None], kept] = block.reshape(
-        n_draws, tp, *block.shape[1:]
-    )
+    fill_rate_rows(P, a, s, to, rates, cycle_years, **options)
 
 
 def setting_values(settings) -> dict[str, float]:

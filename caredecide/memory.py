@@ -6,11 +6,12 @@ counts the arrays the compiler (:mod:`caredecide.compile`), the solvers
 (:mod:`caredecide.solvers`) and policy evaluation (:mod:`caredecide.evaluate`) hold at
 their peaks, temporaries included, in bytes of float64 (8), intp (8) and bool (1):
 
-* compile: the compiled arrays, the expression stacks and row sums, and for rate rows the
-  generators and the exponential's work arrays (``RATE_WORK_COPIES`` copies of the
-  generator stack with the compiled loop, ``RATE_WORK_COPIES_NUMPY`` without; one matrix
-  per draw and cycle: the worst case, when no two (draw, cycle) columns of rates are
-  equal);
+* compile: the compiled arrays plus the largest temporary: the expression stacks, the
+  row sums of the final check, one moved row, or for rate rows the generators and the
+  exponential's work arrays (``RATE_WORK_COPIES`` copies of the generator stack with the
+  compiled loop, ``RATE_WORK_COPIES_NUMPY`` without; at most ``EXPONENTIAL_BLOCK``
+  matrices at once, and the rate rows of every (draw, cycle): the worst case, when no two
+  columns of rates are equal and no common exit is factored out);
 * solve: the compiled arrays held, plus the results: values (D, T+1, S), Q-values
   (D, T, S, A), policy, gap, next-best action (intp) and ties (bool) per (D, T, S); an
   infinite horizon holds (D, S, S) systems and (D, S, A) sweeps instead;
@@ -28,21 +29,26 @@ from dataclasses import dataclass
 
 from caredecide.errors import ModelTooLargeError
 from caredecide.limits import DISPLAY_CAP
+from caredecide.rate_rows import EXPONENTIAL_BLOCK
 
 FLOAT = 8
-RATE_WORK_COPIES = 4.0
+RATE_WORK_COPIES = 3.2
 """Generator-stack copies alive at the peak of the rate rows' matrix exponential with the
-compiled loop (one matrix at a time): the generators, their scaled and contiguous copies,
-the result and the selected rows; measured 3.5-4.5."""
-RATE_WORK_COPIES_NUMPY = 10.0
+compiled loop (one matrix at a time): the generators, their contiguous block, the result
+and the selected rows; measured 3.1-3.5."""
+RATE_WORK_COPIES_NUMPY = 9.3
 """The same for the batched numpy path (``CAREDECIDE_KERNELS=numpy``): Pade powers,
-numerator, denominator and squaring buffers for every matrix at once; measured 8.2-12.5
-(lower when the norms split the stack into groups of different degrees)."""
-STACK_COPIES = 3
+numerator, denominator and squaring buffers for every matrix at once; measured 9.2-9.4
+on the test grid (lower when the norms split the stack into groups of different
+degrees)."""
+STACK_COPIES = 2
 """Copies of an expression stack (n_entries, D, T) alive at once (values, check masks,
 the moved copy scattered into the arrays)."""
-ROW_SUM_COPIES = 3
-"""Copies of the (D, Tp, A, S) row sums alive at once (sums, deviations, mask)."""
+ROW_SUM_COPIES = 2
+"""Copies of the (D, Tp, A, S) row sums alive at once in the compiled model's check
+(sums, deviations, masks)."""
+MOVE_ROW_COPIES = 2
+"""(D, Tp, S) arrays alive while a moved row is built (the row, one product)."""
 ENTRY_OBJECT_BYTES = 1600
 """Python objects of one parsed expression and its bookkeeping (measured about 1.5 KB),
 alive while compiling: they matter for models with thousands of entries."""
@@ -109,20 +115,29 @@ def compiled_bytes(shape: PipelineShape) -> int:
 
 
 def compile_peak_bytes(shape: PipelineShape) -> int:
-    """Peak bytes while compiling: the arrays plus the compiler's temporaries."""
+    """Peak bytes while compiling: the arrays plus the largest of the compiler's
+    temporaries (expression stacks, the row sums of the final check, the rate rows'
+    exponentials, one moved row at a time)."""
     D, S, A, tp = shape.n_draws, shape.n_states, shape.n_actions, shape.transition_cycles
-    temporaries = FLOAT * D * tp * (STACK_COPIES * shape.n_entries + ROW_SUM_COPIES * A * S)
+    per_cycle = max(
+        STACK_COPIES * shape.n_entries,
+        ROW_SUM_COPIES * A * S,
+        MOVE_ROW_COPIES * S if shape.move_rows else 0,
+    )
+    temporaries = FLOAT * D * tp * per_cycle
     if shape.rate_actions:
+        # Worst case: no two (draw, cycle) columns of rates alike and no common exit;
+        # generators are exponentiated EXPONENTIAL_BLOCK at a time, the rate rows of
+        # every column kept.
         K = shape.rate_states
-        generators = FLOAT * D * tp * shape.rate_actions * K * K
+        columns = D * tp
+        at_once = min(columns, EXPONENTIAL_BLOCK)
         from caredecide import jit
 
         copies = RATE_WORK_COPIES if jit.available() else RATE_WORK_COPIES_NUMPY
-        temporaries = max(temporaries, int(copies * generators))
-    if shape.move_rows:
-        # The moves for every cycle, the transitions copied to apply them, and the
-        # destinations' rows gathered for each moved row (compile.apply_moves).
-        temporaries += FLOAT * D * tp * (2 * A * S * S + shape.move_rows * S * S)
+        generators = FLOAT * at_once * shape.rate_actions * K * K
+        kept_rows = FLOAT * (columns - at_once) * shape.rate_rows * K
+        temporaries = max(temporaries, int(copies * generators) + kept_rows)
     objects = ENTRY_OBJECT_BYTES * (shape.n_entries + 2 * S + 3 * A)
     return compiled_bytes(shape) + temporaries + objects
 

@@ -192,3 +192,46 @@ def test_a_format_one_cost_by_cycle_warns_what_cycle_means_now():
     # A format-2 file is written for the one meaning documented now; no warning.
     warnings = validate_model(load_dict(_model(**{"settings.within_cycle": "end"})))
     assert "under_action.continue.sick_tx.cost" not in [w.where for w in warnings]
+
+
+def _moves_by_the_formula(P, M, allowed, absorbing):
+    """Plain reference: every row of ``P`` replaced by ``sum_j M[a, s, j] P[rows[a, j], j]``
+    (the definition of a decision-time move; rows without a move have M = identity)."""
+    from caredecide.compile import rows_after_move
+
+    rows = rows_after_move(allowed, absorbing)
+    n_actions, n_states = allowed.shape[1], allowed.shape[0]
+    M = np.broadcast_to(M, P.shape)
+    out = np.empty_like(P)
+    for a in range(n_actions):
+        for s in range(n_states):
+            out[:, :, a, s] = sum(
+                M[:, :, a, s, j, None] * P[:, :, rows[a, j], j] for j in range(n_states)
+            )
+    return out
+
+
+@pytest.mark.parametrize("in_place", [False, True])
+@pytest.mark.parametrize("chained", [False, True])
+def test_apply_moves_matches_the_formula_in_place_or_not(in_place, chained):
+    # Random rows and shares (invented); with ``chained`` a moved row is also a
+    # destination of another move, so it must be read before it is replaced.
+    from caredecide.compile import apply_moves
+
+    rng = np.random.default_rng(5)
+    n_draws, tp, n_actions, n_states = 3, 4, 2, 4
+    P = rng.dirichlet(np.ones(n_states), size=(n_draws, tp, n_actions, n_states))
+    M = np.broadcast_to(np.eye(n_states), (n_draws, 1, n_actions, n_states, n_states)).copy()
+    M[:, 0, 1, 0] = rng.dirichlet(np.ones(2), size=n_draws) @ np.eye(n_states)[[1, 2]]
+    if chained:  # action 1 moves state 1 (a destination above) to state 0 (moved too)
+        M[:, 0, 1, 1] = np.eye(n_states)[0]
+    allowed = np.ones((n_states, n_actions), dtype=bool)
+    absorbing = np.zeros(n_states, dtype=bool)
+    expected = _moves_by_the_formula(P, M, allowed, absorbing)
+    given = P.copy()
+    out = apply_moves(given, M, allowed, absorbing, in_place=in_place)
+    np.testing.assert_allclose(out, expected, rtol=0.0, atol=1e-15)
+    if in_place:
+        assert out is given
+    else:
+        np.testing.assert_array_equal(given, P)  # the input is left as it was

@@ -93,6 +93,17 @@ def test_row_not_summing_to_one():
     assert "expected 1" in message
 
 
+def test_every_row_not_summing_to_one_is_named():
+    # Two rows given without "rest", both off (the other rows sum to 1 by their rest):
+    # each is reported with its own sum.
+    data = small_model_dict()
+    data["transitions"]["wait"]["sick"] = {"dead": 0.2, "sick": 0.7}
+    data["transitions"]["treat"]["sick"] = {"dead": 0.1, "sick": 0.95}
+    message = problems_of(data)
+    assert "transitions.wait.sick: row sums to 0.9 for draw 0 in every cycle" in message
+    assert "transitions.treat.sick: row sums to 1.05 for draw 0 in every cycle" in message
+
+
 def test_negative_remainder():
     data = small_model_dict()
     data["transitions"]["wait"]["well"] = {"sick": 0.7, "dead": 0.4, "well": "rest"}
