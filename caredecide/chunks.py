@@ -8,10 +8,17 @@ from :func:`chunk_size_for` (one memory rule: :func:`memory_budget` and
 one core path. A *chunk map* runs the job over the ranges and yields results in range
 order: :func:`serial_map` in this process, or :func:`dask_map` on a Dask cluster. A job is
 a pure function of its range, so results do not depend on the chunk size or the map.
+
+:func:`thread_map` runs jobs on threads of this process: the compiled loops (numba,
+``nogil``) and large numpy operations release the interpreter lock, and threads share the
+imported modules and the job's arrays, where worker processes would import everything
+again and receive copies. :func:`usable_threads` starts no more threads than there are
+idle cores, so asking for workers on a busy machine costs nothing.
 """
 
 from __future__ import annotations
 
+import os
 from collections import deque
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass, replace
@@ -39,6 +46,8 @@ __all__ = [
     "run_chunks",
     "serial_map",
     "solve_in_chunks",
+    "thread_map",
+    "usable_threads",
 ]
 
 
@@ -131,6 +140,69 @@ def serial_map(job: ChunkJob, ranges: Sequence[tuple[int, int]]) -> Iterator[Any
         yield job(start, stop)
 
 
+def _in_order(submit: Callable, ranges: Sequence[tuple[int, int]], window: int) -> Iterator[Any]:
+    """Results of ``submit(start, stop)`` futures in range order, at most ``window`` of
+    them submitted and not yet collected (memory stays bounded by the window)."""
+    pending: deque = deque()
+    todo = iter(ranges)
+    for start, stop in todo:
+        pending.append(submit(start, stop))
+        if len(pending) >= window:
+            break
+    while pending:
+        future = pending.popleft()
+        result = future.result()
+        if hasattr(future, "release"):  # a Dask future: let the cluster forget it
+            future.release()
+        for start, stop in todo:
+            pending.append(submit(start, stop))
+            break
+        yield result
+
+
+def thread_map(threads: int) -> ChunkMap:
+    """A chunk map that runs jobs on ``threads`` threads of this process, results in order.
+
+    At most ``threads`` chunks run at once (so ``threads`` chunks' working memory), and at
+    most twice that many are submitted but not yet collected. One thread runs the jobs in
+    this thread, one after another (:func:`serial_map`).
+    """
+    threads = check_scalar(threads, "threads", int, min_val=1)
+    if threads == 1:
+        return serial_map
+
+    def run(job: ChunkJob, ranges: Sequence[tuple[int, int]]) -> Iterator[Any]:
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(threads, thread_name_prefix="caredecide-chunk") as pool:
+
+            def submit(start: int, stop: int) -> Any:
+                return pool.submit(job, start, stop)
+
+            yield from _in_order(submit, ranges, 2 * threads)
+
+    return run
+
+
+def idle_cores() -> float:
+    """Cores of this process's CPU set not busy with runnable work (1-minute load average;
+    the whole set when the load cannot be read)."""
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
+    try:
+        load = os.getloadavg()[0]
+    except OSError:
+        load = 0.0
+    return max(float(cores or 1) - load, 0.0)
+
+
+def usable_threads(requested: int) -> int:
+    """Threads worth starting for ``requested`` workers: at most the idle cores (rounded to
+    the nearest whole core), at least 1. On a machine whose cores are all busy a second
+    thread only takes turns with the first, so the run stays serial (never slower)."""
+    requested = check_scalar(requested, "workers", int, min_val=1)
+    return max(1, min(requested, round(idle_cores())))
+
+
 def _call(job: ChunkJob, start: int, stop: int) -> Any:
     return job(start, stop)
 
@@ -148,21 +220,12 @@ def dask_map(client, *, max_in_flight: int | None = None) -> ChunkMap:
         threads = sum(client.nthreads().values()) or 1
         window = max_in_flight or 2 * threads
         shared = client.scatter(job, broadcast=True)
-        pending: deque = deque()
-        todo = iter(ranges)
-        for start, stop in todo:
+
+        def submit(start: int, stop: int) -> Any:
             # Distinct keys per chunk: pure=False, so equal arguments never merge.
-            pending.append(client.submit(_call, shared, start, stop, pure=False))
-            if len(pending) >= window:
-                break
-        while pending:
-            future = pending.popleft()
-            result = future.result()
-            future.release()
-            for start, stop in todo:
-                pending.append(client.submit(_call, shared, start, stop, pure=False))
-                break
-            yield result
+            return client.submit(_call, shared, start, stop, pure=False)
+
+        yield from _in_order(submit, ranges, window)
 
     return run
 

@@ -1,4 +1,4 @@
-"""The one chunk driver: identical results across chunk sizes and serial versus Dask.
+"""The one chunk driver: identical results across chunk sizes, serial, threads and Dask.
 
 A chunk job is a pure function of its range of draws, and the solvers are vectorized over
 draws (every draw is solved on its own), so cutting a batch into chunks or running the
@@ -21,6 +21,8 @@ from caredecide.chunks import (
     run_chunks,
     serial_map,
     solve_in_chunks,
+    thread_map,
+    usable_threads,
 )
 from caredecide.compile import compile_model
 from caredecide.errors import RunOptionError
@@ -117,3 +119,45 @@ def test_solve_batch_identical_serial_and_dask(model, sets, chunk_size):
         np.testing.assert_array_equal(
             np.concatenate(batch.reductions), np.concatenate(serial.reductions)
         )
+
+
+def test_thread_map_yields_in_range_order_whatever_order_chunks_finish(model, sets):
+    import threading
+    import time
+
+    finished = []
+
+    def job(start, stop):
+        time.sleep(0.02 * (7 - start))  # early chunks finish last
+        finished.append(start)
+        return start, stop, threading.current_thread().name
+
+    ranges = chunk_ranges(7, 1)
+    results = list(thread_map(3)(job, ranges))
+    assert [(a, b) for a, b, _ in results] == ranges
+    assert finished != sorted(finished)  # they did finish out of order
+    assert {name for *_, name in results} <= {f"caredecide-chunk_{i}" for i in range(3)}
+    assert thread_map(1) is serial_map
+    # The same batch solved on threads and serially: the same figures.
+    serial = solve_batch(model, sets, OBJECTIVE, chunk_size=2, reduce=_first_action)
+    threads = solve_batch(
+        model, sets, OBJECTIVE, chunk_size=3, reduce=_first_action, map_chunks=thread_map(2)
+    )
+    np.testing.assert_array_equal(threads.fields["policy"], serial.fields["policy"])
+    np.testing.assert_array_equal(threads.fields["value"], serial.fields["value"])
+    pd.testing.assert_frame_equal(threads.totals, serial.totals)
+
+
+@pytest.mark.parametrize(
+    ("load", "requested", "expected"),
+    [(0.1, 2, 2), (0.1, 8, 4), (1.2, 2, 2), (2.6, 2, 1), (3.5, 4, 1), (7.0, 1, 1)],
+)
+def test_usable_threads_no_more_than_the_idle_cores(monkeypatch, load, requested, expected):
+    # 4 cores; idle = 4 - load, rounded to whole cores; at least 1, at most the request.
+    import os
+
+    monkeypatch.setattr(os, "sched_getaffinity", lambda pid: {0, 1, 2, 3}, raising=False)
+    monkeypatch.setattr(os, "getloadavg", lambda: (load, load, load))
+    assert usable_threads(requested) == expected
+    with pytest.raises(RunOptionError, match="workers = 0 is not allowed"):
+        usable_threads(0)

@@ -123,7 +123,58 @@ def test_pilot_block_and_chunks_give_the_same_results(model):
         progress=lambda d, n: done.append(d),
     )
     _assert_same(split, whole)
-    assert done == [1000, 1120, 1240, 1300]
+    # The pilot's chunks are evaluated (and reported) one by one too.
+    assert done == [*range(120, 1000, 120), 1000, 1120, 1240, 1300]
+
+
+def test_threads_give_the_serial_results(model, monkeypatch):
+    # Chunks (the pilot's too) on two threads of this process, in whatever order they
+    # finish, must give every figure of a serial run (results are joined in draw order;
+    # common practice for batched Monte Carlo work). The idle-core rule is bypassed so
+    # that two threads run even on a busy machine.
+    from caredecide.uncertainty import psa
+
+    monkeypatch.setattr(psa, "usable_threads", lambda requested: requested)
+    serial = analyse_uncertainty(
+        model, 1300, seed=8, chunk_size=1300, n_frequent=2, keep_policies=True
+    )
+    done = []
+    threaded = analyse_uncertainty(
+        model,
+        1300,
+        seed=8,
+        chunk_size=90,
+        n_frequent=2,
+        keep_policies=True,
+        workers=2,
+        progress=lambda d, n: done.append(d),
+    )
+    assert threaded.threads == 2 and serial.threads == 1
+    _assert_same(threaded, serial)
+    assert [c.name for c in threaded.candidates] == [c.name for c in serial.candidates]
+    assert done == sorted(done) and done[-1] == 1300
+
+
+def test_workers_and_a_chunk_map_together_are_refused(model):
+    from caredecide.chunks import serial_map
+
+    with pytest.raises(RunOptionError, match="workers = 2 is not allowed"):
+        analyse_uncertainty(model, 10, seed=1, workers=2, map_chunks=serial_map)
+
+
+def test_default_chunk_size_fastest_size_shared_by_threads_and_dividing_a_block(model):
+    from caredecide.limits import PSA_CHUNK_BYTES
+    from caredecide.uncertainty.psa import BLOCK_SIZE, default_chunk_size, draw_bytes
+
+    per_draw = draw_bytes(model)
+    fastest = default_chunk_size(model, 10**6, None)
+    assert fastest * per_draw <= PSA_CHUNK_BYTES
+    assert fastest % BLOCK_SIZE == 0 or BLOCK_SIZE % fastest == 0
+    # A budget for 283 draws: 250 (the largest divisor of the 1,000-draw block that fits);
+    # two threads share it: 125 each (141 fit; 125 divides the block).
+    assert default_chunk_size(model, 10**6, 283 * per_draw) == 250
+    assert default_chunk_size(model, 10**6, 283 * per_draw, threads=2) == 125
+    assert default_chunk_size(model, 300, 10**12) == min(300, fastest)
 
 
 def test_every_draw_is_the_optimum_of_its_own_parameters(model, result):

@@ -94,7 +94,12 @@ def run_uncertainty(
     seed: Annotated[int, typer.Option("--seed", min=0, help="Seed: same seed, same draws.")] = 1,
     workers: Annotated[
         int | None,
-        typer.Option("--workers", min=1, help="Run on a local Dask cluster of K processes."),
+        typer.Option(
+            "--workers",
+            min=1,
+            help="Run the draws on up to K threads of this process (no more than the idle "
+            "cores); same results as a serial run.",
+        ),
     ] = None,
     scheduler: Annotated[
         str | None,
@@ -212,15 +217,20 @@ def run_uncertainty(
                 rank_correlation=correlations,
                 progress=advance,
             )
-            if workers is None and scheduler is None:
-                result = analyse_uncertainty(loaded, draws, seed, **options)
+            if scheduler is None:
+                result = analyse_uncertainty(loaded, draws, seed, workers=workers, **options)
             else:
                 from caredecide.uncertainty.cluster import dask_client, dask_map
 
-                with dask_client(scheduler, workers, connect_timeout=connect_timeout) as client:
+                with dask_client(scheduler, connect_timeout=connect_timeout) as client:
                     result = analyse_uncertainty(
                         loaded, draws, seed, map_chunks=dask_map(client), **options
                     )
+        if workers is not None and result.threads < workers and not quiet:
+            stderr.print(
+                f"Ran on {result.threads} of the {workers} workers asked for: the other "
+                "cores were busy (a thread without a free core only slows the others)."
+            )
         tables = _tables(result, band_years)
         tables["strategy_means"] = result.strategy_summary(reference=reference)
         if population_per_year is not None:

@@ -74,12 +74,19 @@ from caredecide.chunks import (
     memory_budget,
     run_chunks,
     serial_map,
+    thread_map,
+    usable_threads,
 )
 from caredecide.compile import compile_model
 from caredecide.compiled import CompiledModel
-from caredecide.errors import ModelError, ModelTooLargeError, Problem
+from caredecide.errors import ModelError, ModelTooLargeError, Problem, RunOptionError
 from caredecide.evaluate import evaluate_policies
-from caredecide.limits import CHUNK_MEMORY_BYTES, WTP_SEARCH_MAX_WHEN_ZERO, default_memory_limit
+from caredecide.limits import (
+    CHUNK_MEMORY_BYTES,
+    PSA_CHUNK_BYTES,
+    WTP_SEARCH_MAX_WHEN_ZERO,
+    default_memory_limit,
+)
 from caredecide.model import Model
 from caredecide.objective import Objective
 from caredecide.options import check_scalar
@@ -306,9 +313,45 @@ class PSAJob:
         return solve_chunk(self.context, start, stop)
 
 
-def default_chunk_size(model, n_draws: int, memory_limit_bytes: int | None) -> int:
-    """Draws per chunk from the memory budget, a multiple of BLOCK_SIZE when possible."""
-    return chunk_size_for(model, n_draws, memory_limit_bytes, block=BLOCK_SIZE)
+@dataclass(frozen=True)
+class SolveDrawsJob:
+    """Draw, compile and solve draws ``start:stop``: ``(values, compiled, PolicyResult)``
+    (the pilot, before the candidates are known)."""
+
+    context: PSAContext
+
+    def __call__(self, start: int, stop: int) -> tuple[np.ndarray, CompiledModel, PolicyResult]:
+        return _solve_draws(self.context, start, stop)
+
+
+@dataclass(frozen=True)
+class EvaluateSolvedJob:
+    """Evaluate draws already solved (kept pilot pieces, by range); each piece is let go
+    once evaluated."""
+
+    context: PSAContext
+    solved: dict[tuple[int, int], tuple[np.ndarray, CompiledModel, PolicyResult]]
+
+    def __call__(self, start: int, stop: int) -> ChunkResult:
+        return _evaluate_chunk(self.context, *self.solved.pop((start, stop)), start, stop)
+
+
+def default_chunk_size(
+    model, n_draws: int, memory_limit_bytes: int | None, threads: int = 1
+) -> int:
+    """Draws per chunk: the fastest size (:data:`~caredecide.limits.PSA_CHUNK_BYTES`) or
+    the memory budget shared by ``threads`` chunks running at once, if that is less.
+
+    From one random-number block (BLOCK_SIZE) up it is a multiple of the block; under
+    one block it is the largest divisor of the block that fits, so chunks never straddle
+    blocks (each chunk draws one block's numbers at most).
+    """
+    budget = min(memory_budget(memory_limit_bytes) // max(threads, 1), PSA_CHUNK_BYTES)
+    size = chunk_size_for(model, n_draws, max(budget, 1), block=BLOCK_SIZE)
+    if size < min(BLOCK_SIZE, n_draws):
+        while BLOCK_SIZE % size:
+            size -= 1
+    return size
 
 
 def kept_bytes(n_draws: int, n_parameters: int, n_candidates: int, policy_cells: int = 0) -> int:
@@ -355,6 +398,8 @@ class PSAResult:
     wtp_grid : (W,) float
     fixed_parameters : tuple of str
         Parameters held at their base value in every draw (no distribution).
+    threads : int
+        Threads of this process that ran the chunks (1: serial).
     """
 
     n_draws: int
@@ -381,6 +426,7 @@ class PSAResult:
     messages: list[str]
     wtp_grid: np.ndarray
     fixed_parameters: tuple[str, ...] = ()
+    threads: int = 1
 
     # -- basic arrays -------------------------------------------------------------------
     @property
@@ -871,6 +917,7 @@ def analyse_uncertainty(
     n_frequent: int = DEFAULT_FREQUENT,
     keep_policies: bool = False,
     map_chunks: ChunkMap | None = None,
+    workers: int | None = None,
     progress: Callable[[int, int], None] | None = None,
     **solve_options,
 ) -> PSAResult:
@@ -910,6 +957,11 @@ def analyse_uncertainty(
         How chunks run (the one chunk driver, :mod:`caredecide.chunks`):
         :func:`~caredecide.chunks.serial_map` (default) or
         :func:`~caredecide.chunks.dask_map`. Must yield results in order.
+    workers : int, optional
+        Run the chunks (the pilot's too) on up to this many threads of this process
+        (:func:`~caredecide.chunks.thread_map`), as many as there are idle cores
+        (:func:`~caredecide.chunks.usable_threads`); not with ``map_chunks``. Default:
+        serial. The results are the same.
     progress : callable(done, total), optional
         Called after each chunk with draws done and ``n_draws``.
     **solve_options
@@ -928,8 +980,14 @@ def analyse_uncertainty(
     wtp_grid = _wtp_grid(objective, wtp_range, wtp_points)
     check_scalar(n_frequent, "n_frequent", int, min_val=0)
     limit = memory_budget(memory_limit_bytes)
+    threads = 1
+    if workers is not None:
+        if map_chunks is not None:
+            raise RunOptionError("workers", workers, "None when map_chunks is given")
+        threads = usable_threads(workers)
+    local_map = thread_map(threads)  # where this process's own chunks run
     if chunk_size is None:
-        chunk_size = default_chunk_size(model, n_draws, limit)
+        chunk_size = default_chunk_size(model, n_draws, limit, threads)
     else:
         chunk_size = check_scalar(chunk_size, "chunk_size", int, min_val=1)
     sampler = ParameterSampler.from_model(model, rank_correlation=rank_correlation)
@@ -963,23 +1021,27 @@ def analyse_uncertainty(
     )
     for strategy in [*default_strategies(base), *(strategies or ())]:
         named.append((strategy.name, ORIGIN_STRATEGY, resolve_strategy(base, strategy).policy))
-    # The pilot (first block) picks the frequent optima. When it fits the memory budget
-    # (or the chunk) it is solved once and evaluated after the candidate set is known;
-    # otherwise its policies are gathered chunk by chunk and its draws run again below.
+    # The pilot (first block) picks the frequent optima, solved chunk by chunk in this
+    # process. When it fits the memory budget (or one chunk) its solved chunks are kept and
+    # evaluated once the candidate set is known; otherwise only their policies are kept
+    # and its draws run again below.
     pilot_stop = min(n_draws, BLOCK_SIZE) if n_frequent else 0
-    pilot = None
+    pilot: dict[tuple[int, int], tuple[np.ndarray, CompiledModel, PolicyResult]] = {}
+    keep_pilot = chunk_size >= pilot_stop or pilot_stop * draw_bytes(model) <= limit
     if pilot_stop:
-        if chunk_size >= pilot_stop or pilot_stop * draw_bytes(model) <= limit:
-            pilot = _solve_draws(context, 0, pilot_stop)
-            pilot_policies = pilot[2].policy
-        else:
-            pilot_policies = np.concatenate(
-                [
-                    _solve_draws(context, a, b)[2].policy.astype(np.int8)
-                    for a, b in chunk_ranges(pilot_stop, chunk_size)
-                ]
-            )
-        policies = pilot_policies.reshape(pilot_stop, -1).astype(np.int8)
+        pilot_ranges = chunk_ranges(pilot_stop, chunk_size)
+        pieces = []
+        for (a, b), solved in zip(
+            pilot_ranges,
+            run_chunks(SolveDrawsJob(context), pilot_ranges, map_chunks=local_map),
+            strict=True,
+        ):
+            pieces.append(solved[2].policy.astype(np.int8))
+            if keep_pilot:
+                pilot[(a, b)] = solved
+            del solved
+        pilot_policies = np.concatenate(pieces)
+        policies = pilot_policies.reshape(pilot_stop, -1)
         distinct, _, counts = distinct_rows(policies)
         order = np.argsort(-counts, kind="stable")[:n_frequent]
         for rank, u in enumerate(order, start=1):
@@ -991,7 +1053,7 @@ def analyse_uncertainty(
                     policy,
                 )
             )
-        del pilot_policies, policies
+        del pilot_policies, policies, pieces
     candidates = _merge_candidates(named)
     context = replace(context, candidate_policies=np.stack([c.policy for c in candidates]))
     # The per-draw results grow with the draws (the chunks do not): refuse at once a run
@@ -1011,17 +1073,26 @@ def analyse_uncertainty(
 
     chunks: list[ChunkResult] = []
     done = 0
-    if pilot is not None:
-        chunks.append(_evaluate_chunk(context, *pilot, 0, pilot_stop))
-        del pilot
+    if pilot:
+        chunks += run_chunks(
+            EvaluateSolvedJob(context, pilot),
+            list(pilot),
+            map_chunks=local_map,
+            progress=progress,
+            total=n_draws,
+        )
         done = pilot_stop
-        if progress is not None:
-            progress(pilot_stop, n_draws)
     ranges = [(a + done, b + done) for a, b in chunk_ranges(n_draws - done, chunk_size)]
     chunks += run_chunks(
-        PSAJob(context), ranges, map_chunks=map_chunks, progress=progress, total=n_draws
+        PSAJob(context),
+        ranges,
+        map_chunks=map_chunks or local_map,
+        progress=progress,
+        total=n_draws,
     )
-    return _combine(chunks, context, candidates, base, wtp_grid, chunk_size)
+    result = _combine(chunks, context, candidates, base, wtp_grid, chunk_size)
+    result.threads = threads
+    return result
 
 
 ICER_BOOTSTRAP = 1000

@@ -178,10 +178,12 @@ def test_refuses_an_out_folder_that_cannot_be_made(model_file, tmp_path):
     assert "EVPI" not in result.stdout
 
 
-def test_local_dask_workers_give_the_serial_results(model_file, tmp_path):
-    # --workers starts a local cluster of worker processes on loopback (127.0.0.1). The
-    # first 1,000 draws are the pilot (run in the client); draws 1000-1149 go to Dask.
-    pytest.importorskip("distributed")
+def test_worker_threads_give_the_serial_results(model_file, tmp_path, monkeypatch):
+    # --workers runs the chunks on threads of this process (as many as there are idle
+    # cores; the rule is bypassed here so that two threads run on a busy machine too).
+    from caredecide.uncertainty import psa
+
+    monkeypatch.setattr(psa, "usable_threads", lambda requested: requested)
     serial = runner.invoke(
         app,
         [
@@ -198,7 +200,7 @@ def test_local_dask_workers_give_the_serial_results(model_file, tmp_path):
             str(tmp_path / "serial"),
         ],
     )
-    dask = runner.invoke(
+    threads = runner.invoke(
         app,
         [
             "uncertainty",
@@ -210,21 +212,32 @@ def test_local_dask_workers_give_the_serial_results(model_file, tmp_path):
             "--chunk-size",
             "70",
             "--workers",
-            "1",
+            "2",
             "--quiet",
             "--out",
-            str(tmp_path / "dask"),
+            str(tmp_path / "threads"),
         ],
     )
     assert serial.exit_code == 0, serial.output
-    assert dask.exit_code == 0, dask.output
+    assert threads.exit_code == 0, threads.output
     for name in ("draws.csv", "expected_loss.csv", "acceptability_by_cycle.csv", "evppi.csv"):
         pd.testing.assert_frame_equal(
-            pd.read_csv(tmp_path / "dask" / name), pd.read_csv(tmp_path / "serial" / name), obj=name
+            pd.read_csv(tmp_path / "threads" / name),
+            pd.read_csv(tmp_path / "serial" / name),
+            obj=name,
         )
-    summary = json.loads((tmp_path / "dask" / "summary.json").read_text())
+    summary = json.loads((tmp_path / "threads" / "summary.json").read_text())
     assert summary["evpi"] == json.loads((tmp_path / "serial" / "summary.json").read_text())["evpi"]
     assert summary["chunk_size"] == 70
+
+
+def test_workers_on_a_busy_machine_run_serially_and_say_so(model_file, monkeypatch):
+    from caredecide.uncertainty import psa
+
+    monkeypatch.setattr(psa, "usable_threads", lambda requested: 1)
+    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "20", "--workers", "2"])
+    assert result.exit_code == 0, result.output
+    assert "Ran on 1 of the 2 workers asked for" in " ".join(result.stderr.split())
 
 
 @pytest.mark.parametrize(
