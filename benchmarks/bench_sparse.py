@@ -2,14 +2,20 @@
 
 Not a test: prints times and peak memory measured in this run on this machine.
 
-Model: SYNTHETIC (invented numbers), stationary, 2 actions; each state moves to itself,
-a few states on, or to an absorbing state (4 to 5 non-zeros per row), one draw (the base
-case). Each form solves it in a fresh process (so its peak resident memory is its own):
-``solve(..., transition_form="dense")`` (compiled per-draw loops, dense LU) and
-``transition_form="sparse"`` (scipy.sparse CSR, sparse LU); ``"auto"`` must pick sparse.
-Policies and values must agree before a ratio is printed.
+Model: SYNTHETIC (invented numbers), 2 actions; each state moves to itself, a few states
+on, or to an absorbing state (4 to 5 non-zeros per row), one draw (the base case). Policy
+iteration is also run with a step back to the previous state in every row (the moves then
+form cycles, so the dense solver cannot solve by substitution and factorises); an
+infinite horizon (policy and value iteration) and a 60-cycle finite horizon whose
+transitions do not vary with the cycle (backward induction, then the cohort trace and
+totals of the optimal policy by ``evaluate_policy``). Each form solves it in a fresh
+process (so its peak resident memory is its own): ``solve(..., transition_form="dense")``
+(compiled loops on dense arrays) and ``transition_form="sparse"`` (scipy.sparse CSR);
+``"auto"`` must pick sparse. Policies must be identical (finite horizon; outside reported
+ties for the iterative methods) and values agree to 1e-10 relative (1e-6 for the iterative
+methods, whose stopping rule is 1e-10) before a ratio is printed.
 
-Run: python benchmarks/bench_sparse.py [--states 2000] [--repeats 3]
+Run: python benchmarks/bench_sparse.py [--states 2000] [--cycles 60] [--repeats 3]
 """
 
 from __future__ import annotations
@@ -31,13 +37,15 @@ from caredecide.compiled import CompiledModel
 from caredecide.objective import Objective
 from caredecide.solvers import solve
 
-S, A, form, method = {states}, 2, {form!r}, {method!r}
+S, A, form, method, cycles, back = {states}, 2, {form!r}, {method!r}, {cycles!r}, {back!r}
 rng = np.random.default_rng(11)
 P = np.zeros((1, 1, A, S, S))
 for a in range(A):
     for s in range(S - 1):
         targets = [s, min(s + 1, S - 2), min(s + 2, S - 2), min(s + 5, S - 2), S - 1]
         P[0, 0, a, s, targets] += rng.uniform(0.05, 1.0, 5) * [1.0, 0.4 / (a + 1), 0.2, 0.1, 0.03]
+        if back and s > 0:  # a step back (recovery): the moves then form cycles
+            P[0, 0, a, s, s - 1] += 0.05
 P[0, 0, :, S - 1, S - 1] = 1.0
 P /= P.sum(-1, keepdims=True)
 qaly = np.linspace(0.95, 0.2, S)
@@ -51,26 +59,35 @@ model = CompiledModel(
     transition=P, allowed=np.ones((S, A), bool), state_qaly=qaly[None, None].copy(),
     state_cost=np.zeros((1, 1, S)), decision_qaly=np.zeros((1, 1, S, A)),
     decision_cost=cost, life_years=(~absorbing).astype(float),
-    start_distribution=np.eye(S)[0], n_cycles=None, discount_outcomes=0.035,
+    start_distribution=np.eye(S)[0], n_cycles=cycles, discount_outcomes=0.035,
     discount_costs=0.035, absorbing=absorbing,
 )
 objective = Objective("net_benefit", 30000.0)
-solve(model.take_draws(slice(0, 1)), objective, method=method, transition_form=form)  # warm
+small = model.take_draws(slice(0, 1))
+solve(small, objective, method=method, transition_form=form)  # warm: load the loops
 start = time.process_time()
 result = solve(model, objective, method=method, transition_form=form)
 seconds = time.process_time() - start
+evaluation, trace = 0.0, []
+if cycles is not None:
+    from caredecide.evaluate import evaluate_policy
+    start = time.process_time()
+    outcome = evaluate_policy(model, result.policy, objective)
+    evaluation = time.process_time() - start
+    trace = outcome.trace[0, -1].tolist()
 print(json.dumps({{
-    "seconds": seconds, "form": result.transition_form, "iterations": result.iterations,
-    "policy": result.policy[0, 0].tolist(), "value": result.value[0, 0].tolist(),
-    "indifferent": result.indifferent[0, 0].tolist(),
+    "seconds": seconds, "evaluation": evaluation, "form": result.transition_form,
+    "iterations": result.iterations, "policy": result.policy[0].ravel().tolist(),
+    "value": result.value[0].ravel().tolist(),
+    "indifferent": result.indifferent[0].ravel().tolist(), "trace": trace,
     "nonzeros_per_row": float(np.count_nonzero(P) / (A * S)),
     "peak_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
 }}))
 """
 
 
-def run(states: int, form: str, method: str) -> dict:
-    code = CHILD.format(states=states, form=form, method=method)
+def run(states: int, form: str, method: str, cycles: int | None, back: bool) -> dict:
+    code = CHILD.format(states=states, form=form, method=method, cycles=cycles, back=back)
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
     if done.returncode:
         raise SystemExit(done.stderr[-2000:])
@@ -80,18 +97,26 @@ def run(states: int, form: str, method: str) -> dict:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--states", type=int, default=2000)
+    parser.add_argument("--cycles", type=int, default=60)
     parser.add_argument("--repeats", type=int, default=3)
     args = parser.parse_args()
     print("SYNTHETIC benchmark model (invented numbers); research use only.")
-    for method in ("policy_iteration", "value_iteration"):
-        runs = {"dense": [], "sparse": [], "auto": []}
+    cases = (
+        ("policy_iteration", None, False),
+        ("policy_iteration", None, True),
+        ("value_iteration", None, False),
+        ("backward_induction", args.cycles, False),
+    )
+    for method, cycles, back in cases:
+        runs: dict[str, list[dict]] = {"dense": [], "sparse": [], "auto": []}
         for _ in range(args.repeats):
             for form in runs:
-                runs[form].append(run(args.states, form, method))
+                runs[form].append(run(args.states, form, method, cycles, back))
         dense, sparse, auto = runs["dense"][0], runs["sparse"][0], runs["auto"][0]
         if auto["form"] != "sparse":
             raise SystemExit(f"auto picked {auto['form']}, expected sparse")
-        tied = set(i for i, t in enumerate(dense["indifferent"]) if t)
+        exact = cycles is not None  # backward induction: no stopping rule
+        tied = set() if exact else {i for i, t in enumerate(dense["indifferent"]) if t}
         differ = [
             i
             for i, (a, b) in enumerate(zip(dense["policy"], sparse["policy"], strict=True))
@@ -99,21 +124,37 @@ def main() -> None:
         ]
         gap = max(abs(a - b) for a, b in zip(dense["value"], sparse["value"], strict=True))
         scale = max(abs(a) for a in dense["value"])
-        if differ or gap > 1e-6 * scale:
-            raise SystemExit(f"{method}: forms disagree ({len(differ)} policies, value {gap:g})")
+        moved = max(
+            (abs(a - b) for a, b in zip(dense["trace"], sparse["trace"], strict=True)),
+            default=0.0,
+        )
+        if differ or gap > (1e-10 if exact else 1e-6) * scale or moved > 1e-12:
+            raise SystemExit(
+                f"{method}: forms disagree ({len(differ)} policies, value {gap:g}, trace {moved:g})"
+            )
         t = {form: statistics.median(r["seconds"] for r in rs) for form, rs in runs.items()}
+        e = {form: statistics.median(r["evaluation"] for r in rs) for form, rs in runs.items()}
         peak = {form: max(r["peak_mib"] for r in rs) for form, rs in runs.items()}
+        horizon = "infinite horizon" if cycles is None else f"{cycles} cycles"
+        kind = "with a step back (cyclic)" if back else "progressive (acyclic)"
         print(
-            f"\n== {method}: {args.states} states, 2 actions, one draw, "
+            f"\n== {method}: {args.states} states, 2 actions, {kind}, {horizon}, one draw, "
             f"{dense['nonzeros_per_row']:.1f} non-zeros per row (median of {args.repeats}) =="
         )
-        print(f"answers agree (max |value difference| {gap:.1e}, values up to {scale:.3g})")
+        print(
+            f"answers agree (policies {'identical' if exact else 'equal outside ties'}; max "
+            f"|value difference| {gap:.1e}, values up to {scale:.3g})"
+        )
         for form in runs:
-            print(
-                f"  {form:6s} {t[form]:8.3f} s CPU   peak {peak[form]:6.0f} MiB "
-                f"(process total)   used: {runs[form][0]['form']}"
-            )
-        print(f"  dense / sparse: {t['dense'] / t['sparse']:.1f}x (target >= 10x)")
+            line = f"  {form:6s} solve {t[form]:8.3f} s CPU"
+            if exact:
+                line += f"   trace + totals {e[form]:7.3f} s"
+            used = runs[form][0]["form"]
+            print(f"{line}   peak {peak[form]:6.0f} MiB (process total)   used: {used}")
+        print(f"  dense / sparse, solve: {t['dense'] / t['sparse']:.1f}x (target >= 10x)")
+        if exact:
+            base = (t["dense"] + e["dense"]) / (t["sparse"] + e["sparse"])
+            print(f"  dense / sparse, solve + trace + totals: {base:.1f}x")
     print("(machine shared with other jobs while measured: absolute times are noisy)")
 
 

@@ -80,6 +80,32 @@ def test_sparse_matches_dense_and_quantecon(method):
     assert (sparse.policy[0, 0][decided[0, 0]] == reference.sigma[decided[0, 0]]).all()
 
 
+@pytest.mark.parametrize("method", ["policy_iteration", "value_iteration"])
+def test_sparse_iterations_with_rewards_on_arrival_equal_dense(method):
+    # Trapezoid weights put half of each cycle's occupancy on arrival, so the reward per
+    # cycle holds an expectation over the sparse rows too (common practice: the storage
+    # form never changes the answer beyond the stopping tolerance); two draws, a masked
+    # action, net benefit with costs.
+    compiled = replace(
+        _finite_sparse_model(SPARSE_MIN_STATES + 15, 4, D=2),
+        n_cycles=None,
+        discount_costs=0.015,
+    )
+    objective = Objective("net_benefit", 25_000.0)
+    sparse = solve(compiled, objective, method=method, tolerance=1e-12)
+    dense = solve(compiled, objective, method=method, tolerance=1e-12, transition_form="dense")
+    assert sparse.transition_form == "sparse" and sparse.success
+    decided = ~sparse.indifferent & ~dense.indifferent & sparse.decision_states
+    np.testing.assert_array_equal(sparse.policy[decided], dense.policy[decided])
+    scale = np.abs(dense.value).max()
+    np.testing.assert_allclose(sparse.value, dense.value, rtol=0, atol=1e-9 * scale)
+    finite = np.isfinite(dense.q_values)
+    np.testing.assert_array_equal(finite, np.isfinite(sparse.q_values))
+    np.testing.assert_allclose(
+        sparse.q_values[finite], dense.q_values[finite], rtol=0, atol=1e-9 * scale
+    )
+
+
 def test_auto_picks_the_form_from_size_density_and_draws():
     small = _sparse_model(12).transition
     large = _sparse_model(SPARSE_MIN_STATES).transition

@@ -97,45 +97,56 @@ def _csr(rows: np.ndarray, block: int):
 
 
 def sparse_iterate(
-    P: np.ndarray,
-    R: np.ndarray,
+    compiled: CompiledModel,
+    objective: Objective,
     gamma: float,
     method: str,
     tolerance: float,
     relative: bool,
     max_iterations: int,
-) -> tuple[np.ndarray, int, np.ndarray, bool]:
+) -> tuple[int, np.ndarray, bool, np.ndarray]:
     """Policy or value iteration with sparse transitions, draw by draw.
+
+    Each draw's dense transitions are read once into CSR; its rewards per cycle
+    ``R[a, s] = now[s, a] + sum_s' P[a, s, s'] arrival[a, s']``
+    (:func:`caredecide.solvers.bellman.cycle_rewards`), its iterations and the action
+    values of its final values all use the sparse rows.
 
     Parameters
     ----------
-    P : (D, A, S, S) float
-        Dense transitions (read once per draw into CSR).
-    R : (D, A, S) float
-        Rewards per cycle, ``-inf`` where not allowed.
+    compiled : CompiledModel
+        Infinite horizon, stationary arrays.
+    objective : Objective
     gamma, method, tolerance, relative, max_iterations
         As in :func:`caredecide.solvers.stationary.solve_stationary`.
 
     Returns
     -------
-    v (D, S), iterations (largest over draws), residual (D,), converged (all draws)
+    iterations (largest over draws), residual (D,), converged (all draws), and Q
+    (D, S, A) the action values of the final values (``-inf`` where not allowed).
     """
-    D, S = R.shape[0], R.shape[2]
-    v = np.empty((D, S))
+    D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
+    now, arrival = cycle_rewards(compiled, objective, 0)  # (D, S, A), (D, A, S)
+    not_allowed = ~np.asarray(compiled.allowed, dtype=bool).T  # (A, S)
+    Q = np.empty((D, S, A))
     residual = np.empty(D)
     sweeps = np.zeros(D, dtype=int)
     done = np.zeros(D, dtype=bool)
     for d in range(D):
-        rows = _rows(P[d])
+        rows = _rows(compiled.transition[d, 0])
+        R = now[d].T.copy()
+        if arrival[d].any():  # rewards on arrival: each action's rows times its own vector
+            for a in range(A):
+                R[a] += rows[a * S : (a + 1) * S] @ arrival[d, a]
+        R[not_allowed] = -np.inf
         if method == "policy_iteration":
-            v[d], sweeps[d], residual[d], done[d] = _policy_iteration(
-                rows, R[d], gamma, max_iterations
-            )
+            v, sweeps[d], residual[d], done[d] = _policy_iteration(rows, R, gamma, max_iterations)
         else:
-            v[d], sweeps[d], residual[d], done[d] = _value_iteration(
-                rows, R[d], gamma, tolerance, relative, max_iterations
+            v, sweeps[d], residual[d], done[d] = _value_iteration(
+                rows, R, gamma, tolerance, relative, max_iterations
             )
-    return v, int(sweeps.max(initial=0)), residual, bool(done.all())
+        Q[d] = (R + gamma * (rows @ v).reshape(A, S)).T
+    return int(sweeps.max(initial=0)), residual, bool(done.all()), Q
 
 
 def _policy_values(rows, R: np.ndarray, gamma: float, policy: np.ndarray) -> np.ndarray:

@@ -295,6 +295,7 @@ def _per_draw(
     tolerance: float,
     relative: bool,
     max_iterations: int,
+    gamma: float,
 ) -> tuple[int, np.ndarray, bool, np.ndarray]:
     """Value or policy iteration by the compiled loops, one draw at a time.
 
@@ -305,10 +306,9 @@ def _per_draw(
 
     Returns
     -------
-    iterations, error bound (D,) on ``||v - v*||``, converged (every draw), and Q
+    iterations, residual (D,) of the last sweep, converged (every draw), and Q
     (D, S, A) the action values of the final values ``v`` (``-inf`` where not allowed).
     """
-    gamma = stationary_discount(compiled, objective)
     now, arrival = cycle_rewards(compiled, objective, 0)
     P = compiled.transition[:, 0]  # (D, A, S, S)
     if not P.flags.c_contiguous:
@@ -328,11 +328,9 @@ def _per_draw(
         loops.value_iteration(
             P, *rewards, tolerance, relative, max_iterations, v, residual, sweeps, done, Q
         )
-        bound = gamma * residual / (1.0 - gamma)
     else:
         loops.policy_iteration(P, *rewards, max_iterations, v, residual, sweeps, done, Q)
-        bound = residual / (1.0 - gamma)
-    return int(sweeps.max(initial=0)), bound, bool(done.all()), Q
+    return int(sweeps.max(initial=0)), residual, bool(done.all()), Q
 
 
 def solve_stationary(
@@ -373,21 +371,26 @@ def solve_stationary(
                 f"got method = {method!r}, record_history = {record_history}"
             )
         form = "dense"
-    if (
-        form == "dense"
-        and method in ("value_iteration", "policy_iteration")
+    gamma = stationary_discount(compiled, objective)
+    if form == "sparse":
+        iterations, residual, converged, Q = sparse_iterate(
+            compiled, objective, gamma, method, tolerance, relative, max_iterations
+        )
+    elif (
+        method in ("value_iteration", "policy_iteration")
         and not record_history
         and kernels.available()
     ):
-        iterations, bound, converged, Q = _per_draw(
-            compiled, objective, method, tolerance, relative, max_iterations
+        iterations, residual, converged, Q = _per_draw(
+            compiled, objective, method, tolerance, relative, max_iterations, gamma
         )
     else:
-        iterations, bound, converged, Q = _batched(
-            compiled, objective, method, form, history,
+        iterations, residual, converged, Q = _batched(
+            compiled, objective, method, history,
             tolerance=tolerance, relative=relative, max_iterations=max_iterations,
             evaluation_sweeps=evaluation_sweeps,
         )  # fmt: skip
+    bound = _error_bound(method, residual, gamma)
 
     # Greedy step on the final values: Q errors are at most gamma * bound, so gaps below
     # twice the bound are reported as ties rather than resolved by rounding.
@@ -428,21 +431,14 @@ def _batched(
     compiled: CompiledModel,
     objective: Objective,
     method: str,
-    form: str,
     history: list[SweepRecord] | None,
     **options,
 ) -> tuple[int, np.ndarray, bool, np.ndarray]:
-    """The numpy path (blocks of draws) or the sparse path; returns as :func:`_per_draw`."""
-    problem = StationaryProblem(compiled, objective)
+    """The numpy path in cache-sized blocks of draws; returns as :func:`_per_draw`."""
     tolerance, relative = options["tolerance"], options["relative"]
     max_iterations = options["max_iterations"]
-    if form == "sparse":
-        D, A, S = problem.shape
-        v, iterations, residual, converged = sparse_iterate(
-            problem.P.reshape(D, A, S, S), problem.R, problem.gamma, method,
-            tolerance, relative, max_iterations,
-        )  # fmt: skip
-    elif method == "value_iteration":
+    problem = StationaryProblem(compiled, objective)
+    if method == "value_iteration":
         v, iterations, residual, converged = _in_blocks(
             compiled, objective, problem, history,
             lambda part: value_iteration(
@@ -465,10 +461,17 @@ def _batched(
         )  # fmt: skip
     else:  # pragma: no cover - solve() checks the method
         raise SolverError(f"unknown stationary method {method!r}")
-    bound = (
-        residual / (1.0 - problem.gamma)
-        if method == "policy_iteration"
-        else problem.bound(residual)
-    )
     Q = problem.action_values(v).transpose(0, 2, 1).copy()  # (D, S, A)
-    return iterations, bound, converged, Q
+    return iterations, residual, converged, Q
+
+
+def _error_bound(method: str, residual: np.ndarray, gamma: float) -> np.ndarray:
+    """(D,) bound on ``||v - v*||`` (sup norm) from the last sweep's ``residual`` (D,).
+
+    Policy iteration, whose residual is the Bellman residual ``||T v - v||`` of the
+    evaluated policy: ``residual / (1 - gamma)``; value and modified policy iteration:
+    ``gamma * residual / (1 - gamma)`` (Puterman 1994, Theorem 6.3.1).
+    """
+    if method == "policy_iteration":
+        return residual / (1.0 - gamma)
+    return gamma * residual / (1.0 - gamma)
