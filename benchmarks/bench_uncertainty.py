@@ -5,10 +5,17 @@ Not a test: prints times measured in this run on this machine, and their ratios.
 1. The split (CPU seconds of one serial run, in a fresh process): imports, sampling,
    compile, solve, evaluate, value of information (EVPI, EVPPI), outputs (tables and
    charts written to a temporary folder), the rest; with the peak resident memory.
-2. Serial against ``--workers 2`` (wall and CPU seconds, fresh processes, interleaved).
+2. Serial against ``--workers 2`` (wall and CPU seconds, fresh processes, interleaved):
+   as the command runs it (threads only on idle cores, so on a busy machine it runs
+   serially) and with two threads forced whatever the load (what threads give).
 3. With ``--baseline PATH`` (a checkout of an older caredecide, e.g. from
-   ``git worktree add /tmp/old <commit>``), the same serial run of that version on its
-   own demo model (the demo file format changed since), in the same run, and the ratio.
+   ``git worktree add --detach /tmp/base16 d231d62``, main when issue 16 was filed), the
+   same serial run of that version on its own demo model (the demo file format changed
+   since), interleaved in the same run, and the ratio.
+
+Every process runs with one BLAS thread (``OPENBLAS_NUM_THREADS=1`` ...), the baseline's
+too, as the command line now sets by default: BLAS threads spinning on a shared machine
+would otherwise decide the times.
 
 Run: python benchmarks/bench_uncertainty.py [--draws 10000] [--repeats 3] [--baseline PATH]
 """
@@ -49,6 +56,14 @@ def timed(owner, name, step):
             split[step] = split.get(step, 0.0) + time.process_time() - begin
     setattr(owner, name, wrapper)
 
+if {force_threads!r}:
+    psa.usable_threads = lambda requested: requested
+analyse = psa.analyse_uncertainty
+def counting(*args, **kwargs):
+    result = analyse(*args, **kwargs)
+    split["threads"] = getattr(result, "threads", 1)
+    return result
+psa.analyse_uncertainty = counting
 if {split_steps!r}:
     timed(ParameterSampler, "draw", "sampling")
     timed(psa, "compile_model", "compile")
@@ -70,12 +85,20 @@ print(json.dumps(split))
 """
 
 
-def run_child(src: Path, draws: int, extra: list[str], split_steps: bool) -> dict[str, float]:
+ONE_BLAS_THREAD = {
+    name: "1" for name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
+}
+
+
+def run_child(
+    src: Path, draws: int, extra: list[str], split_steps: bool, force_threads: bool = False
+) -> dict[str, float]:
     """One fresh process; returns its split (CPU s), wall seconds and children's CPU."""
     with tempfile.TemporaryDirectory() as out:
         code = CHILD.format(
             src=str(src),
             split_steps=split_steps,
+            force_threads=force_threads,
             model=str(src / DEMO),
             draws=str(draws),
             out=out,
@@ -84,7 +107,11 @@ def run_child(src: Path, draws: int, extra: list[str], split_steps: bool) -> dic
         before = resource.getrusage(resource.RUSAGE_CHILDREN)
         start = time.perf_counter()
         done = subprocess.run(
-            [sys.executable, "-c", code], capture_output=True, text=True, cwd=str(src)
+            [sys.executable, "-c", code],
+            capture_output=True,
+            text=True,
+            cwd=str(src),
+            env={**os.environ, **ONE_BLAS_THREAD},
         )
         wall = time.perf_counter() - start
         after = resource.getrusage(resource.RUSAGE_CHILDREN)
@@ -123,38 +150,53 @@ def main() -> None:
 
     if args.split_only:
         return
-    runs: dict[str, list[dict[str, float]]] = {"serial": [], "--workers 2": []}
+    runs: dict[str, list[dict[str, float]]] = {
+        "serial": [],
+        "--workers 2": [],
+        "2 threads forced": [],
+    }
     if args.baseline:
         runs["baseline serial"] = []
+    loads = []
     for _ in range(args.repeats):
+        loads.append(os.getloadavg()[0])
         runs["serial"].append(run_child(ROOT, args.draws, [], False))
         runs["--workers 2"].append(run_child(ROOT, args.draws, ["--workers", "2"], False))
+        runs["2 threads forced"].append(
+            run_child(ROOT, args.draws, ["--workers", "2"], False, force_threads=True)
+        )
         if args.baseline:
             runs["baseline serial"].append(run_child(args.baseline, args.draws, [], False))
     print(f"\n== 2. fresh processes, interleaved, median of {args.repeats} ==")
     median = {
         name: {
-            key: statistics.median(r[key] for r in rs) for key in ("wall", "cpu_all", "peak_mib")
+            key: statistics.median(r.get(key, 1) for r in rs)
+            for key in ("wall", "cpu_all", "peak_mib", "threads")
         }
         for name, rs in runs.items()
     }
     for name, m in median.items():
+        threads = "" if name.startswith("baseline") else f"   threads {m['threads']:.0f}"
         print(
             f"  {name:16s} wall {m['wall']:7.2f} s   CPU (with its processes) "
-            f"{m['cpu_all']:7.2f} s   peak {m['peak_mib']:5.0f} MiB"
+            f"{m['cpu_all']:7.2f} s   peak {m['peak_mib']:5.0f} MiB{threads}"
         )
-    serial, workers = median["serial"], median["--workers 2"]
-    print(
-        f"  --workers 2 / serial: wall {workers['wall'] / serial['wall']:.2f}x "
-        "(target <= 1.00x; 2 cores shared with other jobs)"
-    )
+    serial = median["serial"]
+    for name in ("--workers 2", "2 threads forced"):
+        print(
+            f"  {name} / serial: wall {median[name]['wall'] / serial['wall']:.2f}x"
+            + (" (target <= 1.00x)" if name == "--workers 2" else "")
+        )
     if args.baseline:
         base = median["baseline serial"]
         print(
             f"  baseline / this (serial): wall {base['wall'] / serial['wall']:.2f}x, "
             f"CPU {base['cpu_all'] / serial['cpu_all']:.2f}x (target >= 4x)"
         )
-    print(f"(machine load while measured: {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores)")
+    print(
+        f"(machine load while measured: {min(loads):.1f} to {max(loads):.1f} on "
+        f"{os.cpu_count()} cores; other jobs share them)"
+    )
 
 
 if __name__ == "__main__":

@@ -8,12 +8,20 @@ stdout, progress and warnings to stderr (see :mod:`caredecide.cli.console`).
 from __future__ import annotations
 
 import importlib
+import os
 from typing import Annotated
 
-import typer
+# One BLAS thread unless the user chose otherwise (set before numpy loads its BLAS): the
+# matrices of a command are small (a model's states, a spline basis), where BLAS threads
+# cost more in waiting than they save - on a busy machine ten times the work of a
+# value-of-information fit - and the chunk threads of --workers would multiply them.
+for _variable in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_variable, "1")
 
-from caredecide import __version__
-from caredecide.cautions import CAUTION_SHORT
+import typer  # noqa: E402
+
+from caredecide import __version__  # noqa: E402
+from caredecide.cautions import CAUTION_SHORT  # noqa: E402
 
 # Add a sub-command: write caredecide/cli/<name>.py with register(app), then list it here.
 COMMAND_MODULES: tuple[str, ...] = (
