@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import csv
+import io
 import json
 import math
 from pathlib import Path
@@ -363,6 +365,51 @@ def _tables(result, band_years: float) -> dict[str, pd.DataFrame]:
     }
 
 
+FAST_CSV_ROWS = 2000
+"""Tables of numbers with at least this many rows (the draws) go through Arrow's writer."""
+
+
+def _write_csv(frame: pd.DataFrame, path: Path) -> None:
+    """``frame.to_csv(path, index=False)``, faster for a long table of numbers only.
+
+    Such a table (``draws.csv``: one row per draw) is written by Arrow's CSV writer,
+    several times faster than pandas. Each float is written as the shortest text that
+    reads back as the same float64, as pandas writes it (a whole number keeps its
+    ``.0``; NaN is an empty field), with one difference of form only: very small or very
+    large numbers may be written ``1e-7`` or ``2.5e+15`` where pandas writes ``1e-07``
+    or ``2500000000000000.0``. The values read back are the same.
+    """
+    numeric = all(dtype.kind in "iuf" for dtype in frame.dtypes)
+    try:
+        import pyarrow as pa
+        import pyarrow.compute as pc
+        import pyarrow.csv as pa_csv
+    except ImportError:
+        numeric = False
+    if len(frame) < FAST_CSV_ROWS or not numeric:
+        frame.to_csv(path, index=False)
+        return
+    columns = []
+    for name in frame.columns:
+        values = pa.array(frame[name].to_numpy())
+        if frame[name].dtype.kind == "f":
+            text = pc.cast(values, pa.string())
+            # '55' -> '55.0' (as pandas writes it); '1e-07', 'nan', 'inf' stay as they are.
+            whole = pc.invert(pc.match_substring_regex(text, r"[.eni]"))
+            text = pc.if_else(whole, pc.binary_join_element_wise(text, ".0", ""), text)
+            values = pc.if_else(pc.is_nan(values), pa.scalar(None, pa.string()), text)
+        columns.append(values)
+    header = io.StringIO()
+    csv.writer(header, lineterminator="\n").writerow(frame.columns)
+    with path.open("wb") as file:
+        file.write(header.getvalue().encode("utf-8"))
+        pa_csv.write_csv(
+            pa.table(columns, names=[f"c{i}" for i in range(len(columns))]),
+            file,
+            pa_csv.WriteOptions(include_header=False, quoting_style="none"),
+        )
+
+
 def _write_outputs(
     out: Path,
     result,
@@ -387,7 +434,7 @@ def _write_outputs(
         parquet = False
     for name, frame in tables.items():
         path = out / f"{name}.csv"
-        frame.to_csv(path, index=False)
+        _write_csv(frame, path)
         written.append(path)
         if parquet:
             frame.to_parquet(out / f"{name}.parquet", index=False)

@@ -46,3 +46,36 @@ def test_unknown_reference_is_a_clear_error():
     )
     assert result.exit_code == 2
     assert "reference" in result.stderr and "nope" in result.stderr
+
+
+def test_long_tables_of_numbers_read_back_as_pandas_writes_them(tmp_path):
+    # draws.csv goes through Arrow's CSV writer: every value must read back exactly as
+    # from pandas' own CSV (shortest round-trip text of a float64: common practice),
+    # ordinary numbers in the very same text; short or text tables stay with pandas.
+    import numpy as np
+
+    from caredecide.cli.uncertainty import FAST_CSV_ROWS, _write_csv
+
+    rng = np.random.default_rng(3)
+    edges = [0.0, -0.0, 55.0, np.nan, np.inf, -np.inf, 1e-7, 2.5e15, 0.1, 1 / 3]
+    frame = pd.DataFrame(
+        {
+            "draw": np.arange(FAST_CSV_ROWS),
+            "edges": np.resize(edges, FAST_CSV_ROWS),
+            "cost: a, b": rng.gamma(2.0, 900.0, FAST_CSV_ROWS),
+            "whole": 3.0,
+        }
+    )
+    _write_csv(frame, tmp_path / "fast.csv")
+    frame.to_csv(tmp_path / "pandas.csv", index=False)
+    pd.testing.assert_frame_equal(
+        pd.read_csv(tmp_path / "fast.csv"), pd.read_csv(tmp_path / "pandas.csv"), check_exact=True
+    )
+    ordinary = frame.drop(columns="edges")
+    _write_csv(ordinary, tmp_path / "fast.csv")
+    ordinary.to_csv(tmp_path / "pandas.csv", index=False)
+    assert (tmp_path / "fast.csv").read_text() == (tmp_path / "pandas.csv").read_text()
+    assert (tmp_path / "fast.csv").read_text().startswith('draw,"cost: a, b",whole\n0,')
+    short = frame.head(5).assign(label="x")
+    _write_csv(short, tmp_path / "short.csv")
+    assert (tmp_path / "short.csv").read_text() == short.to_csv(index=False)
