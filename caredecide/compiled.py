@@ -265,8 +265,11 @@ def _value_problems(c: CompiledModel) -> list[str]:
             f"start_distribution sums to {float(start.sum())!r}; expected shares >= 0 summing to 1"
         )
     # One reduction over the transitions: rows of allowed (state, action) pairs sum to 1.
-    # einsum sums the short last axis several times faster than ndarray.sum.
-    gap = np.abs(np.einsum("...k->...", c.transition) - 1.0)  # (D, Tp, A, S)
+    # einsum sums the short last axis several times faster than ndarray.sum; the gap is
+    # formed in place (one (D, Tp, A, S) array at the compile peak, not two).
+    gap = np.einsum("...k->...", c.transition)  # (D, Tp, A, S) row sums
+    gap -= 1.0
+    np.abs(gap, out=gap)
     bad = ~(gap <= ROW_SUM_TOLERANCE) & allowed.T[None, None]
     if bad.any():
         d, t, a, s = (int(i) for i in np.argwhere(bad)[0])

@@ -34,6 +34,8 @@ from caredecide.conversions import _distinct_rows, _generator_exponential, _stat
 EXPONENTIAL_BLOCK = 1 << 15
 """Generators exponentiated at once: bounds the work arrays (the generators, their
 exponentials) whatever the number of draws and cycles."""
+SMALL_BLOCK = 32
+"""Blocks of at most this many states are written into the rows column by column."""
 STEADY_ROUND_OFF = 8 * np.finfo(float).eps
 """Rates that remain after the common exit is taken out count as the same in two cycles
 when they differ by at most this, relative to the rates they came from (the subtraction
@@ -123,6 +125,7 @@ def fill_rate_rows(
     if not any(mu.any() for mu in exit_rates):
         exits, exit_rates = [], []
     inverse: np.ndarray | None = None  # (D Tp,) column of each (draw, cycle); None: itself
+    per_draw = False  # every draw's remaining rates the same in every cycle
     if exits:
         remaining = rates.copy()
         for e, mu in zip(exits, exit_rates, strict=True):
@@ -130,6 +133,7 @@ def fill_rate_rows(
         steady = _steady_draws(remaining, rates)
         if steady.any():
             columns, inverse = _picked_columns(remaining, steady)
+            per_draw = bool(steady.all())
         else:  # nothing to gain: every draw's remaining rates change with the cycle
             exits, exit_rates = [], []
         del remaining
@@ -148,16 +152,41 @@ def fill_rate_rows(
         cycle_years,
         method,
     )  # (N, n_rows, K)
-    factored = {e.action: (position[e.target], mu) for e, mu in zip(exits, exit_rates, strict=True)}
+    if per_draw and inverse is not None:  # a draw's cycles share one exponential
+        inverse = inverse.reshape(n_draws, tp)[:, 0]  # gather by draw only
+    factored = {
+        e.action: (position[e.target], np.exp(-mu * cycle_years), -np.expm1(-mu * cycle_years))
+        for e, mu in zip(exits, exit_rates, strict=True)
+    }  # (k's block index, exp(-mu h), 1 - exp(-mu h)), (D, Tp) each
     for r, (p, s) in enumerate(rows.T):
-        values = block[:, r] if inverse is None else block[inverse, r]  # (D Tp, K)
-        if p in factored:
-            k, mu = factored[p]
-            gone = -np.expm1(-mu.ravel() * cycle_years)  # (D Tp,) 1 - exp(-mu h)
-            values *= (1.0 - gone)[:, None]
-            values[:, k] = np.minimum(values[:, k] + gone, 1.0)
-        P[:, :, actions[p], s, :] = 0.0
-        P[:, :, actions[p], s, kept] = values.reshape(n_draws, tp, kept.size)
+        source = block[:, r] if inverse is None else block[inverse, r]  # (D or D Tp, K)
+        source = source.reshape(n_draws, 1 if per_draw else tp, kept.size)
+        row = P[:, :, actions[p], s, :]  # (D, Tp, S), a view
+        row[...] = 0.0
+        if p not in factored:
+            _scatter_columns(row, kept, source)
+            continue
+        k, alive, gone = factored[p]
+        _scatter_columns(row, kept, source, alive)
+        into_k = row[:, :, kept[k]]
+        into_k += gone  # 1 - exp(-mu h) + exp(-mu h) expm(h G0)[i, k]
+        np.minimum(into_k, 1.0, out=into_k)
+
+
+def _scatter_columns(
+    row: np.ndarray, kept: np.ndarray, source: np.ndarray, scale: np.ndarray | None = None
+) -> None:
+    """``row[:, :, kept] = source * scale[:, :, None]`` (``row`` (D, Tp, S), ``source``
+    (D, Tp or 1, K), ``scale`` (D, Tp) or None), one column at a time for a small block
+    (strided writes beat a scattered one)."""
+    if kept.size > SMALL_BLOCK:
+        row[:, :, kept] = source if scale is None else source * scale[:, :, None]
+        return
+    for c, j in enumerate(kept):
+        if scale is None:
+            row[:, :, j] = source[:, :, c]
+        else:
+            np.multiply(source[:, :, c], scale, out=row[:, :, j])
 
 
 def _exponentiate(
