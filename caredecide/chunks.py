@@ -300,7 +300,9 @@ def join_results(pieces: Sequence[PolicyResult]) -> PolicyResult:
         return pieces[0]
     failing = [p for p in pieces if not p.success]
     joined: dict[str, Any] = {
-        f: np.concatenate([getattr(p, f) for p in pieces]) for f in _RESULT_DRAW_FIELDS
+        f: np.concatenate([getattr(p, f) for p in pieces])
+        for f in _RESULT_DRAW_FIELDS
+        if getattr(pieces[0], f) is not None  # None: solved with action_values=False
     }
     return replace(
         pieces[0],

@@ -126,12 +126,13 @@ class CompiledModel:
     def __post_init__(self) -> None:
         self.check()
 
-    def check(self) -> None:
+    def check(self, rows: bool = True) -> None:
         """Check the contract of the module docstring; raise listing every finding.
 
         Shapes agree with ``S`` states and ``A`` actions (time axes of length 1 or the
         horizon), every state allows at least one action, the start distribution and
-        every transition row sum to 1 (within :data:`ROW_SUM_TOLERANCE`).
+        every transition row sum to 1 (within :data:`ROW_SUM_TOLERANCE`). ``rows=False``
+        leaves out the transition rows (a solver that checks them as it reads them).
 
         Raises
         ------
@@ -139,7 +140,7 @@ class CompiledModel:
         """
         problems = _shape_problems(self)
         if not problems:
-            problems = _value_problems(self)
+            problems = _value_problems(self, rows)
         if problems:
             raise CompiledModelError("compiled model is inconsistent: " + "; ".join(problems))
 
@@ -252,7 +253,7 @@ def _shape_problems(c: CompiledModel) -> list[str]:
     return problems
 
 
-def _value_problems(c: CompiledModel) -> list[str]:
+def _value_problems(c: CompiledModel, rows: bool = True) -> list[str]:
     """Rows that do not sum to 1, states with no allowed action."""
     problems = []
     allowed = np.asarray(c.allowed, dtype=bool)
@@ -264,6 +265,8 @@ def _value_problems(c: CompiledModel) -> list[str]:
         problems.append(
             f"start_distribution sums to {float(start.sum())!r}; expected shares >= 0 summing to 1"
         )
+    if not rows:
+        return problems
     # One reduction over the transitions: rows of allowed (state, action) pairs sum to 1.
     # einsum sums the short last axis several times faster than ndarray.sum; the gap is
     # formed in place (one (D, Tp, A, S) array at the compile peak, not two).
@@ -273,12 +276,17 @@ def _value_problems(c: CompiledModel) -> list[str]:
     bad = ~(gap <= ROW_SUM_TOLERANCE) & allowed.T[None, None]
     if bad.any():
         d, t, a, s = (int(i) for i in np.argwhere(bad)[0])
-        problems.append(
-            f"transition row of state {c.state_ids[s]!r} under action {c.action_ids[a]!r} "
-            f"(draw {d}, cycle {t}) sums to {1.0 + float(c.transition[d, t, a, s].sum() - 1.0)!r}; "
-            "expected 1"
-        )
+        problems.append(row_problem(c, d, t, a, s))
     return problems
+
+
+def row_problem(c: CompiledModel, d: int, t: int, a: int, s: int) -> str:
+    """The finding for the transition row ``(d, t, a, s)`` that does not sum to 1."""
+    return (
+        f"transition row of state {c.state_ids[s]!r} under action {c.action_ids[a]!r} "
+        f"(draw {d}, cycle {t}) sums to {1.0 + float(c.transition[d, t, a, s].sum() - 1.0)!r}; "
+        "expected 1"
+    )
 
 
 def cycle_weights(

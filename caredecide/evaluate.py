@@ -22,7 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from caredecide.compiled import STATIONARY_METHODS, CompiledModel
+from caredecide.compiled import ROW_SUM_TOLERANCE, STATIONARY_METHODS, CompiledModel
 from caredecide.limits import DISPLAY_CAP  # (re-exported) at most this many cycles shown
 from caredecide.objective import Objective
 from caredecide.solvers import kernels
@@ -31,7 +31,10 @@ from caredecide.solvers.bellman import (
     check_compiled,
     combine,
     cycle_parts,
+    kernel_arrays,
+    raise_bad_row,
     transition_at,
+    weight_table,
 )
 from caredecide.solvers.finite import terminal_present_value
 from caredecide.solvers.result import summary_repr
@@ -230,7 +233,8 @@ def evaluate_policy(
     -------
     PolicyOutcome
     """
-    check_compiled(compiled)
+    fused = compiled.n_cycles is not None and kernels.available()
+    check_compiled(compiled, rows=not fused)  # the fused loop checks the rows it reads
     policy = check_policy(compiled, policy)
     if compiled.n_cycles is None:
         return _evaluate_infinite(compiled, policy[:, 0], objective)
@@ -238,20 +242,14 @@ def evaluate_policy(
 
 
 def _evaluate_finite(compiled, policy, objective, terminal_value) -> PolicyOutcome:
+    if kernels.available():  # trace and flows fused; the chosen rows gathered
+        return _kernel_outcomes(compiled, [policy], objective, terminal_value)[0]
     D, S, T = compiled.n_draws, compiled.n_states, compiled.n_cycles
     trace = np.empty((D, T + 1, S))
-    if kernels.available():  # gathers the chosen rows; no policy matrices are built
-        kernels.kernels().cohort_trace(
-            np.ascontiguousarray(compiled.transition),
-            np.ascontiguousarray(policy, dtype=np.intp),
-            np.ascontiguousarray(compiled.start_distribution, dtype=float),
-            trace,
-        )
-    else:
-        trace[:, 0] = compiled.start_distribution
-        for t in range(T):
-            P_pi = _policy_transition(transition_at(compiled, t), policy[:, t])
-            trace[:, t + 1] = (trace[:, t, None, :] @ P_pi)[:, 0]
+    trace[:, 0] = compiled.start_distribution
+    for t in range(T):
+        P_pi = _policy_transition(transition_at(compiled, t), policy[:, t])
+        trace[:, t + 1] = (trace[:, t, None, :] @ P_pi)[:, 0]
     flows = _finite_flows(compiled, policy, trace)
     totals = {name: flow.sum(axis=1) for name, flow in flows.items()}
     terminal = np.einsum(
@@ -261,15 +259,13 @@ def _evaluate_finite(compiled, policy, objective, terminal_value) -> PolicyOutco
 
 
 def _finite_flows(compiled, policy, trace) -> dict[str, np.ndarray]:
-    """Discounted and undiscounted flows of each cycle (index t; the last entry 0)."""
+    """Discounted and undiscounted flows of each cycle (index t; the last entry 0), numpy."""
     D, T = compiled.n_draws, compiled.n_cycles
     flows = {
         f"{name}{suffix}": np.zeros((D, T + 1))
         for name in _QUANTITIES
         for suffix in ("", "_undiscounted")
     }
-    if kernels.available():
-        return _kernel_flows(compiled, [policy], [trace])[0]
     for t in range(T):
         m = trace[:, t]
         P_pi = _policy_transition(transition_at(compiled, t), policy[:, t])
@@ -281,32 +277,56 @@ def _finite_flows(compiled, policy, trace) -> dict[str, np.ndarray]:
     return flows
 
 
-def _kernel_flows(compiled, policies, traces) -> list[dict[str, np.ndarray]]:
-    """Flows of several policies (each (D, T, S) with its trace), compiled loops.
+def _compact_policy(policy: np.ndarray) -> np.ndarray:
+    """A checked (D, T, S) policy as (Dk, T, S) int32, Dk = 1 when every draw shares it."""
+    if policy.shape[0] > 1 and policy.strides[0] == 0:  # broadcast from one policy
+        policy = policy[:1]
+    return np.ascontiguousarray(policy, dtype=np.int32)
 
-    The rewards of each cycle (:func:`caredecide.solvers.bellman.cycle_parts`) do not
-    depend on the policy: they are built once per cycle for all the policies; the chosen
-    transition rows are gathered as they are used (no policy matrices).
+
+def _kernel_outcomes(compiled, policies, objective, terminal_value) -> list[PolicyOutcome]:
+    """Outcomes of checked policies (each (D, T, S)) by one compiled pass over the draws.
+
+    Each draw's transitions are read once for all the policies; the cohort, the chosen
+    rows and each cycle's rewards (the arithmetic of
+    :func:`caredecide.solvers.bellman.cycle_parts`) are fused; no policy matrix is built.
     """
-    D, T = compiled.n_draws, compiled.n_cycles
+    D, S, T = compiled.n_draws, compiled.n_states, compiled.n_cycles
+    compact = [_compact_policy(policy) for policy in policies]
+    sizes = np.array([p.size for p in compact], dtype=np.int64)
+    offsets = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64)
+    weights = np.concatenate(
+        np.broadcast_arrays(weight_table(compiled), weight_table(compiled, discount=False)),
+        axis=-1,
+    )
+    traces = np.empty((len(policies), D, T + 1, S))
+    flows = np.zeros((len(policies), 2 * len(_QUANTITIES), D, T + 1))
+    bad = np.full(4, -1, dtype=np.int64)
+    kernels.kernels().evaluate_policies(
+        *kernel_arrays(compiled),
+        np.ascontiguousarray(compiled.life_years, dtype=float),
+        np.ascontiguousarray(weights),
+        np.concatenate([p.ravel() for p in compact]),
+        offsets,
+        np.array([p.shape[0] for p in compact], dtype=np.int64),
+        np.ascontiguousarray(compiled.start_distribution, dtype=float),
+        ROW_SUM_TOLERANCE,
+        bad,
+        traces,
+        flows,
+    )
+    raise_bad_row(compiled, bad)
     names = [f"{n}{suffix}" for suffix in ("", "_undiscounted") for n in _QUANTITIES]
-    flows = [{name: np.zeros((D, T + 1)) for name in names} for _ in policies]
-    P = np.ascontiguousarray(compiled.transition)
-    chosen = [np.ascontiguousarray(policy, dtype=np.intp) for policy in policies]
-    out = np.empty((len(names), D))
-    for t in range(T):
-        both = [cycle_parts(compiled, t, discount, life_years=True) for discount in (True, False)]
-        parts = [by_name[name] for by_name in both for name in _QUANTITIES]
-        at_decision = np.stack([np.broadcast_to(p[0], p[0].shape) for p in parts])
-        on_arrival = np.stack([p[1] for p in parts])
-        for policy, trace, flow in zip(chosen, traces, flows, strict=True):
-            kernels.kernels().cycle_flows(
-                P, min(t, P.shape[1] - 1), policy, min(t, policy.shape[1] - 1), trace, t,
-                at_decision, on_arrival, out,
-            )  # fmt: skip
-            for k, name in enumerate(names):
-                flow[name][:, t] = out[k]
-    return flows
+    terminal_part = terminal_present_value(compiled, objective, terminal_value)
+    outcomes = []
+    for trace, flow in zip(traces, flows, strict=True):
+        by_name = dict(zip(names, flow, strict=True))
+        totals = {name: f.sum(axis=1) for name, f in by_name.items()}
+        terminal = np.einsum("ds,ds->d", trace[:, T], terminal_part)
+        outcomes.append(
+            _outcome(compiled, objective, trace, totals, by_name, terminal, compiled.ages(), True)
+        )
+    return outcomes
 
 
 def evaluate_policies(
@@ -318,37 +338,18 @@ def evaluate_policies(
 ) -> list[PolicyOutcome]:
     """:func:`evaluate_policy` for several policies of the same compiled model.
 
-    The same outcomes as one call per policy; a finite horizon builds each cycle's
-    rewards once for all the policies (what a probabilistic analysis of several
-    candidate policies needs).
+    The same outcomes as one call per policy; with the compiled loops, a finite horizon
+    reads each draw's transitions once for all the policies (what a probabilistic
+    analysis of several candidate policies needs).
     """
     if compiled.n_cycles is None or not kernels.available() or len(policies) < 2:
         return [
             evaluate_policy(compiled, policy, objective, terminal_value=terminal_value)
             for policy in policies
         ]
-    check_compiled(compiled)
-    T = compiled.n_cycles
+    check_compiled(compiled, rows=False)  # the fused loop checks the rows it reads
     checked = [check_policy(compiled, policy) for policy in policies]
-    traces = []
-    for policy in checked:
-        trace = np.empty((compiled.n_draws, T + 1, compiled.n_states))
-        kernels.kernels().cohort_trace(
-            np.ascontiguousarray(compiled.transition),
-            np.ascontiguousarray(policy, dtype=np.intp),
-            np.ascontiguousarray(compiled.start_distribution, dtype=float),
-            trace,
-        )
-        traces.append(trace)
-    terminal_part = terminal_present_value(compiled, objective, terminal_value)
-    outcomes = []
-    for trace, flows in zip(traces, _kernel_flows(compiled, checked, traces), strict=True):
-        totals = {name: flow.sum(axis=1) for name, flow in flows.items()}
-        terminal = np.einsum("ds,ds->d", trace[:, T], terminal_part)
-        outcomes.append(
-            _outcome(compiled, objective, trace, totals, flows, terminal, compiled.ages(), True)
-        )
-    return outcomes
+    return _kernel_outcomes(compiled, checked, objective, terminal_value)
 
 
 def _evaluate_infinite(compiled, policy, objective) -> PolicyOutcome:

@@ -525,7 +525,7 @@ def check_no_effect_ties(model: Model, objective: Objective) -> tuple[str, str]:
         both = np.asarray(solved.compiled.allowed)[:, [0, a]].all(axis=1) & ~np.asarray(
             solved.compiled.absorbing, dtype=bool
         )
-        q = r.q_values[..., both, :]
+        q = np.asarray(r.q_values)[..., both, :]  # solved with action values kept
         w, o = _deviation(q[..., a], q[..., 0])
         worst, ok = max(worst, w), ok and o
         flagged = flagged and bool(r.indifferent[..., both].all())

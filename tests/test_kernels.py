@@ -239,3 +239,155 @@ def test_several_policies_at_once_equal_one_at_a_time():
         np.testing.assert_array_equal(outcome.trace, alone.trace)
         for name in ("qalys", "costs", "life_years", "value", "costs_undiscounted"):
             np.testing.assert_array_equal(getattr(outcome, name), getattr(alone, name))
+
+
+def _every_term(rng, D, T, S, A, method, time_axis, per_draw_rates):
+    """A finite model using every reward term: decision-time moves, state-action rewards,
+    one-off charges, state rewards, with time axes of length 1 or T and per-draw rates."""
+    Tt = T if time_axis == "T" else 1
+    P = rng.dirichlet(np.ones(S), size=(D, Tt, A, S))
+    move = rng.dirichlet(np.ones(S) * 0.3, size=(D, Tt, A, S))
+    move[:, :, 0] = np.eye(S)  # the first action moves no one
+    transition = np.einsum("dtasj,dtajk->dtask", move, P)
+    compiled = make_compiled(
+        transition,
+        move=move,
+        state_qaly=rng.uniform(0, 1, (D, Tt, S)),
+        state_cost=rng.uniform(0, 100, (D, Tt, S)),
+        state_action_qaly=rng.uniform(-0.2, 0.1, (D, Tt, S, A)),
+        state_action_cost=rng.uniform(0, 80, (D, Tt, S, A)),
+        decision_qaly=rng.uniform(-0.1, 0, (D, Tt, S, A)),
+        decision_cost=rng.uniform(0, 50, (D, Tt, S, A)),
+        n_cycles=T,
+        start_distribution=rng.dirichlet(np.ones(S)),
+        discount_outcomes=0.03,
+        discount_costs=0.05,
+        within_cycle=method,
+        absorbing=np.zeros(S, bool),
+    )
+    if per_draw_rates:
+        from dataclasses import replace
+
+        compiled = replace(
+            compiled,
+            discount_outcomes=rng.uniform(0, 0.06, D),
+            discount_costs=rng.uniform(0, 0.06, D),
+        )
+    return compiled
+
+
+@settings(max_examples=25, deadline=None)
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    D=st.integers(1, 3),
+    T=st.integers(1, 7),
+    S=st.integers(1, 5),
+    A=st.integers(1, 3),
+    method=st.sampled_from(["start", "end", "trapezoid", "simpson", "half_cycle"]),
+    time_axis=st.sampled_from(["1", "T"]),
+    per_draw_rates=st.booleans(),
+    kind=st.sampled_from(["qalys", "net_benefit"]),
+)
+def test_fused_rewards_equal_the_numpy_cycle_parts(
+    seed, D, T, S, A, method, time_axis, per_draw_rates, kind
+):
+    # The kernels build each cycle's rewards inside the loop; bellman.cycle_parts (numpy)
+    # is the reference arithmetic (common practice: a compiled loop checked against the
+    # vectorised version it replaces). Every term is present: moves, state-action and
+    # decision rewards, each within-cycle method, per-draw discount rates.
+    compiled = _every_term(np.random.default_rng(seed), D, T, S, A, method, time_axis,
+                           per_draw_rates)  # fmt: skip
+    objective = Objective(kind, 1000.0) if kind == "net_benefit" else Objective("qalys")
+    fast = solve(compiled, objective)
+    plain = _numpy_path(solve, compiled, objective)
+    decided = ~fast.indifferent & ~plain.indifferent & fast.decision_states
+    np.testing.assert_array_equal(fast.policy[decided], plain.policy[decided])
+    np.testing.assert_allclose(fast.value, plain.value, rtol=1e-12, atol=1e-10)
+    np.testing.assert_allclose(fast.q_values, plain.q_values, rtol=1e-12, atol=1e-10)
+    lean = solve(compiled, objective, action_values=False)
+    np.testing.assert_array_equal(lean.policy, fast.policy)
+    np.testing.assert_array_equal(lean.value, fast.value)
+    np.testing.assert_array_equal(lean.indifferent, fast.indifferent)
+
+    fast_out = evaluate_policy(compiled, fast.policy, objective)
+    plain_out = _numpy_path(evaluate_policy, compiled, fast.policy, objective)
+    np.testing.assert_allclose(fast_out.trace, plain_out.trace, rtol=0, atol=1e-14)
+    for name in ("qalys", "costs", "life_years"):
+        for suffix in ("", "_undiscounted"):
+            np.testing.assert_allclose(
+                getattr(fast_out, name + suffix), getattr(plain_out, name + suffix),
+                rtol=1e-12, atol=1e-10, err_msg=name + suffix,
+            )  # fmt: skip
+        np.testing.assert_allclose(fast_out.flows[name], plain_out.flows[name], rtol=1e-12,
+                                   atol=1e-10)  # fmt: skip
+    # The policy's own totals are the solver's value of the cohort (Puterman 1994,
+    # section 4.2: the value of a policy is its expected total reward).
+    np.testing.assert_allclose(
+        fast_out.value, fast.value[:, 0] @ compiled.start_distribution, rtol=1e-11
+    )
+
+
+def test_weight_table_holds_the_factors_of_cycle_parts():
+    # One definition of the within-cycle and discount factors: the table the kernels read
+    # equals, cycle by cycle, what bellman.cycle_parts applies (common practice).
+    from caredecide.solvers.bellman import _discount_power, _weights_at, weight_table
+
+    rng = np.random.default_rng(5)
+    for method in ("start", "end", "trapezoid", "simpson", "half_cycle"):
+        for rates in ((0.03, 0.05), (rng.uniform(0, 0.1, 3), 0.04)):
+            compiled = _every_term(rng, 3, 7, 3, 2, method, "1", False)
+            from dataclasses import replace
+
+            compiled = replace(compiled, discount_outcomes=rates[0], discount_costs=rates[1])
+            table = weight_table(compiled)
+            for t in range(7):
+                for j, d in enumerate(compiled.per_cycle_discount()):
+                    start_w, end_w = _weights_at(compiled, t, d)
+                    expected = np.broadcast_to(
+                        np.stack(
+                            [np.ravel(x) for x in (start_w, end_w, _discount_power(d, t))],
+                            axis=-1,
+                        ),
+                        (table.shape[0], 3),
+                    )
+                    np.testing.assert_allclose(
+                        table[:, t, 3 * j : 3 * j + 3], expected, rtol=1e-15, atol=0
+                    )
+
+
+def test_lean_solve_keeps_no_action_values_on_either_path():
+    compiled = _random_finite(np.random.default_rng(2), 3, 5, 4, 3, tie=True)
+    objective = Objective("net_benefit", 1000.0)
+    full = solve(compiled, objective)
+    for lean in (
+        solve(compiled, objective, action_values=False),
+        _numpy_path(solve, compiled, objective, action_values=False),
+    ):
+        assert lean.q_values is None and lean.action_gap is None
+        assert lean.next_best_action is None
+        np.testing.assert_array_equal(lean.policy, full.policy)
+        np.testing.assert_allclose(lean.value, full.value, rtol=1e-12)
+        np.testing.assert_array_equal(lean.indifferent, full.indifferent)
+        frame = lean.to_frame()
+        assert frame["action_gap"].isna().all() and (frame["next_best_action"] == "").all()
+
+
+def test_lean_solve_option_must_be_true_or_false():
+    from caredecide.errors import RunOptionError
+
+    compiled = _random_finite(np.random.default_rng(2), 1, 2, 2, 2, tie=False)
+    with pytest.raises(RunOptionError, match="action_values"):
+        solve(compiled, Objective("qalys"), action_values="no")
+
+
+def test_a_row_changed_in_place_is_caught_by_the_fused_evaluation():
+    # The fused loops check the rows they read (CompiledModel.check's rule).
+    from caredecide.solvers import SolverError
+
+    compiled = _random_finite(np.random.default_rng(4), 2, 3, 3, 2, tie=False)
+    policy = np.argmax(compiled.allowed, axis=1)[None, None, :]
+    compiled.transition[1, 2, policy[0, 0, 0], 0, 0] += 0.25
+    with pytest.raises(SolverError, match=r"transition row of state 's0' .*draw 1, cycle 2"):
+        evaluate_policy(compiled, policy, Objective("qalys"))
+    with pytest.raises(SolverError, match=r"transition row of state 's0' .*draw 1, cycle 2"):
+        solve(compiled, Objective("qalys"))

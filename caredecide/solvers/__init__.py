@@ -12,11 +12,13 @@ flagged ``indifferent``. Actions not allowed in a state are never chosen.
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 
 from caredecide.compiled import CompiledModel
 from caredecide.objective import Objective
-from caredecide.options import check_choice, check_scalar
+from caredecide.options import RunOptionError, check_choice, check_scalar
 from caredecide.solvers.bellman import (
     DEFAULT_TIE_ABSOLUTE,
     DEFAULT_TIE_RELATIVE,
@@ -53,6 +55,7 @@ def solve(
     tie_relative: float = DEFAULT_TIE_RELATIVE,
     record_history: bool = False,
     transition_form: str = "auto",
+    action_values: bool = True,
 ) -> PolicyResult:
     """Find the policy that maximises the objective, for every draw of the model.
 
@@ -90,6 +93,12 @@ def solve(
         vary with the cycle (:func:`caredecide.solvers.sparse.choose_form`).
         ``result.transition_form`` says which was used. Sparse serves backward induction,
         policy and value iteration, without a sweep history.
+    action_values : bool
+        False: keep only the policy, its values and the ties (``indifferent``); the
+        result's ``q_values``, ``action_gap`` and ``next_best_action`` are None. For
+        analyses that never look at the other actions (a probabilistic analysis over many
+        draws); backward induction then neither computes nor stores them, saving the
+        (D, T, S, A) action values and two (D, T, S) arrays.
 
     Returns
     -------
@@ -113,8 +122,10 @@ def solve(
     check_scalar(max_iterations, "max_iterations", int, min_val=1)
     check_scalar(evaluation_sweeps, "evaluation_sweeps", int, min_val=0)
     check_choice(transition_form, "transition_form", TRANSITION_FORMS)
-    check_compiled(compiled)
+    if not isinstance(action_values, bool | np.bool_):
+        raise RunOptionError("action_values", action_values, "True or False")
     finite = compiled.n_cycles is not None
+    check_compiled(compiled, rows=not finite)  # backward induction checks the rows itself
     if method == "auto":
         method = "backward_induction" if finite else "policy_iteration"
     if finite and method != "backward_induction":
@@ -132,13 +143,17 @@ def solve(
                 )
             form = "dense"
         if form == "sparse":
-            return sparse_backward_induction(
+            check_compiled(compiled)  # the rows too (the dense kernel checks them as it reads)
+            result = sparse_backward_induction(
                 compiled,
                 objective,
                 terminal_present_value(compiled, objective, terminal_value),
                 tie_absolute=tie_tolerance,
                 tie_relative=tie_relative,
             )
+            if not action_values:
+                result = replace(result, q_values=None, action_gap=None, next_best_action=None)
+            return result
         return backward_induction(
             compiled,
             objective,
@@ -146,6 +161,7 @@ def solve(
             tie_absolute=tie_tolerance,
             tie_relative=tie_relative,
             record_history=record_history,
+            action_values=bool(action_values),
         )
     if method == "backward_induction":
         raise SolverError(
@@ -154,7 +170,7 @@ def solve(
         )
     if terminal_value is not None:
         raise SolverError("terminal_value applies to a finite horizon only; the model has none")
-    return solve_stationary(
+    result = solve_stationary(
         compiled,
         objective,
         method=method,
@@ -167,3 +183,6 @@ def solve(
         record_history=record_history,
         transition_form=transition_form,
     )
+    if not action_values:  # computed by the iterations anyway; dropped as asked
+        result = replace(result, q_values=None, action_gap=None, next_best_action=None)
+    return result

@@ -10,6 +10,10 @@ from numba import njit
 
 jit = njit(cache=True, nogil=True, error_model="numpy")
 inline = njit(cache=True, nogil=True, error_model="numpy", inline="always")
+fused = njit(cache=True, nogil=True, error_model="numpy", fastmath={"reassoc", "contract"})
+"""For the fused finite-horizon loops: sums may be reassociated (SIMD lanes) and products
+contracted into fused multiply-adds, so results differ from numpy in the last bits (the
+helpers inlined into them follow their flags; comparisons with -inf are unaffected)."""
 
 
 @inline
@@ -22,13 +26,12 @@ def combine(ow, cw, q, c):
 
 
 @inline
-def choose_greedy(
-    Q, best, top, deciding, tie_absolute, tie_relative, extra, d, t, s,
-    value, policy, gap, next_best, indifferent,
-):  # fmt: skip
-    # The tie rule of bellman.greedy_choice for one (draw, state): lowest index within
-    # the tolerance of the best; gap to the best other action; next-best action.
-    A = Q.shape[3]
+def choose(q, best, top, deciding, tie_absolute, tie_relative, extra):
+    # The tie rule of bellman.greedy_choice for one (draw, state) with action values q (A,)
+    # and their best value and first best action: the lowest index within the tolerance
+    # of the best; the gap to the best other action; the next-best action.
+    # Returns (chosen, gap, next best, indifferent).
+    A = q.shape[0]
     tolerance = tie_absolute + tie_relative * abs(best)
     tolerance = tolerance + extra
     floor = best - tolerance
@@ -36,24 +39,17 @@ def choose_greedy(
     second = -np.inf  # best value among actions other than the first best one (top)
     runner_up = -1
     for a in range(A):
-        x = Q[d, t, s, a]
+        x = q[a]
         if chosen < 0 and x >= floor:
             chosen = a
         if a != top and x > second:
             second, runner_up = x, a
     # next best = best action other than the chosen one: top itself unless chosen is top
     other = runner_up if chosen == top else top
-    value[d, t, s] = Q[d, t, s, chosen]
-    policy[d, t, s] = chosen
     single = not (second > -np.inf)
     if single or not deciding:
-        gap[d, t, s] = np.inf
-        next_best[d, t, s] = -1
-        indifferent[d, t, s] = False
-    else:
-        gap[d, t, s] = best - second
-        next_best[d, t, s] = other
-        indifferent[d, t, s] = best - second <= tolerance
+        return chosen, np.inf, -1, False
+    return chosen, best - second, other, best - second <= tolerance
 
 
 @njit(cache=True, nogil=True, inline="always", fastmath={"reassoc", "contract"})
@@ -66,79 +62,264 @@ def expectation(row, following):
     return total
 
 
-@jit
+@njit(cache=True, nogil=True, inline="always", fastmath={"reassoc", "contract"})
+def read_ahead(block):
+    # Sum of a draw's block (its moves), read in memory order to bring it into cache
+    # before the backward pass reads it in reverse (see read_rows).
+    flat = block.reshape(-1)
+    total = 0.0
+    for i in range(flat.size):
+        total += flat[i]
+    return total
+
+
+@inline
+def read_rows(P, d, allowed, tolerance, bad):
+    # The row sums of draw d's transitions, read in memory order: the first allowed row
+    # off 1 by more than the tolerance goes in bad (d, t, a, s) (the contract check of
+    # compiled.CompiledModel.check, done while reading). Reading the draw in order also
+    # brings it into cache before the backward pass reads it cycle by cycle in reverse,
+    # an order the hardware prefetcher follows badly (about 3x slower from memory in
+    # bench_kernels.py's model).
+    Tp, A, S = P.shape[1], P.shape[2], P.shape[3]
+    for t in range(Tp):
+        for a in range(A):
+            for s in range(S):
+                total = 0.0
+                for s2 in range(S):
+                    total += P[d, t, a, s, s2]
+                if allowed[s, a] and not abs(total - 1.0) <= tolerance and bad[0] < 0:
+                    bad[0], bad[1], bad[2], bad[3] = d, t, a, s
+
+
+@inline
+def cycle_occupancy(rewards, d, t, u_o, u_c):
+    # u_o, u_c (S, A): QALYs and costs per cycle in s under a during cycle t of draw d,
+    # the state part plus the state-action part (bellman.cycle_parts: u + sa).
+    state_q, state_c, has_q, action_q, has_c, action_c = rewards
+    S, A = u_o.shape
+    tq = min(t, state_q.shape[1] - 1)
+    tc = min(t, state_c.shape[1] - 1)
+    for s in range(S):
+        x = state_q[d, tq, s]
+        y = state_c[d, tc, s]
+        for a in range(A):
+            u_o[s, a] = x
+            u_c[s, a] = y
+    if has_q:
+        tr = min(t, action_q.shape[1] - 1)
+        for s in range(S):
+            for a in range(A):
+                u_o[s, a] += action_q[d, tr, s, a]
+    if has_c:
+        tr = min(t, action_c.shape[1] - 1)
+        for s in range(S):
+            for a in range(A):
+                u_c[s, a] += action_c[d, tr, s, a]
+
+
+@inline
+def after_move(has_move, move, d, t, u, out):
+    # out (S, A): occupancy counted at the start of the cycle, in the states the
+    # decision-time move puts the cohort of s in (einsum "dasj,dja->dsa" of
+    # bellman.cycle_parts), or u itself without moves.
+    S, A = u.shape
+    if not has_move:
+        out[:, :] = u
+        return
+    tm = min(t, move.shape[1] - 1)
+    for s in range(S):
+        for a in range(A):
+            total = 0.0
+            for j in range(S):
+                total += move[d, tm, a, s, j] * u[j, a]
+            out[s, a] = total
+
+
+@fused
 def backward_induction(
     P,  # (D, Tp, A, S, S)
-    arrival,  # (D, T, A, S) objective reward on arriving in s' at the end of cycle t under a
+    has_move,
+    move,  # (D, Tm, A, S, S); read only when has_move
+    rewards,  # (state_qaly (D, Tq, S), state_cost, has_sa_qaly, sa_qaly (D, Tr, S, A),
+    #            has_sa_cost, sa_cost): bellman.kernel_arrays
+    decision_qaly,  # (D, Td, S, A)
+    decision_cost,  # (D, Td, S, A)
+    weights,  # (Dw, T, 6): start, end, decision factors of outcomes then costs (Dw in {1, D})
+    outcome_weight,
+    cost_weight,
     allowed,  # (S, A) bool
     decision_states,  # (S,) bool
     tie_absolute,
     tie_relative,
+    row_tolerance,  # transition rows of allowed pairs must sum to 1 within this
+    bad,  # (4,) int out: (d, t, a, s) of the first row that does not; -1 on entry
     value,  # (D, T + 1, S) out; value[:, T] holds the terminal part on entry
-    q_values,  # (D, T, S, A) in: the reward at the decision (bellman.cycle_rewards); out: Q
     policy,  # (D, T, S) out
+    indifferent,  # (D, T, S) out
+    keep,  # also write q_values, gap and next_best (else they are placeholders)
+    q_values,  # (D, T, S, A) out
     gap,  # (D, T, S) out
     next_best,  # (D, T, S) out
-    indifferent,  # (D, T, S) out
 ):
-    # Q_t(s, a) = now_t(s, a) + sum_s' P_t(s'|s, a) (arrival_t(a, s') + V_{t+1}(s')).
+    # Q_t(s, a) = now_t(s, a) + sum_s' P_t(s'|s, a) (arrival_t(a, s') + V_{t+1}(s')),
+    # with now_t and arrival_t built here per draw and cycle by the arithmetic of
+    # bellman.cycle_rewards (one-off charges and start occupancy after the move; end
+    # occupancy), weighted by the precomputed within-cycle and discount factors.
+    # Returns the sum of the moves read ahead of each draw's pass.
     D, Tp, A, S = P.shape[0], P.shape[1], P.shape[2], P.shape[3]
-    T = q_values.shape[1]
+    T = policy.shape[1]
+    ow, cw = outcome_weight, cost_weight
     following = np.empty((A, S))  # arrival_t(a) + V_{t+1} of the draw, kept local
+    expected = np.empty((A, S))
+    u_o = np.empty((S, A))
+    u_c = np.empty((S, A))
+    occupied_o = np.empty((S, A))  # after the decision-time move
+    occupied_c = np.empty((S, A))
+    q = np.empty(A)
+    read = 0.0
     for d in range(D):
+        read_rows(P, d, allowed, row_tolerance, bad)
+        if has_move:
+            read += read_ahead(move[d])
+        dw = min(d, weights.shape[0] - 1)
         for t in range(T - 1, -1, -1):
             tp = min(t, Tp - 1)
+            td = min(t, decision_qaly.shape[1] - 1)
+            tc = min(t, decision_cost.shape[1] - 1)
+            start_o, end_o, now_o = weights[dw, t, 0], weights[dw, t, 1], weights[dw, t, 2]
+            start_c, end_c, now_c = weights[dw, t, 3], weights[dw, t, 4], weights[dw, t, 5]
+            cycle_occupancy(rewards, d, t, u_o, u_c)
+            after_move(has_move, move, d, t, u_o, occupied_o)
+            after_move(has_move, move, d, t, u_c, occupied_c)
             for a in range(A):
                 for s2 in range(S):
-                    following[a, s2] = arrival[d, t, a, s2] + value[d, t + 1, s2]
+                    arrival = combine(ow, cw, end_o * u_o[s2, a], end_c * u_c[s2, a])
+                    following[a, s2] = arrival + value[d, t + 1, s2]
+            for a in range(A):
+                for s in range(S):
+                    expected[a, s] = expectation(P[d, tp, a, s], following[a])
             for s in range(S):
                 best = -np.inf
                 top = 0
                 for a in range(A):
                     if not allowed[s, a]:
-                        q = -np.inf
+                        x = -np.inf
                     else:
-                        q = q_values[d, t, s, a] + expectation(P[d, tp, a, s], following[a])
-                    q_values[d, t, s, a] = q
-                    if q > best:
-                        best, top = q, a
-                choose_greedy(
-                    q_values,
-                    best,
-                    top,
-                    decision_states[s],
-                    tie_absolute,
-                    tie_relative,
-                    0.0,
-                    d,
-                    t,
-                    s,
-                    value,
-                    policy,
-                    gap,
-                    next_best,
-                    indifferent,
+                        now_q = start_o * occupied_o[s, a] + now_o * decision_qaly[d, td, s, a]
+                        now_cost = start_c * occupied_c[s, a] + now_c * decision_cost[d, tc, s, a]
+                        x = expected[a, s] + combine(ow, cw, now_q, now_cost)
+                    q[a] = x
+                    if x > best:
+                        best, top = x, a
+                chosen, g, other, tie = choose(
+                    q, best, top, decision_states[s], tie_absolute, tie_relative, 0.0
                 )
+                value[d, t, s] = q[chosen]
+                policy[d, t, s] = chosen
+                indifferent[d, t, s] = tie
+                if keep:
+                    for a in range(A):
+                        q_values[d, t, s, a] = q[a]
+                    gap[d, t, s] = g
+                    next_best[d, t, s] = other
+    return read
 
 
-@jit
-def cohort_trace(P, policy, start, trace):
-    # trace[d, t + 1] = trace[d, t] P_t[policy_t] by gathering the chosen rows.
-    D, Tp, S = P.shape[0], P.shape[1], P.shape[3]
-    Tpi = policy.shape[1]
+@fused
+def evaluate_policies(
+    P,  # (D, Tp, A, S, S)
+    has_move,
+    move,  # (D, Tm, A, S, S); read only when has_move
+    rewards,  # as backward_induction
+    decision_qaly,  # (D, Td, S, A)
+    decision_cost,  # (D, Td, S, A)
+    life_years,  # (S,)
+    weights,  # (Dw, T, 12): start, end, decision factors of outcomes, costs; then undiscounted
+    policies,  # (n,) int32: the policies one after another, each (Dk, T, S) in C order
+    offsets,  # (K,) where policy k starts in policies
+    policy_draws,  # (K,) Dk in {1, D}: a policy shared by every draw is stored once
+    start,  # (S,) cohort at boundary 0
+    row_tolerance,  # the rows read must sum to 1 within this
+    bad,  # (4,) int out: (d, t, a, s) of the first row read that does not; -1 on entry
+    traces,  # (K, D, T + 1, S) out
+    flows,  # (K, 6, D, T + 1) out, zero on entry: life-years, QALYs, costs; then undiscounted
+):
+    # For each draw (its transitions read once while in cache) and each policy: the cohort
+    # m_{t+1} = m_t P_t[pi_t] and the reward of cycle t, sum_s m_t(s) (now_t(s, a) +
+    # sum_s' P_t(s'|s, a) arrival_t(a, s')) with a = pi_t(s), for each quantity, gathering
+    # the chosen rows (no policy matrix is built); rewards by the arithmetic of
+    # bellman.cycle_parts.
+    D, Tp, A, S = P.shape[0], P.shape[1], P.shape[2], P.shape[3]
+    K, T = traces.shape[0], traces.shape[2] - 1
+    u_o = np.empty((S, A))
+    u_c = np.empty((S, A))
+    u_l = np.empty((S, A))
+    occupied = np.empty((3, S, A))  # life-years, QALYs, costs after the decision-time move
+    for s in range(S):
+        for a in range(A):
+            u_l[s, a] = life_years[s]
     for d in range(D):
-        for s in range(S):
-            trace[d, 0, s] = start[s]
-        for t in range(trace.shape[1] - 1):
-            tp, ti = min(t, Tp - 1), min(t, Tpi - 1)
-            for s2 in range(S):
-                trace[d, t + 1, s2] = 0.0
+        dw = min(d, weights.shape[0] - 1)
+        for k in range(K):
+            base = offsets[k] + min(d, policy_draws[k] - 1) * T * S
             for s in range(S):
-                mass = trace[d, t, s]
-                if mass != 0.0:
-                    a = policy[d, ti, s]
+                traces[k, d, 0, s] = start[s]
+            for t in range(T):
+                tp = min(t, Tp - 1)
+                td = min(t, decision_qaly.shape[1] - 1)
+                tc = min(t, decision_cost.shape[1] - 1)
+                cycle_occupancy(rewards, d, t, u_o, u_c)
+                after_move(has_move, move, d, t, u_l, occupied[0])
+                after_move(has_move, move, d, t, u_o, occupied[1])
+                after_move(has_move, move, d, t, u_c, occupied[2])
+                for s2 in range(S):
+                    traces[k, d, t + 1, s2] = 0.0
+                at_start_l = 0.0
+                at_start_o = 0.0
+                at_start_c = 0.0
+                arrived_l = 0.0
+                arrived_o = 0.0
+                arrived_c = 0.0
+                charged_o = 0.0
+                charged_c = 0.0
+                for s in range(S):
+                    m = traces[k, d, t, s]
+                    if m == 0.0:
+                        continue
+                    a = policies[base + t * S + s]
+                    row = P[d, tp, a, s]
+                    e_l = 0.0
+                    e_o = 0.0
+                    e_c = 0.0
+                    total = 0.0
                     for s2 in range(S):
-                        trace[d, t + 1, s2] += mass * P[d, tp, a, s, s2]
+                        p = row[s2]
+                        total += p
+                        traces[k, d, t + 1, s2] += m * p
+                        e_l += p * u_l[s2, a]
+                        e_o += p * u_o[s2, a]
+                        e_c += p * u_c[s2, a]
+                    if not abs(total - 1.0) <= row_tolerance and bad[0] < 0:
+                        bad[0], bad[1], bad[2], bad[3] = d, tp, a, s
+                    at_start_l += m * occupied[0, s, a]
+                    at_start_o += m * occupied[1, s, a]
+                    at_start_c += m * occupied[2, s, a]
+                    arrived_l += m * e_l
+                    arrived_o += m * e_o
+                    arrived_c += m * e_c
+                    charged_o += m * decision_qaly[d, td, s, a]
+                    charged_c += m * decision_cost[d, tc, s, a]
+                # sum_s m (start u + decision) + sum_s m end (P u): the weights factor out
+                for j in range(2):  # discounted, then undiscounted
+                    w = weights[dw, t, 6 * j : 6 * j + 6]
+                    flows[k, 3 * j, d, t] = w[0] * at_start_l + w[1] * arrived_l
+                    flows[k, 3 * j + 1, d, t] = (
+                        w[0] * at_start_o + w[2] * charged_o + w[1] * arrived_o
+                    )
+                    flows[k, 3 * j + 2, d, t] = (
+                        w[3] * at_start_c + w[5] * charged_c + w[4] * arrived_c
+                    )
 
 
 @jit
@@ -149,33 +330,17 @@ def greedy(Q, decision_states, tie_absolute, tie_relative, extra, value, policy,
     for d in range(N):
         for t in range(T):
             for s in range(S):
+                q = Q[d, t, s]
                 best = -np.inf
                 top = 0
                 for a in range(A):
-                    if Q[d, t, s, a] > best:
-                        best, top = Q[d, t, s, a], a
-                choose_greedy(
-                    Q, best, top, decision_states[s], tie_absolute, tie_relative, extra[d],
-                    d, t, s, value, policy, gap, next_best, indifferent,
-                )  # fmt: skip
-
-
-@jit
-def cycle_flows(P, tp, policy, ti, trace, t, at_decision, on_arrival, out):
-    # out[k, d] = sum_s m_t(s) (at_decision[k, d, s, a] + sum_s' P_t(s'|s, a)
-    # on_arrival[k, d, a, s']) with a = policy[d, ti, s]: the cycle-t reward of the cohort
-    # for K quantities, gathering the chosen rows of P (no policy matrix is built).
-    K, D, S = at_decision.shape[0], at_decision.shape[1], trace.shape[2]
-    totals = np.empty(K)
-    for d in range(D):
-        totals[:] = 0.0
-        for s in range(S):
-            m = trace[d, t, s]
-            a = policy[d, ti, s]
-            for k in range(K):
-                e = 0.0
-                for s2 in range(S):
-                    e += P[d, tp, a, s, s2] * on_arrival[k, d, a, s2]
-                totals[k] += m * (at_decision[k, d, s, a] + e)
-        for k in range(K):
-            out[k, d] = totals[k]
+                    if q[a] > best:
+                        best, top = q[a], a
+                chosen, g, other, tie = choose(
+                    q, best, top, decision_states[s], tie_absolute, tie_relative, extra[d]
+                )
+                value[d, t, s] = q[chosen]
+                policy[d, t, s] = chosen
+                gap[d, t, s] = g
+                next_best[d, t, s] = other
+                indifferent[d, t, s] = tie

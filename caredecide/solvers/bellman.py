@@ -11,7 +11,12 @@ from typing import Any, overload
 
 import numpy as np
 
-from caredecide.compiled import CompiledModel, cycle_weights, stationary_cycle_weights
+from caredecide.compiled import (
+    CompiledModel,
+    cycle_weights,
+    row_problem,
+    stationary_cycle_weights,
+)
 from caredecide.errors import CaredecideError, CompiledModelError
 from caredecide.objective import Objective
 from caredecide.solvers import kernels
@@ -26,8 +31,11 @@ DEFAULT_TIE_ABSOLUTE = 1e-9
 DEFAULT_TIE_RELATIVE = 1e-9
 
 
-def check_compiled(compiled: CompiledModel) -> None:
+def check_compiled(compiled: CompiledModel, rows: bool = True) -> None:
     """Check the compiled model's contract again (its arrays may have been changed in place).
+
+    ``rows=False`` leaves the transition rows to the caller (the finite-horizon kernels
+    check them as they read them: :func:`raise_bad_row`).
 
     Raises
     ------
@@ -35,9 +43,22 @@ def check_compiled(compiled: CompiledModel) -> None:
         With the findings of :meth:`CompiledModel.check`.
     """
     try:
-        compiled.check()
+        compiled.check(rows)
     except CompiledModelError as error:
         raise SolverError(str(error)) from None
+
+
+def raise_bad_row(compiled: CompiledModel, bad: np.ndarray) -> None:
+    """Raise for the row ``bad = (d, t, a, s)`` a kernel found off 1 (nothing when ``d < 0``).
+
+    Raises
+    ------
+    SolverError
+        The message of :meth:`CompiledModel.check` for that row.
+    """
+    if bad[0] >= 0:
+        d, t, a, s = (int(i) for i in bad)
+        raise SolverError("compiled model is inconsistent: " + row_problem(compiled, d, t, a, s))
 
 
 def decision_state_mask(compiled: CompiledModel) -> np.ndarray:
@@ -75,6 +96,64 @@ def _weights_at(compiled: CompiledModel, t: int, d: float | np.ndarray) -> tuple
         start, end = _undiscounted_weights(method, compiled.n_cycles)
     shift = 1 if method == "half_cycle" else 0  # the cycle average is discounted at its end
     return start[t] * _discount_power(d, t + shift), end[t] * _discount_power(d, t + 1)
+
+
+def weight_table(compiled: CompiledModel, discount: bool = True) -> np.ndarray:
+    """(Dw, T, 6) present-value factors of every cycle of a finite horizon, for the kernels.
+
+    Columns: start weight, end weight and decision factor ``d^t`` of outcomes (at
+    ``d_o``), then of costs (at ``d_c``): the factors :func:`cycle_parts` applies to
+    cycle ``t`` (:func:`_weights_at`, :func:`_discount_power`), computed for every cycle
+    at once. ``Dw`` is the number of draws when a rate is given per draw, else 1;
+    ``discount=False`` gives the undiscounted weights.
+    """
+    T = compiled.n_cycles
+    assert T is not None, "the weight table is for a finite horizon"
+    method = compiled.within_cycle
+    start, end = _undiscounted_weights(method, T)
+    shift = 1 if method == "half_cycle" else 0
+    t = np.arange(T)
+    columns = []
+    for d in compiled.per_cycle_discount() if discount else (1.0, 1.0):
+        d = np.atleast_1d(np.asarray(d, dtype=float))[:, None]  # (Dw, 1)
+        columns += [start * d ** (t + shift), end * d ** (t + 1), d**t]
+    return np.ascontiguousarray(np.stack(np.broadcast_arrays(*columns), axis=-1))
+
+
+_ABSENT = np.zeros((1, 1, 1, 1))
+"""Stands in for an absent optional array in a kernel call (never read: its flag is False)."""
+_NO_MOVE = np.zeros((1, 1, 1, 1, 1))
+
+
+def _contiguous(array: np.ndarray) -> np.ndarray:
+    return np.ascontiguousarray(array, dtype=float)
+
+
+def kernel_arrays(compiled: CompiledModel) -> tuple[Any, ...]:
+    """The arrays of a finite-horizon model as the compiled loops take them.
+
+    ``(P, has_move, move, rewards, decision_qaly, decision_cost)`` with ``rewards`` =
+    ``(state_qaly, state_cost, has_state_action_qaly, state_action_qaly,
+    has_state_action_cost, state_action_cost)``, every array C-contiguous float64 with its
+    compact time axis (an absent optional array is a placeholder whose flag is False).
+    """
+    move, sa_q, sa_c = compiled.move, compiled.state_action_qaly, compiled.state_action_cost
+    rewards = (
+        _contiguous(compiled.state_qaly),
+        _contiguous(compiled.state_cost),
+        sa_q is not None,
+        _ABSENT if sa_q is None else _contiguous(sa_q),
+        sa_c is not None,
+        _ABSENT if sa_c is None else _contiguous(sa_c),
+    )
+    return (
+        _contiguous(compiled.transition),
+        move is not None,
+        _NO_MOVE if move is None else _contiguous(move),
+        rewards,
+        _contiguous(compiled.decision_qaly),
+        _contiguous(compiled.decision_cost),
+    )
 
 
 @overload

@@ -10,24 +10,29 @@ per-cycle discount factors ``d_o``, ``d_c``::
 with ``now_t`` the one-off charges plus the start occupancy of cycle ``t`` (after the
 decision-time move) and ``arrival_t`` its end occupancy, each weighted by the within-cycle
 method (:func:`caredecide.solvers.bellman.cycle_rewards`). The compiled kernel
-(:mod:`caredecide.solvers.kernels`) walks each draw through its cycles with the
-expectation and the greedy choice fused; without numba, one batched matmul
-per cycle covers every draw, action and state.
+(:mod:`caredecide.solvers.kernels`) walks each draw through its cycles with the rewards
+(the arithmetic of ``cycle_rewards``, from the compact per-draw arrays), the expectation
+and the greedy choice fused; without numba, one batched matmul per cycle covers every
+draw, action and state.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-from caredecide.compiled import CompiledModel
+from caredecide.compiled import ROW_SUM_TOLERANCE, CompiledModel
 from caredecide.objective import Objective
 from caredecide.solvers import kernels
 from caredecide.solvers.bellman import (
     SolverError,
+    check_compiled,
     cycle_rewards,
     decision_state_mask,
     greedy_choice,
+    kernel_arrays,
+    raise_bad_row,
     transition_at,
+    weight_table,
 )
 from caredecide.solvers.result import PolicyResult, SweepRecord, build_result
 
@@ -73,8 +78,12 @@ def backward_induction(
     tie_absolute: float,
     tie_relative: float,
     record_history: bool = False,
+    action_values: bool = True,
 ) -> PolicyResult:
     """Solve a finite-horizon model exactly by backward induction.
+
+    Checks the transition rows (the kernel as it reads them); the caller checks the rest
+    of the contract (:func:`caredecide.solvers.bellman.check_compiled` with ``rows=False``).
 
     Parameters
     ----------
@@ -88,6 +97,11 @@ def backward_induction(
         Tie tolerance on action gaps.
     record_history : bool
         Keep a :class:`SweepRecord` per cycle (values, policy, change) in ``history``.
+    action_values : bool
+        False: keep only the policy, its values and the ties (``indifferent``);
+        ``q_values``, ``action_gap`` and ``next_best_action`` are None. For analyses that
+        read no other action's value (a probabilistic analysis of many draws): it saves
+        the (D, T, S, A) action values and two (D, T, S) arrays.
 
     Returns
     -------
@@ -99,40 +113,47 @@ def backward_induction(
         raise SolverError("backward induction needs a finite number of cycles (n_cycles)")
     D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
     decision_states = decision_state_mask(compiled)
+    keep = action_values or record_history
 
     value = np.empty((D, T + 1, S))
-    q_values = np.empty((D, T, S, A))
     policy = np.empty((D, T, S), dtype=np.intp)
-    gap = np.empty((D, T, S))
-    next_best = np.empty((D, T, S), dtype=np.intp)
     indifferent = np.empty((D, T, S), dtype=bool)
+    q_values = np.empty((D, T, S, A)) if keep else None
+    gap = np.empty((D, T, S)) if keep else None
+    next_best = np.empty((D, T, S), dtype=np.intp) if keep else None
     history: list[SweepRecord] | None = [] if record_history else None
 
     value[:, T] = terminal_present_value(compiled, objective, terminal_value)
     if kernels.available():
-        # The rewards of every cycle, computed once by the shared arithmetic (cycle_rewards):
-        # q_values starts as the reward at the decision; the kernel adds the expectation.
-        arrival = np.empty((D, T, A, S))
-        for t in range(T):
-            q_values[:, t], arrival[:, t] = cycle_rewards(compiled, objective, t)
+        # Rewards, expectation and the tie rule fused per draw and cycle (_loops).
+        placeholder = np.empty((1, 1, 1))
+        bad = np.full(4, -1, dtype=np.int64)
         kernels.kernels().backward_induction(
-            np.ascontiguousarray(compiled.transition),
-            arrival,
-            compiled.allowed,
+            *kernel_arrays(compiled),
+            weight_table(compiled),
+            float(objective.outcome_weight),
+            float(objective.cost_weight),
+            np.ascontiguousarray(compiled.allowed, dtype=bool),
             decision_states,
             float(tie_absolute),
             float(tie_relative),
+            ROW_SUM_TOLERANCE,
+            bad,
             value,
-            q_values,
             policy,
-            gap,
-            next_best,
             indifferent,
+            keep,
+            np.empty((1, 1, 1, 1)) if q_values is None else q_values,
+            placeholder if gap is None else gap,
+            placeholder.astype(np.intp) if next_best is None else next_best,
         )
+        raise_bad_row(compiled, bad)  # the rows checked as they were read
         if history is not None:
+            assert q_values is not None
             for t in range(T - 1, -1, -1):
                 _record(history, T, t, value, policy, q_values)
     else:
+        check_compiled(compiled)
         _numpy_backward_induction(
             compiled, objective, decision_states,
             (value, q_values, policy, gap, next_best, indifferent),
@@ -181,17 +202,20 @@ def _numpy_backward_induction(
     D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
     not_allowed = ~compiled.allowed
     expected_next = np.empty((D, A, S, 1))
+    Q = np.empty((D, S, A))
     for t in range(T - 1, -1, -1):
         now, arrival = cycle_rewards(compiled, objective, t)
         # Expected end-of-cycle value for every (draw, action, state): one matmul.
         rhs = (arrival + value[:, t + 1, None, :])[..., None]
         np.matmul(transition_at(compiled, t), rhs, out=expected_next)
-        Q = q_values[:, t]
+        if q_values is not None:
+            Q = q_values[:, t]
         Q[...] = expected_next[..., 0].transpose(0, 2, 1)
         Q += now
         Q[:, not_allowed] = -np.inf
-        (policy[:, t], value[:, t], gap[:, t], next_best[:, t], indifferent[:, t]) = greedy_choice(
-            Q, decision_states, tie_absolute, tie_relative
-        )
+        choice = greedy_choice(Q, decision_states, tie_absolute, tie_relative)
+        policy[:, t], value[:, t], indifferent[:, t] = choice[0], choice[1], choice[4]
+        if q_values is not None:
+            gap[:, t], next_best[:, t] = choice[2], choice[3]
         if history is not None:
             _record(history, T, t, value, policy, q_values)

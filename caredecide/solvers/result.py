@@ -86,12 +86,15 @@ class PolicyResult:
     value : (D, Tpi + 1, S) or (D, 1, S) float
         Optimal value (objective units: QALYs or money) in present value at the model
         start. For a finite horizon ``value[:, t]`` is the value from boundary ``t`` on.
-    q_values : (D, Tpi, S, A) float
-        Action values; ``-inf`` where an action is not allowed.
-    action_gap : (D, Tpi, S) float
+    q_values : (D, Tpi, S, A) float or None
+        Action values; ``-inf`` where an action is not allowed. None when solved with
+        ``action_values=False`` (finite horizon: only the chosen action's value kept).
+    action_gap : (D, Tpi, S) float or None
         Value lost by the next-best allowed action; ``inf`` where there is no choice.
-    next_best_action : (D, Tpi, S) int
-        The next-best allowed action; -1 where there is no choice.
+        None with ``action_values=False``.
+    next_best_action : (D, Tpi, S) int or None
+        The next-best allowed action; -1 where there is no choice. None with
+        ``action_values=False``.
     indifferent : (D, Tpi, S) bool
         True where the gap is within the tie tolerance (and the solver's error bound).
     decision_states : (S,) bool
@@ -123,9 +126,9 @@ class PolicyResult:
 
     policy: np.ndarray
     value: np.ndarray
-    q_values: np.ndarray
-    action_gap: np.ndarray
-    next_best_action: np.ndarray
+    q_values: np.ndarray | None
+    action_gap: np.ndarray | None
+    next_best_action: np.ndarray | None
     indifferent: np.ndarray
     decision_states: np.ndarray
     method: str
@@ -211,13 +214,16 @@ class PolicyResult:
             Columns cycle, age (NaN for an infinite horizon), state, action, value
             (present value at the model start, objective units), next_best_action
             (empty where there is no choice), action_gap, indifferent; one row per
-            cycle and state.
+            cycle and state. Solved with ``action_values=False``: next_best_action is
+            empty and action_gap NaN (not kept).
         """
         n_t, n_s = self.policy.shape[1], self.policy.shape[2]
         cycle = np.repeat(np.arange(n_t), n_s)
         states = np.asarray(self.state_ids, dtype=object)
         actions = np.asarray((*self.action_ids, ""), dtype=object)  # index -1 -> ""
         ages = self.ages[:n_t] if self.ages is not None else np.full(n_t, np.nan)
+        nxt, gap = self.next_best_action, self.action_gap  # None: solved without them
+        no_choice = np.full(n_t * n_s, -1)
         return pd.DataFrame(
             {
                 "cycle": cycle,
@@ -225,8 +231,8 @@ class PolicyResult:
                 "state": np.tile(states, n_t),
                 "action": actions[self.policy[draw].ravel()],
                 "value": self.value[draw, :n_t].ravel(),
-                "next_best_action": actions[self.next_best_action[draw].ravel()],
-                "action_gap": self.action_gap[draw].ravel(),
+                "next_best_action": actions[no_choice if nxt is None else nxt[draw].ravel()],
+                "action_gap": np.full(n_t * n_s, np.nan) if gap is None else gap[draw].ravel(),
                 "indifferent": self.indifferent[draw].ravel(),
             }
         )
@@ -241,10 +247,10 @@ class PolicyResult:
 def build_result(
     compiled,
     objective: Objective,
-    choice: tuple[np.ndarray, ...],
+    choice: tuple[np.ndarray, np.ndarray | None, np.ndarray | None, np.ndarray],
     *,
     value: np.ndarray,
-    q_values: np.ndarray,
+    q_values: np.ndarray | None,
     decision_states: np.ndarray,
     ages: np.ndarray | None,
     history: list[SweepRecord] | None,
@@ -252,7 +258,8 @@ def build_result(
 ) -> PolicyResult:
     """Assemble a :class:`PolicyResult` from a greedy choice and the solver's own fields.
 
-    ``choice`` is ``(policy, action_gap, next_best_action, indifferent)``; ``solver``
+    ``choice`` is ``(policy, action_gap, next_best_action, indifferent)`` (the gap and the
+    next-best action None when not kept); ``solver``
     holds method, iterations, tolerance, relative, error_bound, success and message.
     """
     policy, gap, next_best, indifferent = choice
