@@ -153,6 +153,9 @@ def _cost_leak(monkeypatch):
         parts["costs"] = (now + 1.0, arrival)  # Patch: one unit of cost at every decision.
         return parts
 
+    # The compiled evaluation loop builds the rewards itself (equal to cycle_parts to
+    # rounding: tests/test_kernels.py), so the fault is injected on the numpy path.
+    monkeypatch.setenv("CAREDECIDE_KERNELS", "numpy")
     monkeypatch.setattr(evaluate, "cycle_parts", leaky)
 
 
@@ -176,6 +179,9 @@ def _scale_occupancy_qalys(monkeypatch, module, factor: float) -> None:
         parts["qalys"] = (factor * now, factor * arrival)
         return parts
 
+    # The compiled loops build the rewards themselves (equal to cycle_parts to rounding:
+    # tests/test_kernels.py), so the fault is injected on the numpy path.
+    monkeypatch.setenv("CAREDECIDE_KERNELS", "numpy")
     monkeypatch.setattr(module, "cycle_parts", scaled)
 
 
