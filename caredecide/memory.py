@@ -167,7 +167,8 @@ def evaluate_bytes(shape: PipelineShape) -> int:
         # reached (the worst case counted), then is stacked: two copies at the peak.
         rows = DISPLAY_CAP + 1
         return FLOAT * D * (rows * (2 * S + 6) + INFINITE_SYSTEM_COPIES * S * S)
-    return FLOAT * D * (shape.n_cycles + 1) * (S + 6)  # the trace and six flow series
+    # The trace, six flow series and the policy as int32 (the compiled loop's copy).
+    return FLOAT * D * (shape.n_cycles + 1) * (S + 6) + 4 * D * shape.n_cycles * S
 
 
 def pipeline_peak_bytes(shape: PipelineShape) -> int:
