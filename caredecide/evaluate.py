@@ -12,7 +12,10 @@ policy ``outcome.value`` equals ``result.value[:, 0] @ start``. Infinite horizon
 by a batched linear solve ``(I - d P_pi) x = r_pi`` per quantity (outcomes at ``d_o``,
 costs at ``d_c``); undiscounted totals by the same solve restricted to the non-absorbing
 states (infinite when an absorbing state keeps earning). The trace is shown over a
-display horizon until 99.9% of the cohort is absorbed, or a cap.
+display horizon until 99.9% of the cohort is absorbed, or a cap. A finite-horizon model
+the solver keeps in sparse rows (large, few moves per state, few draws:
+:func:`caredecide.solvers.sparse.choose_form`) is traced with the same sparse rows
+(:func:`caredecide.solvers.sparse.sparse_trace_and_flows`).
 """
 
 from __future__ import annotations
@@ -38,6 +41,7 @@ from caredecide.solvers.bellman import (
 )
 from caredecide.solvers.finite import terminal_present_value
 from caredecide.solvers.result import summary_repr
+from caredecide.solvers.sparse import choose_form, sparse_trace_and_flows
 
 DISPLAY_ABSORBED = 0.999
 """Infinite horizon: the trace is shown until this share of the cohort is absorbed..."""
@@ -233,24 +237,34 @@ def evaluate_policy(
     -------
     PolicyOutcome
     """
-    fused = compiled.n_cycles is not None and kernels.available()
+    sparse = _sparse_form(compiled)
+    fused = compiled.n_cycles is not None and kernels.available() and not sparse
     check_compiled(compiled, rows=not fused)  # the fused loop checks the rows it reads
     policy = check_policy(compiled, policy)
     if compiled.n_cycles is None:
         return _evaluate_infinite(compiled, policy[:, 0], objective)
-    return _evaluate_finite(compiled, policy, objective, terminal_value)
+    return _evaluate_finite(compiled, policy, objective, terminal_value, sparse)
 
 
-def _evaluate_finite(compiled, policy, objective, terminal_value) -> PolicyOutcome:
-    if kernels.available():  # trace and flows fused; the chosen rows gathered
-        return _kernel_outcomes(compiled, [policy], objective, terminal_value)[0]
+def _sparse_form(compiled: CompiledModel) -> bool:
+    """A finite horizon whose transitions the solver would keep in sparse rows
+    (:func:`caredecide.solvers.sparse.choose_form`, "auto"): large, sparse, few draws."""
+    return compiled.n_cycles is not None and choose_form(compiled.transition, "auto") == "sparse"
+
+
+def _evaluate_finite(compiled, policy, objective, terminal_value, sparse) -> PolicyOutcome:
     D, S, T = compiled.n_draws, compiled.n_states, compiled.n_cycles
-    trace = np.empty((D, T + 1, S))
-    trace[:, 0] = compiled.start_distribution
-    for t in range(T):
-        P_pi = _policy_transition(transition_at(compiled, t), policy[:, t])
-        trace[:, t + 1] = (trace[:, t, None, :] @ P_pi)[:, 0]
-    flows = _finite_flows(compiled, policy, trace)
+    if sparse:  # large model with few moves per state: the cohort moves by sparse rows
+        trace, flows = sparse_trace_and_flows(compiled, policy, _QUANTITIES)
+    elif kernels.available():  # trace and flows fused; the chosen rows gathered
+        return _kernel_outcomes(compiled, [policy], objective, terminal_value)[0]
+    else:
+        trace = np.empty((D, T + 1, S))
+        trace[:, 0] = compiled.start_distribution
+        for t in range(T):
+            P_pi = _policy_transition(transition_at(compiled, t), policy[:, t])
+            trace[:, t + 1] = (trace[:, t, None, :] @ P_pi)[:, 0]
+        flows = _finite_flows(compiled, policy, trace)
     totals = {name: flow.sum(axis=1) for name, flow in flows.items()}
     terminal = np.einsum(
         "ds,ds->d", trace[:, T], terminal_present_value(compiled, objective, terminal_value)
@@ -342,7 +356,12 @@ def evaluate_policies(
     reads each draw's transitions once for all the policies (what a probabilistic
     analysis of several candidate policies needs).
     """
-    if compiled.n_cycles is None or not kernels.available() or len(policies) < 2:
+    if (
+        compiled.n_cycles is None
+        or not kernels.available()
+        or len(policies) < 2
+        or _sparse_form(compiled)
+    ):
         return [
             evaluate_policy(compiled, policy, objective, terminal_value=terminal_value)
             for policy in policies

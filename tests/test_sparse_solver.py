@@ -260,3 +260,32 @@ def test_sparse_backward_induction_keeps_no_history():
         solve(compiled, QALYS, transition_form="sparse", record_history=True)
     kept = solve(compiled, QALYS, record_history=True)  # auto falls back to dense
     assert kept.transition_form == "dense" and len(kept.history) == 3
+
+
+def test_evaluation_of_a_large_sparse_model_uses_sparse_rows_with_the_same_totals(
+    monkeypatch,
+):
+    # evaluate_policy routes a large, sparse, constant-over-cycles model to the sparse
+    # trace; its totals equal the dense fused evaluation and, for the optimal policy, the
+    # solver's value of the start distribution (common practice: the value of the optimal
+    # policy is the expected total of its cohort).
+    from caredecide import evaluate
+
+    compiled = _finite_sparse_model(SPARSE_MIN_STATES + 20, 10, D=2)
+    objective = Objective("net_benefit", 25_000.0)
+    result = solve(compiled, objective)
+    assert result.transition_form == "sparse"
+    calls = []
+    traced = evaluate.sparse_trace_and_flows
+    monkeypatch.setattr(
+        evaluate, "sparse_trace_and_flows", lambda *args: calls.append(1) or traced(*args)
+    )
+    outcome = evaluate_policy(compiled, result.policy, objective)
+    assert calls == [1]  # the sparse rows were used
+    dense = evaluate._kernel_outcomes(compiled, [result.policy], objective, None)[0]
+    np.testing.assert_allclose(outcome.trace, dense.trace, rtol=0, atol=1e-13)
+    for name in ("qalys", "costs", "life_years", "value", "costs_undiscounted"):
+        np.testing.assert_allclose(getattr(outcome, name), getattr(dense, name), rtol=1e-12)
+    np.testing.assert_allclose(
+        outcome.value, result.expected_value(compiled.start_distribution), rtol=1e-10
+    )
