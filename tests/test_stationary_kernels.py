@@ -14,7 +14,7 @@ from hypothesis import strategies as st
 from quantecon.markov import DiscreteDP
 
 from caredecide.objective import Objective
-from caredecide.solvers import kernels, solve
+from caredecide.solvers import SolverError, kernels, solve
 from tests.test_kernels import _numpy_path
 from tests.test_solvers_models import make_compiled
 
@@ -126,3 +126,17 @@ def test_substitution_refuses_a_cycle_and_solves_a_chain():
     np.testing.assert_allclose(v, np.linalg.solve(np.eye(3) - gamma * system, reward))
     system[2] = [0.3, 0.0, 0.7]
     assert not loops.by_substitution(system, reward, gamma, *work, v)
+
+
+@pytest.mark.parametrize("method", ["policy_iteration", "value_iteration"])
+@pytest.mark.parametrize("kernels_on", [True, False])
+def test_a_row_changed_in_place_is_caught_on_every_infinite_horizon_path(method, kernels_on):
+    # The compiled loops check the rows as they read them (the numpy path checks them
+    # before): the same message either way, naming state, action, draw and the sum.
+    rng = np.random.default_rng(1)
+    compiled = _model(rng, 3, 5, 2, progressive=False, within="start")
+    compiled.transition[2, 0, 1, 3, 0] += 0.25  # arrays stay writable: solve checks again
+    pattern = r"transition row of state 's3' under action 'a1' \(draw 2, cycle 0\) sums to 1\.25"
+    call = solve if kernels_on else lambda *a, **k: _numpy_path(solve, *a, **k)
+    with pytest.raises(SolverError, match=pattern):
+        call(compiled, QALYS, method=method)

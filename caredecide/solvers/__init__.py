@@ -125,7 +125,7 @@ def solve(
     if not isinstance(action_values, bool | np.bool_):
         raise RunOptionError("action_values", action_values, "True or False")
     finite = compiled.n_cycles is not None
-    check_compiled(compiled, rows=not finite)  # backward induction checks the rows itself
+    check_compiled(compiled, rows=False)  # the rows: checked by each solver path
     if method == "auto":
         method = "backward_induction" if finite else "policy_iteration"
     if finite and method != "backward_induction":

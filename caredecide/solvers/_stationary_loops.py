@@ -1,12 +1,15 @@
 """The numba loops of the infinite-horizon solvers (imported only through
 :func:`caredecide.solvers.kernels.stationary_kernels`).
 
-Each loop walks one draw at a time: the draw's rewards per cycle are assembled from the
-arrays of :func:`caredecide.solvers.bellman.cycle_rewards` (``now`` (D, S, A) and
-``arrival`` (D, A, S)) as ``R[a, s] = now[s, a] + sum_s' P[a, s, s'] arrival[a, s']``
-(the numpy expression of :class:`caredecide.solvers.stationary.StationaryProblem`), the
-draw iterates until its own stopping rule holds while its arrays sit in cache, and the
-action values of its final values are written out for the greedy choice.
+Each loop walks one draw at a time: it checks the draw's transition rows as it reads them
+(``_loops.read_rows``), builds the draw's reward per cycle
+``R[a, s] = now[s, a] + sum_s' P[a, s, s'] arrival[a, s']`` from the compact arrays by the
+arithmetic of :func:`caredecide.solvers.bellman.cycle_rewards` (the helpers of the
+finite-horizon loops, at ``t = 0`` with the stationary weights), iterates until the draw's
+own stopping rule holds while its arrays sit in cache, and makes the greedy choice on the
+action values of its final values with the tie rule of
+:func:`caredecide.solvers.bellman.greedy_choice` (gaps within twice the error bound are
+ties).
 
 Exact policy evaluation solves ``(I - gamma P_pi) v = r_pi``. When the policy's moves
 between distinct states form no cycle (progressive models: states never return to an
@@ -18,7 +21,14 @@ solved by substitution in ``O(S^2)`` (sinks first); otherwise by an LU factorisa
 import numpy as np
 from numba import njit
 
-from caredecide.solvers._loops import expectation
+from caredecide.solvers._loops import (
+    after_move,
+    choose,
+    combine,
+    cycle_occupancy,
+    expectation,
+    read_rows,
+)
 
 jit = njit(cache=True, nogil=True, error_model="numpy")
 inline = njit(cache=True, nogil=True, error_model="numpy", inline="always")
@@ -29,57 +39,98 @@ BLAS_STATES = 48
 
 @inline
 def expect_all(P, d, v, out):
-    # out[a * S + s] = sum_s' P[d, a, s, s'] v[s'] for every action and state of draw d.
-    A, S = P.shape[1], P.shape[2]
+    # out[a * S + s] = sum_s' P[d, 0, a, s, s'] v[s'] for every action and state of draw d.
+    A, S = P.shape[2], P.shape[3]
     if S >= BLAS_STATES:
-        np.dot(P[d].reshape((A * S, S)), v, out)
+        np.dot(P[d, 0].reshape((A * S, S)), v, out)
     else:
         k = 0
         for a in range(A):
             for s in range(S):
-                out[k] = expectation(P[d, a, s], v)
+                out[k] = expectation(P[d, 0, a, s], v)
                 k += 1
 
 
 @inline
-def draw_rewards(P, now, arrival, has_arrival, allowed, d, R):
-    # R (A, S): reward per cycle of taking a in s for draw d; -inf where not allowed.
+def draw_rewards(P, model, weights, ow, cw, allowed, d, R, work):
+    # R (A, S): reward per cycle of taking a in s for draw d (present value at the cycle's
+    # start); -inf where not allowed. model = (has_move, move, rewards, decision_qaly,
+    # decision_cost) of bellman.kernel_arrays; weights (6,) = bellman.stationary_weights.
+    has_move, move, rewards, decision_qaly, decision_cost = model
+    u_o, u_c, occupied_o, occupied_c, arrival = work
     A, S = R.shape
+    start_o, end_o, now_o = weights[0], weights[1], weights[2]
+    start_c, end_c, now_c = weights[3], weights[4], weights[5]
+    cycle_occupancy(rewards, d, 0, u_o, u_c)
+    after_move(has_move, move, d, 0, u_o, occupied_o)
+    after_move(has_move, move, d, 0, u_c, occupied_c)
+    on_arrival = end_o != 0.0 or end_c != 0.0
+    if on_arrival:
+        for a in range(A):
+            for s2 in range(S):
+                arrival[a, s2] = combine(ow, cw, end_o * u_o[s2, a], end_c * u_c[s2, a])
     for a in range(A):
         for s in range(S):
             if not allowed[s, a]:
                 R[a, s] = -np.inf
-            elif has_arrival:
-                R[a, s] = now[d, s, a] + expectation(P[d, a, s], arrival[d, a])
-            else:
-                R[a, s] = now[d, s, a]
+                continue
+            now_q = start_o * occupied_o[s, a] + now_o * decision_qaly[d, 0, s, a]
+            now_cost = start_c * occupied_c[s, a] + now_c * decision_cost[d, 0, s, a]
+            x = combine(ow, cw, now_q, now_cost)
+            if on_arrival:
+                x += expectation(P[d, 0, a, s], arrival[a])
+            R[a, s] = x
 
 
 @inline
-def action_values(P, R, gamma, d, v, expected, Q):
-    # Q[d, s, a] = R[a, s] + gamma sum_s' P[d, a, s, s'] v[s'] (the final greedy step).
-    A, S = R.shape
-    expect_all(P, d, v, expected)
+def greedy_step(Q, d, decision_states, tie_absolute, tie_relative, extra, out):
+    # The tie rule on the draw's final action values Q[d] (S, A), with extra tolerance
+    # (twice the error bound); out = (value, policy, gap, next_best, indifferent) (D, S).
+    value, policy, gap, next_best, indifferent = out
+    S, A = Q.shape[1], Q.shape[2]
     for s in range(S):
+        best = -np.inf
+        top = 0
         for a in range(A):
-            Q[d, s, a] = gamma * expected[a * S + s] + R[a, s]
+            if Q[d, s, a] > best:
+                best, top = Q[d, s, a], a
+        chosen, g, other, tie = choose(
+            Q[d, s], best, top, decision_states[s], tie_absolute, tie_relative, extra
+        )
+        value[d, s] = Q[d, s, chosen]
+        policy[d, s] = chosen
+        gap[d, s] = g
+        next_best[d, s] = other
+        indifferent[d, s] = tie
+
+
+@inline
+def workspace(S, A):
+    return (np.empty((S, A)), np.empty((S, A)), np.empty((S, A)), np.empty((S, A)),
+            np.empty((A, S)))  # fmt: skip
 
 
 @jit
 def value_iteration(
-    P, now, arrival, has_arrival, allowed, gamma, tolerance, relative, max_iterations,
-    v, residual, sweeps, done, Q,
+    P, model, weights, ow, cw, allowed, decision_states, gamma, tolerance, relative,
+    max_iterations, tie_absolute, tie_relative, row_tolerance, bad,
+    residual, sweeps, done, Q, out,
 ):  # fmt: skip
     # Per draw: v <- max_a R + gamma P v from v = 0 until ||v' - v|| < eps (1 - g) / (2 g),
-    # eps = tolerance (x max |v| when relative); each draw stops on its own.
-    # P (D, A, S, S); out v (D, S), residual (D,), sweeps (D,), done (D,), Q (D, S, A).
-    D, A, S = P.shape[0], P.shape[1], P.shape[2]
+    # eps = tolerance (x max |v| when relative); each draw stops on its own. Then Q of the
+    # final v and the greedy choice with the bound gamma ||v' - v|| / (1 - gamma).
+    # P (D, 1, A, S, S); out residual, sweeps, done (D,), Q (D, S, A), out (5 x (D, S)).
+    D, A, S = P.shape[0], P.shape[2], P.shape[3]
     R = np.empty((A, S))
+    work = workspace(S, A)
     current = np.empty(S)
     following = np.empty(S)
     expected = np.empty(A * S)
     for d in range(D):
-        draw_rewards(P, now, arrival, has_arrival, allowed, d, R)
+        read_rows(P, d, allowed, row_tolerance, bad)
+        if bad[0] >= 0:
+            return  # the caller raises for the row
+        draw_rewards(P, model, weights, ow, cw, allowed, d, R, work)
         current[:] = 0.0
         done[d] = False
         change = np.inf
@@ -103,10 +154,14 @@ def value_iteration(
             if change < eps * (1.0 - gamma) / (2.0 * gamma) or change == 0.0:
                 done[d] = True
                 break
-        v[d] = current
         residual[d] = change
         sweeps[d] = n
-        action_values(P, R, gamma, d, current, expected, Q)
+        expect_all(P, d, current, expected)
+        for s in range(S):
+            for a in range(A):
+                Q[d, s, a] = gamma * expected[a * S + s] + R[a, s]
+        bound = gamma * change / (1.0 - gamma)
+        greedy_step(Q, d, decision_states, tie_absolute, tie_relative, 2.0 * bound, out)
 
 
 @inline
@@ -154,7 +209,7 @@ def policy_values(P, R, gamma, d, policy, system, reward, successors, stack, v):
     for s in range(S):
         a = policy[s]
         for s2 in range(S):
-            system[s, s2] = P[d, a, s, s2]
+            system[s, s2] = P[d, 0, a, s, s2]
         reward[s] = R[a, s]
     if by_substitution(system, reward, gamma, successors, stack, v):
         return
@@ -167,12 +222,16 @@ def policy_values(P, R, gamma, d, policy, system, reward, successors, stack, v):
 
 @jit
 def policy_iteration(
-    P, now, arrival, has_arrival, allowed, gamma, max_iterations, v, residual, sweeps, done, Q
-):
+    P, model, weights, ow, cw, allowed, decision_states, gamma, max_iterations,
+    tie_absolute, tie_relative, row_tolerance, bad, residual, sweeps, done, Q, out,
+):  # fmt: skip
     # Per draw: start greedy for v = 0; evaluate exactly; improve, keeping the current
     # action unless another is better beyond rounding; stop when the policy is unchanged.
-    D, A, S = P.shape[0], P.shape[1], P.shape[2]
+    # Then the greedy choice on Q of the last evaluated policy with the bound
+    # ||T v - v|| / (1 - gamma). Arguments as value_iteration.
+    D, A, S = P.shape[0], P.shape[2], P.shape[3]
     R = np.empty((A, S))
+    work = workspace(S, A)
     policy = np.empty(S, dtype=np.intp)
     improved = np.empty(S, dtype=np.intp)
     current = np.empty(S)
@@ -182,7 +241,10 @@ def policy_iteration(
     successors = np.empty(S, dtype=np.intp)
     stack = np.empty(S, dtype=np.intp)
     for d in range(D):
-        draw_rewards(P, now, arrival, has_arrival, allowed, d, R)
+        read_rows(P, d, allowed, row_tolerance, bad)
+        if bad[0] >= 0:
+            return  # the caller raises for the row
+        draw_rewards(P, model, weights, ow, cw, allowed, d, R, work)
         for s in range(S):
             policy[s] = 0
             for a in range(1, A):
@@ -219,12 +281,15 @@ def policy_iteration(
         if not done[d]:
             policy_values(P, R, gamma, d, policy, system, reward, successors, stack, current)
             change = 0.0
-            action_values(P, R, gamma, d, current, expected, Q)
+            expect_all(P, d, current, expected)
             for s in range(S):
                 best = -np.inf
                 for a in range(A):
-                    best = max(best, Q[d, s, a])
+                    q = gamma * expected[a * S + s] + R[a, s]
+                    Q[d, s, a] = q
+                    best = max(best, q)
                 change = max(change, abs(best - current[s]))
-        v[d] = current
         residual[d] = change
         sweeps[d] = n
+        bound = change / (1.0 - gamma)
+        greedy_step(Q, d, decision_states, tie_absolute, tie_relative, 2.0 * bound, out)

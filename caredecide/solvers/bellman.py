@@ -120,6 +120,19 @@ def weight_table(compiled: CompiledModel, discount: bool = True) -> np.ndarray:
     return np.ascontiguousarray(np.stack(np.broadcast_arrays(*columns), axis=-1))
 
 
+def stationary_weights(compiled: CompiledModel) -> np.ndarray:
+    """(6,) the factors :func:`cycle_parts` applies in an infinite horizon (``t = 0``).
+
+    Start weight, end weight and decision factor (1) of outcomes, then of costs, as the
+    columns of :func:`weight_table`, for the stationary kernels.
+    """
+    columns: list[float] = []
+    for d in compiled.per_cycle_discount():
+        start, end = _weights_at(compiled, 0, d)
+        columns += [float(start), float(end), float(_discount_power(d, 0))]
+    return np.array(columns)
+
+
 _ABSENT = np.zeros((1, 1, 1, 1))
 """Stands in for an absent optional array in a kernel call (never read: its flag is False)."""
 _NO_MOVE = np.zeros((1, 1, 1, 1, 1))

@@ -30,15 +30,19 @@ from __future__ import annotations
 
 import numpy as np
 
-from caredecide.compiled import STATIONARY_METHODS, CompiledModel
+from caredecide.compiled import ROW_SUM_TOLERANCE, STATIONARY_METHODS, CompiledModel
 from caredecide.objective import Objective
 from caredecide.solvers import kernels
 from caredecide.solvers.bellman import (
     SolverError,
+    check_compiled,
     cycle_rewards,
     decision_state_mask,
     greedy_choice,
+    kernel_arrays,
+    raise_bad_row,
     stationary_discount,
+    stationary_weights,
 )
 from caredecide.solvers.result import PolicyResult, SweepRecord, build_result
 from caredecide.solvers.sparse import choose_form, sparse_iterate
@@ -292,45 +296,57 @@ def _per_draw(
     compiled: CompiledModel,
     objective: Objective,
     method: str,
-    tolerance: float,
-    relative: bool,
-    max_iterations: int,
+    options: dict,
     gamma: float,
-) -> tuple[int, np.ndarray, bool, np.ndarray]:
-    """Value or policy iteration by the compiled loops, one draw at a time.
+    decision_states: np.ndarray,
+) -> tuple[int, np.ndarray, bool, np.ndarray, tuple[np.ndarray, ...]]:
+    """Value or policy iteration and the greedy choice by the compiled loops, per draw.
 
-    Each draw's rewards are assembled in the loop from :func:`cycle_rewards`, and the
-    draw stops when its own stopping rule holds (its arrays stay in cache for all its
-    sweeps), so its error bound holds as in the batched method; ``iterations`` is the
-    largest number of sweeps any draw needed.
+    Each draw's transition rows are checked as they are read, its rewards built from the
+    compact arrays (:func:`caredecide.solvers.bellman.kernel_arrays`, the arithmetic of
+    :func:`cycle_rewards`), and it stops when its own stopping rule holds (its arrays
+    stay in cache for all its sweeps), so its error bound holds as in the batched method;
+    ``iterations`` is the largest number of sweeps any draw needed.
 
     Returns
     -------
-    iterations, residual (D,) of the last sweep, converged (every draw), and Q
-    (D, S, A) the action values of the final values ``v`` (``-inf`` where not allowed).
+    iterations, residual (D,) of the last sweep, converged (every draw), Q (D, S, A) the
+    action values of the final values (``-inf`` where not allowed), and the greedy choice
+    ``(policy, value, gap, next_best, indifferent)``, each (D, S).
+
+    Raises
+    ------
+    SolverError
+        A transition row of an allowed pair that does not sum to 1.
     """
-    now, arrival = cycle_rewards(compiled, objective, 0)
-    P = compiled.transition[:, 0]  # (D, A, S, S)
-    if not P.flags.c_contiguous:
-        P = np.ascontiguousarray(P)
-    D, A, S = P.shape[:3]
-    v, residual, Q = np.empty((D, S)), np.empty(D), np.empty((D, S, A))
+    P, *model = kernel_arrays(compiled)
+    D, A, S = P.shape[0], P.shape[2], P.shape[3]
+    residual, Q = np.empty(D), np.empty((D, S, A))
     sweeps, done = np.empty(D, dtype=np.intp), np.empty(D, dtype=bool)
-    rewards = (
-        np.ascontiguousarray(now),
-        np.ascontiguousarray(arrival),
-        bool(arrival.any()),
-        compiled.allowed,
-        gamma,
-    )
+    value, gap = np.empty((D, S)), np.empty((D, S))
+    policy, next_best = np.empty((D, S), dtype=np.intp), np.empty((D, S), dtype=np.intp)
+    indifferent = np.empty((D, S), dtype=bool)
+    bad = np.full(4, -1, dtype=np.int64)
+    common = (
+        P, tuple(model), stationary_weights(compiled), float(objective.outcome_weight),
+        float(objective.cost_weight), np.ascontiguousarray(compiled.allowed, dtype=bool),
+        decision_states, gamma,
+    )  # fmt: skip
+    checks = (
+        float(options["tie_absolute"]), float(options["tie_relative"]), ROW_SUM_TOLERANCE, bad,
+        residual, sweeps, done, Q, (value, policy, gap, next_best, indifferent),
+    )  # fmt: skip
     loops = kernels.stationary_kernels()
     if method == "value_iteration":
         loops.value_iteration(
-            P, *rewards, tolerance, relative, max_iterations, v, residual, sweeps, done, Q
-        )
+            *common, float(options["tolerance"]), bool(options["relative"]),
+            int(options["max_iterations"]), *checks,
+        )  # fmt: skip
     else:
-        loops.policy_iteration(P, *rewards, max_iterations, v, residual, sweeps, done, Q)
-    return int(sweeps.max(initial=0)), residual, bool(done.all()), Q
+        loops.policy_iteration(*common, int(options["max_iterations"]), *checks)
+    raise_bad_row(compiled, bad)  # the rows checked as they were read
+    choice = (policy, value, gap, next_best, indifferent)
+    return int(sweeps.max(initial=0)), residual, bool(done.all()), Q, choice
 
 
 def solve_stationary(
@@ -372,32 +388,42 @@ def solve_stationary(
             )
         form = "dense"
     gamma = stationary_discount(compiled, objective)
-    if form == "sparse":
-        iterations, residual, converged, Q = sparse_iterate(
-            compiled, objective, gamma, method, tolerance, relative, max_iterations
-        )
-    elif (
-        method in ("value_iteration", "policy_iteration")
+    decision_states = decision_state_mask(compiled)
+    fused = (
+        form == "dense"
+        and method in ("value_iteration", "policy_iteration")
         and not record_history
         and kernels.available()
-    ):
-        iterations, residual, converged, Q = _per_draw(
-            compiled, objective, method, tolerance, relative, max_iterations, gamma
-        )
-    else:
-        iterations, residual, converged, Q = _batched(
-            compiled, objective, method, history,
-            tolerance=tolerance, relative=relative, max_iterations=max_iterations,
-            evaluation_sweeps=evaluation_sweeps,
-        )  # fmt: skip
-    bound = _error_bound(method, residual, gamma)
-
-    # Greedy step on the final values: Q errors are at most gamma * bound, so gaps below
-    # twice the bound are reported as ties rather than resolved by rounding.
-    decision_states = decision_state_mask(compiled)
-    policy, value, gap, next_best, indifferent = greedy_choice(
-        Q, decision_states, tie_absolute, tie_relative, uncertainty=2.0 * bound
     )
+    if not fused:
+        check_compiled(compiled)  # the transition rows (the compiled loops check them as read)
+    if fused:
+        options = {
+            "tolerance": tolerance, "relative": relative, "max_iterations": max_iterations,
+            "tie_absolute": tie_absolute, "tie_relative": tie_relative,
+        }  # fmt: skip
+        iterations, residual, converged, Q, choice = _per_draw(
+            compiled, objective, method, options, gamma, decision_states
+        )
+        policy, value, gap, next_best, indifferent = choice
+        bound = _error_bound(method, residual, gamma)
+    else:
+        if form == "sparse":
+            iterations, residual, converged, Q = sparse_iterate(
+                compiled, objective, gamma, method, tolerance, relative, max_iterations
+            )
+        else:
+            iterations, residual, converged, Q = _batched(
+                compiled, objective, method, history,
+                tolerance=tolerance, relative=relative, max_iterations=max_iterations,
+                evaluation_sweeps=evaluation_sweeps,
+            )  # fmt: skip
+        bound = _error_bound(method, residual, gamma)
+        # Greedy step on the final values: Q errors are at most gamma * bound, so gaps
+        # below twice the bound are reported as ties rather than resolved by rounding.
+        policy, value, gap, next_best, indifferent = greedy_choice(
+            Q, decision_states, tie_absolute, tie_relative, uncertainty=2.0 * bound
+        )
     if converged:
         message = f"{method.replace('_', ' ')} converged in {iterations} sweeps"
         if form == "sparse":
