@@ -54,6 +54,14 @@ class TransitionDiagram:
     groups: tuple[str, ...]
     absorbing: tuple[bool, ...]
     edges: pd.DataFrame
+    declared: tuple[str, ...] = ()
+    """Declared state of each flat state (its own id in a model without copies)."""
+    variants: tuple[str, ...] = ()
+    """Attribute values of each flat state joined with ``", "`` (``""`` when none)."""
+    steps: tuple[tuple[int, ...], ...] = ()
+    """Tunnel steps of each flat state, one per tunnel of the model (0 outside it)."""
+    severity: tuple[str, ...] = ()
+    """Flat state ids in the model's ``severity_order`` (may be empty)."""
 
     def edge_names(self) -> list[str]:
         """``"source -> target"`` for every edge (for a chooser)."""
@@ -197,6 +205,14 @@ def transition_diagram(
             if source in getattr(flat, table).get(b, {}):
                 rows += _edges(model, flat, table, b, source, P, states, "cycle")
     labels = tuple(compiled.state_labels or states)
+    by = dict(compiled.state_groups)
+    variants = tuple(
+        ", ".join(by[name][i] for name in model.attributes if by[name][i])
+        for i in range(len(states))
+    )
+    steps = tuple(
+        tuple(_step_number(by[name][i]) for name in model.tunnels) for i in range(len(states))
+    )
     return TransitionDiagram(
         action=action,
         states=states,
@@ -204,4 +220,14 @@ def transition_diagram(
         groups=groups,
         absorbing=tuple(bool(x) for x in compiled.absorbing),
         edges=pd.DataFrame(rows, columns=[*EDGE_COLUMNS]),
+        declared=declared,
+        variants=variants,
+        steps=steps,
+        severity=tuple(compiled.ordered_states),
     )
+
+
+def _step_number(text: str) -> int:
+    """``"2+"`` -> 2, ``"0"`` -> 0, ``""`` (outside the tunnel) -> 0."""
+    digits = text.rstrip("+")
+    return int(digits) if digits.isdigit() else 0

@@ -50,6 +50,8 @@ FLOORS: dict[str, int] = {
     "caredecide.memory": 2,
     "caredecide.grouping": 2,
     "caredecide.diagram": 2,
+    "caredecide.diagram_layout": 2,
+    "caredecide.diagram_charts": 1,
     "caredecide.solvers": 3,
     "caredecide.evaluate": 3,
     "caredecide.structure": 3,

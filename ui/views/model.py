@@ -180,6 +180,11 @@ def _written_back(text: str, new_model) -> str:
         return with_header_comments(text, dumps_model(new_model))
 
 
+def _write_model(new_model) -> None:
+    """Make ``new_model`` the working model (an edit made outside the tables)."""
+    working_model.edit_model_text(_written_back(working_model.working_text(), new_model))
+
+
 def _text_editor(problems) -> None:
     key = working_model.widget_key("model_text")
     text = st.text_area(
@@ -293,6 +298,7 @@ else:
                 working_model.file_label(),
                 working_model.base_folder(),
                 {a.id: a.label or a.id for a in model.actions},
+                write_model=_write_model,
             )
 with tabs[5]:
     _text_editor(problems)
