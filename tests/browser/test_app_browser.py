@@ -76,7 +76,8 @@ def test_every_view_renders_without_exception(app_url, page, artifacts):
         _wait_until_done(page)
         charts = page.locator("[data-testid='stVegaLiteChart']")
         if charts.count():  # charts are drawn after the script: wait for the first one
-            charts.first.locator("canvas, svg").first.wait_for(timeout=TIMEOUT_MS)
+            # (attached: it may sit in a tab not shown, as the Model view's diagram does)
+            charts.first.locator("canvas, svg").first.wait_for(state="attached", timeout=TIMEOUT_MS)
         page.screenshot(path=str(artifacts / f"app-{name or 'model'}.png"), full_page=True)
         _check_view(page)
     page.wait_for_timeout(500)  # late requests (icons) come after the script
