@@ -173,18 +173,19 @@ def check_policy(compiled: CompiledModel, policy: np.ndarray | int) -> np.ndarra
             f"policy has shape {array.shape}; expected a shape broadcastable to (draws, cycles, "
             f"states) = ({D}, {n_t}, {S})"
         ) from None
-    bad_range = (array < 0) | (array >= A)
+    given = array[:1] if array.strides[0] == 0 else array  # one policy shared by every draw
+    bad_range = (given < 0) | (given >= A)
     if bad_range.any():
         d, t, s = np.argwhere(bad_range)[0]
         raise SolverError(
-            f"policy chooses action index {array[d, t, s]} in state {compiled.state_ids[s]!r} "
+            f"policy chooses action index {given[d, t, s]} in state {compiled.state_ids[s]!r} "
             f"(cycle {t}); expected 0..{A - 1} for actions {compiled.action_ids}"
         )
-    not_allowed = ~compiled.allowed[np.arange(S), array]
+    not_allowed = ~compiled.allowed[np.arange(S), given]
     if not_allowed.any():
         d, t, s = np.argwhere(not_allowed)[0]
         raise SolverError(
-            f"policy chooses action {compiled.action_ids[array[d, t, s]]!r} in state "
+            f"policy chooses action {compiled.action_ids[given[d, t, s]]!r} in state "
             f"{compiled.state_ids[s]!r} (cycle {t}), where it is not allowed"
         )
     return array
@@ -298,14 +299,17 @@ def _compact_policy(policy: np.ndarray) -> np.ndarray:
     return np.ascontiguousarray(policy, dtype=np.int32)
 
 
-def _kernel_outcomes(compiled, policies, objective, terminal_value) -> list[PolicyOutcome]:
-    """Outcomes of checked policies (each (D, T, S)) by one compiled pass over the draws.
+def _fused_pass(compiled, policies, keep: bool):
+    """Run the fused evaluation loop over checked policies (each (D, T, S)).
 
-    Each draw's transitions are read once for all the policies; the cohort, the chosen
-    rows and each cycle's rewards (the arithmetic of
+    Returns ``(traces, flows, final)``: traces (K, D, T + 1, S) (None unless ``keep``),
+    flows (K, 6, D, T + 1) per cycle (``keep``) or (K, 6, D, 1) totals, and the cohort at
+    the horizon (K, D, S). Each draw's transitions are read once for all the policies; the
+    cohort, the chosen rows and each cycle's rewards (the arithmetic of
     :func:`caredecide.solvers.bellman.cycle_parts`) are fused; no policy matrix is built.
     """
     D, S, T = compiled.n_draws, compiled.n_states, compiled.n_cycles
+    K = len(policies)
     compact = [_compact_policy(policy) for policy in policies]
     sizes = np.array([p.size for p in compact], dtype=np.int64)
     offsets = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64)
@@ -313,8 +317,9 @@ def _kernel_outcomes(compiled, policies, objective, terminal_value) -> list[Poli
         np.broadcast_arrays(weight_table(compiled), weight_table(compiled, discount=False)),
         axis=-1,
     )
-    traces = np.empty((len(policies), D, T + 1, S))
-    flows = np.zeros((len(policies), 2 * len(_QUANTITIES), D, T + 1))
+    traces = np.empty((K, D, T + 1, S) if keep else (K, 1, 2, S))
+    flows = np.zeros((K, 2 * len(_QUANTITIES), D, T + 1 if keep else 1))
+    final = np.empty((K, D, S))
     bad = np.full(4, -1, dtype=np.int64)
     kernels.kernels().evaluate_policies(
         *kernel_arrays(compiled),
@@ -326,21 +331,99 @@ def _kernel_outcomes(compiled, policies, objective, terminal_value) -> list[Poli
         np.ascontiguousarray(compiled.start_distribution, dtype=float),
         ROW_SUM_TOLERANCE,
         bad,
+        keep,
         traces,
         flows,
+        final,
     )
     raise_bad_row(compiled, bad)
-    names = [f"{n}{suffix}" for suffix in ("", "_undiscounted") for n in _QUANTITIES]
+    return (traces if keep else None), flows, final
+
+
+_FLOW_NAMES = [f"{n}{suffix}" for suffix in ("", "_undiscounted") for n in _QUANTITIES]
+
+
+def _kernel_outcomes(compiled, policies, objective, terminal_value) -> list[PolicyOutcome]:
+    """Outcomes of checked policies (each (D, T, S)) by one fused pass (:func:`_fused_pass`)."""
+    traces, flows, final = _fused_pass(compiled, policies, keep=True)
+    assert traces is not None
     terminal_part = terminal_present_value(compiled, objective, terminal_value)
     outcomes = []
-    for trace, flow in zip(traces, flows, strict=True):
-        by_name = dict(zip(names, flow, strict=True))
+    for trace, flow, last in zip(traces, flows, final, strict=True):
+        by_name = dict(zip(_FLOW_NAMES, flow, strict=True))
         totals = {name: f.sum(axis=1) for name, f in by_name.items()}
-        terminal = np.einsum("ds,ds->d", trace[:, T], terminal_part)
+        terminal = np.einsum("ds,ds->d", last, terminal_part)
         outcomes.append(
             _outcome(compiled, objective, trace, totals, by_name, terminal, compiled.ages(), True)
         )
     return outcomes
+
+
+@dataclass(repr=False)
+class PolicyTotals:
+    """Totals of a policy for ``D`` draws, without its cohort trace and flows.
+
+    Attributes as in :class:`PolicyOutcome` (each (D,) float): ``life_years``, ``qalys``,
+    ``costs``, their ``*_undiscounted`` forms, ``net_monetary_benefit``, ``value``.
+    """
+
+    life_years: np.ndarray
+    qalys: np.ndarray
+    costs: np.ndarray
+    life_years_undiscounted: np.ndarray
+    qalys_undiscounted: np.ndarray
+    costs_undiscounted: np.ndarray
+    net_monetary_benefit: np.ndarray
+    value: np.ndarray
+    objective: Objective
+
+    def __repr__(self) -> str:
+        return summary_repr(
+            "PolicyTotals",
+            {"draws": int(self.value.shape[0])},
+            {"objective": self.objective.describe(), "qalys": self.qalys, "costs": self.costs,
+             "value": self.value},
+        )  # fmt: skip
+
+
+def policy_totals(
+    compiled: CompiledModel,
+    policies: list[np.ndarray | int],
+    objective: Objective,
+    *,
+    terminal_value: np.ndarray | float | None = None,
+) -> list[PolicyTotals]:
+    """The totals of :func:`evaluate_policies`, without keeping traces or flows.
+
+    For analyses that read only the totals of many policies on many draws (a
+    probabilistic analysis): a finite horizon with the compiled loops keeps two rows of
+    the cohort per policy instead of its (D, T + 1, S) trace and (D, T + 1) flows, which
+    spares writing (and first touching) that memory. Otherwise the totals of
+    :func:`evaluate_policies`.
+    """
+    if compiled.n_cycles is None or not kernels.available():
+        outcomes = evaluate_policies(compiled, policies, objective, terminal_value=terminal_value)
+        return [_totals_of(outcome) for outcome in outcomes]
+    check_compiled(compiled, rows=False)  # the fused loop checks the rows it reads
+    checked = [check_policy(compiled, policy) for policy in policies]
+    _, flows, final = _fused_pass(compiled, checked, keep=False)
+    terminal_part = terminal_present_value(compiled, objective, terminal_value)
+    result = []
+    for flow, last in zip(flows, final, strict=True):
+        totals = {name: f[:, 0] for name, f in zip(_FLOW_NAMES, flow, strict=True)}
+        terminal = np.einsum("ds,ds->d", last, terminal_part)
+        benefit, value = _benefit_and_value(objective, totals, terminal)
+        result.append(
+            PolicyTotals(**totals, net_monetary_benefit=benefit, value=value, objective=objective)
+        )
+    return result
+
+
+def _totals_of(outcome: PolicyOutcome) -> PolicyTotals:
+    names = [*_FLOW_NAMES, "net_monetary_benefit", "value"]
+    return PolicyTotals(
+        **{name: getattr(outcome, name) for name in names}, objective=outcome.objective
+    )
 
 
 def evaluate_policies(
@@ -491,8 +574,16 @@ def _long_run_reward(P_class: np.ndarray, reward: np.ndarray) -> np.ndarray:
     return np.where(np.abs(rate) <= 1e-12 * np.maximum(scale, 1.0), 0.0, rate)
 
 
-def _outcome(compiled, objective, trace, totals, flows, terminal, ages, finite) -> PolicyOutcome:
+def _benefit_and_value(objective, totals, terminal) -> tuple[np.ndarray, np.ndarray]:
+    """(net monetary benefit, objective value) of totals (D,), the terminal part added."""
     wtp = float(objective.willingness_to_pay)
+    # WTP 0 must not turn an infinite QALY total into NaN (0 * inf).
+    benefit = (wtp * totals["qalys"] if wtp else 0.0) - totals["costs"]
+    return benefit, combine(objective, totals["qalys"], totals["costs"]) + terminal
+
+
+def _outcome(compiled, objective, trace, totals, flows, terminal, ages, finite) -> PolicyOutcome:
+    benefit, value = _benefit_and_value(objective, totals, terminal)
     return PolicyOutcome(
         trace=trace,
         life_years=totals["life_years"],
@@ -501,9 +592,8 @@ def _outcome(compiled, objective, trace, totals, flows, terminal, ages, finite) 
         life_years_undiscounted=totals["life_years_undiscounted"],
         qalys_undiscounted=totals["qalys_undiscounted"],
         costs_undiscounted=totals["costs_undiscounted"],
-        # WTP 0 must not turn an infinite QALY total into NaN (0 * inf).
-        net_monetary_benefit=(wtp * totals["qalys"] if wtp else 0.0) - totals["costs"],
-        value=combine(objective, totals["qalys"], totals["costs"]) + terminal,
+        net_monetary_benefit=benefit,
+        value=value,
         flows={name: flows[name] for name in _QUANTITIES},
         objective=objective,
         state_ids=compiled.state_ids,

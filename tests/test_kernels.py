@@ -391,3 +391,37 @@ def test_a_row_changed_in_place_is_caught_by_the_fused_evaluation():
         evaluate_policy(compiled, policy, Objective("qalys"))
     with pytest.raises(SolverError, match=r"transition row of state 's0' .*draw 1, cycle 2"):
         solve(compiled, Objective("qalys"))
+
+
+@settings(max_examples=15, deadline=None)
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    T=st.integers(1, 6),
+    S=st.integers(2, 5),
+    method=st.sampled_from(["start", "end", "trapezoid", "simpson", "half_cycle"]),
+    per_draw_rates=st.booleans(),
+)
+def test_totals_only_equal_the_totals_of_the_full_evaluation(seed, T, S, method, per_draw_rates):
+    # policy_totals keeps no trace or flows; its totals must be those of evaluate_policy
+    # for each policy (common practice: the same sums accumulated as they are made).
+    from caredecide.evaluate import policy_totals
+
+    rng = np.random.default_rng(seed)
+    compiled = _every_term(rng, 3, T, S, 2, method, "T", per_draw_rates)
+    policies = [
+        rng.integers(0, 2, (3, T, S)),  # a policy per draw
+        rng.integers(0, 2, (1, T, S)),  # one policy shared by every draw
+        1,
+    ]
+    objective = Objective("net_benefit", 700.0)
+    names = ("life_years", "qalys", "costs", "life_years_undiscounted", "qalys_undiscounted",
+             "costs_undiscounted", "net_monetary_benefit", "value")  # fmt: skip
+    totals = policy_totals(compiled, policies, objective)
+    numpy_totals = _numpy_path(policy_totals, compiled, policies, objective)
+    for policy, fast, plain in zip(policies, totals, numpy_totals, strict=True):
+        alone = evaluate_policy(compiled, policy, objective)
+        for name in names:
+            np.testing.assert_allclose(getattr(fast, name), getattr(alone, name), rtol=1e-12,
+                                       atol=1e-10, err_msg=name)  # fmt: skip
+            np.testing.assert_allclose(getattr(plain, name), getattr(alone, name), rtol=1e-12,
+                                       atol=1e-10, err_msg=name)  # fmt: skip

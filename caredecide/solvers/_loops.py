@@ -93,6 +93,21 @@ def read_rows(P, d, allowed, tolerance, bad):
 
 
 @inline
+def reward_cycles(rewards, has_move, move):
+    # Longest time axis among the occupancy rewards and the moves: 1 means the cycle's
+    # occupancy (after the move) is the same every cycle and is built once per draw.
+    state_q, state_c, has_q, action_q, has_c, action_c = rewards
+    n = max(state_q.shape[1], state_c.shape[1])
+    if has_q:
+        n = max(n, action_q.shape[1])
+    if has_c:
+        n = max(n, action_c.shape[1])
+    if has_move:
+        n = max(n, move.shape[1])
+    return n
+
+
+@inline
 def cycle_occupancy(rewards, d, t, u_o, u_c):
     # u_o, u_c (S, A): QALYs and costs per cycle in s under a during cycle t of draw d,
     # the state part plus the state-action part (bellman.cycle_parts: u + sa).
@@ -169,6 +184,7 @@ def backward_induction(
     # Returns the sum of the moves read ahead of each draw's pass.
     D, Tp, A, S = P.shape[0], P.shape[1], P.shape[2], P.shape[3]
     T = policy.shape[1]
+    varying = reward_cycles(rewards, has_move, move) > 1
     ow, cw = outcome_weight, cost_weight
     following = np.empty((A, S))  # arrival_t(a) + V_{t+1} of the draw, kept local
     expected = np.empty((A, S))
@@ -189,9 +205,10 @@ def backward_induction(
             tc = min(t, decision_cost.shape[1] - 1)
             start_o, end_o, now_o = weights[dw, t, 0], weights[dw, t, 1], weights[dw, t, 2]
             start_c, end_c, now_c = weights[dw, t, 3], weights[dw, t, 4], weights[dw, t, 5]
-            cycle_occupancy(rewards, d, t, u_o, u_c)
-            after_move(has_move, move, d, t, u_o, occupied_o)
-            after_move(has_move, move, d, t, u_c, occupied_c)
+            if t == T - 1 or varying:
+                cycle_occupancy(rewards, d, t, u_o, u_c)
+                after_move(has_move, move, d, t, u_o, occupied_o)
+                after_move(has_move, move, d, t, u_c, occupied_c)
             for a in range(A):
                 for s2 in range(S):
                     arrival = combine(ow, cw, end_o * u_o[s2, a], end_c * u_c[s2, a])
@@ -242,16 +259,20 @@ def evaluate_policies(
     start,  # (S,) cohort at boundary 0
     row_tolerance,  # the rows read must sum to 1 within this
     bad,  # (4,) int out: (d, t, a, s) of the first row read that does not; -1 on entry
-    traces,  # (K, D, T + 1, S) out
-    flows,  # (K, 6, D, T + 1) out, zero on entry: life-years, QALYs, costs; then undiscounted
+    keep,  # write the trace and the flow of every cycle (else only totals)
+    traces,  # (K, D, T + 1, S) out when keep; else (K, 1, 2, S) work rows
+    flows,  # (K, 6, D, T + 1) out when keep, else (K, 6, D, 1) totals; zero on entry:
+    #         life-years, QALYs, costs; then undiscounted
+    final,  # (K, D, S) out: the cohort at boundary T
 ):
-    # For each draw (its transitions read once while in cache) and each policy: the cohort
-    # m_{t+1} = m_t P_t[pi_t] and the reward of cycle t, sum_s m_t(s) (now_t(s, a) +
+    # For each draw (its transitions read once while in cache), each cycle and each policy:
+    # the cohort m_{t+1} = m_t P_t[pi_t] and the reward of cycle t, sum_s m_t(s) (now_t(s, a) +
     # sum_s' P_t(s'|s, a) arrival_t(a, s')) with a = pi_t(s), for each quantity, gathering
     # the chosen rows (no policy matrix is built); rewards by the arithmetic of
     # bellman.cycle_parts.
     D, Tp, A, S = P.shape[0], P.shape[1], P.shape[2], P.shape[3]
-    K, T = traces.shape[0], traces.shape[2] - 1
+    K, T = final.shape[0], weights.shape[1]
+    varying = reward_cycles(rewards, has_move, move) > 1
     u_o = np.empty((S, A))
     u_c = np.empty((S, A))
     u_l = np.empty((S, A))
@@ -262,19 +283,25 @@ def evaluate_policies(
     for d in range(D):
         dw = min(d, weights.shape[0] - 1)
         for k in range(K):
-            base = offsets[k] + min(d, policy_draws[k] - 1) * T * S
+            first = traces[k, d, 0] if keep else traces[k, 0, 0]
             for s in range(S):
-                traces[k, d, 0, s] = start[s]
-            for t in range(T):
-                tp = min(t, Tp - 1)
-                td = min(t, decision_qaly.shape[1] - 1)
-                tc = min(t, decision_cost.shape[1] - 1)
+                first[s] = start[s]
+        for t in range(T):
+            tp = min(t, Tp - 1)
+            td = min(t, decision_qaly.shape[1] - 1)
+            tc = min(t, decision_cost.shape[1] - 1)
+            # The cycle's rewards once for every policy; the draw's rows stay in cache.
+            if t == 0 or varying:
                 cycle_occupancy(rewards, d, t, u_o, u_c)
                 after_move(has_move, move, d, t, u_l, occupied[0])
                 after_move(has_move, move, d, t, u_o, occupied[1])
                 after_move(has_move, move, d, t, u_c, occupied[2])
+            for k in range(K):
+                base = offsets[k] + min(d, policy_draws[k] - 1) * T * S
+                now = traces[k, d, t] if keep else traces[k, 0, t % 2]
+                after = traces[k, d, t + 1] if keep else traces[k, 0, 1 - t % 2]
                 for s2 in range(S):
-                    traces[k, d, t + 1, s2] = 0.0
+                    after[s2] = 0.0
                 at_start_l = 0.0
                 at_start_o = 0.0
                 at_start_c = 0.0
@@ -284,7 +311,7 @@ def evaluate_policies(
                 charged_o = 0.0
                 charged_c = 0.0
                 for s in range(S):
-                    m = traces[k, d, t, s]
+                    m = now[s]
                     if m == 0.0:
                         continue
                     a = policies[base + t * S + s]
@@ -296,7 +323,7 @@ def evaluate_policies(
                     for s2 in range(S):
                         p = row[s2]
                         total += p
-                        traces[k, d, t + 1, s2] += m * p
+                        after[s2] += m * p
                         e_l += p * u_l[s2, a]
                         e_o += p * u_o[s2, a]
                         e_c += p * u_c[s2, a]
@@ -311,15 +338,20 @@ def evaluate_policies(
                     charged_o += m * decision_qaly[d, td, s, a]
                     charged_c += m * decision_cost[d, tc, s, a]
                 # sum_s m (start u + decision) + sum_s m end (P u): the weights factor out
+                tk = t if keep else 0  # one entry per cycle, or the running total
                 for j in range(2):  # discounted, then undiscounted
                     w = weights[dw, t, 6 * j : 6 * j + 6]
-                    flows[k, 3 * j, d, t] = w[0] * at_start_l + w[1] * arrived_l
-                    flows[k, 3 * j + 1, d, t] = (
+                    flows[k, 3 * j, d, tk] += w[0] * at_start_l + w[1] * arrived_l
+                    flows[k, 3 * j + 1, d, tk] += (
                         w[0] * at_start_o + w[2] * charged_o + w[1] * arrived_o
                     )
-                    flows[k, 3 * j + 2, d, t] = (
+                    flows[k, 3 * j + 2, d, tk] += (
                         w[3] * at_start_c + w[5] * charged_c + w[4] * arrived_c
                     )
+        for k in range(K):
+            last = traces[k, d, T] if keep else traces[k, 0, T % 2]
+            for s in range(S):
+                final[k, d, s] = last[s]
 
 
 @jit
