@@ -38,6 +38,9 @@ BEND = 0.16
 LOOP_RADIUS = 15.0
 """Radius of a stay loop, pixels."""
 POINTS_PER_CURVE = 24
+MAX_DRAWN_STATES = 80
+"""More states than this are not drawn (the picture would be unreadable and its curves
+slow to route); :func:`layout_diagram` refuses and the moves stay listed."""
 LABEL_WIDTH = 20
 """Characters per line of a state's name under its bubble (names wrap, never cut)."""
 BENDS = (BEND, 0.3, -0.3, 0.45, -0.45, 0.6, -0.6)
@@ -220,7 +223,20 @@ def _heading(points: np.ndarray) -> float:
 
 
 def layout_diagram(diagram: TransitionDiagram) -> DiagramLayout:
-    """Place the states and draw the moves of ``diagram`` (pixels, deterministic)."""
+    """Place the states and draw the moves of ``diagram`` (pixels, deterministic).
+
+    Raises
+    ------
+    ValueError
+        The diagram has more than :data:`MAX_DRAWN_STATES` states (the message says how
+        many).
+    """
+    if len(diagram.states) > MAX_DRAWN_STATES:
+        raise ValueError(
+            f"the diagram of {diagram.action!r} has {len(diagram.states)} states, more than "
+            f"{MAX_DRAWN_STATES} that can be drawn readably; expected fewer states (the "
+            "moves are listed instead)"
+        )
     column, row = columns_and_rows(diagram)
     n_columns = max(column, default=0) + 1
     n_rows = max(row, default=0) + 1

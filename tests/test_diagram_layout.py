@@ -20,6 +20,7 @@ from caredecide.diagram_charts import EDGE_SELECTION, make_diagram_chart
 from caredecide.diagram_layout import (
     COLUMN_GAP,
     MARGIN,
+    MAX_DRAWN_STATES,
     NODE_RADIUS,
     ROW_GAP,
     columns_and_rows,
@@ -164,3 +165,12 @@ def test_any_graph_gets_distinct_places_and_a_finite_mark_per_edge(diagram):
     if layout.nodes["absorbing"].any() and len(living):
         assert columns[layout.nodes["absorbing"]].min() > living.max()
     assert layout_diagram(diagram).marks.equals(layout.marks)
+
+
+def test_a_diagram_too_large_to_read_is_refused_by_name():
+    n = MAX_DRAWN_STATES + 1
+    states = tuple(f"s{i}" for i in range(n))
+    edges = pd.DataFrame([], columns=list(EDGE_COLUMNS))
+    diagram = TransitionDiagram("go", states, states, states, (False,) * n, edges)
+    with pytest.raises(ValueError, match=f"'go' has {n} states, more than {MAX_DRAWN_STATES}"):
+        layout_diagram(diagram)

@@ -20,7 +20,7 @@ import streamlit as st
 
 from caredecide.diagram import TransitionDiagram, transition_diagram
 from caredecide.diagram_charts import EDGE_SELECTION, make_diagram_chart
-from caredecide.diagram_layout import DiagramLayout, layout_diagram
+from caredecide.diagram_layout import MAX_DRAWN_STATES, DiagramLayout, layout_diagram
 from caredecide.model import Model
 from caredecide.modelfile import loads_model
 from ui import working_model
@@ -134,24 +134,30 @@ def show_diagram(
         "moves made at the decision, before the cycle; a loop is the share that stays. "
         "**Click a dot** (or choose the move below) to open the cell that defines it."
     )
-    layout = _layout(text, file, base_dir, action, by)
-    current = st.session_state.get("diagram_edge")
-    chart = make_diagram_chart(
-        layout.nodes,
-        layout.paths,
-        layout.marks,
-        layout.width,
-        layout.height,
-        group_title="declared state" if by == "state" else by,
-        chosen=names.index(current) if current in names else None,
-    )
-    st.altair_chart(
-        chart,
-        key="diagram_pick",
-        on_select=partial(_picked, names),
-        selection_mode=EDGE_SELECTION,
-        width="content",
-    )
+    if len(diagram.states) > MAX_DRAWN_STATES:
+        st.info(
+            f"{len(diagram.states)} states are too many to draw readably (at most "
+            f"{MAX_DRAWN_STATES}); choose a move below to open its cell."
+        )
+    else:
+        layout = _layout(text, file, base_dir, action, by)
+        current = st.session_state.get("diagram_edge")
+        chart = make_diagram_chart(
+            layout.nodes,
+            layout.paths,
+            layout.marks,
+            layout.width,
+            layout.height,
+            group_title="declared state" if by == "state" else by,
+            chosen=names.index(current) if current in names else None,
+        )
+        st.altair_chart(
+            chart,
+            key="diagram_pick",
+            on_select=partial(_picked, names),
+            selection_mode=EDGE_SELECTION,
+            width="content",
+        )
     chosen = st.selectbox("Move", names, key="diagram_edge")
     edge = diagram.edges.iloc[names.index(chosen)]
     _show_cell(text, file, base_dir, chosen, edge, write_model)
