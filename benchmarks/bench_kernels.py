@@ -15,7 +15,8 @@ cycle: (D, 60, 3, 12, 12). Three ways of solving the same compiled arrays, inter
 
 Policies must agree outside the states the project reports as ties, and values to 1e-9
 relative, before any ratio is printed. Then the same for the cohort trace of the optimal
-policy (``plain_cohort_trace`` against ``caredecide.evaluate.evaluate_policy``), the read
+policy (``plain_cohort_trace`` against ``caredecide.evaluate.evaluate_policy`` and the
+totals alone, ``policy_totals``), the read
 bandwidth of the machine, and one draw solved repeatedly (the app and the threshold search
 call the solver on one parameter set thousands of times).
 
@@ -46,7 +47,7 @@ from bench_solver import WTP, draws_frame, model_text  # noqa: E402
 from plain_reference import plain_backward_induction, plain_cohort_trace  # noqa: E402
 
 from caredecide.compile import compile_model  # noqa: E402
-from caredecide.evaluate import evaluate_policy  # noqa: E402
+from caredecide.evaluate import evaluate_policy, policy_totals  # noqa: E402
 from caredecide.modelfile import load_model  # noqa: E402
 from caredecide.objective import Objective  # noqa: E402
 from caredecide.solvers import solve  # noqa: E402
@@ -148,7 +149,7 @@ def main() -> None:
     for name, seconds in times.items():
         share = model.transition.nbytes / seconds / (gbps * 1e9)
         print(
-            f"{name:12s} {seconds:8.3f} s   plain / this {times['plain'] / seconds:6.2f}x   "
+            f"{name:12s} {seconds:9.4g} s   plain / this {times['plain'] / seconds:6.2f}x   "
             f"transitions read at {share:.2f} of the measured bandwidth"
         )
     print(f"measured read bandwidth (numpy sum of 512 MiB): {gbps:.1f} GB/s")
@@ -165,17 +166,25 @@ def main() -> None:
             "plain trace": lambda: plain_cohort_trace(model, policy),
             "numpy path": lambda: with_path("numpy", evaluate_policy, model, policy, OBJECTIVE),
             "kernel": lambda: evaluate_policy(model, policy, OBJECTIVE),
+            "totals only": lambda: policy_totals(model, [policy], OBJECTIVE)[0],
         },
         args.repeats,
     )
+    for name in ("qalys", "costs", "value"):
+        kept, alone = getattr(outputs["kernel"], name), getattr(outputs["totals only"], name)
+        if not np.allclose(kept, alone, rtol=1e-12, atol=0):
+            raise SystemExit(f"totals disagree ({name}): {np.abs(kept - alone).max():g}")
     for name in ("numpy path", "kernel"):
         diff = float(np.abs(outputs[name].trace - outputs["plain trace"]).max())
         if diff > 1e-12:
             raise SystemExit(f"cohort traces disagree ({name}): {diff:g}")
-    print("\n== policy evaluation of the optimal policy (trace + totals); traces agree ==")
+    print(
+        "\n== policy evaluation of the optimal policy (trace + totals; totals only: "
+        "policy_totals); traces and totals agree =="
+    )
     for name, seconds in times.items():
         print(
-            f"{name:12s} {seconds:8.3f} s   "
+            f"{name:12s} {seconds:9.4g} s   "
             f"plain trace / this {times['plain trace'] / seconds:6.2f}x"
         )
 
