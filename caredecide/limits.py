@@ -66,7 +66,7 @@ the memory budget if that is less. Larger chunks barely run faster (the solver i
 vectorized over draws already) and would leave less room for the kept per-draw results."""
 PSA_CHUNK_BYTES = 64 * 1024**2
 """Working memory of one chunk of a probabilistic run when the budget allows more: chunks
-this size run fastest (about 250 draws of the demo). Larger chunks take fresh memory pages
+this size run fastest (1,000 draws of the demo). Larger chunks take fresh memory pages
 for every array, whose first touch costs more than the per-chunk work saved; measured with
 benchmarks/bench_uncertainty.py."""
 

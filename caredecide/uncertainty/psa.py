@@ -62,6 +62,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from caredecide import jit
 from caredecide.batch import (  # noqa: F401  (the one memory estimate, re-exported)
     RESULT_ARRAYS_PER_CELL,
     draw_bytes,
@@ -80,7 +81,7 @@ from caredecide.chunks import (
 from caredecide.compile import compile_model
 from caredecide.compiled import CompiledModel
 from caredecide.errors import ModelError, ModelTooLargeError, Problem, RunOptionError
-from caredecide.evaluate import evaluate_policies
+from caredecide.evaluate import policy_totals
 from caredecide.limits import (
     CHUNK_MEMORY_BYTES,
     PSA_CHUNK_BYTES,
@@ -221,8 +222,14 @@ class ChunkResult:
 
 
 def _totals(outcome) -> np.ndarray:
-    """(n, 3) cost, QALYs, value of a :class:`~caredecide.evaluate.PolicyOutcome`."""
+    """(n, 3) cost, QALYs, value of a :class:`~caredecide.evaluate.PolicyTotals`."""
     return np.column_stack([outcome.costs, outcome.qalys, outcome.value])
+
+
+def _totals_only(compiled: CompiledModel) -> bool:
+    """Whether :func:`~caredecide.evaluate.policy_totals` keeps no cohort traces here (a
+    finite horizon with the compiled loops): then every policy goes in one pass."""
+    return compiled.n_cycles is not None and jit.available()
 
 
 def solve_chunk(context: PSAContext, start: int, stop: int) -> ChunkResult:
@@ -246,23 +253,25 @@ def _solve_draws(
     )
     if not parameter_sets:  # nothing uncertain: the base case, repeated
         compiled = compiled.take_draws(np.zeros(stop - start, dtype=int))
-    return values, compiled, solve(compiled, context.objective, **dict(context.solve_options))
+    # The analysis reads each draw's policy and value only: no action values are kept.
+    options = {"action_values": False, **dict(context.solve_options)}
+    return values, compiled, solve(compiled, context.objective, **options)
 
 
 def _evaluate_chunk(
     context: PSAContext, values: np.ndarray, compiled, result, start: int, stop: int
 ) -> ChunkResult:
     """Evaluate the optimal and candidate policies of solved draws and count the policies."""
-    # The optimal and the candidate policies (a handful), each on every draw at once;
-    # each cycle's rewards are built once for all of them.
-    # Groups of EVALUATION_GROUP policies bound the traces held at once.
+    # The optimal and the candidate policies (a handful), each on every draw at once, in
+    # one pass over each draw's transitions; only their totals are kept (no traces).
+    # Groups of EVALUATION_GROUP policies bound the traces held at once where the
+    # evaluation keeps them (an infinite horizon, or no compiled loops).
     policies = [result.policy, *(policy[None] for policy in context.candidate_policies)]
+    group = len(policies) if _totals_only(compiled) else EVALUATION_GROUP
     totals = [
         _totals(outcome)
-        for i in range(0, len(policies), EVALUATION_GROUP)
-        for outcome in evaluate_policies(
-            compiled, policies[i : i + EVALUATION_GROUP], context.objective
-        )
+        for i in range(0, len(policies), group)
+        for outcome in policy_totals(compiled, policies[i : i + group], context.objective)
     ]
     optimal = totals[0]
     candidates = (
