@@ -570,8 +570,9 @@ def apply_moves(
     placeholder), ``M`` (D, Tm, A, S, S) the moves (Tm = 1 applies to every cycle); rows
     where ``M`` is the identity are left as they are. ``in_place`` writes into ``P``
     (the compiler's own array) instead of a copy. Each moved row is the sum over the
-    destinations ``j`` some draw moves to of ``M[..., j] * P[row of j]``: one (D, Tp, S)
-    temporary at a time. Also used by :mod:`caredecide.sensitivity.cell_scaling`.
+    destinations ``j`` some draw moves to of ``M[..., j] * P[row of j]``, written into
+    its place (one (D, Tp, S) temporary per further destination). Also used by
+    :mod:`caredecide.sensitivity.cell_scaling`.
     """
     n_states = P.shape[-1]
     away = (M != np.eye(n_states)).any(axis=(0, 1))  # (A, S, S): moved rows, per column
@@ -586,13 +587,19 @@ def apply_moves(
     deferred = in_place and any((int(a), int(s)) in sources for a, s in moved)
     new_rows = []
     for a, s in moved:
-        row = np.zeros((*P.shape[:2], n_states))  # (D, Tp, S)
-        for j in np.flatnonzero(shares[a, s]):
-            row += M[:, :, a, s, j, None] * P[:, :, rows[a, j], j, :]
+        # Written straight into the row unless a later moved row still reads it.
+        row = np.empty((*P.shape[:2], n_states)) if deferred else out[:, :, a, s, :]
+        targets = np.flatnonzero(shares[a, s])
+        if targets.size == 0:
+            row[...] = 0.0
+        for n, j in enumerate(targets):
+            source = P[:, :, rows[a, j], j, :]  # (D, Tp, S)
+            if n == 0:
+                np.multiply(M[:, :, a, s, j, None], source, out=row)
+            else:
+                row += M[:, :, a, s, j, None] * source
         if deferred:
             new_rows.append(row)
-        else:
-            out[:, :, a, s, :] = row
     for (a, s), row in zip(moved, new_rows, strict=False):
         out[:, :, a, s, :] = row
     return out
@@ -688,6 +695,7 @@ def _transitions(
         )
         a, s, to = _indices(parsed.transitions)
         P[:, :, a, s, to] = np.moveaxis(probabilities, 0, -1)
+        del probabilities  # not held while the rate rows are built
 
     if parsed.rates:
         rates = evaluator.stack(parsed.rates, tp)
@@ -698,6 +706,7 @@ def _transitions(
         if not problems:
             _fill_rate_rows(P, parsed.rates, rates, model.settings.cycle_years, **_RATE_ROWS)
             apply_rate_row_clock(P, model)  # rate rows inside tunnels: steps one on
+        del rates
 
     if parsed.rests:
         a, s, to = _indices(parsed.rests)

@@ -78,6 +78,8 @@ STATIONARY_METHODS = ("start", "end", "trapezoid", "half_cycle")
 """Within-cycle methods whose weights are the same every cycle (infinite horizon)."""
 ROW_SUM_TOLERANCE = 1e-8
 """A transition row or the start distribution must sum to 1 within this (absolute)."""
+CHECK_BLOCK_ROWS = 1 << 20
+"""Transition rows summed at once by the contract check (8 MiB of sums)."""
 
 
 @dataclass(frozen=True)
@@ -267,16 +269,21 @@ def _value_problems(c: CompiledModel, rows: bool = True) -> list[str]:
         )
     if not rows:
         return problems
-    # One reduction over the transitions: rows of allowed (state, action) pairs sum to 1.
-    # einsum sums the short last axis several times faster than ndarray.sum; the gap is
-    # formed in place (one (D, Tp, A, S) array at the compile peak, not two).
-    gap = np.einsum("...k->...", c.transition)  # (D, Tp, A, S) row sums
-    gap -= 1.0
-    np.abs(gap, out=gap)
-    bad = ~(gap <= ROW_SUM_TOLERANCE) & allowed.T[None, None]
-    if bad.any():
-        d, t, a, s = (int(i) for i in np.argwhere(bad)[0])
-        problems.append(row_problem(c, d, t, a, s))
+    # Rows of allowed (state, action) pairs sum to 1, a block of draws at a time (the sums
+    # stay small beside the transitions); einsum sums the short last axis several times
+    # faster than ndarray.sum.
+    P = c.transition
+    rows_per_draw = max(1, P[:1].size // max(P.shape[-1], 1))
+    step = max(1, CHECK_BLOCK_ROWS // rows_per_draw)
+    for first in range(0, P.shape[0], step):
+        gap = np.einsum("...k->...", P[first : first + step])  # (d, Tp, A, S) row sums
+        gap -= 1.0
+        np.abs(gap, out=gap)
+        bad = ~(gap <= ROW_SUM_TOLERANCE) & allowed.T[None, None]
+        if bad.any():
+            d, t, a, s = (int(i) for i in np.argwhere(bad)[0])
+            problems.append(row_problem(c, first + d, t, a, s))
+            break
     return problems
 
 

@@ -6,8 +6,8 @@ counts the arrays the compiler (:mod:`caredecide.compile`), the solvers
 (:mod:`caredecide.solvers`) and policy evaluation (:mod:`caredecide.evaluate`) hold at
 their peaks, temporaries included, in bytes of float64 (8), intp (8) and bool (1):
 
-* compile: the compiled arrays plus the largest temporary: the expression stacks, the
-  row sums of the final check, one moved row, or for rate rows the generators and the
+* compile: the compiled arrays plus the largest temporary: the expression stacks, a
+  block of row sums in the final check, one moved row, or for rate rows the generators and the
   exponential's work arrays (``RATE_WORK_COPIES`` copies of the generator stack with the
   compiled loop, ``RATE_WORK_COPIES_NUMPY`` without; at most ``EXPONENTIAL_BLOCK``
   matrices at once, and the rate rows of every (draw, cycle): the worst case, when no two
@@ -27,6 +27,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from caredecide.compiled import CHECK_BLOCK_ROWS
 from caredecide.errors import ModelTooLargeError
 from caredecide.limits import DISPLAY_CAP
 from caredecide.rate_rows import EXPONENTIAL_BLOCK
@@ -44,9 +45,9 @@ degrees)."""
 STACK_COPIES = 2
 """Copies of an expression stack (n_entries, D, T) alive at once (values, check masks,
 the moved copy scattered into the arrays)."""
-ROW_SUM_COPIES = 2
-"""Copies of the (D, Tp, A, S) row sums alive at once in the compiled model's check
-(sums, deviations, masks)."""
+ROW_SUM_BYTES = FLOAT + 3
+"""Bytes per transition row while the compiled model's check sums a block of rows (the
+sum and three masks)."""
 MOVE_ROW_COPIES = 2
 """(D, Tp, S) arrays alive while a moved row is built (the row, one product)."""
 ENTRY_OBJECT_BYTES = 1600
@@ -119,12 +120,9 @@ def compile_peak_bytes(shape: PipelineShape) -> int:
     temporaries (expression stacks, the row sums of the final check, the rate rows'
     exponentials, one moved row at a time)."""
     D, S, A, tp = shape.n_draws, shape.n_states, shape.n_actions, shape.transition_cycles
-    per_cycle = max(
-        STACK_COPIES * shape.n_entries,
-        ROW_SUM_COPIES * A * S,
-        MOVE_ROW_COPIES * S if shape.move_rows else 0,
-    )
-    temporaries = FLOAT * D * tp * per_cycle
+    per_cycle = max(STACK_COPIES * shape.n_entries, MOVE_ROW_COPIES * S if shape.move_rows else 0)
+    row_sums = ROW_SUM_BYTES * min(D * tp * A * S, CHECK_BLOCK_ROWS)  # a block at a time
+    temporaries = max(FLOAT * D * tp * per_cycle, row_sums)
     if shape.rate_actions:
         # Worst case: no two (draw, cycle) columns of rates alike and no common exit;
         # generators are exponentiated EXPONENTIAL_BLOCK at a time, the rate rows of

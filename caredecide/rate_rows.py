@@ -127,16 +127,18 @@ def fill_rate_rows(
     inverse: np.ndarray | None = None  # (D Tp,) column of each (draw, cycle); None: itself
     per_draw = False  # every draw's remaining rates the same in every cycle
     if exits:
-        remaining = rates.copy()
+        # The rate each entry loses to the factoring: mu for entries into k, else none
+        # (rate - mu >= 0: mu is the smallest of them).
+        taken: list[np.ndarray | None] = [None] * n_entries
         for e, mu in zip(exits, exit_rates, strict=True):
-            remaining[e.entries] -= mu  # >= 0: mu is the smallest of them
-        steady = _steady_draws(remaining, rates)
+            for n in e.entries:
+                taken[n] = mu
+        steady = _steady_draws(rates, taken)
         if steady.any():
-            columns, inverse = _picked_columns(remaining, steady)
+            columns, inverse = _picked_columns(rates, taken, steady)
             per_draw = bool(steady.all())
         else:  # nothing to gain: every draw's remaining rates change with the cycle
             exits, exit_rates = [], []
-        del remaining
     if not exits:
         columns = np.moveaxis(rates, 0, -1).reshape(n_draws * tp, n_entries)
     if deduplicate:
@@ -233,30 +235,38 @@ def _exponentiate(
     return out
 
 
-def _steady_draws(remaining: np.ndarray, rates: np.ndarray) -> np.ndarray:
-    """(D,) bool: draws whose ``remaining`` rates (n, D, Tp) do not change with the cycle,
-    to round-off relative to the ``rates`` (n, D, Tp) they came from."""
-    steady = np.ones(remaining.shape[1], dtype=bool)
-    for left, given in zip(remaining, rates, strict=True):  # (D, Tp) at a time
+def _steady_draws(rates: np.ndarray, taken: list[np.ndarray | None]) -> np.ndarray:
+    """(D,) bool: draws whose remaining rates (``rates`` (n, D, Tp) less ``taken``, a (D, Tp)
+    array or None per entry) do not change with the cycle, to round-off relative to the
+    rates they came from. One entry at a time: no copy of the rates."""
+    steady = np.ones(rates.shape[1], dtype=bool)
+    for given, mu in zip(rates, taken, strict=True):  # (D, Tp) at a time
+        left = given if mu is None else given - mu
         tolerance = STEADY_ROUND_OFF * np.abs(given).max(axis=1)  # (D,)
         steady &= np.abs(left - left[:, :1]).max(axis=1) <= tolerance
     return steady
 
 
-def _picked_columns(remaining: np.ndarray, steady: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Columns of ``remaining`` (n, D, Tp) to exponentiate: the first cycle's of a
-    ``steady`` draw, every cycle's of the others; and the column of each (draw, cycle).
+def _picked_columns(
+    rates: np.ndarray, taken: list[np.ndarray | None], steady: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Columns of remaining rates to exponentiate: the first cycle's of a ``steady`` draw,
+    every cycle's of the others; and the column of each (draw, cycle).
 
     Returns
     -------
     columns : numpy.ndarray, shape (N, n)
     inverse : numpy.ndarray, shape (D Tp,)
     """
-    n_draws, tp = remaining.shape[1:]
+    n_draws, tp = rates.shape[1:]
     picked = np.zeros((n_draws, tp), dtype=bool)
     picked[:, 0] = True
     picked[~steady] = True
     inverse = (np.cumsum(picked) - 1).reshape(n_draws, tp)
     inverse[steady] = inverse[steady, :1]
     draw, cycle = np.nonzero(picked)
-    return remaining[:, draw, cycle].T.copy(), inverse.ravel()
+    columns = rates[:, draw, cycle]  # (n, N), a copy
+    for n, mu in enumerate(taken):
+        if mu is not None:
+            columns[n] -= mu[draw, cycle]
+    return columns.T.copy(), inverse.ravel()

@@ -229,11 +229,14 @@ def _one_way_like_sets(demo) -> pd.DataFrame:
     return pd.concat(frames, ignore_index=True)
 
 
-def test_deduplicated_rate_rows_equal_the_plain_result_exactly(demo, monkeypatch):
+@pytest.mark.parametrize("factor", [True, False])
+def test_deduplicated_rate_rows_equal_the_plain_result_exactly(demo, monkeypatch, factor):
     # Each distinct (draw, cycle) column of rates is exponentiated once; the result must
-    # be bit for bit the one without de-duplication.
+    # be bit for bit the one without de-duplication (with and without the common exit
+    # factored out).
     import caredecide.compile as compile_module
 
+    monkeypatch.setitem(compile_module._RATE_ROWS, "factor", factor)
     sets = _one_way_like_sets(demo)
     deduplicated = compile_model(demo, sets)
     monkeypatch.setitem(compile_module._RATE_ROWS, "deduplicate", False)
@@ -242,14 +245,16 @@ def test_deduplicated_rate_rows_equal_the_plain_result_exactly(demo, monkeypatch
 
 
 def test_rate_rows_agree_with_the_former_uniformization_path(demo, monkeypatch):
-    # The former path (uniformization of whole matrices, every draw and cycle) is the
-    # reference: same arrays within round-off, probability rows untouched.
+    # The former path (uniformization of whole matrices, every draw and cycle, no common
+    # exit factored out) is the reference: same arrays within round-off, probability
+    # rows untouched.
     import caredecide.compile as compile_module
 
     sets = _one_way_like_sets(demo).iloc[::3]
     current = compile_model(demo, sets)
     monkeypatch.setitem(compile_module._RATE_ROWS, "deduplicate", False)
     monkeypatch.setitem(compile_module._RATE_ROWS, "method", "uniformization")
+    monkeypatch.setitem(compile_module._RATE_ROWS, "factor", False)
     former = compile_model(demo, sets)
     np.testing.assert_allclose(current.transition, former.transition, rtol=0.0, atol=1e-12)
     stage_1 = demo.state_ids.index("stage_1")  # a [transitions] row: no exponential at all
