@@ -278,6 +278,12 @@ def solve_batch(
             f"keep names unknown field(s) {unknown}; expected any of "
             f"{RESULT_FIELDS + OUTCOME_FIELDS}"
         )
+    not_kept = [k for k in keep if k in ("q_values", "action_gap", "next_best_action")]
+    if solve_options.get("action_values", True) is False and not_kept:
+        raise SolverError(
+            f"keep names {not_kept}, which a solve with action_values = False does not keep; "
+            "drop them from keep or solve with action_values = True"
+        )
     if objective is None:
         objective = Objective.from_settings(model.settings)
     n_draws = count_parameter_sets(parameter_sets)

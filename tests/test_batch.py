@@ -86,9 +86,18 @@ def test_chunk_size_follows_the_memory_budget(model):
     assert chunk_size_for(model, 5, 10**12) == 5  # never above the number of draws
 
 
+def test_lean_batch_keeps_policy_and_value(model, draws):
+    lean = solve_batch(model, draws, keep=("policy", "value", "totals"), action_values=False)
+    full = solve_batch(model, draws, keep=("policy", "value", "totals"))
+    np.testing.assert_array_equal(lean.fields["policy"], full.fields["policy"])
+    np.testing.assert_allclose(lean.fields["value"], full.fields["value"], rtol=1e-12)
+
+
 def test_batch_errors(model, draws):
     with pytest.raises(SolverError, match=r"keep names unknown field\(s\) \['policies'\]"):
         solve_batch(model, draws, keep=("policies",))
+    with pytest.raises(SolverError, match=r"keep names \['action_gap'\], which a solve with"):
+        solve_batch(model, draws, action_values=False)  # the default keep has action_gap
     with pytest.raises(RunOptionError, match="chunk_size = 0 is not allowed"):
         solve_batch(model, draws, chunk_size=0)
     with pytest.raises(SolverError, match="parameter_sets must be None"):
