@@ -737,6 +737,6 @@ class _SolveDrawsJob:
         )
         if not sets:
             compiled = compiled.take_draws(np.zeros(stop - start, dtype=int))
-        solved = solve(compiled, self.objective)
+        solved = solve(compiled, self.objective, action_values=False)  # policy, value only
         optimal = solved.value[:, 0] @ compiled.start_distribution
         return compiled, optimal, solved.policy.astype(np.int8)
