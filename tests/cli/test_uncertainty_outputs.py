@@ -79,3 +79,21 @@ def test_long_tables_of_numbers_read_back_as_pandas_writes_them(tmp_path):
     short = frame.head(5).assign(label="x")
     _write_csv(short, tmp_path / "short.csv")
     assert (tmp_path / "short.csv").read_text() == short.to_csv(index=False)
+
+
+def test_draws_plane_labels_the_chart_not_each_of_thousands_of_points():
+    # One description for the scatter; no screen-reader label per draw (common practice
+    # for dense scatter plots: a label per mark is noise to a screen reader).
+    import vl_convert
+
+    from caredecide.decision_charts import make_draws_plane_chart
+
+    frame = pd.DataFrame(
+        {"strategy": ["a", "b"] * 50, "draw": range(100), "cost": range(100), "qalys": range(100)}
+    )
+    spec = make_draws_plane_chart(frame).to_dict()
+    assert spec["mark"]["aria"] is False
+    assert spec["description"].startswith("Scatter plot of the cost (y) and QALYs (x)")
+    svg = vl_convert.vegalite_to_svg(spec)
+    # 100 points drawn; the only labels left are the axes', the legend's and the title's.
+    assert svg.count("<path") >= 100 and svg.count("aria-label") == 4
