@@ -370,6 +370,9 @@ def test_lean_solve_keeps_no_action_values_on_either_path():
         np.testing.assert_array_equal(lean.indifferent, full.indifferent)
         frame = lean.to_frame()
         assert frame["action_gap"].isna().all() and (frame["next_best_action"] == "").all()
+    with_history = solve(compiled, objective, action_values=False, record_history=True)
+    assert with_history.q_values is None and with_history.history is not None
+    np.testing.assert_allclose(with_history.history[0].q_values, full.q_values[:, -1])
 
 
 def test_lean_solve_option_must_be_true_or_false():

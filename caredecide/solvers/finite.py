@@ -160,6 +160,8 @@ def backward_induction(
             tie_absolute, tie_relative, history,
         )  # fmt: skip
 
+    if not action_values:  # computed for the history only: not kept in the result
+        q_values = gap = next_best = None
     return build_result(
         compiled,
         objective,
