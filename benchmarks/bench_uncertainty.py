@@ -58,12 +58,13 @@ def timed(owner, name, step):
 
 if {force_threads!r}:
     psa.usable_threads = lambda requested: requested
-analyse = psa.analyse_uncertainty
+entry = "analyse_uncertainty" if hasattr(psa, "analyse_uncertainty") else "run_psa"  # older
+analyse = getattr(psa, entry)
 def counting(*args, **kwargs):
     result = analyse(*args, **kwargs)
     split["threads"] = getattr(result, "threads", 1)
     return result
-psa.analyse_uncertainty = counting
+setattr(psa, entry, counting)
 if {split_steps!r}:
     timed(ParameterSampler, "draw", "sampling")
     timed(psa, "compile_model", "compile")
