@@ -64,7 +64,7 @@ CHUNK_MEMORY_BYTES = 1024**3
 """Working-memory budget of one chunk of a probabilistic run when none is given: 1 GiB, or
 the memory budget if that is less. Larger chunks barely run faster (the solver is
 vectorized over draws already) and would leave less room for the kept per-draw results."""
-PSA_CHUNK_BYTES = 64 * 1024**2
+PSA_CHUNK_BYTES = 128 * 1024**2
 """Working memory of one chunk of a probabilistic run when the budget allows more: chunks
 this size run fastest (1,000 draws of the demo). Larger chunks take fresh memory pages
 for every array, whose first touch costs more than the per-chunk work saved; measured with
