@@ -5,7 +5,10 @@ Not a test: prints CPU times measured in this run on this machine, and their rat
 Grid: S in {12, 50, 200} states, A in {2, 3} actions, D in {1, 1000, 10000} draws of a
 SYNTHETIC stationary model (invented numbers: each state moves to itself, the next few
 states and an absorbing state, with probabilities drawn per draw; rewards drawn per draw),
-gamma = 1 / 1.035, tolerance 1e-8 relative to the largest |value| of each draw.
+gamma = 1 / 1.035, tolerance 1e-8 relative to the largest |value| of each draw. These
+moves never go back, so the project's exact policy evaluation solves by substitution;
+``--cyclic`` adds a step back to the previous state in every row (the moves then form
+cycles and it factorises, as the references always do).
 
 For every cell, interleaved, median CPU seconds of the repeats:
 
@@ -55,8 +58,9 @@ TIMED_QUANTECON = {12: 200, 50: 60, 200: 10}
 CALLS_ONE_DRAW = {12: 40, 50: 10, 200: 2}  # D = 1: calls per timing
 
 
-def synthetic_model(S: int, A: int, D: int, seed: int = 5) -> CompiledModel:
-    """A SYNTHETIC stationary model (invented numbers); last state absorbing."""
+def synthetic_model(S: int, A: int, D: int, seed: int = 5, cyclic: bool = False) -> CompiledModel:
+    """A SYNTHETIC stationary model (invented numbers); last state absorbing; ``cyclic``:
+    every live state but the first also steps back one state."""
     rng = np.random.default_rng(seed)
     P = np.zeros((D, 1, A, S, S))
     live = np.arange(S - 1)
@@ -66,6 +70,8 @@ def synthetic_model(S: int, A: int, D: int, seed: int = 5) -> CompiledModel:
             rng.uniform(0.2, 1.0, (S - 1, D, A)) * (0.5 ** (step * (1 + np.arange(A))))[None, None]
         )
     P[:, 0, :, live, S - 1] += rng.uniform(0.01, 0.05, (S - 1, D, A))
+    if cyclic:
+        P[:, 0, :, live[1:], live[:-1]] += rng.uniform(0.01, 0.1, (S - 2, D, A))
     P[:, 0, :, S - 1, S - 1] = 1.0
     P /= P.sum(-1, keepdims=True)
     qaly = np.broadcast_to(np.linspace(0.95, 0.3, S), (D, 1, S)) * rng.uniform(0.9, 1.0, (D, 1, 1))
@@ -116,11 +122,11 @@ def block_for(S: int, A: int) -> int:
     return max(1, 2**20 // (A * S * S * 8))
 
 
-def cell(S: int, A: int, D: int, repeats: int) -> dict[str, object]:
+def cell(S: int, A: int, D: int, repeats: int, cyclic: bool = False) -> dict[str, object]:
     n = min(D, TIMED[S])
     n_qe = min(n, TIMED_QUANTECON[S])
     calls = CALLS_ONE_DRAW[S] if D == 1 else 1
-    model = synthetic_model(S, A, n)
+    model = synthetic_model(S, A, n, cyclic=cyclic)
     small = model.take_draws(slice(0, n_qe))
     block = block_for(S, A)
     cases = {}
@@ -169,8 +175,11 @@ def main() -> None:
     parser.add_argument("--repeats", type=int, default=3)
     parser.add_argument("--states", type=int, nargs="*", default=[12, 50, 200])
     parser.add_argument("--draws", type=int, nargs="*", default=[1, 1000, 10000])
+    parser.add_argument("--cyclic", action="store_true", help="add a step back to every row")
     args = parser.parse_args()
     print("SYNTHETIC benchmark models (invented numbers); research use only.")
+    if args.cyclic:
+        print("Moves with a step back (cyclic): exact evaluation factorises.")
     print(
         "CPU seconds (median, interleaved; large cells timed on the first draws and scaled). "
         "Ratios = other / ours: > 1 means ours is faster."
@@ -189,7 +198,7 @@ def main() -> None:
     for S in args.states:
         for A in (2, 3):
             for D in args.draws:
-                r = cell(S, A, D, args.repeats)
+                r = cell(S, A, D, args.repeats, args.cyclic)
                 row = [str(S), str(A), str(D), f"{r['timed']} ({r['timed_qe']})"]
                 for short in ("PI", "VI"):
                     ours = r[f"ours {short}"]

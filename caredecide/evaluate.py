@@ -240,7 +240,7 @@ def evaluate_policy(
     """
     sparse = _sparse_form(compiled)
     fused = compiled.n_cycles is not None and kernels.available() and not sparse
-    check_compiled(compiled, rows=not fused)  # the fused loop checks the rows it reads
+    check_compiled(compiled, rows=not (fused or sparse))  # those check the rows they read
     policy = check_policy(compiled, policy)
     if compiled.n_cycles is None:
         return _evaluate_infinite(compiled, policy[:, 0], objective)

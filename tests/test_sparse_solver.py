@@ -289,3 +289,28 @@ def test_evaluation_of_a_large_sparse_model_uses_sparse_rows_with_the_same_total
     np.testing.assert_allclose(
         outcome.value, result.expected_value(compiled.start_distribution), rtol=1e-10
     )
+
+
+@pytest.mark.parametrize("kernels_on", [True, False])
+@pytest.mark.parametrize(
+    ("n_cycles", "method"),
+    [(None, "policy_iteration"), (None, "value_iteration"), (6, "backward_induction")],
+)
+def test_a_bad_row_is_caught_as_the_sparse_rows_are_read(kernels_on, n_cycles, method):
+    # The rows are checked while the dense arrays are read into sparse form (no separate
+    # pass): the message of the compiled-model check, naming state, action, draw, cycle.
+    from tests.test_kernels import _numpy_path
+
+    compiled = replace(
+        _finite_sparse_model(SPARSE_MIN_STATES, 6, D=2), n_cycles=n_cycles, discount_costs=0.015
+    )
+    compiled.transition[1, 0, 0, 7, 7] += 0.5  # arrays stay writable: solve checks again
+    pattern = (
+        r"transition row of state 's7' under action 'a0' \(draw 1, cycle 0\) sums to 1\.(5|49999)"
+    )
+    call = solve if kernels_on else lambda *a, **k: _numpy_path(solve, *a, **k)
+    with pytest.raises(SolverError, match=pattern):
+        call(compiled, QALYS, method=method, transition_form="sparse")
+    if n_cycles is not None:  # the evaluation of a policy reads the same sparse rows
+        with pytest.raises(SolverError, match=pattern):
+            evaluate_policy(compiled, 0, QALYS)

@@ -143,7 +143,6 @@ def solve(
                 )
             form = "dense"
         if form == "sparse":
-            check_compiled(compiled)  # the rows too (the dense kernel checks them as it reads)
             result = sparse_backward_induction(
                 compiled,
                 objective,

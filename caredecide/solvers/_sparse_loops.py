@@ -3,7 +3,7 @@ through :func:`caredecide.solvers.kernels.sparse_kernels`).
 
 ``scipy.sparse.csr_array(dense)`` finds the non-zeros with ``numpy.nonzero`` (index arrays
 of every non-zero, then a sort); two plain passes over the rows (count, then copy) read the
-dense array at memory speed instead.
+dense array at memory speed instead, and the first pass checks the row sums on the way.
 """
 
 import numpy as np
@@ -11,18 +11,25 @@ from numba import njit
 
 
 @njit(cache=True, nogil=True)
-def csr_from_dense(P, block):
+def csr_from_dense(P, block, checked, tolerance, bad):
     # P (K, S) C-contiguous rows; returns (indptr (K + 1,), indices, data) of its CSR form
     # with the column of row k shifted by (k // block) * S (block > 0: a block-diagonal
-    # matrix of K / block blocks of S columns; block = 0: no shift).
+    # matrix of K / block blocks of S columns; block = 0: no shift). Rows with checked[k]
+    # must sum to 1 within the tolerance (the compiled-model check, done while reading):
+    # the first that does not goes in bad[0] (left as is when all do).
     K, S = P.shape
     indptr = np.empty(K + 1, dtype=np.int64)
     indptr[0] = 0
     for k in range(K):
         count = 0
+        total = 0.0
         for j in range(S):
-            if P[k, j] != 0.0:
+            x = P[k, j]
+            total += x
+            if x != 0.0:
                 count += 1
+        if checked[k] and not abs(total - 1.0) <= tolerance and bad[0] < 0:
+            bad[0] = k
         indptr[k + 1] = indptr[k] + count
     indices = np.empty(indptr[K], dtype=np.int64)
     data = np.empty(indptr[K])

@@ -27,7 +27,7 @@ from typing import Any
 
 import numpy as np
 
-from caredecide.compiled import CompiledModel
+from caredecide.compiled import ROW_SUM_TOLERANCE, CompiledModel
 from caredecide.objective import Objective
 from caredecide.solvers import kernels
 from caredecide.solvers.bellman import (
@@ -36,6 +36,7 @@ from caredecide.solvers.bellman import (
     cycle_rewards,
     decision_state_mask,
     greedy_choice,
+    raise_bad_row,
 )
 from caredecide.solvers.result import PolicyResult, build_result
 
@@ -70,24 +71,52 @@ def choose_form(transition: np.ndarray, requested: str) -> str:
     return "sparse" if density <= SPARSE_MAX_DENSITY else "dense"
 
 
-def _rows(P: np.ndarray):
-    """CSR matrix (A S, S) of one draw's stationary transitions (A, S, S)."""
-    A, S = P.shape[0], P.shape[1]
-    return _csr(P.reshape(A * S, S), block=0)
+def _checked_rows(compiled: CompiledModel, draws: slice | int, tp: int, block: bool):
+    """CSR rows of the transitions of ``draws`` at time slice ``tp``, rows checked.
+
+    ``block=False`` (one draw ``draws``): (A S, S), row ``a S + s``. ``block=True``:
+    every draw and action of ``draws`` as a block-diagonal (K S, K S) matrix, K = draws x
+    A (:func:`_block_rows`). Each row of an allowed (state, action) pair must sum to 1
+    (the compiled-model check, done as the dense rows are read).
+
+    Raises
+    ------
+    SolverError
+        Naming the first row that does not.
+    """
+    P = compiled.transition[draws, tp]  # (A, S, S) or (Dk, A, S, S)
+    S, A = compiled.n_states, compiled.n_actions
+    rows = P.reshape(-1, S)
+    checked = np.tile(np.asarray(compiled.allowed, dtype=bool).T.ravel(), rows.shape[0] // (A * S))
+    bad = np.full(1, -1, dtype=np.int64)
+    matrix = _csr(rows, S if block else 0, checked, bad)
+    if bad[0] >= 0:
+        first = (draws.start or 0) if isinstance(draws, slice) else draws
+        d, a, s = np.unravel_index(int(bad[0]), (rows.shape[0] // (A * S), A, S))
+        raise_bad_row(compiled, np.array([first + d, tp, a, s]))
+    return matrix
 
 
-def _csr(rows: np.ndarray, block: int):
+def _csr(rows: np.ndarray, block: int, checked=None, bad=None):
     """CSR form of dense rows (K, S); ``block > 0``: row ``k`` moved to the columns of
-    block ``k // block`` (a block-diagonal matrix (K, K / block * S))."""
+    block ``k // block`` (a block-diagonal matrix (K, K / block * S)). With ``checked``
+    (K,) bool, the first checked row not summing to 1 goes in ``bad[0]``."""
     from scipy import sparse
 
     K, S = rows.shape
     width = S if block == 0 else (K // block) * S
+    if checked is None:
+        checked = np.zeros(K, dtype=bool)
+    if bad is None:
+        bad = np.full(1, -1, dtype=np.int64)
     if kernels.available():
         indptr, indices, data = kernels.sparse_kernels().csr_from_dense(
-            np.ascontiguousarray(rows, dtype=float), block
+            np.ascontiguousarray(rows, dtype=float), block, checked, ROW_SUM_TOLERANCE, bad
         )
         return sparse.csr_array((data, indices, indptr), shape=(K, width))
+    off = checked & ~(np.abs(rows.sum(axis=-1) - 1.0) <= ROW_SUM_TOLERANCE)
+    if off.any():
+        bad[0] = int(np.flatnonzero(off)[0])
     matrix = sparse.csr_array(rows)
     if block == 0:
         return matrix
@@ -133,7 +162,7 @@ def sparse_iterate(
     sweeps = np.zeros(D, dtype=int)
     done = np.zeros(D, dtype=bool)
     for d in range(D):
-        rows = _rows(compiled.transition[d, 0])
+        rows = _checked_rows(compiled, d, 0, block=False)
         R = now[d].T.copy()
         if arrival[d].any():  # rewards on arrival: each action's rows times its own vector
             for a in range(A):
@@ -255,7 +284,7 @@ def sparse_backward_induction(
     for t in range(T - 1, -1, -1):
         tp = min(t, Tp - 1)
         if tp not in blocks:
-            blocks = {tp: _block_rows(compiled.transition[:, tp].reshape(D * A, S, S))}
+            blocks = {tp: _checked_rows(compiled, slice(None), tp, block=True)}
         now, arrival = cycle_rewards(compiled, objective, t)  # (D, S, A), (D, A, S)
         following = (arrival + value[:, t + 1, None, :]).reshape(D * A * S)
         expected = (blocks[tp] @ following).reshape(D, A, S)
@@ -331,7 +360,7 @@ def sparse_trace_and_flows(
     for t in range(T):
         tp = min(t, Tp - 1)
         if tp not in blocks:
-            block = _block_rows(compiled.transition[:, tp].reshape(D * A, S, S))
+            block = _checked_rows(compiled, slice(None), tp, block=True)
             blocks = {tp: (block, block.T.tocsr())}
         block, moved = blocks[tp]
         chosen = policy[:, min(t, Tpi - 1)]  # (D, S)

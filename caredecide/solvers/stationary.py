@@ -10,8 +10,9 @@ outcomes and costs) the Bellman operator is (Puterman 1994, chapter 6)::
   greedy policy is eps-optimal and ``||v_{n+1} - v*|| <= gamma ||v_{n+1} - v_n|| / (1 - gamma)
   < eps / 2`` (Theorem 6.3.1, from memory);
 * policy iteration evaluates each policy exactly by a batched linear solve of
-  ``(I - gamma P_pi) v = r_pi`` (``numpy.linalg.solve`` on (D, S, S)) and stops when the
-  policy no longer changes (Theorem 6.4.2);
+  ``(I - gamma P_pi) v = r_pi`` (``numpy.linalg.solve`` on (D, S, S); the compiled loops
+  solve each draw by substitution when the policy's moves form no cycle, else by LU)
+  and stops when the policy no longer changes (Theorem 6.4.2);
 * modified policy iteration replaces the exact evaluation by ``m`` sweeps of
   ``v <- r_pi + gamma P_pi v`` (section 6.5; ``m = 0`` is value iteration), starting from
   ``v_0 = min r / (1 - gamma)`` so that ``T v_0 >= v_0``, with the same stopping rule.
@@ -395,8 +396,8 @@ def solve_stationary(
         and not record_history
         and kernels.available()
     )
-    if not fused:
-        check_compiled(compiled)  # the transition rows (the compiled loops check them as read)
+    if not fused and form == "dense":
+        check_compiled(compiled)  # the rows (the loops and the sparse form check them as read)
     if fused:
         options = {
             "tolerance": tolerance, "relative": relative, "max_iterations": max_iterations,
