@@ -10,13 +10,14 @@ import numpy as np
 from numba import njit
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, fastmath={"reassoc", "contract"})
 def csr_from_dense(P, block, checked, tolerance, bad):
     # P (K, S) C-contiguous rows; returns (indptr (K + 1,), indices, data) of its CSR form
     # with the column of row k shifted by (k // block) * S (block > 0: a block-diagonal
     # matrix of K / block blocks of S columns; block = 0: no shift). Rows with checked[k]
     # must sum to 1 within the tolerance (the compiled-model check, done while reading):
-    # the first that does not goes in bad[0] (left as is when all do).
+    # the first that does not goes in bad[0] (left as is when all do). The row sums may be
+    # reassociated (SIMD lanes), so they differ from numpy's in the last bits.
     K, S = P.shape
     indptr = np.empty(K + 1, dtype=np.int64)
     indptr[0] = 0
