@@ -56,15 +56,12 @@ def timed(owner, name, step):
             split[step] = split.get(step, 0.0) + time.process_time() - begin
     setattr(owner, name, wrapper)
 
-if {force_threads!r}:
-    psa.usable_threads = lambda requested: requested
-entry = "analyse_uncertainty" if hasattr(psa, "analyse_uncertainty") else "run_psa"  # older
-analyse = getattr(psa, entry)
-def counting(*args, **kwargs):
-    result = analyse(*args, **kwargs)
-    split["threads"] = getattr(result, "threads", 1)
-    return result
-setattr(psa, entry, counting)
+if hasattr(psa, "usable_threads"):  # versions with --workers threads: count them
+    usable = (lambda requested: requested) if {force_threads!r} else psa.usable_threads
+    def counting(requested):
+        split["threads"] = usable(requested)
+        return split["threads"]
+    psa.usable_threads = counting
 if {split_steps!r}:
     timed(ParameterSampler, "draw", "sampling")
     timed(psa, "compile_model", "compile")
