@@ -132,9 +132,11 @@ def test_sparse_form_with_modified_policy_iteration_is_refused():
         )
 
 
-def _finite_sparse_model(S, T, *, D=1, A=2, time_varying=False, seed=4):
+def _finite_sparse_model(S, T, *, D=1, A=2, time_varying=False, seed=4, moves=False):
     """A progressive model with 4 non-zeros per row, rewards of every kind, trapezoid
-    within-cycle weights (rewards on arrival too) and different discount rates."""
+    within-cycle weights (rewards on arrival too) and different discount rates; ``moves``:
+    the last action also moves the cohort one state on at the decision (and carries a
+    cost per cycle under it)."""
     rng = np.random.default_rng(seed)
     Tp = T if time_varying else 1
     P = np.zeros((D, Tp, A, S, S))
@@ -150,8 +152,16 @@ def _finite_sparse_model(S, T, *, D=1, A=2, time_varying=False, seed=4):
     allowed[: S // 3, A - 1] = False  # the last action only from a third of the way on
     u = rng.uniform(0.3, 1.0, (D, 1, S))
     u[..., -1] = 0.0
+    extra = {}
+    if moves:
+        M = np.broadcast_to(np.eye(S), (D, 1, A, S, S)).copy()
+        M[:, :, A - 1, live, :] = 0.0
+        M[:, :, A - 1, live, np.minimum(live + 1, S - 2)] = 1.0
+        P[:, :, A - 1] = M[:, :1, A - 1] @ P[:, :, A - 1]  # the move, then the cycle
+        extra = {"move": M, "state_action_cost": rng.uniform(0, 300, (D, 1, S, A))}
     return make_compiled(
         P,
+        **extra,
         state_qaly=u,
         state_cost=rng.uniform(0, 500, (D, 1, S)),
         decision_cost=np.concatenate(
@@ -167,13 +177,20 @@ def _finite_sparse_model(S, T, *, D=1, A=2, time_varying=False, seed=4):
     )
 
 
-@pytest.mark.parametrize("time_varying", [False, True])
-def test_sparse_backward_induction_equals_dense(time_varying):
+@pytest.mark.parametrize("kernels_on", [True, False])
+@pytest.mark.parametrize(("time_varying", "moves"), [(False, False), (True, False), (False, True)])
+def test_sparse_backward_induction_equals_dense(time_varying, moves, kernels_on):
     # Same recursion, two storage forms (common practice: a storage change never changes
-    # the answer beyond rounding): identical policies, values to 1e-10 relative.
-    compiled = _finite_sparse_model(SPARSE_MIN_STATES + 30, 12, D=2, time_varying=time_varying)
+    # the answer beyond rounding): identical policies, values to 1e-10 relative; with and
+    # without the compiled loops, decision-time moves and costs under an action.
+    from tests.test_kernels import _numpy_path
+
+    compiled = _finite_sparse_model(
+        SPARSE_MIN_STATES + 30, 12, D=2, time_varying=time_varying, moves=moves
+    )
     objective = Objective("net_benefit", 25_000.0)
-    sparse = solve(compiled, objective, transition_form="sparse", terminal_value=0.0)
+    call = solve if kernels_on else lambda *a, **k: _numpy_path(solve, *a, **k)
+    sparse = call(compiled, objective, transition_form="sparse", terminal_value=0.0)
     dense = solve(compiled, objective, transition_form="dense")
     assert sparse.transition_form == "sparse" and dense.transition_form == "dense"
     assert "sparse transitions" in sparse.message

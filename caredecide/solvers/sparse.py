@@ -36,7 +36,9 @@ from caredecide.solvers.bellman import (
     cycle_rewards,
     decision_state_mask,
     greedy_choice,
+    kernel_arrays,
     raise_bad_row,
+    weight_table,
 )
 from caredecide.solvers.result import PolicyResult, build_result
 
@@ -245,9 +247,11 @@ def sparse_backward_induction(
 
         Q_t(s, a) = now_t(s, a) + sum_s' P_t(s'|s, a) (arrival_t(a, s') + V_{t+1}(s'))
 
-    with the expectations of all draws, actions and states of a cycle in one sparse
-    product (:func:`_block_rows`); the sparse copy of a time slice of ``P`` is made once
-    and reused by every cycle it covers.
+    with transitions constant over the cycles: one compiled pass over each draw's cycles
+    (the reward arithmetic of the dense loop, the expectation over each row's non-zeros);
+    otherwise (or without the compiled loops) the expectations of all draws, actions and
+    states of a cycle in one sparse product (:func:`_block_rows`), the sparse copy of a
+    time slice of ``P`` made once and reused by every cycle it covers.
 
     Parameters
     ----------
@@ -271,7 +275,6 @@ def sparse_backward_induction(
         raise SolverError("backward induction needs a finite number of cycles (n_cycles)")
     D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
     decision_states = decision_state_mask(compiled)
-    not_allowed = ~np.asarray(compiled.allowed, dtype=bool)
     value = np.empty((D, T + 1, S))
     q_values = np.empty((D, T, S, A))
     policy = np.empty((D, T, S), dtype=np.intp)
@@ -280,20 +283,30 @@ def sparse_backward_induction(
     indifferent = np.empty((D, T, S), dtype=bool)
     value[:, T] = terminal
     Tp = compiled.transition.shape[1]
-    blocks: dict[int, Any] = {}  # time slice -> CSR of every draw and action
-    for t in range(T - 1, -1, -1):
-        tp = min(t, Tp - 1)
-        if tp not in blocks:
-            blocks = {tp: _checked_rows(compiled, slice(None), tp, block=True)}
-        now, arrival = cycle_rewards(compiled, objective, t)  # (D, S, A), (D, A, S)
-        following = (arrival + value[:, t + 1, None, :]).reshape(D * A * S)
-        expected = (blocks[tp] @ following).reshape(D, A, S)
-        Q = q_values[:, t]
-        np.add(now, expected.transpose(0, 2, 1), out=Q)
-        Q[:, not_allowed] = -np.inf
-        (policy[:, t], value[:, t], gap[:, t], next_best[:, t], indifferent[:, t]) = greedy_choice(
-            Q, decision_states, tie_absolute, tie_relative
-        )
+    if Tp == 1 and kernels.available():  # one compiled pass over each draw's cycles
+        rows = _checked_rows(compiled, slice(None), 0, block=False)  # (D A S, S)
+        kernels.sparse_kernels().backward_induction(
+            rows.indptr, rows.indices, rows.data, *kernel_arrays(compiled)[1:],
+            weight_table(compiled), float(objective.outcome_weight),
+            float(objective.cost_weight), np.ascontiguousarray(compiled.allowed, dtype=bool),
+            decision_states, float(tie_absolute), float(tie_relative),
+            value, policy, indifferent, q_values, gap, next_best,
+        )  # fmt: skip
+    else:  # numpy: one sparse product per cycle for every draw and action
+        not_allowed = ~np.asarray(compiled.allowed, dtype=bool)
+        blocks: dict[int, Any] = {}  # time slice -> CSR of every draw and action
+        for t in range(T - 1, -1, -1):
+            tp = min(t, Tp - 1)
+            if tp not in blocks:
+                blocks = {tp: _checked_rows(compiled, slice(None), tp, block=True)}
+            now, arrival = cycle_rewards(compiled, objective, t)  # (D, S, A), (D, A, S)
+            following = (arrival + value[:, t + 1, None, :]).reshape(D * A * S)
+            expected = (blocks[tp] @ following).reshape(D, A, S)
+            Q = q_values[:, t]
+            np.add(now, expected.transpose(0, 2, 1), out=Q)
+            Q[:, not_allowed] = -np.inf
+            choice = greedy_choice(Q, decision_states, tie_absolute, tie_relative)
+            policy[:, t], value[:, t], gap[:, t], next_best[:, t], indifferent[:, t] = choice
     return build_result(
         compiled,
         objective,
