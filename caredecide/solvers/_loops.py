@@ -151,6 +151,69 @@ def after_move(has_move, move, d, t, u, out):
             out[s, a] = total
 
 
+@inline
+def cycle_work(S, A):
+    # (u_o, u_c, occupied_o, occupied_c), each (S, A): occupancy per cycle in s under a,
+    # and the same after the decision-time move (prepare_cycle fills them).
+    return np.empty((S, A)), np.empty((S, A)), np.empty((S, A)), np.empty((S, A))
+
+
+@inline
+def prepare_cycle(rewards, has_move, move, w, ow, cw, d, t, refresh, next_value, work, following):
+    # Occupancy of cycle t of draw d (when refresh: it changes with the cycle) and
+    # following[a, s'] = arrival_t(a, s') + V_{t+1}(s'), w = weight_table row of cycle t.
+    u_o, u_c, occupied_o, occupied_c = work
+    if refresh:
+        cycle_occupancy(rewards, d, t, u_o, u_c)
+        after_move(has_move, move, d, t, u_o, occupied_o)
+        after_move(has_move, move, d, t, u_c, occupied_c)
+    end_o, end_c = w[1], w[4]
+    A, S = following.shape
+    for a in range(A):
+        for s2 in range(S):
+            arrival = combine(ow, cw, end_o * u_o[s2, a], end_c * u_c[s2, a])
+            following[a, s2] = arrival + next_value[s2]
+
+
+@inline
+def choose_cycle(
+    expected, work, w, decision_qaly, decision_cost, ow, cw, d, t, allowed, decision_states,
+    tie_absolute, tie_relative, q, out,
+):  # fmt: skip
+    # Q_t(s, a) = now_t(s, a) + expected[a, s] for every state of draw d, then the tie
+    # rule; out = (value, policy, indifferent, keep, q_values, gap, next_best).
+    value, policy, indifferent, keep, q_values, gap, next_best = out
+    _, _, occupied_o, occupied_c = work
+    A, S = expected.shape
+    start_o, now_o, start_c, now_c = w[0], w[2], w[3], w[5]
+    td = min(t, decision_qaly.shape[1] - 1)
+    tc = min(t, decision_cost.shape[1] - 1)
+    for s in range(S):
+        best = -np.inf
+        top = 0
+        for a in range(A):
+            if not allowed[s, a]:
+                x = -np.inf
+            else:
+                now_q = start_o * occupied_o[s, a] + now_o * decision_qaly[d, td, s, a]
+                now_cost = start_c * occupied_c[s, a] + now_c * decision_cost[d, tc, s, a]
+                x = expected[a, s] + combine(ow, cw, now_q, now_cost)
+            q[a] = x
+            if x > best:
+                best, top = x, a
+        chosen, g, other, tie = choose(
+            q, best, top, decision_states[s], tie_absolute, tie_relative, 0.0
+        )
+        value[d, t, s] = q[chosen]
+        policy[d, t, s] = chosen
+        indifferent[d, t, s] = tie
+        if keep:
+            for a in range(A):
+                q_values[d, t, s, a] = q[a]
+            gap[d, t, s] = g
+            next_best[d, t, s] = other
+
+
 @fused
 def backward_induction(
     P,  # (D, Tp, A, S, S)
@@ -188,10 +251,7 @@ def backward_induction(
     ow, cw = outcome_weight, cost_weight
     following = np.empty((A, S))  # arrival_t(a) + V_{t+1} of the draw, kept local
     expected = np.empty((A, S))
-    u_o = np.empty((S, A))
-    u_c = np.empty((S, A))
-    occupied_o = np.empty((S, A))  # after the decision-time move
-    occupied_c = np.empty((S, A))
+    work = cycle_work(S, A)
     q = np.empty(A)
     read = 0.0
     for d in range(D):
@@ -201,45 +261,18 @@ def backward_induction(
         dw = min(d, weights.shape[0] - 1)
         for t in range(T - 1, -1, -1):
             tp = min(t, Tp - 1)
-            td = min(t, decision_qaly.shape[1] - 1)
-            tc = min(t, decision_cost.shape[1] - 1)
-            start_o, end_o, now_o = weights[dw, t, 0], weights[dw, t, 1], weights[dw, t, 2]
-            start_c, end_c, now_c = weights[dw, t, 3], weights[dw, t, 4], weights[dw, t, 5]
-            if t == T - 1 or varying:
-                cycle_occupancy(rewards, d, t, u_o, u_c)
-                after_move(has_move, move, d, t, u_o, occupied_o)
-                after_move(has_move, move, d, t, u_c, occupied_c)
-            for a in range(A):
-                for s2 in range(S):
-                    arrival = combine(ow, cw, end_o * u_o[s2, a], end_c * u_c[s2, a])
-                    following[a, s2] = arrival + value[d, t + 1, s2]
+            prepare_cycle(
+                rewards, has_move, move, weights[dw, t], ow, cw, d, t, t == T - 1 or varying,
+                value[d, t + 1], work, following,
+            )  # fmt: skip
             for a in range(A):
                 for s in range(S):
                     expected[a, s] = expectation(P[d, tp, a, s], following[a])
-            for s in range(S):
-                best = -np.inf
-                top = 0
-                for a in range(A):
-                    if not allowed[s, a]:
-                        x = -np.inf
-                    else:
-                        now_q = start_o * occupied_o[s, a] + now_o * decision_qaly[d, td, s, a]
-                        now_cost = start_c * occupied_c[s, a] + now_c * decision_cost[d, tc, s, a]
-                        x = expected[a, s] + combine(ow, cw, now_q, now_cost)
-                    q[a] = x
-                    if x > best:
-                        best, top = x, a
-                chosen, g, other, tie = choose(
-                    q, best, top, decision_states[s], tie_absolute, tie_relative, 0.0
-                )
-                value[d, t, s] = q[chosen]
-                policy[d, t, s] = chosen
-                indifferent[d, t, s] = tie
-                if keep:
-                    for a in range(A):
-                        q_values[d, t, s, a] = q[a]
-                    gap[d, t, s] = g
-                    next_best[d, t, s] = other
+            choose_cycle(
+                expected, work, weights[dw, t], decision_qaly, decision_cost, ow, cw, d, t,
+                allowed, decision_states, tie_absolute, tie_relative, q,
+                (value, policy, indifferent, keep, q_values, gap, next_best),
+            )  # fmt: skip
     return read
 
 

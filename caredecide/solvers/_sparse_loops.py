@@ -10,7 +10,7 @@ dense array at memory speed instead, and the first pass checks the row sums on t
 import numpy as np
 from numba import njit
 
-from caredecide.solvers._loops import after_move, choose, combine, cycle_occupancy
+from caredecide.solvers._loops import choose_cycle, cycle_work, prepare_cycle, reward_cycles
 
 
 @njit(cache=True, nogil=True, fastmath={"reassoc", "contract"})
@@ -58,54 +58,32 @@ def backward_induction(
     value,  # (D, T + 1, S) out; value[:, T] holds the terminal part on entry
     policy, indifferent, q_values, gap, next_best,  # (D, T, S[, A]) out
 ):  # fmt: skip
-    # The recursion and reward arithmetic of _loops.backward_induction (its helpers), the
-    # expectation sum_s' P(s'|s, a) (arrival_t(a, s') + V_{t+1}(s')) over the non-zeros
-    # of row (d, a, s) only. Row (d A + a) S + s holds P[d, 0, a, s].
+    # The recursion of _loops.backward_induction (its cycle helpers), the expectation
+    # sum_s' P(s'|s, a) (arrival_t(a, s') + V_{t+1}(s')) over the non-zeros of row
+    # (d, a, s) only. Row (d A + a) S + s holds P[d, 0, a, s].
     D, T, S = policy.shape
     A = allowed.shape[1]
-    ow, cw = outcome_weight, cost_weight
     following = np.empty((A, S))
-    u_o, u_c = np.empty((S, A)), np.empty((S, A))
-    occupied_o, occupied_c = np.empty((S, A)), np.empty((S, A))
+    expected = np.empty((A, S))
+    work = cycle_work(S, A)
     q = np.empty(A)
+    out = (value, policy, indifferent, True, q_values, gap, next_best)
+    varying = reward_cycles(rewards, has_move, move) > 1  # occupancy changes with the cycle
     for d in range(D):
         dw = min(d, weights.shape[0] - 1)
         for t in range(T - 1, -1, -1):
-            td = min(t, decision_qaly.shape[1] - 1)
-            tc = min(t, decision_cost.shape[1] - 1)
-            start_o, end_o, now_o = weights[dw, t, 0], weights[dw, t, 1], weights[dw, t, 2]
-            start_c, end_c, now_c = weights[dw, t, 3], weights[dw, t, 4], weights[dw, t, 5]
-            cycle_occupancy(rewards, d, t, u_o, u_c)
-            after_move(has_move, move, d, t, u_o, occupied_o)
-            after_move(has_move, move, d, t, u_c, occupied_c)
+            prepare_cycle(
+                rewards, has_move, move, weights[dw, t], outcome_weight, cost_weight, d, t,
+                t == T - 1 or varying, value[d, t + 1], work, following,
+            )  # fmt: skip
             for a in range(A):
-                for s2 in range(S):
-                    arrival = combine(ow, cw, end_o * u_o[s2, a], end_c * u_c[s2, a])
-                    following[a, s2] = arrival + value[d, t + 1, s2]
-            for s in range(S):
-                best = -np.inf
-                top = 0
-                for a in range(A):
-                    if not allowed[s, a]:
-                        x = -np.inf
-                    else:
-                        row = (d * A + a) * S + s
-                        expected = 0.0
-                        for k in range(indptr[row], indptr[row + 1]):
-                            expected += data[k] * following[a, indices[k]]
-                        now_q = start_o * occupied_o[s, a] + now_o * decision_qaly[d, td, s, a]
-                        now_cost = start_c * occupied_c[s, a] + now_c * decision_cost[d, tc, s, a]
-                        x = expected + combine(ow, cw, now_q, now_cost)
-                    q[a] = x
-                    if x > best:
-                        best, top = x, a
-                chosen, g, other, tie = choose(
-                    q, best, top, decision_states[s], tie_absolute, tie_relative, 0.0
-                )
-                value[d, t, s] = q[chosen]
-                policy[d, t, s] = chosen
-                indifferent[d, t, s] = tie
-                gap[d, t, s] = g
-                next_best[d, t, s] = other
-                for a in range(A):
-                    q_values[d, t, s, a] = q[a]
+                for s in range(S):
+                    row = (d * A + a) * S + s
+                    total = 0.0
+                    for k in range(indptr[row], indptr[row + 1]):
+                        total += data[k] * following[a, indices[k]]
+                    expected[a, s] = total
+            choose_cycle(
+                expected, work, weights[dw, t], decision_qaly, decision_cost, outcome_weight,
+                cost_weight, d, t, allowed, decision_states, tie_absolute, tie_relative, q, out,
+            )  # fmt: skip
