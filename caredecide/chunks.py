@@ -13,12 +13,14 @@ a pure function of its range, so results do not depend on the chunk size or the 
 ``nogil``) and large numpy operations release the interpreter lock, and threads share the
 imported modules and the job's arrays, where worker processes would import everything
 again and receive copies. :func:`usable_threads` starts no more threads than there are
-idle cores, so asking for workers on a busy machine costs nothing.
+idle cores (watched for a tenth of a second), so asking for workers on a busy machine
+costs nothing.
 """
 
 from __future__ import annotations
 
 import os
+import time
 from collections import deque
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass, replace
@@ -184,15 +186,48 @@ def thread_map(threads: int) -> ChunkMap:
     return run
 
 
-def idle_cores() -> float:
-    """Cores of this process's CPU set not busy with runnable work (1-minute load average;
-    the whole set when the load cannot be read)."""
-    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
+IDLE_WINDOW_SECONDS = 0.1
+"""How long :func:`idle_cores` watches the processor counters (this process sleeps)."""
+
+
+def _processor_ticks() -> tuple[float, float] | None:
+    """(idle, total) clock ticks of all processors since boot (Linux ``/proc/stat``), or
+    None where they cannot be read."""
+    try:
+        with open("/proc/stat", encoding="ascii") as file:
+            fields = file.readline().split()
+    except OSError:
+        return None
+    if len(fields) < 5 or fields[0] != "cpu":
+        return None
+    ticks = [float(value) for value in fields[1:9]]  # user nice system idle iowait irq ...
+    return ticks[3] + ticks[4], sum(ticks)
+
+
+def idle_cores(window: float = IDLE_WINDOW_SECONDS) -> float:
+    """Cores not busy right now, of those this process may use.
+
+    The idle share of all processors' clock ticks over ``window`` seconds (this process
+    sleeping meanwhile, so only other work counts) times the processors; where the ticks
+    cannot be read, the cores less the 1-minute load average (which also counts work that
+    has just ended).
+    """
+    if hasattr(os, "sched_getaffinity"):
+        cores = float(len(os.sched_getaffinity(0)))
+    else:
+        cores = float(os.cpu_count() or 1)
+    before = _processor_ticks()
+    if before is not None:
+        time.sleep(window)
+        after = _processor_ticks()
+        if after is not None and after[1] > before[1]:
+            share = (after[0] - before[0]) / (after[1] - before[1])
+            return min(cores, share * float(os.cpu_count() or cores))
     try:
         load = os.getloadavg()[0]
     except OSError:
         load = 0.0
-    return max(float(cores or 1) - load, 0.0)
+    return max(cores - load, 0.0)
 
 
 def usable_threads(requested: int) -> int:
@@ -200,6 +235,8 @@ def usable_threads(requested: int) -> int:
     the nearest whole core), at least 1. On a machine whose cores are all busy a second
     thread only takes turns with the first, so the run stays serial (never slower)."""
     requested = check_scalar(requested, "workers", int, min_val=1)
+    if requested == 1:
+        return 1
     return max(1, min(requested, round(idle_cores())))
 
 

@@ -8,6 +8,8 @@ Monte Carlo work: results do not depend on how the work is split).
 
 from __future__ import annotations
 
+import os
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -152,12 +154,46 @@ def test_thread_map_yields_in_range_order_whatever_order_chunks_finish(model, se
     ("load", "requested", "expected"),
     [(0.1, 2, 2), (0.1, 8, 4), (1.2, 2, 2), (2.6, 2, 1), (3.5, 4, 1), (7.0, 1, 1)],
 )
-def test_usable_threads_no_more_than_the_idle_cores(monkeypatch, load, requested, expected):
+def test_usable_threads_from_the_load_where_no_ticks(monkeypatch, load, requested, expected):
     # 4 cores; idle = 4 - load, rounded to whole cores; at least 1, at most the request.
     import os
 
+    from caredecide import chunks
+
+    monkeypatch.setattr(chunks, "_processor_ticks", lambda: None)
     monkeypatch.setattr(os, "sched_getaffinity", lambda pid: {0, 1, 2, 3}, raising=False)
     monkeypatch.setattr(os, "getloadavg", lambda: (load, load, load))
     assert usable_threads(requested) == expected
     with pytest.raises(RunOptionError, match="workers = 0 is not allowed"):
         usable_threads(0)
+
+
+@pytest.mark.parametrize(
+    ("idle_ticks", "requested", "expected"),
+    [(38, 2, 2), (25, 2, 1), (20, 4, 1), (31, 4, 2), (2, 2, 1), (40, 1, 1)],
+)
+def test_usable_threads_from_the_idle_processor_ticks(monkeypatch, idle_ticks, requested, expected):
+    # 2 processors watched for 20 ticks each (40 in all): idle cores = 2 x idle / 40,
+    # rounded (38 -> 1.9 -> 2; 25 -> 1.25 -> 1; 31 -> 1.55 -> 2), at most the request.
+    import os
+
+    from caredecide import chunks
+
+    readings = iter([(1000.0, 5000.0), (1000.0 + idle_ticks, 5040.0)])
+    monkeypatch.setattr(chunks, "_processor_ticks", lambda: next(readings))
+    monkeypatch.setattr(chunks.time, "sleep", lambda seconds: None)
+    monkeypatch.setattr(os, "sched_getaffinity", lambda pid: {0, 1}, raising=False)
+    monkeypatch.setattr(os, "cpu_count", lambda: 2)
+    monkeypatch.setattr(os, "getloadavg", lambda: (9.0, 9.0, 9.0))  # not used
+    assert usable_threads(requested) == expected
+
+
+def test_processor_ticks_read_where_the_system_has_them():
+    from caredecide.chunks import _processor_ticks, idle_cores
+
+    ticks = _processor_ticks()
+    if ticks is None:
+        pytest.skip("no /proc/stat here")
+    idle, total = ticks
+    assert 0 <= idle <= total
+    assert 0.0 <= idle_cores(0.05) <= len(os.sched_getaffinity(0))
