@@ -47,6 +47,9 @@ SPARSE_MIN_STATES = 300
 """Below this many states dense arrays (and the compiled loops) are faster."""
 SPARSE_MAX_DENSITY = 0.05
 """Largest share of non-zero transition entries for the sparse form."""
+DENSITY_SAMPLE_ROWS = 256
+"""Rows of the first draw whose non-zeros estimate the density (a full count would read
+every transition once more just to choose the form)."""
 SPARSE_MAX_DRAWS = 16
 """Sparse factorisations go draw by draw: for many draws the dense batches win."""
 
@@ -57,8 +60,8 @@ def choose_form(transition: np.ndarray, requested: str) -> str:
     ``"auto"``: sparse when there are at least :data:`SPARSE_MIN_STATES` states, at most
     :data:`SPARSE_MAX_DRAWS` draws, transitions that do not vary with the cycle
     (``Tp = 1``; converting one sparse copy per cycle costs as much as the dense solve)
-    and a share of non-zeros of at most :data:`SPARSE_MAX_DENSITY` (counted on the
-    first draw).
+    and a share of non-zeros of at most :data:`SPARSE_MAX_DENSITY` (counted on about
+    :data:`DENSITY_SAMPLE_ROWS` evenly spread rows of the first draw).
     """
     if requested not in TRANSITION_FORMS:
         raise SolverError(
@@ -69,7 +72,9 @@ def choose_form(transition: np.ndarray, requested: str) -> str:
     D, S = transition.shape[0], transition.shape[-1]
     if S < SPARSE_MIN_STATES or D > SPARSE_MAX_DRAWS or transition.shape[1] > 1:
         return "dense"
-    density = np.count_nonzero(transition[0]) / transition[0].size
+    rows = transition[0].reshape(-1, S)
+    sample = rows[:: max(1, rows.shape[0] // DENSITY_SAMPLE_ROWS)]  # evenly spread rows
+    density = np.count_nonzero(sample) / sample.size
     return "sparse" if density <= SPARSE_MAX_DENSITY else "dense"
 
 
