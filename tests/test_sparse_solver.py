@@ -15,6 +15,7 @@ import pytest
 from quantecon.markov import DiscreteDP
 from quantecon.markov import backward_induction as quantecon_backward_induction
 
+from caredecide import evaluate
 from caredecide.errors import RunOptionError
 from caredecide.evaluate import _QUANTITIES, evaluate_policy
 from caredecide.objective import Objective
@@ -231,14 +232,24 @@ def test_sparse_backward_induction_matches_quantecon():
     np.testing.assert_array_equal(result.policy[0][decided], sigma[decided])
 
 
-def test_sparse_trace_and_flows_equal_the_dense_evaluation():
+@pytest.mark.parametrize("kernels_on", [True, False])
+@pytest.mark.parametrize(("time_varying", "moves"), [(True, False), (False, True)])
+def test_sparse_trace_and_flows_equal_the_dense_evaluation(time_varying, moves, kernels_on):
     # The cohort trace and every flow of the optimal policy, sparse against dense
-    # (common practice: same quantities, another storage form).
-    compiled = _finite_sparse_model(SPARSE_MIN_STATES + 10, 9, D=2, time_varying=True)
+    # (common practice: same quantities, another storage form); transitions constant over
+    # cycles go through the compiled loop, with moves and costs under an action.
+    from tests.test_kernels import _numpy_path
+
+    compiled = _finite_sparse_model(
+        SPARSE_MIN_STATES + 10, 9, D=2, time_varying=time_varying, moves=moves
+    )
     objective = Objective("net_benefit", 25_000.0)
     policy = solve(compiled, objective, transition_form="dense").policy
-    dense = evaluate_policy(compiled, policy, objective)
-    trace, flows = sparse_trace_and_flows(compiled, policy, _QUANTITIES)
+    dense = evaluate._kernel_outcomes(compiled, [policy], objective, None)[0]
+    if kernels_on:
+        trace, flows = sparse_trace_and_flows(compiled, policy, _QUANTITIES)
+    else:
+        trace, flows = _numpy_path(sparse_trace_and_flows, compiled, policy, _QUANTITIES)
     np.testing.assert_allclose(trace, dense.trace, rtol=0, atol=1e-13)
     np.testing.assert_allclose(trace.sum(-1), 1.0, atol=1e-12)  # the cohort is kept
     assert set(flows) == set(dense.flows) | {f"{n}_undiscounted" for n in _QUANTITIES}
@@ -286,8 +297,6 @@ def test_evaluation_of_a_large_sparse_model_uses_sparse_rows_with_the_same_total
     # trace; its totals equal the dense fused evaluation and, for the optimal policy, the
     # solver's value of the start distribution (common practice: the value of the optimal
     # policy is the expected total of its cohort).
-    from caredecide import evaluate
-
     compiled = _finite_sparse_model(SPARSE_MIN_STATES + 20, 10, D=2)
     objective = Objective("net_benefit", 25_000.0)
     result = solve(compiled, objective)

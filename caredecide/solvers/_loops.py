@@ -276,6 +276,30 @@ def backward_induction(
     return read
 
 
+@inline
+def evaluation_occupancy(rewards, has_move, move, d, t, u_l, u_o, u_c, occupied):
+    # Occupancy of cycle t of draw d (u_o, u_c; u_l holds the life-years) and the same
+    # after the decision-time move: occupied[0..2] = life-years, QALYs, costs (S, A).
+    cycle_occupancy(rewards, d, t, u_o, u_c)
+    after_move(has_move, move, d, t, u_l, occupied[0])
+    after_move(has_move, move, d, t, u_o, occupied[1])
+    after_move(has_move, move, d, t, u_c, occupied[2])
+
+
+@inline
+def add_flows(w, out, sums):
+    # Add a cycle's flows to out (6,) = life-years, QALYs, costs, then undiscounted, from
+    # the cohort sums (at start l, o, c; arrived l, o, c; charged o, c) and the weights
+    # w (12,) of weight_table (discounted, then undiscounted): the weights factor out of
+    # sum_s m (start u + decision) + sum_s m end (P u).
+    at_l, at_o, at_c, arrived_l, arrived_o, arrived_c, charged_o, charged_c = sums
+    for j in range(2):  # discounted, then undiscounted
+        i = 6 * j
+        out[3 * j] += w[i] * at_l + w[i + 1] * arrived_l
+        out[3 * j + 1] += w[i] * at_o + w[i + 2] * charged_o + w[i + 1] * arrived_o
+        out[3 * j + 2] += w[i + 3] * at_c + w[i + 5] * charged_c + w[i + 4] * arrived_c
+
+
 @fused
 def evaluate_policies(
     P,  # (D, Tp, A, S, S)
@@ -325,10 +349,7 @@ def evaluate_policies(
             tc = min(t, decision_cost.shape[1] - 1)
             # The cycle's rewards once for every policy; the draw's rows stay in cache.
             if t == 0 or varying:
-                cycle_occupancy(rewards, d, t, u_o, u_c)
-                after_move(has_move, move, d, t, u_l, occupied[0])
-                after_move(has_move, move, d, t, u_o, occupied[1])
-                after_move(has_move, move, d, t, u_c, occupied[2])
+                evaluation_occupancy(rewards, has_move, move, d, t, u_l, u_o, u_c, occupied)
             for k in range(K):
                 base = offsets[k] + min(d, policy_draws[k] - 1) * T * S
                 now = traces[k, d, t] if keep else traces[k, 0, t % 2]
@@ -372,15 +393,11 @@ def evaluate_policies(
                     charged_c += m * decision_cost[d, tc, s, a]
                 # sum_s m (start u + decision) + sum_s m end (P u): the weights factor out
                 tk = t if keep else 0  # one entry per cycle, or the running total
-                for j in range(2):  # discounted, then undiscounted
-                    w = weights[dw, t, 6 * j : 6 * j + 6]
-                    flows[k, 3 * j, d, tk] += w[0] * at_start_l + w[1] * arrived_l
-                    flows[k, 3 * j + 1, d, tk] += (
-                        w[0] * at_start_o + w[2] * charged_o + w[1] * arrived_o
-                    )
-                    flows[k, 3 * j + 2, d, tk] += (
-                        w[3] * at_start_c + w[5] * charged_c + w[4] * arrived_c
-                    )
+                add_flows(
+                    weights[dw, t], flows[k, :, d, tk],
+                    (at_start_l, at_start_o, at_start_c, arrived_l, arrived_o, arrived_c,
+                     charged_o, charged_c),
+                )  # fmt: skip
         for k in range(K):
             last = traces[k, d, T] if keep else traces[k, 0, T % 2]
             for s in range(S):

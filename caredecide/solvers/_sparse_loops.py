@@ -1,6 +1,7 @@
 """The numba loops of the sparse form (imported only through
 :func:`caredecide.solvers.kernels.sparse_kernels`): reading dense transitions into
-compressed sparse rows, and backward induction over those rows.
+compressed sparse rows, backward induction over those rows, and a policy's cohort trace
+and flows over them.
 
 ``scipy.sparse.csr_array(dense)`` finds the non-zeros with ``numpy.nonzero`` (index arrays
 of every non-zero, then a sort); two plain passes over the rows (count, then copy) read the
@@ -10,7 +11,14 @@ dense array at memory speed instead, and the first pass checks the row sums on t
 import numpy as np
 from numba import njit
 
-from caredecide.solvers._loops import choose_cycle, cycle_work, prepare_cycle, reward_cycles
+from caredecide.solvers._loops import (
+    add_flows,
+    choose_cycle,
+    cycle_work,
+    evaluation_occupancy,
+    prepare_cycle,
+    reward_cycles,
+)
 
 
 @njit(cache=True, nogil=True, fastmath={"reassoc", "contract"})
@@ -86,4 +94,69 @@ def backward_induction(
             choose_cycle(
                 expected, work, weights[dw, t], decision_qaly, decision_cost, outcome_weight,
                 cost_weight, d, t, allowed, decision_states, tie_absolute, tie_relative, q, out,
+            )  # fmt: skip
+
+
+@njit(cache=True, nogil=True, error_model="numpy", fastmath={"reassoc", "contract"})
+def trace_and_flows(
+    indptr, indices, data,  # CSR rows (D A S, S) of transitions constant over the cycles
+    has_move, move, rewards, decision_qaly, decision_cost,  # bellman.kernel_arrays[1:]
+    life_years,  # (S,)
+    weights,  # (Dw, T, 12): bellman.weight_table, discounted then undiscounted
+    policy,  # (Dk, Tpi, S) int, Dk in {1, D}, Tpi in {1, T}
+    start,  # (S,) cohort at boundary 0
+    trace,  # (D, T + 1, S) out
+    flows,  # (6, D, T + 1) out, zero on entry: life-years, QALYs, costs; then undiscounted
+):  # fmt: skip
+    # The cohort m_{t+1} = m_t P[pi_t] and the reward of cycle t, sum_s m_t(s) (now_t(s, a)
+    # + sum_s' P(s'|s, a) arrival_t(a, s')) with a = pi_t(s), over each chosen row's
+    # non-zeros only: the arithmetic of _loops.evaluate_policies (bellman.cycle_parts).
+    D, T, S = trace.shape[0], trace.shape[1] - 1, trace.shape[2]
+    A = decision_qaly.shape[3]
+    varying = reward_cycles(rewards, has_move, move) > 1
+    u_o, u_c, u_l = np.empty((S, A)), np.empty((S, A)), np.empty((S, A))
+    occupied = np.empty((3, S, A))  # life-years, QALYs, costs after the decision-time move
+    for s in range(S):
+        for a in range(A):
+            u_l[s, a] = life_years[s]
+    for d in range(D):
+        dw = min(d, weights.shape[0] - 1)
+        dk = min(d, policy.shape[0] - 1)
+        for s in range(S):
+            trace[d, 0, s] = start[s]
+        for t in range(T):
+            td = min(t, decision_qaly.shape[1] - 1)
+            tc = min(t, decision_cost.shape[1] - 1)
+            if t == 0 or varying:
+                evaluation_occupancy(rewards, has_move, move, d, t, u_l, u_o, u_c, occupied)
+            now, after = trace[d, t], trace[d, t + 1]
+            for s2 in range(S):
+                after[s2] = 0.0
+            at_l = at_o = at_c = arrived_l = arrived_o = arrived_c = charged_o = charged_c = 0.0
+            for s in range(S):
+                m = now[s]
+                if m == 0.0:
+                    continue
+                a = policy[dk, min(t, policy.shape[1] - 1), s]
+                row = (d * A + a) * S + s
+                e_l = 0.0
+                e_o = 0.0
+                e_c = 0.0
+                for k in range(indptr[row], indptr[row + 1]):
+                    p, s2 = data[k], indices[k]
+                    after[s2] += m * p
+                    e_l += p * u_l[s2, a]
+                    e_o += p * u_o[s2, a]
+                    e_c += p * u_c[s2, a]
+                at_l += m * occupied[0, s, a]
+                at_o += m * occupied[1, s, a]
+                at_c += m * occupied[2, s, a]
+                arrived_l += m * e_l
+                arrived_o += m * e_o
+                arrived_c += m * e_c
+                charged_o += m * decision_qaly[d, td, s, a]
+                charged_c += m * decision_cost[d, tc, s, a]
+            add_flows(
+                weights[dw, t], flows[:, d, t],
+                (at_l, at_o, at_c, arrived_l, arrived_o, arrived_c, charged_o, charged_c),
             )  # fmt: skip

@@ -343,7 +343,8 @@ def sparse_trace_and_flows(
     :func:`caredecide.solvers.bellman.cycle_parts`. The cohort moves by one product with
     the transposed sparse matrix of every draw and action (the mass of ``s`` placed in the
     row of its chosen action); the expected arrival rewards of every action by one sparse
-    product per cycle.
+    product per cycle. With transitions constant over the cycles (and the quantities of
+    :mod:`caredecide.evaluate`), one compiled pass over each draw's cycles instead.
 
     Parameters
     ----------
@@ -368,6 +369,25 @@ def sparse_trace_and_flows(
         raise SolverError("the sparse cohort trace is for a finite horizon (n_cycles)")
     D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
     names = [f"{n}{suffix}" for suffix in ("", "_undiscounted") for n in quantities]
+    if (
+        compiled.transition.shape[1] == 1
+        and kernels.available()
+        and tuple(quantities) == ("life_years", "qalys", "costs")
+    ):  # one compiled pass over each draw's cycles, the chosen rows' non-zeros only
+        rows = _checked_rows(compiled, slice(None), 0, block=False)  # (D A S, S)
+        weights = np.concatenate(
+            np.broadcast_arrays(weight_table(compiled), weight_table(compiled, discount=False)),
+            axis=-1,
+        )
+        trace = np.empty((D, T + 1, S))
+        flow = np.zeros((6, D, T + 1))
+        kernels.sparse_kernels().trace_and_flows(
+            rows.indptr, rows.indices, rows.data, *kernel_arrays(compiled)[1:],
+            np.ascontiguousarray(compiled.life_years, dtype=float), np.ascontiguousarray(weights),
+            np.ascontiguousarray(policy, dtype=np.intp),
+            np.ascontiguousarray(compiled.start_distribution, dtype=float), trace, flow,
+        )  # fmt: skip
+        return trace, dict(zip(names, flow, strict=True))
     flows = {name: np.zeros((D, T + 1)) for name in names}
     trace = np.empty((D, T + 1, S))
     trace[:, 0] = compiled.start_distribution
