@@ -64,7 +64,10 @@ model = CompiledModel(
 )
 objective = Objective("net_benefit", 30000.0)
 small = model.take_draws(slice(0, 1))
-solve(small, objective, method=method, transition_form=form)  # warm: load the loops
+warm = solve(small, objective, method=method, transition_form=form)  # warm: load the loops
+if cycles is not None:
+    from caredecide.evaluate import evaluate_policy
+    evaluate_policy(small, warm.policy, objective)  # load the evaluation loops too
 start = time.process_time()
 result = solve(model, objective, method=method, transition_form=form)
 seconds = time.process_time() - start
