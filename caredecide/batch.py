@@ -71,6 +71,11 @@ def solve_and_evaluate(
     ``compiled`` is used when given (the base case from validation); otherwise the model
     is compiled for ``parameter_sets`` (None: the base case). The core functions are
     looked up at call time, so the verification battery's self-checks can replace one.
+    The evaluation uses the solver's transition form; when the solver read the
+    transitions into sparse rows (a large model with few moves per state), it gets those
+    rows from the solution
+    (``PolicyResult.transition_rows``): the dense transitions are read into CSR (and their
+    rows checked) once per base case.
     """
     from caredecide.compile import compile_model
     from caredecide.evaluate import evaluate_policy
@@ -79,7 +84,14 @@ def solve_and_evaluate(
     if compiled is None:
         compiled = compile_model(model, parameter_sets)
     solution = solve(compiled, objective, **solve_options)
-    return Solved(compiled, solution, evaluate_policy(compiled, solution.policy, objective))
+    outcome = evaluate_policy(
+        compiled,
+        solution.policy,
+        objective,
+        transition_rows=solution.transition_rows,  # None unless solved with sparse rows
+        transition_form=solution.transition_form,  # the cohort moves as the solver read
+    )
+    return Solved(compiled, solution, outcome)
 
 
 @dataclass

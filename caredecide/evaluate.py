@@ -21,6 +21,7 @@ the solver keeps in sparse rows (large, few moves per state, few draws:
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -220,6 +221,8 @@ def evaluate_policy(
     objective: Objective,
     *,
     terminal_value: np.ndarray | float | None = None,
+    transition_rows: Any = None,
+    transition_form: str = "auto",
 ) -> PolicyOutcome:
     """Cohort trace and totals of a policy.
 
@@ -233,18 +236,31 @@ def evaluate_policy(
     terminal_value : float or array broadcastable to (D, S), optional
         Finite horizon: value of each state at the end of the horizon (as in
         :func:`caredecide.solvers.solve`); added to ``value`` only.
+    transition_rows : scipy.sparse CSR (D A S, S), optional
+        Finite horizon: the checked sparse rows of this model's transitions already read
+        by the solver (``PolicyResult.transition_rows``); the cohort then moves by them
+        and the dense transitions are not read again. Must come from this compiled model
+        as it is now (an explicit hand-off, not a cache).
+    transition_form : {"auto", "dense", "sparse"}
+        Finite horizon without ``transition_rows``: move the cohort by sparse rows or by
+        the dense arrays; "auto" picks as the solver does
+        (:func:`caredecide.solvers.sparse.choose_form`). An infinite horizon is
+        evaluated with the dense arrays.
 
     Returns
     -------
     PolicyOutcome
     """
-    sparse = _sparse_form(compiled)
+    form = choose_form(compiled.transition, transition_form)
+    given = transition_rows is not None and compiled.n_cycles is not None
+    sparse = given or (compiled.n_cycles is not None and form == "sparse")
     fused = compiled.n_cycles is not None and kernels.available() and not sparse
     check_compiled(compiled, rows=not (fused or sparse))  # those check the rows they read
     policy = check_policy(compiled, policy)
     if compiled.n_cycles is None:
         return _evaluate_infinite(compiled, policy[:, 0], objective)
-    return _evaluate_finite(compiled, policy, objective, terminal_value, sparse)
+    rows = transition_rows if given else None
+    return _evaluate_finite(compiled, policy, objective, terminal_value, sparse, rows)
 
 
 def _sparse_form(compiled: CompiledModel) -> bool:
@@ -253,10 +269,12 @@ def _sparse_form(compiled: CompiledModel) -> bool:
     return compiled.n_cycles is not None and choose_form(compiled.transition, "auto") == "sparse"
 
 
-def _evaluate_finite(compiled, policy, objective, terminal_value, sparse) -> PolicyOutcome:
+def _evaluate_finite(
+    compiled, policy, objective, terminal_value, sparse, rows=None
+) -> PolicyOutcome:
     D, S, T = compiled.n_draws, compiled.n_states, compiled.n_cycles
     if sparse:  # large model with few moves per state: the cohort moves by sparse rows
-        trace, flows = sparse_trace_and_flows(compiled, policy, _QUANTITIES)
+        trace, flows = sparse_trace_and_flows(compiled, policy, _QUANTITIES, rows)
     elif kernels.available():  # trace and flows fused; the chosen rows gathered
         return _kernel_outcomes(compiled, [policy], objective, terminal_value)[0]
     else:

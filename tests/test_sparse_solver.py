@@ -340,3 +340,79 @@ def test_a_bad_row_is_caught_as_the_sparse_rows_are_read(kernels_on, n_cycles, m
     if n_cycles is not None:  # the evaluation of a policy reads the same sparse rows
         with pytest.raises(SolverError, match=pattern):
             evaluate_policy(compiled, 0, QALYS)
+
+
+@pytest.mark.parametrize("kernels_on", [True, False])
+def test_the_base_case_reads_the_dense_transitions_into_sparse_rows_once(kernels_on, monkeypatch):
+    # solve_and_evaluate hands the solver's checked sparse rows to the evaluation (an
+    # explicit hand-off): the dense transitions are read into CSR once per base case, and
+    # the answers are those of the dense form (common practice: a storage change never
+    # changes the answer beyond rounding): identical policies, values and totals to 1e-10.
+    from caredecide import batch
+    from caredecide.solvers import sparse
+    from tests.test_kernels import _numpy_path
+
+    compiled = _finite_sparse_model(SPARSE_MIN_STATES + 20, 10, D=2, moves=True)
+    objective = Objective("net_benefit", 25_000.0)
+    reads = []
+    read = sparse._csr
+    monkeypatch.setattr(sparse, "_csr", lambda *a, **k: reads.append(1) or read(*a, **k))
+    run = batch.solve_and_evaluate
+    done = (
+        run(None, objective, compiled=compiled)
+        if kernels_on
+        else _numpy_path(run, None, objective, compiled=compiled)
+    )
+    assert len(reads) == 1
+    assert done.solution.transition_form == "sparse"
+    assert done.solution.transition_rows.shape == (2 * 2 * compiled.n_states, compiled.n_states)
+    dense = solve(compiled, objective, transition_form="dense")
+    dense_outcome = evaluate._kernel_outcomes(compiled, [dense.policy], objective, None)[0]
+    np.testing.assert_array_equal(done.solution.policy, dense.policy)
+    scale = np.abs(dense.value).max()
+    np.testing.assert_allclose(done.solution.value, dense.value, rtol=0, atol=1e-10 * scale)
+    np.testing.assert_allclose(done.outcome.trace, dense_outcome.trace, rtol=0, atol=1e-13)
+    for name in ("qalys", "costs", "life_years", "value", "costs_undiscounted"):
+        expected = getattr(dense_outcome, name)
+        np.testing.assert_allclose(
+            getattr(done.outcome, name), expected, rtol=0, atol=1e-10 * np.abs(expected).max()
+        )
+    reads.clear()  # without the hand-off the evaluation reads the rows a second time
+    evaluate_policy(compiled, done.solution.policy, objective)
+    assert len(reads) == 1
+
+
+def test_a_dense_base_case_reads_no_sparse_rows(monkeypatch):
+    # transition_form="dense" holds for the whole base case: the evaluation follows the
+    # solver's form (and reads no CSR), with the totals of the sparse base case.
+    from caredecide import batch
+    from caredecide.solvers import sparse
+
+    compiled = _finite_sparse_model(SPARSE_MIN_STATES, 4)
+    assert solve(compiled, QALYS).transition_rows is not None  # auto: sparse
+    auto = batch.solve_and_evaluate(None, QALYS, compiled=compiled)
+    reads = []
+    read = sparse._csr
+    monkeypatch.setattr(sparse, "_csr", lambda *a, **k: reads.append(1) or read(*a, **k))
+    done = batch.solve_and_evaluate(None, QALYS, compiled=compiled, transition_form="dense")
+    assert reads == [] and done.solution.transition_rows is None
+    np.testing.assert_allclose(done.outcome.qalys, auto.outcome.qalys, rtol=1e-12)
+    np.testing.assert_allclose(done.outcome.trace, auto.outcome.trace, rtol=0, atol=1e-13)
+
+
+def test_transition_rows_of_another_shape_are_refused():
+    # One error test per validation rule: rows read from another model (or draws).
+    from caredecide.solvers.sparse import transition_rows
+
+    compiled = _finite_sparse_model(SPARSE_MIN_STATES, 4, D=2)
+    other = transition_rows(_finite_sparse_model(SPARSE_MIN_STATES, 4, D=1))
+    with pytest.raises(SolverError, match=r"transition_rows has shape \(600, 300\); expected"):
+        evaluate_policy(compiled, 0, QALYS, transition_rows=other)
+
+
+def test_transition_rows_need_transitions_constant_over_cycles():
+    from caredecide.solvers.sparse import transition_rows
+
+    varying = _finite_sparse_model(SPARSE_MIN_STATES, 3, time_varying=True)
+    with pytest.raises(SolverError, match="constant over the cycles; the time axis has length 3"):
+        transition_rows(varying)

@@ -122,6 +122,11 @@ class PolicyResult:
         Per-sweep history when solved with ``record_history=True``.
     transition_form : {"dense", "sparse"}
         How the solver stored the transitions (see :mod:`caredecide.solvers.sparse`).
+    transition_rows : scipy.sparse CSR (D A S, S) or None
+        The checked sparse rows the solver read (sparse backward induction with
+        transitions constant over the cycles), handed to
+        :func:`caredecide.evaluate.evaluate_policy` (``transition_rows=``) so that the
+        base case reads the dense transitions once; None otherwise.
     """
 
     policy: np.ndarray
@@ -147,6 +152,8 @@ class PolicyResult:
     history: list[SweepRecord] | None = field(default=None, repr=False)
     transition_form: str = "dense"
     """How the solver stored the transitions: "dense" arrays or "sparse" rows (CSR)."""
+    transition_rows: Any = field(default=None, repr=False, compare=False)
+    """The sparse rows the solver read (see above), or None."""
 
     @property
     def n_draws(self) -> int:

@@ -104,6 +104,51 @@ def _checked_rows(compiled: CompiledModel, draws: slice | int, tp: int, block: b
     return matrix
 
 
+def transition_rows(compiled: CompiledModel):
+    """The checked CSR rows of transitions constant over the cycles, for a hand-off.
+
+    Every draw's dense (A, S, S) transitions read once into compressed sparse rows
+    (D A S, S), row ``(d A + a) S + s``, each allowed row checked to sum to 1 as it is
+    read. The sparse backward induction returns them in ``PolicyResult.transition_rows``
+    so that :func:`caredecide.evaluate.evaluate_policy` traces the optimal policy with
+    the same rows instead of reading the dense arrays again (:func:`caredecide.batch.
+    solve_and_evaluate` hands them over explicitly; nothing is cached).
+
+    Raises
+    ------
+    SolverError
+        Transitions that vary with the cycle (time axis longer than 1), or a row that
+        does not sum to 1.
+    """
+    if compiled.transition.shape[1] != 1:
+        raise SolverError(
+            "sparse transition rows are read once only for transitions constant over the "
+            f"cycles; the time axis has length {compiled.transition.shape[1]}"
+        )
+    return _checked_rows(compiled, slice(None), 0, block=False)
+
+
+def given_rows(compiled: CompiledModel, rows: Any):
+    """``rows`` (from :func:`transition_rows`) checked to fit ``compiled``; None passes.
+
+    Raises
+    ------
+    SolverError
+        Rows of another shape (another model or number of draws), or transitions that
+        vary with the cycle.
+    """
+    if rows is None:
+        return None
+    D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
+    if compiled.transition.shape[1] != 1 or tuple(rows.shape) != (D * A * S, S):
+        raise SolverError(
+            f"transition_rows has shape {tuple(rows.shape)}; expected ({D * A * S}, {S}) "
+            "(draws x actions x states, states) of transitions constant over the cycles, "
+            "as read by solvers.sparse.transition_rows for this compiled model"
+        )
+    return rows
+
+
 def _csr(rows: np.ndarray, block: int, checked=None, bad=None):
     """CSR form of dense rows (K, S); ``block > 0``: row ``k`` moved to the columns of
     block ``k // block`` (a block-diagonal matrix (K, K / block * S)). With ``checked``
@@ -125,11 +170,19 @@ def _csr(rows: np.ndarray, block: int, checked=None, bad=None):
     if off.any():
         bad[0] = int(np.flatnonzero(off)[0])
     matrix = sparse.csr_array(rows)
-    if block == 0:
-        return matrix
+    return matrix if block == 0 else _in_blocks(matrix, block)
+
+
+def _in_blocks(matrix, block: int):
+    """CSR rows (K, S) as the block-diagonal (K, K / block * S) matrix of :func:`_csr`."""
+    from scipy import sparse
+
+    K, S = matrix.shape
     per_block = np.add.reduceat(np.diff(matrix.indptr), np.arange(0, K, block))
     shift = np.repeat(np.arange(K // block, dtype=matrix.indices.dtype) * S, per_block)
-    return sparse.csr_array((matrix.data, matrix.indices + shift, matrix.indptr), shape=(K, width))
+    return sparse.csr_array(
+        (matrix.data, matrix.indices + shift, matrix.indptr), shape=(K, (K // block) * S)
+    )
 
 
 def sparse_iterate(
@@ -245,6 +298,7 @@ def sparse_backward_induction(
     *,
     tie_absolute: float,
     tie_relative: float,
+    rows: Any = None,
 ) -> PolicyResult:
     """Backward induction with the transitions in CSR form (Puterman 1994, section 4.5).
 
@@ -268,12 +322,16 @@ def sparse_backward_induction(
         (:func:`caredecide.solvers.finite.terminal_present_value`).
     tie_absolute, tie_relative : float
         Tie tolerance on action gaps.
+    rows : CSR (D A S, S), optional
+        The transitions already read by :func:`transition_rows` (not read again); by
+        default read here when they are constant over the cycles.
 
     Returns
     -------
     PolicyResult
         As backward induction's: ``policy`` (D, T, S), ``value`` (D, T + 1, S);
-        ``transition_form = "sparse"``.
+        ``transition_form = "sparse"``; ``transition_rows`` the CSR rows it read (None
+        for transitions that vary with the cycle).
     """
     T = compiled.n_cycles
     if T is None:
@@ -288,8 +346,10 @@ def sparse_backward_induction(
     indifferent = np.empty((D, T, S), dtype=bool)
     value[:, T] = terminal
     Tp = compiled.transition.shape[1]
-    if Tp == 1 and kernels.available():  # one compiled pass over each draw's cycles
-        rows = _checked_rows(compiled, slice(None), 0, block=False)  # (D A S, S)
+    rows = given_rows(compiled, rows)
+    if rows is None and Tp == 1:
+        rows = transition_rows(compiled)  # (D A S, S), read once for every cycle
+    if rows is not None and kernels.available():  # one compiled pass over each draw's cycles
         kernels.sparse_kernels().backward_induction(
             rows.indptr, rows.indices, rows.data, *kernel_arrays(compiled)[1:],
             weight_table(compiled), float(objective.outcome_weight),
@@ -303,7 +363,7 @@ def sparse_backward_induction(
         for t in range(T - 1, -1, -1):
             tp = min(t, Tp - 1)
             if tp not in blocks:
-                blocks = {tp: _checked_rows(compiled, slice(None), tp, block=True)}
+                blocks = {tp: _block_slice(compiled, rows, tp)}
             now, arrival = cycle_rewards(compiled, objective, t)  # (D, S, A), (D, A, S)
             following = (arrival + value[:, t + 1, None, :]).reshape(D * A * S)
             expected = (blocks[tp] @ following).reshape(D, A, S)
@@ -329,11 +389,20 @@ def sparse_backward_induction(
         success=True,
         message=f"backward induction over {T} cycles (exact; sparse transitions)",
         transition_form="sparse",
+        transition_rows=rows,
     )
 
 
+def _block_slice(compiled: CompiledModel, rows: Any, tp: int):
+    """Block-diagonal CSR of every draw and action at time slice ``tp`` (:func:`_block_rows`
+    layout): from the rows already read when given, else read (and checked) here."""
+    if rows is None:
+        return _checked_rows(compiled, slice(None), tp, block=True)
+    return _in_blocks(rows, compiled.n_states)
+
+
 def sparse_trace_and_flows(
-    compiled: CompiledModel, policy: np.ndarray, quantities: tuple[str, ...]
+    compiled: CompiledModel, policy: np.ndarray, quantities: tuple[str, ...], rows: Any = None
 ) -> tuple[np.ndarray, dict[str, np.ndarray]]:
     """Cohort trace and per-cycle flows of a finite-horizon policy, transitions in CSR.
 
@@ -355,6 +424,9 @@ def sparse_trace_and_flows(
     quantities : tuple of str
         Keys of ``cycle_parts(..., life_years=True)`` to total, e.g. ("life_years",
         "qalys", "costs").
+    rows : CSR (D A S, S), optional
+        The transitions already read by :func:`transition_rows` (e.g. the solver's
+        ``PolicyResult.transition_rows``): used as they are, not read again.
 
     Returns
     -------
@@ -369,12 +441,14 @@ def sparse_trace_and_flows(
         raise SolverError("the sparse cohort trace is for a finite horizon (n_cycles)")
     D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
     names = [f"{n}{suffix}" for suffix in ("", "_undiscounted") for n in quantities]
+    rows = given_rows(compiled, rows)
     if (
         compiled.transition.shape[1] == 1
         and kernels.available()
         and tuple(quantities) == ("life_years", "qalys", "costs")
     ):  # one compiled pass over each draw's cycles, the chosen rows' non-zeros only
-        rows = _checked_rows(compiled, slice(None), 0, block=False)  # (D A S, S)
+        if rows is None:
+            rows = transition_rows(compiled)  # (D A S, S)
         weights = np.concatenate(
             np.broadcast_arrays(weight_table(compiled), weight_table(compiled, discount=False)),
             axis=-1,
@@ -398,7 +472,7 @@ def sparse_trace_and_flows(
     for t in range(T):
         tp = min(t, Tp - 1)
         if tp not in blocks:
-            block = _checked_rows(compiled, slice(None), tp, block=True)
+            block = _block_slice(compiled, rows, tp)
             blocks = {tp: (block, block.T.tocsr())}
         block, moved = blocks[tp]
         chosen = policy[:, min(t, Tpi - 1)]  # (D, S)
