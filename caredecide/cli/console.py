@@ -71,15 +71,11 @@ def save_chart(chart, out: Path, stem: str) -> list[Path]:
 
     The chart is laid out once: the PNG is the SVG rasterised (``vl_convert.svg_to_png``,
     the same renderer Altair's own PNG export ends in; the bytes are the same), so the
-    Vega layout is not run a second time.
+    Vega layout is not run a second time (:mod:`caredecide.cli.chart_process`).
     """
-    import vl_convert
+    from caredecide.cli.chart_process import chart_spec, render_chart, write_chart
 
-    paths = [out / f"{stem}.svg", out / f"{stem}.png"]
-    chart.save(str(paths[0]))
-    svg = paths[0].read_text(encoding="utf-8")
-    paths[1].write_bytes(vl_convert.svg_to_png(svg, scale=2))
-    return paths
+    return write_chart(*render_chart(*chart_spec(chart)), out, stem)
 
 
 def print_caution(model: object = None) -> None:

@@ -20,7 +20,6 @@ from caredecide.cli.console import (
     prepare_output_folder,
     print_caution,
     progress,
-    save_chart,
     stderr,
     stdout,
     user_errors,
@@ -196,6 +195,58 @@ def run_uncertainty(
     if workers is not None and scheduler is not None:
         stderr.print("[bold red]error:[/] give --workers or --scheduler, not both")
         raise typer.Exit(code=2)
+    from caredecide.cli.chart_process import ChartRenderer
+
+    # Started now: a second process (when a core is idle) readies the chart renderer
+    # while the draws are solved.
+    renderer = ChartRenderer(enabled=out is not None)
+    try:
+        _run(
+            renderer,
+            model,
+            draws,
+            seed,
+            workers,
+            scheduler,
+            connect_timeout,
+            chunk_size,
+            strategies,
+            rank_correlation,
+            wtp_range,
+            band_years,
+            population_per_year,
+            decision_years,
+            reference,
+            out,
+            quiet,
+            strict,
+            sets,
+        )
+    finally:
+        renderer.close()
+
+
+def _run(
+    renderer,
+    model: Path,
+    draws: int,
+    seed: int,
+    workers: int | None,
+    scheduler: str | None,
+    connect_timeout: str,
+    chunk_size: int | None,
+    strategies: Path | None,
+    rank_correlation: list[str] | None,
+    wtp_range: tuple[float, float] | None,
+    band_years: float,
+    population_per_year: float | None,
+    decision_years: int,
+    reference: str | None,
+    out: Path | None,
+    quiet: bool,
+    strict: bool,
+    sets: list[str] | None,
+) -> None:
     with user_errors():
         correlations = _correlation_pairs(rank_correlation or [])
         if out is not None:  # before the run: a folder that cannot be made fails at once
@@ -242,6 +293,9 @@ def run_uncertainty(
                 float(loaded.settings.discount_outcomes),
                 evppi=tables["evppi"],
             )
+        treat = result.shown_action
+        if out is not None:  # laid out (in a second process if any) while the rest is written
+            renderer.submit(_charts(result, tables, treat))
 
     unit = result.objective.unit
     info = result.evpi()
@@ -249,7 +303,6 @@ def run_uncertainty(
         f"Model: {loaded.title}; objective: {result.objective.describe()}; "
         f"{result.n_draws:,} draws, seed {result.seed}"
     )
-    treat = result.shown_action
     stdout.print(_acceptability_table(tables["acceptability_by_age_band"], treat))
     stdout.print(_loss_table(tables["expected_loss"], unit))
     stdout.print(
@@ -278,7 +331,7 @@ def run_uncertainty(
         )
     if out is not None:
         with user_errors(), writing_to(out) as folder:
-            _write_outputs(folder, result, tables, treat, quiet, model)
+            _write_outputs(folder, result, tables, renderer, model)
         if not quiet:
             stderr.print(f"Wrote the results to {plain(out)}")
 
@@ -410,21 +463,38 @@ def _write_csv(frame: pd.DataFrame, path: Path) -> None:
         )
 
 
-def _write_outputs(
-    out: Path,
-    result,
-    tables: dict[str, pd.DataFrame],
-    action: str,
-    quiet: bool,
-    model: Path | None = None,
-) -> None:
+def _charts(result, tables: dict[str, pd.DataFrame], action: str) -> dict[str, Any]:
+    """The Altair charts written by ``--out``, by file stem."""
     from caredecide.charts import (
         make_acceptability_curves_chart,
         make_evppi_chart,
         make_policy_acceptability_chart,
         make_psa_convergence_chart,
     )
+    from caredecide.decision_charts import make_draws_plane_chart
 
+    # The scatter of the draws first: the longest layout goes to the second process.
+    charts: dict[str, Any] = {"ce_plane_draws": make_draws_plane_chart(result.plane_frame())}
+    charts["acceptability_by_state"] = make_policy_acceptability_chart(
+        tables["acceptability_by_age_band"], action=action
+    )
+    charts["acceptability_curves"] = make_acceptability_curves_chart(
+        tables["acceptability_curves"], tables["acceptability_frontier"]
+    )
+    charts["convergence"] = make_psa_convergence_chart(tables["convergence"])
+    if len(tables["evppi"]):
+        charts["evppi"] = make_evppi_chart(tables["evppi"], unit=f"({result.objective.unit})")
+    return charts
+
+
+def _write_outputs(
+    out: Path,
+    result,
+    tables: dict[str, pd.DataFrame],
+    renderer,
+    model: Path | None = None,
+) -> list[Path]:
+    """Write the tables (CSV, Parquet), summary.json and the submitted charts into ``out``."""
     written = []
     try:
         import pyarrow  # noqa: F401
@@ -443,24 +513,7 @@ def _write_outputs(
     record = {"caution": caution_short(model), **result.summary()}
     summary.write_text(json.dumps(record, indent=2, default=float) + "\n")
     written.append(summary)
-    from caredecide.decision_charts import make_draws_plane_chart
-
-    unit = f"({result.objective.unit})"
-    charts = {
-        "acceptability_by_state": make_policy_acceptability_chart(
-            tables["acceptability_by_age_band"], action=action
-        ),
-        "acceptability_curves": make_acceptability_curves_chart(
-            tables["acceptability_curves"], tables["acceptability_frontier"]
-        ),
-        "convergence": make_psa_convergence_chart(tables["convergence"]),
-        "ce_plane_draws": make_draws_plane_chart(result.plane_frame()),
-    }
-    if len(tables["evppi"]):
-        charts["evppi"] = make_evppi_chart(tables["evppi"], unit=unit)
-    for stem, chart in charts.items():
-        written += save_chart(chart, out, stem)
-    del quiet  # the caller says where the files went
+    return written + renderer.results(out)
 
 
 def register(app: typer.Typer) -> None:
