@@ -416,3 +416,37 @@ def test_transition_rows_need_transitions_constant_over_cycles():
     varying = _finite_sparse_model(SPARSE_MIN_STATES, 3, time_varying=True)
     with pytest.raises(SolverError, match="constant over the cycles; the time axis has length 3"):
         transition_rows(varying)
+
+
+@pytest.mark.parametrize("step_back", [False, True])
+def test_policy_values_by_back_substitution_equal_a_dense_solve(step_back):
+    # Progressive rows (moves to the same or later states): exact values by back
+    # substitution over the CSR rows; with a step back the sparse LU instead. Both against
+    # numpy.linalg.solve of (I - gamma P_pi) v = r_pi on the dense rows (common practice).
+    from caredecide.solvers.sparse import _csr, _policy_values
+    from tests.test_kernels import _numpy_path
+
+    S, A, gamma = 40, 2, 0.97
+    rng = np.random.default_rng(5)
+    P = np.triu(rng.uniform(0, 1, (A, S, S)) * (rng.random((A, S, S)) < 0.2))
+    P[:, np.arange(S), np.arange(S)] += 0.5
+    if step_back:
+        P[1, 10, 9] = 0.3  # action 1 moves state 10 back to state 9
+    P /= P.sum(-1, keepdims=True)
+    R = rng.normal(size=(A, S))
+    policy = np.ones(S, dtype=np.intp)
+    rows = _csr(P.reshape(A * S, S), 0)
+    chosen = P[policy, np.arange(S)]
+    expected = np.linalg.solve(np.eye(S) - gamma * chosen, R[policy, np.arange(S)])
+    np.testing.assert_allclose(_policy_values(rows, R, gamma, policy), expected, rtol=1e-12)
+    np.testing.assert_allclose(
+        _numpy_path(_policy_values, rows, R, gamma, policy), expected, rtol=1e-12
+    )
+    from caredecide.solvers import kernels
+
+    v = np.empty(S)
+    upper = kernels.sparse_kernels().upper_substitution(
+        rows.indptr, rows.indices, rows.data, policy * S + np.arange(S),
+        R[policy, np.arange(S)], gamma, v,
+    )  # fmt: skip
+    assert upper is (not step_back)  # substitution only for rows without a move back

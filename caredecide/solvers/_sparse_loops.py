@@ -1,7 +1,7 @@
 """The numba loops of the sparse form (imported only through
 :func:`caredecide.solvers.kernels.sparse_kernels`): reading dense transitions into
-compressed sparse rows, backward induction over those rows, and a policy's cohort trace
-and flows over them.
+compressed sparse rows, backward induction over those rows, a policy's cohort trace
+and flows over them, and the exact values of a progressive policy by back substitution.
 
 ``scipy.sparse.csr_array(dense)`` finds the non-zeros with ``numpy.nonzero`` (index arrays
 of every non-zero, then a sort); two plain passes over the rows (count, then copy) read the
@@ -160,3 +160,27 @@ def trace_and_flows(
                 weights[dw, t], flows[:, d, t],
                 (at_l, at_o, at_c, arrived_l, arrived_o, arrived_c, charged_o, charged_c),
             )  # fmt: skip
+
+
+@njit(cache=True, nogil=True)
+def upper_substitution(indptr, indices, data, chosen, reward, gamma, v):
+    # v = (I - gamma P_pi)^-1 r by back substitution when the policy's rows (row
+    # chosen[s] of the CSR holds P_pi[s]) move only to their own or later states (upper
+    # triangular: progressive models): from the last state back,
+    # v[s] = (r[s] + gamma sum_{j > s} P_pi[s, j] v[j]) / (1 - gamma P_pi[s, s]).
+    # Returns False (v partly written) at the first row with a move back.
+    S = v.shape[0]
+    for s in range(S - 1, -1, -1):
+        k = chosen[s]
+        total = reward[s]
+        stay = 0.0
+        for i in range(indptr[k], indptr[k + 1]):
+            j = indices[i]
+            if j < s:
+                return False
+            if j == s:
+                stay += data[i]
+            else:
+                total += gamma * data[i] * v[j]
+        v[s] = total / (1.0 - gamma * stay)
+    return True

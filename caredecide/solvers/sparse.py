@@ -4,8 +4,10 @@ Progressive models and tunnel states give transition rows with a handful of non-
 among thousands of states. For the base case and one-way analyses (a few draws) the
 solvers then store ``P`` in compressed sparse rows (CSR) and:
 
-* policy iteration solves ``(I - gamma P_pi) v = r_pi`` with a sparse LU
-  (``scipy.sparse.linalg.spsolve``), ``P_pi`` being the policy's rows of the CSR matrix;
+* policy iteration solves ``(I - gamma P_pi) v = r_pi`` by back substitution when the
+  policy moves only to the same or later states (progressive models), with a sparse LU
+  (``scipy.sparse.linalg.spsolve``) otherwise, ``P_pi`` being the policy's rows of the
+  CSR matrix;
 * value iteration sweeps ``v <- max_a r + gamma P v`` with a sparse product;
 * backward induction (finite horizon) computes each cycle's expectations
   ``sum_s' P_t(s'|s, a) (arrival_t(a, s') + V_{t+1}(s'))`` of every draw, action and state
@@ -239,13 +241,23 @@ def sparse_iterate(
 
 
 def _policy_values(rows, R: np.ndarray, gamma: float, policy: np.ndarray) -> np.ndarray:
+    """Exact values (S,) of ``policy`` (S,): ``(I - gamma P_pi) v = r_pi``. Back
+    substitution over the CSR rows when every move of the policy goes to the same or a
+    later state (progressive models; compiled loops), a sparse LU otherwise."""
     from scipy import sparse
     from scipy.sparse.linalg import spsolve
 
     S = R.shape[1]
     chosen = policy * S + np.arange(S)
+    target = R[policy, np.arange(S)]
+    if kernels.available():
+        v = np.empty(S)
+        if kernels.sparse_kernels().upper_substitution(
+            rows.indptr, rows.indices, rows.data, chosen, target, float(gamma), v
+        ):
+            return v
     system = sparse.eye_array(S, format="csc") - gamma * rows[chosen].tocsc()
-    return np.asarray(spsolve(system, R[policy, np.arange(S)]), dtype=float)
+    return np.asarray(spsolve(system, target), dtype=float)
 
 
 def _policy_iteration(rows, R, gamma, max_iterations):
