@@ -2,7 +2,7 @@
 
 The chart renderer (vl-convert) holds the interpreter lock and needs about 0.3 s to start
 its JavaScript engine, so threads cannot overlap it with other work. When a core is idle
-(:func:`caredecide.chunks.usable_threads`), :class:`ChartRenderer` starts this file as a
+(:func:`caredecide.chunks.idle_cores`), :class:`ChartRenderer` starts this file as a
 plain script (standard library and ``vl_convert`` only), twice, at the beginning of a
 command; each starts its engine while the command imports, compiles and solves. Each chart then goes
 to it as its Vega-Lite specification in JSON (data only: nothing is pickled), and comes
@@ -114,6 +114,7 @@ class ChartRenderer:
         self._left: list[tuple[str, dict[str, Any], str]] = []
         self._done: dict[str, tuple[str, bytes]] = {}
         self._order: list[str] = []
+        self._calls = 0
         self._feeders: list[threading.Thread] = []
         self._starter: threading.Thread | None = None
         self.laid_out_here = 0
@@ -123,9 +124,11 @@ class ChartRenderer:
             self._starter.start()
 
     def _start(self) -> None:
-        from caredecide.chunks import usable_threads
+        from caredecide.chunks import idle_cores
 
-        if usable_threads(2) < 2:  # no idle core beside this process: lay out here
+        # Watched while this process works on (unlike chunks.usable_threads, which sleeps
+        # meanwhile): what is idle is beside it.
+        if round(idle_cores()) < 1:  # no idle core beside this process: lay out here
             return
         env = {**os.environ, "PYTHONDONTWRITEBYTECODE": "1"}
         for _ in range(PROCESSES):
@@ -149,21 +152,27 @@ class ChartRenderer:
         return len(self._processes)
 
     def submit(self, charts: dict[str, Any]) -> None:
-        """Queue Altair charts by file stem: with two second processes, the first chart
-        (give the longest layout first) goes to one and the others, in order, to the other."""
+        """Queue Altair charts by file stem, to be laid out in this order. With two
+        second processes, the first call's charts go to one (give it the longest layout,
+        as soon as it can be built) and every later call's to the other."""
         items = [(stem, *chart_spec(chart)) for stem, chart in charts.items()]
-        self._order = list(charts)
-        shares = [items[:1], items[1:]] if self.processes == 2 else [items]
-        if not self._processes:
-            self._left = items
+        self._order += list(charts)
+        if not self.processes:
+            self._left += items
             return
-        for process, share in zip(self._processes, shares, strict=True):
-            feeder = threading.Thread(target=self._feed, args=(process, share), daemon=True)
-            feeder.start()
-            self._feeders.append(feeder)
+        process = self._processes[min(self._calls, len(self._processes) - 1)]
+        self._calls += 1
+        before = self._feeders[-1] if self._feeders and len(self._processes) == 1 else None
+        feeder = threading.Thread(target=self._feed, args=(process, items, before), daemon=True)
+        feeder.start()
+        self._feeders.append(feeder)
 
-    def _feed(self, process: subprocess.Popen[bytes], items: list[Any]) -> None:
+    def _feed(
+        self, process: subprocess.Popen[bytes], items: list[Any], before: threading.Thread | None
+    ) -> None:
         assert process.stdin is not None and process.stdout is not None
+        if before is not None:  # one process: its charts one call after the other
+            before.join()
         for number, item in enumerate(items):
             stem, spec, vl_version = item
             try:

@@ -279,6 +279,8 @@ def _run(
                     result = analyse_uncertainty(
                         loaded, draws, seed, map_chunks=dask_map(client), **options
                     )
+        if out is not None:  # the longest layout, started before the tables are built
+            renderer.submit(_plane_chart(result))
         if workers is not None and result.threads < workers and not quiet:
             stderr.print(
                 f"Ran on {result.threads} of the {workers} workers asked for: the other "
@@ -463,21 +465,27 @@ def _write_csv(frame: pd.DataFrame, path: Path) -> None:
         )
 
 
+def _plane_chart(result) -> dict[str, Any]:
+    """The scatter of the draws written by ``--out``, by file stem."""
+    from caredecide.decision_charts import make_draws_plane_chart
+
+    return {"ce_plane_draws": make_draws_plane_chart(result.plane_frame())}
+
+
 def _charts(result, tables: dict[str, pd.DataFrame], action: str) -> dict[str, Any]:
-    """The Altair charts written by ``--out``, by file stem."""
+    """The other Altair charts written by ``--out``, by file stem."""
     from caredecide.charts import (
         make_acceptability_curves_chart,
         make_evppi_chart,
         make_policy_acceptability_chart,
         make_psa_convergence_chart,
     )
-    from caredecide.decision_charts import make_draws_plane_chart
 
-    # The scatter of the draws first: the longest layout goes to the second process.
-    charts: dict[str, Any] = {"ce_plane_draws": make_draws_plane_chart(result.plane_frame())}
-    charts["acceptability_by_state"] = make_policy_acceptability_chart(
-        tables["acceptability_by_age_band"], action=action
-    )
+    charts: dict[str, Any] = {
+        "acceptability_by_state": make_policy_acceptability_chart(
+            tables["acceptability_by_age_band"], action=action
+        )
+    }
     charts["acceptability_curves"] = make_acceptability_curves_chart(
         tables["acceptability_curves"], tables["acceptability_frontier"]
     )

@@ -42,7 +42,9 @@ def _serial(folder) -> dict[str, bytes]:
 def _rendered(renderer: ChartRenderer, folder) -> dict[str, bytes]:
     folder.mkdir()
     try:
-        renderer.submit(_charts())
+        charts = _charts()
+        renderer.submit({"scatter": charts.pop("scatter")})  # one process
+        renderer.submit(charts)  # the other
         paths = renderer.results(folder)
     finally:
         renderer.close()
@@ -53,15 +55,17 @@ def _rendered(renderer: ChartRenderer, folder) -> dict[str, bytes]:
 
 
 @pytest.fixture
-def idle_cores(monkeypatch):
+def machine_cores(monkeypatch):
+    """machine_cores(n): n cores free, this process on one of them."""
+
     def force(cores: int) -> None:
-        monkeypatch.setattr(chunks, "usable_threads", lambda requested: min(requested, cores))
+        monkeypatch.setattr(chunks, "idle_cores", lambda: float(cores - 1))
 
     return force
 
 
-def test_second_processes_write_the_bytes_the_command_writes(tmp_path, idle_cores):
-    idle_cores(2)
+def test_second_processes_write_the_bytes_the_command_writes(tmp_path, machine_cores):
+    machine_cores(2)
     renderer = ChartRenderer()
     assert renderer.processes == 2
     files = _rendered(renderer, tmp_path / "processes")
@@ -71,8 +75,8 @@ def test_second_processes_write_the_bytes_the_command_writes(tmp_path, idle_core
     assert "Coût (€)" in files["scatter.svg"].decode("utf-8")
 
 
-def test_no_idle_core_lays_everything_out_in_the_command(tmp_path, idle_cores):
-    idle_cores(1)
+def test_no_idle_core_lays_everything_out_in_the_command(tmp_path, machine_cores):
+    machine_cores(1)
     renderer = ChartRenderer()
     assert renderer.processes == 0
     files = _rendered(renderer, tmp_path / "here")
@@ -80,8 +84,8 @@ def test_no_idle_core_lays_everything_out_in_the_command(tmp_path, idle_cores):
     assert files == _serial(tmp_path / "serial")
 
 
-def test_charts_of_a_failed_process_are_laid_out_by_the_command(tmp_path, idle_cores):
-    idle_cores(2)
+def test_charts_of_a_failed_process_are_laid_out_by_the_command(tmp_path, machine_cores):
+    machine_cores(2)
     renderer = ChartRenderer()
     assert renderer.processes == 2
     for process in renderer._processes:  # both stop before any chart arrives
@@ -96,7 +100,7 @@ RUN = """
 import sys
 import caredecide.chunks as chunks
 import caredecide.cli as cli
-chunks.usable_threads = lambda requested: min(requested, {cores})
+chunks.idle_cores = lambda: float({cores} - 1)
 sys.argv = ["caredecide", "uncertainty", {model!r}, "--draws", "220", "--quiet", "--out", {out!r}]
 cli.main()
 """
