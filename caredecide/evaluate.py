@@ -532,8 +532,11 @@ def _stationary_total(P_pi, reward, discount, start) -> np.ndarray:
 
     moves = P_pi > 0
     starts = np.broadcast_to(start, (D, S)) > 0
-    keys = np.packbits(np.concatenate([moves.reshape(D, -1), starts], axis=1), axis=1)
-    _, group, inverse = np.unique(keys, axis=0, return_index=True, return_inverse=True)
+    if D == 1:  # one pattern (np.unique over rows of S^2 bits costs seconds at S = 2,000)
+        group, inverse = np.zeros(1, dtype=np.intp), np.zeros(1, dtype=np.intp)
+    else:
+        keys = np.packbits(np.concatenate([moves.reshape(D, -1), starts], axis=1), axis=1)
+        _, group, inverse = np.unique(keys, axis=0, return_index=True, return_inverse=True)
     total = np.zeros(D)
     for g, first in enumerate(group):
         draws = np.flatnonzero(inverse.reshape(-1) == g)
@@ -543,12 +546,7 @@ def _stationary_total(P_pi, reward, discount, start) -> np.ndarray:
         closed = np.array(
             [not (graph[label == k] & leaves[label == k]).any() for k in range(n_classes)]
         )
-        reach = starts[first].copy()
-        for _ in range(S):  # states reachable from the start (S steps suffice)
-            grown = reach | (reach[:, None] & graph).any(axis=0)
-            if (grown == reach).all():
-                break
-            reach = grown
+        reach = _reachable(graph, starts[first])
         transient = ~closed[label]
         part = np.zeros(draws.size)
         if transient.any():
@@ -573,6 +571,24 @@ def _stationary_total(P_pi, reward, discount, start) -> np.ndarray:
         part = np.where(negative, -np.inf, part)
         total[draws] = np.where((positive & negative) | undefined, np.nan, part)
     return total
+
+
+def _reachable(graph: np.ndarray, starts: np.ndarray) -> np.ndarray:
+    """(S,) bool: states reachable from the ``starts`` (S,) bool along ``graph`` (S, S)
+    bool moves (breadth-first search; the start states included)."""
+    from scipy import sparse
+    from scipy.sparse.csgraph import breadth_first_order
+
+    S = graph.shape[0]
+    padded = np.zeros((S + 1, S + 1), dtype=bool)  # node S: a source moving to the starts
+    padded[:S, :S] = graph
+    padded[S, :S] = starts
+    order = breadth_first_order(
+        sparse.csr_array(padded), S, directed=True, return_predecessors=False
+    )
+    reach = np.zeros(S + 1, dtype=bool)
+    reach[order] = True
+    return reach[:S]
 
 
 def _long_run_reward(P_class: np.ndarray, reward: np.ndarray) -> np.ndarray:

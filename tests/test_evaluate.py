@@ -260,3 +260,21 @@ def test_policy_errors():
 def test_infinite_horizon_simpson_evaluation_error():
     with pytest.raises(SolverError, match="'simpson' needs a finite horizon"):
         evaluate_policy(_one_state(None, "simpson"), 0, QALYS)
+
+
+@settings(max_examples=40)
+@given(st.integers(0, 2**32 - 1), st.integers(1, 12))
+def test_reachable_states_are_those_of_the_transitive_closure(seed, S):
+    # Reachability from the start states by breadth-first search equals the non-zero
+    # pattern of (I + G)^S applied to the starts (common practice: S - 1 steps reach
+    # every reachable state of an S-state graph).
+    from caredecide.evaluate import _reachable
+
+    rng = np.random.default_rng(seed)
+    graph = rng.random((S, S)) < 0.2
+    starts = rng.random(S) < 0.3
+    step = (np.eye(S, dtype=int) + graph.astype(int)) > 0
+    closure = starts.copy()
+    for _ in range(S):
+        closure = (closure.astype(int) @ step.astype(int)) > 0
+    np.testing.assert_array_equal(_reachable(graph, starts), closure)
