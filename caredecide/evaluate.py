@@ -15,7 +15,9 @@ states (infinite when an absorbing state keeps earning). The trace is shown over
 display horizon until 99.9% of the cohort is absorbed, or a cap. A finite-horizon model
 the solver keeps in sparse rows (large, few moves per state, few draws:
 :func:`caredecide.solvers.sparse.choose_form`) is traced with the same sparse rows
-(:func:`caredecide.solvers.sparse.sparse_trace_and_flows`).
+(:func:`caredecide.solvers.sparse.sparse_trace_and_flows`); an infinite-horizon one
+moves its display trace and solves its totals with the policy's rows in CSR (one sparse
+LU per draw and quantity).
 """
 
 from __future__ import annotations
@@ -489,11 +491,18 @@ def _evaluate_infinite(compiled, policy, objective) -> PolicyOutcome:
     d_o, d_c = compiled.per_cycle_discount()
     factor = {"life_years": d_o, "qalys": d_o, "costs": d_c}
 
-    # Display trace: one matmul per cycle until the cohort is absorbed (or the cap).
+    # Large model with few moves per state (the solver's sparse form): the policy's rows
+    # in CSR for the display trace and the linear solves.
+    sparse_pi = _sparse_rows(P_pi) if choose_form(compiled.transition, "auto") == "sparse" else None
+
+    # Display trace: one product per cycle until the cohort is absorbed (or the cap).
     rows = [start]
     m = start
     while len(rows) <= DISPLAY_CAP and (m[:, ~absorbing].sum(axis=1) > 1 - DISPLAY_ABSORBED).any():
-        m = (m[:, None, :] @ P_pi)[:, 0]
+        if sparse_pi is None:
+            m = (m[:, None, :] @ P_pi)[:, 0]
+        else:
+            m = np.stack([sparse_pi[d].T @ m[d] for d in range(D)])
         rows.append(m)
     trace = np.stack(rows, axis=1)
 
@@ -504,14 +513,44 @@ def _evaluate_infinite(compiled, policy, objective) -> PolicyOutcome:
         for name in _QUANTITIES:
             per_cycle = _policy_reward(parts[name], P_pi, policy)  # (D, S) at the cycle start
             d = factor[name] if discount else 1.0
-            totals[name + suffix] = _stationary_total(P_pi, per_cycle, d, start)
+            totals[name + suffix] = _stationary_total(P_pi, per_cycle, d, start, sparse_pi)
             if discount:
                 flows[name] = np.einsum("dts,ds->dt", trace, per_cycle) * (d**t)
     ages = compiled.start_age + compiled.cycle_length * t
     return _outcome(compiled, objective, trace, totals, flows, np.zeros(D), ages, False)
 
 
-def _stationary_total(P_pi, reward, discount, start) -> np.ndarray:
+def _sparse_rows(P_pi: np.ndarray) -> list:
+    """The CSR form of each draw's policy transitions ``P_pi`` (D, S, S)."""
+    from scipy import sparse
+
+    return [sparse.csr_array(P) for P in P_pi]
+
+
+def _solve_rows(P_pi, sparse_pi, scale, reward, draws, keep=None) -> np.ndarray:
+    """Solutions x (len(draws), K) of ``(I - scale P_pi[d]) x = reward[d]`` for ``draws``,
+    on the states ``keep`` (S,) bool (K of them; all when None): dense batched, or one
+    sparse LU per draw when ``sparse_pi`` (the CSR rows of each draw) is given."""
+    S = P_pi.shape[-1]
+    keep = np.ones(S, dtype=bool) if keep is None else keep
+    if sparse_pi is None:
+        Q = P_pi[draws][:, keep][:, :, keep]
+        return np.linalg.solve(np.eye(int(keep.sum())) - scale * Q, reward[draws][:, keep, None])[
+            ..., 0
+        ]
+    from scipy import sparse
+    from scipy.sparse.linalg import spsolve
+
+    kept = np.flatnonzero(keep)
+    out = np.empty((len(draws), kept.size))
+    for i, d in enumerate(draws):
+        Q = sparse_pi[d][kept][:, kept]
+        system = (sparse.eye_array(kept.size) - scale * Q).tocsc()
+        out[i] = np.asarray(spsolve(system, reward[d][kept]), dtype=float).reshape(-1)
+    return out
+
+
+def _stationary_total(P_pi, reward, discount, start, sparse_pi=None) -> np.ndarray:
     """(D,) expected total ``sum_t d^t m_t . r`` over an infinite horizon.
 
     Discounted: a linear solve. Undiscounted: the total is finite on the transient
@@ -526,7 +565,7 @@ def _stationary_total(P_pi, reward, discount, start) -> np.ndarray:
     """
     D, S = P_pi.shape[0], P_pi.shape[-1]
     if discount < 1.0:
-        values = np.linalg.solve(np.eye(S) - discount * P_pi, reward[..., None])[..., 0]
+        values = _solve_rows(P_pi, sparse_pi, discount, reward, np.arange(D))
         return np.einsum("ds,ds->d", start, values)
     from scipy.sparse.csgraph import connected_components
 
@@ -550,10 +589,9 @@ def _stationary_total(P_pi, reward, discount, start) -> np.ndarray:
         transient = ~closed[label]
         part = np.zeros(draws.size)
         if transient.any():
-            Q = P_pi[draws][:, transient][:, :, transient]
-            values = np.linalg.solve(np.eye(transient.sum()) - Q, reward[draws][:, transient, None])
+            values = _solve_rows(P_pi, sparse_pi, 1.0, reward, draws, transient)
             part = np.einsum(
-                "ds,ds->d", np.broadcast_to(start, (D, S))[draws][:, transient], values[..., 0]
+                "ds,ds->d", np.broadcast_to(start, (D, S))[draws][:, transient], values
             )
         positive, negative = np.zeros(draws.size, bool), np.zeros(draws.size, bool)
         undefined = np.zeros(draws.size, bool)

@@ -450,3 +450,29 @@ def test_policy_values_by_back_substitution_equal_a_dense_solve(step_back):
         R[policy, np.arange(S)], gamma, v,
     )  # fmt: skip
     assert upper is (not step_back)  # substitution only for rows without a move back
+
+
+def test_infinite_horizon_evaluation_with_sparse_rows_equals_the_dense_one(monkeypatch):
+    # A large model with few moves per state: the display trace and the linear solves of
+    # the totals (discounted, and undiscounted on the transient states) go by the policy's
+    # CSR rows; same trace and totals as the dense arrays (common practice: a storage
+    # change never changes the answer beyond rounding), and the discounted value equals
+    # the solver's value of the start state.
+    compiled = _sparse_model(SPARSE_MIN_STATES + 30, seed=6)
+    result = solve(compiled, QALYS)
+    assert result.transition_form == "sparse"
+    used = []
+    rows_of = evaluate._sparse_rows
+    monkeypatch.setattr(evaluate, "_sparse_rows", lambda P: used.append(1) or rows_of(P))
+    outcome = evaluate_policy(compiled, result.policy, QALYS)
+    assert used == [1]
+    monkeypatch.setattr(evaluate, "choose_form", lambda transition, requested: "dense")
+    dense = evaluate_policy(compiled, result.policy, QALYS)
+    assert used == [1]  # the dense reference used no sparse rows
+    np.testing.assert_allclose(outcome.trace, dense.trace, rtol=0, atol=1e-13)
+    for name in ("qalys", "life_years", "qalys_undiscounted", "life_years_undiscounted"):
+        np.testing.assert_allclose(getattr(outcome, name), getattr(dense, name), rtol=1e-10)
+    assert np.isfinite(outcome.qalys_undiscounted).all() and outcome.qalys_undiscounted[0] > 0
+    np.testing.assert_allclose(
+        outcome.value, result.expected_value(compiled.start_distribution), rtol=1e-9
+    )
