@@ -15,7 +15,12 @@ Not a test: prints times measured in this run on this machine, and their ratios.
 
 Every process runs with one BLAS thread (``OPENBLAS_NUM_THREADS=1`` ...), the baseline's
 too, as the command line now sets by default: BLAS threads spinning on a shared machine
-would otherwise decide the times.
+would otherwise decide the times. Every version runs once on 50 draws before the timing
+(compiled loops and bytecode caches written, as after installing).
+
+With an idle core beside it, the command lays its charts out in two second processes
+(``caredecide.cli.chart_process``); "CPU (with its processes)" counts theirs, "peak" is
+the command's own process.
 
 Run: python benchmarks/bench_uncertainty.py [--draws 10000] [--repeats 3] [--baseline PATH]
 """
@@ -90,6 +95,15 @@ ONE_BLAS_THREAD = {
 }
 
 
+CHILD_ENV = {
+    **{name: value for name, value in os.environ.items() if name != "PYTHONDONTWRITEBYTECODE"},
+    **ONE_BLAS_THREAD,
+}
+"""Children write and reuse bytecode caches, as an installed package has them (a shell
+with PYTHONDONTWRITEBYTECODE would otherwise compile every module of a checkout anew in
+every run, the baseline's too)."""
+
+
 def run_child(
     src: Path, draws: int, extra: list[str], split_steps: bool, force_threads: bool = False
 ) -> dict[str, float]:
@@ -111,7 +125,7 @@ def run_child(
             capture_output=True,
             text=True,
             cwd=str(src),
-            env={**os.environ, **ONE_BLAS_THREAD},
+            env=CHILD_ENV,
         )
         wall = time.perf_counter() - start
         after = resource.getrusage(resource.RUSAGE_CHILDREN)
@@ -131,7 +145,8 @@ def main() -> None:
     parser.add_argument("--split-only", action="store_true", help="Only part 1.")
     args = parser.parse_args()
     print("SYNTHETIC demo model (invented numbers); research use only.")
-    run_child(ROOT, 50, [], False)  # kernels compiled and cached before any timing
+    for src in (ROOT, args.baseline) if args.baseline else (ROOT,):
+        run_child(src, 50, [], False)  # kernels and bytecode cached before any timing
 
     split = run_child(ROOT, args.draws, [], True)
     print(f"== 1. uncertainty --draws {args.draws} on the demo, serial: CPU seconds by step ==")
