@@ -192,8 +192,7 @@ IDLE_WINDOW_SECONDS = 0.1
 
 def _processor_ticks() -> tuple[float, float] | None:
     """(idle, total) clock ticks of all processors since boot (Linux ``/proc/stat``), or
-    None where they cannot be read. Ticks of niced work count as idle for a process that
-    is not niced itself (:func:`_idle_and_total`)."""
+    None where they cannot be read."""
     try:
         with open("/proc/stat", encoding="ascii") as file:
             fields = file.readline().split()
@@ -201,17 +200,8 @@ def _processor_ticks() -> tuple[float, float] | None:
         return None
     if len(fields) < 5 or fields[0] != "cpu":
         return None
-    return _idle_and_total(fields, count_niced=os.nice(0) <= 0)
-
-
-def _idle_and_total(fields: Sequence[str], count_niced: bool) -> tuple[float, float]:
-    """(idle, total) ticks of a ``/proc/stat`` ``cpu`` line (user nice system idle iowait
-    irq ...). With ``count_niced``, the ticks of niced work are idle too: the scheduler
-    gives a core to a process of normal priority over niced work (common practice: a
-    niced process runs on what others leave), so such a core is free for this one."""
-    ticks = [float(value) for value in fields[1:9]]
-    idle = ticks[3] + ticks[4] + (ticks[1] if count_niced else 0.0)
-    return idle, sum(ticks)
+    ticks = [float(value) for value in fields[1:9]]  # user nice system idle iowait irq ...
+    return ticks[3] + ticks[4], sum(ticks)
 
 
 def idle_cores(window: float = IDLE_WINDOW_SECONDS) -> float:

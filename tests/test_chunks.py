@@ -188,15 +188,6 @@ def test_usable_threads_from_the_idle_processor_ticks(monkeypatch, idle_ticks, r
     assert usable_threads(requested) == expected
 
 
-def test_niced_work_counts_as_idle_only_for_a_process_that_is_not_niced():
-    # /proc/stat 'cpu' line: user nice system idle iowait irq softirq steal (proc(5)).
-    from caredecide.chunks import _idle_and_total
-
-    fields = "cpu 100 50 20 300 10 1 2 3 0 0".split()
-    assert _idle_and_total(fields, count_niced=False) == (310.0, 486.0)
-    assert _idle_and_total(fields, count_niced=True) == (360.0, 486.0)
-
-
 def test_processor_ticks_read_where_the_system_has_them():
     from caredecide.chunks import _processor_ticks, idle_cores
 
