@@ -246,8 +246,8 @@ def evaluate_policy(
     transition_form : {"auto", "dense", "sparse"}
         Finite horizon without ``transition_rows``: move the cohort by sparse rows or by
         the dense arrays; "auto" picks as the solver does
-        (:func:`caredecide.solvers.sparse.choose_form`). An infinite horizon is
-        evaluated with the dense arrays.
+        (:func:`caredecide.solvers.sparse.choose_form`). An infinite horizon in the
+        sparse form reads the policy's rows into CSR for its trace and linear solves.
 
     Returns
     -------
@@ -260,7 +260,7 @@ def evaluate_policy(
     check_compiled(compiled, rows=not (fused or sparse))  # those check the rows they read
     policy = check_policy(compiled, policy)
     if compiled.n_cycles is None:
-        return _evaluate_infinite(compiled, policy[:, 0], objective)
+        return _evaluate_infinite(compiled, policy[:, 0], objective, form == "sparse")
     rows = transition_rows if given else None
     return _evaluate_finite(compiled, policy, objective, terminal_value, sparse, rows)
 
@@ -474,7 +474,7 @@ def evaluate_policies(
     return _kernel_outcomes(compiled, checked, objective, terminal_value)
 
 
-def _evaluate_infinite(compiled, policy, objective) -> PolicyOutcome:
+def _evaluate_infinite(compiled, policy, objective, sparse: bool) -> PolicyOutcome:
     if not compiled.is_stationary:
         raise SolverError("an infinite horizon needs stationary arrays (time axis of length 1)")
     if compiled.within_cycle not in STATIONARY_METHODS:
@@ -493,7 +493,7 @@ def _evaluate_infinite(compiled, policy, objective) -> PolicyOutcome:
 
     # Large model with few moves per state (the solver's sparse form): the policy's rows
     # in CSR for the display trace and the linear solves.
-    sparse_pi = _sparse_rows(P_pi) if choose_form(compiled.transition, "auto") == "sparse" else None
+    sparse_pi = _sparse_rows(P_pi) if sparse else None
 
     # Display trace: one product per cycle until the cohort is absorbed (or the cap).
     rows = [start]

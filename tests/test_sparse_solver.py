@@ -466,8 +466,7 @@ def test_infinite_horizon_evaluation_with_sparse_rows_equals_the_dense_one(monke
     monkeypatch.setattr(evaluate, "_sparse_rows", lambda P: used.append(1) or rows_of(P))
     outcome = evaluate_policy(compiled, result.policy, QALYS)
     assert used == [1]
-    monkeypatch.setattr(evaluate, "choose_form", lambda transition, requested: "dense")
-    dense = evaluate_policy(compiled, result.policy, QALYS)
+    dense = evaluate_policy(compiled, result.policy, QALYS, transition_form="dense")
     assert used == [1]  # the dense reference used no sparse rows
     np.testing.assert_allclose(outcome.trace, dense.trace, rtol=0, atol=1e-13)
     for name in ("qalys", "life_years", "qalys_undiscounted", "life_years_undiscounted"):
