@@ -195,16 +195,28 @@ def _edit_cell(page, grid, row: int, column: int, text: str) -> None:
     ``row`` and ``column`` count data cells from 0 (the index column is not counted). The
     grid is drawn on a canvas: the first data cell is clicked, then arrow keys move on.
     """
-    box = grid.locator("[data-testid='data-grid-canvas']").bounding_box()
+    from playwright.sync_api import TimeoutError as PlaywrightTimeoutError
+
+    canvas = grid.locator("[data-testid='data-grid-canvas']")
     header, first_column_x = 36, 100  # header row height; a point inside the first data column
-    page.mouse.click(box["x"] + first_column_x, box["y"] + header + 17)
-    for _ in range(row):
-        page.keyboard.press("ArrowDown")
-    for _ in range(column):
-        page.keyboard.press("ArrowRight")
-    page.keyboard.press("Enter")
     editor = page.locator("#portal textarea").first
-    editor.wait_for(timeout=TIMEOUT_MS)
+    # A click outside the viewport, or on a page still laying out (charts below the grids
+    # draw late on a busy machine), selects nothing: scroll the grid into view, read its
+    # box then, and try the selection again when no editor opens.
+    for attempt in range(3):
+        canvas.scroll_into_view_if_needed(timeout=TIMEOUT_MS)
+        box = canvas.bounding_box()
+        page.mouse.click(box["x"] + first_column_x, box["y"] + header + 17)
+        for _ in range(row):
+            page.keyboard.press("ArrowDown")
+        for _ in range(column):
+            page.keyboard.press("ArrowRight")
+        page.keyboard.press("Enter")
+        try:
+            editor.wait_for(timeout=TIMEOUT_MS if attempt == 2 else 15_000)
+            break
+        except PlaywrightTimeoutError:
+            page.keyboard.press("Escape")
     editor.fill(text)
     page.keyboard.press("Enter")
 
