@@ -18,6 +18,8 @@ draw, action and state.
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 
 from caredecide.compiled import ROW_SUM_TOLERANCE, CompiledModel
@@ -115,12 +117,9 @@ def backward_induction(
     decision_states = decision_state_mask(compiled)
     keep = action_values or record_history
 
-    value = np.empty((D, T + 1, S))
-    policy = np.empty((D, T, S), dtype=np.intp)
-    indifferent = np.empty((D, T, S), dtype=bool)
-    q_values = np.empty((D, T, S, A)) if keep else None
-    gap = np.empty((D, T, S)) if keep else None
-    next_best = np.empty((D, T, S), dtype=np.intp) if keep else None
+    value, q_values, policy, gap, next_best, indifferent = induction_outputs(
+        D, T, S, A, action_values=keep
+    )
     history: list[SweepRecord] | None = [] if record_history else None
 
     value[:, T] = terminal_present_value(compiled, objective, terminal_value)
@@ -162,6 +161,51 @@ def backward_induction(
 
     if not action_values:  # computed for the history only: not kept in the result
         q_values = gap = next_best = None
+    return induction_result(
+        compiled,
+        objective,
+        (value, q_values, policy, gap, next_best, indifferent),
+        decision_states,
+        history=history,
+    )
+
+
+def induction_outputs(D: int, T: int, S: int, A: int, *, action_values: bool = True) -> tuple:
+    """Empty outputs of backward induction over ``D`` draws and ``T`` cycles.
+
+    Returns ``(value (D, T + 1, S), q_values (D, T, S, A), policy (D, T, S) int, gap
+    (D, T, S), next_best (D, T, S) int, indifferent (D, T, S) bool)``; ``q_values``,
+    ``gap`` and ``next_best`` are None when ``action_values`` is False.
+    """
+    return (
+        np.empty((D, T + 1, S)),
+        np.empty((D, T, S, A)) if action_values else None,
+        np.empty((D, T, S), dtype=np.intp),
+        np.empty((D, T, S)) if action_values else None,
+        np.empty((D, T, S), dtype=np.intp) if action_values else None,
+        np.empty((D, T, S), dtype=bool),
+    )
+
+
+def induction_result(
+    compiled: CompiledModel,
+    objective: Objective,
+    outputs: tuple,
+    decision_states: np.ndarray,
+    *,
+    history: list[SweepRecord] | None,
+    form: str = "",
+    **extra: Any,
+) -> PolicyResult:
+    """The :class:`PolicyResult` of a backward induction (dense or sparse) from its outputs.
+
+    ``outputs`` as :func:`induction_outputs` gives them, filled; ``form`` is added to the
+    message (e.g. ``"sparse transitions"``); ``extra`` goes to
+    :func:`caredecide.solvers.result.build_result` (``transition_form``, ...).
+    """
+    value, q_values, policy, gap, next_best, indifferent = outputs
+    T = policy.shape[1]
+    detail = "exact" if not form else f"exact; {form}"
     return build_result(
         compiled,
         objective,
@@ -175,9 +219,10 @@ def backward_induction(
         iterations=T,
         tolerance=0.0,
         relative=False,
-        error_bound=np.zeros(D),
+        error_bound=np.zeros(policy.shape[0]),
         success=True,
-        message=f"backward induction over {T} cycles (exact)",
+        message=f"backward induction over {T} cycles ({detail})",
+        **extra,
     )
 
 

@@ -42,7 +42,8 @@ from caredecide.solvers.bellman import (
     raise_bad_row,
     weight_table,
 )
-from caredecide.solvers.result import PolicyResult, build_result
+from caredecide.solvers.finite import induction_outputs, induction_result
+from caredecide.solvers.result import PolicyResult
 
 TRANSITION_FORMS = ("auto", "dense", "sparse")
 SPARSE_MIN_STATES = 300
@@ -350,12 +351,8 @@ def sparse_backward_induction(
         raise SolverError("backward induction needs a finite number of cycles (n_cycles)")
     D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
     decision_states = decision_state_mask(compiled)
-    value = np.empty((D, T + 1, S))
-    q_values = np.empty((D, T, S, A))
-    policy = np.empty((D, T, S), dtype=np.intp)
-    gap = np.empty((D, T, S))
-    next_best = np.empty((D, T, S), dtype=np.intp)
-    indifferent = np.empty((D, T, S), dtype=bool)
+    outputs = induction_outputs(D, T, S, A)
+    value, q_values, policy, gap, next_best, indifferent = outputs
     value[:, T] = terminal
     Tp = compiled.transition.shape[1]
     rows = given_rows(compiled, rows)
@@ -384,22 +381,13 @@ def sparse_backward_induction(
             Q[:, not_allowed] = -np.inf
             choice = greedy_choice(Q, decision_states, tie_absolute, tie_relative)
             policy[:, t], value[:, t], gap[:, t], next_best[:, t], indifferent[:, t] = choice
-    return build_result(
+    return induction_result(
         compiled,
         objective,
-        (policy, gap, next_best, indifferent),
-        value=value,
-        q_values=q_values,
-        decision_states=decision_states,
-        ages=compiled.ages(),
+        outputs,
+        decision_states,
         history=None,
-        method="backward_induction",
-        iterations=T,
-        tolerance=0.0,
-        relative=False,
-        error_bound=np.zeros(D),
-        success=True,
-        message=f"backward induction over {T} cycles (exact; sparse transitions)",
+        form="sparse transitions",
         transition_form="sparse",
         transition_rows=rows,
     )
