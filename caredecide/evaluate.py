@@ -53,8 +53,35 @@ _QUANTITIES = ("life_years", "qalys", "costs")
 
 
 @dataclass(repr=False)
-class PolicyOutcome:
-    """Cohort trace and totals of a policy for ``D`` draws.
+class PolicyTotals:
+    """Totals of a policy for ``D`` draws, without its cohort trace and flows.
+
+    Attributes as in :class:`PolicyOutcome` (each (D,) float): ``life_years``, ``qalys``,
+    ``costs``, their ``*_undiscounted`` forms, ``net_monetary_benefit``, ``value``.
+    """
+
+    life_years: np.ndarray
+    qalys: np.ndarray
+    costs: np.ndarray
+    life_years_undiscounted: np.ndarray
+    qalys_undiscounted: np.ndarray
+    costs_undiscounted: np.ndarray
+    net_monetary_benefit: np.ndarray
+    value: np.ndarray
+    objective: Objective
+
+    def __repr__(self) -> str:
+        return summary_repr(
+            "PolicyTotals",
+            {"draws": int(self.value.shape[0])},
+            {"objective": self.objective.describe(), "qalys": self.qalys, "costs": self.costs,
+             "value": self.value},
+        )  # fmt: skip
+
+
+@dataclass(repr=False)
+class PolicyOutcome(PolicyTotals):
+    """Cohort trace and totals of a policy for ``D`` draws (its :class:`PolicyTotals` and more).
 
     Attributes
     ----------
@@ -79,16 +106,7 @@ class PolicyOutcome:
     """
 
     trace: np.ndarray
-    life_years: np.ndarray
-    qalys: np.ndarray
-    costs: np.ndarray
-    life_years_undiscounted: np.ndarray
-    qalys_undiscounted: np.ndarray
-    costs_undiscounted: np.ndarray
-    net_monetary_benefit: np.ndarray
-    value: np.ndarray
     flows: dict[str, np.ndarray]
-    objective: Objective
     state_ids: tuple[str, ...]
     ages: np.ndarray
     finite_horizon: bool
@@ -377,33 +395,6 @@ def _kernel_outcomes(compiled, policies, objective, terminal_value) -> list[Poli
             _outcome(compiled, objective, trace, totals, by_name, terminal, compiled.ages(), True)
         )
     return outcomes
-
-
-@dataclass(repr=False)
-class PolicyTotals:
-    """Totals of a policy for ``D`` draws, without its cohort trace and flows.
-
-    Attributes as in :class:`PolicyOutcome` (each (D,) float): ``life_years``, ``qalys``,
-    ``costs``, their ``*_undiscounted`` forms, ``net_monetary_benefit``, ``value``.
-    """
-
-    life_years: np.ndarray
-    qalys: np.ndarray
-    costs: np.ndarray
-    life_years_undiscounted: np.ndarray
-    qalys_undiscounted: np.ndarray
-    costs_undiscounted: np.ndarray
-    net_monetary_benefit: np.ndarray
-    value: np.ndarray
-    objective: Objective
-
-    def __repr__(self) -> str:
-        return summary_repr(
-            "PolicyTotals",
-            {"draws": int(self.value.shape[0])},
-            {"objective": self.objective.describe(), "qalys": self.qalys, "costs": self.costs,
-             "value": self.value},
-        )  # fmt: skip
 
 
 def policy_totals(
