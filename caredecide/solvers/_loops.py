@@ -277,6 +277,19 @@ def backward_induction(
 
 
 @inline
+def evaluation_work(life_years, A):
+    # Work arrays of the evaluation loops: u_l (S, A) the life-years of each state (the
+    # same for every action), u_o, u_c (S, A) one cycle's occupancy rewards, occupied
+    # (3, S, A) life-years, QALYs, costs after the decision-time move.
+    S = life_years.shape[0]
+    u_l = np.empty((S, A))
+    for s in range(S):
+        for a in range(A):
+            u_l[s, a] = life_years[s]
+    return u_l, np.empty((S, A)), np.empty((S, A)), np.empty((3, S, A))
+
+
+@inline
 def evaluation_occupancy(rewards, has_move, move, d, t, u_l, u_o, u_c, occupied):
     # Occupancy of cycle t of draw d (u_o, u_c; u_l holds the life-years) and the same
     # after the decision-time move: occupied[0..2] = life-years, QALYs, costs (S, A).
@@ -330,13 +343,7 @@ def evaluate_policies(
     D, Tp, A, S = P.shape[0], P.shape[1], P.shape[2], P.shape[3]
     K, T = final.shape[0], weights.shape[1]
     varying = reward_cycles(rewards, has_move, move) > 1
-    u_o = np.empty((S, A))
-    u_c = np.empty((S, A))
-    u_l = np.empty((S, A))
-    occupied = np.empty((3, S, A))  # life-years, QALYs, costs after the decision-time move
-    for s in range(S):
-        for a in range(A):
-            u_l[s, a] = life_years[s]
+    u_l, u_o, u_c, occupied = evaluation_work(life_years, A)
     for d in range(D):
         dw = min(d, weights.shape[0] - 1)
         for k in range(K):

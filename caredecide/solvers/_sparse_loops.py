@@ -16,6 +16,7 @@ from caredecide.solvers._loops import (
     choose_cycle,
     cycle_work,
     evaluation_occupancy,
+    evaluation_work,
     prepare_cycle,
     reward_cycles,
 )
@@ -114,11 +115,7 @@ def trace_and_flows(
     D, T, S = trace.shape[0], trace.shape[1] - 1, trace.shape[2]
     A = decision_qaly.shape[3]
     varying = reward_cycles(rewards, has_move, move) > 1
-    u_o, u_c, u_l = np.empty((S, A)), np.empty((S, A)), np.empty((S, A))
-    occupied = np.empty((3, S, A))  # life-years, QALYs, costs after the decision-time move
-    for s in range(S):
-        for a in range(A):
-            u_l[s, a] = life_years[s]
+    u_l, u_o, u_c, occupied = evaluation_work(life_years, A)
     for d in range(D):
         dw = min(d, weights.shape[0] - 1)
         dk = min(d, policy.shape[0] - 1)
