@@ -8,16 +8,17 @@ The same arithmetic as the solvers (rewards from
     sum_{t<T} sum_s m_t(s) (now_t(s, pi_t(s)) + sum_s' P_t[pi_t(s)](s, s') arrival_t(pi_t(s), s'))
 
 (one-off charges and start occupancy after the move; end occupancy), so for the optimal
-policy ``outcome.value`` equals ``result.value[:, 0] @ start``. Infinite horizon: totals
-by a batched linear solve ``(I - d P_pi) x = r_pi`` per quantity (outcomes at ``d_o``,
-costs at ``d_c``); undiscounted totals by the same solve restricted to the non-absorbing
-states (infinite when an absorbing state keeps earning). The trace is shown over a
-display horizon until 99.9% of the cohort is absorbed, or a cap. A finite-horizon model
+policy ``outcome.value`` equals ``result.value[:, 0] @ start``. Infinite horizon
+(:mod:`caredecide.stationary_totals`): totals by a linear solve ``(I - d P_pi) x = r_pi``
+per discount factor (outcomes at ``d_o``, costs at ``d_c``); undiscounted totals by the
+same solve restricted to the transient states (infinite when a closed class keeps
+earning). The trace is shown over a display horizon until 99.9% of the cohort is
+absorbed, or a cap. A finite-horizon model
 the solver keeps in sparse rows (large, few moves per state, few draws:
 :func:`caredecide.solvers.sparse.choose_form`) is traced with the same sparse rows
 (:func:`caredecide.solvers.sparse.sparse_trace_and_flows`); an infinite-horizon one
-moves its display trace and solves its totals with the policy's rows in CSR (one sparse
-LU per draw and quantity).
+gathers the policy's rows in CSR for its display trace, totals and classes of states
+(one sparse LU per draw and discount factor).
 """
 
 from __future__ import annotations
@@ -29,7 +30,7 @@ import numpy as np
 import pandas as pd
 
 from caredecide.compiled import ROW_SUM_TOLERANCE, STATIONARY_METHODS, CompiledModel
-from caredecide.limits import DISPLAY_CAP  # (re-exported) at most this many cycles shown
+from caredecide.limits import DISPLAY_CAP  # noqa: F401 (re-exported: cycles shown at most)
 from caredecide.objective import Objective
 from caredecide.solvers import kernels
 from caredecide.solvers.bellman import (
@@ -44,10 +45,21 @@ from caredecide.solvers.bellman import (
 )
 from caredecide.solvers.finite import terminal_present_value
 from caredecide.solvers.result import summary_repr
-from caredecide.solvers.sparse import choose_form, sparse_trace_and_flows
-
-DISPLAY_ABSORBED = 0.999
-"""Infinite horizon: the trace is shown until this share of the cohort is absorbed..."""
+from caredecide.solvers.sparse import (
+    choose_form,
+    given_rows,
+    sparse_trace_and_flows,
+)
+from caredecide.solvers.sparse import transition_rows as read_transition_rows
+from caredecide.stationary_totals import (
+    DISPLAY_ABSORBED,  # noqa: F401 (re-exported)
+    DenseChain,
+    SparseChain,
+    display_trace,
+    stationary_totals,
+)
+from caredecide.stationary_totals import policy_reward as _policy_reward
+from caredecide.stationary_totals import policy_transition as _policy_transition
 
 _QUANTITIES = ("life_years", "qalys", "costs")
 
@@ -212,29 +224,6 @@ def check_policy(compiled: CompiledModel, policy: np.ndarray | int) -> np.ndarra
     return array
 
 
-def _policy_transition(P: np.ndarray, policy: np.ndarray) -> np.ndarray:
-    """(D, S, S) rows of ``P`` (D, A, S, S) for the actions of ``policy`` (D, S)."""
-    return np.take_along_axis(P, policy[:, None, :, None], axis=1)[:, 0]
-
-
-def _chosen(decision: np.ndarray, policy: np.ndarray) -> np.ndarray:
-    """(D, S) entries of ``decision`` (D, S, A) for the actions of ``policy`` (D, S)."""
-    return np.take_along_axis(decision, policy[..., None], axis=-1)[..., 0]
-
-
-def _policy_reward(
-    parts: tuple[np.ndarray, np.ndarray], P_pi: np.ndarray, policy: np.ndarray
-) -> np.ndarray:
-    """(D, S) reward of a cycle for the cohort in each state under ``policy`` (D, S).
-
-    ``parts`` = (at_decision (D, S, A), on_arrival (D, A, S)) of
-    :func:`caredecide.solvers.bellman.cycle_parts`; ``P_pi`` (D, S, S).
-    """
-    at_decision, on_arrival = parts
-    arrival = np.take_along_axis(on_arrival, policy[..., None], axis=1)  # (D, S, S') by action
-    return _chosen(at_decision, policy) + np.einsum("dsj,dsj->ds", P_pi, arrival)
-
-
 def evaluate_policy(
     compiled: CompiledModel,
     policy: np.ndarray | int,
@@ -257,29 +246,30 @@ def evaluate_policy(
         Finite horizon: value of each state at the end of the horizon (as in
         :func:`caredecide.solvers.solve`); added to ``value`` only.
     transition_rows : scipy.sparse CSR (D A S, S), optional
-        Finite horizon: the checked sparse rows of this model's transitions already read
-        by the solver (``PolicyResult.transition_rows``); the cohort then moves by them
+        The checked sparse rows of this model's transitions already read by the solver
+        (``PolicyResult.transition_rows``; either horizon); the cohort then moves by them
         and the dense transitions are not read again. Must come from this compiled model
         as it is now (an explicit hand-off, not a cache).
     transition_form : {"auto", "dense", "sparse"}
-        Finite horizon without ``transition_rows``: move the cohort by sparse rows or by
-        the dense arrays; "auto" picks as the solver does
+        Without ``transition_rows``: move the cohort by sparse rows or by the dense
+        arrays; "auto" picks as the solver does
         (:func:`caredecide.solvers.sparse.choose_form`). An infinite horizon in the
-        sparse form reads the policy's rows into CSR for its trace and linear solves.
+        sparse form gathers the policy's rows from the CSR rows for its display trace,
+        linear solves and classes of states (:mod:`caredecide.stationary_totals`); no
+        dense (S, S) matrix is built.
 
     Returns
     -------
     PolicyOutcome
     """
     form = choose_form(compiled.transition, transition_form)
-    given = transition_rows is not None and compiled.n_cycles is not None
-    sparse = given or (compiled.n_cycles is not None and form == "sparse")
+    rows = given_rows(compiled, transition_rows)  # the solver's checked rows, if handed over
+    sparse = rows is not None or form == "sparse"
     fused = compiled.n_cycles is not None and kernels.available() and not sparse
     check_compiled(compiled, rows=not (fused or sparse))  # those check the rows they read
     policy = check_policy(compiled, policy)
     if compiled.n_cycles is None:
-        return _evaluate_infinite(compiled, policy[:, 0], objective, form == "sparse")
-    rows = transition_rows if given else None
+        return _evaluate_infinite(compiled, policy[:, 0], objective, sparse, rows)
     return _evaluate_finite(compiled, policy, objective, terminal_value, sparse, rows)
 
 
@@ -465,7 +455,7 @@ def evaluate_policies(
     return _kernel_outcomes(compiled, checked, objective, terminal_value)
 
 
-def _evaluate_infinite(compiled, policy, objective, sparse: bool) -> PolicyOutcome:
+def _evaluate_infinite(compiled, policy, objective, sparse: bool, rows=None) -> PolicyOutcome:
     if not compiled.is_stationary:
         raise SolverError("an infinite horizon needs stationary arrays (time axis of length 1)")
     if compiled.within_cycle not in STATIONARY_METHODS:
@@ -474,7 +464,6 @@ def _evaluate_infinite(compiled, policy, objective, sparse: bool) -> PolicyOutco
             f"one of {STATIONARY_METHODS} for an infinite horizon"
         )
     D, S = compiled.n_draws, compiled.n_states
-    P_pi = _policy_transition(compiled.transition[:, 0], policy)
     start = np.broadcast_to(compiled.start_distribution, (D, S))
     absorbing = np.asarray(compiled.absorbing, bool)
     if absorbing.shape != (S,):
@@ -483,158 +472,29 @@ def _evaluate_infinite(compiled, policy, objective, sparse: bool) -> PolicyOutco
     factor = {"life_years": d_o, "qalys": d_o, "costs": d_c}
 
     # Large model with few moves per state (the solver's sparse form): the policy's rows
-    # in CSR for the display trace and the linear solves.
-    sparse_pi = _sparse_rows(P_pi) if sparse else None
+    # gathered from the checked CSR rows (the solver's, or read here); otherwise the
+    # policy's dense (D, S, S) rows.
+    if sparse:
+        if rows is None:
+            rows = read_transition_rows(compiled)
+        chain: Any = SparseChain(rows, policy, compiled.n_actions)
+    else:
+        chain = DenseChain(_policy_transition(compiled.transition[:, 0], policy), policy)
+    trace = display_trace(chain, start, absorbing)
 
-    # Display trace: one product per cycle until the cohort is absorbed (or the cap).
-    rows = [start]
-    m = start
-    while len(rows) <= DISPLAY_CAP and (m[:, ~absorbing].sum(axis=1) > 1 - DISPLAY_ABSORBED).any():
-        if sparse_pi is None:
-            m = (m[:, None, :] @ P_pi)[:, 0]
-        else:
-            m = np.stack([sparse_pi[d].T @ m[d] for d in range(D)])
-        rows.append(m)
-    trace = np.stack(rows, axis=1)
-
-    totals, flows = {}, {}
+    rewards, scales, flows = {}, {}, {}
     t = np.arange(trace.shape[1])
     for discount, suffix in ((True, ""), (False, "_undiscounted")):
         parts = cycle_parts(compiled, 0, discount, life_years=True)
         for name in _QUANTITIES:
-            per_cycle = _policy_reward(parts[name], P_pi, policy)  # (D, S) at the cycle start
-            d = factor[name] if discount else 1.0
-            totals[name + suffix] = _stationary_total(P_pi, per_cycle, d, start, sparse_pi)
+            per_cycle = chain.reward(parts[name])  # (D, S) at the cycle start
+            rewards[name + suffix] = per_cycle
+            scales[name + suffix] = factor[name] if discount else 1.0
             if discount:
-                flows[name] = np.einsum("dts,ds->dt", trace, per_cycle) * (d**t)
+                flows[name] = np.einsum("dts,ds->dt", trace, per_cycle) * (factor[name] ** t)
+    totals = stationary_totals(chain, rewards, scales, start)
     ages = compiled.start_age + compiled.cycle_length * t
     return _outcome(compiled, objective, trace, totals, flows, np.zeros(D), ages, False)
-
-
-def _sparse_rows(P_pi: np.ndarray) -> list:
-    """The CSR form of each draw's policy transitions ``P_pi`` (D, S, S)."""
-    from scipy import sparse
-
-    return [sparse.csr_array(P) for P in P_pi]
-
-
-def _solve_rows(P_pi, sparse_pi, scale, reward, draws, keep=None) -> np.ndarray:
-    """Solutions x (len(draws), K) of ``(I - scale P_pi[d]) x = reward[d]`` for ``draws``,
-    on the states ``keep`` (S,) bool (K of them; all when None): dense batched, or one
-    sparse LU per draw when ``sparse_pi`` (the CSR rows of each draw) is given."""
-    S = P_pi.shape[-1]
-    keep = np.ones(S, dtype=bool) if keep is None else keep
-    if sparse_pi is None:
-        Q = P_pi[draws][:, keep][:, :, keep]
-        return np.linalg.solve(np.eye(int(keep.sum())) - scale * Q, reward[draws][:, keep, None])[
-            ..., 0
-        ]
-    from scipy import sparse
-    from scipy.sparse.linalg import spsolve
-
-    kept = np.flatnonzero(keep)
-    out = np.empty((len(draws), kept.size))
-    for i, d in enumerate(draws):
-        Q = sparse_pi[d][kept][:, kept]
-        system = (sparse.eye_array(kept.size) - scale * Q).tocsc()
-        out[i] = np.asarray(spsolve(system, reward[d][kept]), dtype=float).reshape(-1)
-    return out
-
-
-def _stationary_total(P_pi, reward, discount, start, sparse_pi=None) -> np.ndarray:
-    """(D,) expected total ``sum_t d^t m_t . r`` over an infinite horizon.
-
-    Discounted: a linear solve. Undiscounted: the total is finite on the transient
-    states (a linear solve restricted to them); a closed class of states the cohort
-    reaches (an absorbing state, or states it circles in forever) adds +inf or -inf by
-    the sign of its long-run reward per cycle (its stationary distribution times the
-    reward), and nothing when its rewards are all 0 (Kemeny & Snell 1960, Finite Markov Chains,
-    ch. 3-4: absorption probabilities and the fundamental matrix; from memory). Reached
-    classes of opposite signs, or a class whose non-zero rewards average 0 in the long
-    run, give NaN: the total is undefined. The classes are found
-    from ``P_pi`` itself, once per pattern of non-zero moves (draws usually share one).
-    """
-    D, S = P_pi.shape[0], P_pi.shape[-1]
-    if discount < 1.0:
-        values = _solve_rows(P_pi, sparse_pi, discount, reward, np.arange(D))
-        return np.einsum("ds,ds->d", start, values)
-    from scipy.sparse.csgraph import connected_components
-
-    moves = P_pi > 0
-    starts = np.broadcast_to(start, (D, S)) > 0
-    if D == 1:  # one pattern (np.unique over rows of S^2 bits costs seconds at S = 2,000)
-        group, inverse = np.zeros(1, dtype=np.intp), np.zeros(1, dtype=np.intp)
-    else:
-        keys = np.packbits(np.concatenate([moves.reshape(D, -1), starts], axis=1), axis=1)
-        _, group, inverse = np.unique(keys, axis=0, return_index=True, return_inverse=True)
-    total = np.zeros(D)
-    for g, first in enumerate(group):
-        draws = np.flatnonzero(inverse.reshape(-1) == g)
-        graph = moves[first]
-        n_classes, label = connected_components(graph, directed=True, connection="strong")
-        leaves = label[:, None] != label[None, :]
-        closed = np.array(
-            [not (graph[label == k] & leaves[label == k]).any() for k in range(n_classes)]
-        )
-        reach = _reachable(graph, starts[first])
-        transient = ~closed[label]
-        part = np.zeros(draws.size)
-        if transient.any():
-            values = _solve_rows(P_pi, sparse_pi, 1.0, reward, draws, transient)
-            part = np.einsum(
-                "ds,ds->d", np.broadcast_to(start, (D, S))[draws][:, transient], values
-            )
-        positive, negative = np.zeros(draws.size, bool), np.zeros(draws.size, bool)
-        undefined = np.zeros(draws.size, bool)
-        for k in np.flatnonzero(closed):
-            members = label == k
-            if not reach[members].any():
-                continue
-            class_reward = reward[draws][:, members]
-            rate = _long_run_reward(P_pi[draws][:, members][:, :, members], class_reward)
-            positive |= rate > 0
-            negative |= rate < 0
-            # Non-zero rewards averaging 0 in the long run (+1, -1, +1, ...) never settle.
-            undefined |= (rate == 0) & (class_reward != 0).any(axis=1)
-        part = np.where(positive, np.inf, part)
-        part = np.where(negative, -np.inf, part)
-        total[draws] = np.where((positive & negative) | undefined, np.nan, part)
-    return total
-
-
-def _reachable(graph: np.ndarray, starts: np.ndarray) -> np.ndarray:
-    """(S,) bool: states reachable from the ``starts`` (S,) bool along ``graph`` (S, S)
-    bool moves (breadth-first search; the start states included)."""
-    from scipy import sparse
-    from scipy.sparse.csgraph import breadth_first_order
-
-    S = graph.shape[0]
-    padded = np.zeros((S + 1, S + 1), dtype=bool)  # node S: a source moving to the starts
-    padded[:S, :S] = graph
-    padded[S, :S] = starts
-    order = breadth_first_order(
-        sparse.csr_array(padded), S, directed=True, return_predecessors=False
-    )
-    reach = np.zeros(S + 1, dtype=bool)
-    reach[order] = True
-    return reach[:S]
-
-
-def _long_run_reward(P_class: np.ndarray, reward: np.ndarray) -> np.ndarray:
-    """(D,) reward per cycle in the long run of a closed class: ``pi . r`` with ``pi`` its
-    stationary distribution (``pi (I - P) = 0``, ``sum pi = 1``); 0 within 1e-12."""
-    n = P_class.shape[-1]
-    if n == 1:
-        rate = reward[:, 0]
-    else:
-        system = np.swapaxes(np.eye(n) - P_class, 1, 2).copy()
-        system[:, -1, :] = 1.0
-        rhs = np.zeros((P_class.shape[0], n, 1))
-        rhs[:, -1, 0] = 1.0
-        pi = np.linalg.solve(system, rhs)[..., 0]
-        rate = np.einsum("ds,ds->d", pi, reward)
-    scale = np.abs(reward).max(axis=1) if reward.size else 0.0
-    return np.where(np.abs(rate) <= 1e-12 * np.maximum(scale, 1.0), 0.0, rate)
 
 
 def _benefit_and_value(objective, totals, terminal) -> tuple[np.ndarray, np.ndarray]:

@@ -70,6 +70,15 @@ this size run fastest (1,000 draws of the demo). Larger chunks take fresh memory
 for every array, whose first touch costs more than the per-chunk work saved; measured with
 benchmarks/bench_uncertainty.py."""
 
+SPARSE_MIN_STATES = 300
+"""Below this many states dense transitions (and the compiled loops) are faster; "auto"
+keeps them dense (:func:`caredecide.solvers.sparse.choose_form`, and the compiler's
+choice of :class:`caredecide.compiled.SparseTransitions`)."""
+SPARSE_MAX_DENSITY = 0.05
+"""Largest share of non-zero transition entries for the sparse form."""
+SPARSE_MAX_DRAWS = 16
+"""Sparse rows go draw by draw: for many draws the dense batches win."""
+
 
 def default_memory_limit() -> int:
     """Memory budget of a batch: half the currently available memory (4 GiB when unknown).

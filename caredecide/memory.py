@@ -14,9 +14,11 @@ their peaks, temporaries included, in bytes of float64 (8), intp (8) and bool (1
   columns of rates are equal and no common exit is factored out);
 * solve: the compiled arrays held, plus the results: values (D, T+1, S), Q-values
   (D, T, S, A), policy, gap, next-best action (intp) and ties (bool) per (D, T, S); an
-  infinite horizon holds (D, S, S) systems and (D, S, A) sweeps instead;
+  infinite horizon holds (D, S, S) systems and (D, S, A) sweeps instead (CSR rows of every
+  draw in the sparse form, :func:`stationary_sparse`);
 * evaluate: the cohort trace (D, T+1, S) (up to ``DISPLAY_CAP + 1`` rows for an infinite
-  horizon) and the (D, S, S) linear systems of the totals.
+  horizon) and the (D, S, S) linear systems of the totals (copies of the policy's CSR
+  rows in the sparse form).
 
 The pipeline peak is the largest of the three stages. The coefficients were measured with
 :mod:`tracemalloc` (``tests/test_memory.py`` checks the estimate against the measured peak
@@ -29,7 +31,7 @@ from dataclasses import dataclass
 
 from caredecide.compiled import CHECK_BLOCK_ROWS
 from caredecide.errors import ModelTooLargeError
-from caredecide.limits import DISPLAY_CAP
+from caredecide.limits import DISPLAY_CAP, SPARSE_MAX_DENSITY, SPARSE_MAX_DRAWS, SPARSE_MIN_STATES
 from caredecide.rate_rows import EXPONENTIAL_BLOCK
 
 FLOAT = 8
@@ -58,6 +60,11 @@ BASE_BYTES = 128 * 1024
 INFINITE_SYSTEM_COPIES = 3
 """(D, S, S) matrices a policy-iteration step or an infinite-horizon total holds at once
 (policy transitions, the system matrix, its factorisation)."""
+CSR_ENTRY_BYTES = FLOAT + 8
+"""Bytes of one non-zero of a CSR matrix (its value and int64 column)."""
+SPARSE_CHAIN_COPIES = 4
+"""Copies of the policy's CSR rows an infinite-horizon evaluation in sparse form holds
+(the rows, the transposed block matrix, the system and its sparse LU)."""
 
 
 @dataclass(frozen=True)
@@ -149,9 +156,33 @@ def results_bytes(shape: PipelineShape) -> int:
     return FLOAT * D * (T + 1) * S + D * T * S * (FLOAT * A + 3 * FLOAT + 1)
 
 
+def stationary_sparse(shape: PipelineShape) -> bool:
+    """An infinite horizon that policy and value iteration and the evaluation hold in CSR
+    rows: the "auto" choice of :func:`caredecide.solvers.sparse.choose_form` (large, few
+    draws, transitions constant over the cycles, few non-zeros), the density estimated
+    from the transition entries (:func:`_nonzeros`)."""
+    S, A = shape.n_states, shape.n_actions
+    return (
+        shape.n_cycles is None
+        and S >= SPARSE_MIN_STATES
+        and shape.n_draws <= SPARSE_MAX_DRAWS
+        and shape.transition_cycles == 1
+        and _nonzeros(shape) <= SPARSE_MAX_DENSITY * A * S * S
+    )
+
+
+def _nonzeros(shape: PipelineShape) -> int:
+    """Non-zero transitions of one draw: one per entry and a remainder per row at most."""
+    S, A = shape.n_states, shape.n_actions
+    return min(shape.n_entries + A * S, A * S * S)
+
+
 def solve_work_bytes(shape: PipelineShape) -> int:
-    """Bytes the solver holds besides its results (infinite horizon: linear systems)."""
+    """Bytes the solver holds besides its results (infinite horizon: linear systems, or
+    the CSR rows of every draw in the sparse form)."""
     D, S, A = shape.n_draws, shape.n_states, shape.n_actions
+    if shape.n_cycles is None and stationary_sparse(shape):
+        return D * (CSR_ENTRY_BYTES * _nonzeros(shape) + FLOAT * 4 * S * A)
     if shape.n_cycles is None:
         return FLOAT * D * (INFINITE_SYSTEM_COPIES * S * S + 4 * S * A)
     return FLOAT * D * S * (A + 2)  # one cycle's expectation and choice
@@ -164,6 +195,10 @@ def evaluate_bytes(shape: PipelineShape) -> int:
         # The display trace grows row by row until the cohort is absorbed or the cap is
         # reached (the worst case counted), then is stacked: two copies at the peak.
         rows = DISPLAY_CAP + 1
+        if stationary_sparse(shape):  # the rows read, copies of the policy's rows
+            read = CSR_ENTRY_BYTES * _nonzeros(shape)
+            chain = SPARSE_CHAIN_COPIES * read // shape.n_actions
+            return FLOAT * D * rows * (2 * S + 6) + D * (read + chain)
         return FLOAT * D * (rows * (2 * S + 6) + INFINITE_SYSTEM_COPIES * S * S)
     # The trace, six flow series and the policy as int32 (the compiled loop's copy).
     return FLOAT * D * (shape.n_cycles + 1) * (S + 6) + 4 * D * shape.n_cycles * S
@@ -225,8 +260,10 @@ def shape_from_parsed(flat_model, parsed, n_draws: int) -> PipelineShape:
 def draw_bytes(shape: PipelineShape) -> int:
     """Peak bytes one more draw adds to a pass (the estimate is linear in ``D`` beyond
     a fixed part: expression objects and small working arrays, counted once)."""
-    one = pipeline_peak_bytes(shape.with_draws(1))
-    return max(pipeline_peak_bytes(shape.with_draws(2)) - one, 1)
+    # Counted beyond SPARSE_MAX_DRAWS, where every form is dense: a chunk of many draws
+    # never gets the sparse form's smaller per-draw memory.
+    one = pipeline_peak_bytes(shape.with_draws(SPARSE_MAX_DRAWS + 1))
+    return max(pipeline_peak_bytes(shape.with_draws(SPARSE_MAX_DRAWS + 2)) - one, 1)
 
 
 def gib(n_bytes: float) -> str:

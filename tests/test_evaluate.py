@@ -178,11 +178,12 @@ def test_costs_and_net_benefit_by_hand():
     np.testing.assert_allclose(outcome.flows["costs"][0], [150.0, 75.0, 0.0])
 
 
-def test_undiscounted_total_is_infinite_when_an_absorbing_state_keeps_earning():
+@pytest.mark.parametrize("form", ["dense", "sparse"])  # both chains
+def test_undiscounted_total_is_infinite_when_an_absorbing_state_keeps_earning(form):
     compiled = make_compiled(
         np.array([[[0.5, 0.5], [0.0, 1.0]]]), state_qaly=[1.0, 1.0], absorbing=[False, True]
     )
-    outcome = evaluate_policy(compiled, 0, QALYS)
+    outcome = evaluate_policy(compiled, 0, QALYS, transition_form=form)
     assert outcome.qalys_undiscounted[0] == np.inf
 
 
@@ -196,38 +197,48 @@ LEAVE_HALF = np.array([[[0.5, 0.5], [0.0, 1.0]]])
 @pytest.mark.parametrize(
     ("dead_cost", "expected"), [(0.0, 2.0 * 10.0), (3.0, np.inf), (-3.0, -np.inf)]
 )
-def test_undiscounted_infinite_total_is_signed(dead_cost, expected):
+@pytest.mark.parametrize("form", ["dense", "sparse"])  # both chains
+def test_undiscounted_infinite_total_is_signed(dead_cost, expected, form):
     compiled = make_compiled(LEAVE_HALF, state_cost=[10.0, dead_cost], absorbing=[False, True])
-    assert evaluate_policy(compiled, 0, QALYS).costs_undiscounted[0] == expected
+    assert (
+        evaluate_policy(compiled, 0, QALYS, transition_form=form).costs_undiscounted[0] == expected
+    )
 
 
-def test_undiscounted_total_of_a_cohort_never_absorbed():
+@pytest.mark.parametrize("form", ["dense", "sparse"])  # both chains
+def test_undiscounted_total_of_a_cohort_never_absorbed(form):
     # Two states swapping forever, no absorbing state: zero costs total 0 (formerly +inf),
     # QALYs of 1 per cycle total +inf, QALYs of -1 per cycle total -inf.
     swap = np.array([[[0.0, 1.0], [1.0, 0.0]]])
     zero = make_compiled(swap, state_qaly=[1.0, 1.0], absorbing=[False, False])
-    outcome = evaluate_policy(zero, 0, QALYS)
+    outcome = evaluate_policy(zero, 0, QALYS, transition_form=form)
     assert outcome.costs_undiscounted[0] == 0.0
     assert outcome.qalys_undiscounted[0] == np.inf
     losing = make_compiled(swap, state_qaly=[-1.0, -1.0], absorbing=[False, False])
-    assert evaluate_policy(losing, 0, QALYS).qalys_undiscounted[0] == -np.inf
+    assert evaluate_policy(losing, 0, QALYS, transition_form=form).qalys_undiscounted[0] == -np.inf
 
 
-def test_undiscounted_total_without_a_sum_is_nan():
+@pytest.mark.parametrize("form", ["dense", "sparse"])  # both chains
+def test_undiscounted_total_without_a_sum_is_nan(form):
     # Opposite signs in two reached absorbing states, or +1/-1 alternating: no total.
     split = np.array([[[0.0, 0.5, 0.5], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]]])
     compiled = make_compiled(split, state_cost=[0.0, 1.0, -1.0], absorbing=[False, True, True])
-    assert np.isnan(evaluate_policy(compiled, 0, QALYS).costs_undiscounted[0])
+    assert np.isnan(evaluate_policy(compiled, 0, QALYS, transition_form=form).costs_undiscounted[0])
     swap = np.array([[[0.0, 1.0], [1.0, 0.0]]])
     alternating = make_compiled(swap, state_qaly=[1.0, -1.0], absorbing=[False, False])
-    assert np.isnan(evaluate_policy(alternating, 0, QALYS).qalys_undiscounted[0])
+    assert np.isnan(
+        evaluate_policy(alternating, 0, QALYS, transition_form=form).qalys_undiscounted[0]
+    )
 
 
-def test_unreached_earning_state_adds_nothing():
+@pytest.mark.parametrize("form", ["dense", "sparse"])  # both chains
+def test_unreached_earning_state_adds_nothing(form):
     # State 2 earns but is never reached from the start: the total stays finite (2 * 10).
     P = np.array([[[0.5, 0.5, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]]])
     compiled = make_compiled(P, state_cost=[10.0, 0.0, 5.0], absorbing=[False, True, True])
-    assert evaluate_policy(compiled, 0, QALYS).costs_undiscounted[0] == pytest.approx(20.0)
+    assert evaluate_policy(compiled, 0, QALYS, transition_form=form).costs_undiscounted[
+        0
+    ] == pytest.approx(20.0)
 
 
 def test_frames():
@@ -268,7 +279,7 @@ def test_reachable_states_are_those_of_the_transitive_closure(seed, S):
     # Reachability from the start states by breadth-first search equals the non-zero
     # pattern of (I + G)^S applied to the starts (common practice: S - 1 steps reach
     # every reachable state of an S-state graph).
-    from caredecide.evaluate import _reachable
+    from caredecide.stationary_totals import reachable
 
     rng = np.random.default_rng(seed)
     graph = rng.random((S, S)) < 0.2
@@ -277,4 +288,4 @@ def test_reachable_states_are_those_of_the_transitive_closure(seed, S):
     closure = starts.copy()
     for _ in range(S):
         closure = (closure.astype(int) @ step.astype(int)) > 0
-    np.testing.assert_array_equal(_reachable(graph, starts), closure)
+    np.testing.assert_array_equal(reachable(graph, starts), closure)

@@ -54,6 +54,7 @@ FLOORS: dict[str, int] = {
     "caredecide.diagram_charts": 1,
     "caredecide.solvers": 3,
     "caredecide.evaluate": 3,
+    "caredecide.stationary_totals": 3,
     "caredecide.structure": 3,
     "caredecide.chunks": 3,
     "caredecide.batch": 3,

@@ -453,21 +453,24 @@ def test_policy_values_by_back_substitution_equal_a_dense_solve(step_back):
 
 
 def test_infinite_horizon_evaluation_with_sparse_rows_equals_the_dense_one(monkeypatch):
-    # A large model with few moves per state: the display trace and the linear solves of
-    # the totals (discounted, and undiscounted on the transient states) go by the policy's
-    # CSR rows; same trace and totals as the dense arrays (common practice: a storage
-    # change never changes the answer beyond rounding), and the discounted value equals
-    # the solver's value of the start state.
+    # A large model with few moves per state: the display trace, the linear solves of the
+    # totals (discounted, and undiscounted on the transient states) and the classes of
+    # states go by the policy's CSR rows, no dense (S, S) matrix built; same trace and
+    # totals as the dense arrays (common practice: a storage change never changes the
+    # answer beyond rounding), and the discounted value equals the solver's value of the
+    # start state.
     compiled = _sparse_model(SPARSE_MIN_STATES + 30, seed=6)
     result = solve(compiled, QALYS)
     assert result.transition_form == "sparse"
     used = []
-    rows_of = evaluate._sparse_rows
-    monkeypatch.setattr(evaluate, "_sparse_rows", lambda P: used.append(1) or rows_of(P))
+    dense_rows = evaluate._policy_transition
+    monkeypatch.setattr(
+        evaluate, "_policy_transition", lambda *a: used.append(1) or dense_rows(*a)
+    )
     outcome = evaluate_policy(compiled, result.policy, QALYS)
-    assert used == [1]
+    assert used == []  # no dense policy matrix
     dense = evaluate_policy(compiled, result.policy, QALYS, transition_form="dense")
-    assert used == [1]  # the dense reference used no sparse rows
+    assert used == [1]  # the dense reference built one
     np.testing.assert_allclose(outcome.trace, dense.trace, rtol=0, atol=1e-13)
     for name in ("qalys", "life_years", "qalys_undiscounted", "life_years_undiscounted"):
         np.testing.assert_allclose(getattr(outcome, name), getattr(dense, name), rtol=1e-10)

@@ -124,7 +124,7 @@ class PolicyResult:
         How the solver stored the transitions (see :mod:`caredecide.solvers.sparse`).
     transition_rows : scipy.sparse CSR (D A S, S) or None
         The checked sparse rows the solver read (sparse backward induction with
-        transitions constant over the cycles), handed to
+        transitions constant over the cycles; sparse policy or value iteration), handed to
         :func:`caredecide.evaluate.evaluate_policy` (``transition_rows=``) so that the
         base case reads the dense transitions once; None otherwise.
     """

@@ -30,6 +30,7 @@ from typing import Any
 import numpy as np
 
 from caredecide.compiled import ROW_SUM_TOLERANCE, CompiledModel
+from caredecide.limits import SPARSE_MAX_DENSITY, SPARSE_MAX_DRAWS, SPARSE_MIN_STATES
 from caredecide.objective import Objective
 from caredecide.solvers import kernels
 from caredecide.solvers.bellman import (
@@ -46,15 +47,9 @@ from caredecide.solvers.finite import induction_outputs, induction_result
 from caredecide.solvers.result import PolicyResult
 
 TRANSITION_FORMS = ("auto", "dense", "sparse")
-SPARSE_MIN_STATES = 300
-"""Below this many states dense arrays (and the compiled loops) are faster."""
-SPARSE_MAX_DENSITY = 0.05
-"""Largest share of non-zero transition entries for the sparse form."""
 DENSITY_SAMPLE_ROWS = 256
 """Rows of the first draw whose non-zeros estimate the density (a full count would read
 every transition once more just to choose the form)."""
-SPARSE_MAX_DRAWS = 16
-"""Sparse factorisations go draw by draw: for many draws the dense batches win."""
 
 
 def choose_form(transition: np.ndarray, requested: str) -> str:
@@ -196,10 +191,11 @@ def sparse_iterate(
     tolerance: float,
     relative: bool,
     max_iterations: int,
-) -> tuple[int, np.ndarray, bool, np.ndarray]:
+) -> tuple[int, np.ndarray, bool, np.ndarray, Any]:
     """Policy or value iteration with sparse transitions, draw by draw.
 
-    Each draw's dense transitions are read once into CSR; its rewards per cycle
+    The dense transitions are read once into checked CSR rows (:func:`transition_rows`,
+    returned for the evaluation's hand-off); each draw's rewards per cycle
     ``R[a, s] = now[s, a] + sum_s' P[a, s, s'] arrival[a, s']``
     (:func:`caredecide.solvers.bellman.cycle_rewards`), its iterations and the action
     values of its final values all use the sparse rows.
@@ -214,8 +210,9 @@ def sparse_iterate(
 
     Returns
     -------
-    iterations (largest over draws), residual (D,), converged (all draws), and Q
-    (D, S, A) the action values of the final values (``-inf`` where not allowed).
+    iterations (largest over draws), residual (D,), converged (all draws), Q (D, S, A)
+    the action values of the final values (``-inf`` where not allowed), and the CSR rows
+    (D A S, S) read.
     """
     D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
     now, arrival = cycle_rewards(compiled, objective, 0)  # (D, S, A), (D, A, S)
@@ -224,8 +221,9 @@ def sparse_iterate(
     residual = np.empty(D)
     sweeps = np.zeros(D, dtype=int)
     done = np.zeros(D, dtype=bool)
+    read = transition_rows(compiled)  # (D A S, S), every row checked as it is read
     for d in range(D):
-        rows = _checked_rows(compiled, d, 0, block=False)
+        rows = read[d * A * S : (d + 1) * A * S]
         R = now[d].T.copy()
         if arrival[d].any():  # rewards on arrival: each action's rows times its own vector
             for a in range(A):
@@ -238,7 +236,7 @@ def sparse_iterate(
                 rows, R, gamma, tolerance, relative, max_iterations
             )
         Q[d] = (R + gamma * (rows @ v).reshape(A, S)).T
-    return int(sweeps.max(initial=0)), residual, bool(done.all()), Q
+    return int(sweeps.max(initial=0)), residual, bool(done.all()), Q, read
 
 
 def _policy_values(rows, R: np.ndarray, gamma: float, policy: np.ndarray) -> np.ndarray:

@@ -390,6 +390,7 @@ def solve_stationary(
         form = "dense"
     gamma = stationary_discount(compiled, objective)
     decision_states = decision_state_mask(compiled)
+    rows = None  # the sparse form's checked CSR rows, handed to the evaluation
     fused = (
         form == "dense"
         and method in ("value_iteration", "policy_iteration")
@@ -410,7 +411,7 @@ def solve_stationary(
         bound = _error_bound(method, residual, gamma)
     else:
         if form == "sparse":
-            iterations, residual, converged, Q = sparse_iterate(
+            iterations, residual, converged, Q, rows = sparse_iterate(
                 compiled, objective, gamma, method, tolerance, relative, max_iterations
             )
         else:
@@ -451,6 +452,7 @@ def solve_stationary(
         success=converged,
         message=message,
         transition_form=form,
+        transition_rows=rows,
     )
 
 
