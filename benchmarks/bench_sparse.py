@@ -1,4 +1,4 @@
-"""A 2,000-state model with at most 10 non-zeros per row: sparse vs dense transitions.
+"""Models of 1,000 to 4,000 states, at most 10 non-zeros per row: sparse vs dense transitions.
 
 Not a test: prints times and peak memory measured in this run on this machine.
 
@@ -18,7 +18,12 @@ solves it in a fresh process (so its peak resident memory is its own):
 ties for the iterative methods) and values agree to 1e-10 relative (1e-6 for the iterative
 methods, whose stopping rule is 1e-10) before a ratio is printed.
 
-Run: python benchmarks/bench_sparse.py [--states 2000] [--cycles 60] [--repeats 3]
+Run: python benchmarks/bench_sparse.py [--states 1000 2000 4000] [--cycles 60] [--repeats 3]
+
+Prints every case for each size of the grid (``--states``, default 1,000, 2,000 and
+4,000 states), then a summary table of the dense / sparse ratios per size and case, with
+the issue's target (base case >= 10x faster than dense and under 1 GiB at 2,000 states)
+marked, and the machine load at the start and the end.
 """
 
 from __future__ import annotations
@@ -117,74 +122,115 @@ def run(states: int, form: str, method: str, cycles: int | None, back: bool) -> 
     return json.loads(done.stdout.strip().splitlines()[-1])
 
 
+CASES = (  # method, finite horizon, a step back
+    ("policy_iteration", False, False),
+    ("policy_iteration", False, True),
+    ("value_iteration", False, False),
+    ("backward_induction", True, False),
+)
+TARGET_STATES = 2000
+"""The issue's size: base case >= 10x faster than dense and under 1 GiB."""
+
+
+def measure(states: int, method: str, cycles: int | None, back: bool, repeats: int) -> dict:
+    """Run one case in each form ``repeats`` times; check the answers agree; print the
+    case's lines and return its ratios and peaks."""
+    runs: dict[str, list[dict]] = {"dense": [], "sparse": [], "auto": []}
+    for _ in range(repeats):
+        for form in runs:
+            runs[form].append(run(states, form, method, cycles, back))
+    dense, sparse, auto = runs["dense"][0], runs["sparse"][0], runs["auto"][0]
+    if auto["form"] != "sparse":
+        raise SystemExit(f"auto picked {auto['form']}, expected sparse")
+    exact = cycles is not None  # backward induction: no stopping rule
+    tied = set() if exact else {i for i, t in enumerate(dense["indifferent"]) if t}
+    differ = [
+        i
+        for i, (a, b) in enumerate(zip(dense["policy"], sparse["policy"], strict=True))
+        if a != b and i not in tied
+    ]
+    gap = max(abs(a - b) for a, b in zip(dense["value"], sparse["value"], strict=True))
+    scale = max(abs(a) for a in dense["value"])
+    moved = max(
+        (abs(a - b) for a, b in zip(dense["trace"], sparse["trace"], strict=True)),
+        default=0.0,
+    )
+    total = abs(dense["total_value"] - sparse["total_value"])  # base case totals
+    if differ or gap > (1e-10 if exact else 1e-6) * scale or moved > 1e-12:
+        raise SystemExit(
+            f"{method}, {states} states: forms disagree ({len(differ)} policies, value "
+            f"{gap:g}, trace {moved:g})"
+        )
+    if total > 1e-10 * max(abs(dense["total_value"]), 1.0):
+        raise SystemExit(f"{method}, {states} states: base case totals disagree ({total:g})")
+    t = {form: statistics.median(r["seconds"] for r in rs) for form, rs in runs.items()}
+    e = {form: statistics.median(r["evaluation"] for r in rs) for form, rs in runs.items()}
+    b = {form: statistics.median(r["base_case"] for r in rs) for form, rs in runs.items()}
+    peak = {form: max(r["peak_mib"] for r in rs) for form, rs in runs.items()}
+    horizon = "infinite horizon" if cycles is None else f"{cycles} cycles"
+    kind = "with a step back (cyclic)" if back else "progressive (acyclic)"
+    print(
+        f"\n== {method}: {states} states, 2 actions, {kind}, {horizon}, one draw, "
+        f"{dense['nonzeros_per_row']:.1f} non-zeros per row (median of {repeats}) =="
+    )
+    print(
+        f"answers agree (policies {'identical' if exact else 'equal outside ties'}; max "
+        f"|value difference| {gap:.1e}, values up to {scale:.3g}; base case total value "
+        f"differs by {total:.1e})"
+    )
+    for form in runs:
+        line = f"  {form:6s} solve {t[form]:8.3f} s CPU"
+        if exact:
+            line += f"   trace + totals {e[form]:7.3f} s"
+        line += f"   base case {b[form]:7.3f} s"
+        used = runs[form][0]["form"]
+        print(f"{line}   peak {peak[form]:6.0f} MiB (process total)   used: {used}")
+    solve_ratio = t["dense"] / t["sparse"]
+    print(f"  dense / sparse, solve: {solve_ratio:.1f}x")
+    if exact:
+        two = (t["dense"] + e["dense"]) / (t["sparse"] + e["sparse"])
+        print(f"  dense / sparse, solve + trace + totals (two calls): {two:.1f}x")
+    entry = b["dense"] / b["sparse"]
+    target = " (target >= 10x)" if states == TARGET_STATES else ""
+    print(f"  dense / sparse, base case (analyse_base_case): {entry:.1f}x{target}")
+    case = f"{method.replace('_', ' ')}, {'cyclic' if back else 'progressive'}"
+    return {
+        "states": states, "case": case, "solve": solve_ratio, "base": entry,
+        "dense_base": b["dense"], "sparse_base": b["sparse"],
+        "dense_peak": peak["dense"], "sparse_peak": max(peak["sparse"], peak["auto"]),
+    }  # fmt: skip
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--states", type=int, default=2000)
+    parser.add_argument("--states", type=int, nargs="+", default=[1000, 2000, 4000])
     parser.add_argument("--cycles", type=int, default=60)
     parser.add_argument("--repeats", type=int, default=3)
     args = parser.parse_args()
     print("SYNTHETIC benchmark model (invented numbers); research use only.")
-    cases = (
-        ("policy_iteration", None, False),
-        ("policy_iteration", None, True),
-        ("value_iteration", None, False),
-        ("backward_induction", args.cycles, False),
+    load = ", ".join(f"{x:.2f}" for x in os.getloadavg())
+    print(f"load average (1, 5, 15 min) at the start: {load}")
+    rows = []
+    for states in args.states:
+        for method, finite, back in CASES:
+            horizon = args.cycles if finite else None
+            rows.append(measure(states, method, horizon, back, args.repeats))
+    print(f"\n== summary: dense / sparse, CPU time (median of {args.repeats}) ==")
+    print(
+        f"{'states':>6}  {'case':36s} {'solve':>7} {'base case':>10} {'dense s':>8} "
+        f"{'sparse s':>9} {'peak MiB sparse':>16} {'dense':>6}"
     )
-    for method, cycles, back in cases:
-        runs: dict[str, list[dict]] = {"dense": [], "sparse": [], "auto": []}
-        for _ in range(args.repeats):
-            for form in runs:
-                runs[form].append(run(args.states, form, method, cycles, back))
-        dense, sparse, auto = runs["dense"][0], runs["sparse"][0], runs["auto"][0]
-        if auto["form"] != "sparse":
-            raise SystemExit(f"auto picked {auto['form']}, expected sparse")
-        exact = cycles is not None  # backward induction: no stopping rule
-        tied = set() if exact else {i for i, t in enumerate(dense["indifferent"]) if t}
-        differ = [
-            i
-            for i, (a, b) in enumerate(zip(dense["policy"], sparse["policy"], strict=True))
-            if a != b and i not in tied
-        ]
-        gap = max(abs(a - b) for a, b in zip(dense["value"], sparse["value"], strict=True))
-        scale = max(abs(a) for a in dense["value"])
-        moved = max(
-            (abs(a - b) for a, b in zip(dense["trace"], sparse["trace"], strict=True)),
-            default=0.0,
-        )
-        total = abs(dense["total_value"] - sparse["total_value"])  # base case totals
-        if differ or gap > (1e-10 if exact else 1e-6) * scale or moved > 1e-12:
-            raise SystemExit(
-                f"{method}: forms disagree ({len(differ)} policies, value {gap:g}, trace {moved:g})"
-            )
-        if total > 1e-10 * max(abs(dense["total_value"]), 1.0):
-            raise SystemExit(f"{method}: base case totals disagree (value {total:g})")
-        t = {form: statistics.median(r["seconds"] for r in rs) for form, rs in runs.items()}
-        e = {form: statistics.median(r["evaluation"] for r in rs) for form, rs in runs.items()}
-        b = {form: statistics.median(r["base_case"] for r in rs) for form, rs in runs.items()}
-        peak = {form: max(r["peak_mib"] for r in rs) for form, rs in runs.items()}
-        horizon = "infinite horizon" if cycles is None else f"{cycles} cycles"
-        kind = "with a step back (cyclic)" if back else "progressive (acyclic)"
+    for row in rows:
+        mark = ""
+        if row["states"] == TARGET_STATES:
+            fast = "meets" if row["base"] >= 10 else "BELOW"
+            small = "meets" if row["sparse_peak"] < 1024 else "ABOVE"
+            mark = f"  {fast} >= 10x, {small} < 1 GiB"
         print(
-            f"\n== {method}: {args.states} states, 2 actions, {kind}, {horizon}, one draw, "
-            f"{dense['nonzeros_per_row']:.1f} non-zeros per row (median of {args.repeats}) =="
+            f"{row['states']:>6}  {row['case']:36s} {row['solve']:6.1f}x {row['base']:9.1f}x "
+            f"{row['dense_base']:8.3f} {row['sparse_base']:9.3f} {row['sparse_peak']:16.0f} "
+            f"{row['dense_peak']:6.0f}{mark}"
         )
-        print(
-            f"answers agree (policies {'identical' if exact else 'equal outside ties'}; max "
-            f"|value difference| {gap:.1e}, values up to {scale:.3g})"
-        )
-        for form in runs:
-            line = f"  {form:6s} solve {t[form]:8.3f} s CPU"
-            if exact:
-                line += f"   trace + totals {e[form]:7.3f} s"
-            line += f"   base case {b[form]:7.3f} s"
-            used = runs[form][0]["form"]
-            print(f"{line}   peak {peak[form]:6.0f} MiB (process total)   used: {used}")
-        print(f"  dense / sparse, solve: {t['dense'] / t['sparse']:.1f}x (target >= 10x)")
-        if exact:
-            base = (t["dense"] + e["dense"]) / (t["sparse"] + e["sparse"])
-            print(f"  dense / sparse, solve + trace + totals (two calls): {base:.1f}x")
-        entry = b["dense"] / b["sparse"]
-        print(f"  dense / sparse, base case (analyse_base_case): {entry:.1f}x (target >= 10x)")
     load = ", ".join(f"{x:.2f}" for x in os.getloadavg())
     print(f"load average (1, 5, 15 min) at the end: {load}")
     print("(machine shared with other jobs while measured: absolute times are noisy)")
