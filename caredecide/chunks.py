@@ -30,7 +30,8 @@ import numpy as np
 import pandas as pd
 
 from caredecide.compile import compile_model
-from caredecide.compiled import CompiledModel
+from caredecide.compiled import CompiledModel, SparseTransitions, sparse_stand_in
+from caredecide.errors import CompiledModelError
 from caredecide.evaluate import DISPLAY_CAP
 from caredecide.limits import CHUNK_MEMORY_BYTES, default_memory_limit
 from caredecide.objective import Objective
@@ -315,15 +316,42 @@ def join_compiled(pieces: Sequence[CompiledModel]) -> CompiledModel:
     """One compiled model holding the draws of ``pieces`` in order (same model, same shapes)."""
     if len(pieces) == 1:
         return pieces[0]
+    held = pieces[0].sparse_transition
     joined: dict[str, Any] = {
         f: np.concatenate([getattr(p, f) for p in pieces])
         for f in _COMPILED_DRAW_FIELDS
-        if getattr(pieces[0], f) is not None
+        if getattr(pieces[0], f) is not None and not (f == "transition" and held is not None)
     }
+    if held is not None:  # sparse rows: one pattern, the values joined (no dense array)
+        joined["sparse_transition"] = join_sparse([p.sparse_transition for p in pieces])
+        joined["transition"] = sparse_stand_in(joined["sparse_transition"].shape)
     for rate in ("discount_outcomes", "discount_costs"):  # per-draw rates (threshold batches)
         if np.ndim(getattr(pieces[0], rate)):
             joined[rate] = np.concatenate([getattr(p, rate) for p in pieces])
     return replace(pieces[0], **joined)
+
+
+def join_sparse(pieces: Sequence[SparseTransitions | None]) -> SparseTransitions:
+    """Sparse rows of one pattern holding the draws of ``pieces`` in order.
+
+    Raises
+    ------
+    CompiledModelError
+        A piece without sparse rows, or with another pattern.
+    """
+    first = pieces[0]
+    if first is None or any(
+        p is None
+        or not np.array_equal(p.indptr, first.indptr)
+        or not np.array_equal(p.indices, first.indices)
+        for p in pieces
+    ):
+        raise CompiledModelError(
+            "compiled pieces to join hold their transitions in different forms or sparse "
+            "patterns; expected pieces of one model compiled in one form"
+        )
+    values = np.concatenate([p.values for p in pieces if p is not None])
+    return replace(first, values=values)
 
 
 def join_results(pieces: Sequence[PolicyResult]) -> PolicyResult:

@@ -22,11 +22,17 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from caredecide.compiled import CompiledModel
+from caredecide.compiled import CompiledModel, sparse_stand_in
 from caredecide.errors import ModelError, Problem
 from caredecide.limits import default_memory_limit
-from caredecide.memory import check_fits, shape_from_parsed
+from caredecide.memory import PipelineShape, check_fits, shape_from_parsed
 from caredecide.model import Model
+from caredecide.sparse_compile import (
+    SparsePattern,
+    apply_sparse_moves,
+    sparse_pattern,
+    sparse_transitions,
+)
 
 if TYPE_CHECKING:
     from caredecide.expressions import Expression
@@ -333,6 +339,7 @@ def compile_model(
     parameter_sets: object = None,
     *,
     memory_limit_bytes: int | None = None,
+    transition_form: str = "auto",
 ) -> CompiledModel:
     """Arrays of ``model`` for a batch of parameter sets (see :mod:`caredecide.compiled`).
 
@@ -346,6 +353,14 @@ def compile_model(
         Refuse (``ModelTooLargeError``) when the estimated peak of compiling, solving and
         evaluating (:func:`caredecide.memory.pipeline_peak_bytes`) would be larger;
         default: half of the available memory.
+    transition_form : {"auto", "dense", "sparse"}
+        How the transitions are held: the dense (D, Tp, A, S, S) array, or sparse rows
+        (:class:`caredecide.compiled.SparseTransitions`, finite horizon only: one pattern
+        of non-zeros per action for every draw and cycle, never the dense array). "auto"
+        picks sparse for a finite horizon when the dense array would not fit
+        ``memory_limit_bytes`` but the sparse rows do, or when the model is large and
+        sparse (:func:`choose_transition_form`). ``CompiledModel.transition_form`` says
+        which form was used.
 
     Returns
     -------
@@ -370,14 +385,16 @@ def compile_model(
     settings = model.settings
     lengths = _time_lengths(model, parsed)
     limit = default_memory_limit() if memory_limit_bytes is None else int(memory_limit_bytes)
+    absorbing = np.array([s.absorbing for s in model.states], dtype=bool)
+    allowed = _allowed_matrix(model, absorbing)
+    shape, pattern = choose_transition_form(
+        model, parsed, n_draws, allowed, absorbing, limit, transition_form
+    )
     # The whole pass (compile, solve, evaluate), temporaries included, before any array.
-    check_fits(shape_from_parsed(model, parsed, n_draws), limit, file=model.file_label)
+    check_fits(shape, limit, file=model.file_label)
     tp, tq, td = lengths
     evaluator = _Evaluator(model, values, n_draws)
     problems: list[Problem] = []
-
-    absorbing = np.array([s.absorbing for s in model.states], dtype=bool)
-    allowed = _allowed_matrix(model, absorbing)
     defined_rows = (allowed & ~absorbing[:, None]).T  # (A, S): rows the model must give
     for a, s in _moved_away(model):  # wholly moved: the destination's rows apply instead
         defined_rows[a, s] = False
@@ -412,13 +429,22 @@ def compile_model(
             entries, array, low=0.0, high=np.inf, what="cost", expected="a cost >= 0"
         )
 
-    transition = _transitions(model, parsed, evaluator, defined_rows, tp, problems)
+    sparse = None
+    if pattern is None:
+        transition = _transitions(model, parsed, evaluator, defined_rows, tp, problems)
+    else:
+        sparse = sparse_transitions(model, parsed, evaluator, pattern, defined_rows, tp, problems)
+        transition = sparse_stand_in(sparse.shape)
     # Moves get a time axis only when a share changes with the cycle.
     tm = tp if any(e.uses_time for e in (*parsed.moves, *parsed.move_rests)) else 1
     move = _moves(model, parsed, evaluator, allowed, tm, problems)
     if move is not None and not problems:
         move = _one_slice_when_constant(move)
-        transition = apply_moves(transition, move, allowed, absorbing, in_place=True)
+        if sparse is None:
+            transition = apply_moves(transition, move, allowed, absorbing, in_place=True)
+        else:
+            assert pattern is not None
+            sparse = apply_sparse_moves(sparse, pattern, move, allowed, absorbing)
     n = model.n_cycles()
     tr = n if (n is not None and parsed.under_action_uses_time) else 1
     under_cost = _under_action(model, parsed.under_cost, evaluator, tr, problems, cost=True)
@@ -457,7 +483,78 @@ def compile_model(
         move=move,
         state_action_qaly=None if under_qaly is None else under_qaly * settings.cycle_years,
         state_action_cost=under_cost,
+        sparse_transition=sparse,
     )
+
+
+def choose_transition_form(
+    model: Model,
+    parsed: ParsedModel,
+    n_draws: int,
+    allowed: np.ndarray,
+    absorbing: np.ndarray,
+    limit: int,
+    requested: str,
+) -> tuple[PipelineShape, SparsePattern | None]:
+    """The pipeline shape to check against the memory budget, and the sparse pattern
+    when the transitions are compiled in sparse rows (None: dense).
+
+    "auto" picks sparse rows for a finite horizon (without rate rows inside tunnels) when
+    the dense pass would not fit ``limit`` bytes, or when the model has at least
+    :data:`~caredecide.limits.SPARSE_MIN_STATES` states, transitions that vary with the
+    cycle (transitions constant over the cycles are read into sparse rows by the solver
+    itself) and a pattern of at most :data:`~caredecide.limits.SPARSE_MAX_DENSITY` of
+    the cells.
+
+    Raises
+    ------
+    RunOptionError
+        ``requested`` is not one of "auto", "dense", "sparse".
+    ModelError
+        "sparse" for a model that cannot be compiled so (infinite horizon, rate rows
+        inside tunnels).
+    """
+    from dataclasses import replace
+
+    from caredecide.limits import SPARSE_MAX_DENSITY, SPARSE_MIN_STATES
+    from caredecide.memory import pipeline_peak_bytes
+    from caredecide.options import check_choice
+
+    check_choice(requested, "transition_form", ("auto", "dense", "sparse"))
+    shape = shape_from_parsed(model, parsed, n_draws)
+    if requested == "dense":
+        return shape, None
+    finite = model.n_cycles() is not None
+    if not finite or model.rate_row_clock:
+        if requested == "sparse":
+            why = "an infinite horizon" if not finite else "rate rows inside tunnels"
+            raise ModelError(
+                [
+                    Problem(
+                        "settings",
+                        f"transition_form = 'sparse' is not available for {why}; expected "
+                        "'dense' or 'auto' (sparse rows serve finite horizons without rate "
+                        "rows inside tunnels)",
+                    )
+                ],
+                file=model.file_label,
+            )
+        return shape, None
+    S = shape.n_states
+    too_large = pipeline_peak_bytes(shape) > limit
+    if requested == "auto" and not too_large and S < SPARSE_MIN_STATES:
+        return shape, None
+    pattern = sparse_pattern(model, parsed, allowed, absorbing)
+    sparse_shape = replace(shape, sparse_entries=int(pattern.keys.size))
+    if requested == "sparse":
+        return sparse_shape, pattern
+    fits_sparse = pipeline_peak_bytes(sparse_shape) <= limit
+    # Any number of draws: the sparse loops go draw by draw, as the dense ones (and the
+    # chunks of one model then share one form).
+    worth = shape.transition_cycles > 1 and pattern.density <= SPARSE_MAX_DENSITY
+    if (too_large and fits_sparse) or (worth and not too_large):
+        return sparse_shape, pattern
+    return shape, None
 
 
 def _moved_away(model: Model) -> list[tuple[int, int]]:
@@ -504,15 +601,9 @@ def _moves(
     if parsed.move_rests:
         a, s, to = _indices(parsed.move_rests)
         remainder = 1.0 - M.sum(axis=-1)[:, :, a, s]
-        problems += evaluator.check_range(
-            parsed.move_rests,
-            np.moveaxis(remainder, -1, 0),
-            low=-ROW_TOLERANCE,
-            high=np.inf,
-            what="remainder",
-            expected="the other shares of the move to sum to at most 1 (remainder >= 0)",
+        M[:, :, a, s, to] = remainder_values(
+            parsed.move_rests, evaluator, remainder, problems, "the other shares of the move"
         )
-        M[:, :, a, s, to] = np.clip(remainder, 0.0, 1.0)
     row_sums = M.sum(axis=-1)
     off = np.abs(row_sums - 1.0) > ROW_TOLERANCE
     if off.any() and not problems:
@@ -682,31 +773,17 @@ def _transitions(
     self_a, self_s = np.nonzero(~defined_rows)
     P[:, :, self_a, self_s, self_s] = 1.0
 
-    if parsed.transitions:
-        probabilities = evaluator.stack(parsed.transitions, tp)  # (n, D, Tp)
-        problems += evaluator.check_finite(parsed.transitions, probabilities)
-        problems += evaluator.check_range(
-            parsed.transitions,
-            probabilities,
-            low=0.0,
-            high=1.0,
-            what="probability",
-            expected="a probability in [0, 1]",
-        )
+    probabilities = given_probabilities(parsed, evaluator, tp, problems)
+    if probabilities is not None:
         a, s, to = _indices(parsed.transitions)
         P[:, :, a, s, to] = np.moveaxis(probabilities, 0, -1)
         del probabilities  # not held while the rate rows are built
 
-    if parsed.rates:
-        rates = evaluator.stack(parsed.rates, tp)
-        problems += evaluator.check_finite(parsed.rates, rates)
-        problems += evaluator.check_range(
-            parsed.rates, rates, low=0.0, high=np.inf, what="rate", expected="a rate >= 0 per year"
-        )
-        if not problems:
-            _fill_rate_rows(P, parsed.rates, rates, model.settings.cycle_years, **_RATE_ROWS)
-            apply_rate_row_clock(P, model)  # rate rows inside tunnels: steps one on
-        del rates
+    rates = given_rates(parsed, evaluator, tp, problems)
+    if rates is not None and not problems:
+        _fill_rate_rows(P, parsed.rates, rates, model.settings.cycle_years, **_RATE_ROWS)
+        apply_rate_row_clock(P, model)  # rate rows inside tunnels: steps one on
+    del rates
 
     if parsed.rests:
         a, s, to = _indices(parsed.rests)
@@ -716,22 +793,9 @@ def _transitions(
             [1.0 - P[:, :, ai, si, :].sum(axis=-1) for ai, si in zip(a, s, strict=True)],
             axis=-1,
         )  # (D, Tp, n): rest cells still hold 0
-        problems += evaluator.check_range(
-            parsed.rests,
-            np.moveaxis(remainder, -1, 0),
-            low=-ROW_TOLERANCE,
-            high=np.inf,
-            what="remainder",
-            expected="the other entries of the row to sum to at most 1 (remainder >= 0)",
-        )
-        P[:, :, a, s, to] = np.clip(remainder, 0.0, 1.0)
+        P[:, :, a, s, to] = remainder_values(parsed.rests, evaluator, remainder, problems)
 
-    # Only rows of given probabilities without a remainder can miss 1: a rest row sums
-    # to 1 by construction (its remainder was checked above), a rate row is a row of a
-    # generator's exponential (checked there), the other rows are self-loops.
-    checked = np.array(defined_rows, dtype=bool)  # (A, S)
-    for e in (*parsed.rests, *parsed.rates):
-        checked[e.action, e.state] = False
+    checked = rows_to_check(parsed, defined_rows)
     if problems or not checked.any():
         return P
     if checked.sum() > checked.size // 2:  # one pass over P beats many strided ones
@@ -742,6 +806,86 @@ def _transitions(
             (int(i), int(j)): np.einsum("dtk->dt", P[:, :, i, j, :])
             for i, j in np.argwhere(checked)
         }
+    problems += row_sum_problems(model, evaluator, sums, tp)
+    return P
+
+
+def given_probabilities(
+    parsed: ParsedModel, evaluator: _Evaluator, tp: int, problems: list[Problem]
+) -> np.ndarray | None:
+    """(n, D, Tp) checked values of the probability entries, or None without any."""
+    return _checked_stack(
+        parsed.transitions, evaluator, tp, problems, 1.0, "probability", "a probability in [0, 1]"
+    )
+
+
+def given_rates(
+    parsed: ParsedModel, evaluator: _Evaluator, tp: int, problems: list[Problem]
+) -> np.ndarray | None:
+    """(n, D, Tp) checked rates per year of the rate entries, or None without any."""
+    return _checked_stack(
+        parsed.rates, evaluator, tp, problems, np.inf, "rate", "a rate >= 0 per year"
+    )
+
+
+def _checked_stack(
+    entries: list[Entry],
+    evaluator: _Evaluator,
+    tp: int,
+    problems: list[Problem],
+    high: float,
+    what: str,
+    expected: str,
+) -> np.ndarray | None:
+    """(n, D, Tp) values of ``entries``, checked finite and in [0, high]; None if empty."""
+    if not entries:
+        return None
+    values = evaluator.stack(entries, tp)
+    problems += evaluator.check_finite(entries, values)
+    problems += evaluator.check_range(
+        entries, values, low=0.0, high=high, what=what, expected=expected
+    )
+    return values
+
+
+def remainder_values(
+    entries: list[Entry],
+    evaluator: _Evaluator,
+    remainder: np.ndarray,
+    problems: list[Problem],
+    others: str = "the other entries of the row",
+) -> np.ndarray:
+    """The rest cells' values (D, Tp, n) from ``remainder`` = one minus the rest of each
+    rest row of ``entries``, checked >= 0 (within the tolerance) and clipped to [0, 1]."""
+    problems += evaluator.check_range(
+        entries,
+        np.moveaxis(remainder, -1, 0),
+        low=-ROW_TOLERANCE,
+        high=np.inf,
+        what="remainder",
+        expected=f"{others} to sum to at most 1 (remainder >= 0)",
+    )
+    return np.clip(remainder, 0.0, 1.0)
+
+
+def rows_to_check(parsed: ParsedModel, defined_rows: np.ndarray) -> np.ndarray:
+    """(A, S) bool: rows whose sum must be checked.
+
+    Only rows of given probabilities without a remainder can miss 1: a rest row sums to 1
+    by construction (its remainder is checked), a rate row is a row of a generator's
+    exponential, the other rows are self-loops.
+    """
+    checked = np.array(defined_rows, dtype=bool)  # (A, S)
+    for e in (*parsed.rests, *parsed.rates):
+        checked[e.action, e.state] = False
+    return checked
+
+
+def row_sum_problems(
+    model: Model, evaluator: _Evaluator, sums: dict[tuple[int, int], np.ndarray], tp: int
+) -> list[Problem]:
+    """Problems for rows ``{(action, state): (D, Tp) sums}`` that do not sum to 1."""
+    problems: list[Problem] = []
     for (row_action, row_state), row_sums in sums.items():  # (D, Tp) each
         off = np.abs(row_sums - 1.0) > ROW_TOLERANCE
         if off.any():
@@ -756,7 +900,7 @@ def _transitions(
             )
             if len(problems) >= MAX_PROBLEMS_PER_RULE:
                 break
-    return P
+    return problems
 
 
 def _indices(entries: list[Entry]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

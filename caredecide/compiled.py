@@ -15,6 +15,14 @@ transition : (D, Tp, A, S, S) float64, Tp in {1, T}
     ``t`` when action ``a`` is taken in ``s`` at the start of cycle ``t``: the decision-time
     move (``move``) and the cycle's transitions together. Rows of actions not allowed in
     ``s`` hold a self-loop (they are masked out by ``allowed``).
+sparse_transition : SparseTransitions or None
+    The alternative form of ``transition`` for large finite-horizon models (compiled with
+    ``transition_form="sparse"``, or chosen by "auto"): the same probabilities in
+    compressed sparse rows, one pattern of non-zeros per action shared by every draw and
+    cycle, values (D, Tp, nnz). ``transition`` is then a read-only stand-in of the full
+    shape that holds no memory (every entry NaN): code that needs the dense array calls
+    :func:`dense_transition`, which refuses the sparse form with a clear error. ``None``:
+    ``transition`` is the dense array.
 move : (D, Tm, A, S, S) float64 or None, Tm in {1, T}
     Decision-time moves: ``move[d, t, a, s, s1]`` = share of the cohort that taking ``a``
     in ``s`` at the start of cycle ``t`` puts in ``s1`` before the cycle's transitions
@@ -82,6 +90,138 @@ CHECK_BLOCK_ROWS = 1 << 20
 """Transition rows summed at once by the contract check (8 MiB of sums)."""
 
 
+@dataclass(frozen=True, eq=False)
+class SparseTransitions:
+    """Transition probabilities in compressed sparse rows, one pattern for every draw and
+    cycle (the alternative form of ``CompiledModel.transition``).
+
+    Row ``a S + s`` (action ``a``, state ``s``) holds its non-zeros in the slots
+    ``indptr[a S + s]`` to ``indptr[a S + s + 1]``: the columns (states entered) in
+    ``indices``, sorted, and the probabilities of draw ``d`` in cycle ``t`` in
+    ``values[d, t, slot]``. The pattern is the union of the cells any expression, rate row
+    or move of the model can make non-zero, plus the diagonal, so a slot may hold 0 in
+    some draws or cycles.
+
+    Attributes
+    ----------
+    indptr : numpy.ndarray, shape (A S + 1,), int64
+    indices : numpy.ndarray, shape (nnz,), int64
+    values : numpy.ndarray, shape (D, Tp, nnz), float64
+        Tp in {1, T}, as the dense array's time axis.
+    n_states : int
+    """
+
+    indptr: np.ndarray
+    indices: np.ndarray
+    values: np.ndarray
+    n_states: int
+
+    @property
+    def shape(self) -> tuple[int, int, int, int, int]:
+        """(D, Tp, A, S, S): the shape of the dense array it stands for."""
+        S = self.n_states
+        A = (len(self.indptr) - 1) // max(S, 1)
+        return (self.values.shape[0], self.values.shape[1], A, S, S)
+
+    @property
+    def nbytes(self) -> int:
+        return int(self.indptr.nbytes + self.indices.nbytes + self.values.nbytes)
+
+    def take_draws(self, index: slice | np.ndarray) -> SparseTransitions:
+        """The same rows for the selected draws (the pattern is shared)."""
+        from dataclasses import replace
+
+        return replace(self, values=self.values[index])
+
+    def row_sums(self) -> np.ndarray:
+        """(D, Tp, A, S) sum of each row."""
+        D, Tp, A, S, _ = self.shape
+        starts = self.indptr[:-1]
+        empty = starts == self.indptr[1:]
+        if self.values.shape[-1] == 0:
+            return np.zeros((D, Tp, A, S))
+        sums = np.add.reduceat(self.values, np.minimum(starts, self.values.shape[-1] - 1), axis=-1)
+        sums[..., empty] = 0.0  # reduceat gives the next entry for an empty row
+        return sums.reshape(D, Tp, A, S)
+
+    def dense_rows(self, d: int, t: int) -> np.ndarray:
+        """(A, S, S) dense transitions of draw ``d`` in time slice ``t`` (one slice)."""
+        _, _, A, S, _ = self.shape
+        out = np.zeros((A * S, S))
+        row = np.repeat(np.arange(A * S), np.diff(self.indptr))
+        out[row, self.indices] = self.values[d, t]
+        return out.reshape(A, S, S)
+
+    def value_range(self) -> tuple[float, float]:
+        """(smallest, largest) entry of the dense array it stands for (cells outside the
+        pattern are 0)."""
+        _, _, A, S, _ = self.shape
+        low, high = float(self.values.min(initial=0.0)), float(self.values.max(initial=0.0))
+        if self.indices.size == A * S * S:  # every cell in the pattern
+            low, high = float(self.values.min()), float(self.values.max())
+        return low, high
+
+    def to_dense(self) -> np.ndarray:
+        """(D, Tp, A, S, S) dense array (for checks on models small enough)."""
+        D, Tp = self.values.shape[:2]
+        return np.stack([np.stack([self.dense_rows(d, t) for t in range(Tp)]) for d in range(D)])
+
+
+def sparse_stand_in(shape: tuple[int, ...]) -> np.ndarray:
+    """A read-only (D, Tp, A, S, S) array of NaN holding no memory: ``transition`` of a
+    compiled model whose transitions are in :class:`SparseTransitions`."""
+    return np.broadcast_to(np.float64(np.nan), shape)
+
+
+def transition_row(compiled: CompiledModel, d: int, t: int, a: int, s: int) -> np.ndarray:
+    """(S,) transition row of state ``s`` under action ``a``, draw ``d``, time slice ``t``,
+    in either form."""
+    held = compiled.sparse_transition
+    if held is None:
+        return np.asarray(compiled.transition[d, t, a, s])
+    row = np.zeros(compiled.n_states)
+    span = slice(held.indptr[a * compiled.n_states + s], held.indptr[a * compiled.n_states + s + 1])
+    row[held.indices[span]] = held.values[d, t, span]
+    return row
+
+
+def transition_diagonal(compiled: CompiledModel, d: int) -> np.ndarray:
+    """(Tp, A, S) probability of staying in each state, draw ``d``, in either form."""
+    held = compiled.sparse_transition
+    if held is None:
+        return np.diagonal(compiled.transition[d], axis1=-2, axis2=-1)
+    _, Tp, A, S, _ = held.shape
+    rows = np.repeat(np.arange(A * S), np.diff(held.indptr))
+    on_diagonal = held.indices == rows % S  # one slot per row: the pattern holds the diagonal
+    out = np.zeros((Tp, A * S))
+    out[:, rows[on_diagonal]] = held.values[d][:, on_diagonal]
+    return out.reshape(Tp, A, S)
+
+
+def dense_transition(compiled: CompiledModel, purpose: str) -> np.ndarray:
+    """``compiled.transition``, refusing a model compiled in sparse rows.
+
+    Parameters
+    ----------
+    purpose : str
+        What needs the dense array, for the message (e.g. "the dense solver").
+
+    Raises
+    ------
+    CompiledModelError
+        The transitions are in sparse rows (``compiled.sparse_transition``).
+    """
+    if compiled.sparse_transition is not None:
+        D, Tp, A, S, _ = compiled.sparse_transition.shape
+        raise CompiledModelError(
+            f"{purpose} needs the dense transition array (D, Tp, A, S, S) = "
+            f"({D}, {Tp}, {A}, {S}, {S}), but this compiled model holds its transitions in "
+            "sparse rows (compile_model(..., transition_form='sparse'), or 'auto' for a "
+            "large sparse model); compile with transition_form='dense' if it fits in memory"
+        )
+    return compiled.transition
+
+
 @dataclass(frozen=True)
 class CompiledModel:
     """Arrays of a model for a batch of parameter sets (see the module docstring)."""
@@ -124,6 +264,9 @@ class CompiledModel:
     (:mod:`caredecide.expand`): ``"state"`` -> declared state id, attribute name -> value
     name, tunnel name -> step (``"0"``, ``"1"``, ``"2+"``); each tuple has S entries, ``""``
     where a state does not carry the attribute or tunnel. Empty for a flat model."""
+    sparse_transition: SparseTransitions | None = None
+    """The transitions in sparse rows (finite horizon only), or None (see the module
+    docstring): ``transition`` is then a stand-in holding no memory."""
 
     def __post_init__(self) -> None:
         self.check()
@@ -157,6 +300,12 @@ class CompiledModel:
     @property
     def n_actions(self) -> int:
         return len(self.action_ids)
+
+    @property
+    def transition_form(self) -> str:
+        """``"sparse"`` when the transitions are held in sparse rows
+        (``sparse_transition``), else ``"dense"``."""
+        return "dense" if self.sparse_transition is None else "sparse"
 
     @property
     def is_stationary(self) -> bool:
@@ -196,9 +345,13 @@ class CompiledModel:
         def per_draw(rate: float | np.ndarray) -> float | np.ndarray:
             return np.asarray(rate)[index] if np.ndim(rate) else rate
 
+        sparse = (
+            None if self.sparse_transition is None else self.sparse_transition.take_draws(index)
+        )
         return replace(
             self,
-            transition=self.transition[index],
+            transition=self.transition[index] if sparse is None else sparse_stand_in(sparse.shape),
+            sparse_transition=sparse,
             state_qaly=self.state_qaly[index],
             state_cost=self.state_cost[index],
             decision_qaly=self.decision_qaly[index],
@@ -227,6 +380,21 @@ def _shape_problems(c: CompiledModel) -> list[str]:
         ]
     D = P.shape[0]
     T = c.n_cycles if c.n_cycles is not None else 1
+    sparse = c.sparse_transition
+    if sparse is not None:
+        if c.n_cycles is None:
+            problems.append("sparse_transition is for a finite horizon; n_cycles is None")
+        if (
+            sparse.values.ndim != 3
+            or sparse.indptr.shape != (A * S + 1,)
+            or sparse.indices.shape != sparse.values.shape[-1:]
+            or sparse.shape != P.shape
+        ):
+            problems.append(
+                f"sparse_transition has indptr {sparse.indptr.shape}, indices "
+                f"{sparse.indices.shape} and values {sparse.values.shape}; expected "
+                f"({A * S + 1},), (nnz,) and {P.shape[:2]} + (nnz,) for transition {P.shape}"
+            )
     if c.n_cycles is None and P.shape[1] != 1:
         problems.append(
             f"transition has {P.shape[1]} cycles; an infinite horizon needs stationary arrays "
@@ -272,6 +440,13 @@ def _value_problems(c: CompiledModel, rows: bool = True) -> list[str]:
     # Rows of allowed (state, action) pairs sum to 1, a block of draws at a time (the sums
     # stay small beside the transitions); einsum sums the short last axis several times
     # faster than ndarray.sum.
+    if c.sparse_transition is not None:
+        gap = np.abs(c.sparse_transition.row_sums() - 1.0)
+        bad = ~(gap <= ROW_SUM_TOLERANCE) & allowed.T[None, None]
+        if bad.any():
+            d, t, a, s = (int(i) for i in np.argwhere(bad)[0])
+            problems.append(row_problem(c, d, t, a, s))
+        return problems
     P = c.transition
     rows_per_draw = max(1, P[:1].size // max(P.shape[-1], 1))
     step = max(1, CHECK_BLOCK_ROWS // rows_per_draw)
@@ -289,10 +464,13 @@ def _value_problems(c: CompiledModel, rows: bool = True) -> list[str]:
 
 def row_problem(c: CompiledModel, d: int, t: int, a: int, s: int) -> str:
     """The finding for the transition row ``(d, t, a, s)`` that does not sum to 1."""
+    if c.sparse_transition is not None:
+        total = float(c.sparse_transition.row_sums()[d, t, a, s])
+    else:
+        total = float(c.transition[d, t, a, s].sum())
     return (
         f"transition row of state {c.state_ids[s]!r} under action {c.action_ids[a]!r} "
-        f"(draw {d}, cycle {t}) sums to {1.0 + float(c.transition[d, t, a, s].sum() - 1.0)!r}; "
-        "expected 1"
+        f"(draw {d}, cycle {t}) sums to {1.0 + (total - 1.0)!r}; expected 1"
     )
 
 

@@ -17,7 +17,7 @@ import numpy as np
 import pandas as pd
 
 from caredecide.compile import compile_model, rows_after_move
-from caredecide.compiled import CompiledModel
+from caredecide.compiled import CompiledModel, transition_row
 from caredecide.expand import SEPARATOR, expand_model
 from caredecide.model import Model
 from caredecide.options import check_choice
@@ -200,7 +200,7 @@ def transition_diagram(
             rows.append(_edge(source, source, f"states.{declared[s]}.absorbing", "absorbing", 1.0))
             continue
         b = action_ids[row_action[s]]
-        P = np.asarray(compiled.transition[0, 0, row_action[s], s])
+        P = transition_row(compiled, 0, 0, int(row_action[s]), s)
         for table in ("transitions", "rates"):
             if source in getattr(flat, table).get(b, {}):
                 rows += _edges(model, flat, table, b, source, P, states, "cycle")

@@ -46,7 +46,7 @@ from caredecide.solvers.bellman import (
 from caredecide.solvers.finite import terminal_present_value
 from caredecide.solvers.result import summary_repr
 from caredecide.solvers.sparse import (
-    choose_form,
+    compiled_form,
     given_rows,
     sparse_trace_and_flows,
 )
@@ -262,7 +262,7 @@ def evaluate_policy(
     -------
     PolicyOutcome
     """
-    form = choose_form(compiled.transition, transition_form)
+    form = compiled_form(compiled, transition_form)
     rows = given_rows(compiled, transition_rows)  # the solver's checked rows, if handed over
     sparse = rows is not None or form == "sparse"
     fused = compiled.n_cycles is not None and kernels.available() and not sparse
@@ -276,7 +276,7 @@ def evaluate_policy(
 def _sparse_form(compiled: CompiledModel) -> bool:
     """A finite horizon whose transitions the solver would keep in sparse rows
     (:func:`caredecide.solvers.sparse.choose_form`, "auto"): large, sparse, few draws."""
-    return compiled.n_cycles is not None and choose_form(compiled.transition, "auto") == "sparse"
+    return compiled.n_cycles is not None and compiled_form(compiled, "auto") == "sparse"
 
 
 def _evaluate_finite(
@@ -402,7 +402,7 @@ def policy_totals(
     spares writing (and first touching) that memory. Otherwise the totals of
     :func:`evaluate_policies`.
     """
-    if compiled.n_cycles is None or not kernels.available():
+    if compiled.n_cycles is None or not kernels.available() or compiled.sparse_transition:
         outcomes = evaluate_policies(compiled, policies, objective, terminal_value=terminal_value)
         return [_totals_of(outcome) for outcome in outcomes]
     check_compiled(compiled, rows=False)  # the fused loop checks the rows it reads

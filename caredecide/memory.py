@@ -20,6 +20,11 @@ their peaks, temporaries included, in bytes of float64 (8), intp (8) and bool (1
   horizon) and the (D, S, S) linear systems of the totals (copies of the policy's CSR
   rows in the sparse form).
 
+Transitions compiled in sparse rows (``PipelineShape.sparse_entries`` > 0; the form
+:func:`caredecide.compile.choose_transition_form` picks) count their values (D, Tp, nnz)
+instead of the dense array, the row sums checked before solving and evaluating, the
+pattern's keys and, for rate rows, the dense block of the states in play.
+
 The pipeline peak is the largest of the three stages. The coefficients were measured with
 :mod:`tracemalloc` (``tests/test_memory.py`` checks the estimate against the measured peak
 within 25% over a grid of shapes).
@@ -52,7 +57,16 @@ ROW_SUM_BYTES = FLOAT + 3
 sum and three masks)."""
 MOVE_ROW_COPIES = 2
 """(D, Tp, S) arrays alive while a moved row is built (the row, one product)."""
-ENTRY_OBJECT_BYTES = 1600
+SPARSE_ROW_SUM_BYTES = 3 * FLOAT
+"""Bytes per transition row while sparse rows are summed (the sums, their distance from
+1, the mask)."""
+SPARSE_STACK_COPIES = 1.25
+"""Copies of an expression stack alive while sparse rows are filled (the values go
+straight into their slots; the check masks)."""
+SPARSE_KEY_COPIES = 4
+"""int64 copies of the sparse pattern's keys alive while it is built (the parts, their
+sorted copy, the columns and the rows' positions)."""
+ENTRY_OBJECT_BYTES = 1250
 """Python objects of one parsed expression and its bookkeeping (measured about 1.5 KB),
 alive while compiling: they matter for models with thousands of entries."""
 BASE_BYTES = 128 * 1024
@@ -89,6 +103,10 @@ class PipelineShape:
         (action, state) rows with a decision-time move (0 without moves).
     state_action_cycles : int
         Time-axis length of the costs and QALYs of a state under an action (0: none).
+    sparse_entries : int
+        Slots of the sparse rows (:class:`caredecide.compiled.SparseTransitions`: cells of
+        the pattern, every action) when the transitions are compiled in sparse form; 0:
+        the dense (D, Tp, A, S, S) array.
     """
 
     n_draws: int
@@ -104,6 +122,7 @@ class PipelineShape:
     rate_rows: int = 0
     move_rows: int = 0
     state_action_cycles: int = 0
+    sparse_entries: int = 0
 
     def with_draws(self, n_draws: int) -> PipelineShape:
         """The same shape for ``n_draws`` parameter sets."""
@@ -115,11 +134,21 @@ class PipelineShape:
 def compiled_bytes(shape: PipelineShape) -> int:
     """Bytes of the compiled arrays (held from compile to the end of the pass)."""
     D, S, A = shape.n_draws, shape.n_states, shape.n_actions
-    tp, tq, td = shape.transition_cycles, shape.occupancy_cycles, shape.decision_cycles
-    held = FLOAT * D * (tp * A * S * S + 2 * tq * S + 2 * td * S * A)
+    tq, td = shape.occupancy_cycles, shape.decision_cycles
+    held = FLOAT * D * (2 * tq * S + 2 * td * S * A) + transition_bytes(shape)
     if shape.move_rows:  # the moves, kept for one cycle when no cycle differs (the usual case)
         held += FLOAT * D * A * S * S
     return held + FLOAT * D * 2 * shape.state_action_cycles * S * A
+
+
+def transition_bytes(shape: PipelineShape) -> int:
+    """Bytes of the compiled transitions: the dense (D, Tp, A, S, S) array, or the sparse
+    rows' values (D, Tp, nnz), column indices (nnz,) and row pointers (A S + 1,)."""
+    D, S, A, tp = shape.n_draws, shape.n_states, shape.n_actions, shape.transition_cycles
+    if shape.sparse_entries:
+        nnz = shape.sparse_entries
+        return FLOAT * (D * tp * nnz + nnz + A * S + 1)
+    return FLOAT * D * tp * A * S * S
 
 
 def compile_peak_bytes(shape: PipelineShape) -> int:
@@ -129,6 +158,17 @@ def compile_peak_bytes(shape: PipelineShape) -> int:
     D, S, A, tp = shape.n_draws, shape.n_states, shape.n_actions, shape.transition_cycles
     per_cycle = max(STACK_COPIES * shape.n_entries, MOVE_ROW_COPIES * S if shape.move_rows else 0)
     row_sums = ROW_SUM_BYTES * min(D * tp * A * S, CHECK_BLOCK_ROWS)  # a block at a time
+    if shape.sparse_entries:
+        # Sparse rows: all row sums at once (the check and the compiler's), the values
+        # before the moves beside those after them, the pattern's keys being sorted.
+        row_sums = SPARSE_ROW_SUM_BYTES * D * tp * A * S
+        per_cycle = max(
+            int(SPARSE_STACK_COPIES * shape.n_entries),
+            MOVE_ROW_COPIES * S if shape.move_rows else 0,
+        )
+        if shape.move_rows:
+            per_cycle = max(per_cycle, shape.sparse_entries)
+        per_cycle = max(per_cycle, SPARSE_KEY_COPIES * shape.sparse_entries // max(D * tp, 1))
     temporaries = max(FLOAT * D * tp * per_cycle, row_sums)
     if shape.rate_actions:
         # Worst case: no two (draw, cycle) columns of rates alike and no common exit;
@@ -142,7 +182,10 @@ def compile_peak_bytes(shape: PipelineShape) -> int:
         copies = RATE_WORK_COPIES if jit.available() else RATE_WORK_COPIES_NUMPY
         generators = FLOAT * at_once * shape.rate_actions * K * K
         kept_rows = FLOAT * (columns - at_once) * shape.rate_rows * K
-        temporaries = max(temporaries, int(copies * generators) + kept_rows)
+        # Sparse rows: the rate rows are exponentiated into a dense block of the states
+        # in play, (D, Tp, A, K, K), then copied into their slots.
+        block = FLOAT * columns * A * K * K if shape.sparse_entries else 0
+        temporaries = max(temporaries, int(copies * generators) + kept_rows + block)
     objects = ENTRY_OBJECT_BYTES * (shape.n_entries + 2 * S + 3 * A)
     return compiled_bytes(shape) + temporaries + objects
 
@@ -185,7 +228,21 @@ def solve_work_bytes(shape: PipelineShape) -> int:
         return D * (CSR_ENTRY_BYTES * _nonzeros(shape) + FLOAT * 4 * S * A)
     if shape.n_cycles is None:
         return FLOAT * D * (INFINITE_SYSTEM_COPIES * S * S + 4 * S * A)
-    return FLOAT * D * S * (A + 2)  # one cycle's expectation and choice
+    return FLOAT * D * S * (A + 2) + sparse_check_bytes(shape)  # a cycle's expectation, choice
+
+
+def sparse_check_bytes(shape: PipelineShape) -> int:
+    """Bytes of the row sums the sparse paths check before solving or evaluating (0 for
+    dense transitions, whose loops check the rows as they read them)."""
+    if not shape.sparse_entries:
+        return 0
+    return (
+        SPARSE_ROW_SUM_BYTES
+        * shape.n_draws
+        * shape.transition_cycles
+        * shape.n_actions
+        * (shape.n_states)
+    )
 
 
 def evaluate_bytes(shape: PipelineShape) -> int:
@@ -201,7 +258,8 @@ def evaluate_bytes(shape: PipelineShape) -> int:
             return FLOAT * D * rows * (2 * S + 6) + D * (read + chain)
         return FLOAT * D * (rows * (2 * S + 6) + INFINITE_SYSTEM_COPIES * S * S)
     # The trace, six flow series and the policy as int32 (the compiled loop's copy).
-    return FLOAT * D * (shape.n_cycles + 1) * (S + 6) + 4 * D * shape.n_cycles * S
+    trace = FLOAT * D * (shape.n_cycles + 1) * (S + 6) + 4 * D * shape.n_cycles * S
+    return trace + sparse_check_bytes(shape)
 
 
 def pipeline_peak_bytes(shape: PipelineShape) -> int:
@@ -214,16 +272,35 @@ def pipeline_peak_bytes(shape: PipelineShape) -> int:
     )
 
 
-def shape_of(model, n_draws: int = 1) -> PipelineShape:
+def shape_of(
+    model, n_draws: int = 1, *, transition_form: str = "auto", limit: int | None = None
+) -> PipelineShape:
     """The :class:`PipelineShape` of a (validated) model for ``n_draws`` parameter sets.
 
-    Reads the structure only (expressions are parsed, never evaluated).
+    Reads the structure only (expressions are parsed, never evaluated). The transitions
+    count in the form :func:`caredecide.compile.compile_model` would pick for
+    ``transition_form`` and a memory budget of ``limit`` bytes (default: the default
+    budget), so the estimate is that of the pass compile would run.
     """
-    from caredecide.compile import parse_model_expressions
+    import numpy as np
+
+    from caredecide.compile import _allowed_matrix, choose_transition_form, parse_model_expressions
     from caredecide.expand import expand_model
+    from caredecide.limits import default_memory_limit
 
     flat = expand_model(model)
-    return shape_from_parsed(flat, parse_model_expressions(flat), n_draws)
+    parsed = parse_model_expressions(flat)
+    absorbing = np.array([s.absorbing for s in flat.states], dtype=bool)
+    shape, _ = choose_transition_form(
+        flat,
+        parsed,
+        n_draws,
+        _allowed_matrix(flat, absorbing),
+        absorbing,
+        default_memory_limit() if limit is None else int(limit),
+        transition_form,
+    )
+    return shape
 
 
 def shape_from_parsed(flat_model, parsed, n_draws: int) -> PipelineShape:

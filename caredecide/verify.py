@@ -334,14 +334,19 @@ def check_probabilities_in_range(model: Model, objective: Objective) -> tuple[st
         return FAIL, (
             f"{max(len(frame), 1)} parameter sets (each parameter at low and high): {first}"
         )
-    P = compiled.transition
-    rows = P.sum(axis=-1)
+    held = compiled.sparse_transition
+    if held is None:
+        P = compiled.transition
+        rows = P.sum(axis=-1)
+        low, high = float(P.min()), float(P.max())
+    else:  # compiled in sparse rows: the same figures from the non-zeros
+        rows = held.row_sums()
+        low, high = held.value_range()
     worst_row, rows_ok = _deviation(rows, np.ones_like(rows))
-    low, high = float(P.min()), float(P.max())
     ok = rows_ok and low >= 0.0 and high <= 1.0
     return (
         PASS if ok else FAIL,
-        f"{compiled.n_draws} parameter sets x {P.shape[1]} cycle(s): probabilities in "
+        f"{compiled.n_draws} parameter sets x {rows.shape[1]} cycle(s): probabilities in "
         f"[{_g(low)}, {_g(high)}]; largest |row sum - 1| = {worst_row:.3g}",
     )
 

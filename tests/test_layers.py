@@ -46,6 +46,7 @@ FLOORS: dict[str, int] = {
     "caredecide.expand": 2,
     "caredecide.compile": 2,
     "caredecide.rate_rows": 2,
+    "caredecide.sparse_compile": 2,
     "caredecide.derived": 2,
     "caredecide.memory": 2,
     "caredecide.grouping": 2,

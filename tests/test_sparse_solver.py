@@ -464,9 +464,7 @@ def test_infinite_horizon_evaluation_with_sparse_rows_equals_the_dense_one(monke
     assert result.transition_form == "sparse"
     used = []
     dense_rows = evaluate._policy_transition
-    monkeypatch.setattr(
-        evaluate, "_policy_transition", lambda *a: used.append(1) or dense_rows(*a)
-    )
+    monkeypatch.setattr(evaluate, "_policy_transition", lambda *a: used.append(1) or dense_rows(*a))
     outcome = evaluate_policy(compiled, result.policy, QALYS)
     assert used == []  # no dense policy matrix
     dense = evaluate_policy(compiled, result.policy, QALYS, transition_form="dense")

@@ -21,6 +21,7 @@ import math
 
 import numpy as np
 
+from caredecide.compiled import transition_diagonal
 from caredecide.errors import DistributionError, ModelWarningRecord, Problem
 from caredecide.model import Model
 
@@ -231,7 +232,7 @@ def repeated_charge_warnings(model: Model, compiled) -> list[ModelWarningRecord]
     """
     records: list[ModelWarningRecord] = []
     charges = _one_off_values(model)
-    stay = np.diagonal(compiled.transition[0], axis1=-2, axis2=-1).max(axis=0)  # (A, S)
+    stay = transition_diagonal(compiled, 0).max(axis=0)  # (A, S)
     pattern = compiled.allowed & (stay.T > 0) & ~compiled.absorbing[:, None]  # (S, A)
     for s, a in np.argwhere(pattern):
         action, state = model.action_ids[a], model.state_ids[s]

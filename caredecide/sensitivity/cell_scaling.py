@@ -145,7 +145,9 @@ class CellScaler:
         if parsed.problems:
             raise ModelError(parsed.problems, file=model.file_label)
         self.model = model
-        self.base = compile_model(model)
+        # Cells are scaled in the dense rows: a model too large for them is refused
+        # (ModelTooLargeError) rather than compiled in sparse rows.
+        self.base = compile_model(model, transition_form="dense")
         # Cells are scaled in the rows before the decision-time moves, which are applied
         # again afterwards (a moved row follows the rows of its destinations).
         self._before = (

@@ -27,7 +27,7 @@ from caredecide.solvers.bellman import (
 )
 from caredecide.solvers.finite import backward_induction, terminal_present_value
 from caredecide.solvers.result import PolicyResult, SweepRecord
-from caredecide.solvers.sparse import TRANSITION_FORMS, choose_form, sparse_backward_induction
+from caredecide.solvers.sparse import TRANSITION_FORMS, compiled_form, sparse_backward_induction
 from caredecide.solvers.stationary import solve_stationary
 
 METHODS = (
@@ -134,7 +134,7 @@ def solve(
             f"{compiled.n_cycles} (use 'backward_induction' or 'auto')"
         )
     if finite:
-        form = choose_form(compiled.transition, transition_form)
+        form = compiled_form(compiled, transition_form)
         if form == "sparse" and record_history:
             if transition_form == "sparse":
                 raise SolverError(

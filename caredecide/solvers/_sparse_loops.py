@@ -60,7 +60,8 @@ def csr_from_dense(P, block, checked, tolerance, bad):
 
 @njit(cache=True, nogil=True, error_model="numpy", fastmath={"reassoc", "contract"})
 def backward_induction(
-    indptr, indices, data,  # CSR rows (D A S, S) of transitions constant over the cycles
+    indptr, indices, data,  # CSR rows and their values (Dv, Tv, nnz): see below
+    shared,  # True: rows (A S, S), one pattern for every draw and cycle
     has_move, move, rewards, decision_qaly, decision_cost,  # bellman.kernel_arrays[1:]
     weights,  # (Dw, T, 6): bellman.weight_table
     outcome_weight, cost_weight, allowed, decision_states, tie_absolute, tie_relative,
@@ -69,7 +70,9 @@ def backward_induction(
 ):  # fmt: skip
     # The recursion of _loops.backward_induction (its cycle helpers), the expectation
     # sum_s' P(s'|s, a) (arrival_t(a, s') + V_{t+1}(s')) over the non-zeros of row
-    # (d, a, s) only. Row (d A + a) S + s holds P[d, 0, a, s].
+    # (d, a, s) only. shared = False (transitions constant over the cycles read into
+    # CSR, data (1, 1, nnz)): row (d A + a) S + s holds P[d, 0, a, s]. shared = True
+    # (compiled.SparseTransitions): row a S + s, values data[d, t] (Tv in {1, T}).
     D, T, S = policy.shape
     A = allowed.shape[1]
     following = np.empty((A, S))
@@ -80,17 +83,19 @@ def backward_induction(
     varying = reward_cycles(rewards, has_move, move) > 1  # occupancy changes with the cycle
     for d in range(D):
         dw = min(d, weights.shape[0] - 1)
+        first = 0 if shared else d * A * S
         for t in range(T - 1, -1, -1):
+            values = data[min(d, data.shape[0] - 1), min(t, data.shape[1] - 1)]
             prepare_cycle(
                 rewards, has_move, move, weights[dw, t], outcome_weight, cost_weight, d, t,
                 t == T - 1 or varying, value[d, t + 1], work, following,
             )  # fmt: skip
             for a in range(A):
                 for s in range(S):
-                    row = (d * A + a) * S + s
+                    row = first + a * S + s
                     total = 0.0
                     for k in range(indptr[row], indptr[row + 1]):
-                        total += data[k] * following[a, indices[k]]
+                        total += values[k] * following[a, indices[k]]
                     expected[a, s] = total
             choose_cycle(
                 expected, work, weights[dw, t], decision_qaly, decision_cost, outcome_weight,
@@ -100,7 +105,8 @@ def backward_induction(
 
 @njit(cache=True, nogil=True, error_model="numpy", fastmath={"reassoc", "contract"})
 def trace_and_flows(
-    indptr, indices, data,  # CSR rows (D A S, S) of transitions constant over the cycles
+    indptr, indices, data,  # CSR rows and their values (Dv, Tv, nnz), as backward_induction
+    shared,  # True: rows (A S, S), one pattern for every draw and cycle
     has_move, move, rewards, decision_qaly, decision_cost,  # bellman.kernel_arrays[1:]
     life_years,  # (S,)
     weights,  # (Dw, T, 12): bellman.weight_table, discounted then undiscounted
@@ -119,6 +125,7 @@ def trace_and_flows(
     for d in range(D):
         dw = min(d, weights.shape[0] - 1)
         dk = min(d, policy.shape[0] - 1)
+        first = 0 if shared else d * A * S
         for s in range(S):
             trace[d, 0, s] = start[s]
         for t in range(T):
@@ -126,6 +133,7 @@ def trace_and_flows(
             tc = min(t, decision_cost.shape[1] - 1)
             if t == 0 or varying:
                 evaluation_occupancy(rewards, has_move, move, d, t, u_l, u_o, u_c, occupied)
+            values = data[min(d, data.shape[0] - 1), min(t, data.shape[1] - 1)]
             now, after = trace[d, t], trace[d, t + 1]
             for s2 in range(S):
                 after[s2] = 0.0
@@ -135,12 +143,12 @@ def trace_and_flows(
                 if m == 0.0:
                     continue
                 a = policy[dk, min(t, policy.shape[1] - 1), s]
-                row = (d * A + a) * S + s
+                row = first + a * S + s
                 e_l = 0.0
                 e_o = 0.0
                 e_c = 0.0
                 for k in range(indptr[row], indptr[row + 1]):
-                    p, s2 = data[k], indices[k]
+                    p, s2 = values[k], indices[k]
                     after[s2] += m * p
                     e_l += p * u_l[s2, a]
                     e_o += p * u_o[s2, a]

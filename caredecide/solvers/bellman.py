@@ -14,6 +14,7 @@ import numpy as np
 from caredecide.compiled import (
     CompiledModel,
     cycle_weights,
+    dense_transition,
     row_problem,
     stationary_cycle_weights,
 )
@@ -149,7 +150,15 @@ def kernel_arrays(compiled: CompiledModel) -> tuple[Any, ...]:
     ``(state_qaly, state_cost, has_state_action_qaly, state_action_qaly,
     has_state_action_cost, state_action_cost)``, every array C-contiguous float64 with its
     compact time axis (an absent optional array is a placeholder whose flag is False).
+    ``P`` is the dense transition array (refused for a model compiled in sparse rows:
+    :func:`reward_arrays` gives the rest).
     """
+    P = dense_transition(compiled, "the dense compiled loops")
+    return (_contiguous(P), *reward_arrays(compiled))
+
+
+def reward_arrays(compiled: CompiledModel) -> tuple[Any, ...]:
+    """``kernel_arrays(compiled)[1:]`` without touching the transitions (the sparse loops)."""
     move, sa_q, sa_c = compiled.move, compiled.state_action_qaly, compiled.state_action_cost
     rewards = (
         _contiguous(compiled.state_qaly),
@@ -160,7 +169,6 @@ def kernel_arrays(compiled: CompiledModel) -> tuple[Any, ...]:
         _ABSENT if sa_c is None else _contiguous(sa_c),
     )
     return (
-        _contiguous(compiled.transition),
         move is not None,
         _NO_MOVE if move is None else _contiguous(move),
         rewards,
@@ -254,8 +262,9 @@ def combine(objective: Objective, qalys: np.ndarray, costs: np.ndarray) -> np.nd
 
 
 def transition_at(compiled: CompiledModel, t: int) -> np.ndarray:
-    """(D, A, S, S) transition probabilities of cycle ``t`` (a view)."""
-    return compiled.transition[:, min(t, compiled.transition.shape[1] - 1)]
+    """(D, A, S, S) transition probabilities of cycle ``t`` (a view; dense form only)."""
+    P = dense_transition(compiled, "the dense transitions of a cycle")
+    return P[:, min(t, P.shape[1] - 1)]
 
 
 def stationary_discount(compiled: CompiledModel, objective: Objective) -> float:

@@ -13,6 +13,9 @@ solvers then store ``P`` in compressed sparse rows (CSR) and:
   ``sum_s' P_t(s'|s, a) (arrival_t(a, s') + V_{t+1}(s'))`` of every draw, action and state
   with one sparse product; transitions that do not vary with the cycle (time axis of
   length 1) are converted once, so a 60-cycle model holds one sparse copy, not 60;
+  a model compiled in sparse rows (``CompiledModel.sparse_transition``: transitions that
+  vary with the cycle, one pattern for every draw and cycle, never a dense array) is
+  solved on those rows by the same compiled loop, each cycle reading its own values;
 * the cohort trace and per-cycle flows of a finite-horizon policy
   (:func:`sparse_trace_and_flows`) move the cohort with the same sparse rows.
 
@@ -29,18 +32,19 @@ from typing import Any
 
 import numpy as np
 
-from caredecide.compiled import ROW_SUM_TOLERANCE, CompiledModel
+from caredecide.compiled import ROW_SUM_TOLERANCE, CompiledModel, dense_transition
 from caredecide.limits import SPARSE_MAX_DENSITY, SPARSE_MAX_DRAWS, SPARSE_MIN_STATES
 from caredecide.objective import Objective
 from caredecide.solvers import kernels
 from caredecide.solvers.bellman import (
     SolverError,
+    check_compiled,
     cycle_parts,
     cycle_rewards,
     decision_state_mask,
     greedy_choice,
-    kernel_arrays,
     raise_bad_row,
+    reward_arrays,
     weight_table,
 )
 from caredecide.solvers.finite import induction_outputs, induction_result
@@ -76,6 +80,47 @@ def choose_form(transition: np.ndarray, requested: str) -> str:
     return "sparse" if density <= SPARSE_MAX_DENSITY else "dense"
 
 
+def compiled_form(compiled: CompiledModel, requested: str) -> str:
+    """:func:`choose_form` for a compiled model: ``"sparse"`` whenever the model was
+    compiled in sparse rows (``compiled.sparse_transition``; "dense" is then refused).
+
+    Raises
+    ------
+    SolverError
+        ``requested`` unknown, or "dense" for a model compiled in sparse rows.
+    """
+    if compiled.sparse_transition is None:
+        return choose_form(compiled.transition, requested)
+    if requested not in TRANSITION_FORMS:
+        return choose_form(compiled.transition, requested)  # raises, naming the choices
+    if requested == "dense":
+        raise SolverError(
+            "transition_form = 'dense' is not available: the model was compiled in sparse "
+            "rows (compile_model(..., transition_form='dense') builds the dense array); "
+            "expected 'auto' or 'sparse'"
+        )
+    return "sparse"
+
+
+def _held_or_given(compiled: CompiledModel, rows: Any) -> tuple[bool, Any]:
+    """``(True, None)`` for a model compiled in sparse rows (their sums checked here),
+    else ``(False, given_rows(compiled, rows))``."""
+    if compiled.sparse_transition is not None:
+        check_compiled(compiled)  # the rows' sums, over the sparse values
+        return True, None
+    return False, given_rows(compiled, rows)
+
+
+def _kernel_rows(compiled: CompiledModel, rows: Any) -> tuple[Any, ...]:
+    """``(indptr, indices, values (Dv, Tv, nnz), shared)`` for the sparse compiled loops:
+    the compiled model's own sparse rows (one pattern for every draw and cycle), or the
+    CSR rows (D A S, S) read from dense transitions constant over the cycles."""
+    held = compiled.sparse_transition
+    if held is not None:
+        return held.indptr, held.indices, np.ascontiguousarray(held.values), True
+    return rows.indptr, rows.indices, rows.data.reshape(1, 1, -1), False
+
+
 def _checked_rows(compiled: CompiledModel, draws: slice | int, tp: int, block: bool):
     """CSR rows of the transitions of ``draws`` at time slice ``tp``, rows checked.
 
@@ -89,7 +134,7 @@ def _checked_rows(compiled: CompiledModel, draws: slice | int, tp: int, block: b
     SolverError
         Naming the first row that does not.
     """
-    P = compiled.transition[draws, tp]  # (A, S, S) or (Dk, A, S, S)
+    P = dense_transition(compiled, "reading dense transitions into CSR")[draws, tp]
     S, A = compiled.n_states, compiled.n_actions
     rows = P.reshape(-1, S)
     checked = np.tile(np.asarray(compiled.allowed, dtype=bool).T.ravel(), rows.shape[0] // (A * S))
@@ -353,12 +398,12 @@ def sparse_backward_induction(
     value, q_values, policy, gap, next_best, indifferent = outputs
     value[:, T] = terminal
     Tp = compiled.transition.shape[1]
-    rows = given_rows(compiled, rows)
-    if rows is None and Tp == 1:
+    held, rows = _held_or_given(compiled, rows)
+    if not held and rows is None and Tp == 1:
         rows = transition_rows(compiled)  # (D A S, S), read once for every cycle
-    if rows is not None and kernels.available():  # one compiled pass over each draw's cycles
+    if (held or rows is not None) and kernels.available():  # one pass over each draw's cycles
         kernels.sparse_kernels().backward_induction(
-            rows.indptr, rows.indices, rows.data, *kernel_arrays(compiled)[1:],
+            *_kernel_rows(compiled, rows), *reward_arrays(compiled),
             weight_table(compiled), float(objective.outcome_weight),
             float(objective.cost_weight), np.ascontiguousarray(compiled.allowed, dtype=bool),
             decision_states, float(tie_absolute), float(tie_relative),
@@ -393,7 +438,23 @@ def sparse_backward_induction(
 
 def _block_slice(compiled: CompiledModel, rows: Any, tp: int):
     """Block-diagonal CSR of every draw and action at time slice ``tp`` (:func:`_block_rows`
-    layout): from the rows already read when given, else read (and checked) here."""
+    layout): from the compiled model's sparse rows, from the rows already read when
+    given, else read (and checked) here."""
+    held = compiled.sparse_transition
+    if held is not None:
+        from scipy import sparse
+
+        D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
+        nnz = held.indices.size
+        counts = np.diff(held.indptr)  # (A S,)
+        action = np.repeat(np.arange(A * S), counts) // S  # (nnz,) action of each slot
+        columns = held.indices + action * S  # action a's rows in block a
+        shift = np.repeat(np.arange(D) * A * S, nnz)  # draw d's blocks after the others
+        indptr = np.concatenate([[0], np.cumsum(np.tile(counts, D))])
+        return sparse.csr_array(
+            (held.values[:, tp].ravel(), np.tile(columns, D) + shift, indptr),
+            shape=(D * A * S, D * A * S),
+        )
     if rows is None:
         return _checked_rows(compiled, slice(None), tp, block=True)
     return _in_blocks(rows, compiled.n_states)
@@ -439,13 +500,13 @@ def sparse_trace_and_flows(
         raise SolverError("the sparse cohort trace is for a finite horizon (n_cycles)")
     D, S, A = compiled.n_draws, compiled.n_states, compiled.n_actions
     names = [f"{n}{suffix}" for suffix in ("", "_undiscounted") for n in quantities]
-    rows = given_rows(compiled, rows)
+    held, rows = _held_or_given(compiled, rows)
     if (
-        compiled.transition.shape[1] == 1
+        (held or compiled.transition.shape[1] == 1)
         and kernels.available()
         and tuple(quantities) == ("life_years", "qalys", "costs")
     ):  # one compiled pass over each draw's cycles, the chosen rows' non-zeros only
-        if rows is None:
+        if rows is None and not held:
             rows = transition_rows(compiled)  # (D A S, S)
         weights = np.concatenate(
             np.broadcast_arrays(weight_table(compiled), weight_table(compiled, discount=False)),
@@ -454,7 +515,7 @@ def sparse_trace_and_flows(
         trace = np.empty((D, T + 1, S))
         flow = np.zeros((6, D, T + 1))
         kernels.sparse_kernels().trace_and_flows(
-            rows.indptr, rows.indices, rows.data, *kernel_arrays(compiled)[1:],
+            *_kernel_rows(compiled, rows), *reward_arrays(compiled),
             np.ascontiguousarray(compiled.life_years, dtype=float), np.ascontiguousarray(weights),
             np.ascontiguousarray(policy, dtype=np.intp),
             np.ascontiguousarray(compiled.start_distribution, dtype=float), trace, flow,
