@@ -9,14 +9,12 @@ Draws are synthetic.
 from __future__ import annotations
 
 import numpy as np
-import pandas as pd
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
 from caredecide.errors import ModelError
-from caredecide.uncertainty import acceptability
 from caredecide.uncertainty.acceptability import (
     acceptability_curve,
     acceptability_frontier,
@@ -77,16 +75,6 @@ def test_frontier_can_differ_from_most_likely():
     assert frontier["probability_cost_effective"].tolist() == [0.1]
 
 
-def test_curve_is_chunked_without_changing_results(monkeypatch):
-    rng = np.random.default_rng(4)
-    costs, qalys = rng.normal(1000, 300, (50, 3)), rng.normal(5, 0.2, (50, 3))
-    grid = np.linspace(0, 50_000, 11)
-    whole = acceptability_curve(costs, qalys, grid)
-    monkeypatch.setattr(acceptability, "_CHUNK_ELEMENTS", 150)  # one WTP value per block
-    pd.testing.assert_frame_equal(whole, acceptability_curve(costs, qalys, grid))
-    assert list(whole["strategy"].unique()) == ["strategy 1", "strategy 2", "strategy 3"]
-
-
 _draws = st.integers(1, 30).flatmap(
     lambda d: st.integers(1, 4).flatmap(
         lambda k: st.tuples(
@@ -108,6 +96,27 @@ def test_curve_probabilities_sum_to_one(draws, grid):
     assert curve["probability_cost_effective"].between(0.0, 1.0).all()
     p = curve["probability_cost_effective"].to_numpy()
     np.testing.assert_allclose(curve["mc_se"], np.sqrt(p * (1 - p) / costs.shape[0]))
+
+
+@settings(max_examples=150, deadline=None)
+@given(_draws, st.lists(st.integers(0, 40).map(lambda v: 500.0 * v), min_size=1, max_size=5))
+def test_curve_equals_a_draw_by_draw_count_with_ties_split(draws, grid):
+    # The definition (van Hout et al. 1994; ties split equally, common practice), one draw
+    # at a time; the values on grids of 50 and 0.1 tie often.
+    costs, qalys = draws
+    curve = acceptability_curve(costs, qalys, grid)
+    n_draws, n_strategies = costs.shape
+    for row, lam in enumerate(grid):
+        shares = np.zeros(n_strategies)
+        for draw in range(n_draws):
+            nmb = [lam * qalys[draw, k] - costs[draw, k] for k in range(n_strategies)]
+            best = [k for k in range(n_strategies) if nmb[k] == max(nmb)]
+            for k in best:
+                shares[k] += 1.0 / len(best) / n_draws
+        got = curve["probability_cost_effective"].to_numpy()[
+            row * n_strategies : (row + 1) * n_strategies
+        ]
+        np.testing.assert_allclose(got, shares, rtol=1e-12, atol=1e-15)
 
 
 @settings(max_examples=100, deadline=None)

@@ -14,13 +14,13 @@ import pickle
 
 import numpy as np
 import pytest
-from hypothesis import given, settings
+from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 from scipy.stats import norm
 
 from caredecide.errors import ModelError
-from caredecide.uncertainty.voi import EVPIResult, evpi, evppi_regression
+from caredecide.uncertainty.voi import EVPIResult, bspline_matrix, evpi, evppi_regression
 
 
 def expected_positive_part(mu: float, sigma: float) -> float:
@@ -353,3 +353,34 @@ def test_error_scaled_negative_population():
 
 def test_evpi_result_is_float_subclass():
     assert issubclass(EVPIResult, float)
+
+
+@settings(max_examples=80, deadline=None)
+@given(
+    st.lists(st.floats(0.01, 0.99), min_size=0, max_size=8),
+    st.integers(0, 3),
+    st.integers(0, 2**32 - 1),
+)
+def test_bspline_matrix_equals_scipy_bspline(interior, derivative, seed):
+    # Reference library: scipy.interpolate.BSpline (design_matrix and derivative), on
+    # clamped cubic knot vectors with repeated interior knots, at random points, every
+    # knot and both ends (the right end belongs to the last interval in both).
+    from scipy.interpolate import BSpline
+
+    inner = np.sort(np.round(np.asarray(interior), 2))  # rounding makes repeated knots
+    knots = np.concatenate([np.zeros(4), inner, np.ones(4)])
+    if np.any(np.bincount(np.searchsorted(np.unique(knots), knots))[1:-1] > 3):
+        return  # an interior knot repeated 4 times cuts the basis in two
+    rng = np.random.default_rng(seed)
+    x = np.concatenate([rng.uniform(0, 1, 20), knots])
+    m = knots.size - 4
+    if derivative == 0:
+        expected = BSpline.design_matrix(x, knots, 3).toarray()
+    else:
+        try:
+            expected = BSpline(knots, np.eye(m), 3).derivative(derivative)(x)
+        except ValueError:  # scipy refuses a derivative across a repeated interior knot
+            assume(False)
+    got = bspline_matrix(x, knots, derivative=derivative)
+    scale = max(1.0, float(np.abs(expected).max()))
+    np.testing.assert_allclose(got, expected, rtol=0, atol=1e-9 * scale)

@@ -11,6 +11,12 @@ folder). The command lays out itself every chart when no core is idle, and any c
 second process fails on: the bytes are the same either way
 (:func:`render_chart` is the one layout).
 
+A chart can also go as a :class:`ChartJob`: the name of one of the chart functions in
+:data:`CHART_MAKERS` and its tables (plain JSON columns, their dtypes kept), so that the
+second process, which imports the chart functions while the command computes, builds the
+chart itself and the command never imports Altair. The function is looked up in that
+fixed table only; a table whose columns cannot go as JSON is built by the command.
+
 The renderer numbers the gradients of an SVG (``gradient_0`` ...) over everything its
 engine has laid out, so a chart's bytes depend on the charts laid out before it in the
 same engine. Hence the fixed split: the first chart alone in one process (the scatter of
@@ -20,16 +26,118 @@ command lays them out serially.
 
 from __future__ import annotations
 
+import importlib
 import json
 import os
 import subprocess
 import sys
 import threading
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import IO, Any
 
 PNG_SCALE = 2
 """Pixel density of the PNG files (twice the SVG's size)."""
+
+CHART_MAKERS: dict[str, tuple[str, str]] = {
+    "draws_plane": ("caredecide.decision_charts", "make_draws_plane_chart"),
+    "policy_acceptability": ("caredecide.charts", "make_policy_acceptability_chart"),
+    "acceptability_curves": ("caredecide.charts", "make_acceptability_curves_chart"),
+    "psa_convergence": ("caredecide.charts", "make_psa_convergence_chart"),
+    "evppi": ("caredecide.charts", "make_evppi_chart"),
+}
+"""The chart functions a :class:`ChartJob` may name: name -> (module, function)."""
+
+_COLUMN_KINDS = "fiubO"
+"""dtype kinds a table column may have to go as JSON (float, integer, bool, object)."""
+
+
+@dataclass(frozen=True)
+class ChartJob:
+    """One chart file to build: ``CHART_MAKERS[maker](**tables, **options)`` saved as
+    ``stem``.
+
+    Attributes
+    ----------
+    stem : str
+        File stem (``stem.svg`` and ``stem.png``).
+    maker : str
+        A key of :data:`CHART_MAKERS`.
+    tables : dict of str to DataFrame or None
+        The chart function's table arguments, by parameter name.
+    options : dict
+        Its other keyword arguments (JSON values: str, numbers, None, lists of them).
+    """
+
+    stem: str
+    maker: str
+    tables: dict[str, Any] = field(default_factory=dict)
+    options: dict[str, Any] = field(default_factory=dict)
+
+
+def build_chart(job: ChartJob) -> Any:
+    """The Altair chart a job names (the function looked up in :data:`CHART_MAKERS`)."""
+    if job.maker not in CHART_MAKERS:
+        raise ValueError(f"unknown chart {job.maker!r}; expected one of {sorted(CHART_MAKERS)}")
+    module, function = CHART_MAKERS[job.maker]
+    make = getattr(importlib.import_module(module), function)
+    return make(**job.tables, **job.options)
+
+
+def table_payload(frame: Any) -> dict[str, Any]:
+    """A table as plain JSON: its columns' names, dtypes and values, in order.
+
+    Floats go through ``json`` as their shortest repr (read back bit for bit; NaN too).
+    Raises ``TypeError`` for a table that cannot go so (an index other than 0..n-1, a
+    column name that is not text, a column of another dtype kind than
+    :data:`_COLUMN_KINDS`).
+    """
+    import pandas as pd
+
+    if not frame.index.equals(pd.RangeIndex(len(frame))):
+        raise TypeError("the table's index is not 0..n-1")
+    columns = list(frame.columns)
+    if not all(isinstance(name, str) for name in columns) or len(set(columns)) < len(columns):
+        raise TypeError("the table's column names are not distinct text")
+    dtypes = [str(dtype) for dtype in frame.dtypes]
+    if any(dtype.kind not in _COLUMN_KINDS for dtype in frame.dtypes):
+        raise TypeError(f"a column's dtype cannot go as JSON: {dtypes}")
+    return {"columns": columns, "dtypes": dtypes, "values": [frame[c].tolist() for c in columns]}
+
+
+def table_from_payload(payload: dict[str, Any]) -> Any:
+    """The table :func:`table_payload` describes."""
+    import pandas as pd
+
+    columns, dtypes, values = payload["columns"], payload["dtypes"], payload["values"]
+    series = {
+        name: pd.Series(column, dtype=dtype)
+        for name, dtype, column in zip(columns, dtypes, values, strict=True)
+    }
+    return pd.DataFrame(series, columns=columns)
+
+
+def job_payload(job: ChartJob) -> dict[str, Any]:
+    """A job as plain JSON (``TypeError`` when one of its tables cannot go so)."""
+    return {
+        "stem": job.stem,
+        "maker": job.maker,
+        "tables": {
+            name: None if frame is None else table_payload(frame)
+            for name, frame in job.tables.items()
+        },
+        "options": job.options,
+    }
+
+
+def job_from_payload(payload: dict[str, Any]) -> ChartJob:
+    """The job :func:`job_payload` describes."""
+    tables = {
+        name: None if table is None else table_from_payload(table)
+        for name, table in payload["tables"].items()
+    }
+    return ChartJob(payload["stem"], payload["maker"], tables, dict(payload["options"]))
+
 
 _WARM_UP = {
     "data": {"values": [{"x": 1}]},
@@ -76,16 +184,28 @@ def _read_exactly(stream: IO[bytes], size: int) -> bytes:
     return data
 
 
+def _lay_out(request: dict[str, Any]) -> tuple[str, bytes]:
+    """(SVG, PNG) of one request: a Vega-Lite ``spec`` or a chart ``job`` payload."""
+    if "job" in request:
+        return render_chart(*chart_spec(build_chart(job_from_payload(request["job"]))))
+    return render_chart(request["spec"], request["vl_version"])
+
+
 def _serve(source: IO[bytes], sink: IO[bytes]) -> None:
     """The second process: one JSON line per chart in, a JSON header line then the SVG and
     PNG bytes out (an ``error`` header when the chart fails)."""
     import vl_convert
 
+    os.nice(NICENESS)  # the command itself comes first on a busy core
     vl_convert.vegalite_to_svg(_WARM_UP)  # starts the engine before the first chart arrives
+    for module in sorted({module for module, _ in CHART_MAKERS.values()}):
+        try:  # imported while the command computes (a failure shows on the first job)
+            importlib.import_module(module)
+        except Exception:
+            continue
     for line in source:
         try:
-            request = json.loads(line)
-            svg, png = render_chart(request["spec"], request["vl_version"])
+            svg, png = _lay_out(json.loads(line))
             text = svg.encode("utf-8")
             sink.write(json.dumps({"svg": len(text), "png": len(png)}).encode() + b"\n")
             sink.write(text + png)
@@ -94,9 +214,12 @@ def _serve(source: IO[bytes], sink: IO[bytes]) -> None:
         sink.flush()
 
 
+NICENESS = 5
+"""Niceness of the second processes: they use the time the command leaves."""
+
+
 PROCESSES = 2
-"""Second processes at most: the longest layout (the scatter of the draws) in one, the
-other charts in the other, while the command itself waits."""
+"""Second processes at most (two lanes): the command balances its charts between them."""
 
 
 class ChartRenderer:
@@ -111,11 +234,12 @@ class ChartRenderer:
     def __init__(self, enabled: bool = True) -> None:
         self._processes: list[subprocess.Popen[bytes]] = []
         self._lock = threading.Lock()
-        self._left: list[tuple[str, dict[str, Any], str]] = []
+        self._left: list[tuple[str, dict[str, Any]]] = []
         self._done: dict[str, tuple[str, bytes]] = {}
         self._order: list[str] = []
         self._calls = 0
         self._feeders: list[threading.Thread] = []
+        self._last_feeder: dict[int, threading.Thread] = {}
         self._starter: threading.Thread | None = None
         self.laid_out_here = 0
         """Charts this process laid out itself (none when the second processes did all)."""
@@ -130,7 +254,6 @@ class ChartRenderer:
         # meanwhile): what is idle is beside it.
         if round(idle_cores()) < 1:  # no idle core beside this process: lay out here
             return
-        env = {**os.environ, "PYTHONDONTWRITEBYTECODE": "1"}
         for _ in range(PROCESSES):
             try:  # -P: the script's folder stays off the import path
                 process = subprocess.Popen(
@@ -138,7 +261,6 @@ class ChartRenderer:
                     stdin=subprocess.PIPE,
                     stdout=subprocess.PIPE,
                     stderr=subprocess.DEVNULL,
-                    env=env,
                 )
             except OSError:
                 break
@@ -151,32 +273,59 @@ class ChartRenderer:
             self._starter.join()
         return len(self._processes)
 
-    def submit(self, charts: dict[str, Any]) -> None:
-        """Queue Altair charts by file stem, to be laid out in this order. With two
-        second processes, the first call's charts go to one (give it the longest layout,
-        as soon as it can be built) and every later call's to the other."""
-        items = [(stem, *chart_spec(chart)) for stem, chart in charts.items()]
-        self._order += list(charts)
+    def submit(self, charts: dict[str, Any] | list[ChartJob], lane: int | None = None) -> None:
+        """Queue charts to be laid out in this order: Altair charts by file stem, or
+        :class:`ChartJob` s (built by the second process, or here if none).
+
+        ``lane`` picks the second process (modulo their number); the charts of one lane
+        are laid out one call after the other. Without ``lane``, the first call's charts
+        go to one process (give it the longest layout, as soon as it can be built) and
+        every later call's to the other.
+        """
+        if isinstance(charts, dict):
+            items = [(stem, self._spec_request(chart)) for stem, chart in charts.items()]
+        else:
+            items = [(job.stem, self._job_request(job)) for job in charts]
+        self._order += [stem for stem, _ in items]
         if not self.processes:
             self._left += items
             return
-        process = self._processes[min(self._calls, len(self._processes) - 1)]
+        if lane is None:
+            lane = min(self._calls, 1)
         self._calls += 1
-        before = self._feeders[-1] if self._feeders and len(self._processes) == 1 else None
-        feeder = threading.Thread(target=self._feed, args=(process, items, before), daemon=True)
+        index = lane % len(self._processes)
+        before = self._last_feeder.get(index)
+        feeder = threading.Thread(
+            target=self._feed, args=(self._processes[index], items, before), daemon=True
+        )
         feeder.start()
         self._feeders.append(feeder)
+        self._last_feeder[index] = feeder
+
+    @staticmethod
+    def _spec_request(chart: Any) -> dict[str, Any]:
+        spec, vl_version = chart_spec(chart)
+        return {"spec": spec, "vl_version": vl_version}
+
+    def _job_request(self, job: ChartJob) -> dict[str, Any]:
+        if job.maker not in CHART_MAKERS:
+            raise ValueError(f"unknown chart {job.maker!r}; expected one of {sorted(CHART_MAKERS)}")
+        try:
+            return {"job": job_payload(job)}
+        except TypeError:  # a table that cannot go as JSON: the chart is built here
+            return self._spec_request(build_chart(job))
 
     def _feed(
-        self, process: subprocess.Popen[bytes], items: list[Any], before: threading.Thread | None
+        self,
+        process: subprocess.Popen[bytes],
+        items: list[tuple[str, dict[str, Any]]],
+        before: threading.Thread | None,
     ) -> None:
         assert process.stdin is not None and process.stdout is not None
-        if before is not None:  # one process: its charts one call after the other
+        if before is not None:  # the same process: its charts one call after the other
             before.join()
-        for number, item in enumerate(items):
-            stem, spec, vl_version = item
+        for number, (stem, request) in enumerate(items):
             try:
-                request = {"spec": spec, "vl_version": vl_version}
                 process.stdin.write(json.dumps(request).encode("utf-8") + b"\n")
                 process.stdin.flush()
                 header = json.loads(process.stdout.readline() or b"{}")
@@ -195,26 +344,29 @@ class ChartRenderer:
         for feeder in self._feeders:
             feeder.join()
         self._feeders = []
+        self._last_feeder = {}
         left = sorted(self._left, key=lambda item: self._order.index(item[0]))
         self._left = []
-        for stem, spec, vl_version in left:
-            self._done[stem] = render_chart(spec, vl_version)
+        for stem, request in left:
+            self._done[stem] = _lay_out(request)
             self.laid_out_here += 1
         return [path for stem in self._order for path in write_chart(*self._done[stem], out, stem)]
 
     def close(self) -> None:
-        """Stop the second processes (if any)."""
+        """Stop the second processes (if any) at once: every chart they returned is kept,
+        and waiting for their engines to shut down would only delay the command."""
         if self._starter is not None:
             self._starter.join()
         processes, self._processes = self._processes, []
         for process in processes:
-            try:
-                if process.stdin is not None:
-                    process.stdin.close()
-                process.wait(timeout=5)
-            except (OSError, subprocess.TimeoutExpired):
-                process.kill()
-                process.wait()
+            for stream in (process.stdin, process.stdout):
+                try:
+                    if stream is not None:
+                        stream.close()
+                except OSError:
+                    pass
+            process.kill()
+            process.wait()
 
 
 if __name__ == "__main__":

@@ -6,6 +6,7 @@ import csv
 import io
 import json
 import math
+from collections.abc import Callable
 from pathlib import Path
 from typing import Annotated, Any
 
@@ -15,6 +16,7 @@ import typer
 from rich.table import Table
 
 from caredecide.cautions import caution_short
+from caredecide.cli.chart_process import ChartJob
 from caredecide.cli.console import (
     plain,
     prepare_output_folder,
@@ -279,14 +281,12 @@ def _run(
                     result = analyse_uncertainty(
                         loaded, draws, seed, map_chunks=dask_map(client), **options
                     )
-        if out is not None:  # the longest layout, started before the tables are built
-            renderer.submit(_plane_chart(result))
         if workers is not None and result.threads < workers and not quiet:
             stderr.print(
                 f"Ran on {result.threads} of the {workers} workers asked for: the other "
                 "cores were busy (a thread without a free core only slows the others)."
             )
-        tables = _tables(result, band_years)
+        tables = _tables(result, band_years, renderer if out is not None else None)
         tables["strategy_means"] = result.strategy_summary(reference=reference)
         if population_per_year is not None:
             tables["population_value_of_information"] = result.population_value_of_information(
@@ -296,8 +296,6 @@ def _run(
                 evppi=tables["evppi"],
             )
         treat = result.shown_action
-        if out is not None:  # laid out (in a second process if any) while the rest is written
-            renderer.submit(_charts(result, tables, treat))
 
     unit = result.objective.unit
     info = result.evpi()
@@ -405,19 +403,99 @@ def _correlation_pairs(texts: list[str]) -> dict[tuple[str, str], float]:
     return pairs
 
 
-def _tables(result, band_years: float) -> dict[str, pd.DataFrame]:
-    return {
-        "acceptability_by_cycle": result.acceptability(),
-        "acceptability_by_age_band": result.acceptability_by_age_band(band_years),
-        "expected_loss": result.expected_loss(),
-        "acceptability_curves": result.acceptability_curves(),
-        "acceptability_frontier": result.acceptability_frontier(),
-        "evppi": result.evppi(),
-        "convergence": result.convergence(),
-        "policy_frequencies": result.policy_frequencies(),
-        "candidates": result.candidates_frame(),
-        "draws": result.draws_frame(),
+def _tables(result, band_years: float, renderer=None) -> dict[str, pd.DataFrame]:
+    """The tables written by ``--out``, by file stem, in file order. With a ``renderer``,
+    each chart is submitted as soon as its tables are built (:func:`_chart_plan`), so
+    that the second processes lay charts out while the other tables are built."""
+    makers: dict[str, Callable[[], pd.DataFrame]] = {  # the charts' tables first
+        "acceptability_by_age_band": lambda: result.acceptability_by_age_band(band_years),
+        "acceptability_curves": result.acceptability_curves,
+        "acceptability_frontier": result.acceptability_frontier,
+        "convergence": result.convergence,
+        "evppi": result.evppi,
+        "acceptability_by_cycle": result.acceptability,
+        "expected_loss": result.expected_loss,
+        "policy_frequencies": result.policy_frequencies,
+        "candidates": result.candidates_frame,
+        "draws": result.draws_frame,
     }
+    plan = _chart_plan(result) if renderer is not None else []
+    tables: dict[str, pd.DataFrame] = {}
+    for name in [None, *makers]:
+        if name is not None:
+            tables[name] = makers[name]()
+        while plan and all(need in tables for need in plan[0][0]):
+            _, lane, job = plan.pop(0)
+            chart = job(tables)
+            if chart is not None:
+                renderer.submit([chart], lane=lane)
+    return {name: tables[name] for name in _TABLE_ORDER}
+
+
+_TABLE_ORDER = (
+    "acceptability_by_cycle",
+    "acceptability_by_age_band",
+    "expected_loss",
+    "acceptability_curves",
+    "acceptability_frontier",
+    "evppi",
+    "convergence",
+    "policy_frequencies",
+    "candidates",
+    "draws",
+)
+"""The order the tables are written in."""
+
+
+def _chart_plan(
+    result,
+) -> list[tuple[tuple[str, ...], int, Callable[[dict[str, pd.DataFrame]], ChartJob | None]]]:
+    """The charts ``--out`` writes, in file order: (tables needed, lane, job builder).
+
+    The lanes balance the two second processes by layout time on the demo: the scatter
+    of the draws takes about as long as two of the others.
+    """
+    unit = f"({result.objective.unit})"
+    return [
+        (
+            (),
+            0,
+            lambda t: ChartJob("ce_plane_draws", "draws_plane", {"frame": result.plane_frame()}),
+        ),
+        (
+            ("acceptability_by_age_band",),
+            1,
+            lambda t: ChartJob(
+                "acceptability_by_state",
+                "policy_acceptability",
+                {"frame": t["acceptability_by_age_band"]},
+                {"action": result.shown_action},
+            ),
+        ),
+        (
+            ("acceptability_curves", "acceptability_frontier"),
+            1,
+            lambda t: ChartJob(
+                "acceptability_curves",
+                "acceptability_curves",
+                {"curves": t["acceptability_curves"], "frontier": t["acceptability_frontier"]},
+            ),
+        ),
+        (
+            ("convergence",),
+            0,
+            lambda t: ChartJob("convergence", "psa_convergence", {"frame": t["convergence"]}),
+        ),
+        (
+            ("evppi",),
+            1,
+            lambda t: (
+                ChartJob("evppi", "evppi", {"frame": t["evppi"]}, {"unit": unit})
+                if len(t["evppi"])
+                else None
+            ),
+        ),
+    ]
 
 
 FAST_CSV_ROWS = 2000
@@ -463,36 +541,6 @@ def _write_csv(frame: pd.DataFrame, path: Path) -> None:
             file,
             pa_csv.WriteOptions(include_header=False, quoting_style="none"),
         )
-
-
-def _plane_chart(result) -> dict[str, Any]:
-    """The scatter of the draws written by ``--out``, by file stem."""
-    from caredecide.decision_charts import make_draws_plane_chart
-
-    return {"ce_plane_draws": make_draws_plane_chart(result.plane_frame())}
-
-
-def _charts(result, tables: dict[str, pd.DataFrame], action: str) -> dict[str, Any]:
-    """The other Altair charts written by ``--out``, by file stem."""
-    from caredecide.charts import (
-        make_acceptability_curves_chart,
-        make_evppi_chart,
-        make_policy_acceptability_chart,
-        make_psa_convergence_chart,
-    )
-
-    charts: dict[str, Any] = {
-        "acceptability_by_state": make_policy_acceptability_chart(
-            tables["acceptability_by_age_band"], action=action
-        )
-    }
-    charts["acceptability_curves"] = make_acceptability_curves_chart(
-        tables["acceptability_curves"], tables["acceptability_frontier"]
-    )
-    charts["convergence"] = make_psa_convergence_chart(tables["convergence"])
-    if len(tables["evppi"]):
-        charts["evppi"] = make_evppi_chart(tables["evppi"], unit=f"({result.objective.unit})")
-    return charts
 
 
 def _write_outputs(

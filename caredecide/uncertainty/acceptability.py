@@ -248,15 +248,24 @@ def running_mean(values: np.ndarray) -> pd.DataFrame:
 
 
 def _probability_best(cost: np.ndarray, qaly: np.ndarray, wtp: np.ndarray) -> np.ndarray:
-    """(W, K) share of draws in which each strategy has the highest NMB (ties split)."""
+    """(W, K) share of draws in which each strategy has the highest NMB (ties split).
+
+    One (D, K) block per WTP value: the strategies at the row maximum are counted, each
+    a whole draw when it is alone there (the usual case), ``1 / n`` of one when ``n``
+    strategies tie.
+    """
     n_draws, n_strategies = cost.shape
-    chunk = max(1, _CHUNK_ELEMENTS // (n_draws * n_strategies))
     out = np.empty((wtp.size, n_strategies))
-    for start in range(0, wtp.size, chunk):  # blocks of WTP values bound the memory
-        lam = wtp[start : start + chunk, None, None]
-        nmb = net_monetary_benefit(cost[None], qaly[None], lam)  # (w, D, K)
-        is_best = nmb == nmb.max(axis=2, keepdims=True)
-        out[start : start + chunk] = (is_best / is_best.sum(axis=2, keepdims=True)).mean(axis=1)
+    nmb = np.empty((n_draws, n_strategies))
+    for row, lam in enumerate(wtp):
+        np.multiply(qaly, lam, out=nmb)  # net_monetary_benefit, in place
+        nmb -= cost
+        is_best = nmb == nmb.max(axis=1, keepdims=True)
+        tied = np.count_nonzero(is_best, axis=1)
+        if tied.max() == 1:
+            out[row] = np.count_nonzero(is_best, axis=0) / n_draws
+        else:
+            out[row] = (is_best / tied[:, None]).sum(axis=0) / n_draws
     return out
 
 

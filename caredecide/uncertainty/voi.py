@@ -76,7 +76,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg
-from scipy.interpolate import BSpline, make_smoothing_spline
 
 from caredecide.errors import ModelError, Problem
 
@@ -481,6 +480,65 @@ def _unit_scale(phi: np.ndarray) -> np.ndarray:
     return np.where(high > low, (phi - low) / span, 0.5)
 
 
+def bspline_matrix(
+    x: np.ndarray, knots: np.ndarray, degree: int = 3, derivative: int = 0
+) -> np.ndarray:
+    """Values (or a derivative) of the B-splines of a knot vector at the points ``x``.
+
+    Parameters
+    ----------
+    x : ndarray
+        (n,) points in ``[knots[degree], knots[-degree - 1]]``; the right end belongs to
+        the last interval.
+    knots : ndarray
+        (m + degree + 1,) non-decreasing knots (repeated ``degree + 1`` times at each end
+        for a clamped basis).
+    degree : int
+        Degree of the B-splines (3: cubic).
+    derivative : int
+        Order of the derivative, ``0 <= derivative <= degree``.
+
+    Returns
+    -------
+    ndarray
+        (n, m): column ``i`` is the ``derivative``-th derivative of ``B_i`` at ``x``.
+
+    Notes
+    -----
+    Cox-de Boor recursion for the values up to degree ``degree - derivative``, then the
+    derivative formula ``B'_{i,k} = k (B_{i,k-1} / (t_{i+k} - t_i) - B_{i+1,k-1} /
+    (t_{i+k+1} - t_{i+1}))`` for the remaining degrees (de Boor 2001, A Practical Guide
+    to Splines, rev. ed., ch. IX-X; from memory), a term with an empty support
+    (``0 / 0``) being 0. The same values as ``scipy.interpolate.BSpline`` (checked in
+    the tests), without importing it.
+    """
+    t = np.asarray(knots, dtype=float)
+    x = np.asarray(x, dtype=float)
+    n_basis = t.size - degree - 1
+    interval = np.clip(np.searchsorted(t, x, side="right") - 1, degree, n_basis - 1)
+    values = np.zeros((x.size, t.size - 1))
+    values[np.arange(x.size), interval] = 1.0  # degree 0: the indicator of the interval
+
+    def ratio(numerator: np.ndarray, width: np.ndarray) -> np.ndarray:
+        safe = np.where(width > 0.0, width, 1.0)
+        return np.where(width > 0.0, numerator / safe, 0.0)
+
+    for k in range(1, degree + 1):
+        count = t.size - 1 - k
+        left_width = t[k : k + count] - t[:count]
+        right_width = t[k + 1 : k + 1 + count] - t[1 : 1 + count]
+        if k <= degree - derivative:  # values
+            rising = ratio(x[:, None] - t[None, :count], left_width[None, :])
+            falling = ratio(t[None, k + 1 : k + 1 + count] - x[:, None], right_width[None, :])
+            values = rising * values[:, :-1] + falling * values[:, 1:]
+        else:  # one more derivative
+            values = k * (
+                ratio(values[:, :-1], left_width[None, :])
+                - ratio(values[:, 1:], right_width[None, :])
+            )
+    return values
+
+
 def _bspline_margin(u: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
     """Cubic B-spline basis (D, m) with knots at quantiles of ``u`` and its penalty (m, m).
 
@@ -496,8 +554,12 @@ def _bspline_margin(u: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
     interior = interior[(interior > 0.0) & (interior < 1.0)]
     knots = np.concatenate([np.zeros(4), interior, np.ones(4)])
     m = knots.size - 4
-    basis = BSpline.design_matrix(u, knots, 3).toarray()
-    second = BSpline(knots, np.eye(m), 3).derivative(2)
+    basis = bspline_matrix(u, knots)
+    assert basis.shape[1] == m
+
+    def second(x: np.ndarray) -> np.ndarray:
+        return bspline_matrix(x, knots, derivative=2)
+
     edges = np.concatenate([[0.0], interior, [1.0]])
     left, right = edges[:-1], edges[1:]
     width = right - left
@@ -616,6 +678,8 @@ def _regression_error(
 
 def _fit_scipy_smoothing_spline(x: np.ndarray, y: np.ndarray) -> np.ndarray:
     """(D, K') fits by scipy's GCV smoothing spline; tied x values are averaged."""
+    from scipy.interpolate import make_smoothing_spline  # this method only
+
     unique, inverse, counts = np.unique(x, return_inverse=True, return_counts=True)
     if unique.size < 5:
         raise ModelError(

@@ -3,6 +3,7 @@ bytes the command writes itself (idle cores or not, a process failing or not).""
 
 from __future__ import annotations
 
+import json
 import subprocess
 import sys
 
@@ -10,9 +11,17 @@ import altair as alt
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 import caredecide.chunks as chunks
-from caredecide.cli.chart_process import ChartRenderer
+from caredecide.cli.chart_process import (
+    ChartJob,
+    ChartRenderer,
+    build_chart,
+    table_from_payload,
+    table_payload,
+)
 from caredecide.cli.console import save_chart
 from synthetic_cohort import MODELS_DIR
 
@@ -122,3 +131,121 @@ def test_uncertainty_outputs_are_the_same_with_and_without_second_processes(tmp_
     assert "summary.json" in files[1] and "draws.csv" in files[1]
     assert files[1].keys() == files[2].keys()
     assert [name for name in files[1] if files[1][name] != files[2][name]] == []
+
+
+def _plane_table(rows: int = 40) -> pd.DataFrame:
+    rng = np.random.default_rng(8)
+    return pd.DataFrame(
+        {
+            "strategy": np.tile(np.array(["wait", "treat"], dtype=object), rows // 2),
+            "draw": np.repeat(np.arange(rows // 2), 2),
+            "cost": rng.normal(4e4, 9e3, rows),
+            "qalys": rng.normal(8, 1, rows),
+        }
+    )
+
+
+def _jobs() -> list[ChartJob]:
+    curves = pd.DataFrame(
+        {
+            "wtp": [0.0, 0.0, 5e4, 5e4],
+            "strategy": ["wait", "treat", "wait", "treat"],
+            "probability_cost_effective": [0.9, 0.1, 0.3, 0.7],
+            "mc_se": [0.03, 0.03, 0.046, 0.046],
+        }
+    )
+    return [
+        ChartJob("plane", "draws_plane", {"frame": _plane_table()}, {"currency": "€"}),
+        ChartJob("curves", "acceptability_curves", {"curves": curves, "frontier": None}),
+    ]
+
+
+def test_chart_jobs_built_in_second_processes_give_the_bytes_built_here(tmp_path, machine_cores):
+    serial = tmp_path / "serial"
+    serial.mkdir()
+    for job in _jobs():
+        save_chart(build_chart(job), serial, job.stem)
+    machine_cores(2)
+    renderer = ChartRenderer()
+    folder = tmp_path / "processes"
+    folder.mkdir()
+    try:
+        plane, curves = _jobs()
+        renderer.submit([curves], lane=1)  # lanes, not the order of calls, pick the process
+        renderer.submit([plane], lane=0)
+        paths = renderer.results(folder)
+    finally:
+        renderer.close()
+    assert renderer.laid_out_here == 0
+    assert [p.name for p in paths] == ["curves.svg", "curves.png", "plane.svg", "plane.png"]
+    assert {p.name: p.read_bytes() for p in paths} == {
+        p.name: p.read_bytes() for p in serial.iterdir()
+    }
+
+
+def test_a_table_that_cannot_go_as_json_is_built_by_the_command(tmp_path, machine_cores):
+    machine_cores(2)
+    renderer = ChartRenderer()
+    table = _plane_table().set_index("draw")  # an index the payload does not carry
+    folder = tmp_path / "out"
+    folder.mkdir()
+    try:
+        renderer.submit([ChartJob("plane", "draws_plane", {"frame": table})], lane=0)
+        paths = renderer.results(folder)
+    finally:
+        renderer.close()
+    assert renderer.laid_out_here == 0  # sent as the specification built here instead
+    reference = tmp_path / "here"
+    reference.mkdir()
+    save_chart(build_chart(ChartJob("plane", "draws_plane", {"frame": table})), reference, "plane")
+    assert {p.name: p.read_bytes() for p in paths} == {
+        p.name: p.read_bytes() for p in reference.iterdir()
+    }
+
+
+@pytest.mark.parametrize(
+    ("frame", "reason"),
+    [
+        (pd.DataFrame({"a": [1.0, 2.0]}, index=[3, 4]), "index"),
+        (pd.DataFrame({0: [1.0]}), "column names"),
+        (pd.DataFrame({"when": pd.to_datetime(["2026-01-01"])}), "dtype"),
+    ],
+)
+def test_tables_that_cannot_go_as_json_are_refused_with_the_reason(frame, reason):
+    with pytest.raises(TypeError, match=reason):
+        table_payload(frame)
+
+
+def test_an_unknown_chart_is_refused_with_the_known_ones():
+    with pytest.raises(ValueError, match=r"unknown chart 'pie'.*draws_plane"):
+        build_chart(ChartJob("x", "pie"))
+    with pytest.raises(ValueError, match="unknown chart 'pie'"):
+        ChartRenderer(enabled=False).submit([ChartJob("x", "pie")])
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    st.lists(st.floats(allow_nan=True, allow_infinity=True), min_size=0, max_size=20).flatmap(
+        lambda xs: st.tuples(
+            st.just(xs),
+            st.lists(st.integers(-(2**62), 2**62), min_size=len(xs), max_size=len(xs)),
+            st.lists(st.one_of(st.none(), st.text(max_size=8)), min_size=len(xs), max_size=len(xs)),
+            st.lists(st.booleans(), min_size=len(xs), max_size=len(xs)),
+        )
+    )
+)
+def test_tables_go_as_json_and_come_back_bit_for_bit(columns):
+    # Python's json writes each float as its shortest repr, which reads back as the same
+    # double (IEEE 754 round trip; common practice); NaN and infinities as NaN/Infinity.
+    floats, ints, texts, flags = columns
+    frame = pd.DataFrame(
+        {
+            "x": pd.Series(floats, dtype="float64"),
+            "n": pd.Series(ints, dtype="int64"),
+            "label": pd.Series(texts, dtype=object),
+            "flag": pd.Series(flags, dtype=bool),
+        }
+    )
+    back = table_from_payload(json.loads(json.dumps(table_payload(frame))))
+    pd.testing.assert_frame_equal(back, frame, check_exact=True)
+    assert back["x"].to_numpy().tobytes() == frame["x"].to_numpy().tobytes()  # -0.0 too
