@@ -127,6 +127,33 @@ def test_pilot_block_and_chunks_give_the_same_results(model):
     assert done == [*range(120, 1000, 120), 1000, 1120, 1240, 1300]
 
 
+@pytest.mark.parametrize(
+    ("draws", "chunk", "frequent", "progress_when_sent"),
+    [(1300, 120, 2, 1000), (1300, 370, 0, 1110), (240, 100, 2, 240)],
+)
+def test_the_plane_is_handed_over_once_as_soon_as_its_draws_are_done(
+    model, draws, chunk, frequent, progress_when_sent
+):
+    # plane_ready gets the very table of result.plane_frame(), once, after the chunk that
+    # completes the first PLANE_DRAWS draws (the pilot's, or a later chunk without one).
+    events: list = []
+    result = analyse_uncertainty(
+        model,
+        draws,
+        seed=8,
+        chunk_size=chunk,
+        n_frequent=frequent,
+        progress=lambda d, n: events.append(d),
+        plane_ready=lambda frame: events.append(frame),
+    )
+    frames = [e for e in events if isinstance(e, pd.DataFrame)]
+    assert len(frames) == 1
+    pd.testing.assert_frame_equal(frames[0], result.plane_frame(), check_exact=True)
+    assert frames[0]["draw"].max() == min(draws, 1000) - 1
+    sent_at = next(i for i, e in enumerate(events) if isinstance(e, pd.DataFrame))
+    assert events[sent_at - 1] == progress_when_sent  # right after that chunk's progress
+
+
 def test_threads_give_the_serial_results(model, monkeypatch):
     # Chunks (the pilot's too) on two threads of this process, in whatever order they
     # finish, must give every figure of a serial run (results are joined in draw order;

@@ -219,7 +219,8 @@ NICENESS = 5
 
 
 PROCESSES = 2
-"""Second processes at most (two lanes): the command balances its charts between them."""
+"""Second processes at most, one per idle core (two lanes: the command balances its charts
+between them; with one process, both lanes go to it in the order submitted)."""
 
 
 class ChartRenderer:
@@ -251,10 +252,10 @@ class ChartRenderer:
         from caredecide.chunks import idle_cores
 
         # Watched while this process works on (unlike chunks.usable_threads, which sleeps
-        # meanwhile): what is idle is beside it.
-        if round(idle_cores()) < 1:  # no idle core beside this process: lay out here
-            return
-        for _ in range(PROCESSES):
+        # meanwhile): what is idle is beside it. One process per idle core, at most
+        # PROCESSES: one without a core of its own would only slow the command (none idle:
+        # the command lays out itself).
+        for _ in range(max(0, min(PROCESSES, round(idle_cores())))):
             try:  # -P: the script's folder stays off the import path
                 process = subprocess.Popen(
                     [sys.executable, "-P", str(Path(__file__).resolve())],

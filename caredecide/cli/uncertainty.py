@@ -265,12 +265,19 @@ def _run(
             def advance(done: int, total: int) -> None:
                 bar.update(task, completed=done)
 
+            plane_sent: list[bool] = []
+
+            def plane_ready(frame: pd.DataFrame) -> None:  # the scatter starts at once
+                renderer.submit([_plane_job(frame)], lane=0)
+                plane_sent.append(True)
+
             options: dict[str, Any] = dict(
                 chunk_size=chunk_size,
                 wtp_range=wtp_range,
                 table=table,
                 rank_correlation=correlations,
                 progress=advance,
+                plane_ready=plane_ready if out is not None else None,
             )
             if scheduler is None:
                 result = analyse_uncertainty(loaded, draws, seed, workers=workers, **options)
@@ -286,6 +293,8 @@ def _run(
                 f"Ran on {result.threads} of the {workers} workers asked for: the other "
                 "cores were busy (a thread without a free core only slows the others)."
             )
+        if out is not None and not plane_sent:
+            renderer.submit([_plane_job(result.plane_frame())], lane=0)
         tables = _tables(result, band_years, renderer if out is not None else None)
         tables["strategy_means"] = result.strategy_summary(reference=reference)
         if population_per_year is not None:
@@ -421,9 +430,8 @@ def _tables(result, band_years: float, renderer=None) -> dict[str, pd.DataFrame]
     }
     plan = _chart_plan(result) if renderer is not None else []
     tables: dict[str, pd.DataFrame] = {}
-    for name in [None, *makers]:
-        if name is not None:
-            tables[name] = makers[name]()
+    for name, make in makers.items():
+        tables[name] = make()
         while plan and all(need in tables for need in plan[0][0]):
             _, lane, job = plan.pop(0)
             chart = job(tables)
@@ -447,13 +455,19 @@ _TABLE_ORDER = (
 """The order the tables are written in."""
 
 
+def _plane_job(frame: pd.DataFrame) -> ChartJob:
+    """The scatter of the draws written by ``--out`` (the first file; lane 0)."""
+    return ChartJob("ce_plane_draws", "draws_plane", {"frame": frame})
+
+
 def _chart_plan(
     result,
 ) -> list[tuple[tuple[str, ...], int, Callable[[dict[str, pd.DataFrame]], ChartJob | None]]]:
-    """The charts ``--out`` writes, in file order: (tables needed, lane, job builder).
+    """The other charts ``--out`` writes, in file order: (tables needed, lane, job builder).
 
-    The lanes balance the two second processes by layout time on the demo: the scatter
-    of the draws takes about as long as two of the others.
+    The lanes balance two second processes by layout time on the demo: the scatter of
+    the draws (lane 0, submitted while the draws are solved) takes about as long as two
+    of the others.
     """
     unit = f"({result.objective.unit})"
     return [

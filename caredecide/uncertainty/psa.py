@@ -55,7 +55,7 @@ a Dask cluster (:mod:`caredecide.uncertainty.cluster`).
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -118,6 +118,8 @@ EVPPI_MAX_DRAWS = 100_000
 """EVPPI regressions use at most this many (the first) draws: memory and time bounded."""
 MIN_EVPPI_DRAWS = 200
 """Fewer draws than this give no EVPPI (the regression smoother needs ~10 per coefficient)."""
+PLANE_DRAWS = 1000
+"""Draws shown per candidate on the cost-effectiveness plane (the first ones)."""
 
 ORIGIN_BASE = "base-case optimal"
 ORIGIN_MEAN = "optimal at mean parameters"
@@ -800,23 +802,13 @@ class PSAResult:
         columns["reference"] = reference
         return pd.DataFrame(columns)
 
-    def plane_frame(self, max_draws: int = 1000) -> pd.DataFrame:
+    def plane_frame(self, max_draws: int = PLANE_DRAWS) -> pd.DataFrame:
         """Draws for a cost-effectiveness plane: strategy, draw, cost, qalys (long form).
 
         At most the first ``max_draws`` draws per candidate (independent draws, so the
         first ones are a random sample), for a readable scatter.
         """
-        n = min(self.n_draws, int(max_draws))
-        names = np.asarray(self.candidate_names, dtype=object)
-        K = len(names)
-        return pd.DataFrame(
-            {
-                "strategy": np.tile(names, n),
-                "draw": np.repeat(np.arange(n), K),
-                "cost": self.candidate_totals[0, :n].ravel(),
-                "qalys": self.candidate_totals[1, :n].ravel(),
-            }
-        )
+        return plane_table(self.candidate_names, self.candidate_totals, max_draws)
 
     def population_value_of_information(
         self,
@@ -928,6 +920,7 @@ def analyse_uncertainty(
     map_chunks: ChunkMap | None = None,
     workers: int | None = None,
     progress: Callable[[int, int], None] | None = None,
+    plane_ready: Callable[[pd.DataFrame], None] | None = None,
     **solve_options,
 ) -> PSAResult:
     """Probabilistic sensitivity analysis of the optimal timing policy.
@@ -973,6 +966,10 @@ def analyse_uncertainty(
         serial. The results are the same.
     progress : callable(done, total), optional
         Called after each chunk with draws done and ``n_draws``.
+    plane_ready : callable(frame), optional
+        Called once, as soon as the first :data:`PLANE_DRAWS` draws (all of them when
+        fewer) are evaluated, with the table the result's ``plane_frame()`` will return:
+        a front end can start drawing the scatter while the other draws are solved.
     **solve_options
         Passed to :func:`caredecide.solvers.solve`.
 
@@ -1081,23 +1078,40 @@ def analyse_uncertainty(
         )
 
     chunks: list[ChunkResult] = []
+    names = [c.name for c in candidates]
+    plane_stop = min(n_draws, PLANE_DRAWS) if plane_ready is not None else None
+
+    def collect(results: Iterable[ChunkResult]) -> None:
+        nonlocal plane_stop
+        for chunk in results:
+            chunks.append(chunk)
+            if plane_stop is not None and chunk.stop >= plane_stop:
+                totals = np.concatenate([c.candidates for c in chunks], axis=1)
+                plane_stop = None
+                assert plane_ready is not None
+                plane_ready(plane_table(names, totals, PLANE_DRAWS))
+
     done = 0
     if pilot:
-        chunks += run_chunks(
-            EvaluateSolvedJob(context, pilot),
-            list(pilot),
-            map_chunks=local_map,
-            progress=progress,
-            total=n_draws,
+        collect(
+            run_chunks(
+                EvaluateSolvedJob(context, pilot),
+                list(pilot),
+                map_chunks=local_map,
+                progress=progress,
+                total=n_draws,
+            )
         )
         done = pilot_stop
     ranges = [(a + done, b + done) for a, b in chunk_ranges(n_draws - done, chunk_size)]
-    chunks += run_chunks(
-        PSAJob(context),
-        ranges,
-        map_chunks=map_chunks or local_map,
-        progress=progress,
-        total=n_draws,
+    collect(
+        run_chunks(
+            PSAJob(context),
+            ranges,
+            map_chunks=map_chunks or local_map,
+            progress=progress,
+            total=n_draws,
+        )
     )
     result = _combine(chunks, context, candidates, base, wtp_grid, chunk_size)
     result.threads = threads
@@ -1106,6 +1120,25 @@ def analyse_uncertainty(
 
 ICER_BOOTSTRAP = 1000
 """Resamples of the draws for the ICER interval."""
+
+
+def plane_table(names: Sequence[str], totals: np.ndarray, max_draws: int) -> pd.DataFrame:
+    """Long-form scatter of the first ``max_draws`` draws: strategy, draw, cost, qalys.
+
+    ``totals`` is (2 or more, D, K): cost and QALYs of each candidate in each draw.
+    """
+    n = min(totals.shape[1], int(max_draws))
+    K = len(names)
+    return pd.DataFrame(
+        {
+            "strategy": np.tile(np.asarray(names, dtype=object), n),
+            "draw": np.repeat(np.arange(n), K),
+            "cost": totals[0, :n].ravel(),
+            "qalys": totals[1, :n].ravel(),
+        }
+    )
+
+
 BOOTSTRAP_BLOCK = 100
 """Resamples built at once (a (BOOTSTRAP_BLOCK, D) table of weights)."""
 

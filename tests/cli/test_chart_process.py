@@ -74,7 +74,7 @@ def machine_cores(monkeypatch):
 
 
 def test_second_processes_write_the_bytes_the_command_writes(tmp_path, machine_cores):
-    machine_cores(2)
+    machine_cores(3)
     renderer = ChartRenderer()
     assert renderer.processes == 2
     files = _rendered(renderer, tmp_path / "processes")
@@ -93,8 +93,17 @@ def test_no_idle_core_lays_everything_out_in_the_command(tmp_path, machine_cores
     assert files == _serial(tmp_path / "serial")
 
 
+def test_one_idle_core_one_second_process_for_every_lane(tmp_path, machine_cores):
+    machine_cores(2)  # this process on one core, one idle
+    renderer = ChartRenderer()
+    assert renderer.processes == 1
+    files = _rendered(renderer, tmp_path / "one")
+    assert renderer.laid_out_here == 0
+    assert files == _serial(tmp_path / "serial")
+
+
 def test_charts_of_a_failed_process_are_laid_out_by_the_command(tmp_path, machine_cores):
-    machine_cores(2)
+    machine_cores(3)
     renderer = ChartRenderer()
     assert renderer.processes == 2
     for process in renderer._processes:  # both stop before any chart arrives
@@ -109,7 +118,7 @@ RUN = """
 import sys
 import caredecide.chunks as chunks
 import caredecide.cli as cli
-chunks.idle_cores = lambda: float({cores} - 1)
+chunks.idle_cores = lambda: float({cores} - 1)  # 1 core: none idle, 2: one, 3: two
 sys.argv = ["caredecide", "uncertainty", {model!r}, "--draws", "220", "--quiet", "--out", {out!r}]
 cli.main()
 """
@@ -120,7 +129,7 @@ def test_uncertainty_outputs_are_the_same_with_and_without_second_processes(tmp_
     # over all it has laid out, so a process that drew other charts first would differ).
     demo = MODELS_DIR / "demo_progressive.toml"
     files = {}
-    for cores in (1, 2):
+    for cores in (1, 2, 3):
         out = tmp_path / f"cores{cores}"
         code = RUN.format(cores=cores, model=str(demo), out=str(out))
         done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
@@ -129,8 +138,9 @@ def test_uncertainty_outputs_are_the_same_with_and_without_second_processes(tmp_
         files[cores] = {path.name: path.read_bytes() for path in sorted(out.iterdir())}
     assert {"ce_plane_draws.svg", "ce_plane_draws.png", "evppi.png"} <= set(files[1])
     assert "summary.json" in files[1] and "draws.csv" in files[1]
-    assert files[1].keys() == files[2].keys()
-    assert [name for name in files[1] if files[1][name] != files[2][name]] == []
+    for cores in (2, 3):
+        assert files[1].keys() == files[cores].keys()
+        assert [name for name in files[1] if files[1][name] != files[cores][name]] == []
 
 
 def _plane_table(rows: int = 40) -> pd.DataFrame:
@@ -165,7 +175,7 @@ def test_chart_jobs_built_in_second_processes_give_the_bytes_built_here(tmp_path
     serial.mkdir()
     for job in _jobs():
         save_chart(build_chart(job), serial, job.stem)
-    machine_cores(2)
+    machine_cores(3)
     renderer = ChartRenderer()
     folder = tmp_path / "processes"
     folder.mkdir()
@@ -248,4 +258,7 @@ def test_tables_go_as_json_and_come_back_bit_for_bit(columns):
     )
     back = table_from_payload(json.loads(json.dumps(table_payload(frame))))
     pd.testing.assert_frame_equal(back, frame, check_exact=True)
-    assert back["x"].to_numpy().tobytes() == frame["x"].to_numpy().tobytes()  # -0.0 too
+    numbers, sent = back["x"].to_numpy(), frame["x"].to_numpy()
+    assert (np.isnan(numbers) == np.isnan(sent)).all()  # a NaN's sign is not kept
+    kept = ~np.isnan(sent)
+    assert numbers[kept].tobytes() == sent[kept].tobytes()  # -0.0 too
