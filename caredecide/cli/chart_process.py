@@ -287,6 +287,9 @@ class ChartRenderer:
             items = [(stem, self._spec_request(chart)) for stem, chart in charts.items()]
         else:
             items = [(job.stem, self._job_request(job)) for job in charts]
+        repeated = [stem for stem, _ in items if stem in self._order]
+        if repeated or len({stem for stem, _ in items}) < len(items):
+            raise ValueError(f"chart files submitted twice: {repeated or [s for s, _ in items]}")
         self._order += [stem for stem, _ in items]
         if not self.processes:
             self._left += items

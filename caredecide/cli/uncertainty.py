@@ -472,11 +472,6 @@ def _chart_plan(
     unit = f"({result.objective.unit})"
     return [
         (
-            (),
-            0,
-            lambda t: ChartJob("ce_plane_draws", "draws_plane", {"frame": result.plane_frame()}),
-        ),
-        (
             ("acceptability_by_age_band",),
             1,
             lambda t: ChartJob(

@@ -262,3 +262,11 @@ def test_tables_go_as_json_and_come_back_bit_for_bit(columns):
     assert (np.isnan(numbers) == np.isnan(sent)).all()  # a NaN's sign is not kept
     kept = ~np.isnan(sent)
     assert numbers[kept].tobytes() == sent[kept].tobytes()  # -0.0 too
+
+
+def test_a_chart_file_submitted_twice_is_refused():
+    renderer = ChartRenderer(enabled=False)
+    job = ChartJob("plane", "draws_plane", {"frame": _plane_table()})
+    renderer.submit([job])
+    with pytest.raises(ValueError, match=r"submitted twice: \['plane'\]"):
+        renderer.submit([job])
