@@ -28,7 +28,6 @@ from __future__ import annotations
 
 import importlib
 import json
-import os
 import subprocess
 import sys
 import threading
@@ -196,7 +195,6 @@ def _serve(source: IO[bytes], sink: IO[bytes]) -> None:
     PNG bytes out (an ``error`` header when the chart fails)."""
     import vl_convert
 
-    os.nice(NICENESS)  # the command itself comes first on a busy core
     vl_convert.vegalite_to_svg(_WARM_UP)  # starts the engine before the first chart arrives
     for module in sorted({module for module, _ in CHART_MAKERS.values()}):
         try:  # imported while the command computes (a failure shows on the first job)
@@ -212,10 +210,6 @@ def _serve(source: IO[bytes], sink: IO[bytes]) -> None:
         except Exception as error:  # reported to the command, which lays the chart out
             sink.write(json.dumps({"error": str(error)[:500]}).encode() + b"\n")
         sink.flush()
-
-
-NICENESS = 5
-"""Niceness of the second processes: they use the time the command leaves."""
 
 
 PROCESSES = 2
