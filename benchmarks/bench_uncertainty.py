@@ -18,9 +18,10 @@ too, as the command line now sets by default: BLAS threads spinning on a shared 
 would otherwise decide the times. Every version runs once on 50 draws before the timing
 (compiled loops and bytecode caches written, as after installing).
 
-With an idle core beside it, the command lays its charts out in two second processes
-(``caredecide.cli.chart_process``); "CPU (with its processes)" counts theirs, "peak" is
-the command's own process.
+With idle cores beside it, the command builds and lays its charts out in second processes
+(``caredecide.cli.chart_process``, one per idle core, at most two; the scatter of the draws
+starts as soon as the first 1,000 draws are evaluated); "CPU (with its processes)" counts
+theirs, "peak" is the command's own process.
 
 Run: python benchmarks/bench_uncertainty.py [--draws 10000] [--repeats 3] [--baseline PATH]
 """
