@@ -33,7 +33,7 @@ from caredecide.compile import compile_model
 from caredecide.compiled import CompiledModel, SparseTransitions, sparse_stand_in
 from caredecide.errors import CompiledModelError
 from caredecide.evaluate import DISPLAY_CAP
-from caredecide.limits import CHUNK_MEMORY_BYTES, default_memory_limit
+from caredecide.limits import CHUNK_MEMORY_BYTES, SPARSE_MAX_DRAWS, default_memory_limit
 from caredecide.objective import Objective
 from caredecide.options import check_scalar
 from caredecide.solvers import PolicyResult, solve
@@ -97,7 +97,15 @@ def draw_bytes(model) -> int:
     """
     from caredecide import memory
 
-    return memory.draw_bytes(memory.shape_of(model)) + draw_working_bytes(model)
+    return _draw_bytes(model, memory.shape_of(model))
+
+
+def _draw_bytes(model, shape) -> int:
+    """:func:`draw_bytes` for a model whose :class:`caredecide.memory.PipelineShape` is
+    known (the structure parsed once)."""
+    from caredecide import memory
+
+    return memory.draw_bytes(shape) + draw_working_bytes(model)
 
 
 def memory_budget(memory_limit_bytes: int | None = None) -> int:
@@ -117,18 +125,59 @@ def memory_budget(memory_limit_bytes: int | None = None) -> int:
 
 
 def chunk_size_for(
-    model, n_draws: int, memory_limit_bytes: int | None = None, *, block: int = 1
+    model,
+    n_draws: int,
+    memory_limit_bytes: int | None = None,
+    *,
+    block: int = 1,
+    evaluations: bool = True,
 ) -> int:
     """Draws per chunk so that a chunk's working memory fits the budget.
 
     Working memory per draw is :func:`draw_bytes` (compile peak plus solver results).
-    The size is at least 1 and at most ``n_draws``; when it is at least ``block`` it is
-    rounded down to a multiple of ``block`` (the random-number blocks of a probabilistic
-    run).
+    An infinite-horizon model the solver keeps in sparse rows when a chunk has at most
+    :data:`~caredecide.limits.SPARSE_MAX_DRAWS` draws (large, few moves per state:
+    :func:`caredecide.memory.stationary_sparse`) gets chunks of at most that many draws,
+    sized by the sparse form's estimate (:func:`sparse_chunk_size`), so that every chunk
+    is solved in sparse form; ``evaluations=False`` (a batch that only compiles and
+    solves, :func:`solve_in_chunks`) leaves out the evaluations' kept traces
+    (:func:`draw_working_bytes`) there. The size is at least 1 and at most ``n_draws``;
+    when it is at least ``block`` it is rounded down to a multiple of ``block`` (the
+    random-number blocks of a probabilistic run).
     """
+    from caredecide import memory
+
     budget = memory_budget(memory_limit_bytes)
-    size = int(max(1, min(n_draws, budget // max(draw_bytes(model), 1))))
+    shape = memory.shape_of(model)
+    size = sparse_chunk_size(model, shape, n_draws, budget, evaluations=evaluations)
+    if size is None:
+        per_draw = _draw_bytes(model, shape)
+        size = int(max(1, min(n_draws, budget // max(per_draw, 1))))
     return max(size // block, 1) * block if size >= block else size
+
+
+def sparse_chunk_size(model, shape, n_draws: int, budget: int, *, evaluations: bool = True):
+    """Draws per chunk of a model solved in sparse form, or None for the dense rule.
+
+    ``shape`` is the model's :class:`caredecide.memory.PipelineShape`
+    (:func:`caredecide.memory.shape_of`).
+
+    The largest ``k <= min(n_draws, SPARSE_MAX_DRAWS)`` whose peak
+    (:func:`caredecide.memory.pipeline_peak_bytes` of ``k`` draws in sparse form, plus
+    ``k`` :func:`draw_working_bytes` when ``evaluations``) fits ``budget``; None when
+    ``model`` is not an infinite horizon kept sparse at that many draws, or when even one
+    draw does not fit (the dense rule then gives 1 and the guard speaks).
+    """
+    from caredecide import memory
+
+    cap = max(1, min(int(n_draws), SPARSE_MAX_DRAWS))
+    if not memory.stationary_sparse(shape.with_draws(cap)):
+        return None
+    working = draw_working_bytes(model) if evaluations else 0
+    for size in range(cap, 0, -1):
+        if memory.pipeline_peak_bytes(shape.with_draws(size)) + size * working <= budget:
+            return size
+    return None
 
 
 def chunk_ranges(n_draws: int, chunk_size: int) -> list[tuple[int, int]]:
@@ -425,8 +474,8 @@ def solve_in_chunks(
         For the D draws, in row order; identical whatever the chunk size or map.
     """
     n = len(parameter_sets)
-    if chunk_size is None:
-        chunk_size = chunk_size_for(model, n, memory_limit_bytes)
+    if chunk_size is None:  # no evaluation here: the kept traces are not counted
+        chunk_size = chunk_size_for(model, n, memory_limit_bytes, evaluations=False)
     job = SolveSetsJob(model, parameter_sets, objective, memory_limit_bytes)
     pieces = list(run_chunks(job, chunk_ranges(n, chunk_size), map_chunks=map_chunks))
     return join_compiled([c for c, _ in pieces]), join_results([r for _, r in pieces])

@@ -1,0 +1,114 @@
+"""Batches of a large infinite-horizon model with few moves per state: chunks stay sparse.
+
+The chunk driver sizes the chunks of such a model by the sparse form's memory estimate
+and caps them at ``SPARSE_MAX_DRAWS`` draws, so that every chunk of a one-way batch is
+solved with sparse rows; the answers do not depend on the chunk size (the driver's
+contract) and equal the dense solve's (common practice: a storage change never changes the
+answer beyond rounding).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from caredecide import chunks, memory
+from caredecide.limits import SPARSE_MAX_DRAWS, SPARSE_MIN_STATES
+from caredecide.modelfile import loads_model
+from caredecide.objective import Objective
+from caredecide.sensitivity import one_way
+from tests.memory_models import grid_model_text
+
+
+def _large(horizon=None, states=SPARSE_MIN_STATES + 20):
+    """A progressive chain of ``states`` states (synthetic), ranges on both estimates."""
+    text = grid_model_text(states, 2, horizon)
+    text = text.replace(
+        'value = 0.1\nkind = "probability"',
+        'value = 0.1\nlow = 0.08\nhigh = 0.12\nkind = "probability"',
+    )
+    text = text.replace(
+        'value = 0.02\nkind = "probability"',
+        'value = 0.02\nlow = 0.015\nhigh = 0.025\nkind = "probability"',
+    )
+    return loads_model(text, file="large.toml")
+
+
+def test_the_sparse_estimate_knows_which_shapes_are_solved_sparse():
+    # The "auto" rule of solvers.sparse.choose_form on the model's structure: large, few
+    # draws, an infinite horizon, few non-zeros per row.
+    shape = memory.shape_of(_large())
+    assert memory.stationary_sparse(shape)
+    assert memory.stationary_sparse(shape.with_draws(SPARSE_MAX_DRAWS))
+    assert not memory.stationary_sparse(shape.with_draws(SPARSE_MAX_DRAWS + 1))
+    assert not memory.stationary_sparse(memory.shape_of(_large(horizon=20)))
+    assert not memory.stationary_sparse(memory.shape_of(_large(states=SPARSE_MIN_STATES - 1)))
+    # Counted sparse, a draw needs less than counted dense (no (S, S) systems); beyond
+    # SPARSE_MAX_DRAWS every draw counts dense (draw_bytes: the bytes of a large chunk).
+    one, two = (memory.pipeline_peak_bytes(shape.with_draws(k)) for k in (1, 2))
+    assert memory.draw_bytes(shape) - (two - one) > 2 * 8 * shape.n_states**2
+
+
+def test_a_large_sparse_batch_is_solved_sparse_in_chunks_of_at_most_the_sparse_limit(
+    monkeypatch,
+):
+    model = _large()
+    objective = Objective.from_settings(model.settings)
+    n = SPARSE_MAX_DRAWS + 4
+    frame = pd.DataFrame({"p_prog": np.linspace(0.08, 0.12, n), "p_die": np.full(n, 0.02)})
+    assert chunks.chunk_size_for(model, n, evaluations=False) == SPARSE_MAX_DRAWS
+    seen = []
+    solve = chunks.solve
+    monkeypatch.setattr(
+        chunks, "solve", lambda c, o, **k: seen.append((c.n_draws, solve(c, o, **k))) or seen[-1][1]
+    )
+    compiled, result = chunks.solve_in_chunks(model, frame, objective)
+    assert [(d, r.transition_form) for d, r in seen] == [
+        (SPARSE_MAX_DRAWS, "sparse"),
+        (4, "sparse"),
+    ]
+    # The same answers whatever the chunk size, and those of the dense solve.
+    seen.clear()
+    _, single = chunks.solve_in_chunks(model, frame, objective, chunk_size=1)
+    decided = ~result.indifferent & ~single.indifferent
+    np.testing.assert_array_equal(result.policy[decided], single.policy[decided])
+    np.testing.assert_allclose(result.value, single.value, rtol=1e-12)
+    dense = chunks.solve(compiled, objective, transition_form="dense")
+    assert dense.transition_form == "dense"
+    np.testing.assert_allclose(result.value, dense.value, rtol=1e-8)
+
+
+def test_the_one_way_analysis_of_a_large_sparse_model_is_one_sparse_chunk(monkeypatch):
+    # Two estimates: 1 + 2 x 2 parameter sets in one chunk (the dense rule would cut
+    # them in several), solved sparse; the values at the model start match a one-draw
+    # dense solve of each set (common practice, as above).
+    from caredecide.compile import compile_model
+    from caredecide.sensitivity.variation import one_at_a_time_sets, parameter_sets
+
+    model = _large()
+    seen = []
+    solve = chunks.solve
+    monkeypatch.setattr(
+        chunks, "solve", lambda c, o, **k: seen.append((c.n_draws, solve(c, o, **k))) or seen[-1][1]
+    )
+    done = one_way(model, ["p_prog", "p_die"])
+    assert [(d, r.transition_form) for d, r in seen] == [(5, "sparse")]
+    objective = done.objective
+    frame = one_at_a_time_sets(model, ["p_die"], np.array([[0.015, 0.025]]))
+    compiled = compile_model(model, pd.concat([parameter_sets(model, {}), frame]))
+    dense = solve(compiled, objective, transition_form="dense")
+    values = dense.expected_value(compiled.start_distribution)
+    row = done.table.set_index("parameter").loc["p_die"]
+    assert row["value_base"] == pytest.approx(values[0], rel=1e-9)
+    assert row["value_low"] == pytest.approx(values[1], rel=1e-9)
+    assert row["value_high"] == pytest.approx(values[2], rel=1e-9)
+
+
+def test_a_small_or_finite_model_keeps_the_dense_chunk_rule():
+    # No sparse sizing where the solver would not keep sparse rows.
+    small = loads_model(grid_model_text(40, 2, None), file="small.toml")
+    finite = _large(horizon=20)
+    for model in (small, finite):
+        shape = memory.shape_of(model)
+        assert chunks.sparse_chunk_size(model, shape, 50, chunks.memory_budget()) is None
