@@ -93,15 +93,7 @@ def model_text(finite: bool) -> str:
         "u_base": (0.92, "qaly_weight"),
         "c_base": (500.0, "cost"),
     }
-    for name, (value, kind) in parameters.items():
-        lines += [
-            f"[parameters.{name}]",
-            f"value = {value}",
-            f'kind = "{kind}"',
-            'source = "Synthetic: invented for the benchmark"',
-        ]
-        if kind == "probability":
-            lines.append("per_years = 1.0")
+    lines += parameter_lines(parameters)
     if finite:
         # Gompertz-Makeham constants as in the synthetic demo model (Bowers et al. 1997
         # Illustrative Life Table, from memory).
@@ -111,6 +103,21 @@ def model_text(finite: bool) -> str:
             'source = "Bowers et al. 1997 (from memory), synthetic cohort"',
         ]
     return "\n".join(lines) + "\n"
+
+
+def parameter_lines(parameters: dict[str, tuple[float, str]]) -> list[str]:
+    """TOML lines of ``{name: (value, kind)}`` parameters, invented for a benchmark."""
+    lines = []
+    for name, (value, kind) in parameters.items():
+        lines += [
+            f"[parameters.{name}]",
+            f"value = {value}",
+            f'kind = "{kind}"',
+            'source = "Synthetic: invented for the benchmark"',
+        ]
+        if kind == "probability":
+            lines.append("per_years = 1.0")
+    return lines
 
 
 def draws_frame(n: int, seed: int = 2026) -> pd.DataFrame:

@@ -39,6 +39,7 @@ Rules of the expansion:
 from __future__ import annotations
 
 import difflib
+import functools
 import itertools
 import math
 import re
@@ -807,15 +808,20 @@ def apply_rate_row_clock(P: Any, model: Model) -> None:
 
 def _names(value: object) -> set[str]:
     """Names an expression reads (empty when it does not parse; parsing reports it)."""
+    return set(_text_names(value)) if isinstance(value, str) else set()
+
+
+@functools.lru_cache(maxsize=4096)
+def _text_names(text: str) -> frozenset[str]:
+    """:func:`_names` of one text, parsed once: every copy of a state asks again for the
+    names its declared expressions read (thousands of copies in a large expansion)."""
     from caredecide.errors import ExpressionError
     from caredecide.expressions import parse_expression
 
-    if not isinstance(value, str):
-        return set()
     try:
-        return set(parse_expression(value).names)
+        return frozenset(parse_expression(text).names)
     except ExpressionError:
-        return set()
+        return frozenset()
 
 
 _FLIPPED = {"<": ">", "<=": ">=", ">": "<", ">=": "<=", "==": "==", "!=": "!="}
