@@ -114,6 +114,117 @@ print(json.dumps({{
 """
 
 
+ONE_WAY_CHILD = r"""
+import json, resource, sys, time
+sys.path.insert(0, {here!r})
+from bench_sparse import chain_model_text
+from caredecide import chunks
+from caredecide.modelfile import loads_model
+from caredecide.sensitivity import one_way
+
+form = {form!r}
+if form == "dense":  # the reference: the dense chunk rule and dense solves, nothing else
+    solve = chunks.solve
+    chunks.solve = lambda c, o, **k: solve(c, o, **{{**k, "transition_form": "dense"}})
+    chunks.sparse_chunk_size = lambda *a, **k: None
+used = []
+solver = chunks.solve
+chunks.solve = lambda c, o, **k: used.append((c.n_draws, solver(c, o, **k))) or used[-1][1]
+names = ["p_prog", "p_die", "rr_treat"]
+one_way(loads_model(chain_model_text(320), file="warm.toml"), names)  # load the loops
+used.clear()
+model = loads_model(chain_model_text({states}), file="chain.toml")
+start = time.process_time()
+done = one_way(model, names)
+seconds = time.process_time() - start
+table = done.table.set_index("parameter").loc[names]
+print(json.dumps({{
+    "seconds": seconds,
+    "values": table[["value_low", "value_base", "value_high"]].to_numpy().ravel().tolist(),
+    "chunks": [[d, r.transition_form] for d, r in used],
+    "peak_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+}}))
+"""
+
+
+def chain_model_text(states: int) -> str:
+    """TOML of a SYNTHETIC progressive chain (invented numbers): ``states - 1`` alive
+    states and ``dead``; waiting moves on with ``p_prog``, treating with ``p_prog *
+    rr_treat`` at a cost per cycle; death ``p_die`` everywhere; each estimate has a
+    range (the one-way analysis varies it)."""
+    alive = [f"s{i}" for i in range(states - 1)]
+    lines = [
+        "format = 2",
+        'title = "SYNTHETIC sparse one-way benchmark"',
+        "[settings]",
+        "cycle_years = 1.0",
+        'horizon = "infinite"',
+        "start_age = 40.0",
+        'start = "s0"',
+        "discount_outcomes = 0.035",
+        "discount_costs = 0.035",
+        'objective = "net_benefit"',
+        "willingness_to_pay = 30000.0",
+        'within_cycle = "start"',
+    ]
+    for i, state in enumerate(alive):
+        lines += ["[[states]]", f'id = "{state}"', f"qaly_weight = {0.95 - 0.75 * i / states:.4f}"]
+        lines += [f"cost = {100 + i}"]
+    lines += ["[[states]]", 'id = "dead"', "qaly_weight = 0.0", "cost = 0.0", "absorbing = true"]
+    lines += ["[[actions]]", 'id = "wait"', 'allowed_in = "all"']
+    everywhere = "[" + ", ".join(f'"{s}"' for s in alive) + "]"
+    lines += ["[[actions]]", 'id = "treat"', f"allowed_in = {everywhere}", "cost_per_cycle = 900"]
+    for action, effect in (("wait", ""), ("treat", " * rr_treat")):
+        for i, state in enumerate(alive):
+            lines.append(f"[transitions.{action}.{state}]")
+            if i + 1 < len(alive):
+                lines.append(f'{alive[i + 1]} = "p_prog{effect}"')
+            lines += ['dead = "p_die"', f'{state} = "rest"']
+    for name, value, low, high in (
+        ("p_prog", 0.1, 0.08, 0.12),
+        ("p_die", 0.02, 0.015, 0.025),
+        ("rr_treat", 0.7, 0.5, 0.9),
+    ):
+        lines += [f"[parameters.{name}]", f"value = {value}", f"low = {low}", f"high = {high}"]
+        lines += ['kind = "probability"' if name != "rr_treat" else 'kind = "relative_risk"']
+        lines += ['source = "Synthetic"']
+    return "\n".join(lines) + "\n"
+
+
+def measure_one_way(states: int, repeats: int) -> None:
+    """The one-way analysis of three estimates (7 parameter sets) on a chain model of
+    ``states`` states: sparse (the library's rule) against dense (dense chunk rule and
+    dense solves), each in fresh processes; the tables must agree first."""
+    here = os.path.dirname(os.path.abspath(__file__))
+    runs: dict[str, list[dict]] = {"dense": [], "sparse": []}
+    for _ in range(repeats):
+        for form in runs:
+            code = ONE_WAY_CHILD.format(here=here, form=form, states=states)
+            done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+            if done.returncode:
+                raise SystemExit(done.stderr[-2000:])
+            runs[form].append(json.loads(done.stdout.strip().splitlines()[-1]))
+    dense, sparse = runs["dense"][0], runs["sparse"][0]
+    gap = max(abs(a - b) for a, b in zip(dense["values"], sparse["values"], strict=True))
+    scale = max(abs(a) for a in dense["values"])
+    if gap > 1e-8 * scale:
+        raise SystemExit(f"one-way, {states} states: forms disagree (value {gap:g})")
+    t = {form: statistics.median(r["seconds"] for r in rs) for form, rs in runs.items()}
+    peak = {form: max(r["peak_mib"] for r in rs) for form, rs in runs.items()}
+    print(
+        f"\n== one-way analysis (sensitivity.one_way) of 3 estimates, 7 parameter sets: "
+        f"{states} states, 2 actions, progressive, infinite horizon (median of {repeats}) =="
+    )
+    print(f"answers agree (max |value difference| {gap:.1e}, values up to {scale:.3g})")
+    for form, r in runs.items():
+        chunks = ", ".join(f"{d} draws {f}" for d, f in r[0]["chunks"])
+        print(
+            f"  {form:6s} one-way {t[form]:7.3f} s CPU   peak {peak[form]:6.0f} MiB "
+            f"(process total)   chunks: {chunks}"
+        )
+    print(f"  dense / sparse, one-way: {t['dense'] / t['sparse']:.1f}x")
+
+
 def run(states: int, form: str, method: str, cycles: int | None, back: bool) -> dict:
     code = CHILD.format(states=states, form=form, method=method, cycles=cycles, back=back)
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
@@ -206,16 +317,31 @@ def main() -> None:
     parser.add_argument("--states", type=int, nargs="+", default=[1000, 2000, 4000])
     parser.add_argument("--cycles", type=int, default=60)
     parser.add_argument("--repeats", type=int, default=3)
+    parser.add_argument(
+        "--one-way-states", type=int, default=TARGET_STATES, help="0: no one-way case"
+    )
+    parser.add_argument("--only-one-way", action="store_true", help="skip the grid")
     args = parser.parse_args()
     print("SYNTHETIC benchmark model (invented numbers); research use only.")
     load = ", ".join(f"{x:.2f}" for x in os.getloadavg())
     print(f"load average (1, 5, 15 min) at the start: {load}")
     rows = []
-    for states in args.states:
+    if args.one_way_states:
+        measure_one_way(args.one_way_states, args.repeats)
+    for states in [] if args.only_one_way else args.states:
         for method, finite, back in CASES:
             horizon = args.cycles if finite else None
             rows.append(measure(states, method, horizon, back, args.repeats))
-    print(f"\n== summary: dense / sparse, CPU time (median of {args.repeats}) ==")
+    if rows:
+        summary(rows, args.repeats)
+    load = ", ".join(f"{x:.2f}" for x in os.getloadavg())
+    print(f"load average (1, 5, 15 min) at the end: {load}")
+    print("(machine shared with other jobs while measured: absolute times are noisy)")
+
+
+def summary(rows: list[dict], repeats: int) -> None:
+    """The table of dense / sparse ratios per size and case, the target marked."""
+    print(f"\n== summary: dense / sparse, CPU time (median of {repeats}) ==")
     print(
         f"{'states':>6}  {'case':36s} {'solve':>7} {'base case':>10} {'dense s':>8} "
         f"{'sparse s':>9} {'peak MiB sparse':>16} {'dense':>6}"
@@ -231,9 +357,6 @@ def main() -> None:
             f"{row['dense_base']:8.3f} {row['sparse_base']:9.3f} {row['sparse_peak']:16.0f} "
             f"{row['dense_peak']:6.0f}{mark}"
         )
-    load = ", ".join(f"{x:.2f}" for x in os.getloadavg())
-    print(f"load average (1, 5, 15 min) at the end: {load}")
-    print("(machine shared with other jobs while measured: absolute times are noisy)")
 
 
 if __name__ == "__main__":
