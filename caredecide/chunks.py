@@ -408,7 +408,8 @@ def join_results(pieces: Sequence[PolicyResult]) -> PolicyResult:
 
     Per-draw arrays are concatenated; ``iterations`` is the largest of the chunks,
     ``success`` holds only if every chunk succeeded, and the message is the first failing
-    chunk's (else the first chunk's). Sweep histories are not joined.
+    chunk's (else the first chunk's). Sweep histories are not joined, nor the sparse
+    rows a chunk's solver read (``transition_rows``: None, they fit that chunk only).
     """
     if len(pieces) == 1:
         return pieces[0]
@@ -425,6 +426,7 @@ def join_results(pieces: Sequence[PolicyResult]) -> PolicyResult:
         success=not failing,
         message=(failing or pieces)[0].message,
         history=None,
+        transition_rows=None,
     )
 
 
@@ -454,6 +456,7 @@ def solve_in_chunks(
     chunk_size: int | None = None,
     memory_limit_bytes: int | None = None,
     map_chunks: ChunkMap | None = None,
+    keep_compiled: bool = True,
 ) -> tuple[CompiledModel, PolicyResult]:
     """Compile and solve a table of parameter sets chunk by chunk; join the chunks.
 
@@ -467,15 +470,29 @@ def solve_in_chunks(
         (D rows) parameter sets, columns = parameter names.
     chunk_size : int, optional
         Rows per chunk; default from the memory budget (:func:`chunk_size_for`).
+    keep_compiled : bool
+        False: the returned compiled model holds the first parameter set only, and each
+        chunk's compiled arrays are dropped once it is solved (for callers that read only
+        the model's structure from it: ids, ages, start distribution). A large model then
+        holds one chunk's transitions at a time, not every set's.
 
     Returns
     -------
     (CompiledModel, PolicyResult)
-        For the D draws, in row order; identical whatever the chunk size or map.
+        For the D draws (the compiled model: the first when ``keep_compiled`` is False),
+        in row order; identical whatever the chunk size or map.
     """
     n = len(parameter_sets)
     if chunk_size is None:  # no evaluation here: the kept traces are not counted
         chunk_size = chunk_size_for(model, n, memory_limit_bytes, evaluations=False)
     job = SolveSetsJob(model, parameter_sets, objective, memory_limit_bytes)
-    pieces = list(run_chunks(job, chunk_ranges(n, chunk_size), map_chunks=map_chunks))
-    return join_compiled([c for c, _ in pieces]), join_results([r for _, r in pieces])
+    compiled: list[CompiledModel] = []
+    results: list[PolicyResult] = []
+    for piece, result in run_chunks(job, chunk_ranges(n, chunk_size), map_chunks=map_chunks):
+        if keep_compiled:
+            compiled.append(piece)
+        elif not compiled:
+            compiled.append(piece.take_draws(slice(0, 1)))
+        results.append(result if keep_compiled else replace(result, transition_rows=None))
+        del piece, result  # not alive while the next chunk compiles
+    return join_compiled(compiled), join_results(results)

@@ -112,3 +112,21 @@ def test_a_small_or_finite_model_keeps_the_dense_chunk_rule():
     for model in (small, finite):
         shape = memory.shape_of(model)
         assert chunks.sparse_chunk_size(model, shape, 50, chunks.memory_budget()) is None
+
+
+def test_a_batch_can_keep_the_compiled_arrays_of_its_first_set_only():
+    # keep_compiled=False (the one-way analysis): the first set's arrays, every set's
+    # results, the same as keeping every set's arrays; joined results carry no chunk's
+    # sparse rows (they fit one chunk only).
+    model = _large()
+    objective = Objective.from_settings(model.settings)
+    frame = pd.DataFrame({"p_prog": np.linspace(0.08, 0.12, 5), "p_die": np.full(5, 0.02)})
+    full, every = chunks.solve_in_chunks(model, frame, objective, chunk_size=2)
+    first, lean = chunks.solve_in_chunks(model, frame, objective, chunk_size=2, keep_compiled=False)
+    assert full.n_draws == 5 and first.n_draws == 1
+    np.testing.assert_array_equal(first.transition, full.transition[:1])
+    np.testing.assert_array_equal(lean.policy, every.policy)
+    np.testing.assert_array_equal(lean.value, every.value)
+    assert every.transition_rows is None and lean.transition_rows is None
+    alone = chunks.solve(full.take_draws(slice(0, 2)), objective)
+    assert alone.transition_rows is not None  # one chunk's solve keeps them

@@ -91,7 +91,9 @@ def one_way(
     frame = pd.concat(
         [parameter_sets(model, {}), one_at_a_time_sets(model, names, ends)], ignore_index=True
     )
-    compiled, result = solve_parameter_sets(model, frame, objective)
+    # Only the structure (ids, ages, start) is read from the compiled arrays: those of the
+    # base set are kept, not every set's (a large model's transitions are 64 MB a set).
+    compiled, result = solve_parameter_sets(model, frame, objective, keep_compiled=False)
     values = start_values(compiled, result)  # (1 + 2P,)
     base_value = float(values[0])
     by_end = values[1:].reshape(len(names), 2)

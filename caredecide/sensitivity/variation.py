@@ -372,7 +372,7 @@ def default_objective(model: Any) -> Objective:
 
 
 def solve_parameter_sets(
-    model: Any, frame: pd.DataFrame, objective: Objective
+    model: Any, frame: pd.DataFrame, objective: Objective, *, keep_compiled: bool = True
 ) -> tuple[CompiledModel, Any]:
     """Compile and solve a batch of parameter sets through the one chunk driver.
 
@@ -382,16 +382,19 @@ def solve_parameter_sets(
     frame : pandas.DataFrame
         (D rows) parameter sets, columns = parameter names.
     objective : Objective
+    keep_compiled : bool
+        False: return the compiled arrays of the first set only (callers that read the
+        model's structure from them; see :func:`caredecide.chunks.solve_in_chunks`).
 
     Returns
     -------
     (CompiledModel, PolicyResult)
-        The compiled batch (D draws) and its solution.
+        The compiled batch (D draws, or the first) and its solution (D draws).
     """
     from caredecide.chunks import solve_in_chunks
 
     # The one chunk driver: chunks within the memory budget, joined in row order.
-    return solve_in_chunks(model, frame, objective)
+    return solve_in_chunks(model, frame, objective, keep_compiled=keep_compiled)
 
 
 def start_values(compiled: CompiledModel, result: Any) -> np.ndarray:
