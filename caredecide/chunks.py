@@ -332,10 +332,20 @@ def run_chunks(
     """
     runner = serial_map if map_chunks is None else map_chunks
     end = total if total is not None else (ranges[-1][1] if ranges else 0)
-    for (_, stop), result in zip(ranges, runner(job, ranges), strict=True):
+    results = iter(runner(job, ranges))
+    for _, stop in ranges:  # (not zip: it holds the last result while the next one runs)
+        result = next(results, _MISSING)
+        if result is _MISSING:
+            raise ValueError(f"the chunk map returned fewer results than {len(ranges)} ranges")
         if progress is not None:
             progress(stop, end)
         yield result
+        del result  # not held while the next chunk runs (the caller may drop it)
+    if next(results, _MISSING) is not _MISSING:
+        raise ValueError(f"the chunk map returned more results than {len(ranges)} ranges")
+
+
+_MISSING = object()
 
 
 # ------------------------------------------------------------ batches of given parameter sets
@@ -492,7 +502,7 @@ def solve_in_chunks(
         if keep_compiled:
             compiled.append(piece)
         elif not compiled:
-            compiled.append(piece.take_draws(slice(0, 1)))
+            compiled.append(piece.take_draws(np.arange(1)))  # a copy, not a view
         results.append(result if keep_compiled else replace(result, transition_rows=None))
         del piece, result  # not alive while the next chunk compiles
     return join_compiled(compiled), join_results(results)

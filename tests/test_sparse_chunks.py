@@ -125,8 +125,42 @@ def test_a_batch_can_keep_the_compiled_arrays_of_its_first_set_only():
     first, lean = chunks.solve_in_chunks(model, frame, objective, chunk_size=2, keep_compiled=False)
     assert full.n_draws == 5 and first.n_draws == 1
     np.testing.assert_array_equal(first.transition, full.transition[:1])
+    assert first.transition.base is None  # a copy: the chunk's arrays can be released
     np.testing.assert_array_equal(lean.policy, every.policy)
     np.testing.assert_array_equal(lean.value, every.value)
     assert every.transition_rows is None and lean.transition_rows is None
     alone = chunks.solve(full.take_draws(slice(0, 2)), objective)
     assert alone.transition_rows is not None  # one chunk's solve keeps them
+
+
+def test_the_chunk_driver_holds_no_result_while_the_next_chunk_runs():
+    # A caller that drops each chunk's result before asking for the next one holds one
+    # chunk at a time (a large model's arrays are hundreds of MB a chunk): when a chunk
+    # starts, the previous chunk's result is already gone (common practice: weak
+    # references see the release).
+    import weakref
+
+    class Piece:
+        pass
+
+    alive = []
+    made: list[weakref.ref] = []
+
+    def job(start, stop):
+        alive.append(any(ref() is not None for ref in made))
+        piece = Piece()
+        made.append(weakref.ref(piece))
+        return piece
+
+    for piece in chunks.run_chunks(job, chunks.chunk_ranges(4, 1)):
+        del piece
+    assert alive == [False, False, False, False]
+
+
+@pytest.mark.parametrize(("given", "word"), [(2, "fewer"), (4, "more")])
+def test_a_chunk_map_returning_another_number_of_results_is_refused(given, word):
+    def wrong_map(job, ranges):
+        return [job(0, 1)] * given
+
+    with pytest.raises(ValueError, match=f"returned {word} results than 3 ranges"):
+        list(chunks.run_chunks(lambda a, b: a, [(0, 1), (1, 2), (2, 3)], map_chunks=wrong_map))
