@@ -438,7 +438,8 @@ def evaluate_policies(
 
     The same outcomes as one call per policy; with the compiled loops, a finite horizon
     reads each draw's transitions once for all the policies (what a probabilistic
-    analysis of several candidate policies needs).
+    analysis of several candidate policies needs). Transitions constant over the cycles
+    that the solver keeps sparse are read into CSR rows once for all the policies.
     """
     if (
         compiled.n_cycles is None
@@ -446,8 +447,18 @@ def evaluate_policies(
         or len(policies) < 2
         or _sparse_form(compiled)
     ):
+        rows = None
+        if (
+            len(policies) > 1
+            and compiled.sparse_transition is None  # dense arrays to read from
+            and compiled.transition.shape[1] == 1
+            and compiled_form(compiled, "auto") == "sparse"
+        ):
+            rows = read_transition_rows(compiled)  # checked as read, once
         return [
-            evaluate_policy(compiled, policy, objective, terminal_value=terminal_value)
+            evaluate_policy(
+                compiled, policy, objective, terminal_value=terminal_value, transition_rows=rows
+            )
             for policy in policies
         ]
     check_compiled(compiled, rows=False)  # the fused loop checks the rows it reads

@@ -222,3 +222,28 @@ def test_the_infinite_horizon_base_case_reads_the_rows_once(method, monkeypatch)
         np.testing.assert_allclose(
             getattr(done.outcome, name), getattr(dense.outcome, name), rtol=1e-9
         )
+
+
+@pytest.mark.parametrize("n_cycles", [None, 5])
+def test_several_policies_read_the_rows_once(n_cycles, monkeypatch):
+    # evaluate_policies of a model kept sparse reads the dense transitions into CSR once
+    # for all the policies, with the outcomes of one call per policy (common practice:
+    # the same rows give the same answers).
+    from dataclasses import replace
+
+    from caredecide.evaluate import evaluate_policies
+    from caredecide.solvers import sparse as sparse_module
+    from tests.test_sparse_solver import _sparse_model
+
+    compiled = replace(_sparse_model(SPARSE_MIN_STATES + 5, seed=9), n_cycles=n_cycles)
+    policies = [0, 1, np.arange(compiled.n_states) % 2]
+    alone = [evaluate_policy(compiled, p, QALYS) for p in policies]
+    reads = []
+    read = sparse_module._csr
+    monkeypatch.setattr(sparse_module, "_csr", lambda *a, **k: reads.append(1) or read(*a, **k))
+    together = evaluate_policies(compiled, policies, QALYS)
+    assert len(reads) == 1
+    for one, joint in zip(alone, together, strict=True):
+        np.testing.assert_array_equal(joint.trace, one.trace)
+        for name in TOTALS:
+            np.testing.assert_array_equal(getattr(joint, name), getattr(one, name))
