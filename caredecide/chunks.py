@@ -131,6 +131,7 @@ def chunk_size_for(
     *,
     block: int = 1,
     evaluations: bool = True,
+    transition_form: str = "auto",
 ) -> int:
     """Draws per chunk so that a chunk's working memory fits the budget.
 
@@ -143,12 +144,15 @@ def chunk_size_for(
     solves, :func:`solve_in_chunks`) leaves out the evaluations' kept traces
     (:func:`draw_working_bytes`) there. The size is at least 1 and at most ``n_draws``;
     when it is at least ``block`` it is rounded down to a multiple of ``block`` (the
-    random-number blocks of a probabilistic run).
+    random-number blocks of a probabilistic run). ``transition_form`` is the form the
+    chunks are compiled in (:func:`caredecide.compile.compile_model`; "dense" for a job
+    that needs the dense array, such as the cell scaling of
+    :mod:`caredecide.sensitivity.cells`).
     """
     from caredecide import memory
 
     budget = memory_budget(memory_limit_bytes)
-    shape = memory.shape_of(model)
+    shape = memory.shape_of(model, transition_form=transition_form)
     size = sparse_chunk_size(model, shape, n_draws, budget, evaluations=evaluations)
     if size is None:
         per_draw = _draw_bytes(model, shape)

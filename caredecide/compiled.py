@@ -204,7 +204,7 @@ def dense_transition(compiled: CompiledModel, purpose: str) -> np.ndarray:
     Parameters
     ----------
     purpose : str
-        What needs the dense array, for the message (e.g. "the dense solver").
+        What needs the dense array, as the subject of the message ("the dense solver").
 
     Raises
     ------
@@ -215,7 +215,7 @@ def dense_transition(compiled: CompiledModel, purpose: str) -> np.ndarray:
         D, Tp, A, S, _ = compiled.sparse_transition.shape
         raise CompiledModelError(
             f"{purpose} needs the dense transition array (D, Tp, A, S, S) = "
-            f"({D}, {Tp}, {A}, {S}, {S}), but this compiled model holds its transitions in "
+            f"({D}, {Tp}, {A}, {S}, {S}), but the compiled model holds its transitions in "
             "sparse rows (compile_model(..., transition_form='sparse'), or 'auto' for a "
             "large sparse model); compile with transition_form='dense' if it fits in memory"
         )

@@ -269,3 +269,16 @@ def test_sparse_rows_report_the_row_a_bad_draw_breaks():
         compile_model(model, {"p_prog": np.array([0.1, 1.5])}, transition_form="sparse")
     assert str(sparse_error.value) == str(dense_error.value)
     assert "draw 1" in str(sparse_error.value)
+
+
+def test_chunks_are_sized_for_the_form_they_are_compiled_in():
+    # A large age-dependent model compiles to sparse rows under "auto": its chunks may hold
+    # many more draws than those of a job that needs the dense array (cell scaling).
+    from caredecide.chunks import chunk_size_for
+
+    model = _grid(400, 6, timed=True)
+    limit = 64 * 1024**2
+    sparse = chunk_size_for(model, 1000, limit)
+    dense = chunk_size_for(model, 1000, limit, transition_form="dense")
+    per_draw = memory.draw_bytes(memory.shape_of(model, transition_form="dense"))
+    assert dense < sparse and dense <= max(1, limit // per_draw)

@@ -555,7 +555,8 @@ def _solve_moved(
     if n == 0:  # no movable cell
         empty = np.empty((0, *mask.shape))
         return _Moved(empty, empty.astype(int), np.empty(0), np.empty(0))
-    size = chunk_size_for(scaler.model, n, memory_limit_bytes)
+    # Cells are scaled in dense rows (cell_scaling compiles the dense form): chunks sized so.
+    size = chunk_size_for(scaler.model, n, memory_limit_bytes, transition_form="dense")
     job = _MovedJob(scaler, which, factors, objective, base_policy, mask, evaluate)
     pieces = list(run_chunks(job, chunk_ranges(n, size)))
     return _Moved(

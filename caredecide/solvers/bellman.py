@@ -153,7 +153,7 @@ def kernel_arrays(compiled: CompiledModel) -> tuple[Any, ...]:
     ``P`` is the dense transition array (refused for a model compiled in sparse rows:
     :func:`reward_arrays` gives the rest).
     """
-    P = dense_transition(compiled, "the dense compiled loops")
+    P = dense_transition(compiled, "the dense compiled loop")
     return (_contiguous(P), *reward_arrays(compiled))
 
 
@@ -263,7 +263,7 @@ def combine(objective: Objective, qalys: np.ndarray, costs: np.ndarray) -> np.nd
 
 def transition_at(compiled: CompiledModel, t: int) -> np.ndarray:
     """(D, A, S, S) transition probabilities of cycle ``t`` (a view; dense form only)."""
-    P = dense_transition(compiled, "the dense transitions of a cycle")
+    P = dense_transition(compiled, "reading one cycle's transitions")
     return P[:, min(t, P.shape[1] - 1)]
 
 
