@@ -65,7 +65,9 @@ def _warm_up():
 
 GRID = [
     # states, actions, horizon, time-dependent, rates, draws
-    (300, 2, 10, True, False, 1),
+    (300, 2, 10, True, False, 1),  # sparse rows from here (large, age-dependent)
+    (1000, 2, 45, True, False, 1),
+    (600, 3, 30, True, False, 4),
     (50, 3, 100, True, False, 4),
     (150, 2, 60, True, False, 3),
     (30, 2, 3000, False, False, 20),
