@@ -215,9 +215,12 @@ def stationary_sparse(shape: PipelineShape) -> bool:
 
 
 def _nonzeros(shape: PipelineShape) -> int:
-    """Non-zero transitions of one draw: one per entry and a remainder per row at most."""
+    """Non-zero transitions of one draw, at most: one per entry and a remainder per row,
+    and a row given by rates (a matrix exponential) may reach every state of its
+    generator (the dense side: the estimate then keeps the dense form)."""
     S, A = shape.n_states, shape.n_actions
-    return min(shape.n_entries + A * S, A * S * S)
+    rates = shape.rate_rows * shape.rate_states
+    return min(shape.n_entries + A * S + rates, A * S * S)
 
 
 def solve_work_bytes(shape: PipelineShape) -> int:

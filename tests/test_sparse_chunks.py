@@ -164,3 +164,11 @@ def test_a_chunk_map_returning_another_number_of_results_is_refused(given, word)
 
     with pytest.raises(ValueError, match=f"returned {word} results than 3 ranges"):
         list(chunks.run_chunks(lambda a, b: a, [(0, 1), (1, 2), (2, 3)], map_chunks=wrong_map))
+
+
+def test_rows_given_by_rates_count_as_dense_in_the_estimate():
+    # A row given by rates is a matrix exponential: it may reach every state of its
+    # generator, so the estimate keeps the dense form (the side that over-counts memory).
+    rates = loads_model(grid_model_text(SPARSE_MIN_STATES + 20, 2, None, rates=True), file="r.toml")
+    shape = memory.shape_of(rates)
+    assert shape.rate_rows > 0 and not memory.stationary_sparse(shape)
