@@ -23,7 +23,11 @@ Run: python benchmarks/bench_sparse.py [--states 1000 2000 4000] [--cycles 60] [
 Prints every case for each size of the grid (``--states``, default 1,000, 2,000 and
 4,000 states), then a summary table of the dense / sparse ratios per size and case, with
 the issue's target (base case >= 10x faster than dense and under 1 GiB at 2,000 states)
-marked, and the machine load at the start and the end.
+marked, and the machine load at the start and the end. First, a one-way analysis
+(``caredecide.sensitivity.one_way`` of three estimates, 7 parameter sets) of a SYNTHETIC
+chain model of ``--one-way-states`` states (default 2,000; 0: none): the library's rule
+(sparse chunks) against dense chunks and dense solves, the tables checked to agree;
+``--only-one-way`` skips the grid.
 """
 
 from __future__ import annotations
