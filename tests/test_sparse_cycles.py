@@ -282,3 +282,15 @@ def test_chunks_are_sized_for_the_form_they_are_compiled_in():
     dense = chunk_size_for(model, 1000, limit, transition_form="dense")
     per_draw = memory.draw_bytes(memory.shape_of(model, transition_form="dense"))
     assert dense < sparse and dense <= max(1, limit // per_draw)
+
+
+def test_rate_rows_inside_a_tunnel_stay_dense():
+    # Rows given by rates inside a tunnel move their stay one step on after the
+    # exponential (expand.apply_rate_row_clock, on the dense array): "auto" keeps such a
+    # model dense, "sparse" is refused by name.
+    from tests.test_expand_rates import _text
+
+    model = loads_model(_text(), file="tunnel_rates.toml")
+    assert model.tunnels and compile_model(model).transition_form == "dense"
+    with pytest.raises(ModelError, match="not available for rate rows inside tunnels"):
+        compile_model(model, transition_form="sparse")
