@@ -268,6 +268,7 @@ def did_you_mean(name: str, candidates: Collection[str]) -> str:
 _NUMBER = re.compile(r"(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?")  # ASCII digits only
 _NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
 _OPERATORS = ("**", "<=", ">=", "==", "!=", "+", "-", "*", "/", "<", ">", "(", ")", ",")
+_OPERATOR = re.compile("|".join(re.escape(op) for op in _OPERATORS))  # first listed wins
 _WORD_OPERATORS = frozenset({"and", "or", "not"})
 
 # Characters that are not part of the language, with the reason users most need.
@@ -336,10 +337,10 @@ def _tokenize(text: str, where: str) -> list[_Token]:
             tokens.append(_Token(kind, word, i))
             i = name.end()
             continue
-        operator = next((op for op in _OPERATORS if text.startswith(op, i)), None)
+        operator = _OPERATOR.match(text, i)
         if operator:
-            tokens.append(_Token("op", operator, i))
-            i += len(operator)
+            tokens.append(_Token("op", operator.group(), i))
+            i = operator.end()
             continue
         problem = _FORBIDDEN_CHARACTERS.get(char, f"character {char!r} is not allowed")
         raise _error(where, text, problem, position=i)

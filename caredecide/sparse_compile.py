@@ -180,11 +180,9 @@ def sparse_transitions(
     indptr, _ = _csr(keys, A * S, S)
     if parsed.rests:
         a, s, to = _indices(parsed.rests)
-        rows = a * S + s
-        remainder = np.stack(
-            [values[:, :, indptr[r] : indptr[r + 1]].sum(axis=-1) for r in rows], axis=-1
-        )
-        np.subtract(1.0, remainder, out=remainder)  # (D, Tp, n): rest cells still hold 0
+        # Every row's sum at once (each row holds its diagonal: no empty row); the rest
+        # cells still hold 0.
+        remainder = 1.0 - np.add.reduceat(values, indptr[:-1], axis=-1)[:, :, a * S + s]
         values[:, :, slots(a, s, to)] = remainder_values(
             parsed.rests, evaluator, remainder, problems
         )
