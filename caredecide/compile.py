@@ -27,6 +27,7 @@ from caredecide.errors import ModelError, Problem
 from caredecide.limits import default_memory_limit
 from caredecide.memory import PipelineShape, check_fits, shape_from_parsed
 from caredecide.model import Model
+from caredecide.per_object import PerObjectCache
 from caredecide.sparse_compile import (
     SparsePattern,
     apply_sparse_moves,
@@ -128,14 +129,25 @@ def parse_model_expressions(model: Model) -> ParsedModel:
     """Parse every expression of ``model``; unknown names become problems.
 
     Unknown state or action ids in transition tables are skipped here (validation in
-    :mod:`caredecide.modelfile` reports them).
+    :mod:`caredecide.modelfile` reports them). The result is kept while the (flat)
+    model object lives and shared by every caller (:mod:`caredecide.per_object`): read
+    it, never change it.
     """
-    from caredecide.errors import ExpressionError
     from caredecide.expand import expand_model
-    from caredecide.expressions import REST_KEYWORD, parse_expression
 
-    model = expand_model(model)  # attributes and tunnels -> flat states
+    flat = expand_model(model)  # attributes and tunnels -> flat states
+    return _PARSED.get(flat, lambda: _parse_flat(flat))
+
+
+_PARSED: PerObjectCache[ParsedModel] = PerObjectCache(size=8)
+"""The parsed expressions of each live flat model object (they never refer to it)."""
+
+
+def _parse_flat(model: Model) -> ParsedModel:
+    """:func:`parse_model_expressions` of a flat model, parsed afresh."""
     from caredecide.derived import resolve_derived
+    from caredecide.errors import ExpressionError
+    from caredecide.expressions import REST_KEYWORD, parse_expression
 
     parsed = ParsedModel()
     parameter_names = model.parameter_names()

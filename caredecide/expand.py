@@ -50,6 +50,7 @@ from typing import Any
 from caredecide.errors import ModelError, ModelWarningRecord, Problem
 from caredecide.limits import MAX_EXPANDED_STATES
 from caredecide.model import ExpressionText, Model, State, StateAttribute, Tunnel
+from caredecide.per_object import PerObjectCache
 
 SEPARATOR = "__"
 """Joins a state id, value names and tunnel steps into a generated state id."""
@@ -121,8 +122,12 @@ def expand(model: Model) -> Expansion:
     """
     if not uses_expansion(model):
         copies = tuple(StateCopy(s.id, (), (), s.id, s.label or s.id) for s in model.states)
-        return Expansion(model, copies)
-    return _Expander(model).run()
+        return Expansion(model, copies)  # not kept: it refers to ``model`` itself
+    return _EXPANSIONS.get(model, lambda: _Expander(model).run())
+
+
+_EXPANSIONS: PerObjectCache[Expansion] = PerObjectCache(size=8)
+"""The expansion of each live model object (the flat model never refers to it)."""
 
 
 class _Expander:

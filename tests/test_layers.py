@@ -24,6 +24,7 @@ FLOORS: dict[str, int] = {
     "caredecide.cautions": 1,
     "caredecide.limits": 1,
     "caredecide.options": 1,
+    "caredecide.per_object": 1,
     "caredecide.palettes": 1,
     "caredecide.charts": 1,
     "caredecide.sweep_charts": 1,
