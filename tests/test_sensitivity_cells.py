@@ -17,7 +17,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from caredecide.compile import compile_model
-from caredecide.errors import ModelError, RunOptionError
+from caredecide.errors import ModelError, ModelTooLargeError, RunOptionError
 from caredecide.evaluate import evaluate_policy
 from caredecide.model import Action, Model, Parameter, Settings, State
 from caredecide.modelfile import load_model
@@ -33,6 +33,8 @@ from caredecide.sensitivity.cells import (
     FRAME_COLUMNS,
     NO_SWITCH_BAND,
     WHOLE_PATH_NOTE,
+    cell_chunk_size,
+    cell_memory,
     cell_sensitivity,
     closeness_band,
 )
@@ -324,10 +326,24 @@ def test_chunked_batches_give_the_same_result():
     # The memory budget only splits the batches (one draw per chunk here): same answers.
     model = load_model(MODELS_DIR / "demo_counts_table.toml")
     whole = cell_sensitivity(model).to_frame()
-    chunked = cell_sensitivity(model, memory_limit_bytes=1).to_frame()
+    scaler = CellScaler(model)
+    n_total = 20 * len(scaler.cells)  # more than the run moves: the kept part is counted high
+    fixed, per_draw = cell_memory(scaler, n_total)
+    assert cell_chunk_size(scaler, n_total, fixed + per_draw)[0] == 1
+    chunked = cell_sensitivity(model, memory_limit_bytes=fixed + per_draw).to_frame()
     numbers = ["factor_below", "factor_above", "value_lost_below", "value_lost_above"]
     np.testing.assert_allclose(chunked[numbers], whole[numbers], rtol=1e-12)
     assert list(chunked["changes_below"]) == list(whole["changes_below"])
+
+
+def test_a_budget_below_one_moved_draw_is_refused_naming_the_model_estimate_and_budget():
+    model = load_model(MODELS_DIR / "demo_counts_table.toml")
+    with pytest.raises(ModelTooLargeError) as info:
+        cell_sensitivity(model, memory_limit_bytes=100_000)
+    message = str(info.value)
+    assert "demo_counts_table.toml: the sensitivity of the transition cells" in message
+    assert "of 4 states in dense rows) needs an estimated" in message
+    assert "the budget is 0.1 MiB (100,000 bytes)" in message
 
 
 def test_a_model_with_only_fixed_cells_gives_an_empty_table():
@@ -372,3 +388,50 @@ def test_an_infinite_horizon_names_no_ages():
     frame = cell_sensitivity(load_model(MODELS_DIR / "teaching_stationary.toml")).to_frame()
     texts = [t for t in (*frame["changes_below"], *frame["changes_above"]) if t != "none"]
     assert texts and all(t.endswith("in every cycle") for t in texts)
+
+
+def _cell_peak(model, budget: int) -> tuple[int, int, int]:
+    """(estimate, traced peak, draws per chunk) of a cell sensitivity run in ``budget``."""
+    import gc
+    import tracemalloc
+
+    from caredecide.sensitivity.cells import DEFAULT_GRID
+
+    scaler = CellScaler(model)
+    C = len(scaler.cells)
+    n_total = C * (2 * DEFAULT_GRID + 2) + 4 * C
+    size, _ = cell_chunk_size(scaler, n_total, budget)
+    fixed, per_draw = cell_memory(scaler, n_total)
+    estimate = fixed + min(size, C * (2 * DEFAULT_GRID + 2)) * per_draw  # the grid pass
+    del scaler
+    gc.collect()
+    tracemalloc.start()
+    try:
+        cell_sensitivity(model, memory_limit_bytes=budget)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    return estimate, peak, size
+
+
+@pytest.mark.parametrize(
+    ("name", "budget"),
+    [("grid", 30_000_000), ("demo_years_since_progression.toml", 3_000_000)],
+)
+def test_cell_memory_estimate_is_within_25_percent_of_the_measured_peak(name, budget):
+    # Reference: the peak tracemalloc measures (it sees every numpy array); the 25% band
+    # is the memory guard's acceptance rule, as in tests/test_memory.py (common practice
+    # here, no published source). Age-dependent dense rows, several chunks per pass; the
+    # demo has tunnels and decision-time moves. The peak must also stay within the budget.
+    from caredecide.modelfile import loads_model
+    from tests.memory_models import grid_model_text
+
+    if name == "grid":
+        model = loads_model(grid_model_text(60, 2, 20, timed=True), file="g.toml", validate=False)
+    else:
+        model = load_model(MODELS_DIR / name)
+    cell_sensitivity(two_state_model())  # compiled loops and lazy imports load once
+    estimate, peak, size = _cell_peak(model, budget)
+    assert size > 1
+    assert 0.75 * peak <= estimate <= 1.25 * peak, (estimate / 1e6, peak / 1e6)
+    assert peak <= budget, (peak / 1e6, budget / 1e6)

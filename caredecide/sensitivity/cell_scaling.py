@@ -153,6 +153,9 @@ class CellScaler:
         self._before = (
             self.base.transition if self.base.move is None else transitions_before_moves(model)
         )
+        # The base case with one time slice of transitions: copied per draw of a batch
+        # (take_draws) before the batch's own transitions replace it.
+        self._light = replace(self.base, transition=self.base.transition[:, :1])
         self._rate_entries = parsed.rates
         tp = self.base.transition.shape[1]
         if parsed.rates:
@@ -252,7 +255,7 @@ class CellScaler:
         if which.shape != factors.shape:
             raise ValueError(f"which {which.shape} and factors {factors.shape} differ in shape")
         self._check_factors(which, factors)
-        batch = self.base.take_draws(np.zeros(which.size, dtype=int))
+        batch = self._light.take_draws(np.zeros(which.size, dtype=int))
         P = np.repeat(self._before, which.size, axis=0)  # (N, Tp, A, S, S), a copy
         P0 = self._before[0]
         rate_rows = []
@@ -286,7 +289,7 @@ class CellScaler:
             apply_rate_row_clock(block, self.model)  # rate rows inside tunnels
             P[rows] = block
         if batch.move is not None:
-            P = apply_moves(P, batch.move, batch.allowed, batch.absorbing)
+            P = apply_moves(P, batch.move, batch.allowed, batch.absorbing, in_place=True)
         return replace(batch, transition=P)
 
     def _check_factors(self, which: np.ndarray, factors: np.ndarray) -> None:

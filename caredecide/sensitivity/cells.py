@@ -390,12 +390,14 @@ def cell_sensitivity(
     loss_draws = (np.arange(C)[:, None] * factors.shape[1] + 2 * grid + np.arange(2)).reshape(-1)
     evaluate = np.zeros(which.size, dtype=bool)
     evaluate[loss_draws] = True
+    n_total = which.size + 4 * C  # the grid, then at most two ends per bracket
     moved = _solve_moved(
         scaler, which, factors.reshape(-1), objective, base_policy, mask, evaluate=evaluate,
-        memory_limit_bytes=memory_limit_bytes,
+        keep_negative=True, memory_limit_bytes=memory_limit_bytes, n_total=n_total, grid=grid,
     )  # fmt: skip
-    grid_cells = moved.cell_margins.reshape(C, factors.shape[1], *mask.shape)  # (C, 2G+2, Tpi, S)
-    margins = grid_cells.min(axis=(2, 3))
+    margins = moved.margin.reshape(C, factors.shape[1])  # (C, 2G+2)
+    loss_best, loss_kept = moved.start_value[loss_draws], moved.kept_value[loss_draws]
+    loss_margin = moved.margin[loss_draws]
     report()
 
     # 2. Brackets: the first grid interval in each direction where the margin turns negative.
@@ -423,22 +425,30 @@ def cell_sensitivity(
         cell_of, side_of, x_near, x_far, i_near, i_far = columns
         cell_of, side_of = cell_of.astype(int), side_of.astype(int)
         i_near, i_far = i_near.astype(int), i_far.astype(int)
-        far_cells = grid_cells[cell_of, i_far]  # (B, Tpi, S)
-        switching = far_cells < 0
-        near_cells = np.where(
-            (i_near < 0)[:, None, None],
-            base_cells[None],
-            grid_cells[cell_of, np.maximum(i_near, 0)],
-        )
-        m_near = np.where(switching, near_cells, np.inf).min(axis=(1, 2))
-        m_far = np.where(switching, far_cells, np.inf).min(axis=(1, 2))
+        n_columns = factors.shape[1]
+        # The decision cells whose action differs at the far end (packed bits, (B, bytes)).
+        switching = moved.negative[cell_of * n_columns + i_far]
+        # Far end: its smallest margin is negative, so it lies on a switching cell.
+        m_far = margins[cell_of, i_far]
+        m_near = np.empty(len(brackets))
+        from_base = i_near < 0
+        base_switching = _unpack(switching[from_base], mask)
+        m_near[from_base] = np.where(base_switching, base_cells[None], np.inf).min(axis=(1, 2))
+        inner = np.flatnonzero(~from_base)
+        if inner.size:
+            near_draws = cell_of[inner] * n_columns + i_near[inner]
+            m_near[inner] = _solve_moved(
+                scaler, which[near_draws], factors.reshape(-1)[near_draws], objective,
+                base_policy, mask, masks=switching[inner],
+                memory_limit_bytes=memory_limit_bytes, n_total=n_total, grid=grid,
+            ).margin  # fmt: skip
+        del moved
 
         def margin_at(x: np.ndarray, k: np.ndarray) -> np.ndarray:
-            at = _solve_moved(
-                scaler, cell_of[k], x, objective, base_policy, mask,
-                memory_limit_bytes=memory_limit_bytes,
-            )  # fmt: skip
-            return np.where(switching[k], at.cell_margins, np.inf).min(axis=(1, 2))
+            return _solve_moved(
+                scaler, cell_of[k], x, objective, base_policy, mask, masks=switching[k],
+                memory_limit_bytes=memory_limit_bytes, n_total=n_total, grid=grid,
+            ).margin  # fmt: skip
 
         found = brent_roots(
             margin_at, x_near, x_far, m_near, m_far, xtol=xtol, rtol=RTOL_MIN,
@@ -452,19 +462,17 @@ def cell_sensitivity(
         past = np.clip(
             found.root + direction * step, np.minimum(x_near, x_far), np.maximum(x_near, x_far)
         )
-        just_past = _solve_moved(
-            scaler, cell_of, past, objective, base_policy, mask,
-            memory_limit_bytes=memory_limit_bytes,
-        )  # fmt: skip
-        texts = _change_texts(scaler.base, just_past, base_policy)
+        texts = _solve_moved(
+            scaler, cell_of, past, objective, base_policy, mask, describe=True,
+            memory_limit_bytes=memory_limit_bytes, n_total=n_total, grid=grid,
+        ).changes  # fmt: skip
         for n, (c, side) in enumerate(zip(cell_of, side_of, strict=True)):
             changes[c][side] = texts[n]
         report()
 
     # 4. Value lost by keeping the base-case policy at the loss factors.
-    best = moved.start_value[loss_draws]
-    kept = moved.kept_value[loss_draws]
-    same = (moved.cell_margins[loss_draws] >= 0).all(axis=(1, 2))
+    best, kept = loss_best, loss_kept
+    same = loss_margin >= 0
     # The base-case policy is still optimal: nothing is lost (not a rounding residue).
     lost = best - kept
     same |= np.abs(lost) <= 1e-9 * np.maximum(1.0, np.abs(best))  # rounding, not a loss
@@ -494,12 +502,14 @@ def cell_sensitivity(
 
 @dataclass(frozen=True)
 class _Moved:
-    """Per-draw results of a batch of moved cells (see :func:`_solve_moved`)."""
+    """Per-draw reductions of a batch of moved cells (see :func:`_solve_moved`): no
+    (Tpi, S) array per draw is kept beyond a packed bit mask."""
 
-    cell_margins: np.ndarray  # (N, Tpi, S) margin of the base-case action, inf outside mask
-    policy: np.ndarray  # (N, Tpi, S) optimal action
+    margin: np.ndarray  # (N,) smallest margin of the base-case action over the draw's mask
+    negative: np.ndarray  # (N, B) uint8: packed (Tpi, S) bits, margin < 0 (B = 0: not asked)
     start_value: np.ndarray  # (N,) objective at the model start, optimal policy
     kept_value: np.ndarray  # (N,) the same under the base-case policy (NaN: not evaluated)
+    changes: list[str]  # per draw, the states and ages that change ("" when not asked)
 
 
 @dataclass(frozen=True)
@@ -513,6 +523,9 @@ class _MovedJob:
     base_policy: np.ndarray
     mask: np.ndarray
     evaluate: np.ndarray | None
+    masks: np.ndarray | None = None  # (N, B) packed per-draw masks replacing ``mask``
+    keep_negative: bool = False
+    describe: bool = False
 
     def __call__(self, start: int, stop: int) -> _Moved:
         from caredecide.solvers import solve
@@ -524,12 +537,99 @@ class _MovedJob:
             picked = np.flatnonzero(self.evaluate[start:stop])
             base = self.base_policy[None]
             kept[picked] = evaluate_policy(compiled.take_draws(picked), base, self.objective).value
-        return _Moved(
-            _cell_margins(result, self.base_policy, self.mask),
-            np.asarray(result.policy),
-            result.expected_value(compiled.start_distribution),
-            kept,
+        start_value = result.expected_value(compiled.start_distribution)
+        mask = self.mask if self.masks is None else _unpack(self.masks[start:stop], self.mask)
+        margins = _cell_margins(result, self.base_policy, mask)  # (n, Tpi, S)
+        policy = np.asarray(result.policy)
+        del result, compiled
+        n = stop - start
+        negative = np.packbits((margins < 0).reshape(n, -1), axis=1) if self.keep_negative else None
+        changes = (
+            _change_texts(self.scaler.base, margins, policy, self.base_policy)
+            if self.describe
+            else [""] * n
         )
+        return _Moved(
+            margins.reshape(n, -1).min(axis=1),
+            np.zeros((n, 0), dtype=np.uint8) if negative is None else negative,
+            start_value,
+            kept,
+            changes,
+        )
+
+
+def _unpack(packed: np.ndarray, like: np.ndarray) -> np.ndarray:
+    """(n, Tpi, S) bool masks from their packed bits ((n, B) uint8; ``like`` (Tpi, S))."""
+    bits = np.unpackbits(packed, axis=1, count=like.size)
+    return bits.reshape(packed.shape[0], *like.shape).astype(bool)
+
+
+CELL_MARGIN_COPIES = 4
+"""(Tpi, S, A) float arrays per draw the margins of a chunk hold at once beyond the
+solver's results (the Q-values' copy, the chosen values, the margin, the mask)."""
+
+
+def cell_memory(scaler: CellScaler, n_total: int, grid: int = DEFAULT_GRID) -> tuple[int, int]:
+    """(fixed, per draw) bytes of a cell sensitivity run moving ``n_total`` draws.
+
+    ``fixed``: the base case compiled and solved, the rows before the moves, and the
+    packed masks and values kept per draw (:class:`_Moved`); ``per draw``: one moved
+    draw of a chunk (:func:`caredecide.memory.draw_bytes` of the dense form, which the
+    cells are scaled in, plus the margins' copies of the Q-values, ``CELL_MARGIN_COPIES``,
+    the one time slice each draw copies from the base case, and the copy of the
+    transitions of the draws evaluated under the base-case policy: the two loss factors
+    of every ``2 grid + 2`` draws).
+    """
+    from caredecide import memory
+
+    shape = memory.shape_of(scaler.model, transition_form="dense")
+    S, A = shape.n_states, shape.n_actions
+    T = shape.n_cycles or 1
+    one = memory.pipeline_peak_bytes(shape)
+    before = memory.transition_bytes(shape) if scaler.base.move is not None else 0
+    kept = n_total * (-(-T * S // 8) + 4 * memory.FLOAT)
+    one_draw = memory.transition_bytes(shape)
+    per_draw = (
+        memory.draw_bytes(shape)
+        + CELL_MARGIN_COPIES * memory.FLOAT * T * S * A
+        + one_draw // shape.transition_cycles
+        + 2 * one_draw // (2 * grid + 2)
+    )
+    return one + before + kept, per_draw
+
+
+def cell_chunk_size(
+    scaler: CellScaler,
+    n_total: int,
+    memory_limit_bytes: int | None = None,
+    grid: int = DEFAULT_GRID,
+) -> tuple[int, int]:
+    """(draws per chunk, estimated peak bytes) of a run moving ``n_total`` draws.
+
+    Raises
+    ------
+    ModelTooLargeError
+        Not even one moved draw fits the budget beside the fixed part: the message names
+        the model file, the estimate and the budget.
+    """
+    from caredecide import memory
+    from caredecide.chunks import memory_budget
+    from caredecide.errors import ModelTooLargeError
+
+    budget = memory_budget(memory_limit_bytes)
+    fixed, per_draw = cell_memory(scaler, n_total, grid)
+    size = min(max(n_total, 1), (budget - fixed) // per_draw)
+    if size < 1:
+        needed = fixed + per_draw
+        raise ModelTooLargeError(
+            f"{scaler.model.file_label}: the sensitivity of the transition cells "
+            f"({n_total:,} moved parameter sets of {scaler.base.n_states:,} states in dense "
+            f"rows) needs an estimated {memory.gib(needed)} ({needed:,} bytes) of memory even "
+            f"one parameter set at a time; the budget is {memory.gib(budget)} "
+            f"({budget:,} bytes). Use fewer states or a shorter horizon, or leave out the "
+            "transition cells."
+        )
+    return int(size), int(fixed + size * per_draw)
 
 
 def _solve_moved(
@@ -541,26 +641,39 @@ def _solve_moved(
     mask: np.ndarray,
     *,
     evaluate: np.ndarray | None = None,
+    masks: np.ndarray | None = None,
+    keep_negative: bool = False,
+    describe: bool = False,
     memory_limit_bytes: int | None = None,
+    n_total: int | None = None,
+    grid: int = DEFAULT_GRID,
 ) -> _Moved:
     """Move cell ``which[n]`` by ``factors[n]`` in draw ``n`` and solve, chunk by chunk.
 
-    The one chunk driver (:mod:`caredecide.chunks`) sizes the chunks from the memory budget
-    and runs them; only the per-draw reductions are kept. ``evaluate`` (N,) bool marks the
-    draws whose value under the base-case policy is wanted.
+    The one chunk driver (:mod:`caredecide.chunks`) runs the chunks, sized by
+    :func:`cell_chunk_size`; only the per-draw reductions are kept. ``evaluate`` (N,) bool
+    marks the draws whose value under the base-case policy is wanted; ``masks`` (N, B)
+    packed bits give each draw its own decision cells (default ``mask``);
+    ``keep_negative`` keeps the packed cells with a negative margin, ``describe`` the
+    states and ages that change. ``n_total`` sizes the kept part (default N).
     """
-    from caredecide.chunks import chunk_ranges, chunk_size_for, run_chunks
+    from caredecide.chunks import chunk_ranges, run_chunks
 
     n = which.size
     if n == 0:  # no movable cell
-        empty = np.empty((0, *mask.shape))
-        return _Moved(empty, empty.astype(int), np.empty(0), np.empty(0))
-    # Cells are scaled in dense rows (cell_scaling compiles the dense form): chunks sized so.
-    size = chunk_size_for(scaler.model, n, memory_limit_bytes, transition_form="dense")
-    job = _MovedJob(scaler, which, factors, objective, base_policy, mask, evaluate)
+        return _Moved(np.empty(0), np.zeros((0, 0), np.uint8), np.empty(0), np.empty(0), [])
+    size, _ = cell_chunk_size(scaler, n if n_total is None else n_total, memory_limit_bytes, grid)
+    job = _MovedJob(
+        scaler, which, factors, objective, base_policy, mask, evaluate, masks, keep_negative,
+        describe,
+    )  # fmt: skip
     pieces = list(run_chunks(job, chunk_ranges(n, size)))
     return _Moved(
-        *(np.concatenate([getattr(p, f) for p in pieces]) for f in _Moved.__dataclass_fields__)
+        np.concatenate([p.margin for p in pieces]),
+        np.concatenate([p.negative for p in pieces]),
+        np.concatenate([p.start_value for p in pieces]),
+        np.concatenate([p.kept_value for p in pieces]),
+        [text for p in pieces for text in p.changes],
     )
 
 
@@ -576,9 +689,11 @@ def _cell_margins(result: Any, base_policy: np.ndarray, mask: np.ndarray) -> np.
     return np.where(mask if mask.ndim == 3 else mask[None], margin, np.inf)
 
 
-def _change_texts(base: Any, moved: _Moved, base_policy: np.ndarray) -> list[str]:
-    """Per draw, the states and ages whose best action differs from the base case."""
-    margin = moved.cell_margins  # (D, Tpi, S)
+def _change_texts(
+    base: Any, margin: np.ndarray, policy: np.ndarray, base_policy: np.ndarray
+) -> list[str]:
+    """Per draw, the states and ages whose best action differs from the base case
+    (``margin``, ``policy`` (D, Tpi, S): the draws' margins and optimal actions)."""
     changed = margin < 0
     # Rounding may leave the switching cell at a tiny positive margin: name the closest.
     lowest = margin.reshape(margin.shape[0], -1).argmin(axis=1)
@@ -591,7 +706,7 @@ def _change_texts(base: Any, moved: _Moved, base_policy: np.ndarray) -> list[str
     texts = []
     for d in range(changed.shape[0]):
         t, s = np.nonzero(changed[d])  # ordered by cycle, then state
-        before, after = base_policy[t, s], moved.policy[d, t, s]
+        before, after = base_policy[t, s], policy[d, t, s]
         key = (s * n_actions + before) * n_actions + after
         parts = []
         for k in np.unique(key):  # state order, then actions
