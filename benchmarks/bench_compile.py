@@ -39,9 +39,7 @@ Run: python benchmarks/bench_compile.py [--draws 1000 10000] [--repeats 3] [--sc
 from __future__ import annotations
 
 import argparse
-import json
 import os
-import subprocess
 import sys
 import tempfile
 import time
@@ -61,6 +59,9 @@ from caredecide.compile import compile_model
 from caredecide.modelfile import load_model
 from caredecide.sensitivity import parameter_ranges, parameter_sets
 from caredecide.uncertainty.sampling import sample_parameters
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from child_runs import run_child
 
 PATHS: dict[str, dict | None] = {
     "current": None,
@@ -155,12 +156,7 @@ def run_baseline(src: Path, sets: pd.DataFrame, repeats: int) -> tuple[dict, dic
             out=out_file,
             arrays=ARRAYS,
         )
-        done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
-        if done.returncode:
-            raise SystemExit(f"baseline run failed ({src}):\n{done.stderr[-2000:]}")
-        info = json.loads(done.stdout.strip().splitlines()[-1])
-        if not info["source"].startswith(str(src)):
-            raise SystemExit(f"baseline imported {info['source']}, not the checkout {src}")
+        info = run_child(code, f"baseline run ({src})", checkout=src)
         with np.load(out_file) as data:
             return info, {name: data[name] for name in ARRAYS}
 

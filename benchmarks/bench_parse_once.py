@@ -25,12 +25,13 @@ Run: python benchmarks/bench_parse_once.py --baseline PATH [--states 2000 4000]
 from __future__ import annotations
 
 import argparse
-import json
 import os
 import statistics
-import subprocess
 import sys
 from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from child_runs import run_child
 
 for _name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_name, "1")
@@ -87,13 +88,7 @@ def run(src: Path, states: int, form: str) -> dict:
     code = CHILD.format(
         src=str(src), here=str(HERE), form=form, states=states, demo=str(REPO / DEMO)
     )
-    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
-    if done.returncode:
-        raise SystemExit(f"run failed ({src}, {states} states, {form}):\n{done.stderr[-2000:]}")
-    info = json.loads(done.stdout.strip().splitlines()[-1])
-    if not info["source"].startswith(str(src)):
-        raise SystemExit(f"imported {info['source']}, not the checkout {src}")
-    return info
+    return run_child(code, f"run ({src}, {states} states, {form})", checkout=src)
 
 
 def load() -> str:
