@@ -208,3 +208,64 @@ def test_best_schedule_identical_serial_and_dask_and_across_chunk_sizes():
         np.testing.assert_array_equal(other.policy, serial.policy)
         np.testing.assert_array_equal(other.per_draw_best, serial.per_draw_best)
         np.testing.assert_array_equal(other.per_draw_optimal, serial.per_draw_optimal)
+
+
+def _dense_and_sparse(n_states: int = 8, horizon: int = 6):
+    from caredecide.compile import compile_model
+    from caredecide.modelfile import loads_model
+    from tests.memory_models import grid_model_text
+
+    model = loads_model(
+        grid_model_text(n_states, 2, horizon, timed=True), file="grid.toml", validate=False
+    )
+    draws = {"p_prog": np.linspace(0.05, 0.3, 5), "p_die": np.linspace(0.01, 0.05, 5)}
+    dense = compile_model(model, draws, transition_form="dense")
+    sparse = compile_model(model, draws, transition_form="sparse")
+    assert (dense.transition_form, sparse.transition_form) == ("dense", "sparse")
+    return model, dense, sparse
+
+
+def test_sparse_rows_give_the_dense_values_occupancy_and_action_values():
+    # Common practice: the same transitions in another storage give the same sums.
+    model, dense, sparse = _dense_and_sparse()
+    objective = Objective.from_settings(model.settings)
+    rng = np.random.default_rng(3)
+    allowed = np.asarray(dense.allowed)
+    for _ in range(3):  # random allowed policies, age-dependent
+        policy = np.array(
+            [
+                [rng.choice(np.flatnonzero(allowed[s])) for s in range(dense.n_states)]
+                for _ in range(6)
+            ]
+        )
+        a = evaluate_shared_policy(dense, objective, policy)
+        b = evaluate_shared_policy(sparse, objective, policy)
+        np.testing.assert_allclose(b.per_draw, a.per_draw, rtol=1e-12)
+        np.testing.assert_allclose(b.occupancy, a.occupancy, rtol=1e-12, atol=1e-15)
+        np.testing.assert_allclose(b.action_values, a.action_values, rtol=1e-12)
+
+
+def test_search_on_sparse_rows_finds_the_dense_answer():
+    model, dense, sparse = _dense_and_sparse()
+    objective = Objective.from_settings(model.settings)
+    found_dense = _search(dense, objective)
+    found_sparse = _search(sparse, objective)
+    np.testing.assert_array_equal(found_sparse.policy, found_dense.policy)
+    np.testing.assert_allclose(found_sparse.per_draw_best, found_dense.per_draw_best, rtol=1e-12)
+
+
+def test_best_schedule_runs_on_a_model_compiled_in_sparse_rows():
+    # 300 age-dependent states: compile picks the sparse rows (formerly refused by
+    # transition_at). No parameter is uncertain, so every draw is the base case and the best
+    # shared policy is the base-case optimum (common practice).
+    from caredecide.compile import compile_model
+    from caredecide.modelfile import loads_model
+    from caredecide.uncertainty.policy_search import best_policy_over_draws
+    from tests.memory_models import grid_model_text
+
+    model = loads_model(grid_model_text(300, 2, 8, timed=True), file="g.toml", validate=False)
+    base = compile_model(model)
+    assert base.transition_form == "sparse"
+    found = best_policy_over_draws(model, 3, 1)
+    np.testing.assert_array_equal(found.policy, found.base_policy)
+    np.testing.assert_allclose(found.per_draw_best, found.per_draw_optimal, rtol=1e-12)

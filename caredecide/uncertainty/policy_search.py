@@ -111,11 +111,37 @@ class _Rewards:
         """(Dk, S, A) action values of chunk ``k`` at cycle ``t`` given its (Dk, S)
         values of cycle t + 1."""
         now, arrival = self.parts[k][t]
-        rhs = (arrival + next_value[:, None, :])[..., None]  # (Dk, A, S, 1)
-        expected = np.matmul(transition_at(self.chunks[k], t), rhs)[..., 0]  # (Dk, A, S)
+        rhs = arrival + next_value[:, None, :]  # (Dk, A, S)
+        expected = _expected_next(self.chunks[k], t, rhs)  # (Dk, A, S)
         Q = now + expected.transpose(0, 2, 1)
         Q[:, self.not_allowed] = -np.inf
         return Q
+
+
+def _expected_next(compiled: CompiledModel, t: int, rhs: np.ndarray) -> np.ndarray:
+    """(D, A, S) ``sum_j P_t[a, s, j] rhs[a, j]`` for ``rhs`` (D, A, S), in either form of
+    the transitions (dense, or the sparse rows of ``compiled.sparse_transition``)."""
+    held = compiled.sparse_transition
+    if held is None:
+        return np.matmul(transition_at(compiled, t), rhs[..., None])[..., 0]
+    D, Tp, A, S, _ = held.shape
+    rows = _slot_rows(held)  # (nnz,) row a S + s of each slot
+    products = held.values[:, min(t, Tp - 1)] * rhs[:, rows // S, held.indices]  # (D, nnz)
+    return _sum_by(rows, products, A * S).reshape(D, A, S)
+
+
+def _slot_rows(held: Any) -> np.ndarray:
+    """(nnz,) the row ``a S + s`` each slot of sparse rows belongs to."""
+    return np.repeat(np.arange(len(held.indptr) - 1), np.diff(held.indptr))
+
+
+def _sum_by(groups: np.ndarray, values: np.ndarray, n_groups: int) -> np.ndarray:
+    """(D, n_groups) sums of ``values`` (D, n) over the columns of each group (n,)."""
+    from scipy import sparse
+
+    ones = np.ones(groups.size)
+    gather = sparse.csr_matrix((ones, (groups, np.arange(groups.size))), (n_groups, groups.size))
+    return np.asarray(gather @ values.T).T
 
 
 def _occupancy(compiled: CompiledModel, policy: np.ndarray) -> np.ndarray:
@@ -124,9 +150,20 @@ def _occupancy(compiled: CompiledModel, policy: np.ndarray) -> np.ndarray:
     m = np.empty((D, T, S))
     m[:, 0] = compiled.start_distribution
     states = np.arange(S)
+    held = compiled.sparse_transition
     for t in range(T - 1):
-        rows = transition_at(compiled, t)[:, policy[t], states, :]  # (D, S, S) chosen rows
-        m[:, t + 1] = np.einsum("ds,dsj->dj", m[:, t], rows)
+        if held is None:
+            rows = transition_at(compiled, t)[:, policy[t], states, :]  # (D, S, S) chosen rows
+            m[:, t + 1] = np.einsum("ds,dsj->dj", m[:, t], rows)
+            continue
+        # The slots of each state's chosen row: the cohort in s spreads over their columns.
+        chosen = policy[t] * S + states  # (S,) row of each state
+        lengths = held.indptr[chosen + 1] - held.indptr[chosen]
+        slots = np.repeat(held.indptr[chosen] - np.cumsum(lengths) + lengths, lengths)
+        slots += np.arange(slots.size)
+        source = np.repeat(states, lengths)
+        flow = m[:, t, source] * held.values[:, min(t, held.values.shape[1] - 1), slots]
+        m[:, t + 1] = _sum_by(held.indices[slots], flow, S)
     return m
 
 
