@@ -471,3 +471,31 @@ def test_a_negative_cost_parameter_is_reported_under_parameters():
     assert "value -5.0" in problems[0].message and "used by states.well.cost" in problems[0].message
     assert problems_under(problems, "parameters") == list(problems)
     assert problems_under(problems, "states") == []
+
+
+def test_death_below_background_is_found_in_sparse_rows_as_in_dense_rows():
+    # A 300-state age-dependent chain compiles to sparse rows (their dense array is a NaN
+    # stand-in, which used to hide this warning). Background mortality a = 0.05 per year
+    # is above the model's death probability 0.02 (1 + 0.001 age) <= 0.0218 at every age
+    # of the run (ages 40-49), so every row of a living state under either action warns:
+    # 299 rows under a0 and 299 under a1 (counted by hand from grid_model_text).
+    from caredecide.compiled import transition_row
+    from caredecide.modelfile.validator import _entering
+    from tests.memory_models import grid_model_text
+
+    text = grid_model_text(300, 2, 10, timed=True)
+    text += "[mortality]\ngompertz_makeham = { a = 0.05, b = 1e-9, c = 1.1 }\n"
+    model = loads_model(text, file="grid.toml", validate=False)
+    compiled = compile_model(model)
+    assert compiled.transition_form == "sparse"
+    dead = np.array([s == "dead" for s in compiled.state_ids])
+    entering = _entering(compiled, dead)  # (Tp, A, S)
+    for t, a, s in [(0, 0, 0), (9, 1, 150), (5, 0, 298), (3, 1, 299)]:
+        assert entering[t, a, s] == pytest.approx(transition_row(compiled, 0, t, a, s)[dead].sum())
+    warnings = [w for w in validate_model(model) if "below background mortality" in w.message]
+    assert len(warnings) == 2 * 299
+    first = next(w for w in warnings if w.where == "transitions.a0.s0")
+    # 0.02 x (1 + 0.001 x 40) = 0.0208 at age 40; background 1 - exp(-0.05) = 0.0487706 (b c^age adds < 2e-7).
+    assert "death probability 0.0208 at age 40 is below background mortality 0.04877" in (
+        first.message
+    )

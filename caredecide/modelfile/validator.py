@@ -682,7 +682,7 @@ def _warnings(model: Model, compiled) -> list[ModelWarningRecord]:
     n = compiled.n_cycles or 1
     ages = compiled.start_age + compiled.cycle_length * np.arange(n)
     background = background_probability(model.mortality, ages, compiled.cycle_length)  # (T,)
-    death = compiled.transition[0][:, :, :, dead].sum(axis=-1)  # (Tp, A, S)
+    death = _entering(compiled, dead)  # (Tp, A, S)
     shortfall = death < background[:, None, None] - 1e-12  # (T, A, S)
     rows = compiled.allowed.T & ~compiled.absorbing[None, :]  # (A, S)
     # Rows given by rates are skipped: a competing exit lowers the in-cycle death
@@ -702,6 +702,21 @@ def _warnings(model: Model, compiled) -> list[ModelWarningRecord]:
             )
         )
     return records
+
+
+def _entering(compiled, targets: np.ndarray) -> np.ndarray:
+    """(Tp, A, S) probability of entering the ``targets`` (S,) bool states from each row,
+    first draw, in either form of the transitions (dense, or the sparse rows of
+    ``compiled.sparse_transition``, whose dense ``transition`` is a NaN stand-in)."""
+    held = compiled.sparse_transition
+    if held is None:
+        return compiled.transition[0][:, :, :, targets].sum(axis=-1)
+    _, tp, A, S, _ = held.shape
+    rows = np.repeat(np.arange(A * S), np.diff(held.indptr))  # (nnz,) row a S + s
+    slots = np.flatnonzero(targets[held.indices])
+    keys = (np.arange(tp)[:, None] * (A * S) + rows[slots][None, :]).reshape(-1)
+    sums = np.bincount(keys, weights=held.values[0][:, slots].reshape(-1), minlength=tp * A * S)
+    return sums.reshape(tp, A, S)
 
 
 def _life_table_warnings(model: Model) -> list[ModelWarningRecord]:
