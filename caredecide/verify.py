@@ -137,6 +137,39 @@ def _solve(model: Model, objective: Objective, parameter_sets=None, **options) -
     return _Solved(done.compiled, done.solution, done.outcome)
 
 
+def _start_values(
+    model: Model, objective: Objective, parameter_sets: dict[str, np.ndarray]
+) -> tuple[np.ndarray, np.ndarray]:
+    """((D, S) optimal value of every state at the start, (S,) start distribution) of D
+    parameter sets, compiled and solved chunk by chunk within the memory budget (a large
+    model's one batch of 1 + S sets would not fit); only the values are kept."""
+    from caredecide.chunks import chunk_ranges, chunk_size_for, run_chunks
+
+    frame = pd.DataFrame(parameter_sets)
+    size = chunk_size_for(model, len(frame), evaluations=False)
+    job = _StartValuesJob(model, frame, objective)
+    pieces = list(run_chunks(job, chunk_ranges(len(frame), size)))
+    return np.concatenate([p[0] for p in pieces]), pieces[0][1]
+
+
+@dataclass(frozen=True)
+class _StartValuesJob:
+    """Chunk job: compile and solve parameter sets ``start:stop``; keep the values at the
+    start (D, S) and the start distribution."""
+
+    model: Model
+    parameter_sets: pd.DataFrame
+    objective: Objective
+
+    def __call__(self, start: int, stop: int) -> tuple[np.ndarray, np.ndarray]:
+        from caredecide.compile import compile_model
+        from caredecide.solvers import solve
+
+        compiled = compile_model(self.model, self.parameter_sets.iloc[start:stop])
+        result = solve(compiled, self.objective, action_values=False)
+        return np.array(result.value[:, 0]), np.asarray(compiled.start_distribution)
+
+
 def _evaluate(model: Model, objective: Objective, policy: np.ndarray):
     from caredecide.compile import compile_model
     from caredecide.evaluate import evaluate_policy
@@ -497,13 +530,12 @@ def check_qaly_weight_monotone(model: Model, objective: Objective) -> tuple[str,
     sets = {
         name: np.where(np.arange(n + 1) == i + 1, QALY_BUMP, 0.0) for i, name in enumerate(names)
     }  # row 0 = base case, row i + 1 bumps state i
-    solved = _solve(bumped, objective, sets)
-    value = solved.result.value[:, 0]  # (1 + S, S)
+    value, start_distribution = _start_values(bumped, objective, sets)  # (1 + S, S), (S,)
     change = value[1:] - value[:1]
     scale = np.abs(value).max()
     worst = float(change.min())
     ok = worst >= -(ABSOLUTE_TOLERANCE + RELATIVE_TOLERANCE * scale)
-    start = solved.result.expected_value(solved.compiled.start_distribution)
+    start = value @ start_distribution
     return (
         PASS if ok else FAIL,
         f"{n} states bumped; smallest change of any state's optimal value = {_g(worst)} "

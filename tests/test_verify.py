@@ -194,6 +194,27 @@ def test_monotonicity_check_fails_when_the_solver_flips_the_qaly_sign(base_small
     assert _status(base_small, "qaly_weight_monotone").status == verify.FAIL
 
 
+def test_monotonicity_check_gives_the_same_figures_one_parameter_set_per_chunk(monkeypatch):
+    # Common practice: the 1 + S bumped parameter sets are solved chunk by chunk within the
+    # memory budget (a 687-state model's single batch peaked at 7.8 GB); how they are split
+    # changes nothing.
+    import caredecide.chunks as chunks
+
+    model = load_model(MODELS_DIR / "demo_years_since_progression.toml")
+    whole = _status(model, "qaly_weight_monotone")
+    sizes = []
+    original = chunks.chunk_ranges
+
+    def one_each(n, size):
+        sizes.append(size)
+        return original(n, 1)
+
+    monkeypatch.setattr(chunks, "chunk_ranges", one_each)
+    split = _status(model, "qaly_weight_monotone")
+    assert sizes and split.status == whole.status == verify.PASS
+    assert split.figures == whole.figures
+
+
 def test_no_effect_check_fails_when_compile_charges_the_twin_action(base_small, monkeypatch):
     import caredecide.compile as compile_module
 
