@@ -11,6 +11,7 @@ alive, and that one analysis expands and parses a model once.
 
 from __future__ import annotations
 
+import functools
 import gc
 import threading
 import weakref
@@ -35,6 +36,12 @@ from caredecide.sensitivity import one_way
 MODELS = Path(__file__).resolve().parent.parent / "synthetic_cohort" / "models"
 PROGRESSIVE = MODELS / "demo_progressive.toml"
 TUNNELS = MODELS / "demo_years_since_progression.toml"
+
+
+@functools.cache
+def progressive() -> Model:
+    """The demo model, read once for the property test (its examples make copies)."""
+    return load_model(PROGRESSIVE)
 
 
 def fresh_parse(model: Model) -> ParsedModel:
@@ -143,6 +150,7 @@ def test_the_caches_keep_no_model_alive(path: Path) -> None:
     parse_model_expressions(flat)
     gone = weakref.ref(model)
     flat_gone = weakref.ref(flat)
+    gc.collect()  # models of earlier tests left in reference cycles go first
     before = len(compile_module._PARSED)
     del model, flat
     gc.collect()
@@ -214,7 +222,7 @@ def test_threads_share_one_value_per_owner() -> None:
 def test_property_every_copy_reads_its_own_cell(values: list[int]) -> None:
     # Copies made and parsed in any order (some equal in content) each get their own
     # cell text back, before and after the others were parsed.
-    model = load_model(PROGRESSIVE)
+    model = progressive()
     action, source, target, _ = first_cell(model)
     where = f"transitions.{action}.{source}.{target}"
     copies = [with_cell(model, action, source, target, f"0.{v:02d}") for v in values]
