@@ -358,11 +358,15 @@ def cell_sensitivity(
     ------
     ModelError
         An option out of range (naming it and the value), or a model that does not compile.
+    ModelTooLargeError
+        Not even one moved parameter set fits the memory budget beside the base case
+        (:func:`cell_chunk_size`); checked before anything is compiled.
     """
     from caredecide.solvers import solve
 
     check_cell_options(loss_factors, search_max, grid, xtol)
     objective = default_objective(model) if objective is None else objective
+    _fit(model, 0, memory_limit_bytes, grid)  # refused before compiling when nothing fits
     scaler = CellScaler(model)
     cells = scaler.cells
     C = len(cells)
@@ -580,13 +584,18 @@ def cell_memory(scaler: CellScaler, n_total: int, grid: int = DEFAULT_GRID) -> t
     transitions of the draws evaluated under the base-case policy: the two loss factors
     of every ``2 grid + 2`` draws).
     """
+    return _memory_of(scaler.model, n_total, grid)
+
+
+def _memory_of(model: Any, n_total: int, grid: int) -> tuple[int, int]:
+    """:func:`cell_memory` of a model (read from its structure, nothing compiled)."""
     from caredecide import memory
 
-    shape = memory.shape_of(scaler.model, transition_form="dense")
+    shape = memory.shape_of(model, transition_form="dense")
     S, A = shape.n_states, shape.n_actions
     T = shape.n_cycles or 1
     one = memory.pipeline_peak_bytes(shape)
-    before = memory.transition_bytes(shape) if scaler.base.move is not None else 0
+    before = memory.transition_bytes(shape) if shape.move_rows else 0
     kept = n_total * (-(-T * S // 8) + 4 * memory.FLOAT)
     one_draw = memory.transition_bytes(shape)
     per_draw = (
@@ -612,22 +621,29 @@ def cell_chunk_size(
         Not even one moved draw fits the budget beside the fixed part: the message names
         the model file, the estimate and the budget.
     """
+    return _fit(scaler.model, n_total, memory_limit_bytes, grid)
+
+
+def _fit(model: Any, n_total: int, memory_limit_bytes: int | None, grid: int) -> tuple[int, int]:
+    """:func:`cell_chunk_size` of a model (``n_total`` 0: before the cells are known, the
+    check :func:`cell_sensitivity` makes before compiling anything)."""
     from caredecide import memory
     from caredecide.chunks import memory_budget
     from caredecide.errors import ModelTooLargeError
 
     budget = memory_budget(memory_limit_bytes)
-    fixed, per_draw = cell_memory(scaler, n_total, grid)
+    fixed, per_draw = _memory_of(model, n_total, grid)
     size = min(max(n_total, 1), (budget - fixed) // per_draw)
     if size < 1:
         needed = fixed + per_draw
+        sets = f"{n_total:,} moved parameter sets" if n_total else "moved parameter sets"
+        n_states = memory.shape_of(model, transition_form="dense").n_states
         raise ModelTooLargeError(
-            f"{scaler.model.file_label}: the sensitivity of the transition cells "
-            f"({n_total:,} moved parameter sets of {scaler.base.n_states:,} states in dense "
-            f"rows) needs an estimated {memory.gib(needed)} ({needed:,} bytes) of memory even "
-            f"one parameter set at a time; the budget is {memory.gib(budget)} "
-            f"({budget:,} bytes). Use fewer states or a shorter horizon, or leave out the "
-            "transition cells."
+            f"{model.file_label}: the sensitivity of the transition cells "
+            f"({sets} of {n_states:,} states in dense rows) needs an estimated "
+            f"{memory.gib(needed)} ({needed:,} bytes) of memory even one parameter set at a "
+            f"time; the budget is {memory.gib(budget)} ({budget:,} bytes). Use fewer states "
+            "or a shorter horizon, or leave out the transition cells."
         )
     return int(size), int(fixed + size * per_draw)
 
