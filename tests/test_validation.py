@@ -495,7 +495,8 @@ def test_death_below_background_is_found_in_sparse_rows_as_in_dense_rows():
     warnings = [w for w in validate_model(model) if "below background mortality" in w.message]
     assert len(warnings) == 2 * 299
     first = next(w for w in warnings if w.where == "transitions.a0.s0")
-    # 0.02 x (1 + 0.001 x 40) = 0.0208 at age 40; background 1 - exp(-0.05) = 0.0487706 (b c^age adds < 2e-7).
+    # 0.02 x (1 + 0.001 x 40) = 0.0208 at age 40; background 1 - exp(-0.05) = 0.0487706
+    # (b c^age adds < 2e-7).
     assert "death probability 0.0208 at age 40 is below background mortality 0.04877" in (
         first.message
     )
