@@ -24,14 +24,15 @@ from hypothesis import strategies as st
 
 from caredecide import compile as compile_module
 from caredecide import expand as expand_module
-from caredecide.compile import ParsedModel, parse_model_expressions
+from caredecide import memory
+from caredecide.compile import ParsedModel, compile_model, parse_model_expressions
 from caredecide.expand import expand, expand_model
 from caredecide.model import Model
 from caredecide.modelfile import load_model, validate_model
 from caredecide.modelfile.overrides import with_overrides
 from caredecide.per_object import PerObjectCache
 from caredecide.scenarios import scenario_models
-from caredecide.sensitivity import one_way
+from caredecide.sensitivity import cell_sensitivity, one_way
 
 MODELS = Path(__file__).resolve().parent.parent / "synthetic_cohort" / "models"
 PROGRESSIVE = MODELS / "demo_progressive.toml"
@@ -257,3 +258,20 @@ def test_one_analysis_expands_and_parses_a_model_once(
     one_way(copy, names)
     assert parses == [1]
     assert expansions == ([1] if expand_module.uses_expansion(model) else [])
+
+
+@pytest.mark.parametrize("path", [PROGRESSIVE, TUNNELS], ids=lambda p: p.stem)
+def test_the_readers_of_the_kept_parse_leave_it_as_it_was(path: Path) -> None:
+    # Every reader of the shared parse runs on one model object; a reader that changed
+    # it (appended an entry, re-indexed one) would leave it unlike a fresh parse.
+    model = load_model(path)
+    kept = parse_model_expressions(model)
+    before = contents(kept)
+    memory.shape_of(model, 3)
+    compile_model(model, transition_form="sparse")
+    compile_model(model, transition_form="dense")
+    cell_sensitivity(model, grid=3)
+    one_way(model)
+    validate_model(model)
+    assert parse_model_expressions(model) is kept
+    assert contents(kept) == before == contents(fresh_parse(model))
