@@ -416,7 +416,11 @@ def _cell_peak(model, budget: int) -> tuple[int, int, int]:
 
 @pytest.mark.parametrize(
     ("name", "budget"),
-    [("grid", 30_000_000), ("demo_years_since_progression.toml", 3_000_000)],
+    [
+        ("grid", 30_000_000),
+        ("demo_years_since_progression.toml", 3_000_000),
+        ("grid300", 60_000_000),  # scaled in sparse rows (300 age-dependent states)
+    ],
 )
 def test_cell_memory_estimate_is_within_25_percent_of_the_measured_peak(name, budget):
     # Reference: the peak tracemalloc measures (it sees every numpy array); the 25% band
@@ -426,8 +430,9 @@ def test_cell_memory_estimate_is_within_25_percent_of_the_measured_peak(name, bu
     from caredecide.modelfile import loads_model
     from tests.memory_models import grid_model_text
 
-    if name == "grid":
-        model = loads_model(grid_model_text(60, 2, 20, timed=True), file="g.toml", validate=False)
+    if name.startswith("grid"):
+        shape = (60, 2, 20) if name == "grid" else (300, 2, 20)
+        model = loads_model(grid_model_text(*shape, timed=True), file="g.toml", validate=False)
     else:
         model = load_model(MODELS_DIR / name)
     cell_sensitivity(two_state_model())  # compiled loops and lazy imports load once
@@ -435,3 +440,48 @@ def test_cell_memory_estimate_is_within_25_percent_of_the_measured_peak(name, bu
     assert size > 1
     assert 0.75 * peak <= estimate <= 1.25 * peak, (estimate / 1e6, peak / 1e6)
     assert peak <= budget, (peak / 1e6, budget / 1e6)
+
+
+def _scaled_both_ways(model, n: int = 40):
+    """(sparse, dense) batches of the same random cells and factors."""
+    sparse, dense = CellScaler(model, "sparse"), CellScaler(model, "dense")
+    assert (sparse.transition_form, dense.transition_form) == ("sparse", "dense")
+    keys = [
+        (c.path, c.rule, c.remainder, c.base_low, c.base_high, c.feasible_max) for c in dense.cells
+    ]
+    assert [
+        (c.path, c.rule, c.remainder, c.base_low, c.base_high, c.feasible_max) for c in sparse.cells
+    ] == keys
+    assert [(f.path, f.reason) for f in sparse.fixed] == [(f.path, f.reason) for f in dense.fixed]
+    rng = np.random.default_rng(5)
+    which = rng.integers(0, len(dense.cells), n)
+    caps = np.array([min(dense.cells[c].feasible_max, 5.0) for c in which])
+    factors = rng.uniform(0.0, 1.0, n) * caps
+    return sparse.scaled(which, factors), dense.scaled(which, factors)
+
+
+@pytest.mark.parametrize(
+    "row",
+    [{"dead": "p", "sick": "1 - p"}, {"dead": "p * (1 + cycle)", "sick": "rest"}],
+    ids=["exits rescaled", "remainder absorbs"],
+)
+def test_sparse_rows_scale_cells_as_the_dense_rows(row):
+    # Common practice: the same move in another storage of the rows gives the same rows.
+    a, b = _scaled_both_ways(two_state_model(wait_row=row))
+    assert a.sparse_transition is not None and b.sparse_transition is None
+    np.testing.assert_array_equal(a.sparse_transition.to_dense(), b.transition)
+
+
+def test_a_large_age_dependent_model_is_scaled_in_sparse_rows_with_its_moves():
+    # 300 age-dependent states (compile picks sparse rows): the cells are scaled in them,
+    # giving the rows the dense scaling gives.
+    from caredecide.modelfile import loads_model
+    from tests.memory_models import grid_model_text
+
+    model = loads_model(grid_model_text(300, 2, 6, timed=True), file="g.toml", validate=False)
+    assert CellScaler(model).transition_form == "sparse"
+    a, b = _scaled_both_ways(model)
+    np.testing.assert_array_equal(a.sparse_transition.to_dense(), b.transition)
+    # With decision-time moves (the demo with tunnels): moved rows follow the scaled rows.
+    a, b = _scaled_both_ways(load_model(MODELS_DIR / "demo_years_since_progression.toml"))
+    np.testing.assert_allclose(a.sparse_transition.to_dense(), b.transition, rtol=0, atol=1e-15)

@@ -44,7 +44,7 @@ from caredecide.compile import (
     parse_model_expressions,
     transitions_before_moves,
 )
-from caredecide.compiled import CompiledModel
+from caredecide.compiled import CompiledModel, SparseTransitions, sparse_stand_in
 from caredecide.errors import ModelError, Problem
 from caredecide.expand import apply_rate_row_clock
 
@@ -137,7 +137,7 @@ class CellScaler:
         The cells left alone, with the reason.
     """
 
-    def __init__(self, model: Any):
+    def __init__(self, model: Any, transition_form: str = "auto"):
         from caredecide.expand import expand_model
 
         model = expand_model(model)  # attributes and tunnels: the cells of the flat states
@@ -145,17 +145,32 @@ class CellScaler:
         if parsed.problems:
             raise ModelError(parsed.problems, file=model.file_label)
         self.model = model
-        # Cells are scaled in the dense rows: a model too large for them is refused
-        # (ModelTooLargeError) rather than compiled in sparse rows.
-        self.base = compile_model(model, transition_form="dense")
+        self.transition_form = scaling_form(model, transition_form)
         # Cells are scaled in the rows before the decision-time moves, which are applied
         # again afterwards (a moved row follows the rows of its destinations).
-        self._before = (
-            self.base.transition if self.base.move is None else transitions_before_moves(model)
-        )
+        self._sparse: _SparseRows | None = None
+        if self.transition_form == "sparse":  # the form compile picks for a large model
+            self.base = compile_model(model, transition_form="sparse")
+            self._sparse = _SparseRows.of(model, parsed)
+            self._before = self.base.transition  # the NaN stand-in: never read
+        else:
+            # Dense rows: a model too large for them is refused (ModelTooLargeError).
+            self.base = compile_model(model, transition_form="dense")
+            self._before = (
+                self.base.transition if self.base.move is None else transitions_before_moves(model)
+            )
         # The base case with one time slice of transitions: copied per draw of a batch
         # (take_draws) before the batch's own transitions replace it.
-        self._light = replace(self.base, transition=self.base.transition[:, :1])
+        held = self.base.sparse_transition
+        self._light = (
+            replace(self.base, transition=self.base.transition[:, :1])
+            if held is None
+            else replace(
+                self.base,
+                transition=sparse_stand_in((1, 1, *held.shape[2:])),
+                sparse_transition=replace(held, values=held.values[:, :1]),
+            )
+        )
         self._rate_entries = parsed.rates
         tp = self.base.transition.shape[1]
         if parsed.rates:
@@ -166,7 +181,7 @@ class CellScaler:
         self.cells, self.fixed = self._find_cells(parsed)
 
     def _find_cells(self, parsed: Any) -> tuple[list[TransitionCell], list[FixedCell]]:
-        P = self._before[0]  # (Tp, A, S, S)
+        cell = self._base_cell  # (Tp,) base value of a cell before the moves
         state_ids, action_ids = self.base.state_ids, self.base.action_ids
         rests = {(e.action, e.state): e.target for e in parsed.rests}
         cells: list[TransitionCell] = []
@@ -184,7 +199,7 @@ class CellScaler:
             fixed.append(FixedCell(**names(entry), reason=FIXED_REMAINDER))
         for entry in parsed.transitions:
             a, s, j = entry.action, entry.state, entry.target
-            p = P[:, a, s, j]
+            p = cell(a, s, j)
             if not (p > 0).any():
                 fixed.append(FixedCell(**names(entry), reason=FIXED_ZERO))
                 continue
@@ -192,7 +207,7 @@ class CellScaler:
             moving = p > 0
             if r >= 0:
                 rule = REMAINDER_ABSORBS
-                cap = float(np.min((p[moving] + P[moving, a, s, r]) / p[moving]))
+                cap = float(np.min((p[moving] + cell(a, s, r)[moving]) / p[moving]))
             else:
                 others = 1.0 - p
                 if (others <= FEASIBLE_SLACK).any():
@@ -210,6 +225,12 @@ class CellScaler:
         order = {(a, s): i for i, (a, s) in enumerate(_row_order(self.base))}
         cells.sort(key=lambda c: (order[(c.action, c.source)], c.target))
         return cells, fixed
+
+    def _base_cell(self, a: int, s: int, j: int) -> np.ndarray:
+        """(Tp,) base-case probability of cell (a, s, j) before the moves, either form."""
+        if self._sparse is None:
+            return np.asarray(self._before[0, :, a, s, j])
+        return self._sparse.cell(a, s, j)
 
     def _cell(self, entry: Any, rule: str, base: np.ndarray, cap: float, **index: int):
         return TransitionCell(
@@ -255,6 +276,8 @@ class CellScaler:
         if which.shape != factors.shape:
             raise ValueError(f"which {which.shape} and factors {factors.shape} differ in shape")
         self._check_factors(which, factors)
+        if self._sparse is not None:
+            return self._scaled_sparse(which, factors)
         batch = self._light.take_draws(np.zeros(which.size, dtype=int))
         P = np.repeat(self._before, which.size, axis=0)  # (N, Tp, A, S, S), a copy
         P0 = self._before[0]
@@ -292,6 +315,42 @@ class CellScaler:
             P = apply_moves(P, batch.move, batch.allowed, batch.absorbing, in_place=True)
         return replace(batch, transition=P)
 
+    def _scaled_sparse(self, which: np.ndarray, factors: np.ndarray) -> CompiledModel:
+        """:meth:`scaled` in sparse rows: the moved rows' slots, then the moves again."""
+        from caredecide.sparse_compile import apply_sparse_moves
+
+        rows_of = self._sparse
+        assert rows_of is not None
+        before = rows_of.before
+        V0 = before.values[0]  # (Tp, n)
+        V = np.repeat(before.values, which.size, axis=0)  # (N, Tp, n), a copy
+        for c in np.unique(which):
+            cell = self.cells[c]
+            rows = np.flatnonzero(which == c)
+            k = factors[rows][:, None]  # (n, 1): one factor for the whole path
+            a, s, j = cell.action, cell.source, cell.target
+            slot_j = rows_of.slot(a, s, j)
+            p = V0[:, slot_j][None, :]  # (1, Tp)
+            if cell.rule == REMAINDER_ABSORBS:
+                slot_r = rows_of.slot(a, s, cell.remainder)
+                V[rows, :, slot_j] = k * p
+                rest = V0[:, slot_r][None, :] + (1.0 - k) * p
+                V[rows, :, slot_r] = np.where(rest < 0, 0.0, rest)  # -1e-17 at the cap
+            else:  # EXITS_RESCALED (rate cells keep the dense form: scaling_form)
+                span = np.arange(before.indptr[a * self.base.n_states + s],
+                                 before.indptr[a * self.base.n_states + s + 1])  # fmt: skip
+                scale = (1.0 - k * p) / (1.0 - p)  # (n, Tp)
+                row = V0[None, :, span] * np.where(scale < 0, 0.0, scale)[..., None]
+                row[..., np.flatnonzero(span == slot_j)[0]] = k * p
+                V[rows[:, None, None], np.arange(V.shape[1])[None, :, None], span] = row
+        moved = SparseTransitions(before.indptr, before.indices, V, before.n_states)
+        batch = self._light.take_draws(np.zeros(which.size, dtype=int))
+        if batch.move is not None:
+            moved = apply_sparse_moves(
+                moved, rows_of.pattern, batch.move, batch.allowed, batch.absorbing
+            )
+        return replace(batch, transition=sparse_stand_in(moved.shape), sparse_transition=moved)
+
     def _check_factors(self, which: np.ndarray, factors: np.ndarray) -> None:
         if which.size and (which.min() < 0 or which.max() >= len(self.cells)):
             raise ValueError(f"cell index out of range 0..{len(self.cells) - 1}")
@@ -309,6 +368,62 @@ class CellScaler:
                 ),
                 file=self.model.file_label,
             )
+
+
+def scaling_form(model: Any, requested: str = "auto") -> str:
+    """The form cells are scaled in: "sparse" when compile picks sparse rows for the base
+    case (:func:`caredecide.compile.compile_model`, "auto") and no row is given by rates
+    (a rate cell is exponentiated again in dense rows), else "dense"; ``requested``
+    "dense" forces the dense rows, "sparse" the sparse rows when there are no rates."""
+    from caredecide import memory
+
+    if requested == "dense" or model.rates:
+        return "dense"
+    if requested == "sparse":
+        return "sparse"
+    return "sparse" if memory.shape_of(model).sparse_entries else "dense"
+
+
+@dataclass(frozen=True)
+class _SparseRows:
+    """The base case's rows before the moves in sparse form, and their pattern."""
+
+    pattern: Any  # caredecide.sparse_compile.SparsePattern
+    before: SparseTransitions  # values (1, Tp, n) over pattern.before_moves
+
+    @classmethod
+    def of(cls, model: Any, parsed: Any) -> _SparseRows:
+        from caredecide.compile import _allowed_matrix, _moved_away, _time_lengths
+        from caredecide.sparse_compile import sparse_pattern, sparse_transitions
+
+        values, n_draws = parameter_batch(model)
+        evaluator = _Evaluator(model, values, n_draws)
+        absorbing = np.array([s.absorbing for s in model.states], dtype=bool)
+        allowed = _allowed_matrix(model, absorbing)
+        defined_rows = (allowed & ~absorbing[:, None]).T
+        for a, s in _moved_away(model):
+            defined_rows[a, s] = False
+        pattern = sparse_pattern(model, parsed, allowed, absorbing)
+        problems: list[Problem] = []
+        tp = _time_lengths(model, parsed)[0]
+        before = sparse_transitions(model, parsed, evaluator, pattern, defined_rows, tp, problems)
+        if problems:
+            raise ModelError(problems, file=model.file_label)
+        return cls(pattern, before)
+
+    def slot(self, a: int, s: int, j: int) -> int:
+        """Slot of cell (a, s, j) in :attr:`before` (-1 when not in the pattern)."""
+        S = self.before.n_states
+        keys = self.pattern.before_moves
+        key = (a * S + s) * S + j
+        i = int(np.searchsorted(keys, key))
+        return i if i < keys.size and keys[i] == key else -1
+
+    def cell(self, a: int, s: int, j: int) -> np.ndarray:
+        """(Tp,) base value of cell (a, s, j) (zeros outside the pattern)."""
+        i = self.slot(a, s, j)
+        tp = self.before.values.shape[1]
+        return np.zeros(tp) if i < 0 else self.before.values[0, :, i]
 
 
 def _row_order(compiled: CompiledModel) -> list[tuple[int, int]]:

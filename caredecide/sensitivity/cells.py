@@ -50,6 +50,7 @@ from caredecide.sensitivity.cell_scaling import (
     CellScaler,
     FixedCell,
     TransitionCell,
+    scaling_form,
 )
 from caredecide.sensitivity.oneway import _ages_text
 from caredecide.sensitivity.variation import default_objective, policy_ages
@@ -591,20 +592,34 @@ def _memory_of(model: Any, n_total: int, grid: int) -> tuple[int, int]:
     """:func:`cell_memory` of a model (read from its structure, nothing compiled)."""
     from caredecide import memory
 
-    shape = memory.shape_of(model, transition_form="dense")
+    shape = memory.shape_of(model, transition_form=scaling_form(model))
     S, A = shape.n_states, shape.n_actions
     T = shape.n_cycles or 1
     one = memory.pipeline_peak_bytes(shape)
     before = memory.transition_bytes(shape) if shape.move_rows else 0
-    kept = n_total * (-(-T * S // 8) + 4 * memory.FLOAT)
+    # Kept per moved draw: packed bits and four numbers, twice while the chunks join.
+    kept = 2 * n_total * (-(-T * S // 8) + 4 * memory.FLOAT)
     one_draw = memory.transition_bytes(shape)
     per_draw = (
-        memory.draw_bytes(shape)
+        _solve_draw_bytes(shape)
         + CELL_MARGIN_COPIES * memory.FLOAT * T * S * A
         + one_draw // shape.transition_cycles
         + 2 * one_draw // (2 * grid + 2)
     )
     return one + before + kept, per_draw
+
+
+def _solve_draw_bytes(shape: Any) -> int:
+    """Bytes one more draw adds to the solve and evaluation stages of a pass (the moved
+    draws are not compiled: their arrays are copies of the base case's, moved in place)."""
+    from caredecide import memory
+
+    def stages(d: int) -> int:
+        s = shape.with_draws(d)
+        held = memory.compiled_bytes(s) + memory.results_bytes(s)
+        return held + max(memory.solve_work_bytes(s), memory.evaluate_bytes(s))
+
+    return stages(2) - stages(1)
 
 
 def cell_chunk_size(
@@ -637,10 +652,11 @@ def _fit(model: Any, n_total: int, memory_limit_bytes: int | None, grid: int) ->
     if size < 1:
         needed = fixed + per_draw
         sets = f"{n_total:,} moved parameter sets" if n_total else "moved parameter sets"
-        n_states = memory.shape_of(model, transition_form="dense").n_states
+        form = scaling_form(model)
+        n_states = memory.shape_of(model, transition_form=form).n_states
         raise ModelTooLargeError(
             f"{model.file_label}: the sensitivity of the transition cells "
-            f"({sets} of {n_states:,} states in dense rows) needs an estimated "
+            f"({sets} of {n_states:,} states in {form} rows) needs an estimated "
             f"{memory.gib(needed)} ({needed:,} bytes) of memory even one parameter set at a "
             f"time; the budget is {memory.gib(budget)} ({budget:,} bytes). Use fewer states "
             "or a shorter horizon, or leave out the transition cells."
