@@ -511,3 +511,25 @@ def test_model_without_parameters_is_refused_with_a_clear_message():
         r"parameters to vary",
     ):
         one_way(load_model(path))
+
+
+def test_setting_threshold_batch_beyond_the_budget_is_refused_naming_model_and_budget(
+    monkeypatch,
+):
+    # The search solves its grid of willingness-to-pay values in one batch of copies of
+    # the base case: beyond the memory budget it is refused by name (a 687-state model
+    # asked for 23.4 GiB and stopped with a MemoryError traceback).
+    import caredecide.chunks as chunks
+    from caredecide.errors import ModelTooLargeError
+    from caredecide.modelfile import load_model
+    from caredecide.sensitivity.thresholds import setting_thresholds
+    from synthetic_cohort import demo_model_path
+
+    model = load_model(demo_model_path())
+    monkeypatch.setattr(chunks, "memory_budget", lambda limit=None: 10_000)
+    with pytest.raises(ModelTooLargeError) as info:
+        setting_thresholds(model, "willingness_to_pay", 0.0, 100_000.0)
+    message = str(info.value)
+    assert demo_model_path().name in message
+    assert "the threshold search over willingness_to_pay solves" in message
+    assert "the budget is 0.0 MiB (10,000 bytes)" in message

@@ -362,6 +362,7 @@ def setting_thresholds(
         unit_objective = replace(objective, willingness_to_pay=1.0)
 
         def solve_at(x: np.ndarray, which: np.ndarray) -> tuple[Any, Any]:
+            _check_copies(model, compiled, x.size, setting)
             batch = compiled_over_willingness_to_pay(compiled, x)
             return batch, solve(batch, unit_objective)
 
@@ -371,6 +372,7 @@ def setting_thresholds(
         )
 
         def solve_at(x: np.ndarray, which: np.ndarray) -> tuple[Any, Any]:
+            _check_copies(model, compiled, x.size, setting)
             batch = compiled_over_discount_rate(
                 compiled,
                 discount_outcomes=None if setting == "discount_costs" else x,
@@ -406,6 +408,33 @@ def setting_thresholds(
     )
     table["base"] = float(base)
     return table.rename(columns={"quantity": "setting"})
+
+
+def _check_copies(model: Any, compiled: Any, n: int, setting: str) -> None:
+    """Refuse a batch of ``n`` copies of the one-draw ``compiled`` whose arrays alone
+    exceed the memory budget (``ModelTooLargeError``, naming the model, the setting, the
+    estimate and the budget) instead of failing to allocate them: the search solves its
+    values of a setting in one batch, not chunk by chunk."""
+    from caredecide.chunks import memory_budget
+    from caredecide.errors import ModelTooLargeError
+    from caredecide.memory import gib
+
+    held = compiled.sparse_transition
+    arrays = [
+        compiled.transition if held is None else held.values,
+        compiled.state_qaly, compiled.state_cost, compiled.decision_qaly,
+        compiled.decision_cost, compiled.move, compiled.state_action_qaly,
+        compiled.state_action_cost,
+    ]  # fmt: skip
+    needed = n * sum(int(np.asarray(a).nbytes) for a in arrays if a is not None)
+    budget = memory_budget()
+    if needed > budget:
+        raise ModelTooLargeError(
+            f"{source_file(model)}: the threshold search over {setting} solves {n:,} copies "
+            f"of the base case at once: their arrays alone need an estimated {gib(needed)} "
+            f"({needed:,} bytes) of memory; the budget is {gib(budget)} ({budget:,} bytes). "
+            "Use fewer states or a shorter horizon for this search."
+        )
 
 
 def summarise_thresholds(table: pd.DataFrame) -> pd.DataFrame:
