@@ -62,9 +62,16 @@ def _measured_peak(model, n_draws: int) -> int:
 @pytest.fixture(scope="module", autouse=True)
 def _warm_up():
     # Compiled kernels and lazy imports allocate once per process: not part of a pass.
+    # Compiling a kernel (a fresh clone has no numba cache on disk) traces tens of MB.
     for horizon in (4, None):
         for rates in (False, True):
             _measured_peak(_grid(4, 2, horizon, timed=horizon is not None, rates=rates), 2)
+    # The sparse-row loops too (the large age-dependent shapes of GRID compile to them).
+    small = _grid(4, 2, 4, timed=True, rates=False)
+    compiled = compile_model(small, {"p_prog": np.array([0.1])}, transition_form="sparse")
+    assert compiled.transition_form == "sparse"
+    objective = Objective.from_settings(small.settings)
+    evaluate_policy(compiled, solve(compiled, objective).policy, objective)
 
 
 GRID = [
