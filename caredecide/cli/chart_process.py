@@ -3,13 +3,15 @@
 The chart renderer (vl-convert) holds the interpreter lock and needs about 0.3 s to start
 its JavaScript engine, so threads cannot overlap it with other work. When a core is idle
 (:func:`caredecide.chunks.idle_cores`), :class:`ChartRenderer` starts this file as a
-plain script (standard library and ``vl_convert`` only), twice, at the beginning of a
-command; each starts its engine while the command imports, compiles and solves. Each chart then goes
-to it as its Vega-Lite specification in JSON (data only: nothing is pickled), and comes
-back as the SVG text and PNG bytes; the command writes the files itself (in its staging
+plain script at the beginning of a command, once per idle core (at most
+:data:`PROCESSES`); each starts its engine while the command imports, compiles and
+solves. Each chart then goes to it as its Vega-Lite specification in JSON (data only:
+nothing is pickled) and comes back as SVG text, which the command rasterises into the
+PNG (no engine needed, and the command has usually finished its own work by then) while
+the process lays out the next chart; the command writes the files itself (in its staging
 folder). The command lays out itself every chart when no core is idle, and any chart a
-second process fails on: the bytes are the same either way
-(:func:`render_chart` is the one layout).
+second process fails on: the bytes are the same either way (:func:`layout_svg` and
+:func:`rasterise` are the one layout).
 
 A chart can also go as a :class:`ChartJob`: the name of one of the chart functions in
 :data:`CHART_MAKERS` and its tables (plain JSON columns, their dtypes kept), so that the
@@ -159,12 +161,24 @@ def chart_spec(chart: Any) -> tuple[dict[str, Any], str]:
 def render_chart(spec: dict[str, Any], vl_version: str) -> tuple[str, bytes]:
     """(SVG text, PNG bytes) of one specification: laid out once, the PNG being the SVG
     rasterised at :data:`PNG_SCALE` (the same renderer Altair's PNG export ends in)."""
+    svg = layout_svg(spec, vl_version)
+    return svg, rasterise(svg)
+
+
+def layout_svg(spec: dict[str, Any], vl_version: str) -> str:
+    """The SVG text of one specification (the renderer's JavaScript engine lays it out)."""
     import vl_convert
 
-    svg = vl_convert.vegalite_to_svg(
+    return vl_convert.vegalite_to_svg(
         spec, vl_version=vl_version, format_locale=None, time_format_locale=None
     )
-    return svg, vl_convert.svg_to_png(svg, scale=PNG_SCALE)
+
+
+def rasterise(svg: str) -> bytes:
+    """The PNG bytes of an SVG at :data:`PNG_SCALE` (no JavaScript engine needed)."""
+    import vl_convert
+
+    return vl_convert.svg_to_png(svg, scale=PNG_SCALE)
 
 
 def write_chart(svg: str, png: bytes, out: Path, stem: str) -> list[Path]:
@@ -183,16 +197,22 @@ def _read_exactly(stream: IO[bytes], size: int) -> bytes:
     return data
 
 
-def _lay_out(request: dict[str, Any]) -> tuple[str, bytes]:
-    """(SVG, PNG) of one request: a Vega-Lite ``spec`` or a chart ``job`` payload."""
+def _svg_of(request: dict[str, Any]) -> str:
+    """The SVG of one request: a Vega-Lite ``spec`` or a chart ``job`` payload."""
     if "job" in request:
-        return render_chart(*chart_spec(build_chart(job_from_payload(request["job"]))))
-    return render_chart(request["spec"], request["vl_version"])
+        return layout_svg(*chart_spec(build_chart(job_from_payload(request["job"]))))
+    return layout_svg(request["spec"], request["vl_version"])
+
+
+def _lay_out(request: dict[str, Any]) -> tuple[str, bytes]:
+    """(SVG, PNG) of one request, laid out in this process."""
+    svg = _svg_of(request)
+    return svg, rasterise(svg)
 
 
 def _serve(source: IO[bytes], sink: IO[bytes]) -> None:
-    """The second process: one JSON line per chart in, a JSON header line then the SVG and
-    PNG bytes out (an ``error`` header when the chart fails)."""
+    """The second process: one JSON line per chart in, a JSON header line then the SVG
+    bytes out (an ``error`` header when the chart fails)."""
     import vl_convert
 
     vl_convert.vegalite_to_svg(_WARM_UP)  # starts the engine before the first chart arrives
@@ -203,10 +223,9 @@ def _serve(source: IO[bytes], sink: IO[bytes]) -> None:
             continue
     for line in source:
         try:
-            svg, png = _lay_out(json.loads(line))
-            text = svg.encode("utf-8")
-            sink.write(json.dumps({"svg": len(text), "png": len(png)}).encode() + b"\n")
-            sink.write(text + png)
+            text = _svg_of(json.loads(line)).encode("utf-8")
+            sink.write(json.dumps({"svg": len(text)}).encode() + b"\n")
+            sink.write(text)
         except Exception as error:  # reported to the command, which lays the chart out
             sink.write(json.dumps({"error": str(error)[:500]}).encode() + b"\n")
         sink.flush()
@@ -328,11 +347,13 @@ class ChartRenderer:
                 process.stdin.flush()
                 header = json.loads(process.stdout.readline() or b"{}")
                 svg = _read_exactly(process.stdout, int(header["svg"])).decode("utf-8")
-                png = _read_exactly(process.stdout, int(header["png"]))
             except (OSError, ValueError, KeyError, EOFError):
                 with self._lock:  # laid out by the command instead
                     self._left += items[number:]
                 return
+            # Rasterised here while the process lays out the next chart (the command has
+            # usually finished its own work by now, and needs no JavaScript engine for it).
+            png = rasterise(svg)
             with self._lock:
                 self._done[stem] = (svg, png)
 
