@@ -212,7 +212,8 @@ def _lay_out(request: dict[str, Any]) -> tuple[str, bytes]:
 
 def _serve(source: IO[bytes], sink: IO[bytes]) -> None:
     """The second process: one JSON line per chart in, a JSON header line then the SVG
-    bytes out (an ``error`` header when the chart fails)."""
+    bytes (and the PNG's when the request asks ``png``) out (an ``error`` header when the
+    chart fails)."""
     import vl_convert
 
     vl_convert.vegalite_to_svg(_WARM_UP)  # starts the engine before the first chart arrives
@@ -223,9 +224,12 @@ def _serve(source: IO[bytes], sink: IO[bytes]) -> None:
             continue
     for line in source:
         try:
-            text = _svg_of(json.loads(line)).encode("utf-8")
-            sink.write(json.dumps({"svg": len(text)}).encode() + b"\n")
-            sink.write(text)
+            request = json.loads(line)
+            svg = _svg_of(request)
+            text = svg.encode("utf-8")
+            png = rasterise(svg) if request.get("png") else b""
+            sink.write(json.dumps({"svg": len(text), "png": len(png)}).encode() + b"\n")
+            sink.write(text + png)
         except Exception as error:  # reported to the command, which lays the chart out
             sink.write(json.dumps({"error": str(error)[:500]}).encode() + b"\n")
         sink.flush()
@@ -247,9 +251,9 @@ class ChartRenderer:
 
     def __init__(self, enabled: bool = True) -> None:
         self._processes: list[subprocess.Popen[bytes]] = []
-        self._lock = threading.Lock()
+        self._lock = threading.Condition()  # guards _left and _done; notified on arrival
         self._left: list[tuple[str, dict[str, Any]]] = []
-        self._done: dict[str, tuple[str, bytes]] = {}
+        self._done: dict[str, tuple[str, bytes | None]] = {}  # None: PNG not yet made
         self._order: list[str] = []
         self._calls = 0
         self._feeders: list[threading.Thread] = []
@@ -287,19 +291,29 @@ class ChartRenderer:
             self._starter.join()
         return len(self._processes)
 
-    def submit(self, charts: dict[str, Any] | list[ChartJob], lane: int | None = None) -> None:
+    def submit(
+        self,
+        charts: dict[str, Any] | list[ChartJob],
+        lane: int | None = None,
+        png_there: bool = False,
+    ) -> None:
         """Queue charts to be laid out in this order: Altair charts by file stem, or
         :class:`ChartJob` s (built by the second process, or here if none).
 
         ``lane`` picks the second process (modulo their number); the charts of one lane
         are laid out one call after the other. Without ``lane``, the first call's charts
         go to one process (give it the longest layout, as soon as it can be built) and
-        every later call's to the other.
+        every later call's to the other. The second process returns the SVG and this one
+        rasterises the PNG once it calls :meth:`results` (its own work done), unless
+        ``png_there`` (a chart that arrives while this process is still busy: the scatter
+        of the draws).
         """
         if isinstance(charts, dict):
             items = [(stem, self._spec_request(chart)) for stem, chart in charts.items()]
         else:
             items = [(job.stem, self._job_request(job)) for job in charts]
+        if png_there:
+            items = [(stem, {**request, "png": True}) for stem, request in items]
         repeated = [stem for stem, _ in items if stem in self._order]
         if repeated or len({stem for stem, _ in items}) < len(items):
             raise ValueError(f"chart files submitted twice: {repeated or [s for s, _ in items]}")
@@ -347,19 +361,33 @@ class ChartRenderer:
                 process.stdin.flush()
                 header = json.loads(process.stdout.readline() or b"{}")
                 svg = _read_exactly(process.stdout, int(header["svg"])).decode("utf-8")
+                png = _read_exactly(process.stdout, int(header["png"]))
             except (OSError, ValueError, KeyError, EOFError):
                 with self._lock:  # laid out by the command instead
                     self._left += items[number:]
                 return
-            # Rasterised here while the process lays out the next chart (the command has
-            # usually finished its own work by now, and needs no JavaScript engine for it).
-            png = rasterise(svg)
-            with self._lock:
-                self._done[stem] = (svg, png)
+            with self._lock:  # without png: rasterised by results() (no engine needed)
+                self._done[stem] = (svg, png if request.get("png") else None)
+                self._lock.notify_all()
 
     def results(self, out: Path) -> list[Path]:
         """Wait for the second processes, lay out here what they could not, and write
         every chart's SVG and PNG into ``out`` in the order submitted; returns the paths."""
+        # This process is free now: it rasterises each SVG as it arrives while the second
+        # processes lay out the next charts.
+        while True:
+            with self._lock:
+                waiting = [stem for stem, (_, png) in self._done.items() if png is None]
+                if not waiting:
+                    if not any(feeder.is_alive() for feeder in self._feeders):
+                        break
+                    self._lock.wait(timeout=0.05)
+                    continue
+            for stem in waiting:
+                svg = self._done[stem][0]
+                png = rasterise(svg)
+                with self._lock:
+                    self._done[stem] = (svg, png)
         for feeder in self._feeders:
             feeder.join()
         self._feeders = []
@@ -369,7 +397,12 @@ class ChartRenderer:
         for stem, request in left:
             self._done[stem] = _lay_out(request)
             self.laid_out_here += 1
-        return [path for stem in self._order for path in write_chart(*self._done[stem], out, stem)]
+        paths = []
+        for stem in self._order:
+            text, image = self._done[stem]
+            assert image is not None
+            paths += write_chart(text, image, out, stem)
+        return paths
 
     def close(self) -> None:
         """Stop the second processes (if any) at once: every chart they returned is kept,

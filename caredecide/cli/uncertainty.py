@@ -268,7 +268,7 @@ def _run(
             plane_sent: list[bool] = []
 
             def plane_ready(frame: pd.DataFrame) -> None:  # the scatter starts at once
-                renderer.submit([_plane_job(frame)], lane=0)
+                renderer.submit([_plane_job(frame)], lane=0, png_there=True)
                 plane_sent.append(True)
 
             options: dict[str, Any] = dict(
@@ -294,7 +294,7 @@ def _run(
                 "cores were busy (a thread without a free core only slows the others)."
             )
         if out is not None and not plane_sent:
-            renderer.submit([_plane_job(result.plane_frame())], lane=0)
+            renderer.submit([_plane_job(result.plane_frame())], lane=0, png_there=True)
         tables = _tables(result, band_years, renderer if out is not None else None)
         tables["strategy_means"] = result.strategy_summary(reference=reference)
         if population_per_year is not None:

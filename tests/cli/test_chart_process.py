@@ -182,7 +182,7 @@ def test_chart_jobs_built_in_second_processes_give_the_bytes_built_here(tmp_path
     try:
         plane, curves = _jobs()
         renderer.submit([curves], lane=1)  # lanes, not the order of calls, pick the process
-        renderer.submit([plane], lane=0)
+        renderer.submit([plane], lane=0, png_there=True)  # its PNG rasterised there
         paths = renderer.results(folder)
     finally:
         renderer.close()
