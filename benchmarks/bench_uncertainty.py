@@ -63,9 +63,9 @@ def timed(owner, name, step):
     setattr(owner, name, wrapper)
 
 if hasattr(psa, "usable_threads"):  # versions with --workers threads: count them
-    usable = (lambda requested: requested) if {force_threads!r} else psa.usable_threads
-    def counting(requested):
-        split["threads"] = usable(requested)
+    usable = (lambda requested, *watch: requested) if {force_threads!r} else psa.usable_threads
+    def counting(requested, *watch):
+        split["threads"] = usable(requested, *watch)
         return split["threads"]
     psa.usable_threads = counting
 if {split_steps!r}:
@@ -173,17 +173,22 @@ def main() -> None:
     }
     if args.baseline:
         runs["baseline serial"] = []
+    launches = {
+        "serial": lambda: run_child(ROOT, args.draws, [], False),
+        "--workers 2": lambda: run_child(ROOT, args.draws, ["--workers", "2"], False),
+        "2 threads forced": lambda: run_child(
+            ROOT, args.draws, ["--workers", "2"], False, force_threads=True
+        ),
+        "baseline serial": lambda: run_child(args.baseline, args.draws, [], False),
+    }
     loads = []
-    for _ in range(args.repeats):
+    for repeat in range(args.repeats):
         loads.append(os.getloadavg()[0])
-        runs["serial"].append(run_child(ROOT, args.draws, [], False))
-        runs["--workers 2"].append(run_child(ROOT, args.draws, ["--workers", "2"], False))
-        runs["2 threads forced"].append(
-            run_child(ROOT, args.draws, ["--workers", "2"], False, force_threads=True)
-        )
-        if args.baseline:
-            runs["baseline serial"].append(run_child(args.baseline, args.draws, [], False))
-    print(f"\n== 2. fresh processes, interleaved, median of {args.repeats} ==")
+        # The order turns each repeat, so no variant always runs first (or after another).
+        order = list(runs)
+        for name in order[repeat % len(order) :] + order[: repeat % len(order)]:
+            runs[name].append(launches[name]())
+    print(f"\n== 2. fresh processes, interleaved (order turning), median of {args.repeats} ==")
     median = {
         name: {
             key: statistics.median(r.get(key, 1) for r in rs)
@@ -199,9 +204,13 @@ def main() -> None:
         )
     serial = median["serial"]
     for name in ("--workers 2", "2 threads forced"):
+        pairs = zip(runs[name], runs["serial"], strict=True)
+        paired = sorted(other["wall"] / alone["wall"] for other, alone in pairs)
         print(
             f"  {name} / serial: wall {median[name]['wall'] / serial['wall']:.2f}x"
             + (" (target <= 1.00x)" if name == "--workers 2" else "")
+            + f"; repeat by repeat {paired[0]:.2f}x to {paired[-1]:.2f}x, "
+            f"median {statistics.median(paired):.2f}x"
         )
     if args.baseline:
         base = median["baseline serial"]

@@ -241,7 +241,14 @@ def thread_map(threads: int) -> ChunkMap:
 
 
 IDLE_WINDOW_SECONDS = 0.1
-"""How long :func:`idle_cores` watches the processor counters (this process sleeps)."""
+"""Shortest watch of the processor counters by :class:`IdleWatch` (10 clock ticks of each
+processor at the usual 100 per second)."""
+
+
+def _own_ticks() -> float:
+    """Clock ticks this process has used (all threads, user and system time)."""
+    times = os.times()
+    return (times.user + times.system) * float(os.sysconf("SC_CLK_TCK"))
 
 
 def _processor_ticks() -> tuple[float, float] | None:
@@ -258,40 +265,71 @@ def _processor_ticks() -> tuple[float, float] | None:
     return ticks[3] + ticks[4], sum(ticks)
 
 
-def idle_cores(window: float = IDLE_WINDOW_SECONDS) -> float:
-    """Cores not busy right now, of those this process may use.
+class IdleWatch:
+    """Watches the processors from its creation: how many cores have been idle since.
 
-    The idle share of all processors' clock ticks over ``window`` seconds (this process
-    sleeping meanwhile, so only other work counts) times the processors; where the ticks
-    cannot be read, the cores less the 1-minute load average (which also counts work that
-    has just ended).
+    Parameters
+    ----------
+    own_work_idle : bool
+        Count the clock ticks this process used meanwhile as idle too, so only other
+        work counts: the cores this process could use were it waiting. Its own work can
+        then go on while it is watched (no sleeping).
     """
-    if hasattr(os, "sched_getaffinity"):
-        cores = float(len(os.sched_getaffinity(0)))
-    else:
-        cores = float(os.cpu_count() or 1)
-    before = _processor_ticks()
-    if before is not None:
-        time.sleep(window)
-        after = _processor_ticks()
-        if after is not None and after[1] > before[1]:
-            share = (after[0] - before[0]) / (after[1] - before[1])
-            return min(cores, share * float(os.cpu_count() or cores))
-    try:
-        load = os.getloadavg()[0]
-    except OSError:
-        load = 0.0
-    return max(cores - load, 0.0)
+
+    def __init__(self, own_work_idle: bool = False) -> None:
+        self.own_work_idle = own_work_idle
+        self._started = time.monotonic()
+        self._before = _processor_ticks()
+        self._own_before = _own_ticks()
+
+    def idle_cores(self, window: float = IDLE_WINDOW_SECONDS) -> float:
+        """Cores not busy since the watch began, of those this process may use.
+
+        The idle share of all processors' clock ticks since the watch began (waiting
+        first, when less than ``window`` seconds have passed) times the processors. Where
+        the ticks cannot be read, the cores less the 1-minute load average (which also
+        counts work that has just ended).
+        """
+        if hasattr(os, "sched_getaffinity"):
+            cores = float(len(os.sched_getaffinity(0)))
+        else:
+            cores = float(os.cpu_count() or 1)
+        if self._before is not None:
+            time.sleep(max(window - (time.monotonic() - self._started), 0.0))
+            after = _processor_ticks()
+            own = _own_ticks() - self._own_before if self.own_work_idle else 0.0
+            if after is not None and after[1] > self._before[1]:
+                total = after[1] - self._before[1]
+                idle = min(after[0] - self._before[0] + max(own, 0.0), total)
+                return min(cores, idle / total * float(os.cpu_count() or cores))
+        try:
+            load = os.getloadavg()[0]
+        except OSError:
+            load = 0.0
+        return max(cores - load, 0.0)
 
 
-def usable_threads(requested: int) -> int:
+def idle_cores(window: float = IDLE_WINDOW_SECONDS, own_work_idle: bool = False) -> float:
+    """Cores not busy right now, of those this process may use: an :class:`IdleWatch`
+    read after ``window`` seconds (the calling thread sleeping meanwhile)."""
+    return IdleWatch(own_work_idle).idle_cores(window)
+
+
+def usable_threads(requested: int, watch: IdleWatch | None = None) -> int:
     """Threads worth starting for ``requested`` workers: at most the idle cores (rounded to
     the nearest whole core), at least 1. On a machine whose cores are all busy a second
-    thread only takes turns with the first, so the run stays serial (never slower)."""
+    thread only takes turns with the first, so the run stays serial (never slower).
+
+    The cores are those idle since ``watch`` began (started earlier, with this process's
+    own work counted as idle, so that work went on meanwhile); without one, over the
+    next :data:`IDLE_WINDOW_SECONDS`.
+    """
     requested = check_scalar(requested, "workers", int, min_val=1)
     if requested == 1:
         return 1
-    return max(1, min(requested, round(idle_cores())))
+    if watch is None:
+        watch = IdleWatch(own_work_idle=True)
+    return max(1, min(requested, round(watch.idle_cores())))
 
 
 def _call(job: ChunkJob, start: int, stop: int) -> Any:

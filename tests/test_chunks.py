@@ -197,3 +197,83 @@ def test_processor_ticks_read_where_the_system_has_them():
     idle, total = ticks
     assert 0 <= idle <= total
     assert 0.0 <= idle_cores(0.05) <= len(os.sched_getaffinity(0))
+
+
+def test_usable_threads_count_this_process_s_own_work_as_idle(monkeypatch):
+    # 2 processors watched for 20 ticks each (40 in all), 10 idle; this process used 20
+    # of the busy ones meanwhile (its candidates being built while the idle cores are
+    # watched): the threads see 2 x (10 + 20) / 40 = 1.5 -> 2 cores; the chart renderer,
+    # which looks beside this process's work, sees 2 x 10 / 40 = 0.5 (common practice).
+    import os
+
+    from caredecide import chunks
+
+    def watched(own_work_idle: bool) -> float:
+        readings = iter([(1000.0, 5000.0), (1010.0, 5040.0)])
+        own = iter([500.0, 520.0])
+        monkeypatch.setattr(chunks, "_processor_ticks", lambda: next(readings))
+        monkeypatch.setattr(chunks, "_own_ticks", lambda: next(own))
+        return chunks.idle_cores(own_work_idle=own_work_idle)
+
+    monkeypatch.setattr(chunks.time, "sleep", lambda seconds: None)
+    monkeypatch.setattr(os, "sched_getaffinity", lambda pid: {0, 1}, raising=False)
+    monkeypatch.setattr(os, "cpu_count", lambda: 2)
+    assert watched(own_work_idle=False) == pytest.approx(0.5)
+    assert watched(own_work_idle=True) == pytest.approx(1.5)
+    readings = iter([(1000.0, 5000.0), (1010.0, 5040.0)])
+    own = iter([500.0, 520.0])
+    monkeypatch.setattr(chunks, "_processor_ticks", lambda: next(readings))
+    monkeypatch.setattr(chunks, "_own_ticks", lambda: next(own))
+    assert usable_threads(2) == 2
+
+
+def test_idle_watch_counts_from_its_start_and_waits_only_the_rest_of_the_window(monkeypatch):
+    # Watch begun at t = 0; read at t = 0.03 s: it waits the remaining 0.07 s of the
+    # 0.1 s window, then counts every tick since its start (2 processors, 40 ticks in all,
+    # 10 idle, 20 of this process's): 2 x (10 + 20) / 40 = 1.5 cores.
+    import os
+
+    from caredecide import chunks
+
+    clock = iter([100.0, 100.03])
+    readings = iter([(1000.0, 5000.0), (1010.0, 5040.0)])
+    own = iter([500.0, 520.0])
+    slept: list[float] = []
+    monkeypatch.setattr(chunks.time, "monotonic", lambda: next(clock))
+    monkeypatch.setattr(chunks.time, "sleep", slept.append)
+    monkeypatch.setattr(chunks, "_processor_ticks", lambda: next(readings))
+    monkeypatch.setattr(chunks, "_own_ticks", lambda: next(own))
+    monkeypatch.setattr(os, "sched_getaffinity", lambda pid: {0, 1}, raising=False)
+    monkeypatch.setattr(os, "cpu_count", lambda: 2)
+    watch = chunks.IdleWatch(own_work_idle=True)
+    assert usable_threads(2, watch) == 2
+    assert slept == [pytest.approx(0.07)]
+    # Read after the window has passed: no wait at all.
+    clock = iter([100.0, 100.25])
+    readings = iter([(1000.0, 5000.0), (1010.0, 5040.0)])
+    own = iter([500.0, 500.0])
+    slept.clear()
+    assert chunks.IdleWatch(own_work_idle=True).idle_cores() == pytest.approx(0.5)
+    assert slept == [0.0]
+
+
+def test_workers_count_the_threads_only_where_a_step_has_several_chunks(monkeypatch):
+    # The demo's 2,000 draws in chunks of 1,000: the pilot (one chunk) runs in this
+    # thread without asking; the rest (one chunk) too; 3,000 draws leave two chunks after
+    # the pilot: the idle cores are counted then, once.
+    from caredecide.uncertainty import psa
+
+    model = load_model(demo_model_path())
+    asked: list[int] = []
+
+    def counted(requested, watch=None):
+        asked.append(requested)
+        return 2
+
+    monkeypatch.setattr(psa, "usable_threads", counted)
+    few = psa.analyse_uncertainty(model, 2000, 5, workers=2, chunk_size=1000)
+    assert (asked, few.threads) == ([], 1)
+    more = psa.analyse_uncertainty(model, 3000, 5, workers=2, chunk_size=1000)
+    assert (asked, more.threads) == ([2], 2)
+    serial = psa.analyse_uncertainty(model, 3000, 5, chunk_size=1000)
+    np.testing.assert_array_equal(more.candidate_values, serial.candidate_values)

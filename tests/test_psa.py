@@ -161,7 +161,7 @@ def test_threads_give_the_serial_results(model, monkeypatch):
     # that two threads run even on a busy machine.
     from caredecide.uncertainty import psa
 
-    monkeypatch.setattr(psa, "usable_threads", lambda requested: requested)
+    monkeypatch.setattr(psa, "usable_threads", lambda requested, watch=None: requested)
     serial = analyse_uncertainty(
         model, 1300, seed=8, chunk_size=1300, n_frequent=2, keep_policies=True
     )

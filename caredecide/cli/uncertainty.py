@@ -289,10 +289,12 @@ def _run(
                         loaded, draws, seed, map_chunks=dask_map(client), **options
                     )
         if workers is not None and result.threads < workers and not quiet:
-            stderr.print(
-                f"Ran on {result.threads} of the {workers} workers asked for: the other "
-                "cores were busy (a thread without a free core only slows the others)."
+            why = (
+                "the other cores were busy (a thread without a free core only slows the others)."
+                if result.cores_counted
+                else f"each step had one chunk of {result.chunk_size:,} draws to run."
             )
+            stderr.print(f"Ran on {result.threads} of the {workers} workers asked for: {why}")
         if out is not None and not plane_sent:
             renderer.submit([_plane_job(result.plane_frame())], lane=0, png_there=True)
         tables = _tables(result, band_years, renderer if out is not None else None)

@@ -55,6 +55,7 @@ a Dask cluster (:mod:`caredecide.uncertainty.cluster`).
 from __future__ import annotations
 
 import math
+import os
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from typing import Any
@@ -70,6 +71,7 @@ from caredecide.batch import (  # noqa: F401  (the one memory estimate, re-expor
 )
 from caredecide.chunks import (
     ChunkMap,
+    IdleWatch,
     chunk_ranges,
     chunk_size_for,
     memory_budget,
@@ -411,6 +413,9 @@ class PSAResult:
         Parameters held at their base value in every draw (no distribution).
     threads : int
         Threads of this process that ran the chunks (1: serial).
+    cores_counted : bool
+        Whether the idle cores were counted for ``workers`` (not when every step of the
+        run had one chunk of draws: one chunk runs in the calling thread).
     """
 
     n_draws: int
@@ -438,6 +443,7 @@ class PSAResult:
     wtp_grid: np.ndarray
     fixed_parameters: tuple[str, ...] = ()
     threads: int = 1
+    cores_counted: bool = False
 
     # -- basic arrays -------------------------------------------------------------------
     @property
@@ -962,8 +968,10 @@ def analyse_uncertainty(
     workers : int, optional
         Run the chunks (the pilot's too) on up to this many threads of this process
         (:func:`~caredecide.chunks.thread_map`), as many as there are idle cores
-        (:func:`~caredecide.chunks.usable_threads`); not with ``map_chunks``. Default:
-        serial. The results are the same.
+        (:func:`~caredecide.chunks.usable_threads`, watched from the start of the run
+        while it works; counted when a step first has more than one chunk: a single chunk
+        runs in this thread); not with ``map_chunks``. Default: serial. The results are
+        the same.
     progress : callable(done, total), optional
         Called after each chunk with draws done and ``n_draws``.
     plane_ready : callable(frame), optional
@@ -986,14 +994,27 @@ def analyse_uncertainty(
     wtp_grid = _wtp_grid(objective, wtp_range, wtp_points)
     check_scalar(n_frequent, "n_frequent", int, min_val=0)
     limit = memory_budget(memory_limit_bytes)
-    threads = 1
+    watch = None
+    requested = 1
     if workers is not None:
         if map_chunks is not None:
             raise RunOptionError("workers", workers, "None when map_chunks is given")
-        threads = usable_threads(workers)
-    local_map = thread_map(threads)  # where this process's own chunks run
-    if chunk_size is None:
-        chunk_size = default_chunk_size(model, n_draws, limit, threads)
+        requested = check_scalar(workers, "workers", int, min_val=1)
+        # The idle cores are watched from now while this process works on; the threads
+        # are counted when a step first has more than one chunk to run (no wait).
+        watch = IdleWatch(own_work_idle=True)
+    decided: list[int] = []
+
+    def local_map(n_chunks: int) -> ChunkMap:
+        """Where this process's own chunks run: ``n_chunks`` of them."""
+        if watch is None or (not decided and n_chunks <= 1):
+            return serial_map
+        if not decided:
+            decided.append(usable_threads(requested, watch))
+        return thread_map(decided[0])
+
+    if chunk_size is None:  # shared memory budget: as many chunks at once as may run
+        chunk_size = default_chunk_size(model, n_draws, limit, min(requested, os.cpu_count() or 1))
     else:
         chunk_size = check_scalar(chunk_size, "chunk_size", int, min_val=1)
     sampler = ParameterSampler.from_model(model, rank_correlation=rank_correlation)
@@ -1039,7 +1060,9 @@ def analyse_uncertainty(
         pieces = []
         for (a, b), solved in zip(
             pilot_ranges,
-            run_chunks(SolveDrawsJob(context), pilot_ranges, map_chunks=local_map),
+            run_chunks(
+                SolveDrawsJob(context), pilot_ranges, map_chunks=local_map(len(pilot_ranges))
+            ),
             strict=True,
         ):
             pieces.append(solved[2].policy.astype(np.int8))
@@ -1097,7 +1120,7 @@ def analyse_uncertainty(
             run_chunks(
                 EvaluateSolvedJob(context, pilot),
                 list(pilot),
-                map_chunks=local_map,
+                map_chunks=local_map(len(pilot)),
                 progress=progress,
                 total=n_draws,
             )
@@ -1108,13 +1131,14 @@ def analyse_uncertainty(
         run_chunks(
             PSAJob(context),
             ranges,
-            map_chunks=map_chunks or local_map,
+            map_chunks=map_chunks or local_map(len(ranges)),
             progress=progress,
             total=n_draws,
         )
     )
     result = _combine(chunks, context, candidates, base, wtp_grid, chunk_size)
-    result.threads = threads
+    result.threads = decided[0] if decided else 1
+    result.cores_counted = bool(decided)
     return result
 
 

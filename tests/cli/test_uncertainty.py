@@ -183,7 +183,7 @@ def test_worker_threads_give_the_serial_results(model_file, tmp_path, monkeypatc
     # cores; the rule is bypassed here so that two threads run on a busy machine too).
     from caredecide.uncertainty import psa
 
-    monkeypatch.setattr(psa, "usable_threads", lambda requested: requested)
+    monkeypatch.setattr(psa, "usable_threads", lambda requested, watch=None: requested)
     serial = runner.invoke(
         app,
         [
@@ -234,10 +234,18 @@ def test_worker_threads_give_the_serial_results(model_file, tmp_path, monkeypatc
 def test_workers_on_a_busy_machine_run_serially_and_say_so(model_file, monkeypatch):
     from caredecide.uncertainty import psa
 
-    monkeypatch.setattr(psa, "usable_threads", lambda requested: 1)
-    result = runner.invoke(app, ["uncertainty", str(model_file), "--draws", "20", "--workers", "2"])
+    monkeypatch.setattr(psa, "usable_threads", lambda requested, watch=None: 1)
+    command = ["uncertainty", str(model_file), "--draws", "20", "--workers", "2"]
+    result = runner.invoke(app, [*command, "--chunk-size", "5"])  # several chunks: counted
     assert result.exit_code == 0, result.output
-    assert "Ran on 1 of the 2 workers asked for" in " ".join(result.stderr.split())
+    assert "Ran on 1 of the 2 workers asked for: the other cores were busy" in " ".join(
+        result.stderr.split()
+    )
+    result = runner.invoke(app, command)  # 20 draws make one chunk: nothing to share
+    assert result.exit_code == 0, result.output
+    assert "Ran on 1 of the 2 workers asked for: each step had one chunk of 20 draws" in (
+        " ".join(result.stderr.split())
+    )
 
 
 @pytest.mark.parametrize(
