@@ -513,23 +513,43 @@ def test_model_without_parameters_is_refused_with_a_clear_message():
         one_way(load_model(path))
 
 
-def test_setting_threshold_batch_beyond_the_budget_is_refused_naming_model_and_budget(
-    monkeypatch,
-):
-    # The search solves its grid of willingness-to-pay values in one batch of copies of
-    # the base case: beyond the memory budget it is refused by name (a 687-state model
-    # asked for 23.4 GiB and stopped with a MemoryError traceback).
+def test_setting_threshold_copies_are_solved_in_chunks_within_the_budget(monkeypatch):
+    # The search solves its willingness-to-pay values as copies of the base case: within a
+    # budget of three copies (their arrays, twice while solved) it solves three at a time,
+    # and finds the same thresholds as in one batch (chunks never change a figure, common
+    # practice for batched work); a budget below one copy is refused by name (a 687-state
+    # model once asked for 23.4 GiB and stopped with a MemoryError traceback).
     import caredecide.chunks as chunks
+    import caredecide.solvers as solvers
+    from caredecide.compile import compile_model
     from caredecide.errors import ModelTooLargeError
     from caredecide.modelfile import load_model
-    from caredecide.sensitivity.thresholds import setting_thresholds
+    from caredecide.sensitivity import thresholds
     from synthetic_cohort import demo_model_path
 
     model = load_model(demo_model_path())
+    whole = thresholds.setting_thresholds(model, "willingness_to_pay", 0.0, 100_000.0)
+    one = compile_model(model)
+    arrays = (one.transition, one.state_qaly, one.state_cost, one.decision_qaly)
+    arrays += (one.decision_cost, one.move, one.state_action_qaly, one.state_action_cost)
+    copy = thresholds.COPY_WORKING_FACTOR * sum(a.nbytes for a in arrays if a is not None)
+    sizes: list[int] = []
+    original = solvers.solve
+
+    def counted(batch, objective, **options):
+        sizes.append(batch.n_draws)
+        return original(batch, objective, **options)
+
+    monkeypatch.setattr(solvers, "solve", counted)
+    monkeypatch.setattr(chunks, "memory_budget", lambda limit=None: 3 * copy + 1)
+    chunked = thresholds.setting_thresholds(model, "willingness_to_pay", 0.0, 100_000.0)
+    assert sizes and max(sizes) == 3 and len(sizes) > 2
+    pd.testing.assert_frame_equal(chunked, whole)
     monkeypatch.setattr(chunks, "memory_budget", lambda limit=None: 10_000)
     with pytest.raises(ModelTooLargeError) as info:
-        setting_thresholds(model, "willingness_to_pay", 0.0, 100_000.0)
+        thresholds.setting_thresholds(model, "willingness_to_pay", 0.0, 100_000.0)
     message = str(info.value)
     assert demo_model_path().name in message
-    assert "the threshold search over willingness_to_pay solves" in message
+    assert "the threshold search over willingness_to_pay solves copies" in message
+    assert f"one copy alone needs an estimated {copy / 2**20:.1f} MiB ({copy:,} bytes)" in message
     assert "the budget is 0.0 MiB (10,000 bytes)" in message

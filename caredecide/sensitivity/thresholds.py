@@ -341,7 +341,6 @@ def setting_thresholds(
         ``parameter`` and ``base`` the model's setting.
     """
     from caredecide.compile import compile_model
-    from caredecide.solvers import solve
 
     objective = default_objective(model) if objective is None else objective
     compiled = compile_model(model)
@@ -362,23 +361,24 @@ def setting_thresholds(
         unit_objective = replace(objective, willingness_to_pay=1.0)
 
         def solve_at(x: np.ndarray, which: np.ndarray) -> tuple[Any, Any]:
-            _check_copies(model, compiled, x.size, setting)
-            batch = compiled_over_willingness_to_pay(compiled, x)
-            return batch, solve(batch, unit_objective)
+            return compiled, _solve_copies(
+                model, compiled, x, setting, compiled_over_willingness_to_pay, unit_objective
+            )
 
     elif setting in ("discount_outcomes", "discount_costs", "discount_rate"):
         base = (
             settings.discount_costs if setting == "discount_costs" else settings.discount_outcomes
         )
 
-        def solve_at(x: np.ndarray, which: np.ndarray) -> tuple[Any, Any]:
-            _check_copies(model, compiled, x.size, setting)
-            batch = compiled_over_discount_rate(
-                compiled,
+        def discounted(one: Any, x: np.ndarray) -> Any:
+            return compiled_over_discount_rate(
+                one,
                 discount_outcomes=None if setting == "discount_costs" else x,
                 discount_costs=None if setting == "discount_outcomes" else x,
             )
-            return batch, solve(batch, objective)
+
+        def solve_at(x: np.ndarray, which: np.ndarray) -> tuple[Any, Any]:
+            return compiled, _solve_copies(model, compiled, x, setting, discounted, objective)
 
     else:
         raise ModelError(
@@ -410,14 +410,30 @@ def setting_thresholds(
     return table.rename(columns={"quantity": "setting"})
 
 
-def _check_copies(model: Any, compiled: Any, n: int, setting: str) -> None:
-    """Refuse a batch of ``n`` copies of the one-draw ``compiled`` whose arrays alone
-    exceed the memory budget (``ModelTooLargeError``, naming the model, the setting, the
-    estimate and the budget) instead of failing to allocate them: the search solves its
-    values of a setting in one batch, not chunk by chunk."""
-    from caredecide.chunks import memory_budget
+COPY_WORKING_FACTOR = 2
+"""Bytes a copy of the base case takes while its chunk is built and solved, in multiples
+of its arrays (the tiled copy and the rescaled reward arrays; the solver's own arrays are
+of the size of one set of values)."""
+
+
+def _solve_copies(
+    model: Any,
+    compiled: Any,
+    x: np.ndarray,
+    setting: str,
+    copies: Callable[[Any, np.ndarray], Any],
+    objective: Objective,
+) -> Any:
+    """Solve ``copies(compiled, x[chunk])`` (copies of the one-draw base case, one per value
+    of ``setting``) chunk by chunk within the memory budget; the results joined in order.
+
+    Raises ``ModelTooLargeError`` (naming the model, the setting, the estimate and the
+    budget) when even one copy does not fit, instead of failing to allocate it.
+    """
+    from caredecide.chunks import chunk_ranges, join_results, memory_budget, run_chunks
     from caredecide.errors import ModelTooLargeError
     from caredecide.memory import gib
+    from caredecide.solvers import solve
 
     held = compiled.sparse_transition
     arrays = [
@@ -426,15 +442,21 @@ def _check_copies(model: Any, compiled: Any, n: int, setting: str) -> None:
         compiled.decision_cost, compiled.move, compiled.state_action_qaly,
         compiled.state_action_cost,
     ]  # fmt: skip
-    needed = n * sum(int(np.asarray(a).nbytes) for a in arrays if a is not None)
+    per_copy = COPY_WORKING_FACTOR * sum(int(np.asarray(a).nbytes) for a in arrays if a is not None)
     budget = memory_budget()
-    if needed > budget:
+    if per_copy > budget:
         raise ModelTooLargeError(
-            f"{source_file(model)}: the threshold search over {setting} solves {n:,} copies "
-            f"of the base case at once: their arrays alone need an estimated {gib(needed)} "
-            f"({needed:,} bytes) of memory; the budget is {gib(budget)} ({budget:,} bytes). "
-            "Use fewer states or a shorter horizon for this search."
+            f"{source_file(model)}: the threshold search over {setting} solves copies of "
+            f"the base case, and one copy alone needs an estimated {gib(per_copy)} "
+            f"({per_copy:,} bytes) of memory while it is solved; the budget is {gib(budget)} "
+            f"({budget:,} bytes). Use fewer states or a shorter horizon for this search."
         )
+
+    def solve_chunk(start: int, stop: int) -> Any:
+        return solve(copies(compiled, x[start:stop]), objective)
+
+    ranges = chunk_ranges(x.size, max(1, budget // per_copy))
+    return join_results(list(run_chunks(solve_chunk, ranges)))
 
 
 def summarise_thresholds(table: pd.DataFrame) -> pd.DataFrame:
