@@ -12,6 +12,8 @@ from dataclasses import replace
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from quantecon.markov import DiscreteDP
 from quantecon.markov import backward_induction as quantecon_backward_induction
 
@@ -476,3 +478,47 @@ def test_infinite_horizon_evaluation_with_sparse_rows_equals_the_dense_one(monke
     np.testing.assert_allclose(
         outcome.value, result.expected_value(compiled.start_distribution), rtol=1e-9
     )
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    rows=st.integers(1, 40),
+    width=st.integers(1, 70),
+    density=st.floats(0.0, 1.0),
+    block=st.integers(0, 3),
+    seed=st.integers(0, 2**16),
+)
+def test_dense_rows_read_into_the_same_csr_as_scipy(rows, width, density, block, seed):
+    # Reference: scipy.sparse.csr_array of the same dense rows (a general-purpose
+    # library): the same row pointers, columns and values, in order; with block > 0 row k
+    # moves to the columns of block k // block. Widths below, at and past the 16-entry
+    # scan and densities up to full rows (the output grows past its first guess).
+    from scipy import sparse
+
+    from caredecide.solvers import kernels
+    from caredecide.solvers.sparse import ROW_SUM_TOLERANCE
+
+    if not kernels.available():
+        pytest.skip("compiled loops not installed")
+    if block:
+        rows -= rows % block
+        if not rows:
+            rows = block
+    rng = np.random.default_rng(seed)
+    P = np.where(rng.random((rows, width)) < density, rng.random((rows, width)), 0.0)
+    sums = P.sum(axis=1)
+    P[sums > 0] /= sums[sums > 0, None]  # rows of zeros stay: they do not sum to 1
+    checked = rng.random(rows) < 0.5
+    bad = np.full(1, -1, dtype=np.int64)
+    indptr, indices, data = kernels.sparse_kernels().csr_from_dense(
+        P, block, checked, ROW_SUM_TOLERANCE, bad
+    )
+    expected = sparse.csr_array(P)
+    np.testing.assert_array_equal(indptr, expected.indptr)
+    shift = (np.arange(rows) // block * width if block else np.zeros(rows, int)).repeat(
+        np.diff(expected.indptr)
+    )
+    np.testing.assert_array_equal(indices, expected.indices + shift)
+    np.testing.assert_array_equal(data, expected.data)
+    off = np.flatnonzero(checked & (np.abs(P.sum(axis=1) - 1.0) > ROW_SUM_TOLERANCE))
+    assert bad[0] == (off[0] if off.size else -1)

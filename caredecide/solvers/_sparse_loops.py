@@ -4,8 +4,8 @@ compressed sparse rows, backward induction over those rows, a policy's cohort tr
 and flows over them, and the exact values of a progressive policy by back substitution.
 
 ``scipy.sparse.csr_array(dense)`` finds the non-zeros with ``numpy.nonzero`` (index arrays
-of every non-zero, then a sort); two plain passes over the rows (count, then copy) read the
-dense array at memory speed instead, and the first pass checks the row sums on the way.
+of every non-zero, then a sort); one pass over the rows, a block of entries at a time,
+reads the dense array near memory speed instead and checks the row sums on the way.
 """
 
 import numpy as np
@@ -21,6 +21,10 @@ from caredecide.solvers._loops import (
     reward_cycles,
 )
 
+SCAN_WIDTH = 16
+"""Entries of a dense row tested at once for a non-zero (one vector comparison and sum):
+a block of zeros, the common case in a sparse row, costs no branch per entry."""
+
 
 @njit(cache=True, nogil=True, fastmath={"reassoc", "contract"})
 def csr_from_dense(P, block, checked, tolerance, bad):
@@ -30,32 +34,58 @@ def csr_from_dense(P, block, checked, tolerance, bad):
     # must sum to 1 within the tolerance (the compiled-model check, done while reading):
     # the first that does not goes in bad[0] (left as is when all do). The row sums may be
     # reassociated (SIMD lanes), so they differ from numpy's in the last bits.
+    # One pass: each block of SCAN_WIDTH entries is summed and its non-zeros counted at
+    # once, and only a block with a non-zero is copied entry by entry. The output grows
+    # (doubling) when a full row might not fit; it is trimmed when much is left over.
     K, S = P.shape
+    W = SCAN_WIDTH
+    full = S - S % W
     indptr = np.empty(K + 1, dtype=np.int64)
     indptr[0] = 0
+    capacity = max(K * min(S, W), 1)
+    indices = np.empty(capacity, dtype=np.int64)
+    data = np.empty(capacity)
+    i = 0
     for k in range(K):
-        count = 0
-        total = 0.0
-        for j in range(S):
-            x = P[k, j]
-            total += x
-            if x != 0.0:
-                count += 1
-        if checked[k] and not abs(total - 1.0) <= tolerance and bad[0] < 0:
-            bad[0] = k
-        indptr[k + 1] = indptr[k] + count
-    indices = np.empty(indptr[K], dtype=np.int64)
-    data = np.empty(indptr[K])
-    for k in range(K):
+        if i + S > capacity:
+            capacity = max(2 * capacity, i + S)
+            more_indices = np.empty(capacity, dtype=np.int64)
+            more_indices[:i] = indices[:i]
+            indices = more_indices
+            more_data = np.empty(capacity)
+            more_data[:i] = data[:i]
+            data = more_data
         shift = (k // block) * S if block > 0 else 0
-        i = indptr[k]
-        for j in range(S):
-            x = P[k, j]
+        row = P[k]
+        total = 0.0
+        for j0 in range(0, full, W):
+            part = 0.0
+            nonzero = 0
+            for q in range(W):
+                x = row[j0 + q]
+                part += x
+                nonzero += x != 0.0
+            total += part
+            if nonzero:
+                for q in range(W):
+                    x = row[j0 + q]
+                    if x != 0.0:
+                        indices[i] = j0 + q + shift
+                        data[i] = x
+                        i += 1
+        for j in range(full, S):
+            x = row[j]
+            total += x
             if x != 0.0:
                 indices[i] = j + shift
                 data[i] = x
                 i += 1
-    return indptr, indices, data
+        if checked[k] and not abs(total - 1.0) <= tolerance and bad[0] < 0:
+            bad[0] = k
+        indptr[k + 1] = i
+    if 4 * i < 3 * capacity:  # more than a quarter unused: keep only what is used
+        return indptr, indices[:i].copy(), data[:i].copy()
+    return indptr, indices[:i], data[:i]
 
 
 @njit(cache=True, nogil=True, error_model="numpy", fastmath={"reassoc", "contract"})
