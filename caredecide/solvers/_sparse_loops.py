@@ -26,6 +26,14 @@ SCAN_WIDTH = 16
 a block of zeros, the common case in a sparse row, costs no branch per entry."""
 
 
+@njit(cache=True, nogil=True, inline="always")
+def _grown(array, capacity, used):
+    # A longer copy of array holding its first used entries.
+    out = np.empty(capacity, dtype=array.dtype)
+    out[:used] = array[:used]
+    return out
+
+
 @njit(cache=True, nogil=True, fastmath={"reassoc", "contract"})
 def csr_from_dense(P, block, checked, tolerance, bad):
     # P (K, S) C-contiguous rows; returns (indptr (K + 1,), indices, data) of its CSR form
@@ -49,12 +57,8 @@ def csr_from_dense(P, block, checked, tolerance, bad):
     for k in range(K):
         if i + S > capacity:
             capacity = max(2 * capacity, i + S)
-            more_indices = np.empty(capacity, dtype=np.int64)
-            more_indices[:i] = indices[:i]
-            indices = more_indices
-            more_data = np.empty(capacity)
-            more_data[:i] = data[:i]
-            data = more_data
+            indices = _grown(indices, capacity, i)
+            data = _grown(data, capacity, i)
         shift = (k // block) * S if block > 0 else 0
         row = P[k]
         total = 0.0
