@@ -8,12 +8,17 @@ are read in order while they sit in cache.
 import numpy as np
 from numba import njit
 
+from caredecide.solvers._intrinsics import borrowed, prefetch
+
 jit = njit(cache=True, nogil=True, error_model="numpy")
 inline = njit(cache=True, nogil=True, error_model="numpy", inline="always")
 fused = njit(cache=True, nogil=True, error_model="numpy", fastmath={"reassoc", "contract"})
 """For the fused finite-horizon loops: sums may be reassociated (SIMD lanes) and products
 contracted into fused multiply-adds, so results differ from numpy in the last bits (the
 helpers inlined into them follow their flags; comparisons with -inf are unaffected)."""
+
+LINE = 8
+"""float64 values per 64-byte cache line (the stride of the prefetch hints)."""
 
 
 @inline
@@ -216,6 +221,23 @@ def choose_cycle(
 
 @fused
 def backward_induction(
+    P, has_move, move, rewards, decision_qaly, decision_cost, weights, outcome_weight,
+    cost_weight, allowed, decision_states, tie_absolute, tie_relative, row_tolerance, bad,
+    value, policy, indifferent, keep, q_values, gap, next_best,
+):  # fmt: skip
+    # Arguments as induction_pass; the pass's work arrays are made here, so they outlive
+    # the borrowed views the pass takes of them. Returns what induction_pass returns.
+    A, S = P.shape[2], P.shape[3]
+    scratch = (np.empty((A, S)), np.empty((A, S)), cycle_work(S, A), np.empty(A))
+    return induction_pass(
+        P, has_move, move, rewards, decision_qaly, decision_cost, weights, outcome_weight,
+        cost_weight, allowed, decision_states, tie_absolute, tie_relative, row_tolerance,
+        bad, value, policy, indifferent, keep, q_values, gap, next_best, scratch,
+    )  # fmt: skip
+
+
+@fused
+def induction_pass(
     P,  # (D, Tp, A, S, S)
     has_move,
     move,  # (D, Tm, A, S, S); read only when has_move
@@ -239,20 +261,26 @@ def backward_induction(
     q_values,  # (D, T, S, A) out
     gap,  # (D, T, S) out
     next_best,  # (D, T, S) out
+    scratch,  # work arrays: following, expected (A, S), cycle_work, q (A)
 ):
     # Q_t(s, a) = now_t(s, a) + sum_s' P_t(s'|s, a) (arrival_t(a, s') + V_{t+1}(s')),
     # with now_t and arrival_t built here per draw and cycle by the arithmetic of
     # bellman.cycle_rewards (one-off charges and start occupancy after the move; end
     # occupancy), weighted by the precomputed within-cycle and discount factors.
-    # Returns the sum of the moves read ahead of each draw's pass.
+    # Returns the sum of the moves read ahead of each draw's pass. Every array is
+    # borrowed (_intrinsics): no reference counting as they go into the inlined helpers.
+    P, move, rewards, decision_qaly, decision_cost, weights, allowed, decision_states = borrowed(
+        (P, move, rewards, decision_qaly, decision_cost, weights, allowed, decision_states)
+    )
+    bad, value, policy, indifferent, q_values, gap, next_best = borrowed(
+        (bad, value, policy, indifferent, q_values, gap, next_best)
+    )
+    following, expected, work, q = borrowed(scratch)
     D, Tp, A, S = P.shape[0], P.shape[1], P.shape[2], P.shape[3]
     T = policy.shape[1]
     varying = reward_cycles(rewards, has_move, move) > 1
     ow, cw = outcome_weight, cost_weight
-    following = np.empty((A, S))  # arrival_t(a) + V_{t+1} of the draw, kept local
-    expected = np.empty((A, S))
-    work = cycle_work(S, A)
-    q = np.empty(A)
+    draw_size = Tp * A * S * S
     read = 0.0
     for d in range(D):
         read_rows(P, d, allowed, row_tolerance, bad)
@@ -267,6 +295,10 @@ def backward_induction(
             )  # fmt: skip
             for a in range(A):
                 for s in range(S):
+                    # one line of the next draw per row, in memory order
+                    ahead = (((T - 1 - t) * A + a) * S + s) * LINE
+                    if d + 1 < D and ahead < draw_size:
+                        prefetch(P, d + 1, ahead)
                     expected[a, s] = expectation(P[d, tp, a, s], following[a])
             choose_cycle(
                 expected, work, weights[dw, t], decision_qaly, decision_cost, ow, cw, d, t,
