@@ -31,24 +31,34 @@ def combine(ow, cw, q, c):
 
 
 @inline
-def choose(q, best, top, deciding, tie_absolute, tie_relative, extra):
+def rank(x, a, ranked):
+    # Fold action a's value x into ranked = (best, top, second, runner_up), taken over the
+    # actions in index order from (-inf, 0, -inf, -1): the best value and the first action
+    # with it; the best value among the other actions and the first action with that
+    # (runner_up matters only once second > -inf).
+    best, top, second, _ = ranked
+    if x > best:
+        return x, a, best, top
+    if x > second:
+        return best, top, x, a
+    return ranked
+
+
+@inline
+def choose(q, ranked, deciding, tie_absolute, tie_relative, extra):
     # The tie rule of bellman.greedy_choice for one (draw, state) with action values q (A,)
-    # and their best value and first best action: the lowest index within the tolerance
-    # of the best; the gap to the best other action; the next-best action.
-    # Returns (chosen, gap, next best, indifferent).
-    A = q.shape[0]
+    # ranked by rank: the lowest index within the tolerance of the best; the gap to the
+    # best other action; the next-best action. Returns (chosen, gap, next best, indifferent).
+    best, top, second, runner_up = ranked
     tolerance = tie_absolute + tie_relative * abs(best)
     tolerance = tolerance + extra
     floor = best - tolerance
-    chosen = -1
-    second = -np.inf  # best value among actions other than the first best one (top)
-    runner_up = -1
-    for a in range(A):
-        x = q[a]
-        if chosen < 0 and x >= floor:
-            chosen = a
-        if a != top and x > second:
-            second, runner_up = x, a
+    chosen = top
+    if second >= floor:  # another action is within the tolerance: take the lowest index
+        for a in range(q.shape[0]):
+            if q[a] >= floor:
+                chosen = a
+                break
     # next best = best action other than the chosen one: top itself unless chosen is top
     other = runner_up if chosen == top else top
     single = not (second > -np.inf)
@@ -194,8 +204,7 @@ def choose_cycle(
     td = min(t, decision_qaly.shape[1] - 1)
     tc = min(t, decision_cost.shape[1] - 1)
     for s in range(S):
-        best = -np.inf
-        top = 0
+        ranked = (-np.inf, 0, -np.inf, -1)
         for a in range(A):
             if not allowed[s, a]:
                 x = -np.inf
@@ -204,10 +213,9 @@ def choose_cycle(
                 now_cost = start_c * occupied_c[s, a] + now_c * decision_cost[d, tc, s, a]
                 x = expected[a, s] + combine(ow, cw, now_q, now_cost)
             q[a] = x
-            if x > best:
-                best, top = x, a
+            ranked = rank(x, a, ranked)
         chosen, g, other, tie = choose(
-            q, best, top, decision_states[s], tie_absolute, tie_relative, 0.0
+            q, ranked, decision_states[s], tie_absolute, tie_relative, 0.0
         )
         value[d, t, s] = q[chosen]
         policy[d, t, s] = chosen
@@ -452,13 +460,11 @@ def greedy(Q, decision_states, tie_absolute, tie_relative, extra, value, policy,
         for t in range(T):
             for s in range(S):
                 q = Q[d, t, s]
-                best = -np.inf
-                top = 0
+                ranked = (-np.inf, 0, -np.inf, -1)
                 for a in range(A):
-                    if q[a] > best:
-                        best, top = q[a], a
+                    ranked = rank(q[a], a, ranked)
                 chosen, g, other, tie = choose(
-                    q, best, top, decision_states[s], tie_absolute, tie_relative, extra[d]
+                    q, ranked, decision_states[s], tie_absolute, tie_relative, extra[d]
                 )
                 value[d, t, s] = q[chosen]
                 policy[d, t, s] = chosen

@@ -27,6 +27,7 @@ from caredecide.solvers._loops import (
     combine,
     cycle_occupancy,
     expectation,
+    rank,
     read_rows,
 )
 
@@ -89,13 +90,11 @@ def greedy_step(Q, d, decision_states, tie_absolute, tie_relative, extra, out):
     value, policy, gap, next_best, indifferent = out
     S, A = Q.shape[1], Q.shape[2]
     for s in range(S):
-        best = -np.inf
-        top = 0
+        ranked = (-np.inf, 0, -np.inf, -1)
         for a in range(A):
-            if Q[d, s, a] > best:
-                best, top = Q[d, s, a], a
+            ranked = rank(Q[d, s, a], a, ranked)
         chosen, g, other, tie = choose(
-            Q[d, s], best, top, decision_states[s], tie_absolute, tie_relative, extra
+            Q[d, s], ranked, decision_states[s], tie_absolute, tie_relative, extra
         )
         value[d, s] = Q[d, s, chosen]
         policy[d, s] = chosen
