@@ -21,6 +21,7 @@ solved by substitution in ``O(S^2)`` (sinks first); otherwise by an LU factorisa
 import numpy as np
 from numba import njit
 
+from caredecide.solvers._intrinsics import borrowed
 from caredecide.solvers._loops import (
     after_move,
     choose,
@@ -115,16 +116,35 @@ def value_iteration(
     max_iterations, tie_absolute, tie_relative, row_tolerance, bad,
     residual, sweeps, done, Q, out,
 ):  # fmt: skip
+    # Arguments as value_sweeps, whose work arrays are made here (so they outlive the
+    # borrowed views it takes of them).
+    A, S = P.shape[2], P.shape[3]
+    scratch = (np.empty((A, S)), workspace(S, A), np.empty(S), np.empty(S), np.empty(A * S))
+    value_sweeps(
+        P, model, weights, ow, cw, allowed, decision_states, gamma, tolerance, relative,
+        max_iterations, tie_absolute, tie_relative, row_tolerance, bad,
+        residual, sweeps, done, Q, out, scratch,
+    )  # fmt: skip
+
+
+@jit
+def value_sweeps(
+    P, model, weights, ow, cw, allowed, decision_states, gamma, tolerance, relative,
+    max_iterations, tie_absolute, tie_relative, row_tolerance, bad,
+    residual, sweeps, done, Q, out, scratch,
+):  # fmt: skip
     # Per draw: v <- max_a R + gamma P v from v = 0 until ||v' - v|| < eps (1 - g) / (2 g),
     # eps = tolerance (x max |v| when relative); each draw stops on its own. Then Q of the
     # final v and the greedy choice with the bound gamma ||v' - v|| / (1 - gamma).
-    # P (D, 1, A, S, S); out residual, sweeps, done (D,), Q (D, S, A), out (5 x (D, S)).
+    # P (D, 1, A, S, S); out residual, sweeps, done (D,), Q (D, S, A), out (5 x (D, S));
+    # scratch = (R (A, S), workspace, current, following (S,), expected (A S,)). Every
+    # array is borrowed (_intrinsics), as in _loops.induction_pass.
+    P, model, weights, allowed, decision_states, bad = borrowed(
+        (P, model, weights, allowed, decision_states, bad)
+    )
+    residual, sweeps, done, Q, out = borrowed((residual, sweeps, done, Q, out))
+    R, work, current, following, expected = borrowed(scratch)
     D, A, S = P.shape[0], P.shape[2], P.shape[3]
-    R = np.empty((A, S))
-    work = workspace(S, A)
-    current = np.empty(S)
-    following = np.empty(S)
-    expected = np.empty(A * S)
     for d in range(D):
         read_rows(P, d, allowed, row_tolerance, bad)
         if bad[0] >= 0:
@@ -224,21 +244,38 @@ def policy_iteration(
     P, model, weights, ow, cw, allowed, decision_states, gamma, max_iterations,
     tie_absolute, tie_relative, row_tolerance, bad, residual, sweeps, done, Q, out,
 ):  # fmt: skip
+    # Arguments as policy_steps, whose work arrays are made here (as value_iteration).
+    A, S = P.shape[2], P.shape[3]
+    scratch = (
+        np.empty((A, S)), workspace(S, A), np.empty(S, dtype=np.intp),
+        np.empty(S, dtype=np.intp), np.empty(S), np.empty(A * S), np.empty((S, S)),
+        np.empty(S), np.empty(S, dtype=np.intp), np.empty(S, dtype=np.intp),
+    )  # fmt: skip
+    policy_steps(
+        P, model, weights, ow, cw, allowed, decision_states, gamma, max_iterations,
+        tie_absolute, tie_relative, row_tolerance, bad, residual, sweeps, done, Q, out,
+        scratch,
+    )  # fmt: skip
+
+
+@jit
+def policy_steps(
+    P, model, weights, ow, cw, allowed, decision_states, gamma, max_iterations,
+    tie_absolute, tie_relative, row_tolerance, bad, residual, sweeps, done, Q, out, scratch,
+):  # fmt: skip
     # Per draw: start greedy for v = 0; evaluate exactly; improve, keeping the current
     # action unless another is better beyond rounding; stop when the policy is unchanged.
     # Then the greedy choice on Q of the last evaluated policy with the bound
-    # ||T v - v|| / (1 - gamma). Arguments as value_iteration.
+    # ||T v - v|| / (1 - gamma). Arguments as value_sweeps; scratch = (R, workspace,
+    # policy, improved, current, expected, system, reward, successors, stack).
+    P, model, weights, allowed, decision_states, bad = borrowed(
+        (P, model, weights, allowed, decision_states, bad)
+    )
+    residual, sweeps, done, Q, out = borrowed((residual, sweeps, done, Q, out))
+    R, work, policy, improved, current, expected, system, reward, successors, stack = borrowed(
+        scratch
+    )
     D, A, S = P.shape[0], P.shape[2], P.shape[3]
-    R = np.empty((A, S))
-    work = workspace(S, A)
-    policy = np.empty(S, dtype=np.intp)
-    improved = np.empty(S, dtype=np.intp)
-    current = np.empty(S)
-    expected = np.empty(A * S)
-    system = np.empty((S, S))
-    reward = np.empty(S)
-    successors = np.empty(S, dtype=np.intp)
-    stack = np.empty(S, dtype=np.intp)
     for d in range(D):
         read_rows(P, d, allowed, row_tolerance, bad)
         if bad[0] >= 0:
