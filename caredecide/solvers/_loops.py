@@ -288,7 +288,11 @@ def induction_pass(
     T = policy.shape[1]
     varying = reward_cycles(rewards, has_move, move) > 1
     ow, cw = outcome_weight, cost_weight
+    # The next draw's cache lines are asked for while this draw computes, in memory
+    # order: one per row of the pass, the rest spread over the cycles (at their start).
     draw_size = Tp * A * S * S
+    row_lines = T * A * S
+    per_cycle = (max((draw_size + LINE - 1) // LINE - row_lines, 0) + T - 1) // T
     read = 0.0
     for d in range(D):
         read_rows(P, d, allowed, row_tolerance, bad)
@@ -301,9 +305,12 @@ def induction_pass(
                 rewards, has_move, move, weights[dw, t], ow, cw, d, t, t == T - 1 or varying,
                 value[d, t + 1], work, following,
             )  # fmt: skip
+            for k in range(per_cycle if d + 1 < D else 0):
+                ahead = (row_lines + (T - 1 - t) * per_cycle + k) * LINE
+                if ahead < draw_size:
+                    prefetch(P, d + 1, ahead)
             for a in range(A):
                 for s in range(S):
-                    # one line of the next draw per row, in memory order
                     ahead = (((T - 1 - t) * A + a) * S + s) * LINE
                     if d + 1 < D and ahead < draw_size:
                         prefetch(P, d + 1, ahead)
