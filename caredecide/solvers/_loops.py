@@ -30,10 +30,14 @@ def combine(ow, cw, q, c):
     return part
 
 
+UNRANKED = (-np.inf, 0, -np.inf, -1)
+"""Where :func:`rank` starts, before any action: (best, top, second, runner_up)."""
+
+
 @inline
 def rank(x, a, ranked):
     # Fold action a's value x into ranked = (best, top, second, runner_up), taken over the
-    # actions in index order from (-inf, 0, -inf, -1): the best value and the first action
+    # actions in index order from UNRANKED: the best value and the first action
     # with it; the best value among the other actions and the first action with that
     # (runner_up matters only once second > -inf).
     best, top, second, _ = ranked
@@ -204,7 +208,7 @@ def choose_cycle(
     td = min(t, decision_qaly.shape[1] - 1)
     tc = min(t, decision_cost.shape[1] - 1)
     for s in range(S):
-        ranked = (-np.inf, 0, -np.inf, -1)
+        ranked = UNRANKED
         for a in range(A):
             if not allowed[s, a]:
                 x = -np.inf
@@ -467,7 +471,7 @@ def greedy(Q, decision_states, tie_absolute, tie_relative, extra, value, policy,
         for t in range(T):
             for s in range(S):
                 q = Q[d, t, s]
-                ranked = (-np.inf, 0, -np.inf, -1)
+                ranked = UNRANKED
                 for a in range(A):
                     ranked = rank(q[a], a, ranked)
                 chosen, g, other, tie = choose(

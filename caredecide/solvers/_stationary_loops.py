@@ -23,6 +23,7 @@ from numba import njit
 
 from caredecide.solvers._intrinsics import borrowed
 from caredecide.solvers._loops import (
+    UNRANKED,
     after_move,
     choose,
     combine,
@@ -91,7 +92,7 @@ def greedy_step(Q, d, decision_states, tie_absolute, tie_relative, extra, out):
     value, policy, gap, next_best, indifferent = out
     S, A = Q.shape[1], Q.shape[2]
     for s in range(S):
-        ranked = (-np.inf, 0, -np.inf, -1)
+        ranked = UNRANKED
         for a in range(A):
             ranked = rank(Q[d, s, a], a, ranked)
         chosen, g, other, tie = choose(
